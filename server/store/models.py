@@ -1,0 +1,199 @@
+"""SQLAlchemy 2 typed models of the bitemporal, append-only data model (DESIGN.md).
+
+Observations are never updated in place: every ingestion batch is a :class:`Vintage`, and the
+"current" value of a key is the one in its latest vintage. Rulesets are stored with their YAML text and
+SHA-256 and are never edited; decisions and the audit log are append-only.
+"""
+
+from __future__ import annotations
+
+from datetime import date, datetime
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    Boolean,
+    Date,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+from server.store.types import UTCDateTime
+
+# SQLite only autoincrements INTEGER PRIMARY KEY; PostgreSQL gets a BIGINT identity.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+
+
+class Base(DeclarativeBase):
+    """Declarative base of every tierwise table."""
+
+    type_annotation_map = {dict[str, Any]: JSON}
+
+
+class Region(Base):
+    """A district, region, county or wastewater plant; regions form a hierarchy through ``parent``."""
+
+    __tablename__ = "region"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    code: Mapped[str] = mapped_column(String(64), unique=True)
+    name: Mapped[str] = mapped_column(String(200))
+    level: Mapped[str] = mapped_column(String(32), index=True)
+    parent_id: Mapped[int | None] = mapped_column(ForeignKey("region.id"), index=True)
+    population: Mapped[int] = mapped_column(BigInteger)
+    geometry: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    attributes: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+    parent: Mapped[Region | None] = relationship(remote_side=[id])
+
+
+class Catchment(Base):
+    """Share of a district's population served by a wastewater plant (plants are regions)."""
+
+    __tablename__ = "catchment"
+
+    plant_id: Mapped[int] = mapped_column(ForeignKey("region.id"), primary_key=True)
+    district_id: Mapped[int] = mapped_column(ForeignKey("region.id"), primary_key=True)
+    share: Mapped[float] = mapped_column(Float)
+
+
+class Measure(Base):
+    """Catalogue entry for something a feed reports (``cases``, ``icu_occupied``, ...)."""
+
+    __tablename__ = "measure"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    unit: Mapped[str] = mapped_column(String(64))
+    kind: Mapped[str] = mapped_column(String(32))  # count | level | concentration
+    aggregation: Mapped[str] = mapped_column(String(16))  # sum | mean | none
+    description: Mapped[str] = mapped_column(Text, default="")
+
+
+class Vintage(Base):
+    """One ingestion batch: everything one feed said at one time."""
+
+    __tablename__ = "vintage"
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    feed: Mapped[str] = mapped_column(String(100), index=True)
+    source: Mapped[str] = mapped_column(String(500), default="")
+    received_at: Mapped[datetime] = mapped_column(UTCDateTime(), index=True)
+    checksum: Mapped[str] = mapped_column(String(64), index=True)
+    rows_accepted: Mapped[int] = mapped_column(Integer, default=0)
+    rows_rejected: Mapped[int] = mapped_column(Integer, default=0)
+
+
+class Observation(Base):
+    """A value of a measure for a region and reference date, as told by one vintage."""
+
+    __tablename__ = "observation"
+    __table_args__ = (
+        UniqueConstraint("vintage_id", "region_id", "measure_id", "ref_date"),
+        Index("ix_observation_key", "measure_id", "region_id", "ref_date", "vintage_id"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    vintage_id: Mapped[int] = mapped_column(ForeignKey("vintage.id", ondelete="CASCADE"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("region.id"))
+    measure_id: Mapped[int] = mapped_column(ForeignKey("measure.id"))
+    ref_date: Mapped[date] = mapped_column(Date)
+    value: Mapped[float] = mapped_column(Float)
+
+
+class RejectedRow(Base):
+    """A row a feed sent that was not accepted, with the reason a clerk can act on."""
+
+    __tablename__ = "rejected_row"
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    vintage_id: Mapped[int] = mapped_column(ForeignKey("vintage.id", ondelete="CASCADE"), index=True)
+    line: Mapped[int] = mapped_column(Integer)
+    raw: Mapped[str] = mapped_column(Text)
+    reason: Mapped[str] = mapped_column(String(64))
+    message: Mapped[str] = mapped_column(Text, default="")
+
+
+class Ruleset(Base):
+    """A tier policy version; the YAML text and its SHA-256 are never edited."""
+
+    __tablename__ = "ruleset"
+    __table_args__ = (UniqueConstraint("name", "version"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(100))
+    version: Mapped[int] = mapped_column(Integer)
+    yaml_text: Mapped[str] = mapped_column(Text)
+    sha256: Mapped[str] = mapped_column(String(64), index=True)
+    author: Mapped[str] = mapped_column(String(100), default="")
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    status: Mapped[str] = mapped_column(String(16), default="draft")  # draft | active | retired
+
+
+class Assessment(Base):
+    """The engine's recommendation for one region and day, reproducible from its data cutoff."""
+
+    __tablename__ = "assessment"
+    __table_args__ = (UniqueConstraint("ruleset_id", "region_id", "ref_date", "data_cutoff"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    ruleset_id: Mapped[int] = mapped_column(ForeignKey("ruleset.id"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("region.id"), index=True)
+    ref_date: Mapped[date] = mapped_column(Date, index=True)
+    data_cutoff: Mapped[datetime] = mapped_column(UTCDateTime())
+    recommended_tier: Mapped[int] = mapped_column(Integer)
+    previous_tier: Mapped[int | None] = mapped_column(Integer)
+    criteria: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    prepare_signals: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    explanation: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
+class User(Base):
+    """A staff account; roles are viewer, analyst, approver and admin."""
+
+    __tablename__ = "app_user"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), unique=True)
+    role: Mapped[str] = mapped_column(String(16))
+    password_hash: Mapped[str] = mapped_column(String(200))
+    active: Mapped[bool] = mapped_column(Boolean, default=True)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
+class Decision(Base):
+    """The official tier of a region from an effective date, confirmed or overridden by a person."""
+
+    __tablename__ = "decision"
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    region_id: Mapped[int] = mapped_column(ForeignKey("region.id"), index=True)
+    assessment_id: Mapped[int | None] = mapped_column(ForeignKey("assessment.id"))
+    effective_date: Mapped[date] = mapped_column(Date)
+    tier: Mapped[int] = mapped_column(Integer)
+    kind: Mapped[str] = mapped_column(String(16))  # confirmed | overridden
+    reason: Mapped[str] = mapped_column(Text)
+    decided_by: Mapped[int | None] = mapped_column(ForeignKey("app_user.id"))
+    decided_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    published_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
+
+
+class AuditEntry(Base):
+    """Append-only log of who did what."""
+
+    __tablename__ = "audit"
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    at: Mapped[datetime] = mapped_column(UTCDateTime(), index=True)
+    actor: Mapped[str] = mapped_column(String(100))
+    action: Mapped[str] = mapped_column(String(64))
+    subject: Mapped[str] = mapped_column(String(200), default="")
+    details: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)

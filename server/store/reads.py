@@ -1,0 +1,190 @@
+"""Reads of the bitemporal store: current and as-of dense arrays, revision history, freshness.
+
+"Current" is the latest vintage of each (region, measure, ref_date) key; an *as-of* read takes the
+latest vintage received at or before a time stamp, so any past decision can be reproduced from the
+data it saw. Ties in ``received_at`` are broken by the vintage id (insertion order).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import date, datetime
+
+import numpy as np
+from numpy.typing import NDArray
+from sqlalchemy import Date, Select, func, select, type_coerce
+from sqlalchemy.orm import Session
+
+from server.store.errors import UnknownCodeError
+from server.store.models import Measure, Observation, Region, Vintage
+from server.store.types import UTCDateTime
+
+
+@dataclass(frozen=True, kw_only=True)
+class DenseSeries:
+    """Observations of several measures as arrays shaped (regions, days); NaN where nothing is known.
+
+    ``values[measure][i, j]`` is the value for ``regions[i]`` on ``dates[j]``.
+    """
+
+    regions: tuple[str, ...]
+    dates: NDArray[np.datetime64]
+    values: dict[str, NDArray[np.float64]]
+    as_of: datetime | None
+
+    def __getitem__(self, measure: str) -> NDArray[np.float64]:
+        return self.values[measure]
+
+
+@dataclass(frozen=True, kw_only=True)
+class Revision:
+    """One value a (region, measure, ref_date) key had, and the vintage that told it."""
+
+    vintage_id: int
+    feed: str
+    received_at: datetime
+    value: float
+
+
+def _latest_per_key(
+    *, measure_ids: Sequence[int], region_ids: Sequence[int] | None, start: date, end: date,
+    as_of: datetime | None,
+) -> Select[tuple[int, int, date, float]]:
+    rank = (
+        func.row_number()
+        .over(
+            partition_by=(Observation.region_id, Observation.measure_id, Observation.ref_date),
+            order_by=(Vintage.received_at.desc(), Vintage.id.desc()),
+        )
+        .label("rank")
+    )
+    inner = (
+        select(
+            Observation.region_id, Observation.measure_id, Observation.ref_date,
+            Observation.value, rank,
+        )
+        .join(Vintage, Vintage.id == Observation.vintage_id)
+        .where(
+            Observation.measure_id.in_(measure_ids),
+            Observation.ref_date >= start,
+            Observation.ref_date <= end,
+        )
+    )
+    if region_ids is not None:
+        inner = inner.where(Observation.region_id.in_(region_ids))
+    if as_of is not None:
+        inner = inner.where(Vintage.received_at <= as_of)
+    sub = inner.subquery()
+    return select(sub.c.region_id, sub.c.measure_id, sub.c.ref_date, sub.c.value).where(
+        sub.c.rank == 1
+    )
+
+
+def read_dense(
+    *,
+    session: Session,
+    measures: Sequence[str],
+    start: date,
+    end: date,
+    regions: Sequence[str] | None = None,
+    as_of: datetime | None = None,
+) -> DenseSeries:
+    """Dense arrays (regions x days) of ``measures`` from ``start`` to ``end`` inclusive.
+
+    With ``as_of`` only vintages received at or before it count. ``regions`` gives the row order (by
+    code); without it every region is read in code order.
+    """
+    if end < start:
+        raise ValueError(f"end {end} is before start {start}")
+    measure_rows = session.execute(
+        select(Measure.name, Measure.id).where(Measure.name.in_(measures))
+    ).all()
+    measure_ids = dict(measure_rows)
+    unknown = [m for m in measures if m not in measure_ids]
+    if unknown:
+        raise UnknownCodeError("measure", unknown)
+
+    region_query = select(Region.code, Region.id).order_by(Region.code)
+    if regions is not None:
+        region_query = region_query.where(Region.code.in_(regions))
+    region_ids = dict(session.execute(region_query).all())
+    if regions is not None:
+        missing = [r for r in regions if r not in region_ids]
+        if missing:
+            raise UnknownCodeError("region", missing)
+        order = tuple(regions)
+    else:
+        order = tuple(region_ids)
+    row_of = {region_ids[code]: i for i, code in enumerate(order)}
+
+    dates = np.arange(np.datetime64(start, "D"), np.datetime64(end, "D") + 1)
+    values = {m: np.full((len(order), dates.size), np.nan) for m in measures}
+    name_of = {v: k for k, v in measure_ids.items()}
+    query = _latest_per_key(
+        measure_ids=list(measure_ids.values()),
+        region_ids=list(row_of) if regions is not None else None,
+        start=start, end=end, as_of=as_of,
+    )
+    result = session.execute(query).all()
+    if result:
+        region_col, measure_col, date_col, value_col = zip(*result, strict=True)
+        rows = np.fromiter((row_of[r] for r in region_col), dtype=np.int64, count=len(result))
+        cols = (np.array(date_col, dtype="datetime64[D]") - dates[0]).astype(np.int64)
+        vals = np.asarray(value_col, dtype=np.float64)
+        mids = np.asarray(measure_col)
+        for mid, name in name_of.items():
+            pick = mids == mid
+            values[name][rows[pick], cols[pick]] = vals[pick]
+    return DenseSeries(regions=order, dates=dates, values=values, as_of=as_of)
+
+
+def revision_history(
+    *, session: Session, region: str, measure: str, ref_date: date
+) -> list[Revision]:
+    """Every value the key (region, measure, ref_date) has had, oldest first."""
+    query = (
+        select(Vintage.id, Vintage.feed, Vintage.received_at, Observation.value)
+        .join(Observation, Observation.vintage_id == Vintage.id)
+        .join(Region, Region.id == Observation.region_id)
+        .join(Measure, Measure.id == Observation.measure_id)
+        .where(Region.code == region, Measure.name == measure, Observation.ref_date == ref_date)
+        .order_by(Vintage.received_at, Vintage.id)
+    )
+    return [
+        Revision(vintage_id=v, feed=f, received_at=t, value=x)
+        for v, f, t, x in session.execute(query)
+    ]
+
+
+@dataclass(frozen=True, kw_only=True)
+class LatestDate:
+    """The newest reference date of a measure for a region, and when it was last received."""
+
+    region: str
+    measure: str
+    ref_date: date
+    received_at: datetime
+
+
+def latest_dates(*, session: Session, level: str | None = None) -> list[LatestDate]:
+    """For every (region, measure) with data: the newest ref_date and the newest received time."""
+    query = (
+        select(
+            Region.code,
+            Measure.name,
+            type_coerce(func.max(Observation.ref_date), Date()),
+            type_coerce(func.max(Vintage.received_at), UTCDateTime()),
+        )
+        .join(Region, Region.id == Observation.region_id)
+        .join(Measure, Measure.id == Observation.measure_id)
+        .join(Vintage, Vintage.id == Observation.vintage_id)
+        .group_by(Region.code, Measure.name)
+        .order_by(Region.code, Measure.name)
+    )
+    if level is not None:
+        query = query.where(Region.level == level)
+    return [
+        LatestDate(region=code, measure=name, ref_date=ref, received_at=received)
+        for code, name, ref, received in session.execute(query)
+    ]

@@ -1,0 +1,175 @@
+"""Bulk writes: one ingestion batch becomes one vintage, appended in one transaction.
+
+Query functions take ``session`` keyword-only and never commit; the caller owns the transaction. The
+append runs inside a SAVEPOINT, so a failure leaves nothing of the batch behind even when the caller
+goes on using the session.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from datetime import datetime
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import insert, select
+from sqlalchemy.orm import Session
+
+from server.store.errors import DuplicateKeyError, UnknownCodeError
+from server.store.models import Measure, Observation, Region, RejectedRow, Vintage
+
+OBSERVATION_COLUMNS = ("region", "measure", "ref_date", "value")
+
+
+@dataclass(frozen=True, kw_only=True)
+class Rejection:
+    """A row that a feed sent and that was not accepted."""
+
+    line: int
+    raw: str
+    reason: str
+    message: str = ""
+
+
+def checksum_of(content: bytes) -> str:
+    """SHA-256 hex digest of a batch's raw content (re-sent identical content is recognised)."""
+    return hashlib.sha256(content).hexdigest()
+
+
+def code_maps(*, session: Session) -> tuple[dict[str, int], dict[str, int]]:
+    """Region code -> id and measure name -> id."""
+    regions = dict(session.execute(select(Region.code, Region.id)).all())
+    measures = dict(session.execute(select(Measure.name, Measure.id)).all())
+    return regions, measures
+
+
+def _resolve(frame: pd.DataFrame, column: str, mapping: Mapping[str, int], kind: str) -> np.ndarray:
+    ids = frame[column].map(mapping)
+    missing = frame.loc[ids.isna(), column].drop_duplicates().astype(str).tolist()
+    if missing:
+        raise UnknownCodeError(kind, missing)
+    return ids.to_numpy(dtype=np.int64)
+
+
+def _prepare(
+    rows: pd.DataFrame, regions: Mapping[str, int], measures: Mapping[str, int]
+) -> pd.DataFrame:
+    missing = [c for c in OBSERVATION_COLUMNS if c not in rows.columns]
+    if missing:
+        raise ValueError(f"observation rows lack column(s) {missing}; expected {OBSERVATION_COLUMNS}")
+    values = pd.to_numeric(rows["value"], errors="raise").to_numpy(dtype=np.float64)
+    if not np.isfinite(values).all():
+        raise ValueError("observation values must be finite numbers (missing data is no row)")
+    frame = pd.DataFrame(
+        {
+            "region_id": _resolve(rows, "region", regions, "region"),
+            "measure_id": _resolve(rows, "measure", measures, "measure"),
+            "ref_date": pd.to_datetime(rows["ref_date"]).dt.date,
+            "value": values,
+        }
+    )
+    dup = frame.duplicated(["region_id", "measure_id", "ref_date"], keep=False)
+    if dup.any():
+        keys = rows.loc[dup, ["region", "measure", "ref_date"]].astype(str)
+        raise DuplicateKeyError([tuple(k) for k in keys.drop_duplicates().itertuples(index=False)])
+    return frame
+
+
+def append_vintage(
+    *,
+    session: Session,
+    feed: str,
+    received_at: datetime,
+    rows: pd.DataFrame,
+    checksum: str,
+    source: str = "",
+    rejections: Iterable[Rejection] = (),
+    code_lookup: tuple[Mapping[str, int], Mapping[str, int]] | None = None,
+) -> Vintage:
+    """Append ``rows`` (columns region, measure, ref_date, value) as one new vintage.
+
+    Rows are written with one bulk statement (COPY on PostgreSQL, executemany on SQLite). Unknown
+    codes or duplicate keys raise before anything is written; any failure rolls back to the savepoint,
+    so no partial vintage remains. ``code_lookup`` lets a caller appending many vintages resolve the
+    catalogue once.
+    """
+    regions, measures = code_lookup if code_lookup is not None else code_maps(session=session)
+    frame = _prepare(rows, regions, measures)
+    rejected = list(rejections)
+    with session.begin_nested():
+        vintage = Vintage(
+            feed=feed,
+            source=source,
+            received_at=received_at,
+            checksum=checksum,
+            rows_accepted=len(frame),
+            rows_rejected=len(rejected),
+        )
+        session.add(vintage)
+        session.flush()
+        _bulk_insert_observations(session, vintage.id, frame)
+        if rejected:
+            session.execute(
+                insert(RejectedRow),
+                [
+                    {
+                        "vintage_id": vintage.id,
+                        "line": r.line,
+                        "raw": r.raw,
+                        "reason": r.reason,
+                        "message": r.message,
+                    }
+                    for r in rejected
+                ],
+            )
+    return vintage
+
+
+def _bulk_insert_observations(session: Session, vintage_id: int, frame: pd.DataFrame) -> None:
+    if frame.empty:
+        return
+    connection = session.connection()
+    if connection.dialect.name == "postgresql":
+        buffer = io.StringIO()
+        out = frame.assign(vintage_id=vintage_id)[
+            ["vintage_id", "region_id", "measure_id", "ref_date", "value"]
+        ]
+        out.to_csv(buffer, index=False, header=False, float_format="%.17g")
+        raw = connection.connection.driver_connection
+        with raw.cursor() as cursor:  # type: ignore[union-attr]
+            with cursor.copy(
+                "COPY observation (vintage_id, region_id, measure_id, ref_date, value) "
+                "FROM STDIN WITH (FORMAT csv)"
+            ) as copy:
+                copy.write(buffer.getvalue())
+        return
+    session.execute(
+        insert(Observation),
+        [
+            {
+                "vintage_id": vintage_id,
+                "region_id": int(r),
+                "measure_id": int(m),
+                "ref_date": d,
+                "value": float(v),
+            }
+            for r, m, d, v in zip(
+                frame["region_id"], frame["measure_id"], frame["ref_date"], frame["value"],
+                strict=True,
+            )
+        ],
+    )
+
+
+def find_vintage_by_checksum(*, session: Session, feed: str, checksum: str) -> Vintage | None:
+    """The earliest vintage of ``feed`` with this content checksum, if any."""
+    return session.scalars(
+        select(Vintage)
+        .where(Vintage.feed == feed, Vintage.checksum == checksum)
+        .order_by(Vintage.id)
+        .limit(1)
+    ).first()
+
