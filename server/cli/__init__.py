@@ -1,0 +1,5 @@
+"""The ``tierwise`` command."""
+
+from server.cli.main import app, main
+
+__all__ = ["app", "main"]

@@ -1,0 +1,112 @@
+"""Fill a database with the invented demo scenario, through the services layer.
+
+Every name, place and number written here is invented for the demonstration. The data arrive as the
+vintages they would have arrived as: one per day, each holding that day's new values and the
+revisions of earlier days, so as-of reads see the county as it was known on any morning.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager, nullcontext
+from dataclasses import dataclass
+from datetime import UTC, date, datetime, time, timedelta
+
+import pandas as pd
+
+from demo_seed.scenario import MEASURES, Scenario, build_scenario
+from server.services.audit import record
+from server.services.database import DEMO_MARK, Database, recreate_demo_schema
+from server.services.observations import MeasureRecord, VintageWriter, define_measures
+from server.services.regions import RegionRecord, store_catchments, store_regions
+from server.services.users import add_user
+
+ProgressFactory = Callable[[str, int], AbstractContextManager[Callable[[int], None]]]
+
+# Invented demo accounts; the demo prints them. Never use these outside the demo.
+DEMO_USERS = (
+    ("ada.analyst", "analyst", "demo-analyst"),
+    ("otto.approver", "approver", "demo-approver"),
+    ("ines.admin", "admin", "demo-admin"),
+    ("vic.viewer", "viewer", "demo-viewer"),
+)
+FEED = "demo-county"
+ARRIVAL = time(5, 30)  # the night's files land at 05:30 UTC
+
+
+@dataclass(frozen=True, kw_only=True)
+class SeedSummary:
+    start: date
+    end: date
+    districts: int
+    vintages: int
+    observations: int
+    users: tuple[tuple[str, str, str], ...]
+
+
+def _no_progress(_n: int = 1) -> None:
+    return None
+
+
+def received_at(day: date) -> datetime:
+    """When the vintage of ``day`` arrived: the next morning (data of a day are known after it)."""
+    return datetime.combine(day + timedelta(days=1), ARRIVAL, tzinfo=UTC)
+
+
+def _vintages(observations: pd.DataFrame) -> Iterator[tuple[date, pd.DataFrame]]:
+    for known_on, group in observations.groupby("known_on", sort=True):
+        yield pd.Timestamp(known_on).date(), group[["region", "measure", "ref_date", "value"]]
+
+
+def seed_demo(
+    db: Database, *, seed: int = 7, days: int = 548, end: date | None = None,
+    progress: ProgressFactory | None = None,
+) -> SeedSummary:
+    """Wipe the demo database and fill it with a freshly simulated scenario."""
+    scenario = build_scenario(seed=seed, end=end, days=days)
+    recreate_demo_schema(db)
+    with db.transaction() as session:
+        define_measures(
+            session=session,
+            measures=[
+                MeasureRecord(
+                    name=name, unit=spec["unit"], kind=spec["kind"],
+                    aggregation=spec["aggregation"], description=spec.get("description", ""),
+                )
+                for name, spec in MEASURES.items()
+            ],
+        )
+        store_regions(
+            session=session, records=_region_records(scenario), actor="demo", source="demo_seed"
+        )
+        store_catchments(
+            session=session, shares=[(c.plant, c.district, c.share) for c in scenario.catchments]
+        )
+        for name, role, password in DEMO_USERS:
+            add_user(session=session, name=name, role=role, password=password, actor="demo")
+    batches = list(_vintages(scenario.observations))
+    bar = progress("seeding daily vintages", len(batches)) if progress else nullcontext(_no_progress)
+    with bar as advance, db.transaction() as session:
+        writer = VintageWriter(session=session, feed=FEED, source="demo_seed simulator")
+        for day, rows in batches:
+            writer.append(rows, received_at=received_at(day))
+            advance(1)
+        record(
+            session=session, actor="demo", action=DEMO_MARK, subject=f"seed={seed}",
+            details={"start": scenario.start.isoformat(), "end": scenario.end.isoformat()},
+        )
+    districts = sum(1 for r in scenario.regions if r.level == "district")
+    return SeedSummary(
+        start=scenario.start, end=scenario.end, districts=districts, vintages=len(batches),
+        observations=len(scenario.observations), users=DEMO_USERS,
+    )
+
+
+def _region_records(scenario: Scenario) -> list[RegionRecord]:
+    return [
+        RegionRecord(
+            code=r.code, name=r.name, level=r.level, parent=r.parent, population=r.population,
+            geometry=r.geometry, attributes=dict(r.attributes),
+        )
+        for r in scenario.regions
+    ]

@@ -1,0 +1,181 @@
+"""Entry point of the ``tierwise`` command: settings are built here and passed down."""
+
+from __future__ import annotations
+
+from datetime import date
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from server.cli.output import fail, friendly_errors, progress_bar, say
+from server.config import Settings
+from server.services.database import Database
+
+app = typer.Typer(
+    name="tierwise",
+    help=(
+        "tierwise: regional alert tiers for public health offices. Every command reads its "
+        "configuration from TIERWISE_* environment variables (TIERWISE_DATABASE_URL chooses the "
+        "database; the default is a SQLite file under ./var)."
+    ),
+    no_args_is_help=True,
+    add_completion=False,
+)
+db_app = typer.Typer(help="Create or migrate the database schema.", no_args_is_help=True)
+regions_app = typer.Typer(help="Manage the map of regions (districts and their areas).",
+                          no_args_is_help=True)
+users_app = typer.Typer(help="Manage staff accounts.", no_args_is_help=True)
+app.add_typer(db_app, name="db")
+app.add_typer(regions_app, name="regions")
+app.add_typer(users_app, name="users")
+
+
+def _settings(**overrides: object) -> Settings:
+    return Settings(**overrides)  # type: ignore[arg-type]
+
+
+def _admin_settings() -> Settings:
+    """Settings for commands that sign nothing (migrate, import, add users): the secret key is not
+    used there, so the built-in one is tolerated; ``serve`` always insists on a real key."""
+    return Settings(demo_mode=True)
+
+
+def _database(settings: Settings, *, check: bool = True) -> Database:
+    db = Database.from_settings(settings)
+    if check:
+        db.check()
+    return db
+
+
+@app.command()
+@friendly_errors
+def demo(
+    port: Annotated[int, typer.Option(help="Port to serve on (127.0.0.1 only).")] = 8000,
+    days: Annotated[int, typer.Option(min=120, max=1500, help="Days of invented history.")] = 548,
+    seed: Annotated[int, typer.Option(help="Random seed of the invented epidemic.")] = 7,
+    end_date: Annotated[
+        str | None, typer.Option(help="Last day of data, YYYY-MM-DD (default: yesterday).")
+    ] = None,
+    serve: Annotated[bool, typer.Option("--serve/--no-serve", help="Serve after seeding.")] = True,
+) -> None:
+    """Create (or refresh) a demo database with an invented county and serve it.
+
+    Everything the demo shows (places, people, numbers) is invented. The database is wiped and
+    seeded again on every run, so a second run gives the same result; a database holding data
+    that the demo did not create is never touched.
+    """
+    from demo_seed.seed import seed_demo
+
+    end = date.fromisoformat(end_date) if end_date else None
+    settings = _settings(demo_mode=True)
+    db = _database(settings, check=False)
+    try:
+        summary = seed_demo(db, seed=seed, days=days, end=end, progress=progress_bar)
+    finally:
+        db.dispose()
+    say(
+        f"Seeded {summary.districts} districts, {summary.vintages} daily vintages, "
+        f"{summary.observations:,} observations from {summary.start} to {summary.end} "
+        f"into {settings.database_url}"
+    )
+    for name, role, password in summary.users:
+        say(f"  demo user {name!r} ({role}), password {password!r}")
+    say(f"Public view: http://127.0.0.1:{port}/")
+    say(f"Staff pages: http://127.0.0.1:{port}/staff/")
+    say(f"API docs:    http://127.0.0.1:{port}/docs")
+    if serve:
+        _run_server(settings, host="127.0.0.1", port=port, workers=1)
+
+
+@app.command("serve")
+@friendly_errors
+def serve_command(
+    host: Annotated[str, typer.Option(help="Address to listen on.")] = "127.0.0.1",
+    port: Annotated[int, typer.Option(help="Port to listen on.")] = 8000,
+    workers: Annotated[int, typer.Option(min=1, help="Web worker processes.")] = 1,
+) -> None:
+    """Serve the web interface and the API (the database must be migrated)."""
+    settings = _settings()
+    _database(settings).dispose()
+    _run_server(settings, host=host, port=port, workers=workers)
+
+
+def _run_server(settings: Settings, *, host: str, port: int, workers: int) -> None:
+    import os
+
+    import uvicorn
+
+    if workers > 1:
+        # Worker processes build their own app from the environment.
+        os.environ.setdefault("TIERWISE_DATABASE_URL", settings.database_url)
+        if settings.demo_mode:
+            os.environ["TIERWISE_DEMO_MODE"] = "true"
+        uvicorn.run(
+            "web.app:app_from_environment", factory=True, host=host, port=port, workers=workers
+        )
+        return
+    from web.app import create_app
+
+    uvicorn.run(create_app(settings), host=host, port=port)
+
+
+@db_app.command("upgrade")
+@friendly_errors
+def db_upgrade() -> None:
+    """Apply every pending migration (safe to run again)."""
+    settings = _admin_settings()
+    db = _database(settings, check=False)
+    try:
+        revision = db.upgrade()
+    finally:
+        db.dispose()
+    say(f"database {settings.database_url} is at revision {revision}")
+
+
+@regions_app.command("import")
+@friendly_errors
+def regions_import(
+    file: Annotated[Path, typer.Argument(help="GeoJSON FeatureCollection, one feature per region.")],
+) -> None:
+    """Add or update regions from a GeoJSON file (properties: code, name, level, parent,
+    population). The whole file is checked first; a broken file changes nothing."""
+    from server.services.regions import import_regions
+
+    db = _database(_admin_settings())
+    try:
+        with progress_bar(f"importing {file.name}", total=1) as advance, db.transaction() as s:
+            result = import_regions(session=s, path=file)
+            advance(1)
+    finally:
+        db.dispose()
+    say(f"{file}: {result.added} regions added, {result.updated} updated")
+
+
+@users_app.command("add")
+@friendly_errors
+def users_add(
+    name: Annotated[str, typer.Argument(help="Login name.")],
+    role: Annotated[str, typer.Option(help="viewer, analyst, approver or admin.")],
+    password: Annotated[
+        str | None,
+        typer.Option(help="Password (prompted for when left out; an option ends up in history)."),
+    ] = None,
+) -> None:
+    """Create a staff account."""
+    from server.services.users import ROLES, add_user
+
+    if role not in ROLES:
+        raise fail(f"unknown role {role!r}; choose one of {', '.join(ROLES)}")
+    secret = password or typer.prompt("Password", hide_input=True, confirmation_prompt=True)
+    db = _database(_admin_settings())
+    try:
+        with db.transaction() as session:
+            add_user(session=session, name=name, role=role, password=secret)
+    finally:
+        db.dispose()
+    say(f"user {name!r} added with role {role}")
+
+
+def main() -> None:
+    app()

@@ -1,0 +1,44 @@
+"""Settings: TIERWISE_* variables, and unsafe defaults refused."""
+
+from __future__ import annotations
+
+import pytest
+from pydantic import ValidationError
+
+from server.config import DEFAULT_DATABASE_URL, DEFAULT_SECRET_KEY, Settings
+
+
+def test_settings_default_secret_refused_outside_demo(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("TIERWISE_SECRET_KEY", raising=False)
+    monkeypatch.delenv("TIERWISE_DEMO_MODE", raising=False)
+    with pytest.raises(ValidationError, match="built-in demo key"):
+        Settings()
+
+
+def test_settings_default_secret_allowed_in_demo_mode(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("TIERWISE_SECRET_KEY", raising=False)
+    assert Settings(demo_mode=True).secret_key == DEFAULT_SECRET_KEY
+
+
+def test_settings_read_from_environment(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", "sqlite:///elsewhere.db")
+    monkeypatch.setenv("TIERWISE_SECRET_KEY", "a-real-secret-of-some-length")
+    monkeypatch.setenv("TIERWISE_TIME_ZONE", "Europe/Berlin")
+    settings = Settings()
+    assert (settings.database_url, settings.time_zone) == ("sqlite:///elsewhere.db", "Europe/Berlin")
+
+
+def test_settings_default_database_is_sqlite_under_var(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("TIERWISE_DATABASE_URL", raising=False)
+    assert Settings(demo_mode=True).database_url == DEFAULT_DATABASE_URL
+    assert DEFAULT_DATABASE_URL == "sqlite:///var/tierwise.db"
+
+
+def test_settings_unknown_time_zone_is_named() -> None:
+    with pytest.raises(ValidationError, match="unknown time zone 'Mars/Olympus'"):
+        Settings(demo_mode=True, time_zone="Mars/Olympus")
+
+
+def test_settings_unsupported_database_is_named() -> None:
+    with pytest.raises(ValidationError, match="database_url must be sqlite"):
+        Settings(demo_mode=True, database_url="mysql://x@y/z")

@@ -1,0 +1,49 @@
+"""The ASGI application: ``create_app(settings)`` builds everything; nothing is built at import."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from pathlib import Path
+
+from fastapi import FastAPI
+from fastapi.staticfiles import StaticFiles
+
+from server.config import Settings
+from server.services.database import Database
+from web import health, public, staff
+from web.templating import make_templates
+
+STATIC = Path(__file__).with_name("static")
+
+
+def create_app(settings: Settings, *, database: Database | None = None) -> FastAPI:
+    """Build the app for ``settings``; a ``database`` may be handed in (tests share one)."""
+    db = database or Database.from_settings(settings)
+    owns_db = database is None
+
+    @asynccontextmanager
+    async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
+        yield
+        if owns_db:
+            db.dispose()
+
+    app = FastAPI(
+        title="tierwise",
+        summary="Regional alert tiers with explanations, for public health offices",
+        version="0.1.0",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.database = db
+    app.state.templates = make_templates(settings)
+    app.mount("/static", StaticFiles(directory=STATIC), name="static")
+    app.include_router(health.router)
+    app.include_router(staff.router, prefix="/staff")
+    app.include_router(public.router)
+    return app
+
+
+def app_from_environment() -> FastAPI:
+    """ASGI factory for ``uvicorn --factory`` and multi-worker serving: settings from TIERWISE_*."""
+    return create_app(Settings())

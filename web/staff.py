@@ -1,0 +1,18 @@
+"""Staff pages (the full interface, with login, is its own piece of work)."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse
+
+from server.services.overview import data_overview
+from web.deps import SessionDep, TemplatesDep
+
+router = APIRouter(tags=["staff"])
+
+
+@router.get("/", response_class=HTMLResponse)
+def home(request: Request, session: SessionDep, templates: TemplatesDep) -> HTMLResponse:
+    """Districts, areas and plants with the newest reference date of each measure."""
+    overview = data_overview(session=session)
+    return templates.TemplateResponse(request, "staff/home.html", {"overview": overview})
