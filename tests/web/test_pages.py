@@ -1,0 +1,93 @@
+"""The first pages: public list at /, staff home at /staff/, /healthz, OpenAPI at /docs."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from fastapi.testclient import TestClient
+
+from server.config import Settings
+from server.services.database import Database
+from server.services.observations import MeasureRecord, VintageWriter, define_measures
+from server.services.regions import RegionRecord, store_regions
+from web.app import create_app
+
+
+@pytest.fixture(scope="module")
+def client(tmp_path_factory: pytest.TempPathFactory) -> TestClient:
+    path: Path = tmp_path_factory.mktemp("web") / "web.db"
+    settings = Settings(database_url=f"sqlite:///{path}", secret_key="s" * 32)
+    db = Database.from_settings(settings)
+    db.upgrade()
+    with db.transaction() as session:
+        store_regions(
+            session=session, actor="test", source="test",
+            records=[
+                RegionRecord(code="K0", name="Kestrel County", level="county", parent=None,
+                             population=50000),
+                RegionRecord(code="K1", name="Fernhollow", level="district", parent="K0",
+                             population=30000),
+                RegionRecord(code="K2", name="Saltmarsh <Upper>", level="district", parent="K0",
+                             population=20000),
+            ],
+        )
+        define_measures(session=session, measures=[
+            MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum"),
+        ])
+    with db.transaction() as session:
+        VintageWriter(session=session, feed="t").append(
+            pd.DataFrame({"region": ["K1"], "measure": ["cases"], "ref_date": ["2026-02-03"],
+                          "value": [5.0]}),
+            received_at=datetime(2026, 2, 4, 5, tzinfo=UTC),
+        )
+    with TestClient(create_app(settings, database=db)) as c:
+        yield c
+    db.dispose()
+
+
+def test_public_index_lists_districts_with_cautions(client: TestClient) -> None:
+    page = client.get("/")
+    assert page.status_code == 200
+    assert "Fernhollow" in page.text
+    assert "responsible health authority" in page.text
+    assert "provisional" in page.text
+
+
+def test_public_index_escapes_names(client: TestClient) -> None:
+    page = client.get("/")
+    assert "Saltmarsh &lt;Upper&gt;" in page.text
+    assert "<Upper>" not in page.text
+
+
+def test_public_index_omits_non_district_levels(client: TestClient) -> None:
+    assert "Kestrel County</th>" not in client.get("/").text
+
+
+def test_staff_home_lists_latest_date_per_measure(client: TestClient) -> None:
+    page = client.get("/staff/")
+    assert page.status_code == 200
+    assert "Fernhollow" in page.text
+    assert "2026-02-03" in page.text
+
+
+def test_healthz_answers_ok(client: TestClient) -> None:
+    assert client.get("/healthz").json() == {"status": "ok"}
+
+
+def test_openapi_docs_served(client: TestClient) -> None:
+    assert client.get("/docs").status_code == 200
+    assert "/healthz" in client.get("/openapi.json").json()["paths"]
+
+
+def test_static_stylesheet_served_locally(client: TestClient) -> None:
+    response = client.get("/static/tierwise.css")
+    assert response.status_code == 200
+    assert "text/css" in response.headers["content-type"]
+
+
+def test_public_districts_json_has_no_staff_fields(client: TestClient) -> None:
+    body = client.get("/api/public/districts").json()
+    assert {tuple(sorted(d)) for d in body} == {("area", "code", "name")}
