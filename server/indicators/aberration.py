@@ -1,0 +1,405 @@
+"""Aberration detection on count series: EARS C1/C2/C3 (daily) and improved Farrington (weekly).
+
+EARS is vectorised across regions and days with sliding windows. The improved Farrington method
+fits one quasi-Poisson GLM per target week; the loop runs over weeks and each fit is batched
+across regions (the design matrix depends only on the week, so the IRLS solves stacked systems).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+from numpy.typing import ArrayLike, NDArray
+from scipy import stats
+
+from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
+
+EARS_METHODS = ("C1", "C2", "C3")
+# Hutwagner et al. (2003) thresholds [memory: original EARS thresholds]
+EARS_THRESHOLDS = {"C1": 3.0, "C2": 3.0, "C3": 2.0}
+_EARS_BASELINE = 7
+_EARS_LAG = {"C1": 1, "C2": 3, "C3": 3}
+
+
+@dataclass(frozen=True)
+class EarsResult:
+    """EARS output, arrays shaped (regions, days); NaN/False where the baseline is too short.
+
+    ``statistic`` is C1, C2 or C3; ``expected`` the baseline mean; ``upper`` the count above which
+    the day alarms; ``sd`` the (floored) sample standard deviation of the baseline.
+    """
+
+    method: str
+    statistic: FloatArray
+    expected: FloatArray
+    sd: FloatArray
+    upper: FloatArray
+    alarm: NDArray[np.bool_]
+    threshold: float
+    sd_floor: float
+
+
+def _baseline_stats(
+    y: FloatArray, lag: int, min_baseline: int
+) -> tuple[FloatArray, FloatArray]:
+    """Mean and sample sd (ddof = 1) of days t-lag-6 .. t-lag, NaN-aware and vectorised."""
+    regions, days = y.shape
+    pad = np.full((regions, lag + _EARS_BASELINE - 1), np.nan)
+    windows = sliding_window_view(np.concatenate([pad, y], axis=1), _EARS_BASELINE, axis=1)
+    windows = windows[:, :days, :]  # window i covers padded i..i+6 = days i-lag-6 .. i-lag
+    present = np.isfinite(windows)
+    n = present.sum(axis=2)
+    filled = np.where(present, windows, 0.0)
+    enough = n >= max(min_baseline, 2)
+    mean = np.divide(filled.sum(axis=2), n, out=np.full((regions, days), np.nan), where=enough)
+    dev2 = np.where(present, (filled - np.nan_to_num(mean)[..., None]) ** 2, 0.0).sum(axis=2)
+    var = np.divide(dev2, n - 1, out=np.full((regions, days), np.nan), where=enough)
+    return mean, np.sqrt(var)
+
+
+def ears(
+    counts: ArrayLike,
+    *,
+    method: str = "C1",
+    threshold: float | None = None,
+    sd_floor: float = 0.2,
+    min_baseline: int = 7,
+) -> EarsResult:
+    """EARS C1, C2 or C3 aberration statistics for daily counts.
+
+    Parameters
+    ----------
+    counts : array_like, shape (regions, days)
+        Daily counts, NaN for missing days (left out of baselines; no alarm on a missing day).
+    method : {"C1", "C2", "C3"}
+    threshold : float, optional
+        Alarm threshold on the statistic; defaults 3, 3 and 2 (Hutwagner et al. 2003) [memory].
+    sd_floor : float
+        Lower bound on the baseline sd, so a flat baseline (sd = 0) does not divide by zero
+        (common practice, no source: 0.2 by default).
+    min_baseline : int
+        Baseline days (of 7) that must be present.
+
+    Returns
+    -------
+    EarsResult
+
+    Notes
+    -----
+    With baseline mean ``m_t`` and sample sd ``s_t = max(sd(ddof=1), sd_floor)``:
+
+    - C1: baseline days ``t-7 .. t-1``; ``C1_t = (y_t - m_t) / s_t``.
+    - C2: baseline days ``t-9 .. t-3`` (two guard days); ``C2_t = (y_t - m_t) / s_t``.
+    - C3: ``C3_t = sum_{j=0..2} max(0, C2_{t-j} - 1)``.
+
+    Alarm when the statistic exceeds the threshold. ``upper`` is the count at which it would:
+    ``m + threshold s`` for C1 and C2; for C3, ``m + s (1 + max(0, threshold - P))`` where ``P``
+    is the C3 contribution of the two previous days (when ``P`` already exceeds the threshold the
+    day alarms whatever its count).
+
+    References
+    ----------
+    Hutwagner L, Thompson W, Seeman GM, Treadwell T (2003). The bioterrorism preparedness and
+    response Early Aberration Reporting System (EARS). J Urban Health 80(Suppl 1):i89-i96.
+    Fricker RD, Hegler BL, Dunfee DA (2008). Comparing syndromic surveillance detection methods:
+    EARS' versus a CUSUM-based methodology. Stat Med 27:3407-3429. [memory]
+    """
+    y = as_nonnegative_counts("counts", counts)
+    if method not in EARS_METHODS:
+        raise ValueError(f"method: expected one of {EARS_METHODS}, got {method!r}")
+    if not np.isfinite(sd_floor) or sd_floor <= 0:
+        raise ValueError(f"sd_floor: must be positive and finite, got {sd_floor!r}")
+    check_window("min_baseline", min_baseline, minimum=2)
+    if min_baseline > _EARS_BASELINE:
+        raise ValueError(
+            f"min_baseline: at most {_EARS_BASELINE} baseline days, got {min_baseline}"
+        )
+    thr = EARS_THRESHOLDS[method] if threshold is None else float(threshold)
+    if not np.isfinite(thr):
+        raise ValueError(f"threshold: must be finite, got {threshold!r}")
+    return _ears(y, method, thr, float(sd_floor), min_baseline)
+
+
+def _ears(y: FloatArray, method: str, thr: float, sd_floor: float, min_baseline: int) -> EarsResult:
+    mean, sd_raw = _baseline_stats(y, _EARS_LAG[method], min_baseline)
+    sd = np.where(np.isnan(sd_raw), np.nan, np.fmax(sd_raw, sd_floor))
+    with np.errstate(invalid="ignore"):
+        c = (y - mean) / sd
+    if method == "C3":
+        part = np.maximum(c - 1.0, 0.0)  # NaN stays NaN
+        pad = np.full((y.shape[0], 2), np.nan)
+        lagged = np.concatenate([pad, part], axis=1)
+        previous = lagged[:, 1:-1] + lagged[:, :-2]  # days t-1 and t-2
+        statistic = part + previous
+        with np.errstate(invalid="ignore"):
+            upper = mean + sd * (1.0 + np.maximum(thr - previous, 0.0))
+    else:
+        statistic = c
+        upper = mean + thr * sd
+    with np.errstate(invalid="ignore"):
+        alarm = np.isfinite(statistic) & (statistic > thr)
+    return EarsResult(
+        method=method, statistic=statistic, expected=mean, sd=sd, upper=upper, alarm=alarm,
+        threshold=thr, sd_floor=sd_floor,
+    )
+
+
+@dataclass(frozen=True)
+class FarringtonResult:
+    """Improved Farrington output, arrays shaped (regions, weeks).
+
+    Weeks with less than ``min_years`` of history are NaN (alarm False). ``exceedance`` is
+    ``(y - expected) / (upper - expected)``: above 1 means over the threshold. ``trend`` says
+    whether the linear trend was kept for that week's fit.
+    """
+
+    expected: FloatArray
+    upper: FloatArray
+    alarm: NDArray[np.bool_]
+    exceedance: FloatArray
+    dispersion: FloatArray
+    trend: NDArray[np.bool_]
+    quantile: float
+    years_back: int
+    window: int
+    n_periods: int
+
+
+@dataclass(frozen=True)
+class _GlmFit:
+    beta: FloatArray  # (regions, p)
+    mu: FloatArray  # (regions, n)
+    cov_unscaled: FloatArray  # (regions, p, p), inverse of X'WX
+    dispersion: FloatArray  # (regions,), floored at 1
+
+
+def _gram(x: FloatArray, ww: FloatArray) -> FloatArray:
+    """Stacked ``X' diag(ww_r) X`` for every region r."""
+    return (x.T[None, :, :] * ww[:, None, :]) @ x
+
+
+def _solve(a: FloatArray, b: FloatArray) -> FloatArray:
+    """Stacked solve of ``a_r beta_r = b_r``; the pseudo-inverse when a system is singular."""
+    try:
+        return np.asarray(np.linalg.solve(a, b[..., None])[..., 0], dtype=np.float64)
+    except np.linalg.LinAlgError:
+        return np.einsum("rpq,rq->rp", np.linalg.pinv(a, hermitian=True), b)
+
+
+def _irls(x: FloatArray, y: FloatArray, w: FloatArray, iterations: int = 60) -> _GlmFit:
+    """Poisson log-link IRLS batched over regions: X (n, p) shared, y and prior weights (R, n).
+
+    A weight of 0 removes an observation (missing weeks). Dispersion is Pearson
+    ``max(1, sum w (y - mu)^2 / mu / (n - p))`` with n the observations of positive weight.
+    """
+    present = w > 0
+    mean_y = np.sum(w * y, axis=1, keepdims=True) / np.maximum(w.sum(axis=1, keepdims=True), 1e-12)
+    mu = np.where(present, (y + mean_y) / 2.0, 1.0) + 1e-3
+    eta = np.log(mu)
+    beta = np.zeros((y.shape[0], x.shape[1]))
+    for _ in range(iterations):
+        z = eta + (y - mu) / mu
+        ww = w * mu
+        beta_new = _solve(_gram(x, ww), (ww * z) @ x)
+        eta = np.clip(beta_new @ x.T, -30.0, 30.0)
+        mu = np.exp(eta)
+        done = np.max(np.abs(beta_new - beta)) < 1e-10
+        beta = beta_new
+        if done:
+            break
+    cov = np.asarray(np.linalg.pinv(_gram(x, w * mu), hermitian=True), dtype=np.float64)
+    n = present.sum(axis=1)
+    pearson = np.sum(np.where(present, w * (y - mu) ** 2 / mu, 0.0), axis=1)
+    dof = np.maximum(n - x.shape[1], 1)
+    return _GlmFit(beta=beta, mu=mu, cov_unscaled=cov, dispersion=np.maximum(pearson / dof, 1.0))
+
+
+def _reweighted(x: FloatArray, y: FloatArray, present: NDArray[np.bool_], cut: float) -> _GlmFit:
+    """Fit, down-weight observations with standardised Anscombe residual above ``cut``, refit."""
+    w0 = present.astype(np.float64)
+    first = _irls(x, y, w0)
+    mu = first.mu
+    hat = mu * np.sum((x[None, :, :] @ first.cov_unscaled) * x[None, :, :], axis=2)
+    scale = np.sqrt(first.dispersion[:, None] * np.clip(1.0 - hat, 1e-8, None))
+    anscombe = 1.5 * (np.cbrt(y) ** 2 - np.cbrt(mu) ** 2) / (mu ** (1.0 / 6.0) * scale)
+    big = present & (anscombe > cut)
+    omega = np.where(big, 1.0 / np.where(big, anscombe, 1.0) ** 2, 1.0) * w0
+    gamma = present.sum(axis=1, keepdims=True) / np.maximum(omega.sum(axis=1, keepdims=True), 1e-12)
+    return _irls(x, y, omega * gamma)
+
+
+def _design(t0: int, years: int, window: int, n_periods: int, excluded: int, period: int) -> tuple:
+    """Baseline weeks and design (intercept, trend, 10-level season) for target week ``t0``."""
+    weeks = np.arange(t0 - period * years - window, t0 - excluded)
+    offset = (weeks - t0) % period
+    in_window = (offset <= window) | (offset >= period - window)
+    outside = period - 2 * window - 1
+    level = np.where(in_window, 0, 1 + ((offset - window - 1) * (n_periods - 1)) // outside)
+    dummies = (level[:, None] == np.arange(1, n_periods)[None, :]).astype(np.float64)
+    x = np.column_stack([np.ones(len(weeks)), (weeks - t0).astype(np.float64), dummies])
+    return weeks, x
+
+
+def farrington_flexible(
+    counts: ArrayLike,
+    *,
+    years_back: int = 5,
+    window: int = 3,
+    n_periods: int = 10,
+    weeks_per_year: int = 52,
+    past_weeks_excluded: int = 26,
+    quantile: float = 0.995,
+    reweight_threshold: float = 2.58,
+    trend_alpha: float = 0.05,
+    min_years: int = 2,
+    min_cases_4_weeks: int = 5,
+) -> FarringtonResult:
+    """Improved Farrington outbreak detection (Noufaily et al. 2013) on weekly counts.
+
+    Parameters
+    ----------
+    counts : array_like, shape (regions, weeks)
+        Weekly counts, NaN for missing weeks (left out of the baseline, never alarmed).
+    years_back : int
+        Years of history used (b); fewer are used while the series is shorter, down to
+        ``min_years``.
+    window : int
+        Half-width w of the reference window around the same week of past years.
+    n_periods : int
+        Levels of the seasonal factor: the reference windows form one level, the rest of each
+        year is cut into ``n_periods - 1`` equal periods.
+    weeks_per_year : int
+        Season length; 53-week years are not special-cased.
+    past_weeks_excluded : int
+        The most recent weeks left out of the baseline (26).
+    quantile : float
+        Level of the negative-binomial threshold (0.995 [memory: Noufaily's default]).
+    reweight_threshold : float
+        Standardised Anscombe residual above which a baseline week is down-weighted (2.58).
+    trend_alpha : float
+        Significance level for keeping the trend.
+    min_years : int
+        Minimum history in years before a week is assessed.
+    min_cases_4_weeks : int
+        No alarm unless the current and previous 3 weeks hold at least this many cases.
+
+    Returns
+    -------
+    FarringtonResult
+
+    Notes
+    -----
+    For target week t0 the baseline holds weeks ``t0 - 52 b - w .. t0 - 27``. The model is
+    quasi-Poisson, ``log mu_s = alpha + beta (s - t0) + gamma_{f(s)}``, with ``f`` the 10-level
+    factor (level 0 = weeks within w of t0 modulo the year). After a first fit the standardised
+    Anscombe residuals ``s_i = 3/2 (y^(2/3) - mu^(2/3)) / (mu^(1/6) sqrt(phi (1 - h_ii)))`` give
+    weights ``omega_i = gamma s_i^-2`` when ``s_i > 2.58`` and ``gamma`` otherwise, ``gamma``
+    making them sum to n; the model is refitted with them and
+    ``phi = max(1, sum omega (y - mu)^2 / mu / (n - p))``. The trend is fitted only with at least
+    3 years of history and kept when its Wald test is significant at ``trend_alpha`` and the
+    prediction does not exceed the largest baseline count (Farrington et al. 1996). The expected
+    count is ``mu0 = exp(alpha + gamma_0)``; the threshold is the ``quantile`` of a negative
+    binomial with mean mu0 and variance ``phi mu0`` (Poisson when phi = 1). Alarm when
+    ``y_t0 > upper`` and the last four weeks hold at least 5 cases. Per week, the GLM is fitted
+    for all regions at once (batched IRLS); the loop runs over weeks.
+
+    References
+    ----------
+    Farrington CP, Andrews NJ, Beale AD, Catchpole MA (1996). A statistical algorithm for the
+    early detection of outbreaks of infectious disease. J R Stat Soc A 159:547-563.
+    Noufaily A, Enki DG, Farrington P, Garthwaite P, Andrews N, Charlett A (2013). An improved
+    algorithm for outbreak detection in multiple surveillance systems. Stat Med 32:1206-1222.
+    """
+    y = as_nonnegative_counts("counts", counts)
+    for name, value, minimum in (
+        ("years_back", years_back, 1), ("window", window, 0), ("n_periods", n_periods, 2),
+        ("weeks_per_year", weeks_per_year, 4), ("past_weeks_excluded", past_weeks_excluded, 0),
+        ("min_years", min_years, 1), ("min_cases_4_weeks", min_cases_4_weeks, 0),
+    ):
+        check_window(name, value, minimum=minimum)
+    quantile = check_level("quantile", quantile)
+    check_level("trend_alpha", trend_alpha)
+    if 2 * window + n_periods > weeks_per_year:
+        raise ValueError(
+            f"n_periods: {n_periods} periods do not fit a year of {weeks_per_year} weeks "
+            f"with window {window}"
+        )
+    if past_weeks_excluded >= weeks_per_year - window:
+        raise ValueError(
+            f"past_weeks_excluded: {past_weeks_excluded} would exclude last year's window"
+        )
+    if min_years > years_back:
+        raise ValueError(f"min_years: {min_years} exceeds years_back {years_back}")
+    return _farrington(
+        y, years_back, window, n_periods, weeks_per_year, past_weeks_excluded, quantile,
+        float(reweight_threshold), float(trend_alpha), min_years, min_cases_4_weeks,
+    )
+
+
+def _nb_upper(mu0: FloatArray, phi: FloatArray, quantile: float) -> FloatArray:
+    upper = np.zeros_like(mu0)
+    pois = (phi <= 1.0 + 1e-12) & (mu0 > 1e-8)
+    nb = (phi > 1.0 + 1e-12) & (mu0 > 1e-8)
+    upper[pois] = stats.poisson.ppf(quantile, mu0[pois])
+    upper[nb] = stats.nbinom.ppf(quantile, mu0[nb] / (phi[nb] - 1.0), 1.0 / phi[nb])
+    return upper
+
+
+def _farrington(
+    y: FloatArray,
+    years_back: int,
+    window: int,
+    n_periods: int,
+    period: int,
+    excluded: int,
+    quantile: float,
+    cut: float,
+    trend_alpha: float,
+    min_years: int,
+    min_cases: int,
+) -> FarringtonResult:
+    regions, weeks = y.shape
+    nan = np.full((regions, weeks), np.nan)
+    expected, upper, dispersion = nan.copy(), nan.copy(), nan.copy()
+    trend = np.zeros((regions, weeks), dtype=bool)
+    z_crit = stats.norm.ppf(1.0 - trend_alpha / 2.0)
+    for t0 in range(period * min_years + window, weeks):  # loop over weeks, batched over regions
+        years = min(years_back, (t0 - window) // period)
+        idx, x = _design(t0, years, window, n_periods, excluded, period)
+        yb = y[:, idx]
+        present = np.isfinite(yb)
+        yb = np.where(present, yb, 0.0)
+        usable = present.sum(axis=1) > x.shape[1]
+        flat = _reweighted(x[:, [0, *range(2, x.shape[1])]], yb, present, cut)
+        mu0 = np.exp(flat.beta[:, 0])
+        phi = flat.dispersion
+        if years >= 3:
+            full = _reweighted(x, yb, present, cut)
+            se = np.sqrt(full.dispersion * full.cov_unscaled[:, 1, 1])
+            mu0_trend = np.exp(full.beta[:, 0])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                significant = np.abs(full.beta[:, 1]) / se > z_crit
+            keep = significant & (mu0_trend <= np.max(np.where(present, yb, -1.0), axis=1))
+            mu0 = np.where(keep, mu0_trend, mu0)
+            phi = np.where(keep, full.dispersion, phi)
+            trend[:, t0] = keep & usable
+        zero = np.where(present, yb, 0.0).sum(axis=1) == 0
+        mu0 = np.where(zero, 0.0, mu0)
+        expected[:, t0] = np.where(usable, mu0, np.nan)
+        dispersion[:, t0] = np.where(usable, phi, np.nan)
+        upper[:, t0] = np.where(usable, _nb_upper(mu0, phi, quantile), np.nan)
+
+    recent = sliding_window_view(
+        np.concatenate([np.zeros((regions, 3)), np.nan_to_num(y)], axis=1), 4, axis=1
+    ).sum(axis=2)
+    with np.errstate(invalid="ignore"):
+        alarm = np.isfinite(y) & np.isfinite(upper) & (y > upper) & (recent >= min_cases)
+        spread = upper - expected
+        exceedance = np.divide(y - expected, spread, out=nan.copy(), where=spread > 0)
+    return FarringtonResult(
+        expected=expected, upper=upper, alarm=alarm, exceedance=exceedance,
+        dispersion=dispersion, trend=trend, quantile=quantile, years_back=years_back,
+        window=window, n_periods=n_periods,
+    )

@@ -1,0 +1,120 @@
+"""Reference checks for EARS and the improved Farrington method against their definitions."""
+
+from __future__ import annotations
+
+import statistics
+
+import numpy as np
+import statsmodels.api as sm
+from numpy.testing import assert_allclose
+from scipy import stats
+
+from server.indicators.aberration import ears, farrington_flexible
+
+# Hand-computed series. Days 0..6 = 4, 6, 5, 7, 3, 5, 5 (C1 baseline of day 7):
+#   mean = 35 / 7 = 5; squared deviations 1+1+0+4+4+0+0 = 10; sample sd = sqrt(10 / 6) = 1.29099.
+# EARS uses the sample sd (ddof = 1) (Hutwagner et al. 2003; Fricker et al. 2008) [memory].
+SERIES = [4.0, 6.0, 5.0, 7.0, 3.0, 5.0, 5.0, 12.0, 6.0, 5.0, 14.0]
+
+
+def test_ears_c1_hand_computed_day_seven() -> None:
+    result = ears(SERIES, method="C1")
+    # C1_7 = (12 - 5) / sqrt(10/6) = 5.42218 (hand computation above)
+    assert_allclose(result.expected[0, 7], 5.0)
+    assert_allclose(result.sd[0, 7], np.sqrt(10.0 / 6.0))
+    assert_allclose(result.statistic[0, 7], 7.0 / np.sqrt(10.0 / 6.0))
+    assert bool(result.alarm[0, 7])
+
+
+def test_ears_c1_sd_matches_statistics_stdev() -> None:
+    result = ears(SERIES, method="C1")
+    # Day 10: baseline days 3..9 = 7, 3, 5, 5, 12, 6, 5; Python's statistics.stdev is the sample sd.
+    baseline = SERIES[3:10]
+    assert_allclose(result.expected[0, 10], statistics.mean(baseline))
+    assert_allclose(result.sd[0, 10], statistics.stdev(baseline))
+
+
+def test_ears_c2_uses_two_day_guard_band() -> None:
+    result = ears(SERIES, method="C2")
+    # Day 10: C2 baseline t-9..t-3 = days 1..7 = 6, 5, 7, 3, 5, 5, 12: mean 43/7, numpy sample sd
+    baseline = np.array(SERIES[1:8])
+    expected = (14.0 - baseline.mean()) / baseline.std(ddof=1)
+    assert_allclose(result.statistic[0, 10], expected)
+
+
+def test_ears_c3_sums_three_days_of_c2_excess() -> None:
+    series = [5.0, 5.0, *SERIES]  # two more days so that C2 exists on days 9, 10 and 11
+    c2 = ears(series, method="C2").statistic[0]
+    c3 = ears(series, method="C3").statistic[0]
+    # C3_t = sum_{j=0..2} max(0, C2_{t-j} - 1) (Hutwagner et al. 2003)
+    manual = sum(max(0.0, c2[12 - j] - 1.0) for j in range(3))
+    assert manual > 0.0
+    assert_allclose(c3[12], manual)
+
+
+def _farrington_by_statsmodels(y: np.ndarray, t0: int, years: int) -> tuple[float, float]:
+    """Noufaily et al. (2013) expected count and dispersion, built with statsmodels GLM."""
+    weeks = np.arange(t0 - 52 * years - 3, t0 - 26)
+    offset = (weeks - t0) % 52
+    level = np.where((offset <= 3) | (offset >= 49), 0, 1 + (offset - 4) // 5)  # 45 weeks / 9
+    x = np.column_stack(
+        [np.ones(weeks.size), weeks - t0] + [(level == k).astype(float) for k in range(1, 10)]
+    )
+    yb = y[weeks]
+    first = sm.GLM(yb, x, family=sm.families.Poisson()).fit(scale="X2")
+    mu = first.mu
+    phi = max(1.0, first.pearson_chi2 / first.df_resid)
+    hat = first.get_influence().hat_matrix_diag
+    s = 1.5 * (yb ** (2 / 3) - mu ** (2 / 3)) / (mu ** (1 / 6) * np.sqrt(phi * (1 - hat)))
+    omega = np.where(s > 2.58, s**-2.0, 1.0)  # Noufaily et al. (2013): threshold 2.58
+    omega *= yb.size / omega.sum()
+    second = sm.GLM(yb, x, family=sm.families.Poisson(), var_weights=omega).fit(scale="X2")
+    phi2 = max(1.0, float(np.sum(omega * (yb - second.mu) ** 2 / second.mu)) / second.df_resid)
+    return float(np.exp(second.params[0])), phi2
+
+
+def test_farrington_expected_matches_statsmodels_glm() -> None:
+    rng = np.random.default_rng(20130401)
+    weeks = np.arange(52 * 4 + 10)
+    mu = 40.0 * np.exp(-0.004 * weeks + 0.4 * np.sin(2 * np.pi * weeks / 52))  # falling trend
+    y = rng.poisson(mu).astype(float)
+    y[60] += 60.0  # a past outbreak, down-weighted by the reweighting step
+    t0 = weeks.size - 1
+    result = farrington_flexible(y[None, :], years_back=3, min_years=3)
+    assert bool(result.trend[0, t0])
+    mu0, phi = _farrington_by_statsmodels(y, t0, years=3)
+    assert_allclose(result.expected[0, t0], mu0, rtol=1e-6)
+    assert_allclose(result.dispersion[0, t0], phi, rtol=1e-6)
+
+
+def test_farrington_upper_is_negative_binomial_quantile() -> None:
+    rng = np.random.default_rng(7)
+    y = rng.negative_binomial(5, 5 / (5 + 20.0), size=(1, 52 * 3 + 5)).astype(float)
+    result = farrington_flexible(y, years_back=2)
+    t0 = y.shape[1] - 1
+    mu0, phi = result.expected[0, t0], result.dispersion[0, t0]
+    assert phi > 1.0
+    # Noufaily et al. (2013): NB with mean mu0 and variance phi mu0, 99.5 % quantile [memory]
+    assert_allclose(result.upper[0, t0], stats.nbinom.ppf(0.995, mu0 / (phi - 1), 1 / phi))
+
+
+def test_farrington_false_alarm_rate_near_nominal_on_stable_poisson() -> None:
+    rng = np.random.default_rng(1996)
+    weeks = np.arange(52 * 6)
+    mu = 12.0 * np.exp(0.5 * np.sin(2 * np.pi * weeks / 52))
+    y = rng.poisson(mu, size=(25, weeks.size)).astype(float)
+    result = farrington_flexible(y)
+    rate = result.alarm[:, 52 * 5 :].mean()
+    # nominal one-sided level 0.005 (Noufaily et al. 2013); allow estimation noise up to 0.02
+    assert rate < 0.02
+
+
+def test_farrington_flags_injected_outbreak() -> None:
+    rng = np.random.default_rng(1206)
+    weeks = np.arange(52 * 6)
+    mu = 12.0 * np.exp(0.5 * np.sin(2 * np.pi * weeks / 52))
+    y = rng.poisson(mu, size=(10, weeks.size)).astype(float)
+    y[:, -8] += 4.0 * np.sqrt(mu[-8]) * 3  # about 12 standard deviations above the mean
+    result = farrington_flexible(y)
+    assert result.alarm[:, -8].all()
+    assert (result.exceedance[:, -8] > 1.0).all()
