@@ -1,0 +1,509 @@
+"""Load a ruleset from YAML text, keeping line and column of every node.
+
+``parse_ruleset(text, source=...)`` composes the YAML with the safe loader, reads each section with
+a :class:`~rules.nodes.NodeReader` and builds the frozen objects of :mod:`rules.model` and
+:class:`~rules.ruleset.Ruleset`. All problems found are raised together as one
+:class:`~rules.errors.RulesetError` (``exc.errors`` lists them). The schema is documented in
+``docs/rules.md``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path as FsPath
+from typing import Any
+
+import yaml
+
+from rules.errors import RulesetError
+from rules.model import (
+    COMPARISONS,
+    Combination,
+    Condition,
+    Criterion,
+    CriterionPatch,
+    Gate,
+    IndicatorSpec,
+    Override,
+    PrepareSignal,
+    Thresholds,
+    Tier,
+    Timing,
+)
+from rules.nodes import MISSING, NodeReader, Path
+from rules.ruleset import Ruleset
+
+__all__ = ["load_ruleset", "parse_ruleset"]
+
+_TOP_REQUIRED = ("name", "version", "tiers", "indicators", "criteria")
+_TOP_OPTIONAL = (
+    "description",
+    "gates",
+    "combination",
+    "conditions",
+    "timing",
+    "freshness",
+    "overrides",
+    "prepare",
+)
+_THRESHOLD_KEYS = ("enter", "exit", "strict", "enter_strict", "exit_strict")
+
+
+def load_ruleset(path: str | FsPath) -> Ruleset:
+    """Read and parse the ruleset file at ``path`` (UTF-8); errors name the file."""
+    p = FsPath(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RulesetError(str(path), 0, 0, "", f"cannot read the file: {exc}") from exc
+    return parse_ruleset(text, source=str(path))
+
+
+def parse_ruleset(text: str, *, source: str = "<string>") -> Ruleset:
+    """Parse ruleset YAML ``text``; ``source`` names it in error messages.
+
+    Raises
+    ------
+    RulesetError
+        Listing every problem found, each with file, line, column and key path.
+    """
+    try:
+        root = yaml.compose(text, Loader=yaml.SafeLoader)
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        line, col = (mark.line + 1, mark.column + 1) if mark is not None else (0, 0)
+        raise RulesetError(source, line, col, "", f"invalid YAML: {exc.problem}") from None
+    except (yaml.YAMLError, ValueError) as exc:
+        raise RulesetError(source, 0, 0, "", f"invalid YAML: {exc}") from None
+    if root is None:
+        raise RulesetError(source, 1, 1, "", "the file is empty")
+    reader = NodeReader(source)
+    result = _read_root(reader, root, text, source)
+    if reader.errors or result is None:
+        first, *rest = reader.errors or [RulesetError(source, 1, 1, "", "invalid ruleset")]
+        raise RulesetError(first.file, first.line, first.column, first.path, first.message, rest)
+    return result
+
+
+def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Ruleset | None:
+    top = r.mapping(root, (), required=_TOP_REQUIRED, optional=_TOP_OPTIONAL)
+    if top is None:
+        return None
+    name = r.text(top["name"], ("name",)) if "name" in top else None
+    version = r.text(top["version"], ("version",)) if "version" in top else None
+    desc = r.text(top["description"], ("description",)) if "description" in top else ""
+    tiers = _read_tiers(r, top["tiers"]) if "tiers" in top else None
+    default_age = None
+    if "freshness" in top:
+        fresh = r.mapping(top["freshness"], ("freshness",), optional=("max_age_days",))
+        if fresh and "max_age_days" in fresh:
+            default_age = _num(r, fresh["max_age_days"], ("freshness", "max_age_days"))
+    indicators = (
+        _read_indicators(r, top["indicators"], default_age) if "indicators" in top else None
+    )
+    criteria = _read_list(r, top, "criteria", _read_criterion)
+    directions: dict[str, str] | None = (
+        {c.id: c.direction for c in criteria} if criteria is not None else None
+    )
+    gates = _read_list(r, top, "gates", _read_gate)
+    conditions = _read_list(
+        r, top, "conditions", lambda r_, n, p: _read_condition(r_, n, p, directions)
+    )
+    overrides = _read_list(
+        r, top, "overrides", lambda r_, n, p: _read_override(r_, n, p, directions)
+    )
+    prepare = _read_list(r, top, "prepare", _read_signal)
+    combination = (
+        _read_combination(r, top["combination"]) if "combination" in top else Combination()
+    )
+    timing = _read_timing(r, top["timing"]) if "timing" in top else Timing()
+    parts = (
+        name,
+        version,
+        desc,
+        tiers,
+        indicators,
+        criteria,
+        gates,
+        conditions,
+        overrides,
+        prepare,
+        combination,
+        timing,
+    )
+    if r.errors or any(p is None for p in parts):
+        return None
+    return r.build(
+        root,
+        (),
+        Ruleset,
+        name=name,
+        version=version,
+        description=desc,
+        tiers=tiers,
+        indicators=indicators,
+        criteria=criteria,
+        gates=gates,
+        combination=combination,
+        conditions=conditions,
+        timing=timing,
+        overrides=overrides,
+        prepare=prepare,
+        text=text,
+        source=source,
+    )
+
+
+def _num(r: NodeReader, node: yaml.Node, path: Path) -> float | None:
+    value = r.number(node, path)
+    return None if value is MISSING else value
+
+
+def _read_list(
+    r: NodeReader, top: dict[str, yaml.Node], key: str, item: Any
+) -> tuple[Any, ...] | None:
+    if key not in top:
+        return ()
+    items = r.sequence(top[key], (key,))
+    if items is None:
+        return None
+    out = tuple(item(r, node, (key, i)) for i, node in enumerate(items))
+    return None if any(o is None for o in out) else out
+
+
+def _read_tiers(r: NodeReader, node: yaml.Node) -> tuple[Tier, ...] | None:
+    items = r.sequence(node, ("tiers",))
+    if items is None:
+        return None
+    tiers: list[Tier | None] = []
+    for i, item in enumerate(items):
+        path: Path = ("tiers", i)
+        m = r.mapping(item, path, required=("name", "staff", "public"), optional=("level",))
+        if m is None or len(m) < 3:
+            tiers.append(None)
+            continue
+        level = r.integer(m["level"], path + ("level",)) if "level" in m else i
+        fields = {k: r.text(m[k], path + (k,)) for k in ("name", "staff", "public")}
+        if level is None or any(v is None for v in fields.values()):
+            tiers.append(None)
+            continue
+        tiers.append(r.build(item, path, Tier, level=level, **fields))
+    return None if any(t is None for t in tiers) else tuple(t for t in tiers if t is not None)
+
+
+def _read_indicators(
+    r: NodeReader, node: yaml.Node, default_age: float | None
+) -> tuple[IndicatorSpec, ...] | None:
+    m = r.mapping(node, ("indicators",), free_keys=True)
+    if m is None:
+        return None
+    out: list[IndicatorSpec | None] = []
+    for name, item in m.items():
+        path: Path = ("indicators", name)
+        spec = r.mapping(
+            item,
+            path,
+            required=("label",),
+            optional=("unit", "decimals", "max_age_days", "params"),
+        )
+        if spec is None or "label" not in spec:
+            out.append(None)
+            continue
+        kwargs: dict[str, Any] = {"name": name, "label": r.text(spec["label"], path + ("label",))}
+        if "unit" in spec:
+            kwargs["unit"] = r.text(spec["unit"], path + ("unit",))
+        if "decimals" in spec:
+            kwargs["decimals"] = r.integer(spec["decimals"], path + ("decimals",), minimum=0)
+        age_node = spec.get("max_age_days")
+        kwargs["max_age_days"] = (
+            _num(r, age_node, path + ("max_age_days",)) if age_node is not None else default_age
+        )
+        if "params" in spec:
+            pm = r.mapping(spec["params"], path + ("params",), free_keys=True)
+            kwargs["params"] = (
+                {k: r.scalar_value(v, path + ("params", k)) for k, v in pm.items()} if pm else None
+            )
+            if kwargs["params"] is not None and any(v is None for v in kwargs["params"].values()):
+                kwargs["params"] = None
+        if any(v is None for k, v in kwargs.items() if k != "max_age_days") or (
+            age_node is not None and kwargs["max_age_days"] is None
+        ):
+            out.append(None)
+            continue
+        out.append(r.build(item, path, IndicatorSpec, **kwargs))
+    return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
+
+
+def _flags(r: NodeReader, node: yaml.Node, path: Path, n: int) -> tuple[bool, ...] | None:
+    if isinstance(node, yaml.SequenceNode):
+        vals = [r.boolean(x, path + (i,)) for i, x in enumerate(node.value)]
+        return None if any(v is None for v in vals) else tuple(bool(v) for v in vals)
+    flag = r.boolean(node, path)
+    return None if flag is None else (flag,) * n
+
+
+def _read_thresholds(
+    r: NodeReader, m: dict[str, yaml.Node], node: yaml.Node, path: Path, direction: str
+) -> Thresholds | None:
+    items = r.sequence(m["enter"], path + ("enter",))
+    if items is None:
+        return None
+    enter = tuple(r.number(x, path + ("enter", i), nullable=True) for i, x in enumerate(items))
+    exit_: tuple[Any, ...] = enter
+    if "exit" in m:
+        xs = r.sequence(m["exit"], path + ("exit",))
+        if xs is None:
+            return None
+        exit_ = tuple(r.number(x, path + ("exit", i), nullable=True) for i, x in enumerate(xs))
+    n = len(enter)
+    strict = (False,) * n
+    if "strict" in m:
+        strict = _flags(r, m["strict"], path + ("strict",), n) or strict
+    e_strict = (
+        _flags(r, m["enter_strict"], path + ("enter_strict",), n) if "enter_strict" in m else strict
+    )
+    x_strict = (
+        _flags(r, m["exit_strict"], path + ("exit_strict",), n) if "exit_strict" in m else e_strict
+    )
+    if MISSING in enter or MISSING in exit_ or e_strict is None or x_strict is None:
+        return None
+    return r.build(
+        node,
+        path,
+        Thresholds,
+        direction=direction,
+        enter=enter,
+        exit=exit_,
+        enter_strict=e_strict,
+        exit_strict=x_strict,
+    )
+
+
+def _read_criterion(r: NodeReader, node: yaml.Node, path: Path) -> Criterion | None:
+    m = r.mapping(
+        node,
+        path,
+        required=("id", "indicator", "enter"),
+        optional=("direction", "statistic", "min_count", "use_nowcast", "label") + _THRESHOLD_KEYS,
+    )
+    if m is None or not all(k in m for k in ("id", "indicator", "enter")):
+        return None
+    direction = (
+        r.choice(m["direction"], path + ("direction",), ("rising", "falling"))
+        if ("direction" in m)
+        else "rising"
+    )
+    if direction is None:
+        return None
+    th = _read_thresholds(r, m, node, path, direction)
+    kwargs: dict[str, Any] = {
+        "id": r.text(m["id"], path + ("id",)),
+        "indicator": r.text(m["indicator"], path + ("indicator",)),
+        "thresholds": th,
+    }
+    if "statistic" in m:
+        kwargs["statistic"] = r.choice(
+            m["statistic"], path + ("statistic",), ("estimate", "bounds")
+        )
+    if "min_count" in m:
+        kwargs["min_count"] = _num(r, m["min_count"], path + ("min_count",))
+    if "use_nowcast" in m:
+        kwargs["use_nowcast"] = r.boolean(m["use_nowcast"], path + ("use_nowcast",))
+    if "label" in m:
+        kwargs["label"] = r.text(m["label"], path + ("label",))
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, Criterion, **kwargs)
+
+
+def _read_comparison(
+    r: NodeReader, m: dict[str, yaml.Node], node: yaml.Node, path: Path
+) -> tuple[str, float] | None:
+    ops = [k for k in COMPARISONS if k in m]
+    if len(ops) != 1:
+        r.error(node, path, f"needs exactly one of {', '.join(COMPARISONS)}, got {len(ops)}")
+        return None
+    value = _num(r, m[ops[0]], path + (ops[0],))
+    return None if value is None else (ops[0], value)
+
+
+def _read_gate(r: NodeReader, node: yaml.Node, path: Path) -> Gate | None:
+    m = r.mapping(
+        node, path, required=("id",), optional=("indicator", "known", "message") + COMPARISONS
+    )
+    if m is None or "id" not in m:
+        return None
+    kwargs: dict[str, Any] = {"id": r.text(m["id"], path + ("id",))}
+    if "indicator" in m:
+        kwargs["indicator"] = r.text(m["indicator"], path + ("indicator",))
+        comp = _read_comparison(r, m, node, path)
+        if comp is None:
+            return None
+        kwargs["op"], kwargs["value"] = comp
+    if "known" in m:
+        kwargs["known"] = r.text_list(m["known"], path + ("known",))
+    if "message" in m:
+        kwargs["message"] = r.text(m["message"], path + ("message",))
+    if any(v is None for k, v in kwargs.items()):
+        return None
+    return r.build(node, path, Gate, **kwargs)
+
+
+def _read_patch(
+    r: NodeReader,
+    node: yaml.Node,
+    path: Path,
+    cid: str | None,
+    directions: dict[str, str] | None,
+) -> CriterionPatch | None:
+    keys = ("min_count",) + _THRESHOLD_KEYS
+    m = r.mapping(
+        node,
+        path,
+        optional=keys + (() if cid else ("criterion",)),
+        required=() if cid else ("criterion",),
+    )
+    if m is None:
+        return None
+    if cid is None:
+        cid = r.text(m["criterion"], path + ("criterion",)) if "criterion" in m else None
+        if cid is None:
+            return None
+    if directions is None:  # the criteria had errors of their own; do not pile up more
+        return None
+    if cid not in directions:
+        r.error(node, path, f"{cid!r} is not a criterion")
+        return None
+    kwargs: dict[str, Any] = {"criterion": cid}
+    if "enter" in m:
+        kwargs["thresholds"] = _read_thresholds(r, m, node, path, directions[cid])
+    elif any(k in m for k in _THRESHOLD_KEYS):
+        r.error(node, path, "thresholds need 'enter'")
+        return None
+    if "min_count" in m:
+        kwargs["min_count"] = _num(r, m["min_count"], path + ("min_count",))
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, CriterionPatch, **kwargs)
+
+
+def _read_condition(
+    r: NodeReader, node: yaml.Node, path: Path, directions: dict[str, str] | None
+) -> Condition | None:
+    m = r.mapping(node, path, required=("when", "then"))
+    if m is None or len(m) < 2:
+        return None
+    w = r.mapping(m["when"], path + ("when",), required=("criterion", "level_at_least"))
+    if w is None or len(w) < 2:
+        return None
+    source = r.text(w["criterion"], path + ("when", "criterion"))
+    level = r.integer(w["level_at_least"], path + ("when", "level_at_least"), minimum=1)
+    patch = _read_patch(r, m["then"], path + ("then",), None, directions)
+    if source is None or level is None or patch is None:
+        return None
+    return r.build(node, path, Condition, source=source, level_at_least=level, patch=patch)
+
+
+def _read_override(
+    r: NodeReader, node: yaml.Node, path: Path, directions: dict[str, str] | None
+) -> Override | None:
+    m = r.mapping(node, path, required=("id", "match", "criteria"))
+    if m is None or len(m) < 3:
+        return None
+    match = r.mapping(m["match"], path + ("match",), optional=("levels", "regions"))
+    crits = r.mapping(m["criteria"], path + ("criteria",), free_keys=True)
+    if match is None or crits is None:
+        return None
+    levels = r.text_list(match["levels"], path + ("match", "levels")) if "levels" in match else ()
+    regions = (
+        r.text_list(match["regions"], path + ("match", "regions")) if "regions" in match else ()
+    )
+    patches = tuple(
+        _read_patch(r, v, path + ("criteria", k), k, directions) for k, v in crits.items()
+    )
+    oid = r.text(m["id"], path + ("id",))
+    if oid is None or levels is None or regions is None or any(p is None for p in patches):
+        return None
+    return r.build(node, path, Override, id=oid, levels=levels, regions=regions, patches=patches)
+
+
+def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | None:
+    m = r.mapping(
+        node,
+        path,
+        required=("id", "indicator"),
+        optional=("statistic", "for", "count_by", "clear_after_days", "below_tier", "message")
+        + COMPARISONS,
+    )
+    if m is None or "id" not in m or "indicator" not in m:
+        return None
+    comp = _read_comparison(r, m, node, path)
+    kwargs: dict[str, Any] = {
+        "id": r.text(m["id"], path + ("id",)),
+        "indicator": r.text(m["indicator"], path + ("indicator",)),
+    }
+    if "statistic" in m:
+        kwargs["statistic"] = r.choice(
+            m["statistic"], path + ("statistic",), ("estimate", "lower", "upper")
+        )
+    if "for" in m:
+        kwargs["for_count"] = r.integer(m["for"], path + ("for",), minimum=1)
+    if "count_by" in m:
+        kwargs["count_by"] = r.choice(m["count_by"], path + ("count_by",), ("days", "samples"))
+    if "clear_after_days" in m:
+        kwargs["clear_after_days"] = r.integer(
+            m["clear_after_days"], path + ("clear_after_days",), minimum=1
+        )
+    if "below_tier" in m:
+        kwargs["below_tier"] = r.integer(m["below_tier"], path + ("below_tier",), minimum=1)
+    if "message" in m:
+        kwargs["message"] = r.text(m["message"], path + ("message",))
+    if comp is None or any(v is None for v in kwargs.values()):
+        return None
+    kwargs["op"], kwargs["value"] = comp
+    return r.build(node, path, PrepareSignal, **kwargs)
+
+
+def _read_combination(r: NodeReader, node: yaml.Node) -> Combination | None:
+    path: Path = ("combination",)
+    m = r.mapping(node, path, required=("method",), optional=("m", "weights", "cutoffs"))
+    if m is None or "method" not in m:
+        return None
+    kwargs: dict[str, Any] = {
+        "method": r.choice(m["method"], path + ("method",), ("highest", "at_least", "score"))
+    }
+    if "m" in m:
+        kwargs["m"] = r.integer(m["m"], path + ("m",), minimum=1)
+    if "weights" in m:
+        wm = r.mapping(m["weights"], path + ("weights",), free_keys=True)
+        kwargs["weights"] = (
+            {k: _num(r, v, path + ("weights", k)) for k, v in wm.items()}
+            if wm is not None
+            else None
+        )
+        if kwargs["weights"] is not None and None in kwargs["weights"].values():
+            kwargs["weights"] = None
+    if "cutoffs" in m:
+        cs = r.sequence(m["cutoffs"], path + ("cutoffs",))
+        vals = [_num(r, c, path + ("cutoffs", i)) for i, c in enumerate(cs or [])]
+        kwargs["cutoffs"] = None if cs is None or None in vals else tuple(vals)
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, Combination, **kwargs)
+
+
+def _read_timing(r: NodeReader, node: yaml.Node) -> Timing | None:
+    path: Path = ("timing",)
+    keys = (
+        "confirm_days",
+        "release_days",
+        "min_days_in_tier",
+        "max_steps_down",
+        "effective_delay_days",
+    )
+    m = r.mapping(node, path, optional=keys)
+    if m is None:
+        return None
+    kwargs = {k: r.integer(v, path + (k,), minimum=0) for k, v in m.items()}
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, Timing, **kwargs)

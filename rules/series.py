@@ -1,0 +1,86 @@
+"""The evaluator's input contract: one :class:`IndicatorSeries` per indicator, for all regions.
+
+Arrays are shaped ``(regions, days)``; NaN marks a missing value, never 0. Only ``estimate`` is
+required. ``lower``/``upper`` are needed by criteria using ``statistic: bounds`` and by signals
+reading a bound; ``count`` by criteria with ``min_count``. ``stale`` flags values known to be out of
+date; ``age_days`` (days since the data were last refreshed) marks values older than the
+indicator's ``max_age_days`` as stale and lets explanations say how old they are. ``nowcast``
+flags values that are nowcasts of recent days.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from rules.errors import EvaluationInputError
+
+__all__ = ["IndicatorSeries"]
+
+FloatArray = NDArray[np.float64]
+BoolArray = NDArray[np.bool_]
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class IndicatorSeries:
+    """One indicator for all regions and days.
+
+    Parameters
+    ----------
+    estimate : array, (regions, days)
+        Point estimate; NaN = missing.
+    lower, upper : array, (regions, days), optional
+        Interval bounds.
+    count : array, (regions, days), optional
+        Underlying event count, for ``min_count`` rules.
+    stale : bool array, (regions, days), optional
+        True where the value is known to be stale.
+    age_days : array, (regions, days), optional
+        Age of the data in days.
+    nowcast : bool array, (regions, days), optional
+        True where the value is a nowcast.
+    """
+
+    estimate: FloatArray
+    lower: FloatArray | None = None
+    upper: FloatArray | None = None
+    count: FloatArray | None = None
+    stale: BoolArray | None = None
+    age_days: FloatArray | None = None
+    nowcast: BoolArray | None = None
+
+    def __post_init__(self) -> None:
+        est = _float2d("estimate", self.estimate)
+        object.__setattr__(self, "estimate", est)
+        for name in ("lower", "upper", "count", "age_days"):
+            value = getattr(self, name)
+            if value is not None:
+                object.__setattr__(self, name, _float2d(name, value, est.shape))
+        for name in ("stale", "nowcast"):
+            value = getattr(self, name)
+            if value is not None:
+                arr = np.asarray(value)
+                if arr.dtype != np.bool_:
+                    raise EvaluationInputError(name, f"expected booleans, got dtype {arr.dtype}")
+                object.__setattr__(self, name, _shape(name, arr, est.shape))
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (int(self.estimate.shape[0]), int(self.estimate.shape[1]))
+
+
+def _float2d(name: str, value: ArrayLike, shape: tuple[int, ...] | None = None) -> FloatArray:
+    arr = np.asarray(value, dtype=np.float64)
+    if arr.ndim != 2:
+        raise EvaluationInputError(name, f"expected shape (regions, days), got {arr.ndim} dims")
+    if np.isinf(arr).any():
+        raise EvaluationInputError(name, "contains infinite values")
+    return _shape(name, arr, shape) if shape is not None else arr
+
+
+def _shape(name: str, arr: NDArray[np.generic], shape: tuple[int, ...]) -> NDArray:  # type: ignore[type-arg]
+    if arr.shape != shape:
+        raise EvaluationInputError(name, f"shape {arr.shape} differs from estimate's {shape}")
+    return arr
