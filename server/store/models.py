@@ -129,7 +129,7 @@ class Ruleset(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     name: Mapped[str] = mapped_column(String(100))
-    version: Mapped[int] = mapped_column(Integer)
+    version: Mapped[str] = mapped_column(String(32))
     yaml_text: Mapped[str] = mapped_column(Text)
     sha256: Mapped[str] = mapped_column(String(64), index=True)
     author: Mapped[str] = mapped_column(String(100), default="")

@@ -80,7 +80,7 @@ def upgrade() -> None:
         "ruleset",
         sa.Column("id", sa.Integer(), nullable=False),
         sa.Column("name", sa.String(length=100), nullable=False),
-        sa.Column("version", sa.Integer(), nullable=False),
+        sa.Column("version", sa.String(length=32), nullable=False),
         sa.Column("yaml_text", sa.Text(), nullable=False),
         sa.Column("sha256", sa.String(length=64), nullable=False),
         sa.Column("author", sa.String(length=100), nullable=False),
