@@ -16,6 +16,6 @@ def test_upgrade_reaches_head(migrated_engine: Engine) -> None:
 
 def test_migrations_match_models(migrated_engine: Engine) -> None:
     with migrated_engine.connect() as connection:
-        context = MigrationContext.configure(connection, opts={"compare_type": False})
+        context = MigrationContext.configure(connection, opts={"compare_type": True})
         diff = compare_metadata(context, Base.metadata)
     assert diff == []
