@@ -11,12 +11,14 @@ from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
+from pathlib import Path
 
 import pandas as pd
 
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
+from server.services.evaluation import default_ruleset_path, evaluate_districts, store_ruleset
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.users import add_user
@@ -42,6 +44,8 @@ class SeedSummary:
     vintages: int
     observations: int
     users: tuple[tuple[str, str, str], ...]
+    ruleset: str
+    assessments: int
 
 
 def _no_progress(_n: int = 1) -> None:
@@ -60,9 +64,10 @@ def _vintages(observations: pd.DataFrame) -> Iterator[tuple[date, pd.DataFrame]]
 
 def seed_demo(
     db: Database, *, seed: int = 7, days: int = 548, end: date | None = None,
-    progress: ProgressFactory | None = None,
+    rules_dir: Path | None = None, progress: ProgressFactory | None = None,
 ) -> SeedSummary:
-    """Wipe the demo database and fill it with a freshly simulated scenario."""
+    """Wipe the demo database, fill it with a freshly simulated scenario, and evaluate the
+    demo county's policy over the whole history (assessments as of the newest vintage)."""
     scenario = build_scenario(seed=seed, end=end, days=days)
     recreate_demo_schema(db)
     with db.transaction() as session:
@@ -85,7 +90,11 @@ def seed_demo(
         for name, role, password in DEMO_USERS:
             add_user(session=session, name=name, role=role, password=password, actor="demo")
     batches = list(_vintages(scenario.observations))
-    bar = progress("seeding daily vintages", len(batches)) if progress else nullcontext(_no_progress)
+    bar = (
+        progress("seeding daily vintages", len(batches))
+        if progress
+        else nullcontext(_no_progress)
+    )
     with bar as advance, db.transaction() as session:
         writer = VintageWriter(session=session, feed=FEED, source="demo_seed simulator")
         for day, rows in batches:
@@ -95,10 +104,16 @@ def seed_demo(
             session=session, actor="demo", action=DEMO_MARK, subject=f"seed={seed}",
             details={"start": scenario.start.isoformat(), "end": scenario.end.isoformat()},
         )
+    with db.transaction() as session:
+        ruleset = store_ruleset(
+            session=session, path=default_ruleset_path(rules_dir), author="demo", activate=True
+        )
+        run = evaluate_districts(session=session, ruleset_row=ruleset)
     districts = sum(1 for r in scenario.regions if r.level == "district")
     return SeedSummary(
         start=scenario.start, end=scenario.end, districts=districts, vintages=len(batches),
         observations=len(scenario.observations), users=DEMO_USERS,
+        ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
     )
 
 

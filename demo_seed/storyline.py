@@ -1,0 +1,212 @@
+"""The invented storyline of the demo: seasons, reactive policies, a variant, the true epidemic.
+
+All names, places and numbers are invented for the demo.
+
+Transmission is the product of a seasonal cosine (peak in mid-January), a more transmissible
+variant that takes over around 44 % of the scenario, and policy levels. Policies react to the
+epidemic like an office would: contact limits come when the county's weekly incidence (as
+seen five days late) passes a threshold and are eased when it falls back, and people cut
+contacts as local incidence rises (awareness-driven behaviour). Reacting keeps the shape of
+the scenario -- a first wave stopped by limits, a quiet spell, a larger second wave (the one
+that fills the ICUs), and a third wave after easing -- much the same for any end date and
+seed. A policy not triggered by its latest day is placed at that day.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date, timedelta
+
+import numpy as np
+
+from demo_seed.epidemic import SeirResult, mixing_matrix, simulate_seir
+from demo_seed.geography import Geography
+
+__all__ = ["Calendar", "Truth", "build_calendar", "simulate_truth"]
+
+LATENT_MEAN = 3.0            # days in E (geometric)
+INFECTIOUS_MEAN = 4.0        # days in I (geometric)
+R_BASE = 1.55                # reproduction number: no immunity, no policy, mean season
+SEASONAL_AMPLITUDE = 0.12
+SEASONAL_PEAK_DOY = 15       # mid-January
+WANING_DAYS = 365.0
+VARIANT_CENTRE, VARIANT_WIDTH, VARIANT_FACTOR = 0.44, 0.025, 1.55
+TESTING_CHANGE = 0.50
+POLICY_RAMP_DAYS = 5
+SIGNAL_LAG_DAYS = 5
+SEED_EXPOSED = {"D01": 40.0, "D08": 12.0, "D12": 6.0}
+IMPORTATION_PER_PERSON = 1.5e-6
+AWARENESS_SCALE = 1500.0     # weekly infections per 100 000 that halve contacts
+
+
+@dataclass(frozen=True)
+class PolicyRule:
+    """An invented policy: new level, trigger and the window in which it may fire."""
+
+    label: str
+    level: float
+    rising: bool            # fires when incidence rises above (True) or falls below (False)
+    threshold: float        # true infections per 100 000 per 7 days, seen with a lag
+    earliest: float         # fraction of the scenario
+    latest: float
+    min_gap_days: int
+
+
+POLICIES: tuple[PolicyRule, ...] = (
+    PolicyRule("Contact limits for indoor gatherings", 0.55, True, 250.0, 0.04, 0.20, 0),
+    PolicyRule("Indoor gathering limits eased", 0.85, False, 60.0, 0.15, 0.40, 42),
+    PolicyRule("Renewed contact limits and home-working advice", 0.40, True, 800.0, 0.25,
+               0.70, 42),
+    PolicyRule("Limits eased, masks advised in clinics", 0.55, False, 200.0, 0.62, 0.90, 42),
+)
+
+
+@dataclass(frozen=True)
+class Calendar:
+    """Dates and the non-reactive multipliers of the scenario; arrays shaped ``(days,)``."""
+
+    dates: np.ndarray
+    seasonal: np.ndarray
+    variant: np.ndarray
+    testing_change: date
+
+
+@dataclass(frozen=True)
+class Truth:
+    """Ground truth of the scenario; arrays shaped ``(districts, days)`` unless noted.
+
+    ``rt`` is the instantaneous reproduction number :math:`\\beta_{i,t} S_{i,t}/N_i \\cdot D`
+    (transmission rate with the behavioural response, times susceptible share at the start of
+    the day, times mean infectious days :math:`D`, local mixing) -- not a renewal-equation
+    estimate. ``generation_interval`` is the pmf implied by the SEIR step order (index 0 =
+    lag 1 day), so incidence follows :math:`I_t \\approx R_t \\sum_s w_s I_{t-s}`.
+    ``transmission`` (seasonal x variant x policy, without the behavioural response) and
+    ``policy`` are ``(days,)`` multipliers; ``population`` is ``(districts,)``.
+    """
+
+    dates: np.ndarray
+    districts: tuple[str, ...]
+    infections: np.ndarray
+    rt: np.ndarray
+    generation_interval: np.ndarray
+    importations: np.ndarray
+    susceptible: np.ndarray
+    exposed: np.ndarray
+    infectious: np.ndarray
+    recovered: np.ndarray
+    transmission: np.ndarray
+    policy: np.ndarray
+    population: np.ndarray
+    policy_dates: tuple[tuple[date, str], ...]
+
+
+def _ramp(days: int, start: int, width: int) -> np.ndarray:
+    """0 before ``start``, 1 from ``start + width - 1``, linear in between."""
+    t = np.arange(days)
+    return np.clip((t - start + 1) / width, 0.0, 1.0)
+
+
+def build_calendar(start: date, days: int) -> Calendar:
+    """Dates, seasonal and variant multipliers from ``start`` for ``days`` days.
+
+    Notes
+    -----
+    Seasonal multiplier :math:`1 + a \\cos(2\\pi (d - d_0)/365.25)` with day of year *d*,
+    :math:`a` = ``SEASONAL_AMPLITUDE``, :math:`d_0` = ``SEASONAL_PEAK_DOY`` [1]_; variant
+    multiplier logistic, :math:`1 + (f - 1)/(1 + e^{-(t - t_v)/w})`.
+
+    References
+    ----------
+    .. [1] Dushoff, J., Plotkin, J. B., Levin, S. A. and Earn, D. J. D. (2004). Dynamical
+       resonance can account for seasonality of influenza epidemics. PNAS 101(48),
+       16915-16916.
+    """
+    dates = np.datetime64(start, "D") + np.arange(days)
+    doy = (dates - dates.astype("datetime64[Y]")).astype(int) + 1
+    seasonal = 1.0 + SEASONAL_AMPLITUDE * np.cos(2.0 * np.pi * (doy - SEASONAL_PEAK_DOY) / 365.25)
+    t = np.arange(days)
+    variant = 1.0 + (VARIANT_FACTOR - 1.0) / (
+        1.0 + np.exp(-(t - VARIANT_CENTRE * days) / (VARIANT_WIDTH * days)))
+    change = start + timedelta(days=int(round(TESTING_CHANGE * days)))
+    return Calendar(dates=dates, seasonal=seasonal, variant=variant, testing_change=change)
+
+
+def _policy_curve(days: int, fired: list[int]) -> np.ndarray:
+    curve = np.ones(days)
+    level = 1.0
+    for rule, day in zip(POLICIES, fired, strict=False):
+        curve += (rule.level - level) * _ramp(days, day, POLICY_RAMP_DAYS)
+        level = rule.level
+    return curve
+
+
+def _trigger_day(signal: np.ndarray, rule: PolicyRule, previous: int) -> int:
+    """First day the rule fires in its window; its latest day if it never does."""
+    days = signal.shape[0]
+    first = max(int(rule.earliest * days), previous + rule.min_gap_days)
+    last = max(int(rule.latest * days), first)
+    window = signal[first : last + 1]
+    hit = window >= rule.threshold if rule.rising else window <= rule.threshold
+    return first + int(np.argmax(hit)) if np.any(hit) else last
+
+
+def simulate_truth(geography: Geography, calendar: Calendar, seed: int | None) -> Truth:
+    """Run the SEIR model for the county with reactive policies.
+
+    Parameters
+    ----------
+    geography : Geography
+    calendar : Calendar
+    seed : int or None
+        Seed of the epidemic's random stream; ``None`` runs the deterministic mean.
+
+    Notes
+    -----
+    :math:`\\beta_{i,t} = R_{base} f_i s_t v_t p_t / D` with seasonal, variant and policy
+    multipliers, district factor :math:`f_i = 1 + 0.06 \\log_{10}(N_i / 10^5)` (larger places
+    mix more) and mean infectious days :math:`D`. Neighbour coupling
+    :math:`c_i = 0.25 - 0.03 \\ln(N_i / 8000)` (small districts commute more). Importations
+    are Poisson with mean ``IMPORTATION_PER_PERSON`` :math:`N_i` per day, doubled in July and
+    August. Policy *k* fires on the first day its 7-day county incidence, lagged by
+    ``SIGNAL_LAG_DAYS``, crosses its threshold. The run is repeated once per policy with the
+    same seed: the path before the new policy day is unchanged, so each trigger is exact.
+    All rates are invented for the demo (common practice, no source).
+    """
+    pop = geography.district_populations()
+    codes = geography.district_codes
+    days = calendar.dates.shape[0]
+    factor = 1.0 + 0.06 * np.log10(pop / 1e5)
+    coupling = np.clip(0.25 - 0.03 * np.log(pop / 8000.0), 0.05, 0.3)
+    mix = mixing_matrix(geography.adjacency(), pop, coupling)
+    months = calendar.dates.astype("datetime64[M]").astype(int) % 12 + 1
+    travel = np.where((months == 7) | (months == 8), 2.0, 1.0)
+    imports = IMPORTATION_PER_PERSON * pop[:, None] * travel[None, :]
+    e0 = np.array([SEED_EXPOSED.get(c, 0.0) for c in codes])
+    base = (R_BASE / INFECTIOUS_MEAN) * factor[:, None] * (calendar.seasonal
+                                                           * calendar.variant)[None, :]
+
+    def run(fired: list[int]) -> SeirResult:
+        rng = None if seed is None else np.random.default_rng([seed, 11])
+        beta = base * _policy_curve(days, fired)[None, :]
+        return simulate_seir(population=pop, mixing=mix, beta=beta, latent_mean=LATENT_MEAN,
+                             infectious_mean=INFECTIOUS_MEAN, initial_exposed=e0,
+                             importation_rate=imports, waning_days=WANING_DAYS,
+                             awareness_scale=AWARENESS_SCALE, awareness_lag=SIGNAL_LAG_DAYS,
+                             rng=rng)
+
+    fired: list[int] = []
+    res = run(fired)
+    for rule in POLICIES:
+        weekly = np.convolve(res.infections.sum(axis=0), np.ones(7))[:days] / pop.sum() * 1e5
+        seen = np.concatenate([np.zeros(SIGNAL_LAG_DAYS), weekly[: days - SIGNAL_LAG_DAYS]])
+        fired.append(_trigger_day(seen, rule, fired[-1] if fired else 0))
+        res = run(fired)
+    start = calendar.dates[0].astype(object)
+    policy_dates = tuple((start + timedelta(days=d), rule.label)
+                         for rule, d in zip(POLICIES, fired, strict=True))
+    return Truth(dates=calendar.dates, districts=codes, infections=res.infections,
+                 rt=res.rt, generation_interval=res.generation_interval,
+                 importations=res.importations, susceptible=res.susceptible,
+                 exposed=res.exposed, infectious=res.infectious, recovered=res.recovered,
+                 transmission=calendar.seasonal * calendar.variant * _policy_curve(days, fired),
+                 policy=_policy_curve(days, fired), population=pop, policy_dates=policy_dates)
