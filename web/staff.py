@@ -5,7 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse
 
-from server.services.overview import data_overview
+from server.services.overview import staff_home
 from web.deps import SessionDep, TemplatesDep
 
 router = APIRouter(tags=["staff"])
@@ -13,6 +13,10 @@ router = APIRouter(tags=["staff"])
 
 @router.get("/", response_class=HTMLResponse)
 def home(request: Request, session: SessionDep, templates: TemplatesDep) -> HTMLResponse:
-    """Districts, areas and plants with the newest reference date of each measure."""
-    overview = data_overview(session=session)
-    return templates.TemplateResponse(request, "staff/home.html", {"overview": overview})
+    """Districts, areas and plants with the newest reference date of each measure, and each
+    district's newest recommended tier under the active policy."""
+    home = staff_home(session=session)
+    return templates.TemplateResponse(
+        request, "staff/home.html",
+        {"overview": home.data, "recommendations": home.recommendations, "ruleset": home.ruleset},
+    )

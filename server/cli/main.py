@@ -8,6 +8,7 @@ from typing import Annotated
 
 import typer
 
+from server.cli.estimate import estimate_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
 from server.config import Settings
 from server.services.database import Database
@@ -29,6 +30,7 @@ users_app = typer.Typer(help="Manage staff accounts.", no_args_is_help=True)
 app.add_typer(db_app, name="db")
 app.add_typer(regions_app, name="regions")
 app.add_typer(users_app, name="users")
+app.command("estimate")(estimate_command)
 
 
 def _settings(**overrides: object) -> Settings:
@@ -71,7 +73,9 @@ def demo(
     settings = _settings(demo_mode=True)
     db = _database(settings, check=False)
     try:
-        summary = seed_demo(db, seed=seed, days=days, end=end, progress=progress_bar)
+        summary = seed_demo(
+            db, seed=seed, days=days, end=end, rules_dir=settings.rules_dir, progress=progress_bar
+        )
     finally:
         db.dispose()
     say(
@@ -79,6 +83,7 @@ def demo(
         f"{summary.observations:,} observations from {summary.start} to {summary.end} "
         f"into {settings.database_url}"
     )
+    say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     for name, role, password in summary.users:
         say(f"  demo user {name!r} ({role}), password {password!r}")
     say(f"Public view: http://127.0.0.1:{port}/")
@@ -136,7 +141,9 @@ def db_upgrade() -> None:
 @regions_app.command("import")
 @friendly_errors
 def regions_import(
-    file: Annotated[Path, typer.Argument(help="GeoJSON FeatureCollection, one feature per region.")],
+    file: Annotated[
+        Path, typer.Argument(help="GeoJSON FeatureCollection, one feature per region.")
+    ],
 ) -> None:
     """Add or update regions from a GeoJSON file (properties: code, name, level, parent,
     population). The whole file is checked first; a broken file changes nothing."""

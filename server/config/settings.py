@@ -1,7 +1,7 @@
 """Settings read from ``TIERWISE_*`` environment variables.
 
-Built once in an entry point (the CLI, the ASGI factory, a test) and passed down explicitly; no module
-builds settings at import time.
+Built once in an entry point (the CLI, the ASGI factory, a test) and passed down explicitly; no
+module builds settings at import time.
 """
 
 from __future__ import annotations
@@ -29,7 +29,10 @@ class Settings(BaseSettings):
         default=DEFAULT_SECRET_KEY, description="Key that signs session cookies"
     )
     demo_mode: bool = Field(default=False, description="Allow demo defaults such as the secret key")
-    rules_dir: Path = Field(default=Path("rules/policies"), description="Folder of ruleset YAML")
+    rules_dir: Path | None = Field(
+        default=None,
+        description="Folder of ruleset YAML (default: the policies shipped with tierwise)",
+    )
     time_zone: str = Field(default="UTC", description="IANA time zone of the health office")
     public_base_url: str = Field(
         default="http://127.0.0.1:8000", description="Address residents reach the public view at"
@@ -52,7 +55,9 @@ class Settings(BaseSettings):
     @classmethod
     def _supported_database(cls, value: str) -> str:
         if not value.startswith(("sqlite", "postgresql")):
-            raise ValueError(f"database_url must be sqlite:// or postgresql+psycopg://, got {value!r}")
+            raise ValueError(
+                f"database_url must be sqlite:// or postgresql+psycopg://, got {value!r}"
+            )
         return value
 
     @model_validator(mode="after")

@@ -8,6 +8,7 @@ from datetime import date, datetime
 from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
+from server.services.evaluation import LatestAssessment, active_ruleset, latest_assessments
 from server.store import latest_dates
 from server.store.models import Measure, Region
 
@@ -78,3 +79,21 @@ def public_districts(*, session: Session) -> list[PublicDistrict]:
         if region.level == "district"
     ]
     return sorted(rows, key=lambda r: r.name)
+
+
+@dataclass(frozen=True, kw_only=True)
+class StaffHome:
+    """The staff home: data on hand and each district's newest recommendation."""
+
+    data: DataOverview
+    recommendations: dict[str, LatestAssessment]
+    ruleset: str | None
+
+
+def staff_home(*, session: Session) -> StaffHome:
+    row = active_ruleset(session=session)
+    return StaffHome(
+        data=data_overview(session=session),
+        recommendations=latest_assessments(session=session),
+        ruleset=f"{row.name} {row.version}" if row is not None else None,
+    )

@@ -1,0 +1,234 @@
+"""Use case: evaluate the active ruleset for every district and store the assessments.
+
+An evaluation reads the data as known at a cutoff (the newest vintage received, unless a cutoff is
+given), computes the indicators, runs the rules engine over the whole history and stores one
+assessment per district and day, each with its explanation, the ruleset and the cutoff. Re-running
+with the same ruleset and cutoff reproduces the same assessments (they are read, not rewritten).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import UTC, date, datetime
+from pathlib import Path
+
+from sqlalchemy import func, insert, select, type_coerce, update
+from sqlalchemy.orm import Session
+
+import rules
+from rules import Evaluation, Ruleset, evaluate, parse_ruleset
+from server.services.audit import record
+from server.services.district_indicators import district_indicators, load_district_data
+from server.store.models import Assessment, Observation, Region, Vintage
+from server.store.models import Ruleset as RulesetRow
+from server.store.types import UTCDateTime
+
+
+@dataclass(frozen=True, kw_only=True)
+class EvaluationRun:
+    """What one evaluation did."""
+
+    ruleset_id: int
+    ruleset_name: str
+    data_cutoff: datetime
+    start: date
+    end: date
+    written: int
+    reused: bool
+    evaluation: Evaluation | None
+
+
+def store_ruleset(
+    *, session: Session, path: Path, author: str = "", activate: bool = False
+) -> RulesetRow:
+    """Store the ruleset file as a version (once per distinct text); optionally make it active."""
+    text = path.read_text(encoding="utf-8")
+    parsed = parse_ruleset(text, source=str(path))
+    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == parsed.sha256))
+    if row is None:
+        row = RulesetRow(
+            name=parsed.name, version=str(parsed.version), yaml_text=text, sha256=parsed.sha256,
+            author=author, created_at=datetime.now(UTC), status="draft",
+        )
+        session.add(row)
+        session.flush()
+        record(session=session, actor=author or "system", action="ruleset.store",
+               subject=f"{parsed.name} {parsed.version}", details={"sha256": parsed.sha256})
+    if activate and row.status != "active":
+        session.execute(
+            update(RulesetRow)
+            .where(RulesetRow.name == row.name, RulesetRow.status == "active")
+            .values(status="retired")
+        )
+        row.status = "active"
+        record(session=session, actor=author or "system", action="ruleset.activate",
+               subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
+    session.flush()
+    return row
+
+
+def active_ruleset(*, session: Session) -> RulesetRow | None:
+    return session.scalar(
+        select(RulesetRow).where(RulesetRow.status == "active").order_by(RulesetRow.id.desc())
+    )
+
+
+def newest_cutoff(*, session: Session) -> datetime | None:
+    """Time stamp of the newest vintage: the default data cutoff."""
+    return session.scalar(select(type_coerce(func.max(Vintage.received_at), UTCDateTime())))
+
+
+def _date_range(session: Session, cutoff: datetime) -> tuple[date, date] | None:
+    first, last = session.execute(
+        select(func.min(Observation.ref_date), func.max(Observation.ref_date))
+        .join(Vintage, Vintage.id == Observation.vintage_id)
+        .where(Vintage.received_at <= cutoff)
+    ).one()
+    return None if first is None else (first, last)
+
+
+def evaluate_districts(
+    *, session: Session, ruleset_row: RulesetRow, cutoff: datetime | None = None
+) -> EvaluationRun | None:
+    """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff``; store results.
+
+    Returns None when there are no data yet.
+    """
+    cutoff = cutoff or newest_cutoff(session=session)
+    if cutoff is None:
+        return None
+    span = _date_range(session, cutoff)
+    if span is None:
+        return None
+    start, end = span
+    existing = session.scalar(
+        select(func.count()).select_from(Assessment).where(
+            Assessment.ruleset_id == ruleset_row.id, Assessment.data_cutoff == cutoff
+        )
+    )
+    if existing:
+        return EvaluationRun(
+            ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
+            start=start, end=end, written=0, reused=True, evaluation=None,
+        )
+    ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
+    data = load_district_data(session=session, start=start, end=end, as_of=cutoff)
+    result = evaluate(
+        ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
+        region_levels=data.levels,
+    )
+    written = _store_assessments(session, ruleset_row.id, cutoff, result)
+    return EvaluationRun(
+        ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
+        start=start, end=end, written=written, reused=False, evaluation=result,
+    )
+
+
+def _store_assessments(
+    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
+) -> int:
+    region_ids = dict(session.execute(select(Region.code, Region.id)).all())
+    criteria = [c.id for c in result.ruleset.criteria]
+    signals = [s.id for s in result.ruleset.prepare]
+    now = datetime.now(UTC)
+    rows = []
+    for r, code in enumerate(result.regions):
+        for d in range(result.dates.size):
+            explanation = result.explain(r, d)
+            rows.append({
+                "ruleset_id": ruleset_id,
+                "region_id": region_ids[code],
+                "ref_date": result.dates[d].astype(date),
+                "data_cutoff": cutoff,
+                "recommended_tier": int(result.tier[r, d]),
+                "previous_tier": int(result.tier[r, d - 1]) if d else int(result.start_tier[r]),
+                "criteria": {
+                    cid: {
+                        "level": int(result.levels[k, r, d]),
+                        "known": bool(result.known[k, r, d]),
+                    }
+                    for k, cid in enumerate(criteria)
+                },
+                "prepare_signals": {
+                    sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
+                },
+                "explanation": {"sentence": explanation.sentence, "data": explanation.data},
+                "created_at": now,
+            })
+    if rows:
+        session.execute(insert(Assessment), rows)
+    return len(rows)
+
+
+@dataclass(frozen=True, kw_only=True)
+class LatestAssessment:
+    region: str
+    ref_date: date
+    tier: int
+    tier_name: str
+    previous_tier: int | None
+    prepare: tuple[str, ...]
+    sentence: str
+
+
+def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
+    """The newest stored assessment of each district under the active ruleset."""
+    row = active_ruleset(session=session)
+    if row is None:
+        return {}
+    cutoff = session.scalar(
+        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
+        .where(Assessment.ruleset_id == row.id)
+    )
+    if cutoff is None:
+        return {}
+    last_day = session.scalar(
+        select(func.max(Assessment.ref_date)).where(
+            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff
+        )
+    )
+    ruleset: Ruleset = parse_ruleset(row.yaml_text, source=row.name)
+    query = (
+        select(Region.code, Assessment)
+        .join(Region, Region.id == Assessment.region_id)
+        .where(
+            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
+            Assessment.ref_date == last_day,
+        )
+    )
+    out = {}
+    for code, a in session.execute(query).all():
+        out[code] = LatestAssessment(
+            region=code, ref_date=a.ref_date, tier=a.recommended_tier,
+            tier_name=ruleset.tier_name(a.recommended_tier), previous_tier=a.previous_tier,
+            prepare=tuple(k for k, v in a.prepare_signals.items() if v),
+            sentence=a.explanation.get("sentence", ""),
+        )
+    return out
+
+
+PACKAGED_POLICIES = Path(rules.__file__).with_name("policies")
+
+
+def policies_dir(configured: Path | None) -> Path:
+    """The configured rules folder, or the policies shipped with tierwise."""
+    return configured if configured is not None else PACKAGED_POLICIES
+
+
+def default_ruleset_path(configured: Path | None) -> Path:
+    """The policy the demo and a fresh installation start with."""
+    return policies_dir(configured) / "county.yaml"
+
+
+__all__ = [
+    "EvaluationRun",
+    "LatestAssessment",
+    "active_ruleset",
+    "default_ruleset_path",
+    "evaluate_districts",
+    "latest_assessments",
+    "newest_cutoff",
+    "policies_dir",
+    "store_ruleset",
+]
+
