@@ -1,9 +1,9 @@
 """Store benchmark: bulk vintage append and dense as-of read, as ratios to in-memory baselines.
 
 Prints rows per second for appending one large vintage and for reading it back as dense
-(regions x days) arrays, and the ratio of each to a pandas operation on the same rows measured in the
-same run (writing the frame to CSV in memory; pivoting the frame to the same dense array). Ratios
-compare like with like on a noisy machine; absolute times are for orientation only.
+(regions x days) arrays, and the ratio of each to a pandas operation on the same rows measured in
+the same run (writing the frame to CSV in memory; pivoting the frame to the same dense array).
+Ratios compare like with like on a noisy machine; absolute times are for orientation only.
 
     python bench/store.py [--regions 500] [--days 365] [--url URL]
 
@@ -23,8 +23,14 @@ import numpy as np
 import pandas as pd
 
 from server.services.database import Database
-from server.store import MeasureRecord, RegionRecord, append_vintage, read_dense
-from server.store import upsert_measures, upsert_regions
+from server.store import (
+    MeasureRecord,
+    RegionRecord,
+    append_vintage,
+    read_dense,
+    upsert_measures,
+    upsert_regions,
+)
 from server.store.models import Base
 
 
@@ -55,29 +61,38 @@ def run(url: str, n_regions: int, n_days: int) -> None:
     start = date(2025, 1, 1)
     dates = pd.date_range(start, periods=n_days).date
     rng = np.random.default_rng(1)
-    frame = pd.DataFrame({
-        "region": np.repeat(codes, n_days), "measure": "cases",
-        "ref_date": np.tile(dates, n_regions),
-        "value": rng.poisson(20, n_regions * n_days).astype(float),
-    })
+    frame = pd.DataFrame(
+        {
+            "region": np.repeat(codes, n_days),
+            "measure": "cases",
+            "ref_date": np.tile(dates, n_regions),
+            "value": rng.poisson(20, n_regions * n_days).astype(float),
+        }
+    )
     with db.transaction() as s:
-        upsert_regions(session=s, records=[
-            RegionRecord(code=c, name=c, level="district", parent=None, population=10_000)
-            for c in codes
-        ])
-        upsert_measures(session=s, records=[
-            MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum")
-        ])
+        upsert_regions(
+            session=s,
+            records=[
+                RegionRecord(code=c, name=c, level="district", parent=None, population=10_000)
+                for c in codes
+            ],
+        )
+        upsert_measures(
+            session=s,
+            records=[MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum")],
+        )
 
     def write() -> None:
         with db.transaction() as s:
-            append_vintage(session=s, feed="bench", received_at=datetime.now(UTC), rows=frame,
-                           checksum="bench")
+            append_vintage(
+                session=s, feed="bench", received_at=datetime.now(UTC), rows=frame, checksum="bench"
+            )
 
     def read() -> np.ndarray:
         with db.sessions() as s:
-            return read_dense(session=s, measures=["cases"], start=dates[0], end=dates[-1],
-                              regions=codes)["cases"]
+            return read_dense(
+                session=s, measures=["cases"], start=dates[0], end=dates[-1], regions=codes
+            )["cases"]
 
     base_write, _ = timed(lambda: frame.to_csv(io.StringIO(), index=False))
     t_write, _ = timed(write)

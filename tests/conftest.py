@@ -42,6 +42,7 @@ def postgres_engine_in_fresh_schema(url: str) -> tuple[Engine, str]:
         conn.execute(text(f'CREATE SCHEMA "{schema}"'))
     admin.dispose()
     engine = make_engine(url)
+
     @event.listens_for(engine, "connect")
     def _search_path(dbapi_connection, _record):  # type: ignore[no-untyped-def]
         with dbapi_connection.cursor() as cursor:

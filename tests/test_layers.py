@@ -24,14 +24,24 @@ ALLOWED: dict[str, set[str]] = {
     "server.store": set(),
     "server.feeds": {"server.store", "server.config"},
     "server.services": {
-        "server.store", "server.feeds", "server.indicators", "server.config", "rules",
+        "server.store",
+        "server.feeds",
+        "server.indicators",
+        "server.config",
+        "rules",
     },
     "server.scheduler": {"server.services", "server.config"},
     "demo_seed": {"server.services", "server.config"},
     "web": {"server.services", "server.config"},
     "server.cli": {
-        "server.services", "server.config", "server.store", "server.feeds", "rules", "web",
-        "demo_seed", "server.scheduler",
+        "server.services",
+        "server.config",
+        "server.store",
+        "server.feeds",
+        "rules",
+        "web",
+        "demo_seed",
+        "server.scheduler",
     },
 }
 RULES_THIRD_PARTY = {"yaml", "numpy"}
@@ -97,8 +107,9 @@ def test_imports_point_one_way() -> None:
 
 def test_layer_table_covers_every_package() -> None:
     unassigned = [
-        module_name(p) for p in project_modules() if layer_of(module_name(p)) is None
-        and module_name(p) not in ("server", "server.cli")
+        module_name(p)
+        for p in project_modules()
+        if layer_of(module_name(p)) is None and module_name(p) not in ("server", "server.cli")
     ]
     assert unassigned == []
 

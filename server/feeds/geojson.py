@@ -130,7 +130,9 @@ def _check_geometry(geometry: Any, where: str, label: str) -> None:
     elif kind == "MultiPolygon" and isinstance(coords, list):
         polygons = coords
     else:
-        raise FeedFileError(label, f"{where}.type", f"expected Polygon or MultiPolygon, got {kind!r}")
+        raise FeedFileError(
+            label, f"{where}.type", f"expected Polygon or MultiPolygon, got {kind!r}"
+        )
     for p, polygon in enumerate(polygons):
         if not isinstance(polygon, list) or not polygon:
             raise FeedFileError(label, f"{where}.coordinates[{p}]", "polygon has no rings")
@@ -143,7 +145,9 @@ def _check_ring(ring: Any, where: str, label: str) -> None:
     try:
         points = np.asarray(ring, dtype=np.float64)
     except (TypeError, ValueError):
-        raise FeedFileError(label, where, "positions must be [longitude, latitude] numbers") from None
+        raise FeedFileError(
+            label, where, "positions must be [longitude, latitude] numbers"
+        ) from None
     if points.ndim != 2 or points.shape[1] < 2:
         raise FeedFileError(label, where, "positions must be [longitude, latitude] pairs")
     points = points[:, :2]

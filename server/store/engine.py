@@ -25,8 +25,8 @@ def _sqlite_pragmas(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
 def make_engine(url: str, *, echo: bool = False) -> Engine:
     """Build an engine for ``url``; a SQLite file's folder is created when missing.
 
-    SQLite connections run in WAL mode with foreign keys on. ``postgresql://`` URLs are routed to the
-    psycopg 3 driver.
+    SQLite connections run in WAL mode with foreign keys on. ``postgresql://`` URLs are routed to
+    the psycopg 3 driver.
     """
     parsed = make_url(url)
     kwargs: dict[str, Any] = {"echo": echo}

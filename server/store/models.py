@@ -1,8 +1,8 @@
 """SQLAlchemy 2 typed models of the bitemporal, append-only data model (DESIGN.md).
 
 Observations are never updated in place: every ingestion batch is a :class:`Vintage`, and the
-"current" value of a key is the one in its latest vintage. Rulesets are stored with their YAML text and
-SHA-256 and are never edited; decisions and the audit log are append-only.
+"current" value of a key is the one in its latest vintage. Rulesets are stored with their YAML text
+and SHA-256 and are never edited; decisions and the audit log are append-only.
 """
 
 from __future__ import annotations
@@ -38,7 +38,7 @@ class Base(DeclarativeBase):
 
 
 class Region(Base):
-    """A district, region, county or wastewater plant; regions form a hierarchy through ``parent``."""
+    """A district, region, county or wastewater plant; ``parent`` makes the hierarchy."""
 
     __tablename__ = "region"
 
@@ -114,7 +114,9 @@ class RejectedRow(Base):
     __tablename__ = "rejected_row"
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True)
-    vintage_id: Mapped[int] = mapped_column(ForeignKey("vintage.id", ondelete="CASCADE"), index=True)
+    vintage_id: Mapped[int] = mapped_column(
+        ForeignKey("vintage.id", ondelete="CASCADE"), index=True
+    )
     line: Mapped[int] = mapped_column(Integer)
     raw: Mapped[str] = mapped_column(Text)
     reason: Mapped[str] = mapped_column(String(64))

@@ -23,7 +23,7 @@ from server.store.types import UTCDateTime
 
 @dataclass(frozen=True, kw_only=True)
 class DenseSeries:
-    """Observations of several measures as arrays shaped (regions, days); NaN where nothing is known.
+    """Observations of several measures as (regions, days) arrays; NaN where nothing is known.
 
     ``values[measure][i, j]`` is the value for ``regions[i]`` on ``dates[j]``.
     """

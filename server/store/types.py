@@ -13,8 +13,8 @@ from sqlalchemy.types import TypeDecorator
 class UTCDateTime(TypeDecorator[datetime]):
     """A time stamp stored in UTC and always read back time-zone aware.
 
-    SQLite has no time zones and returns naive values; PostgreSQL returns aware ones. Both come back as
-    aware UTC datetimes, and naive datetimes are refused on the way in (they are ambiguous).
+    SQLite has no time zones and returns naive values; PostgreSQL returns aware ones. Both come back
+    as aware UTC datetimes, and naive datetimes are refused on the way in (they are ambiguous).
     """
 
     impl = DateTime(timezone=True)

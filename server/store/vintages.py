@@ -59,7 +59,9 @@ def _prepare(
 ) -> pd.DataFrame:
     missing = [c for c in OBSERVATION_COLUMNS if c not in rows.columns]
     if missing:
-        raise ValueError(f"observation rows lack column(s) {missing}; expected {OBSERVATION_COLUMNS}")
+        raise ValueError(
+            f"observation rows lack column(s) {missing}; expected {OBSERVATION_COLUMNS}"
+        )
     values = pd.to_numeric(rows["value"], errors="raise").to_numpy(dtype=np.float64)
     if not np.isfinite(values).all():
         raise ValueError("observation values must be finite numbers (missing data is no row)")
@@ -92,9 +94,9 @@ def append_vintage(
     """Append ``rows`` (columns region, measure, ref_date, value) as one new vintage.
 
     Rows are written with one bulk statement (COPY on PostgreSQL, executemany on SQLite). Unknown
-    codes or duplicate keys raise before anything is written; any failure rolls back to the savepoint,
-    so no partial vintage remains. ``code_lookup`` lets a caller appending many vintages resolve the
-    catalogue once.
+    codes or duplicate keys raise before anything is written; any failure rolls back to the
+    savepoint, so no partial vintage remains. ``code_lookup`` lets a caller appending many
+    vintages resolve the catalogue once.
     """
     regions, measures = code_lookup if code_lookup is not None else code_maps(session=session)
     frame = _prepare(rows, regions, measures)

@@ -24,23 +24,36 @@ def client(tmp_path_factory: pytest.TempPathFactory) -> TestClient:
     db.upgrade()
     with db.transaction() as session:
         store_regions(
-            session=session, actor="test", source="test",
+            session=session,
+            actor="test",
+            source="test",
             records=[
-                RegionRecord(code="K0", name="Kestrel County", level="county", parent=None,
-                             population=50000),
-                RegionRecord(code="K1", name="Fernhollow", level="district", parent="K0",
-                             population=30000),
-                RegionRecord(code="K2", name="Saltmarsh <Upper>", level="district", parent="K0",
-                             population=20000),
+                RegionRecord(
+                    code="K0", name="Kestrel County", level="county", parent=None, population=50000
+                ),
+                RegionRecord(
+                    code="K1", name="Fernhollow", level="district", parent="K0", population=30000
+                ),
+                RegionRecord(
+                    code="K2",
+                    name="Saltmarsh <Upper>",
+                    level="district",
+                    parent="K0",
+                    population=20000,
+                ),
             ],
         )
-        define_measures(session=session, measures=[
-            MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum"),
-        ])
+        define_measures(
+            session=session,
+            measures=[
+                MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum"),
+            ],
+        )
     with db.transaction() as session:
         VintageWriter(session=session, feed="t").append(
-            pd.DataFrame({"region": ["K1"], "measure": ["cases"], "ref_date": ["2026-02-03"],
-                          "value": [5.0]}),
+            pd.DataFrame(
+                {"region": ["K1"], "measure": ["cases"], "ref_date": ["2026-02-03"], "value": [5.0]}
+            ),
             received_at=datetime(2026, 2, 4, 5, tzinfo=UTC),
         )
     with TestClient(create_app(settings, database=db)) as c:

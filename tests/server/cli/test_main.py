@@ -43,8 +43,13 @@ def geojson(path: Path, *features: dict) -> Path:
 def feature(code: str, population: object, parent: str | None = None, level: str = "district"):  # type: ignore[no-untyped-def]
     return {
         "type": "Feature",
-        "properties": {"code": code, "name": code.title(), "population": population,
-                       "parent": parent, "level": level},
+        "properties": {
+            "code": code,
+            "name": code.title(),
+            "population": population,
+            "parent": parent,
+            "level": level,
+        },
         "geometry": {"type": "Polygon", "coordinates": SQUARE},
     }
 
@@ -74,7 +79,9 @@ def test_cli_db_upgrade_reports_revision(env: str) -> None:
 
 def test_cli_regions_import_adds_regions(env: str, tmp_path: Path) -> None:
     run("db", "upgrade")
-    path = geojson(tmp_path / "map.geojson", feature("C", 300, level="county"), feature("A", 100, "C"))
+    path = geojson(
+        tmp_path / "map.geojson", feature("C", 300, level="county"), feature("A", 100, "C")
+    )
     result = run("regions", "import", str(path))
     assert result.exit_code == 0, result.output
     assert "2 regions added" in result.output
@@ -83,7 +90,11 @@ def test_cli_regions_import_adds_regions(env: str, tmp_path: Path) -> None:
 
 def test_cli_regions_import_broken_file_changes_nothing(env: str, tmp_path: Path) -> None:
     run("db", "upgrade")
-    run("regions", "import", str(geojson(tmp_path / "ok.geojson", feature("C", 300, level="county"))))
+    run(
+        "regions",
+        "import",
+        str(geojson(tmp_path / "ok.geojson", feature("C", 300, level="county"))),
+    )
     broken = geojson(tmp_path / "bad.geojson", feature("A", 100, "C"), feature("B", None, "C"))
     result = run("regions", "import", str(broken))
     assert result.exit_code == 1
@@ -133,7 +144,9 @@ def test_cli_serve_refuses_default_secret(env: str) -> None:
     assert "TIERWISE_SECRET_KEY" in result.output
 
 
-def test_cli_serve_unmigrated_database_says_upgrade(env: str, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cli_serve_unmigrated_database_says_upgrade(
+    env: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.setenv("TIERWISE_SECRET_KEY", "k" * 32)
     result = run("serve")
     assert result.exit_code == 1

@@ -25,7 +25,10 @@ def test_settings_read_from_environment(monkeypatch: pytest.MonkeyPatch) -> None
     monkeypatch.setenv("TIERWISE_SECRET_KEY", "a-real-secret-of-some-length")
     monkeypatch.setenv("TIERWISE_TIME_ZONE", "Europe/Berlin")
     settings = Settings()
-    assert (settings.database_url, settings.time_zone) == ("sqlite:///elsewhere.db", "Europe/Berlin")
+    assert (settings.database_url, settings.time_zone) == (
+        "sqlite:///elsewhere.db",
+        "Europe/Berlin",
+    )
 
 
 def test_settings_default_database_is_sqlite_under_var(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -28,7 +28,10 @@ def collection(*features: dict) -> dict:
 def test_parse_regions_reads_code_population_and_extra_attributes() -> None:
     (rec,) = parse_regions(collection(feature(colour_hint="none", level="district")))
     assert (rec.code, rec.population, rec.level, rec.attributes) == (
-        "Q1", 1200, "district", {"colour_hint": "none"}
+        "Q1",
+        1200,
+        "district",
+        {"colour_hint": "none"},
     )
 
 
@@ -53,7 +56,8 @@ def test_read_regions_geojson_accepts_utf8_bom(tmp_path: Path) -> None:
         pytest.param(collection(), r"features: expected a non-empty list", id="no-features"),
         pytest.param(
             collection({"type": "Feature", "properties": {"population": 5}, "geometry": None}),
-            r"features\[0\]\.properties\.code: missing or empty region code", id="missing-code",
+            r"features\[0\]\.properties\.code: missing or empty region code",
+            id="missing-code",
         ),
         pytest.param(
             collection(feature(population=None)),
@@ -61,18 +65,24 @@ def test_read_regions_geojson_accepts_utf8_bom(tmp_path: Path) -> None:
             id="missing-population",
         ),
         pytest.param(
-            collection(feature(population=-3)), r"population must be a positive whole number",
+            collection(feature(population=-3)),
+            r"population must be a positive whole number",
             id="negative-population",
         ),
         pytest.param(
-            collection(feature(population=12.5)), r"got 12\.5", id="fractional-population",
+            collection(feature(population=12.5)),
+            r"got 12\.5",
+            id="fractional-population",
         ),
         pytest.param(
-            collection(feature(), feature()), r"features\[1\]\.properties\.code: code 'Q1' already",
+            collection(feature(), feature()),
+            r"features\[1\]\.properties\.code: code 'Q1' already",
             id="duplicate-code",
         ),
         pytest.param(
-            collection(feature(level="galaxy")), r"unknown level 'galaxy'", id="unknown-level",
+            collection(feature(level="galaxy")),
+            r"unknown level 'galaxy'",
+            id="unknown-level",
         ),
     ],
 )
@@ -95,17 +105,25 @@ def with_ring(ring: list) -> dict:
             [[10, 50], [11, 50], [11, 51], [10, 51]], r"ring is not closed", id="open-ring"
         ),
         pytest.param(
-            [[10, 50], [11, 51], [11, 50], [10, 51], [10, 50]], r"ring edges 0 and 2 cross",
+            [[10, 50], [11, 51], [11, 50], [10, 51], [10, 50]],
+            r"ring edges 0 and 2 cross",
             id="bow-tie",
         ),
         pytest.param(
-            [[10, 50], [11, 50], [12, 50], [10, 50]], r"ring has zero area", id="flat",
+            [[10, 50], [11, 50], [12, 50], [10, 50]],
+            r"ring has zero area",
+            id="flat",
         ),
         pytest.param(
-            [[10, 95], [11, 95], [11, 96], [10, 95]], r"latitude out of range", id="latitude",
+            [[10, 95], [11, 95], [11, 96], [10, 95]],
+            r"latitude out of range",
+            id="latitude",
         ),
-        pytest.param([[10, "x"], [1, 2], [3, 4], [10, "x"]], r"must be \[longitude, latitude\]",
-                     id="text-coordinate"),
+        pytest.param(
+            [[10, "x"], [1, 2], [3, 4], [10, "x"]],
+            r"must be \[longitude, latitude\]",
+            id="text-coordinate",
+        ),
     ],
 )
 def test_parse_regions_refuses_invalid_polygons(ring: list, message: str) -> None:

@@ -20,6 +20,8 @@ def test_make_engine_sqlite_uses_wal(tmp_path: Path) -> None:
 
 def test_check_connection_unreachable_postgres_is_one_line() -> None:
     engine = make_engine("postgresql+psycopg://nobody@127.0.0.1:1/nothing?connect_timeout=2")
-    with pytest.raises(DatabaseUnavailableError, match=r"^cannot reach the database at .*127\.0\.0\.1:1") as info:
+    with pytest.raises(
+        DatabaseUnavailableError, match=r"^cannot reach the database at .*127\.0\.0\.1:1"
+    ) as info:
         check_connection(engine)
     assert "\n" not in str(info.value)
