@@ -124,6 +124,17 @@ def evaluate_districts(
     )
 
 
+def evaluate_active(*, session: Session) -> EvaluationRun | None:
+    """Evaluate the active ruleset on the newest data (the hook run after every ingestion).
+
+    Returns None when no ruleset is active or there are no data.
+    """
+    row = active_ruleset(session=session)
+    if row is None:
+        return None
+    return evaluate_districts(session=session, ruleset_row=row)
+
+
 def _store_assessments(
     session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
 ) -> int:
@@ -225,6 +236,7 @@ __all__ = [
     "LatestAssessment",
     "active_ruleset",
     "default_ruleset_path",
+    "evaluate_active",
     "evaluate_districts",
     "latest_assessments",
     "newest_cutoff",
