@@ -54,7 +54,7 @@ def _database(settings: Settings, *, check: bool = True) -> Database:
 @friendly_errors
 def demo(
     port: Annotated[int, typer.Option(help="Port to serve on (127.0.0.1 only).")] = 8000,
-    days: Annotated[int, typer.Option(min=120, max=1500, help="Days of invented history.")] = 548,
+    days: Annotated[int, typer.Option(min=150, max=3650, help="Days of invented history.")] = 548,
     seed: Annotated[int, typer.Option(help="Random seed of the invented epidemic.")] = 7,
     end_date: Annotated[
         str | None, typer.Option(help="Last day of data, YYYY-MM-DD (default: yesterday).")

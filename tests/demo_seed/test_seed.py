@@ -1,0 +1,128 @@
+"""Seeding the demo database: daily vintages, as-of reads, idempotent refresh, safety."""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sqlalchemy import func, select
+
+from demo_seed.seed import DEMO_USERS, received_at, seed_demo
+from server.config import Settings
+from server.services.database import Database
+from server.services.errors import NotADemoDatabaseError
+from server.services.regions import RegionRecord, store_regions
+from server.store import read_dense, revision_history
+from server.store.models import Assessment, Observation, Region, User, Vintage
+
+END = date(2026, 3, 31)
+DAYS = 150
+
+
+@pytest.fixture(scope="module")
+def seeded(tmp_path_factory: pytest.TempPathFactory) -> Database:
+    path: Path = tmp_path_factory.mktemp("seed") / "demo.db"
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
+    seed_demo(db, seed=3, days=DAYS, end=END)
+    yield db
+    db.dispose()
+
+
+def test_seed_demo_writes_one_vintage_per_day(seeded: Database) -> None:
+    with seeded.sessions() as s:
+        assert s.scalar(select(func.count()).select_from(Vintage)) == DAYS
+        newest = s.scalar(select(func.max(Vintage.received_at)))
+    assert newest is not None and newest.date() == date(2026, 4, 1)
+
+
+def test_seed_demo_creates_districts_areas_and_plants(seeded: Database) -> None:
+    with seeded.sessions() as s:
+        levels = dict(s.execute(select(Region.level, func.count()).group_by(Region.level)).all())
+    assert levels["county"] == 1
+    assert 12 <= levels["district"] <= 16
+    assert levels["region"] in (2, 3)
+    assert levels["plant"] >= 1
+
+
+def test_seed_demo_as_of_read_sees_cases_before_revision(seeded: Database) -> None:
+    # Cases are revised upward as late reports arrive: a day known the next morning holds fewer
+    # cases than the final count (summed over districts to avoid zero-count days).
+    day = date(2026, 3, 1)
+    with seeded.sessions() as s:
+        early = read_dense(
+            session=s, measures=["cases"], start=day, end=day, as_of=received_at(day)
+        )["cases"]
+        final = read_dense(session=s, measures=["cases"], start=day, end=day)["cases"]
+    assert np.nansum(early) < np.nansum(final)
+
+
+def test_seed_demo_keeps_every_revision(seeded: Database) -> None:
+    with seeded.sessions() as s:
+        history = revision_history(
+            session=s, region="D01", measure="cases", ref_date=date(2026, 3, 1)
+        )
+    values = [r.value for r in history]
+    assert len(values) >= 2 and values == sorted(values)
+
+
+def test_seed_demo_evaluates_the_policy(seeded: Database) -> None:
+    with seeded.sessions() as s:
+        districts = s.scalar(select(func.count()).where(Region.level == "district"))
+        assessments = s.scalar(select(func.count()).select_from(Assessment))
+    assert assessments == districts * DAYS
+
+
+def test_seed_demo_creates_demo_users(seeded: Database) -> None:
+    with seeded.sessions() as s:
+        names = set(s.scalars(select(User.name)))
+    assert names == {u[0] for u in DEMO_USERS}
+
+
+def test_seed_demo_second_run_is_idempotent(tmp_path: Path) -> None:
+    db = Database.from_settings(
+        Settings(database_url=f"sqlite:///{tmp_path / 'd.db'}", demo_mode=True)
+    )
+
+    def snapshot() -> tuple[int, float, int]:
+        with db.sessions() as s:
+            return (
+                s.scalar(select(func.count()).select_from(Observation)),
+                s.scalar(select(func.sum(Observation.value))),
+                s.scalar(select(func.count()).select_from(Vintage)),
+            )
+
+    first = seed_demo(db, seed=5, days=150, end=END)
+    before = snapshot()
+    second = seed_demo(db, seed=5, days=150, end=END)
+    assert snapshot() == before
+    assert (first.observations, first.vintages) == (second.observations, second.vintages)
+    db.dispose()
+
+
+def test_seed_demo_refuses_a_database_it_did_not_create(tmp_path: Path) -> None:
+    db = Database.from_settings(
+        Settings(database_url=f"sqlite:///{tmp_path / 'p.db'}", demo_mode=True)
+    )
+    db.upgrade()
+    with db.transaction() as s:
+        store_regions(
+            session=s,
+            actor="t",
+            source="t",
+            records=[
+                RegionRecord(
+                    code="Z1", name="Real data", level="district", parent=None, population=1000
+                ),
+            ],
+        )
+    with pytest.raises(NotADemoDatabaseError, match="refusing to overwrite"):
+        seed_demo(db, seed=5, days=150, end=END)
+    with db.sessions() as s:
+        assert s.scalar(select(Region.code)) == "Z1"
+    db.dispose()
+
+
+def test_received_at_is_next_morning_utc() -> None:
+    assert received_at(date(2026, 3, 1)) == datetime(2026, 3, 2, 5, 30, tzinfo=UTC)
