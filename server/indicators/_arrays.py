@@ -7,10 +7,13 @@ Validation lives here, computation in the indicator modules (the scipy.stats spl
 
 from __future__ import annotations
 
+from dataclasses import fields
+
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
 
 
 def as_regions_days(name: str, values: ArrayLike) -> FloatArray:
@@ -61,8 +64,74 @@ def check_window(name: str, window: int, *, minimum: int = 1) -> int:
     return int(window)
 
 
+def check_positive(name: str, value: float) -> float:
+    """Check a positive, finite number."""
+    if not np.isfinite(value) or value <= 0:
+        raise ValueError(f"{name}: must be positive and finite, got {value!r}")
+    return float(value)
+
+
 def check_level(name: str, level: float) -> float:
     """Check a confidence level strictly between 0 and 1."""
     if not 0.0 < float(level) < 1.0:
         raise ValueError(f"{name}: confidence level must be between 0 and 1, got {level!r}")
     return float(level)
+
+
+def freeze_arrays(result: object) -> None:
+    """Make every numpy array field of a dataclass instance read-only."""
+    for field in fields(result):  # type: ignore[arg-type]
+        value = getattr(result, field.name)
+        if isinstance(value, np.ndarray):
+            value.setflags(write=False)
+
+
+def check_max_missing(max_missing: int, window: int) -> int:
+    """Check ``0 <= max_missing < window``."""
+    if (
+        isinstance(max_missing, bool)
+        or not isinstance(max_missing, (int, np.integer))
+        or not 0 <= max_missing < window
+    ):
+        raise ValueError(
+            f"max_missing: must be an integer in [0, {window - 1}] for window {window}, "
+            f"got {max_missing!r}"
+        )
+    return int(max_missing)
+
+
+def trailing_sum(filled: FloatArray, window: int) -> FloatArray:
+    """Sum over days t - window + 1 .. t of a NaN-free array (one cumulative sum along axis 1)."""
+    total = np.cumsum(filled, axis=1)
+    if window < filled.shape[1]:
+        total[:, window:] -= total[:, :-window].copy()
+    return total
+
+
+def trailing_totals(values: FloatArray, window: int) -> tuple[FloatArray, IntArray]:
+    """Trailing-window sum of observed values and count of observed days.
+
+    Uses cumulative sums along axis 1, so the cost is O(regions * days) for any window; integer
+    counts stay exact (float64 holds integers exactly up to 2**53). Days before the start of the
+    series count as missing.
+    """
+    observed = ~np.isnan(values)
+    filled = np.where(observed, values, 0.0)
+    total = np.cumsum(filled, axis=1)
+    count = np.cumsum(observed, axis=1, dtype=np.int64)
+    if window < values.shape[1]:
+        total[:, window:] -= total[:, :-window].copy()
+        count[:, window:] -= count[:, :-window].copy()
+    return total, count
+
+
+def windowed_total(
+    values: FloatArray, window: int, max_missing: int
+) -> tuple[FloatArray, FloatArray, IntArray]:
+    """Observed total, scale factor ``w / n_obs`` and observed days, NaN where refused."""
+    total, count = trailing_totals(values, window)
+    refused = count < window - max_missing
+    with np.errstate(divide="ignore", invalid="ignore"):
+        factor = np.where(refused, np.nan, window / np.maximum(count, 1))
+    total = np.where(refused, np.nan, total)
+    return total, factor, count

@@ -21,8 +21,14 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
-from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
-from server.indicators.windows import check_max_missing, freeze_arrays
+from server.indicators._arrays import (
+    FloatArray,
+    as_nonnegative_counts,
+    check_level,
+    check_max_missing,
+    check_window,
+    freeze_arrays,
+)
 
 BoolArray = NDArray[np.bool_]
 Dispersion = Literal["quasipoisson", "poisson"]
@@ -30,7 +36,7 @@ Dispersion = Literal["quasipoisson", "poisson"]
 __all__ = ["GrowthRate", "design_matrix", "growth_rate", "rolling_growth_rate"]
 
 _LN2 = float(np.log(2.0))
-_CHUNK_ROWS = 65_536
+_CHUNK_ROWS = 4096
 _MAX_ITER = 100
 _TOL = 1e-10
 
@@ -109,9 +115,17 @@ def design_matrix(window: int, *, day_of_week: bool = True) -> FloatArray:
 def _fit_batch(
     y: FloatArray, design: FloatArray, day_of_week: bool, max_missing: int
 ) -> tuple[FloatArray, FloatArray, FloatArray, BoolArray]:
-    """Fit every row of ``y`` (rows, n); return r, var(r) at scale 1, Pearson dispersion, ok."""
+    """Fit every row of ``y`` (rows, n); return r, var(r) at scale 1, Pearson dispersion, ok.
+
+    The weekday dummies and the intercept span the same space as one intercept per weekday
+    level, so the fit is carried out in that parametrisation: the normal equations then have an
+    arrow shape (a diagonal block for the levels and one row for r) and are solved in closed form
+    through the Schur complement of the diagonal block, elementwise for all rows at once. The
+    estimate of r, its variance and the fitted values are those of the design ``design``.
+    """
     rows, n = y.shape
     p = design.shape[1]
+    tc = design[:, 1]
     mask = ~np.isnan(y)
     yy = np.where(mask, y, 0.0)
     m = mask.astype(np.float64)
@@ -123,69 +137,71 @@ def _fit_batch(
     onehot = (levels[:, None] == np.arange(levels.max() + 1)[None, :]).astype(np.float64)
     ok &= np.all(yy @ onehot > 0, axis=1)
 
-    outer = np.einsum("ti,tj->tij", design, design).reshape(n, p * p)
     r = np.full(rows, np.nan)
     var_r = np.full(rows, np.nan)
     phi = np.full(rows, np.nan)
     converged = np.zeros(rows, dtype=bool)
 
-    active = np.flatnonzero(ok)
-    ya, ma = yy[active], m[active]
-    mu = np.where(ma > 0, (ya + ya.sum(axis=1, keepdims=True) / n_obs[active, None]) / 2.0, 1.0)
+    idx = np.flatnonzero(ok)  # rows still iterating
+    ya, ma = yy[idx], m[idx]
+    mu = np.where(ma > 0, (ya + ya.sum(axis=1, keepdims=True) / n_obs[idx, None]) / 2.0, 1.0)
     eta = np.log(mu)
-    dev = np.full(active.size, np.inf)
-    beta = np.zeros((active.size, p))
-    idx = np.arange(active.size)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ylogy = np.where(ya > 0, ya * np.log(ya), 0.0)
+    dev = np.full(idx.size, np.inf)
     for _ in range(_MAX_ITER):
         if idx.size == 0:
             break
-        w = ma[idx] * mu[idx]
-        z = eta[idx] + (ya[idx] - mu[idx]) / mu[idx]
-        lhs = (w @ outer).reshape(-1, p, p)
-        rhs = (w * z) @ design
-        beta[idx] = _solve(lhs, rhs)
+        w = ma * mu
+        z = eta + (ya - mu) / mu
+        slope, _, intercepts = _weighted_fit(w, z, tc, onehot)
         with np.errstate(over="ignore", invalid="ignore"):
-            eta[idx] = np.clip(beta[idx] @ design.T, -700.0, 700.0)
-            mu[idx] = np.exp(eta[idx])
-            new_dev = _deviance(ya[idx], mu[idx], ma[idx])
-        done = np.abs(new_dev - dev[idx]) <= _TOL * (np.abs(new_dev) + 0.1)
-        dev[idx] = new_dev
-        converged[active[idx[done]]] = True
-        idx = idx[~done & np.isfinite(new_dev)]
-
-    good = np.flatnonzero(converged[active])
-    if good.size:
-        w = ma[good] * mu[good]
-        lhs = (w @ outer).reshape(-1, p, p)
-        cov = _inverse(lhs)
-        pearson = (ma[good] * (ya[good] - mu[good]) ** 2 / mu[good]).sum(axis=1)
-        rows_g = active[good]
-        r[rows_g] = beta[good, 1]
-        var_r[rows_g] = cov[:, 1, 1]
-        phi[rows_g] = pearson / (n_obs[rows_g] - p)
+            eta = np.clip(intercepts @ onehot.T + slope[:, None] * tc, -700.0, 700.0)
+            mu = np.exp(eta)
+            new_dev = _deviance_from_eta(ylogy, ya, eta, mu, ma)
+        done = np.abs(new_dev - dev) <= _TOL * (np.abs(new_dev) + 0.1)
+        if done.any():
+            final = idx[done]
+            wd = ma[done] * mu[done]
+            _, inv_schur, _ = _weighted_fit(wd, eta[done], tc, onehot)
+            pearson = (ma[done] * (ya[done] - mu[done]) ** 2 / mu[done]).sum(axis=1)
+            converged[final] = True
+            r[final] = slope[done]
+            var_r[final] = inv_schur
+            phi[final] = pearson / (n_obs[final] - p)
+        keep = ~done & np.isfinite(new_dev)
+        idx, ya, ma, ylogy = idx[keep], ya[keep], ma[keep], ylogy[keep]
+        mu, eta, dev = mu[keep], eta[keep], new_dev[keep]
     return r, var_r, phi, converged
 
 
-def _solve(lhs: FloatArray, rhs: FloatArray) -> FloatArray:
-    try:
-        out = np.linalg.solve(lhs, rhs[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        out = (np.linalg.pinv(lhs) @ rhs[..., None])[..., 0]
-    return np.asarray(out, dtype=np.float64)
+def _weighted_fit(
+    w: FloatArray, z: FloatArray, tc: FloatArray, onehot: FloatArray
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Weighted least squares of z on one intercept per level and the slope of ``tc``.
 
-
-def _inverse(lhs: FloatArray) -> FloatArray:
-    try:
-        out = np.linalg.inv(lhs)
-    except np.linalg.LinAlgError:
-        out = np.linalg.pinv(lhs)
-    return np.asarray(out, dtype=np.float64)
-
-
-def _deviance(y: FloatArray, mu: FloatArray, m: FloatArray) -> FloatArray:
+    Returns the slope, the inverse Schur complement (the slope's unscaled variance) and the
+    level intercepts. With level sums :math:`W_k, C_k, Z_k` of :math:`w, w t, w z`:
+    :math:`r = (B - \\sum_k C_k Z_k / W_k) / (S - \\sum_k C_k^2 / W_k)` where
+    :math:`S = \\sum w t^2`, :math:`B = \\sum w t z`, and :math:`a_k = (Z_k - C_k r) / W_k`.
+    """
+    wt = w * tc
+    big_w = w @ onehot
+    big_c = wt @ onehot
+    big_z = (w * z) @ onehot
     with np.errstate(divide="ignore", invalid="ignore"):
-        term = np.where(y > 0, y * np.log(y / mu), 0.0) - (y - mu)
-    return 2.0 * (m * term).sum(axis=1)
+        ratio = big_c / big_w
+        schur = (wt * tc).sum(axis=1) - (ratio * big_c).sum(axis=1)
+        slope = ((wt * z).sum(axis=1) - (ratio * big_z).sum(axis=1)) / schur
+        intercepts = (big_z - big_c * slope[:, None]) / big_w
+        inv_schur = 1.0 / schur
+    return slope, inv_schur, intercepts
+
+
+def _deviance_from_eta(ylogy: FloatArray, y: FloatArray, eta: FloatArray, mu: FloatArray,
+                       m: FloatArray) -> FloatArray:
+    """:func:`_deviance` with ``log mu = eta`` and ``y log y`` (0 where y = 0) precomputed."""
+    return 2.0 * (m * (ylogy - y * eta - (y - mu))).sum(axis=1)
 
 
 def _doubling(r: FloatArray, lo: FloatArray, hi: FloatArray) -> tuple[FloatArray, ...]:

@@ -280,10 +280,12 @@ def project_icu(
     projections = []
     admissions = np.empty((regions, horizon + 1))
     for i, r in enumerate(rates):
-        adm = a0[:, np.newaxis] * np.exp(r[:, np.newaxis] * h[np.newaxis, :])
+        with np.errstate(over="ignore", invalid="ignore"):  # huge r: unbounded (inf) projection
+            adm = a0[:, np.newaxis] * np.exp(r[:, np.newaxis] * h[np.newaxis, :])
+            occupancy = o0[:, np.newaxis] * remain[np.newaxis, :] + adm @ kernel.T
         if i == 0:
             admissions = adm
-        projections.append(o0[:, np.newaxis] * remain[np.newaxis, :] + adm @ kernel.T)
+        projections.append(occupancy)
     est, lo, hi = projections
     lo, hi = np.minimum(lo, hi), np.maximum(lo, hi)
 

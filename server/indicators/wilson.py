@@ -15,14 +15,12 @@ from scipy import special
 
 from server.indicators._arrays import (
     FloatArray,
+    IntArray,
     as_nonnegative_counts,
     as_population,
     check_level,
-    check_window,
-)
-from server.indicators.windows import (
-    IntArray,
     check_max_missing,
+    check_window,
     freeze_arrays,
     windowed_total,
 )

@@ -17,16 +17,23 @@ carry the scale factor ``w / n_obs`` separately.
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
 from epiweeks import Week
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import ArrayLike
 
-from server.indicators._arrays import FloatArray, as_regions_days, check_window
+from server.indicators._arrays import (
+    FloatArray,
+    IntArray,
+    as_regions_days,
+    check_max_missing,
+    check_window,
+    freeze_arrays,
+    windowed_total,
+)
 
-IntArray = NDArray[np.int64]
 WeekSystem = Literal["iso", "cdc"]
 
 __all__ = [
@@ -36,14 +43,6 @@ __all__ = [
     "rolling_sum",
     "weekly_sum",
 ]
-
-
-def freeze_arrays(result: object) -> None:
-    """Make every numpy array field of a dataclass instance read-only (private helper)."""
-    for field in fields(result):  # type: ignore[arg-type]
-        value = getattr(result, field.name)
-        if isinstance(value, np.ndarray):
-            value.setflags(write=False)
 
 
 @dataclass(frozen=True, eq=False)
@@ -107,49 +106,6 @@ class WeeklySeries:
 
     def __post_init__(self) -> None:
         freeze_arrays(self)
-
-
-def check_max_missing(max_missing: int, window: int) -> int:
-    """Check ``0 <= max_missing < window`` (private helper shared by the indicator modules)."""
-    if (
-        isinstance(max_missing, bool)
-        or not isinstance(max_missing, (int, np.integer))
-        or not 0 <= max_missing < window
-    ):
-        raise ValueError(
-            f"max_missing: must be an integer in [0, {window - 1}] for window {window}, "
-            f"got {max_missing!r}"
-        )
-    return int(max_missing)
-
-
-def trailing_totals(values: FloatArray, window: int) -> tuple[FloatArray, IntArray]:
-    """Trailing-window sum of observed values and count of observed days (private helper).
-
-    Uses cumulative sums along axis 1, so the cost is O(regions * days) for any window; integer
-    counts stay exact (float64 holds integers exactly up to 2**53). Days before the start of the
-    series count as missing.
-    """
-    observed = ~np.isnan(values)
-    filled = np.where(observed, values, 0.0)
-    total = np.cumsum(filled, axis=1)
-    count = np.cumsum(observed, axis=1, dtype=np.int64)
-    if window < values.shape[1]:
-        total[:, window:] -= total[:, :-window].copy()
-        count[:, window:] -= count[:, :-window].copy()
-    return total, count
-
-
-def windowed_total(
-    values: FloatArray, window: int, max_missing: int
-) -> tuple[FloatArray, FloatArray, IntArray]:
-    """Observed total, scale factor ``w / n_obs`` and observed days, NaN where refused (private)."""
-    total, count = trailing_totals(values, window)
-    refused = count < window - max_missing
-    with np.errstate(divide="ignore", invalid="ignore"):
-        factor = np.where(refused, np.nan, window / np.maximum(count, 1))
-    total = np.where(refused, np.nan, total)
-    return total, factor, count
 
 
 def rolling_sum(values: ArrayLike, window: int = 7, *, max_missing: int = 0) -> WindowedSeries:

@@ -21,7 +21,9 @@ from typing import Literal, TypeVar
 import numpy as np
 from numpy.typing import NDArray
 
-from server.indicators import aberration, curves, growth, hospital, nowcast, renewal, wastewater
+from server.indicators import aberration, curves, growth, hospital, renewal, wastewater
+from server.indicators.nowcast import cumulative_triangle
+from server.indicators.nowcast import nowcast as chain_ladder_nowcast
 from server.indicators.poisson import incidence_rate
 from server.indicators.serial_interval import (
     SerialInterval,
@@ -549,8 +551,8 @@ def nowcast_table(
     cols = delay_columns(list(source.values))
     tri = np.stack([source.values[c] for c in cols], axis=1)  # (ref_days, delays)
     if increments:
-        tri = nowcast.cumulative_triangle(tri)[0]
-    res = _checked(lambda: nowcast.nowcast(tri, level=level, window=delay_window))
+        tri = cumulative_triangle(tri)[0]
+    res = _checked(lambda: chain_ladder_nowcast(tri, level=level, window=delay_window))
     return _table("nowcast", source, {
         "nowcast": res.estimate[0], "nowcast_lower": res.lower[0], "nowcast_upper": res.upper[0],
         "known": res.known[0], "reported_share": res.reported[0],

@@ -7,12 +7,12 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy import stats
 
-from server.indicators.renewal import (
+from server.indicators.renewal import reproduction_number
+from server.indicators.serial_interval import (
     discrete_serial_interval,
     gamma_serial_interval,
     growth_to_reproduction,
     growth_to_reproduction_discrete,
-    reproduction_number,
 )
 
 

@@ -7,12 +7,11 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy import integrate, stats
 
-from server.indicators.renewal import (
+from server.indicators.renewal import infectiousness, reproduction_number
+from server.indicators.serial_interval import (
     discrete_serial_interval,
     gamma_serial_interval,
     growth_to_reproduction,
-    infectiousness,
-    reproduction_number,
     reproduction_to_growth,
 )
 

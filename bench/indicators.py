@@ -1,0 +1,193 @@
+"""Benchmark: every indicator for many regions x days, against plain per-region loops.
+
+Run ``.venv/bin/python bench/indicators.py`` (3 000 regions x 1 096 days) or with
+``--regions 300 --days 400`` for a quick run. Data are invented and seeded (Poisson counts around a
+random walk of log incidence). Each baseline is a plain loop over regions with pandas, scipy or
+statsmodels, timed on a subsample in the same run and scaled to all regions. Prints only; no test
+asserts timings.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import time
+from collections.abc import Callable
+
+import numpy as np
+import pandas as pd
+import statsmodels.api as sm
+from scipy import stats
+from statsmodels.stats.proportion import proportion_confint
+
+from server.indicators import (
+    capacity_crossing,
+    ears,
+    farrington_flexible,
+    fit_growth_curve,
+    gamma_serial_interval,
+    incidence_rate,
+    length_of_stay,
+    nowcast,
+    positivity,
+    project_icu,
+    reproduction_number,
+    rolling_growth_rate,
+    smooth,
+    trend,
+    weekly_sum,
+)
+from server.indicators import level as ww_level
+from server.indicators.growth import design_matrix
+
+RT_TARGET_S = 1.0
+FULL_TARGET_S = 15.0
+
+
+def synthetic(regions: int, days: int, seed: int = 2024) -> dict[str, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    walk = np.cumsum(rng.normal(0.0, 0.03, (regions, days)), axis=1)
+    lam = rng.gamma(2.0, 30.0, (regions, 1)) * np.exp(walk)
+    cases = rng.poisson(lam).astype(float)
+    tests = cases * 8 + rng.poisson(300, (regions, days))
+    conc = np.where(np.arange(days) % 2 == 0, lam * np.exp(rng.normal(0, 0.2, lam.shape)), np.nan)
+    return {
+        "cases": cases, "tests": tests, "log_ww": np.log(conc * 1e3),
+        "admissions": rng.poisson(lam / 40.0).astype(float),
+    }
+
+
+def timed(func: Callable[[], object]) -> float:
+    start = time.perf_counter()
+    func()
+    return time.perf_counter() - start
+
+
+def baseline_rt(cases: np.ndarray, w: np.ndarray) -> None:
+    for row in cases:  # plain loop: one region at a time, scipy quantiles
+        lam = np.convolve(row, w)[: row.size]
+        inc = pd.Series(row).rolling(7).sum().to_numpy()
+        tot = pd.Series(lam).rolling(7).sum().to_numpy()
+        shape, rate = 1.0 + inc, 0.2 + tot
+        stats.gamma.ppf([[0.025], [0.975]], shape, scale=1.0 / rate)
+
+
+def baseline_incidence(cases: np.ndarray) -> None:
+    for row in cases:
+        x = pd.Series(row).rolling(7).sum().to_numpy()
+        stats.chi2.ppf(0.025, 2 * x) / 2, stats.chi2.ppf(0.975, 2 * x + 2) / 2
+
+
+def baseline_positivity(pos: np.ndarray, tests: np.ndarray) -> None:
+    for p, n in zip(pos, tests, strict=True):
+        x = pd.Series(p).rolling(7).sum().to_numpy()[6:]
+        t = pd.Series(n).rolling(7).sum().to_numpy()[6:]
+        proportion_confint(x, t, method="wilson")
+
+
+def baseline_growth(cases: np.ndarray) -> None:
+    x = design_matrix(14)
+    for row in cases:
+        for end in range(13, row.size):
+            sm.GLM(row[end - 13 : end + 1], x, family=sm.families.Poisson()).fit(scale="X2")
+
+
+def baseline_ears(cases: np.ndarray) -> None:
+    for row in cases:
+        s = pd.Series(row)
+        mean, sd = s.rolling(7).mean().shift(1), s.rolling(7).std().shift(1)
+        ((s - mean) / sd.clip(lower=0.2)).to_numpy()
+
+
+def baseline_trend(log_ww: np.ndarray) -> None:
+    for row in log_ww:
+        for end in range(row.size):
+            y = row[max(0, end - 14) : end + 1]
+            ok = np.isfinite(y)
+            if ok.sum() >= 3:
+                stats.linregress(np.flatnonzero(ok), y[ok])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--regions", type=int, default=3000)
+    parser.add_argument("--days", type=int, default=1096)
+    parser.add_argument("--sample", type=int, default=5, help="regions in each baseline loop")
+    args = parser.parse_args()
+    regions, days = args.regions, args.days
+    data = synthetic(regions, days)
+    cases, tests, log_ww = data["cases"], data["tests"], data["log_ww"]
+    si = gamma_serial_interval(4.7, 2.9)
+    sample = min(args.sample, regions)
+    scale = regions / sample
+    growth_sample = 1
+
+    print(f"regions x days: {regions} x {days}; baselines on {sample} regions "
+          f"(growth: {growth_sample}), scaled to all regions")
+    rows: list[tuple[str, float, float | None]] = []
+
+    def bench(name: str, ours: Callable[[], object], base: Callable[[], object] | None,
+              base_scale: float = scale) -> float:
+        t = timed(ours)
+        b = timed(base) * base_scale if base is not None else None
+        rows.append((name, t, b))
+        ratio = f"baseline {b:8.2f} s  ratio {b / t:7.1f}x" if b is not None else "(no baseline)"
+        print(f"{name:<24} {t:8.3f} s   {ratio}", flush=True)
+        return t
+
+    t_rt = bench("rt (Cori)", lambda: reproduction_number(cases, si),
+                 lambda: baseline_rt(cases[:sample], si.pmf))
+    bench("incidence (Garwood)", lambda: incidence_rate(cases, 1e5),
+          lambda: baseline_incidence(cases[:sample]))
+    bench("positivity (Wilson)", lambda: positivity(cases, tests),
+          lambda: baseline_positivity(cases[:sample], tests[:sample]))
+    growth_holder: dict[str, object] = {}
+
+    def run_growth() -> None:
+        growth_holder["g"] = rolling_growth_rate(cases)
+
+    bench("growth (IRLS)", run_growth, lambda: baseline_growth(cases[:growth_sample]),
+          base_scale=regions / growth_sample)
+    bench("ears C1", lambda: ears(cases, method="C1"), lambda: baseline_ears(cases[:sample]))
+    bench("farrington (weekly)",
+          lambda: farrington_flexible(weekly_sum(cases, dt.date(2021, 1, 4)).values), None)
+    bench("wastewater smooth", lambda: smooth(log_ww, neighbours=5), None)
+    bench("wastewater trend", lambda: trend(log_ww), lambda: baseline_trend(log_ww[:sample]))
+    bench("wastewater level", lambda: ww_level(log_ww), None)
+
+    def run_icu() -> None:
+        g = rolling_growth_rate(data["admissions"], day_of_week=False)
+        last = -1
+        a0 = np.nanmean(data["admissions"][:, -7:], axis=1)
+        proj = project_icu(a0, a0 * 9, np.full(regions, 400.0), np.nan_to_num(g.estimate[:, last]),
+                           np.nan_to_num(g.lower[:, last]), np.nan_to_num(g.upper[:, last]),
+                           los=length_of_stay())
+        capacity_crossing(proj)
+
+    bench("icu projection", run_icu, None)
+    delays = 15
+    ref = min(60, days)
+    rng = np.random.default_rng(5)
+    share = np.cumsum(rng.dirichlet(np.ones(delays), (regions, ref)), axis=2)
+    tri = np.round(cases[:, -ref:, None] * share)
+    tri[:, np.arange(ref)[:, None] + np.arange(delays)[None, :] > ref - 1] = np.nan
+    bench("nowcast (60 days)", lambda: nowcast(tri), None)
+    daily_total = sum(t for _, t, _ in rows)
+
+    curve_sample = min(sample, regions)
+    t_curve = timed(lambda: fit_growth_curve(cases[:curve_sample, -120:], n_boot=0)) * (
+        regions / curve_sample
+    )
+    print(f"{'curve fit (120 days)':<24} {t_curve:8.3f} s   scaled from {curve_sample} regions "
+          "(one fit per region; analyst tool, not in the daily set)")
+
+    print(f"daily indicator set:     {daily_total:8.3f} s")
+    print(f"target rt < {RT_TARGET_S:g} s: {'met' if t_rt < RT_TARGET_S else 'NOT met'} "
+          f"({t_rt:.3f} s)")
+    print(f"target full set < {FULL_TARGET_S:g} s: "
+          f"{'met' if daily_total < FULL_TARGET_S else 'NOT met'} ({daily_total:.3f} s, "
+          "curve fit excluded)")
+
+
+if __name__ == "__main__":
+    main()
