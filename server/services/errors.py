@@ -48,3 +48,7 @@ class NotADemoDatabaseError(ServiceError, RuntimeError):
             f"{url} holds regions that the demo did not create; refusing to overwrite it. "
             "Point TIERWISE_DATABASE_URL at an empty or demo database."
         )
+
+
+class EstimateOptionError(ServiceError, ValueError):
+    """An option of the estimate use case is out of range; names the option and its value."""

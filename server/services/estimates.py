@@ -32,7 +32,7 @@ from server.indicators.serial_interval import (
 )
 from server.indicators.wilson import positivity as wilson_positivity
 from server.indicators.windows import weekly_sum
-from server.services.errors import InputFileError, ServiceError
+from server.services.errors import EstimateOptionError, InputFileError
 
 FloatArray = NDArray[np.float64]
 T = TypeVar("T")
@@ -67,13 +67,6 @@ KINDS = (
     "curve-fit", "nowcast",
 )
 _MISSING_TOKENS = frozenset({"", "na", "nan", "null"})
-
-
-class EstimateOptionError(ServiceError, ValueError):
-    """An option of the estimate use case is out of range; names the option and its value."""
-
-    def __init__(self, message: str) -> None:
-        super().__init__(message)
 
 
 @dataclass(frozen=True)
