@@ -46,12 +46,16 @@ class EngineState:
         Tiers decided on the last days, oldest first; the oldest is the tier in force tomorrow.
     signals : SignalState
         Prepare-signal runs.
+    above, below : int32 array, (criteria, regions)
+        Each criterion's consecutive days above / below the tier held.
     """
 
     tiers: TierState
     levels: NDArray[np.int8]
     history: NDArray[np.int32]
     signals: SignalState
+    above: NDArray[np.int32]
+    below: NDArray[np.int32]
 
     @classmethod
     def initial(cls, ruleset: Ruleset, n_regions: int, tier: int = 0) -> EngineState:
@@ -61,11 +65,14 @@ class EngineState:
         tops = np.array([c.thresholds.max_level for c in ruleset.criteria], dtype=np.int8)
         levels = np.repeat(np.minimum(tops, tier)[:, np.newaxis], n_regions, axis=1)
         history = np.full((ruleset.timing.effective_delay_days, n_regions), tier, dtype=np.int32)
+        zeros = np.zeros((len(ruleset.criteria), n_regions), dtype=np.int32)
         return cls(
             tiers=TierState.initial(n_regions, tier),
             levels=levels.astype(np.int8),
             history=history,
             signals=SignalState.initial(len(ruleset.prepare), n_regions),
+            above=zeros,
+            below=zeros.copy(),
         )
 
 
@@ -87,6 +94,10 @@ class Evaluation:
         All gates passed. ``gates`` is ``(gates, regions, days)``.
     levels, known, reason : arrays ``(criteria, regions, days)``
         Criterion level, whether it was known, and why not (:mod:`rules.levels` reason codes).
+    above, below : int32 arrays ``(criteria, regions, days)``
+        Per-criterion counters: consecutive days (up to and including the day) on which the
+        criterion was known and its level above / below the tier held that morning (the tier
+        decided the day before). An unknown day ends the run; a day whose gate fails freezes it.
     prepare, prepare_run : arrays ``(signals, regions, days)``
         Whether each prepare signal shows, and its current run length.
     """
@@ -110,7 +121,10 @@ class Evaluation:
     reason: NDArray[np.int8]
     prepare: NDArray[np.bool_]
     prepare_run: NDArray[np.int32]
+    above: NDArray[np.int32]
+    below: NDArray[np.int32]
     start_tier: NDArray[np.int32]
+    start_in_force: NDArray[np.int32]
     final_state: EngineState
     criterion_levels: CriterionLevels = field(repr=False)
 
@@ -229,6 +243,9 @@ def evaluate(
             max_level[t] = max(int(max_level[t]), cond.patch.thresholds.max_level)
     n_c = len(ids)
     levels_out = np.empty((n_d, n_c, n_r), dtype=np.int8)
+    above_out = np.empty((n_d, n_c, n_r), dtype=np.int32)
+    below_out = np.empty((n_d, n_c, n_r), dtype=np.int32)
+    above, below = state.above.copy(), state.below.copy()
     out = {
         k: np.empty((n_d, n_r), dtype=np.int32)
         for k in ("decided", "cand", "low", "high", "up", "down", "since")
@@ -248,6 +265,10 @@ def evaluate(
             new[tgt] = np.where(on, alt, new[tgt])
         cur = np.where(kn, new, prev).astype(np.int8)
         low, high = candidate_bounds(cur, kn, max_level, comb, weights, cutoffs)
+        ok = ok_t[d]
+        above = np.where(ok, np.where(kn & (cur > held), above + 1, 0), above)
+        below = np.where(ok, np.where(kn & (cur < held), below + 1, 0), below)
+        above_out[d], below_out[d] = above, below
         tiers, cand = step_tiers(tiers, low, high, ok_t[d], ruleset.timing)
         levels_out[d] = cur
         prev = cur
@@ -267,7 +288,10 @@ def evaluate(
         levels=prev,
         history=history[history.shape[0] - delay :].astype(np.int32),
         signals=sig_state,
+        above=above.astype(np.int32),
+        below=below.astype(np.int32),
     )
+    start_in_force = state.history[0] if delay else state.tiers.tier
     return Evaluation(
         ruleset=ruleset,
         regions=tuple(regions),
@@ -288,7 +312,10 @@ def evaluate(
         reason=lv.reason.transpose(1, 2, 0).copy(),
         prepare=shown,
         prepare_run=run,
+        above=above_out.transpose(1, 2, 0).copy(),
+        below=below_out.transpose(1, 2, 0).copy(),
         start_tier=state.tiers.tier.copy(),
+        start_in_force=np.asarray(start_in_force, dtype=np.int32).copy(),
         final_state=final,
         criterion_levels=lv,
     )

@@ -1,9 +1,19 @@
 """Explanations of one region and day, built on demand from an :class:`Evaluation`.
 
 An :class:`Explanation` has a JSON-ready ``data`` dict (which criteria, values and bounds,
-thresholds, counters, gates, signals, and what held a change back) and a plain ``sentence``, e.g.
-"Raised from 1 to 2 on 2031-05-14: 7-day incidence 162 (148–177) per 100 000 over the enter
-threshold 150 for 3 of 3 days; positivity 8.1% under 10%."
+thresholds, counters, gates, signals, and what held a change back) and a plain ``sentence``. The
+sentence speaks of the tier *in force* on the day:
+
+* the day a move takes effect: "Raised from 1 to 2 on 2031-05-14: 7-day incidence 162 (148–177)
+  per 100 000 over the enter threshold 150 for 3 of 3 days; positivity 8.1% under 10% (decided on
+  2031-05-13)." The criteria are described as they stood on the day of the decision;
+* a day a move is decided but not yet in force: "Held at 1: raise to 2 decided on 2031-05-13, in
+  force from 2031-05-14: ...";
+* a day a move is held back: "Held at 2: 9 of 14 release days so far (...)", "Held at 2: 3 of 7
+  minimum days in tier (...)", "Held at 0: 2 of 3 confirmation days so far for tier 1 (...)",
+  "Held at 2: wastewater data 5 days old.";
+* otherwise "Stays at k: ..." with the criteria that hold tier k first ("over the enter threshold",
+  or "held above the exit threshold" inside the hysteresis band), then the others.
 """
 
 from __future__ import annotations
@@ -62,9 +72,9 @@ def _unit(spec: IndicatorSpec, text: str) -> str:
     return text + spec.unit if spec.unit.startswith("%") else f"{text} {spec.unit}"
 
 
-def _value_text(spec: IndicatorSpec, item: dict[str, Any], statistic: str) -> str:
+def _value_text(spec: IndicatorSpec, item: dict[str, Any]) -> str:
     text = _fmt(spec, item["value"])
-    if statistic == "bounds" and item["lower"] is not None and item["upper"] is not None:
+    if item["statistic"] == "bounds" and item["lower"] is not None and item["upper"] is not None:
         text += f" ({_fmt(spec, item['lower'])}–{_fmt(spec, item['upper'])})"
     return _unit(spec, text)
 
@@ -75,11 +85,13 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
     lv = ev.criterion_levels
     th: RegionThresholds = lv.thresholds[c]
     conditioned = None
+    enter_level = int(lv.enter_level[d, c, r])
     for j, (src, lvl, tgt) in enumerate(
         zip(lv.cond_source, lv.cond_level, lv.cond_target, strict=True)
     ):
         if tgt == c and ev.levels[src, r, d] >= lvl:
             th, conditioned = lv.cond_thresholds[j], ev.ruleset.criteria[src].id
+            enter_level = int(lv.cond_enter_level[j, d, r])
     age = None if series.age_days is None else _num(series.age_days[r, d])
     return {
         "id": crit.id,
@@ -93,8 +105,11 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
         "count": None if series.count is None else _num(series.count[r, d]),
         "age_days": age,
         "level": int(ev.levels[c, r, d]),
+        "enter_level": enter_level,
         "known": bool(ev.known[c, r, d]),
         "status": _REASONS[int(ev.reason[c, r, d])],
+        "above_days": int(ev.above[c, r, d]),
+        "below_days": int(ev.below[c, r, d]),
         "enter": [_num(v) for v in th.enter[:, r]],
         "exit": [_num(v) for v in th.exit[:, r]],
         "min_count": _num(th.min_count[r]),
@@ -111,38 +126,82 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
     return f"{label} data {item['status']}"
 
 
-def _against(ev: Evaluation, item: dict[str, Any], tier: int, kind: str) -> str:
-    """'<label> <value> over/under [the <kind> threshold] <t>' for tier ``tier``."""
+def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> float | None:
+    values = item[kind]
+    return values[tier - 1] if 1 <= tier <= len(values) else None
+
+
+def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
-    value = _value_text(spec, item, item["statistic"])
-    thr = item[kind][tier - 1] if 1 <= tier <= len(item[kind]) else None
-    if thr is None:
-        return f"{item['label']} {value}"
-    met = item["level"] >= tier
+    return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
+
+
+def _days(k: int, n: int | None) -> str:
+    return f" for {k} of {n} days" if n is not None and k <= n else f" for {k} days"
+
+
+def _describe(
+    ev: Evaluation, item: dict[str, Any], tier: int, *, named: int, counter: int | None = None
+) -> str:
+    """One criterion relative to the tier ``tier`` held (see the module docstring).
+
+    Thresholds of tier ``named`` are written without their tier number; ``counter`` is the
+    period the day counts are shown against (confirmation or release days).
+    """
+    spec = ev.ruleset.indicator(item["indicator"])
+    head = f"{item['label']} {_value_text(spec, item)}"
+    if item["status"] == "count below minimum":
+        count = "n/a" if item["count"] is None else f"{item['count']:g}"
+        return f"{head} inactive (count {count} under the minimum {item['min_count']:g})"
     rising = item["direction"] == "rising"
-    word = ("over" if met else "under") if rising else ("under" if met else "over")
-    if item["statistic"] == "bounds" and kind == "enter" and not met:
-        word = ("lower bound " if rising else "upper bound ") + word
-    name = f"the {kind} threshold " if kind == "exit" or met else ""
-    thr_text = f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
-    return f"{item['label']} {value} {word} {name}{thr_text}"
+    over, under = ("over", "under") if rising else ("under", "over")
+    bound = item["statistic"] == "bounds"
+    level = item["level"]
+
+    def name(kind: str, k: int) -> str:
+        thr = _threshold(ev, item, kind, k)
+        label = "" if k == named else f"tier-{k} "
+        return f"the {label}{kind} threshold {_thr_text(ev, item, thr or 0.0)}"
+
+    if level > tier:
+        return f"{head} {over} {name('enter', level)}" + _days(item["above_days"], counter)
+    if level < tier:
+        thr = _threshold(ev, item, "exit", tier)
+        if thr is None:  # the criterion cannot reach this tier at all
+            return f"{head}, at its top tier {level}" if level else head
+        word = (", upper bound " if rising else ", lower bound ") + under if bound else f" {under}"
+        return f"{head}{word} {name('exit', tier)}" + _days(item["below_days"], counter)
+    if level >= 1:
+        if item["enter_level"] >= level:
+            return f"{head} {over} {name('enter', level)}"
+        held = "held above" if rising else "held below"
+        if bound:
+            return f"{head}, {'upper' if rising else 'lower'} bound {held} {name('exit', level)}"
+        return f"{head} {held} {name('exit', level)}"
+    return _short_of(ev, item, 1)
 
 
-def explain(ev: Evaluation, r: int, d: int) -> Explanation:
-    """Build the explanation of region index ``r`` on day index ``d``."""
-    rs, timing = ev.ruleset, ev.ruleset.timing
-    date = str(ev.dates[d])
-    decided = int(ev.decided[r, d])
-    previous = int(ev.decided[r, d - 1]) if d > 0 else int(ev.start_tier[r])
-    tier = int(ev.tier[r, d])
-    cand = int(ev.candidate[r, d])
-    items = [_criterion_item(ev, c, r, d) for c in range(len(rs.criteria))]
-    gates: list[dict[str, Any]] = []
-    for g, gate in enumerate(rs.gates):
+def _short_of(ev: Evaluation, item: dict[str, Any], tier: int) -> str:
+    """'<label> <value> under <enter threshold of tier>' for a criterion below ``tier``."""
+    spec = ev.ruleset.indicator(item["indicator"])
+    head = f"{item['label']} {_value_text(spec, item)}"
+    thr = _threshold(ev, item, "enter", tier)
+    if thr is None:
+        return head
+    rising = item["direction"] == "rising"
+    under = "under" if rising else "over"
+    bound = item["statistic"] == "bounds"
+    word = (", lower bound " if rising else ", upper bound ") + under if bound else f" {under}"
+    return f"{head}{word} {_thr_text(ev, item, thr)}"
+
+
+def _gate_items(ev: Evaluation, r: int, d: int) -> list[dict[str, Any]]:
+    out = []
+    for g, gate in enumerate(ev.ruleset.gates):
         value = None
         if gate.indicator is not None:
             value = _num(ev.indicators[gate.indicator].estimate[r, d])
-        gates.append(
+        out.append(
             {
                 "id": gate.id,
                 "passed": bool(ev.gates[g, r, d]),
@@ -154,6 +213,124 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
                 "message": gate.message,
             }
         )
+    return out
+
+
+def _insufficient(ev: Evaluation, date: str, gates: list[dict[str, Any]], unknown: list) -> str:  # type: ignore[type-arg]
+    parts = []
+    for gi in gates:
+        if gi["passed"]:
+            continue
+        if gi["indicator"] is not None:
+            spec = ev.ruleset.indicator(gi["indicator"])
+            val = "missing" if gi["value"] is None else _unit(spec, _fmt(spec, gi["value"]))
+            need = gi["op"].replace("_", " ")
+            parts.append(
+                f"{spec.label} {val}, needs {need} {_unit(spec, _fmt(spec, gi['threshold']))}"
+            )
+        else:
+            parts.append(
+                ", ".join(_unknown_text(ev, it) for it in unknown if it["id"] in gi["known"])
+                or gi["id"]
+            )
+    return f"Insufficient data on {date}: {'; '.join(parts)}."
+
+
+def _ordered(items: list[dict[str, Any]], tier: int) -> list[dict[str, Any]]:
+    """Known criteria, those at or above ``tier`` (the ones holding it) first."""
+    known = [it for it in items if it["known"]]
+    return sorted(known, key=lambda it: (it["level"] < tier or tier == 0, -it["level"]))
+
+
+def _move(ev: Evaluation, r: int, dd: int, previous: int, new: int) -> tuple[str, str]:
+    """(action, criteria text) of the move from ``previous`` to ``new`` decided on day ``dd``."""
+    timing = ev.ruleset.timing
+    items = [_criterion_item(ev, c, r, dd) for c in range(len(ev.ruleset.criteria))]
+    if new > previous:
+        drivers = [
+            _describe(ev, it, previous, named=new, counter=timing.confirm_days)
+            for it in _ordered(items, new)
+            if it["level"] >= new
+        ]
+        others = [
+            _short_of(ev, it, new)
+            for it in _ordered(items, new)
+            if it["level"] < new and it["status"] == "ok"
+        ]
+        text = "; ".join(drivers) or f"candidate {new}"
+        return "raised", text + ("; " + "; ".join(others) if others else "")
+    below = sorted(
+        (it for it in _ordered(items, previous) if it["level"] < previous),
+        key=lambda it: it["below_days"],
+    )  # the criterion released last decided the day
+    released = [
+        _describe(ev, it, previous, named=previous, counter=timing.release_days) for it in below
+    ]
+    text = "; ".join(released) or f"candidate {new}"
+    if timing.max_steps_down is not None and previous - new == timing.max_steps_down:
+        cand = int(ev.candidate[r, dd])
+        if cand < new:
+            text += f" (at most {timing.max_steps_down} step(s) down at once; candidate {cand})"
+    return "lowered", text
+
+
+def _held(ev: Evaluation, r: int, d: int, tier: int, items: list[dict[str, Any]]) -> list[str]:
+    """What held a change of the decided ``tier`` back on day ``d`` (empty: nothing)."""
+    timing = ev.ruleset.timing
+    cand = int(ev.candidate[r, d])
+    held_by: list[str] = []
+    if cand > tier:
+        push = [
+            _describe(ev, it, tier, named=cand)
+            for it in _ordered(items, cand)
+            if it["level"] > tier
+        ]
+        held_by.append(
+            f"{int(ev.up[r, d])} of {timing.confirm_days} confirmation days so far for tier {cand}"
+            + (f" ({'; '.join(push)})" if push else "")
+        )
+    elif cand < tier:
+        since, down = int(ev.since[r, d]), int(ev.down[r, d])
+        pull = [
+            _describe(ev, it, tier, named=tier)
+            for it in _ordered(items, tier)
+            if it["level"] < tier
+        ]
+        detail = f" ({'; '.join(pull)})" if pull else ""
+        if down < timing.release_days:
+            held_by.append(f"{down} of {timing.release_days} release days so far{detail}")
+        elif since < timing.min_days_in_tier:
+            held_by.append(
+                f"{since} of {timing.min_days_in_tier} minimum days in tier "
+                f"({timing.release_days} of {timing.release_days} release days met)"
+            )
+    low, high = int(ev.candidate_low[r, d]), int(ev.candidate_high[r, d])
+    if cand == tier and low < tier <= high:
+        held_by += [_unknown_text(ev, it) for it in items if not it["known"]]
+    return held_by
+
+
+def _pending(ev: Evaluation, r: int, d: int) -> int | None:
+    """Day index of a decided move not yet in force on day ``d`` (None when there is none)."""
+    delay = ev.ruleset.timing.effective_delay_days
+    for k in range(d, max(d - delay, -1), -1):
+        before = int(ev.decided[r, k - 1]) if k > 0 else int(ev.start_tier[r])
+        if int(ev.decided[r, k]) != before:
+            return k
+    return None
+
+
+def explain(ev: Evaluation, r: int, d: int) -> Explanation:
+    """Build the explanation of region index ``r`` on day index ``d``."""
+    rs, timing = ev.ruleset, ev.ruleset.timing
+    delay = timing.effective_delay_days
+    date = str(ev.dates[d])
+    decided = int(ev.decided[r, d])
+    tier = int(ev.tier[r, d])
+    previous = int(ev.tier[r, d - 1]) if d > 0 else int(ev.start_in_force[r])
+    cand = int(ev.candidate[r, d])
+    items = [_criterion_item(ev, c, r, d) for c in range(len(rs.criteria))]
+    gates = _gate_items(ev, r, d)
     signals: list[dict[str, Any]] = [
         {
             "id": s.id,
@@ -164,91 +341,48 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         for i, s in enumerate(rs.prepare)
     ]
     unknown = [it for it in items if not it["known"]]
-    effective = None
-    if decided != previous:
-        effective = str(ev.dates[d] + np.timedelta64(timing.effective_delay_days, "D"))
+    mentioned_unknown = False
     held_by: list[str] = []
+    decided_on: str | None = None
+    effective: str | None = None
     if tier == INSUFFICIENT_DATA:
         action = "insufficient"
-        parts = []
-        for gi in gates:
-            if gi["passed"]:
-                continue
-            if gi["indicator"] is not None:
-                spec = rs.indicator(gi["indicator"])
-                val = "missing" if gi["value"] is None else _unit(spec, _fmt(spec, gi["value"]))
-                need = gi["op"].replace("_", " ")
-                parts.append(
-                    f"{spec.label} {val}, needs {need} {_unit(spec, _fmt(spec, gi['threshold']))}"
-                )
-            else:
-                parts.append(
-                    ", ".join(_unknown_text(ev, it) for it in unknown if it["id"] in gi["known"])
-                    or gi["id"]
-                )
-        sentence = f"Insufficient data on {date}: {'; '.join(parts)}."
-    elif decided > previous:
-        action = "raised"
-        drivers = [
-            _against(ev, it, decided, "enter")
-            for it in items
-            if it["known"] and it["level"] >= decided
-        ]
-        others = [
-            _against(ev, it, decided, "enter")
-            for it in items
-            if it["known"] and it["level"] < decided and it["status"] == "ok"
-        ]
-        n = timing.confirm_days
-        sentence = (
-            f"Raised from {previous} to {decided} on {date}: "
-            f"{', '.join(drivers) or f'candidate {decided}'} for {n} of {n} days"
-        )
-        sentence += "; " + "; ".join(others) if others else ""
-    elif decided < previous:
-        action = "lowered"
-        released = [
-            _against(ev, it, previous, "exit")
-            for it in items
-            if it["known"] and it["level"] < previous
-        ]
-        n = timing.release_days
-        sentence = (
-            f"Lowered from {previous} to {decided} on {date}: "
-            f"{', '.join(released) or f'candidate {cand}'} for {n} of {n} days"
-        )
+        sentence = _insufficient(ev, date, gates, unknown)
+    elif previous != INSUFFICIENT_DATA and tier != previous:
+        dd = d - delay
+        decided_on, effective = (str(ev.dates[dd]) if dd >= 0 else None), date
+        if dd >= 0:
+            action, text = _move(ev, r, dd, previous, tier)
+        else:
+            action = "raised" if tier > previous else "lowered"
+            text = "decided before this period"
+        verb = "Raised" if action == "raised" else "Lowered"
+        sentence = f"{verb} from {previous} to {tier} on {date}: {text}"
+        if delay and decided_on is not None:
+            sentence += f" (decided on {decided_on})"
+    elif (k := _pending(ev, r, d)) is not None and int(ev.decided[r, d]) != tier and delay:
+        before = int(ev.decided[r, k - 1]) if k > 0 else int(ev.start_tier[r])
+        _kind, text = _move(ev, r, k, before, decided)
+        decided_on = str(ev.dates[k])
+        effective = str(ev.dates[k] + np.timedelta64(delay, "D"))
+        action = "decided"
+        word = "raise" if decided > tier else "lowering"
+        when = "today" if k == d else f"on {decided_on}"
+        sentence = f"Held at {tier}: {word} to {decided} decided {when}, in force from {effective}"
+        sentence += f": {text}"
+        held_by.append(f"{word} to {decided} in force from {effective}")
     else:
-        action = "held" if cand != decided or int(ev.candidate_low[r, d]) < decided else "unchanged"
-        if cand > decided:
-            held_by.append(
-                f"candidate {cand} for {int(ev.up[r, d])} of {timing.confirm_days} "
-                "confirmation days"
-            )
-        elif cand < decided:
-            since = int(ev.since[r, d])
-            if int(ev.down[r, d]) < timing.release_days:
-                held_by.append(f"{int(ev.down[r, d])} of {timing.release_days} release days so far")
-            elif since < timing.min_days_in_tier:
-                held_by.append(f"{since} of {timing.min_days_in_tier} minimum days in tier")
-        if (
-            int(ev.candidate_low[r, d]) < decided <= int(ev.candidate_high[r, d])
-            and cand == decided
-        ):
-            held_by += [_unknown_text(ev, it) for it in unknown]
+        held_by = _held(ev, r, d, decided, items)
+        mentioned_unknown = any("data" in h or "nowcast" in h for h in held_by)
+        action = "held" if held_by else "unchanged"
         if held_by:
             sentence = f"Held at {decided}: " + "; ".join(held_by)
         else:
-            shown = [
-                _against(ev, it, min(decided + 1, rs.top_tier), "enter")
-                for it in items
-                if it["known"]
-            ]
+            shown = [_describe(ev, it, decided, named=decided) for it in _ordered(items, decided)]
             sentence = f"Stays at {decided}" + (": " + "; ".join(shown) if shown else "")
     if action != "insufficient":
-        if effective is not None and timing.effective_delay_days:
-            sentence += f" (in force from {effective})"
         sentence += "."
-        if action in ("raised", "lowered") and unknown:
+        if unknown and not mentioned_unknown:
             sentence += " Unknown: " + "; ".join(_unknown_text(ev, it) for it in unknown) + "."
     active = [s for s in signals if s["active"]]
     if active:
@@ -261,9 +395,10 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         "ruleset": {"name": rs.name, "version": rs.version, "sha256": rs.sha256},
         "tier": tier,
         "tier_name": rs.tier_name(tier),
-        "decided": decided,
         "previous": previous,
+        "decided": decided,
         "action": action,
+        "decided_on": decided_on,
         "effective_date": effective,
         "candidate": cand,
         "candidate_low": int(ev.candidate_low[r, d]),

@@ -10,6 +10,7 @@ import typer
 
 from server.cli.estimate import estimate_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
+from server.cli.rules import backtest_command, evaluate_command, rules_app
 from server.config import Settings
 from server.services.database import Database
 
@@ -31,6 +32,9 @@ app.add_typer(db_app, name="db")
 app.add_typer(regions_app, name="regions")
 app.add_typer(users_app, name="users")
 app.command("estimate")(estimate_command)
+app.add_typer(rules_app, name="rules")
+app.command("backtest")(backtest_command)
+app.command("evaluate")(evaluate_command)
 
 
 def _settings(**overrides: object) -> Settings:

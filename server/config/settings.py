@@ -41,6 +41,10 @@ class Settings(BaseSettings):
         default=10, ge=1, description="Counts below this are shown as '<N' on public pages"
     )
     sql_echo: bool = Field(default=False, description="Log every SQL statement")
+    notify_file: Path | None = Field(
+        default=None,
+        description="Notification recipients YAML (webhooks and e-mail; default: none)",
+    )
 
     @field_validator("time_zone")
     @classmethod

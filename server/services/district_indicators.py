@@ -30,6 +30,7 @@ from server.indicators.serial_interval import gamma_serial_interval
 from server.indicators.wastewater import normalise, to_districts, trend
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
+from server.services.errors import ServiceError
 from server.store import read_dense
 from server.store.models import Catchment, Region
 
@@ -236,7 +237,7 @@ BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
 }
 
 
-class UnknownIndicatorError(ValueError):
+class UnknownIndicatorError(ServiceError, ValueError):
     def __init__(self, names: list[str]) -> None:
         super().__init__(
             f"the ruleset uses indicator(s) {', '.join(names)} that tierwise does not compute; "

@@ -152,7 +152,9 @@ def _store_assessments(
                 "ref_date": result.dates[d].astype(date),
                 "data_cutoff": cutoff,
                 "recommended_tier": int(result.tier[r, d]),
-                "previous_tier": int(result.tier[r, d - 1]) if d else int(result.start_tier[r]),
+                "previous_tier": (
+                    int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
+                ),
                 "criteria": {
                     cid: {
                         "level": int(result.levels[k, r, d]),
@@ -218,6 +220,79 @@ def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
     return out
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class LatestItem:
+    """A district's newest stored assessment and the first day of its current recommendation."""
+
+    region_id: int
+    code: str
+    name: str
+    assessment: Assessment
+    since: date
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class LatestRun:
+    """The newest stored evaluation of the active ruleset: one item per district."""
+
+    ruleset_row: RulesetRow
+    ruleset: Ruleset
+    data_cutoff: datetime
+    last_day: date
+    items: tuple[LatestItem, ...]
+
+
+def latest_assessment_rows(*, session: Session) -> LatestRun | None:
+    """Assessments of the last day under the active ruleset and newest cutoff, with run starts.
+
+    ``since`` is the first day of the trailing run of days with the same recommended tier.
+    """
+    row = active_ruleset(session=session)
+    if row is None:
+        return None
+    cutoff = session.scalar(
+        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
+        .where(Assessment.ruleset_id == row.id)
+    )
+    if cutoff is None:
+        return None
+    where = (Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff)
+    last_day = session.scalar(select(func.max(Assessment.ref_date)).where(*where))
+    if last_day is None:
+        return None
+    history = session.execute(
+        select(Assessment.region_id, Assessment.ref_date, Assessment.recommended_tier)
+        .where(*where)
+        .order_by(Assessment.region_id, Assessment.ref_date.desc())
+    ).all()
+    since: dict[int, date] = {}
+    current: dict[int, int] = {}
+    broken: set[int] = set()
+    for region_id, day, tier in history:
+        if region_id in broken:
+            continue
+        if region_id not in current:
+            current[region_id] = tier
+        if tier != current[region_id]:
+            broken.add(region_id)
+            continue
+        since[region_id] = day
+    query = (
+        select(Region.id, Region.code, Region.name, Assessment)
+        .join(Region, Region.id == Assessment.region_id)
+        .where(*where, Assessment.ref_date == last_day)
+        .order_by(Region.code)
+    )
+    items = tuple(
+        LatestItem(region_id=rid, code=code, name=name, assessment=a, since=since[rid])
+        for rid, code, name, a in session.execute(query).all()
+    )
+    return LatestRun(
+        ruleset_row=row, ruleset=parse_ruleset(row.yaml_text, source=row.name),
+        data_cutoff=cutoff, last_day=last_day, items=items,
+    )
+
+
 PACKAGED_POLICIES = Path(rules.__file__).with_name("policies")
 
 
@@ -234,10 +309,13 @@ def default_ruleset_path(configured: Path | None) -> Path:
 __all__ = [
     "EvaluationRun",
     "LatestAssessment",
+    "LatestItem",
+    "LatestRun",
     "active_ruleset",
     "default_ruleset_path",
     "evaluate_active",
     "evaluate_districts",
+    "latest_assessment_rows",
     "latest_assessments",
     "newest_cutoff",
     "policies_dir",

@@ -91,13 +91,18 @@ def test_evaluate_stale_explanation_names_age() -> None:
 def test_evaluate_confirmation_days_before_rise() -> None:
     ev = _run(_rules(confirm=3), [60, 60, 60, 60], [0] * 4)
     assert_array_equal(ev.tier[0], [0, 0, 1, 1])
-    assert ev.explain(0, 1).sentence.startswith("Held at 0: candidate 1 for 2 of 3 confirmation")
+    assert ev.explain(0, 1).sentence.startswith(
+        "Held at 0: 2 of 3 confirmation days so far for tier 1 (7-day incidence 60"
+    )
 
 
 def test_evaluate_release_days_and_explanation() -> None:
     ev = _run(_rules(release=3), [60, 10, 10, 10], [0] * 4)
     assert_array_equal(ev.tier[0], [1, 1, 1, 0])
-    assert ev.explain(0, 2).sentence == "Held at 1: 2 of 3 release days so far."
+    assert ev.explain(0, 2).sentence == (
+        "Held at 1: 2 of 3 release days so far (7-day incidence 10 per 100 000 under the exit "
+        "threshold 40 for 2 days; wastewater 0.0 under the exit threshold 1 for 2 days)."
+    )
 
 
 def test_evaluate_minimum_days_in_tier() -> None:
@@ -196,7 +201,7 @@ def _county(
         "incidence_7d": s(inc, count=inc * 10 if count is None else count),
         "positivity_7d": s(z + 1),
         "tests_7d": s(z + tests),
-        "admissions_7d": s(z if adm is None else adm),
+        "admissions_7d": s(z if adm is None else adm, count=z + 50),
         "icu_share": s(z + 1),
         "ww_trend": s(z),
         "rt": IndicatorSeries(estimate=z + 1, lower=z + rt_low, upper=z + 2),
@@ -214,22 +219,24 @@ def test_county_gate_gives_insufficient_data() -> None:
 
 
 def test_county_small_count_disables_incidence() -> None:
-    ev = _county(np.full((1, 6), 70.0), count=np.full((1, 6), 12.0))
-    assert_array_equal(ev.tier[0], [0] * 6)
+    # 100 (90-110) would enter tier 1 (lower bound >= 75); 12 cases < min_count 20 disable it
+    ev = _county(np.full((2, 7), 100.0), count=np.array([[12.0] * 7, [40.0] * 7]))
+    assert_array_equal(ev.tier[:, -1], [0, 1])
 
 
 def test_county_small_district_override() -> None:
-    # 70 (63-77) enters tier 1 in a district (lower bound >= 50) but not in a small one (80)
-    ev = _county(np.full((2, 6), 70.0), levels=["district", "small_district"])
+    # 90 (81-99) enters tier 1 in a district (lower bound >= 75) but not in a small one (100);
+    # confirmation 5 days, in force the day after
+    ev = _county(np.full((2, 6), 90.0), levels=["district", "small_district"])
     assert_array_equal(ev.tier[:, -1], [1, 0])
 
 
 def test_county_high_incidence_lowers_admission_thresholds() -> None:
-    # admissions 7: tier 1 normally (enter 8 for tier 2); with incidence at level 2 the tier-2
-    # threshold is 6, and incidence 200 (180-220) holds level 2 -> both at 2
+    # admissions 11.5 (10.35-12.65): tier 1 normally (lower bound under the tier-2 enter 12);
+    # with incidence at level 2 (200, lower bound 180 >= 150) the tier-2 threshold is 10 -> 2
     inc = np.full((2, 8), 200.0)
     inc[1] = 60.0
-    ev = _county(inc, adm=np.full((2, 8), 7.0))
+    ev = _county(inc, adm=np.full((2, 8), 11.5))
     assert_array_equal(ev.levels[2, :, -1], [2, 1])
 
 

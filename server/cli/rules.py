@@ -1,0 +1,208 @@
+"""``tierwise rules check FILE``, ``tierwise backtest`` and ``tierwise evaluate``."""
+
+from __future__ import annotations
+
+from datetime import date, datetime
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.markup import escape
+
+from rules import RulesetError, load_ruleset, summary
+from server.cli.output import err_console, fail, friendly_errors, progress_bar, say
+from server.config import Settings
+
+rules_app = typer.Typer(help="Check tier-policy (ruleset) files.", no_args_is_help=True)
+
+
+def _load(file: Path):  # type: ignore[no-untyped-def]
+    """The ruleset in ``file``; every problem printed as ``file:line:col: path: message``."""
+    if not file.is_file():
+        raise fail(f"{file}: no such file")
+    try:
+        return load_ruleset(file)
+    except RulesetError as exc:
+        for problem in exc.errors:
+            err_console.print(escape(problem.location()), highlight=False, soft_wrap=True)
+        raise typer.Exit(code=1) from None
+
+
+@rules_app.command("check")
+@friendly_errors
+def rules_check(
+    file: Annotated[Path, typer.Argument(help="Ruleset YAML file.")],
+) -> None:
+    """Validate a ruleset file and print its summary (tiers, thresholds, timing, signals).
+
+    Exits with status 1 and one `file:line:col: key.path: message` line per problem."""
+    ruleset = _load(file)
+    say(escape(summary(ruleset).rstrip()))
+
+
+def _day(value: str | None, option: str) -> date | None:
+    if value is None:
+        return None
+    try:
+        return date.fromisoformat(value)
+    except ValueError:
+        raise fail(f"{option}: {value!r} is not a date (YYYY-MM-DD)") from None
+
+
+def _summary_table(results: list) -> list[str]:  # type: ignore[type-arg]
+    """Side-by-side summary lines of one or more backtest results."""
+    heads = [f"{r.ruleset.name} {r.ruleset.version}" for r in results]
+    rows: list[tuple[str, list[str]]] = []
+    rows.append(("tier changes per region per year", [f"{r.summary.changes_per_year:.1f}"
+                                                       for r in results]))
+    rows.append(("tier changes per region (min-max)", [
+        f"{min(x.changes for x in r.summary.regions)}-{max(x.changes for x in r.summary.regions)}"
+        for r in results
+    ]))
+    n = max(r.ruleset.n_tiers for r in results)
+    for k in range(-1, n):
+        label = "days insufficient data" if k < 0 else f"days in tier {k}"
+        cells = []
+        for r in results:
+            shares = r.summary.tier_shares
+            cells.append(f"{100 * shares[k + 1]:.1f}%" if k + 1 < len(shares) else "-")
+        rows.append((label, cells))
+    rows.append(("escalations", [str(r.summary.escalations) for r in results]))
+    rows.append(("escalations preceded by a prepare signal", [
+        "-" if r.summary.escalations == 0 else f"{100 * r.summary.preceded_share:.0f}%"
+        for r in results
+    ]))
+    rows.append(("median lead of prepare signals (days)", [
+        "-" if not r.summary.leads else f"{r.summary.median_lead:g}" for r in results
+    ]))
+    rows.append(("prepare episodes without escalation", [
+        f"{sum(x.unfollowed for x in r.summary.regions)} of "
+        f"{sum(x.episodes for x in r.summary.regions)}" for r in results
+    ]))
+    width = max(len(label) for label, _ in rows)
+    cols = [max(len(h), *(len(c[i]) for _, c in rows)) for i, h in enumerate(heads)]
+    out = ["  ".join([" " * width, *(h.rjust(w) for h, w in zip(heads, cols, strict=True))])]
+    for label, cells in rows:
+        out.append("  ".join([label.ljust(width),
+                              *(c.rjust(w) for c, w in zip(cells, cols, strict=True))]))
+    return out
+
+
+@friendly_errors
+def backtest_command(
+    rules: Annotated[Path, typer.Option("--rules", help="Ruleset YAML file to replay.")],
+    from_: Annotated[
+        str | None, typer.Option("--from", help="First day summarised (YYYY-MM-DD).")
+    ] = None,
+    to: Annotated[
+        str | None, typer.Option("--to", help="Last day summarised (YYYY-MM-DD).")
+    ] = None,
+    as_known: Annotated[
+        bool,
+        typer.Option("--as-known", help="Judge each day on the data as known that day (vintages)."),
+    ] = False,
+    compare: Annotated[
+        Path | None, typer.Option("--compare", help="A second ruleset shown side by side.")
+    ] = None,
+    output: Annotated[
+        Path | None, typer.Option("--output", help="Folder for per-region tier timelines (CSV).")
+    ] = None,
+) -> None:
+    """Replay a ruleset over the stored history and summarise it: tier changes per region per
+    year, days in each tier, prepare signals and their lead before the next escalation."""
+    from server.services.backtest import data_span, run_backtest, write_timelines
+    from server.services.database import Database
+
+    rulesets = [_load(rules)] + ([_load(compare)] if compare is not None else [])
+    start, end = _day(from_, "--from"), _day(to, "--to")
+    db = Database.from_settings(Settings(demo_mode=True))
+    results = []
+    try:
+        db.check()
+        for rs in rulesets:
+            with db.transaction() as session:
+                first, last = data_span(session=session)
+                total = ((end or last) - first).days + 1
+                label = f"replaying {rs.name}{' as known' if as_known else ''}"
+                with progress_bar(label, total=total) as advance:
+                    results.append(
+                        run_backtest(
+                            session=session, ruleset=rs, start=start, end=end,
+                            as_known=as_known, progress=advance,
+                        )
+                    )
+    finally:
+        db.dispose()
+    first_result = results[0]
+    mode = "data as known each day" if as_known else "latest data"
+    say(
+        f"Backtest {first_result.start} to {first_result.end} on {mode}, "
+        f"{len(first_result.evaluation.regions)} districts "
+        f"({', '.join(f'{r.seconds:.1f} s' for r in results)})"
+    )
+    for line in _summary_table(results):
+        say(escape(line))
+    if output is not None:
+        for i, r in enumerate(results):
+            same = i > 0 and r.ruleset.name == rulesets[0].name
+            stem = f"{r.ruleset.name}-compare" if same else r.ruleset.name
+            path = write_timelines(r, output, stem=stem)
+            say(f"timelines: {path}")
+        _per_region(results, output)
+
+
+def _per_region(results: list, output: Path) -> None:  # type: ignore[type-arg]
+    """Write the per-region summary (changes, days per tier, leads) of each result as CSV."""
+    lines = ["ruleset,region,changes,changes_per_year,escalations,preceded,leads,"
+             + ",".join(["days_insufficient"] + [f"days_tier_{k}" for k in
+                                                 range(results[0].ruleset.n_tiers)])]
+    for r in results:
+        years = r.summary.days / 365.25
+        for x in r.summary.regions:
+            lines.append(",".join([
+                r.ruleset.name, x.region, str(x.changes), f"{x.changes / years:.2f}",
+                str(x.escalations), str(x.preceded), " ".join(map(str, x.leads)),
+                *map(str, x.days_in_tier),
+            ]))
+    path = output / "summary.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    say(f"summary: {path}")
+
+
+@friendly_errors
+def evaluate_command(
+    cutoff: Annotated[
+        str | None,
+        typer.Option(help="Data cutoff, ISO time stamp (default: the newest vintage)."),
+    ] = None,
+) -> None:
+    """Evaluate the active ruleset for every district on the data as known at the cutoff and
+    store the assessments (a second run with the same cutoff reuses them)."""
+    from server.services.database import Database
+    from server.services.evaluation import active_ruleset, evaluate_districts
+
+    when = None
+    if cutoff is not None:
+        try:
+            when = datetime.fromisoformat(cutoff)
+        except ValueError:
+            raise fail(f"--cutoff: {cutoff!r} is not an ISO time stamp") from None
+        if when.tzinfo is None:
+            raise fail(f"--cutoff: {cutoff!r} needs a time zone (e.g. +00:00)")
+    db = Database.from_settings(Settings(demo_mode=True))
+    try:
+        db.check()
+        with db.transaction() as session:
+            row = active_ruleset(session=session)
+            if row is None:
+                raise fail("no active ruleset; the demo or `tierwise rules` must store one first")
+            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when)
+    finally:
+        db.dispose()
+    if run is None:
+        raise fail("no data known at that cutoff")
+    verb = "reused" if run.reused else "stored"
+    say(
+        f"{run.ruleset_name}: {verb} assessments {run.start} to {run.end} "
+        f"(cutoff {run.data_cutoff.isoformat()}, {run.written:,} written)"
+    )

@@ -1,0 +1,364 @@
+"""Use case: replay a ruleset over stored history (backtest).
+
+Two replays:
+
+* **latest data**: the indicators are computed once from the current data (every revision
+  applied) and the ruleset runs over the whole history;
+* **as known** (the honest replay): each day ``t`` is judged on the data as known on the morning
+  after it, i.e. everything received up to the end of day ``t + 1`` (:func:`as_known_cutoff`),
+  read from the vintages. The hysteresis state carries from day to day, so day ``t`` sees exactly
+  what a daily evaluation on that morning would have seen.
+
+The as-known replay is vectorised: the observations are read once; one pass over the days applies
+each day's new vintages to dense arrays and cuts a trailing window of ``WINDOW_DAYS`` days as
+known that day; the windows of a block of days are stacked along the region axis so that each
+indicator is computed once per block for all (day, district) pairs; the last column of every
+window is that day's as-known value. Wastewater trends count a sample only on the day it first
+becomes known.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+from datetime import UTC, date, datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+from numpy.typing import NDArray
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from rules import Evaluation, IndicatorSeries, Ruleset, evaluate
+from rules.timeline import TimelineSummary, summarise_timeline
+from server.services.district_indicators import (
+    AREA_MEASURES,
+    DISTRICT_MEASURES,
+    PLANT_MEASURES,
+    DistrictData,
+    district_indicators,
+    load_district_data,
+)
+from server.services.errors import ServiceError
+from server.store.models import Measure, Observation, Region, Vintage
+
+__all__ = [
+    "WINDOW_DAYS",
+    "BacktestError",
+    "BacktestResult",
+    "as_known_cutoff",
+    "data_span",
+    "run_backtest",
+    "write_timelines",
+]
+
+#: Days of history each as-known day's indicators are computed from (covers every window used).
+WINDOW_DAYS = 56
+#: Days of as-known windows stacked into one indicator pass.
+BLOCK_DAYS = 32
+#: Indicators that exist on sample days only (no carrying forward).
+SAMPLE_INDICATORS = ("ww_trend",)
+
+
+class BacktestError(ServiceError, ValueError):
+    """A backtest that cannot run; names the argument."""
+
+    def __init__(self, argument: str, message: str) -> None:
+        super().__init__(f"{argument}: {message}")
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class BacktestResult:
+    """A replay of one ruleset: the evaluation, the summarised period and its figures."""
+
+    ruleset: Ruleset
+    as_known: bool
+    start: date
+    end: date
+    evaluation: Evaluation
+    summary: TimelineSummary
+    seconds: float
+    names: dict[str, str]
+
+    @property
+    def period(self) -> slice:
+        """Columns of the evaluation inside ``start..end``."""
+        first = (np.datetime64(self.start, "D") - self.evaluation.dates[0]).astype(int)
+        return slice(int(first), int(first) + (self.end - self.start).days + 1)
+
+
+def as_known_cutoff(day: date) -> datetime:
+    """The data cutoff of the as-known replay for ``day``: the end of the following day (UTC)."""
+    return datetime.combine(day + timedelta(days=2), datetime.min.time(), tzinfo=UTC) - timedelta(
+        microseconds=1
+    )
+
+
+def data_span(*, session: Session) -> tuple[date, date]:
+    first, last = session.execute(
+        select(func.min(Observation.ref_date), func.max(Observation.ref_date))
+    ).one()
+    if first is None:  # the first and last stored days
+        raise BacktestError("database", "there are no observations to replay")
+    return first, last
+
+
+def run_backtest(
+    *, session: Session, ruleset: Ruleset, start: date | None = None, end: date | None = None,
+    as_known: bool = False, progress: Callable[[int], None] | None = None,
+    lookback: int = 42,
+) -> BacktestResult:
+    """Replay ``ruleset`` over the stored history and summarise ``start..end``.
+
+    The engine always starts at the first stored day (so windows and hysteresis are warmed up);
+    the summary covers ``start..end`` (default: everything). ``progress(n)`` is called as blocks
+    of days finish (``n`` days each; the total is the number of days replayed).
+    """
+    t0 = time.perf_counter()
+    first, last = data_span(session=session)
+    start, end = start or first, end or last
+    if end < start:
+        raise BacktestError("--to", f"{end} is before --from {start}")
+    if start < first or end > last:
+        raise BacktestError("--from/--to", f"stored data cover {first}..{last} only")
+    tick = progress or (lambda _n: None)
+    if as_known:
+        data, indicators = _as_known_indicators(session, ruleset, first, end, tick)
+    else:
+        data = load_district_data(session=session, start=first, end=end)
+        indicators = district_indicators(data, ruleset)
+        tick((end - first).days + 1)
+    ev = evaluate(
+        ruleset, indicators, regions=data.regions, dates=data.dates, region_levels=data.levels
+    )
+    cols = slice((start - first).days, (end - first).days + 1)
+    summary = summarise_timeline(
+        ev.tier[:, cols], ev.prepare[:, :, cols], regions=data.regions,
+        n_tiers=ruleset.n_tiers, lookback=lookback,
+    )
+    names = dict(session.execute(select(Region.code, Region.name)).all())
+    return BacktestResult(
+        ruleset=ruleset, as_known=as_known, start=start, end=end, evaluation=ev,
+        summary=summary, seconds=time.perf_counter() - t0, names=names,
+    )
+
+
+# -- as-known replay -----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class _Rows:
+    """Every stored observation of the measures needed, sorted by arrival."""
+
+    measure: NDArray[np.int64]  # index into the measure list
+    row: NDArray[np.int64]  # index into the region list of that measure's group
+    col: NDArray[np.int64]  # day index from the first day
+    value: NDArray[np.float64]
+    known_day: NDArray[np.int64]  # first as-known day (index) on which the row counts
+
+
+def _read_rows(
+    session: Session, measures: list[str], codes: dict[str, list[str]], first: date
+) -> _Rows:
+    row_of = {}
+    for group, group_codes in codes.items():
+        for i, code in enumerate(group_codes):
+            row_of[(group, code)] = i
+    group_of = {m: g for g, ms in _GROUPS.items() for m in ms}
+    query = (
+        select(Measure.name, Region.code, Observation.ref_date, Observation.value,
+               Vintage.received_at)
+        .join(Measure, Measure.id == Observation.measure_id)
+        .join(Region, Region.id == Observation.region_id)
+        .join(Vintage, Vintage.id == Observation.vintage_id)
+        .where(Measure.name.in_(measures))
+        .order_by(Vintage.received_at, Vintage.id)
+    )
+    m_idx, r_idx, c_idx, vals, known = [], [], [], [], []
+    for name, code, ref, value, received in session.execute(query):
+        key = (group_of[name], code)
+        if key not in row_of:
+            continue
+        m_idx.append(measures.index(name))
+        r_idx.append(row_of[key])
+        c_idx.append((ref - first).days)
+        vals.append(value)
+        received_utc = received.astimezone(UTC) if received.tzinfo else received
+        # counted on day t when received by the end of day t + 1
+        known.append((received_utc.date() - first).days - 1)
+    return _Rows(
+        measure=np.asarray(m_idx, dtype=np.int64), row=np.asarray(r_idx, dtype=np.int64),
+        col=np.asarray(c_idx, dtype=np.int64), value=np.asarray(vals, dtype=np.float64),
+        known_day=np.asarray(known, dtype=np.int64),
+    )
+
+
+_GROUPS = {"district": DISTRICT_MEASURES, "area": AREA_MEASURES, "plant": PLANT_MEASURES}
+
+
+def _stack(base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int) -> DistrictData:
+    """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts."""
+    w = snaps["cases"].shape[1]
+    served = np.kron(np.eye(n), base.served)
+    return replace(
+        base,
+        regions=tuple(f"{k}:{c}" for k in range(n) for c in base.regions),
+        levels=base.levels * n,
+        population=np.tile(base.population, n),
+        dates=base.dates[:w],
+        district={m: snaps[m] for m in DISTRICT_MEASURES},
+        area_of_district={m: snaps[m] for m in AREA_MEASURES},
+        plant={m: snaps[m] for m in PLANT_MEASURES},
+        plant_population=np.tile(base.plant_population, n),
+        served=served,
+    )
+
+
+def _as_known_indicators(
+    session: Session, ruleset: Ruleset, first: date, end: date, tick: Callable[[int], None]
+) -> tuple[DistrictData, dict[str, IndicatorSeries]]:
+    base = load_district_data(session=session, start=first, end=first)
+    n_days = (end - first).days + 1
+    area_parent = _area_rows(session, base)
+    plants = list(
+        session.scalars(select(Region.code).where(Region.level == "plant").order_by(Region.code))
+    )
+    areas = sorted(set(area_parent.values()))
+    codes = {"district": list(base.regions), "area": areas, "plant": plants}
+    measures = [*DISTRICT_MEASURES, *AREA_MEASURES, *PLANT_MEASURES]
+    rows = _read_rows(session, measures, codes, first)
+    size = {"district": len(base.regions), "area": len(areas), "plant": len(plants)}
+    group_of = {m: g for g, ms in _GROUPS.items() for m in ms}
+    current = [np.full((size[group_of[m]], n_days), np.nan) for m in measures]
+    pick = np.array([areas.index(area_parent[c]) if c in area_parent else -1 for c in base.regions])
+    order = np.argsort(rows.known_day, kind="stable")  # arrival order kept within a day
+    bounds = np.searchsorted(rows.known_day[order], np.arange(-1, n_days), side="right")
+    w = WINDOW_DAYS
+    wanted = sorted(ruleset.used_indicators())
+    parts: dict[str, list[NDArray[np.float64]]] = {
+        f"{n}.{k}": [] for n in wanted for k in ("estimate", "lower", "upper", "count", "age")
+    }
+    newest_prev: NDArray[np.float64] | None = None
+    for block_start in range(0, n_days, BLOCK_DAYS):
+        days = range(block_start, min(block_start + BLOCK_DAYS, n_days))
+        snaps: dict[str, list[NDArray[np.float64]]] = {m: [] for m in measures}
+        for t in days:
+            # apply the rows that became known on day t (the first slice holds earlier arrivals)
+            lo, hi = (0 if t == 0 else bounds[t]), bounds[t + 1]
+            take = order[lo:hi]
+            for k in range(len(measures)):
+                sel = take[rows.measure[take] == k]
+                current[k][rows.row[sel], rows.col[sel]] = rows.value[sel]
+            left = t - w + 1
+            for k, m in enumerate(measures):
+                window = np.full((current[k].shape[0], w), np.nan)
+                src = current[k][:, max(left, 0) : t + 1]
+                window[:, w - src.shape[1] :] = src
+                if m in AREA_MEASURES:
+                    window = np.where(pick[:, None] >= 0, window[np.maximum(pick, 0)], np.nan)
+                snaps[m].append(window)
+        stacked = {m: np.concatenate(v, axis=0) for m, v in snaps.items()}
+        n = len(days)
+        series = district_indicators(_stack(base, stacked, n), ruleset)
+        for name, s in series.items():
+            r = len(base.regions)
+            est = s.estimate.reshape(n, r, w)
+            if name in SAMPLE_INDICATORS:
+                last = _newest_column(est)
+                newest_prev, est_last, age = _new_samples(est, last, newest_prev, days)
+                parts[f"{name}.estimate"].append(est_last)
+                for key, arr in (("lower", s.lower), ("upper", s.upper)):
+                    if arr is not None:
+                        vals = np.take_along_axis(
+                            arr.reshape(n, r, w), np.maximum(last, 0)[..., None], axis=2
+                        )[..., 0]
+                        parts[f"{name}.{key}"].append(np.where(np.isfinite(est_last), vals, np.nan))
+                parts[f"{name}.age"].append(age)
+                continue
+            parts[f"{name}.estimate"].append(est[:, :, -1])
+            for key, arr in (("lower", s.lower), ("upper", s.upper), ("count", s.count),
+                             ("age", s.age_days)):
+                if arr is not None:
+                    parts[f"{name}.{key}"].append(arr.reshape(n, r, w)[:, :, -1])
+        tick(n)
+    indicators = {}
+    for name in wanted:
+        def get(key: str, name: str = name) -> NDArray[np.float64] | None:
+            got = parts[f"{name}.{key}"]
+            return np.concatenate(got, axis=0).T.copy() if got else None
+
+        indicators[name] = IndicatorSeries(
+            estimate=get("estimate"), lower=get("lower"), upper=get("upper"),  # type: ignore[arg-type]
+            count=get("count"), age_days=get("age"),
+        )
+    dates = np.arange(np.datetime64(first, "D"), np.datetime64(end, "D") + 1)
+    return replace(base, dates=dates, as_of=None), indicators
+
+
+def _area_rows(session: Session, base: DistrictData) -> dict[str, str]:
+    from sqlalchemy.orm import aliased
+
+    parent = aliased(Region)
+    rows = session.execute(
+        select(Region.code, parent.code)
+        .join(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district")
+    ).all()
+    return {code: p for code, p in rows if code in base.regions}
+
+
+def _newest_column(est: NDArray[np.float64]) -> NDArray[np.int64]:
+    """Index of the newest finite column of each (day, region) window, -1 when none."""
+    w = est.shape[2]
+    finite = np.isfinite(est)
+    idx = np.where(finite, np.arange(w), -1).max(axis=2)
+    return idx.astype(np.int64)
+
+
+def _new_samples(
+    est: NDArray[np.float64], last: NDArray[np.int64], newest_prev: NDArray[np.float64] | None,
+    days: range,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """As-known sample values: the newest known sample, only on the day it first became known."""
+    n, r, w = est.shape
+    t = np.asarray(days, dtype=np.float64)[:, None]
+    newest = np.where(last >= 0, t - (w - 1 - last), np.nan)  # absolute day of the newest sample
+    prev = np.vstack(
+        [np.full((1, r), -np.inf) if newest_prev is None else newest_prev[None], newest[:-1]]
+    )
+    with np.errstate(invalid="ignore"):
+        fresh = np.isfinite(newest) & (newest > np.nan_to_num(prev, nan=-np.inf))
+    value = np.take_along_axis(est, np.maximum(last, 0)[..., None], axis=2)[..., 0]
+    value = np.where(fresh, value, np.nan)
+    age = np.where(np.isfinite(newest), t - newest, np.nan)
+    carried = np.fmax.accumulate(np.where(np.isfinite(newest), newest, -np.inf), axis=0)
+    if newest_prev is not None:
+        carried = np.maximum(carried, newest_prev[None])
+    return carried[-1], value, age
+
+
+def write_timelines(result: BacktestResult, directory: Path, *, stem: str | None = None) -> Path:
+    """Write one CSV row per region and day of the summarised period; returns the file.
+
+    Columns: ``date, region, name, tier, candidate, decided`` and one 0/1 column per prepare
+    signal.
+    """
+    directory.mkdir(parents=True, exist_ok=True)
+    ev, cols = result.evaluation, result.period
+    rs = result.ruleset
+    path = directory / f"{stem or rs.name}-{'as-known' if result.as_known else 'latest'}.csv"
+    header = ["date", "region", "name", "tier", "candidate", "decided"]
+    header += [f"prepare_{s.id}" for s in rs.prepare]
+    lines = [",".join(header)]
+    dates = ev.dates[cols]
+    for r, code in enumerate(ev.regions):
+        name = result.names.get(code, "").replace('"', "'")
+        tier, cand, dec = ev.tier[r, cols], ev.candidate[r, cols], ev.decided[r, cols]
+        sig = ev.prepare[:, r, cols].astype(int)
+        for j, day in enumerate(dates):
+            cells = [str(day), code, f'"{name}"', str(tier[j]), str(cand[j]), str(dec[j])]
+            cells += [str(x) for x in sig[:, j]]
+            lines.append(",".join(cells))
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path

@@ -1,0 +1,278 @@
+"""Use case: tell people about tier changes and prepare signals (webhooks and e-mail).
+
+Recipients are configured in a YAML file (setting ``TIERWISE_NOTIFY_FILE``)::
+
+    smtp: {host: 127.0.0.1, port: 25, sender: tierwise@office.invalid}
+    recipients:
+      - id: duty-desk
+        webhook: https://hooks.office.invalid/tierwise
+        secret: a-long-shared-secret        # signs the body (HMAC-SHA256)
+        events: [tier_change, prepare]      # default: both
+        regions: [D01, D02]                 # default: every district
+      - id: officer
+        email: officer@office.invalid
+        events: [tier_change]
+
+A webhook receives ``POST`` of a JSON body ``{"events": [...]}`` with the header
+``X-Tierwise-Signature: sha256=<hex HMAC-SHA256 of the body with the recipient's secret>``; a
+failed POST (connection error or a 5xx answer) is retried with exponential backoff
+(tenacity). E-mail is one plain-text message per recipient through the SMTP server.
+
+References
+----------
+Krawczyk H, Bellare M, Canetti R (1997). HMAC: keyed-hashing for message authentication.
+RFC 2104.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import json
+import logging
+import smtplib
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import date
+from email.message import EmailMessage
+from pathlib import Path
+from typing import Any
+
+import httpx
+import numpy as np
+import yaml
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential
+
+from rules import Evaluation
+from server.services.errors import InputFileError
+
+__all__ = [
+    "EVENT_KINDS",
+    "SIGNATURE_HEADER",
+    "Delivery",
+    "Event",
+    "NotifyConfig",
+    "Recipient",
+    "SmtpServer",
+    "deliver",
+    "events_on_day",
+    "load_notify_config",
+    "sign",
+]
+
+log = logging.getLogger(__name__)
+
+EVENT_KINDS = ("tier_change", "prepare")
+SIGNATURE_HEADER = "X-Tierwise-Signature"
+
+
+@dataclass(frozen=True, kw_only=True)
+class Recipient:
+    """One webhook or e-mail address, with the events and regions it wants."""
+
+    id: str
+    webhook: str | None = None
+    secret: str = ""
+    email: str | None = None
+    events: tuple[str, ...] = EVENT_KINDS
+    regions: tuple[str, ...] = ()
+
+    def wants(self, event: Event) -> bool:
+        return event.kind in self.events and (not self.regions or event.region in self.regions)
+
+
+@dataclass(frozen=True, kw_only=True)
+class SmtpServer:
+    host: str = "127.0.0.1"
+    port: int = 25
+    sender: str = "tierwise@localhost"
+    timeout: float = 10.0
+
+
+@dataclass(frozen=True, kw_only=True)
+class NotifyConfig:
+    recipients: tuple[Recipient, ...]
+    smtp: SmtpServer = field(default_factory=SmtpServer)
+    attempts: int = 4
+    backoff_seconds: float = 1.0
+
+
+@dataclass(frozen=True, kw_only=True)
+class Event:
+    """A tier change in force on ``date``, or a prepare signal that started showing on it."""
+
+    kind: str
+    region: str
+    date: date
+    tier: int
+    previous: int | None
+    signal: str | None
+    sentence: str
+
+    def as_json(self) -> dict[str, Any]:
+        return {
+            "kind": self.kind, "region": self.region, "date": self.date.isoformat(),
+            "tier": self.tier, "previous": self.previous, "signal": self.signal,
+            "sentence": self.sentence,
+        }
+
+
+@dataclass(frozen=True, kw_only=True)
+class Delivery:
+    """What happened for one recipient."""
+
+    recipient: str
+    events: int
+    ok: bool
+    attempts: int
+    error: str = ""
+
+
+def _problem(path: Path, where: str, problem: str) -> InputFileError:
+    return InputFileError(str(path), where, problem)
+
+
+def load_notify_config(path: Path) -> NotifyConfig:
+    """Read and check the recipients file; every problem names the file and the key."""
+    try:
+        doc = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    except (OSError, yaml.YAMLError) as exc:
+        raise _problem(path, "", f"cannot read: {exc}") from None
+    if not isinstance(doc, dict):
+        raise _problem(path, "", "expected a mapping with 'recipients'")
+    unknown = set(doc) - {"recipients", "smtp", "attempts", "backoff_seconds"}
+    if unknown:
+        raise _problem(path, sorted(unknown)[0], "unknown key")
+    smtp_doc = doc.get("smtp") or {}
+    if not isinstance(smtp_doc, dict) or set(smtp_doc) - {"host", "port", "sender", "timeout"}:
+        raise _problem(path, "smtp", "expected {host, port, sender, timeout}")
+    recipients = []
+    for i, item in enumerate(doc.get("recipients") or []):
+        where = f"recipients[{i}]"
+        if not isinstance(item, dict) or "id" not in item:
+            raise _problem(path, where, "each recipient needs an id")
+        extra = set(item) - {"id", "webhook", "secret", "email", "events", "regions"}
+        if extra:
+            raise _problem(path, f"{where}.{sorted(extra)[0]}", "unknown key")
+        if ("webhook" in item) == ("email" in item):
+            raise _problem(path, where, "give exactly one of webhook or email")
+        if "webhook" in item and not str(item.get("secret", "")):
+            raise _problem(path, f"{where}.secret", "a webhook needs a secret to sign with")
+        events = tuple(item.get("events") or EVENT_KINDS)
+        bad = [e for e in events if e not in EVENT_KINDS]
+        if bad:
+            raise _problem(path, f"{where}.events", f"unknown event {bad[0]!r}")
+        recipients.append(
+            Recipient(
+                id=str(item["id"]), webhook=item.get("webhook"), secret=str(item.get("secret", "")),
+                email=item.get("email"), events=events,
+                regions=tuple(str(r) for r in item.get("regions") or ()),
+            )
+        )
+    return NotifyConfig(
+        recipients=tuple(recipients), smtp=SmtpServer(**smtp_doc),
+        attempts=int(doc.get("attempts", 4)), backoff_seconds=float(doc.get("backoff_seconds", 1)),
+    )
+
+
+def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
+    """Tier changes in force and prepare signals starting on one day (default: the last)."""
+    d = day_index % ev.dates.size
+    tier = ev.tier[:, d]
+    before = ev.tier[:, d - 1] if d else ev.start_in_force
+    day = ev.dates[d].astype(date)
+    out = []
+    moved = np.flatnonzero((tier != before) & (tier >= 0) & (before >= 0))
+    for r in moved:
+        out.append(
+            Event(
+                kind="tier_change", region=ev.regions[r], date=day, tier=int(tier[r]),
+                previous=int(before[r]), signal=None, sentence=ev.explain(int(r), d).sentence,
+            )
+        )
+    shown = ev.prepare[:, :, d]
+    started = shown & ~(ev.prepare[:, :, d - 1] if d else np.zeros_like(shown))
+    for s, r in zip(*np.nonzero(started), strict=True):
+        sig = ev.ruleset.prepare[s]
+        out.append(
+            Event(
+                kind="prepare", region=ev.regions[r], date=day, tier=int(tier[r]), previous=None,
+                signal=sig.id, sentence=sig.message or f"signal {sig.id} active",
+            )
+        )
+    return out
+
+
+def sign(secret: str, body: bytes) -> str:
+    """``sha256=<hex>``: HMAC-SHA256 of ``body`` keyed with ``secret`` (RFC 2104)."""
+    return "sha256=" + hmac.new(secret.encode(), body, hashlib.sha256).hexdigest()
+
+
+class _Retryable(Exception):
+    pass
+
+
+def _post(client: httpx.Client, recipient: Recipient, body: bytes) -> None:
+    try:
+        response = client.post(
+            recipient.webhook or "", content=body,
+            headers={"Content-Type": "application/json", SIGNATURE_HEADER: sign(recipient.secret,
+                                                                                 body)},
+        )
+    except httpx.TransportError as exc:
+        raise _Retryable(f"{type(exc).__name__}: {exc}") from exc
+    if response.status_code >= 500:
+        raise _Retryable(f"HTTP {response.status_code}")
+    if response.status_code >= 400:
+        raise RuntimeError(f"HTTP {response.status_code}")
+
+
+def _webhook(config: NotifyConfig, recipient: Recipient, events: list[Event]) -> Delivery:
+    body = json.dumps({"events": [e.as_json() for e in events]}, sort_keys=True).encode()
+    attempts = 0
+    try:
+        with httpx.Client(timeout=10.0) as client:
+            for attempt in Retrying(
+                stop=stop_after_attempt(config.attempts),
+                wait=wait_exponential(multiplier=config.backoff_seconds, max=60),
+                retry=retry_if_exception_type(_Retryable), reraise=True,
+            ):
+                with attempt:
+                    attempts += 1
+                    _post(client, recipient, body)
+    except (_Retryable, RuntimeError) as exc:
+        log.warning("webhook %s failed after %d attempt(s): %s", recipient.id, attempts, exc)
+        return Delivery(recipient=recipient.id, events=len(events), ok=False, attempts=attempts,
+                        error=str(exc))
+    return Delivery(recipient=recipient.id, events=len(events), ok=True, attempts=attempts)
+
+
+def _email(config: NotifyConfig, recipient: Recipient, events: list[Event]) -> Delivery:
+    msg = EmailMessage()
+    changes = sum(e.kind == "tier_change" for e in events)
+    signals = len(events) - changes
+    msg["Subject"] = f"tierwise: {changes} tier change(s), {signals} prepare signal(s)"
+    msg["From"] = config.smtp.sender
+    msg["To"] = recipient.email or ""
+    lines = [f"{e.date} {e.region}: {e.sentence}" for e in events]
+    msg.set_content("\n".join(lines) + "\n")
+    try:
+        with smtplib.SMTP(config.smtp.host, config.smtp.port, timeout=config.smtp.timeout) as s:
+            s.send_message(msg)
+    except (OSError, smtplib.SMTPException) as exc:
+        log.warning("e-mail to %s failed: %s", recipient.id, exc)
+        return Delivery(recipient=recipient.id, events=len(events), ok=False, attempts=1,
+                        error=str(exc))
+    return Delivery(recipient=recipient.id, events=len(events), ok=True, attempts=1)
+
+
+def deliver(events: Sequence[Event], config: NotifyConfig) -> list[Delivery]:
+    """Send each recipient the events it wants (nothing when it wants none)."""
+    out = []
+    for recipient in config.recipients:
+        mine = [e for e in events if recipient.wants(e)]
+        if not mine:
+            continue
+        send = _webhook if recipient.webhook else _email
+        out.append(send(config, recipient, mine))
+    return out

@@ -1,0 +1,373 @@
+"""Use case: review and publish tier changes.
+
+The engine recommends; people decide. A *pending change* is a district whose newest recommended
+tier (active ruleset, newest data cutoff, last day) differs from its official tier and that no one
+has decided on since the recommendation took its current value. An approver confirms the
+recommendation or overrides it, always with a reason; :func:`publish` makes every unpublished
+decision visible to the public. Districts with no decision yet start from their recommended tier
+when first published. Every decision and publication is written to the audit log.
+
+A decision on an assessment of day ``d`` is effective from ``d + 1`` (the morning after the data
+it was based on).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import UTC, date, datetime, timedelta
+from functools import lru_cache
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from rules import Ruleset, parse_ruleset
+from server.services.audit import record
+from server.services.errors import ServiceError
+from server.services.evaluation import active_ruleset, latest_assessment_rows
+from server.store.models import Assessment, Region, User
+from server.store.models import Decision as DecisionRow
+
+__all__ = [
+    "APPROVER_ROLES",
+    "Decision",
+    "DecisionRecord",
+    "OfficialTier",
+    "PendingChange",
+    "PublishResult",
+    "ReviewError",
+    "decide",
+    "decision_history",
+    "official_tiers",
+    "pending_changes",
+    "publish",
+]
+
+#: Roles allowed to decide and publish.
+APPROVER_ROLES = ("approver", "admin")
+
+
+class ReviewError(ServiceError, ValueError):
+    """A decision or publication that cannot be made; names the offending argument and value."""
+
+    def __init__(self, argument: str, message: str) -> None:
+        self.argument = argument
+        super().__init__(f"{argument}: {message}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class OfficialTier:
+    """The tier in force for a district by decision (published, unless asked otherwise)."""
+
+    region: str
+    name: str
+    tier: int
+    tier_name: str
+    public_text: str
+    since: date
+    published_at: datetime | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class PendingChange:
+    """A recommendation that differs from the official tier and awaits a decision."""
+
+    region: str
+    name: str
+    official_tier: int | None
+    recommended_tier: int
+    recommended_name: str
+    since: date
+    assessment_id: int
+    sentence: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class Decision:
+    """One decision as taken (``kind`` is ``confirmed`` or ``overridden``)."""
+
+    id: int
+    region: str
+    tier: int
+    tier_name: str
+    kind: str
+    reason: str
+    user: str
+    decided_at: datetime
+    effective_date: date
+    assessment_id: int | None
+    published_at: datetime | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class DecisionRecord:
+    """A decision in the history, with the recommendation it answered."""
+
+    id: int
+    region: str
+    name: str
+    tier: int
+    tier_name: str
+    recommended_tier: int | None
+    kind: str
+    reason: str
+    user: str
+    decided_at: datetime
+    effective_date: date
+    published_at: datetime | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublishResult:
+    """What one publication made public."""
+
+    published_at: datetime
+    decisions: int
+    regions: tuple[str, ...]
+    initial: tuple[str, ...]
+
+
+@lru_cache(maxsize=16)
+def _parse(text: str) -> Ruleset:
+    return parse_ruleset(text, source="active ruleset")
+
+
+def _active(session: Session) -> Ruleset | None:
+    row = active_ruleset(session=session)
+    return None if row is None else _parse(row.yaml_text)
+
+
+def _tier_name(ruleset: Ruleset | None, tier: int) -> str:
+    if ruleset is None or not -1 <= tier <= ruleset.top_tier:
+        return str(tier)
+    return ruleset.tier_name(tier)
+
+
+def _public_text(ruleset: Ruleset | None, tier: int) -> str:
+    if ruleset is None or not 0 <= tier <= ruleset.top_tier:
+        return ""
+    return ruleset.tiers[tier].public.strip()
+
+
+def _decisions(session: Session, published_only: bool) -> dict[int, list[DecisionRow]]:
+    """Decisions per region id, oldest first."""
+    query = select(DecisionRow).order_by(DecisionRow.decided_at, DecisionRow.id)
+    if published_only:
+        query = query.where(DecisionRow.published_at.is_not(None))
+    out: dict[int, list[DecisionRow]] = {}
+    for row in session.scalars(query):
+        out.setdefault(row.region_id, []).append(row)
+    return out
+
+
+def _since(rows: list[DecisionRow]) -> date:
+    """Effective date of the first decision of the trailing run at the newest tier."""
+    since = rows[-1].effective_date
+    for row in reversed(rows):
+        if row.tier != rows[-1].tier:
+            break
+        since = row.effective_date
+    return since
+
+
+def official_tiers(*, session: Session, published_only: bool = True) -> dict[str, OfficialTier]:
+    """Official tier of every district that has one, by region code."""
+    ruleset = _active(session)
+    regions = {r.id: r for r in session.scalars(select(Region))}
+    out = {}
+    for region_id, rows in _decisions(session, published_only).items():
+        last = rows[-1]
+        region = regions[region_id]
+        out[region.code] = OfficialTier(
+            region=region.code, name=region.name, tier=last.tier,
+            tier_name=_tier_name(ruleset, last.tier), public_text=_public_text(ruleset, last.tier),
+            since=_since(rows), published_at=last.published_at,
+        )
+    return out
+
+
+def pending_changes(*, session: Session) -> list[PendingChange]:
+    """Districts whose newest recommendation differs from their latest decision, by code.
+
+    A district stays settled after a decision on a recommendation until the recommendation
+    changes again (an override that keeps the tier is not asked again every day).
+    """
+    latest = latest_assessment_rows(session=session)
+    if latest is None:
+        return []
+    decisions = _decisions(session, published_only=False)
+    answered = _answered_assessments(session, decisions)
+    out = []
+    for item in latest.items:
+        rows = decisions.get(item.region_id, [])
+        official = rows[-1].tier if rows else None
+        if item.assessment.recommended_tier == official:
+            continue
+        last_answer = answered.get(item.region_id)
+        if (
+            last_answer is not None
+            and last_answer[1] == item.assessment.recommended_tier
+            and last_answer[0] >= item.since
+        ):
+            continue
+        out.append(
+            PendingChange(
+                region=item.code, name=item.name, official_tier=official,
+                recommended_tier=item.assessment.recommended_tier,
+                recommended_name=latest.ruleset.tier_name(item.assessment.recommended_tier),
+                since=item.since, assessment_id=item.assessment.id,
+                sentence=str(item.assessment.explanation.get("sentence", "")),
+            )
+        )
+    return sorted(out, key=lambda p: p.region)
+
+
+def _answered_assessments(
+    session: Session, decisions: dict[int, list[DecisionRow]]
+) -> dict[int, tuple[date, int]]:
+    """Per region: (day, recommended tier) of the assessment its latest decision answered."""
+    ids = {rows[-1].assessment_id: rid for rid, rows in decisions.items() if rows[-1].assessment_id}
+    if not ids:
+        return {}
+    query = select(Assessment.id, Assessment.ref_date, Assessment.recommended_tier).where(
+        Assessment.id.in_(list(ids))
+    )
+    return {ids[aid]: (day, tier) for aid, day, tier in session.execute(query)}
+
+
+def _approver(session: Session, user: str) -> User:
+    row = session.scalar(select(User).where(User.name == user))
+    if row is None or not row.active:
+        raise ReviewError("user", f"{user!r} is not an active staff account")
+    if row.role not in APPROVER_ROLES:
+        raise ReviewError("user", f"{user!r} is a {row.role}; only approvers and admins decide")
+    return row
+
+
+def _as_decision(row: DecisionRow, code: str, user: str, ruleset: Ruleset | None) -> Decision:
+    return Decision(
+        id=row.id, region=code, tier=row.tier, tier_name=_tier_name(ruleset, row.tier),
+        kind=row.kind, reason=row.reason, user=user, decided_at=row.decided_at,
+        effective_date=row.effective_date, assessment_id=row.assessment_id,
+        published_at=row.published_at,
+    )
+
+
+def decide(
+    *, session: Session, assessment_id: int, user: str, accept: bool, tier: int | None,
+    reason: str,
+) -> Decision:
+    """Confirm (``accept``) the recommendation of an assessment, or override it with ``tier``.
+
+    The reason is mandatory in both cases. The decision is unpublished until :func:`publish`.
+
+    Raises
+    ------
+    ReviewError
+        Blank reason, unknown assessment, a user who is not an approver, a missing or
+        out-of-range override tier.
+    """
+    if not reason or not reason.strip():
+        raise ReviewError("reason", "a decision needs a reason")
+    approver = _approver(session, user)
+    assessment = session.get(Assessment, assessment_id)
+    if assessment is None:
+        raise ReviewError("assessment_id", f"no assessment {assessment_id}")
+    ruleset = _active(session)
+    top = ruleset.top_tier if ruleset is not None else None
+    if accept:
+        chosen, kind = assessment.recommended_tier, "confirmed"
+        if tier is not None and tier != chosen:
+            raise ReviewError("tier", f"{tier} differs from the recommended {chosen}; override")
+    else:
+        if tier is None:
+            raise ReviewError("tier", "an override needs a tier")
+        if tier < 0 or (top is not None and tier > top):
+            raise ReviewError("tier", f"{tier} is not a tier (0..{top})")
+        chosen, kind = tier, "overridden"
+    if chosen < 0:
+        raise ReviewError("tier", "insufficient data cannot be confirmed; override with a tier")
+    now = datetime.now(UTC)
+    row = DecisionRow(
+        region_id=assessment.region_id, assessment_id=assessment.id,
+        effective_date=assessment.ref_date + timedelta(days=1), tier=chosen, kind=kind,
+        reason=reason.strip(), decided_by=approver.id, decided_at=now, published_at=None,
+    )
+    session.add(row)
+    session.flush()
+    code = session.scalar(select(Region.code).where(Region.id == assessment.region_id)) or ""
+    record(
+        session=session, actor=user, action=f"decision.{kind}", subject=code,
+        details={
+            "decision_id": row.id, "assessment_id": assessment.id, "tier": chosen,
+            "recommended_tier": assessment.recommended_tier, "reason": row.reason,
+            "effective_date": row.effective_date.isoformat(),
+        },
+        at=now,
+    )
+    return _as_decision(row, code, user, ruleset)
+
+
+def publish(*, session: Session, user: str) -> PublishResult:
+    """Publish every unpublished decision; districts never decided start from their recommendation.
+
+    Raises
+    ------
+    ReviewError
+        When ``user`` is not an approver.
+    """
+    approver = _approver(session, user)
+    now = datetime.now(UTC)
+    decided = set(session.scalars(select(DecisionRow.region_id).distinct()))
+    latest = latest_assessment_rows(session=session)
+    initial: list[str] = []
+    if latest is not None:
+        for item in latest.items:
+            a = item.assessment
+            if item.region_id in decided or a.recommended_tier < 0:
+                continue
+            session.add(
+                DecisionRow(
+                    region_id=item.region_id, assessment_id=a.id,
+                    effective_date=a.ref_date + timedelta(days=1), tier=a.recommended_tier,
+                    kind="confirmed", reason="first publication: starts from the recommended tier",
+                    decided_by=approver.id, decided_at=now, published_at=None,
+                )
+            )
+            initial.append(item.code)
+        session.flush()
+    rows = list(session.scalars(select(DecisionRow).where(DecisionRow.published_at.is_(None))))
+    codes = dict(session.execute(select(Region.id, Region.code)).all())
+    for row in rows:
+        row.published_at = now
+    session.flush()
+    regions = tuple(sorted({codes[r.region_id] for r in rows}))
+    record(
+        session=session, actor=user, action="decision.publish", subject=", ".join(regions),
+        details={"decisions": [r.id for r in rows], "initial": sorted(initial)}, at=now,
+    )
+    return PublishResult(
+        published_at=now, decisions=len(rows), regions=regions, initial=tuple(sorted(initial))
+    )
+
+
+def decision_history(*, session: Session, region: str | None = None) -> list[DecisionRecord]:
+    """Every decision, newest first (of one district when ``region`` is given)."""
+    ruleset = _active(session)
+    query = (
+        select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier)
+        .join(Region, Region.id == DecisionRow.region_id)
+        .outerjoin(User, User.id == DecisionRow.decided_by)
+        .outerjoin(Assessment, Assessment.id == DecisionRow.assessment_id)
+        .order_by(DecisionRow.decided_at.desc(), DecisionRow.id.desc())
+    )
+    if region is not None:
+        query = query.where(Region.code == region)
+    return [
+        DecisionRecord(
+            id=row.id, region=code, name=name, tier=row.tier,
+            tier_name=_tier_name(ruleset, row.tier), recommended_tier=recommended,
+            kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
+            effective_date=row.effective_date, published_at=row.published_at,
+        )
+        for row, code, name, user, recommended in session.execute(query)
+    ]

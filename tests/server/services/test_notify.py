@@ -1,0 +1,189 @@
+"""Notifications against local servers on 127.0.0.1: a webhook (http.server) and an SMTP sink."""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import json
+import socketserver
+import threading
+from collections.abc import Iterator
+from http.server import BaseHTTPRequestHandler, HTTPServer
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from rules import IndicatorSeries, evaluate, parse_ruleset
+from server.services.errors import InputFileError
+from server.services.notify import (
+    SIGNATURE_HEADER,
+    NotifyConfig,
+    Recipient,
+    SmtpServer,
+    deliver,
+    events_on_day,
+    load_notify_config,
+    sign,
+)
+
+RULES = """\
+name: notify
+version: "1"
+tiers:
+  - {name: T0, staff: s, public: p}
+  - {name: T1, staff: s, public: p}
+indicators:
+  x: {label: x}
+  ww: {label: wastewater}
+criteria:
+  - {id: x, indicator: x, enter: [10]}
+prepare:
+  - {id: ww-rise, indicator: ww, above: 5, for: 1, message: Wastewater is rising.}
+"""
+
+
+def _events():  # type: ignore[no-untyped-def]
+    ev = evaluate(
+        parse_ruleset(RULES),
+        {"x": IndicatorSeries(estimate=np.array([[1.0, 20.0], [1.0, 1.0]])),
+         "ww": IndicatorSeries(estimate=np.array([[0.0, 0.0], [0.0, 9.0]]))},
+        regions=["A", "B"], dates=np.arange(2) + np.datetime64("2031-04-01"),
+    )
+    return events_on_day(ev)
+
+
+class _Hook(BaseHTTPRequestHandler):
+    received: list[tuple[dict[str, str], bytes]] = []
+    fail_first = 0
+
+    def do_POST(self) -> None:  # noqa: N802 (http.server's name)
+        body = self.rfile.read(int(self.headers["Content-Length"]))
+        type(self).received.append((dict(self.headers), body))
+        code = 500 if type(self).fail_first > 0 else 200
+        type(self).fail_first -= 1
+        self.send_response(code)
+        self.end_headers()
+
+    def log_message(self, *args: object) -> None:
+        return None
+
+
+@pytest.fixture
+def hook() -> Iterator[tuple[str, type[_Hook]]]:
+    handler = type("Hook", (_Hook,), {"received": [], "fail_first": 0})
+    server = HTTPServer(("127.0.0.1", 0), handler)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}/hook", handler
+    server.shutdown()
+    server.server_close()
+
+
+class _Smtp(socketserver.StreamRequestHandler):
+    """A minimal SMTP sink (RFC 5321 commands HELO/EHLO, MAIL, RCPT, DATA, QUIT)."""
+
+    messages: list[bytes] = []
+
+    def handle(self) -> None:
+        self.wfile.write(b"220 sink\r\n")
+        while line := self.rfile.readline():
+            verb = line[:4].upper()
+            if verb == b"DATA":
+                self.wfile.write(b"354 go\r\n")
+                data = b""
+                while (part := self.rfile.readline()) not in (b".\r\n", b""):
+                    data += part
+                type(self).messages.append(data)
+                self.wfile.write(b"250 stored\r\n")
+            elif verb == b"QUIT":
+                self.wfile.write(b"221 bye\r\n")
+                return
+            else:
+                self.wfile.write(b"250 ok\r\n")
+
+
+@pytest.fixture
+def smtp() -> Iterator[tuple[int, type[_Smtp]]]:
+    handler = type("Smtp", (_Smtp,), {"messages": []})
+    server = socketserver.ThreadingTCPServer(("127.0.0.1", 0), handler)
+    server.daemon_threads = True
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield server.server_address[1], handler
+    server.shutdown()
+    server.server_close()
+
+
+def test_sign_matches_rfc4231_test_case_2() -> None:
+    # RFC 4231 (2005), test case 2: key "Jefe", data "what do ya want for nothing?" [memory]
+    expected = "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
+    assert sign("Jefe", b"what do ya want for nothing?") == f"sha256={expected}"
+
+
+def test_events_on_day_finds_the_change_and_the_signal() -> None:
+    kinds = sorted((e.kind, e.region) for e in _events())
+    assert kinds == [("prepare", "B"), ("tier_change", "A")]
+
+
+def test_webhook_posts_signed_json(hook: tuple[str, type[_Hook]]) -> None:
+    url, handler = hook
+    config = NotifyConfig(recipients=(Recipient(id="desk", webhook=url, secret="s3cret"),))
+    (delivery,) = deliver(_events(), config)
+    headers, body = handler.received[0]
+    # reference: the standard library's HMAC over the bytes received
+    assert headers[SIGNATURE_HEADER] == "sha256=" + hmac.new(
+        b"s3cret", body, hashlib.sha256).hexdigest()
+    assert delivery.ok and len(json.loads(body)["events"]) == 2
+
+
+def test_webhook_retries_server_errors(hook: tuple[str, type[_Hook]]) -> None:
+    url, handler = hook
+    handler.fail_first = 2
+    config = NotifyConfig(recipients=(Recipient(id="desk", webhook=url, secret="k"),),
+                          attempts=4, backoff_seconds=0.01)
+    (delivery,) = deliver(_events(), config)
+    assert (delivery.ok, delivery.attempts, len(handler.received)) == (True, 3, 3)
+
+
+def test_webhook_gives_up_after_the_last_attempt(hook: tuple[str, type[_Hook]]) -> None:
+    url, handler = hook
+    handler.fail_first = 10
+    config = NotifyConfig(recipients=(Recipient(id="desk", webhook=url, secret="k"),),
+                          attempts=2, backoff_seconds=0.01)
+    (delivery,) = deliver(_events(), config)
+    assert (delivery.ok, delivery.attempts, delivery.error) == (False, 2, "HTTP 500")
+
+
+def test_email_goes_through_smtp(smtp: tuple[int, type[_Smtp]]) -> None:
+    port, handler = smtp
+    config = NotifyConfig(
+        recipients=(Recipient(id="officer", email="officer@office.invalid",
+                              events=("tier_change",)),),
+        smtp=SmtpServer(host="127.0.0.1", port=port, sender="tierwise@office.invalid"),
+    )
+    (delivery,) = deliver(_events(), config)
+    text = handler.messages[0].decode()
+    assert delivery.ok and "To: officer@office.invalid" in text and "2031-04-02 A: " in text
+
+
+def test_recipient_filters_regions(hook: tuple[str, type[_Hook]]) -> None:
+    url, handler = hook
+    config = NotifyConfig(recipients=(Recipient(id="b", webhook=url, secret="k", regions=("B",)),))
+    deliver(_events(), config)
+    (event,) = json.loads(handler.received[0][1])["events"]
+    assert event["region"] == "B"
+
+
+def test_load_config_names_the_unknown_key(tmp_path: Path) -> None:
+    path = tmp_path / "notify.yaml"
+    path.write_text("recipients:\n  - {id: a, email: a@office.invalid, colour: red}\n")
+    with pytest.raises(InputFileError, match=r"notify.yaml: recipients\[0\].colour: unknown key"):
+        load_notify_config(path)
+
+
+def test_load_config_requires_a_webhook_secret(tmp_path: Path) -> None:
+    path = tmp_path / "notify.yaml"
+    path.write_text("recipients:\n  - {id: a, webhook: 'http://127.0.0.1:9/x'}\n")
+    with pytest.raises(InputFileError, match=r"recipients\[0\].secret: a webhook needs a secret"):
+        load_notify_config(path)
