@@ -10,8 +10,13 @@ from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 
 from server.config import Settings
+from server.services.auth import LoginLimiter, SessionSigner
 from server.services.database import Database
-from web import health, public, staff
+from web import assets, health, login, policies, public, review, staff, users
+from web.caching import PageCache
+from web.errors import install_error_handlers
+from web.mapsvg import MapCache
+from web.security import SecurityHeaders
 from web.templating import make_templates
 
 STATIC = Path(__file__).with_name("static")
@@ -37,8 +42,19 @@ def create_app(settings: Settings, *, database: Database | None = None) -> FastA
     app.state.settings = settings
     app.state.database = db
     app.state.templates = make_templates(settings)
+    app.state.signer = SessionSigner(settings.secret_key)
+    app.state.login_limiter = LoginLimiter()
+    app.state.page_cache = PageCache()
+    app.state.maps = MapCache()
+    app.add_middleware(SecurityHeaders)
+    install_error_handlers(app)
+    app.include_router(assets.router)  # before the /static mount, which would shadow it
     app.mount("/static", StaticFiles(directory=STATIC), name="static")
     app.include_router(health.router)
+    app.include_router(login.router, prefix="/staff")
+    app.include_router(review.router, prefix="/staff")
+    app.include_router(policies.router, prefix="/staff")
+    app.include_router(users.router, prefix="/staff")
     app.include_router(staff.router, prefix="/staff")
     app.include_router(public.router)
     return app

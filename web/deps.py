@@ -1,15 +1,32 @@
-"""Request dependencies: one session per request, committed by the request's outcome."""
+"""Request dependencies: the session, settings, templates, the signed-in user and CSRF checks.
+
+``StaffDep`` admits any signed-in staff member; ``require("approver")`` and friends admit that
+role and the roles above it. A request without a valid session is sent to the login page
+(:class:`LoginRequired`); a signed-in user without the role gets 403. Every POST of a staff form
+goes through :func:`csrf_protected`.
+"""
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from typing import Annotated
 
-from fastapi import Depends, Request
+from fastapi import Depends, HTTPException, Request
 from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
 
 from server.config import Settings
+from server.services.auth import SessionSigner, StaffUser, has_role, load_user
+
+SESSION_COOKIE = "tw_session"
+
+
+class LoginRequired(Exception):  # noqa: N818 - a control-flow signal, handled by the app
+    """Raised by staff dependencies when nobody is signed in; the app redirects to login."""
+
+    def __init__(self, next_path: str) -> None:
+        self.next_path = next_path
+        super().__init__(next_path)
 
 
 def get_session(request: Request) -> Iterator[Session]:
@@ -28,3 +45,50 @@ def get_templates(request: Request) -> Jinja2Templates:
 SessionDep = Annotated[Session, Depends(get_session)]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 TemplatesDep = Annotated[Jinja2Templates, Depends(get_templates)]
+
+
+def signer(request: Request) -> SessionSigner:
+    return request.app.state.signer  # type: ignore[no-any-return]
+
+
+def current_user(request: Request, session: SessionDep) -> StaffUser:
+    """The signed-in, active user; sets ``request.state.user`` and ``request.state.csrf``."""
+    data = signer(request).read(request.cookies.get(SESSION_COOKIE))
+    user = load_user(session=session, user_id=data.user_id) if data else None
+    if data is None or user is None:
+        target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        raise LoginRequired(target)
+    request.state.user = user
+    request.state.csrf = signer(request).csrf_for(data.sid)
+    request.state.sid = data.sid
+    return user
+
+
+StaffDep = Annotated[StaffUser, Depends(current_user)]
+
+
+def require(role: str) -> Callable[[StaffUser], StaffUser]:
+    """A dependency admitting ``role`` and above; others get 403."""
+
+    def check(user: StaffDep) -> StaffUser:
+        if not has_role(user.role, role):
+            raise HTTPException(status_code=403, detail=f"this page needs the {role} role")
+        return user
+
+    return check
+
+
+AnalystDep = Annotated[StaffUser, Depends(require("analyst"))]
+ApproverDep = Annotated[StaffUser, Depends(require("approver"))]
+AdminDep = Annotated[StaffUser, Depends(require("admin"))]
+
+
+async def csrf_protected(request: Request, user: StaffDep) -> None:
+    """Refuse a form post whose ``csrf`` field does not match the session (403)."""
+    form = await request.form()
+    token = form.get("csrf")
+    if not signer(request).csrf_ok(request.state.sid, token if isinstance(token, str) else None):
+        raise HTTPException(status_code=403, detail="the form's security token is missing or old")
+
+
+CsrfDep = Annotated[None, Depends(csrf_protected)]

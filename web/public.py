@@ -1,27 +1,103 @@
-"""Public, read-only pages for residents (no login)."""
+"""Public, read-only pages for residents (no login): published tiers only.
+
+Every page and its JSON twin carries nothing staff-only; pages are cacheable (ETag and
+Last-Modified from the publication stamp, see :mod:`web.caching`).
+"""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
-from fastapi.responses import HTMLResponse
+from typing import Any
 
-from server.services.overview import public_districts
-from web.deps import SessionDep, TemplatesDep
+from fastapi import APIRouter, Query, Request, Response
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
+
+from server.services.pages import public_district_page, public_map, public_stamp
+from web.caching import conditional
+from web.deps import SessionDep, SettingsDep
+from web.i18n import LANGUAGES
+from web.mapsvg import svg_map
+from web.templating import render
 
 router = APIRouter(tags=["public"])
 
 
 @router.get("/", response_class=HTMLResponse)
-def index(request: Request, session: SessionDep, templates: TemplatesDep) -> HTMLResponse:
-    """Every district of the area, with the cautions that go with published tiers."""
-    districts = public_districts(session=session)
-    return templates.TemplateResponse(request, "public/index.html", {"districts": districts})
+def index(request: Request, session: SessionDep, settings: SettingsDep) -> Response:
+    """Map and list of every district with its published tier, and the cautions."""
+
+    def build() -> Response:
+        data = public_map(session=session)
+        shapes = svg_map((d.code, d.geometry) for d in data.districts)
+        return render(request, "public/index.html", {"data": data, "map": shapes,
+                                                     "by_code": {d.code: d for d in data.districts},
+                                                     "threshold": settings.small_count_threshold})
+
+    stamp = public_stamp(session=session)
+    return conditional(request, stamp.key, build, stamp.last_modified)
+
+
+@router.get("/district/{code}", response_class=HTMLResponse)
+def district(request: Request, code: str, session: SessionDep, settings: SettingsDep) -> Response:
+    """One district: its tier and what it means, since when, a weekly trend, the cautions."""
+
+    def build() -> Response:
+        page = public_district_page(session=session, code=code,
+                                    threshold=settings.small_count_threshold)
+        top = max((w.rate for w in page.weeks if w.rate is not None), default=0.0)
+        return render(request, "public/district.html", {"page": page, "top_rate": top})
+
+    stamp = public_stamp(session=session)
+    return conditional(request, stamp.key, build, stamp.last_modified)
+
+
+@router.get("/language")
+def language(lang: str = Query(...), next: str = Query("/")) -> RedirectResponse:
+    """Remember the chosen language in a cookie and go back."""
+    target = next if next.startswith("/") and not next.startswith("//") else "/"
+    response = RedirectResponse(target, status_code=303)
+    if lang in LANGUAGES:
+        response.set_cookie("tw_lang", lang, max_age=365 * 86400, samesite="lax", httponly=True)
+    return response
+
+
+def _district_json(d: Any) -> dict[str, Any]:
+    return {
+        "code": d.code, "name": d.name, "area": d.area, "tier": d.tier,
+        "tier_name": d.tier_name, "since": d.since.isoformat() if d.since else None,
+    }
 
 
 @router.get("/api/public/districts")
-def districts_json(session: SessionDep) -> list[dict[str, str | None]]:
-    """The public district list as JSON."""
-    return [
-        {"code": d.code, "name": d.name, "area": d.parent_name}
-        for d in public_districts(session=session)
-    ]
+def districts_json(request: Request, session: SessionDep) -> Response:
+    """Every district with its published tier (JSON)."""
+
+    def build() -> Response:
+        data = public_map(session=session)
+        return JSONResponse([_district_json(d) for d in data.districts])
+
+    stamp = public_stamp(session=session)
+    return conditional(request, stamp.key, build, stamp.last_modified)
+
+
+@router.get("/api/public/districts/{code}")
+def district_json(
+    request: Request, code: str, session: SessionDep, settings: SettingsDep
+) -> Response:
+    """One district's published tier and weekly figures, small counts suppressed (JSON)."""
+
+    def build() -> Response:
+        p = public_district_page(session=session, code=code,
+                                 threshold=settings.small_count_threshold)
+        return JSONResponse({
+            "code": p.code, "name": p.name, "area": p.area, "tier": p.tier,
+            "tier_name": p.tier_name, "meaning": p.public_text,
+            "since": p.since.isoformat() if p.since else None,
+            "published_at": p.published_at.isoformat() if p.published_at else None,
+            "data_until": p.data_until.isoformat() if p.data_until else None,
+            "weeks": [{"week_end": w.week_end.isoformat(), "cases": w.count_text,
+                       "rate_per_100k": None if w.rate is None else round(w.rate, 1)}
+                      for w in p.weeks],
+        })
+
+    stamp = public_stamp(session=session)
+    return conditional(request, stamp.key, build, stamp.last_modified)

@@ -1,13 +1,21 @@
-"""Jinja2 environment with autoescape and a few formatting filters."""
+"""Jinja2 environment with autoescape, message catalogs and a few formatting filters."""
 
 from __future__ import annotations
 
+import math
 from datetime import date, datetime
 from pathlib import Path
+from typing import Any
 
+import jinja2
+from fastapi import Request
+from fastapi.responses import HTMLResponse
 from fastapi.templating import Jinja2Templates
 
 from server.config import Settings
+from web.charts import sparkline_points
+from web.i18n import LANGUAGE_NAMES, LANGUAGES, load_catalogs
+from web.palette import NO_TIER, tier_colours
 
 TEMPLATES = Path(__file__).with_name("templates")
 
@@ -24,12 +32,52 @@ def _iso(value: date | datetime | None) -> str:
     return value.isoformat()
 
 
+def _number(value: float | None, decimals: int = 1) -> str:
+    if value is None or not math.isfinite(value):
+        return "—"
+    return f"{value:,.{decimals}f}".replace(",", "\u202f")
+
+
+def _tier_style(level: int | None, n_tiers: int) -> dict[str, str]:
+    """Fill and text colour of a tier (grey for no tier)."""
+    if level is None or level < 0 or n_tiers < 1 or level >= n_tiers:
+        return {"fill": NO_TIER, "text": "#1b2430"}
+    c = tier_colours(n_tiers)[level]
+    return {"fill": c.fill, "text": c.text}
+
+
 def make_templates(settings: Settings) -> Jinja2Templates:
-    templates = Jinja2Templates(directory=TEMPLATES)
-    env = templates.env
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(TEMPLATES), autoescape=True,
+        extensions=["jinja2.ext.i18n"],
+    )
+    templates = Jinja2Templates(env=env)
     env.autoescape = True
+    catalogs = load_catalogs()
+    env.install_gettext_callables(  # type: ignore[attr-defined]
+        catalogs.gettext, catalogs.ngettext, newstyle=True
+    )
     env.filters["thousands"] = _thousands
     env.filters["iso"] = _iso
+    env.filters["number"] = _number
+    env.globals["sparkline"] = sparkline_points
+    env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url
     env.globals["demo_mode"] = settings.demo_mode
+    env.globals["languages"] = [(code, LANGUAGE_NAMES[code]) for code in LANGUAGES]
     return templates
+
+
+def render(
+    request: Request, name: str, context: dict[str, Any], *, status_code: int = 200
+) -> HTMLResponse:
+    """Render ``name`` with the signed-in user, CSRF token and language added to ``context``."""
+    templates: Jinja2Templates = request.app.state.templates
+    state = request.state
+    ctx = {
+        "user": getattr(state, "user", None),
+        "csrf": getattr(state, "csrf", ""),
+        "lang": getattr(state, "lang", "en"),
+        **context,
+    }
+    return templates.TemplateResponse(request, name, ctx, status_code=status_code)

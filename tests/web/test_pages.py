@@ -79,11 +79,10 @@ def test_public_index_omits_non_district_levels(client: TestClient) -> None:
     assert "Kestrel County</th>" not in client.get("/").text
 
 
-def test_staff_home_lists_latest_date_per_measure(client: TestClient) -> None:
-    page = client.get("/staff/")
-    assert page.status_code == 200
-    assert "Fernhollow" in page.text
-    assert "2026-02-03" in page.text
+def test_staff_home_needs_login(client: TestClient) -> None:
+    page = client.get("/staff/", follow_redirects=False)
+    assert page.status_code == 303
+    assert page.headers["location"].startswith("/staff/login")
 
 
 def test_healthz_answers_ok(client: TestClient) -> None:
@@ -103,4 +102,6 @@ def test_static_stylesheet_served_locally(client: TestClient) -> None:
 
 def test_public_districts_json_has_no_staff_fields(client: TestClient) -> None:
     body = client.get("/api/public/districts").json()
-    assert {tuple(sorted(d)) for d in body} == {("area", "code", "name")}
+    assert {tuple(sorted(d)) for d in body} == {
+        ("area", "code", "name", "since", "tier", "tier_name")
+    }

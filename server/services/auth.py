@@ -1,0 +1,251 @@
+"""Use case: staff login, signed sessions, roles, login rate limiting and CSRF tokens.
+
+Passwords are checked against :mod:`server.services.users` hashes and never logged. A session is
+a signed, time-stamped token (``itsdangerous``) holding the user id, a random session id and the
+role at login; every request re-reads the user, so a disabled account or a changed role takes
+effect at once. The CSRF token of a form is an HMAC of the session id under the secret key (the
+"synchronizer token" pattern bound to the session), so it needs no server-side storage.
+
+Roles are ordered: viewer < analyst < approver < admin; a page that needs ``analyst`` admits
+approvers and admins too.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import secrets
+import threading
+import time
+from collections import deque
+from dataclasses import dataclass
+from datetime import UTC, datetime
+
+from itsdangerous import BadSignature, URLSafeTimedSerializer
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from server.services.audit import record
+from server.services.errors import ServiceError, UnknownRoleError
+from server.services.users import ROLES, add_user, verify_password
+from server.store.models import User
+
+__all__ = [
+    "ROLES",
+    "AccountError",
+    "LoginLimiter",
+    "LoginRefusedError",
+    "SessionSigner",
+    "StaffUser",
+    "TooManyAttemptsError",
+    "add_account",
+    "authenticate",
+    "change_role",
+    "csrf_token",
+    "has_role",
+    "list_accounts",
+    "load_user",
+    "set_active",
+    "verify_csrf",
+]
+
+SESSION_MAX_AGE = 12 * 3600  # a working day
+
+
+class LoginRefusedError(ServiceError, ValueError):
+    """Wrong name or password, or a disabled account (the message never says which)."""
+
+    def __init__(self) -> None:
+        super().__init__("unknown user name or wrong password")
+
+
+class TooManyAttemptsError(ServiceError, ValueError):
+    def __init__(self, retry_after: float) -> None:
+        self.retry_after = retry_after
+        super().__init__(f"too many failed logins; try again in {retry_after:.0f} s")
+
+
+class AccountError(ServiceError, ValueError):
+    def __init__(self, name: str, problem: str) -> None:
+        super().__init__(f"user {name!r}: {problem}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class StaffUser:
+    """The signed-in person, as the pages see them."""
+
+    id: int
+    name: str
+    role: str
+    active: bool = True
+
+
+def has_role(role: str, needed: str) -> bool:
+    """True when ``role`` is ``needed`` or ranks above it."""
+    if needed not in ROLES:
+        raise UnknownRoleError(needed, ROLES)
+    return role in ROLES and ROLES.index(role) >= ROLES.index(needed)
+
+
+class LoginLimiter:
+    """Sliding-window limit of failed logins per key (client address and user name).
+
+    At most ``attempts`` failures within ``window`` seconds; further tries are refused until the
+    oldest failure leaves the window. Memory per process (each web worker limits on its own).
+    """
+
+    def __init__(self, *, attempts: int = 5, window: float = 300.0) -> None:
+        if attempts < 1:
+            raise ValueError(f"attempts must be >= 1, got {attempts}")
+        if window <= 0:
+            raise ValueError(f"window must be > 0, got {window}")
+        self.attempts = attempts
+        self.window = window
+        self._failures: dict[str, deque[float]] = {}
+        self._lock = threading.Lock()
+
+    def check(self, key: str, *, now: float | None = None) -> None:
+        """Raise :class:`TooManyAttemptsError` when ``key`` has used up its attempts."""
+        now = time.monotonic() if now is None else now
+        with self._lock:
+            failures = self._failures.get(key)
+            if failures is None:
+                return
+            while failures and failures[0] <= now - self.window:
+                failures.popleft()
+            if len(failures) >= self.attempts:
+                raise TooManyAttemptsError(failures[0] + self.window - now)
+
+    def failed(self, key: str, *, now: float | None = None) -> None:
+        now = time.monotonic() if now is None else now
+        with self._lock:
+            self._failures.setdefault(key, deque()).append(now)
+
+    def succeeded(self, key: str) -> None:
+        with self._lock:
+            self._failures.pop(key, None)
+
+
+def authenticate(
+    *, session: Session, name: str, password: str, limiter: LoginLimiter, client: str
+) -> StaffUser:
+    """Check a login; failed attempts count against ``client`` and ``name`` separately."""
+    keys = (f"client:{client}", f"user:{name.strip().lower()}")
+    for key in keys:
+        limiter.check(key)
+    user = session.scalar(select(User).where(User.name == name.strip()))
+    ok = user is not None and user.active and verify_password(password, user.password_hash)
+    if not ok or user is None:
+        for key in keys:
+            limiter.failed(key)
+        record(session=session, actor=name.strip()[:100] or "?", action="auth.refused",
+               subject=client)
+        raise LoginRefusedError()
+    for key in keys:
+        limiter.succeeded(key)
+    record(session=session, actor=user.name, action="auth.login", subject=client)
+    return StaffUser(id=user.id, name=user.name, role=user.role, active=user.active)
+
+
+def load_user(*, session: Session, user_id: int) -> StaffUser | None:
+    """The active user with ``user_id``, or None (unknown or disabled)."""
+    user = session.get(User, user_id)
+    if user is None or not user.active:
+        return None
+    return StaffUser(id=user.id, name=user.name, role=user.role, active=user.active)
+
+
+@dataclass(frozen=True, kw_only=True)
+class SessionData:
+    user_id: int
+    sid: str
+
+
+class SessionSigner:
+    """Signs and reads session cookies; tokens expire after ``max_age`` seconds."""
+
+    def __init__(self, secret_key: str, *, max_age: int = SESSION_MAX_AGE) -> None:
+        self._serializer = URLSafeTimedSerializer(secret_key, salt="tierwise.session")
+        self._csrf_key = hashlib.sha256(("csrf:" + secret_key).encode()).digest()
+        self.max_age = max_age
+
+    def issue(self, user: StaffUser) -> str:
+        return self._serializer.dumps({"u": user.id, "s": secrets.token_urlsafe(16)})
+
+    def read(self, token: str | None) -> SessionData | None:
+        if not token:
+            return None
+        try:
+            data = self._serializer.loads(token, max_age=self.max_age)
+        except BadSignature:
+            return None
+        if not isinstance(data, dict) or not isinstance(data.get("u"), int):
+            return None
+        return SessionData(user_id=data["u"], sid=str(data.get("s", "")))
+
+    def csrf_for(self, sid: str) -> str:
+        return csrf_token(self._csrf_key, sid)
+
+    def csrf_ok(self, sid: str, token: str | None) -> bool:
+        return verify_csrf(self._csrf_key, sid, token)
+
+
+def csrf_token(key: bytes, sid: str) -> str:
+    """HMAC-SHA256 of the session id (hex)."""
+    return hmac.new(key, sid.encode(), hashlib.sha256).hexdigest()
+
+
+def verify_csrf(key: bytes, sid: str, token: str | None) -> bool:
+    return bool(token) and hmac.compare_digest(csrf_token(key, sid), str(token))
+
+
+# -- accounts (admin) -------------------------------------------------------------------------
+@dataclass(frozen=True, kw_only=True)
+class Account:
+    name: str
+    role: str
+    active: bool
+    created_at: datetime
+
+
+def list_accounts(*, session: Session) -> list[Account]:
+    return [
+        Account(name=u.name, role=u.role, active=u.active, created_at=u.created_at)
+        for u in session.scalars(select(User).order_by(User.name))
+    ]
+
+
+def add_account(*, session: Session, name: str, role: str, password: str, actor: str) -> Account:
+    if len(name.strip()) < 2:
+        raise AccountError(name, "a name needs at least 2 characters")
+    if len(password) < 10:
+        raise AccountError(name, "the password needs at least 10 characters")
+    user = add_user(session=session, name=name.strip(), role=role, password=password, actor=actor)
+    return Account(name=user.name, role=user.role, active=user.active, created_at=user.created_at)
+
+
+def _user(session: Session, name: str) -> User:
+    user = session.scalar(select(User).where(User.name == name))
+    if user is None:
+        raise AccountError(name, "no such user")
+    return user
+
+
+def change_role(*, session: Session, name: str, role: str, actor: str) -> None:
+    if role not in ROLES:
+        raise UnknownRoleError(role, ROLES)
+    user = _user(session, name)
+    if user.name == actor and role != "admin":
+        raise AccountError(name, "admins cannot lower their own role")
+    old, user.role = user.role, role
+    record(session=session, actor=actor, action="users.role", subject=name,
+           details={"from": old, "to": role})
+
+
+def set_active(*, session: Session, name: str, active: bool, actor: str) -> None:
+    user = _user(session, name)
+    if user.name == actor and not active:
+        raise AccountError(name, "admins cannot disable themselves")
+    user.active = active
+    record(session=session, actor=actor, action="users.enable" if active else "users.disable",
+           subject=name, details={"at": datetime.now(UTC).isoformat()})

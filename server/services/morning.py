@@ -1,0 +1,340 @@
+"""Use case: the analyst's morning overview of every district.
+
+For each district: the official (published) tier, the newest recommended tier (a pending change
+stands out), active prepare signals, the key indicators with their intervals and a 14-day series
+for a sparkline; the freshness of each feed; and what changed since the previous day.
+
+The assessment-derived part depends only on the active ruleset and the data cutoff of its newest
+evaluation, so it is built once per (ruleset, cutoff) and kept in memory; the review part (official
+tiers, pending changes) is read on every request.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from datetime import UTC, date, datetime, timedelta
+from typing import Any, Literal
+
+from sqlalchemy import func, select, type_coerce
+from sqlalchemy.orm import Session, aliased
+
+from rules import Ruleset
+from server.services.evaluation import active_ruleset
+from server.services.policies import parsed
+from server.services.review import OfficialTier, PendingChange, official_tiers, pending_changes
+from server.store.models import Assessment, Decision, Region, Vintage
+from server.store.types import UTCDateTime
+
+__all__ = [
+    "Change",
+    "DistrictLine",
+    "FeedFreshness",
+    "KeyIndicator",
+    "MorningOverview",
+    "SortKey",
+    "morning_overview",
+]
+
+SPARK_DAYS = 14
+SortKey = Literal["name", "tier", "recommended", "pending", "code"]
+SORT_KEYS: tuple[str, ...] = ("pending", "name", "code", "tier", "recommended")
+
+
+@dataclass(frozen=True, kw_only=True)
+class KeyIndicator:
+    id: str
+    label: str
+    value_text: str
+    interval_text: str | None
+    level: int
+    known: bool
+    series: tuple[float, ...]
+
+
+@dataclass(frozen=True, kw_only=True)
+class DistrictLine:
+    code: str
+    name: str
+    area: str | None
+    population: int
+    official_tier: int | None
+    official_name: str | None
+    recommended_tier: int | None
+    recommended_name: str | None
+    pending: bool
+    assessment_id: int | None
+    prepare: tuple[str, ...]
+    indicators: tuple[KeyIndicator, ...]
+    sentence: str
+    geometry: dict[str, Any] | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedFreshness:
+    feed: str
+    received_at: datetime
+    age_hours: float
+    rows_accepted: int
+    rows_rejected: int
+    late: bool
+
+
+@dataclass(frozen=True, kw_only=True)
+class Change:
+    code: str
+    name: str
+    what: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class MorningOverview:
+    ruleset: str | None
+    data_cutoff: datetime | None
+    day: date | None
+    lines: tuple[DistrictLine, ...]
+    total: int
+    page: int
+    pages: int
+    pending: int
+    tier_counts: Mapping[int, int]
+    tier_names: tuple[str, ...]
+    feeds: tuple[FeedFreshness, ...]
+    changes: tuple[Change, ...]
+    every: tuple[DistrictLine, ...]
+
+
+@dataclass(frozen=True, kw_only=True)
+class _Base:
+    day: date | None
+    lines: tuple[DistrictLine, ...]
+    changes: tuple[Change, ...]
+
+
+_CACHE: dict[tuple[int, str], _Base] = {}
+_REVIEW: dict[tuple[object, ...], tuple[dict[str, OfficialTier], dict[str, PendingChange]]] = {}
+_LOCK = threading.Lock()
+
+
+def _review_state(
+    session: Session, key: tuple[int, str]
+) -> tuple[dict[str, OfficialTier], dict[str, PendingChange]]:
+    """Official tiers and pending changes, recomputed only when decisions or assessments change.
+
+    Both are functions of the decision table and the newest assessments; the stamp (newest
+    decision id, number published, newest publication, and the assessment key) changes with
+    every decision, publication and evaluation.
+    """
+    stamp = (*key, *session.execute(
+        select(func.max(Decision.id), func.count(Decision.published_at),
+               type_coerce(func.max(Decision.published_at), UTCDateTime()))
+    ).one())
+    with _LOCK:
+        hit = _REVIEW.get(stamp)
+    if hit is None:
+        hit = (official_tiers(session=session, published_only=True),
+               {p.region: p for p in pending_changes(session=session)})
+        with _LOCK:
+            _REVIEW.clear()
+            _REVIEW[stamp] = hit
+    return hit
+
+
+def _fmt(value: float | None, decimals: int, unit: str) -> str:
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    text = f"{value:.{decimals}f}"
+    return text + unit if unit.startswith("%") else (f"{text} {unit}" if unit else text)
+
+
+def _build_base(session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: datetime) -> _Base:
+    parent = aliased(Region)
+    regions = session.execute(
+        select(Region.id, Region.code, Region.name, parent.name, Region.population,
+               Region.geometry)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district")
+    ).all()
+    last = session.scalar(
+        select(func.max(Assessment.ref_date)).where(
+            Assessment.ruleset_id == ruleset_id, Assessment.data_cutoff == cutoff
+        )
+    )
+    by_region: dict[int, dict[date, Assessment]] = {}
+    if last is not None:
+        rows = session.scalars(
+            select(Assessment).where(
+                Assessment.ruleset_id == ruleset_id, Assessment.data_cutoff == cutoff,
+                Assessment.ref_date > last - timedelta(days=SPARK_DAYS),
+            )
+        )
+        for a in rows:
+            by_region.setdefault(a.region_id, {})[a.ref_date] = a
+    days = [last - timedelta(days=k) for k in range(SPARK_DAYS - 1, -1, -1)] if last else []
+    lines, changes = [], []
+    for rid, code, name, area, population, geometry in regions:
+        history = by_region.get(rid, {})
+        newest = history.get(last) if last else None
+        indicators: tuple[KeyIndicator, ...] = ()
+        prepare: tuple[str, ...] = ()
+        sentence = ""
+        if newest is not None:
+            data = newest.explanation.get("data", {})
+            sentence = newest.explanation.get("sentence", "")
+            prepare = tuple(k for k, v in newest.prepare_signals.items() if v)
+            indicators = tuple(_indicators(ruleset, data, history, days))
+            before = history.get(last - timedelta(days=1)) if last else None
+            if before is not None:
+                changes += _changes(ruleset, code, name, before, newest)
+        lines.append(DistrictLine(
+            code=code, name=name, area=area, population=int(population),
+            official_tier=None, official_name=None,
+            recommended_tier=newest.recommended_tier if newest else None,
+            recommended_name=ruleset.tier_name(newest.recommended_tier) if newest else None,
+            pending=False, assessment_id=newest.id if newest else None, prepare=prepare,
+            indicators=indicators, sentence=sentence, geometry=geometry,
+        ))
+    lines.sort(key=lambda x: x.name)
+    return _Base(day=last, lines=tuple(lines), changes=tuple(changes))
+
+
+def _indicators(
+    ruleset: Ruleset, data: dict[str, Any], history: dict[date, Assessment], days: list[date]
+) -> list[KeyIndicator]:
+    out = []
+    for k, item in enumerate(data.get("criteria", [])):
+        spec = ruleset.indicator(item["indicator"])
+        series = []
+        for day in days:
+            a = history.get(day)
+            crits = a.explanation.get("data", {}).get("criteria", []) if a else []
+            v = crits[k].get("value") if k < len(crits) else None
+            series.append(float("nan") if v is None else float(v))
+        interval = None
+        if item.get("lower") is not None and item.get("upper") is not None:
+            interval = (f"{item['lower']:.{spec.decimals}f}–{item['upper']:.{spec.decimals}f}")
+        out.append(KeyIndicator(
+            id=item["id"], label=item.get("label") or spec.label,
+            value_text=_fmt(item.get("value"), spec.decimals, spec.unit),
+            interval_text=interval, level=int(item.get("level", 0)),
+            known=bool(item.get("known", False)), series=tuple(series),
+        ))
+    return out
+
+
+def _changes(
+    ruleset: Ruleset, code: str, name: str, before: Assessment, now: Assessment
+) -> list[Change]:
+    out = []
+    if before.recommended_tier != now.recommended_tier:
+        verb = "rose" if now.recommended_tier > before.recommended_tier else "fell"
+        out.append(Change(code=code, name=name, what=(
+            f"recommended tier {verb} from {ruleset.tier_name(before.recommended_tier)} "
+            f"to {ruleset.tier_name(now.recommended_tier)}"
+        )))
+    for sid, on in now.prepare_signals.items():
+        if on and not before.prepare_signals.get(sid, False):
+            out.append(Change(code=code, name=name, what=f"prepare signal {sid} fired"))
+    return out
+
+
+def _feeds(session: Session, now: datetime, late_hours: float) -> tuple[FeedFreshness, ...]:
+    newest = (
+        select(Vintage.feed, func.max(Vintage.id).label("vid")).group_by(Vintage.feed).subquery()
+    )
+    rows = session.execute(
+        select(Vintage.feed, type_coerce(Vintage.received_at, UTCDateTime()),
+               Vintage.rows_accepted, Vintage.rows_rejected)
+        .join(newest, newest.c.vid == Vintage.id)
+        .order_by(Vintage.feed)
+    ).all()
+    out = []
+    for feed, received, accepted, rejected in rows:
+        age = (now - received).total_seconds() / 3600
+        out.append(FeedFreshness(feed=feed, received_at=received, age_hours=age,
+                                 rows_accepted=accepted, rows_rejected=rejected,
+                                 late=age > late_hours))
+    return tuple(out)
+
+
+def _sort(lines: list[DistrictLine], key: str) -> list[DistrictLine]:
+    def tier(v: int | None) -> int:
+        return -99 if v is None else v
+
+    if key == "code":
+        return sorted(lines, key=lambda x: x.code)
+    if key == "tier":
+        return sorted(lines, key=lambda x: (-tier(x.official_tier), x.name))
+    if key == "recommended":
+        return sorted(lines, key=lambda x: (-tier(x.recommended_tier), x.name))
+    if key == "pending":
+        return sorted(lines, key=lambda x: (not x.pending, not x.prepare, x.name))
+    return sorted(lines, key=lambda x: x.name)
+
+
+def morning_overview(
+    *, session: Session, sort: str = "pending", query: str = "", tier: int | None = None,
+    pending_only: bool = False, page: int = 1, per_page: int = 100,
+    now: datetime | None = None, late_hours: float = 30.0,
+) -> MorningOverview:
+    """Every district's official and recommended tier, signals, indicators; filtered, sorted and
+    paged (``page`` counts from 1)."""
+    if sort not in SORT_KEYS:
+        raise ValueError(f"sort must be one of {', '.join(SORT_KEYS)}, got {sort!r}")
+    if page < 1 or per_page < 1:
+        raise ValueError(f"page and per_page must be >= 1, got {page} and {per_page}")
+    now = now or datetime.now(UTC)
+    row = active_ruleset(session=session)
+    feeds = _feeds(session, now, late_hours)
+    if row is None:
+        return MorningOverview(
+            ruleset=None, data_cutoff=None, day=None, lines=(), total=0, page=1, pages=1,
+            pending=0, tier_counts={}, tier_names=(), feeds=feeds, changes=(), every=(),
+        )
+    cutoff = session.scalar(
+        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
+        .where(Assessment.ruleset_id == row.id)
+    )
+    ruleset = parsed(row)
+    key = (row.id, cutoff.isoformat() if cutoff else "-")
+    with _LOCK:
+        base = _CACHE.get(key)
+    if base is None:
+        base = (
+            _build_base(session, row.id, ruleset, cutoff) if cutoff
+            else _Base(day=None, lines=(), changes=())
+        )
+        with _LOCK:
+            _CACHE.clear()
+            _CACHE[key] = base
+    official, pending = _review_state(session, key)
+    lines = []
+    for line in base.lines:
+        off, pend = official.get(line.code), pending.get(line.code)
+        lines.append(replace(
+            line, official_tier=off.tier if off else None,
+            official_name=off.tier_name if off else None, pending=pend is not None,
+            assessment_id=pend.assessment_id if pend else line.assessment_id,
+        ))
+    counts: dict[int, int] = {}
+    for line in lines:
+        if line.official_tier is not None:
+            counts[line.official_tier] = counts.get(line.official_tier, 0) + 1
+    chosen = [
+        line for line in lines
+        if (not query or query.lower() in line.name.lower() or query.lower() in line.code.lower())
+        and (tier is None or line.recommended_tier == tier or line.official_tier == tier)
+        and (not pending_only or line.pending)
+    ]
+    chosen = _sort(chosen, sort)
+    pages = max(1, math.ceil(len(chosen) / per_page))
+    page = min(page, pages)
+    return MorningOverview(
+        ruleset=f"{row.name} {row.version}", data_cutoff=cutoff, day=base.day,
+        lines=tuple(chosen[(page - 1) * per_page: page * per_page]), total=len(chosen),
+        page=page, pages=pages, pending=len(pending), tier_counts=counts,
+        tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds, changes=base.changes,
+        every=tuple(lines),
+    )

@@ -1,0 +1,260 @@
+"""Use case: the data of the public pages (published tiers only, small counts suppressed).
+
+Nothing staff-only reaches these objects: no recommended tiers, pending reviews, rejected rows or
+user names. Only decisions that have been *published* count. Weekly case counts below the
+configured small-count threshold are replaced by ``"<N"`` and the rate derived from them is
+withheld (the small-cell rule of health statistics).
+
+The page data depend only on the publication state and the newest vintage, summarised in a
+*stamp*; pages and their ETags are keyed by it, so a cached page is served until something is
+published or new data arrive.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+from typing import Any
+
+import numpy as np
+from sqlalchemy import Select, func, select, type_coerce
+from sqlalchemy.orm import Session, aliased
+
+from rules import Ruleset, parse_ruleset
+from server.services.errors import ServiceError
+from server.services.evaluation import active_ruleset
+from server.services.review import official_tiers
+from server.store import read_dense
+from server.store.models import Decision, Measure, Observation, Region, Vintage
+from server.store.types import UTCDateTime
+
+__all__ = [
+    "PublicDistrictPage",
+    "PublicMap",
+    "PublicMapEntry",
+    "PublicStamp",
+    "TierInfo",
+    "UnknownDistrictError",
+    "WeekFigure",
+    "public_district_page",
+    "public_map",
+    "public_stamp",
+    "suppress_count",
+]
+
+TREND_WEEKS = 12
+
+
+class UnknownDistrictError(ServiceError, LookupError):
+    def __init__(self, code: str) -> None:
+        self.code = code
+        super().__init__(f"no district with code {code!r}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class TierInfo:
+    level: int
+    name: str
+    public: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublicMapEntry:
+    code: str
+    name: str
+    area: str | None
+    tier: int | None
+    tier_name: str | None
+    since: date | None
+    geometry: dict[str, Any] | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublicMap:
+    districts: tuple[PublicMapEntry, ...]
+    tiers: tuple[TierInfo, ...]
+    last_published: datetime | None
+    stamp: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class WeekFigure:
+    """One week of cases: ``count_text`` is the count or ``"<N"``; ``rate`` None when withheld."""
+
+    week_end: date
+    count_text: str
+    rate: float | None
+    suppressed: bool
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublicDistrictPage:
+    code: str
+    name: str
+    area: str | None
+    tier: int | None
+    tier_name: str | None
+    public_text: str | None
+    since: date | None
+    published_at: datetime | None
+    data_until: date | None
+    weeks: tuple[WeekFigure, ...]
+    tiers: tuple[TierInfo, ...]
+    threshold: int
+    stamp: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublicStamp:
+    """What the public pages depend on: ``key`` changes on publication or new data."""
+
+    key: str
+    last_modified: datetime | None
+
+
+def public_stamp(*, session: Session) -> PublicStamp:
+    """A short key that changes whenever something is published or new data arrive."""
+    published = session.scalar(
+        select(type_coerce(func.max(Decision.published_at), UTCDateTime()))
+    )
+    n_published = session.scalar(
+        select(func.count()).select_from(Decision).where(Decision.published_at.is_not(None))
+    )
+    newest = session.scalar(select(func.max(Vintage.id)))
+    received = session.scalar(
+        select(type_coerce(func.max(Vintage.received_at), UTCDateTime()))
+    )
+    stamp = published.isoformat() if published else "-"
+    changed = max((t for t in (published, received) if t is not None), default=None)
+    return PublicStamp(key=f"{stamp}|{n_published}|{newest or 0}", last_modified=changed)
+
+
+_RULESETS: dict[str, Ruleset] = {}
+_LOCK = threading.Lock()
+
+
+def _tiers(session: Session) -> tuple[TierInfo, ...]:
+    row = active_ruleset(session=session)
+    if row is None:
+        return ()
+    with _LOCK:
+        ruleset = _RULESETS.get(row.sha256)
+        if ruleset is None:
+            ruleset = parse_ruleset(row.yaml_text, source=row.name)
+            _RULESETS[row.sha256] = ruleset
+    return tuple(TierInfo(level=t.level, name=t.name, public=t.public.strip())
+                 for t in ruleset.tiers)
+
+
+def _districts(session: Session) -> list[tuple[Region, str | None]]:
+    parent = aliased(Region)
+    query = (
+        select(Region, parent.name)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district")
+        .order_by(Region.name)
+    )
+    return [(r, p) for r, p in session.execute(query).all()]
+
+
+def public_map(*, session: Session) -> PublicMap:
+    """Every district with its published tier (None when nothing is published yet)."""
+    published = official_tiers(session=session, published_only=True)
+    entries = []
+    for region, area in _districts(session):
+        off = published.get(region.code)
+        entries.append(
+            PublicMapEntry(
+                code=region.code, name=region.name, area=area,
+                tier=off.tier if off else None, tier_name=off.tier_name if off else None,
+                since=off.since if off else None, geometry=region.geometry,
+            )
+        )
+    last = max((o.published_at for o in published.values() if o.published_at), default=None)
+    return PublicMap(
+        districts=tuple(entries), tiers=_tiers(session), last_published=last,
+        stamp=public_stamp(session=session).key,
+    )
+
+
+def suppress_count(count: float, threshold: int) -> tuple[str, bool]:
+    """``(text, suppressed)``: counts below ``threshold`` become ``"<threshold"``.
+
+    Notes
+    -----
+    The small-cell rule of health statistics suppresses counts under a threshold (commonly 10)
+    and every rate derived from them. Zero is suppressed too, so that a published zero cannot be
+    told apart from a suppressed cell by subtraction from totals (conservative choice).
+    """
+    if threshold < 1:
+        raise ValueError(f"threshold must be >= 1, got {threshold}")
+    if not np.isfinite(count):
+        return "—", True
+    if count < threshold:
+        return f"<{threshold}", True
+    return f"{count:,.0f}".replace(",", "\u202f"), False
+
+
+def weekly_figures(
+    daily: np.ndarray, dates: np.ndarray, population: float, threshold: int
+) -> tuple[WeekFigure, ...]:
+    """Sum daily counts into weeks ending on the last date; rates per 100 000, suppressed.
+
+    Weeks with any missing day are reported as unknown ("—") rather than as a partial sum.
+    """
+    n = daily.size // 7
+    if n == 0:
+        return ()
+    tail = daily[-7 * n:].reshape(n, 7)
+    ends = dates[-7 * n:].reshape(n, 7)[:, -1]
+    complete = np.isfinite(tail).all(axis=1)
+    sums = np.where(complete, np.nansum(tail, axis=1), np.nan)
+    out = []
+    for s, end, ok in zip(sums, ends, complete, strict=True):
+        text, hidden = suppress_count(float(s), threshold) if ok else ("—", True)
+        rate = None if hidden or population <= 0 else float(s) / population * 100_000
+        out.append(WeekFigure(week_end=end.astype(date), count_text=text, rate=rate,
+                              suppressed=hidden))
+    return tuple(out)
+
+
+def public_district_page(*, session: Session, code: str, threshold: int) -> PublicDistrictPage:
+    """The public page of one district: published tier and a suppressed weekly case trend."""
+    parent = aliased(Region)
+    row = session.execute(
+        select(Region, parent.name)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.code == code, Region.level == "district")
+    ).first()
+    if row is None:
+        raise UnknownDistrictError(code)
+    region, area = row
+    off = official_tiers(session=session, published_only=True).get(code)
+    newest = session.scalar(select(func.max(Vintage.id)))
+    weeks: tuple[WeekFigure, ...] = ()
+    data_until = None
+    if newest is not None:
+        last_day = session.scalar(_last_case_day(region.id))
+        if last_day is not None:
+            start = last_day - timedelta(days=7 * TREND_WEEKS - 1)
+            dense = read_dense(session=session, measures=["cases"], start=start, end=last_day,
+                               regions=[code])
+            weeks = weekly_figures(dense["cases"][0], dense.dates, float(region.population),
+                                   threshold)
+            data_until = last_day
+    return PublicDistrictPage(
+        code=region.code, name=region.name, area=area,
+        tier=off.tier if off else None, tier_name=off.tier_name if off else None,
+        public_text=off.public_text if off else None, since=off.since if off else None,
+        published_at=off.published_at if off else None, data_until=data_until, weeks=weeks,
+        tiers=_tiers(session), threshold=threshold, stamp=public_stamp(session=session).key,
+    )
+
+
+def _last_case_day(region_id: int) -> Select[tuple[date]]:
+    return (
+        select(func.max(Observation.ref_date))
+        .join(Measure, Measure.id == Observation.measure_id)
+        .where(Observation.region_id == region_id, Measure.name == "cases")
+    )

@@ -1,0 +1,78 @@
+"""Fixtures of the web tests: one seeded demo database per session, copied per module.
+
+Seeding the invented demo county takes a few seconds, so it happens once; modules that change
+data (decisions, publications, users) work on their own copy of the file.
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+from collections.abc import Iterator
+from datetime import date
+from pathlib import Path
+
+import pytest
+from fastapi.testclient import TestClient
+
+from demo_seed.seed import DEMO_USERS, seed_demo
+from server.config import Settings
+from server.services.database import Database
+from web.app import create_app
+
+DEMO_END = date(2026, 11, 30)
+PASSWORDS = {name: password for name, _role, password in DEMO_USERS}
+ROLE_USER = {role: name for name, role, _password in DEMO_USERS}
+
+
+@pytest.fixture(scope="session")
+def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A demo database file (150 days ending on DEMO_END), seeded once per test session."""
+    path = tmp_path_factory.mktemp("demo") / "demo.db"
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
+    try:
+        seed_demo(db, days=150, end=DEMO_END)
+    finally:
+        db.dispose()
+    return path
+
+
+def copy_demo(demo_file: Path, target: Path) -> Path:
+    target.parent.mkdir(parents=True, exist_ok=True)
+    shutil.copyfile(demo_file, target)
+    return target
+
+
+def settings_for(path: Path, **overrides: object) -> Settings:
+    return Settings(database_url=f"sqlite:///{path}", secret_key="k" * 40, **overrides)  # type: ignore[arg-type]
+
+
+@pytest.fixture(scope="module")
+def demo_app_client(
+    demo_file: Path, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[TestClient]:
+    """A client on this module's own copy of the demo database."""
+    path = copy_demo(demo_file, tmp_path_factory.mktemp("copy") / "demo.db")
+    with TestClient(create_app(settings_for(path))) as client:
+        yield client
+
+
+def login(client: TestClient, name: str, password: str | None = None) -> int:
+    """Sign ``name`` in on ``client``; returns the status of the login POST."""
+    client.cookies.clear()
+    form = client.get("/staff/login")
+    token = re.search(r'name="login_token" value="([^"]+)"', form.text)
+    assert token is not None
+    answer = client.post(
+        "/staff/login",
+        data={"name": name, "password": password or PASSWORDS[name],
+              "login_token": token.group(1), "next": "/staff/"},
+        follow_redirects=False,
+    )
+    return answer.status_code
+
+
+def csrf_of(page_text: str) -> str:
+    found = re.search(r'name="csrf" value="([^"]+)"', page_text)
+    assert found is not None, "no CSRF field on the page"
+    return found.group(1)

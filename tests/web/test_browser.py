@@ -1,0 +1,186 @@
+"""Browser tests: Playwright driving Debian's Chromium against uvicorn serving the demo database.
+
+Screenshots of every page visited are saved under ``test-artifacts/`` (gitignored).
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+
+from tests.web.conftest import PASSWORDS, copy_demo
+
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
+
+CHROMIUM = "/usr/bin/chromium"
+ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
+ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
+        "--disable-component-update", "--disable-sync", "--no-first-run"]
+
+if not Path(CHROMIUM).exists():
+    pytest.skip("Debian's chromium is not installed at /usr/bin/chromium", allow_module_level=True)
+sync_api = pytest.importorskip("playwright.sync_api")
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@pytest.fixture(scope="module")
+def server(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    path = copy_demo(demo_file, tmp_path_factory.mktemp("browser") / "demo.db")
+    port = _free_port()
+    env = {**os.environ, "TIERWISE_DATABASE_URL": f"sqlite:///{path}",
+           "TIERWISE_DEMO_MODE": "true"}
+    root = Path(__file__).resolve().parents[2]
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "uvicorn", "web.app:app_from_environment", "--factory",
+         "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
+        cwd=root, env=env,
+    )
+    base = f"http://127.0.0.1:{port}"
+    try:
+        for _ in range(200):
+            try:
+                if httpx.get(base + "/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                time.sleep(0.1)
+        else:
+            raise RuntimeError("uvicorn did not start")
+        yield base
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[object]:
+    with sync_api.sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture
+def page(browser: object) -> Iterator[object]:
+    context = browser.new_context(viewport={"width": 1280, "height": 900})  # type: ignore[attr-defined]
+    pg = context.new_page()
+    errors: list[str] = []
+    pg.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    pg.csp_errors = errors
+    yield pg
+    context.close()
+
+
+def shot(pg: object, name: str) -> None:
+    ARTIFACTS.mkdir(exist_ok=True)
+    pg.screenshot(path=str(ARTIFACTS / f"{name}.png"), full_page=True)  # type: ignore[attr-defined]
+
+
+def sign_in(pg: object, base: str, name: str) -> None:
+    pg.goto(base + "/staff/")  # type: ignore[attr-defined]
+    pg.fill("#name", name)  # type: ignore[attr-defined]
+    pg.fill("#password", PASSWORDS[name])  # type: ignore[attr-defined]
+    pg.click("button[type=submit]")  # type: ignore[attr-defined]
+    pg.wait_for_url(base + "/staff/")  # type: ignore[attr-defined]
+
+
+def test_public_map_shows_every_district(server: str, page: object) -> None:
+    page.goto(server + "/")
+    assert page.locator("figure.map path").count() == 14
+    assert page.locator("table.grid tbody tr").count() == 14
+    shot(page, "01-public-map")
+
+
+def test_public_page_on_a_phone(server: str, browser: object) -> None:
+    context = browser.new_context(viewport={"width": 390, "height": 844}, is_mobile=True)
+    pg = context.new_page()
+    pg.goto(server + "/district/D02")
+    assert pg.locator("h1").inner_text() == "Ostervale"
+    # Nothing scrolls sideways on a phone.
+    assert pg.evaluate("document.documentElement.scrollWidth") <= 390
+    shot(pg, "02-public-district-phone")
+    context.close()
+
+
+def test_staff_login_shows_overview_with_pending_change(server: str, page: object) -> None:
+    page.goto(server + "/staff/")
+    assert "/staff/login" in page.url
+    shot(page, "03-login")
+    sign_in(page, server, "otto.approver")
+    assert page.locator("h1").inner_text() == "Morning overview"
+    assert page.locator("a.flag.pending").count() >= 1
+    shot(page, "04-overview")
+
+
+def test_district_page_draws_charts_without_csp_errors(server: str, page: object) -> None:
+    sign_in(page, server, "ada.analyst")
+    page.goto(server + "/staff/district/D01")
+    page.wait_for_selector(".chart[data-drawn]", timeout=15000)
+    assert page.locator(".chart[data-drawn]").count() == page.locator(".chart").count()
+    assert not [e for e in page.csp_errors if "Content Security Policy" in e]
+    shot(page, "05-staff-district")
+
+
+def test_explanation_page_names_thresholds(server: str, page: object) -> None:
+    sign_in(page, server, "vic.viewer")
+    page.goto(server + "/staff/district/D01/explain")
+    text = page.locator("table.explain").inner_text()
+    assert "enter / leave" in text
+    assert "per 100 000" in text
+    shot(page, "06-explanation")
+    page.emulate_media(media="print")
+    shot(page, "07-explanation-print")
+
+
+def test_confirm_and_publish_updates_public_page(server: str, page: object) -> None:
+    sign_in(page, server, "otto.approver")
+    page.goto(server + "/staff/review")
+    card = page.locator("article.pending-card").first
+    district = card.locator("h3 a").inner_text()
+    code = card.locator("h3 a").get_attribute("href").rsplit("/", 1)[-1]
+    tier_name = card.locator("button[value=confirm]").inner_text().removeprefix("Confirm ")
+    shot(page, "08-review-queue")
+    card.locator("textarea").fill("Criteria met for the confirmation period; agreed at the call.")
+    card.locator("button[value=confirm]").click()
+    page.wait_for_url(server + "/staff/review")
+    page.click("text=Publish all decisions")
+    page.wait_for_selector("p.notice")
+    shot(page, "09-published")
+    page.goto(server + f"/district/{code}")
+    assert page.locator("h1").inner_text() == district
+    assert tier_name in page.locator(".tier-badge").inner_text()
+    shot(page, "10-public-district-published")
+    page.goto(server + "/")
+    shot(page, "11-public-map-published")
+
+
+def test_keyboard_only_pass_through_public_page(server: str, page: object) -> None:
+    page.goto(server + "/")
+    page.keyboard.press("Tab")
+    first = page.evaluate("document.activeElement.textContent.trim()")
+    assert first == "Skip to content"
+    seen = []
+    for _ in range(40):
+        page.keyboard.press("Tab")
+        seen.append(page.evaluate(
+            "[document.activeElement.tagName, document.activeElement.getAttribute('href')]"))
+    district_links = {href for tag, href in seen if tag == "A" and href and "/district/" in href}
+    assert len(district_links) == 14
+    focused = page.locator("table a[href='/district/D05']")
+    focused.focus()
+    shot(page, "12-keyboard-focus")
+    page.keyboard.press("Enter")
+    page.wait_for_url(server + "/district/D05")
+    assert page.locator("h1").inner_text() == "Kessanthal"

@@ -1,0 +1,175 @@
+"""Public pages: published tiers only, nothing staff-only, small counts suppressed, cacheable."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+
+from server.services.pages import suppress_count, weekly_figures
+from tests.web.conftest import csrf_of, login
+
+CODES = [f"D{i:02d}" for i in range(1, 15)]
+STAFF_MARKERS = (
+    "ada.analyst", "otto.approver", "ines.admin", "vic.viewer", "recommend", "pending",
+    "rejected", "override", "SECRET-REASON-7731", "UNPUBLISHED-REASON-4410", "assessment",
+)
+
+
+def _public_routes() -> list[str]:
+    routes = ["/", "/?lang=de", "/api/public/districts"]
+    routes += [f"/district/{c}" for c in CODES] + [f"/api/public/districts/{c}" for c in CODES]
+    return routes
+
+
+def _assessment_of(client: TestClient, code: str) -> str:
+    page = client.get("/staff/review")
+    anchor = page.text.index(f'href="/staff/district/{code}"')
+    form_at = page.text.index('action="/staff/review/', anchor)
+    return page.text[form_at:].split('"')[1].rsplit("/", 1)[-1]
+
+
+def _decide(
+    client: TestClient, *, code: str, tier: int, reason: str, assessment: str | None = None
+) -> None:
+    page = client.get("/staff/review")
+    assessment = assessment or _assessment_of(client, code)
+    answer = client.post(
+        f"/staff/review/{assessment}",
+        data={"csrf": csrf_of(page.text), "action": "override", "tier": str(tier),
+              "reason": reason},
+        follow_redirects=False,
+    )
+    assert answer.status_code == 303, answer.text
+
+
+@pytest.fixture(scope="module")
+def published(demo_app_client: TestClient) -> TestClient:
+    """D01 overridden to tier 1 and published; then D02 decided (tier 0) but not published."""
+    client = demo_app_client
+    assert login(client, "otto.approver") == 303
+    d02 = _assessment_of(client, "D02")
+    _decide(client, code="D01", tier=1, reason="SECRET-REASON-7731 agreed with the board")
+    review = client.get("/staff/review")
+    assert client.post("/staff/publish", data={"csrf": csrf_of(review.text)},
+                       follow_redirects=False).status_code == 303
+    _decide(client, code="D02", tier=0, reason="UNPUBLISHED-REASON-4410", assessment=d02)
+    client.cookies.clear()
+    return client
+
+
+def test_public_routes_answer_without_login(published: TestClient) -> None:
+    for route in _public_routes():
+        assert published.get(route).status_code == 200, route
+
+
+def test_public_routes_carry_nothing_staff_only(published: TestClient) -> None:
+    for route in _public_routes():
+        body = published.get(route).text.lower()
+        for marker in STAFF_MARKERS:
+            assert marker.lower() not in body, (route, marker)
+
+
+def test_public_district_shows_published_override(published: TestClient) -> None:
+    body = published.get("/api/public/districts/D01").json()
+    assert body["tier"] == 1
+    assert body["tier_name"] == "Heightened"
+
+
+def test_public_district_ignores_unpublished_decision(published: TestClient) -> None:
+    # D02 was published at its recommendation (Severe) and then decided 0, unpublished.
+    assert published.get("/api/public/districts/D02").json()["tier"] == 3
+
+
+def test_public_index_names_every_district(published: TestClient) -> None:
+    names = {d["name"] for d in published.get("/api/public/districts").json()}
+    page = published.get("/").text
+    assert len(names) == 14
+    assert all(name in page for name in names)
+
+
+def test_public_pages_carry_the_cautions(published: TestClient) -> None:
+    for route in ["/", "/district/D03"]:
+        text = published.get(route).text
+        assert "responsible health authority under local law" in text
+        assert "provisional" in text
+        assert "&lt;10" in text
+
+
+def test_public_page_answers_304_to_its_etag(published: TestClient) -> None:
+    first = published.get("/district/D04")
+    etag = first.headers["etag"]
+    again = published.get("/district/D04", headers={"If-None-Match": etag})
+    assert again.status_code == 304
+    assert again.content == b""
+    assert "last-modified" in first.headers
+    assert first.headers["cache-control"].startswith("public")
+
+
+def test_public_etag_differs_by_language(published: TestClient) -> None:
+    en = published.get("/", headers={"accept-language": "en"}).headers["etag"]
+    de = published.get("/", headers={"accept-language": "de"}).headers["etag"]
+    assert en != de
+
+
+def test_public_page_in_german(published: TestClient) -> None:
+    text = published.get("/?lang=de").text
+    assert '<html lang="de">' in text
+    assert "Warnstufen nach Bezirk" in text
+
+
+def test_public_unknown_district_is_404(published: TestClient) -> None:
+    answer = published.get("/district/NOPE")
+    assert answer.status_code == 404
+    assert "no district with code &#39;NOPE&#39;" in answer.text
+
+
+def test_public_pages_send_a_strict_csp(published: TestClient) -> None:
+    csp = published.get("/").headers["content-security-policy"]
+    assert "script-src 'self'" in csp
+    assert "unsafe-inline" not in csp.split("script-src")[1].split(";")[0]
+    assert published.get("/").headers["x-frame-options"] == "DENY"
+
+
+def test_public_pages_have_no_inline_script(published: TestClient) -> None:
+    for route in ["/", "/district/D01"]:
+        text = published.get(route).text
+        assert "<script>" not in text and "onclick" not in text.lower()
+
+
+@pytest.mark.parametrize(
+    ("count", "text", "hidden"),
+    [
+        # Small-cell rule (health statistics, common practice): counts under 10 suppressed.
+        pytest.param(0.0, "<10", True, id="zero"),
+        pytest.param(9.0, "<10", True, id="nine"),
+        pytest.param(10.0, "10", False, id="ten"),
+        pytest.param(12345.0, "12\u202f345", False, id="thousands"),
+        pytest.param(float("nan"), "—", True, id="missing"),
+    ],
+)
+def test_suppress_count_below_threshold(count: float, text: str, hidden: bool) -> None:
+    assert suppress_count(count, 10) == (text, hidden)
+
+
+def test_weekly_figures_withhold_rates_of_small_counts() -> None:
+    daily = np.array([1.0] * 7 + [3.0] * 7)  # 7 cases, then 21 cases
+    dates = np.arange(np.datetime64("2026-03-01"), np.datetime64("2026-03-15"))
+    weeks = weekly_figures(daily, dates, 50_000.0, 10)
+    assert [w.count_text for w in weeks] == ["<10", "21"]
+    assert weeks[0].rate is None
+    # 21 cases in 50 000 people = 42 per 100 000.
+    assert weeks[1].rate == pytest.approx(42.0)
+
+
+def test_weekly_figures_treat_a_missing_day_as_unknown_week() -> None:
+    daily = np.array([5.0] * 6 + [np.nan])
+    dates = np.arange(np.datetime64("2026-03-01"), np.datetime64("2026-03-08"))
+    (week,) = weekly_figures(daily, dates, 1000.0, 10)
+    assert week.count_text == "—"
+    assert week.rate is None
+
+
+def test_suppress_count_refuses_a_zero_threshold() -> None:
+    with pytest.raises(ValueError, match="threshold must be >= 1, got 0"):
+        suppress_count(5.0, 0)

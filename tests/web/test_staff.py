@@ -1,0 +1,193 @@
+"""Staff routes for every role (allowed and refused), login, sessions and CSRF."""
+
+from __future__ import annotations
+
+import pytest
+from fastapi.testclient import TestClient
+
+from server.services.auth import LoginLimiter, TooManyAttemptsError, has_role
+from tests.web.conftest import ROLE_USER, csrf_of, login
+
+PAGES = [
+    ("/staff/", "viewer"),
+    ("/staff/district/D01", "viewer"),
+    ("/staff/district/D01/explain", "viewer"),
+    ("/staff/district/D01/explain?day=2026-11-20", "viewer"),
+    ("/staff/review", "viewer"),
+    ("/staff/policies", "viewer"),
+    ("/staff/users", "admin"),
+]
+ROLES = ("viewer", "analyst", "approver", "admin")
+CASES = [
+    pytest.param(path, role, has_role(role, needed), id=f"{path}-{role}")
+    for path, needed in PAGES for role in ROLES
+]
+
+
+@pytest.mark.parametrize(("path", "role", "allowed"), CASES)
+def test_staff_page_by_role(
+    demo_app_client: TestClient, path: str, role: str, allowed: bool
+) -> None:
+    assert login(demo_app_client, ROLE_USER[role]) == 303
+    answer = demo_app_client.get(path)
+    assert answer.status_code == (200 if allowed else 403), answer.text[:300]
+
+
+@pytest.mark.parametrize("path", [p for p, _ in PAGES])
+def test_staff_page_without_login_redirects(demo_app_client: TestClient, path: str) -> None:
+    demo_app_client.cookies.clear()
+    answer = demo_app_client.get(path, follow_redirects=False)
+    assert answer.status_code == 303
+    assert answer.headers["location"].startswith("/staff/login?next=")
+
+
+@pytest.mark.parametrize(
+    ("role", "status"),
+    [pytest.param("viewer", 403, id="viewer"), pytest.param("analyst", 403, id="analyst")],
+)
+def test_publish_refused_below_approver(
+    demo_app_client: TestClient, role: str, status: int
+) -> None:
+    login(demo_app_client, ROLE_USER[role])
+    csrf = csrf_of(demo_app_client.get("/staff/review").text)
+    answer = demo_app_client.post("/staff/publish", data={"csrf": csrf})
+    assert answer.status_code == status
+
+
+def test_publish_refused_without_csrf(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "otto.approver")
+    answer = demo_app_client.post("/staff/publish", data={"csrf": "forged"})
+    assert answer.status_code == 403
+    assert "security token" in answer.text
+
+
+def test_decision_without_reason_is_refused(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "otto.approver")
+    page = demo_app_client.get("/staff/review").text
+    action = page.split('action="/staff/review/')[1].split('"')[0]
+    answer = demo_app_client.post(
+        f"/staff/review/{action}", data={"csrf": csrf_of(page), "action": "confirm",
+                                          "reason": "  "})
+    assert answer.status_code == 422
+    assert "a decision needs a reason" in answer.text
+
+
+def test_login_with_wrong_password_is_refused(demo_app_client: TestClient) -> None:
+    assert login(demo_app_client, "vic.viewer", "wrong-password") == 401
+    assert "tw_session" not in demo_app_client.cookies
+
+
+def test_login_form_without_token_is_refused(demo_app_client: TestClient) -> None:
+    demo_app_client.cookies.clear()
+    answer = demo_app_client.post(
+        "/staff/login", data={"name": "vic.viewer", "password": "demo-viewer"})
+    assert answer.status_code == 403
+
+
+def test_session_cookie_is_httponly_and_lax(demo_app_client: TestClient) -> None:
+    demo_app_client.cookies.clear()
+    form = demo_app_client.get("/staff/login").text
+    token = form.split('name="login_token" value="')[1].split('"')[0]
+    answer = demo_app_client.post(
+        "/staff/login", data={"name": "vic.viewer", "password": "demo-viewer",
+                              "login_token": token}, follow_redirects=False)
+    cookie = answer.headers["set-cookie"]
+    assert "tw_session=" in cookie
+    assert "HttpOnly" in cookie
+    assert "SameSite=lax" in cookie or "samesite=lax" in cookie.lower()
+
+
+def test_tampered_session_cookie_is_ignored(demo_app_client: TestClient) -> None:
+    demo_app_client.cookies.clear()
+    demo_app_client.cookies.set("tw_session", "eyJ1IjoxfQ.forged.sig")
+    answer = demo_app_client.get("/staff/", follow_redirects=False)
+    assert answer.status_code == 303
+
+
+def test_logout_ends_the_session(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "vic.viewer")
+    csrf = csrf_of(demo_app_client.get("/staff/").text)
+    assert demo_app_client.post("/staff/logout", data={"csrf": csrf},
+                                follow_redirects=False).status_code == 303
+    assert demo_app_client.get("/staff/", follow_redirects=False).status_code == 303
+
+
+def test_overview_marks_pending_changes(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/?sort=pending").text
+    assert "pending change" in text
+    assert "Morning overview" in text
+
+
+def test_overview_filters_by_search(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/?q=Vorwick").text
+    assert "1 district" in text
+    assert "Corvenstadt</a>" not in text
+
+
+def test_explanation_names_ruleset_and_thresholds(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "vic.viewer")
+    text = demo_app_client.get("/staff/district/D01/explain").text
+    assert "county-demo" in text
+    assert "SHA-256" in text
+    assert "Data cutoff" in text
+    assert "per 100 000" in text
+
+
+def test_draft_with_error_names_line_and_key(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    csrf = csrf_of(demo_app_client.get("/staff/policies").text)
+    draft = "name: broken\nversion: '1'\ntiers:\n  - name: Only\n"
+    answer = demo_app_client.post(
+        "/staff/policies/draft", data={"csrf": csrf, "text": draft})
+    assert answer.status_code == 422
+    assert "draft.yaml:" in answer.text
+
+
+def test_draft_upload_refused_for_viewer(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "vic.viewer")
+    csrf = csrf_of(demo_app_client.get("/staff/policies").text)
+    answer = demo_app_client.post("/staff/policies/draft", data={"csrf": csrf, "text": "x"})
+    assert answer.status_code == 403
+
+
+def test_admin_adds_and_disables_a_user(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ines.admin")
+    csrf = csrf_of(demo_app_client.get("/staff/users").text)
+    added = demo_app_client.post("/staff/users", data={
+        "csrf": csrf, "name": "nia.newcomer", "role": "viewer", "password": "a-long-password"})
+    assert added.status_code == 200
+    assert "nia.newcomer" in added.text
+    demo_app_client.post("/staff/users/nia.newcomer/active", data={"csrf": csrf, "active": "no"})
+    assert login(demo_app_client, "nia.newcomer", "a-long-password") == 401
+
+
+def test_login_limiter_refuses_after_attempts() -> None:
+    limiter = LoginLimiter(attempts=3, window=60.0)
+    for t in (0.0, 1.0, 2.0):
+        limiter.check("k", now=t)
+        limiter.failed("k", now=t)
+    with pytest.raises(TooManyAttemptsError, match="try again in 58 s"):
+        limiter.check("k", now=2.0)
+    limiter.check("k", now=61.0)  # the oldest failure has left the window
+
+
+def test_login_is_rate_limited_per_user(demo_app_client: TestClient) -> None:
+    demo_app_client.app.state.login_limiter = LoginLimiter(attempts=5, window=300.0)
+    codes = [login(demo_app_client, "ines.admin", "guess-" + str(i)) for i in range(6)]
+    assert codes[:5] == [401] * 5
+    assert codes[5] == 429
+
+
+@pytest.mark.parametrize(
+    ("role", "needed", "ok"),
+    [
+        pytest.param("admin", "approver", True, id="admin-approver"),
+        pytest.param("analyst", "approver", False, id="analyst-approver"),
+        pytest.param("viewer", "viewer", True, id="viewer-viewer"),
+        pytest.param("nobody", "viewer", False, id="unknown-role"),
+    ],
+)
+def test_has_role_orders_roles(role: str, needed: str, ok: bool) -> None:
+    assert has_role(role, needed) is ok

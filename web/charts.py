@@ -1,0 +1,127 @@
+"""Chart builders: pure functions from page-data objects to Plotly figures and SVG sparklines.
+
+Figures are serialised with ``figure_json`` and drawn in the browser by ``/static/charts.js``
+with the plotly.js bundled in the installed ``plotly`` package (no CDN, no inline script). Every
+chart has a table beside it on the page, so nothing depends on JavaScript.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from datetime import date
+
+import plotly.graph_objects as go
+
+from server.services.dossier import CriterionSeries, DistrictDossier
+from web.palette import INK, OUTLINE, tier_colours
+
+__all__ = ["criterion_figure", "figure_json", "sparkline_points", "timeline_figure"]
+
+_LAYOUT = {
+    "margin": {"l": 56, "r": 16, "t": 36, "b": 36}, "height": 280, "paper_bgcolor": "#fbfaf7",
+    "plot_bgcolor": "#ffffff",
+    "font": {"family": "system-ui, sans-serif", "size": 12, "color": INK},
+    "legend": {"orientation": "h", "y": -0.18}, "hovermode": "x unified",
+}
+
+
+def _nan(values: Sequence[float | None]) -> list[float | None]:
+    return [None if v is None or not math.isfinite(v) else v for v in values]
+
+
+def criterion_figure(series: CriterionSeries, tier_names: Sequence[str]) -> go.Figure:
+    """The estimate with its confidence band, and each tier's enter and exit thresholds.
+
+    The area between a tier's exit and enter threshold is the hysteresis band (shaded in the
+    tier's colour): inside it a tier already held is kept.
+    """
+    dates = [d.isoformat() for d in series.dates]
+    colours = tier_colours(len(tier_names))
+    fig = go.Figure()
+    for t, (enter, exit_) in enumerate(zip(series.enter, series.exit, strict=True)):
+        if all(v is None for v in enter):
+            continue
+        colour = colours[t + 1].fill
+        name = tier_names[t + 1]
+        fig.add_trace(go.Scatter(x=dates, y=_nan(exit_), mode="lines", line={
+            "color": colour, "width": 1, "dash": "dot", "shape": "hv"}, name=f"{name}: leave below",
+            legendgroup=name))
+        fig.add_trace(go.Scatter(x=dates, y=_nan(enter), mode="lines", fill="tonexty",
+                                 fillcolor=_alpha(colour, 0.25), line={
+                                     "color": colour, "width": 1.5, "dash": "dash", "shape": "hv"},
+                                 name=f"{name}: enter", legendgroup=name))
+    if any(v is not None for v in series.lower):
+        fig.add_trace(go.Scatter(x=dates, y=_nan(series.upper), mode="lines",
+                                 line={"width": 0}, showlegend=False, hoverinfo="skip"))
+        fig.add_trace(go.Scatter(x=dates, y=_nan(series.lower), mode="lines", fill="tonexty",
+                                 fillcolor="rgba(27,36,48,0.18)", line={"width": 0},
+                                 name="95% interval"))
+    fig.add_trace(go.Scatter(x=dates, y=_nan(series.value), mode="lines",
+                             line={"color": INK, "width": 2}, name="estimate"))
+    unit = f" ({series.unit})" if series.unit else ""
+    fig.update_layout(title={"text": series.label + unit, "x": 0}, **_LAYOUT)
+    fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    return fig
+
+
+def _alpha(hex_colour: str, a: float) -> str:
+    h = hex_colour.lstrip("#")
+    r, g, b = (int(h[i:i + 2], 16) for i in (0, 2, 4))
+    return f"rgba({r},{g},{b},{a})"
+
+
+def timeline_figure(dossier: DistrictDossier) -> go.Figure:
+    """Official versus recommended tier by day, with prepare-signal days marked."""
+    dates = [d.isoformat() for d in dossier.dates]
+    names = dossier.tier_names
+    fig = go.Figure()
+    fig.add_trace(go.Scatter(
+        x=dates, y=[t if t >= 0 else None for t in dossier.recommended], mode="lines",
+        line={"color": "#6f5f9e", "width": 2, "dash": "dash", "shape": "hv"}, name="recommended"))
+    fig.add_trace(go.Scatter(
+        x=dates, y=list(dossier.official), mode="lines",
+        line={"color": INK, "width": 3, "shape": "hv"}, name="official (published)"))
+    if dossier.prepare_days:
+        by_day: dict[date, list[str]] = {}
+        for day, sid in dossier.prepare_days:
+            by_day.setdefault(day, []).append(sid)
+        fig.add_trace(go.Scatter(
+            x=[d.isoformat() for d in by_day], y=[-0.35] * len(by_day), mode="markers",
+            marker={"symbol": "triangle-up", "size": 9, "color": "#b08900",
+                        "line": {"color": OUTLINE, "width": 1}},
+            text=[", ".join(v) for v in by_day.values()], name="prepare signal",
+            hovertemplate="%{x}: %{text}<extra></extra>"))
+    fig.update_layout(title={"text": "Tier: official and recommended", "x": 0}, **_LAYOUT)
+    fig.update_yaxes(tickvals=list(range(len(names))), ticktext=list(names),
+                     range=[-0.6, len(names) - 0.5], gridcolor="#ebe8e1")
+    return fig
+
+
+def figure_json(fig: go.Figure) -> str:
+    """The figure as JSON for ``data-figure`` (drawn by /static/charts.js)."""
+    return str(fig.to_json())
+
+
+def sparkline_points(
+    values: Sequence[float], *, width: float = 96, height: float = 22
+) -> list[str]:
+    """SVG polyline point lists (one per run of known values) scaled into ``width x height``.
+
+    Missing values (NaN) break the line instead of being drawn as zero.
+    """
+    finite = [v for v in values if math.isfinite(v)]
+    if not finite or len(values) < 2:
+        return []
+    lo, hi = min(finite), max(finite)
+    span = hi - lo if hi > lo else 1.0
+    step = width / (len(values) - 1)
+    runs: list[list[str]] = [[]]
+    for i, v in enumerate(values):
+        if not math.isfinite(v):
+            if runs[-1]:
+                runs.append([])
+            continue
+        y = height - 1 - (v - lo) / span * (height - 2)
+        runs[-1].append(f"{i * step:.1f},{y:.1f}")
+    return [" ".join(r) for r in runs if r]
