@@ -13,6 +13,7 @@ from server.config import Settings
 from server.services.auth import LoginLimiter, SessionSigner
 from server.services.database import Database
 from web import assets, health, login, policies, public, review, staff, users
+from web.apidocs import mount_api_docs
 from web.caching import PageCache
 from web.errors import install_error_handlers
 from web.mapsvg import MapCache
@@ -38,6 +39,8 @@ def create_app(settings: Settings, *, database: Database | None = None) -> FastA
         summary="Regional alert tiers with explanations, for public health offices",
         version="0.1.0",
         lifespan=lifespan,
+        docs_url=None,  # served by web.apidocs from local files
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.database = db
@@ -49,6 +52,7 @@ def create_app(settings: Settings, *, database: Database | None = None) -> FastA
     app.add_middleware(SecurityHeaders)
     install_error_handlers(app)
     app.include_router(assets.router)  # before the /static mount, which would shadow it
+    mount_api_docs(app)
     app.mount("/static", StaticFiles(directory=STATIC), name="static")
     app.include_router(health.router)
     app.include_router(login.router, prefix="/staff")

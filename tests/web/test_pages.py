@@ -105,3 +105,18 @@ def test_public_districts_json_has_no_staff_fields(client: TestClient) -> None:
     assert {tuple(sorted(d)) for d in body} == {
         ("area", "code", "name", "since", "tier", "tier_name")
     }
+
+
+def test_api_docs_load_only_local_assets(client: TestClient) -> None:
+    page = client.get("/docs")
+    assert page.status_code == 200
+    assert "/static/swagger/swagger-ui-bundle.js" in page.text
+    assert "cdn" not in page.text.lower()
+    assert "https://" not in page.text
+    assert client.get("/static/swagger/swagger-ui-bundle.js").status_code == 200
+
+
+def test_api_docs_policy_allows_no_other_origin(client: TestClient) -> None:
+    policy = client.get("/docs").headers["content-security-policy"]
+    assert "script-src 'self' 'unsafe-inline'" in policy
+    assert "http" not in policy
