@@ -15,12 +15,14 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
+from server.indicators._levelfit import Levels, fit_levels
 
 EARS_METHODS = ("C1", "C2", "C3")
 # Hutwagner et al. (2003) thresholds [memory: original EARS thresholds]
 EARS_THRESHOLDS = {"C1": 3.0, "C2": 3.0, "C3": 2.0}
 _EARS_BASELINE = 7
 _EARS_LAG = {"C1": 1, "C2": 3, "C3": 3}
+_FARRINGTON_ROWS = 16_384  # (region, week) fits per batch
 
 
 @dataclass(frozen=True)
@@ -338,6 +340,100 @@ def farrington_flexible(
     )
 
 
+def _assess(
+    yb: FloatArray, x: FloatArray, years: int, cut: float, z_crit: float
+) -> tuple[FloatArray, FloatArray, NDArray[np.bool_], NDArray[np.bool_]]:
+    """Expected count, dispersion, trend kept and usability for each row of baseline counts."""
+    rows = yb.shape[0]
+    present = np.isfinite(yb)
+    yb = np.where(present, yb, 0.0)
+    usable = present.sum(axis=1) > x.shape[1]
+    mu0, phi = np.full(rows, np.nan), np.full(rows, np.nan)
+    keep = np.zeros(rows, dtype=bool)
+    fit = np.flatnonzero(usable)  # unusable rows are reported as NaN, so they are not fitted
+    if fit.size == 0:
+        return mu0, phi, keep, usable
+    # columns sorted by season level, so that each level is a contiguous block
+    level = np.argmax(np.column_stack([1.0 - x[:, 2:].sum(axis=1), x[:, 2:]]), axis=1)
+    order = np.argsort(level, kind="stable")
+    levels = Levels(n=x.shape[0], sizes=tuple(int(c) for c in np.bincount(level)))
+    x = x[order]
+    yf, pf = yb[fit][:, order], present[fit][:, order]
+    flat_x = x[:, [0, *range(2, x.shape[1])]]
+    cy2 = np.cbrt(yf) ** 2
+    a0, _, _, flat_phi = _reweighted_levels(
+        yf, pf, cy2, levels, None, cut, flat_x, x.shape[1] - 1
+    )
+    mu0_f, phi_f = np.exp(a0), flat_phi
+    if years >= 3:
+        a0t, slope, var, full_phi = _reweighted_levels(
+            yf, pf, cy2, levels, x[:, 1], cut, x, x.shape[1]
+        )
+        mu0_trend = np.exp(a0t)
+        se = np.sqrt(full_phi * var)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            significant = np.abs(slope) / se > z_crit
+        kept = significant & (mu0_trend <= np.max(np.where(pf, yf, -1.0), axis=1))
+        mu0_f = np.where(kept, mu0_trend, mu0_f)
+        phi_f = np.where(kept, full_phi, phi_f)
+        keep[fit] = kept
+    zero = yf.sum(axis=1) == 0
+    mu0[fit] = np.where(zero, 0.0, mu0_f)
+    phi[fit] = phi_f
+    return mu0, phi, keep, usable
+
+
+def _reweighted_levels(
+    y: FloatArray, present: NDArray[np.bool_], cy2: FloatArray, levels: Levels,
+    t: FloatArray | None, cut: float, x: FloatArray, p: int,
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """:func:`_reweighted` through the level parametrisation (closed form / profile Newton).
+
+    ``y`` is zero where not ``present`` and ``cy2`` is ``cbrt(y) ** 2``. Returns ``log mu`` at
+    the target week for level 0, the trend, its unscaled variance and the floored dispersion of
+    the refit. Rows whose fit does not exist (a season level without cases, or no convergence)
+    go through :func:`_reweighted` on the full design ``x``.
+    """
+    w0 = present.astype(np.float64)
+    n = present.sum(axis=1)
+    dof = np.maximum(n - p, 1)
+    first = fit_levels(y, w0, levels, t)
+    # rows whose fit does not exist give inf/NaN here; they are replaced at the end
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if t is None:  # the fitted mean is constant within a level: powers per level
+            m = np.where(first.exists[:, None], np.exp(first.intercepts), 1.0)
+            mu = levels.expand(m)
+            sixth, cbrt2 = levels.expand(m ** (1.0 / 6.0)), levels.expand(np.cbrt(m) ** 2)
+        else:
+            mu = np.where(first.exists[:, None], first.mu, 1.0)
+            sixth, cbrt2 = mu ** (1.0 / 6.0), np.cbrt(mu) ** 2
+        pearson = np.sum(np.where(present, (y - mu) ** 2 / mu, 0.0), axis=1)
+        phi1 = np.maximum(pearson / dof, 1.0)
+        scale = np.sqrt(phi1[:, None] * np.clip(1.0 - first.leverage, 1e-8, None))
+        anscombe = 1.5 * (cy2 - cbrt2) / (sixth * scale)
+    big = present & (anscombe > cut)
+    omega = np.where(big, 1.0 / np.where(big, anscombe, 1.0) ** 2, 1.0) * w0
+    gamma = n[:, None] / np.maximum(omega.sum(axis=1, keepdims=True), 1e-12)
+    w = omega * gamma
+    second = fit_levels(y, w, levels, t, start=first.slope)
+    ok2 = w > 0
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        mu2 = np.where(second.exists[:, None], second.mu, 1.0)
+        pearson2 = np.sum(np.where(ok2, w * (y - mu2) ** 2 / mu2, 0.0), axis=1)
+    phi2 = np.maximum(pearson2 / np.maximum(ok2.sum(axis=1) - p, 1), 1.0)
+    a0, slope, var = second.intercepts[:, 0], second.slope, second.slope_var
+    bad = np.flatnonzero(~(first.exists & second.exists))
+    if bad.size:
+        old = _reweighted(x, y[bad], present[bad], cut)
+        a0, slope, var, phi2 = a0.copy(), slope.copy(), var.copy(), phi2.copy()
+        a0[bad] = old.beta[:, 0]
+        phi2[bad] = old.dispersion
+        if t is not None:
+            slope[bad] = old.beta[:, 1]
+            var[bad] = old.cov_unscaled[:, 1, 1]
+    return a0, slope, var, phi2
+
+
 def _nb_upper(mu0: FloatArray, phi: FloatArray, quantile: float) -> FloatArray:
     upper = np.zeros_like(mu0)
     pois = (phi <= 1.0 + 1e-12) & (mu0 > 1e-8)
@@ -364,32 +460,26 @@ def _farrington(
     nan = np.full((regions, weeks), np.nan)
     expected, upper, dispersion = nan.copy(), nan.copy(), nan.copy()
     trend = np.zeros((regions, weeks), dtype=bool)
-    z_crit = stats.norm.ppf(1.0 - trend_alpha / 2.0)
-    for t0 in range(period * min_years + window, weeks):  # loop over weeks, batched over regions
-        years = min(years_back, (t0 - window) // period)
-        idx, x = _design(t0, years, window, n_periods, excluded, period)
-        yb = y[:, idx]
-        present = np.isfinite(yb)
-        yb = np.where(present, yb, 0.0)
-        usable = present.sum(axis=1) > x.shape[1]
-        flat = _reweighted(x[:, [0, *range(2, x.shape[1])]], yb, present, cut)
-        mu0 = np.exp(flat.beta[:, 0])
-        phi = flat.dispersion
-        if years >= 3:
-            full = _reweighted(x, yb, present, cut)
-            se = np.sqrt(full.dispersion * full.cov_unscaled[:, 1, 1])
-            mu0_trend = np.exp(full.beta[:, 0])
-            with np.errstate(divide="ignore", invalid="ignore"):
-                significant = np.abs(full.beta[:, 1]) / se > z_crit
-            keep = significant & (mu0_trend <= np.max(np.where(present, yb, -1.0), axis=1))
-            mu0 = np.where(keep, mu0_trend, mu0)
-            phi = np.where(keep, full.dispersion, phi)
-            trend[:, t0] = keep & usable
-        zero = np.where(present, yb, 0.0).sum(axis=1) == 0
-        mu0 = np.where(zero, 0.0, mu0)
-        expected[:, t0] = np.where(usable, mu0, np.nan)
-        dispersion[:, t0] = np.where(usable, phi, np.nan)
-        upper[:, t0] = np.where(usable, _nb_upper(mu0, phi, quantile), np.nan)
+    assessed = np.zeros((regions, weeks), dtype=bool)
+    z_crit = float(stats.norm.ppf(1.0 - trend_alpha / 2.0))
+    targets = np.arange(period * min_years + window, weeks)
+    years_of = np.minimum(years_back, (targets - window) // period)
+    for years in np.unique(years_of):
+        # the design relative to the target week depends only on the years of history, so all
+        # (region, target week) pairs with the same years are fitted in one batch
+        t0s = targets[years_of == years]
+        rel, x = _design(0, int(years), window, n_periods, excluded, period)
+        step = max(1, _FARRINGTON_ROWS // max(regions, 1))
+        for first in range(0, t0s.size, step):
+            block = t0s[first : first + step]
+            yb = y[:, block[:, None] + rel[None, :]].reshape(-1, rel.size)
+            mu0, phi, keep, usable = _assess(yb, x, int(years), cut, z_crit)
+            shape = (regions, block.size)
+            expected[:, block] = np.where(usable, mu0, np.nan).reshape(shape)
+            dispersion[:, block] = np.where(usable, phi, np.nan).reshape(shape)
+            trend[:, block] = (keep & usable).reshape(shape)
+            assessed[:, block] = usable.reshape(shape)
+    upper[assessed] = _nb_upper(expected[assessed], dispersion[assessed], quantile)
 
     recent = sliding_window_view(
         np.concatenate([np.zeros((regions, 3)), np.nan_to_num(y)], axis=1), 4, axis=1

@@ -29,6 +29,7 @@ from server.indicators._arrays import (
     check_window,
     freeze_arrays,
 )
+from server.indicators._levelfit import Levels, fit_levels
 
 BoolArray = NDArray[np.bool_]
 Dispersion = Literal["quasipoisson", "poisson"]
@@ -142,7 +143,22 @@ def _fit_batch(
     phi = np.full(rows, np.nan)
     converged = np.zeros(rows, dtype=bool)
 
-    idx = np.flatnonzero(ok)  # rows still iterating
+    fast = np.flatnonzero(ok)
+    lag = 7 if day_of_week else max(n // 2, 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pairs = m[fast, lag:] * m[fast, :-lag]  # days observed at both ends of a lag
+        start = np.log((yy[fast, lag:] * pairs).sum(axis=1) / (yy[fast, :-lag] * pairs).sum(axis=1))
+    levels = Levels(n=n, period=7) if day_of_week else Levels(n=n, sizes=(n,))
+    fit = fit_levels(yy[fast], m[fast], levels, tc, start=start / lag)
+    done_fast = fast[fit.exists]
+    mu_f = fit.mu[fit.exists]
+    pearson_f = (m[done_fast] * (yy[done_fast] - mu_f) ** 2 / mu_f).sum(axis=1)
+    r[done_fast] = fit.slope[fit.exists]
+    var_r[done_fast] = fit.slope_var[fit.exists]
+    phi[done_fast] = pearson_f / (n_obs[done_fast] - p)
+    converged[done_fast] = True
+    # rows without a finite maximum-likelihood estimate: plain IRLS, as before
+    idx = fast[~fit.exists]  # rows still iterating
     ya, ma = yy[idx], m[idx]
     mu = np.where(ma > 0, (ya + ya.sum(axis=1, keepdims=True) / n_obs[idx, None]) / 2.0, 1.0)
     eta = np.log(mu)

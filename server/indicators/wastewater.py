@@ -372,12 +372,18 @@ def level(
     With :math:`Y_t` the log values in days :math:`(t - \\text{baseline\\_days}, t]`:
     :math:`b_t = Q_q(Y_t)`, :math:`s_t = \\mathrm{sd}(Y_t)` (ddof 1) and
     :math:`\\text{level}_t = (c_t - b_t)/s_t`. The baseline is recomputed every day from the
-    trailing period (the loop runs over days, vectorised over plants).
+    trailing period. With :math:`n` samples and :math:`h = q (n - 1)` the quantile is
+    :math:`x_{(\\lfloor h \\rfloor)} + (h - \\lfloor h \\rfloor)(x_{(\\lfloor h \\rfloor + 1)} -
+    x_{(\\lfloor h \\rfloor)})` (order statistics from 0). The
+    values are kept ordered as the window slides (pandas' rolling quantile), so the cost is
+    O(days log window) per plant.
 
     References
     ----------
     Baseline = 10th percentile of the log values over the last 12 months, level in standard
     deviations above it: a widely used wastewater level method (see REFERENCES.md, Wastewater).
+    Hyndman RJ, Fan Y (1996). Sample quantiles in statistical packages. Am Stat 50:361-365
+    (definition 7, numpy's default ``linear`` method).
     """
     y = as_regions_days("log_values", log_values)
     cur = y if current is None else _same_shape("current", current, y.shape)
@@ -386,18 +392,14 @@ def level(
     if not 0.0 <= float(quantile) <= 1.0:
         raise ValueError(f"quantile: must be in [0, 1], got {quantile!r}")
     plants, days = y.shape
-    baseline = np.full((plants, days), np.nan)
-    sd = np.full((plants, days), np.nan)
     observed = np.isfinite(y)
     counts = np.cumsum(observed, axis=1)
     shifted = np.concatenate([np.zeros((plants, baseline_days)), counts], axis=1)
     samples = (counts - shifted[:, :days]).astype(np.float64)
-    for t in range(days):
-        enough = samples[:, t] >= min_samples
-        if not enough.any():
-            continue
-        block = y[enough, max(0, t - baseline_days + 1) : t + 1]
-        baseline[enough, t], sd[enough, t] = _quantile_and_sd(block, float(quantile))
+    enough = samples >= min_samples
+    quant, spread = _trailing_quantile_and_sd(y, baseline_days, float(quantile), samples)
+    baseline = np.where(enough, quant, np.nan)
+    sd = np.where(enough, spread, np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         estimate = np.divide(cur - baseline, sd, out=np.full_like(baseline, np.nan), where=sd > 0)
     return WastewaterLevel(
@@ -486,20 +488,38 @@ def catchment_matrix(
     return out
 
 
-def _quantile_and_sd(block: FloatArray, q: float) -> tuple[FloatArray, FloatArray]:
-    """Row-wise quantile (numpy's default linear method) and sd (ddof 1) ignoring NaN."""
-    ok = np.isfinite(block)
-    n = ok.sum(axis=1)
-    ordered = np.sort(block, axis=1)  # NaN sort last
-    pos = q * (n - 1)
-    lo = np.floor(pos).astype(int)
-    hi = np.minimum(lo + 1, n - 1)
-    v_lo = np.take_along_axis(ordered, lo[:, None], axis=1)[:, 0]
-    v_hi = np.take_along_axis(ordered, hi[:, None], axis=1)[:, 0]
-    quant = v_lo + (pos - lo) * (v_hi - v_lo)
-    mean = np.where(ok, block, 0.0).sum(axis=1) / n
-    var = (np.where(ok, block - mean[:, None], 0.0) ** 2).sum(axis=1) / (n - 1)
+def _trailing_quantile_and_sd(
+    y: FloatArray, window: int, q: float, n: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """Trailing-window quantile (linear method) and sd (ddof 1) of the finite values of each row.
+
+    The quantile comes from pandas' rolling quantile (an ordered skip list updated as the window
+    slides, linear interpolation between the order statistics at ``q (n - 1)``: the same
+    definition as :func:`numpy.quantile`). The sd comes from cumulative sums of the values
+    centred on each row's mean, and is exactly 0 where the window's values are all equal.
+    """
+    frame = pd.DataFrame(y.T)
+    roll = frame.rolling(window, min_periods=1)
+    quant = roll.quantile(q, interpolation="linear").to_numpy().T
+    flat = (roll.max().to_numpy() == roll.min().to_numpy()).T
+    ok = np.isfinite(y)
+    counts = ok.sum(axis=1)
+    centre = np.where(ok, y, 0.0).sum(axis=1) / np.maximum(counts, 1)
+    dev = np.where(ok, y - centre[:, None], 0.0)
+    s1 = _trailing(dev, window)
+    s2 = _trailing(dev * dev, window)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = np.maximum((s2 - s1 * s1 / n) / (n - 1), 0.0)
+    var = np.where(flat, 0.0, var)
     return quant, np.sqrt(var)
+
+
+def _trailing(values: FloatArray, window: int) -> FloatArray:
+    """Sum over the trailing ``window`` days (cumulative sums along axis 1)."""
+    total = np.cumsum(values, axis=1)
+    if window < values.shape[1]:
+        total[:, window:] -= total[:, :-window].copy()
+    return total
 
 
 def _check_methods(methods: Sequence[str], plants: int) -> tuple[str, ...]:

@@ -118,3 +118,37 @@ def test_farrington_flags_injected_outbreak() -> None:
     result = farrington_flexible(y)
     assert result.alarm[:, -8].all()
     assert (result.exceedance[:, -8] > 1.0).all()
+
+
+def _farrington_flat_by_statsmodels(y: np.ndarray, t0: int) -> tuple[float, float]:
+    """Noufaily et al. (2013) without trend (two years of history), with statsmodels GLM."""
+    weeks = np.arange(t0 - 52 * 2 - 3, t0 - 26)
+    offset = (weeks - t0) % 52
+    level = np.where((offset <= 3) | (offset >= 49), 0, 1 + (offset - 4) // 5)
+    x = np.column_stack([np.ones(weeks.size)] + [(level == k).astype(float) for k in range(1, 10)])
+    yb = y[weeks]
+    first = sm.GLM(yb, x, family=sm.families.Poisson()).fit(scale="X2")
+    phi = max(1.0, first.pearson_chi2 / (weeks.size - 10))
+    hat = first.get_influence().hat_matrix_diag
+    mu = first.mu
+    s = 1.5 * (yb ** (2 / 3) - mu ** (2 / 3)) / (mu ** (1 / 6) * np.sqrt(phi * (1 - hat)))
+    omega = np.where(s > 2.58, s**-2.0, 1.0)
+    omega *= yb.size / omega.sum()
+    second = sm.GLM(yb, x, family=sm.families.Poisson(), var_weights=omega).fit()
+    pearson = float(np.sum(omega * (yb - second.mu) ** 2 / second.mu))
+    return float(np.exp(second.params[0])), max(1.0, pearson / (weeks.size - 10))
+
+
+def test_farrington_batched_weeks_match_statsmodels_per_week() -> None:
+    # every (region, week) fit of the batch equals its own statsmodels GLM fit (Noufaily 2013)
+    rng = np.random.default_rng(2013)
+    weeks = np.arange(52 * 2 + 12)
+    mu = rng.uniform(5, 60, (3, 1)) * np.exp(0.3 * np.cos(2 * np.pi * weeks / 52))
+    y = rng.negative_binomial(6, 6 / (6 + mu)).astype(float)
+    y[1, 40] += 50.0
+    result = farrington_flexible(y)
+    for region in range(3):
+        for t0 in (52 * 2 + 3, 52 * 2 + 7, 52 * 2 + 11):
+            mu0, phi = _farrington_flat_by_statsmodels(y[region], t0)
+            assert_allclose(result.expected[region, t0], mu0, rtol=1e-8)
+            assert_allclose(result.dispersion[region, t0], phi, rtol=1e-8)

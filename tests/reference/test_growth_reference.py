@@ -42,3 +42,28 @@ def test_growth_rate_matches_statsmodels_glm_with_calendar_weekdays(
         assert_allclose([result.lower[i], result.upper[i]], [low, upp], rtol=1e-6, atol=1e-9)
         if scale == "X2":
             assert_allclose(result.pearson_dispersion[i], fit.scale, rtol=1e-6)
+
+
+@pytest.mark.parametrize(
+    ("window", "day_of_week"), [(21, True), (10, False)], ids=["w21", "w10-no-dow"]
+)
+def test_rolling_growth_rate_with_missing_days_matches_statsmodels(
+    window: int, day_of_week: bool
+) -> None:
+    # Reference: statsmodels GLM (Poisson, scale="X2") on the observed days of each window
+    from server.indicators.growth import design_matrix, rolling_growth_rate
+
+    rng = np.random.default_rng(41)
+    y = rng.poisson(40 * np.exp(0.02 * np.arange(40)), (2, 40)).astype(float)
+    y[0, [15, 27]] = np.nan
+    result = rolling_growth_rate(y, window, day_of_week=day_of_week, max_missing=2,
+                                 clamp_dispersion=False)
+    x = design_matrix(window, day_of_week=day_of_week)
+    for region in range(2):
+        for end in (window - 1, 27, 39):
+            seg = y[region, end - window + 1 : end + 1]
+            keep = np.isfinite(seg)
+            glm = sm.GLM(seg[keep], x[keep], family=sm.families.Poisson())
+            fit = glm.fit(scale="X2", tol=1e-12)
+            assert_allclose(result.estimate[region, end], fit.params[1], rtol=1e-7, atol=1e-12)
+            assert_allclose(result.std_error[region, end], fit.bse[1], rtol=1e-6)

@@ -70,3 +70,27 @@ def test_level_matches_numpy_quantile_and_sd_over_trailing_year() -> None:
         assert_allclose(res.baseline[p, -1], base, rtol=1e-12)
         assert_allclose(res.sd[p, -1], sd, rtol=1e-12)
         assert_allclose(res.estimate[p, -1], (1.25 - base) / sd, rtol=1e-12)
+
+
+def test_level_matches_numpy_quantile_on_every_day() -> None:
+    # numpy.quantile (linear method, Hyndman & Fan 1996 definition 7) and numpy.std(ddof=1) of the
+    # samples in each trailing 60-day period, day by day
+    y = _samples(3, 200, 90, seed=24)
+    res = level(y, baseline_days=60, quantile=0.25, min_samples=5)
+    for p in range(3):
+        for day in range(200):
+            block = y[p, max(0, day - 59) : day + 1]
+            vals = block[np.isfinite(block)]
+            if vals.size < 5:
+                assert np.isnan(res.baseline[p, day])
+                continue
+            assert_allclose(res.baseline[p, day], np.quantile(vals, 0.25), rtol=1e-12)
+            assert_allclose(res.sd[p, day], np.std(vals, ddof=1), rtol=1e-10)
+
+
+def test_level_constant_baseline_has_zero_sd_and_no_level() -> None:
+    # a flat baseline has sd exactly 0, so no level is defined (division by zero avoided)
+    y = np.full((1, 30), 2.5)
+    res = level(y, baseline_days=10, min_samples=3)
+    assert_allclose(res.sd[0, 5:], 0.0, atol=0)
+    assert np.isnan(res.estimate).all()
