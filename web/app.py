@@ -16,8 +16,10 @@ from web import assets, health, login, policies, public, review, staff, users
 from web.apidocs import mount_api_docs
 from web.caching import PageCache
 from web.errors import install_error_handlers
+from web.feeds_api import router as feeds_api_router
 from web.mapsvg import MapCache
 from web.security import SecurityHeaders
+from web.staff_feeds import router as staff_feeds_router
 from web.templating import make_templates
 
 STATIC = Path(__file__).with_name("static")
@@ -59,6 +61,8 @@ def create_app(settings: Settings, *, database: Database | None = None) -> FastA
     app.include_router(review.router, prefix="/staff")
     app.include_router(policies.router, prefix="/staff")
     app.include_router(users.router, prefix="/staff")
+    app.include_router(staff_feeds_router, prefix="/staff")
+    app.include_router(feeds_api_router)
     app.include_router(staff.router, prefix="/staff")
     app.include_router(public.router)
     return app

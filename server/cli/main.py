@@ -9,6 +9,7 @@ from typing import Annotated
 import typer
 
 from server.cli.estimate import estimate_command
+from server.cli.feeds import feeds_app, ingest_command, scheduler_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
 from server.cli.rules import backtest_command, evaluate_command, rules_app
 from server.config import Settings
@@ -35,6 +36,9 @@ app.command("estimate")(estimate_command)
 app.add_typer(rules_app, name="rules")
 app.command("backtest")(backtest_command)
 app.command("evaluate")(evaluate_command)
+app.add_typer(feeds_app, name="feeds")
+app.command("ingest")(ingest_command)
+app.command("scheduler")(scheduler_command)
 
 
 def _settings(**overrides: object) -> Settings:

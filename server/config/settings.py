@@ -41,6 +41,13 @@ class Settings(BaseSettings):
         default=10, ge=1, description="Counts below this are shown as '<N' on public pages"
     )
     sql_echo: bool = Field(default=False, description="Log every SQL statement")
+    feeds_file: Path | None = Field(
+        default=None,
+        description="Feed definitions YAML (default: none; the demo's feeds in demo mode)",
+    )
+    scheduler: bool = Field(
+        default=True, description="Run the feed scheduler inside `tierwise serve`"
+    )
     notify_file: Path | None = Field(
         default=None,
         description="Notification recipients YAML (webhooks and e-mail; default: none)",

@@ -1,4 +1,4 @@
-"""Errors raised while reading input files."""
+"""Errors raised while reading feed definitions and input files."""
 
 from __future__ import annotations
 
@@ -11,3 +11,68 @@ class FeedFileError(ValueError):
         self.where = where
         self.problem = problem
         super().__init__(f"{path}: {where}: {problem}" if where else f"{path}: {problem}")
+
+
+class FeedConfigError(ValueError):
+    """A feed definition file is invalid; names file, line, column and key path.
+
+    Example: ``feeds.yaml:12:5: feeds[1].schedule.cron: 'every day' is not a cron expression``.
+    """
+
+    def __init__(self, path: str, line: int, column: int, key: str, problem: str) -> None:
+        self.path = path
+        self.line = line
+        self.column = column
+        self.key = key
+        self.problem = problem
+        place = f"{path}:{line}:{column}" if line else path
+        super().__init__(f"{place}: {key}: {problem}" if key else f"{place}: {problem}")
+
+
+class HeaderError(FeedFileError):
+    """The header lacks required columns; the whole file is rejected."""
+
+    def __init__(self, path: str, expected: list[str], found: list[str]) -> None:
+        self.expected = expected
+        self.found = found
+        missing = [c for c in expected if c not in found]
+        super().__init__(
+            path, "line 1",
+            f"header lacks column(s) {missing}; expected {expected}, found {found}",
+        )
+
+
+class EncodingError(FeedFileError):
+    """The bytes are not text in the feed's declared encoding (UTF-8 unless configured)."""
+
+    def __init__(self, path: str, offset: int, encoding: str) -> None:
+        self.offset = offset
+        self.encoding = encoding
+        super().__init__(
+            path, f"byte {offset}",
+            f"not valid {encoding} text (declare the feed's encoding, e.g. `encoding: cp1252`)",
+        )
+
+
+class FetchError(RuntimeError):
+    """A pull from a source failed; ``transient`` says whether retrying may help."""
+
+    def __init__(self, source: str, problem: str, *, transient: bool) -> None:
+        self.source = source
+        self.problem = problem
+        self.transient = transient
+        super().__init__(f"{source}: {problem}")
+
+
+class TransientFetchError(FetchError):
+    """Connection error, timeout or HTTP 5xx: retried with backoff."""
+
+    def __init__(self, source: str, problem: str) -> None:
+        super().__init__(source, problem, transient=True)
+
+
+class PermanentFetchError(FetchError):
+    """HTTP 4xx, a body over the size limit, a missing token: not retried."""
+
+    def __init__(self, source: str, problem: str) -> None:
+        super().__init__(source, problem, transient=False)

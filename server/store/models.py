@@ -19,8 +19,10 @@ from sqlalchemy import (
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     String,
     Text,
+    Unicode,
     UniqueConstraint,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
@@ -199,3 +201,51 @@ class AuditEntry(Base):
     action: Mapped[str] = mapped_column(String(64))
     subject: Mapped[str] = mapped_column(String(200), default="")
     details: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+
+class FeedState(Base):
+    """What a feed's source last said about itself (ETag, Last-Modified) and how its runs went."""
+
+    __tablename__ = "feed_state"
+
+    feed: Mapped[str] = mapped_column(String(100), primary_key=True)
+    etag: Mapped[str | None] = mapped_column(String(500))
+    last_modified: Mapped[str | None] = mapped_column(String(100))
+    last_attempt_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
+    last_success_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
+    last_error: Mapped[str] = mapped_column(Text, default="")
+    failures: Mapped[int] = mapped_column(Integer, default=0)
+    last_vintage_id: Mapped[int | None] = mapped_column(
+        ForeignKey("vintage.id", ondelete="SET NULL")
+    )
+
+
+class FeedToken(Base):
+    """The bearer token of a push feed, stored only as its SHA-256 (the token is random)."""
+
+    __tablename__ = "feed_token"
+
+    feed: Mapped[str] = mapped_column(String(100), primary_key=True)
+    token_sha256: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    created_by: Mapped[str] = mapped_column(String(100), default="")
+
+
+class SchedulerLease(Base):
+    """Leader lease of the scheduler on SQLite (PostgreSQL uses an advisory lock instead)."""
+
+    __tablename__ = "scheduler_lease"
+
+    name: Mapped[str] = mapped_column(String(100), primary_key=True)
+    holder: Mapped[str] = mapped_column(String(200))
+    expires_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
+class SchedulerJob(Base):
+    """APScheduler 3.x SQLAlchemyJobStore's table, declared here so migrations own it."""
+
+    __tablename__ = "apscheduler_jobs"
+
+    id: Mapped[str] = mapped_column(Unicode(191), primary_key=True)
+    next_run_time: Mapped[float | None] = mapped_column(Float(25), index=True)
+    job_state: Mapped[bytes] = mapped_column(LargeBinary)

@@ -175,3 +175,67 @@ def find_vintage_by_checksum(*, session: Session, feed: str, checksum: str) -> V
         .limit(1)
     ).first()
 
+
+
+def insert_observation_arrays(
+    *,
+    session: Session,
+    vintage_id: int,
+    region_id: np.ndarray,
+    measure_id: np.ndarray,
+    day: np.ndarray,
+    value: np.ndarray,
+) -> int:
+    """Bulk-insert resolved observations of one (already flushed) vintage; returns the count.
+
+    ``day`` is days since 1970-01-01. The arrays are written as they are: the caller has checked
+    them (codes resolved, keys unique, values finite). COPY on PostgreSQL; on SQLite one
+    ``executemany`` on the driver connection, inside the session's transaction.
+    """
+    n = int(np.asarray(day).size)
+    if n == 0:
+        return 0
+    dates = np.asarray(day, dtype="int64").astype("datetime64[D]").astype(str)
+    connection = session.connection()
+    raw = connection.connection.driver_connection
+    if connection.dialect.name == "postgresql":
+        buffer = io.StringIO()
+        pd.DataFrame(
+            {"v": np.full(n, vintage_id, dtype=np.int64), "r": region_id, "m": measure_id,
+             "d": dates, "x": value}
+        ).to_csv(buffer, index=False, header=False, float_format="%.17g")
+        with raw.cursor() as cursor:  # type: ignore[union-attr]
+            with cursor.copy(
+                "COPY observation (vintage_id, region_id, measure_id, ref_date, value) "
+                "FROM STDIN WITH (FORMAT csv)"
+            ) as copy:
+                copy.write(buffer.getvalue())
+        return n
+    cursor = raw.cursor()  # type: ignore[union-attr]
+    try:
+        cursor.execute("PRAGMA cache_size=-262144")  # 256 MiB of page cache for index builds
+        cursor.executemany(
+            "INSERT INTO observation (vintage_id, region_id, measure_id, ref_date, value) "
+            "VALUES (?, ?, ?, ?, ?)",
+            zip(
+                [vintage_id] * n, np.asarray(region_id).tolist(), np.asarray(measure_id).tolist(),
+                dates.tolist(), np.asarray(value, dtype=np.float64).tolist(), strict=True,
+            ),
+        )
+    finally:
+        cursor.close()
+    return n
+
+
+def insert_rejections(
+    *, session: Session, vintage_id: int, rejections: Iterable[Rejection]
+) -> int:
+    """Bulk-insert rejected rows of one vintage; returns the count."""
+    rows = [
+        {"vintage_id": vintage_id, "line": r.line, "raw": r.raw, "reason": r.reason,
+         "message": r.message}
+        for r in rejections
+    ]
+    if rows:
+        session.execute(insert(RejectedRow), rows)
+    return len(rows)

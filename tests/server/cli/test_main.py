@@ -74,7 +74,7 @@ def test_cli_help_is_available(args: list[str]) -> None:
 def test_cli_db_upgrade_reports_revision(env: str) -> None:
     result = run("db", "upgrade")
     assert result.exit_code == 0, result.output
-    assert "at revision 0001" in result.output
+    assert "at revision 0002" in result.output  # 0002: feeds and scheduler tables
 
 
 def test_cli_regions_import_adds_regions(env: str, tmp_path: Path) -> None:

@@ -1,0 +1,132 @@
+"""Ingest benchmark: a long CSV of 2 million rows into SQLite and PostgreSQL, against pandas.
+
+Generates a long CSV (``region,date,measure,value``) of ``--regions`` x ``--days`` rows (3 000 x 667
+= 2 001 000 by default, one measure), then times a plain ``pandas.read_csv`` of the file and a full
+``tierwise`` ingest of it (streamed parse, every row check, one vintage in one transaction: COPY on
+PostgreSQL, executemany on SQLite). Prints rows per second and the ratio ingest / read_csv.
+Target: at least 100 000 rows/s, i.e. within 10x of parsing alone.
+
+    python bench/ingest.py [--regions 3000] [--days 667] [--postgres URL]
+
+``--postgres`` must name a scratch database; the benchmark works in a schema of its own and drops
+it at the end. Without it only SQLite (a temporary file) is measured.
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+import uuid
+from datetime import UTC, date, datetime
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import event, text
+
+from server.feeds.definition import parse_feeds
+from server.feeds.sources import Payload
+from server.services.database import Database
+from server.services.ingest import ingest_payload
+from server.store import (
+    MeasureRecord,
+    RegionRecord,
+    make_engine,
+    make_sessionmaker,
+    upgrade,
+    upsert_measures,
+    upsert_regions,
+)
+
+FEED = parse_feeds("feeds:\n  - name: bench\n    source: {kind: push}\n    measures:\n"
+                   "      cases: {min: 0, max: 1000000}\n", source="bench")["bench"]
+
+
+def write_csv(path: Path, regions: int, days: int, seed: int = 5) -> int:
+    rng = np.random.default_rng(seed)
+    codes = np.asarray([f"B{i:05d}" for i in range(regions)])
+    dates = (np.datetime64("2024-01-01") + np.arange(days)).astype(str)
+    with path.open("w") as out:
+        out.write("region,date,measure,value\n")
+        for d in dates:
+            values = rng.poisson(20, size=regions)
+            out.write("".join(f"{c},{d},cases,{v}\n" for c, v in zip(codes, values, strict=True)))
+    return regions * days
+
+
+def database(url: str) -> tuple[Database, str | None]:
+    if url.startswith("sqlite"):
+        engine = make_engine(url)
+        schema = None
+    else:
+        schema = f"tw_bench_{uuid.uuid4().hex[:10]}"
+        admin = make_engine(url)
+        with admin.begin() as conn:
+            conn.execute(text(f'CREATE SCHEMA "{schema}"'))
+        admin.dispose()
+        engine = make_engine(url)
+
+        @event.listens_for(engine, "connect")
+        def _path(dbapi_connection, _record):  # type: ignore[no-untyped-def]
+            with dbapi_connection.cursor() as cursor:
+                cursor.execute(f'SET search_path TO "{schema}"')
+            dbapi_connection.commit()
+
+    upgrade(engine)
+    return Database(engine=engine, sessions=make_sessionmaker(engine)), schema
+
+
+def ingest_rate(url: str, path: Path, regions: int) -> tuple[float, int]:
+    db, schema = database(url)
+    try:
+        with db.transaction() as session:
+            upsert_regions(session=session, records=[
+                RegionRecord(code=f"B{i:05d}", name=f"Bench {i}", level="district", parent=None,
+                             population=1000) for i in range(regions)])
+            upsert_measures(session=session, records=[
+                MeasureRecord(name="cases", unit="n", kind="count", aggregation="sum")])
+        start = time.perf_counter()
+        with db.transaction() as session:
+            receipt = ingest_payload(
+                session=session, feed=FEED, payload=Payload.from_path(path),
+                received_at=datetime.now(UTC), today=date.today())
+        return time.perf_counter() - start, receipt.rows_accepted
+    finally:
+        db.dispose()
+        if schema is not None:
+            admin = make_engine(url)
+            with admin.begin() as conn:
+                conn.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
+            admin.dispose()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--regions", type=int, default=3000)
+    parser.add_argument("--days", type=int, default=667)
+    parser.add_argument("--postgres", default=None, help="scratch PostgreSQL URL")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "long.csv"
+        rows = write_csv(path, args.regions, args.days)
+        size = path.stat().st_size / 1e6
+        start = time.perf_counter()
+        frame = pd.read_csv(path)
+        parse = time.perf_counter() - start
+        assert len(frame) == rows
+        del frame
+        print(f"{rows:,} rows, {size:.0f} MB; pandas.read_csv {parse:.2f} s "
+              f"({rows / parse:,.0f} rows/s)")
+        targets = [("sqlite", f"sqlite:///{Path(tmp) / 'bench.db'}")]
+        if args.postgres:
+            targets.append(("postgresql", args.postgres))
+        for name, url in targets:
+            seconds, accepted = ingest_rate(url, path, args.regions)
+            assert accepted == rows, (accepted, rows)
+            print(f"{name:>10}: ingest {seconds:.2f} s, {rows / seconds:,.0f} rows/s, "
+                  f"{seconds / parse:.1f}x read_csv")
+
+
+if __name__ == "__main__":
+    main()

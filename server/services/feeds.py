@@ -1,0 +1,559 @@
+"""Use cases around configured feeds: the catalogue, scheduled runs, push tokens, health, freshness.
+
+A *run* of a pulled feed takes every waiting file of a file-drop folder (or one conditional GET of
+an HTTP source), ingests each as one vintage, records the feed's state (ETag, Last-Modified, last
+success or error) in the same transaction, and triggers the evaluation once after commit.
+
+Freshness: for each feed and region, the newest reference date and the newest time a vintage of
+that feed was received; a region is *stale* for the feed when today (in the office's time zone)
+is more than the feed's ``stale_after`` past its newest reference date. The rules engine treats
+stale data as unknown.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import secrets
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from datetime import UTC, date, datetime, timedelta
+from pathlib import Path
+
+import httpx
+from sqlalchemy import Date, delete, func, select, text, type_coerce, update
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from server.config import Settings
+from server.feeds.definition import (
+    FeedCatalogue,
+    FeedDefinition,
+    FileSource,
+    HttpSource,
+    load_feeds,
+)
+from server.feeds.errors import FeedFileError, FetchError
+from server.feeds.sources import Payload, RetryPolicy, fetch, move_aside, pending_files
+from server.services.audit import record
+from server.services.database import Database
+from server.services.errors import ServiceError
+from server.services.evaluation import evaluate_active
+from server.services.ingest import IngestReceipt, ingest_and_evaluate, office_today
+from server.store.models import (
+    FeedState,
+    FeedToken,
+    Observation,
+    Region,
+    RejectedRow,
+    SchedulerLease,
+    Vintage,
+)
+from server.store.types import UTCDateTime
+
+DEMO_FEEDS_FILE = Path(__file__).resolve().parents[2] / "demo_seed" / "feeds.yaml"
+
+
+class UnknownFeedError(ServiceError, LookupError):
+    def __init__(self, name: str, known: list[str]) -> None:
+        self.name = name
+        super().__init__(f"unknown feed {name!r}; configured feeds: {', '.join(known) or 'none'}")
+
+
+def feeds_file(settings: Settings) -> Path | None:
+    """The configured feed file; in demo mode the demo's feeds when none is configured."""
+    if settings.feeds_file is not None:
+        return settings.feeds_file
+    return DEMO_FEEDS_FILE if settings.demo_mode else None
+
+
+def load_catalogue(settings: Settings) -> FeedCatalogue:
+    """The configured feeds (an empty catalogue when no feed file is configured)."""
+    path = feeds_file(settings)
+    if path is None:
+        return FeedCatalogue(path="", feeds={})
+    return load_feeds(path)
+
+
+def feed_named(catalogue: FeedCatalogue, name: str) -> FeedDefinition:
+    if name not in catalogue:
+        raise UnknownFeedError(name, sorted(catalogue.feeds))
+    return catalogue[name]
+
+
+# --- push tokens -------------------------------------------------------------------------------
+
+def _digest(token: str) -> str:
+    return hashlib.sha256(token.encode()).hexdigest()
+
+
+def issue_token(*, session: Session, feed: str, actor: str) -> str:
+    """A new random bearer token for ``feed`` (replacing any earlier one); only its hash is kept."""
+    token = secrets.token_urlsafe(32)
+    row = session.get(FeedToken, feed)
+    if row is None:
+        row = FeedToken(feed=feed, token_sha256="", created_at=datetime.now(UTC))
+        session.add(row)
+    row.token_sha256 = _digest(token)
+    row.created_at = datetime.now(UTC)
+    row.created_by = actor
+    record(session=session, actor=actor, action="feed.token", subject=feed)
+    session.flush()
+    return token
+
+
+def token_matches(*, session: Session, feed: str, token: str | None) -> bool:
+    """Whether ``token`` is ``feed``'s current push token (constant-time comparison)."""
+    row = session.get(FeedToken, feed)
+    if row is None or not token:
+        return False
+    return hmac.compare_digest(row.token_sha256, _digest(token))
+
+
+# --- runs ----------------------------------------------------------------------------------------
+
+def _state(session: Session, feed: str) -> FeedState:
+    row = session.get(FeedState, feed)
+    if row is None:
+        row = FeedState(feed=feed, last_error="", failures=0)
+        session.add(row)
+    return row
+
+
+def note_failure(db: Database, *, feed: str, error: str, at: datetime) -> None:
+    with db.transaction() as session:
+        state = _state(session, feed)
+        state.last_attempt_at = at
+        state.last_error = error[:2000]
+        state.failures = (state.failures or 0) + 1
+
+
+def _note_success(session: Session, feed: str, at: datetime, receipt: IngestReceipt | None,
+                  etag: str | None = None, last_modified: str | None = None) -> None:
+    state = _state(session, feed)
+    state.last_attempt_at = at
+    state.last_success_at = at
+    state.last_error = ""
+    state.failures = 0
+    if etag is not None:
+        state.etag = etag
+    if last_modified is not None:
+        state.last_modified = last_modified
+    if receipt is not None and receipt.vintage_id is not None:
+        state.last_vintage_id = receipt.vintage_id
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedRun:
+    """What one scheduled run of a feed did."""
+
+    feed: str
+    receipts: tuple[IngestReceipt, ...]
+    not_modified: bool
+    errors: tuple[str, ...]
+    evaluated: bool
+
+    @property
+    def landed(self) -> int:
+        return sum(1 for r in self.receipts if not r.unchanged and r.vintage_id is not None)
+
+
+def run_feed(
+    db: Database, *, feed: FeedDefinition, time_zone: str = "UTC",
+    environ: Mapping[str, str] | None = None, now: datetime | None = None,
+    policy: RetryPolicy | None = None, client: httpx.Client | None = None,
+    evaluate: bool = True,
+) -> FeedRun:
+    """Run a pulled feed once: each waiting file, or one conditional GET. Errors are recorded in
+    the feed state; transient fetch errors are re-raised after being recorded (the scheduler
+    logs them and the next run tries again)."""
+    at = now or datetime.now(UTC)
+    if isinstance(feed.source, FileSource):
+        receipts, errors = _run_files(db, feed, feed.source, time_zone, at)
+        not_modified = False
+    elif isinstance(feed.source, HttpSource):
+        receipts, errors, not_modified = _run_http(
+            db, feed, feed.source, time_zone, at, environ or {}, policy, client
+        )
+    else:
+        raise ServiceError(f"feed {feed.name!r} is a push feed; it has nothing to pull")
+    evaluated = False
+    if evaluate and any(not r.unchanged and r.rows_accepted for r in receipts):
+        with db.transaction() as session:
+            evaluated = evaluate_active(session=session) is not None
+    return FeedRun(feed=feed.name, receipts=tuple(receipts), not_modified=not_modified,
+                   errors=tuple(errors), evaluated=evaluated)
+
+
+def _run_files(
+    db: Database, feed: FeedDefinition, source: FileSource, time_zone: str, at: datetime
+) -> tuple[list[IngestReceipt], list[str]]:
+    receipts, errors = [], []
+    files = pending_files(source)
+    if not files:
+        with db.transaction() as session:
+            _note_success(session, feed.name, at, None)
+    for path in files:
+        try:
+            outcome = ingest_and_evaluate(
+                db, feed=feed, payload=Payload.from_path(path), time_zone=time_zone,
+                received_at=at, evaluate=False,
+                after_landing=lambda s, r: _note_success(s, feed.name, at, r),
+            )
+        except FeedFileError as exc:
+            note_failure(db, feed=feed.name, error=str(exc), at=at)
+            move_aside(path, source, outcome="rejected", now=at)
+            errors.append(str(exc))
+            continue
+        receipts.append(outcome.receipt)
+        move_aside(path, source, outcome="processed", now=at)
+    return receipts, errors
+
+
+def _run_http(
+    db: Database, feed: FeedDefinition, source: HttpSource, time_zone: str, at: datetime,
+    environ: Mapping[str, str], policy: RetryPolicy | None, client: httpx.Client | None,
+) -> tuple[list[IngestReceipt], list[str], bool]:
+    with db.sessions() as session:
+        state = session.get(FeedState, feed.name)
+        etag = state.etag if state else None
+        modified = state.last_modified if state else None
+    try:
+        got = fetch(source, etag=etag, last_modified=modified, environ=environ, policy=policy,
+                    client=client)
+    except FetchError as exc:
+        note_failure(db, feed=feed.name, error=str(exc), at=at)
+        if exc.transient:
+            raise
+        return [], [str(exc)], False
+    if got.status == 304 or got.content is None:
+        with db.transaction() as session:
+            _note_success(session, feed.name, at, None)
+        return [], [], True
+    try:
+        outcome = ingest_and_evaluate(
+            db, feed=feed, payload=Payload.from_bytes(source.url, got.content),
+            time_zone=time_zone, received_at=at, evaluate=False,
+            after_landing=lambda s, r: _note_success(s, feed.name, at, r, got.etag,
+                                                     got.last_modified),
+        )
+    except FeedFileError as exc:
+        note_failure(db, feed=feed.name, error=str(exc), at=at)
+        return [], [str(exc)], False
+    return [outcome.receipt], [], False
+
+
+# --- health and freshness ----------------------------------------------------------------
+
+@dataclass(frozen=True, kw_only=True)
+class Freshness:
+    feed: str
+    region: str
+    latest_ref_date: date
+    received_at: datetime
+    stale: bool
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedStatus:
+    """One feed's health for the status table and the staff page."""
+
+    name: str
+    kind: str
+    schedule: str
+    cadence: str
+    stale_after_days: float
+    last_attempt_at: datetime | None
+    last_success_at: datetime | None
+    last_error: str
+    failures: int
+    vintages: int
+    last_received_at: datetime | None
+    last_accepted: int
+    last_rejected: int
+    regions: int
+    stale_regions: tuple[str, ...]
+    newest_ref_date: date | None
+
+    @property
+    def healthy(self) -> bool:
+        return not self.last_error and not self.stale_regions
+
+
+def freshness(
+    *, session: Session, catalogue: FeedCatalogue, now: datetime, time_zone: str = "UTC"
+) -> list[Freshness]:
+    """For each configured feed and each region it has reported: newest date, received, stale."""
+    today = office_today(now, time_zone)
+    out = []
+    names = [f.name for f in catalogue]
+    if not names:
+        return out
+    query = (
+        select(
+            Vintage.feed, Region.code,
+            type_coerce(func.max(Observation.ref_date), Date()),
+            type_coerce(func.max(Vintage.received_at), UTCDateTime()),
+        )
+        .join(Observation, Observation.vintage_id == Vintage.id)
+        .join(Region, Region.id == Observation.region_id)
+        .where(Vintage.feed.in_(names))
+        .group_by(Vintage.feed, Region.code)
+        .order_by(Vintage.feed, Region.code)
+    )
+    for feed, region, ref, received in session.execute(query):
+        limit = catalogue[feed].stale_after
+        out.append(Freshness(feed=feed, region=region, latest_ref_date=ref, received_at=received,
+                             stale=(today - ref) > limit))
+    return out
+
+
+def stale_regions(
+    *, session: Session, catalogue: FeedCatalogue, now: datetime, time_zone: str = "UTC"
+) -> dict[str, frozenset[str]]:
+    """Feed name -> regions whose data from that feed are past its staleness limit."""
+    found: dict[str, set[str]] = {f.name: set() for f in catalogue}
+    for f in freshness(session=session, catalogue=catalogue, now=now, time_zone=time_zone):
+        if f.stale:
+            found[f.feed].add(f.region)
+    return {k: frozenset(v) for k, v in found.items()}
+
+
+def _schedule_text(feed: FeedDefinition) -> str:
+    s = feed.schedule
+    if s is None:
+        return "push" if feed.kind == "push" else "manual"
+    if s.cron:
+        return f"cron {s.cron} ({s.timezone})"
+    return f"every {s.interval} ({s.timezone})"
+
+
+def feed_statuses(
+    *, session: Session, catalogue: FeedCatalogue, now: datetime, time_zone: str = "UTC"
+) -> list[FeedStatus]:
+    """Every configured feed's health: last run, last error, last vintage, stale regions."""
+    fresh = freshness(session=session, catalogue=catalogue, now=now, time_zone=time_zone)
+    out = []
+    for feed in catalogue:
+        state = session.get(FeedState, feed.name)
+        last = session.scalars(
+            select(Vintage).where(Vintage.feed == feed.name)
+            .order_by(Vintage.received_at.desc(), Vintage.id.desc()).limit(1)
+        ).first()
+        count = session.scalar(select(func.count()).where(Vintage.feed == feed.name)) or 0
+        mine = [f for f in fresh if f.feed == feed.name]
+        out.append(FeedStatus(
+            name=feed.name, kind=feed.kind, schedule=_schedule_text(feed), cadence=feed.cadence,
+            stale_after_days=feed.stale_after.total_seconds() / 86400,
+            last_attempt_at=state.last_attempt_at if state else None,
+            last_success_at=state.last_success_at if state else None,
+            last_error=state.last_error if state else "", failures=state.failures if state else 0,
+            vintages=int(count), last_received_at=last.received_at if last else None,
+            last_accepted=last.rows_accepted if last else 0,
+            last_rejected=last.rows_rejected if last else 0, regions=len(mine),
+            stale_regions=tuple(f.region for f in mine if f.stale),
+            newest_ref_date=max((f.latest_ref_date for f in mine), default=None),
+        ))
+    return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class RejectedRowView:
+    vintage_id: int
+    feed: str
+    received_at: datetime
+    line: int
+    reason: str
+    message: str
+    raw: str
+
+
+def recent_rejections(
+    *, session: Session, feed: str | None = None, limit: int = 200
+) -> list[RejectedRowView]:
+    """The newest rejected rows (optionally of one feed), newest vintage first, by line."""
+    query = (
+        select(RejectedRow, Vintage.feed, Vintage.received_at)
+        .join(Vintage, Vintage.id == RejectedRow.vintage_id)
+        .order_by(Vintage.received_at.desc(), Vintage.id.desc(), RejectedRow.line)
+        .limit(limit)
+    )
+    if feed is not None:
+        query = query.where(Vintage.feed == feed)
+    return [
+        RejectedRowView(vintage_id=r.vintage_id, feed=f, received_at=t, line=r.line,
+                        reason=r.reason, message=r.message, raw=r.raw)
+        for r, f, t in session.execute(query)
+    ]
+
+
+# --- scheduler leadership ----------------------------------------------------------------------
+
+class LeaderLease:
+    """Exactly one scheduler instance holds the lease; the others wait and take over.
+
+    On PostgreSQL a session-level advisory lock (``pg_try_advisory_lock``) held on a dedicated
+    connection: it goes when the holder's connection does, so a dead holder frees it at once. On
+    SQLite a ``scheduler_lease`` row with an expiry that the holder renews; another instance takes
+    the row once it has expired.
+    """
+
+    def __init__(self, db: Database, *, name: str, holder: str, ttl_seconds: float = 30.0) -> None:
+        if ttl_seconds <= 0:
+            raise ValueError(f"ttl_seconds must be positive, got {ttl_seconds}")
+        self.db = db
+        self.name = name
+        self.holder = holder
+        self.ttl = ttl_seconds
+        self._pg = db.engine.dialect.name == "postgresql"
+        self._connection = None  # type: ignore[var-annotated]
+        self.key = int.from_bytes(hashlib.sha256(name.encode()).digest()[:8], "big", signed=True)
+
+    def acquire(self, now: datetime | None = None) -> bool:
+        """Take or renew the lease; True while this instance is the leader."""
+        return self._acquire_pg() if self._pg else self._acquire_row(now or datetime.now(UTC))
+
+    def release(self) -> None:
+        if self._pg:
+            if self._connection is not None:
+                try:
+                    self._connection.execute(
+                        text("SELECT pg_advisory_unlock(:k)"), {"k": self.key}
+                    )
+                finally:
+                    self._connection.close()
+                    self._connection = None
+            return
+        with self.db.transaction() as session:
+            session.execute(
+                delete(SchedulerLease).where(
+                    SchedulerLease.name == self.name, SchedulerLease.holder == self.holder
+                )
+            )
+
+    def abandon(self) -> None:
+        """Drop the lease as a crashed holder would: close the lock's connection, no unlock
+        (PostgreSQL frees the lock); on SQLite the row is left to expire."""
+        if self._connection is not None:
+            self._connection.connection.dbapi_connection.close()  # type: ignore[union-attr]
+            self._connection.invalidate()
+            self._connection = None
+
+    def _acquire_pg(self) -> bool:
+        if self._connection is not None:
+            try:
+                self._connection.execute(text("SELECT 1"))
+                return True
+            except Exception:  # the connection died: leadership is gone with it
+                self._connection = None
+                return False
+        connection = self.db.engine.connect().execution_options(isolation_level="AUTOCOMMIT")
+        got = bool(connection.execute(
+            text("SELECT pg_try_advisory_lock(:k)"), {"k": self.key}
+        ).scalar())
+        if got:
+            self._connection = connection
+        else:
+            connection.close()
+        return got
+
+    def _acquire_row(self, now: datetime) -> bool:
+        expires = now + timedelta(seconds=self.ttl)
+        with self.db.transaction() as session:
+            taken = session.execute(
+                update(SchedulerLease)
+                .where(
+                    SchedulerLease.name == self.name,
+                    (SchedulerLease.holder == self.holder) | (SchedulerLease.expires_at < now),
+                )
+                .values(holder=self.holder, expires_at=expires)
+            ).rowcount
+            if taken:
+                return True
+            if session.get(SchedulerLease, self.name) is not None:
+                return False
+            try:
+                with session.begin_nested():
+                    session.add(SchedulerLease(name=self.name, holder=self.holder,
+                                               expires_at=expires))
+            except IntegrityError:
+                return False
+            return True
+
+
+# --- push and manual upload ----------------------------------------------------------------------
+
+class FeedTokenError(ServiceError, PermissionError):
+    def __init__(self, feed: str, given: bool) -> None:
+        self.feed = feed
+        problem = "wrong bearer token" if given else "missing bearer token"
+        super().__init__(f"{problem} for feed {feed!r}")
+
+
+class NotAPushFeedError(ServiceError, ValueError):
+    def __init__(self, feed: str, kind: str) -> None:
+        super().__init__(f"feed {feed!r} is a {kind} feed; only push feeds accept pushes")
+
+
+def push_payload(
+    db: Database, *, catalogue: FeedCatalogue, feed_name: str, token: str | None,
+    content: bytes, content_type: str = "", time_zone: str = "UTC",
+) -> IngestReceipt:
+    """Check the feed and its token, then ingest ``content`` as one vintage (committed).
+
+    JSON bodies (``application/json``) are read as JSON records whatever the feed's format.
+    The evaluation hook is left to the caller (:func:`evaluate_after_ingest`), so the pusher
+    gets its receipt without waiting for it.
+    """
+    feed = feed_named(catalogue, feed_name)
+    if feed.kind != "push":
+        raise NotAPushFeedError(feed.name, feed.kind)
+    with db.transaction() as session:
+        if not token_matches(session=session, feed=feed.name, token=token):
+            raise FeedTokenError(feed.name, given=bool(token))
+    if "json" in content_type.lower() and feed.format != "json":
+        feed = replace(feed, format="json")
+    label = f"push to {feed.name}"
+    return ingest_and_evaluate(
+        db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
+        evaluate=False, after_landing=lambda s, r: _note_success(s, feed.name, r.received_at, r),
+    ).receipt
+
+
+def upload_payload(
+    db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str, content: bytes,
+    actor: str, time_zone: str = "UTC", dry_run: bool = False,
+) -> IngestReceipt:
+    """A file a staff member uploaded by hand (any configured feed's layout)."""
+    feed = feed_named(catalogue, feed_name)
+    label = f"upload {filename} by {actor}"[:500]
+    return ingest_and_evaluate(
+        db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
+        dry_run=dry_run, evaluate=False,
+    ).receipt
+
+
+def evaluate_after_ingest(db: Database) -> None:
+    """The evaluation hook, in its own transaction (run after a push or upload committed)."""
+    with db.transaction() as session:
+        evaluate_active(session=session)
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedsPage:
+    statuses: list[FeedStatus]
+    rejections: list[RejectedRowView]
+    feeds_file: str
+
+
+def feeds_page(
+    *, session: Session, catalogue: FeedCatalogue, now: datetime, time_zone: str = "UTC",
+    feed: str | None = None,
+) -> FeedsPage:
+    """Data of the staff feeds page: each feed's health and the newest rejected rows."""
+    return FeedsPage(
+        statuses=feed_statuses(session=session, catalogue=catalogue, now=now,
+                               time_zone=time_zone),
+        rejections=recent_rejections(session=session, feed=feed, limit=200),
+        feeds_file=catalogue.path,
+    )

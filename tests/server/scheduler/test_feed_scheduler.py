@@ -1,0 +1,128 @@
+"""The scheduler: leader lease and takeover, real APScheduler runs, a simulated day of pulls."""
+
+from __future__ import annotations
+
+import time
+from datetime import UTC, datetime, timedelta
+
+import pytest
+from sqlalchemy import func, select
+
+from server.feeds.definition import parse_feeds
+from server.feeds.sources import RetryPolicy
+from server.scheduler.feed_scheduler import FeedScheduler, trigger_of
+from server.services.database import Database
+from server.services.feeds import LeaderLease, run_feed
+from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+from server.store.models import FeedState, Vintage
+
+FAST = RetryPolicy(attempts=2, first_wait=0.0, max_wait=0.0)
+
+
+def catalogue(url: str, schedule: str):  # type: ignore[no-untyped-def]
+    return parse_feeds(
+        f"feeds:\n  - name: pulled\n    source: {{kind: http, url: '{url}'}}\n"
+        f"    measures: [cases]\n    schedule: {schedule}\n", source="t.yaml")
+
+
+def seed(db: Database) -> None:
+    with db.transaction() as session:
+        upsert_regions(session=session, records=[RegionRecord(
+            code="SA", name="Sorrelmead", level="district", parent=None, population=100)])
+        upsert_measures(session=session, records=[
+            MeasureRecord(name="cases", unit="n", kind="count", aggregation="sum")])
+
+
+def vintages(db: Database) -> int:
+    with db.sessions() as session:
+        return int(session.scalar(select(func.count()).select_from(Vintage)) or 0)
+
+
+def wait_for(predicate, timeout: float = 8.0) -> bool:  # type: ignore[no-untyped-def]
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if predicate():
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def test_lease_second_holder_waits(committed_db: Database) -> None:
+    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=5)
+    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=5)
+    try:
+        assert (first.acquire(), second.acquire(), first.acquire()) == (True, False, True)
+    finally:
+        first.release()
+        second.release()
+
+
+def test_lease_taken_over_when_holder_dies(committed_db: Database) -> None:
+    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=1)
+    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=1)
+    t0 = datetime.now(UTC)
+    assert first.acquire(t0)
+    first.abandon()  # PostgreSQL: the lock goes with the holder's connection
+    assert second.acquire(t0 + timedelta(seconds=2))  # SQLite: the row expired
+    second.release()
+
+
+def test_lease_released_lets_other_in_at_once(committed_db: Database) -> None:
+    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=60)
+    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=60)
+    assert first.acquire()
+    first.release()
+    assert second.acquire()
+    second.release()
+
+
+def test_simulated_day_of_hourly_pulls(committed_db: Database, feed_server) -> None:  # type: ignore[no-untyped-def]
+    seed(committed_db)
+    feed = catalogue(feed_server.url, "{cron: '0 * * * *', timezone: UTC}")["pulled"]
+    trigger = trigger_of(feed.schedule)
+    start = datetime(2026, 3, 2, 0, 0, tzinfo=UTC)
+    fire = trigger.get_next_fire_time(None, start - timedelta(seconds=1))
+    runs = []
+    while fire < start + timedelta(days=1):
+        if fire.hour in (6, 18):  # the source publishes a corrected file twice a day
+            feed_server.publish(
+                f"region,date,measure,value\nSA,2026-03-01,cases,{fire.hour}\n".encode())
+        runs.append(run_feed(committed_db, feed=feed, now=fire, policy=FAST, evaluate=False))
+        fire = trigger.get_next_fire_time(fire, fire + timedelta(seconds=1))
+    assert len(runs) == 24
+    assert sum(r.landed for r in runs) == 3 == vintages(committed_db)
+    assert sum(r.not_modified for r in runs) == 21
+    with committed_db.sessions() as session:
+        state = session.get(FeedState, "pulled")
+        assert state.last_success_at == datetime(2026, 3, 2, 23, tzinfo=UTC)
+
+
+def test_scheduler_one_leader_pulls_and_other_takes_over(  # type: ignore[no-untyped-def]
+    committed_db: Database, feed_server
+) -> None:
+    seed(committed_db)
+    cat = catalogue(feed_server.url, "{interval: 0.3s, timezone: UTC}")
+    a = FeedScheduler(committed_db, catalogue=cat, retry=FAST, lease_seconds=1.0,
+                      tick_seconds=0.2, holder="a")
+    b = FeedScheduler(committed_db, catalogue=cat, retry=FAST, lease_seconds=1.0,
+                      tick_seconds=0.2, holder="b")
+    a.start()
+    assert wait_for(lambda: a.is_leader)
+    b.start()
+    try:
+        assert wait_for(lambda: feed_server.requests >= 2)
+        assert (a.is_leader, b.is_leader) == (True, False)
+        assert vintages(committed_db) == 1  # later pulls answered 304: no new vintage
+        a.stop(release=False)  # dies without releasing
+        assert wait_for(lambda: b.is_leader)
+        feed_server.publish(b"region,date,measure,value\nSA,2026-03-01,cases,2\n")
+        assert wait_for(lambda: vintages(committed_db) == 2)
+    finally:
+        a.stop()
+        b.stop()
+
+
+def test_scheduler_tick_must_be_shorter_than_lease(committed_db: Database) -> None:
+    with pytest.raises(ValueError, match="tick_seconds must be in"):
+        FeedScheduler(committed_db, catalogue=catalogue("http://x/y", "{interval: 1h}"),
+                      lease_seconds=1.0, tick_seconds=2.0)

@@ -1,0 +1,63 @@
+"""Staff page of the feeds: health of each feed, the newest rejected rows, a manual upload."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Annotated
+
+from fastapi import APIRouter, BackgroundTasks, File, Form, Request, UploadFile
+from fastapi.responses import HTMLResponse
+
+from server.services.feeds import (
+    FeedFileError,
+    UnknownFeedError,
+    evaluate_after_ingest,
+    feeds_page,
+    load_catalogue,
+    upload_payload,
+)
+from web.deps import AnalystDep, CsrfDep, SessionDep, SettingsDep, StaffDep
+from web.templating import render
+
+router = APIRouter(tags=["staff"])
+
+
+@router.get("/feeds", response_class=HTMLResponse)
+def feeds(
+    request: Request, session: SessionDep, settings: SettingsDep, user: StaffDep,
+    feed: str | None = None,
+) -> HTMLResponse:
+    """Every feed's health and the newest rejected rows (optionally of one feed)."""
+    catalogue = load_catalogue(settings)
+    page = feeds_page(session=session, catalogue=catalogue, now=datetime.now(UTC),
+                      time_zone=settings.time_zone, feed=feed)
+    return render(
+        request, "staff/feeds.html",
+        {"page": page, "feed_names": sorted(catalogue.feeds), "selected": feed},
+    )
+
+
+@router.post("/feeds/upload", response_class=HTMLResponse)
+async def upload(
+    request: Request, settings: SettingsDep, user: AnalystDep, _csrf: CsrfDep,
+    background: BackgroundTasks, feed: Annotated[str, Form()],
+    file: Annotated[UploadFile, File()], dry_run: Annotated[bool, Form()] = False,
+) -> HTMLResponse:
+    """Take in an uploaded file for a feed and show its receipt."""
+    content = await file.read()
+    error, receipt = None, None
+    try:
+        receipt = upload_payload(
+            request.app.state.database, catalogue=load_catalogue(settings), feed_name=feed,
+            filename=file.filename or "upload", content=content, actor=user.name,
+            time_zone=settings.time_zone, dry_run=dry_run,
+        )
+    except (FeedFileError, UnknownFeedError) as exc:
+        error = str(exc)
+    if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run:
+        background.add_task(evaluate_after_ingest, request.app.state.database)
+    return render(
+        request, "staff/feeds_receipt.html",
+        {"receipt": receipt, "error": error, "feed": feed},
+        status_code=422 if error else 200,
+    )
