@@ -153,32 +153,15 @@ def upgrade() -> None:
     )
     op.create_table(
         "observation",
-        sa.Column("id", sa.BigInteger().with_variant(sa.Integer(), "sqlite"), nullable=False),
+        sa.Column("measure_id", sa.Integer(), nullable=False),
+        sa.Column("region_id", sa.Integer(), nullable=False),
+        sa.Column("ref_date", sa.Date(), nullable=False),
         sa.Column(
             "vintage_id", sa.BigInteger().with_variant(sa.Integer(), "sqlite"), nullable=False
         ),
-        sa.Column("region_id", sa.Integer(), nullable=False),
-        sa.Column("measure_id", sa.Integer(), nullable=False),
-        sa.Column("ref_date", sa.Date(), nullable=False),
         sa.Column("value", sa.Float(), nullable=False),
-        sa.ForeignKeyConstraint(
-            ["measure_id"],
-            ["measure.id"],
-        ),
-        sa.ForeignKeyConstraint(
-            ["region_id"],
-            ["region.id"],
-        ),
-        sa.ForeignKeyConstraint(["vintage_id"], ["vintage.id"], ondelete="CASCADE"),
-        sa.PrimaryKeyConstraint("id"),
-        sa.UniqueConstraint("vintage_id", "region_id", "measure_id", "ref_date"),
+        sa.PrimaryKeyConstraint("measure_id", "region_id", "ref_date", "vintage_id"),
     )
-    with op.batch_alter_table("observation", schema=None) as batch_op:
-        batch_op.create_index(
-            "ix_observation_key",
-            ["measure_id", "region_id", "ref_date", "vintage_id"],
-            unique=False,
-        )
 
     op.create_table(
         "rejected_row",
@@ -242,9 +225,6 @@ def downgrade() -> None:
         batch_op.drop_index(batch_op.f("ix_rejected_row_vintage_id"))
 
     op.drop_table("rejected_row")
-    with op.batch_alter_table("observation", schema=None) as batch_op:
-        batch_op.drop_index("ix_observation_key")
-
     op.drop_table("observation")
     op.drop_table("catchment")
     with op.batch_alter_table("assessment", schema=None) as batch_op:
