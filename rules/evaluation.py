@@ -100,6 +100,13 @@ class Evaluation:
         decided the day before). An unknown day ends the run; a day whose gate fails freezes it.
     prepare, prepare_run : arrays ``(signals, regions, days)``
         Whether each prepare signal shows, and its current run length.
+
+    Notes
+    -----
+    ``levels``, ``known``, ``reason``, ``above`` and ``below`` are transposed views of the
+    day-major buffers the day loop fills (``(days, criteria, regions)``), not copies: the values
+    are indexed as documented, but the arrays are not C-contiguous and share memory with
+    ``criterion_levels``. Treat every array as read-only.
     """
 
     ruleset: Ruleset
@@ -242,6 +249,14 @@ def evaluate(
         if cond.patch.thresholds is not None:
             max_level[t] = max(int(max_level[t]), cond.patch.thresholds.max_level)
     n_c = len(ids)
+    # state-free parts folded once over all days: an inactive criterion has level 0 whatever
+    # the tier held (max(0, min(T, 0)) = 0 as T >= 0), so its enter and exit levels become 0
+    enter_lv = np.where(lv.inactive, 0, lv.enter_level).astype(np.int8, copy=False)
+    exit_lv = np.where(lv.inactive, 0, lv.exit_level).astype(np.int8, copy=False)
+    cond_enter = np.where(lv.cond_inactive, 0, lv.cond_enter_level).astype(np.int8, copy=False)
+    cond_exit = np.where(lv.cond_inactive, 0, lv.cond_exit_level).astype(np.int8, copy=False)
+    unknown = ~lv.known
+    all_ok = ok_t.all(axis=1)
     levels_out = np.empty((n_d, n_c, n_r), dtype=np.int8)
     above_out = np.empty((n_d, n_c, n_r), dtype=np.int32)
     below_out = np.empty((n_d, n_c, n_r), dtype=np.int32)
@@ -253,24 +268,30 @@ def evaluate(
     prev = state.levels.astype(np.int8)
     tiers = state.tiers
     conds = list(zip(lv.cond_source, lv.cond_level, lv.cond_target, strict=True))
+    band = np.empty((n_c, n_r), dtype=np.int8)
     for d in range(n_d):
         kn = lv.known[d]
         held = tiers.tier.astype(np.int8)  # the tier already held: kept while exit is met
-        new = np.maximum(lv.enter_level[d], np.minimum(held[np.newaxis, :], lv.exit_level[d]))
-        new = np.where(lv.inactive[d], 0, new)
+        cur = levels_out[d]
+        np.minimum(exit_lv[d], held, out=band)
+        np.maximum(band, enter_lv[d], out=cur)
         for j, (src, lvl, tgt) in enumerate(conds):
-            alt = np.maximum(lv.cond_enter_level[j, d], np.minimum(held, lv.cond_exit_level[j, d]))
-            alt = np.where(lv.cond_inactive[j, d], 0, alt)
-            on = np.where(kn[src], new[src], prev[src]) >= lvl  # unknown source: carried level
-            new[tgt] = np.where(on, alt, new[tgt])
-        cur = np.where(kn, new, prev).astype(np.int8)
+            alt = np.maximum(cond_enter[j, d], np.minimum(held, cond_exit[j, d]))
+            on = np.where(kn[src], cur[src], prev[src]) >= lvl  # unknown source: carried level
+            np.copyto(cur[tgt], alt, where=on)
+        np.copyto(cur, prev, where=unknown[d])  # unknown: level carried
         low, high = candidate_bounds(cur, kn, max_level, comb, weights, cutoffs)
         ok = ok_t[d]
-        above = np.where(ok, np.where(kn & (cur > held), above + 1, 0), above)
-        below = np.where(ok, np.where(kn & (cur < held), below + 1, 0), below)
-        above_out[d], below_out[d] = above, below
-        tiers, cand = step_tiers(tiers, low, high, ok_t[d], ruleset.timing)
-        levels_out[d] = cur
+        a_out, b_out = above_out[d], below_out[d]
+        np.add(above, 1, out=a_out)
+        a_out *= kn & (cur > held)
+        np.add(below, 1, out=b_out)
+        b_out *= kn & (cur < held)
+        if not all_ok[d]:  # a failed gate freezes the counters
+            np.copyto(a_out, above, where=~ok)
+            np.copyto(b_out, below, where=~ok)
+        above, below = a_out, b_out
+        tiers, cand = step_tiers(tiers, low, high, ok, ruleset.timing)
         prev = cur
         out["decided"][d], out["cand"][d] = tiers.tier, cand
         out["low"][d], out["high"][d] = low, high
@@ -285,7 +306,7 @@ def evaluate(
     )
     final = EngineState(
         tiers=tiers,
-        levels=prev,
+        levels=prev.copy(),
         history=history[history.shape[0] - delay :].astype(np.int32),
         signals=sig_state,
         above=above.astype(np.int32),
@@ -307,13 +328,13 @@ def evaluate(
         since=out["since"].T.copy(),
         sufficient=ok_all,
         gates=gates,
-        levels=levels_out.transpose(1, 2, 0).copy(),
-        known=lv.known.transpose(1, 2, 0).copy(),
-        reason=lv.reason.transpose(1, 2, 0).copy(),
+        levels=levels_out.transpose(1, 2, 0),
+        known=lv.known.transpose(1, 2, 0),
+        reason=lv.reason.transpose(1, 2, 0),
         prepare=shown,
         prepare_run=run,
-        above=above_out.transpose(1, 2, 0).copy(),
-        below=below_out.transpose(1, 2, 0).copy(),
+        above=above_out.transpose(1, 2, 0),
+        below=below_out.transpose(1, 2, 0),
         start_tier=state.tiers.tier.copy(),
         start_in_force=np.asarray(start_in_force, dtype=np.int32).copy(),
         final_state=final,

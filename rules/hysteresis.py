@@ -80,10 +80,10 @@ def candidate_bounds(
     highest: ``max_c L_c``; at_least m: the m-th largest ``L_c``; score: number of cut-offs
     ``<= sum_c w_c L_c``. Low uses ``L_c = 0`` for unknown criteria, high ``L_c = top_c``.
     """
-    low_l = np.where(known, levels, 0).astype(np.int32)
-    high_l = np.where(known, levels, max_level[:, np.newaxis]).astype(np.int32)
+    low_l = np.where(known, levels, 0)
+    high_l = np.where(known, levels, max_level[:, np.newaxis])
     if combination.method == "highest":
-        return low_l.max(axis=0), high_l.max(axis=0)
+        return low_l.max(axis=0).astype(np.int32), high_l.max(axis=0).astype(np.int32)
     if combination.method == "at_least":
         m = int(combination.m or 1)
         k = low_l.shape[0] - m
@@ -100,32 +100,43 @@ def step_tiers(
 ) -> tuple[TierState, IntArray]:
     """One day of hysteresis for all regions; returns the new state and the candidate used."""
     tier = state.tier
-    cand = np.clip(tier, low, high)
+    cand = np.minimum(np.maximum(tier, low), high).astype(np.int32, copy=False)  # low <= high
     higher = cand > tier
     lower = cand < tier
-    up = np.where(higher, state.up + 1, 0)
-    up_target = np.where(higher, np.where(state.up > 0, np.minimum(state.up_target, cand), cand), 0)
-    down = np.where(lower, state.down + 1, 0)
-    down_target = np.where(
-        lower, np.where(state.down > 0, np.maximum(state.down_target, cand), cand), 0
-    )
+    up = (state.up + 1) * higher
+    up_target = np.where(state.up > 0, np.minimum(state.up_target, cand), cand) * higher
+    down = (state.down + 1) * lower
+    down_target = np.where(state.down > 0, np.maximum(state.down_target, cand), cand) * lower
     since = state.since + 1
     rise = up >= timing.confirm_days
     fall = (down >= timing.release_days) & (since >= timing.min_days_in_tier)
     fall_to = down_target
     if timing.max_steps_down is not None:
         fall_to = np.maximum(down_target, tier - timing.max_steps_down)
-    new_tier = np.where(rise, up_target, np.where(fall, fall_to, tier)).astype(np.int32)
+    new_tier = np.where(rise, up_target, np.where(fall, fall_to, tier))
     changed = new_tier != tier
+    if ok.all():  # the common day: no gate failed, nothing frozen
+        keep = ~changed
+        new = TierState(
+            tier=new_tier.astype(np.int32, copy=False),
+            since=since * keep,
+            up=up * keep,
+            up_target=up_target * keep,
+            down=down * keep,
+            down_target=down_target * keep,
+        )
+        return new, cand
     reset = changed | ~ok
     new = TierState(
-        tier=np.where(ok, new_tier, tier).astype(np.int32),
-        since=np.where(changed & ok, 0, since).astype(np.int32),
-        up=np.where(reset, np.where(ok, 0, state.up), up).astype(np.int32),
-        up_target=np.where(reset, np.where(ok, 0, state.up_target), up_target).astype(np.int32),
-        down=np.where(reset, np.where(ok, 0, state.down), down).astype(np.int32),
+        tier=np.where(ok, new_tier, tier).astype(np.int32, copy=False),
+        since=np.where(changed & ok, 0, since).astype(np.int32, copy=False),
+        up=np.where(reset, np.where(ok, 0, state.up), up).astype(np.int32, copy=False),
+        up_target=np.where(reset, np.where(ok, 0, state.up_target), up_target).astype(
+            np.int32, copy=False
+        ),
+        down=np.where(reset, np.where(ok, 0, state.down), down).astype(np.int32, copy=False),
         down_target=np.where(reset, np.where(ok, 0, state.down_target), down_target).astype(
-            np.int32
+            np.int32, copy=False
         ),
     )
-    return new, cand.astype(np.int32)
+    return new, cand

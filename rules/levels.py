@@ -93,8 +93,28 @@ def meets(
     return np.where(s, v < t, v <= t)
 
 
-def _highest_met(met: NDArray[np.bool_]) -> NDArray[np.int8]:
-    return np.cumprod(met, axis=0, dtype=np.int8).sum(axis=0, dtype=np.int8)
+def _highest_level(
+    values: NDArray[np.float64], thr: NDArray[np.float64], strict: NDArray[np.bool_], rising: bool
+) -> NDArray[np.int8]:
+    """Highest k whose thresholds ``thr[:k]`` are all met by ``values (R, D)``: int8 ``(R, D)``.
+
+    The same as counting the leading True rows of ``meets(values, thr, strict, rising)``, but
+    without its ``(K, R, D)`` arrays.
+
+    Tier by tier on ``(R, D)``: a value meets ``t`` when ``v > t`` (rising) or when it equals
+    ``t`` and the threshold is not strict; the level counts the leading tiers all met.
+    """
+    level = np.zeros(values.shape, dtype=np.int8)
+    alive = np.ones(values.shape, dtype=bool)
+    for k in range(thr.shape[0]):
+        t = thr[k][:, np.newaxis]
+        met = np.greater(values, t) if rising else np.less(values, t)
+        s = strict[k]
+        if not s.all():
+            met |= np.equal(values, t) & ~s[:, np.newaxis]
+        alive &= met
+        level += alive
+    return level
 
 
 def is_stale(series: IndicatorSeries, max_age_days: float | None) -> NDArray[np.bool_]:
@@ -172,8 +192,8 @@ def _variant(
     hold_v: NDArray[np.float64],
     count: NDArray[np.float64] | None,
 ) -> tuple[NDArray[np.int8], NDArray[np.int8], NDArray[np.bool_]]:
-    e = _highest_met(meets(enter_v, th.enter, th.enter_strict, th.rising))
-    x = _highest_met(meets(hold_v, th.exit, th.exit_strict, th.rising))
+    e = _highest_level(enter_v, th.enter, th.enter_strict, th.rising)
+    x = _highest_level(hold_v, th.exit, th.exit_strict, th.rising)
     if count is None:
         inactive = np.zeros(enter_v.shape, dtype=bool)
     else:

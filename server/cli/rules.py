@@ -180,6 +180,7 @@ def evaluate_command(
     store the assessments (a second run with the same cutoff reuses them)."""
     from server.services.database import Database
     from server.services.evaluation import active_ruleset, evaluate_districts
+    from server.services.notify import notify_config_from
 
     when = None
     if cutoff is not None:
@@ -189,14 +190,16 @@ def evaluate_command(
             raise fail(f"--cutoff: {cutoff!r} is not an ISO time stamp") from None
         if when.tzinfo is None:
             raise fail(f"--cutoff: {cutoff!r} needs a time zone (e.g. +00:00)")
-    db = Database.from_settings(Settings(demo_mode=True))
+    settings = Settings(demo_mode=True)
+    notify = notify_config_from(settings.notify_file)  # None unless TIERWISE_NOTIFY_FILE is set
+    db = Database.from_settings(settings)
     try:
         db.check()
         with db.transaction() as session:
             row = active_ruleset(session=session)
             if row is None:
                 raise fail("no active ruleset; the demo or `tierwise rules` must store one first")
-            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when)
+            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when, notify=notify)
     finally:
         db.dispose()
     if run is None:
@@ -206,3 +209,6 @@ def evaluate_command(
         f"{run.ruleset_name}: {verb} assessments {run.start} to {run.end} "
         f"(cutoff {run.data_cutoff.isoformat()}, {run.written:,} written)"
     )
+    for d in run.notified:
+        say(f"notified {d.recipient}: {d.events} event(s)" if d.ok
+            else f"notification to {d.recipient} failed: {d.error}")

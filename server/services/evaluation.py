@@ -4,11 +4,16 @@ An evaluation reads the data as known at a cutoff (the newest vintage received, 
 given), computes the indicators, runs the rules engine over the whole history and stores one
 assessment per district and day, each with its explanation, the ruleset and the cutoff. Re-running
 with the same ruleset and cutoff reproduces the same assessments (they are read, not rewritten).
+
+When the caller passes a loaded notification config (``notify=``, from ``settings.notify_file``),
+a run that stores new assessments delivers the newest day's events: recommended tier changes in
+force that day and prepare signals that started showing that day. Failures are logged and audited
+and never break the evaluation (:func:`server.services.notify.deliver_and_record`).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, date, datetime
 from pathlib import Path
 
@@ -19,6 +24,7 @@ import rules
 from rules import Evaluation, Ruleset, evaluate, parse_ruleset
 from server.services.audit import record
 from server.services.district_indicators import district_indicators, load_district_data
+from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.store.models import Assessment, Observation, Region, Vintage
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
@@ -36,6 +42,7 @@ class EvaluationRun:
     written: int
     reused: bool
     evaluation: Evaluation | None
+    notified: tuple[Delivery, ...] = field(default=())
 
 
 def store_ruleset(
@@ -88,11 +95,14 @@ def _date_range(session: Session, cutoff: datetime) -> tuple[date, date] | None:
 
 
 def evaluate_districts(
-    *, session: Session, ruleset_row: RulesetRow, cutoff: datetime | None = None
+    *, session: Session, ruleset_row: RulesetRow, cutoff: datetime | None = None,
+    notify: NotifyConfig | None = None,
 ) -> EvaluationRun | None:
     """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff``; store results.
 
-    Returns None when there are no data yet.
+    With ``notify``, newly stored assessments send the newest day's tier changes and starting
+    prepare signals to its recipients (a reused run sends nothing). Returns None when there are
+    no data yet.
     """
     cutoff = cutoff or newest_cutoff(session=session)
     if cutoff is None:
@@ -118,21 +128,30 @@ def evaluate_districts(
         region_levels=data.levels,
     )
     written = _store_assessments(session, ruleset_row.id, cutoff, result)
+    notified: tuple[Delivery, ...] = ()
+    if notify is not None and written:
+        notified = deliver_and_record(
+            events_on_day(result), notify, session=session, actor="system", context="evaluation"
+        )
     return EvaluationRun(
         ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
         start=start, end=end, written=written, reused=False, evaluation=result,
+        notified=notified,
     )
 
 
-def evaluate_active(*, session: Session) -> EvaluationRun | None:
+def evaluate_active(
+    *, session: Session, notify: NotifyConfig | None = None
+) -> EvaluationRun | None:
     """Evaluate the active ruleset on the newest data (the hook run after every ingestion).
 
-    Returns None when no ruleset is active or there are no data.
+    ``notify`` as in :func:`evaluate_districts`. Returns None when no ruleset is active or there
+    are no data.
     """
     row = active_ruleset(session=session)
     if row is None:
         return None
-    return evaluate_districts(session=session, ruleset_row=row)
+    return evaluate_districts(session=session, ruleset_row=row, notify=notify)
 
 
 def _store_assessments(

@@ -7,11 +7,18 @@ Recipients are configured in a YAML file (setting ``TIERWISE_NOTIFY_FILE``)::
       - id: duty-desk
         webhook: https://hooks.office.invalid/tierwise
         secret: a-long-shared-secret        # signs the body (HMAC-SHA256)
-        events: [tier_change, prepare]      # default: both
+        events: [tier_change, prepare]      # default: all three kinds
         regions: [D01, D02]                 # default: every district
       - id: officer
         email: officer@office.invalid
         events: [tier_change]
+
+Event kinds: ``tier_change`` (a recommended tier in force changed on the newest day of an
+evaluation), ``prepare`` (a prepare signal started showing that day) and ``published`` (a
+publication changed a district's official, public tier). Services deliver only when the caller
+passes a loaded :class:`NotifyConfig` (see :func:`notify_config_from`); a delivery failure is
+logged and written to the audit log (``notify.failed``), and never breaks the evaluation or the
+publication that caused it (:func:`deliver_and_record`).
 
 A webhook receives ``POST`` of a JSON body ``{"events": [...]}`` with the header
 ``X-Tierwise-Signature: sha256=<hex HMAC-SHA256 of the body with the recipient's secret>``; a
@@ -41,9 +48,11 @@ from typing import Any
 import httpx
 import numpy as np
 import yaml
+from sqlalchemy.orm import Session
 from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential
 
 from rules import Evaluation
+from server.services.audit import record
 from server.services.errors import InputFileError
 
 __all__ = [
@@ -55,14 +64,16 @@ __all__ = [
     "Recipient",
     "SmtpServer",
     "deliver",
+    "deliver_and_record",
     "events_on_day",
     "load_notify_config",
+    "notify_config_from",
     "sign",
 ]
 
 log = logging.getLogger(__name__)
 
-EVENT_KINDS = ("tier_change", "prepare")
+EVENT_KINDS = ("tier_change", "prepare", "published")
 SIGNATURE_HEADER = "X-Tierwise-Signature"
 
 
@@ -99,7 +110,8 @@ class NotifyConfig:
 
 @dataclass(frozen=True, kw_only=True)
 class Event:
-    """A tier change in force on ``date``, or a prepare signal that started showing on it."""
+    """A tier change in force on ``date``, a prepare signal that started showing on it, or a
+    published official tier in force from ``date``."""
 
     kind: str
     region: str
@@ -173,6 +185,11 @@ def load_notify_config(path: Path) -> NotifyConfig:
         recipients=tuple(recipients), smtp=SmtpServer(**smtp_doc),
         attempts=int(doc.get("attempts", 4)), backoff_seconds=float(doc.get("backoff_seconds", 1)),
     )
+
+
+def notify_config_from(path: Path | None) -> NotifyConfig | None:
+    """The recipients file at ``path`` (``settings.notify_file``) loaded, or None when unset."""
+    return None if path is None else load_notify_config(path)
 
 
 def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
@@ -274,5 +291,43 @@ def deliver(events: Sequence[Event], config: NotifyConfig) -> list[Delivery]:
         if not mine:
             continue
         send = _webhook if recipient.webhook else _email
-        out.append(send(config, recipient, mine))
+        try:
+            out.append(send(config, recipient, mine))
+        except Exception as exc:  # e.g. a malformed URL: one recipient never stops the others
+            log.warning("notification to %s failed: %s", recipient.id, exc)
+            out.append(Delivery(recipient=recipient.id, events=len(mine), ok=False, attempts=0,
+                                error=f"{type(exc).__name__}: {exc}"))
     return out
+
+
+def deliver_and_record(
+    events: Sequence[Event], config: NotifyConfig | None, *, session: Session, actor: str,
+    context: str,
+) -> tuple[Delivery, ...]:
+    """Deliver ``events`` and write one audit entry per recipient; never raises.
+
+    Nothing happens without a ``config`` or without events. Each recipient's outcome is audited
+    as ``notify.sent`` or ``notify.failed`` (with the error), ``context`` saying what caused it
+    (``evaluation``, ``publication``). An unexpected error while delivering is logged and audited
+    as ``notify.failed`` for recipient ``*``, so the caller's work always goes on.
+    """
+    if config is None or not events:
+        return ()
+    try:
+        deliveries = tuple(deliver(events, config))
+    except Exception as exc:  # a notification must never break the caller's work
+        log.exception("notifications for %s failed", context)
+        deliveries = (
+            Delivery(recipient="*", events=len(events), ok=False, attempts=0,
+                     error=f"{type(exc).__name__}: {exc}"),
+        )
+    for d in deliveries:
+        if not d.ok:
+            log.warning("notification to %s (%s) failed: %s", d.recipient, context, d.error)
+        record(
+            session=session, actor=actor, action="notify.sent" if d.ok else "notify.failed",
+            subject=d.recipient,
+            details={"context": context, "events": d.events, "attempts": d.attempts,
+                     "error": d.error},
+        )
+    return deliveries

@@ -9,11 +9,21 @@ when first published. Every decision and publication is written to the audit log
 
 A decision on an assessment of day ``d`` is effective from ``d + 1`` (the morning after the data
 it was based on).
+
+A recommendation of *insufficient data* (tier -1: a gate failed) is a pending change too, since
+the data no longer support the official tier. Confirming it keeps the official tier unchanged
+(the decision records that tier, the reason, and the -1 it answered), which settles the district
+until its recommendation changes again; a district with no official tier yet cannot be confirmed
+at "insufficient data" and needs an override with a tier.
+
+With a loaded notification config (``publish(..., notify=...)``) a publication sends one
+``published`` event per district whose official public tier it changed (including a first
+publication); a failed delivery is logged and audited and never undoes the publication.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from functools import lru_cache
 
@@ -24,6 +34,7 @@ from rules import Ruleset, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, latest_assessment_rows
+from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
 
@@ -124,6 +135,7 @@ class PublishResult:
     decisions: int
     regions: tuple[str, ...]
     initial: tuple[str, ...]
+    notified: tuple[Delivery, ...] = field(default=())
 
 
 @lru_cache(maxsize=16)
@@ -252,6 +264,16 @@ def _as_decision(row: DecisionRow, code: str, user: str, ruleset: Ruleset | None
     )
 
 
+def _official_tier_of(session: Session, region_id: int) -> int | None:
+    """Tier of the region's latest decision (published or not), None when never decided."""
+    return session.scalar(
+        select(DecisionRow.tier)
+        .where(DecisionRow.region_id == region_id)
+        .order_by(DecisionRow.decided_at.desc(), DecisionRow.id.desc())
+        .limit(1)
+    )
+
+
 def decide(
     *, session: Session, assessment_id: int, user: str, accept: bool, tier: int | None,
     reason: str,
@@ -259,12 +281,13 @@ def decide(
     """Confirm (``accept``) the recommendation of an assessment, or override it with ``tier``.
 
     The reason is mandatory in both cases. The decision is unpublished until :func:`publish`.
+    Confirming an *insufficient data* recommendation (-1) keeps the official tier unchanged.
 
     Raises
     ------
     ReviewError
         Blank reason, unknown assessment, a user who is not an approver, a missing or
-        out-of-range override tier.
+        out-of-range override tier, confirming insufficient data with no official tier to keep.
     """
     if not reason or not reason.strip():
         raise ReviewError("reason", "a decision needs a reason")
@@ -274,7 +297,17 @@ def decide(
         raise ReviewError("assessment_id", f"no assessment {assessment_id}")
     ruleset = _active(session)
     top = ruleset.top_tier if ruleset is not None else None
-    if accept:
+    kept: int | None = None
+    if accept and assessment.recommended_tier < 0:
+        kept = _official_tier_of(session, assessment.region_id)
+        if kept is None:
+            raise ReviewError(
+                "accept", "insufficient data and no official tier to keep; override with a tier"
+            )
+        if tier is not None and tier != kept:
+            raise ReviewError("tier", f"{tier} differs from the official {kept} kept; override")
+        chosen, kind = kept, "confirmed"
+    elif accept:
         chosen, kind = assessment.recommended_tier, "confirmed"
         if tier is not None and tier != chosen:
             raise ReviewError("tier", f"{tier} differs from the recommended {chosen}; override")
@@ -284,8 +317,6 @@ def decide(
         if tier < 0 or (top is not None and tier > top):
             raise ReviewError("tier", f"{tier} is not a tier (0..{top})")
         chosen, kind = tier, "overridden"
-    if chosen < 0:
-        raise ReviewError("tier", "insufficient data cannot be confirmed; override with a tier")
     now = datetime.now(UTC)
     row = DecisionRow(
         region_id=assessment.region_id, assessment_id=assessment.id,
@@ -301,14 +332,45 @@ def decide(
             "decision_id": row.id, "assessment_id": assessment.id, "tier": chosen,
             "recommended_tier": assessment.recommended_tier, "reason": row.reason,
             "effective_date": row.effective_date.isoformat(),
+            **({"kept_official_tier": kept} if kept is not None else {}),
         },
         at=now,
     )
     return _as_decision(row, code, user, ruleset)
 
 
-def publish(*, session: Session, user: str) -> PublishResult:
+def _published_events(
+    before: dict[str, OfficialTier], after: dict[str, OfficialTier], rows: list[DecisionRow],
+    codes: dict[int, str],
+) -> list[Event]:
+    """One ``published`` event per district whose published tier this publication changed."""
+    last = {codes[r.region_id]: r for r in sorted(rows, key=lambda r: (r.decided_at, r.id))}
+    out = []
+    for code in sorted(last):
+        new, old = after[code], before.get(code)
+        if old is not None and old.tier == new.tier:
+            continue
+        row = last[code]
+        was = f" (was {old.tier_name})" if old is not None else " (first publication)"
+        out.append(
+            Event(
+                kind="published", region=code, date=row.effective_date, tier=new.tier,
+                previous=None if old is None else old.tier, signal=None,
+                sentence=(
+                    f"Published: {new.name} is at {new.tier_name} from "
+                    f"{row.effective_date.isoformat()}{was}; {row.kind}: {row.reason}"
+                ),
+            )
+        )
+    return out
+
+
+def publish(
+    *, session: Session, user: str, notify: NotifyConfig | None = None
+) -> PublishResult:
     """Publish every unpublished decision; districts never decided start from their recommendation.
+
+    With ``notify``, the districts whose public tier changed are notified (``published`` events).
 
     Raises
     ------
@@ -337,6 +399,7 @@ def publish(*, session: Session, user: str) -> PublishResult:
         session.flush()
     rows = list(session.scalars(select(DecisionRow).where(DecisionRow.published_at.is_(None))))
     codes = dict(session.execute(select(Region.id, Region.code)).all())
+    before = official_tiers(session=session) if notify is not None else {}
     for row in rows:
         row.published_at = now
     session.flush()
@@ -345,8 +408,15 @@ def publish(*, session: Session, user: str) -> PublishResult:
         session=session, actor=user, action="decision.publish", subject=", ".join(regions),
         details={"decisions": [r.id for r in rows], "initial": sorted(initial)}, at=now,
     )
+    notified: tuple[Delivery, ...] = ()
+    if notify is not None and rows:
+        events = _published_events(before, official_tiers(session=session), rows, codes)
+        notified = deliver_and_record(
+            events, notify, session=session, actor=user, context="publication"
+        )
     return PublishResult(
-        published_at=now, decisions=len(rows), regions=regions, initial=tuple(sorted(initial))
+        published_at=now, decisions=len(rows), regions=regions, initial=tuple(sorted(initial)),
+        notified=notified,
     )
 
 

@@ -5,17 +5,30 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
+import shutil
+import socket
 import socketserver
 import threading
 from collections.abc import Iterator
+from datetime import UTC, date, datetime
 from http.server import BaseHTTPRequestHandler, HTTPServer
 from pathlib import Path
 
 import numpy as np
 import pytest
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
+from demo_seed.seed import seed_demo
 from rules import IndicatorSeries, evaluate, parse_ruleset
+from server.config import Settings
+from server.services.database import Database
 from server.services.errors import InputFileError
+from server.services.evaluation import (
+    active_ruleset,
+    evaluate_districts,
+    latest_assessment_rows,
+)
 from server.services.notify import (
     SIGNATURE_HEADER,
     NotifyConfig,
@@ -24,8 +37,11 @@ from server.services.notify import (
     deliver,
     events_on_day,
     load_notify_config,
+    notify_config_from,
     sign,
 )
+from server.services.review import decide, official_tiers, pending_changes, publish
+from server.store.models import Assessment, AuditEntry
 
 RULES = """\
 name: notify
@@ -187,3 +203,148 @@ def test_load_config_requires_a_webhook_secret(tmp_path: Path) -> None:
     path.write_text("recipients:\n  - {id: a, webhook: 'http://127.0.0.1:9/x'}\n")
     with pytest.raises(InputFileError, match=r"recipients\[0\].secret: a webhook needs a secret"):
         load_notify_config(path)
+
+
+def test_notify_config_from_none_is_none() -> None:
+    assert notify_config_from(None) is None
+
+
+def test_deliver_goes_on_after_a_malformed_webhook(hook: tuple[str, type[_Hook]]) -> None:
+    url, handler = hook
+    config = NotifyConfig(recipients=(
+        Recipient(id="broken", webhook="http://[not a host/x", secret="k"),
+        Recipient(id="desk", webhook=url, secret="k"),
+    ), attempts=1)
+    broken, desk = deliver(_events(), config)
+    assert (broken.ok, desk.ok, len(handler.received)) == (False, True, 1)
+
+
+# --- wiring into the evaluation and publication services (a seeded 150-day demo database) ---
+
+APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
+# the demo's vintage for 16 Oct (received 17 Oct 05:30): D12 moves 0 -> 1, D14's Rt signal starts
+CUTOFF = datetime(2026, 10, 17, 5, 30, tzinfo=UTC)
+
+
+def _seeded_copy(factory: pytest.TempPathFactory, name: str) -> Path:
+    """A copy of a 150-day demo database, seeded once per test session."""
+    source = factory.getbasetemp() / "rules-demo" / "demo.db"
+    if not source.exists():
+        source.parent.mkdir(parents=True, exist_ok=True)
+        db = Database.from_settings(Settings(database_url=f"sqlite:///{source}", demo_mode=True))
+        try:
+            seed_demo(db, days=150, end=date(2026, 11, 30))
+        finally:
+            db.dispose()
+    target = factory.mktemp(name) / "demo.db"
+    shutil.copyfile(source, target)
+    return target
+
+
+@pytest.fixture(scope="module")
+def db(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Database]:
+    path = _seeded_copy(tmp_path_factory, "notify")
+    database = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
+    yield database
+    database.dispose()
+
+
+@pytest.fixture
+def session(db: Database) -> Iterator[Session]:
+    with db.sessions() as s:
+        yield s
+        s.rollback()
+
+
+def _closed_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def _to(url: str) -> NotifyConfig:
+    return NotifyConfig(recipients=(Recipient(id="desk", webhook=url, secret="k"),),
+                        attempts=1, backoff_seconds=0.01)
+
+
+def _newest_assessment(session: Session, region: str) -> int:
+    """Id of the assessment a decision on ``region`` answers (its newest one)."""
+    latest = latest_assessment_rows(session=session)
+    assert latest is not None
+    return next(i.assessment.id for i in latest.items if i.code == region)
+
+
+def _audit(session: Session, action: str) -> list[AuditEntry]:
+    return list(session.scalars(select(AuditEntry).where(AuditEntry.action == action)))
+
+
+@pytest.mark.slow
+def test_evaluation_posts_the_newest_days_events(
+    session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    row = active_ruleset(session=session)
+    assert row is not None
+    run = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    assert run is not None and run.evaluation is not None
+    (body,) = [json.loads(b) for _h, b in handler.received]
+    posted = sorted((e["kind"], e["region"], e["date"]) for e in body["events"])
+    assert posted == [("prepare", "D14", "2026-10-16"), ("tier_change", "D12", "2026-10-16")]
+    assert [a.subject for a in _audit(session, "notify.sent")] == ["desk"]
+
+
+@pytest.mark.slow
+def test_evaluation_reusing_stored_rows_sends_nothing(
+    session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    row = active_ruleset(session=session)
+    assert row is not None
+    evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF)
+    again = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    assert again is not None and again.reused and handler.received == []
+
+
+@pytest.mark.slow
+def test_failed_delivery_is_audited_and_keeps_the_assessments(session: Session) -> None:
+    row = active_ruleset(session=session)
+    assert row is not None
+    dead = _to(f"http://127.0.0.1:{_closed_port()}/hook")
+    run = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=dead)
+    assert run is not None and run.written > 0 and not run.notified[0].ok
+    stored = session.scalar(select(Assessment.id).where(Assessment.data_cutoff == CUTOFF).limit(1))
+    (entry,) = _audit(session, "notify.failed")
+    assert stored is not None and entry.details["context"] == "evaluation"
+    assert entry.details["error"].startswith("ConnectError")
+
+
+@pytest.mark.slow
+def test_publication_posts_each_changed_public_tier(
+    session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    publish(session=session, user=APPROVER, notify=_to(url))
+    first = json.loads(handler.received[0][1])["events"]
+    public = official_tiers(session=session)
+    assert sorted((e["region"], e["tier"], e["previous"]) for e in first) == sorted(
+        (code, t.tier, None) for code, t in public.items()
+    )
+    # an override that changes one district's tier: the next publication sends only that one
+    target = next(iter(public.values()))
+    decide(session=session, assessment_id=_newest_assessment(session, target.region),
+           user=APPROVER, accept=False, tier=(target.tier + 1) % 4, reason="invented test reason")
+    publish(session=session, user=APPROVER, notify=_to(url))
+    (second,) = json.loads(handler.received[1][1])["events"]
+    assert (second["kind"], second["region"], second["tier"], second["previous"]) == (
+        "published", target.region, (target.tier + 1) % 4, target.tier
+    )
+
+
+@pytest.mark.slow
+def test_failed_publication_notice_never_undoes_the_publication(session: Session) -> None:
+    pending = {p.region for p in pending_changes(session=session)}
+    dead = _to(f"http://127.0.0.1:{_closed_port()}/hook")
+    result = publish(session=session, user=APPROVER, notify=dead)
+    assert set(official_tiers(session=session)) == pending == set(result.regions)
+    (entry,) = _audit(session, "notify.failed")
+    assert (entry.actor, entry.details["context"]) == (APPROVER, "publication")

@@ -4,16 +4,17 @@ from __future__ import annotations
 
 import shutil
 from collections.abc import Iterator
-from datetime import date
+from datetime import date, timedelta
 from pathlib import Path
 
 import pytest
-from sqlalchemy import select
+from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
 from demo_seed.seed import seed_demo
 from server.config import Settings
 from server.services.database import Database
+from server.services.evaluation import latest_assessment_rows
 from server.services.review import (
     ReviewError,
     decide,
@@ -22,7 +23,8 @@ from server.services.review import (
     pending_changes,
     publish,
 )
-from server.store.models import AuditEntry
+from server.store.models import Assessment, AuditEntry
+from server.store.models import Decision as DecisionRow
 
 pytestmark = pytest.mark.slow
 APPROVER, ANALYST = "otto.approver", "ada.analyst"  # invented demo accounts (demo_seed.seed)
@@ -138,3 +140,47 @@ def test_decision_history_names_user_and_recommendation(session: Session) -> Non
     assert (record.user, record.recommended_tier, record.tier, record.reason) == (
         APPROVER, first.recommended_tier, 0, "figures corrected"
     )
+
+
+def _make_insufficient(session: Session, region: str) -> int:
+    """Turn ``region``'s newest assessment into an insufficient-data recommendation (-1)."""
+    latest = latest_assessment_rows(session=session)
+    assert latest is not None
+    aid = next(i.assessment.id for i in latest.items if i.code == region)
+    session.execute(update(Assessment).where(Assessment.id == aid).values(recommended_tier=-1))
+    session.expire_all()
+    return aid
+
+
+def test_confirming_insufficient_data_keeps_the_official_tier(session: Session) -> None:
+    publish(session=session, user=APPROVER)
+    region, official = next(iter(official_tiers(session=session).items()))
+    # the published decision answered yesterday's assessment; today's says insufficient data
+    latest = latest_assessment_rows(session=session)
+    assert latest is not None
+    item = next(i for i in latest.items if i.code == region)
+    yesterday = session.scalar(select(Assessment.id).where(
+        Assessment.region_id == item.region_id, Assessment.data_cutoff == latest.data_cutoff,
+        Assessment.ruleset_id == latest.ruleset_row.id,
+        Assessment.ref_date == latest.last_day - timedelta(days=1)))
+    session.execute(update(DecisionRow).where(DecisionRow.region_id == item.region_id)
+                    .values(assessment_id=yesterday))
+    aid = _make_insufficient(session, region)
+    assert region in {p.region for p in pending_changes(session=session)}
+    d = decide(session=session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
+               reason="testing site closed for a week; keep the tier")
+    assert (d.kind, d.tier, d.reason) == (
+        "confirmed", official.tier, "testing site closed for a week; keep the tier"
+    )
+    assert region not in {p.region for p in pending_changes(session=session)}
+    assert official_tiers(session=session, published_only=False)[region].tier == official.tier
+
+
+def test_confirming_insufficient_data_without_an_official_tier_needs_an_override(
+    session: Session,
+) -> None:
+    region = pending_changes(session=session)[0].region
+    aid = _make_insufficient(session, region)
+    with pytest.raises(ReviewError, match="accept: insufficient data and no official tier"):
+        decide(session=session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
+               reason="agreed")
