@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from demo_seed.feeds import configure_demo_feeds
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
@@ -46,6 +47,7 @@ class SeedSummary:
     users: tuple[tuple[str, str, str], ...]
     ruleset: str
     assessments: int
+    push_tokens: dict[str, str]
 
 
 def _no_progress(_n: int = 1) -> None:
@@ -109,11 +111,13 @@ def seed_demo(
             session=session, path=default_ruleset_path(rules_dir), author="demo", activate=True
         )
         run = evaluate_districts(session=session, ruleset_row=ruleset)
+    tokens = configure_demo_feeds(db)
     districts = sum(1 for r in scenario.regions if r.level == "district")
     return SeedSummary(
         start=scenario.start, end=scenario.end, districts=districts, vintages=len(batches),
         observations=len(scenario.observations), users=DEMO_USERS,
         ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
+        push_tokens=tokens,
     )
 
 

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import AsyncIterator
-from contextlib import asynccontextmanager
+from collections.abc import AsyncIterator, Callable, Sequence
+from contextlib import AbstractContextManager, ExitStack, asynccontextmanager
 from pathlib import Path
 
 from fastapi import FastAPI
@@ -12,6 +12,7 @@ from fastapi.staticfiles import StaticFiles
 from server.config import Settings
 from server.services.auth import LoginLimiter, SessionSigner
 from server.services.database import Database
+from server.services.notify import notify_config_from
 from web import assets, health, login, policies, public, review, staff, users
 from web.apidocs import mount_api_docs
 from web.caching import PageCache
@@ -25,14 +26,30 @@ from web.templating import make_templates
 STATIC = Path(__file__).with_name("static")
 
 
-def create_app(settings: Settings, *, database: Database | None = None) -> FastAPI:
-    """Build the app for ``settings``; a ``database`` may be handed in (tests share one)."""
+BackgroundTask = Callable[[Database], AbstractContextManager[object]]
+
+
+def create_app(
+    settings: Settings,
+    *,
+    database: Database | None = None,
+    background: Sequence[BackgroundTask] = (),
+) -> FastAPI:
+    """Build the app for ``settings``; a ``database`` may be handed in (tests share one).
+
+    ``background`` holds context managers that run for the app's lifetime, entered at start-up
+    with the database (the entry point passes the feed scheduler this way; the web layer itself
+    does not know about it).
+    """
     db = database or Database.from_settings(settings)
     owns_db = database is None
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
-        yield
+        with ExitStack() as stack:
+            for task in background:
+                stack.enter_context(task(db))
+            yield
         if owns_db:
             db.dispose()
 
@@ -47,6 +64,7 @@ def create_app(settings: Settings, *, database: Database | None = None) -> FastA
     app.state.settings = settings
     app.state.database = db
     app.state.templates = make_templates(settings)
+    app.state.notify = notify_config_from(settings.notify_file)
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter()
     app.state.page_cache = PageCache()

@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 
 from server.config import Settings
 from server.services.auth import SessionSigner, StaffUser, has_role, load_user
+from server.services.notify import NotifyConfig
 
 SESSION_COOKIE = "tw_session"
 
@@ -42,9 +43,15 @@ def get_templates(request: Request) -> Jinja2Templates:
     return request.app.state.templates  # type: ignore[no-any-return]
 
 
+def get_notify(request: Request) -> NotifyConfig | None:
+    """Recipients of tier-change notices (``TIERWISE_NOTIFY_FILE``), loaded once at start-up."""
+    return request.app.state.notify  # type: ignore[no-any-return]
+
+
 SessionDep = Annotated[Session, Depends(get_session)]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 TemplatesDep = Annotated[Jinja2Templates, Depends(get_templates)]
+NotifyDep = Annotated[NotifyConfig | None, Depends(get_notify)]
 
 
 def signer(request: Request) -> SessionSigner:

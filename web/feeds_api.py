@@ -22,7 +22,7 @@ from server.services.feeds import (
     push_payload,
 )
 from server.services.ingest import IngestReceipt
-from web.deps import SettingsDep
+from web.deps import NotifyDep, SettingsDep
 
 router = APIRouter(tags=["feeds"])
 
@@ -53,7 +53,8 @@ def _bearer(authorization: str | None) -> str | None:
 
 @router.post("/api/feeds/{name}/push")
 async def push(
-    name: str, request: Request, settings: SettingsDep, background: BackgroundTasks,
+    name: str, request: Request, settings: SettingsDep, notify: NotifyDep,
+    background: BackgroundTasks,
     authorization: Annotated[str | None, Header()] = None,
     content_type: Annotated[str, Header()] = "text/csv",
 ) -> JSONResponse:
@@ -74,6 +75,6 @@ async def push(
     except (FeedFileError, NotAPushFeedError) as exc:
         return JSONResponse({"detail": str(exc)}, status_code=422)
     if not receipt.unchanged and receipt.rows_accepted:
-        background.add_task(evaluate_after_ingest, db)
+        background.add_task(evaluate_after_ingest, db, notify)
     status = 200 if receipt.unchanged else 201
     return JSONResponse(receipt_json(receipt), status_code=status)

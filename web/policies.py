@@ -15,7 +15,7 @@ from server.services.policies import (
     store_draft,
     versions,
 )
-from web.deps import AdminDep, AnalystDep, CsrfDep, SessionDep, StaffDep
+from web.deps import AdminDep, AnalystDep, CsrfDep, NotifyDep, SessionDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -62,8 +62,8 @@ async def draft(
 
 @router.post("/policies/{ruleset_id}/activate")
 def activate(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, ruleset_id: int
+    session: SessionDep, user: AdminDep, _csrf: CsrfDep, notify: NotifyDep, ruleset_id: int
 ) -> RedirectResponse:
     """Make a version active and evaluate it (admins only)."""
-    activate_version(session=session, ruleset_id=ruleset_id, actor=user.name)
+    activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify)
     return RedirectResponse("/staff/policies", status_code=303)

@@ -9,7 +9,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.services.queue import review_queue
 from server.services.review import decide, publish
-from web.deps import ApproverDep, CsrfDep, SessionDep, StaffDep
+from web.deps import ApproverDep, CsrfDep, NotifyDep, SessionDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -35,7 +35,9 @@ def decide_one(
 
 
 @router.post("/publish")
-def publish_all(session: SessionDep, user: ApproverDep, _csrf: CsrfDep) -> RedirectResponse:
+def publish_all(
+    session: SessionDep, user: ApproverDep, _csrf: CsrfDep, notify: NotifyDep
+) -> RedirectResponse:
     """Publish every unpublished decision to the public view."""
-    publish(session=session, user=user.name)
+    publish(session=session, user=user.name, notify=notify)
     return RedirectResponse("/staff/review?published=1", status_code=303)

@@ -16,7 +16,7 @@ from server.services.feeds import (
     load_catalogue,
     upload_payload,
 )
-from web.deps import AnalystDep, CsrfDep, SessionDep, SettingsDep, StaffDep
+from web.deps import AnalystDep, CsrfDep, NotifyDep, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -40,7 +40,7 @@ def feeds(
 @router.post("/feeds/upload", response_class=HTMLResponse)
 async def upload(
     request: Request, settings: SettingsDep, user: AnalystDep, _csrf: CsrfDep,
-    background: BackgroundTasks, feed: Annotated[str, Form()],
+    notify: NotifyDep, background: BackgroundTasks, feed: Annotated[str, Form()],
     file: Annotated[UploadFile, File()], dry_run: Annotated[bool, Form()] = False,
 ) -> HTMLResponse:
     """Take in an uploaded file for a feed and show its receipt."""
@@ -55,7 +55,7 @@ async def upload(
     except (FeedFileError, UnknownFeedError) as exc:
         error = str(exc)
     if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run:
-        background.add_task(evaluate_after_ingest, request.app.state.database)
+        background.add_task(evaluate_after_ingest, request.app.state.database, notify)
     return render(
         request, "staff/feeds_receipt.html",
         {"receipt": receipt, "error": error, "feed": feed},

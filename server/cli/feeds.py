@@ -28,6 +28,7 @@ from server.services.feeds import (
     run_feed,
 )
 from server.services.ingest import IngestReceipt, ingest_and_evaluate
+from server.services.notify import notify_config_from
 
 feeds_app = typer.Typer(help="Configured data feeds: health, push tokens, runs.",
                         no_args_is_help=True)
@@ -107,6 +108,7 @@ def ingest_command(
             outcome = ingest_and_evaluate(
                 db, feed=definition, payload=payload, time_zone=settings.time_zone,
                 dry_run=dry_run, progress=advance,
+                notify=notify_config_from(settings.notify_file),
             )
     finally:
         db.dispose()
@@ -177,7 +179,10 @@ def run_command(
     definition = feed_named(_catalogue(settings, feeds_file_option), feed)
     db = _database(settings)
     try:
-        run = run_feed(db, feed=definition, time_zone=settings.time_zone, environ=os.environ)
+        run = run_feed(
+            db, feed=definition, time_zone=settings.time_zone, environ=os.environ,
+            notify=notify_config_from(settings.notify_file),
+        )
     finally:
         db.dispose()
     if run.not_modified:

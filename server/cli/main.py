@@ -68,6 +68,14 @@ def demo(
         str | None, typer.Option(help="Last day of data, YYYY-MM-DD (default: yesterday).")
     ] = None,
     serve: Annotated[bool, typer.Option("--serve/--no-serve", help="Serve after seeding.")] = True,
+    scheduler: Annotated[
+        bool,
+        typer.Option(
+            "--scheduler/--no-scheduler",
+            help="Run the demo feeds' schedules while serving (off by default: the demo's "
+            "HTTP feed points at a water-authority server that does not exist here).",
+        ),
+    ] = False,
 ) -> None:
     """Create (or refresh) a demo database with an invented county and serve it.
 
@@ -78,7 +86,7 @@ def demo(
     from demo_seed.seed import seed_demo
 
     end = date.fromisoformat(end_date) if end_date else None
-    settings = _settings(demo_mode=True)
+    settings = _settings(demo_mode=True, scheduler=scheduler)
     db = _database(settings, check=False)
     try:
         summary = seed_demo(
@@ -94,6 +102,8 @@ def demo(
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     for name, role, password in summary.users:
         say(f"  demo user {name!r} ({role}), password {password!r}")
+    for feed, token in summary.push_tokens.items():
+        say(f"  push token of feed {feed!r}: {token}")
     say(f"Public view: http://127.0.0.1:{port}/")
     say(f"Staff pages: http://127.0.0.1:{port}/staff/")
     say(f"API docs:    http://127.0.0.1:{port}/docs")
@@ -115,22 +125,25 @@ def serve_command(
 
 
 def _run_server(settings: Settings, *, host: str, port: int, workers: int) -> None:
+    """Serve the app; the feed scheduler runs inside unless ``TIERWISE_SCHEDULER=false``."""
     import os
 
     import uvicorn
 
     if workers > 1:
-        # Worker processes build their own app from the environment.
+        # Worker processes build their own app (and scheduler candidate) from the environment.
         os.environ.setdefault("TIERWISE_DATABASE_URL", settings.database_url)
+        os.environ["TIERWISE_SCHEDULER"] = "true" if settings.scheduler else "false"
         if settings.demo_mode:
             os.environ["TIERWISE_DEMO_MODE"] = "true"
         uvicorn.run(
-            "web.app:app_from_environment", factory=True, host=host, port=port, workers=workers
+            "server.cli.asgi:app_from_environment", factory=True, host=host, port=port,
+            workers=workers,
         )
         return
-    from web.app import create_app
+    from server.cli.asgi import build_app
 
-    uvicorn.run(create_app(settings), host=host, port=port)
+    uvicorn.run(build_app(settings), host=host, port=port)
 
 
 @db_app.command("upgrade")

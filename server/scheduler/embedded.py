@@ -15,6 +15,7 @@ from server.config import Settings
 from server.scheduler.feed_scheduler import FeedScheduler
 from server.services.database import Database
 from server.services.feeds import load_catalogue
+from server.services.notify import notify_config_from
 
 
 @contextmanager
@@ -24,7 +25,8 @@ def embedded_scheduler(settings: Settings, db: Database) -> Iterator[FeedSchedul
         yield None
         return
     scheduler = FeedScheduler(db, catalogue=catalogue, time_zone=settings.time_zone,
-                              environ=dict(os.environ))
+                              environ=dict(os.environ),
+                              notify=notify_config_from(settings.notify_file))
     scheduler.start()
     try:
         yield scheduler

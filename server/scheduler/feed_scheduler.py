@@ -63,7 +63,7 @@ class FeedScheduler:
         self, db: Database, *, catalogue: object, time_zone: str = "UTC",
         environ: Mapping[str, str] | None = None, retry: object | None = None,
         lease_seconds: float = 30.0, tick_seconds: float | None = None,
-        holder: str | None = None,
+        holder: str | None = None, notify: object | None = None,
     ) -> None:
         self.db = db
         self.catalogue = catalogue
@@ -76,7 +76,7 @@ class FeedScheduler:
         self.lease = LeaderLease(db, name=LEASE_NAME, holder=self.holder,
                                  ttl_seconds=lease_seconds)
         self.runtime = Runtime(db=db, catalogue=catalogue, time_zone=time_zone,
-                               environ=dict(environ or {}), retry=retry)
+                               environ=dict(environ or {}), retry=retry, notify=notify)
         self._aps: BackgroundScheduler | None = None
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None

@@ -30,6 +30,7 @@ class Runtime:
     time_zone: str = "UTC"
     environ: Mapping[str, str] = field(default_factory=dict)
     retry: object | None = None  # RetryPolicy
+    notify: object | None = None  # NotifyConfig: recipients of tier-change notices
 
 
 _RUNTIMES: dict[str, Runtime] = {}
@@ -57,6 +58,7 @@ def run_scheduled_feed(key: str, feed_name: str) -> FeedRun | None:
     run = run_feed(
         runtime.db, feed=feed, time_zone=runtime.time_zone, environ=runtime.environ,
         policy=runtime.retry,  # type: ignore[arg-type]
+        notify=runtime.notify,  # type: ignore[arg-type]
     )
     log.info("feed %s: %d vintage(s) landed, not modified: %s, errors: %s",
              feed_name, run.landed, run.not_modified, list(run.errors))

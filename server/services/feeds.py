@@ -40,6 +40,7 @@ from server.services.database import Database
 from server.services.errors import ServiceError
 from server.services.evaluation import evaluate_active
 from server.services.ingest import IngestReceipt, ingest_and_evaluate, office_today
+from server.services.notify import NotifyConfig
 from server.store.models import (
     FeedState,
     FeedToken,
@@ -162,7 +163,7 @@ def run_feed(
     db: Database, *, feed: FeedDefinition, time_zone: str = "UTC",
     environ: Mapping[str, str] | None = None, now: datetime | None = None,
     policy: RetryPolicy | None = None, client: httpx.Client | None = None,
-    evaluate: bool = True,
+    evaluate: bool = True, notify: NotifyConfig | None = None,
 ) -> FeedRun:
     """Run a pulled feed once: each waiting file, or one conditional GET. Errors are recorded in
     the feed state; transient fetch errors are re-raised after being recorded (the scheduler
@@ -180,7 +181,7 @@ def run_feed(
     evaluated = False
     if evaluate and any(not r.unchanged and r.rows_accepted for r in receipts):
         with db.transaction() as session:
-            evaluated = evaluate_active(session=session) is not None
+            evaluated = evaluate_active(session=session, notify=notify) is not None
     return FeedRun(feed=feed.name, receipts=tuple(receipts), not_modified=not_modified,
                    errors=tuple(errors), evaluated=evaluated)
 
@@ -533,10 +534,10 @@ def upload_payload(
     ).receipt
 
 
-def evaluate_after_ingest(db: Database) -> None:
+def evaluate_after_ingest(db: Database, notify: NotifyConfig | None = None) -> None:
     """The evaluation hook, in its own transaction (run after a push or upload committed)."""
     with db.transaction() as session:
-        evaluate_active(session=session)
+        evaluate_active(session=session, notify=notify)
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -28,6 +28,7 @@ from server.feeds.validation import Accepted, Catalogue, check_file, validate_ch
 from server.services.audit import record
 from server.services.database import Database
 from server.services.evaluation import EvaluationRun, evaluate_active
+from server.services.notify import NotifyConfig
 from server.store.models import Measure, Region, Vintage
 from server.store.vintages import (
     Rejection,
@@ -239,6 +240,7 @@ def ingest_and_evaluate(
     received_at: datetime | None = None, dry_run: bool = False, progress: Progress | None = None,
     evaluate: bool = True,
     after_landing: Callable[[Session, IngestReceipt], None] | None = None,
+    notify: NotifyConfig | None = None,
 ) -> IngestOutcome:
     """Ingest ``payload`` in its own transaction; after commit, run the evaluation hook.
 
@@ -256,5 +258,5 @@ def ingest_and_evaluate(
     run = None
     if evaluate and not dry_run and not receipt.unchanged and receipt.rows_accepted:
         with db.transaction() as session:
-            run = evaluate_active(session=session)
+            run = evaluate_active(session=session, notify=notify)
     return IngestOutcome(receipt=receipt, evaluation=run)

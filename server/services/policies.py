@@ -19,6 +19,7 @@ from rules import Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import evaluate_active
+from server.services.notify import NotifyConfig
 from server.store.models import Ruleset as RulesetRow
 
 __all__ = [
@@ -233,7 +234,9 @@ def store_draft(*, session: Session, text: str, author: str, filename: str = "dr
     return row.id
 
 
-def activate_version(*, session: Session, ruleset_id: int, actor: str) -> None:
+def activate_version(
+    *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None
+) -> None:
     """Make a version active (the active one is retired) and evaluate it on the newest data."""
     row = session.get(RulesetRow, ruleset_id)
     if row is None:
@@ -244,4 +247,4 @@ def activate_version(*, session: Session, ruleset_id: int, actor: str) -> None:
     record(session=session, actor=actor, action="ruleset.activate",
            subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
     session.flush()
-    evaluate_active(session=session)
+    evaluate_active(session=session, notify=notify)

@@ -9,10 +9,11 @@ import numpy as np
 import pytest
 from sqlalchemy import func, select
 
-from demo_seed.seed import DEMO_USERS, received_at, seed_demo
+from demo_seed.seed import DEMO_USERS, SeedSummary, received_at, seed_demo
 from server.config import Settings
 from server.services.database import Database
 from server.services.errors import NotADemoDatabaseError
+from server.services.feeds import token_matches
 from server.services.regions import RegionRecord, store_regions
 from server.store import read_dense, revision_history
 from server.store.models import Assessment, Observation, Region, User, Vintage
@@ -22,12 +23,29 @@ DAYS = 150
 
 
 @pytest.fixture(scope="module")
-def seeded(tmp_path_factory: pytest.TempPathFactory) -> Database:
+def seeded_with_summary(
+    tmp_path_factory: pytest.TempPathFactory,
+) -> tuple[Database, SeedSummary]:
     path: Path = tmp_path_factory.mktemp("seed") / "demo.db"
     db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    seed_demo(db, seed=3, days=DAYS, end=END)
-    yield db
+    summary = seed_demo(db, seed=3, days=DAYS, end=END)
+    yield db, summary
     db.dispose()
+
+
+@pytest.fixture(scope="module")
+def seeded(seeded_with_summary: tuple[Database, SeedSummary]) -> Database:
+    return seeded_with_summary[0]
+
+
+def test_seed_demo_issues_push_tokens_that_verify(
+    seeded_with_summary: tuple[Database, SeedSummary],
+) -> None:
+    db, summary = seeded_with_summary
+    assert set(summary.push_tokens) == {"long-csv", "gp-weekly"}
+    with db.sessions() as s:
+        assert token_matches(session=s, feed="long-csv", token=summary.push_tokens["long-csv"])
+        assert not token_matches(session=s, feed="long-csv", token="wrong-token")
 
 
 def test_seed_demo_writes_one_vintage_per_day(seeded: Database) -> None:
