@@ -13,13 +13,13 @@ from typing import Annotated
 import typer
 from rich.table import Table
 
+from demo_seed.feeds import DEMO_FEEDS_FILE
 from server.cli.output import console, fail, friendly_errors, progress_bar, say
 from server.config import Settings
 from server.feeds.definition import FeedCatalogue
 from server.feeds.sources import Payload
 from server.services.database import Database
 from server.services.feeds import (
-    DEMO_FEEDS_FILE,
     feed_named,
     feed_statuses,
     feeds_file,

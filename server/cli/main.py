@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from datetime import date
 from pathlib import Path
 from typing import Annotated
@@ -12,7 +13,7 @@ from server.cli.estimate import estimate_command
 from server.cli.feeds import feeds_app, ingest_command, scheduler_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
 from server.cli.rules import backtest_command, evaluate_command, rules_app
-from server.config import Settings
+from server.config import Settings, masked_url
 from server.services.database import Database
 
 app = typer.Typer(
@@ -43,6 +44,11 @@ app.command("scheduler")(scheduler_command)
 
 def _settings(**overrides: object) -> Settings:
     return Settings(**overrides)  # type: ignore[arg-type]
+
+
+def _shown(url: str) -> str:
+    """A database URL fit to print: the password masked."""
+    return masked_url(url)
 
 
 def _admin_settings() -> Settings:
@@ -86,7 +92,10 @@ def demo(
     from demo_seed.seed import seed_demo
 
     end = date.fromisoformat(end_date) if end_date else None
-    settings = _settings(demo_mode=True, scheduler=scheduler)
+    from demo_seed.feeds import DEMO_FEEDS_FILE
+
+    feeds = {} if os.environ.get("TIERWISE_FEEDS_FILE") else {"feeds_file": DEMO_FEEDS_FILE}
+    settings = _settings(demo_mode=True, scheduler=scheduler, **feeds)
     db = _database(settings, check=False)
     try:
         summary = seed_demo(
@@ -97,7 +106,7 @@ def demo(
     say(
         f"Seeded {summary.districts} districts, {summary.vintages} daily vintages, "
         f"{summary.observations:,} observations from {summary.start} to {summary.end} "
-        f"into {settings.database_url}"
+        f"into {_shown(settings.database_url)}"
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     for name, role, password in summary.users:
@@ -126,14 +135,14 @@ def serve_command(
 
 def _run_server(settings: Settings, *, host: str, port: int, workers: int) -> None:
     """Serve the app; the feed scheduler runs inside unless ``TIERWISE_SCHEDULER=false``."""
-    import os
-
     import uvicorn
 
     if workers > 1:
         # Worker processes build their own app (and scheduler candidate) from the environment.
         os.environ.setdefault("TIERWISE_DATABASE_URL", settings.database_url)
         os.environ["TIERWISE_SCHEDULER"] = "true" if settings.scheduler else "false"
+        if settings.feeds_file is not None:
+            os.environ["TIERWISE_FEEDS_FILE"] = str(settings.feeds_file)
         if settings.demo_mode:
             os.environ["TIERWISE_DEMO_MODE"] = "true"
         uvicorn.run(
@@ -156,7 +165,7 @@ def db_upgrade() -> None:
         revision = db.upgrade()
     finally:
         db.dispose()
-    say(f"database {settings.database_url} is at revision {revision}")
+    say(f"database {_shown(settings.database_url)} is at revision {revision}")
 
 
 @regions_app.command("import")

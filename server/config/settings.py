@@ -6,20 +6,33 @@ module builds settings at import time.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError
 
 DEFAULT_SECRET_KEY = "change-me-tierwise-demo-only"
 DEFAULT_DATABASE_URL = "sqlite:///var/tierwise.db"
 
 
+def masked_url(url: str) -> str:
+    """``url`` with any password replaced by ``***`` (safe to print or log)."""
+    try:
+        return make_url(url).render_as_string(hide_password=True)
+    except ArgumentError:
+        return re.sub(r"(//[^/:@]*:)[^@/]*@", r"\1***@", url)
+
+
 class Settings(BaseSettings):
     """Application settings; every field can be set as ``TIERWISE_<FIELD>``."""
 
-    model_config = SettingsConfigDict(env_prefix="TIERWISE_", extra="ignore", frozen=True)
+    model_config = SettingsConfigDict(
+        env_prefix="TIERWISE_", extra="ignore", frozen=True, hide_input_in_errors=True
+    )
 
     database_url: str = Field(
         default=DEFAULT_DATABASE_URL,
@@ -67,7 +80,8 @@ class Settings(BaseSettings):
     def _supported_database(cls, value: str) -> str:
         if not value.startswith(("sqlite", "postgresql")):
             raise ValueError(
-                f"database_url must be sqlite:// or postgresql+psycopg://, got {value!r}"
+                "database_url must be sqlite:// or postgresql+psycopg://, "
+                f"got {masked_url(value)!r}"
             )
         return value
 

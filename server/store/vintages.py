@@ -19,7 +19,7 @@ from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
 from server.store.errors import DuplicateKeyError, UnknownCodeError
-from server.store.models import Measure, Observation, Region, RejectedRow, Vintage
+from server.store.models import Measure, Region, RejectedRow, Vintage
 
 OBSERVATION_COLUMNS = ("region", "measure", "ref_date", "value")
 
@@ -113,56 +113,17 @@ def append_vintage(
         session.add(vintage)
         session.flush()
         _bulk_insert_observations(session, vintage.id, frame)
-        if rejected:
-            session.execute(
-                insert(RejectedRow),
-                [
-                    {
-                        "vintage_id": vintage.id,
-                        "line": r.line,
-                        "raw": r.raw,
-                        "reason": r.reason,
-                        "message": r.message,
-                    }
-                    for r in rejected
-                ],
-            )
+        insert_rejections(session=session, vintage_id=vintage.id, rejections=rejected)
     return vintage
 
 
 def _bulk_insert_observations(session: Session, vintage_id: int, frame: pd.DataFrame) -> None:
-    if frame.empty:
-        return
-    connection = session.connection()
-    if connection.dialect.name == "postgresql":
-        buffer = io.StringIO()
-        out = frame.assign(vintage_id=vintage_id)[
-            ["vintage_id", "region_id", "measure_id", "ref_date", "value"]
-        ]
-        out.to_csv(buffer, index=False, header=False, float_format="%.17g")
-        raw = connection.connection.driver_connection
-        with raw.cursor() as cursor:  # type: ignore[union-attr]
-            with cursor.copy(
-                "COPY observation (vintage_id, region_id, measure_id, ref_date, value) "
-                "FROM STDIN WITH (FORMAT csv)"
-            ) as copy:
-                copy.write(buffer.getvalue())
-        return
-    session.execute(
-        insert(Observation),
-        [
-            {
-                "vintage_id": vintage_id,
-                "region_id": int(r),
-                "measure_id": int(m),
-                "ref_date": d,
-                "value": float(v),
-            }
-            for r, m, d, v in zip(
-                frame["region_id"], frame["measure_id"], frame["ref_date"], frame["value"],
-                strict=True,
-            )
-        ],
+    days = pd.to_datetime(frame["ref_date"]).to_numpy().astype("datetime64[D]").astype(np.int64)
+    insert_observation_arrays(
+        session=session, vintage_id=vintage_id,
+        region_id=frame["region_id"].to_numpy(np.int64),
+        measure_id=frame["measure_id"].to_numpy(np.int64),
+        day=days, value=frame["value"].to_numpy(np.float64),
     )
 
 
