@@ -42,7 +42,7 @@ from fastapi.testclient import TestClient  # noqa: E402
 
 from server.config import Settings  # noqa: E402
 from server.services.database import Database  # noqa: E402
-from server.services.evaluation import default_ruleset_path, evaluate_districts, store_ruleset  # noqa: E402
+from server.services.evaluation import default_ruleset_path, store_ruleset  # noqa: E402
 from server.services.observations import MeasureRecord, VintageWriter, define_measures  # noqa: E402
 from server.services.regions import RegionRecord, store_regions  # noqa: E402
 from server.services.review import publish  # noqa: E402
@@ -86,9 +86,7 @@ def build(url: str, n: int, days: int) -> None:
             writer.append(pd.concat(frames),
                           received_at=datetime.combine(day + timedelta(days=1), dtime(5), UTC))
     with db.transaction() as s:
-        row = store_ruleset(session=s, path=default_ruleset_path(None), author="bench",
-                            activate=True)
-        evaluate_districts(session=s, ruleset_row=row)
+        store_ruleset(session=s, path=default_ruleset_path(None), author="bench", activate=True)
     with db.transaction() as s:
         publish(session=s, user="bench.approver")
     db.dispose()

@@ -19,7 +19,7 @@ from demo_seed.feeds import configure_demo_feeds
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
-from server.services.evaluation import default_ruleset_path, evaluate_districts, store_ruleset
+from server.services.evaluation import activate_ruleset, default_ruleset_path, store_ruleset
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.users import add_user
@@ -108,9 +108,9 @@ def seed_demo(
         )
     with db.transaction() as session:
         ruleset = store_ruleset(
-            session=session, path=default_ruleset_path(rules_dir), author="demo", activate=True
+            session=session, path=default_ruleset_path(rules_dir), author="demo"
         )
-        run = evaluate_districts(session=session, ruleset_row=ruleset)
+        run = activate_ruleset(session=session, row=ruleset, actor="demo")
     tokens = configure_demo_feeds(db)
     districts = sum(1 for r in scenario.regions if r.level == "district")
     return SeedSummary(

@@ -115,7 +115,8 @@ def backtest_command(
 
     rulesets = [_load(rules)] + ([_load(compare)] if compare is not None else [])
     start, end = _day(from_, "--from"), _day(to, "--to")
-    db = Database.from_settings(Settings(demo_mode=True))
+    settings = Settings(demo_mode=True)
+    db = Database.from_settings(settings)
     results = []
     try:
         db.check()
@@ -128,7 +129,7 @@ def backtest_command(
                     results.append(
                         run_backtest(
                             session=session, ruleset=rs, start=start, end=end,
-                            as_known=as_known, progress=advance,
+                            as_known=as_known, progress=advance, time_zone=settings.zone,
                         )
                     )
     finally:

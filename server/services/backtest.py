@@ -6,8 +6,10 @@ Two replays:
   applied) and the ruleset runs over the whole history;
 * **as known** (the honest replay): each day ``t`` is judged on the data as known on the morning
   after it, i.e. everything received up to the end of day ``t + 1`` (:func:`as_known_cutoff`),
-  read from the vintages. The hysteresis state carries from day to day, so day ``t`` sees exactly
-  what a daily evaluation on that morning would have seen.
+  read from the vintages. Days are the office's local days (``time_zone``, the setting
+  ``TIERWISE_TIME_ZONE``), as ingestion judges "today": a vintage received at 23:30 local time
+  counts on that local day, whatever the UTC date. The hysteresis state carries from day to
+  day, so day ``t`` sees exactly what a daily evaluation on that morning would have seen.
 
 The as-known replay is vectorised: the observations are read once; one pass over the days applies
 each day's new vintages to dense arrays and cuts a trailing window of ``WINDOW_DAYS`` days as
@@ -22,7 +24,7 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, replace
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta, tzinfo
 from pathlib import Path
 
 import numpy as np
@@ -88,11 +90,13 @@ class BacktestResult:
         return slice(int(first), int(first) + (self.end - self.start).days + 1)
 
 
-def as_known_cutoff(day: date) -> datetime:
-    """The data cutoff of the as-known replay for ``day``: the end of the following day (UTC)."""
-    return datetime.combine(day + timedelta(days=2), datetime.min.time(), tzinfo=UTC) - timedelta(
-        microseconds=1
-    )
+def as_known_cutoff(day: date, time_zone: tzinfo = UTC) -> datetime:
+    """The data cutoff of the as-known replay for ``day``: the end of the following local day.
+
+    The last microsecond before local midnight starting day ``day + 2`` in ``time_zone``.
+    """
+    midnight = datetime.combine(day + timedelta(days=2), datetime.min.time(), tzinfo=time_zone)
+    return midnight - timedelta(microseconds=1)
 
 
 def data_span(*, session: Session) -> tuple[date, date]:
@@ -107,9 +111,11 @@ def data_span(*, session: Session) -> tuple[date, date]:
 def run_backtest(
     *, session: Session, ruleset: Ruleset, start: date | None = None, end: date | None = None,
     as_known: bool = False, progress: Callable[[int], None] | None = None,
-    lookback: int = 42,
+    lookback: int = 42, time_zone: tzinfo = UTC,
 ) -> BacktestResult:
     """Replay ``ruleset`` over the stored history and summarise ``start..end``.
+
+    ``time_zone`` (the office's, ``settings.zone``) sets the local days of the as-known replay.
 
     The engine always starts at the first stored day (so windows and hysteresis are warmed up);
     the summary covers ``start..end`` (default: everything). ``progress(n)`` is called as blocks
@@ -124,7 +130,7 @@ def run_backtest(
         raise BacktestError("--from/--to", f"stored data cover {first}..{last} only")
     tick = progress or (lambda _n: None)
     if as_known:
-        data, indicators = _as_known_indicators(session, ruleset, first, end, tick)
+        data, indicators = _as_known_indicators(session, ruleset, first, end, tick, time_zone)
     else:
         data = load_district_data(session=session, start=first, end=end)
         indicators = district_indicators(data, ruleset)
@@ -159,7 +165,8 @@ class _Rows:
 
 
 def _read_rows(
-    session: Session, measures: list[str], codes: dict[str, list[str]], first: date
+    session: Session, measures: list[str], codes: dict[str, list[str]], first: date,
+    time_zone: tzinfo,
 ) -> _Rows:
     row_of = {}
     for group, group_codes in codes.items():
@@ -184,9 +191,9 @@ def _read_rows(
         r_idx.append(row_of[key])
         c_idx.append((ref - first).days)
         vals.append(value)
-        received_utc = received.astimezone(UTC) if received.tzinfo else received
-        # counted on day t when received by the end of day t + 1
-        known.append((received_utc.date() - first).days - 1)
+        aware = received if received.tzinfo else received.replace(tzinfo=UTC)
+        # counted on day t when received by the end of local day t + 1
+        known.append((aware.astimezone(time_zone).date() - first).days - 1)
     return _Rows(
         measure=np.asarray(m_idx, dtype=np.int64), row=np.asarray(r_idx, dtype=np.int64),
         col=np.asarray(c_idx, dtype=np.int64), value=np.asarray(vals, dtype=np.float64),
@@ -216,7 +223,8 @@ def _stack(base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int) ->
 
 
 def _as_known_indicators(
-    session: Session, ruleset: Ruleset, first: date, end: date, tick: Callable[[int], None]
+    session: Session, ruleset: Ruleset, first: date, end: date, tick: Callable[[int], None],
+    time_zone: tzinfo,
 ) -> tuple[DistrictData, dict[str, IndicatorSeries]]:
     base = load_district_data(session=session, start=first, end=first)
     n_days = (end - first).days + 1
@@ -227,7 +235,7 @@ def _as_known_indicators(
     areas = sorted(set(area_parent.values()))
     codes = {"district": list(base.regions), "area": areas, "plant": plants}
     measures = [*DISTRICT_MEASURES, *AREA_MEASURES, *PLANT_MEASURES]
-    rows = _read_rows(session, measures, codes, first)
+    rows = _read_rows(session, measures, codes, first, time_zone)
     size = {"district": len(base.regions), "area": len(areas), "plant": len(plants)}
     group_of = {m: g for g, ms in _GROUPS.items() for m in ms}
     current = [np.full((size[group_of[m]], n_days), np.nan) for m in measures]

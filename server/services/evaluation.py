@@ -9,6 +9,10 @@ When the caller passes a loaded notification config (``notify=``, from ``setting
 a run that stores new assessments delivers the newest day's events: recommended tier changes in
 force that day and prepare signals that started showing that day. Failures are logged and audited
 and never break the evaluation (:func:`server.services.notify.deliver_and_record`).
+
+Activating a ruleset (:func:`activate_ruleset`, the one way every caller activates) retires every
+other active version, writes the audit log and evaluates the new one, so exactly one ruleset is
+active at any time.
 """
 
 from __future__ import annotations
@@ -48,7 +52,10 @@ class EvaluationRun:
 def store_ruleset(
     *, session: Session, path: Path, author: str = "", activate: bool = False
 ) -> RulesetRow:
-    """Store the ruleset file as a version (once per distinct text); optionally make it active."""
+    """Store the ruleset file as a version (once per distinct text); optionally make it active.
+
+    Activation is :func:`activate_ruleset` (every other version retired, audited, evaluated).
+    """
     text = path.read_text(encoding="utf-8")
     parsed = parse_ruleset(text, source=str(path))
     row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == parsed.sha256))
@@ -61,17 +68,32 @@ def store_ruleset(
         session.flush()
         record(session=session, actor=author or "system", action="ruleset.store",
                subject=f"{parsed.name} {parsed.version}", details={"sha256": parsed.sha256})
-    if activate and row.status != "active":
-        session.execute(
-            update(RulesetRow)
-            .where(RulesetRow.name == row.name, RulesetRow.status == "active")
-            .values(status="retired")
-        )
-        row.status = "active"
-        record(session=session, actor=author or "system", action="ruleset.activate",
-               subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
     session.flush()
+    if activate and row.status != "active":
+        activate_ruleset(session=session, row=row, actor=author or "system")
     return row
+
+
+def activate_ruleset(
+    *, session: Session, row: RulesetRow, actor: str, notify: NotifyConfig | None = None
+) -> EvaluationRun | None:
+    """Make ``row`` the one active ruleset, audit it, and evaluate it on the newest data.
+
+    Every other active version is retired, whatever its name, so at most one ruleset is ever
+    active. Used by every way of activating (:func:`store_ruleset`, the policies page). Returns
+    the evaluation (None when there are no data yet); ``notify`` as in
+    :func:`evaluate_districts`.
+    """
+    session.execute(
+        update(RulesetRow)
+        .where(RulesetRow.status == "active", RulesetRow.id != row.id)
+        .values(status="retired")
+    )
+    row.status = "active"
+    record(session=session, actor=actor, action="ruleset.activate",
+           subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
+    session.flush()
+    return evaluate_districts(session=session, ruleset_row=row, notify=notify)
 
 
 def active_ruleset(*, session: Session) -> RulesetRow | None:
@@ -203,22 +225,46 @@ class LatestAssessment:
     sentence: str
 
 
-def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
-    """The newest stored assessment of each district under the active ruleset."""
+def _newest_run(session: Session) -> tuple[RulesetRow, datetime, date] | None:
+    """The active ruleset, its newest stored data cutoff and that run's last day (None: none)."""
     row = active_ruleset(session=session)
     if row is None:
-        return {}
+        return None
     cutoff = session.scalar(
         select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
         .where(Assessment.ruleset_id == row.id)
     )
     if cutoff is None:
-        return {}
+        return None
     last_day = session.scalar(
         select(func.max(Assessment.ref_date)).where(
             Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff
         )
     )
+    return None if last_day is None else (row, cutoff, last_day)
+
+
+def current_assessment_id(*, session: Session, region_id: int) -> int | None:
+    """Id of a district's current item in the review: its assessment of the last day of the
+    newest stored run (active ruleset, newest data cutoff); None when there is none."""
+    newest = _newest_run(session)
+    if newest is None:
+        return None
+    row, cutoff, last_day = newest
+    return session.scalar(
+        select(Assessment.id).where(
+            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
+            Assessment.ref_date == last_day, Assessment.region_id == region_id,
+        )
+    )
+
+
+def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
+    """The newest stored assessment of each district under the active ruleset."""
+    newest = _newest_run(session)
+    if newest is None:
+        return {}
+    row, cutoff, last_day = newest
     ruleset: Ruleset = parse_ruleset(row.yaml_text, source=row.name)
     query = (
         select(Region.code, Assessment)
@@ -266,19 +312,11 @@ def latest_assessment_rows(*, session: Session) -> LatestRun | None:
 
     ``since`` is the first day of the trailing run of days with the same recommended tier.
     """
-    row = active_ruleset(session=session)
-    if row is None:
+    newest = _newest_run(session)
+    if newest is None:
         return None
-    cutoff = session.scalar(
-        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
-        .where(Assessment.ruleset_id == row.id)
-    )
-    if cutoff is None:
-        return None
+    row, cutoff, last_day = newest
     where = (Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff)
-    last_day = session.scalar(select(func.max(Assessment.ref_date)).where(*where))
-    if last_day is None:
-        return None
     history = session.execute(
         select(Assessment.region_id, Assessment.ref_date, Assessment.recommended_tier)
         .where(*where)
@@ -330,7 +368,9 @@ __all__ = [
     "LatestAssessment",
     "LatestItem",
     "LatestRun",
+    "activate_ruleset",
     "active_ruleset",
+    "current_assessment_id",
     "default_ruleset_path",
     "evaluate_active",
     "evaluate_districts",

@@ -20,6 +20,12 @@ passes a loaded :class:`NotifyConfig` (see :func:`notify_config_from`); a delive
 logged and written to the audit log (``notify.failed``), and never breaks the evaluation or the
 publication that caused it (:func:`deliver_and_record`).
 
+A notice is sent once: every ``notify.sent`` audit entry lists the keys of the events it carried
+(:attr:`Event.key`: kind, region, date and tier or signal), and :func:`deliver_and_record` skips,
+per recipient, a ``tier_change`` or ``prepare`` event already sent to it (a second ingestion on the
+same morning re-evaluates the same newest day and finds the same events). ``published`` events
+are never skipped: each comes from a publication that changed a public tier.
+
 A webhook receives ``POST`` of a JSON body ``{"events": [...]}`` with the header
 ``X-Tierwise-Signature: sha256=<hex HMAC-SHA256 of the body with the recipient's secret>``; a
 failed POST (connection error or a 5xx answer) is retried with exponential backoff
@@ -38,8 +44,8 @@ import hmac
 import json
 import logging
 import smtplib
-from collections.abc import Sequence
-from dataclasses import dataclass, field
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
 from datetime import date
 from email.message import EmailMessage
 from pathlib import Path
@@ -48,15 +54,18 @@ from typing import Any
 import httpx
 import numpy as np
 import yaml
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential
 
 from rules import Evaluation
 from server.services.audit import record
 from server.services.errors import InputFileError
+from server.store.models import AuditEntry
 
 __all__ = [
     "EVENT_KINDS",
+    "ONCE_KINDS",
     "SIGNATURE_HEADER",
     "Delivery",
     "Event",
@@ -66,6 +75,7 @@ __all__ = [
     "deliver",
     "deliver_and_record",
     "events_on_day",
+    "sent_keys",
     "load_notify_config",
     "notify_config_from",
     "sign",
@@ -74,6 +84,8 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 EVENT_KINDS = ("tier_change", "prepare", "published")
+#: Kinds sent at most once per recipient and key (see :attr:`Event.key`).
+ONCE_KINDS = ("tier_change", "prepare")
 SIGNATURE_HEADER = "X-Tierwise-Signature"
 
 
@@ -121,6 +133,13 @@ class Event:
     signal: str | None
     sentence: str
 
+    @property
+    def key(self) -> str:
+        """``kind|region|date|tier`` (``|signal`` for a prepare signal): what makes it the same
+        notice."""
+        what = self.signal if self.kind == "prepare" else str(self.tier)
+        return f"{self.kind}|{self.region}|{self.date.isoformat()}|{what}"
+
     def as_json(self) -> dict[str, Any]:
         return {
             "kind": self.kind, "region": self.region, "date": self.date.isoformat(),
@@ -131,13 +150,14 @@ class Event:
 
 @dataclass(frozen=True, kw_only=True)
 class Delivery:
-    """What happened for one recipient."""
+    """What happened for one recipient (``keys``: :attr:`Event.key` of the events it got)."""
 
     recipient: str
     events: int
     ok: bool
     attempts: int
     error: str = ""
+    keys: tuple[str, ...] = ()
 
 
 def _problem(path: Path, where: str, problem: str) -> InputFileError:
@@ -283,20 +303,40 @@ def _email(config: NotifyConfig, recipient: Recipient, events: list[Event]) -> D
     return Delivery(recipient=recipient.id, events=len(events), ok=True, attempts=1)
 
 
-def deliver(events: Sequence[Event], config: NotifyConfig) -> list[Delivery]:
-    """Send each recipient the events it wants (nothing when it wants none)."""
+def deliver(
+    events: Sequence[Event], config: NotifyConfig, *,
+    skip: Mapping[str, set[str]] | None = None,
+) -> list[Delivery]:
+    """Send each recipient the events it wants (nothing when it wants none).
+
+    ``skip`` maps a recipient id to event keys it must not get again (:attr:`Event.key`).
+    """
     out = []
     for recipient in config.recipients:
-        mine = [e for e in events if recipient.wants(e)]
+        done = (skip or {}).get(recipient.id, set())
+        mine = [e for e in events if recipient.wants(e) and e.key not in done]
         if not mine:
             continue
         send = _webhook if recipient.webhook else _email
+        keys = tuple(e.key for e in mine)
         try:
-            out.append(send(config, recipient, mine))
+            delivery = send(config, recipient, mine)
         except Exception as exc:  # e.g. a malformed URL: one recipient never stops the others
             log.warning("notification to %s failed: %s", recipient.id, exc)
-            out.append(Delivery(recipient=recipient.id, events=len(mine), ok=False, attempts=0,
-                                error=f"{type(exc).__name__}: {exc}"))
+            delivery = Delivery(recipient=recipient.id, events=len(mine), ok=False, attempts=0,
+                                error=f"{type(exc).__name__}: {exc}")
+        out.append(replace(delivery, keys=keys))
+    return out
+
+
+def sent_keys(*, session: Session, recipients: Sequence[str]) -> dict[str, set[str]]:
+    """Keys of the once-only events already sent to each recipient (from ``notify.sent``)."""
+    out: dict[str, set[str]] = {r: set() for r in recipients}
+    query = select(AuditEntry.subject, AuditEntry.details).where(
+        AuditEntry.action == "notify.sent", AuditEntry.subject.in_(list(recipients))
+    )
+    for subject, details in session.execute(query):
+        out[subject].update(str(k) for k in (details or {}).get("sent", ()))
     return out
 
 
@@ -306,15 +346,18 @@ def deliver_and_record(
 ) -> tuple[Delivery, ...]:
     """Deliver ``events`` and write one audit entry per recipient; never raises.
 
-    Nothing happens without a ``config`` or without events. Each recipient's outcome is audited
-    as ``notify.sent`` or ``notify.failed`` (with the error), ``context`` saying what caused it
-    (``evaluation``, ``publication``). An unexpected error while delivering is logged and audited
-    as ``notify.failed`` for recipient ``*``, so the caller's work always goes on.
+    Nothing happens without a ``config`` or without events. A ``tier_change`` or ``prepare``
+    event already sent to a recipient (its key in an earlier ``notify.sent`` entry) is not sent
+    to it again. Each recipient's outcome is audited as ``notify.sent`` (with the keys of the
+    once-only events it carried) or ``notify.failed`` (with the error), ``context`` saying what
+    caused it (``evaluation``, ``publication``). An unexpected error while delivering is logged
+    and audited as ``notify.failed`` for recipient ``*``, so the caller's work always goes on.
     """
     if config is None or not events:
         return ()
     try:
-        deliveries = tuple(deliver(events, config))
+        done = sent_keys(session=session, recipients=[r.id for r in config.recipients])
+        deliveries = tuple(deliver(events, config, skip=done))
     except Exception as exc:  # a notification must never break the caller's work
         log.exception("notifications for %s failed", context)
         deliveries = (
@@ -328,6 +371,8 @@ def deliver_and_record(
             session=session, actor=actor, action="notify.sent" if d.ok else "notify.failed",
             subject=d.recipient,
             details={"context": context, "events": d.events, "attempts": d.attempts,
-                     "error": d.error},
+                     "error": d.error,
+                     "sent": [k for k in d.keys if k.split("|", 1)[0] in ONCE_KINDS]
+                     if d.ok else []},
         )
     return deliveries

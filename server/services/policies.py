@@ -12,13 +12,13 @@ import threading
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
-from sqlalchemy import select, update
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import evaluate_active
+from server.services.evaluation import activate_ruleset
 from server.services.notify import NotifyConfig
 from server.store.models import Ruleset as RulesetRow
 
@@ -237,14 +237,9 @@ def store_draft(*, session: Session, text: str, author: str, filename: str = "dr
 def activate_version(
     *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None
 ) -> None:
-    """Make a version active (the active one is retired) and evaluate it on the newest data."""
+    """Make a version active (every other active one is retired) and evaluate it on the newest
+    data (:func:`server.services.evaluation.activate_ruleset`)."""
     row = session.get(RulesetRow, ruleset_id)
     if row is None:
         raise UnknownPolicyError(ruleset_id)
-    session.execute(update(RulesetRow).where(RulesetRow.status == "active")
-                    .values(status="retired"))
-    row.status = "active"
-    record(session=session, actor=actor, action="ruleset.activate",
-           subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
-    session.flush()
-    evaluate_active(session=session, notify=notify)
+    activate_ruleset(session=session, row=row, actor=actor, notify=notify)

@@ -8,7 +8,10 @@ decision visible to the public. Districts with no decision yet start from their 
 when first published. Every decision and publication is written to the audit log.
 
 A decision on an assessment of day ``d`` is effective from ``d + 1`` (the morning after the data
-it was based on).
+it was based on). Only the district's current item can be decided: its assessment of the newest
+day under the active ruleset at the newest data cutoff; a form posted for any other assessment (an
+older day, an older cutoff, a retired ruleset) is refused. The official tier is the decision that
+takes effect last (ties: the one taken last), so a late decision about an earlier day never wins.
 
 A recommendation of *insufficient data* (tier -1: a gate failed) is a pending change too, since
 the data no longer support the official tier. Confirming it keeps the official tier unchanged
@@ -33,7 +36,11 @@ from sqlalchemy.orm import Session
 from rules import Ruleset, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, latest_assessment_rows
+from server.services.evaluation import (
+    active_ruleset,
+    current_assessment_id,
+    latest_assessment_rows,
+)
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
@@ -160,9 +167,18 @@ def _public_text(ruleset: Ruleset | None, tier: int) -> str:
     return ruleset.tiers[tier].public.strip()
 
 
+#: The order in which decisions take over from one another: by the day a decision takes effect,
+#: then by when it was taken (a late decision about an earlier day never outranks a later day).
+_RANK = (DecisionRow.effective_date, DecisionRow.decided_at, DecisionRow.id)
+
+
+def _rank(row: DecisionRow) -> tuple[date, datetime, int]:
+    return (row.effective_date, row.decided_at, row.id)
+
+
 def _decisions(session: Session, published_only: bool) -> dict[int, list[DecisionRow]]:
-    """Decisions per region id, oldest first."""
-    query = select(DecisionRow).order_by(DecisionRow.decided_at, DecisionRow.id)
+    """Decisions per region id, lowest rank first (:data:`_RANK`)."""
+    query = select(DecisionRow).order_by(*_RANK)
     if published_only:
         query = query.where(DecisionRow.published_at.is_not(None))
     out: dict[int, list[DecisionRow]] = {}
@@ -265,11 +281,11 @@ def _as_decision(row: DecisionRow, code: str, user: str, ruleset: Ruleset | None
 
 
 def _official_tier_of(session: Session, region_id: int) -> int | None:
-    """Tier of the region's latest decision (published or not), None when never decided."""
+    """Tier of the region's top-ranked decision (published or not), None when never decided."""
     return session.scalar(
         select(DecisionRow.tier)
         .where(DecisionRow.region_id == region_id)
-        .order_by(DecisionRow.decided_at.desc(), DecisionRow.id.desc())
+        .order_by(*(c.desc() for c in _RANK))
         .limit(1)
     )
 
@@ -286,8 +302,10 @@ def decide(
     Raises
     ------
     ReviewError
-        Blank reason, unknown assessment, a user who is not an approver, a missing or
-        out-of-range override tier, confirming insufficient data with no official tier to keep.
+        Blank reason, unknown assessment, an assessment that is not the district's current item
+        in the review (another day, an older data cutoff, a retired ruleset), a user who is not
+        an approver, a missing or out-of-range override tier, confirming insufficient data with
+        no official tier to keep.
     """
     if not reason or not reason.strip():
         raise ReviewError("reason", "a decision needs a reason")
@@ -295,6 +313,14 @@ def decide(
     assessment = session.get(Assessment, assessment_id)
     if assessment is None:
         raise ReviewError("assessment_id", f"no assessment {assessment_id}")
+    current = current_assessment_id(session=session, region_id=assessment.region_id)
+    if assessment.id != current:
+        raise ReviewError(
+            "assessment_id",
+            f"{assessment_id} is not the district's current recommendation (that is "
+            f"{current if current is not None else 'none'}: the newest day of the active ruleset "
+            "at the newest data cutoff); reload the review page",
+        )
     ruleset = _active(session)
     top = ruleset.top_tier if ruleset is not None else None
     kept: int | None = None
@@ -344,7 +370,7 @@ def _published_events(
     codes: dict[int, str],
 ) -> list[Event]:
     """One ``published`` event per district whose published tier this publication changed."""
-    last = {codes[r.region_id]: r for r in sorted(rows, key=lambda r: (r.decided_at, r.id))}
+    last = {codes[r.region_id]: r for r in sorted(rows, key=_rank)}
     out = []
     for code in sorted(last):
         new, old = after[code], before.get(code)

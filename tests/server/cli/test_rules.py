@@ -2,38 +2,19 @@
 
 from __future__ import annotations
 
-import shutil
-from datetime import date
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import pytest
 from typer.testing import CliRunner
 
-from demo_seed.seed import seed_demo
 from server.cli import app
-from server.config import Settings
-from server.services.database import Database
 
 POLICIES = Path(__file__).resolve().parents[3] / "rules" / "policies"
 
 
 def run(*args: str):  # type: ignore[no-untyped-def]
     return CliRunner().invoke(app, list(args))
-
-
-def seeded_copy(factory: pytest.TempPathFactory, name: str) -> Path:
-    """A copy of a 150-day demo database, seeded once per test session."""
-    source = factory.getbasetemp() / "rules-demo" / "demo.db"
-    if not source.exists():
-        source.parent.mkdir(parents=True, exist_ok=True)
-        db = Database.from_settings(Settings(database_url=f"sqlite:///{source}", demo_mode=True))
-        try:
-            seed_demo(db, days=150, end=date(2026, 11, 30))
-        finally:
-            db.dispose()
-    target = factory.mktemp(name) / "demo.db"
-    shutil.copyfile(source, target)
-    return target
 
 
 def test_rules_check_prints_the_thresholds_table() -> None:
@@ -63,10 +44,9 @@ def test_rules_check_missing_file() -> None:
 
 @pytest.mark.slow
 def test_backtest_compares_two_rulesets_and_writes_csv(
-    tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+    demo_path: Path, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
 ) -> None:
-    path = seeded_copy(tmp_path_factory, "cli-backtest")
-    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{path}")
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{demo_path}")
     draft = tmp_path / "draft.yaml"
     draft.write_text((POLICIES / "county.yaml").read_text().replace(
         'version: "2031.2"', 'version: "draft"').replace("release_days: 28", "release_days: 14"))
@@ -81,20 +61,18 @@ def test_backtest_compares_two_rulesets_and_writes_csv(
 
 @pytest.mark.slow
 def test_backtest_names_an_indicator_tierwise_does_not_compute(
-    tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch
+    demo_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    path = seeded_copy(tmp_path_factory, "cli-backtest-unknown")
-    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{path}")
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{demo_path}")
     result = run("backtest", "--rules", str(POLICIES / "cdc-2021-transmission.yaml"))
     assert result.exit_code == 1 and "indicator(s) cases_7d" in result.output
 
 
 @pytest.mark.slow
 def test_evaluate_with_a_cutoff_then_reuses(
-    tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch
+    demo_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    path = seeded_copy(tmp_path_factory, "cli-evaluate")
-    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{path}")
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{demo_path}")
     first = run("evaluate", "--cutoff", "2026-10-01T12:00:00+00:00")
     second = run("evaluate", "--cutoff", "2026-10-01T12:00:00+00:00")
     assert first.exit_code == 0 and "stored assessments" in first.output
@@ -104,3 +82,24 @@ def test_evaluate_with_a_cutoff_then_reuses(
 def test_evaluate_refuses_a_naive_cutoff() -> None:
     result = run("evaluate", "--cutoff", "2026-10-01T12:00:00")
     assert result.exit_code == 1 and "needs a time zone" in result.output
+
+
+@pytest.mark.slow
+def test_backtest_as_known_uses_the_office_time_zone(
+    demo_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import server.services.backtest as backtest
+
+    zones = []
+    real = backtest.run_backtest
+
+    def spy(**kwargs):  # type: ignore[no-untyped-def]
+        zones.append(kwargs["time_zone"])
+        return real(**kwargs)
+
+    monkeypatch.setattr(backtest, "run_backtest", spy)
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{demo_path}")
+    monkeypatch.setenv("TIERWISE_TIME_ZONE", "Etc/GMT+8")
+    result = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--as-known")
+    assert result.exit_code == 0, result.output
+    assert zones == [ZoneInfo("Etc/GMT+8")] and "data as known each day" in result.output

@@ -5,24 +5,21 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
-import shutil
 import socket
 import socketserver
 import threading
 from collections.abc import Iterator
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from http.server import BaseHTTPRequestHandler, HTTPServer
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from demo_seed.seed import seed_demo
 from rules import IndicatorSeries, evaluate, parse_ruleset
-from server.config import Settings
-from server.services.database import Database
 from server.services.errors import InputFileError
 from server.services.evaluation import (
     active_ruleset,
@@ -42,6 +39,7 @@ from server.services.notify import (
 )
 from server.services.review import decide, official_tiers, pending_changes, publish
 from server.store.models import Assessment, AuditEntry
+from server.store.vintages import append_vintage
 
 RULES = """\
 name: notify
@@ -226,36 +224,6 @@ APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
 CUTOFF = datetime(2026, 10, 17, 5, 30, tzinfo=UTC)
 
 
-def _seeded_copy(factory: pytest.TempPathFactory, name: str) -> Path:
-    """A copy of a 150-day demo database, seeded once per test session."""
-    source = factory.getbasetemp() / "rules-demo" / "demo.db"
-    if not source.exists():
-        source.parent.mkdir(parents=True, exist_ok=True)
-        db = Database.from_settings(Settings(database_url=f"sqlite:///{source}", demo_mode=True))
-        try:
-            seed_demo(db, days=150, end=date(2026, 11, 30))
-        finally:
-            db.dispose()
-    target = factory.mktemp(name) / "demo.db"
-    shutil.copyfile(source, target)
-    return target
-
-
-@pytest.fixture(scope="module")
-def db(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Database]:
-    path = _seeded_copy(tmp_path_factory, "notify")
-    database = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    yield database
-    database.dispose()
-
-
-@pytest.fixture
-def session(db: Database) -> Iterator[Session]:
-    with db.sessions() as s:
-        yield s
-        s.rollback()
-
-
 def _closed_port() -> int:
     with socket.socket() as sock:
         sock.bind(("127.0.0.1", 0))
@@ -280,60 +248,64 @@ def _audit(session: Session, action: str) -> list[AuditEntry]:
 
 @pytest.mark.slow
 def test_evaluation_posts_the_newest_days_events(
-    session: Session, hook: tuple[str, type[_Hook]]
+    demo_session: Session, hook: tuple[str, type[_Hook]]
 ) -> None:
     url, handler = hook
-    row = active_ruleset(session=session)
+    row = active_ruleset(session=demo_session)
     assert row is not None
-    run = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
     assert run is not None and run.evaluation is not None
     (body,) = [json.loads(b) for _h, b in handler.received]
     posted = sorted((e["kind"], e["region"], e["date"]) for e in body["events"])
     assert posted == [("prepare", "D14", "2026-10-16"), ("tier_change", "D12", "2026-10-16")]
-    assert [a.subject for a in _audit(session, "notify.sent")] == ["desk"]
+    assert [a.subject for a in _audit(demo_session, "notify.sent")] == ["desk"]
 
 
 @pytest.mark.slow
 def test_evaluation_reusing_stored_rows_sends_nothing(
-    session: Session, hook: tuple[str, type[_Hook]]
+    demo_session: Session, hook: tuple[str, type[_Hook]]
 ) -> None:
     url, handler = hook
-    row = active_ruleset(session=session)
+    row = active_ruleset(session=demo_session)
     assert row is not None
-    evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF)
-    again = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
+    again = evaluate_districts(
+        session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url)
+    )
     assert again is not None and again.reused and handler.received == []
 
 
 @pytest.mark.slow
-def test_failed_delivery_is_audited_and_keeps_the_assessments(session: Session) -> None:
-    row = active_ruleset(session=session)
+def test_failed_delivery_is_audited_and_keeps_the_assessments(demo_session: Session) -> None:
+    row = active_ruleset(session=demo_session)
     assert row is not None
     dead = _to(f"http://127.0.0.1:{_closed_port()}/hook")
-    run = evaluate_districts(session=session, ruleset_row=row, cutoff=CUTOFF, notify=dead)
+    run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=dead)
     assert run is not None and run.written > 0 and not run.notified[0].ok
-    stored = session.scalar(select(Assessment.id).where(Assessment.data_cutoff == CUTOFF).limit(1))
-    (entry,) = _audit(session, "notify.failed")
+    stored = demo_session.scalar(
+        select(Assessment.id).where(Assessment.data_cutoff == CUTOFF).limit(1)
+    )
+    (entry,) = _audit(demo_session, "notify.failed")
     assert stored is not None and entry.details["context"] == "evaluation"
     assert entry.details["error"].startswith("ConnectError")
 
 
 @pytest.mark.slow
 def test_publication_posts_each_changed_public_tier(
-    session: Session, hook: tuple[str, type[_Hook]]
+    demo_session: Session, hook: tuple[str, type[_Hook]]
 ) -> None:
     url, handler = hook
-    publish(session=session, user=APPROVER, notify=_to(url))
+    publish(session=demo_session, user=APPROVER, notify=_to(url))
     first = json.loads(handler.received[0][1])["events"]
-    public = official_tiers(session=session)
+    public = official_tiers(session=demo_session)
     assert sorted((e["region"], e["tier"], e["previous"]) for e in first) == sorted(
         (code, t.tier, None) for code, t in public.items()
     )
     # an override that changes one district's tier: the next publication sends only that one
     target = next(iter(public.values()))
-    decide(session=session, assessment_id=_newest_assessment(session, target.region),
+    decide(session=demo_session, assessment_id=_newest_assessment(demo_session, target.region),
            user=APPROVER, accept=False, tier=(target.tier + 1) % 4, reason="invented test reason")
-    publish(session=session, user=APPROVER, notify=_to(url))
+    publish(session=demo_session, user=APPROVER, notify=_to(url))
     (second,) = json.loads(handler.received[1][1])["events"]
     assert (second["kind"], second["region"], second["tier"], second["previous"]) == (
         "published", target.region, (target.tier + 1) % 4, target.tier
@@ -341,10 +313,72 @@ def test_publication_posts_each_changed_public_tier(
 
 
 @pytest.mark.slow
-def test_failed_publication_notice_never_undoes_the_publication(session: Session) -> None:
-    pending = {p.region for p in pending_changes(session=session)}
+def test_failed_publication_notice_never_undoes_the_publication(demo_session: Session) -> None:
+    pending = {p.region for p in pending_changes(session=demo_session)}
     dead = _to(f"http://127.0.0.1:{_closed_port()}/hook")
-    result = publish(session=session, user=APPROVER, notify=dead)
-    assert set(official_tiers(session=session)) == pending == set(result.regions)
-    (entry,) = _audit(session, "notify.failed")
+    result = publish(session=demo_session, user=APPROVER, notify=dead)
+    assert set(official_tiers(session=demo_session)) == pending == set(result.regions)
+    (entry,) = _audit(demo_session, "notify.failed")
     assert (entry.actor, entry.details["context"]) == (APPROVER, "publication")
+
+
+def _second_ingestion(session: Session, minutes: int) -> datetime:
+    """A late file the same morning re-sending one known value; returns its arrival time."""
+    later = CUTOFF + timedelta(minutes=minutes)
+    append_vintage(
+        session=session, feed="late-file", received_at=later, checksum=f"late-{minutes}",
+        rows=pd.DataFrame({"region": ["D01"], "measure": ["cases"],
+                           "ref_date": [date(2026, 10, 1)], "value": [3.0]}),
+    )
+    return later
+
+
+@pytest.mark.slow
+def test_second_ingestion_the_same_morning_sends_nothing_again(
+    demo_session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    later = _second_ingestion(demo_session, 20)
+    again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=_to(url))
+    # the same newest day (16 Oct) evaluated again: new assessments, the same events
+    assert again is not None and again.written > 0 and again.evaluation is not None
+    assert sorted(e.key for e in events_on_day(again.evaluation)) == [
+        "prepare|D14|2026-10-16|rt-over-one", "tier_change|D12|2026-10-16|1",
+    ]
+    assert len(handler.received) == 1 and again.notified == ()
+    assert len(_audit(demo_session, "notify.sent")) == 1
+
+
+@pytest.mark.slow
+def test_an_event_already_sent_to_one_recipient_still_goes_to_another(
+    demo_session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
+    both = NotifyConfig(recipients=(Recipient(id="desk", webhook=url, secret="k"),
+                                    Recipient(id="night", webhook=url, secret="k")), attempts=1)
+    later = _second_ingestion(demo_session, 25)
+    again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=both)
+    assert again is not None
+    assert [(d.recipient, d.events) for d in again.notified] == [("night", 2)]
+    assert len(handler.received) == 2
+
+
+@pytest.mark.slow
+def test_a_failed_notice_is_sent_at_the_next_evaluation(
+    demo_session: Session, hook: tuple[str, type[_Hook]]
+) -> None:
+    url, handler = hook
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    dead = _to(f"http://127.0.0.1:{_closed_port()}/hook")
+    evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=dead)
+    later = _second_ingestion(demo_session, 30)
+    again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=_to(url))
+    assert again is not None and [d.ok for d in again.notified] == [True]
+    assert len(json.loads(handler.received[0][1])["events"]) == 2

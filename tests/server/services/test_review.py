@@ -2,19 +2,19 @@
 
 from __future__ import annotations
 
-import shutil
-from collections.abc import Iterator
-from datetime import date, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
 import pytest
 from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
-from demo_seed.seed import seed_demo
-from server.config import Settings
-from server.services.database import Database
-from server.services.evaluation import latest_assessment_rows
+from server.services.evaluation import (
+    active_ruleset,
+    evaluate_districts,
+    latest_assessment_rows,
+    store_ruleset,
+)
 from server.services.review import (
     ReviewError,
     decide,
@@ -28,115 +28,85 @@ from server.store.models import Decision as DecisionRow
 
 pytestmark = pytest.mark.slow
 APPROVER, ANALYST = "otto.approver", "ada.analyst"  # invented demo accounts (demo_seed.seed)
+COUNTY = Path(__file__).resolve().parents[3] / "rules" / "policies" / "county.yaml"
 
 
-def seeded_copy(factory: pytest.TempPathFactory, name: str) -> Path:
-    """A copy of a 150-day demo database, seeded once per test session."""
-    source = factory.getbasetemp() / "rules-demo" / "demo.db"
-    if not source.exists():
-        source.parent.mkdir(parents=True, exist_ok=True)
-        db = Database.from_settings(Settings(database_url=f"sqlite:///{source}", demo_mode=True))
-        try:
-            seed_demo(db, days=150, end=date(2026, 11, 30))
-        finally:
-            db.dispose()
-    target = factory.mktemp(name) / "demo.db"
-    shutil.copyfile(source, target)
-    return target
-
-
-@pytest.fixture(scope="module")
-def db(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Database]:
-    path = seeded_copy(tmp_path_factory, "review")
-    database = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    yield database
-    database.dispose()
-
-
-@pytest.fixture
-def session(db: Database) -> Iterator[Session]:
-    """A session whose work is rolled back after the test."""
-    with db.sessions() as s:
-        yield s
-        s.rollback()
-
-
-def test_pending_changes_lists_every_undecided_district(session: Session) -> None:
-    pending = pending_changes(session=session)
+def test_pending_changes_lists_every_undecided_district(demo_session: Session) -> None:
+    pending = pending_changes(session=demo_session)
     assert len(pending) == 14  # the demo has 14 districts, none decided yet
     assert all(p.official_tier is None for p in pending)
 
 
-def test_decide_requires_a_reason(session: Session) -> None:
-    first = pending_changes(session=session)[0]
+def test_decide_requires_a_reason(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match="reason: a decision needs a reason"):
-        decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
+        decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
                tier=None, reason="  ")
 
 
-def test_decide_refuses_an_analyst(session: Session) -> None:
-    first = pending_changes(session=session)[0]
+def test_decide_refuses_an_analyst(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match="only approvers and admins decide"):
-        decide(session=session, assessment_id=first.assessment_id, user=ANALYST, accept=True,
+        decide(session=demo_session, assessment_id=first.assessment_id, user=ANALYST, accept=True,
                tier=None, reason="ok")
 
 
-def test_decide_override_out_of_range_tier(session: Session) -> None:
-    first = pending_changes(session=session)[0]
+def test_decide_override_out_of_range_tier(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match=r"tier: 7 is not a tier \(0..3\)"):
-        decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
+        decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
                tier=7, reason="no")
 
 
-def test_decision_removes_the_pending_change(session: Session) -> None:
-    first = pending_changes(session=session)[0]
-    decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
+def test_decision_removes_the_pending_change(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
+    decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
            tier=None, reason="agreed at the morning meeting")
-    assert first.region not in {p.region for p in pending_changes(session=session)}
+    assert first.region not in {p.region for p in pending_changes(session=demo_session)}
 
 
-def test_override_keeps_its_tier_and_is_not_asked_again(session: Session) -> None:
-    first = pending_changes(session=session)[0]
+def test_override_keeps_its_tier_and_is_not_asked_again(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
     other = (first.recommended_tier + 1) % 4
-    d = decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
+    d = decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
                tier=other, reason="local outbreak contained")
     assert (d.kind, d.tier) == ("overridden", other)
-    assert first.region not in {p.region for p in pending_changes(session=session)}
+    assert first.region not in {p.region for p in pending_changes(session=demo_session)}
 
 
-def test_unpublished_decision_is_not_public(session: Session) -> None:
-    first = pending_changes(session=session)[0]
-    decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
+def test_unpublished_decision_is_not_public(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
+    decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
            tier=None, reason="agreed")
-    assert official_tiers(session=session) == {}
-    assert first.region in official_tiers(session=session, published_only=False)
+    assert official_tiers(session=demo_session) == {}
+    assert first.region in official_tiers(session=demo_session, published_only=False)
 
 
 def test_first_publication_starts_every_district_from_its_recommendation(
-    session: Session,
+    demo_session: Session,
 ) -> None:
-    pending = {p.region: p.recommended_tier for p in pending_changes(session=session)}
-    result = publish(session=session, user=APPROVER)
-    tiers = {code: t.tier for code, t in official_tiers(session=session).items()}
+    pending = {p.region: p.recommended_tier for p in pending_changes(session=demo_session)}
+    result = publish(session=demo_session, user=APPROVER)
+    tiers = {code: t.tier for code, t in official_tiers(session=demo_session).items()}
     assert tiers == pending
     assert set(result.initial) == set(pending)
 
 
-def test_publish_writes_the_audit_log(session: Session) -> None:
-    first = pending_changes(session=session)[0]
-    decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
+def test_publish_writes_the_audit_log(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
+    decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
            tier=0, reason="hospital figures corrected by phone")
-    publish(session=session, user=APPROVER)
-    actions = list(session.scalars(select(AuditEntry.action).where(
+    publish(session=demo_session, user=APPROVER)
+    actions = list(demo_session.scalars(select(AuditEntry.action).where(
         AuditEntry.action.like("decision.%"))))
     assert actions == ["decision.overridden", "decision.publish"]
 
 
-def test_decision_history_names_user_and_recommendation(session: Session) -> None:
-    first = pending_changes(session=session)[0]
-    decide(session=session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
+def test_decision_history_names_user_and_recommendation(demo_session: Session) -> None:
+    first = pending_changes(session=demo_session)[0]
+    decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
            tier=0, reason="figures corrected")
-    (record,) = decision_history(session=session, region=first.region)
+    (record,) = decision_history(session=demo_session, region=first.region)
     assert (record.user, record.recommended_tier, record.tier, record.reason) == (
         APPROVER, first.recommended_tier, 0, "figures corrected"
     )
@@ -152,35 +122,134 @@ def _make_insufficient(session: Session, region: str) -> int:
     return aid
 
 
-def test_confirming_insufficient_data_keeps_the_official_tier(session: Session) -> None:
-    publish(session=session, user=APPROVER)
-    region, official = next(iter(official_tiers(session=session).items()))
+def test_confirming_insufficient_data_keeps_the_official_tier(demo_session: Session) -> None:
+    publish(session=demo_session, user=APPROVER)
+    region, official = next(iter(official_tiers(session=demo_session).items()))
     # the published decision answered yesterday's assessment; today's says insufficient data
-    latest = latest_assessment_rows(session=session)
+    latest = latest_assessment_rows(session=demo_session)
     assert latest is not None
     item = next(i for i in latest.items if i.code == region)
-    yesterday = session.scalar(select(Assessment.id).where(
+    yesterday = demo_session.scalar(select(Assessment.id).where(
         Assessment.region_id == item.region_id, Assessment.data_cutoff == latest.data_cutoff,
         Assessment.ruleset_id == latest.ruleset_row.id,
         Assessment.ref_date == latest.last_day - timedelta(days=1)))
-    session.execute(update(DecisionRow).where(DecisionRow.region_id == item.region_id)
+    demo_session.execute(update(DecisionRow).where(DecisionRow.region_id == item.region_id)
                     .values(assessment_id=yesterday))
-    aid = _make_insufficient(session, region)
-    assert region in {p.region for p in pending_changes(session=session)}
-    d = decide(session=session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
+    aid = _make_insufficient(demo_session, region)
+    assert region in {p.region for p in pending_changes(session=demo_session)}
+    d = decide(session=demo_session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
                reason="testing site closed for a week; keep the tier")
     assert (d.kind, d.tier, d.reason) == (
         "confirmed", official.tier, "testing site closed for a week; keep the tier"
     )
-    assert region not in {p.region for p in pending_changes(session=session)}
-    assert official_tiers(session=session, published_only=False)[region].tier == official.tier
+    assert region not in {p.region for p in pending_changes(session=demo_session)}
+    assert official_tiers(session=demo_session, published_only=False)[region].tier == official.tier
 
 
 def test_confirming_insufficient_data_without_an_official_tier_needs_an_override(
-    session: Session,
+    demo_session: Session,
 ) -> None:
-    region = pending_changes(session=session)[0].region
-    aid = _make_insufficient(session, region)
+    region = pending_changes(session=demo_session)[0].region
+    aid = _make_insufficient(demo_session, region)
     with pytest.raises(ReviewError, match="accept: insufficient data and no official tier"):
-        decide(session=session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
+        decide(session=demo_session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
                reason="agreed")
+
+
+# --- only the current item can be decided; the official tier is the one taking effect last ---
+
+
+def _item(session: Session, region: str) -> tuple[int, int, date]:
+    """(region id, current assessment id, last day) of ``region`` in the newest stored run."""
+    latest = latest_assessment_rows(session=session)
+    assert latest is not None
+    item = next(i for i in latest.items if i.code == region)
+    return item.region_id, item.assessment.id, latest.last_day
+
+
+def test_decide_refuses_an_earlier_day_of_the_current_run(demo_session: Session) -> None:
+    region_id, current, last_day = _item(demo_session, "D01")
+    earlier = demo_session.scalar(select(Assessment.id).where(
+        Assessment.region_id == region_id, Assessment.ref_date == last_day - timedelta(days=3)))
+    assert earlier is not None
+    with pytest.raises(ReviewError, match=rf"assessment_id: {earlier} is not the district's "
+                                          rf"current recommendation \(that is {current}"):
+        decide(session=demo_session, assessment_id=earlier, user=APPROVER, accept=False, tier=0,
+               reason="stale form")
+
+
+def test_decide_refuses_an_assessment_of_an_older_cutoff(demo_session: Session) -> None:
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    old = evaluate_districts(session=demo_session, ruleset_row=row,
+                             cutoff=datetime(2026, 10, 1, 12, 0, tzinfo=UTC))
+    assert old is not None
+    region_id, _current, _day = _item(demo_session, "D01")
+    stale = demo_session.scalar(select(Assessment.id).where(
+        Assessment.region_id == region_id, Assessment.data_cutoff == old.data_cutoff,
+        Assessment.ref_date == old.end))
+    assert stale is not None
+    with pytest.raises(ReviewError, match=rf"assessment_id: {stale} is not the district's"):
+        decide(session=demo_session, assessment_id=stale, user=APPROVER, accept=True, tier=None,
+               reason="form opened before the new data")
+
+
+def test_decide_refuses_an_assessment_of_a_retired_ruleset(
+    demo_session: Session, tmp_path: Path
+) -> None:
+    _region_id, before, _day = _item(demo_session, "D01")
+    text = COUNTY.read_text().replace("name: county-demo", "name: county-calm", 1)
+    (tmp_path / "calm.yaml").write_text(text.replace('version: "2031.2"', 'version: "2031.3"'))
+    store_ruleset(session=demo_session, path=tmp_path / "calm.yaml", author="rev", activate=True)
+    with pytest.raises(ReviewError, match=rf"assessment_id: {before} is not the district's"):
+        decide(session=demo_session, assessment_id=before, user=APPROVER, accept=True, tier=None,
+               reason="form from before the activation")
+    # the new ruleset's item is the one that can be decided
+    _region_id, after, _day = _item(demo_session, "D01")
+    d = decide(session=demo_session, assessment_id=after, user=APPROVER, accept=True, tier=None,
+               reason="agreed")
+    assert d.assessment_id == after != before
+
+
+def test_stale_form_post_never_becomes_the_public_tier(demo_session: Session) -> None:
+    # regression of the review finding (a decision on D01's oldest assessment became public)
+    region_id, current, _day = _item(demo_session, "D01")
+    oldest = demo_session.scalar(select(Assessment.id).where(Assessment.region_id == region_id)
+                                 .order_by(Assessment.ref_date, Assessment.id).limit(1))
+    decide(session=demo_session, assessment_id=current, user=APPROVER, accept=False, tier=2,
+           reason="x")
+    with pytest.raises(ReviewError, match="assessment_id"):
+        decide(session=demo_session, assessment_id=oldest, user=APPROVER, accept=False, tier=0,
+               reason="stale form")
+    publish(session=demo_session, user=APPROVER)
+    assert official_tiers(session=demo_session)["D01"].tier == 2
+
+
+def _decision(session: Session, region_id: int, effective: date, tier: int, at: datetime) -> None:
+    session.add(DecisionRow(
+        region_id=region_id, assessment_id=None, effective_date=effective, tier=tier,
+        kind="overridden", reason="invented", decided_by=None, decided_at=at, published_at=at,
+    ))
+    session.flush()
+
+
+def test_official_tier_is_the_decision_taking_effect_last(demo_session: Session) -> None:
+    region_id, _current, last_day = _item(demo_session, "D02")
+    morning = datetime(2026, 12, 1, 8, 0, tzinfo=UTC)
+    # decided later, but about an earlier day (e.g. a decision recorded before this fix)
+    _decision(demo_session, region_id, last_day + timedelta(days=1), 3, morning)
+    _decision(demo_session, region_id, last_day - timedelta(days=30), 1,
+              morning + timedelta(hours=2))
+    official = official_tiers(session=demo_session)["D02"]
+    assert (official.tier, official.since) == (3, last_day + timedelta(days=1))
+
+
+def test_official_tier_same_effective_day_goes_to_the_later_decision(
+    demo_session: Session,
+) -> None:
+    region_id, _current, last_day = _item(demo_session, "D02")
+    morning = datetime(2026, 12, 1, 8, 0, tzinfo=UTC)
+    _decision(demo_session, region_id, last_day + timedelta(days=1), 1,
+              morning + timedelta(hours=1))
+    _decision(demo_session, region_id, last_day + timedelta(days=1), 3, morning)
+    assert official_tiers(session=demo_session)["D02"].tier == 1

@@ -1,0 +1,66 @@
+"""Shared fixtures for the service and CLI tests that need a seeded demo database.
+
+The invented 150-day demo county (``demo_seed``) is seeded once per test session into a SQLite
+file; every test that asks for it gets its own copy of that file, so no test sees another's
+writes. The names differ from the store fixtures of ``tests/conftest.py`` (``session``,
+``migrated_engine``), which the store tests keep using.
+"""
+
+from __future__ import annotations
+
+import shutil
+from collections.abc import Iterator
+from datetime import date
+from pathlib import Path
+
+import pytest
+from sqlalchemy.orm import Session
+
+from demo_seed.seed import seed_demo
+from server.config import Settings
+from server.services.database import Database
+
+#: Days and last day of the seeded demo (the tests' expected values are for exactly these).
+DEMO_DAYS = 150
+DEMO_END = date(2026, 11, 30)
+
+
+def demo_settings(path: Path) -> Settings:
+    """Settings of a demo database file."""
+    return Settings(database_url=f"sqlite:///{path}", demo_mode=True)
+
+
+@pytest.fixture(scope="session")
+def demo_source(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo database file, seeded once per test session (never written to by tests)."""
+    source = tmp_path_factory.mktemp("demo-source") / "demo.db"
+    db = Database.from_settings(demo_settings(source))
+    try:
+        seed_demo(db, days=DEMO_DAYS, end=DEMO_END)
+    finally:
+        db.dispose()
+    return source
+
+
+@pytest.fixture
+def demo_path(demo_source: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A fresh copy of the seeded demo database for this test."""
+    target = tmp_path_factory.mktemp("demo") / "demo.db"
+    shutil.copyfile(demo_source, target)
+    return target
+
+
+@pytest.fixture
+def demo_db(demo_path: Path) -> Iterator[Database]:
+    """The services' database on this test's copy of the demo."""
+    database = Database.from_settings(demo_settings(demo_path))
+    yield database
+    database.dispose()
+
+
+@pytest.fixture
+def demo_session(demo_db: Database) -> Iterator[Session]:
+    """A session on this test's copy of the demo; its work is rolled back after the test."""
+    with demo_db.sessions() as s:
+        yield s
+        s.rollback()
