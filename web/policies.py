@@ -40,16 +40,20 @@ def diff(request: Request, session: SessionDep, user: StaffDep, old: int, new: i
 
 
 @router.post("/policies/draft", response_class=HTMLResponse)
-async def draft(
+def draft(
     request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep,
     file: UploadFile | None = None, text: Annotated[str, Form()] = "",
     store: Annotated[str, Form()] = "",
 ) -> Response:
-    """Validate an uploaded (or pasted) draft; store it as a draft version when asked."""
+    """Validate an uploaded (or pasted) draft; store it as a draft version when asked.
+
+    A plain (sync) route: the form is parsed before the call and the route runs in the thread
+    pool, so parsing and storing do not block the event loop.
+    """
     name = "draft.yaml"
     if file is not None and file.filename:
         name = file.filename
-        text = (await file.read()).decode("utf-8", errors="replace")
+        text = file.file.read().decode("utf-8", errors="replace")
     result = check_draft(text, filename=name)
     if result.ok and store:
         new_id = store_draft(session=session, text=text, author=user.name, filename=name)

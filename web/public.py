@@ -83,7 +83,11 @@ def districts_json(request: Request, session: SessionDep) -> Response:
 def district_json(
     request: Request, code: str, session: SessionDep, settings: SettingsDep
 ) -> Response:
-    """One district's published tier and weekly figures, small counts suppressed (JSON)."""
+    """One district's published tier and weekly figures, small counts suppressed (JSON).
+
+    A week with ``"provisional": true`` still has days inside the reporting-delay window: its
+    count and rate are the reports received so far and will rise as late reports arrive.
+    """
 
     def build() -> Response:
         p = public_district_page(session=session, code=code,
@@ -95,7 +99,8 @@ def district_json(
             "published_at": p.published_at.isoformat() if p.published_at else None,
             "data_until": p.data_until.isoformat() if p.data_until else None,
             "weeks": [{"week_end": w.week_end.isoformat(), "cases": w.count_text,
-                       "rate_per_100k": None if w.rate is None else round(w.rate, 1)}
+                       "rate_per_100k": None if w.rate is None else round(w.rate, 1),
+                       "provisional": w.provisional}
                       for w in p.weeks],
         })
 

@@ -20,6 +20,7 @@ import time
 from collections import deque
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from functools import cache
 
 from itsdangerous import BadSignature, URLSafeTimedSerializer
 from sqlalchemy import select
@@ -27,7 +28,7 @@ from sqlalchemy.orm import Session
 
 from server.services.audit import record
 from server.services.errors import ServiceError, UnknownRoleError
-from server.services.users import ROLES, add_user, verify_password
+from server.services.users import ROLES, add_user, hash_password, verify_password
 from server.store.models import User
 
 __all__ = [
@@ -126,15 +127,31 @@ class LoginLimiter:
             self._failures.pop(key, None)
 
 
+@cache
+def _dummy_hash() -> str:
+    """A fixed scrypt hash (same parameters as real ones) of a random, never-used password.
+
+    Built on first use, not at import; every process then keeps the same one.
+    """
+    return hash_password(secrets.token_urlsafe(24))
+
+
 def authenticate(
     *, session: Session, name: str, password: str, limiter: LoginLimiter, client: str
 ) -> StaffUser:
-    """Check a login; failed attempts count against ``client`` and ``name`` separately."""
+    """Check a login; failed attempts count against ``client`` and ``name`` separately.
+
+    The password is run through scrypt whether or not the user exists or is active (against a
+    dummy hash when there is no such user), so the answer's timing does not tell which names
+    exist.
+    """
     keys = (f"client:{client}", f"user:{name.strip().lower()}")
     for key in keys:
         limiter.check(key)
     user = session.scalar(select(User).where(User.name == name.strip()))
-    ok = user is not None and user.active and verify_password(password, user.password_hash)
+    stored = user.password_hash if user is not None else _dummy_hash()
+    valid = verify_password(password, stored)
+    ok = user is not None and user.active and valid
     if not ok or user is None:
         for key in keys:
             limiter.failed(key)

@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 
-from sqlalchemy import Engine
+from sqlalchemy import Engine, text
 from sqlalchemy.orm import Session, sessionmaker
 
 from server.config import Settings
@@ -38,6 +38,12 @@ class Database:
         """A session whose work is committed at the end, or rolled back on error."""
         with self.sessions.begin() as session:
             yield session
+
+    def ping(self) -> None:
+        """Run ``SELECT 1`` in a short session; raises the driver's error when the database does
+        not answer (liveness for ``/healthz``)."""
+        with self.sessions() as session:
+            session.execute(text("SELECT 1"))
 
     def check(self) -> None:
         """Fail with one clear line when the database does not answer or is not migrated."""

@@ -30,6 +30,7 @@ __all__ = [
     "ExplanationPage",
     "ExplainedCriterion",
     "NoAssessmentError",
+    "PeriodError",
     "RevisionRow",
     "district_dossier",
     "explanation_page",
@@ -43,6 +44,21 @@ class NoAssessmentError(ServiceError, LookupError):
     def __init__(self, code: str, day: date | None) -> None:
         when = f" on {day}" if day else ""
         super().__init__(f"no assessment of district {code!r}{when} under the active ruleset")
+
+
+class PeriodError(ServiceError, ValueError):
+    """A requested period that ends before it starts (the page answers 422)."""
+
+    def __init__(self, start: date, end: date) -> None:
+        self.start = start
+        self.end = end
+        super().__init__(f"start {start.isoformat()} is after end {end.isoformat()}")
+
+
+def check_period(start: date | None, end: date | None) -> None:
+    """Refuse ``start > end`` when both are given (either may be left open)."""
+    if start is not None and end is not None and start > end:
+        raise PeriodError(start, end)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -130,7 +146,11 @@ def district_dossier(
     *, session: Session, code: str, start: date | None = None, end: date | None = None,
     days: int = 120,
 ) -> DistrictDossier:
-    """Everything the staff district page shows, for ``start..end`` (default: the last ``days``)."""
+    """Everything the staff district page shows, for ``start..end`` (default: the last ``days``).
+
+    Raises :class:`PeriodError` when both ``start`` and ``end`` are given and ``start > end``.
+    """
+    check_period(start, end)
     region, area = _region(session, code)
     row = active_ruleset(session=session)
     cutoff = _cutoff(session, row.id) if row else None

@@ -52,8 +52,6 @@ from server.store.models import (
 )
 from server.store.types import UTCDateTime
 
-DEMO_FEEDS_FILE = Path(__file__).resolve().parents[2] / "demo_seed" / "feeds.yaml"
-
 
 class UnknownFeedError(ServiceError, LookupError):
     def __init__(self, name: str, known: list[str]) -> None:
@@ -62,10 +60,8 @@ class UnknownFeedError(ServiceError, LookupError):
 
 
 def feeds_file(settings: Settings) -> Path | None:
-    """The configured feed file; in demo mode the demo's feeds when none is configured."""
-    if settings.feeds_file is not None:
-        return settings.feeds_file
-    return DEMO_FEEDS_FILE if settings.demo_mode else None
+    """The configured feed file (``TIERWISE_FEEDS_FILE``; the demo command sets the demo's)."""
+    return settings.feeds_file
 
 
 def load_catalogue(settings: Settings) -> FeedCatalogue:
@@ -496,15 +492,21 @@ class NotAPushFeedError(ServiceError, ValueError):
         super().__init__(f"feed {feed!r} is a {kind} feed; only push feeds accept pushes")
 
 
-def push_payload(
-    db: Database, *, catalogue: FeedCatalogue, feed_name: str, token: str | None,
-    content: bytes, content_type: str = "", time_zone: str = "UTC",
-) -> IngestReceipt:
-    """Check the feed and its token, then ingest ``content`` as one vintage (committed).
+def check_push(
+    db: Database, *, catalogue: FeedCatalogue, feed_name: str, token: str | None
+) -> FeedDefinition:
+    """The push feed ``feed_name`` when ``token`` is its current push token.
 
-    JSON bodies (``application/json``) are read as JSON records whatever the feed's format.
-    The evaluation hook is left to the caller (:func:`evaluate_after_ingest`), so the pusher
-    gets its receipt without waiting for it.
+    Cheap (one primary-key read), so the push route runs it before it reads the body.
+
+    Raises
+    ------
+    UnknownFeedError
+        No feed of that name is configured.
+    NotAPushFeedError
+        The feed is pulled, not pushed.
+    FeedTokenError
+        The bearer token is missing or wrong.
     """
     feed = feed_named(catalogue, feed_name)
     if feed.kind != "push":
@@ -512,6 +514,19 @@ def push_payload(
     with db.transaction() as session:
         if not token_matches(session=session, feed=feed.name, token=token):
             raise FeedTokenError(feed.name, given=bool(token))
+    return feed
+
+
+def ingest_push(
+    db: Database, *, feed: FeedDefinition, content: bytes, content_type: str = "",
+    time_zone: str = "UTC",
+) -> IngestReceipt:
+    """Ingest a pushed ``content`` for an already checked ``feed`` as one vintage (committed).
+
+    JSON bodies (``application/json``) are read as JSON records whatever the feed's format.
+    The evaluation hook is left to the caller (:func:`evaluate_after_ingest`), so the pusher
+    gets its receipt without waiting for it.
+    """
     if "json" in content_type.lower() and feed.format != "json":
         feed = replace(feed, format="json")
     label = f"push to {feed.name}"
@@ -519,6 +534,16 @@ def push_payload(
         db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
         evaluate=False, after_landing=lambda s, r: _note_success(s, feed.name, r.received_at, r),
     ).receipt
+
+
+def push_payload(
+    db: Database, *, catalogue: FeedCatalogue, feed_name: str, token: str | None,
+    content: bytes, content_type: str = "", time_zone: str = "UTC",
+) -> IngestReceipt:
+    """Check the feed and its token (:func:`check_push`), then :func:`ingest_push` ``content``."""
+    feed = check_push(db, catalogue=catalogue, feed_name=feed_name, token=token)
+    return ingest_push(db, feed=feed, content=content, content_type=content_type,
+                       time_zone=time_zone)
 
 
 def upload_payload(

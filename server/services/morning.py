@@ -22,6 +22,7 @@ from sqlalchemy import func, select, type_coerce
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
+from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
 from server.services.policies import parsed
 from server.services.review import OfficialTier, PendingChange, official_tiers, pending_changes
@@ -35,12 +36,21 @@ __all__ = [
     "KeyIndicator",
     "MorningOverview",
     "SortKey",
+    "SortKeyError",
     "morning_overview",
 ]
 
 SPARK_DAYS = 14
 SortKey = Literal["name", "tier", "recommended", "pending", "code"]
 SORT_KEYS: tuple[str, ...] = ("pending", "name", "code", "tier", "recommended")
+
+
+class SortKeyError(ServiceError, ValueError):
+    """The overview was asked to sort by a key it does not know (the page answers 422)."""
+
+    def __init__(self, sort: str) -> None:
+        self.sort = sort
+        super().__init__(f"sort must be one of {', '.join(SORT_KEYS)}, got {sort!r}")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -282,7 +292,7 @@ def morning_overview(
     """Every district's official and recommended tier, signals, indicators; filtered, sorted and
     paged (``page`` counts from 1)."""
     if sort not in SORT_KEYS:
-        raise ValueError(f"sort must be one of {', '.join(SORT_KEYS)}, got {sort!r}")
+        raise SortKeyError(sort)
     if page < 1 or per_page < 1:
         raise ValueError(f"page and per_page must be >= 1, got {page} and {per_page}")
     now = now or datetime.now(UTC)

@@ -5,9 +5,16 @@ user names. Only decisions that have been *published* count. Weekly case counts 
 configured small-count threshold are replaced by ``"<N"`` and the rate derived from them is
 withheld (the small-cell rule of health statistics).
 
-The page data depend only on the publication state and the newest vintage, summarised in a
-*stamp*; pages and their ETags are keyed by it, so a cached page is served until something is
-published or new data arrive.
+The newest weeks of the trend are *provisional*: cases are counted by test date and late reports
+keep arriving for some days, so a week that still contains days inside the reporting-delay window
+(:data:`REPORTING_DELAY_DAYS`) reads low and must not be shown as a real drop. Its count and rate
+are the reports received so far (not inflated by a nowcast); the week is flagged so that pages and
+the JSON say so.
+
+The page data depend only on the publication state, the newest vintage and the active ruleset
+(its tier names and public texts), summarised in a *stamp*; pages and their ETags are keyed by it,
+so a cached page is served until something is published, new data arrive or another ruleset is
+activated.
 """
 
 from __future__ import annotations
@@ -26,7 +33,7 @@ from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
 from server.services.review import official_tiers
 from server.store import read_dense
-from server.store.models import Decision, Measure, Observation, Region, Vintage
+from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage
 from server.store.types import UTCDateTime
 
 __all__ = [
@@ -44,6 +51,10 @@ __all__ = [
 ]
 
 TREND_WEEKS = 12
+# Days before the newest reference date whose counts are still incomplete (late reports). A week
+# that contains any of them is provisional. Common practice, no source; the demo's reporting
+# delays put about 97 % of a day's cases in within 7 days.
+REPORTING_DELAY_DAYS = 7
 
 
 class UnknownDistrictError(ServiceError, LookupError):
@@ -80,12 +91,17 @@ class PublicMap:
 
 @dataclass(frozen=True, kw_only=True)
 class WeekFigure:
-    """One week of cases: ``count_text`` is the count or ``"<N"``; ``rate`` None when withheld."""
+    """One week of cases: ``count_text`` is the count or ``"<N"``; ``rate`` None when withheld.
+
+    ``provisional`` weeks contain days inside the reporting-delay window: their count and rate
+    are the reports received so far and will rise as late reports arrive.
+    """
 
     week_end: date
     count_text: str
     rate: float | None
     suppressed: bool
+    provisional: bool = False
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -114,7 +130,8 @@ class PublicStamp:
 
 
 def public_stamp(*, session: Session) -> PublicStamp:
-    """A short key that changes whenever something is published or new data arrive."""
+    """A short key that changes whenever something is published, new data arrive or another
+    ruleset (other tier names and texts) is activated."""
     published = session.scalar(
         select(type_coerce(func.max(Decision.published_at), UTCDateTime()))
     )
@@ -125,9 +142,16 @@ def public_stamp(*, session: Session) -> PublicStamp:
     received = session.scalar(
         select(type_coerce(func.max(Vintage.received_at), UTCDateTime()))
     )
+    row = active_ruleset(session=session)
+    activated = session.scalar(
+        select(type_coerce(func.max(AuditEntry.at), UTCDateTime()))
+        .where(AuditEntry.action == "ruleset.activate")
+    ) if row is not None else None
     stamp = published.isoformat() if published else "-"
-    changed = max((t for t in (published, received) if t is not None), default=None)
-    return PublicStamp(key=f"{stamp}|{n_published}|{newest or 0}", last_modified=changed)
+    ruleset = f"{row.id}:{row.sha256[:16]}" if row is not None else "-"
+    changed = max((t for t in (published, received, activated) if t is not None), default=None)
+    return PublicStamp(key=f"{stamp}|{n_published}|{newest or 0}|{ruleset}",
+                       last_modified=changed)
 
 
 _RULESETS: dict[str, Ruleset] = {}
@@ -197,12 +221,23 @@ def suppress_count(count: float, threshold: int) -> tuple[str, bool]:
 
 
 def weekly_figures(
-    daily: np.ndarray, dates: np.ndarray, population: float, threshold: int
+    daily: np.ndarray, dates: np.ndarray, population: float, threshold: int,
+    delay_days: int = REPORTING_DELAY_DAYS,
 ) -> tuple[WeekFigure, ...]:
-    """Sum daily counts into weeks ending on the last date; rates per 100 000, suppressed.
+    r"""Sum daily counts into weeks ending on the last date; rates per 100 000, suppressed.
 
     Weeks with any missing day are reported as unknown ("—") rather than as a partial sum.
+    A week with a day among the last ``delay_days`` dates is marked provisional; its count and
+    rate stay the reports received so far.
+
+    Notes
+    -----
+    Week :math:`w` covers days :math:`7w .. 7w+6` of the tail; its rate is
+    :math:`10^5 \sum_d c_d / N` for population :math:`N`. It is provisional when its last day
+    :math:`t_w > t_{last} - \text{delay\_days}`.
     """
+    if delay_days < 0:
+        raise ValueError(f"delay_days must be >= 0, got {delay_days}")
     n = daily.size // 7
     if n == 0:
         return ()
@@ -210,12 +245,14 @@ def weekly_figures(
     ends = dates[-7 * n:].reshape(n, 7)[:, -1]
     complete = np.isfinite(tail).all(axis=1)
     sums = np.where(complete, np.nansum(tail, axis=1), np.nan)
+    window_start = dates[-1] - np.timedelta64(delay_days, "D")
+    provisional = ends > window_start
     out = []
-    for s, end, ok in zip(sums, ends, complete, strict=True):
+    for s, end, ok, late in zip(sums, ends, complete, provisional, strict=True):
         text, hidden = suppress_count(float(s), threshold) if ok else ("—", True)
         rate = None if hidden or population <= 0 else float(s) / population * 100_000
         out.append(WeekFigure(week_end=end.astype(date), count_text=text, rate=rate,
-                              suppressed=hidden))
+                              suppressed=hidden, provisional=bool(late)))
     return tuple(out)
 
 

@@ -120,3 +120,15 @@ def test_api_docs_policy_allows_no_other_origin(client: TestClient) -> None:
     policy = client.get("/docs").headers["content-security-policy"]
     assert "script-src 'self' 'unsafe-inline'" in policy
     assert "http" not in policy
+
+
+def test_database_ping_raises_when_the_database_is_unreachable(tmp_path: Path) -> None:
+    from sqlalchemy.exc import OperationalError
+
+    # A folder is not a database file: SQLite cannot open it.
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{tmp_path}", secret_key="s" * 32))
+    try:
+        with pytest.raises(OperationalError, match="unable to open database file"):
+            db.ping()
+    finally:
+        db.dispose()

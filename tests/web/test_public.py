@@ -173,3 +173,57 @@ def test_weekly_figures_treat_a_missing_day_as_unknown_week() -> None:
 def test_suppress_count_refuses_a_zero_threshold() -> None:
     with pytest.raises(ValueError, match="threshold must be >= 1, got 0"):
         suppress_count(5.0, 0)
+
+
+@pytest.mark.parametrize(
+    ("delay_days", "expected"),
+    [
+        # Reporting-delay window (common practice, no source): a week holding any of the last
+        # ``delay_days`` days is provisional. Weeks end on 03-07, 03-14 and 03-21.
+        pytest.param(7, [False, False, True], id="one-week-window"),
+        pytest.param(8, [False, True, True], id="window-reaches-back-into-second-week"),
+        pytest.param(0, [False, False, False], id="no-window"),
+    ],
+)
+def test_weekly_figures_mark_weeks_inside_the_delay_window(
+    delay_days: int, expected: list[bool]
+) -> None:
+    daily = np.full(21, 20.0)
+    dates = np.arange(np.datetime64("2026-03-01"), np.datetime64("2026-03-22"))
+    weeks = weekly_figures(daily, dates, 100_000.0, 10, delay_days=delay_days)
+    assert [w.provisional for w in weeks] == expected
+
+
+def test_weekly_figures_keep_the_reported_rate_of_a_provisional_week() -> None:
+    daily = np.array([30.0] * 7 + [2.0] * 7)  # 210 cases, then 14 reported so far
+    dates = np.arange(np.datetime64("2026-03-01"), np.datetime64("2026-03-15"))
+    weeks = weekly_figures(daily, dates, 100_000.0, 10)
+    assert weeks[-1].provisional
+    # 14 cases in 100 000 people = 14 per 100 000: what has been reported, not inflated.
+    assert weeks[-1].rate == pytest.approx(14.0)
+    assert weeks[-1].count_text == "14"
+
+
+def test_weekly_figures_refuse_a_negative_delay_window() -> None:
+    with pytest.raises(ValueError, match="delay_days must be >= 0, got -1"):
+        weekly_figures(np.ones(7), np.arange(np.datetime64("2026-03-01"),
+                                             np.datetime64("2026-03-08")), 1000.0, 10,
+                       delay_days=-1)
+
+
+def test_public_json_marks_only_the_newest_week_provisional(published: TestClient) -> None:
+    weeks = published.get("/api/public/districts/D03").json()["weeks"]
+    assert [w["provisional"] for w in weeks] == [False] * (len(weeks) - 1) + [True]
+
+
+def test_public_district_page_labels_the_provisional_week(published: TestClient) -> None:
+    text = published.get("/district/D03").text
+    assert text.count("provisional: late reports still arriving") == 1
+    assert 'class="provisional"' in text
+
+
+def test_public_district_page_labels_the_provisional_week_in_german(
+    published: TestClient,
+) -> None:
+    text = published.get("/district/D03?lang=de").text
+    assert "vorläufig: Nachmeldungen treffen noch ein" in text

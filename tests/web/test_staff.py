@@ -5,7 +5,14 @@ from __future__ import annotations
 import pytest
 from fastapi.testclient import TestClient
 
-from server.services.auth import LoginLimiter, TooManyAttemptsError, has_role
+from server.services import auth
+from server.services.auth import (
+    LoginLimiter,
+    LoginRefusedError,
+    TooManyAttemptsError,
+    authenticate,
+    has_role,
+)
 from tests.web.conftest import ROLE_USER, csrf_of, login
 
 PAGES = [
@@ -191,3 +198,73 @@ def test_login_is_rate_limited_per_user(demo_app_client: TestClient) -> None:
 )
 def test_has_role_orders_roles(role: str, needed: str, ok: bool) -> None:
     assert has_role(role, needed) is ok
+
+
+@pytest.mark.parametrize(
+    ("name", "hash_of"),
+    [
+        pytest.param("nobody.here", "dummy", id="unknown-user"),
+        pytest.param("ada.analyst", "ada.analyst", id="known-user-wrong-password"),
+    ],
+)
+def test_authenticate_runs_the_verifier_whether_or_not_the_user_exists(
+    demo_app_client: TestClient, monkeypatch: pytest.MonkeyPatch, name: str, hash_of: str
+) -> None:
+    # Timing side channel (common practice, no source): both paths must run scrypt once.
+    calls: list[str] = []
+    real = auth.verify_password
+
+    def recording(password: str, stored: str) -> bool:
+        calls.append(stored)
+        return real(password, stored)
+
+    monkeypatch.setattr(auth, "verify_password", recording)
+    db = demo_app_client.app.state.database  # type: ignore[attr-defined]
+    with db.sessions() as session, pytest.raises(LoginRefusedError):
+        authenticate(session=session, name=name, password="not-the-password",
+                     limiter=LoginLimiter(), client="test")
+    assert len(calls) == 1
+    assert calls[0].startswith("scrypt$")
+    if hash_of == "dummy":
+        assert calls[0] == auth._dummy_hash()
+
+
+def test_overview_with_unknown_sort_key_is_422(demo_app_client: TestClient) -> None:
+    demo_app_client.app.state.login_limiter = LoginLimiter()  # type: ignore[attr-defined]
+    assert login(demo_app_client, "ada.analyst") == 303
+    answer = demo_app_client.get("/staff/?sort=bogus")
+    assert answer.status_code == 422
+    assert "sort must be one of pending, name, code, tier, recommended, got &#39;bogus&#39;" in (
+        answer.text)
+
+
+def test_district_page_with_start_after_end_is_422(demo_app_client: TestClient) -> None:
+    demo_app_client.app.state.login_limiter = LoginLimiter()  # type: ignore[attr-defined]
+    assert login(demo_app_client, "ada.analyst") == 303
+    answer = demo_app_client.get("/staff/district/D01?start=2030-01-01&end=2020-01-01")
+    assert answer.status_code == 422
+    assert "start 2030-01-01 is after end 2020-01-01" in answer.text
+
+
+def test_draft_uploaded_as_a_file_is_read_and_checked(demo_app_client: TestClient) -> None:
+    demo_app_client.app.state.login_limiter = LoginLimiter()  # type: ignore[attr-defined]
+    assert login(demo_app_client, "ada.analyst") == 303
+    csrf = csrf_of(demo_app_client.get("/staff/policies").text)
+    draft = b"name: broken\nversion: '1'\ntiers:\n  - name: Only\n"
+    answer = demo_app_client.post("/staff/policies/draft", data={"csrf": csrf},
+                                  files={"file": ("mine.yaml", draft, "application/yaml")})
+    assert answer.status_code == 422
+    assert "mine.yaml:" in answer.text
+
+
+def test_feed_upload_reads_the_file_and_names_an_unknown_feed(
+    demo_app_client: TestClient,
+) -> None:
+    demo_app_client.app.state.login_limiter = LoginLimiter()  # type: ignore[attr-defined]
+    assert login(demo_app_client, "ada.analyst") == 303
+    csrf = csrf_of(demo_app_client.get("/staff/feeds").text)
+    answer = demo_app_client.post(
+        "/staff/feeds/upload", data={"csrf": csrf, "feed": "no-such-feed", "dry_run": "true"},
+        files={"file": ("x.csv", b"region,date,measure,value\n", "text/csv")})
+    assert answer.status_code == 422
+    assert "unknown feed &#39;no-such-feed&#39;" in answer.text
