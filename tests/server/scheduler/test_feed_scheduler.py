@@ -6,11 +6,17 @@ import time
 from datetime import UTC, datetime, timedelta
 
 import pytest
+from apscheduler.schedulers.background import BackgroundScheduler
 from sqlalchemy import func, select
 
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import RetryPolicy
-from server.scheduler.feed_scheduler import FeedScheduler, trigger_of
+from server.scheduler.feed_scheduler import (
+    JOB_TABLE,
+    FeedScheduler,
+    SharedEngineJobStore,
+    trigger_of,
+)
 from server.services.database import Database
 from server.services.feeds import LeaderLease, run_feed
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
@@ -126,3 +132,36 @@ def test_scheduler_tick_must_be_shorter_than_lease(committed_db: Database) -> No
     with pytest.raises(ValueError, match="tick_seconds must be in"):
         FeedScheduler(committed_db, catalogue=catalogue("http://x/y", "{interval: 1h}"),
                       lease_seconds=1.0, tick_seconds=2.0)
+
+
+def test_scheduler_missed_runs_after_downtime_run_once(  # type: ignore[no-untyped-def]
+    committed_db: Database, feed_server
+) -> None:
+    # An hourly feed whose scheduler was down for five hours: the stored job's next run time lies
+    # five hours back. Coalescing runs the missed pulls once on restart, not five times.
+    seed(committed_db)
+    cat = catalogue(feed_server.url, "{interval: 1h, timezone: UTC}")
+    first = FeedScheduler(committed_db, catalogue=cat, retry=FAST, lease_seconds=1.0,
+                          tick_seconds=0.2, holder="first")
+    first.start()
+    assert wait_for(lambda: "feed:pulled" in first.next_runs())
+    first.stop()
+    # Rewrite the stored job as a scheduler that never started would have left it.
+    store = SharedEngineJobStore(engine=committed_db.engine, tablename=JOB_TABLE)
+    store.start(BackgroundScheduler(timezone=UTC), "default")
+    job = store.lookup_job("feed:pulled")
+    job.next_run_time = datetime.now(UTC) - timedelta(hours=5)
+    store.update_job(job)
+    assert feed_server.requests == 0
+    again = FeedScheduler(committed_db, catalogue=cat, retry=FAST, lease_seconds=1.0,
+                          tick_seconds=0.2, holder="again")
+    again.start()
+    try:
+        assert wait_for(lambda: feed_server.requests >= 1)
+        time.sleep(1.0)  # any further catch-up runs would come at once
+        assert feed_server.requests == 1
+        assert vintages(committed_db) == 1
+        next_run = again.next_runs()["feed:pulled"]
+        assert next_run > datetime.now(UTC)  # type: ignore[operator]
+    finally:
+        again.stop()
