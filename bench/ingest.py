@@ -17,13 +17,11 @@ from __future__ import annotations
 import argparse
 import tempfile
 import time
-import uuid
 from datetime import UTC, date, datetime
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import event, text
 
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import Payload
@@ -32,8 +30,8 @@ from server.services.ingest import ingest_payload
 from server.store import (
     MeasureRecord,
     RegionRecord,
-    make_engine,
     make_sessionmaker,
+    scratch_engine,
     upgrade,
     upsert_measures,
     upsert_regions,
@@ -55,31 +53,10 @@ def write_csv(path: Path, regions: int, days: int, seed: int = 5) -> int:
     return regions * days
 
 
-def database(url: str) -> tuple[Database, str | None]:
-    if url.startswith("sqlite"):
-        engine = make_engine(url)
-        schema = None
-    else:
-        schema = f"tw_bench_{uuid.uuid4().hex[:10]}"
-        admin = make_engine(url)
-        with admin.begin() as conn:
-            conn.execute(text(f'CREATE SCHEMA "{schema}"'))
-        admin.dispose()
-        engine = make_engine(url)
-
-        @event.listens_for(engine, "connect")
-        def _path(dbapi_connection, _record):  # type: ignore[no-untyped-def]
-            with dbapi_connection.cursor() as cursor:
-                cursor.execute(f'SET search_path TO "{schema}"')
-            dbapi_connection.commit()
-
-    upgrade(engine)
-    return Database(engine=engine, sessions=make_sessionmaker(engine)), schema
-
-
 def ingest_rate(url: str, path: Path, regions: int) -> tuple[float, int]:
-    db, schema = database(url)
-    try:
+    with scratch_engine(url, prefix="tw_bench") as engine:
+        upgrade(engine)
+        db = Database(engine=engine, sessions=make_sessionmaker(engine))
         with db.transaction() as session:
             upsert_regions(session=session, records=[
                 RegionRecord(code=f"B{i:05d}", name=f"Bench {i}", level="district", parent=None,
@@ -92,13 +69,6 @@ def ingest_rate(url: str, path: Path, regions: int) -> tuple[float, int]:
                 session=session, feed=FEED, payload=Payload.from_path(path),
                 received_at=datetime.now(UTC), today=date.today())
         return time.perf_counter() - start, receipt.rows_accepted
-    finally:
-        db.dispose()
-        if schema is not None:
-            admin = make_engine(url)
-            with admin.begin() as conn:
-                conn.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
-            admin.dispose()
 
 
 def main() -> None:

@@ -7,7 +7,7 @@ Ratios compare like with like on a noisy machine; absolute times are for orienta
 
     python bench/store.py [--regions 500] [--days 365] [--url URL]
 
---url must name a scratch database: the benchmark drops and recreates its tables.
+On PostgreSQL (``--url``) the benchmark works in a schema of its own and drops it at the end.
 """
 
 from __future__ import annotations
@@ -27,11 +27,13 @@ from server.store import (
     MeasureRecord,
     RegionRecord,
     append_vintage,
+    make_sessionmaker,
     read_dense,
+    scratch_engine,
+    upgrade,
     upsert_measures,
     upsert_regions,
 )
-from server.store.models import Base
 
 
 def timed(func):  # type: ignore[no-untyped-def]
@@ -52,11 +54,12 @@ def main() -> None:
 
 
 def run(url: str, n_regions: int, n_days: int) -> None:
-    from server.config import Settings
+    with scratch_engine(url, prefix="tw_bench") as engine:
+        upgrade(engine)
+        measure(Database(engine=engine, sessions=make_sessionmaker(engine)), n_regions, n_days)
 
-    db = Database.from_settings(Settings(database_url=url, demo_mode=True))
-    Base.metadata.drop_all(db.engine)
-    db.upgrade()
+
+def measure(db: Database, n_regions: int, n_days: int) -> None:
     codes = [f"B{i:05d}" for i in range(n_regions)]
     start = date(2025, 1, 1)
     dates = pd.date_range(start, periods=n_days).date
@@ -105,7 +108,6 @@ def run(url: str, n_regions: int, n_days: int) -> None:
     print(f"backend {db.engine.dialect.name}: {n:,} rows ({n_regions} regions x {n_days} days)")
     print(f"append: {n / t_write:,.0f} rows/s; ratio to pandas to_csv {t_write / base_write:.1f}x")
     print(f"read:   {n / t_read:,.0f} rows/s; ratio to pandas pivot  {t_read / base_read:.1f}x")
-    db.dispose()
 
 
 if __name__ == "__main__":

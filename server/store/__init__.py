@@ -8,7 +8,7 @@ from server.store.catalogue import (
     upsert_measures,
     upsert_regions,
 )
-from server.store.engine import check_connection, make_engine, make_sessionmaker
+from server.store.engine import check_connection, make_engine, make_sessionmaker, scratch_engine
 from server.store.errors import (
     DatabaseUnavailableError,
     DuplicateKeyError,
@@ -57,6 +57,7 @@ __all__ = [
     "regions_by_level",
     "replace_catchments",
     "revision_history",
+    "scratch_engine",
     "upgrade",
     "upsert_measures",
     "upsert_regions",

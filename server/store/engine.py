@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import sqlite3
+import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -58,3 +61,41 @@ def check_connection(engine: Engine) -> None:
         raise DatabaseUnavailableError(
             engine.url.render_as_string(hide_password=True), reason
         ) from None
+
+
+@contextmanager
+def scratch_engine(url: str, *, prefix: str = "tw_scratch") -> Iterator[Engine]:
+    """An engine on a throw-away schema, for tests and benchmarks.
+
+    On PostgreSQL a new schema named ``<prefix>_<random>`` is created, every connection of the
+    engine uses it (``search_path``), and it is dropped with everything in it at the end, so
+    parallel runs on one database never meet. SQLite URLs are used as they are.
+    """
+    if make_url(url).get_backend_name() != "postgresql":
+        engine = make_engine(url)
+        try:
+            yield engine
+        finally:
+            engine.dispose()
+        return
+    schema = f"{prefix}_{uuid.uuid4().hex[:12]}"
+    admin = make_engine(url)
+    try:
+        with admin.begin() as connection:
+            connection.execute(text(f'CREATE SCHEMA "{schema}"'))
+        engine = make_engine(url)
+
+        @event.listens_for(engine, "connect")
+        def _search_path(dbapi_connection: Any, _record: Any) -> None:
+            with dbapi_connection.cursor() as cursor:
+                cursor.execute(f'SET search_path TO "{schema}"')
+            dbapi_connection.commit()
+
+        try:
+            yield engine
+        finally:
+            engine.dispose()
+            with admin.begin() as connection:
+                connection.execute(text(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE'))
+    finally:
+        admin.dispose()

@@ -4,16 +4,14 @@ from __future__ import annotations
 
 import os
 import threading
-import uuid
 from collections.abc import Iterator
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
-from sqlalchemy import event, text
 
 from server.services.database import Database
-from server.store import make_engine, make_sessionmaker, upgrade
+from server.store import make_sessionmaker, scratch_engine, upgrade
 
 POSTGRES_URL = os.environ.get("TIERWISE_TEST_POSTGRES_URL")
 
@@ -26,35 +24,11 @@ POSTGRES_URL = os.environ.get("TIERWISE_TEST_POSTGRES_URL")
 ])
 def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Database]:
     """A migrated database whose commits are real (the scheduler commits), dropped afterwards."""
-    if request.param == "sqlite":
-        engine = make_engine(f"sqlite:///{tmp_path / 'sched.db'}")
-        schema = None
-    else:
-        assert POSTGRES_URL is not None
-        schema = f"tw_sched_{uuid.uuid4().hex[:12]}"
-        admin = make_engine(POSTGRES_URL)
-        with admin.begin() as conn:
-            conn.execute(text(f'CREATE SCHEMA "{schema}"'))
-        admin.dispose()
-        engine = make_engine(POSTGRES_URL)
-
-        @event.listens_for(engine, "connect")
-        def _path(dbapi_connection, _record):  # type: ignore[no-untyped-def]
-            with dbapi_connection.cursor() as cursor:
-                cursor.execute(f'SET search_path TO "{schema}"')
-            dbapi_connection.commit()
-
-    upgrade(engine)
-    db = Database(engine=engine, sessions=make_sessionmaker(engine))
-    try:
-        yield db
-    finally:
-        engine.dispose()
-        if schema is not None:
-            admin = make_engine(POSTGRES_URL)  # type: ignore[arg-type]
-            with admin.begin() as conn:
-                conn.execute(text(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE'))
-            admin.dispose()
+    url = f"sqlite:///{tmp_path / 'sched.db'}" if request.param == "sqlite" else POSTGRES_URL
+    assert url is not None
+    with scratch_engine(url, prefix="tw_sched") as engine:
+        upgrade(engine)
+        yield Database(engine=engine, sessions=make_sessionmaker(engine))
 
 
 class FeedServer:
