@@ -11,6 +11,7 @@ from fastapi.staticfiles import StaticFiles
 
 from server.config import Settings
 from server.services.auth import LoginLimiter, SessionSigner
+from server.services.backtest_jobs import BacktestJobs
 from server.services.database import Database
 from server.services.notify import notify_config_from
 from web import assets, health, login, policies, public, review, staff, users
@@ -50,6 +51,7 @@ def create_app(
             for task in background:
                 stack.enter_context(task(db))
             yield
+        _app.state.backtests.close()  # drops queued backtests, stops a running one
         if owns_db:
             db.dispose()
 
@@ -68,6 +70,8 @@ def create_app(
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter()
     app.state.page_cache = PageCache()
+    # in-memory, one per worker process: jobs are lost on restart (server/services/backtest_jobs)
+    app.state.backtests = BacktestJobs(db, time_zone=settings.zone)
     app.state.maps = MapCache()
     app.add_middleware(SecurityHeaders)
     install_error_handlers(app)

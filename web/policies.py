@@ -1,4 +1,5 @@
-"""Policies: the active ruleset shown readably, versions with diffs, draft upload and check."""
+"""Policies: the active ruleset shown readably, versions with diffs, draft upload and check, and
+backtests of a version run in the background (:mod:`server.services.backtest_jobs`)."""
 
 from __future__ import annotations
 
@@ -7,6 +8,7 @@ from typing import Annotated
 from fastapi import APIRouter, Form, Request, UploadFile
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
+from server.services.backtest_jobs import BacktestJobs
 from server.services.policies import (
     activate_version,
     check_draft,
@@ -15,6 +17,7 @@ from server.services.policies import (
     store_draft,
     versions,
 )
+from web.backtests import OUTLINE, tier_strip
 from web.deps import AdminDep, AnalystDep, CsrfDep, NotifyDep, SessionDep, StaffDep
 from web.templating import render
 
@@ -28,7 +31,7 @@ def policies(
     """A version (default: the active one) as tiers and a thresholds table; all versions."""
     return render(request, "staff/policies.html", {
         "view": policy_view(session=session, ruleset_id=id), "versions": versions(session=session),
-        "check": None,
+        "check": None, "backtests": _jobs(request).recent(),
     })
 
 
@@ -60,7 +63,7 @@ def draft(
         return RedirectResponse(f"/staff/policies?id={new_id}", status_code=303)
     return render(request, "staff/policies.html", {
         "view": policy_view(session=session), "versions": versions(session=session),
-        "check": result, "draft_text": text,
+        "check": result, "draft_text": text, "backtests": _jobs(request).recent(),
     }, status_code=200 if result.ok else 422)
 
 
@@ -71,3 +74,30 @@ def activate(
     """Make a version active and evaluate it (admins only)."""
     activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify)
     return RedirectResponse("/staff/policies", status_code=303)
+
+
+def _jobs(request: Request) -> BacktestJobs:
+    return request.app.state.backtests  # type: ignore[no-any-return]
+
+
+@router.post("/policies/{ruleset_id}/backtest")
+def backtest(
+    request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep, ruleset_id: int,
+    compare: Annotated[str, Form()] = "", as_known: Annotated[str, Form()] = "",
+) -> RedirectResponse:
+    """Start a background backtest of a version (optionally beside another, e.g. the active)."""
+    job_id = _jobs(request).start(
+        session=session, ruleset_id=ruleset_id,
+        compare_id=int(compare) if compare.strip().isdigit() else None,
+        as_known=bool(as_known), user=user.name,
+    )
+    return RedirectResponse(f"/staff/policies/backtests/{job_id}", status_code=303)
+
+
+@router.get("/policies/backtests/{job_id}", response_class=HTMLResponse)
+def backtest_job(request: Request, user: AnalystDep, job_id: str) -> Response:
+    """A backtest's progress (the page reloads itself every 2 s while it runs), then its result."""
+    job = _jobs(request).status(job_id)
+    strips = [tier_strip(f) for f in job.results] if job.state == "done" else []
+    return render(request, "staff/backtest.html", {"job": job, "strips": strips,
+                                                       "outline": OUTLINE})
