@@ -8,6 +8,7 @@ each district's tier changes for readers who cannot use the picture.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -19,6 +20,7 @@ __all__ = ["OUTLINE", "StripRow", "StripRun", "TierStrip", "tier_strip"]
 
 LABEL_WIDTH = 150.0
 ROW_HEIGHT = 14.0
+TICK_LABEL_PX = 55  # room for one month label
 ROW_GAP = 2.0
 PLOT_WIDTH = 600.0
 AXIS_HEIGHT = 18.0
@@ -88,6 +90,9 @@ def tier_strip(figures: RulesetFigures) -> TierStrip:
     start = np.datetime64(figures.start, "D")
     days = start + np.arange(n_days)
     month_starts = np.flatnonzero(days.astype("datetime64[M]").astype("datetime64[D]") == days)
+    # Label every k-th month so that labels ("2026-03", about 45 px at 10 px type) never overlap.
+    every = max(1, math.ceil(TICK_LABEL_PX / (30.4 * day_w)))
+    month_starts = month_starts[::every]
     ticks = tuple(
         (round(LABEL_WIDTH + int(j) * day_w, 2), str(days[j].astype("datetime64[M]")))
         for j in month_starts
