@@ -24,6 +24,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
+from server.services.overview import DataOverview, data_overview
 from server.services.policies import parsed
 from server.services.review import OfficialTier, PendingChange, official_tiers, pending_changes
 from server.store.models import Assessment, Decision, Region, Vintage
@@ -114,6 +115,7 @@ class MorningOverview:
     feeds: tuple[FeedFreshness, ...]
     changes: tuple[Change, ...]
     every: tuple[DistrictLine, ...]
+    data_on_hand: DataOverview
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -284,6 +286,22 @@ def _sort(lines: list[DistrictLine], key: str) -> list[DistrictLine]:
     return sorted(lines, key=lambda x: x.name)
 
 
+_ON_HAND: dict[int, DataOverview] = {}
+
+
+def _data_on_hand(session: Session) -> DataOverview:
+    """The newest reference date of each measure per region, cached per newest vintage."""
+    key = int(session.scalar(select(func.max(Vintage.id))) or 0)
+    with _LOCK:
+        cached = _ON_HAND.get(key)
+    if cached is None:
+        cached = data_overview(session=session)
+        with _LOCK:
+            _ON_HAND.clear()
+            _ON_HAND[key] = cached
+    return cached
+
+
 def morning_overview(
     *, session: Session, sort: str = "pending", query: str = "", tier: int | None = None,
     pending_only: bool = False, page: int = 1, per_page: int = 100,
@@ -298,10 +316,12 @@ def morning_overview(
     now = now or datetime.now(UTC)
     row = active_ruleset(session=session)
     feeds = _feeds(session, now, late_hours)
+    on_hand = _data_on_hand(session)
     if row is None:
         return MorningOverview(
             ruleset=None, data_cutoff=None, day=None, lines=(), total=0, page=1, pages=1,
             pending=0, tier_counts={}, tier_names=(), feeds=feeds, changes=(), every=(),
+            data_on_hand=on_hand,
         )
     cutoff = session.scalar(
         select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
@@ -346,5 +366,5 @@ def morning_overview(
         lines=tuple(chosen[(page - 1) * per_page: page * per_page]), total=len(chosen),
         page=page, pages=pages, pending=len(pending), tier_counts=counts,
         tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds, changes=base.changes,
-        every=tuple(lines),
+        every=tuple(lines), data_on_hand=on_hand,
     )

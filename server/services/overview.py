@@ -1,4 +1,4 @@
-"""Use cases behind the first pages: which regions exist and how fresh their data are."""
+"""Which data are on hand: the newest reference date of each measure for every region."""
 
 from __future__ import annotations
 
@@ -8,7 +8,6 @@ from datetime import date, datetime
 from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
-from server.services.evaluation import LatestAssessment, active_ruleset, latest_assessments
 from server.store import latest_dates
 from server.store.models import Measure, Region
 
@@ -34,13 +33,6 @@ class DataOverview:
 
     def at_level(self, level: str) -> list[RegionFreshness]:
         return [r for r in self.rows if r.level == level]
-
-
-@dataclass(frozen=True, kw_only=True)
-class PublicDistrict:
-    code: str
-    name: str
-    parent_name: str | None
 
 
 def _regions_with_parent(session: Session) -> list[tuple[Region, str | None]]:
@@ -69,31 +61,3 @@ def data_overview(*, session: Session) -> DataOverview:
     rows.sort(key=lambda r: (LEVEL_ORDER.get(r.level, 9), r.code))
     newest = max((d for r in rows for d in r.latest.values()), default=None)
     return DataOverview(measures=measures, rows=tuple(rows), newest_ref_date=newest)
-
-
-def public_districts(*, session: Session) -> list[PublicDistrict]:
-    """Districts for the public list (no staff-only information)."""
-    rows = [
-        PublicDistrict(code=region.code, name=region.name, parent_name=parent_name)
-        for region, parent_name in _regions_with_parent(session)
-        if region.level == "district"
-    ]
-    return sorted(rows, key=lambda r: r.name)
-
-
-@dataclass(frozen=True, kw_only=True)
-class StaffHome:
-    """The staff home: data on hand and each district's newest recommendation."""
-
-    data: DataOverview
-    recommendations: dict[str, LatestAssessment]
-    ruleset: str | None
-
-
-def staff_home(*, session: Session) -> StaffHome:
-    row = active_ruleset(session=session)
-    return StaffHome(
-        data=data_overview(session=session),
-        recommendations=latest_assessments(session=session),
-        ruleset=f"{row.name} {row.version}" if row is not None else None,
-    )

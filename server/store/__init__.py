@@ -3,7 +3,6 @@
 from server.store.catalogue import (
     MeasureRecord,
     RegionRecord,
-    regions_by_level,
     replace_catchments,
     upsert_measures,
     upsert_regions,
@@ -54,7 +53,6 @@ __all__ = [
     "make_engine",
     "make_sessionmaker",
     "read_dense",
-    "regions_by_level",
     "replace_catchments",
     "revision_history",
     "scratch_engine",

@@ -92,10 +92,3 @@ def upsert_measures(*, session: Session, records: Iterable[MeasureRecord]) -> in
         row.aggregation, row.description = rec.aggregation, rec.description
     session.flush()
     return added
-
-
-def regions_by_level(*, session: Session, level: str) -> list[Region]:
-    """Regions of one level in code order."""
-    return list(session.scalars(select(Region).where(Region.level == level).order_by(Region.code)))
-
-

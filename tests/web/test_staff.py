@@ -126,6 +126,16 @@ def test_overview_marks_pending_changes(demo_app_client: TestClient) -> None:
     assert "Morning overview" in text
 
 
+def test_overview_lists_newest_date_of_each_measure(demo_app_client: TestClient) -> None:
+    # The staff home's contract: every district with the newest reference date of each measure.
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/").text
+    assert "Data on hand" in text
+    assert "<th scope=\"col\">hosp_admissions</th>" in text
+    assert "Haldenmoor <code>D11</code>" in text
+    assert "Grennick Marsh <code>WW5</code>" in text
+
+
 def test_overview_filters_by_search(demo_app_client: TestClient) -> None:
     login(demo_app_client, "ada.analyst")
     text = demo_app_client.get("/staff/?q=Vorwick").text
