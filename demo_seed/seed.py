@@ -16,11 +16,18 @@ from pathlib import Path
 import pandas as pd
 
 from demo_seed.feeds import configure_demo_feeds
+from demo_seed.history import official_history
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
-from server.services.evaluation import activate_ruleset, default_ruleset_path, store_ruleset
+from server.services.evaluation import (
+    EvaluationRun,
+    activate_ruleset,
+    default_ruleset_path,
+    store_ruleset,
+)
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
+from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.users import add_user
 
@@ -48,6 +55,7 @@ class SeedSummary:
     ruleset: str
     assessments: int
     push_tokens: dict[str, str]
+    decisions: int = 0
 
 
 def _no_progress(_n: int = 1) -> None:
@@ -67,9 +75,13 @@ def _vintages(observations: pd.DataFrame) -> Iterator[tuple[date, pd.DataFrame]]
 def seed_demo(
     db: Database, *, seed: int = 7, days: int = 548, end: date | None = None,
     rules_dir: Path | None = None, progress: ProgressFactory | None = None,
+    history: bool = False,
 ) -> SeedSummary:
     """Wipe the demo database, fill it with a freshly simulated scenario, and evaluate the
-    demo county's policy over the whole history (assessments as of the newest vintage)."""
+    demo county's policy over the whole history (assessments as of the newest vintage).
+
+    With ``history``, the invented office's past official decisions are recorded and published
+    too (:mod:`demo_seed.history`), leaving the newest changes for the demo's approver."""
     scenario = build_scenario(seed=seed, end=end, days=days)
     recreate_demo_schema(db)
     with db.transaction() as session:
@@ -111,14 +123,33 @@ def seed_demo(
             session=session, path=default_ruleset_path(rules_dir), author="demo"
         )
         run = activate_ruleset(session=session, row=ruleset, actor="demo")
+    decisions = 0
+    if history and run is not None:
+        decisions = _record_history(db, scenario, run)
     tokens = configure_demo_feeds(db)
     districts = sum(1 for r in scenario.regions if r.level == "district")
     return SeedSummary(
         start=scenario.start, end=scenario.end, districts=districts, vintages=len(batches),
         observations=len(scenario.observations), users=DEMO_USERS,
         ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
-        push_tokens=tokens,
+        push_tokens=tokens, decisions=decisions,
     )
+
+
+def _record_history(db: Database, scenario: Scenario, run: EvaluationRun) -> int:
+    evaluation = run.evaluation
+    if evaluation is None:  # a reused run: the history was recorded with it
+        return 0
+    population = {r.code: r.population for r in scenario.regions}
+    records = official_history(
+        regions=evaluation.regions, populations=[population[c] for c in evaluation.regions],
+        dates=evaluation.dates, tier=evaluation.tier, tier_name=evaluation.ruleset.tier_name,
+    )
+    with db.transaction() as session:
+        result = import_official_history(
+            session=session, records=records, source="demo_seed history", actor="demo"
+        )
+    return result.stored
 
 
 def _region_records(scenario: Scenario) -> list[RegionRecord]:

@@ -9,6 +9,7 @@ from typing import Annotated
 
 import typer
 
+from server.cli.decisions import decisions_app
 from server.cli.estimate import estimate_command
 from server.cli.feeds import feeds_app, ingest_command, scheduler_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
@@ -40,6 +41,7 @@ app.command("evaluate")(evaluate_command)
 app.add_typer(feeds_app, name="feeds")
 app.command("ingest")(ingest_command)
 app.command("scheduler")(scheduler_command)
+app.add_typer(decisions_app, name="decisions")
 
 
 def _settings(**overrides: object) -> Settings:
@@ -99,7 +101,8 @@ def demo(
     db = _database(settings, check=False)
     try:
         summary = seed_demo(
-            db, seed=seed, days=days, end=end, rules_dir=settings.rules_dir, progress=progress_bar
+            db, seed=seed, days=days, end=end, rules_dir=settings.rules_dir, progress=progress_bar,
+            history=True,
         )
     finally:
         db.dispose()
@@ -109,6 +112,8 @@ def demo(
         f"into {_shown(settings.database_url)}"
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
+    say(f"Recorded {summary.decisions} past official decisions of the invented office "
+        "(published); the newest changes await review")
     for name, role, password in summary.users:
         say(f"  demo user {name!r} ({role}), password {password!r}")
     for feed, token in summary.push_tokens.items():

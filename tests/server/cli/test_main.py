@@ -151,3 +151,17 @@ def test_cli_serve_unmigrated_database_says_upgrade(
     result = run("serve")
     assert result.exit_code == 1
     assert "run `tierwise db upgrade`" in result.output
+
+
+def test_cli_decisions_import_names_the_bad_line_and_stores_nothing(
+    env: str, tmp_path: Path
+) -> None:
+    from server.store.models import Decision
+
+    assert run("db", "upgrade").exit_code == 0
+    path = tmp_path / "history.csv"
+    path.write_text("region,effective_date,tier,reason\nD01,2026-08-01,1,agreed\n")
+    result = run("decisions", "import", str(path))
+    assert result.exit_code == 1
+    assert result.output.strip().endswith("history.csv: line 2, region: 'D01' is not a district")
+    assert count(env, Decision) == 0
