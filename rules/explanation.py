@@ -110,8 +110,9 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
         "status": _REASONS[int(ev.reason[c, r, d])],
         "above_days": int(ev.above[c, r, d]),
         "below_days": int(ev.below[c, r, d]),
-        "enter": [_num(v) for v in th.enter[:, r]],
-        "exit": [_num(v) for v in th.exit[:, r]],
+        # as the policy names them: None for the leading tiers it leaves null (see _threshold)
+        "enter": [None if k < th.first[r] else _num(v) for k, v in enumerate(th.enter[:, r])],
+        "exit": [None if k < th.first[r] else _num(v) for k, v in enumerate(th.exit[:, r])],
         "min_count": _num(th.min_count[r]),
         "conditioned_by": conditioned,
     }
@@ -127,8 +128,14 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
 
 
 def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> float | None:
+    """The threshold the engine applies for ``tier``: a leading tier the policy leaves null
+    takes the first named one (the criterion jumps straight to that tier)."""
     values = item[kind]
-    return values[tier - 1] if 1 <= tier <= len(values) else None
+    if not 1 <= tier <= len(values):
+        return None
+    if values[tier - 1] is None:
+        return next((v for v in values[tier - 1 :] if v is not None), None)
+    return values[tier - 1]
 
 
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:

@@ -49,7 +49,9 @@ class RegionThresholds:
     """Thresholds of one criterion variant for every region: ``(tiers above 0, regions)``.
 
     ``enter``/``exit`` are NaN for tiers the criterion cannot reach; ``min_count`` is NaN where
-    no minimum applies.
+    no minimum applies. Leading tiers the policy leaves null hold the first threshold (the
+    criterion jumps straight to its first reachable tier, :attr:`rules.model.Thresholds.filled`);
+    ``first`` is, per region, the index of that first tier the policy actually names.
     """
 
     rising: bool
@@ -58,6 +60,7 @@ class RegionThresholds:
     enter_strict: NDArray[np.bool_]
     exit_strict: NDArray[np.bool_]
     min_count: NDArray[np.float64]
+    first: NDArray[np.int64]
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -161,7 +164,11 @@ def region_thresholds(
         xs = np.array(th.exit_strict, dtype=bool)
         return tuple(np.repeat(a[:, np.newaxis], n_r, axis=1) for a in (e, x, es, xs))
 
+    def first_named(th: Thresholds) -> int:
+        return next(k for k, t in enumerate(th.enter) if t is not None)
+
     enter, exit_, e_strict, x_strict = arrays(crit.thresholds)
+    first = np.full(n_r, first_named(crit.thresholds), dtype=np.int64)
     min_count = np.full(n_r, np.nan if crit.min_count is None else crit.min_count)
     patches: list[tuple[NDArray[np.bool_], CriterionPatch]] = []
     for ov in ruleset.overrides:
@@ -174,6 +181,7 @@ def region_thresholds(
             pe, px, pes, pxs = arrays(patch.thresholds)
             enter[:, mask], exit_[:, mask] = pe[:, mask], px[:, mask]
             e_strict[:, mask], x_strict[:, mask] = pes[:, mask], pxs[:, mask]
+            first[mask] = first_named(patch.thresholds)
         if patch.min_count is not None:
             min_count[mask] = patch.min_count
     return RegionThresholds(
@@ -183,6 +191,7 @@ def region_thresholds(
         enter_strict=e_strict.astype(bool),
         exit_strict=x_strict.astype(bool),
         min_count=min_count,
+        first=first,
     )
 
 

@@ -121,3 +121,20 @@ def test_criterion_counters_count_days_relative_to_the_tier_held(
     # tier held: 0 until decided 2 on day 2 (held from day 3); 100 < 120 on day 5
     ev = _run([10, 160, 170, 170, 170, 100, 100])
     assert (int(ev.above[0, 0, day]), int(ev.below[0, 0, day])) == (above, below)
+
+
+def test_a_tier_the_policy_leaves_null_is_shown_as_none_but_sentences_use_the_jump() -> None:
+    # ww names no tier-1 threshold: it jumps straight to tier 2 at 4 (rules.model.Thresholds.filled)
+    rules = RULES.replace("enter: [2, 4, 6], exit: [1, 3, 5]",
+                          "enter: [null, 4, 6], exit: [null, 3, 5]")
+    rs = parse_ruleset(rules.replace("MIN", "0"))
+    ind = {
+        "incidence_7d": IndicatorSeries(estimate=np.array([[10.0] * 5])),
+        "ww": IndicatorSeries(estimate=np.array([[0.5, 4.5, 4.5, 4.5, 4.5]])),
+    }
+    ev = evaluate(rs, ind, regions=["r"], dates=np.arange(5) + np.datetime64("2031-03-10"))
+    assert_array_equal(ev.tier[0], [0, 0, 0, 2, 2])
+    ww = next(c for c in ev.explain(0, 3).data["criteria"] if c["id"] == "ww")
+    assert (ww["enter"], ww["exit"]) == ([None, 4.0, 6.0], [None, 3.0, 5.0])
+    # before the rise, ww is short of tier 1 by the threshold that actually applies (4)
+    assert "wastewater 0.5 under 4" in ev.explain(0, 0).sentence
