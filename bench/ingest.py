@@ -2,8 +2,8 @@
 
 Generates a long CSV (``region,date,measure,value``) of ``--regions`` x ``--days`` rows (3 000 x 667
 = 2 001 000 by default, one measure), then times a plain ``pandas.read_csv`` of the file and a full
-``tierwise`` ingest of it (streamed parse, every row check, one vintage in one transaction: COPY on
-PostgreSQL, executemany on SQLite). Prints rows per second and the ratio ingest / read_csv.
+``tierwise`` ingest of it (streamed parse, every row check, one vintage in one transaction: binary
+COPY on PostgreSQL, executemany on SQLite). Prints rows per second and the ratio ingest / read_csv.
 Target: at least 100 000 rows/s, i.e. within 10x of parsing alone.
 
     python bench/ingest.py [--regions 3000] [--days 667] [--postgres URL]

@@ -28,6 +28,8 @@ LAYOUTS = ("long", "wide")
 FORMATS = ("csv", "json")
 CADENCES = ("daily", "weekly", "irregular")
 DATE_STYLES = ("iso", "iso-week")
+DECIMAL_MARKS = (".", ",")
+THOUSANDS = (".", ",", " ", "'")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -131,6 +133,8 @@ class FeedDefinition:
     layout: str = "long"
     delimiter: str | None = None
     encoding: str = "utf-8"
+    decimal: str = "."
+    thousands: str | None = None
     dates: str = "iso"
     columns: Columns = field(default_factory=Columns)
     regions: Mapping[str, str] = field(default_factory=dict)
@@ -147,6 +151,16 @@ class FeedDefinition:
             raise ValueError(f"layout {self.layout!r} is not one of {LAYOUTS}")
         if self.delimiter not in (None, ",", ";", "\t"):
             raise ValueError(f"delimiter {self.delimiter!r} must be ',', ';' or a tab")
+        if self.decimal not in DECIMAL_MARKS:
+            raise ValueError(f"decimal {self.decimal!r} must be '.' or ','")
+        if self.thousands is not None and self.thousands not in THOUSANDS:
+            raise ValueError(
+                f"thousands {self.thousands!r} must be one of {list(THOUSANDS)} or left out"
+            )
+        if self.thousands == self.decimal:
+            raise ValueError(f"thousands and decimal cannot both be {self.decimal!r}")
+        if self.format == "json" and (self.decimal != "." or self.thousands is not None):
+            raise ValueError("decimal and thousands apply to CSV feeds (JSON numbers use '.')")
         if self.dates not in DATE_STYLES:
             raise ValueError(f"dates {self.dates!r} is not one of {DATE_STYLES}")
         if self.cadence not in CADENCES:
@@ -273,8 +287,8 @@ def load_feeds(path: Path) -> FeedCatalogue:
 
 
 _FEED_KEYS = {
-    "name", "description", "source", "format", "layout", "delimiter", "encoding", "dates",
-    "columns", "measures", "regions", "schedule", "cadence", "stale_after",
+    "name", "description", "source", "format", "layout", "delimiter", "encoding", "decimal",
+    "thousands", "dates", "columns", "measures", "regions", "schedule", "cadence", "stale_after",
 }
 
 
@@ -290,9 +304,11 @@ def _feed(reader: _Reader, raw: Any, path: str, base: Path) -> FeedDefinition:
     source = _source(reader, raw["source"], f"{path}.source", base)
     measures = _measures(reader, raw["measures"], f"{path}.measures")
     kwargs: dict[str, Any] = {}
-    for key in ("description", "format", "layout", "encoding", "dates", "cadence"):
+    for key in ("description", "format", "layout", "encoding", "decimal", "dates", "cadence"):
         if key in raw:
             kwargs[key] = str(raw[key])
+    if raw.get("thousands") is not None:
+        kwargs["thousands"] = str(raw["thousands"])
     if "delimiter" in raw:
         kwargs["delimiter"] = None if raw["delimiter"] in (None, "auto") else str(raw["delimiter"])
     if "columns" in raw:

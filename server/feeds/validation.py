@@ -11,6 +11,8 @@ unknown_measure        the measure is not one this feed carries, or not in the c
 unparsable_date        not an ISO 8601 date (weekly feeds also take ISO weeks, 2026-W14)
 future_date            the reference date is after today in the office's time zone
 missing_value          the value is empty
+ambiguous_number       a separator the feed declares neither as ``decimal`` nor ``thousands``
+bad_digit_grouping     thousands separators not between groups of three digits
 non_numeric_value      the value is not a finite number
 negative_count         a count measure below zero
 non_integer_count      a count measure with a fractional value
@@ -19,7 +21,12 @@ out_of_range           outside the plausible range set for the measure in the fe
 
 File checks (over all rows that passed, see :func:`check_file`): ``duplicate_row`` (same key and
 value as an earlier line, which is kept), ``conflicting_duplicate`` (same key, different values:
-every such line is rejected), ``positives_exceed_tests`` (both lines rejected).
+every such line is rejected), ``positives_exceed_tests`` (both lines rejected); and, with values
+read from the store, ``positives_exceed_tests`` for a file's positives (tests) whose tests
+(positives) for that region and date are only stored (:func:`check_stored_pairs`).
+
+Checks run on the distinct values of each column (:class:`~server.feeds.parser.Coded`) and are
+spread back to rows with numpy; messages are built for rejected rows only.
 
 An ISO week is stored on its Monday. Values are multiplied by the measure's ``scale`` before the
 count and range checks.
@@ -37,7 +44,8 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from server.feeds.definition import FeedDefinition
-from server.feeds.parser import RawChunk
+from server.feeds.parser import Coded, RawChunk
+from server.store.reads import StoredValues
 from server.store.vintages import Rejection
 
 EPOCH = date(1970, 1, 1)
@@ -47,8 +55,10 @@ ISO_WEEK = re.compile(r"^(\d{4})-?W(\d{2})$")
 REASONS = (
     "malformed_row", "unknown_region", "unknown_measure", "unparsable_date", "future_date",
     "missing_value", "non_numeric_value", "negative_count", "non_integer_count", "out_of_range",
-    "duplicate_row", "conflicting_duplicate", "positives_exceed_tests",
+    "duplicate_row", "conflicting_duplicate", "positives_exceed_tests", "ambiguous_number",
+    "bad_digit_grouping",
 )
+AMBIGUOUS, BAD_GROUPING = 1, 2
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -109,9 +119,13 @@ class FileCheck:
 
 def day_numbers(text: NDArray[np.object_], *, weeks: bool) -> NDArray[np.float64]:
     """Days since 1970-01-01 of ISO dates (and ISO weeks when ``weeks``); NaN when unparsable."""
-    codes, uniques = pd.factorize(text)
+    coded = Coded.of(text, strip=False)
+    return coded.map(lambda u: _days_of(u, weeks=weeks)).astype(np.float64)
+
+
+def _days_of(uniques: NDArray[np.object_], *, weeks: bool) -> NDArray[np.float64]:
     parsed = np.full(len(uniques), np.nan)
-    for i, u in enumerate(uniques):
+    for i, u in enumerate(uniques.tolist()):
         m = ISO_DATE.match(u)
         try:
             if m:
@@ -120,25 +134,83 @@ def day_numbers(text: NDArray[np.object_], *, weeks: bool) -> NDArray[np.float64
                 parsed[i] = (date.fromisocalendar(int(w[1]), int(w[2]), 1) - EPOCH).days
         except ValueError:
             pass
-    return parsed[codes] if len(uniques) else np.zeros(0)
+    return parsed
 
 
-def _lookup(text: NDArray[np.object_], mapping: Mapping[str, int]) -> NDArray[np.float64]:
-    codes, uniques = pd.factorize(text)
-    ids = np.asarray([mapping.get(u, np.nan) for u in uniques], dtype=np.float64)
-    return ids[codes] if len(uniques) else np.zeros(0)
+def _floats(text: NDArray[np.object_]) -> NDArray[np.float64]:
+    """Numbers of ``text`` as pandas reads them (NaN when not a number)."""
+    if not text.size:
+        return np.zeros(0)
+    joined = "".join(text.tolist())
+    if joined.isascii() and "_" not in joined:  # where float() and pandas agree
+        try:
+            return text.astype(np.float64)
+        except ValueError:
+            pass
+    return np.array(pd.to_numeric(pd.Series(text, dtype=object), errors="coerce"),
+                    dtype=np.float64)
 
 
-def _long_form(chunk: RawChunk, feed: FeedDefinition) -> tuple[dict[str, NDArray], NDArray]:
+def _grouping(decimal: str, thousands: str) -> re.Pattern[str]:
+    sep = "[ \u00a0\u202f]" if thousands == " " else re.escape(thousands)
+    return re.compile(
+        rf"^[+-]?\d{{1,3}}(?:{sep}\d{{3}})+(?:{re.escape(decimal)}\d*)?(?:[eE][+-]?\d+)?$"
+    )
+
+
+def parse_numbers(
+    text: NDArray[np.object_], *, decimal: str = ".", thousands: str | None = None
+) -> tuple[NDArray[np.float64], NDArray[np.int8]]:
+    """Values of number strings written with ``decimal`` and ``thousands``, and a problem code.
+
+    Problem codes: 0 none (the value may still be NaN or infinite), :data:`AMBIGUOUS` (the
+    string uses a separator the feed declares neither as decimal mark nor as thousands
+    separator: ``1,5`` with ``decimal: "."``, ``1.234,5`` with ``decimal: ","`` alone),
+    :data:`BAD_GROUPING` (thousands separators not between groups of three digits, or after the
+    decimal mark). Meant for distinct values (see :class:`~server.feeds.parser.Coded`).
+    """
+    other = "," if decimal == "." else "."
+    problem = np.zeros(text.size, dtype=np.int8)
+    if decimal == "." and thousands is None:
+        values = _floats(text)
+        failed = np.flatnonzero(np.isnan(values))
+        problem[failed] = [AMBIGUOUS if "," in u else 0 for u in text[failed].tolist()]
+        return values, problem
+    grouped = _grouping(decimal, thousands) if thousands is not None else None
+    marks = {thousands} | ({"\u00a0", "\u202f"} if thousands == " " else set())
+    canonical = np.empty(text.size, dtype=object)
+    for i, u in enumerate(text.tolist()):
+        if grouped is not None and any(t in u for t in marks):
+            if not grouped.match(u):
+                problem[i], canonical[i] = BAD_GROUPING, ""
+                continue
+            for t in marks:
+                u = u.replace(t, "")
+        if other in u:
+            problem[i], canonical[i] = AMBIGUOUS, ""
+            continue
+        canonical[i] = u.replace(decimal, ".")
+    values = _floats(canonical)
+    values[problem != 0] = np.nan
+    return values, problem
+
+
+def _lookup(text: Coded, mapping: Mapping[str, int]) -> NDArray[np.float64]:
+    return text.map(
+        lambda u: np.asarray([mapping.get(v, np.nan) for v in u.tolist()], dtype=np.float64)
+    )
+
+
+def _long_form(chunk: RawChunk, feed: FeedDefinition) -> tuple[dict[str, Coded], NDArray]:
     """Columns region, date, measure (feed's measure name), value; and row -> chunk row index."""
     c = feed.columns
     cols = chunk.columns
     n = len(chunk)
     if feed.layout == "long":
         by_source = {m.source: m.measure for m in feed.measures}
-        codes, uniques = pd.factorize(cols[c.measure])
-        names = np.asarray([by_source.get(u, "\x00" + u) for u in uniques], dtype=object)
-        measure = names[codes] if len(uniques) else cols[c.measure]
+        source = cols[c.measure]
+        measure = Coded(codes=source.codes, uniques=np.asarray(
+            [by_source.get(u, "\x00" + u) for u in source.uniques.tolist()], dtype=object))
         return (
             {"region": cols[c.region], "date": cols[c.date], "measure": measure,
              "value": cols[c.value]},
@@ -147,91 +219,111 @@ def _long_form(chunk: RawChunk, feed: FeedDefinition) -> tuple[dict[str, NDArray
     parts_index, parts_measure, parts_value = [], [], []
     for m in feed.measures:
         values = cols[m.source]
-        present = np.flatnonzero(values != "")
+        present = np.flatnonzero(~values.equals(""))
         parts_index.append(present)
-        parts_measure.append(np.full(present.size, m.measure, dtype=object))
-        parts_value.append(values[present])
+        parts_measure.append(np.full(present.size, len(parts_measure), dtype=np.intp))
+        parts_value.append(values.take(present))
     index = np.concatenate(parts_index)
     order = np.argsort(index, kind="stable")
     index = index[order]
+    names = np.asarray([m.measure for m in feed.measures], dtype=object)
     return (
-        {"region": cols[c.region][index], "date": cols[c.date][index],
-         "measure": np.concatenate(parts_measure)[order],
-         "value": np.concatenate(parts_value)[order]},
+        {"region": cols[c.region].take(index), "date": cols[c.date].take(index),
+         "measure": Coded(codes=np.concatenate(parts_measure)[order], uniques=names),
+         "value": Coded.concat(parts_value).take(order)},
         index,
     )
+
+
+def _blank_rows(chunk: RawChunk) -> NDArray[np.bool_]:
+    """Records that are empty or only white space (every column empty is the cheap pre-test)."""
+    empty = ~chunk.malformed
+    for column in chunk.columns.values():
+        empty &= column.equals("")
+    candidates = np.flatnonzero(empty)
+    if candidates.size:
+        empty[candidates] = [not r.strip() for r in chunk.raw_at(candidates)]
+    return empty
 
 
 def validate_chunk(
     chunk: RawChunk, feed: FeedDefinition, catalogue: Catalogue, *, today: date
 ) -> ChunkResult:
     """Apply the row checks to ``chunk``; returns accepted arrays and rejections."""
-    blank = np.asarray([not str(r).strip() for r in chunk.raw], dtype=bool) & ~chunk.malformed
-    keep_rows = np.flatnonzero(~blank)
-    sub = RawChunk(
-        columns={k: v[keep_rows] for k, v in chunk.columns.items()}, lines=chunk.lines[keep_rows],
-        raw=chunk.raw[keep_rows], malformed=chunk.malformed[keep_rows],
-    )
+    blank = _blank_rows(chunk)
+    sub = chunk.take(np.flatnonzero(~blank)) if blank.any() else chunk
     cols, row = _long_form(sub, feed)
     n = row.size
-    reason = np.full(n, "", dtype=object)
+    reason = np.zeros(n, dtype=np.int8)  # index into REASONS, plus one; 0 = accepted so far
     detail = np.full(n, "", dtype=object)
 
     def flag(mask: NDArray[np.bool_], code: str, text: Messages) -> None:
-        new = np.flatnonzero(mask & (reason == ""))
+        new = np.flatnonzero(mask & (reason == 0))
         if new.size:
-            reason[new] = code
+            reason[new] = REASONS.index(code) + 1
             detail[new] = text(new)
 
-    def quoted(values: NDArray[np.object_]) -> Messages:
-        return lambda idx: [repr(str(v)[:80]) for v in values[idx]]
+    def quoted(values: Coded) -> Messages:
+        return lambda idx: [repr(str(v)[:80]) for v in values.take(idx).values]
 
     def fixed(message: str) -> Messages:
         return lambda idx: [message] * idx.size
 
-    def framed(
-        before: str, values: NDArray[np.object_], after: str
-    ) -> Messages:
+    def framed(before: str, values: Coded, after: str) -> Messages:
         return lambda idx: [f"{before}{v}{after}" for v in quoted(values)(idx)]
 
     flag(sub.malformed[row], "malformed_row",
          fixed("more fields than the header, or an open quote"))
     region_code = cols["region"]
     if feed.regions:
-        codes, uniques = pd.factorize(region_code)
-        mapped = np.asarray([feed.regions.get(u, u) for u in uniques], dtype=object)
-        region_code = mapped[codes] if len(uniques) else region_code
+        region_code = Coded(codes=region_code.codes, uniques=np.asarray(
+            [feed.regions.get(u, u) for u in region_code.uniques.tolist()], dtype=object))
     region_id = _lookup(region_code, catalogue.regions)
     flag(np.isnan(region_id), "unknown_region", framed("unknown region code ", cols["region"], ""))
     measure = cols["measure"]
     measure_id = _lookup(measure, catalogue.measures)
     flag(np.isnan(measure_id), "unknown_measure", lambda idx: [
         f"measure {str(m).lstrip(chr(0))[:80]!r} is not carried by feed {feed.name!r}"
-        for m in measure[idx]
+        for m in measure.take(idx).values
     ])
-    day = day_numbers(cols["date"], weeks=feed.cadence == "weekly")
-    expect = "YYYY-MM-DD or YYYY-Www" if feed.cadence == "weekly" else "YYYY-MM-DD"
+    weeks = feed.cadence == "weekly"
+    day = cols["date"].map(lambda u: _days_of(u, weeks=weeks))
+    expect = "YYYY-MM-DD or YYYY-Www" if weeks else "YYYY-MM-DD"
     flag(np.isnan(day), "unparsable_date",
          framed("date ", cols["date"], f" is not a date ({expect})"))
     today_n = (today - EPOCH).days
     with np.errstate(invalid="ignore"):
         flag(day > today_n, "future_date", framed("date ", cols["date"], " is in the future"))
     raw_value = cols["value"]
-    flag(raw_value == "", "missing_value", fixed("the value is empty"))
-    value = pd.to_numeric(pd.Series(raw_value, dtype=object), errors="coerce").to_numpy(
-        dtype=np.float64
+    flag(raw_value.equals(""), "missing_value", fixed("the value is empty"))
+    parsed, problem = parse_numbers(
+        raw_value.uniques, decimal=feed.decimal, thousands=feed.thousands
     )
+    value = parsed[raw_value.codes] if raw_value.uniques.size else np.zeros(0)
+    problem = problem[raw_value.codes] if raw_value.uniques.size else np.zeros(0, np.int8)
+    other = "," if feed.decimal == "." else "."
+    flag(problem == AMBIGUOUS, "ambiguous_number", framed(
+        "value ", raw_value,
+        f" has a {other!r}, which this feed declares neither as its decimal mark "
+        f"({feed.decimal!r}) nor as its thousands separator (set `decimal:` or `thousands:`)",
+    ))
+    flag(problem == BAD_GROUPING, "bad_digit_grouping", framed(
+        "value ", raw_value,
+        f" does not put the thousands separator {feed.thousands!r} between groups of three "
+        "digits before the decimal mark",
+    ))
     flag(~np.isfinite(value), "non_numeric_value", framed("value ", raw_value, " is not a number"))
-    scale = np.ones(n)
-    low = np.full(n, -np.inf)
-    high = np.full(n, np.inf)
-    is_count = np.zeros(n, dtype=bool)
-    for m in feed.measures:
-        pick = measure == m.measure
-        scale[pick] = m.scale
-        low[pick] = -np.inf if m.minimum is None else m.minimum
-        high[pick] = np.inf if m.maximum is None else m.maximum
-        is_count[pick] = m.measure in catalogue.counts
+    names = measure.uniques.tolist()
+    spec = {m.measure: m for m in feed.measures}
+    per_measure = np.asarray([
+        (spec[u].scale, -np.inf if spec[u].minimum is None else spec[u].minimum,
+         np.inf if spec[u].maximum is None else spec[u].maximum, u in catalogue.counts)
+        if u in spec else (1.0, -np.inf, np.inf, False)
+        for u in names
+    ], dtype=np.float64).reshape(len(names), 4)
+    scale, low, high, counts = (per_measure[measure.codes, k] if names else np.zeros(0)
+                                for k in range(4))
+    is_count = counts.astype(bool)
     with np.errstate(invalid="ignore", over="ignore"):
         value = value * scale
         flag(is_count & (value < 0), "negative_count",
@@ -240,9 +332,9 @@ def validate_chunk(
              framed("a count must be a whole number: ", raw_value, ""))
         flag((value < low) | (value > high), "out_of_range", lambda idx: [
             f"value {str(v)[:80]!r} is outside the plausible range [{a:g}, {b:g}]"
-            for v, a, b in zip(raw_value[idx], low[idx], high[idx], strict=True)
+            for v, a, b in zip(raw_value.take(idx).values, low[idx], high[idx], strict=True)
         ])
-    bad = reason != ""
+    bad = reason != 0
     good = ~bad
     accepted = Accepted(
         region_id=region_id[good].astype(np.int64), measure_id=measure_id[good].astype(np.int64),
@@ -253,17 +345,20 @@ def validate_chunk(
 
 
 def _rejections(
-    sub: RawChunk, rows: NDArray[np.int64], reasons: NDArray[np.object_],
+    sub: RawChunk, rows: NDArray[np.int64], reasons: NDArray[np.int8],
     details: NDArray[np.object_],
 ) -> list[Rejection]:
     out: list[Rejection] = []
-    seen: set[tuple[int, str]] = set()
-    for r, code, text in zip(rows.tolist(), reasons.tolist(), details.tolist(), strict=True):
+    seen: set[tuple[int, int]] = set()
+    raw = sub.raw_at(rows) if rows.size else []
+    for r, code, text, record in zip(rows.tolist(), reasons.tolist(), details.tolist(), raw,
+                                      strict=True):
         line = int(sub.lines[r])
         if (line, code) in seen:  # wide rows: one rejection per line and reason
             continue
         seen.add((line, code))
-        out.append(Rejection(line=line, raw=str(sub.raw[r])[:2000], reason=code, message=text))
+        out.append(Rejection(line=line, raw=record[:2000], reason=REASONS[code - 1],
+                             message=text))
     return out
 
 
@@ -337,3 +432,56 @@ def _positives_over_tests(
             lines.append(int(a.line[k]))
             reasons.append("positives_exceed_tests")
             messages.append(text)
+
+
+def unpaired(
+    accepted: Accepted, keep: NDArray[np.bool_], *, measure: int, other: int
+) -> NDArray[np.int64]:
+    """Rows of ``measure`` still kept whose region and date have no kept row of ``other``."""
+    key = accepted.region_id * 1_000_000 + accepted.day
+    mine = np.flatnonzero(keep & (accepted.measure_id == measure))
+    theirs = key[keep & (accepted.measure_id == other)]
+    return mine[~np.isin(key[mine], theirs)]
+
+
+def check_stored_pairs(
+    accepted: Accepted, keep: NDArray[np.bool_], *, positives: int, tests: int,
+    stored_positives: StoredValues, stored_tests: StoredValues,
+) -> FileCheck:
+    """Positives above tests where the file gives one measure and the store holds the other.
+
+    ``stored_*`` are the newest stored values for the file's unpaired rows (see
+    :func:`unpaired`). Only the file's row is rejected (``positives_exceed_tests``); the stored
+    value stays. ``keep`` is updated in place.
+    """
+    lines: list[int] = []
+    messages: list[str] = []
+    key = accepted.region_id * 1_000_000 + accepted.day
+    for mine, other, stored in ((positives, tests, stored_tests),
+                                (tests, positives, stored_positives)):
+        rows = unpaired(accepted, keep, measure=mine, other=other)
+        if rows.size == 0 or len(stored) == 0:
+            continue
+        stored_key = stored.region_id * 1_000_000 + stored.day
+        order = np.argsort(stored_key, kind="stable")
+        pos = np.minimum(np.searchsorted(stored_key[order], key[rows]), order.size - 1)
+        match = stored_key[order][pos] == key[rows]
+        rows, at = rows[match], order[pos[match]]
+        file_value, store_value = accepted.value[rows], stored.value[at]
+        over = file_value > store_value if mine == positives else store_value > file_value
+        for i, j in zip(rows[over].tolist(), at[over].tolist(), strict=True):
+            keep[i] = False
+            lines.append(int(accepted.line[i]))
+            if mine == positives:
+                text = (f"positives {accepted.value[i]:g} (line {int(accepted.line[i])}) exceed "
+                        f"tests {stored.value[j]:g} already stored (vintage "
+                        f"{int(stored.vintage_id[j])}) for the same region and date")
+            else:
+                text = (f"positives {stored.value[j]:g} already stored (vintage "
+                        f"{int(stored.vintage_id[j])}) exceed tests {accepted.value[i]:g} "
+                        f"(line {int(accepted.line[i])}) for the same region and date")
+            messages.append(text)
+    return FileCheck(
+        keep=keep, lines=np.asarray(lines, dtype=np.int64),
+        reasons=("positives_exceed_tests",) * len(lines), messages=tuple(messages),
+    )

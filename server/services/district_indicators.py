@@ -5,6 +5,13 @@ indicators with :mod:`server.indicators`, and hands them to the rules engine as
 :class:`rules.IndicatorSeries`, each with the age of its underlying data so stale inputs are
 unknown.
 
+Two limits make old data unknown. The ruleset's ``max_age_days`` per indicator judges the age of
+the data behind each value. A feed's ``stale_after`` (``docs/feeds.md``) judges the feed: given
+``stale_after`` (feed name -> limit, :func:`feed_limits`), a region's measure is *stale* on every
+day more than the limit after its newest reference date as known at the cutoff, and every
+indicator built from it carries ``stale`` there, so the engine explains it as stale data. The
+limit is the one of the feed that told the newest date (the most lenient one on a tie).
+
 Indicator names known here (a ruleset may use any subset): ``incidence_7d``, ``positivity_7d``,
 ``tests_7d``, ``admissions_7d``, ``icu_share``, ``rt``, ``ww_trend``, ``gp_aberration``. Percentages
 (positivity, ICU share) are expressed in percent, as policies write them.
@@ -12,9 +19,9 @@ Indicator names known here (a ruleset may use any subset): ``incidence_7d``, ``p
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
-from dataclasses import dataclass
-from datetime import date, datetime
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import date, datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
@@ -22,6 +29,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
 from rules import IndicatorSeries, Ruleset
+from server.feeds.definition import FeedDefinition
 from server.indicators.aberration import ears
 from server.indicators.hospital import admission_rate, occupancy_share
 from server.indicators.poisson import incidence_rate
@@ -33,6 +41,7 @@ from server.indicators.wilson import testing_rate as tests_per_population
 from server.services.errors import ServiceError
 from server.store import read_dense
 from server.store.models import Catchment, Region
+from server.store.reads import feed_last_dates
 
 DISTRICT_MEASURES = ("cases", "tests", "positives", "hosp_admissions", "gp_ari")
 AREA_MEASURES = ("icu_occupied", "icu_staffed")
@@ -55,12 +64,61 @@ class DistrictData:
     plant_population: NDArray[np.float64]
     served: NDArray[np.float64]  # (districts, plants): people of each district served by a plant
     as_of: datetime | None
+    # Per measure, (districts, days) (area measures by district): True where the feed's
+    # staleness limit is passed; ``ww_plants``: every plant serving the district is stale.
+    stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+
+    def stale_of(self, *measures: str) -> NDArray[np.bool_] | None:
+        """Where any of ``measures`` is past its feed's staleness limit (None: nowhere known)."""
+        masks = [self.stale[m] for m in measures if m in self.stale]
+        return np.logical_or.reduce(masks) if masks else None
+
+
+def feed_limits(feeds: Iterable[FeedDefinition]) -> dict[str, timedelta]:
+    """Feed name -> its ``stale_after``, the argument :func:`load_district_data` takes."""
+    return {f.name: f.stale_after for f in feeds}
+
+
+def stale_masks(
+    *, session: Session, regions: Sequence[str], measures: Sequence[str],
+    dates: NDArray[np.datetime64], as_of: datetime | None, stale_after: Mapping[str, timedelta],
+) -> dict[str, NDArray[np.bool_]]:
+    """Per measure, (regions, days): True on days past the feed limit after the newest date.
+
+    The newest reference date of each region and measure is the one known at ``as_of``; its
+    limit is that of the feed that told it (the longest when several feeds told the same date).
+    Feeds without a limit in ``stale_after`` (no longer configured) never make data stale.
+    """
+    row = {code: i for i, code in enumerate(regions)}
+    newest: dict[tuple[str, str], tuple[date, timedelta]] = {}
+    for last in feed_last_dates(session=session, measures=measures, as_of=as_of):
+        limit = stale_after.get(last.feed)
+        if limit is None or last.region not in row:
+            continue
+        key = (last.region, last.measure)
+        known = newest.get(key)
+        if known is None or last.ref_date > known[0] or (
+            last.ref_date == known[0] and limit > known[1]
+        ):
+            newest[key] = (last.ref_date, limit)
+    days = dates.astype("datetime64[D]")
+    out = {m: np.zeros((len(regions), days.size), dtype=bool) for m in measures}
+    for (region, measure), (ref, limit) in newest.items():
+        after = (days - np.datetime64(ref, "D")).astype(np.float64)
+        out[measure][row[region]] = after > limit / timedelta(days=1)
+    return out
 
 
 def load_district_data(
-    *, session: Session, start: date, end: date, as_of: datetime | None = None
+    *, session: Session, start: date, end: date, as_of: datetime | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> DistrictData:
-    """Dense district, area and plant arrays over ``start..end`` as known at ``as_of``."""
+    """Dense district, area and plant arrays over ``start..end`` as known at ``as_of``.
+
+    With ``stale_after`` (feed name -> staleness limit, :func:`feed_limits`), ``stale`` marks
+    each measure's days past its feed's limit (:func:`stale_masks`); without it nothing is
+    marked and only the ruleset's ``max_age_days`` applies.
+    """
     parent = aliased(Region)
     rows = session.execute(
         select(Region.code, Region.population, parent.code)
@@ -105,12 +163,34 @@ def load_district_data(
     levels = tuple(
         "small_district" if p < SMALL_DISTRICT_POPULATION else "district" for p in population
     )
+    stale: dict[str, NDArray[np.bool_]] = {}
+    if stale_after is not None:
+        dates = district.dates
+        stale.update(stale_masks(session=session, regions=codes, measures=DISTRICT_MEASURES,
+                                 dates=dates, as_of=as_of, stale_after=stale_after))
+        for m, mask in stale_masks(session=session, regions=areas, measures=AREA_MEASURES,
+                                   dates=dates, as_of=as_of, stale_after=stale_after).items():
+            stale[m] = (pick[:, None] >= 0) & mask[np.maximum(pick, 0)] if areas else np.zeros(
+                (len(codes), dates.size), dtype=bool)
+        plants = stale_masks(session=session, regions=plant_codes, measures=PLANT_MEASURES,
+                             dates=dates, as_of=as_of, stale_after=stale_after)
+        stale["ww_plants"] = _all_plants_stale(plants["ww_concentration"] | plants["ww_flow"],
+                                                  served)
     return DistrictData(
         regions=codes, levels=levels, population=population, dates=district.dates,
         district=district.values, area_of_district=area_of_district, plant=plant.values,
         plant_population=np.array([r[1] for r in plant_rows], dtype=np.float64),
-        served=served, as_of=as_of,
+        served=served, as_of=as_of, stale=stale,
     )
+
+
+def _all_plants_stale(
+    plant_stale: NDArray[np.bool_], served: NDArray[np.float64]
+) -> NDArray[np.bool_]:
+    """(districts, days): every plant serving the district is stale (none serving: False)."""
+    serving = served > 0
+    fresh = serving.astype(np.float64) @ (~plant_stale).astype(np.float64)
+    return serving.any(axis=1)[:, None] & (fresh == 0)
 
 
 def data_age(*arrays: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -155,7 +235,7 @@ def _incidence(d: DistrictData) -> IndicatorSeries:
     est = incidence_rate(cases, d.population, 7)
     return IndicatorSeries(
         estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
-        age_days=data_age(cases),
+        age_days=data_age(cases), stale=d.stale_of("cases"),
     )
 
 
@@ -165,13 +245,15 @@ def _positivity(d: DistrictData) -> IndicatorSeries:
     return IndicatorSeries(
         estimate=100 * est.estimate, lower=100 * est.lower, upper=100 * est.upper,
         count=est.positives, age_days=data_age(pos, tests),
+        stale=d.stale_of("positives", "tests"),
     )
 
 
 def _tests(d: DistrictData) -> IndicatorSeries:
     tests = d.district["tests"]
     est = tests_per_population(tests, d.population, 7)
-    return IndicatorSeries(estimate=est.estimate, age_days=data_age(tests))
+    return IndicatorSeries(estimate=est.estimate, age_days=data_age(tests),
+                           stale=d.stale_of("tests"))
 
 
 def _admissions(d: DistrictData) -> IndicatorSeries:
@@ -179,14 +261,15 @@ def _admissions(d: DistrictData) -> IndicatorSeries:
     est = admission_rate(adm, d.population, window=7)
     return IndicatorSeries(
         estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
-        age_days=data_age(adm),
+        age_days=data_age(adm), stale=d.stale_of("hosp_admissions"),
     )
 
 
 def _icu(d: DistrictData) -> IndicatorSeries:
     occ, staffed = d.area_of_district["icu_occupied"], d.area_of_district["icu_staffed"]
     share = occupancy_share(occ, staffed)
-    return IndicatorSeries(estimate=100 * share.estimate, age_days=data_age(occ, staffed))
+    return IndicatorSeries(estimate=100 * share.estimate, age_days=data_age(occ, staffed),
+                           stale=d.stale_of("icu_occupied", "icu_staffed"))
 
 
 def _rt(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
@@ -197,7 +280,8 @@ def _rt(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
     cases = d.district["cases"]
     est = reproduction_number(cases, si, int(params.get("window", 7)))
     return IndicatorSeries(
-        estimate=est.estimate, lower=est.lower, upper=est.upper, age_days=data_age(cases)
+        estimate=est.estimate, lower=est.lower, upper=est.upper, age_days=data_age(cases),
+        stale=d.stale_of("cases"),
     )
 
 
@@ -214,14 +298,15 @@ def _ww_trend(d: DistrictData) -> IndicatorSeries:
     lower = to_districts(np.where(sampled, per_plant.lower, np.nan), d.served)
     upper = to_districts(np.where(sampled, per_plant.upper, np.nan), d.served)
     age = data_age(to_districts(np.where(sampled, 1.0, np.nan), d.served))
-    return IndicatorSeries(estimate=estimate, lower=lower, upper=upper, age_days=age)
+    return IndicatorSeries(estimate=estimate, lower=lower, upper=upper, age_days=age,
+                           stale=d.stale_of("ww_plants"))
 
 
 def _gp(d: DistrictData) -> IndicatorSeries:
     gp = d.district["gp_ari"]
     result = ears(gp, method="C2")
     alarm = np.where(np.isfinite(result.statistic), result.alarm.astype(np.float64), np.nan)
-    return IndicatorSeries(estimate=alarm, age_days=data_age(gp))
+    return IndicatorSeries(estimate=alarm, age_days=data_age(gp), stale=d.stale_of("gp_ari"))
 
 
 BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {

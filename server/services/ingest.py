@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from typing import BinaryIO
 
 import numpy as np
@@ -22,14 +22,24 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedDefinition
-from server.feeds.parser import read_chunks
+from server.feeds.parser import read_chunks, read_raw_records
 from server.feeds.sources import Payload
-from server.feeds.validation import Accepted, Catalogue, check_file, validate_chunk
+from server.feeds.validation import (
+    EPOCH,
+    Accepted,
+    Catalogue,
+    FileCheck,
+    check_file,
+    check_stored_pairs,
+    unpaired,
+    validate_chunk,
+)
 from server.services.audit import record
 from server.services.database import Database
 from server.services.evaluation import EvaluationRun, evaluate_active
 from server.services.notify import NotifyConfig
 from server.store.models import Measure, Region, Vintage
+from server.store.reads import newest_values
 from server.store.vintages import (
     Rejection,
     find_vintage_by_checksum,
@@ -38,7 +48,6 @@ from server.store.vintages import (
 )
 
 KEPT_REJECTIONS = 1000
-INSERT_SLICE = 250_000
 Progress = Callable[[int], None]
 
 
@@ -164,26 +173,29 @@ def ingest_payload(
                     )
         accepted = Accepted.concat(parts)
         del parts
-        check = check_file(
-            accepted, positives=catalogue.measures.get("positives"),
-            tests=catalogue.measures.get("tests"),
-        )
-        if check.lines.size:
-            late = _late_rejections(feed, payload, check.lines, check.reasons, check.messages)
+        positives, tests = catalogue.measures.get("positives"), catalogue.measures.get("tests")
+        check = check_file(accepted, positives=positives, tests=tests)
+        checks = [check]
+        if positives is not None and tests is not None:
+            checks.append(_check_against_store(session, accepted, check.keep, positives, tests))
+        lines = np.concatenate([c.lines for c in checks])
+        if lines.size:
+            late = _late_rejections(
+                feed, payload, lines, tuple(r for c in checks for r in c.reasons),
+                tuple(m for c in checks for m in c.messages),
+            )
             tally.add(late)
             if not dry_run:
                 insert_rejections(session=session, vintage_id=vintage.id, rejections=late)
         kept = accepted.take(check.keep)
+        del accepted
         # Index order (measure, region, date): B-tree inserts then append instead of splitting.
         kept = kept.take(np.lexsort((kept.day, kept.region_id, kept.measure_id)))
         if not dry_run:
-            for start in range(0, len(kept), INSERT_SLICE):
-                part = slice(start, start + INSERT_SLICE)
-                insert_observation_arrays(
-                    session=session, vintage_id=vintage.id, region_id=kept.region_id[part],
-                    measure_id=kept.measure_id[part], day=kept.day[part],
-                    value=kept.value[part],
-                )
+            insert_observation_arrays(
+                session=session, vintage_id=vintage.id, region_id=kept.region_id,
+                measure_id=kept.measure_id, day=kept.day, value=kept.value,
+            )
             vintage.rows_accepted = len(kept)
             vintage.rows_rejected = tally.total
             record(
@@ -200,20 +212,34 @@ def ingest_payload(
     )
 
 
+def _check_against_store(
+    session: Session, accepted: Accepted, keep: np.ndarray, positives: int, tests: int
+) -> FileCheck:
+    """Positives above tests where the other measure of the pair is only in the store."""
+    stored = {}
+    for mine, other in ((positives, tests), (tests, positives)):
+        rows = unpaired(accepted, keep, measure=mine, other=other)
+        regions = np.unique(accepted.region_id[rows]).tolist()
+        days = accepted.day[rows]
+        stored[other] = newest_values(
+            session=session, measure_id=other, region_ids=regions,
+            start=EPOCH + timedelta(days=int(days.min())) if days.size else EPOCH,
+            end=EPOCH + timedelta(days=int(days.max())) if days.size else EPOCH,
+        )
+    return check_stored_pairs(
+        accepted, keep, positives=positives, tests=tests, stored_positives=stored[positives],
+        stored_tests=stored[tests],
+    )
+
+
 def _late_rejections(
     feed: FeedDefinition, payload: Payload, lines: np.ndarray, reasons: tuple[str, ...],
     messages: tuple[str, ...],
 ) -> list[Rejection]:
     """Rejections found by the whole-file checks; a second pass fetches those lines' raw text."""
-    wanted = set(lines.tolist())
-    raw: dict[int, str] = {}
     with payload.opener() as stream:
-        for chunk in read_chunks(stream, feed, label=payload.label):
-            hit = np.isin(chunk.lines, lines)
-            for line, text in zip(chunk.lines[hit].tolist(), chunk.raw[hit].tolist(),
-                                  strict=True):
-                if line in wanted:
-                    raw[line] = str(text)[:2000]
+        raw = read_raw_records(stream, feed, label=payload.label, lines=lines)  # type: ignore[arg-type]
+    raw = {line: text[:2000] for line, text in raw.items()}
     return [
         Rejection(line=int(ln), raw=raw.get(int(ln), ""), reason=why, message=text)
         for ln, why, text in zip(lines.tolist(), reasons, messages, strict=True)

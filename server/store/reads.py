@@ -188,3 +188,91 @@ def latest_dates(*, session: Session, level: str | None = None) -> list[LatestDa
         LatestDate(region=code, measure=name, ref_date=ref, received_at=received)
         for code, name, ref, received in session.execute(query)
     ]
+
+
+@dataclass(frozen=True, kw_only=True)
+class StoredValues:
+    """Newest stored values of one measure, as arrays (one entry per region and day)."""
+
+    region_id: NDArray[np.int64]
+    day: NDArray[np.int64]  # days since 1970-01-01
+    value: NDArray[np.float64]
+    vintage_id: NDArray[np.int64]
+
+    def __len__(self) -> int:
+        return int(self.day.size)
+
+
+def newest_values(
+    *, session: Session, measure_id: int, region_ids: Sequence[int], start: date, end: date
+) -> StoredValues:
+    """The newest value (latest vintage) of ``measure_id`` per region and day in ``start..end``.
+
+    ``region_ids`` restricts the regions (an empty sequence reads none). Used to check a file's
+    rows against what is already stored.
+    """
+    if not region_ids:
+        e = np.zeros(0, dtype=np.int64)
+        return StoredValues(region_id=e, day=e, value=np.zeros(0), vintage_id=e)
+    rank = (
+        func.row_number()
+        .over(
+            partition_by=(Observation.region_id, Observation.ref_date),
+            order_by=(Vintage.received_at.desc(), Vintage.id.desc()),
+        )
+        .label("rank")
+    )
+    inner = (
+        select(Observation.region_id, Observation.ref_date, Observation.value,
+               Observation.vintage_id, rank)
+        .join(Vintage, Vintage.id == Observation.vintage_id)
+        .where(Observation.measure_id == measure_id, Observation.ref_date >= start,
+               Observation.ref_date <= end, Observation.region_id.in_(list(region_ids)))
+        .subquery()
+    )
+    rows = session.execute(
+        select(inner.c.region_id, inner.c.ref_date, inner.c.value, inner.c.vintage_id)
+        .where(inner.c.rank == 1)
+    ).all()
+    if not rows:
+        return newest_values(session=session, measure_id=measure_id, region_ids=(), start=start,
+                             end=end)
+    region, ref, value, vintage = zip(*rows, strict=True)
+    return StoredValues(
+        region_id=np.asarray(region, dtype=np.int64),
+        day=(np.array(ref, dtype="datetime64[D]") - np.datetime64("1970-01-01", "D")).astype(
+            np.int64),
+        value=np.asarray(value, dtype=np.float64), vintage_id=np.asarray(vintage, dtype=np.int64),
+    )
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedLastDate:
+    """The newest reference date a feed has told for a region and measure."""
+
+    feed: str
+    region: str
+    measure: str
+    ref_date: date
+
+
+def feed_last_dates(
+    *, session: Session, measures: Sequence[str], as_of: datetime | None = None
+) -> list[FeedLastDate]:
+    """Per feed, region and measure: the newest ref_date in vintages received by ``as_of``."""
+    query = (
+        select(Vintage.feed, Region.code, Measure.name,
+               type_coerce(func.max(Observation.ref_date), Date()))
+        .join(Observation, Observation.vintage_id == Vintage.id)
+        .join(Region, Region.id == Observation.region_id)
+        .join(Measure, Measure.id == Observation.measure_id)
+        .where(Measure.name.in_(list(measures)))
+        .group_by(Vintage.feed, Region.code, Measure.name)
+        .order_by(Vintage.feed, Region.code, Measure.name)
+    )
+    if as_of is not None:
+        query = query.where(Vintage.received_at <= as_of)
+    return [
+        FeedLastDate(feed=feed, region=region, measure=measure, ref_date=ref)
+        for feed, region, measure, ref in session.execute(query)
+    ]

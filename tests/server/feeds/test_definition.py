@@ -78,3 +78,25 @@ def test_push_feed_with_schedule_refused() -> None:
             "    schedule: {interval: 1h}\n")
     with pytest.raises(FeedConfigError, match="a push feed has no schedule"):
         parse_feeds(text, source="f.yaml")
+
+
+def test_decimal_and_thousands_read_from_yaml() -> None:
+    text = ("feeds:\n  - name: a\n    source: {kind: push}\n    measures: [cases]\n"
+            "    delimiter: ';'\n    decimal: ','\n    thousands: '.'\n")
+    feed = parse_feeds(text, source="f.yaml")["a"]
+    assert (feed.decimal, feed.thousands) == (",", ".")
+
+
+@pytest.mark.parametrize(
+    ("extra", "problem"),
+    [
+        pytest.param("    decimal: ':'\n", "decimal ':' must be", id="bad-mark"),
+        pytest.param("    decimal: ','\n    thousands: ','\n", "cannot both be", id="same"),
+        pytest.param("    thousands: '_'\n", "thousands '_' must be one of", id="bad-thousands"),
+        pytest.param("    format: json\n    decimal: ','\n", "apply to CSV feeds", id="json"),
+    ],
+)
+def test_decimal_settings_refused_with_key(extra: str, problem: str) -> None:
+    text = "feeds:\n  - name: a\n    source: {kind: push}\n    measures: [cases]\n" + extra
+    with pytest.raises(FeedConfigError, match=rf"f.yaml:2:\d+: feeds\[0\]: .*{problem}"):
+        parse_feeds(text, source="f.yaml")

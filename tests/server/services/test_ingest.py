@@ -193,3 +193,57 @@ def test_ingest_dry_run_writes_nothing(catalogue: Session) -> None:
     receipt = ingest(catalogue, MESSY, dry_run=True)
     assert (receipt.rows_accepted, receipt.rows_rejected, receipt.vintage_id) == (3, 14, None)
     assert catalogue.scalar(select(func.count()).select_from(Vintage)) == 0
+
+
+def _reasons(session: Session, receipt) -> list[tuple[int, str, str]]:  # type: ignore[no-untyped-def]
+    return [tuple(r) for r in session.execute(
+        select(RejectedRow.line, RejectedRow.reason, RejectedRow.message).where(
+            RejectedRow.vintage_id == receipt.vintage_id).order_by(RejectedRow.line))]
+
+
+def test_positives_above_stored_tests_rejected_naming_the_store(catalogue: Session) -> None:
+    stored = ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,tests,10\n")
+    later = T0 + timedelta(hours=2)
+    receipt = ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,positives,14\n"
+                     "QB,2026-03-02,positives,14\nQA,2026-03-01,positives,3\n", at=later)
+    assert receipt.rows_accepted == 2  # no tests stored for QB on 2 March, nor for QA
+    ((line, reason, message),) = _reasons(catalogue, receipt)
+    assert (line, reason) == (2, "positives_exceed_tests")
+    assert message == (f"positives 14 (line 2) exceed tests 10 already stored (vintage "
+                       f"{stored.vintage_id}) for the same region and date")
+
+
+def test_tests_below_stored_positives_rejected(catalogue: Session) -> None:
+    ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,positives,9\n")
+    receipt = ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,tests,5\n"
+                     "QB,2026-03-01,cases,1\n", at=T0 + timedelta(hours=1))
+    assert [(ln, why) for ln, why, _ in _reasons(catalogue, receipt)] == [
+        (2, "positives_exceed_tests")]
+    assert receipt.rows_accepted == 1
+
+
+def test_stored_pair_uses_the_newest_value_and_the_file_pair_wins(catalogue: Session) -> None:
+    ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,tests,10\n")
+    ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,tests,20\n",
+           at=T0 + timedelta(hours=1))  # a revision: 20 is the newest known value
+    revised = ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,positives,14\n",
+                     at=T0 + timedelta(hours=2))
+    assert (revised.rows_accepted, revised.rows_rejected) == (1, 0)
+    in_file = ingest(catalogue, "region,date,measure,value\nQB,2026-03-01,positives,30\n"
+                     "QB,2026-03-01,tests,40\n", at=T0 + timedelta(hours=3))
+    assert (in_file.rows_accepted, in_file.rows_rejected) == (2, 0)
+
+
+def test_decimal_comma_feed_lands_values_and_rejects_grouped_ones(catalogue: Session) -> None:
+    feeds = parse_feeds(
+        "feeds:\n  - name: comma\n    source: {kind: push}\n    delimiter: ';'\n"
+        "    decimal: ','\n    measures: [ww_concentration, cases]\n", source="t.yaml")
+    content = (b"region;date;measure;value\nQA;2026-03-01;ww_concentration;1234,5\n"
+               b"QA;2026-03-02;ww_concentration;1.234,5\n")
+    receipt = ingest_payload(session=catalogue, feed=feeds["comma"], payload=Payload.from_bytes(
+        "comma.csv", content), received_at=T0, today=TODAY)
+    assert [(ln, why) for ln, why, _ in _reasons(catalogue, receipt)] == [
+        (3, "ambiguous_number")]
+    stored = read_dense(session=catalogue, measures=["ww_concentration"],
+                        start=date(2026, 3, 1), end=date(2026, 3, 1), regions=["QA"])
+    assert_allclose(stored["ww_concentration"], [[1234.5]])

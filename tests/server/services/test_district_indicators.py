@@ -1,0 +1,107 @@
+"""Evaluation inputs: a feed past its staleness limit makes its measure unknown to the engine."""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime, timedelta
+
+import numpy as np
+from numpy.testing import assert_array_equal
+from sqlalchemy.orm import Session
+
+from rules import evaluate, parse_ruleset
+from server.feeds.definition import parse_feeds
+from server.feeds.sources import Payload
+from server.services.district_indicators import (
+    district_indicators,
+    feed_limits,
+    load_district_data,
+)
+from server.services.ingest import ingest_payload
+from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+
+FEEDS = parse_feeds(
+    "feeds:\n  - name: fast\n    source: {kind: push}\n    stale_after: 3d\n    measures: [cases]\n"
+    "  - name: slow\n    source: {kind: push}\n    stale_after: 2w\n    measures: [cases]\n",
+    source="t.yaml",
+)
+START = date(2026, 3, 1)
+RULES = """\
+name: stale
+version: "1"
+tiers:
+  - {name: T0, staff: s, public: p}
+  - {name: T1, staff: s, public: p}
+indicators:
+  incidence_7d: {label: 7-day incidence, unit: per 100 000, decimals: 0}
+criteria:
+  - {id: incidence, indicator: incidence_7d, enter: [50], exit: [35]}
+timing: {confirm_days: 1, release_days: 1, min_days_in_tier: 0, effective_delay_days: 0}
+"""
+
+
+def _setup(session: Session) -> None:
+    upsert_regions(session=session, records=[
+        RegionRecord(code="Z0", name="Zephyrvale", level="county", parent=None, population=20000),
+        RegionRecord(code="ZA", name="Alderholt", level="district", parent="Z0",
+                     population=10000),
+        RegionRecord(code="ZB", name="Birchmere", level="district", parent="Z0",
+                     population=10000),
+    ])
+    upsert_measures(session=session, records=[
+        MeasureRecord(name=m, unit="n", kind="count", aggregation="sum")
+        for m in ("cases", "tests", "positives", "hosp_admissions", "gp_ari", "icu_occupied",
+                  "icu_staffed", "ww_concentration", "ww_flow")])
+
+
+def _send(session: Session, feed: str, region: str, days: range, at: datetime) -> None:
+    text = "region,date,measure,value\n" + "".join(
+        f"{region},{START + timedelta(days=d)},cases,20\n" for d in days)
+    ingest_payload(session=session, feed=FEEDS[feed], payload=Payload.from_bytes(
+        f"{feed}-{region}-{at:%H%M}", text.encode()), received_at=at, today=date(2026, 4, 1))
+
+
+def test_measure_is_stale_after_its_newest_date_plus_the_feed_limit(session: Session) -> None:
+    _setup(session)
+    at = datetime(2026, 3, 16, 6, tzinfo=UTC)
+    _send(session, "fast", "ZA", range(0, 10), at)   # newest date 10 March, limit 3 days
+    _send(session, "slow", "ZB", range(0, 10), at)   # newest date 10 March, limit 14 days
+    data = load_district_data(session=session, start=START, end=date(2026, 3, 15), as_of=at,
+                              stale_after=feed_limits(FEEDS))
+    # 13 March is 3 days after 10 March: not yet past the limit; 14 March is.
+    expected = np.zeros(15, dtype=bool)
+    expected[13:] = True
+    assert_array_equal(data.stale["cases"][0], expected)
+    assert not data.stale["cases"][1].any()
+    without = load_district_data(session=session, start=START, end=date(2026, 3, 15), as_of=at)
+    assert without.stale == {}
+
+
+def test_newest_date_as_known_at_the_cutoff_and_its_feed_decide(session: Session) -> None:
+    _setup(session)
+    early = datetime(2026, 3, 8, 6, tzinfo=UTC)
+    late = datetime(2026, 3, 14, 6, tzinfo=UTC)
+    _send(session, "fast", "ZA", range(0, 5), early)  # to 5 March, fast feed (3 days)
+    _send(session, "slow", "ZA", range(5, 12), late)  # to 12 March, slow feed (14 days)
+    limits = feed_limits(FEEDS)
+    known_early = load_district_data(session=session, start=START, end=date(2026, 3, 15),
+                                     as_of=early, stale_after=limits)
+    assert np.flatnonzero(known_early.stale["cases"][0]).tolist() == list(range(8, 15))
+    known_late = load_district_data(session=session, start=START, end=date(2026, 3, 15),
+                                    as_of=late, stale_after=limits)
+    assert not known_late.stale["cases"][0].any()
+
+
+def test_stale_feed_shows_as_stale_data_in_the_engine_explanation(session: Session) -> None:
+    _setup(session)
+    at = datetime(2026, 3, 16, 6, tzinfo=UTC)
+    _send(session, "fast", "ZA", range(0, 10), at)
+    _send(session, "slow", "ZB", range(0, 10), at)
+    rs = parse_ruleset(RULES)
+    data = load_district_data(session=session, start=START, end=date(2026, 3, 15), as_of=at,
+                              stale_after=feed_limits(FEEDS))
+    result = evaluate(rs, district_indicators(data, rs), regions=data.regions, dates=data.dates,
+                      region_levels=data.levels)
+    # 7-day incidence 7 x 20 / 10 000 x 100 000 = 1400 per 100 000, held after 10 March.
+    status = [[c["status"] for c in result.explain(r, d).data["criteria"]]
+              for r, d in ((0, 12), (0, 13), (1, 14))]
+    assert status == [["ok"], ["stale"], ["ok"]]
