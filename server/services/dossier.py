@@ -1,10 +1,12 @@
 """Use case: the staff district page and the explanation of one district and day.
 
-The district page reads the stored assessments of the active ruleset at its newest data cutoff:
-each criterion's value, interval and the enter/exit thresholds in force on each day (conditions
-and overrides included, exactly as the engine used them), the recommended tier, prepare signals,
-and the official tier from the decisions. Revisions show the values of recent days as known on
-different mornings, from the store's vintages.
+The district page reads the stored assessments of the active ruleset as of its newest evaluation
+run (for each day, the row with the greatest data cutoff not after the run's:
+:func:`server.services.evaluation.assessments_as_of`): each criterion's value, interval and the
+enter/exit thresholds in force on each day (conditions and overrides included, exactly as the
+engine used them), the recommended tier, prepare signals, and the official tier from the
+decisions. Revisions show the values of recent days as known on different mornings, from the
+store's vintages.
 """
 
 from __future__ import annotations
@@ -14,15 +16,14 @@ from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from typing import Any
 
-from sqlalchemy import func, select, type_coerce
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.policies import parsed
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
-from server.store.types import UTCDateTime
 
 __all__ = [
     "CriterionSeries",
@@ -116,10 +117,9 @@ def _region(session: Session, code: str) -> tuple[Region, str | None]:
 
 
 def _cutoff(session: Session, ruleset_id: int) -> datetime | None:
-    return session.scalar(
-        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
-        .where(Assessment.ruleset_id == ruleset_id)
-    )
+    """Data cutoff of the newest evaluation run of ``ruleset_id`` (None: never evaluated)."""
+    run = newest_run_of(session=session, ruleset_id=ruleset_id)
+    return None if run is None else run.data_cutoff
 
 
 def _official_by_day(session: Session, region_id: int, days: list[date]) -> list[int | None]:
@@ -157,12 +157,11 @@ def district_dossier(
     if row is None or cutoff is None:
         raise NoAssessmentError(code, None)
     rs = parsed(row)
-    span = session.execute(
-        select(func.min(Assessment.ref_date), func.max(Assessment.ref_date)).where(
-            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
-            Assessment.region_id == region.id,
-        )
-    ).one()
+    span = session.execute(assessments_as_of(
+        select(func.min(Assessment.ref_date), func.max(Assessment.ref_date))
+        .select_from(Assessment),
+        ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+    )).one()
     if span[0] is None:
         raise NoAssessmentError(code, None)
     first, last = span
@@ -170,13 +169,10 @@ def district_dossier(
     start = max(start or end - timedelta(days=days - 1), first)
     if start > end:
         start = end
-    rows = list(session.scalars(
-        select(Assessment).where(
-            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
-            Assessment.region_id == region.id, Assessment.ref_date >= start,
-            Assessment.ref_date <= end,
-        ).order_by(Assessment.ref_date)
-    ))
+    rows = list(session.scalars(assessments_as_of(
+        select(Assessment), ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+        start=start, end=end,
+    ).order_by(Assessment.ref_date)))
     dates = [a.ref_date for a in rows]
     criteria = []
     for k, crit in enumerate(rs.criteria):
@@ -236,7 +232,10 @@ class ExplanationPage:
     ruleset_name: str
     ruleset_version: str
     ruleset_sha256: str
+    #: the cutoff the assessment was computed at (its row's own; reproducible from it)
     data_cutoff: datetime
+    #: the cutoff of the evaluation run it is shown under (the newest run; same or later)
+    run_cutoff: datetime
     tier: int
     tier_name: str
     previous_name: str
@@ -260,19 +259,24 @@ def _fmt(v: float | None, decimals: int, unit: str = "") -> str:
 
 
 def explanation_page(*, session: Session, code: str, day: date | None = None) -> ExplanationPage:
-    """Why district ``code`` has its recommended tier on ``day`` (default: the newest day)."""
+    """Why district ``code`` has its recommended tier on ``day`` (default: the newest day).
+
+    The assessment is the one in force at the newest run of the active ruleset; an unchanged
+    result keeps the row of the earlier cutoff it was first computed at, and the page gives both
+    that cutoff (``data_cutoff``) and the run's (``run_cutoff``).
+    """
     region, _area = _region(session, code)
     row = active_ruleset(session=session)
     cutoff = _cutoff(session, row.id) if row else None
     if row is None or cutoff is None:
         raise NoAssessmentError(code, day)
     rs = parsed(row)
-    query = select(Assessment).where(
-        Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
-        Assessment.region_id == region.id,
+    query = assessments_as_of(
+        select(Assessment), ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+        start=day, end=day,
     )
-    query = (query.where(Assessment.ref_date == day) if day
-             else query.order_by(Assessment.ref_date.desc()).limit(1))
+    if day is None:
+        query = query.order_by(Assessment.ref_date.desc()).limit(1)
     a = session.scalars(query).first()
     if a is None:
         raise NoAssessmentError(code, day)
@@ -321,7 +325,7 @@ def explanation_page(*, session: Session, code: str, day: date | None = None) ->
     return ExplanationPage(
         code=region.code, name=region.name, day=a.ref_date, assessment_id=a.id,
         ruleset_name=row.name, ruleset_version=row.version, ruleset_sha256=row.sha256,
-        data_cutoff=a.data_cutoff, tier=a.recommended_tier,
+        data_cutoff=a.data_cutoff, run_cutoff=cutoff, tier=a.recommended_tier,
         tier_name=rs.tier_name(a.recommended_tier), previous_name=rs.tier_name(previous),
         action=str(data.get("action", "")), sentence=a.explanation.get("sentence", ""),
         criteria=tuple(crits), counters=counters, held_by=tuple(data.get("held_by", [])),

@@ -1,14 +1,25 @@
 """Use case: evaluate the active ruleset for every district and store the assessments.
 
 An evaluation reads the data as known at a cutoff (the newest vintage received, unless a cutoff is
-given), computes the indicators, runs the rules engine over the whole history and stores one
-assessment per district and day, each with its explanation, the ruleset and the cutoff. Re-running
-with the same ruleset and cutoff reproduces the same assessments (they are read, not rewritten).
+given), computes the indicators, runs the rules engine over the whole history and records an
+``evaluation_run`` (ruleset, cutoff, first and last day, rows written). It stores an assessment
+(recommended tier, criteria, prepare signals, explanation) under its cutoff only for the district
+and day pairs whose result differs from the newest row stored at an earlier cutoff, or that have
+none: a new morning's data usually change the last weeks, not the whole history. The rows are
+compared in bulk by ``content_sha256``, a hash of everything but the cutoff and creation time.
+
+The assessment of a district and day *as of run C* is therefore the row with the greatest
+``data_cutoff`` not after C (:func:`assessments_as_of`); the newest run is the newest
+``evaluation_run`` of the active ruleset. Re-running with the same ruleset and cutoff reuses the
+run (nothing is recomputed or rewritten). A run stored at a cutoff older than an existing run (a
+replay of a past morning) keeps the later run's reading unchanged: where it writes a row that the
+later run had read from before its cutoff, it copies that older row to the later run's cutoff.
 
 When the caller passes a loaded notification config (``notify=``, from ``settings.notify_file``),
-a run that stores new assessments delivers the newest day's events: recommended tier changes in
-force that day and prepare signals that started showing that day. Failures are logged and audited
-and never break the evaluation (:func:`server.services.notify.deliver_and_record`).
+a run that evaluates (one that does not reuse a stored run) delivers the newest day's events:
+recommended tier changes in force that day and prepare signals that started showing that day;
+events already delivered are not sent again. Failures are logged and audited and never break
+the evaluation (:func:`server.services.notify.deliver_and_record`).
 
 Activating a ruleset (:func:`activate_ruleset`, the one way every caller activates) retires every
 other active version, writes the audit log and evaluates the new one, so exactly one ruleset is
@@ -17,11 +28,14 @@ active at any time.
 
 from __future__ import annotations
 
+import hashlib
+import json
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime
 from pathlib import Path
+from typing import Any
 
-from sqlalchemy import func, insert, select, type_coerce, update
+from sqlalchemy import Select, and_, func, insert, select, type_coerce, update
 from sqlalchemy.orm import Session
 
 import rules
@@ -30,6 +44,7 @@ from server.services.audit import record
 from server.services.district_indicators import district_indicators, load_district_data
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.store.models import Assessment, Observation, Region, Vintage
+from server.store.models import EvaluationRun as RunRow
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
 
@@ -122,9 +137,9 @@ def evaluate_districts(
 ) -> EvaluationRun | None:
     """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff``; store results.
 
-    With ``notify``, newly stored assessments send the newest day's tier changes and starting
-    prepare signals to its recipients (a reused run sends nothing). Returns None when there are
-    no data yet.
+    Records the run and stores only the assessments that changed (module docstring). With
+    ``notify``, the run sends the newest day's tier changes and starting prepare signals to its
+    recipients (a reused run sends nothing). Returns None when there are no data yet.
     """
     cutoff = cutoff or newest_cutoff(session=session)
     if cutoff is None:
@@ -133,12 +148,10 @@ def evaluate_districts(
     if span is None:
         return None
     start, end = span
-    existing = session.scalar(
-        select(func.count()).select_from(Assessment).where(
-            Assessment.ruleset_id == ruleset_row.id, Assessment.data_cutoff == cutoff
-        )
+    stored = session.scalar(
+        select(RunRow).where(RunRow.ruleset_id == ruleset_row.id, RunRow.data_cutoff == cutoff)
     )
-    if existing:
+    if stored is not None:
         return EvaluationRun(
             ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
             start=start, end=end, written=0, reused=True, evaluation=None,
@@ -150,8 +163,13 @@ def evaluate_districts(
         region_levels=data.levels,
     )
     written = _store_assessments(session, ruleset_row.id, cutoff, result)
+    session.add(RunRow(
+        ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
+        rows_written=written, created_at=datetime.now(UTC),
+    ))
+    session.flush()
     notified: tuple[Delivery, ...] = ()
-    if notify is not None and written:
+    if notify is not None:
         notified = deliver_and_record(
             events_on_day(result), notify, session=session, actor="system", context="evaluation"
         )
@@ -176,9 +194,55 @@ def evaluate_active(
     return evaluate_districts(session=session, ruleset_row=row, notify=notify)
 
 
-def _store_assessments(
+def assessments_as_of(
+    query: Select[Any], *, ruleset_id: int, cutoff: datetime, before: bool = False,
+    region_id: int | None = None, start: date | None = None, end: date | None = None,
+) -> Select[Any]:
+    """Restrict ``query`` (which selects from :class:`Assessment`) to the rows in force at a run.
+
+    For each region and day, the row of ``ruleset_id`` with the greatest ``data_cutoff`` not
+    after ``cutoff`` (strictly before it with ``before``), optionally for one region and a range
+    of days. One grouped subquery joined back on the unique key (ruleset, region, day, cutoff);
+    the key's index (and ``ix_assessment_ruleset_day`` for one day across regions) serves both.
+    """
+    a = Assessment
+    where = [a.ruleset_id == ruleset_id,
+             a.data_cutoff < cutoff if before else a.data_cutoff <= cutoff]
+    if region_id is not None:
+        where.append(a.region_id == region_id)
+    if start is not None:
+        where.append(a.ref_date >= start)
+    if end is not None:
+        where.append(a.ref_date <= end)
+    newest = (
+        select(a.region_id, a.ref_date, func.max(a.data_cutoff).label("data_cutoff"))
+        .where(*where)
+        .group_by(a.region_id, a.ref_date)
+        .subquery("newest")
+    )
+    return query.join(newest, and_(
+        a.region_id == newest.c.region_id, a.ref_date == newest.c.ref_date,
+        a.data_cutoff == newest.c.data_cutoff,
+    )).where(a.ruleset_id == ruleset_id)
+
+
+def content_sha256(row: dict[str, Any]) -> str:
+    """SHA-256 of what an assessment says: tiers, criteria, prepare signals and explanation.
+
+    The cutoff, creation time and the region and day (the row's key) are left out, so two runs
+    that reach the same result for a district and day give the same hash.
+    """
+    payload = json.dumps(
+        [row["recommended_tier"], row["previous_tier"], row["criteria"],
+         row["prepare_signals"], row["explanation"]],
+        sort_keys=True, separators=(",", ":"),
+    )
+    return hashlib.sha256(payload.encode("utf-8")).hexdigest()
+
+
+def _assessment_rows(
     session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
-) -> int:
+) -> list[dict[str, Any]]:
     region_ids = dict(session.execute(select(Region.code, Region.id)).all())
     criteria = [c.id for c in result.ruleset.criteria]
     signals = [s.id for s in result.ruleset.prepare]
@@ -187,7 +251,7 @@ def _store_assessments(
     for r, code in enumerate(result.regions):
         for d in range(result.dates.size):
             explanation = result.explain(r, d)
-            rows.append({
+            row: dict[str, Any] = {
                 "ruleset_id": ruleset_id,
                 "region_id": region_ids[code],
                 "ref_date": result.dates[d].astype(date),
@@ -208,10 +272,83 @@ def _store_assessments(
                 },
                 "explanation": {"sentence": explanation.sentence, "data": explanation.data},
                 "created_at": now,
-            })
-    if rows:
-        session.execute(insert(Assessment), rows)
-    return len(rows)
+            }
+            row["content_sha256"] = content_sha256(row)
+            rows.append(row)
+    return rows
+
+
+_CHUNK = 500  # ids per IN list (well under SQLite's bound-parameter limit)
+
+
+def _store_assessments(
+    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
+) -> int:
+    """Store the rows that differ from the newest earlier ones; returns how many were stored."""
+    rows = _assessment_rows(session, ruleset_id, cutoff, result)
+    if not rows:
+        return 0
+    start, end = result.dates[0].astype(date), result.dates[-1].astype(date)
+    earlier = {
+        (rid, day): (aid, sha)
+        for aid, rid, day, sha in session.execute(assessments_as_of(
+            select(Assessment.id, Assessment.region_id, Assessment.ref_date,
+                   Assessment.content_sha256),
+            ruleset_id=ruleset_id, cutoff=cutoff, before=True, start=start, end=end,
+        ))
+    }
+    changed = []
+    for row in rows:
+        prev = earlier.get((row["region_id"], row["ref_date"]))
+        # rows stored before revision 0003 carry no hash: treated as changed, stored once more
+        if prev is None or prev[1] is None or prev[1] != row["content_sha256"]:
+            changed.append(row)
+    if changed:
+        session.execute(insert(Assessment), changed)
+        _keep_next_run(session, ruleset_id, cutoff, changed, earlier, start, end)
+    return len(changed)
+
+
+def _keep_next_run(
+    session: Session, ruleset_id: int, cutoff: datetime, changed: list[dict[str, Any]],
+    earlier: dict[tuple[int, date], tuple[int, str | None]], start: date, end: date,
+) -> None:
+    """Keep what the next later run (if any) reads for the keys just written at ``cutoff``.
+
+    That run read, for a key with no row between the two cutoffs, the row from before
+    ``cutoff``; now it would read the new one. Copying the old row to the later run's cutoff
+    restores its reading, and every run after it reads the copy or a newer row of its own.
+    """
+    later = session.scalar(
+        select(RunRow).where(RunRow.ruleset_id == ruleset_id, RunRow.data_cutoff > cutoff)
+        .order_by(RunRow.data_cutoff).limit(1)
+    )
+    if later is None:
+        return
+    a = Assessment
+    covered = {(rid, day) for rid, day in session.execute(
+        select(a.region_id, a.ref_date).where(
+            a.ruleset_id == ruleset_id, a.data_cutoff > cutoff,
+            a.data_cutoff <= later.data_cutoff, a.ref_date >= start, a.ref_date <= end,
+        )
+    )}
+    ids = [
+        earlier[key][0] for key in ((r["region_id"], r["ref_date"]) for r in changed)
+        if key in earlier and key not in covered
+    ]
+    now = datetime.now(UTC)
+    columns = ("ruleset_id", "region_id", "ref_date", "recommended_tier", "previous_tier",
+               "criteria", "prepare_signals", "explanation", "content_sha256")
+    for k in range(0, len(ids), _CHUNK):
+        old = session.scalars(select(a).where(a.id.in_(ids[k:k + _CHUNK])))
+        copies = [
+            {**{c: getattr(o, c) for c in columns},
+             "data_cutoff": later.data_cutoff, "created_at": now}
+            for o in old
+        ]
+        session.execute(insert(Assessment), copies)
+    later.rows_written += len(ids)
+    session.flush()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -225,38 +362,43 @@ class LatestAssessment:
     sentence: str
 
 
-def _newest_run(session: Session) -> tuple[RulesetRow, datetime, date] | None:
-    """The active ruleset, its newest stored data cutoff and that run's last day (None: none)."""
+def newest_run_of(*, session: Session, ruleset_id: int) -> RunRow | None:
+    """The recorded evaluation run of ``ruleset_id`` with the newest data cutoff (None: none)."""
+    return session.scalar(
+        select(RunRow).where(RunRow.ruleset_id == ruleset_id)
+        .order_by(RunRow.data_cutoff.desc()).limit(1)
+    )
+
+
+def newest_run(*, session: Session) -> tuple[RulesetRow, RunRow] | None:
+    """The active ruleset and its newest recorded evaluation run (None: none)."""
     row = active_ruleset(session=session)
     if row is None:
         return None
-    cutoff = session.scalar(
-        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
-        .where(Assessment.ruleset_id == row.id)
-    )
-    if cutoff is None:
+    run = newest_run_of(session=session, ruleset_id=row.id)
+    return None if run is None else (row, run)
+
+
+def _newest_run(session: Session) -> tuple[RulesetRow, datetime, date] | None:
+    """The active ruleset, the data cutoff of its newest run and that run's last day."""
+    newest = newest_run(session=session)
+    if newest is None:
         return None
-    last_day = session.scalar(
-        select(func.max(Assessment.ref_date)).where(
-            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff
-        )
-    )
-    return None if last_day is None else (row, cutoff, last_day)
+    row, run = newest
+    return row, run.data_cutoff, run.last_day
 
 
 def current_assessment_id(*, session: Session, region_id: int) -> int | None:
     """Id of a district's current item in the review: its assessment of the last day of the
-    newest stored run (active ruleset, newest data cutoff); None when there is none."""
+    newest run (active ruleset), as of that run's cutoff; None when there is none."""
     newest = _newest_run(session)
     if newest is None:
         return None
     row, cutoff, last_day = newest
-    return session.scalar(
-        select(Assessment.id).where(
-            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
-            Assessment.ref_date == last_day, Assessment.region_id == region_id,
-        )
-    )
+    return session.scalar(assessments_as_of(
+        select(Assessment.id), ruleset_id=row.id, cutoff=cutoff, region_id=region_id,
+        start=last_day, end=last_day,
+    ))
 
 
 def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
@@ -266,13 +408,9 @@ def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
         return {}
     row, cutoff, last_day = newest
     ruleset: Ruleset = parse_ruleset(row.yaml_text, source=row.name)
-    query = (
-        select(Region.code, Assessment)
-        .join(Region, Region.id == Assessment.region_id)
-        .where(
-            Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff,
-            Assessment.ref_date == last_day,
-        )
+    query = assessments_as_of(
+        select(Region.code, Assessment).join(Region, Region.id == Assessment.region_id),
+        ruleset_id=row.id, cutoff=cutoff, start=last_day, end=last_day,
     )
     out = {}
     for code, a in session.execute(query).all():
@@ -308,7 +446,8 @@ class LatestRun:
 
 
 def latest_assessment_rows(*, session: Session) -> LatestRun | None:
-    """Assessments of the last day under the active ruleset and newest cutoff, with run starts.
+    """Assessments of the newest run's last day (active ruleset, as of the run's cutoff), with
+    the start of each district's current recommendation.
 
     ``since`` is the first day of the trailing run of days with the same recommended tier.
     """
@@ -316,11 +455,11 @@ def latest_assessment_rows(*, session: Session) -> LatestRun | None:
     if newest is None:
         return None
     row, cutoff, last_day = newest
-    where = (Assessment.ruleset_id == row.id, Assessment.data_cutoff == cutoff)
     history = session.execute(
-        select(Assessment.region_id, Assessment.ref_date, Assessment.recommended_tier)
-        .where(*where)
-        .order_by(Assessment.region_id, Assessment.ref_date.desc())
+        assessments_as_of(
+            select(Assessment.region_id, Assessment.ref_date, Assessment.recommended_tier),
+            ruleset_id=row.id, cutoff=cutoff, end=last_day,
+        ).order_by(Assessment.region_id, Assessment.ref_date.desc())
     ).all()
     since: dict[int, date] = {}
     current: dict[int, int] = {}
@@ -334,12 +473,11 @@ def latest_assessment_rows(*, session: Session) -> LatestRun | None:
             broken.add(region_id)
             continue
         since[region_id] = day
-    query = (
+    query = assessments_as_of(
         select(Region.id, Region.code, Region.name, Assessment)
-        .join(Region, Region.id == Assessment.region_id)
-        .where(*where, Assessment.ref_date == last_day)
-        .order_by(Region.code)
-    )
+        .join(Region, Region.id == Assessment.region_id),
+        ruleset_id=row.id, cutoff=cutoff, start=last_day, end=last_day,
+    ).order_by(Region.code)
     items = tuple(
         LatestItem(region_id=rid, code=code, name=name, assessment=a, since=since[rid])
         for rid, code, name, a in session.execute(query).all()
@@ -370,6 +508,8 @@ __all__ = [
     "LatestRun",
     "activate_ruleset",
     "active_ruleset",
+    "assessments_as_of",
+    "content_sha256",
     "current_assessment_id",
     "default_ruleset_path",
     "evaluate_active",
@@ -377,6 +517,8 @@ __all__ = [
     "latest_assessment_rows",
     "latest_assessments",
     "newest_cutoff",
+    "newest_run",
+    "newest_run_of",
     "policies_dir",
     "store_ruleset",
 ]

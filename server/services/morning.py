@@ -5,8 +5,8 @@ stands out), active prepare signals, the key indicators with their intervals and
 for a sparkline; the freshness of each feed; and what changed since the previous day.
 
 The assessment-derived part depends only on the active ruleset and the data cutoff of its newest
-evaluation, so it is built once per (ruleset, cutoff) and kept in memory; the review part (official
-tiers, pending changes) is read on every request.
+evaluation run, so it is built once per run and kept in memory; the review part (official tiers,
+pending changes) is merged in once per state of the decisions (one query per request tells).
 """
 
 from __future__ import annotations
@@ -23,10 +23,10 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.overview import DataOverview, data_overview
 from server.services.policies import parsed
-from server.services.review import OfficialTier, PendingChange, official_tiers, pending_changes
+from server.services.review import official_tiers, pending_changes
 from server.store.models import Assessment, Decision, Region, Vintage
 from server.store.types import UTCDateTime
 
@@ -116,6 +116,9 @@ class MorningOverview:
     changes: tuple[Change, ...]
     every: tuple[DistrictLine, ...]
     data_on_hand: DataOverview
+    #: changes exactly when ``data_on_hand`` does (the newest vintage id): a key for caching
+    #: anything rendered from it
+    data_on_hand_key: int = 0
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -125,19 +128,27 @@ class _Base:
     changes: tuple[Change, ...]
 
 
-_CACHE: dict[tuple[int, str], _Base] = {}
-_REVIEW: dict[tuple[object, ...], tuple[dict[str, OfficialTier], dict[str, PendingChange]]] = {}
+@dataclass(frozen=True, kw_only=True)
+class _Review:
+    """The base lines merged with official tiers and pending changes."""
+
+    lines: tuple[DistrictLine, ...]
+    tier_counts: Mapping[int, int]
+    pending: int
+
+
+_CACHE: dict[tuple[object, ...], _Base] = {}
+_REVIEW: dict[tuple[object, ...], _Review] = {}
 _LOCK = threading.Lock()
 
 
-def _review_state(
-    session: Session, key: tuple[int, str]
-) -> tuple[dict[str, OfficialTier], dict[str, PendingChange]]:
-    """Official tiers and pending changes, recomputed only when decisions or assessments change.
+def _review_state(session: Session, key: tuple[object, ...], base: _Base) -> _Review:
+    """The lines with official tiers and pending changes, rebuilt only when decisions or
+    assessments change.
 
     Both are functions of the decision table and the newest assessments; the stamp (newest
     decision id, number published, newest publication, and the assessment key) changes with
-    every decision, publication and evaluation.
+    every decision, publication and evaluation. One query per request when nothing changed.
     """
     stamp = (*key, *session.execute(
         select(func.max(Decision.id), func.count(Decision.published_at),
@@ -146,8 +157,20 @@ def _review_state(
     with _LOCK:
         hit = _REVIEW.get(stamp)
     if hit is None:
-        hit = (official_tiers(session=session, published_only=True),
-               {p.region: p for p in pending_changes(session=session)})
+        official = official_tiers(session=session, published_only=True)
+        pending = {p.region: p for p in pending_changes(session=session)}
+        lines = []
+        counts: dict[int, int] = {}
+        for line in base.lines:
+            off, pend = official.get(line.code), pending.get(line.code)
+            lines.append(replace(
+                line, official_tier=off.tier if off else None,
+                official_name=off.tier_name if off else None, pending=pend is not None,
+                assessment_id=pend.assessment_id if pend else line.assessment_id,
+            ))
+            if off is not None:
+                counts[off.tier] = counts.get(off.tier, 0) + 1
+        hit = _Review(lines=tuple(lines), tier_counts=counts, pending=len(pending))
         with _LOCK:
             _REVIEW.clear()
             _REVIEW[stamp] = hit
@@ -161,7 +184,9 @@ def _fmt(value: float | None, decimals: int, unit: str) -> str:
     return text + unit if unit.startswith("%") else (f"{text} {unit}" if unit else text)
 
 
-def _build_base(session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: datetime) -> _Base:
+def _build_base(
+    session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: datetime, last: date
+) -> _Base:
     parent = aliased(Region)
     regions = session.execute(
         select(Region.id, Region.code, Region.name, parent.name, Region.population,
@@ -169,26 +194,18 @@ def _build_base(session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: dat
         .outerjoin(parent, parent.id == Region.parent_id)
         .where(Region.level == "district")
     ).all()
-    last = session.scalar(
-        select(func.max(Assessment.ref_date)).where(
-            Assessment.ruleset_id == ruleset_id, Assessment.data_cutoff == cutoff
-        )
-    )
     by_region: dict[int, dict[date, Assessment]] = {}
-    if last is not None:
-        rows = session.scalars(
-            select(Assessment).where(
-                Assessment.ruleset_id == ruleset_id, Assessment.data_cutoff == cutoff,
-                Assessment.ref_date > last - timedelta(days=SPARK_DAYS),
-            )
-        )
-        for a in rows:
-            by_region.setdefault(a.region_id, {})[a.ref_date] = a
-    days = [last - timedelta(days=k) for k in range(SPARK_DAYS - 1, -1, -1)] if last else []
+    rows = session.scalars(assessments_as_of(
+        select(Assessment), ruleset_id=ruleset_id, cutoff=cutoff,
+        start=last - timedelta(days=SPARK_DAYS - 1), end=last,
+    ))
+    for a in rows:
+        by_region.setdefault(a.region_id, {})[a.ref_date] = a
+    days = [last - timedelta(days=k) for k in range(SPARK_DAYS - 1, -1, -1)]
     lines, changes = [], []
     for rid, code, name, area, population, geometry in regions:
         history = by_region.get(rid, {})
-        newest = history.get(last) if last else None
+        newest = history.get(last)
         indicators: tuple[KeyIndicator, ...] = ()
         prepare: tuple[str, ...] = ()
         sentence = ""
@@ -197,7 +214,7 @@ def _build_base(session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: dat
             sentence = newest.explanation.get("sentence", "")
             prepare = tuple(k for k, v in newest.prepare_signals.items() if v)
             indicators = tuple(_indicators(ruleset, data, history, days))
-            before = history.get(last - timedelta(days=1)) if last else None
+            before = history.get(last - timedelta(days=1))
             if before is not None:
                 changes += _changes(ruleset, code, name, before, newest)
         lines.append(DistrictLine(
@@ -289,8 +306,9 @@ def _sort(lines: list[DistrictLine], key: str) -> list[DistrictLine]:
 _ON_HAND: dict[int, DataOverview] = {}
 
 
-def _data_on_hand(session: Session) -> DataOverview:
-    """The newest reference date of each measure per region, cached per newest vintage."""
+def _data_on_hand(session: Session) -> tuple[int, DataOverview]:
+    """The newest reference date of each measure per region, cached per newest vintage (the
+    key, returned with it)."""
     key = int(session.scalar(select(func.max(Vintage.id))) or 0)
     with _LOCK:
         cached = _ON_HAND.get(key)
@@ -299,7 +317,7 @@ def _data_on_hand(session: Session) -> DataOverview:
         with _LOCK:
             _ON_HAND.clear()
             _ON_HAND[key] = cached
-    return cached
+    return key, cached
 
 
 def morning_overview(
@@ -316,42 +334,31 @@ def morning_overview(
     now = now or datetime.now(UTC)
     row = active_ruleset(session=session)
     feeds = _feeds(session, now, late_hours)
-    on_hand = _data_on_hand(session)
+    on_hand_key, on_hand = _data_on_hand(session)
     if row is None:
         return MorningOverview(
             ruleset=None, data_cutoff=None, day=None, lines=(), total=0, page=1, pages=1,
             pending=0, tier_counts={}, tier_names=(), feeds=feeds, changes=(), every=(),
-            data_on_hand=on_hand,
+            data_on_hand=on_hand, data_on_hand_key=on_hand_key,
         )
-    cutoff = session.scalar(
-        select(type_coerce(func.max(Assessment.data_cutoff), UTCDateTime()))
-        .where(Assessment.ruleset_id == row.id)
-    )
+    run = newest_run_of(session=session, ruleset_id=row.id)
+    cutoff = run.data_cutoff if run is not None else None
     ruleset = parsed(row)
-    key = (row.id, cutoff.isoformat() if cutoff else "-")
+    # a replay of an older cutoff may copy rows to this run (same content, new ids): rows_written
+    # counts them, so the key changes with them
+    key = (row.id, cutoff.isoformat(), run.rows_written) if run is not None else (row.id, "-")
     with _LOCK:
         base = _CACHE.get(key)
     if base is None:
         base = (
-            _build_base(session, row.id, ruleset, cutoff) if cutoff
+            _build_base(session, row.id, ruleset, run.data_cutoff, run.last_day) if run
             else _Base(day=None, lines=(), changes=())
         )
         with _LOCK:
             _CACHE.clear()
             _CACHE[key] = base
-    official, pending = _review_state(session, key)
-    lines = []
-    for line in base.lines:
-        off, pend = official.get(line.code), pending.get(line.code)
-        lines.append(replace(
-            line, official_tier=off.tier if off else None,
-            official_name=off.tier_name if off else None, pending=pend is not None,
-            assessment_id=pend.assessment_id if pend else line.assessment_id,
-        ))
-    counts: dict[int, int] = {}
-    for line in lines:
-        if line.official_tier is not None:
-            counts[line.official_tier] = counts.get(line.official_tier, 0) + 1
+    review = _review_state(session, key, base)
+    lines = review.lines
     chosen = [
         line for line in lines
         if (not query or query.lower() in line.name.lower() or query.lower() in line.code.lower())
@@ -364,7 +371,7 @@ def morning_overview(
     return MorningOverview(
         ruleset=f"{row.name} {row.version}", data_cutoff=cutoff, day=base.day,
         lines=tuple(chosen[(page - 1) * per_page: page * per_page]), total=len(chosen),
-        page=page, pages=pages, pending=len(pending), tier_counts=counts,
+        page=page, pages=pages, pending=review.pending, tier_counts=review.tier_counts,
         tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds, changes=base.changes,
-        every=tuple(lines), data_on_hand=on_hand,
+        every=tuple(lines), data_on_hand=on_hand, data_on_hand_key=on_hand_key,
     )

@@ -1,16 +1,19 @@
 """Use case: review and publish tier changes.
 
 The engine recommends; people decide. A *pending change* is a district whose newest recommended
-tier (active ruleset, newest data cutoff, last day) differs from its official tier and that no one
-has decided on since the recommendation took its current value. An approver confirms the
+tier (active ruleset, newest evaluation run, last day) differs from its official tier and that no
+one has decided on since the recommendation took its current value. An approver confirms the
 recommendation or overrides it, always with a reason; :func:`publish` makes every unpublished
 decision visible to the public. Districts with no decision yet start from their recommended tier
 when first published. Every decision and publication is written to the audit log.
 
 A decision on an assessment of day ``d`` is effective from ``d + 1`` (the morning after the data
 it was based on). Only the district's current item can be decided: its assessment of the newest
-day under the active ruleset at the newest data cutoff; a form posted for any other assessment (an
-older day, an older cutoff, a retired ruleset) is refused. The official tier is the decision that
+day in force at the active ruleset's newest evaluation run (the row with the greatest data cutoff
+not after the run's; a run stores only what changed, so an unchanged recommendation keeps its
+row, its id and any decision on it); a form posted for any other assessment (an older day, a row
+superseded by a newer run, a retired ruleset) is refused. Decisions keep pointing at their row,
+which is never deleted. The official tier is the decision that
 takes effect last (ties: the one taken last), so a late decision about an earlier day never wins.
 
 A recommendation of *insufficient data* (tier -1: a gate failed) is a pending change too, since
@@ -303,9 +306,9 @@ def decide(
     ------
     ReviewError
         Blank reason, unknown assessment, an assessment that is not the district's current item
-        in the review (another day, an older data cutoff, a retired ruleset), a user who is not
-        an approver, a missing or out-of-range override tier, confirming insufficient data with
-        no official tier to keep.
+        in the review (another day, a row superseded by a newer run, a retired ruleset), a user
+        who is not an approver, a missing or out-of-range override tier, confirming insufficient
+        data with no official tier to keep.
     """
     if not reason or not reason.strip():
         raise ReviewError("reason", "a decision needs a reason")
@@ -319,7 +322,7 @@ def decide(
             "assessment_id",
             f"{assessment_id} is not the district's current recommendation (that is "
             f"{current if current is not None else 'none'}: the newest day of the active ruleset "
-            "at the newest data cutoff); reload the review page",
+            "in force at its newest evaluation); reload the review page",
         )
     ruleset = _active(session)
     top = ruleset.top_tier if ruleset is not None else None

@@ -17,6 +17,7 @@ from sqlalchemy import (
     Date,
     Float,
     ForeignKey,
+    Index,
     Integer,
     LargeBinary,
     String,
@@ -148,7 +149,10 @@ class Assessment(Base):
     """The engine's recommendation for one region and day, reproducible from its data cutoff."""
 
     __tablename__ = "assessment"
-    __table_args__ = (UniqueConstraint("ruleset_id", "region_id", "ref_date", "data_cutoff"),)
+    __table_args__ = (
+        UniqueConstraint("ruleset_id", "region_id", "ref_date", "data_cutoff"),
+        Index("ix_assessment_ruleset_day", "ruleset_id", "ref_date", "region_id", "data_cutoff"),
+    )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True)
     ruleset_id: Mapped[int] = mapped_column(ForeignKey("ruleset.id"))
@@ -160,6 +164,27 @@ class Assessment(Base):
     criteria: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
     prepare_signals: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
     explanation: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    # SHA-256 of everything above but the cutoff; None on rows stored before revision 0003.
+    content_sha256: Mapped[str | None] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
+class EvaluationRun(Base):
+    """One evaluation of a ruleset at a data cutoff; it stores only the assessments that changed.
+
+    The assessment of a region and day as of a run is the row with the greatest ``data_cutoff``
+    not after the run's cutoff.
+    """
+
+    __tablename__ = "evaluation_run"
+    __table_args__ = (UniqueConstraint("ruleset_id", "data_cutoff"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    ruleset_id: Mapped[int] = mapped_column(ForeignKey("ruleset.id"))
+    data_cutoff: Mapped[datetime] = mapped_column(UTCDateTime())
+    first_day: Mapped[date] = mapped_column(Date)
+    last_day: Mapped[date] = mapped_column(Date)
+    rows_written: Mapped[int] = mapped_column(Integer)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime())
 
 
@@ -252,3 +277,4 @@ class SchedulerJob(Base):
     id: Mapped[str] = mapped_column(Unicode(191), primary_key=True)
     next_run_time: Mapped[float | None] = mapped_column(Float(25), index=True)
     job_state: Mapped[bytes] = mapped_column(LargeBinary)
+

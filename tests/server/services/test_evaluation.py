@@ -16,7 +16,7 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.policies import activate_version
-from server.store.models import Assessment, AuditEntry
+from server.store.models import Assessment, AuditEntry, EvaluationRun
 from server.store.models import Ruleset as RulesetRow
 
 pytestmark = pytest.mark.slow
@@ -57,8 +57,10 @@ def test_rerunning_a_past_day_with_the_same_cutoff_reproduces_it(demo_session: S
     assert row is not None
     evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
     first = _rows(demo_session, CUTOFF)
-    # later data exist (the demo runs to 30 Nov); wipe the stored rows and evaluate again
+    assert first  # nothing was stored before this cutoff, so the run wrote every row
+    # later data exist (the demo runs to 30 Nov); wipe the stored rows and run, evaluate again
     demo_session.execute(delete(Assessment).where(Assessment.data_cutoff == CUTOFF))
+    demo_session.execute(delete(EvaluationRun).where(EvaluationRun.data_cutoff == CUTOFF))
     again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
     assert again is not None and not again.reused
     assert _rows(demo_session, CUTOFF) == first
@@ -70,6 +72,18 @@ def test_second_run_with_same_cutoff_reuses_the_stored_rows(demo_session: Sessio
     evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
     again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
     assert again is not None and again.reused and again.written == 0
+
+
+def test_every_evaluation_records_its_run(demo_session: Session) -> None:
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF)
+    assert run is not None
+    (recorded,) = demo_session.scalars(
+        select(EvaluationRun).where(EvaluationRun.data_cutoff == CUTOFF))
+    assert (recorded.ruleset_id, recorded.first_day, recorded.last_day) == (
+        row.id, run.start, run.end)
+    assert recorded.rows_written == run.written == len(_rows(demo_session, CUTOFF))
 
 
 def test_latest_rows_give_the_start_of_the_current_recommendation(demo_session: Session) -> None:
