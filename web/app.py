@@ -16,7 +16,7 @@ from server.services.database import Database
 from server.services.notify import notify_config_from
 from web import assets, health, login, policies, public, review, staff, users
 from web.apidocs import mount_api_docs
-from web.caching import PageCache
+from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
 from web.feeds_api import router as feeds_api_router
 from web.mapsvg import MapCache
@@ -70,9 +70,11 @@ def create_app(
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter()
     app.state.page_cache = PageCache()
-    # in-memory, one per worker process: jobs are lost on restart (server/services/backtest_jobs)
+    app.state.public_stamps = StampMemo()
+    # jobs run in this process; their state is in the database (server/services/backtest_jobs)
     app.state.backtests = BacktestJobs(db, time_zone=settings.zone)
     app.state.maps = MapCache()
+    app.add_middleware(StampInvalidator)
     app.add_middleware(SecurityHeaders)
     install_error_handlers(app)
     app.include_router(assets.router)  # before the /static mount, which would shadow it

@@ -16,7 +16,8 @@ from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
 
 from server.config import Settings
-from server.services.auth import SessionSigner, StaffUser, has_role, load_user
+from server.services.auth import SessionSigner, StaffUser, has_role, session_user
+from server.services.database import Database
 from server.services.notify import NotifyConfig
 
 SESSION_COOKIE = "tw_session"
@@ -35,6 +36,11 @@ def get_session(request: Request) -> Iterator[Session]:
         yield session
 
 
+def get_database(request: Request) -> Database:
+    """The app's database, for routes that open a transaction only when they need one."""
+    return request.app.state.database  # type: ignore[no-any-return]
+
+
 def get_settings(request: Request) -> Settings:
     return request.app.state.settings  # type: ignore[no-any-return]
 
@@ -49,6 +55,7 @@ def get_notify(request: Request) -> NotifyConfig | None:
 
 
 SessionDep = Annotated[Session, Depends(get_session)]
+DatabaseDep = Annotated[Database, Depends(get_database)]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 TemplatesDep = Annotated[Jinja2Templates, Depends(get_templates)]
 NotifyDep = Annotated[NotifyConfig | None, Depends(get_notify)]
@@ -59,9 +66,10 @@ def signer(request: Request) -> SessionSigner:
 
 
 def current_user(request: Request, session: SessionDep) -> StaffUser:
-    """The signed-in, active user; sets ``request.state.user`` and ``request.state.csrf``."""
+    """The signed-in, active user of a session that was not ended; sets ``request.state.user``
+    and ``request.state.csrf``."""
     data = signer(request).read(request.cookies.get(SESSION_COOKIE))
-    user = load_user(session=session, user_id=data.user_id) if data else None
+    user = session_user(session=session, data=data) if data else None
     if data is None or user is None:
         target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
         raise LoginRequired(target)

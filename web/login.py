@@ -13,7 +13,12 @@ from typing import Annotated
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
-from server.services.auth import LoginRefusedError, TooManyAttemptsError, authenticate
+from server.services.auth import (
+    LoginRefusedError,
+    TooManyAttemptsError,
+    authenticate,
+    end_session,
+)
 from web.deps import SESSION_COOKIE, CsrfDep, SessionDep, StaffDep, signer
 from web.templating import render
 
@@ -68,8 +73,12 @@ def login(
 
 
 @router.post("/logout")
-def logout(user: StaffDep, _csrf: CsrfDep) -> RedirectResponse:
-    """End the session."""
+def logout(
+    request: Request, session: SessionDep, user: StaffDep, _csrf: CsrfDep
+) -> RedirectResponse:
+    """End the session: this cookie, and every other session of the account, stop working."""
+    end_session(session=session, user=user,
+                client=request.client.host if request.client else "?")
     response = RedirectResponse("/staff/login", status_code=303)
     response.delete_cookie(SESSION_COOKIE, path="/")
     return response

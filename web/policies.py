@@ -31,7 +31,7 @@ def policies(
     """A version (default: the active one) as tiers and a thresholds table; all versions."""
     return render(request, "staff/policies.html", {
         "view": policy_view(session=session, ruleset_id=id), "versions": versions(session=session),
-        "check": None, "backtests": _jobs(request).recent(),
+        "check": None, "backtests": _jobs(request).recent(session=session),
     })
 
 
@@ -63,7 +63,7 @@ def draft(
         return RedirectResponse(f"/staff/policies?id={new_id}", status_code=303)
     return render(request, "staff/policies.html", {
         "view": policy_view(session=session), "versions": versions(session=session),
-        "check": result, "draft_text": text, "backtests": _jobs(request).recent(),
+        "check": result, "draft_text": text, "backtests": _jobs(request).recent(session=session),
     }, status_code=200 if result.ok else 422)
 
 
@@ -95,9 +95,13 @@ def backtest(
 
 
 @router.get("/policies/backtests/{job_id}", response_class=HTMLResponse)
-def backtest_job(request: Request, user: AnalystDep, job_id: str) -> Response:
-    """A backtest's progress (the page reloads itself every 2 s while it runs), then its result."""
-    job = _jobs(request).status(job_id)
+def backtest_job(
+    request: Request, session: SessionDep, user: AnalystDep, job_id: str
+) -> Response:
+    """A backtest's progress (the page reloads itself every 2 s while it runs), then its result.
+
+    Any worker answers: the job's state is read from the database."""
+    job = _jobs(request).status(session=session, job_id=job_id)
     strips = [tier_strip(f) for f in job.results] if job.state == "done" else []
     return render(request, "staff/backtest.html", {"job": job, "strips": strips,
                                                        "outline": OUTLINE})

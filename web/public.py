@@ -1,19 +1,28 @@
 """Public, read-only pages for residents (no login): published tiers only.
 
 Every page and its JSON twin carries nothing staff-only; pages are cacheable (ETag and
-Last-Modified from the publication stamp, see :mod:`web.caching`).
+Last-Modified from the publication stamp, see :mod:`web.caching`). The routes are coroutines
+that answer from the worker's caches; the stamp and a page are read from the database (in the
+thread pool, each in its own transaction) only when the caches cannot answer.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 
-from server.services.pages import public_district_page, public_map, public_stamp
+from server.services.database import Database
+from server.services.pages import (
+    PublicStamp,
+    public_district_page,
+    public_map,
+    public_stamp,
+)
 from web.caching import conditional
-from web.deps import SessionDep, SettingsDep
+from web.deps import DatabaseDep, SettingsDep
 from web.i18n import LANGUAGES
 from web.mapsvg import svg_map
 from web.templating import render
@@ -21,33 +30,41 @@ from web.templating import render
 router = APIRouter(tags=["public"])
 
 
+def _stamp(db: Database) -> Callable[[], PublicStamp]:
+    def read() -> PublicStamp:
+        with db.transaction() as session:
+            return public_stamp(session=session)
+
+    return read
+
+
 @router.get("/", response_class=HTMLResponse)
-def index(request: Request, session: SessionDep, settings: SettingsDep) -> Response:
+async def index(request: Request, db: DatabaseDep, settings: SettingsDep) -> Response:
     """Map and list of every district with its published tier, and the cautions."""
 
     def build() -> Response:
-        data = public_map(session=session)
+        with db.transaction() as session:
+            data = public_map(session=session)
         shapes = svg_map((d.code, d.geometry) for d in data.districts)
         return render(request, "public/index.html", {"data": data, "map": shapes,
                                                      "by_code": {d.code: d for d in data.districts},
                                                      "threshold": settings.small_count_threshold})
 
-    stamp = public_stamp(session=session)
-    return conditional(request, stamp.key, build, stamp.last_modified)
+    return await conditional(request, _stamp(db), build)
 
 
 @router.get("/district/{code}", response_class=HTMLResponse)
-def district(request: Request, code: str, session: SessionDep, settings: SettingsDep) -> Response:
+async def district(request: Request, code: str, db: DatabaseDep, settings: SettingsDep) -> Response:
     """One district: its tier and what it means, since when, a weekly trend, the cautions."""
 
     def build() -> Response:
-        page = public_district_page(session=session, code=code,
-                                    threshold=settings.small_count_threshold)
+        with db.transaction() as session:
+            page = public_district_page(session=session, code=code,
+                                        threshold=settings.small_count_threshold)
         top = max((w.rate for w in page.weeks if w.rate is not None), default=0.0)
         return render(request, "public/district.html", {"page": page, "top_rate": top})
 
-    stamp = public_stamp(session=session)
-    return conditional(request, stamp.key, build, stamp.last_modified)
+    return await conditional(request, _stamp(db), build)
 
 
 @router.get("/language")
@@ -68,20 +85,20 @@ def _district_json(d: Any) -> dict[str, Any]:
 
 
 @router.get("/api/public/districts")
-def districts_json(request: Request, session: SessionDep) -> Response:
+async def districts_json(request: Request, db: DatabaseDep) -> Response:
     """Every district with its published tier (JSON)."""
 
     def build() -> Response:
-        data = public_map(session=session)
+        with db.transaction() as session:
+            data = public_map(session=session)
         return JSONResponse([_district_json(d) for d in data.districts])
 
-    stamp = public_stamp(session=session)
-    return conditional(request, stamp.key, build, stamp.last_modified)
+    return await conditional(request, _stamp(db), build)
 
 
 @router.get("/api/public/districts/{code}")
-def district_json(
-    request: Request, code: str, session: SessionDep, settings: SettingsDep
+async def district_json(
+    request: Request, code: str, db: DatabaseDep, settings: SettingsDep
 ) -> Response:
     """One district's published tier and weekly figures, small counts suppressed (JSON).
 
@@ -90,8 +107,9 @@ def district_json(
     """
 
     def build() -> Response:
-        p = public_district_page(session=session, code=code,
-                                 threshold=settings.small_count_threshold)
+        with db.transaction() as session:
+            p = public_district_page(session=session, code=code,
+                                     threshold=settings.small_count_threshold)
         return JSONResponse({
             "code": p.code, "name": p.name, "area": p.area, "tier": p.tier,
             "tier_name": p.tier_name, "meaning": p.public_text,
@@ -104,5 +122,4 @@ def district_json(
                       for w in p.weeks],
         })
 
-    stamp = public_stamp(session=session)
-    return conditional(request, stamp.key, build, stamp.last_modified)
+    return await conditional(request, _stamp(db), build)

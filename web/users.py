@@ -1,4 +1,7 @@
-"""Users (admins only): add, change role, disable or enable."""
+"""Users (admins only): add, change role, disable or enable, set a new password.
+
+Changing a role, disabling or enabling and setting a password end that user's sessions.
+"""
 
 from __future__ import annotations
 
@@ -7,7 +10,14 @@ from typing import Annotated
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
-from server.services.auth import ROLES, add_account, change_role, list_accounts, set_active
+from server.services.auth import (
+    ROLES,
+    add_account,
+    change_role,
+    list_accounts,
+    set_active,
+    set_password,
+)
 from web.deps import AdminDep, CsrfDep, SessionDep
 from web.templating import render
 
@@ -44,4 +54,14 @@ def active(
     active: Annotated[str, Form()],
 ) -> RedirectResponse:
     set_active(session=session, name=name, active=active == "yes", actor=user.name)
+    return RedirectResponse("/staff/users", status_code=303)
+
+
+@router.post("/users/{name}/password")
+def password(
+    session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: str,
+    password: Annotated[str, Form()],
+) -> RedirectResponse:
+    """Set a new password (an admin resetting a forgotten one); the user signs in again."""
+    set_password(session=session, name=name, password=password, actor=user.name)
     return RedirectResponse("/staff/users", status_code=303)

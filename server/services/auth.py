@@ -2,9 +2,13 @@
 
 Passwords are checked against :mod:`server.services.users` hashes and never logged. A session is
 a signed, time-stamped token (``itsdangerous``) holding the user id, a random session id and the
-role at login; every request re-reads the user, so a disabled account or a changed role takes
-effect at once. The CSRF token of a form is an HMAC of the session id under the secret key (the
-"synchronizer token" pattern bound to the session), so it needs no server-side storage.
+user's *session generation* at login. Every request re-reads the user by primary key (one
+indexed lookup) and refuses the token unless the account is active and its generation is still
+the one signed in. The generation is bumped on logout, role change, enabling or disabling and
+password change, so every session issued before (on any device, including a copied cookie) is
+refused from then on; tokens also expire after :data:`SESSION_MAX_AGE`. The CSRF token of a form
+is an HMAC of the session id under the secret key (the "synchronizer token" pattern bound to the
+session), so it needs no server-side storage.
 
 Roles are ordered: viewer < analyst < approver < admin; a page that needs ``analyst`` admits
 approvers and admins too.
@@ -43,14 +47,18 @@ __all__ = [
     "authenticate",
     "change_role",
     "csrf_token",
+    "end_session",
     "has_role",
     "list_accounts",
     "load_user",
+    "session_user",
     "set_active",
+    "set_password",
     "verify_csrf",
 ]
 
 SESSION_MAX_AGE = 12 * 3600  # a working day
+MIN_PASSWORD = 10
 
 
 class LoginRefusedError(ServiceError, ValueError):
@@ -79,6 +87,7 @@ class StaffUser:
     name: str
     role: str
     active: bool = True
+    generation: int = 0
 
 
 def has_role(role: str, needed: str) -> bool:
@@ -161,7 +170,12 @@ def authenticate(
     for key in keys:
         limiter.succeeded(key)
     record(session=session, actor=user.name, action="auth.login", subject=client)
-    return StaffUser(id=user.id, name=user.name, role=user.role, active=user.active)
+    return _staff(user)
+
+
+def _staff(user: User) -> StaffUser:
+    return StaffUser(id=user.id, name=user.name, role=user.role, active=user.active,
+                     generation=user.session_generation)
 
 
 def load_user(*, session: Session, user_id: int) -> StaffUser | None:
@@ -169,13 +183,37 @@ def load_user(*, session: Session, user_id: int) -> StaffUser | None:
     user = session.get(User, user_id)
     if user is None or not user.active:
         return None
-    return StaffUser(id=user.id, name=user.name, role=user.role, active=user.active)
+    return _staff(user)
 
 
 @dataclass(frozen=True, kw_only=True)
 class SessionData:
     user_id: int
     sid: str
+    generation: int
+
+
+def session_user(*, session: Session, data: SessionData) -> StaffUser | None:
+    """The user of a session, or None when the account is unknown or disabled or the session
+    was ended (its generation is no longer the account's)."""
+    user = load_user(session=session, user_id=data.user_id)
+    if user is None or user.generation != data.generation:
+        return None
+    return user
+
+
+def _bump(user: User) -> None:
+    """End every session of ``user`` (an atomic increment in the database)."""
+    user.session_generation = User.session_generation + 1  # type: ignore[assignment]
+
+
+def end_session(*, session: Session, user: StaffUser, client: str = "") -> None:
+    """Log ``user`` out: this session and every other one of the account stop working."""
+    row = session.get(User, user.id)
+    if row is None:
+        return
+    _bump(row)
+    record(session=session, actor=row.name, action="auth.logout", subject=client)
 
 
 class SessionSigner:
@@ -187,7 +225,9 @@ class SessionSigner:
         self.max_age = max_age
 
     def issue(self, user: StaffUser) -> str:
-        return self._serializer.dumps({"u": user.id, "s": secrets.token_urlsafe(16)})
+        return self._serializer.dumps(
+            {"u": user.id, "s": secrets.token_urlsafe(16), "g": user.generation}
+        )
 
     def read(self, token: str | None) -> SessionData | None:
         if not token:
@@ -198,7 +238,9 @@ class SessionSigner:
             return None
         if not isinstance(data, dict) or not isinstance(data.get("u"), int):
             return None
-        return SessionData(user_id=data["u"], sid=str(data.get("s", "")))
+        if not isinstance(data.get("g"), int):  # issued before session generations: refused
+            return None
+        return SessionData(user_id=data["u"], sid=str(data.get("s", "")), generation=data["g"])
 
     def csrf_for(self, sid: str) -> str:
         return csrf_token(self._csrf_key, sid)
@@ -235,8 +277,8 @@ def list_accounts(*, session: Session) -> list[Account]:
 def add_account(*, session: Session, name: str, role: str, password: str, actor: str) -> Account:
     if len(name.strip()) < 2:
         raise AccountError(name, "a name needs at least 2 characters")
-    if len(password) < 10:
-        raise AccountError(name, "the password needs at least 10 characters")
+    if len(password) < MIN_PASSWORD:
+        raise AccountError(name, f"the password needs at least {MIN_PASSWORD} characters")
     user = add_user(session=session, name=name.strip(), role=role, password=password, actor=actor)
     return Account(name=user.name, role=user.role, active=user.active, created_at=user.created_at)
 
@@ -255,6 +297,8 @@ def change_role(*, session: Session, name: str, role: str, actor: str) -> None:
     if user.name == actor and role != "admin":
         raise AccountError(name, "admins cannot lower their own role")
     old, user.role = user.role, role
+    if old != role:
+        _bump(user)
     record(session=session, actor=actor, action="users.role", subject=name,
            details={"from": old, "to": role})
 
@@ -263,6 +307,18 @@ def set_active(*, session: Session, name: str, active: bool, actor: str) -> None
     user = _user(session, name)
     if user.name == actor and not active:
         raise AccountError(name, "admins cannot disable themselves")
+    if user.active != active:
+        _bump(user)
     user.active = active
     record(session=session, actor=actor, action="users.enable" if active else "users.disable",
            subject=name, details={"at": datetime.now(UTC).isoformat()})
+
+
+def set_password(*, session: Session, name: str, password: str, actor: str) -> None:
+    """Give ``name`` a new password (stored as a hash only); their sessions end."""
+    if len(password) < MIN_PASSWORD:
+        raise AccountError(name, f"the password needs at least {MIN_PASSWORD} characters")
+    user = _user(session, name)
+    user.password_hash = hash_password(password)
+    _bump(user)
+    record(session=session, actor=actor, action="users.password", subject=name)

@@ -199,6 +199,9 @@ class User(Base):
     password_hash: Mapped[str] = mapped_column(String(200))
     active: Mapped[bool] = mapped_column(Boolean, default=True)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    # Signed into every session token; bumped on logout, role change, enabling or disabling and
+    # password change, which refuses every session issued before (server/services/auth.py).
+    session_generation: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
 
 
 class Decision(Base):
@@ -278,3 +281,28 @@ class SchedulerJob(Base):
     next_run_time: Mapped[float | None] = mapped_column(Float(25), index=True)
     job_state: Mapped[bytes] = mapped_column(LargeBinary)
 
+
+class BacktestJob(Base):
+    """A background backtest of the Policies page, so that every web worker can answer for it.
+
+    ``worker`` names the process running it; it refreshes ``heartbeat_at`` while the job is
+    queued or running, so a job whose process died shows as abandoned. ``results`` holds the
+    figures of a finished job (zlib-compressed JSON, server/services/backtest_jobs.py).
+    """
+
+    __tablename__ = "backtest_job"
+
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    ruleset_id: Mapped[int] = mapped_column(ForeignKey("ruleset.id"))
+    compare_id: Mapped[int | None] = mapped_column(ForeignKey("ruleset.id"))
+    as_known: Mapped[bool] = mapped_column(Boolean)
+    user_name: Mapped[str] = mapped_column(String(100))
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime(), index=True)
+    state: Mapped[str] = mapped_column(String(16))  # queued | running | done | failed
+    done: Mapped[int] = mapped_column(Integer, default=0)
+    total: Mapped[int] = mapped_column(Integer)
+    error: Mapped[str | None] = mapped_column(Text)
+    worker: Mapped[str] = mapped_column(String(200))
+    heartbeat_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    finished_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
+    results: Mapped[bytes | None] = mapped_column(LargeBinary)

@@ -249,3 +249,19 @@ def test_backtest_as_known_equals_service_summary(
                             time_zone=client.app.state.settings.zone).summary  # type: ignore[attr-defined]
     got = re.findall(r'data-figure="share_(\d+)">([0-9.]+%)', page)
     assert got == [(str(k), f"{100 * x:.1f}%") for k, x in enumerate(want.tier_shares)]
+
+
+def test_backtest_poll_answered_by_another_worker(
+    client_ids: tuple[TestClient, int, int], finished_run: tuple[str, str]
+) -> None:
+    """A second app on the same database (another worker process) shows the finished job."""
+    client, _active, _draft = client_ids
+    settings = client.app.state.settings  # type: ignore[attr-defined]
+    with TestClient(create_app(settings)) as other:
+        login(other, ROLE_USER["analyst"])
+        page = other.get(finished_run[0])
+        assert page.status_code == 200
+        assert "county-demo 2031.77" in page.text
+        assert 'http-equiv="refresh"' not in page.text
+        assert re.findall(r'data-figure="changes_per_year">([^<]*)<', page.text) == \
+            re.findall(r'data-figure="changes_per_year">([^<]*)<', finished_run[1])

@@ -1,4 +1,6 @@
-"""Public page cache and ETag follow the active ruleset (its tier names and public texts)."""
+"""Public page cache and ETag follow publications and the active ruleset (its tier names and
+public texts); the worker's stamp is reused for a moment and forgotten after any change made
+through the app."""
 
 from __future__ import annotations
 
@@ -9,12 +11,24 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
+from rules import parse_ruleset
 from server.services.policies import activate_version, store_draft
 from server.services.review import decide, pending_changes, publish
-from tests.web.conftest import ROLE_USER, copy_demo, settings_for
+from tests.web.conftest import ROLE_USER, copy_demo, csrf_of, login, settings_for
 from web.app import create_app
+from web.caching import STAMP_TTL, StampMemo
 
 POLICY = Path(__file__).resolve().parents[2] / "rules" / "policies" / "county.yaml"
+
+
+class Clock:
+    """A hand-driven monotonic clock."""
+
+    def __init__(self) -> None:
+        self.now = 1000.0
+
+    def __call__(self) -> float:
+        return self.now
 
 
 @pytest.fixture(scope="module")
@@ -30,25 +44,95 @@ def client(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterato
         yield c
 
 
-def _renamed(old: str, new: str) -> str:
-    """The demo policy with tier ``old`` renamed to ``new`` under a higher version."""
-    text = POLICY.read_text().replace(f"name: {old}\n", f"name: {new}\n", 1)
-    return re.sub(r"^version: .*$", 'version: "2031.9"', text, count=1, flags=re.M)
+@pytest.fixture()
+def clock(client: TestClient) -> Clock:
+    """The app's stamp memo on a hand-driven clock (a fresh memo, so nothing is kept yet)."""
+    fake = Clock()
+    client.app.state.public_stamps = StampMemo(clock=fake)  # type: ignore[attr-defined]
+    return fake
+
+
+def _store(client: TestClient, level: int, new: str, version: str) -> int:
+    """Store the demo policy with tier ``level`` renamed to ``new`` under ``version``."""
+    text = POLICY.read_text()
+    old = parse_ruleset(text, source=str(POLICY)).tiers[level].name
+    text = text.replace(f"name: {old}\n", f"name: {new}\n", 1)
+    text = re.sub(r"^version: .*$", f'version: "{version}"', text, count=1, flags=re.M)
+    with client.app.state.database.transaction() as session:  # type: ignore[attr-defined]
+        return store_draft(session=session, text=text, author="test", filename="renamed.yaml")
 
 
 @pytest.mark.slow
-def test_public_page_follows_newly_activated_ruleset(client: TestClient) -> None:
+def test_public_page_follows_ruleset_activated_through_the_app(
+    client: TestClient, clock: Clock
+) -> None:
     first = client.get("/api/public/districts/D03")
-    old_name = first.json()["tier_name"]
-    assert old_name is not None
-    # Warm the page cache, then activate a ruleset that renames the district's tier.
-    assert client.get("/api/public/districts/D03").json()["tier_name"] == old_name
-    with client.app.state.database.transaction() as session:  # type: ignore[attr-defined]
-        new_id = store_draft(session=session, text=_renamed(old_name, "Renamed-Tier-X"),
-                             author="test", filename="renamed.yaml")
-        activate_version(session=session, ruleset_id=new_id, actor="test")
+    assert first.json()["tier_name"] is not None
+    new_id = _store(client, first.json()["tier"], "Renamed-Tier-X", "2031.9")
+    login(client, ROLE_USER["admin"])
+    csrf = csrf_of(client.get("/staff/policies").text)
+    assert client.post(f"/staff/policies/{new_id}/activate", data={"csrf": csrf},
+                       follow_redirects=False).status_code == 303
+    client.cookies.clear()
+    # the clock has not moved: the POST itself made the worker forget its stamp
     again = client.get("/api/public/districts/D03",
                        headers={"If-None-Match": first.headers["etag"]})
     assert again.status_code == 200
     assert again.headers["etag"] != first.headers["etag"]
     assert again.json()["tier_name"] == "Renamed-Tier-X"
+
+
+@pytest.mark.slow
+def test_public_page_follows_outside_change_after_stamp_ttl(
+    client: TestClient, clock: Clock
+) -> None:
+    """A change made outside this worker (here: the service called directly) shows once the
+    worker's stamp is older than STAMP_TTL, not before."""
+    first = client.get("/api/public/districts/D03")
+    new_id = _store(client, first.json()["tier"], "Renamed-Tier-Y", "2031.10")
+    with client.app.state.database.transaction() as session:  # type: ignore[attr-defined]
+        activate_version(session=session, ruleset_id=new_id, actor="test")
+    clock.now += STAMP_TTL / 2
+    kept = client.get("/api/public/districts/D03")
+    assert kept.headers["etag"] == first.headers["etag"]
+    clock.now += STAMP_TTL
+    fresh = client.get("/api/public/districts/D03",
+                       headers={"If-None-Match": first.headers["etag"]})
+    assert fresh.status_code == 200
+    assert fresh.json()["tier_name"] == "Renamed-Tier-Y"
+
+
+class _NoDatabase:
+    def transaction(self) -> None:
+        raise AssertionError("the database was used")
+
+
+def test_public_304_and_cached_page_need_no_database(client: TestClient, clock: Clock) -> None:
+    first = client.get("/district/D05")
+    assert first.status_code == 200
+    app = client.app
+    db = app.state.database  # type: ignore[attr-defined]
+    app.state.database = _NoDatabase()  # type: ignore[attr-defined]
+    try:
+        cond = client.get("/district/D05", headers={"If-None-Match": first.headers["etag"]})
+        again = client.get("/district/D05")
+    finally:
+        app.state.database = db  # type: ignore[attr-defined]
+    assert cond.status_code == 304
+    assert cond.headers["etag"] == first.headers["etag"]
+    assert cond.headers["last-modified"] == first.headers["last-modified"]
+    assert again.status_code == 200
+    assert again.content == first.content
+    assert again.headers["content-type"] == first.headers["content-type"]
+
+
+def test_public_304_to_one_of_several_etags(client: TestClient, clock: Clock) -> None:
+    etag = client.get("/").headers["etag"]
+    answer = client.get("/", headers={"If-None-Match": f'W/"other", {etag}'})
+    assert answer.status_code == 304
+
+
+def test_public_stale_etag_gets_the_page(client: TestClient, clock: Clock) -> None:
+    answer = client.get("/", headers={"If-None-Match": 'W/"0123456789abcdef0123"'})
+    assert answer.status_code == 200
+    assert answer.headers["etag"] != 'W/"0123456789abcdef0123"'
