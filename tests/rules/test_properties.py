@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from hypothesis import example, given, settings
+from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from numpy.testing import assert_array_equal
@@ -91,21 +91,6 @@ def test_evaluate_stale_criterion_never_lowers_or_raises_alone(
         assert not np.any(lowered & any_unknown)
 
 
-def _rose_recently(tier: np.ndarray, days: int) -> np.ndarray:
-    """True where the tier rose on one of the ``days - 1`` days before (not counting the day)."""
-    return _moved_recently(tier, days, up=True)
-
-
-def _moved_recently(tier: np.ndarray, days: int, *, up: bool) -> np.ndarray:
-    """True where the tier rose (``up``) or fell on the day or one of the ``days - 1`` before."""
-    moved = np.zeros(tier.shape, dtype=bool)
-    moved[:, 1:] = tier[:, 1:] > tier[:, :-1] if up else tier[:, 1:] < tier[:, :-1]
-    out = np.zeros(tier.shape, dtype=bool)
-    for k in range(1, days):
-        out[:, k:] |= moved[:, : tier.shape[1] - k]
-    return out
-
-
 def _worse(x: np.ndarray, delta: np.ndarray) -> np.ndarray:
     worse = x.copy()
     worse[:2] += delta[:2]  # a and b are rising criteria
@@ -120,39 +105,14 @@ def _worse(x: np.ndarray, delta: np.ndarray) -> np.ndarray:
 # "at least 1" on 2 days, so it must rise to 1 (as it would for candidates 1, 1); to be at 2 on
 # day 2 as well it would have to change again one day later, which the gap invariant forbids.
 # The engine keeps the gap invariant (a step restarts the confirmation count: no flapping) and the
-# raised region reaches 2 one day later. The release count behaves the same way (second CI case,
-# at the end of this file). What must hold, and is tested below: with confirm_days and
-# release_days 1 raising values never lowers a tier; in general a raised region is lower only on
-# the confirm_days - 1 days after one of its own rises or the release_days - 1 days after a fall
-# of the other (a fresh period running), and its first escalation never comes later.
-@settings(max_examples=60, deadline=None)
-@given(
-    values,
-    arrays(np.float64, (3, 4, 30), elements=st.floats(0, 30, width=32)),
-    st.integers(1, 4),
-    st.integers(1, 6),
-    st.sampled_from(COMBOS),
-)
-@example(  # the falsifying case found by CI: one region's a and b at 0 on its first day
-    x=_FALSIFYING_X,
-    delta=np.ones((3, 4, 30)),
-    confirm=2,
-    release=1,
-    combo=COMBOS[0],
-)
-def test_evaluate_raising_values_lowers_a_tier_only_in_a_fresh_period(
-    x: np.ndarray, delta: np.ndarray, confirm: int, release: int, combo: str
-) -> None:
-    rs = _rules(combo, confirm, release)
-    raised, base = _eval(rs, _worse(x, delta)).tier, _eval(rs, x).tier
-    lower = raised < base
-    fresh_rise = _rose_recently(raised.astype(np.int32), confirm)
-    # the release twin (second CI case below): the base region stepped down on a day whose
-    # release period is still running, so it cannot follow the raised region's later, deeper fall
-    fresh_fall = _moved_recently(base.astype(np.int32), release, up=False)
-    assert not np.any(lower & ~fresh_rise & ~fresh_fall)
-
-
+# raised region reaches 2 one day later. The release count behaves the same way (second CI case),
+# and a hysteresis band can hold a raised region back longer still (third CI case): a region that
+# rose early to a lower tier must cross the next tier's enter threshold, while one already there
+# only has to stay inside the band. A bound on how long a raised region may stay lower was tried
+# as a property and hypothesis found counterexamples to each version (also without bands), so no
+# such bound is claimed. What holds, and is tested: with confirm_days and release_days 1 raising
+# values never lowers a tier, and raising values never delays the first escalation; the three CI
+# cases are kept as worked, day-by-day regressions at the end of this file.
 @settings(max_examples=60, deadline=None)
 @given(
     values,
@@ -190,7 +150,7 @@ def test_evaluate_raising_values_never_delays_the_first_escalation(
 
 
 def test_evaluate_raised_values_step_through_the_lower_tier_regression() -> None:
-    # the CI falsifying case, day by day (worked case in the comment above; own derivation):
+    # the first CI falsifying case, day by day (worked case in the comment above; own derivation):
     # base candidates 0, 2, 2 -> tiers 0, 0, 2; raised candidates 1, 2, 2, 2 -> 0, 1, 1, 2
     rs = _rules(COMBOS[0], 2, 1)
     raised, base = _eval(rs, _worse(_FALSIFYING_X, np.ones((3, 4, 30)))), _eval(rs, _FALSIFYING_X)
@@ -216,3 +176,20 @@ def test_evaluate_raised_values_fall_later_but_deeper_regression() -> None:
     assert_array_equal(raised.candidate[0, :4], [3, 3, 1, 1])
     assert_array_equal(base.tier[0, :5], [3, 3, 2, 2, 0])
     assert_array_equal(raised.tier[0, :5], [3, 3, 3, 1, 1])
+
+
+def test_evaluate_raised_values_held_back_by_the_band_regression() -> None:
+    # The third CI falsifying case (confirm 3, release 1, score a 1 + b 1 + c 2 with cutoffs 2, 4,
+    # 7), own derivation: region x has every value 20 but c = 71 on day 0 and 41 on day 4; the
+    # raised copy adds 10 to b on day 0. Base: candidate 2 on days 1-3 rises to 2 on day 3, and on
+    # day 4 c = 41 stays inside tier 2's band (enter 40, exit 50; falling). Raised: b = 30 on day 0
+    # makes candidate 1 on days 0-2, so it rises to 1 on day 2; at tier 1, c = 41 does not cross
+    # tier 2's enter threshold 40, which restarts the confirmation and delays tier 2 to day 7.
+    x = np.full((3, 4, 30), 20.0)
+    x[2, 1, 0], x[2, 1, 4] = 71.0, 41.0
+    delta = np.zeros((3, 4, 30))
+    delta[1, 1, 0] = 10.0
+    rs = _rules(COMBOS[2], 3, 1)
+    base, raised = _eval(rs, x), _eval(rs, _worse(x, delta))
+    assert_array_equal(base.tier[1, :9], [0, 0, 0, 2, 2, 2, 2, 2, 2])
+    assert_array_equal(raised.tier[1, :9], [0, 0, 1, 1, 1, 1, 1, 2, 2])
