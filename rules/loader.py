@@ -27,6 +27,7 @@ from rules.model import (
     PrepareSignal,
     Thresholds,
     Tier,
+    TierText,
     Timing,
 )
 from rules.nodes import MISSING, NodeReader, Path
@@ -177,17 +178,45 @@ def _read_tiers(r: NodeReader, node: yaml.Node) -> tuple[Tier, ...] | None:
     tiers: list[Tier | None] = []
     for i, item in enumerate(items):
         path: Path = ("tiers", i)
-        m = r.mapping(item, path, required=("name", "staff", "public"), optional=("level",))
-        if m is None or len(m) < 3:
+        m = r.mapping(item, path, required=("name", "staff", "public"),
+                      optional=("level", "translations"))
+        if m is None or not all(k in m for k in ("name", "staff", "public")):
             tiers.append(None)
             continue
         level = r.integer(m["level"], path + ("level",)) if "level" in m else i
         fields = {k: r.text(m[k], path + (k,)) for k in ("name", "staff", "public")}
-        if level is None or any(v is None for v in fields.values()):
+        translations = (
+            _read_tier_texts(r, m["translations"], path + ("translations",))
+            if "translations" in m else ()
+        )
+        if level is None or translations is None or any(v is None for v in fields.values()):
             tiers.append(None)
             continue
-        tiers.append(r.build(item, path, Tier, level=level, **fields))
+        tiers.append(r.build(item, path, Tier, level=level, translations=translations, **fields))
     return None if any(t is None for t in tiers) else tuple(t for t in tiers if t is not None)
+
+
+def _read_tier_texts(
+    r: NodeReader, node: yaml.Node, path: Path
+) -> tuple[tuple[str, TierText], ...] | None:
+    """``translations: {de: {name: ..., public: ...}, ...}`` of one tier."""
+    m = r.mapping(node, path, free_keys=True)
+    if m is None:
+        return None
+    out: list[tuple[str, TierText] | None] = []
+    for lang, item in m.items():
+        t = r.mapping(item, path + (lang,), required=("name",), optional=("public",))
+        if t is None or "name" not in t:
+            out.append(None)
+            continue
+        name = r.text(t["name"], path + (lang, "name"))
+        public = r.text(t["public"], path + (lang, "public")) if "public" in t else ""
+        if name is None or public is None:
+            out.append(None)
+            continue
+        text = r.build(item, path + (lang,), TierText, name=name, public=public)
+        out.append(None if text is None else (lang, text))
+    return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 
 
 def _read_indicators(

@@ -12,6 +12,7 @@ the criterion jumps straight to its first reachable tier.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
@@ -31,6 +32,7 @@ __all__ = [
     "PrepareSignal",
     "Thresholds",
     "Tier",
+    "TierText",
     "Timing",
 ]
 
@@ -40,6 +42,7 @@ SignalStatistic = Literal["estimate", "lower", "upper"]
 Comparison = Literal["above", "at_least", "below", "at_most"]
 COMPARISONS: tuple[str, ...] = ("above", "at_least", "below", "at_most")
 ParamValue = int | float | str | bool
+_LANGUAGE = re.compile(r"[a-z]{2,3}(-[A-Za-z0-9]{2,8})*")
 
 #: Parameters the services layer is known to read, with their checks.
 _KNOWN_PARAMS: dict[str, tuple[type, float]] = {
@@ -68,17 +71,52 @@ def _identifier(path: tuple[str | int, ...], value: str) -> None:
 
 @dataclass(frozen=True, kw_only=True)
 class Tier:
-    """One ordered level: number, name, staff description and plain-language public text."""
+    """One ordered level: number, name, staff description and plain-language public text.
+
+    ``translations`` pairs a language code (``de``, ``fr-CH``) with the tier's name and public
+    text in that language, for the public pages; a language not listed falls back to ``name``
+    and ``public``.
+    """
 
     level: int
     name: str
     staff: str
     public: str
+    translations: tuple[tuple[str, TierText], ...] = ()
 
     def __post_init__(self) -> None:
         _nonneg_int(("level",), self.level)
         if not self.name.strip():
             raise FieldError(("name",), "a tier needs a non-empty name")
+        for lang, _text in self.translations:
+            if not _LANGUAGE.fullmatch(lang):
+                raise FieldError(("translations", lang),
+                                 f"{lang!r} is not a language code (such as de or fr-CH)")
+
+    def _text(self, lang: str | None) -> TierText | None:
+        return next((t for code, t in self.translations if code == lang), None)
+
+    def name_in(self, lang: str | None) -> str:
+        """The tier's name in ``lang`` (its own name when there is no translation)."""
+        text = self._text(lang)
+        return text.name if text is not None else self.name
+
+    def public_in(self, lang: str | None) -> str:
+        """The public text in ``lang`` (the default text when there is no translation)."""
+        text = self._text(lang)
+        return text.public if text is not None and text.public else self.public
+
+
+@dataclass(frozen=True, kw_only=True)
+class TierText:
+    """A tier's name and public text in one language."""
+
+    name: str
+    public: str = ""
+
+    def __post_init__(self) -> None:
+        if not self.name.strip():
+            raise FieldError(("name",), "a translated tier needs a non-empty name")
 
 
 @dataclass(frozen=True, kw_only=True)

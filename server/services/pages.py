@@ -31,7 +31,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset, parse_ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
-from server.services.review import official_tiers
+from server.services.review import OfficialTier, official_tiers
 from server.store import read_dense
 from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage
 from server.store.types import UTCDateTime
@@ -158,17 +158,32 @@ _RULESETS: dict[str, Ruleset] = {}
 _LOCK = threading.Lock()
 
 
-def _tiers(session: Session) -> tuple[TierInfo, ...]:
+def _ruleset(session: Session) -> Ruleset | None:
     row = active_ruleset(session=session)
     if row is None:
-        return ()
+        return None
     with _LOCK:
         ruleset = _RULESETS.get(row.sha256)
         if ruleset is None:
             ruleset = parse_ruleset(row.yaml_text, source=row.name)
             _RULESETS[row.sha256] = ruleset
-    return tuple(TierInfo(level=t.level, name=t.name, public=t.public.strip())
+    return ruleset
+
+
+def _tiers(ruleset: Ruleset | None, lang: str | None) -> tuple[TierInfo, ...]:
+    """The active ruleset's tiers in ``lang`` (its translations; the default text otherwise)."""
+    if ruleset is None:
+        return ()
+    return tuple(TierInfo(level=t.level, name=t.name_in(lang), public=t.public_in(lang).strip())
                  for t in ruleset.tiers)
+
+
+def _tier_text(tiers: tuple[TierInfo, ...], off: OfficialTier | None) -> tuple[str | None, ...]:
+    """(name, public text) of an official tier in the page's language."""
+    if off is None:
+        return None, None
+    info = next((t for t in tiers if t.level == off.tier), None)
+    return (info.name, info.public) if info is not None else (off.tier_name, off.public_text)
 
 
 def _districts(session: Session) -> list[tuple[Region, str | None]]:
@@ -182,22 +197,25 @@ def _districts(session: Session) -> list[tuple[Region, str | None]]:
     return [(r, p) for r, p in session.execute(query).all()]
 
 
-def public_map(*, session: Session) -> PublicMap:
-    """Every district with its published tier (None when nothing is published yet)."""
+def public_map(*, session: Session, lang: str | None = None) -> PublicMap:
+    """Every district with its published tier (None when nothing is published yet).
+
+    Tier names and texts are in ``lang`` where the ruleset translates them."""
     published = official_tiers(session=session, published_only=True)
+    tiers = _tiers(_ruleset(session), lang)
     entries = []
     for region, area in _districts(session):
         off = published.get(region.code)
         entries.append(
             PublicMapEntry(
                 code=region.code, name=region.name, area=area,
-                tier=off.tier if off else None, tier_name=off.tier_name if off else None,
+                tier=off.tier if off else None, tier_name=_tier_text(tiers, off)[0],
                 since=off.since if off else None, geometry=region.geometry,
             )
         )
     last = max((o.published_at for o in published.values() if o.published_at), default=None)
     return PublicMap(
-        districts=tuple(entries), tiers=_tiers(session), last_published=last,
+        districts=tuple(entries), tiers=tiers, last_published=last,
         stamp=public_stamp(session=session).key,
     )
 
@@ -256,8 +274,12 @@ def weekly_figures(
     return tuple(out)
 
 
-def public_district_page(*, session: Session, code: str, threshold: int) -> PublicDistrictPage:
-    """The public page of one district: published tier and a suppressed weekly case trend."""
+def public_district_page(
+    *, session: Session, code: str, threshold: int, lang: str | None = None
+) -> PublicDistrictPage:
+    """The public page of one district: published tier and a suppressed weekly case trend.
+
+    Tier names and texts are in ``lang`` where the ruleset translates them."""
     parent = aliased(Region)
     row = session.execute(
         select(Region, parent.name)
@@ -280,12 +302,14 @@ def public_district_page(*, session: Session, code: str, threshold: int) -> Publ
             weeks = weekly_figures(dense["cases"][0], dense.dates, float(region.population),
                                    threshold)
             data_until = last_day
+    tiers = _tiers(_ruleset(session), lang)
+    tier_name, public_text = _tier_text(tiers, off)
     return PublicDistrictPage(
         code=region.code, name=region.name, area=area,
-        tier=off.tier if off else None, tier_name=off.tier_name if off else None,
-        public_text=off.public_text if off else None, since=off.since if off else None,
+        tier=off.tier if off else None, tier_name=tier_name, public_text=public_text,
+        since=off.since if off else None,
         published_at=off.published_at if off else None, data_until=data_until, weeks=weeks,
-        tiers=_tiers(session), threshold=threshold, stamp=public_stamp(session=session).key,
+        tiers=tiers, threshold=threshold, stamp=public_stamp(session=session).key,
     )
 
 

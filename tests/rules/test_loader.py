@@ -223,3 +223,36 @@ def test_parse_ruleset_fuzz_mutations_only_raise_ruleset_error(pos: int, insert:
         parse_ruleset(BASE[:pos] + insert + BASE[pos:], source="fuzz.yaml")
     except RulesetError as exc:
         assert str(exc).startswith("fuzz.yaml:")
+
+
+def test_tier_translations_are_read_and_fall_back_to_the_default() -> None:
+    text = BASE.replace(
+        "  - {name: Busy, staff: s1, public: p1}\n",
+        "  - name: Busy\n    staff: s1\n    public: p1\n    translations:\n"
+        "      de: {name: Betrieb, public: Mehr los}\n      fr-CH: {name: Occupé}\n",
+    )
+    busy = parse_ruleset(text).tiers[1]
+    assert (busy.name_in("de"), busy.public_in("de")) == ("Betrieb", "Mehr los")
+    assert (busy.name_in("fr-CH"), busy.public_in("fr-CH")) == ("Occupé", "p1")  # no public text
+    assert (busy.name_in("it"), busy.name_in(None), busy.public_in("it")) == ("Busy", "Busy", "p1")
+
+
+@pytest.mark.parametrize(
+    ("translations", "where"),
+    [
+        ("      German: {name: Betrieb}\n",
+         r"f\.yaml:9:\d+: tiers\[1\]\.translations\.German: 'German' is not a language code"),
+        ("      de: {name: Betrieb, staff: x}\n",
+         r"f\.yaml:9:\d+: tiers\[1\]\.translations\.de\.staff: unknown key 'staff'"),
+        ("      de: {public: x}\n",
+         r"f\.yaml:9:\d+: tiers\[1\]\.translations\.de: missing required key 'name'"),
+    ],
+)
+def test_tier_translation_errors_are_located(translations: str, where: str) -> None:
+    text = BASE.replace(
+        "  - {name: Busy, staff: s1, public: p1}\n",
+        "  - name: Busy\n    staff: s1\n    public: p1\n    translations:\n" + translations,
+    )
+    with pytest.raises(RulesetError) as info:
+        parse_ruleset(text, source="f.yaml")
+    assert any(re.search(where, p.location()) for p in info.value.errors), info.value.errors
