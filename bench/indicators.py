@@ -65,6 +65,13 @@ def timed(func: Callable[[], object]) -> float:
     return time.perf_counter() - start
 
 
+def timed_cpu(func: Callable[[], object]) -> tuple[float, float]:
+    """Wall-clock and CPU (process) time: on a shared machine the CPU time is the steadier."""
+    wall, cpu = time.perf_counter(), time.process_time()
+    func()
+    return time.perf_counter() - wall, time.process_time() - cpu
+
+
 def baseline_rt(cases: np.ndarray, w: np.ndarray) -> None:
     for row in cases:  # plain loop: one region at a time, scipy quantiles
         lam = np.convolve(row, w)[: row.size]
@@ -165,15 +172,16 @@ def main() -> None:
 
     print(f"regions x days: {regions} x {days}; baselines on {sample} regions "
           f"(growth: {growth_sample}; farrington: last 4 weeks), scaled")
-    rows: list[tuple[str, float, float | None]] = []
+    print(f"{'':<24} {'wall':>8}     {'cpu':>7}")
+    rows: list[tuple[str, float, float, float | None]] = []
 
     def bench(name: str, ours: Callable[[], object], base: Callable[[], object] | None,
               base_scale: float = scale) -> float:
-        t = timed(ours)
+        t, cpu = timed_cpu(ours)
         b = timed(base) * base_scale if base is not None else None
-        rows.append((name, t, b))
+        rows.append((name, t, cpu, b))
         ratio = f"baseline {b:8.2f} s  ratio {b / t:7.1f}x" if b is not None else "(no baseline)"
-        print(f"{name:<24} {t:8.3f} s   {ratio}", flush=True)
+        print(f"{name:<24} {t:8.3f} s  ({cpu:7.3f} s)   {ratio}", flush=True)
         return t
 
     t_rt = bench("rt (Cori)", lambda: reproduction_number(cases, si),
@@ -187,13 +195,15 @@ def main() -> None:
     def run_growth() -> None:
         growth_holder["g"] = rolling_growth_rate(cases)
 
-    bench("growth (IRLS)", run_growth, lambda: baseline_growth(cases[:growth_sample]),
+    bench("growth (Poisson GLM)", run_growth, lambda: baseline_growth(cases[:growth_sample]),
           base_scale=regions / growth_sample)
     bench("ears C1", lambda: ears(cases, method="C1"), lambda: baseline_ears(cases[:sample]))
     weekly = weekly_sum(cases, dt.date(2021, 1, 4)).values
     assessed_weeks = max(weekly.shape[1] - (52 * 2 + 3), 1)
+    enough_weeks = weekly.shape[1] >= 52 * 2 + 3 + 4  # two years of history for 4 weeks
     bench("farrington (weekly)", lambda: farrington_flexible(weekly),
-          lambda: baseline_farrington(weekly[:sample]), base_scale=scale * assessed_weeks / 4)
+          (lambda: baseline_farrington(weekly[:sample])) if enough_weeks else None,
+          base_scale=scale * assessed_weeks / 4)
     bench("wastewater smooth", lambda: smooth(log_ww, neighbours=5),
           lambda: baseline_smooth(log_ww[:sample]))
     bench("wastewater trend", lambda: trend(log_ww), lambda: baseline_trend(log_ww[:sample]))
@@ -224,7 +234,8 @@ def main() -> None:
     tri = np.round(cases[:, -ref:, None] * share)
     tri[:, np.arange(ref)[:, None] + np.arange(delays)[None, :] > ref - 1] = np.nan
     bench("nowcast (60 days)", lambda: nowcast(tri), None)
-    daily_total = sum(t for _, t, _ in rows)
+    daily_total = sum(t for _, t, _, _ in rows)
+    daily_cpu = sum(c for _, _, c, _ in rows)
 
     curve_sample = min(sample, regions)
     t_curve = timed(lambda: fit_growth_curve(cases[:curve_sample, -120:], n_boot=0)) * (
@@ -233,12 +244,14 @@ def main() -> None:
     print(f"{'curve fit (120 days)':<24} {t_curve:8.3f} s   scaled from {curve_sample} regions "
           "(one fit per region; analyst tool, not in the daily set)")
 
-    print(f"daily indicator set:     {daily_total:8.3f} s")
+    print(f"daily indicator set:     {daily_total:8.3f} s  ({daily_cpu:7.3f} s cpu)")
     for name, value, target, note in (
         ("rt", t_rt, RT_TARGET_S, ""),
         ("full daily set", daily_total, FULL_TARGET_S, " (curve fit excluded)"),
     ):
         verdict = "PASS" if value < target else "MISS"
+        if (regions, days) != (3000, 1096):
+            note += " [targets are for 3000 x 1096]"
         print(f"{verdict}: {name} {value:.3f} s < {target:g} s{note}")
 
 if __name__ == "__main__":

@@ -20,8 +20,8 @@ from server.indicators._arrays import FloatArray
 
 BoolArray = NDArray[np.bool_]
 
-_MAX_ITER = 60
-_STEP_TOL = 1e-11  # convergence when |step| * (range of t) is below this
+MAX_NEWTON_ITER = 60
+STEP_TOL = 1e-11  # convergence when |step| * (range of t) is below this
 
 
 @dataclass(frozen=True, eq=False)
@@ -168,22 +168,11 @@ def fit_levels(
     hi = np.full(rows, np.inf)
     active = np.flatnonzero(exists)
     max_step = 5.0 / span  # a step never moves b t by more than 5 over the whole range
-    for _ in range(_MAX_ITER):
+    for _ in range(MAX_NEWTON_ITER):
         if active.size == 0:
             break
         grad, curv, _, _ = _profile(b[active], w0[active], tc, levels, big_y[active], wyt[active])
-        ba = b[active]
-        up = grad > 0
-        lo[active] = np.where(up, ba, lo[active])
-        hi[active] = np.where(up, hi[active], ba)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            step = np.clip(grad / curv, -max_step, max_step)
-        new = ba + step
-        la, ha = lo[active], hi[active]
-        outside = ~((new > la) & (new < ha)) | ~np.isfinite(new)
-        both = np.isfinite(la) & np.isfinite(ha)
-        new = np.where(outside & both, 0.5 * (la + ha), new)
-        done = np.abs(new - ba) * span < _STEP_TOL
+        new, done = newton_step(b, lo, hi, active, grad, curv, STEP_TOL / span, max_step)
         b[active] = new
         active = active[~done]
     exists[active] = False  # did not converge
@@ -200,6 +189,38 @@ def fit_levels(
     intercepts = a_centred - b[:, None] * centre
     exists &= np.isfinite(slope_var) & (schur > 0)
     return LevelFit(mu, b, slope_var, intercepts, np.where(present, lev, 0.0), exists)
+
+
+def newton_step(
+    x: FloatArray,
+    lo: FloatArray,
+    hi: FloatArray,
+    active: NDArray[np.intp],
+    grad: FloatArray,
+    curv: FloatArray,
+    tol: float,
+    max_step: float,
+) -> tuple[FloatArray, BoolArray]:
+    """One safeguarded Newton step towards the root of a decreasing score, for ``x[active]``.
+
+    ``grad`` and ``curv`` (the score and minus its derivative) are evaluated at ``x[active]``.
+    The bracket ``lo``/``hi`` of the root is narrowed in place; a step is clipped to
+    ``max_step``, and a step leaving a finite bracket is replaced by bisection, unless it is
+    already below ``tol`` (a score of exactly 0 included). Returns the new values and whether
+    each moved by less than ``tol`` (converged).
+    """
+    xa = x[active]
+    up = grad > 0
+    lo[active] = np.where(up, xa, lo[active])
+    hi[active] = np.where(up, hi[active], xa)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        step = np.clip(grad / curv, -max_step, max_step)
+    new = xa + step
+    la, ha = lo[active], hi[active]
+    outside = (np.abs(step) >= tol) & (~((new > la) & (new < ha)) | ~np.isfinite(new))
+    both = np.isfinite(la) & np.isfinite(ha)
+    new = np.where(outside & both, 0.5 * (la + ha), new)
+    return new, np.abs(new - xa) < tol
 
 
 def _profile(

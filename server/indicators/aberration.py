@@ -14,7 +14,13 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
-from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
+from server.indicators._arrays import (
+    FloatArray,
+    as_nonnegative_counts,
+    check_level,
+    check_window,
+    row_chunks,
+)
 from server.indicators._levelfit import Levels, fit_levels
 
 EARS_METHODS = ("C1", "C2", "C3")
@@ -23,6 +29,7 @@ EARS_THRESHOLDS = {"C1": 3.0, "C2": 3.0, "C3": 2.0}
 _EARS_BASELINE = 7
 _EARS_LAG = {"C1": 1, "C2": 3, "C3": 3}
 _FARRINGTON_ROWS = 16_384  # (region, week) fits per batch
+_FARRINGTON_CELLS = 65_536  # (fit, baseline week) cells per block of fits
 
 
 @dataclass(frozen=True)
@@ -46,17 +53,36 @@ class EarsResult:
 def _baseline_stats(
     y: FloatArray, lag: int, min_baseline: int
 ) -> tuple[FloatArray, FloatArray]:
-    """Mean and sample sd (ddof = 1) of days t-lag-6 .. t-lag, NaN-aware and vectorised."""
+    """Mean and sample sd (ddof = 1) of days t-lag-6 .. t-lag, NaN-aware and vectorised.
+
+    Each of the 7 baseline days is a shifted view of the NaN-padded series; sums run over
+    those views in blocks of regions (two passes: the mean, then squared deviations from it).
+    """
+    regions, days = y.shape
+    mean = np.empty((regions, days))
+    sd = np.empty((regions, days))
+    for rows in row_chunks(regions, days + lag + _EARS_BASELINE):
+        mean[rows], sd[rows] = _baseline_rows(y[rows], lag, min_baseline)
+    return mean, sd
+
+
+def _baseline_rows(y: FloatArray, lag: int, min_baseline: int) -> tuple[FloatArray, FloatArray]:
     regions, days = y.shape
     pad = np.full((regions, lag + _EARS_BASELINE - 1), np.nan)
-    windows = sliding_window_view(np.concatenate([pad, y], axis=1), _EARS_BASELINE, axis=1)
-    windows = windows[:, :days, :]  # window i covers padded i..i+6 = days i-lag-6 .. i-lag
-    present = np.isfinite(windows)
-    n = present.sum(axis=2)
-    filled = np.where(present, windows, 0.0)
+    padded = np.concatenate([pad, y], axis=1)  # day i of the result: padded i .. i + 6
+    present = np.isfinite(padded)
+    filled = np.where(present, padded, 0.0)
+    n = np.zeros((regions, days))
+    total = np.zeros((regions, days))
+    for i in range(_EARS_BASELINE):
+        n += present[:, i : i + days]
+        total += filled[:, i : i + days]
     enough = n >= max(min_baseline, 2)
-    mean = np.divide(filled.sum(axis=2), n, out=np.full((regions, days), np.nan), where=enough)
-    dev2 = np.where(present, (filled - np.nan_to_num(mean)[..., None]) ** 2, 0.0).sum(axis=2)
+    mean = np.divide(total, n, out=np.full((regions, days), np.nan), where=enough)
+    centre = np.nan_to_num(mean)
+    dev2 = np.zeros((regions, days))
+    for i in range(_EARS_BASELINE):
+        dev2 += np.where(present[:, i : i + days], (filled[:, i : i + days] - centre) ** 2, 0.0)
     var = np.divide(dev2, n - 1, out=np.full((regions, days), np.nan), where=enough)
     return mean, np.sqrt(var)
 
@@ -473,7 +499,11 @@ def _farrington(
         for first in range(0, t0s.size, step):
             block = t0s[first : first + step]
             yb = y[:, block[:, None] + rel[None, :]].reshape(-1, rel.size)
-            mu0, phi, keep, usable = _assess(yb, x, int(years), cut, z_crit)
+            parts = [  # rows are independent: fitted in blocks whose temporaries stay in cache
+                _assess(yb[rows], x, int(years), cut, z_crit)
+                for rows in row_chunks(yb.shape[0], yb.shape[1], _FARRINGTON_CELLS)
+            ]
+            mu0, phi, keep, usable = (np.concatenate(a) for a in zip(*parts, strict=True))
             shape = (regions, block.size)
             expected[:, block] = np.where(usable, mu0, np.nan).reshape(shape)
             dispersion[:, block] = np.where(usable, phi, np.nan).reshape(shape)

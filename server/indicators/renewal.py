@@ -22,6 +22,7 @@ from server.indicators._arrays import (
     check_positive,
     check_window,
     freeze_arrays,
+    row_chunks,
     trailing_sum,
 )
 from server.indicators.serial_interval import SerialInterval
@@ -117,6 +118,28 @@ def _infectiousness(arr: FloatArray, w: FloatArray) -> FloatArray:
     return lam
 
 
+def _integer_tables(
+    shape: FloatArray, probs: tuple[float, ...]
+) -> tuple[float, list[FloatArray]] | None:
+    """Quantile tables over the range of ``shape`` (NaN ignored) when every shape is an integer.
+
+    The same tables :func:`_gamma_quantiles` builds for integer shapes: ``(low, [table per
+    probability])`` with entry i for shape ``low + i``; None when a shape is not an integer,
+    there is none, or the range is too wide for a table.
+    """
+    ok = np.isfinite(shape)
+    count = int(np.count_nonzero(ok))
+    if count == 0:
+        return None
+    low, high = float(np.nanmin(shape)), float(np.nanmax(shape))
+    with np.errstate(invalid="ignore"):
+        integral = bool(np.all(np.where(ok, shape == np.round(shape), True)))
+    if not integral or high - low >= 4 * count:
+        return None
+    table = np.arange(low, high + 1.0)
+    return low, [special.gammaincinv(table, q) for q in probs]
+
+
 def _gamma_quantiles(shape: FloatArray, probs: tuple[float, ...]) -> list[FloatArray]:
     """Unit-rate gamma quantiles of a 1-D array of shapes, one array per probability.
 
@@ -192,7 +215,48 @@ def reproduction_number(
     prior_shape = (prior_mean / prior_sd) ** 2
     prior_scale = prior_sd**2 / prior_mean
 
-    lam = _infectiousness(arr, serial_interval.pmf)
+    names = ("estimate", "cv", "shape", "rate", "incidence", "infectiousness")
+    out = {name: np.empty(arr.shape) for name in names}
+    chunks = list(row_chunks(arr.shape[0], arr.shape[1] + serial_interval.pmf.size))
+    for rows in chunks:
+        part = _posterior(arr[rows], serial_interval.pmf, window, prior_shape, prior_scale)
+        for name, values in zip(names, part, strict=True):
+            out[name][rows] = values
+    shape, rate = out["shape"], out["rate"]
+    probs = ((1.0 - level) / 2.0, (1.0 + level) / 2.0)
+    lower = np.empty(arr.shape)
+    upper = np.empty(arr.shape)
+    tables = _integer_tables(shape, probs)
+    if tables is not None:  # integer shapes: one table for all, looked up block by block
+        low, (table_lo, table_hi) = tables
+        for rows in chunks:
+            ok = np.isfinite(shape[rows])
+            index = np.where(ok, shape[rows] - low, 0.0).astype(np.int64)
+            lower[rows] = np.where(ok, table_lo[index] / rate[rows], np.nan)
+            upper[rows] = np.where(ok, table_hi[index] / rate[rows], np.nan)
+    else:
+        ok = np.isfinite(shape)
+        lower.fill(np.nan)
+        upper.fill(np.nan)
+        q_lo, q_hi = _gamma_quantiles(shape[ok], probs)
+        lower[ok] = q_lo / rate[ok]
+        upper[ok] = q_hi / rate[ok]
+    return Reproduction(
+        lower=lower,
+        upper=upper,
+        **out,
+        window=window,
+        prior_shape=prior_shape,
+        prior_scale=prior_scale,
+        level=level,
+    )
+
+
+def _posterior(
+    arr: FloatArray, w: FloatArray, window: int, prior_shape: float, prior_scale: float
+) -> tuple[FloatArray, ...]:
+    """Posterior mean, cv, shape, rate and window sums for a block of regions (NaN if none)."""
+    lam = _infectiousness(arr, w)
     lam_missing = np.isnan(lam)  # also covers missing incidence in the history
     inc_sum = trailing_sum(np.where(np.isnan(arr), 0.0, arr), window)
     lam_sum = trailing_sum(np.where(lam_missing, 0.0, lam), window)
@@ -201,22 +265,11 @@ def reproduction_number(
     ok[:, : window - 1] = False
     shape = np.where(ok, prior_shape + inc_sum, np.nan)
     rate = np.where(ok, 1.0 / prior_scale + lam_sum, np.nan)
-    lower = np.full(arr.shape, np.nan)
-    upper = np.full(arr.shape, np.nan)
-    q_lo, q_hi = _gamma_quantiles(shape[ok], ((1.0 - level) / 2.0, (1.0 + level) / 2.0))
-    lower[ok] = q_lo / rate[ok]
-    upper[ok] = q_hi / rate[ok]
-    return Reproduction(
-        estimate=shape / rate,
-        lower=lower,
-        upper=upper,
-        cv=1.0 / np.sqrt(shape),
-        shape=shape,
-        rate=rate,
-        incidence=np.where(ok, inc_sum, np.nan),
-        infectiousness=np.where(ok, lam_sum, np.nan),
-        window=window,
-        prior_shape=prior_shape,
-        prior_scale=prior_scale,
-        level=level,
+    return (
+        shape / rate,
+        1.0 / np.sqrt(shape),
+        shape,
+        rate,
+        np.where(ok, inc_sum, np.nan),
+        np.where(ok, lam_sum, np.nan),
     )

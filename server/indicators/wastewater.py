@@ -12,19 +12,22 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from server.indicators._arrays import (
     FloatArray,
+    IntArray,
     as_population,
     as_regions_days,
     check_level,
     check_window,
+    row_chunks,
 )
 
 NORMALISATIONS = ("flow", "marker", "none")
-_CHUNK_ELEMENTS = 4_000_000
+_SMOOTH_CHUNK = 16_384  # (plant, day) cells per block of the smoother
+_FAR = 1e9  # sentinel sample day beyond either end: its tricube weight is 0
 
 
 @dataclass(frozen=True, eq=False)
@@ -210,46 +213,11 @@ def smooth(
             raise ValueError(f"frac: must be in (0, 1], got {frac!r}")
         k = np.clip((float(frac) * n + 1e-10).astype(int), 2, None)
     k = np.minimum(k, n)
-    estimate = np.full((plants, days), np.nan)
-    x = np.arange(days, dtype=np.float64)
-    # samples of each plant in day order, padded; the k nearest samples of day t lie among the
-    # 2k samples around its insertion point j (a run of k containing sample j-1 or j)
-    order = np.argsort(~observed, axis=1, kind="stable")
-    rank = np.arange(days)[np.newaxis, :]
-    sample_x = np.where(rank < n[:, np.newaxis], order, 0).astype(np.float64)
-    sample_y = np.where(rank < n[:, np.newaxis], np.take_along_axis(y, order, axis=1), 0.0)
-    before = np.cumsum(observed, axis=1) - observed
+    estimate = np.empty((plants, days))
     kmax = int(max(k.max(initial=2), 2))
-    offsets = np.arange(-kmax, kmax)
-    rows = np.arange(plants)[:, np.newaxis, np.newaxis]
-    usable = k >= 2
-    kk = np.maximum(k, 1) - 1
-    chunk = max(1, _CHUNK_ELEMENTS // max(1, plants * 2 * kmax))
-    for start in range(0, days, chunk):
-        t = x[start : start + chunk]
-        idx = before[:, start : start + chunk, np.newaxis] + offsets
-        inside = (idx >= 0) & (idx < n[:, np.newaxis, np.newaxis])
-        idx = np.clip(idx, 0, days - 1)
-        xs = sample_x[rows, idx]
-        ys = np.where(inside, sample_y[rows, idx], 0.0)
-        dist = np.where(inside, np.abs(xs - t[np.newaxis, :, np.newaxis]), np.inf)
-        sorted_part = np.partition(dist, np.unique(kk), axis=-1)
-        radius = np.take_along_axis(sorted_part, kk[:, np.newaxis, np.newaxis], axis=-1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            u = np.where(radius > 0, dist / radius, np.inf)
-        w = np.where(u < 1.0, (1.0 - np.minimum(u, 1.0) ** 3) ** 3, 0.0)
-        enough = (w > 1e-12).sum(axis=-1) >= 2
-        total = w.sum(axis=-1, keepdims=True)
-        w = np.divide(w, total, out=np.zeros_like(w), where=total > 0)
-        xs = np.where(inside, xs, 0.0)
-        xbar = (w * xs).sum(axis=-1)
-        dx = xs - xbar[..., np.newaxis]
-        spread = np.maximum((w * dx**2).sum(axis=-1), 1e-12)
-        mean_y = (w * ys).sum(axis=-1)
-        cov = (w * dx * ys).sum(axis=-1)
-        fit = mean_y + (t[np.newaxis, :] - xbar) * cov / spread
-        ok = enough & usable[:, np.newaxis]
-        estimate[:, start : start + chunk] = np.where(ok, fit, np.nan)
+    for rows in row_chunks(plants, days, _SMOOTH_CHUNK):
+        estimate[rows] = _smooth_rows(y[rows], observed[rows], n[rows], k[rows], kmax)
+    x = np.arange(days, dtype=np.float64)
     if not extrapolate:
         first = np.where(n > 0, np.argmax(observed, axis=1), days)
         last = np.where(n > 0, days - 1 - np.argmax(observed[:, ::-1], axis=1), -1)
@@ -258,6 +226,75 @@ def smooth(
     return SmoothedWastewater(
         estimate=estimate, neighbours=np.broadcast_to(k.astype(float)[:, None], y.shape).copy()
     )
+
+
+def _smooth_rows(
+    y: FloatArray, observed: NDArray[np.bool_], n: IntArray, k: IntArray, kmax: int
+) -> FloatArray:
+    """The local linear fits of :func:`smooth` on every day for a block of plants.
+
+    The samples of each plant in day order, padded with far-away sentinels on both sides; day
+    t's k nearest samples are a run of k consecutive samples starting at one of the k + 1
+    samples before its insertion point j, so the radius (the k-th smallest distance) is the
+    smallest over those runs of the larger distance to a run's two ends. The weights are then
+    taken from the 2 kmax samples around j, each gathered once as a (plants, days) array.
+    Sums use the unnormalised weights and divide once.
+    """
+    plants, days = y.shape
+    x = np.arange(days, dtype=np.float64)
+    order = np.argsort(~observed, axis=1, kind="stable")
+    real = np.arange(days)[np.newaxis, :] < n[:, np.newaxis]
+    width = days + 2 * kmax
+    sample_x = np.full((plants, width), _FAR)
+    sample_x[:, :kmax] = -_FAR
+    sample_x[:, kmax : kmax + days] = np.where(real, order, _FAR)
+    sample_y = np.zeros((plants, width))
+    sample_y[:, kmax : kmax + days] = np.where(real, np.take_along_axis(y, order, axis=1), 0.0)
+    flat_x, flat_y = sample_x.ravel(), sample_y.ravel()
+    # padded position of sample j - kmax, as a flat index
+    base = np.cumsum(observed, axis=1) - observed + (np.arange(plants) * width)[:, np.newaxis]
+    xs = [flat_x[base + c] for c in range(2 * kmax)]
+    uniform = bool(np.all(k == kmax))
+    radius = np.full((plants, days), np.inf)
+    k_col = k[:, np.newaxis]
+    for offset in range(kmax + 1):  # the run of k samples starting at j - k + offset
+        if uniform:
+            first, last = xs[offset], xs[offset + kmax - 1]
+        else:
+            first = flat_x[base + (kmax - k_col + offset)]
+            last = flat_x[base + (kmax - 1 + offset)]
+        reach = np.maximum(np.abs(first - x), np.abs(last - x))
+        if not uniform:
+            reach = np.where(offset <= k_col, reach, np.inf)
+        np.minimum(radius, reach, out=radius)
+    count = np.zeros((plants, days))
+    total = np.zeros((plants, days))
+    sum_x = np.zeros((plants, days))
+    sum_y = np.zeros((plants, days))
+    ys, ws = [], []
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        inv_radius = 1.0 / radius
+        for c, xc in enumerate(xs):
+            yc = flat_y[base + c]
+            u = np.abs(xc - x) * inv_radius
+            w = np.maximum(1.0 - u**3, 0.0) ** 3
+            count += w > 1e-12
+            total += w
+            sum_x += w * xc
+            sum_y += w * yc
+            ys.append(yc)
+            ws.append(w)
+        xbar = sum_x / total
+        spread = np.zeros((plants, days))
+        cov = np.zeros((plants, days))
+        for w, xc, yc in zip(ws, xs, ys, strict=True):
+            wdx = w * (xc - xbar)
+            spread += wdx * (xc - xbar)
+            cov += wdx * yc
+        spread = np.maximum(spread / total, 1e-12)
+        fit = sum_y / total + (x - xbar) * (cov / total) / spread
+    ok = (count >= 2) & (k_col >= 2)
+    return np.where(ok, fit, np.nan)
 
 
 def trend(
@@ -299,45 +336,74 @@ def trend(
     level = check_level("level", level)
     min_samples = check_window("min_samples", min_samples, minimum=3)
     plants, days = y.shape
-    padded = np.concatenate([np.full((plants, window - 1), np.nan), y], axis=1)
-    view = np.lib.stride_tricks.sliding_window_view(padded, window, axis=1)
-    observed = np.isfinite(view)
-    n = observed.sum(axis=-1).astype(np.float64)
-    xs = np.arange(window, dtype=np.float64)
+    names = (
+        "samples", "slope", "slope_lower", "slope_upper", "estimate", "lower", "upper",
+        "window_change", "window_change_lower", "window_change_upper",
+    )
+    out = {name: np.empty((plants, days)) for name in names}
+    # Student t quantiles for the few possible degrees of freedom, looked up per window
+    t_table = stats.t.ppf(0.5 + level / 2.0, np.arange(1, max(window - 1, 1) + 1))
+    for rows in row_chunks(plants, (days + window) * 4):
+        n, slope, lo, hi = _trend_rows(y[rows], window, min_samples, t_table)
+        values = [n, slope, lo, hi]
+        for scale in (1.0, float(window)):  # percent per day, then over the window
+            values += [100.0 * np.expm1(b * scale) for b in (slope, lo, hi)]
+        for name, value in zip(names, values, strict=True):
+            out[name][rows] = value
+    return WastewaterTrend(**out, window=window, level=level)
+
+
+def _trend_rows(
+    y: FloatArray, window: int, min_samples: int, t_table: FloatArray
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """Samples, slope and its bounds of :func:`trend` for a few rows.
+
+    The window ending on day t holds days t - window + 1 .. t; each of its ``window`` positions
+    is a shifted view of the NaN-padded rows, so every sum is ``window`` additions of whole
+    rows (no (rows, days, window) temporaries). Means first, then centred sums of squares and
+    the residuals about the fitted line, as a two-pass computation.
+    """
+    rows, days = y.shape
+    padded = np.concatenate([np.full((rows, window - 1), np.nan), y], axis=1)
+    observed = np.isfinite(padded)
+    values = np.where(observed, padded, 0.0)
+    weight = observed.astype(np.float64)
+    cols = [values[:, i : i + days] for i in range(window)]
+    seen = [weight[:, i : i + days] for i in range(window)]
+    n = np.zeros((rows, days))
+    sum_x = np.zeros((rows, days))
+    sum_y = np.zeros((rows, days))
+    for i, (c, o) in enumerate(zip(cols, seen, strict=True)):
+        n += o
+        if i:
+            sum_x += i * o
+        sum_y += c
     with np.errstate(invalid="ignore", divide="ignore"):
-        xbar = np.divide((observed * xs).sum(axis=-1), n, out=np.zeros_like(n), where=n > 0)
-        yv = np.where(observed, view, 0.0)
-        ybar = np.divide(yv.sum(axis=-1), n, out=np.zeros_like(n), where=n > 0)
-        dx = np.where(observed, xs - xbar[..., np.newaxis], 0.0)
-        dy = np.where(observed, yv - ybar[..., np.newaxis], 0.0)
-        sxx = (dx * dx).sum(axis=-1)
-        sxy = (dx * dy).sum(axis=-1)
+        xbar = np.divide(sum_x, n, out=np.zeros_like(n), where=n > 0)
+        ybar = np.divide(sum_y, n, out=np.zeros_like(n), where=n > 0)
+        sxx = np.zeros((rows, days))
+        sxy = np.zeros((rows, days))
+        dxs, dys = [], []
+        for i, (c, o) in enumerate(zip(cols, seen, strict=True)):
+            dx = (i - xbar) * o  # 0 on days without a sample
+            dy = (c - ybar) * o
+            sxx += dx * dx
+            sxy += dx * dy
+            dxs.append(dx)
+            dys.append(dy)
         valid = (n >= min_samples) & (sxx > 0)
         slope = np.divide(sxy, sxx, out=np.full_like(n, np.nan), where=valid)
+        b = np.where(valid, slope, 0.0)
+        resid = np.zeros((rows, days))
+        for dx, dy in zip(dxs, dys, strict=True):
+            e = dy - b * dx
+            resid += e * e
         dof = np.maximum(n - 2.0, 1.0)
-        resid = ((dy - np.where(valid, slope, 0.0)[..., np.newaxis] * dx) ** 2).sum(axis=-1)
         se = np.sqrt(np.divide(resid / dof, sxx, out=np.full_like(n, np.nan), where=valid))
-    tq = stats.t.ppf(0.5 + level / 2.0, dof)
+    tq = t_table[dof.astype(np.intp) - 1]
     lo = np.where(valid, slope - tq * se, np.nan)
     hi = np.where(valid, slope + tq * se, np.nan)
-
-    def pct(b: FloatArray, scale: float) -> FloatArray:
-        return 100.0 * np.expm1(b * scale)
-
-    return WastewaterTrend(
-        estimate=pct(slope, 1.0),
-        lower=pct(lo, 1.0),
-        upper=pct(hi, 1.0),
-        slope=slope,
-        slope_lower=lo,
-        slope_upper=hi,
-        window_change=pct(slope, window),
-        window_change_lower=pct(lo, window),
-        window_change_upper=pct(hi, window),
-        samples=n,
-        window=window,
-        level=level,
-    )
+    return n, slope, lo, hi
 
 
 def level(
@@ -392,16 +458,17 @@ def level(
     if not 0.0 <= float(quantile) <= 1.0:
         raise ValueError(f"quantile: must be in [0, 1], got {quantile!r}")
     plants, days = y.shape
-    observed = np.isfinite(y)
-    counts = np.cumsum(observed, axis=1)
-    shifted = np.concatenate([np.zeros((plants, baseline_days)), counts], axis=1)
-    samples = (counts - shifted[:, :days]).astype(np.float64)
-    enough = samples >= min_samples
-    quant, spread = _trailing_quantile_and_sd(y, baseline_days, float(quantile), samples)
-    baseline = np.where(enough, quant, np.nan)
-    sd = np.where(enough, spread, np.nan)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        estimate = np.divide(cur - baseline, sd, out=np.full_like(baseline, np.nan), where=sd > 0)
+    # the quantile from pandas' rolling quantile (an ordered skip list updated as the window
+    # slides; linear interpolation at q (n - 1), the definition of numpy.quantile)
+    roll = pd.DataFrame(y.T).rolling(baseline_days, min_periods=1)
+    quant = roll.quantile(float(quantile), interpolation="linear").to_numpy().T
+    names = ("estimate", "baseline", "sd", "samples")
+    out = {name: np.empty((plants, days)) for name in names}
+    for rows in row_chunks(plants, days):  # the rest in blocks of plants that stay in cache
+        part = _level_rows(y[rows], cur[rows], quant[rows], baseline_days, min_samples)
+        for name, values in zip(names, part, strict=True):
+            out[name][rows] = values
+    estimate, baseline, sd, samples = (out[name] for name in names)
     return WastewaterLevel(
         estimate=estimate,
         baseline=baseline,
@@ -488,30 +555,59 @@ def catchment_matrix(
     return out
 
 
-def _trailing_quantile_and_sd(
-    y: FloatArray, window: int, q: float, n: FloatArray
-) -> tuple[FloatArray, FloatArray]:
-    """Trailing-window quantile (linear method) and sd (ddof 1) of the finite values of each row.
+def _level_rows(
+    y: FloatArray, cur: FloatArray, quant: FloatArray, window: int, min_samples: int
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """Level, baseline, sd and sample count of :func:`level` for a block of plants.
 
-    The quantile comes from pandas' rolling quantile (an ordered skip list updated as the window
-    slides, linear interpolation between the order statistics at ``q (n - 1)``: the same
-    definition as :func:`numpy.quantile`). The sd comes from cumulative sums of the values
-    centred on each row's mean, and is exactly 0 where the window's values are all equal.
+    The sd (ddof 1) comes from cumulative sums of the values centred on each row's mean, and is
+    exactly 0 where the window's values are all equal.
     """
-    frame = pd.DataFrame(y.T)
-    roll = frame.rolling(window, min_periods=1)
-    quant = roll.quantile(q, interpolation="linear").to_numpy().T
-    flat = (roll.max().to_numpy() == roll.min().to_numpy()).T
-    ok = np.isfinite(y)
-    counts = ok.sum(axis=1)
-    centre = np.where(ok, y, 0.0).sum(axis=1) / np.maximum(counts, 1)
-    dev = np.where(ok, y - centre[:, None], 0.0)
+    plants, days = y.shape
+    observed = np.isfinite(y)
+    counts = np.cumsum(observed, axis=1)
+    shifted = np.concatenate([np.zeros((plants, window)), counts], axis=1)
+    n = (counts - shifted[:, :days]).astype(np.float64)
+    enough = n >= min_samples
+    row_n = observed.sum(axis=1)
+    centre = np.where(observed, y, 0.0).sum(axis=1) / np.maximum(row_n, 1)
+    dev = np.where(observed, y - centre[:, None], 0.0)
     s1 = _trailing(dev, window)
     s2 = _trailing(dev * dev, window)
     with np.errstate(divide="ignore", invalid="ignore"):
         var = np.maximum((s2 - s1 * s1 / n) / (n - 1), 0.0)
-    var = np.where(flat, 0.0, var)
-    return quant, np.sqrt(var)
+    var = np.where(_all_equal(y, window), 0.0, var)
+    baseline = np.where(enough, quant, np.nan)
+    sd = np.where(enough, np.sqrt(var), np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        estimate = np.divide(cur - baseline, sd, out=np.full_like(baseline, np.nan), where=sd > 0)
+    return estimate, baseline, sd, n
+
+
+def _all_equal(y: FloatArray, window: int) -> NDArray[np.bool_]:
+    """Whether the finite values of each trailing window (at least one) are all equal.
+
+    The samples of a window are consecutive in sample order, so they are all equal when no
+    sample in the window differs from the sample before it, the window's first sample (whose
+    predecessor lies outside) excepted: a trailing count of changes minus the change at the
+    window's first sample. Exact comparisons, as the window maximum equal to its minimum.
+    """
+    rows, days = y.shape
+    ok = np.isfinite(y)
+    day = np.broadcast_to(np.arange(days), y.shape)
+    last = np.maximum.accumulate(np.where(ok, day, -1), axis=1)  # last sample day <= d
+    before = np.full((rows, days), -1)
+    before[:, 1:] = last[:, :-1]
+    previous = np.take_along_axis(y, np.maximum(before, 0), axis=1)
+    change = ok & (before >= 0) & (y != previous)
+    # first sample day >= d (days when there is none)
+    nxt = np.minimum.accumulate(np.where(ok, day, days)[:, ::-1], axis=1)[:, ::-1]
+    start = np.maximum(np.arange(days) - window + 1, 0)
+    first = nxt[:, start]
+    has = first < days
+    change_at_first = np.take_along_axis(change, np.minimum(first, days - 1), axis=1) & has
+    changes = _trailing(change.astype(np.float64), window) - change_at_first
+    return has & (first <= np.arange(days)) & (changes == 0)
 
 
 def _trailing(values: FloatArray, window: int) -> FloatArray:

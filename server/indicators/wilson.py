@@ -22,6 +22,7 @@ from server.indicators._arrays import (
     check_max_missing,
     check_window,
     freeze_arrays,
+    row_chunks,
     windowed_total,
 )
 
@@ -231,13 +232,19 @@ def positivity(
     window = check_window("window", window)
     level = check_level("level", level)
     max_missing = check_max_missing(max_missing, window)
-    missing = np.isnan(pos) | np.isnan(tst)
-    pos = np.where(missing, np.nan, pos)
-    tst = np.where(missing, np.nan, tst)
-    x, _, observed = windowed_total(pos, window, max_missing)
-    n, _, _ = windowed_total(tst, window, max_missing)
-    estimate, lower, upper = _wilson(x, n, level)
-    return Positivity(estimate, lower, upper, x, n, observed, window, level)
+    outputs = [np.empty(pos.shape) for _ in range(5)]
+    observed = np.empty(pos.shape, dtype=np.int64)
+    for rows in row_chunks(pos.shape[0], pos.shape[1]):  # blocks of regions stay in cache
+        p_rows, t_rows = pos[rows], tst[rows]
+        missing = np.isnan(p_rows) | np.isnan(t_rows)
+        x, _, observed[rows] = windowed_total(
+            np.where(missing, np.nan, p_rows), window, max_missing
+        )
+        n, _, _ = windowed_total(np.where(missing, np.nan, t_rows), window, max_missing)
+        for target, values in zip(outputs, (*_wilson(x, n, level), x, n), strict=True):
+            target[rows] = values
+    estimate, lower, upper, x_all, n_all = outputs
+    return Positivity(estimate, lower, upper, x_all, n_all, observed, window, level)
 
 
 def testing_rate(

@@ -107,3 +107,51 @@ def test_rolling_growth_rate_matches_statsmodels_at_every_end_day() -> None:
             )
             assert_allclose(result.estimate[region, end], fit.params[1], rtol=1e-7)
             assert_allclose(result.std_error[region, end], fit.bse[1], rtol=1e-6)
+
+
+@pytest.mark.parametrize(
+    ("window", "day_of_week"),
+    [(10, True), (16, True), (21, True), (14, False), (9, False)],
+    ids=["w10-uneven-weekdays", "w16-uneven-weekdays", "w21", "w14-no-dow", "w9-no-dow"],
+)
+def test_rolling_growth_rate_complete_windows_match_statsmodels(
+    window: int, day_of_week: bool
+) -> None:
+    # the complete-window solver (levels of unequal size when window % 7 != 0) against
+    # statsmodels GLM (Poisson, scale="X2") on every trailing window
+    rng = np.random.default_rng(window + 50 * day_of_week)
+    days = window + 12
+    trend = np.exp(np.cumsum(rng.normal(0.0, 0.08, (3, days)), axis=1))
+    y = rng.poisson(rng.uniform(2.0, 400.0, (3, 1)) * trend).astype(float)
+    y[:, ::5] += 1.0  # no weekday level of any window is empty
+    result = rolling_growth_rate(y, window, day_of_week=day_of_week, clamp_dispersion=False)
+    x = design_matrix(window, day_of_week=day_of_week)
+    for region in range(3):
+        for end in range(window - 1, days):
+            seg = y[region, end - window + 1 : end + 1]
+            fit = sm.GLM(seg, x, family=sm.families.Poisson()).fit(scale="X2", tol=1e-13)
+            assert result.converged[region, end]
+            assert_allclose(result.estimate[region, end], fit.params[1], rtol=1e-8, atol=1e-12)
+            assert_allclose(result.std_error[region, end], fit.bse[1], rtol=1e-7)
+            assert_allclose(result.pearson_dispersion[region, end], fit.scale, rtol=1e-7)
+
+
+def test_rolling_growth_rate_equals_growth_rate_on_each_window() -> None:
+    # the rolling fit of end day t is the single fit of days t - 13 .. t (definition)
+    y = _cases(12, regions=3, days=30, r=-0.03)
+    y[1, 17] = np.nan
+    rolling = rolling_growth_rate(y, max_missing=1)
+    for end in range(13, 30):
+        single = growth_rate(y[:, end - 13 : end + 1], max_missing=1)
+        assert_allclose(rolling.estimate[:, end], single.estimate, rtol=1e-12, atol=1e-15)
+        assert_allclose(rolling.std_error[:, end], single.std_error, rtol=1e-12)
+
+
+def test_growth_rate_of_identical_weeks_is_zero_with_unbounded_doubling_time() -> None:
+    # two identical weeks: the Poisson MLE of r is exactly 0 (the level totals of both weeks
+    # agree), the fit is exact (Pearson chi2 = 0) and the doubling time is unbounded
+    week = np.array([4.0, 9.0, 7.0, 7.0, 6.0, 2.0, 3.0])
+    result = growth_rate(np.tile(week, 2), clamp_dispersion=False)
+    assert result.estimate[0] == 0.0
+    assert result.pearson_dispersion[0] == 0.0
+    assert np.isinf(result.doubling_time[0]) and np.isinf(result.doubling_upper[0])

@@ -170,3 +170,19 @@ def test_catchment_matrix_refuses_unknown_plant() -> None:
     table = pd.DataFrame({"plant": ["lakeside"], "district": ["alder"], "served": [10.0]})
     with pytest.raises(ValueError, match="table: unknown plant 'lakeside'"):
         catchment_matrix(table, plants=["riverside"], districts=["alder"])
+
+
+def test_level_flat_windows_match_pandas_rolling_max_equal_min() -> None:
+    # Reference: pandas rolling max == rolling min over the same trailing windows
+    import pandas as pd
+
+    from server.indicators.wastewater import _all_equal
+
+    rng = np.random.default_rng(31)
+    y = rng.choice([1.0, 2.0, np.nan], size=(6, 80), p=[0.55, 0.1, 0.35])
+    y[1] = np.nan
+    y[2, 40:] = 3.0
+    for window in (1, 3, 10, 80):
+        roll = pd.DataFrame(y.T).rolling(window, min_periods=1)
+        expected = (roll.max().to_numpy() == roll.min().to_numpy()).T
+        np.testing.assert_array_equal(_all_equal(y, window), expected)
