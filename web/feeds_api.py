@@ -1,9 +1,10 @@
 """Push endpoint of the feeds: ``POST /api/feeds/{name}/push`` with the feed's bearer token.
 
 The body is CSV (``text/csv``) or JSON records (``application/json``). The answer is a receipt:
-vintage id, rows accepted, rows rejected with line and reason. 401 for a missing or wrong token,
-404 for an unknown feed, 413 for a body over the size limit, 422 for a file rejected whole (the
-message names line and problem).
+vintage id, rows accepted, rows rejected with line (CSV) or record (JSON) and reason; a body
+identical to a stored vintage counts nothing and names that vintage. 401 for a missing or wrong
+token, 404 for an unknown feed, 413 for a body over the size limit, 422 for a file rejected whole
+(the message names line and problem).
 
 The token is checked before a byte of the body is read, a declared ``Content-Length`` over the
 limit is refused at once, and the body is read from the stream only up to the limit. The limit is
@@ -25,6 +26,7 @@ from server.services.feeds import (
     FeedTokenError,
     NotAPushFeedError,
     UnknownFeedError,
+    catalogue_limits,
     check_push,
     evaluate_after_ingest,
     ingest_push,
@@ -72,17 +74,21 @@ async def read_capped(request: Request, *, feed: str, limit: int) -> bytes:
 
 
 def receipt_json(receipt: IngestReceipt) -> dict[str, Any]:
+    """The receipt as JSON (``docs/feeds.md``, "Running feeds"): an unchanged payload counts
+    zero rows and names the vintage it is identical to; a rejected JSON record is given by its
+    ``record`` position, a CSV row by its ``line``."""
     return {
         "feed": receipt.feed,
         "vintage_id": receipt.vintage_id,
         "unchanged": receipt.unchanged,
+        "identical_to_vintage": receipt.identical_to,
         "received_at": receipt.received_at.isoformat(),
         "checksum": receipt.checksum,
         "rows_accepted": receipt.rows_accepted,
         "rows_rejected": receipt.rows_rejected,
         "reasons": {r.reason: r.count for r in receipt.reasons},
         "rejected": [
-            {"line": r.line, "reason": r.reason, "message": r.message}
+            {receipt.unit: r.line, "reason": r.reason, "message": r.message}
             for r in receipt.rejections
         ],
     }
@@ -125,6 +131,6 @@ async def push(
     except (FeedFileError, NotAPushFeedError) as exc:
         return JSONResponse({"detail": str(exc)}, status_code=422)
     if not receipt.unchanged and receipt.rows_accepted:
-        background.add_task(evaluate_after_ingest, db, notify)
+        background.add_task(evaluate_after_ingest, db, notify, catalogue_limits(catalogue))
     status = 200 if receipt.unchanged else 201
     return JSONResponse(receipt_json(receipt), status_code=status)

@@ -8,9 +8,11 @@ from typing import Annotated
 from fastapi import APIRouter, BackgroundTasks, File, Form, Request, UploadFile
 from fastapi.responses import HTMLResponse
 
+from server.services.auth import has_role
 from server.services.feeds import (
     FeedFileError,
     UnknownFeedError,
+    catalogue_limits,
     evaluate_after_ingest,
     feeds_page,
     load_catalogue,
@@ -22,18 +24,28 @@ from web.templating import render
 router = APIRouter(tags=["staff"])
 
 
+UPLOAD_ROLE = "analyst"
+
+
 @router.get("/feeds", response_class=HTMLResponse)
 def feeds(
     request: Request, session: SessionDep, settings: SettingsDep, user: StaffDep,
-    feed: str | None = None,
+    feed: str | None = None, upload: str | None = None,
 ) -> HTMLResponse:
-    """Every feed's health and the newest rejected rows (optionally of one feed)."""
+    """Every feed's health and the newest rejected rows (optionally of one feed).
+
+    The upload form (only for roles that may upload) preselects ``upload`` (the feed of the
+    last upload, passed back by the receipt page), else the push feed the demo documents.
+    """
     catalogue = load_catalogue(settings)
     page = feeds_page(session=session, catalogue=catalogue, now=datetime.now(UTC),
                       time_zone=settings.time_zone, feed=feed)
+    chosen = upload if upload in catalogue.feeds else page.upload_default
     return render(
         request, "staff/feeds.html",
-        {"page": page, "feed_names": sorted(catalogue.feeds), "selected": feed},
+        {"page": page, "feed_names": sorted(catalogue.feeds), "selected": feed,
+         "upload_feed": chosen, "can_upload": has_role(user.role, UPLOAD_ROLE),
+         "upload_role": UPLOAD_ROLE},
     )
 
 
@@ -49,17 +61,19 @@ def upload(
     thread pool, so the ingestion does not block the event loop.
     """
     content = file.file.read()
+    catalogue = load_catalogue(settings)
     error, receipt = None, None
     try:
         receipt = upload_payload(
-            request.app.state.database, catalogue=load_catalogue(settings), feed_name=feed,
+            request.app.state.database, catalogue=catalogue, feed_name=feed,
             filename=file.filename or "upload", content=content, actor=user.name,
             time_zone=settings.time_zone, dry_run=dry_run,
         )
     except (FeedFileError, UnknownFeedError) as exc:
         error = str(exc)
     if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run:
-        background.add_task(evaluate_after_ingest, request.app.state.database, notify)
+        background.add_task(evaluate_after_ingest, request.app.state.database, notify,
+                            catalogue_limits(catalogue))
     return render(
         request, "staff/feeds_receipt.html",
         {"receipt": receipt, "error": error, "feed": feed},

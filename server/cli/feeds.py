@@ -20,14 +20,17 @@ from server.feeds.definition import FeedCatalogue
 from server.feeds.sources import Payload
 from server.services.database import Database
 from server.services.feeds import (
+    catalogue_limits,
     feed_named,
     feed_statuses,
     feeds_file,
+    ingest_recorded,
     issue_token,
     load_catalogue,
+    plural,
     run_feed,
 )
-from server.services.ingest import IngestReceipt, ingest_and_evaluate
+from server.services.ingest import IngestReceipt
 from server.services.notify import notify_config_from
 
 feeds_app = typer.Typer(help="Configured data feeds: health, push tokens, runs.",
@@ -47,7 +50,9 @@ def _settings() -> Settings:
     return Settings(secret_key="unused-by-feed-commands")
 
 
-def _catalogue(settings: Settings, override: Path | None) -> FeedCatalogue:
+def configured_catalogue(settings: Settings, override: Path | None = None) -> FeedCatalogue:
+    """The feed catalogue of the CLI: ``override``, else ``TIERWISE_FEEDS_FILE``, else the
+    demo's feeds (said on the console)."""
     if override is not None:
         return load_catalogue(settings.model_copy(update={"feeds_file": override}))
     if feeds_file(settings) is None:
@@ -65,14 +70,14 @@ def _database(settings: Settings) -> Database:
 def print_receipt(receipt: IngestReceipt) -> None:
     """Summary of accepted rows and of rejected rows by reason, with the first line numbers."""
     if receipt.unchanged:
-        say(f"{receipt.source}: identical to vintage {receipt.vintage_id} of feed "
+        say(f"{receipt.source}: identical to vintage {receipt.identical_to} of feed "
             f"{receipt.feed!r}; nothing changed")
         return
     mode = " (dry run: nothing stored)" if receipt.dry_run else ""
     table = Table(title=f"{receipt.source} -> feed {receipt.feed}{mode}", title_justify="left")
     table.add_column("outcome", overflow="fold")
     table.add_column("rows", justify="right")
-    table.add_column("first lines", overflow="fold")
+    table.add_column(f"first {receipt.unit}s", overflow="fold")
     table.add_column("example", overflow="fold")
     table.add_row("accepted", f"{receipt.rows_accepted:,}", "", "")
     for r in receipt.reasons:
@@ -80,8 +85,8 @@ def print_receipt(receipt: IngestReceipt) -> None:
                       ", ".join(str(n) for n in r.first_lines), r.example)
     console.print(table)
     if receipt.vintage_id is not None:
-        say(f"vintage {receipt.vintage_id}: {receipt.rows_accepted:,} accepted, "
-            f"{receipt.rows_rejected:,} rejected")
+        say(f"vintage {receipt.vintage_id}: {receipt.rows_accepted:,} "
+            f"{plural(receipt.rows_accepted, 'row')} accepted, {receipt.rows_rejected:,} rejected")
 
 
 @friendly_errors
@@ -100,15 +105,17 @@ def ingest_command(
     status 1 when the whole file was rejected. Re-ingesting identical content changes nothing.
     """
     settings = _settings()
-    definition = feed_named(_catalogue(settings, feeds_file_option), feed)
+    catalogue = configured_catalogue(settings, feeds_file_option)
+    definition = feed_named(catalogue, feed)
     db = _database(settings)
     try:
         payload = Payload.from_path(file)
         with progress_bar(f"ingesting {file.name}", total=max(payload.size, 1)) as advance:
-            outcome = ingest_and_evaluate(
+            outcome = ingest_recorded(
                 db, feed=definition, payload=payload, time_zone=settings.time_zone,
-                dry_run=dry_run, progress=advance,
+                dry_run=dry_run, progress=advance, evaluate=True,
                 notify=notify_config_from(settings.notify_file),
+                stale_after=catalogue_limits(catalogue),
             )
     finally:
         db.dispose()
@@ -125,7 +132,7 @@ def ingest_command(
 def status_command(feeds_file_option: FeedsFileOption = None) -> None:
     """Every configured feed's health: last run, last error, last vintage, stale regions."""
     settings = _settings()
-    catalogue = _catalogue(settings, feeds_file_option)
+    catalogue = configured_catalogue(settings, feeds_file_option)
     db = _database(settings)
     try:
         with db.transaction() as session:
@@ -139,7 +146,7 @@ def status_command(feeds_file_option: FeedsFileOption = None) -> None:
         table.add_column(column, overflow="fold", no_wrap=column == "feed")
     for s in statuses:
         table.add_row(
-            s.name, s.kind, s.schedule, "ok" if s.healthy else "ATTENTION",
+            s.name, s.kind, s.schedule, "ok" if s.healthy else s.health.upper(),
             s.last_success_at.isoformat(timespec="minutes") if s.last_success_at else "never",
             s.last_received_at.isoformat(timespec="minutes") if s.last_received_at else "none",
             f"{s.last_accepted:,}/{s.last_rejected:,}", str(s.regions),
@@ -157,7 +164,7 @@ def token_command(
 ) -> None:
     """Issue a new bearer token for a push feed (replaces the old one; shown only once)."""
     settings = _settings()
-    definition = feed_named(_catalogue(settings, feeds_file_option), feed)
+    definition = feed_named(configured_catalogue(settings, feeds_file_option), feed)
     db = _database(settings)
     try:
         with db.transaction() as session:
@@ -176,12 +183,14 @@ def run_command(
 ) -> None:
     """Run one pulled feed now, as the scheduler would."""
     settings = _settings()
-    definition = feed_named(_catalogue(settings, feeds_file_option), feed)
+    catalogue = configured_catalogue(settings, feeds_file_option)
+    definition = feed_named(catalogue, feed)
     db = _database(settings)
     try:
         run = run_feed(
             db, feed=definition, time_zone=settings.time_zone, environ=os.environ,
             notify=notify_config_from(settings.notify_file),
+            stale_after=catalogue_limits(catalogue),
         )
     finally:
         db.dispose()
@@ -205,7 +214,7 @@ def scheduler_command(
 
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(message)s")
     settings = _settings()
-    catalogue = _catalogue(settings, feeds_file_option)
+    catalogue = configured_catalogue(settings, feeds_file_option)
     db = _database(settings)
     scheduler = FeedScheduler(db, catalogue=catalogue, time_zone=settings.time_zone,
                               environ=os.environ, lease_seconds=lease_seconds)

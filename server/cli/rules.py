@@ -179,8 +179,10 @@ def evaluate_command(
 ) -> None:
     """Evaluate the active ruleset for every district on the data as known at the cutoff and
     store the assessments (a second run with the same cutoff reuses them)."""
+    from server.cli.feeds import configured_catalogue
     from server.services.database import Database
     from server.services.evaluation import active_ruleset, evaluate_districts
+    from server.services.feeds import catalogue_limits
     from server.services.notify import notify_config_from
 
     when = None
@@ -193,6 +195,7 @@ def evaluate_command(
             raise fail(f"--cutoff: {cutoff!r} needs a time zone (e.g. +00:00)")
     settings = Settings(demo_mode=True)
     notify = notify_config_from(settings.notify_file)  # None unless TIERWISE_NOTIFY_FILE is set
+    limits = catalogue_limits(configured_catalogue(settings))
     db = Database.from_settings(settings)
     try:
         db.check()
@@ -200,7 +203,8 @@ def evaluate_command(
             row = active_ruleset(session=session)
             if row is None:
                 raise fail("no active ruleset; the demo or `tierwise rules` must store one first")
-            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when, notify=notify)
+            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when, notify=notify,
+                                     stale_after=limits)
     finally:
         db.dispose()
     if run is None:

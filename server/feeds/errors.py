@@ -32,26 +32,50 @@ class FeedConfigError(ValueError):
 class HeaderError(FeedFileError):
     """The header lacks required columns; the whole file is rejected."""
 
-    def __init__(self, path: str, expected: list[str], found: list[str]) -> None:
+    def __init__(
+        self, path: str, expected: list[str], found: list[str], delimiter: str | None = None
+    ) -> None:
         self.expected = expected
         self.found = found
         missing = [c for c in expected if c not in found]
+        hint = ""
+        if delimiter is not None and len(found) == 1:
+            other = next((d for d in (",", ";", "\t") if d != delimiter and d in found[0]), None)
+            if other is not None:
+                hint = (f". The header seems to be separated by {DELIMITER_NAMES[other]} but this "
+                        f"feed expects {DELIMITER_NAMES[delimiter]}: save the file with "
+                        f"{DELIMITER_NAMES[delimiter]} as the separator")
         super().__init__(
             path, "line 1",
-            f"header lacks column(s) {missing}; expected {expected}, found {found}",
+            f"header lacks column(s) {missing}; expected {expected}, found {found}{hint}",
         )
+
+
+DELIMITER_NAMES = {",": "commas (,)", ";": "semicolons (;)", "\t": "tabs"}
+
+
+UTF8_NAMES = ("utf-8", "utf8", "utf_8", "utf-8-sig")
 
 
 class EncodingError(FeedFileError):
     """The bytes are not text in the feed's declared encoding (UTF-8 unless configured)."""
 
-    def __init__(self, path: str, offset: int, encoding: str) -> None:
+    def __init__(self, path: str, offset: int, encoding: str, line: int | None = None) -> None:
         self.offset = offset
         self.encoding = encoding
+        self.line = line
+        where = f"line {line}, byte {offset}" if line is not None else f"byte {offset}"
         super().__init__(
-            path, f"byte {offset}",
-            f"not valid {encoding} text (declare the feed's encoding, e.g. `encoding: cp1252`)",
+            path, where,
+            f"the file is not valid {encoding} text. It was probably saved in another encoding"
+            f"{' (such as Windows-1252 or Latin-1)' if encoding.lower() in UTF8_NAMES else ''}: "
+            f"save it as {encoding} and send it again, or ask the administrator of the feed "
+            f"definitions to declare the encoding this feed uses",
         )
+
+
+class EmptyFileError(FeedFileError):
+    """The file has no data: no bytes at all, or a header and no rows."""
 
 
 class FetchError(RuntimeError):

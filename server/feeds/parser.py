@@ -38,7 +38,7 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from server.feeds.definition import FeedDefinition
-from server.feeds.errors import EncodingError, FeedFileError, HeaderError
+from server.feeds.errors import EmptyFileError, EncodingError, FeedFileError, HeaderError
 
 BLOCK_BYTES = 8 << 20
 MAX_RECORD_BYTES = 1 << 20
@@ -175,6 +175,7 @@ class _Decoder:
         self.encoding = encoding
         self.label = label
         self.offset = 0
+        self.newlines = 0  # line breaks in the bytes decoded so far
         self.first = True
         self.utf8 = codecs.lookup(encoding).name == "utf-8"
         self.decoder = codecs.getincrementaldecoder(encoding)(errors="strict")
@@ -190,13 +191,20 @@ class _Decoder:
         pending = len(self.decoder.getstate()[0])
         nul = block.find(b"\x00")
         if nul >= 0:
-            raise EncodingError(self.label, start + nul, self.encoding)
+            raise EncodingError(self.label, start + nul, self.encoding, self._line(block, nul))
         try:
             text = self.decoder.decode(block, final)
         except UnicodeDecodeError as exc:
-            raise EncodingError(self.label, start - pending + exc.start, self.encoding) from None
+            at = max(exc.start - pending, 0)
+            raise EncodingError(self.label, start - pending + exc.start, self.encoding,
+                                self._line(block, at)) from None
         self.offset += len(block)
+        self.newlines += block.count(b"\n")
         return block if self.utf8 else text.encode("utf-8")
+
+    def _line(self, block: bytes, at: int) -> int:
+        """Physical line (1-based) of byte ``at`` of ``block`` (line breaks as ``\\n``)."""
+        return self.newlines + block.count(b"\n", 0, at) + 1
 
 
 def _record_ends(text: bytes) -> NDArray[np.int64]:
@@ -364,13 +372,15 @@ def _header(
             rows = [[header]]
         names = [f.strip() for f in (rows[0] if rows else [])]
         wanted = feed.required_columns
+        if not any(names):
+            raise FeedFileError(label, "line 1", "the header line is empty")
         if any(c not in names for c in wanted):
-            raise HeaderError(label, wanted, names)
+            raise HeaderError(label, wanted, names, delimiter)
         if len(set(names)) != len(names):
             dup = sorted({n for n in names if names.count(n) > 1})
             raise FeedFileError(label, "line 1", f"header repeats column(s) {dup}")
         return names, delimiter, rest
-    raise HeaderError(label, feed.required_columns, [])
+    raise EmptyFileError(label, "", "the file is empty")
 
 
 def read_csv_chunks(
@@ -516,8 +526,8 @@ def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]
     else:
         if start:
             text.value(decoder, label)  # a valid JSON value of the wrong shape, or an error
-        raise FeedFileError(label, "", shape) if start else FeedFileError(
-            label, "line 1 column 1", "not valid JSON (Expecting value)")
+        raise FeedFileError(label, "", shape) if start else EmptyFileError(
+            label, "", "the file is empty")
     if text.peek():
         raise FeedFileError(label, text.where(text.pos), "not valid JSON (Extra data)")
 

@@ -362,7 +362,9 @@ def _rejections(
     return out
 
 
-def check_file(accepted: Accepted, *, positives: int | None, tests: int | None) -> FileCheck:
+def check_file(
+    accepted: Accepted, *, positives: int | None, tests: int | None, unit: str = "line"
+) -> FileCheck:
     """Whole-file checks on rows that passed: duplicates, conflicts, positives above tests."""
     n = len(accepted)
     keep = np.ones(n, dtype=bool)
@@ -390,10 +392,10 @@ def check_file(accepted: Accepted, *, positives: int | None, tests: int | None) 
                     keep[k] = False
                     lines.append(int(accepted.line[k]))
                     reasons.append("duplicate_row")
-                    messages.append(f"repeats line {int(member_lines[0])}, which was kept")
+                    messages.append(f"repeats {unit} {int(member_lines[0])}, which was kept")
             else:
                 said = ", ".join(
-                    f"line {int(ln)} says {val:g}"
+                    f"{unit} {int(ln)} says {val:g}"
                     for ln, val in zip(member_lines, accepted.value[members], strict=True)
                 )
                 for k in members.tolist():
@@ -402,7 +404,7 @@ def check_file(accepted: Accepted, *, positives: int | None, tests: int | None) 
                     reasons.append("conflicting_duplicate")
                     messages.append(f"the same region, measure and date disagree: {said}")
     if positives is not None and tests is not None:
-        _positives_over_tests(accepted, keep, positives, tests, lines, reasons, messages)
+        _positives_over_tests(accepted, keep, positives, tests, lines, reasons, messages, unit)
     return FileCheck(
         keep=keep, lines=np.asarray(lines, dtype=np.int64), reasons=tuple(reasons),
         messages=tuple(messages),
@@ -411,7 +413,7 @@ def check_file(accepted: Accepted, *, positives: int | None, tests: int | None) 
 
 def _positives_over_tests(
     a: Accepted, keep: NDArray[np.bool_], positives: int, tests: int,
-    lines: list[int], reasons: list[str], messages: list[str],
+    lines: list[int], reasons: list[str], messages: list[str], unit: str = "line",
 ) -> None:
     key = a.region_id * 1_000_000 + a.day
     p = np.flatnonzero(keep & (a.measure_id == positives))
@@ -425,8 +427,8 @@ def _positives_over_tests(
     p, q = p[match], t_sorted[pos[match]]
     over = a.value[p] > a.value[q]
     for i, j in zip(p[over].tolist(), q[over].tolist(), strict=True):
-        text = (f"positives {a.value[i]:g} (line {int(a.line[i])}) exceed tests "
-                f"{a.value[j]:g} (line {int(a.line[j])}) for the same region and date")
+        text = (f"positives {a.value[i]:g} ({unit} {int(a.line[i])}) exceed tests "
+                f"{a.value[j]:g} ({unit} {int(a.line[j])}) for the same region and date")
         for k in (i, j):
             keep[k] = False
             lines.append(int(a.line[k]))
@@ -446,7 +448,7 @@ def unpaired(
 
 def check_stored_pairs(
     accepted: Accepted, keep: NDArray[np.bool_], *, positives: int, tests: int,
-    stored_positives: StoredValues, stored_tests: StoredValues,
+    stored_positives: StoredValues, stored_tests: StoredValues, unit: str = "line",
 ) -> FileCheck:
     """Positives above tests where the file gives one measure and the store holds the other.
 
@@ -473,13 +475,13 @@ def check_stored_pairs(
             keep[i] = False
             lines.append(int(accepted.line[i]))
             if mine == positives:
-                text = (f"positives {accepted.value[i]:g} (line {int(accepted.line[i])}) exceed "
+                text = (f"positives {accepted.value[i]:g} ({unit} {int(accepted.line[i])}) exceed "
                         f"tests {stored.value[j]:g} already stored (vintage "
                         f"{int(stored.vintage_id[j])}) for the same region and date")
             else:
                 text = (f"positives {stored.value[j]:g} already stored (vintage "
                         f"{int(stored.vintage_id[j])}) exceed tests {accepted.value[i]:g} "
-                        f"(line {int(accepted.line[i])}) for the same region and date")
+                        f"({unit} {int(accepted.line[i])}) for the same region and date")
             messages.append(text)
     return FileCheck(
         keep=keep, lines=np.asarray(lines, dtype=np.int64),

@@ -14,7 +14,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from server.services.database import Database
-from server.services.feeds import FeedRun, feed_named, run_feed
+from server.services.feeds import FeedRun, catalogue_limits, feed_named, run_feed
 
 log = logging.getLogger(__name__)
 
@@ -59,6 +59,7 @@ def run_scheduled_feed(key: str, feed_name: str) -> FeedRun | None:
         runtime.db, feed=feed, time_zone=runtime.time_zone, environ=runtime.environ,
         policy=runtime.retry,  # type: ignore[arg-type]
         notify=runtime.notify,  # type: ignore[arg-type]
+        stale_after=catalogue_limits(runtime.catalogue),  # type: ignore[arg-type]
     )
     log.info("feed %s: %d vintage(s) landed, not modified: %s, errors: %s",
              feed_name, run.landed, run.not_modified, list(run.errors))

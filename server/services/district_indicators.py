@@ -138,8 +138,10 @@ def load_district_data(
         session=session, measures=AREA_MEASURES, start=start, end=end, regions=areas, as_of=as_of
     )
     pick = np.array([areas.index(p) if p in areas else -1 for p in parents])
-    area_of_district = {
-        m: np.where(pick[:, None] >= 0, area[m][np.maximum(pick, 0)], np.nan)
+    n_days = district[DISTRICT_MEASURES[0]].shape[1]
+    area_of_district = {  # no area above any district: unknown (indexing an empty array fails)
+        m: np.where(pick[:, None] >= 0, area[m][np.maximum(pick, 0)], np.nan) if areas
+        else np.full((len(codes), n_days), np.nan)
         for m in AREA_MEASURES
     }
     plant_rows = session.execute(

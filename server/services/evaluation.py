@@ -30,8 +30,9 @@ from __future__ import annotations
 
 import hashlib
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -65,11 +66,13 @@ class EvaluationRun:
 
 
 def store_ruleset(
-    *, session: Session, path: Path, author: str = "", activate: bool = False
+    *, session: Session, path: Path, author: str = "", activate: bool = False,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> RulesetRow:
     """Store the ruleset file as a version (once per distinct text); optionally make it active.
 
-    Activation is :func:`activate_ruleset` (every other version retired, audited, evaluated).
+    Activation is :func:`activate_ruleset` (every other version retired, audited, evaluated
+    with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
     parsed = parse_ruleset(text, source=str(path))
@@ -85,18 +88,20 @@ def store_ruleset(
                subject=f"{parsed.name} {parsed.version}", details={"sha256": parsed.sha256})
     session.flush()
     if activate and row.status != "active":
-        activate_ruleset(session=session, row=row, actor=author or "system")
+        activate_ruleset(session=session, row=row, actor=author or "system",
+                         stale_after=stale_after)
     return row
 
 
 def activate_ruleset(
-    *, session: Session, row: RulesetRow, actor: str, notify: NotifyConfig | None = None
+    *, session: Session, row: RulesetRow, actor: str, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> EvaluationRun | None:
     """Make ``row`` the one active ruleset, audit it, and evaluate it on the newest data.
 
     Every other active version is retired, whatever its name, so at most one ruleset is ever
     active. Used by every way of activating (:func:`store_ruleset`, the policies page). Returns
-    the evaluation (None when there are no data yet); ``notify`` as in
+    the evaluation (None when there are no data yet); ``notify`` and ``stale_after`` as in
     :func:`evaluate_districts`.
     """
     session.execute(
@@ -108,7 +113,8 @@ def activate_ruleset(
     record(session=session, actor=actor, action="ruleset.activate",
            subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
     session.flush()
-    return evaluate_districts(session=session, ruleset_row=row, notify=notify)
+    return evaluate_districts(session=session, ruleset_row=row, notify=notify,
+                              stale_after=stale_after)
 
 
 def active_ruleset(*, session: Session) -> RulesetRow | None:
@@ -133,13 +139,17 @@ def _date_range(session: Session, cutoff: datetime) -> tuple[date, date] | None:
 
 def evaluate_districts(
     *, session: Session, ruleset_row: RulesetRow, cutoff: datetime | None = None,
-    notify: NotifyConfig | None = None,
+    notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
 ) -> EvaluationRun | None:
     """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff``; store results.
 
     Records the run and stores only the assessments that changed (module docstring). With
     ``notify``, the run sends the newest day's tier changes and starting prepare signals to its
-    recipients (a reused run sends nothing). Returns None when there are no data yet.
+    recipients (a reused run sends nothing). ``stale_after`` (feed name -> staleness limit,
+    :func:`server.services.district_indicators.feed_limits` of the feed catalogue) makes a
+    measure stale, hence unknown, on the days past its feed's limit (``docs/feeds.md``,
+    "Staleness in the engine"); without it only the ruleset's ``max_age_days`` applies. Every
+    caller that has the feed catalogue passes it. Returns None when there are no data yet.
     """
     cutoff = cutoff or newest_cutoff(session=session)
     if cutoff is None:
@@ -157,7 +167,8 @@ def evaluate_districts(
             start=start, end=end, written=0, reused=True, evaluation=None,
         )
     ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
-    data = load_district_data(session=session, start=start, end=end, as_of=cutoff)
+    data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
+                              stale_after=stale_after)
     result = evaluate(
         ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
         region_levels=data.levels,
@@ -181,17 +192,19 @@ def evaluate_districts(
 
 
 def evaluate_active(
-    *, session: Session, notify: NotifyConfig | None = None
+    *, session: Session, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> EvaluationRun | None:
     """Evaluate the active ruleset on the newest data (the hook run after every ingestion).
 
-    ``notify`` as in :func:`evaluate_districts`. Returns None when no ruleset is active or there
-    are no data.
+    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`. Returns None when no
+    ruleset is active or there are no data.
     """
     row = active_ruleset(session=session)
     if row is None:
         return None
-    return evaluate_districts(session=session, ruleset_row=row, notify=notify)
+    return evaluate_districts(session=session, ruleset_row=row, notify=notify,
+                              stale_after=stale_after)
 
 
 def assessments_as_of(

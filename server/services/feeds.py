@@ -15,7 +15,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -37,9 +37,15 @@ from server.feeds.errors import FeedFileError, FetchError
 from server.feeds.sources import Payload, RetryPolicy, fetch, move_aside, pending_files
 from server.services.audit import record
 from server.services.database import Database
+from server.services.district_indicators import feed_limits
 from server.services.errors import ServiceError
 from server.services.evaluation import evaluate_active
-from server.services.ingest import IngestReceipt, ingest_and_evaluate, office_today
+from server.services.ingest import (
+    IngestOutcome,
+    IngestReceipt,
+    ingest_and_evaluate,
+    office_today,
+)
 from server.services.notify import NotifyConfig
 from server.store.models import (
     FeedState,
@@ -117,27 +123,83 @@ def _state(session: Session, feed: str) -> FeedState:
     return row
 
 
-def note_failure(db: Database, *, feed: str, error: str, at: datetime) -> None:
-    with db.transaction() as session:
-        state = _state(session, feed)
-        state.last_attempt_at = at
-        state.last_error = error[:2000]
-        state.failures = (state.failures or 0) + 1
+def record_feed_state(
+    session: Session, *, feed: str, at: datetime, receipt: IngestReceipt | None = None,
+    error: str | None = None, etag: str | None = None, last_modified: str | None = None,
+) -> None:
+    """Record how an attempt to take in data for ``feed`` went: the one function every way in
+    (upload, push, file drop, HTTP pull, CLI ingest) uses, in the ingest transaction.
 
-
-def _note_success(session: Session, feed: str, at: datetime, receipt: IngestReceipt | None,
-                  etag: str | None = None, last_modified: str | None = None) -> None:
+    ``error`` (a file rejected whole, a failed fetch) sets the last error and counts a failure.
+    A landed ``receipt`` (or an unchanged source: no receipt, no error) is a success and names
+    the feed's last vintage, except that a file whose every row was rejected is recorded as an
+    error too (its vintage with the rejected rows is still stored).
+    """
     state = _state(session, feed)
     state.last_attempt_at = at
-    state.last_success_at = at
-    state.last_error = ""
-    state.failures = 0
     if etag is not None:
         state.etag = etag
     if last_modified is not None:
         state.last_modified = last_modified
     if receipt is not None and receipt.vintage_id is not None:
         state.last_vintage_id = receipt.vintage_id
+    if error is None and receipt is not None and receipt.whole_file_rejected:
+        error = (f"{receipt.source}: every row was rejected ({receipt.rows_rejected} "
+                 f"{plural(receipt.rows_rejected, 'row')}; see the rejected rows)")
+    if error is not None:
+        state.last_error = error[:2000]
+        state.failures = (state.failures or 0) + 1
+        return
+    state.last_success_at = at
+    state.last_error = ""
+    state.failures = 0
+
+
+def plural(n: int, word: str) -> str:
+    """``word`` for one, ``word + "s"`` otherwise (``1 row``, ``2 rows``, ``0 rows``)."""
+    return word if n == 1 else f"{word}s"
+
+
+def note_failure(db: Database, *, feed: str, error: str, at: datetime) -> None:
+    """Record a failed attempt in its own transaction (:func:`record_feed_state`)."""
+    with db.transaction() as session:
+        record_feed_state(session, feed=feed, at=at, error=error)
+
+
+def _note_success(session: Session, feed: str, at: datetime, receipt: IngestReceipt | None,
+                  etag: str | None = None, last_modified: str | None = None) -> None:
+    record_feed_state(session, feed=feed, at=at, receipt=receipt, etag=etag,
+                      last_modified=last_modified)
+
+
+def ingest_recorded(
+    db: Database, *, feed: FeedDefinition, payload: Payload, time_zone: str = "UTC",
+    received_at: datetime | None = None, dry_run: bool = False,
+    progress: Callable[[int], None] | None = None, evaluate: bool = False,
+    notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
+    etag: str | None = None, last_modified: str | None = None,
+) -> IngestOutcome:
+    """:func:`~server.services.ingest.ingest_and_evaluate` that records the feed state.
+
+    Every way in uses it, so each records its outcome alike (:func:`record_feed_state`): a
+    landed or unchanged payload in the ingest transaction, a file rejected whole
+    (:class:`FeedFileError`, re-raised) as the feed's last error. A dry run records nothing.
+    """
+    at = received_at or datetime.now(UTC)
+    after = None if dry_run else (
+        lambda s, r: record_feed_state(s, feed=feed.name, at=at, receipt=r, etag=etag,
+                                       last_modified=last_modified)
+    )
+    try:
+        return ingest_and_evaluate(
+            db, feed=feed, payload=payload, time_zone=time_zone, received_at=at,
+            dry_run=dry_run, progress=progress, evaluate=evaluate, after_landing=after,
+            notify=notify, stale_after=stale_after,
+        )
+    except FeedFileError as exc:
+        if not dry_run:
+            note_failure(db, feed=feed.name, error=str(exc), at=at)
+        raise
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -160,10 +222,12 @@ def run_feed(
     environ: Mapping[str, str] | None = None, now: datetime | None = None,
     policy: RetryPolicy | None = None, client: httpx.Client | None = None,
     evaluate: bool = True, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> FeedRun:
     """Run a pulled feed once: each waiting file, or one conditional GET. Errors are recorded in
     the feed state; transient fetch errors are re-raised after being recorded (the scheduler
-    logs them and the next run tries again)."""
+    logs them and the next run tries again). ``stale_after``: the catalogue's feed limits for
+    the evaluation (:func:`catalogue_limits`)."""
     at = now or datetime.now(UTC)
     if isinstance(feed.source, FileSource):
         receipts, errors = _run_files(db, feed, feed.source, time_zone, at)
@@ -177,7 +241,8 @@ def run_feed(
     evaluated = False
     if evaluate and any(not r.unchanged and r.rows_accepted for r in receipts):
         with db.transaction() as session:
-            evaluated = evaluate_active(session=session, notify=notify) is not None
+            evaluated = evaluate_active(session=session, notify=notify,
+                                        stale_after=stale_after) is not None
     return FeedRun(feed=feed.name, receipts=tuple(receipts), not_modified=not_modified,
                    errors=tuple(errors), evaluated=evaluated)
 
@@ -192,13 +257,11 @@ def _run_files(
             _note_success(session, feed.name, at, None)
     for path in files:
         try:
-            outcome = ingest_and_evaluate(
+            outcome = ingest_recorded(
                 db, feed=feed, payload=Payload.from_path(path), time_zone=time_zone,
-                received_at=at, evaluate=False,
-                after_landing=lambda s, r: _note_success(s, feed.name, at, r),
+                received_at=at,
             )
         except FeedFileError as exc:
-            note_failure(db, feed=feed.name, error=str(exc), at=at)
             move_aside(path, source, outcome="rejected", now=at)
             errors.append(str(exc))
             continue
@@ -228,14 +291,11 @@ def _run_http(
             _note_success(session, feed.name, at, None)
         return [], [], True
     try:
-        outcome = ingest_and_evaluate(
+        outcome = ingest_recorded(
             db, feed=feed, payload=Payload.from_bytes(source.url, got.content),
-            time_zone=time_zone, received_at=at, evaluate=False,
-            after_landing=lambda s, r: _note_success(s, feed.name, at, r, got.etag,
-                                                     got.last_modified),
+            time_zone=time_zone, received_at=at, etag=got.etag, last_modified=got.last_modified,
         )
     except FeedFileError as exc:
-        note_failure(db, feed=feed.name, error=str(exc), at=at)
         return [], [str(exc)], False
     return [outcome.receipt], [], False
 
@@ -271,10 +331,24 @@ class FeedStatus:
     regions: int
     stale_regions: tuple[str, ...]
     newest_ref_date: date | None
+    # When a feed that never delivered is past its first expected delivery plus its staleness
+    # limit (:func:`first_delivery_due`); None: not yet, or no expectation (irregular cadence).
+    overdue_since: datetime | None = None
+
+    @property
+    def health(self) -> str:
+        """``ok``, ``attention`` (an error or stale regions), ``no delivery yet`` (configured,
+        nothing received and not yet overdue) or ``overdue`` (nothing received past the first
+        expected delivery plus the staleness limit). Never ``ok`` before a first delivery."""
+        if self.last_error:
+            return "attention"
+        if self.vintages == 0:
+            return "overdue" if self.overdue_since is not None else "no delivery yet"
+        return "attention" if self.stale_regions else "ok"
 
     @property
     def healthy(self) -> bool:
-        return not self.last_error and not self.stale_regions
+        return self.health == "ok"
 
 
 def freshness(
@@ -316,13 +390,48 @@ def stale_regions(
     return {k: frozenset(v) for k, v in found.items()}
 
 
+def duration_text(span: timedelta) -> str:
+    """A duration in the largest whole unit: ``2 d``, ``6 h``, ``90 min``, ``45 s``."""
+    seconds = int(span.total_seconds())
+    for unit, size in (("d", 86400), ("h", 3600), ("min", 60)):
+        if seconds >= size and seconds % size == 0:
+            return f"{seconds // size} {unit}"
+    return f"{seconds} s"
+
+
 def _schedule_text(feed: FeedDefinition) -> str:
     s = feed.schedule
     if s is None:
         return "push" if feed.kind == "push" else "manual"
     if s.cron:
         return f"cron {s.cron} ({s.timezone})"
-    return f"every {s.interval} ({s.timezone})"
+    assert s.interval is not None  # Schedule holds exactly one of cron and interval
+    return f"every {duration_text(s.interval)} ({s.timezone})"
+
+
+CADENCE_PERIODS = {"daily": timedelta(days=1), "weekly": timedelta(days=7)}
+
+
+def expected_period(feed: FeedDefinition) -> timedelta | None:
+    """How often ``feed`` should deliver: its schedule's interval, else its cadence (a day, a
+    week); None for an irregular feed without an interval."""
+    if feed.schedule is not None and feed.schedule.interval is not None:
+        return feed.schedule.interval
+    return CADENCE_PERIODS.get(feed.cadence)
+
+
+def first_delivery_due(feed: FeedDefinition, watched_since: datetime | None) -> datetime | None:
+    """When a feed that never delivered becomes *overdue*: one expected period after
+    ``watched_since`` plus the feed's ``stale_after`` (None: no expectation).
+
+    ``watched_since`` is the earliest sign that tierwise was expecting data from the feed: for a
+    push feed the issue of its token; otherwise its recorded attempt, else the first vintage of
+    any feed (the store has no record of when a feed was added to the feed file).
+    """
+    period = expected_period(feed)
+    if period is None or watched_since is None:
+        return None
+    return watched_since + period + feed.stale_after
 
 
 def feed_statuses(
@@ -330,14 +439,24 @@ def feed_statuses(
 ) -> list[FeedStatus]:
     """Every configured feed's health: last run, last error, last vintage, stale regions."""
     fresh = freshness(session=session, catalogue=catalogue, now=now, time_zone=time_zone)
+    first_vintage = session.scalar(
+        select(type_coerce(func.min(Vintage.received_at), UTCDateTime()))
+    )
     out = []
     for feed in catalogue:
         state = session.get(FeedState, feed.name)
+        count, overdue_since = count_of(session, feed.name), None
+        if not count:
+            token = session.get(FeedToken, feed.name)
+            since = token.created_at if token is not None else min(
+                (t for t in (state.last_attempt_at if state else None, first_vintage)
+                 if t is not None), default=None)
+            due = first_delivery_due(feed, since)
+            overdue_since = due if due is not None and now > due else None
         last = session.scalars(
             select(Vintage).where(Vintage.feed == feed.name)
             .order_by(Vintage.received_at.desc(), Vintage.id.desc()).limit(1)
         ).first()
-        count = session.scalar(select(func.count()).where(Vintage.feed == feed.name)) or 0
         mine = [f for f in fresh if f.feed == feed.name]
         out.append(FeedStatus(
             name=feed.name, kind=feed.kind, schedule=_schedule_text(feed), cadence=feed.cadence,
@@ -345,13 +464,21 @@ def feed_statuses(
             last_attempt_at=state.last_attempt_at if state else None,
             last_success_at=state.last_success_at if state else None,
             last_error=state.last_error if state else "", failures=state.failures if state else 0,
-            vintages=int(count), last_received_at=last.received_at if last else None,
+            vintages=count, last_received_at=last.received_at if last else None,
             last_accepted=last.rows_accepted if last else 0,
             last_rejected=last.rows_rejected if last else 0, regions=len(mine),
             stale_regions=tuple(f.region for f in mine if f.stale),
             newest_ref_date=max((f.latest_ref_date for f in mine), default=None),
+            overdue_since=overdue_since,
         ))
     return out
+
+
+def count_of(session: Session, feed: str) -> int:
+    """How many vintages ``feed`` has landed."""
+    return int(session.scalar(
+        select(func.count()).select_from(Vintage).where(Vintage.feed == feed)
+    ) or 0)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -363,6 +490,25 @@ class RejectedRowView:
     reason: str
     message: str
     raw: str
+    source: str = ""  # the vintage's source: ``upload FILE by USER``, a path, a URL, a push
+
+    @property
+    def file_name(self) -> str:
+        """The uploaded file's name, else the vintage's source as stored."""
+        return split_upload_source(self.source)[0]
+
+    @property
+    def uploaded_by(self) -> str:
+        """Who uploaded the file ("" when it did not come through the upload form)."""
+        return split_upload_source(self.source)[1]
+
+
+def split_upload_source(source: str) -> tuple[str, str]:
+    """(file name, uploader) of an upload's source label; (source, "") for any other source."""
+    if source.startswith(UPLOAD_PREFIX) and UPLOAD_BY in source:
+        name, _, actor = source[len(UPLOAD_PREFIX):].rpartition(UPLOAD_BY)
+        return name, actor
+    return source, ""
 
 
 def recent_rejections(
@@ -370,7 +516,7 @@ def recent_rejections(
 ) -> list[RejectedRowView]:
     """The newest rejected rows (optionally of one feed), newest vintage first, by line."""
     query = (
-        select(RejectedRow, Vintage.feed, Vintage.received_at)
+        select(RejectedRow, Vintage.feed, Vintage.received_at, Vintage.source)
         .join(Vintage, Vintage.id == RejectedRow.vintage_id)
         .order_by(Vintage.received_at.desc(), Vintage.id.desc(), RejectedRow.line)
         .limit(limit)
@@ -379,8 +525,8 @@ def recent_rejections(
         query = query.where(Vintage.feed == feed)
     return [
         RejectedRowView(vintage_id=r.vintage_id, feed=f, received_at=t, line=r.line,
-                        reason=r.reason, message=r.message, raw=r.raw)
-        for r, f, t in session.execute(query)
+                        reason=r.reason, message=r.message, raw=r.raw, source=src)
+        for r, f, t, src in session.execute(query)
     ]
 
 
@@ -530,9 +676,8 @@ def ingest_push(
     if "json" in content_type.lower() and feed.format != "json":
         feed = replace(feed, format="json")
     label = f"push to {feed.name}"
-    return ingest_and_evaluate(
+    return ingest_recorded(
         db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
-        evaluate=False, after_landing=lambda s, r: _note_success(s, feed.name, r.received_at, r),
     ).receipt
 
 
@@ -550,19 +695,36 @@ def upload_payload(
     db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str, content: bytes,
     actor: str, time_zone: str = "UTC", dry_run: bool = False,
 ) -> IngestReceipt:
-    """A file a staff member uploaded by hand (any configured feed's layout)."""
+    """A file a staff member uploaded by hand (any configured feed's layout).
+
+    Recorded in the feed state like every other way in (:func:`ingest_recorded`); the vintage's
+    source is ``upload FILENAME by ACTOR``.
+    """
     feed = feed_named(catalogue, feed_name)
-    label = f"upload {filename} by {actor}"[:500]
-    return ingest_and_evaluate(
+    label = f"{UPLOAD_PREFIX}{filename}{UPLOAD_BY}{actor}"[:500]
+    return ingest_recorded(
         db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
-        dry_run=dry_run, evaluate=False,
+        dry_run=dry_run,
     ).receipt
 
 
-def evaluate_after_ingest(db: Database, notify: NotifyConfig | None = None) -> None:
-    """The evaluation hook, in its own transaction (run after a push or upload committed)."""
+UPLOAD_PREFIX, UPLOAD_BY = "upload ", " by "
+
+
+def catalogue_limits(catalogue: FeedCatalogue) -> dict[str, timedelta]:
+    """Feed name -> ``stale_after`` of every configured feed, for the evaluation
+    (:func:`server.services.district_indicators.feed_limits`)."""
+    return feed_limits(catalogue)
+
+
+def evaluate_after_ingest(
+    db: Database, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
+) -> None:
+    """The evaluation hook, in its own transaction (run after a push or upload committed);
+    ``stale_after`` as in :func:`~server.services.evaluation.evaluate_districts`."""
     with db.transaction() as session:
-        evaluate_active(session=session, notify=notify)
+        evaluate_active(session=session, notify=notify, stale_after=stale_after)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -570,6 +732,15 @@ class FeedsPage:
     statuses: list[FeedStatus]
     rejections: list[RejectedRowView]
     feeds_file: str
+    upload_default: str | None = None  # the feed the upload form offers first
+
+
+def default_upload_feed(catalogue: FeedCatalogue) -> str | None:
+    """The feed the upload form preselects: the first push feed of the feed file (the demo's
+    ``long-csv``), else the first feed; None when none is configured."""
+    feeds = list(catalogue)
+    push = [f.name for f in feeds if f.kind == "push"]
+    return push[0] if push else (feeds[0].name if feeds else None)
 
 
 def feeds_page(
@@ -581,5 +752,5 @@ def feeds_page(
         statuses=feed_statuses(session=session, catalogue=catalogue, now=now,
                                time_zone=time_zone),
         rejections=recent_rejections(session=session, feed=feed, limit=200),
-        feeds_file=catalogue.path,
+        feeds_file=catalogue.path, upload_default=default_upload_feed(catalogue),
     )

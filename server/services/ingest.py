@@ -12,7 +12,7 @@ After a payload lands and is committed, :func:`ingest_and_evaluate` runs the eva
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 from typing import BinaryIO
@@ -22,6 +22,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedDefinition
+from server.feeds.errors import EmptyFileError
 from server.feeds.parser import read_chunks, read_raw_records
 from server.feeds.sources import Payload
 from server.feeds.validation import (
@@ -48,6 +49,7 @@ from server.store.vintages import (
 )
 
 KEPT_REJECTIONS = 1000
+NO_DATA_ROWS = "no data rows: the file holds a header (or an empty list) and no rows to take in"
 Progress = Callable[[int], None]
 
 
@@ -76,6 +78,17 @@ class IngestReceipt:
     rows_rejected: int
     reasons: tuple[ReasonCount, ...]
     rejections: tuple[Rejection, ...]  # the first KEPT_REJECTIONS, in line order
+    # ``line`` (CSV) or ``record`` (JSON: position in the list): what ``Rejection.line`` counts
+    unit: str = "line"
+
+    @property
+    def identical_to(self) -> int | None:
+        """The stored vintage this payload is identical to (None: it was taken in).
+
+        An unchanged receipt counts nothing (0 accepted, 0 rejected, no reasons): this payload
+        added no rows; the identical vintage's own counts are on the feeds page.
+        """
+        return self.vintage_id if self.unchanged else None
 
     @property
     def whole_file_rejected(self) -> bool:
@@ -140,15 +153,16 @@ def ingest_payload(
     """Validate ``payload`` against ``feed`` and land it as one vintage (never commits).
 
     Raises :class:`~server.feeds.errors.FeedFileError` (and nothing is written) when the file is
-    rejected whole: undecodable bytes, or a header without the required columns.
+    rejected whole: undecodable bytes, a header without the required columns, no bytes at all,
+    or no data rows (:class:`~server.feeds.errors.EmptyFileError`).
     """
     known = find_vintage_by_checksum(session=session, feed=feed.name, checksum=payload.checksum)
     if known is not None:
         return IngestReceipt(
             feed=feed.name, source=payload.label, checksum=payload.checksum,
             received_at=known.received_at, vintage_id=known.id, unchanged=True, dry_run=dry_run,
-            rows_accepted=known.rows_accepted, rows_rejected=known.rows_rejected, reasons=(),
-            rejections=(),
+            rows_accepted=0, rows_rejected=0, reasons=(), rejections=(),
+            unit=record_unit(feed),
         )
     catalogue = catalogue_of(session=session)
     with session.begin_nested():
@@ -173,11 +187,16 @@ def ingest_payload(
                     )
         accepted = Accepted.concat(parts)
         del parts
+        if not len(accepted) and not tally.total:
+            # rolls the savepoint back: no vintage for a file without data
+            raise EmptyFileError(payload.label, "", NO_DATA_ROWS)
         positives, tests = catalogue.measures.get("positives"), catalogue.measures.get("tests")
-        check = check_file(accepted, positives=positives, tests=tests)
+        unit = record_unit(feed)
+        check = check_file(accepted, positives=positives, tests=tests, unit=unit)
         checks = [check]
         if positives is not None and tests is not None:
-            checks.append(_check_against_store(session, accepted, check.keep, positives, tests))
+            checks.append(_check_against_store(session, accepted, check.keep, positives, tests,
+                                               unit))
         lines = np.concatenate([c.lines for c in checks])
         if lines.size:
             late = _late_rejections(
@@ -209,11 +228,18 @@ def ingest_payload(
         vintage_id=None if dry_run else vintage.id, unchanged=False, dry_run=dry_run,
         rows_accepted=len(kept), rows_rejected=tally.total, reasons=tally.reasons(),
         rejections=tuple(sorted(tally.kept, key=lambda r: (r.line, r.reason))),
+        unit=record_unit(feed),
     )
 
 
+def record_unit(feed: FeedDefinition) -> str:
+    """What a rejection's number counts: ``record`` (position in a JSON list) or ``line``."""
+    return "record" if feed.format == "json" else "line"
+
+
 def _check_against_store(
-    session: Session, accepted: Accepted, keep: np.ndarray, positives: int, tests: int
+    session: Session, accepted: Accepted, keep: np.ndarray, positives: int, tests: int,
+    unit: str = "line",
 ) -> FileCheck:
     """Positives above tests where the other measure of the pair is only in the store."""
     stored = {}
@@ -228,7 +254,7 @@ def _check_against_store(
         )
     return check_stored_pairs(
         accepted, keep, positives=positives, tests=tests, stored_positives=stored[positives],
-        stored_tests=stored[tests],
+        stored_tests=stored[tests], unit=unit,
     )
 
 
@@ -266,12 +292,13 @@ def ingest_and_evaluate(
     received_at: datetime | None = None, dry_run: bool = False, progress: Progress | None = None,
     evaluate: bool = True,
     after_landing: Callable[[Session, IngestReceipt], None] | None = None,
-    notify: NotifyConfig | None = None,
+    notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
 ) -> IngestOutcome:
     """Ingest ``payload`` in its own transaction; after commit, run the evaluation hook.
 
-    ``after_landing`` runs inside the ingest transaction (the scheduler records the feed state
-    there, so ETag and vintage commit together).
+    ``after_landing`` runs inside the ingest transaction (the feed state is recorded there, so
+    ETag and vintage commit together). ``stale_after`` (feed name -> staleness limit, from the
+    feed catalogue) goes to the evaluation (:func:`~server.services.evaluation.evaluate_districts`).
     """
     now = received_at or datetime.now(UTC)
     with db.transaction() as session:
@@ -284,5 +311,5 @@ def ingest_and_evaluate(
     run = None
     if evaluate and not dry_run and not receipt.unchanged and receipt.rows_accepted:
         with db.transaction() as session:
-            run = evaluate_active(session=session, notify=notify)
+            run = evaluate_active(session=session, notify=notify, stale_after=stale_after)
     return IngestOutcome(receipt=receipt, evaluation=run)

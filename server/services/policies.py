@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import difflib
 import threading
+from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -235,11 +236,14 @@ def store_draft(*, session: Session, text: str, author: str, filename: str = "dr
 
 
 def activate_version(
-    *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None
+    *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
 ) -> None:
     """Make a version active (every other active one is retired) and evaluate it on the newest
-    data (:func:`server.services.evaluation.activate_ruleset`)."""
+    data (:func:`server.services.evaluation.activate_ruleset`; ``stale_after``: the feeds'
+    staleness limits)."""
     row = session.get(RulesetRow, ruleset_id)
     if row is None:
         raise UnknownPolicyError(ruleset_id)
-    activate_ruleset(session=session, row=row, actor=actor, notify=notify)
+    activate_ruleset(session=session, row=row, actor=actor, notify=notify,
+                     stale_after=stale_after)

@@ -19,7 +19,7 @@ from server.services.database import Database
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
 from server.store import make_engine, make_sessionmaker
-from server.store.models import Observation, RejectedRow, Vintage
+from server.store.models import FeedState, Observation, RejectedRow, Vintage
 
 ROOT = Path(__file__).resolve().parents[3]
 FEEDS = "feeds:\n  - name: long-csv\n    source: {kind: push}\n    measures: [cases]\n"
@@ -127,3 +127,27 @@ def test_ingest_killed_midway_leaves_no_partial_vintage(env: str, tmp_path: Path
                            timeout=300)
     assert rerun.returncode == 0, rerun.stderr
     assert counts(env) == (1, 300 * 6000, 0)
+
+
+def _feed_state(url: str) -> tuple[object, str, int]:
+    engine = make_engine(url)
+    with engine.connect() as c:
+        row = c.execute(select(FeedState.last_success_at, FeedState.last_error,
+                               FeedState.failures).where(FeedState.feed == "long-csv")).one()
+    engine.dispose()
+    return row[0], row[1], row[2]
+
+
+def test_ingest_records_the_feed_state_like_every_way_in(env: str, tmp_path: Path) -> None:
+    path = tmp_path / "one.csv"
+    path.write_text("region,date,measure,value\nR0001,2026-03-01,cases,3\n")
+    result = runner.invoke(app, ["ingest", str(path), "--feed", "long-csv"])
+    assert result.exit_code == 0, result.output
+    assert "1 row accepted, 0 rejected" in result.output
+    success, error, failures = _feed_state(env)
+    assert success is not None and (error, failures) == ("", 0)
+    path.write_text("region,date,measure,value\n")
+    result = runner.invoke(app, ["ingest", str(path), "--feed", "long-csv"])
+    assert result.exit_code == 1 and "no data rows" in result.output
+    _, error, failures = _feed_state(env)
+    assert "no data rows" in error and failures == 1

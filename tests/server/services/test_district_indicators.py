@@ -6,6 +6,7 @@ from datetime import UTC, date, datetime, timedelta
 
 import numpy as np
 from numpy.testing import assert_array_equal
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import evaluate, parse_ruleset
@@ -16,8 +17,11 @@ from server.services.district_indicators import (
     feed_limits,
     load_district_data,
 )
+from server.services.evaluation import evaluate_districts
 from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+from server.store.models import Assessment, Region
+from server.store.models import Ruleset as RulesetRow
 
 FEEDS = parse_feeds(
     "feeds:\n  - name: fast\n    source: {kind: push}\n    stale_after: 3d\n    measures: [cases]\n"
@@ -105,3 +109,41 @@ def test_stale_feed_shows_as_stale_data_in_the_engine_explanation(session: Sessi
     status = [[c["status"] for c in result.explain(r, d).data["criteria"]]
               for r, d in ((0, 12), (0, 13), (1, 14))]
     assert status == [["ok"], ["stale"], ["ok"]]
+
+
+def _ruleset_row(session: Session, text: str) -> RulesetRow:
+    parsed = parse_ruleset(text)
+    row = RulesetRow(name=parsed.name, version=str(parsed.version), yaml_text=text,
+                     sha256=parsed.sha256, author="t", created_at=datetime.now(UTC),
+                     status="draft")
+    session.add(row)
+    session.flush()
+    return row
+
+
+def test_evaluate_districts_passes_the_feed_limits_to_the_engine(session: Session) -> None:
+    """End to end: a stale feed makes the newest days' stored explanation say ``stale``."""
+    _setup(session)
+    at = datetime(2026, 3, 16, 6, tzinfo=UTC)
+    _send(session, "fast", "ZA", range(0, 10), at)   # to 10 March, limit 3 days
+    _send(session, "slow", "ZB", range(0, 15), at)   # to 15 March: the evaluated range's end
+    with_limits = _ruleset_row(session, RULES)
+    without = _ruleset_row(session, RULES.replace("name: stale", "name: no-limits"))
+    run = evaluate_districts(session=session, ruleset_row=with_limits, cutoff=at,
+                             stale_after=feed_limits(FEEDS))
+    plain = evaluate_districts(session=session, ruleset_row=without, cutoff=at)
+    assert run is not None and plain is not None and run.end == date(2026, 3, 15)
+    stored = {
+        (code, day): a.explanation["data"]["criteria"][0]["status"]
+        for code, day, a in session.execute(
+            select(Region.code, Assessment.ref_date, Assessment)
+            .join(Region, Region.id == Assessment.region_id)
+            .where(Assessment.ruleset_id == with_limits.id)
+        )
+    }
+    # 13 March is the 3rd day after 10 March (not past the limit); 14 and 15 March are.
+    assert [stored["ZA", date(2026, 3, d)] for d in (13, 14, 15)] == ["ok", "stale", "stale"]
+    assert stored["ZB", date(2026, 3, 15)] == "ok"
+    assert plain.evaluation is not None
+    za = plain.evaluation.regions.index("ZA")
+    assert plain.evaluation.explain(za, 14).data["criteria"][0]["status"] == "ok"
