@@ -2,15 +2,19 @@
 
 from __future__ import annotations
 
+import threading
+from collections.abc import Callable
 from datetime import date
 
 from fastapi import APIRouter, Query, Request
 from fastapi.responses import HTMLResponse, Response
+from fastapi.templating import Jinja2Templates
 
 from server.services.dossier import district_dossier, explanation_page
-from server.services.morning import morning_overview
+from server.services.feeds import load_catalogue
+from server.services.morning import MorningOverview, morning_overview
 from web.charts import criterion_figure, figure_json, timeline_figure
-from web.deps import SessionDep, StaffDep
+from web.deps import SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -18,20 +22,60 @@ router = APIRouter(tags=["staff"])
 
 @router.get("/", response_class=HTMLResponse)
 def home(
-    request: Request, session: SessionDep, user: StaffDep,
+    request: Request, session: SessionDep, settings: SettingsDep, user: StaffDep,
     sort: str = "pending", q: str = "", tier: str = "", pending: str = "",
     page: int = Query(1, ge=1),
 ) -> Response:
     """Every district: official and recommended tier, signals, indicators; feeds; changes."""
     tier_filter = int(tier) if tier.strip().isdigit() else None
     view = morning_overview(session=session, sort=sort, query=q, tier=tier_filter,
-                            pending_only=pending == "true", page=page)
+                            pending_only=pending == "true", page=page,
+                            catalogue=load_catalogue(settings), time_zone=settings.time_zone)
     key = f"staff|{view.ruleset}|{view.data_cutoff}|{len(view.every)}"
     shapes = request.app.state.maps.get(key, ((x.code, x.geometry) for x in view.every))
     return render(request, "staff/home.html", {
         "view": view, "map": shapes, "by_code": {line.code: line for line in view.every},
         "sort": sort, "q": q, "tier": tier_filter, "pending_only": pending == "true",
+        "data_on_hand": _data_on_hand_html(request, view),
     })
+
+
+class FragmentCache:
+    """HTML rendered by the autoescaping environment, under a key that changes with the data
+    (keeps the newest few), per worker."""
+
+    def __init__(self, size: int = 4) -> None:
+        self.size = size
+        self._items: dict[tuple[object, ...], str] = {}
+        self._lock = threading.Lock()
+
+    def get(self, key: tuple[object, ...], build: Callable[[], str]) -> str:
+        with self._lock:
+            hit = self._items.get(key)
+        if hit is None:
+            hit = build()
+            with self._lock:
+                if len(self._items) >= self.size:
+                    self._items.pop(next(iter(self._items)))
+                self._items[key] = hit
+        return hit
+
+
+def _data_on_hand_html(request: Request, view: MorningOverview) -> str:
+    """The "Data on hand" section, rendered once per (newest vintage, language) and worker by
+    the autoescaping environment; home.html inserts it as markup (``|safe``)."""
+    state = request.app.state
+    cache = getattr(state, "staff_fragments", None)
+    if cache is None:
+        cache = state.staff_fragments = FragmentCache()
+    lang = getattr(request.state, "lang", "en")
+    templates: Jinja2Templates = state.templates
+
+    def build() -> str:
+        template = templates.get_template("staff/_data_on_hand.html")
+        return template.render(oh=view.data_on_hand, measures=view.measures, lang=lang)
+
+    return cache.get(("data_on_hand", view.data_on_hand_key, lang), build)
 
 
 @router.get("/district/{code}", response_class=HTMLResponse)

@@ -103,6 +103,8 @@ class DistrictDossier:
     prepare_days: tuple[tuple[date, str], ...]
     revisions: tuple[RevisionRow, ...]
     sentence: str
+    #: the day ``sentence`` describes: the period's last assessed day (None: no assessment)
+    sentence_day: date | None = None
 
 
 def _region(session: Session, code: str) -> tuple[Region, str | None]:
@@ -206,6 +208,7 @@ def district_dossier(
         official=tuple(_official_by_day(session, region.id, dates)), prepare_days=prepare,
         revisions=revisions,
         sentence=rows[-1].explanation.get("sentence", "") if rows else "",
+        sentence_day=rows[-1].ref_date if rows else None,
     )
 
 

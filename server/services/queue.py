@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.services.evaluation import active_ruleset
@@ -12,27 +13,64 @@ from server.services.review import (
     DecisionRecord,
     PendingChange,
     decision_history,
+    has_something_to_publish,
     pending_changes,
 )
+from server.store.models import Decision as DecisionRow
+from server.store.models import Region
 
-__all__ = ["ReviewQueue", "review_queue"]
+__all__ = ["HISTORY_LIMIT", "ReviewQueue", "review_queue"]
+
+#: Decisions the review page lists unless asked for all of them.
+HISTORY_LIMIT = 30
 
 
 @dataclass(frozen=True, kw_only=True)
 class ReviewQueue:
+    """What the review page shows.
+
+    ``history`` is newest first: at most :data:`HISTORY_LIMIT` unless ``history_all``, of one
+    district when ``history_region`` is set; ``history_total`` counts the decisions the same
+    filter matches; ``history_regions`` are the (code, name) pairs with a decision, for the filter.
+    """
+
     pending: tuple[PendingChange, ...]
     unpublished: tuple[DecisionRecord, ...]
+    publishable: bool
     history: tuple[DecisionRecord, ...]
+    history_total: int
+    history_all: bool
+    history_region: str | None
+    history_regions: tuple[tuple[str, str], ...]
     tier_names: tuple[str, ...]
 
 
-def review_queue(*, session: Session, history_limit: int = 200) -> ReviewQueue:
-    """What the review page shows; the history is newest first, at most ``history_limit``."""
-    history = decision_history(session=session)
+def review_queue(
+    *, session: Session, show_all: bool = False, region: str | None = None,
+    history_limit: int = HISTORY_LIMIT,
+) -> ReviewQueue:
+    """What the review page shows (see :class:`ReviewQueue`); an unknown ``region`` filters to
+    nothing."""
     row = active_ruleset(session=session)
     names = tuple(t.name for t in parsed(row).tiers) if row is not None else ()
+    unpublished = tuple(decision_history(session=session, unpublished_only=True))
+    history = decision_history(
+        session=session, region=region or None, limit=None if show_all else history_limit
+    )
+    regions = tuple(
+        (code, name) for code, name in session.execute(
+            select(Region.code, Region.name)
+            .where(Region.id.in_(select(DecisionRow.region_id).distinct()))
+            .order_by(Region.code)
+        )
+    )
+    count = select(func.count()).select_from(DecisionRow)
+    if region:
+        count = count.join(Region, Region.id == DecisionRow.region_id).where(Region.code == region)
+    total = session.scalar(count) or 0
     return ReviewQueue(
-        pending=tuple(pending_changes(session=session)),
-        unpublished=tuple(h for h in history if h.published_at is None),
-        history=tuple(history[:history_limit]), tier_names=names,
+        pending=tuple(pending_changes(session=session)), unpublished=unpublished,
+        publishable=has_something_to_publish(session=session),
+        history=tuple(history), history_total=total, history_all=show_all,
+        history_region=region or None, history_regions=regions, tier_names=names,
     )

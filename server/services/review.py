@@ -33,16 +33,19 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from functools import lru_cache
 
-from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy import func, or_, select
+from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import (
+    LatestItem,
+    LatestRun,
     active_ruleset,
+    assessments_as_of,
     current_assessment_id,
-    latest_assessment_rows,
+    newest_run,
 )
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.store.models import Assessment, Region, User
@@ -55,9 +58,12 @@ __all__ = [
     "OfficialTier",
     "PendingChange",
     "PublishResult",
+    "RecommendationChangedError",
     "ReviewError",
+    "current_run",
     "decide",
     "decision_history",
+    "has_something_to_publish",
     "official_tiers",
     "pending_changes",
     "publish",
@@ -73,6 +79,29 @@ class ReviewError(ServiceError, ValueError):
     def __init__(self, argument: str, message: str) -> None:
         self.argument = argument
         super().__init__(f"{argument}: {message}")
+
+
+class RecommendationChangedError(ReviewError):
+    """The recommendation a decision form was opened for changed before it was posted."""
+
+    def __init__(
+        self, *, posted_id: int, region: str, current_id: int | None, tier: int | None,
+        tier_name: str | None,
+    ) -> None:
+        self.posted_id = posted_id
+        self.region = region
+        self.current_id = current_id
+        self.tier = tier
+        self.tier_name = tier_name
+        now = (
+            f"it now recommends {tier_name} (assessment {current_id})"
+            if current_id is not None else "it has no current recommendation"
+        )
+        super().__init__(
+            "assessment_id",
+            f"{posted_id} is not the district's current recommendation any more: new data "
+            f"changed {region}'s recommendation while the form was open; {now}; review it again",
+        )
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -95,6 +124,7 @@ class PendingChange:
     region: str
     name: str
     official_tier: int | None
+    official_name: str
     recommended_tier: int
     recommended_name: str
     since: date
@@ -129,6 +159,7 @@ class DecisionRecord:
     tier: int
     tier_name: str
     recommended_tier: int | None
+    recommended_name: str
     kind: str
     reason: str
     user: str
@@ -162,6 +193,14 @@ def _tier_name(ruleset: Ruleset | None, tier: int) -> str:
     if ruleset is None or not -1 <= tier <= ruleset.top_tier:
         return str(tier)
     return ruleset.tier_name(tier)
+
+
+def _tier_label(ruleset: Ruleset | None, tier: int | None) -> str:
+    """A tier as people read it: "High (2)"; "none" for no tier."""
+    if tier is None:
+        return "none"
+    name = _tier_name(ruleset, tier)
+    return name if tier < 0 or name == str(tier) else f"{name} ({tier})"
 
 
 def _public_text(ruleset: Ruleset | None, tier: int) -> str:
@@ -216,13 +255,73 @@ def official_tiers(*, session: Session, published_only: bool = True) -> dict[str
     return out
 
 
+def current_run(*, session: Session) -> LatestRun | None:
+    """The same as :func:`~server.services.evaluation.latest_assessment_rows` without reading
+    every day of the history.
+
+    A district's current recommendation starts on its newest *transition* in force at the run:
+    the newest row (greatest day, as of the run's cutoff) whose ``previous_tier`` differs from
+    its ``recommended_tier``. Rows stay consistent across runs (a run that changes a day's tier
+    changes the next day's ``previous_tier``, so it stores that day anew), so this is the first
+    day of the trailing run of days with the current tier; with no transition in force it is the
+    district's first assessed day. Transitions are few, and checking that one is still in force
+    (no newer row of its day up to the cutoff) is one index probe each.
+    """
+    newest = newest_run(session=session)
+    if newest is None:
+        return None
+    row, run = newest
+    cutoff, last_day = run.data_cutoff, run.last_day
+    query = assessments_as_of(
+        select(Region.id, Region.code, Region.name, Assessment)
+        .join(Region, Region.id == Assessment.region_id),
+        ruleset_id=row.id, cutoff=cutoff, start=last_day, end=last_day,
+    ).order_by(Region.code)
+    found = session.execute(query).all()
+    a, b = Assessment, aliased(Assessment)
+    superseded = (
+        select(b.id).where(
+            b.ruleset_id == a.ruleset_id, b.region_id == a.region_id, b.ref_date == a.ref_date,
+            b.data_cutoff > a.data_cutoff, b.data_cutoff <= cutoff,
+        ).exists()
+    )
+    transitions = session.execute(
+        select(a.region_id, func.max(a.ref_date))
+        .where(
+            a.ruleset_id == row.id, a.data_cutoff <= cutoff, a.ref_date <= last_day,
+            or_(a.previous_tier.is_(None), a.previous_tier != a.recommended_tier),
+            ~superseded,
+        )
+        .group_by(a.region_id)
+    ).all()
+    since: dict[int, date] = dict(transitions)
+    missing = [rid for rid, *_ in found if rid not in since]
+    if missing:
+        first = (
+            select(func.min(a.ref_date))
+            .where(a.ruleset_id == row.id, a.region_id == Region.id, a.data_cutoff <= cutoff)
+            .scalar_subquery()
+        )
+        since.update(session.execute(
+            select(Region.id, first).where(Region.id.in_(missing))
+        ).all())
+    items = tuple(
+        LatestItem(region_id=rid, code=code, name=name, assessment=item, since=since[rid])
+        for rid, code, name, item in found
+    )
+    return LatestRun(
+        ruleset_row=row, ruleset=_parse(row.yaml_text), data_cutoff=cutoff, last_day=last_day,
+        items=items,
+    )
+
+
 def pending_changes(*, session: Session) -> list[PendingChange]:
     """Districts whose newest recommendation differs from their latest decision, by code.
 
     A district stays settled after a decision on a recommendation until the recommendation
     changes again (an override that keeps the tier is not asked again every day).
     """
-    latest = latest_assessment_rows(session=session)
+    latest = current_run(session=session)
     if latest is None:
         return []
     decisions = _decisions(session, published_only=False)
@@ -243,6 +342,7 @@ def pending_changes(*, session: Session) -> list[PendingChange]:
         out.append(
             PendingChange(
                 region=item.code, name=item.name, official_tier=official,
+                official_name="" if official is None else latest.ruleset.tier_name(official),
                 recommended_tier=item.assessment.recommended_tier,
                 recommended_name=latest.ruleset.tier_name(item.assessment.recommended_tier),
                 since=item.since, assessment_id=item.assessment.id,
@@ -293,6 +393,38 @@ def _official_tier_of(session: Session, region_id: int) -> int | None:
     )
 
 
+def _current_for(session: Session, posted: Assessment) -> Assessment:
+    """The district's current assessment standing in for ``posted`` (a form opened earlier).
+
+    New data may re-evaluate a district while an approver types a reason. When the current
+    assessment (newest day of the newest run, active ruleset) recommends the tier the form was
+    posted for, under the same ruleset, the decision is taken on the current one.
+
+    Raises
+    ------
+    RecommendationChangedError
+        When the recommendation changed meanwhile (another tier or another ruleset), or the
+        district has no current assessment.
+    """
+    current_id = current_assessment_id(session=session, region_id=posted.region_id)
+    if current_id == posted.id:
+        return posted
+    current = None if current_id is None else session.get(Assessment, current_id)
+    if (
+        current is not None
+        and current.ruleset_id == posted.ruleset_id
+        and current.recommended_tier == posted.recommended_tier
+    ):
+        return current
+    code = session.scalar(select(Region.code).where(Region.id == posted.region_id)) or ""
+    ruleset = _active(session)
+    raise RecommendationChangedError(
+        posted_id=posted.id, region=code, current_id=current_id,
+        tier=None if current is None else current.recommended_tier,
+        tier_name=None if current is None else _tier_label(ruleset, current.recommended_tier),
+    )
+
+
 def decide(
     *, session: Session, assessment_id: int, user: str, accept: bool, tier: int | None,
     reason: str,
@@ -316,14 +448,8 @@ def decide(
     assessment = session.get(Assessment, assessment_id)
     if assessment is None:
         raise ReviewError("assessment_id", f"no assessment {assessment_id}")
-    current = current_assessment_id(session=session, region_id=assessment.region_id)
-    if assessment.id != current:
-        raise ReviewError(
-            "assessment_id",
-            f"{assessment_id} is not the district's current recommendation (that is "
-            f"{current if current is not None else 'none'}: the newest day of the active ruleset "
-            "in force at its newest evaluation); reload the review page",
-        )
+    posted = assessment
+    assessment = _current_for(session, posted)
     ruleset = _active(session)
     top = ruleset.top_tier if ruleset is not None else None
     kept: int | None = None
@@ -359,6 +485,7 @@ def decide(
         session=session, actor=user, action=f"decision.{kind}", subject=code,
         details={
             "decision_id": row.id, "assessment_id": assessment.id, "tier": chosen,
+            **({"posted_assessment_id": posted.id} if posted.id != assessment.id else {}),
             "recommended_tier": assessment.recommended_tier, "reason": row.reason,
             "effective_date": row.effective_date.isoformat(),
             **({"kept_official_tier": kept} if kept is not None else {}),
@@ -394,12 +521,38 @@ def _published_events(
     return out
 
 
+def _first_publications(session: Session) -> list[LatestItem]:
+    """Current items of districts never decided that a publication would start (tier >= 0)."""
+    decided = set(session.scalars(select(DecisionRow.region_id).distinct()))
+    latest = current_run(session=session)
+    if latest is None:
+        return []
+    return [
+        item for item in latest.items
+        if item.region_id not in decided and item.assessment.recommended_tier >= 0
+    ]
+
+
+def _unpublished_count(session: Session) -> int:
+    return session.scalar(
+        select(func.count()).select_from(DecisionRow).where(DecisionRow.published_at.is_(None))
+    ) or 0
+
+
+def has_something_to_publish(*, session: Session) -> bool:
+    """Whether :func:`publish` would publish anything: an unpublished decision, or a district
+    never decided that a first publication would start from its recommendation."""
+    return bool(_unpublished_count(session)) or bool(_first_publications(session))
+
+
 def publish(
     *, session: Session, user: str, notify: NotifyConfig | None = None
 ) -> PublishResult:
     """Publish every unpublished decision; districts never decided start from their recommendation.
 
     With ``notify``, the districts whose public tier changed are notified (``published`` events).
+    With nothing to publish, nothing is written (no audit entry) and the result has
+    ``decisions == 0``.
 
     Raises
     ------
@@ -408,14 +561,13 @@ def publish(
     """
     approver = _approver(session, user)
     now = datetime.now(UTC)
-    decided = set(session.scalars(select(DecisionRow.region_id).distinct()))
-    latest = latest_assessment_rows(session=session)
+    starting = _first_publications(session)
+    if not starting and not _unpublished_count(session):
+        return PublishResult(published_at=now, decisions=0, regions=(), initial=())
     initial: list[str] = []
-    if latest is not None:
-        for item in latest.items:
+    if starting:
+        for item in starting:
             a = item.assessment
-            if item.region_id in decided or a.recommended_tier < 0:
-                continue
             session.add(
                 DecisionRow(
                     region_id=item.region_id, assessment_id=a.id,
@@ -449,8 +601,12 @@ def publish(
     )
 
 
-def decision_history(*, session: Session, region: str | None = None) -> list[DecisionRecord]:
-    """Every decision, newest first (of one district when ``region`` is given)."""
+def decision_history(
+    *, session: Session, region: str | None = None, limit: int | None = None,
+    unpublished_only: bool = False,
+) -> list[DecisionRecord]:
+    """Every decision, newest first (of one district when ``region`` is given, only the
+    unpublished ones with ``unpublished_only``; at most ``limit`` when given)."""
     ruleset = _active(session)
     query = (
         select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier)
@@ -461,10 +617,15 @@ def decision_history(*, session: Session, region: str | None = None) -> list[Dec
     )
     if region is not None:
         query = query.where(Region.code == region)
+    if unpublished_only:
+        query = query.where(DecisionRow.published_at.is_(None))
+    if limit is not None:
+        query = query.limit(limit)
     return [
         DecisionRecord(
             id=row.id, region=code, name=name, tier=row.tier,
             tier_name=_tier_name(ruleset, row.tier), recommended_tier=recommended,
+            recommended_name="" if recommended is None else _tier_name(ruleset, recommended),
             kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
             effective_date=row.effective_date, published_at=row.published_at,
         )

@@ -131,7 +131,10 @@ def test_overview_lists_newest_date_of_each_measure(demo_app_client: TestClient)
     login(demo_app_client, "ada.analyst")
     text = demo_app_client.get("/staff/").text
     assert "Data on hand" in text
-    assert "<th scope=\"col\">hosp_admissions</th>" in text
+    # the column is named by the measure's description (demo_seed.scenario), its id kept beside
+    assert "<th scope=\"col\">Hospital admissions with the infection</th>" in text
+    assert "<th scope=\"col\">hosp_admissions</th>" not in text
+    assert "<code>hosp_admissions</code>" in text
     assert "Haldenmoor <code>D11</code>" in text
     assert "Grennick Marsh <code>WW5</code>" in text
 
@@ -141,6 +144,31 @@ def test_overview_filters_by_search(demo_app_client: TestClient) -> None:
     text = demo_app_client.get("/staff/?q=Vorwick").text
     assert "1 district" in text
     assert "Corvenstadt</a>" not in text
+
+
+def test_overview_search_without_match_says_so(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/?q=Nowhere-at-all").text
+    assert "0 districts" in text
+    assert "No district matches “Nowhere-at-all”." in text
+
+
+def test_overview_data_on_hand_is_rendered_once_per_vintage(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    first = demo_app_client.get("/staff/").text
+    second = demo_app_client.get("/staff/?q=Vorwick").text
+    section = first[first.index('<section aria-labelledby="onhand-h">'):]
+    assert section.split("</section>")[0] in second
+    cache = demo_app_client.app.state.staff_fragments  # type: ignore[attr-defined]
+    assert len(cache._items) == 1
+
+
+def test_overview_lists_a_source_without_feed_definition(demo_app_client: TestClient) -> None:
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/").text
+    feeds = text[text.index('id="feeds-h"'):].split("</section>")[0]
+    assert "demo-county" in feeds and "not a configured feed" in feeds
+    assert "late" not in feeds
 
 
 def test_explanation_names_ruleset_and_thresholds(demo_app_client: TestClient) -> None:
@@ -278,3 +306,14 @@ def test_feed_upload_reads_the_file_and_names_an_unknown_feed(
         files={"file": ("x.csv", b"region,date,measure,value\n", "text/csv")})
     assert answer.status_code == 422
     assert "unknown feed &#39;no-such-feed&#39;" in answer.text
+
+
+def test_district_period_names_the_day_of_its_sentence_and_links_it(
+    demo_app_client: TestClient,
+) -> None:
+    login(demo_app_client, "ada.analyst")
+    text = demo_app_client.get("/staff/district/D04?start=2026-10-01&end=2026-10-20").text
+    assert "On 2026-10-20 (the last day of the period shown):" in text
+    assert 'href="/staff/district/D04/explain?day=2026-10-20">Explanation of 2026-10-20</a>' in text
+    assert "Explanation of the newest day, 2026-11-30" in text
+

@@ -37,10 +37,10 @@ from server.services.observations import MeasureRecord, define_measures
 from server.services.pages import public_district_page, public_map
 from server.services.queue import review_queue
 from server.services.regions import RegionRecord, store_regions
-from server.services.review import ReviewError, decide, decision_history, pending_changes
+from server.services.review import decide, decision_history, pending_changes
 from server.services.users import add_user
 from server.store import revision_history
-from server.store.models import Assessment, EvaluationRun, Region
+from server.store.models import Assessment, AuditEntry, EvaluationRun, Region
 from server.store.models import Ruleset as RulesetRow
 from server.store.vintages import append_vintage
 
@@ -214,9 +214,18 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     history = {h.region: h for h in decision_history(session=demo_session)}
     assert history["D01"].recommended_tier == old_row.recommended_tier
     assert history["D02"].tier == 0
-    with pytest.raises(ReviewError, match=rf"assessment_id: {old_d01} is not the district's"):
-        decide(session=demo_session, assessment_id=old_d01, user=APPROVER, accept=True,
-               tier=None, reason="form opened before the correction")
+    # a form opened before the correction: D01 still recommends the same tier, so the decision
+    # goes through against the current row and the audit names the row the form was posted for
+    new_row = demo_session.get(Assessment, new_d01)
+    assert new_row is not None and new_row.recommended_tier == old_row.recommended_tier
+    late = decide(session=demo_session, assessment_id=old_d01, user=APPROVER, accept=True,
+                  tier=None, reason="form opened before the correction")
+    assert late.assessment_id == new_d01
+    entry = demo_session.scalars(
+        select(AuditEntry).where(AuditEntry.action == "decision.confirmed")
+        .order_by(AuditEntry.id.desc())
+    ).first()
+    assert entry is not None and entry.details["posted_assessment_id"] == old_d01
 
 
 @pytest.mark.slow

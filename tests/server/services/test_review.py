@@ -5,6 +5,7 @@ from __future__ import annotations
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
+import pandas as pd
 import pytest
 from sqlalchemy import select, update
 from sqlalchemy.orm import Session
@@ -16,15 +17,19 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.review import (
+    RecommendationChangedError,
     ReviewError,
+    current_run,
     decide,
     decision_history,
+    has_something_to_publish,
     official_tiers,
     pending_changes,
     publish,
 )
 from server.store.models import Assessment, AuditEntry
 from server.store.models import Decision as DecisionRow
+from server.store.vintages import append_vintage
 
 pytestmark = pytest.mark.slow
 APPROVER, ANALYST = "otto.approver", "ada.analyst"  # invented demo accounts (demo_seed.seed)
@@ -167,28 +172,71 @@ def _item(session: Session, region: str) -> tuple[int, int, date]:
     return item.region_id, item.assessment.id, latest.last_day
 
 
-def test_decide_refuses_an_earlier_day_of_the_current_run(demo_session: Session) -> None:
-    region_id, current, last_day = _item(demo_session, "D01")
-    earlier = demo_session.scalar(select(Assessment.id).where(
+def _earlier_row(session: Session, region_id: int, last_day: date, tier: int) -> int:
+    """An earlier day's row of the current run standing for a form opened before new data,
+    set to recommend ``tier`` (test-only edit of a stored row)."""
+    earlier = session.scalar(select(Assessment.id).where(
         Assessment.region_id == region_id, Assessment.ref_date == last_day - timedelta(days=3)))
     assert earlier is not None
-    with pytest.raises(ReviewError, match=rf"assessment_id: {earlier} is not the district's "
-                                          rf"current recommendation \(that is {current}"):
-        decide(session=demo_session, assessment_id=earlier, user=APPROVER, accept=False, tier=0,
+    session.execute(update(Assessment).where(Assessment.id == earlier)
+                    .values(recommended_tier=tier))
+    session.expire_all()
+    return earlier
+
+
+def test_decide_on_a_superseded_row_with_the_same_tier_decides_the_current_one(
+    demo_session: Session,
+) -> None:
+    region_id, current, last_day = _item(demo_session, "D01")
+    row = demo_session.get(Assessment, current)
+    assert row is not None
+    posted = _earlier_row(demo_session, region_id, last_day, row.recommended_tier)
+    d = decide(session=demo_session, assessment_id=posted, user=APPROVER, accept=True,
+               tier=None, reason="typed before the feed landed")
+    assert (d.assessment_id, d.tier, d.effective_date) == (
+        current, row.recommended_tier, last_day + timedelta(days=1))
+    details = demo_session.scalars(select(AuditEntry.details).where(
+        AuditEntry.action == "decision.confirmed")).one()
+    assert (details["assessment_id"], details["posted_assessment_id"]) == (current, posted)
+    assert "D01" not in {p.region for p in pending_changes(session=demo_session)}
+
+
+def test_decide_on_a_superseded_row_with_another_tier_is_refused_naming_the_new_one(
+    demo_session: Session,
+) -> None:
+    region_id, current, last_day = _item(demo_session, "D01")
+    row = demo_session.get(Assessment, current)
+    assert row is not None
+    other = 0 if row.recommended_tier != 0 else 1
+    posted = _earlier_row(demo_session, region_id, last_day, other)
+    with pytest.raises(RecommendationChangedError) as caught:
+        decide(session=demo_session, assessment_id=posted, user=APPROVER, accept=False, tier=0,
                reason="stale form")
+    changed = caught.value
+    assert (changed.region, changed.current_id, changed.tier) == (
+        "D01", current, row.recommended_tier)
+    assert f"assessment_id: {posted} is not the district's current recommendation" in str(changed)
+    assert f"it now recommends {changed.tier_name} (assessment {current})" in str(changed)
+    assert demo_session.scalars(select(DecisionRow)).all() == []
 
 
-def test_decide_refuses_an_assessment_of_an_older_cutoff(demo_session: Session) -> None:
+def test_decide_refuses_an_assessment_of_an_older_cutoff_with_another_tier(
+    demo_session: Session,
+) -> None:
     row = active_ruleset(session=demo_session)
     assert row is not None
     old = evaluate_districts(session=demo_session, ruleset_row=row,
                              cutoff=datetime(2026, 10, 1, 12, 0, tzinfo=UTC))
     assert old is not None
-    region_id, _current, _day = _item(demo_session, "D01")
+    region_id, current, _day = _item(demo_session, "D01")
     stale = demo_session.scalar(select(Assessment.id).where(
         Assessment.region_id == region_id, Assessment.data_cutoff == old.data_cutoff,
         Assessment.ref_date == old.end))
-    assert stale is not None
+    now = demo_session.get(Assessment, current)
+    assert stale is not None and now is not None
+    demo_session.execute(update(Assessment).where(Assessment.id == stale)
+                         .values(recommended_tier=(now.recommended_tier + 1) % 3))
+    demo_session.expire_all()
     with pytest.raises(ReviewError, match=rf"assessment_id: {stale} is not the district's"):
         decide(session=demo_session, assessment_id=stale, user=APPROVER, accept=True, tier=None,
                reason="form opened before the new data")
@@ -253,3 +301,73 @@ def test_official_tier_same_effective_day_goes_to_the_later_decision(
               morning + timedelta(hours=1))
     _decision(demo_session, region_id, last_day + timedelta(days=1), 3, morning)
     assert official_tiers(session=demo_session)["D02"].tier == 1
+
+
+# --- publishing with nothing to publish ---
+
+
+def test_publish_with_nothing_to_publish_writes_nothing(demo_session: Session) -> None:
+    publish(session=demo_session, user=APPROVER)
+    assert not has_something_to_publish(session=demo_session)
+    entries = len(demo_session.scalars(select(AuditEntry)).all())
+    again = publish(session=demo_session, user=APPROVER)
+    assert (again.decisions, again.regions, again.initial) == (0, (), ())
+    assert len(demo_session.scalars(select(AuditEntry)).all()) == entries
+
+
+def test_has_something_to_publish_before_the_first_publication_and_after_a_decision(
+    demo_session: Session,
+) -> None:
+    assert has_something_to_publish(session=demo_session)  # undecided districts start from it
+    publish(session=demo_session, user=APPROVER)
+    assert not has_something_to_publish(session=demo_session)
+    _region_id, current, _day = _item(demo_session, "D01")
+    decide(session=demo_session, assessment_id=current, user=APPROVER, accept=False, tier=0,
+           reason="figures corrected")
+    assert has_something_to_publish(session=demo_session)
+
+
+# --- the current run without reading the whole history ---
+
+
+def _same_as_the_full_read(session: Session) -> None:
+    full = latest_assessment_rows(session=session)
+    fast = current_run(session=session)
+    assert full is not None and fast is not None
+    assert (fast.ruleset_row.id, fast.data_cutoff, fast.last_day) == (
+        full.ruleset_row.id, full.data_cutoff, full.last_day)
+    assert [(i.code, i.assessment.id, i.since) for i in fast.items] == [
+        (i.code, i.assessment.id, i.since) for i in full.items]
+
+
+def test_current_run_matches_the_full_read_on_the_demo(demo_session: Session) -> None:
+    _same_as_the_full_read(demo_session)
+
+
+def test_current_run_matches_the_full_read_after_corrections_and_replays(
+    demo_session: Session,
+) -> None:
+    row = active_ruleset(session=demo_session)
+    assert row is not None
+    latest = latest_assessment_rows(session=demo_session)
+    assert latest is not None
+    at = latest.data_cutoff
+    for k, (region, first, value) in enumerate([
+        ("D01", date(2026, 11, 20), 3000.0),  # a surge in the last days
+        ("D03", date(2026, 10, 1), 0.0),  # weeks of zeros, long before the end
+        ("D01", date(2026, 11, 20), 5.0),  # the surge corrected away again
+    ]):
+        at = at + timedelta(hours=1)
+        append_vintage(
+            session=demo_session, feed="correction", received_at=at,
+            checksum=f"fix-{region}-{k}",
+            rows=pd.DataFrame({"region": [region] * 10, "measure": ["cases"] * 10,
+                               "ref_date": [first + timedelta(days=d) for d in range(10)],
+                               "value": [value] * 10}),
+        )
+        evaluate_districts(session=demo_session, ruleset_row=row, cutoff=at)
+        _same_as_the_full_read(demo_session)
+    # a replay of an older cutoff is not the newest run; the newest stays as it was
+    evaluate_districts(session=demo_session, ruleset_row=row,
+                       cutoff=datetime(2026, 10, 1, 12, 0, tzinfo=UTC))
+    _same_as_the_full_read(demo_session)

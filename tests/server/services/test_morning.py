@@ -1,0 +1,65 @@
+"""The morning overview on the seeded demo: feeds judged as on the Feeds page, decided districts."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from pathlib import Path
+
+import pytest
+from sqlalchemy.orm import Session
+
+from server.feeds.definition import load_feeds
+from server.services.evaluation import latest_assessment_rows
+from server.services.feeds import feed_statuses
+from server.services.morning import morning_overview
+from server.services.review import decide, publish
+
+pytestmark = pytest.mark.slow
+APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
+NOW = datetime(2026, 12, 1, 8, 0, tzinfo=UTC)
+DEMO_FEEDS = Path(__file__).resolve().parents[3] / "demo_seed" / "feeds.yaml"
+
+
+def test_overview_lists_every_configured_feed_with_the_feeds_page_verdict(
+    demo_session: Session,
+) -> None:
+    catalogue = load_feeds(DEMO_FEEDS)
+    view = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
+    expected = {s.name: s.health for s in feed_statuses(
+        session=demo_session, catalogue=catalogue, now=NOW)}
+    shown = {f.feed: f.status for f in view.feeds if f.configured}
+    assert shown == expected
+    assert set(shown) == {f.name for f in catalogue}
+
+
+def test_overview_says_no_delivery_yet_for_a_configured_feed_that_never_delivered(
+    demo_session: Session,
+) -> None:
+    catalogue = load_feeds(DEMO_FEEDS)
+    view = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
+    never = [f for f in view.feeds if f.configured and f.received_at is None]
+    assert never, "the seeded demo lands its data through 'demo-county', not the demo feeds"
+    assert all(f.status in ("no delivery yet", "overdue") and f.age_hours is None
+               for f in never)
+
+
+def test_overview_lists_a_source_without_definition_unjudged(demo_session: Session) -> None:
+    view = morning_overview(session=demo_session, now=NOW, catalogue=load_feeds(DEMO_FEEDS))
+    other = {f.feed: f for f in view.feeds if not f.configured}
+    assert "demo-county" in other
+    assert other["demo-county"].status == "not configured"
+    assert not other["demo-county"].late
+
+
+def test_overview_counts_a_decided_unpublished_district_apart(demo_session: Session) -> None:
+    publish(session=demo_session, user=APPROVER)
+    latest = latest_assessment_rows(session=demo_session)
+    assert latest is not None
+    item = next(i for i in latest.items if i.code == "D01")
+    other = (item.assessment.recommended_tier + 1) % 3
+    decide(session=demo_session, assessment_id=item.assessment.id, user=APPROVER, accept=False,
+           tier=other, reason="invented reason")
+    view = morning_overview(session=demo_session, now=NOW)
+    line = next(x for x in view.every if x.code == "D01")
+    assert (line.decided_tier, line.pending, view.decided) == (other, False, 1)
+    assert line.official_tier == item.assessment.recommended_tier  # published one still in force
