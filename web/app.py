@@ -4,9 +4,12 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator, Callable, Sequence
 from contextlib import AbstractContextManager, ExitStack, asynccontextmanager
+from datetime import date, datetime
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 from fastapi import FastAPI
+from fastapi.responses import RedirectResponse
 from fastapi.staticfiles import StaticFiles
 
 from server.config import Settings
@@ -25,6 +28,17 @@ from web.staff_feeds import router as staff_feeds_router
 from web.templating import make_templates
 
 STATIC = Path(__file__).with_name("static")
+
+
+def local_time(value: date | datetime | None, zone: ZoneInfo) -> str:
+    """A time stamp in the office's time zone with the zone's abbreviation (``2026-11-30 06:30
+    CET``); a date stays a date, None is a dash."""
+    if value is None:
+        return "—"
+    if not isinstance(value, datetime):
+        return value.isoformat()
+    here = value.astimezone(zone)
+    return f"{here:%Y-%m-%d %H:%M} {here.tzname()}"
 
 
 BackgroundTask = Callable[[Database], AbstractContextManager[object]]
@@ -66,6 +80,8 @@ def create_app(
     app.state.settings = settings
     app.state.database = db
     app.state.templates = make_templates(settings)
+    zone = settings.zone
+    app.state.templates.env.filters["local"] = lambda value: local_time(value, zone)
     app.state.notify = notify_config_from(settings.notify_file)
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter()
@@ -80,6 +96,8 @@ def create_app(
     app.include_router(assets.router)  # before the /static mount, which would shadow it
     mount_api_docs(app)
     app.mount("/static", StaticFiles(directory=STATIC), name="static")
+    # Pages link the SVG icon; clients that ask for /favicon.ico anyway are sent to it.
+    app.add_api_route("/favicon.ico", _favicon, methods=["GET", "HEAD"], include_in_schema=False)
     app.include_router(health.router)
     app.include_router(login.router, prefix="/staff")
     app.include_router(review.router, prefix="/staff")
@@ -90,6 +108,10 @@ def create_app(
     app.include_router(staff.router, prefix="/staff")
     app.include_router(public.router)
     return app
+
+
+def _favicon() -> RedirectResponse:
+    return RedirectResponse("/static/favicon.svg", status_code=301)
 
 
 def app_from_environment() -> FastAPI:

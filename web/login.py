@@ -2,7 +2,9 @@
 
 The login form is protected by a double-submit token (a random cookie echoed in a hidden field),
 since there is no session yet; after login every form carries the session-bound CSRF token.
-Failed logins are rate limited per client address and per user name.
+Failed logins are rate limited per user name (any case) and, far more loosely, per client address,
+so staff sharing one office or proxy address do not lock each other out
+(:mod:`server.services.auth` says why).
 """
 
 from __future__ import annotations

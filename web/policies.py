@@ -9,7 +9,9 @@ from fastapi import APIRouter, Form, Request, UploadFile
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.services.backtest_jobs import BacktestJobs
+from server.services.feeds import catalogue_limits, load_catalogue
 from server.services.policies import (
+    DraftCheck,
     activate_version,
     check_draft,
     policy_diff,
@@ -18,10 +20,39 @@ from server.services.policies import (
     versions,
 )
 from web.backtests import OUTLINE, tier_strip
-from web.deps import AdminDep, AnalystDep, CsrfDep, NotifyDep, SessionDep, StaffDep
+from web.deps import (
+    AdminDep,
+    AnalystDep,
+    CsrfDep,
+    NotifyDep,
+    SessionDep,
+    SettingsDep,
+    StaffDep,
+)
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
+
+_BOM = b"\xef\xbb\xbf"
+
+
+def decode_draft(raw: bytes, filename: str) -> str | DraftCheck:
+    """The text of an uploaded draft, or a failed check naming the first byte that is not UTF-8.
+
+    A byte-order mark is dropped. Nothing is replaced: a draft saved in another encoding (such
+    as Latin-1) is refused with its byte offset and line rather than stored with "\ufffd" in
+    its tier texts.
+    """
+    body = raw[len(_BOM):] if raw.startswith(_BOM) else raw
+    try:
+        return body.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        offset = exc.start + (len(raw) - len(body))
+        line = raw.count(b"\n", 0, offset) + 1
+        return DraftCheck(ok=False, message=(
+            f"{filename}: line {line}, byte {offset}: the file is not valid UTF-8 text "
+            f"(byte 0x{raw[offset]:02x}). It was probably saved in another encoding (such as "
+            "Windows-1252 or Latin-1): save it as UTF-8 and upload it again."))
 
 
 @router.get("/policies", response_class=HTMLResponse)
@@ -56,7 +87,14 @@ def draft(
     name = "draft.yaml"
     if file is not None and file.filename:
         name = file.filename
-        text = file.file.read().decode("utf-8", errors="replace")
+        decoded = decode_draft(file.file.read(), name)
+        if isinstance(decoded, DraftCheck):
+            return render(request, "staff/policies.html", {
+                "view": policy_view(session=session), "versions": versions(session=session),
+                "check": decoded, "draft_text": "",
+                "backtests": _jobs(request).recent(session=session),
+            }, status_code=422)
+        text = decoded
     result = check_draft(text, filename=name)
     if result.ok and store:
         new_id = store_draft(session=session, text=text, author=user.name, filename=name)
@@ -69,10 +107,12 @@ def draft(
 
 @router.post("/policies/{ruleset_id}/activate")
 def activate(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, notify: NotifyDep, ruleset_id: int
+    session: SessionDep, user: AdminDep, _csrf: CsrfDep, notify: NotifyDep,
+    settings: SettingsDep, ruleset_id: int,
 ) -> RedirectResponse:
     """Make a version active and evaluate it (admins only)."""
-    activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify)
+    activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify,
+                     stale_after=catalogue_limits(load_catalogue(settings)))
     return RedirectResponse("/staff/policies", status_code=303)
 
 

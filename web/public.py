@@ -1,7 +1,8 @@
 """Public, read-only pages for residents (no login): published tiers only.
 
 Every page and its JSON twin carries nothing staff-only; pages are cacheable (ETag and
-Last-Modified from the publication stamp, see :mod:`web.caching`). The routes are coroutines
+Last-Modified from the publication stamp, see :mod:`web.caching`) and answer ``HEAD`` as well as
+``GET`` (link checkers and uptime monitors ask with ``HEAD``). The routes are coroutines
 that answer from the worker's caches; the stamp and a page are read from the database (in the
 thread pool, each in its own transaction) only when the caches cannot answer.
 """
@@ -38,13 +39,18 @@ def _stamp(db: Database) -> Callable[[], PublicStamp]:
     return read
 
 
+def _lang(request: Request) -> str:
+    """The page's language (chosen by the i18n middleware; the cache is keyed by it too)."""
+    return str(getattr(request.state, "lang", "en"))
+
+
 @router.get("/", response_class=HTMLResponse)
 async def index(request: Request, db: DatabaseDep, settings: SettingsDep) -> Response:
     """Map and list of every district with its published tier, and the cautions."""
 
     def build() -> Response:
         with db.transaction() as session:
-            data = public_map(session=session)
+            data = public_map(session=session, lang=_lang(request))
         shapes = svg_map((d.code, d.geometry) for d in data.districts)
         return render(request, "public/index.html", {"data": data, "map": shapes,
                                                      "by_code": {d.code: d for d in data.districts},
@@ -60,7 +66,8 @@ async def district(request: Request, code: str, db: DatabaseDep, settings: Setti
     def build() -> Response:
         with db.transaction() as session:
             page = public_district_page(session=session, code=code,
-                                        threshold=settings.small_count_threshold)
+                                        threshold=settings.small_count_threshold,
+                                        lang=_lang(request))
         top = max((w.rate for w in page.weeks if w.rate is not None), default=0.0)
         return render(request, "public/district.html", {"page": page, "top_rate": top})
 
@@ -90,7 +97,7 @@ async def districts_json(request: Request, db: DatabaseDep) -> Response:
 
     def build() -> Response:
         with db.transaction() as session:
-            data = public_map(session=session)
+            data = public_map(session=session, lang=_lang(request))
         return JSONResponse([_district_json(d) for d in data.districts])
 
     return await conditional(request, _stamp(db), build)
@@ -109,7 +116,8 @@ async def district_json(
     def build() -> Response:
         with db.transaction() as session:
             p = public_district_page(session=session, code=code,
-                                     threshold=settings.small_count_threshold)
+                                     threshold=settings.small_count_threshold,
+                                     lang=_lang(request))
         return JSONResponse({
             "code": p.code, "name": p.name, "area": p.area, "tier": p.tier,
             "tier_name": p.tier_name, "meaning": p.public_text,
@@ -123,3 +131,11 @@ async def district_json(
         })
 
     return await conditional(request, _stamp(db), build)
+
+
+# HEAD answers the same as GET without the body (kept out of the OpenAPI schema, which would
+# otherwise list every page twice under one operation id).
+for _path, _endpoint in (("/", index), ("/district/{code}", district),
+                         ("/api/public/districts", districts_json),
+                         ("/api/public/districts/{code}", district_json)):
+    router.add_api_route(_path, _endpoint, methods=["HEAD"], include_in_schema=False)

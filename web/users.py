@@ -1,11 +1,15 @@
 """Users (admins only): add, change role, disable or enable, set a new password.
 
-Changing a role, disabling or enabling and setting a password end that user's sessions.
+Changing a role, disabling or enabling and setting a password end that user's sessions. After
+each change the page says what was done (``?done=<what>&name=<who>``; the text comes from
+:data:`NOTICES`, only the name from the address, escaped). The admin's own row offers neither a
+role change nor Disable, which the service refuses (an admin cannot lock themselves out).
 """
 
 from __future__ import annotations
 
 from typing import Annotated
+from urllib.parse import urlencode
 
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
@@ -23,12 +27,32 @@ from web.templating import render
 
 router = APIRouter(tags=["staff"])
 
+NOTICES = {
+    "added": "Added {name}.",
+    "role": "Changed the role of {name} to {role}; their sessions have ended.",
+    "disabled": "Disabled {name}; their sessions have ended.",
+    "enabled": "Enabled {name}; they can sign in again.",
+    "password": "Set a new password for {name}; their sessions have ended.",
+}
+
+
+def _done(what: str, name: str, **extra: str) -> RedirectResponse:
+    return RedirectResponse("/staff/users?" + urlencode({"done": what, "name": name, **extra}),
+                            status_code=303)
+
 
 @router.get("/users", response_class=HTMLResponse)
-def users(request: Request, session: SessionDep, user: AdminDep) -> Response:
-    """Every staff account and its role."""
+def users(
+    request: Request, session: SessionDep, user: AdminDep, done: str = "", name: str = "",
+    role: str = "",
+) -> Response:
+    """Every staff account and its role; after a change, a notice saying what was done."""
+    accounts = list_accounts(session=session)
+    notice = ""
+    if done in NOTICES and any(a.name == name for a in accounts):
+        notice = NOTICES[done].format(name=name, role=role if role in ROLES else "?")
     return render(request, "staff/users.html",
-                  {"accounts": list_accounts(session=session), "roles": ROLES})
+                  {"accounts": accounts, "roles": ROLES, "notice": notice})
 
 
 @router.post("/users")
@@ -36,8 +60,9 @@ def add(
     session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: Annotated[str, Form()],
     role: Annotated[str, Form()], password: Annotated[str, Form()],
 ) -> RedirectResponse:
-    add_account(session=session, name=name, role=role, password=password, actor=user.name)
-    return RedirectResponse("/staff/users", status_code=303)
+    account = add_account(session=session, name=name, role=role, password=password,
+                          actor=user.name)
+    return _done("added", account.name)
 
 
 @router.post("/users/{name}/role")
@@ -45,7 +70,7 @@ def role(
     session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: str, role: Annotated[str, Form()]
 ) -> RedirectResponse:
     change_role(session=session, name=name, role=role, actor=user.name)
-    return RedirectResponse("/staff/users", status_code=303)
+    return _done("role", name, role=role)
 
 
 @router.post("/users/{name}/active")
@@ -54,7 +79,7 @@ def active(
     active: Annotated[str, Form()],
 ) -> RedirectResponse:
     set_active(session=session, name=name, active=active == "yes", actor=user.name)
-    return RedirectResponse("/staff/users", status_code=303)
+    return _done("enabled" if active == "yes" else "disabled", name)
 
 
 @router.post("/users/{name}/password")
@@ -64,4 +89,4 @@ def password(
 ) -> RedirectResponse:
     """Set a new password (an admin resetting a forgotten one); the user signs in again."""
     set_password(session=session, name=name, password=password, actor=user.name)
-    return RedirectResponse("/staff/users", status_code=303)
+    return _done("password", name)

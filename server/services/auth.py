@@ -11,7 +11,17 @@ is an HMAC of the session id under the secret key (the "synchronizer token" patt
 session), so it needs no server-side storage.
 
 Roles are ordered: viewer < analyst < approver < admin; a page that needs ``analyst`` admits
-approvers and admins too.
+approvers and admins too. User names match whatever their case
+(:func:`server.services.users.find_user`).
+
+Failed logins are limited per user name and, much more loosely, per client address
+(:class:`LoginLimiter`): by default 5 failures of one name, and 100 failures from one address,
+within 5 minutes. The per-name limit is the guard against guessing one account's password. The
+per-address limit is 20 times higher on purpose: behind a reverse proxy, or from one office
+network, every member of staff shares an address, and a tight limit there would let a few
+mistyped passwords (or anyone who knows the login page) lock the whole office out. It still stops
+one address from trying many names quickly. Counting per (address, name) instead would add
+nothing the per-name limit does not already give.
 """
 
 from __future__ import annotations
@@ -32,7 +42,7 @@ from sqlalchemy.orm import Session
 
 from server.services.audit import record
 from server.services.errors import ServiceError, UnknownRoleError
-from server.services.users import ROLES, add_user, hash_password, verify_password
+from server.services.users import ROLES, add_user, find_user, hash_password, verify_password
 from server.store.models import User
 
 __all__ = [
@@ -98,21 +108,35 @@ def has_role(role: str, needed: str) -> bool:
 
 
 class LoginLimiter:
-    """Sliding-window limit of failed logins per key (client address and user name).
+    """Sliding-window limit of failed logins per key (user name, client address).
 
-    At most ``attempts`` failures within ``window`` seconds; further tries are refused until the
-    oldest failure leaves the window. Memory per process (each web worker limits on its own).
+    At most ``attempts`` failures of one key within ``window`` seconds (``client_attempts`` for
+    keys of client addresses, see the module docstring for why it is higher); further tries are
+    refused until the oldest failure leaves the window. Memory per process (each web worker
+    limits on its own).
     """
 
-    def __init__(self, *, attempts: int = 5, window: float = 300.0) -> None:
+    def __init__(
+        self, *, attempts: int = 5, window: float = 300.0, client_attempts: int | None = None
+    ) -> None:
         if attempts < 1:
             raise ValueError(f"attempts must be >= 1, got {attempts}")
         if window <= 0:
             raise ValueError(f"window must be > 0, got {window}")
+        client_attempts = 20 * attempts if client_attempts is None else client_attempts
+        if client_attempts < attempts:
+            raise ValueError(
+                f"client_attempts ({client_attempts}) must be >= attempts ({attempts})"
+            )
         self.attempts = attempts
+        self.client_attempts = client_attempts
         self.window = window
         self._failures: dict[str, deque[float]] = {}
         self._lock = threading.Lock()
+
+    def limit(self, key: str) -> int:
+        """The failures allowed for ``key`` within the window."""
+        return self.client_attempts if key.startswith("client:") else self.attempts
 
     def check(self, key: str, *, now: float | None = None) -> None:
         """Raise :class:`TooManyAttemptsError` when ``key`` has used up its attempts."""
@@ -123,7 +147,7 @@ class LoginLimiter:
                 return
             while failures and failures[0] <= now - self.window:
                 failures.popleft()
-            if len(failures) >= self.attempts:
+            if len(failures) >= self.limit(key):
                 raise TooManyAttemptsError(failures[0] + self.window - now)
 
     def failed(self, key: str, *, now: float | None = None) -> None:
@@ -148,16 +172,17 @@ def _dummy_hash() -> str:
 def authenticate(
     *, session: Session, name: str, password: str, limiter: LoginLimiter, client: str
 ) -> StaffUser:
-    """Check a login; failed attempts count against ``client`` and ``name`` separately.
+    """Check a login; failed attempts count against ``client`` and ``name`` separately (the
+    name in any case, so ``Ines.Admin`` and ``ines.admin`` share one count).
 
     The password is run through scrypt whether or not the user exists or is active (against a
     dummy hash when there is no such user), so the answer's timing does not tell which names
     exist.
     """
-    keys = (f"client:{client}", f"user:{name.strip().lower()}")
+    keys = (f"client:{client}", f"user:{name.strip().casefold()}")
     for key in keys:
         limiter.check(key)
-    user = session.scalar(select(User).where(User.name == name.strip()))
+    user = find_user(session=session, name=name)
     stored = user.password_hash if user is not None else _dummy_hash()
     valid = verify_password(password, stored)
     ok = user is not None and user.active and valid
@@ -284,7 +309,7 @@ def add_account(*, session: Session, name: str, role: str, password: str, actor:
 
 
 def _user(session: Session, name: str) -> User:
-    user = session.scalar(select(User).where(User.name == name))
+    user = find_user(session=session, name=name)
     if user is None:
         raise AccountError(name, "no such user")
     return user
@@ -294,24 +319,24 @@ def change_role(*, session: Session, name: str, role: str, actor: str) -> None:
     if role not in ROLES:
         raise UnknownRoleError(role, ROLES)
     user = _user(session, name)
-    if user.name == actor and role != "admin":
+    if user.name.casefold() == actor.casefold() and role != "admin":
         raise AccountError(name, "admins cannot lower their own role")
     old, user.role = user.role, role
     if old != role:
         _bump(user)
-    record(session=session, actor=actor, action="users.role", subject=name,
+    record(session=session, actor=actor, action="users.role", subject=user.name,
            details={"from": old, "to": role})
 
 
 def set_active(*, session: Session, name: str, active: bool, actor: str) -> None:
     user = _user(session, name)
-    if user.name == actor and not active:
+    if user.name.casefold() == actor.casefold() and not active:
         raise AccountError(name, "admins cannot disable themselves")
     if user.active != active:
         _bump(user)
     user.active = active
     record(session=session, actor=actor, action="users.enable" if active else "users.disable",
-           subject=name, details={"at": datetime.now(UTC).isoformat()})
+           subject=user.name, details={"at": datetime.now(UTC).isoformat()})
 
 
 def set_password(*, session: Session, name: str, password: str, actor: str) -> None:
@@ -321,4 +346,4 @@ def set_password(*, session: Session, name: str, password: str, actor: str) -> N
     user = _user(session, name)
     user.password_hash = hash_password(password)
     _bump(user)
-    record(session=session, actor=actor, action="users.password", subject=name)
+    record(session=session, actor=actor, action="users.password", subject=user.name)

@@ -1,4 +1,11 @@
-"""Use case: staff accounts with hashed passwords (scrypt from the standard library)."""
+"""Use case: staff accounts with hashed passwords (scrypt from the standard library).
+
+User names are unique regardless of case: ``Tess.Trainee`` cannot be added beside
+``tess.trainee``, and login and the admin pages find an account whatever the case typed. Names
+are compared by Unicode case folding (:meth:`str.casefold`) in Python rather than with SQL
+``lower()``, which SQLite applies to ASCII only; staff tables are small, so a scan is cheap. The
+exact spelling is stored and shown as it was entered.
+"""
 
 from __future__ import annotations
 
@@ -40,11 +47,33 @@ def verify_password(password: str, stored: str) -> bool:
     return hmac.compare_digest(candidate, base64.b64decode(digest))
 
 
+def name_key(name: str) -> str:
+    """The form of a user name that uniqueness and lookups compare (stripped, case-folded)."""
+    return name.strip().casefold()
+
+
+def find_user(*, session: Session, name: str) -> User | None:
+    """The account called ``name`` in any case, or None.
+
+    An exact match wins (one indexed lookup); otherwise the one account whose name folds to the
+    same key. Should a database made before names were case-insensitive hold two accounts that
+    differ only in case, neither matches a third spelling (None), so nobody is signed in to the
+    wrong account.
+    """
+    exact = session.scalar(select(User).where(User.name == name.strip()))
+    if exact is not None:
+        return exact
+    key = name_key(name)
+    matches = [u for u in session.scalars(select(User)) if name_key(u.name) == key]
+    return matches[0] if len(matches) == 1 else None
+
+
 def add_user(*, session: Session, name: str, role: str, password: str, actor: str = "cli") -> User:
     """Create an account; the password is stored only as a hash and never logged."""
     if role not in ROLES:
         raise UnknownRoleError(role, ROLES)
-    if session.scalar(select(User).where(User.name == name)) is not None:
+    key = name_key(name)
+    if any(name_key(existing) == key for existing in session.scalars(select(User.name))):
         raise DuplicateUserError(name)
     user = User(
         name=name, role=role, password_hash=hash_password(password), active=True,

@@ -187,3 +187,85 @@ def test_keyboard_only_pass_through_public_page(server: str, page: object) -> No
     page.keyboard.press("Enter")
     page.wait_for_url(server + "/district/D05")
     assert page.locator("h1").inner_text() == "Kessanthal"
+
+
+PHONE_PAGES = ["/", "/district/D02", "/staff/", "/staff/review", "/staff/policies",
+               "/staff/users", "/staff/district/D04", "/staff/district/D04/explain",
+               "/staff/district/D04?start=garbage"]
+
+
+def test_nothing_scrolls_sideways_on_a_phone(server: str, browser: object) -> None:
+    context = browser.new_context(viewport={"width": 390, "height": 844}, is_mobile=True)  # type: ignore[attr-defined]
+    pg = context.new_page()
+    sign_in(pg, server, "ines.admin")
+    widths = {}
+    for url in PHONE_PAGES:
+        pg.goto(server + url)
+        widths[url] = pg.evaluate("document.documentElement.scrollWidth")
+    shot(pg, "13-error-page-phone")
+    context.close()
+    assert {url: w for url, w in widths.items() if w > 390} == {}
+
+
+def _pdf_pages(pdf: bytes) -> int:
+    import re
+
+    return len(re.findall(rb"/Type\s*/Page(?![a-z])", pdf))
+
+
+def test_explanations_print_on_one_a4_page(server: str, page: object) -> None:
+    sign_in(page, server, "vic.viewer")
+    pages = {}
+    for n in range(1, 15):
+        code = f"D{n:02d}"
+        page.goto(server + f"/staff/district/{code}/explain")
+        pages[code] = _pdf_pages(page.pdf(format="A4", print_background=True))
+    assert all(count >= 1 for count in pages.values())
+    assert {code: count for code, count in pages.items() if count != 1} == {}
+    # the two columns stay side by side in print (the narrow-screen rule would stack them)
+    page.emulate_media(media="print")
+    columns = page.evaluate(
+        "getComputedStyle(document.querySelector('.two-col'))"
+        ".gridTemplateColumns.split(' ').length")
+    assert columns == 2
+
+
+def test_numbers_are_right_aligned_and_dates_unbroken(server: str, page: object) -> None:
+    page.set_viewport_size({"width": 1400, "height": 900})
+    page.goto(server + "/district/D02")
+    align = page.evaluate("getComputedStyle(document.querySelector('table.grid td.num')).textAlign")
+    assert align == "right"
+    page.goto(server + "/")
+    wraps = page.evaluate("""[...document.querySelectorAll('td.date time')].filter(
+        t => t.getClientRects().length > 1).length""")
+    assert wraps == 0
+
+
+def test_focus_ring_uses_the_checked_colour_and_no_console_errors(
+    server: str, page: object
+) -> None:
+    page.goto(server + "/")
+    page.locator("table a[href='/district/D05']").focus()
+    colour = page.evaluate("getComputedStyle(document.activeElement).outlineColor")
+    assert colour == "rgb(163, 74, 0)"  # --focus, #a34a00
+    page.goto(server + "/district/D05")
+    page.wait_for_load_state("networkidle")
+    assert page.csp_errors == []  # no 404 for a favicon, no CSP complaint
+
+
+def test_two_version_backtest_fits_a_wide_screen(server: str, page: object) -> None:
+    import re
+
+    page.set_viewport_size({"width": 1400, "height": 900})
+    sign_in(page, server, "ines.admin")
+    page.goto(server + "/staff/policies")
+    yaml_text = page.locator("pre.yaml").text_content()  # inside a closed <details>
+    variant = re.sub(r"^version: .*$", 'version: "2031.88"', yaml_text, count=1, flags=re.M)
+    page.fill("#text", variant)
+    with page.expect_navigation(url=re.compile(r".*/staff/policies\?id=\d+$"), timeout=60_000):
+        page.click("button[name=store]")
+    page.click("text=Run backtest")
+    page.wait_for_selector("svg.tier-strip", timeout=240_000)
+    assert page.locator("svg.tier-strip").count() == 2
+    shot(page, "14-backtest-two-versions")
+    assert page.evaluate("document.documentElement.scrollWidth") <= 1400

@@ -116,6 +116,13 @@ def test_public_page_in_german(published: TestClient) -> None:
     text = published.get("/?lang=de").text
     assert '<html lang="de">' in text
     assert "Warnstufen nach Bezirk" in text
+    # tier names and meanings from the policy's German translations (rules/policies/county.yaml)
+    assert "Sehr hoch" in text and "Grundstufe" in text and "Severe" not in text
+    district = published.get("/district/D03?lang=de").text
+    assert "Die Infektionen" in district
+    api = published.get("/api/public/districts", headers={"accept-language": "de"}).json()
+    assert {d["tier_name"] for d in api if d["tier"] is not None} <= {
+        "Grundstufe", "Erhöht", "Hoch", "Sehr hoch"}
 
 
 def test_public_unknown_district_is_404(published: TestClient) -> None:
@@ -227,3 +234,57 @@ def test_public_district_page_labels_the_provisional_week_in_german(
 ) -> None:
     text = published.get("/district/D03?lang=de").text
     assert "vorläufig: Nachmeldungen treffen noch ein" in text
+
+
+def test_public_times_are_shown_in_the_office_zone_with_its_name(published: TestClient) -> None:
+    from datetime import datetime
+
+    from web.app import local_time
+
+    zone = published.app.state.settings.zone  # type: ignore[attr-defined]
+    when = datetime.fromisoformat(published.get("/api/public/districts/D01").json()["published_at"])
+    page = published.get("/district/D01").text
+    assert f'<time datetime="{when.isoformat()}">{local_time(when, zone)}</time>' in page
+    index = published.get("/").text
+    assert "Last published: " + local_time(when, zone)[:10] in index
+
+
+def test_local_time_uses_the_zone_and_names_it() -> None:
+    from datetime import UTC, date, datetime
+    from zoneinfo import ZoneInfo
+
+    from web.app import local_time
+
+    berlin = ZoneInfo("Europe/Berlin")
+    # IANA tz database: Central European Time is UTC+1 in winter and UTC+2 (CEST) from the last
+    # Sunday of March to the last Sunday of October (EU Directive 2000/84/EC).
+    assert local_time(datetime(2026, 11, 30, 5, 30, tzinfo=UTC), berlin) == "2026-11-30 06:30 CET"
+    assert local_time(datetime(2026, 7, 1, 22, 15, tzinfo=UTC), berlin) == "2026-07-02 00:15 CEST"
+    assert local_time(date(2026, 11, 13), berlin) == "2026-11-13"
+    assert local_time(None, berlin) == "—"
+
+
+def test_since_dates_do_not_break(published: TestClient) -> None:
+    page = published.get("/").text
+    assert '<td class="date"><time datetime="' in page
+
+
+@pytest.mark.parametrize("route", ["/", "/district/D01", "/api/public/districts",
+                                   "/api/public/districts/D01"])
+def test_public_pages_answer_head(published: TestClient, route: str) -> None:
+    got, head = published.get(route), published.head(route)
+    assert head.status_code == 200
+    assert head.content == b""
+    assert head.headers["etag"] == got.headers["etag"]
+
+
+def test_favicon_is_ours_and_linked(published: TestClient) -> None:
+    page = published.get("/").text
+    assert '<link rel="icon" type="image/svg+xml" href="' in page
+    icon = published.get("/static/favicon.svg")
+    assert icon.status_code == 200
+    assert icon.headers["content-type"].startswith("image/svg+xml")
+    assert "<title>tierwise</title>" in icon.text
+    legacy = published.get("/favicon.ico", follow_redirects=False)
+    assert legacy.status_code == 301
+    assert legacy.headers["location"] == "/static/favicon.svg"
