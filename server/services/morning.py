@@ -188,6 +188,7 @@ class _Review:
     tier_counts: Mapping[int, int]
     pending: int
     decided: int
+    published: tuple[Change, ...] = ()
 
 
 _CACHE: dict[tuple[object, ...], _Base] = {}
@@ -195,7 +196,43 @@ _REVIEW: dict[tuple[object, ...], _Review] = {}
 _LOCK = threading.Lock()
 
 
-def _review_state(session: Session, key: tuple[object, ...], base: _Base) -> _Review:
+def _published_changes(
+    session: Session, base: _Base, since: datetime | None, ruleset: Ruleset | None
+) -> tuple[Change, ...]:
+    """Districts whose published official tier changed after ``since`` (the previous morning).
+
+    The official tier is the published decision with the latest effective date (ties: the later
+    decision), as in :func:`server.services.review.official_tiers`."""
+    if since is None or ruleset is None:
+        return ()
+    names = {line.code: line.name for line in base.lines}
+    name = ruleset.tier_name
+    rows = session.execute(
+        select(Region.code, Decision.tier, Decision.published_at)
+        .join(Region, Region.id == Decision.region_id)
+        .where(Decision.published_at.is_not(None))
+        .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
+    ).all()
+    before: dict[str, int] = {}
+    after: dict[str, int] = {}
+    for code, tier, published_at in rows:
+        after[code] = tier
+        if published_at is not None and published_at.astimezone(UTC) <= since:
+            before[code] = tier
+    return tuple(
+        Change(code=code, name=names.get(code, code), what=(
+            f"official tier published: {name(before[code])} ({before[code]}) to {name(tier)} "
+            f"({tier})" if code in before
+            else f"official tier first published: {name(tier)} ({tier})"
+        ))
+        for code, tier in sorted(after.items()) if before.get(code) != tier
+    )
+
+
+def _review_state(
+    session: Session, key: tuple[object, ...], base: _Base, since: datetime | None = None,
+    ruleset: Ruleset | None = None,
+) -> _Review:
     """The lines with official tiers and pending changes, rebuilt only when decisions or
     assessments change.
 
@@ -229,7 +266,8 @@ def _review_state(session: Session, key: tuple[object, ...], base: _Base) -> _Re
             if off is not None:
                 counts[off.tier] = counts.get(off.tier, 0) + 1
         hit = _Review(lines=tuple(lines), tier_counts=counts, pending=len(pending),
-                      decided=sum(1 for line in lines if line.decided_tier is not None))
+                      decided=sum(1 for line in lines if line.decided_tier is not None),
+                      published=_published_changes(session, base, since, ruleset))
         with _LOCK:
             _REVIEW.clear()
             _REVIEW[stamp] = hit
@@ -470,7 +508,9 @@ def morning_overview(
         with _LOCK:
             _CACHE.clear()
             _CACHE[key] = base
-    review = _review_state(session, key, base)
+    # publications since the previous morning's data count as changes too
+    review = _review_state(session, key, base, cutoff - timedelta(days=1) if cutoff else None,
+                           ruleset)
     lines = review.lines
     chosen = [
         line for line in lines
@@ -486,7 +526,8 @@ def morning_overview(
         lines=tuple(chosen[(page - 1) * per_page: page * per_page]), total=len(chosen),
         page=page, pages=pages, pending=review.pending, decided=review.decided,
         tier_counts=review.tier_counts,
-        tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds, changes=base.changes,
+        tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds,
+        changes=base.changes + review.published,
         every=tuple(lines), data_on_hand=on_hand, data_on_hand_key=on_hand_key,
         measures=measures,
     )

@@ -6,6 +6,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
+from sqlalchemy import update
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import load_feeds
@@ -13,6 +14,7 @@ from server.services.evaluation import latest_assessment_rows
 from server.services.feeds import feed_statuses
 from server.services.morning import morning_overview
 from server.services.review import decide, publish
+from server.store.models import Decision
 
 pytestmark = pytest.mark.slow
 APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
@@ -63,3 +65,34 @@ def test_overview_counts_a_decided_unpublished_district_apart(demo_session: Sess
     line = next(x for x in view.every if x.code == "D01")
     assert (line.decided_tier, line.pending, view.decided) == (other, False, 1)
     assert line.official_tier == item.assessment.recommended_tier  # published one still in force
+
+
+def test_publications_since_the_previous_morning_are_listed_as_changes(
+    demo_session: Session,
+) -> None:
+    # the demo's data cutoff is 2026-12-01 05:30 UTC; publications after 2026-11-30 05:30 count
+    assert not [c for c in morning_overview(session=demo_session, now=NOW).changes
+                if "official tier" in c.what]
+    publish(session=demo_session, user=APPROVER)  # first publication: every district
+    first = [c for c in morning_overview(session=demo_session, now=NOW).changes
+             if "official tier" in c.what]
+    assert len(first) == 14 and all("first published" in c.what for c in first)
+    # move that first publication before the previous morning: no longer a change
+    demo_session.execute(update(Decision).values(
+        published_at=datetime(2026, 11, 29, 14, 0, tzinfo=UTC)))
+    assert not [c for c in morning_overview(session=demo_session, now=NOW).changes
+                if "official tier" in c.what]
+    row = latest_assessment_rows(session=demo_session)
+    assert row is not None
+    item = next(i for i in row.items if i.code == "D03")
+    old = item.assessment.recommended_tier
+    other = (old + 1) % 4
+    decide(session=demo_session, assessment_id=item.assessment.id, user=APPROVER, accept=False,
+           tier=other, reason="invented override for the test")
+    publish(session=demo_session, user=APPROVER)
+    changes = {c.code: c.what for c in morning_overview(session=demo_session, now=NOW).changes
+               if "official tier" in c.what}
+    assert set(changes) == {"D03"}
+    assert changes["D03"].startswith("official tier published: ")
+    # the first publication started D03 from its recommendation; the override moved it
+    assert f"({old}) to " in changes["D03"] and changes["D03"].endswith(f"({other})")
