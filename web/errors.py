@@ -21,6 +21,7 @@ from fastapi.responses import JSONResponse, RedirectResponse, Response
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from server.services.errors import ServiceError
+from server.services.feeds import FeedConfigError
 from web.deps import LoginRequired
 from web.templating import render
 
@@ -113,6 +114,11 @@ def install_error_handlers(app: FastAPI) -> None:
     async def _service(request: Request, exc: ServiceError) -> Response:
         status = 404 if isinstance(exc, LookupError) else 422
         return _page(request, status, str(exc))
+
+    @app.exception_handler(FeedConfigError)
+    async def _feeds_file(request: Request, exc: FeedConfigError) -> Response:
+        # the feed file was edited into an invalid state while the server runs: say where
+        return _page(request, 503, f"The feed definition file is invalid: {exc}")
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: HTTPException) -> Response:

@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
+import threading
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta
@@ -33,6 +34,7 @@ from server.feeds.definition import (
     HttpSource,
     load_feeds,
 )
+from server.feeds.errors import FeedConfigError as FeedConfigError  # for the web's handler
 from server.feeds.errors import FeedFileError, FetchError
 from server.feeds.sources import Payload, RetryPolicy, fetch, move_aside, pending_files
 from server.services.audit import record
@@ -70,12 +72,33 @@ def feeds_file(settings: Settings) -> Path | None:
     return settings.feeds_file
 
 
+_CATALOGUES: dict[Path, tuple[str, FeedCatalogue]] = {}
+_CATALOGUE_LOCK = threading.Lock()
+
+
 def load_catalogue(settings: Settings) -> FeedCatalogue:
-    """The configured feeds (an empty catalogue when no feed file is configured)."""
+    """The configured feeds (an empty catalogue when no feed file is configured).
+
+    Parsed once per content of the file (its SHA-256; reading a small file is cheap, parsing it
+    is not): pages that show feed health call this on every request, and an edited file is
+    picked up on the next one. A file that no longer parses raises
+    :class:`~server.feeds.errors.FeedConfigError` each time.
+    """
     path = feeds_file(settings)
     if path is None:
         return FeedCatalogue(path="", feeds={})
-    return load_feeds(path)
+    try:
+        version = hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:
+        return load_feeds(path)  # reports the file as unreadable, with its name
+    with _CATALOGUE_LOCK:
+        hit = _CATALOGUES.get(path)
+    if hit is not None and hit[0] == version:
+        return hit[1]
+    catalogue = load_feeds(path)
+    with _CATALOGUE_LOCK:
+        _CATALOGUES[path] = (version, catalogue)
+    return catalogue
 
 
 def feed_named(catalogue: FeedCatalogue, name: str) -> FeedDefinition:

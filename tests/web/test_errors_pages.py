@@ -4,11 +4,13 @@ inside the staff layout with a link back to the area, the JSON API keeps JSON.""
 from __future__ import annotations
 
 import html
+from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
 
-from tests.web.conftest import csrf_of, login
+from tests.web.conftest import copy_demo, csrf_of, login, settings_for
+from web.app import create_app
 from web.errors import back_link
 
 
@@ -91,3 +93,22 @@ def test_public_error_keeps_public_layout(client: TestClient) -> None:
 ])
 def test_back_link_goes_to_the_area(path: str, target: str) -> None:
     assert back_link(path)[0] == target
+
+
+
+def test_a_feed_file_broken_while_serving_gives_a_page_naming_it(
+    demo_file: Path, tmp_path: Path
+) -> None:
+    feeds = tmp_path / "feeds.yaml"
+    feeds.write_text(
+        "feeds:\n  - name: long-csv\n    source: {kind: push}\n    measures: [cases]\n"
+    )
+    db = copy_demo(demo_file, tmp_path / "demo.db")
+    with TestClient(create_app(settings_for(db, feeds_file=feeds))) as client:
+        login(client, "ada.analyst")
+        assert client.get("/staff/feeds").status_code == 200
+        feeds.write_text("feeds:\n  - name: long-csv\n    source: {kind: nowhere}\n")
+        answer = client.get("/staff/")
+    assert answer.status_code == 503
+    assert "The feed definition file is invalid" in html.unescape(answer.text)
+    assert "feeds.yaml" in answer.text
