@@ -42,7 +42,14 @@ from sqlalchemy.orm import Session
 
 from server.services.audit import record
 from server.services.errors import ServiceError, UnknownRoleError
-from server.services.users import ROLES, add_user, find_user, hash_password, verify_password
+from server.services.users import (
+    ROLES,
+    add_user,
+    find_user,
+    hash_password,
+    name_key,
+    verify_password,
+)
 from server.store.models import User
 
 __all__ = [
@@ -179,7 +186,7 @@ def authenticate(
     dummy hash when there is no such user), so the answer's timing does not tell which names
     exist.
     """
-    keys = (f"client:{client}", f"user:{name.strip().casefold()}")
+    keys = (f"client:{client}", f"user:{name_key(name)}")
     for key in keys:
         limiter.check(key)
     user = find_user(session=session, name=name)

@@ -34,6 +34,7 @@ from rules import parse_ruleset
 from server.services.audit import record
 from server.services.errors import InputFileError
 from server.services.evaluation import active_ruleset
+from server.services.users import name_key
 from server.store.models import Decision, Region, User
 
 __all__ = [
@@ -192,7 +193,11 @@ def import_official_history(
     regions = dict(session.execute(
         select(Region.code, Region.id).where(Region.level == "district")
     ).all())
-    users = dict(session.execute(select(User.name, User.id).where(User.active.is_(True))).all())
+    # staff names match in any case, as at login (server.services.users.name_key)
+    users = {
+        name_key(name): uid
+        for name, uid in session.execute(select(User.name, User.id).where(User.active.is_(True)))
+    }
     for item in items:
         if item.region not in regions:
             raise InputFileError(source, f"line {item.line}, region",
@@ -201,7 +206,7 @@ def import_official_history(
             span = f"0..{top}" if top is not None else "0 or more"
             raise InputFileError(source, f"line {item.line}, tier",
                                  f"{item.tier} is not a tier ({span})")
-        if item.decided_by is not None and item.decided_by not in users:
+        if item.decided_by is not None and name_key(item.decided_by) not in users:
             raise InputFileError(source, f"line {item.line}, decided_by",
                                  f"{item.decided_by!r} is not an active staff account")
         if not item.reason:
@@ -221,7 +226,7 @@ def import_official_history(
         session.add(Decision(
             region_id=regions[item.region], assessment_id=None,
             effective_date=item.effective_date, tier=item.tier, kind=KIND, reason=item.reason,
-            decided_by=users.get(item.decided_by) if item.decided_by else None,
+            decided_by=users.get(name_key(item.decided_by)) if item.decided_by else None,
             decided_at=item.decided_at, published_at=item.decided_at if published else None,
         ))
     days = [i.effective_date for i in new]

@@ -19,7 +19,6 @@ activated.
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from typing import Any
@@ -28,9 +27,10 @@ import numpy as np
 from sqlalchemy import Select, func, select, type_coerce
 from sqlalchemy.orm import Session, aliased
 
-from rules import Ruleset, parse_ruleset
+from rules import Ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
+from server.services.policies import parsed
 from server.services.review import OfficialTier, official_tiers
 from server.store import read_dense
 from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage
@@ -154,20 +154,9 @@ def public_stamp(*, session: Session) -> PublicStamp:
                        last_modified=changed)
 
 
-_RULESETS: dict[str, Ruleset] = {}
-_LOCK = threading.Lock()
-
-
 def _ruleset(session: Session) -> Ruleset | None:
     row = active_ruleset(session=session)
-    if row is None:
-        return None
-    with _LOCK:
-        ruleset = _RULESETS.get(row.sha256)
-        if ruleset is None:
-            ruleset = parse_ruleset(row.yaml_text, source=row.name)
-            _RULESETS[row.sha256] = ruleset
-    return ruleset
+    return None if row is None else parsed(row)
 
 
 def _tiers(ruleset: Ruleset | None, lang: str | None) -> tuple[TierInfo, ...]:

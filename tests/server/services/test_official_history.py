@@ -26,7 +26,7 @@ pytestmark = pytest.mark.slow
 
 GOOD = (
     "region,effective_date,tier,reason,decided_by,decided_at\n"
-    "D01,2026-08-01,1,Weekly review: step up agreed,otto.approver,2026-07-31T14:00:00+00:00\n"
+    "D01,2026-08-01,1,Weekly review: step up agreed,Otto.Approver,2026-07-31T14:00:00+00:00\n"
     "D01,2026-09-01,2,\"Weekly review: step up, agreed by phone\",,\n"
     "D02,2026-08-15,0,Baseline since the spring,,2026-08-14T09:30:00Z\n"
 )
@@ -48,7 +48,7 @@ def test_reads_required_and_optional_columns(tmp_path: Path) -> None:
         (2, "D01", date(2026, 8, 1), 1), (3, "D01", date(2026, 9, 1), 2),
         (4, "D02", date(2026, 8, 15), 0),
     ]
-    assert records[0].decided_by == "otto.approver"
+    assert records[0].decided_by == "Otto.Approver"  # matched in any case on import
     assert records[1].decided_by is None
     assert records[1].reason == "Weekly review: step up, agreed by phone"
     # no decided_at: midnight UTC of the effective date; "Z" is read as UTC
