@@ -256,7 +256,7 @@ def evaluate(
     cond_enter = np.where(lv.cond_inactive, 0, lv.cond_enter_level).astype(np.int8, copy=False)
     cond_exit = np.where(lv.cond_inactive, 0, lv.cond_exit_level).astype(np.int8, copy=False)
     unknown = ~lv.known
-    all_ok = ok_t.all(axis=1)
+    all_ok = np.asarray(ok_t.all(axis=1))  # an array, also to the type checker
     levels_out = np.empty((n_d, n_c, n_r), dtype=np.int8)
     above_out = np.empty((n_d, n_c, n_r), dtype=np.int32)
     below_out = np.empty((n_d, n_c, n_r), dtype=np.int32)

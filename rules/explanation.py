@@ -2,18 +2,28 @@
 
 An :class:`Explanation` has a JSON-ready ``data`` dict (which criteria, values and bounds,
 thresholds, counters, gates, signals, and what held a change back) and a plain ``sentence``. The
-sentence speaks of the tier *in force* on the day:
+sentence speaks of the tier *in force* on the day and names every tier by the ruleset's name with
+its number (:meth:`~rules.ruleset.Ruleset.tier_name`), as the pages do:
 
-* the day a move takes effect: "Raised from 1 to 2 on 2031-05-14: 7-day incidence 162 (148–177)
-  per 100 000 over the enter threshold 150 for 3 of 3 days; positivity 8.1% under 10% (decided on
-  2031-05-13)." The criteria are described as they stood on the day of the decision;
-* a day a move is decided but not yet in force: "Held at 1: raise to 2 decided on 2031-05-13, in
-  force from 2031-05-14: ...";
-* a day a move is held back: "Held at 2: 9 of 14 release days so far (...)", "Held at 2: 3 of 7
-  minimum days in tier (...)", "Held at 0: 2 of 3 confirmation days so far for tier 1 (...)",
-  "Held at 2: wastewater data 5 days old.";
-* otherwise "Stays at k: ..." with the criteria that hold tier k first ("over the enter threshold",
-  or "held above the exit threshold" inside the hysteresis band), then the others.
+* the day a move takes effect: "Raised from Heightened (1) to High (2) on 2031-05-14: 7-day
+  incidence 162 (148–177) per 100 000 over the enter threshold 150 for 3 of 3 days; positivity
+  8.1% under 10% (decided on 2031-05-13)." The criteria are described as they stood on the day of
+  the decision; a fall reads "Lowered from High (2) to Heightened (1) on ...", with "(at most 1
+  step(s) down at once; candidate Baseline (0))" when the step limit cut it short;
+* a day a move is decided but not yet in force: "Held at Heightened (1): raise to High (2) decided
+  on 2031-05-13, in force from 2031-05-14: ..." ("lowering to ..." for a fall);
+* a day a move is held back: "Held at High (2): 9 of 14 release days so far (...)", "Held at
+  High (2): 3 of 7 minimum days in tier (...)", "Held at Baseline (0): 2 of 3 confirmation days
+  so far for Heightened (1) (...)", "Held at High (2): wastewater data 5 days old.";
+* otherwise "Stays at Severe (3): ..." with the criteria that hold the tier first ("over the enter
+  threshold", or "held above the exit threshold" inside the hysteresis band), then the others
+  ("under 150", or ", at its top tier Heightened (1)" for one that cannot reach the tier);
+* a day a gate fails (tier -1, named by no number): "Insufficient data on 2031-05-14: tests 100
+  per 100 000, needs at least 150 per 100 000."
+
+A threshold of the tier the sentence is about is "the enter threshold 150"; one of another tier
+names that tier: "the High (2) enter threshold 150". Unknown criteria follow "Unknown:", active
+prepare signals "Prepare:".
 """
 
 from __future__ import annotations
@@ -143,6 +153,11 @@ def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
 
 
+def _tier(ev: Evaluation, level: int) -> str:
+    """A tier as the sentences name it: its name from the ruleset and its number, "High (2)"."""
+    return f"{ev.ruleset.tier_name(level)} ({level})"
+
+
 def _days(k: int, n: int | None) -> str:
     return f" for {k} of {n} days" if n is not None and k <= n else f" for {k} days"
 
@@ -152,8 +167,9 @@ def _describe(
 ) -> str:
     """One criterion relative to the tier ``tier`` held (see the module docstring).
 
-    Thresholds of tier ``named`` are written without their tier number; ``counter`` is the
-    period the day counts are shown against (confirmation or release days).
+    Thresholds of tier ``named`` are written without their tier, those of other tiers with it
+    ("the High (2) enter threshold 150"); ``counter`` is the period the day counts are shown
+    against (confirmation or release days).
     """
     spec = ev.ruleset.indicator(item["indicator"])
     head = f"{item['label']} {_value_text(spec, item)}"
@@ -167,7 +183,7 @@ def _describe(
 
     def name(kind: str, k: int) -> str:
         thr = _threshold(ev, item, kind, k)
-        label = "" if k == named else f"tier-{k} "
+        label = "" if k == named else f"{_tier(ev, k)} "
         return f"the {label}{kind} threshold {_thr_text(ev, item, thr or 0.0)}"
 
     if level > tier:
@@ -175,7 +191,7 @@ def _describe(
     if level < tier:
         thr = _threshold(ev, item, "exit", tier)
         if thr is None:  # the criterion cannot reach this tier at all
-            return f"{head}, at its top tier {level}" if level else head
+            return f"{head}, at its top tier {_tier(ev, level)}" if level else head
         word = (", upper bound " if rising else ", lower bound ") + under if bound else f" {under}"
         return f"{head}{word} {name('exit', tier)}" + _days(item["below_days"], counter)
     if level >= 1:
@@ -264,7 +280,7 @@ def _move(ev: Evaluation, r: int, dd: int, previous: int, new: int) -> tuple[str
             for it in _ordered(items, new)
             if it["level"] < new and it["status"] == "ok"
         ]
-        text = "; ".join(drivers) or f"candidate {new}"
+        text = "; ".join(drivers) or f"candidate {_tier(ev, new)}"
         return "raised", text + ("; " + "; ".join(others) if others else "")
     below = sorted(
         (it for it in _ordered(items, previous) if it["level"] < previous),
@@ -273,11 +289,14 @@ def _move(ev: Evaluation, r: int, dd: int, previous: int, new: int) -> tuple[str
     released = [
         _describe(ev, it, previous, named=previous, counter=timing.release_days) for it in below
     ]
-    text = "; ".join(released) or f"candidate {new}"
+    text = "; ".join(released) or f"candidate {_tier(ev, new)}"
     if timing.max_steps_down is not None and previous - new == timing.max_steps_down:
         cand = int(ev.candidate[r, dd])
         if cand < new:
-            text += f" (at most {timing.max_steps_down} step(s) down at once; candidate {cand})"
+            text += (
+                f" (at most {timing.max_steps_down} step(s) down at once; "
+                f"candidate {_tier(ev, cand)})"
+            )
     return "lowered", text
 
 
@@ -293,7 +312,8 @@ def _held(ev: Evaluation, r: int, d: int, tier: int, items: list[dict[str, Any]]
             if it["level"] > tier
         ]
         held_by.append(
-            f"{int(ev.up[r, d])} of {timing.confirm_days} confirmation days so far for tier {cand}"
+            f"{int(ev.up[r, d])} of {timing.confirm_days} confirmation days so far for "
+            f"{_tier(ev, cand)}"
             + (f" ({'; '.join(push)})" if push else "")
         )
     elif cand < tier:
@@ -364,7 +384,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
             action = "raised" if tier > previous else "lowered"
             text = "decided before this period"
         verb = "Raised" if action == "raised" else "Lowered"
-        sentence = f"{verb} from {previous} to {tier} on {date}: {text}"
+        sentence = f"{verb} from {_tier(ev, previous)} to {_tier(ev, tier)} on {date}: {text}"
         if delay and decided_on is not None:
             sentence += f" (decided on {decided_on})"
     elif (k := _pending(ev, r, d)) is not None and int(ev.decided[r, d]) != tier and delay:
@@ -375,18 +395,19 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         action = "decided"
         word = "raise" if decided > tier else "lowering"
         when = "today" if k == d else f"on {decided_on}"
-        sentence = f"Held at {tier}: {word} to {decided} decided {when}, in force from {effective}"
+        to = f"{word} to {_tier(ev, decided)}"
+        sentence = f"Held at {_tier(ev, tier)}: {to} decided {when}, in force from {effective}"
         sentence += f": {text}"
-        held_by.append(f"{word} to {decided} in force from {effective}")
+        held_by.append(f"{to} in force from {effective}")
     else:
         held_by = _held(ev, r, d, decided, items)
         mentioned_unknown = any("data" in h or "nowcast" in h for h in held_by)
         action = "held" if held_by else "unchanged"
         if held_by:
-            sentence = f"Held at {decided}: " + "; ".join(held_by)
+            sentence = f"Held at {_tier(ev, decided)}: " + "; ".join(held_by)
         else:
             shown = [_describe(ev, it, decided, named=decided) for it in _ordered(items, decided)]
-            sentence = f"Stays at {decided}" + (": " + "; ".join(shown) if shown else "")
+            sentence = f"Stays at {_tier(ev, decided)}" + (": " + "; ".join(shown) if shown else "")
     if action != "insufficient":
         sentence += "."
         if unknown and not mentioned_unknown:

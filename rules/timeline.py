@@ -61,7 +61,7 @@ class TimelineSummary:
     @property
     def tier_shares(self) -> tuple[float, ...]:
         """Share of region-days in insufficient data, then each tier 0..N."""
-        total = np.sum([r.days_in_tier for r in self.regions], axis=0, dtype=np.float64)
+        total = np.asarray(np.sum([r.days_in_tier for r in self.regions], axis=0, dtype=np.float64))
         s = total.sum()
         return tuple(float(x) for x in (total / s if s else total))
 
@@ -116,7 +116,7 @@ def summarise_timeline(
     up[:, 1:] = change[:, 1:] & (t[:, 1:] > t[:, :-1])
     onset = p.copy()
     onset[:, :, 1:] &= ~p[:, :, :-1]
-    any_onset = onset.any(axis=0)  # (regions, days)
+    any_onset = np.asarray(onset.any(axis=0))  # (regions, days)
     counts = np.stack([(t == k).sum(axis=1) for k in range(-1, n_tiers)], axis=1)
     out = []
     for r in range(n_r):  # summary only (not a hot path): a few changes per region

@@ -85,14 +85,14 @@ def test_evaluate_stale_criterion_never_raises() -> None:
 def test_evaluate_stale_explanation_names_age() -> None:
     age = np.array([[0, 5]], dtype=float)
     ev = _run(_rules(), [160, 10], [0, 0], age_days=age)
-    assert ev.explain(0, 1).sentence == "Held at 2: wastewater data 5 days old."
+    assert ev.explain(0, 1).sentence == "Held at Hectic (2): wastewater data 5 days old."
 
 
 def test_evaluate_confirmation_days_before_rise() -> None:
     ev = _run(_rules(confirm=3), [60, 60, 60, 60], [0] * 4)
     assert_array_equal(ev.tier[0], [0, 0, 1, 1])
     assert ev.explain(0, 1).sentence.startswith(
-        "Held at 0: 2 of 3 confirmation days so far for tier 1 (7-day incidence 60"
+        "Held at Calm (0): 2 of 3 confirmation days so far for Busy (1) (7-day incidence 60"
     )
 
 
@@ -100,8 +100,8 @@ def test_evaluate_release_days_and_explanation() -> None:
     ev = _run(_rules(release=3), [60, 10, 10, 10], [0] * 4)
     assert_array_equal(ev.tier[0], [1, 1, 1, 0])
     assert ev.explain(0, 2).sentence == (
-        "Held at 1: 2 of 3 release days so far (7-day incidence 10 per 100 000 under the exit "
-        "threshold 40 for 2 days; wastewater 0.0 under the exit threshold 1 for 2 days)."
+        "Held at Busy (1): 2 of 3 release days so far (7-day incidence 10 per 100 000 under the "
+        "exit threshold 40 for 2 days; wastewater 0.0 under the exit threshold 1 for 2 days)."
     )
 
 
@@ -113,6 +113,10 @@ def test_evaluate_minimum_days_in_tier() -> None:
 def test_evaluate_max_steps_down() -> None:
     ev = _run(_rules(steps="1"), [200, 10, 10], [0] * 3)
     assert_array_equal(ev.tier[0], [2, 1, 0])
+    # day 1: candidate 0 (10 < exit 40), one step down at most: Hectic (2) -> Busy (1)
+    assert ev.explain(0, 1).sentence.endswith(
+        "(at most 1 step(s) down at once; candidate Calm (0))."
+    )
 
 
 def test_evaluate_rise_goes_to_sustained_level() -> None:
@@ -124,8 +128,8 @@ def test_evaluate_rise_goes_to_sustained_level() -> None:
 def test_evaluate_raised_sentence_names_values_and_thresholds() -> None:
     ev = _run(_rules(), [162, 162], [1.5, 1.5])
     assert ev.explain(0, 0).sentence == (
-        "Raised from 0 to 2 on 2031-03-10: 7-day incidence 162 per 100 000 over the enter "
-        "threshold 150 for 1 of 1 days; wastewater 1.5 under 4."
+        "Raised from Calm (0) to Hectic (2) on 2031-03-10: 7-day incidence 162 per 100 000 over "
+        "the enter threshold 150 for 1 of 1 days; wastewater 1.5 under 4."
     )
 
 

@@ -3,7 +3,9 @@
 The expected sentences follow the forms the rules issue (issue 5) asks for: "Raised from 1 to 2 on
 <date>: <criterion> over the enter threshold <t> for 3 of 3 days; <other> under <t>.", "Held at 2:
 9 of 14 release days so far", and the hysteresis band of DESIGN.md ("a tier already held is kept
-while its exit threshold is still met"). Each case is worked by hand in its comment.
+while its exit threshold is still met"). After a user trial found bare tier numbers hard to read,
+every tier is named by the ruleset's name with its number ("Raised from Baseline (0) to High (2)",
+"the Heightened (1) enter threshold 2"). Each case is worked by hand in its comment.
 """
 
 from __future__ import annotations
@@ -18,10 +20,10 @@ RULES = """\
 name: sentences
 version: "1"
 tiers:
-  - {name: T0, staff: s, public: p}
-  - {name: T1, staff: s, public: p}
-  - {name: T2, staff: s, public: p}
-  - {name: T3, staff: s, public: p}
+  - {name: Baseline, staff: s, public: p}
+  - {name: Heightened, staff: s, public: p}
+  - {name: High, staff: s, public: p}
+  - {name: Severe, staff: s, public: p}
 indicators:
   incidence_7d: {label: 7-day incidence, unit: per 100 000, decimals: 0}
   ww: {label: wastewater, decimals: 1}
@@ -48,23 +50,24 @@ def test_explain_change_day_says_raised_with_the_decision_basis() -> None:
     ev = _run([10, 160, 170, 170, 170])
     assert_array_equal(ev.tier[0], [0, 0, 0, 2, 2])
     assert ev.explain(0, 3).sentence == (
-        "Raised from 0 to 2 on 2031-03-13: 7-day incidence 170 per 100 000 over the enter "
-        "threshold 150 for 2 of 2 days; wastewater 0.0 under 4 (decided on 2031-03-12)."
+        "Raised from Baseline (0) to High (2) on 2031-03-13: 7-day incidence 170 per 100 000 over "
+        "the enter threshold 150 for 2 of 2 days; wastewater 0.0 under 4 (decided on 2031-03-12)."
     )
 
 
 def test_explain_decision_day_holds_until_in_force() -> None:
     ev = _run([10, 160, 170, 170, 170])
     assert ev.explain(0, 2).sentence == (
-        "Held at 0: raise to 2 decided today, in force from 2031-03-13: 7-day incidence 170 per "
-        "100 000 over the enter threshold 150 for 2 of 2 days; wastewater 0.0 under 4."
+        "Held at Baseline (0): raise to High (2) decided today, in force from 2031-03-13: 7-day "
+        "incidence 170 per 100 000 over the enter threshold 150 for 2 of 2 days; wastewater 0.0 "
+        "under 4."
     )
 
 
 def test_explain_day_after_change_stays() -> None:
     ev = _run([10, 160, 170, 170, 170])
     assert ev.explain(0, 4).sentence.startswith(
-        "Stays at 2: 7-day incidence 170 per 100 000 over the enter threshold 150;"
+        "Stays at High (2): 7-day incidence 170 per 100 000 over the enter threshold 150;"
     )
 
 
@@ -73,7 +76,7 @@ def test_explain_band_says_held_above_the_exit_threshold() -> None:
     ev = _run([320, 320, 320, 260])
     assert int(ev.tier[0, 3]) == 3
     assert ev.explain(0, 3).sentence.startswith(
-        "Stays at 3: 7-day incidence 260 per 100 000 held above the exit threshold 250;"
+        "Stays at Severe (3): 7-day incidence 260 per 100 000 held above the exit threshold 250;"
     )
 
 
@@ -86,8 +89,8 @@ def test_explain_release_days_so_far_with_the_criterion_counter() -> None:
     # tier 2 from day 2; 100 < exit 120 from day 3: 2 of 3 release days on day 4
     ev = _run([160, 160, 160, 100, 100, 100, 100])
     assert ev.explain(0, 4).sentence.startswith(
-        "Held at 2: 2 of 3 release days so far (7-day incidence 100 per 100 000 under the exit "
-        "threshold 120 for 2 days;"
+        "Held at High (2): 2 of 3 release days so far (7-day incidence 100 per 100 000 under the "
+        "exit threshold 120 for 2 days;"
     )
 
 
@@ -95,7 +98,7 @@ def test_explain_minimum_days_in_tier_holds_after_release_days() -> None:
     # decided 2 on day 1 (since 0); release met on day 4 (3 of 3) but since = 3 < 5
     ev = _run([160, 160, 100, 100, 100, 100, 100, 100], min_days=5)
     assert ev.explain(0, 4).sentence == (
-        "Held at 2: 3 of 5 minimum days in tier (3 of 3 release days met)."
+        "Held at High (2): 3 of 5 minimum days in tier (3 of 3 release days met)."
     )
 
 
@@ -105,8 +108,9 @@ def test_explain_lowered_names_the_last_released_criterion_first() -> None:
     ev = _run([160, 160, 100, 100, 100, 100, 100, 100], [5, 5, 5, 0.5, 0.5, 0.5, 0.5, 0.5])
     changed = int(np.flatnonzero(np.diff(ev.tier[0]) < 0)[0]) + 1
     assert ev.explain(0, changed).sentence.startswith(
-        f"Lowered from 2 to 1 on {ev.dates[changed]}: wastewater 0.5 under the exit threshold 3 "
-        "for 3 of 3 days; 7-day incidence 100 per 100 000 under the exit threshold 120 for 4"
+        f"Lowered from High (2) to Heightened (1) on {ev.dates[changed]}: wastewater 0.5 under the "
+        "exit threshold 3 for 3 of 3 days; 7-day incidence 100 per 100 000 under the exit "
+        "threshold 120 for 4"
     )
 
 
@@ -138,3 +142,46 @@ def test_a_tier_the_policy_leaves_null_is_shown_as_none_but_sentences_use_the_ju
     assert (ww["enter"], ww["exit"]) == ([None, 4.0, 6.0], [None, 3.0, 5.0])
     # before the rise, ww is short of tier 1 by the threshold that actually applies (4)
     assert "wastewater 0.5 under 4" in ev.explain(0, 0).sentence
+
+
+def test_explain_names_the_threshold_of_another_tier_by_the_tier() -> None:
+    # day 1: incidence 160 > 150 (level 2), ww 2.5 > 2 (level 1); tier 0 held, candidate 2 on its
+    # 1st of 2 confirmation days. ww's threshold is not that of the candidate tier, so it is named
+    ev = _run([10, 160, 160, 160], [0, 2.5, 2.5, 2.5])
+    assert ev.explain(0, 1).sentence == (
+        "Held at Baseline (0): 1 of 2 confirmation days so far for High (2) (7-day incidence 160 "
+        "per 100 000 over the enter threshold 150 for 1 days; wastewater 2.5 over the "
+        "Heightened (1) enter threshold 2 for 1 days)."
+    )
+    assert "tier-" not in ev.explain(0, 1).sentence
+
+
+def test_explain_names_the_top_tier_a_criterion_can_reach() -> None:
+    # ww names tier 1 only (trailing nulls: rules.model.Thresholds); incidence 160 holds tier 2
+    rules = RULES.replace("enter: [2, 4, 6], exit: [1, 3, 5]",
+                          "enter: [2, null, null], exit: [1, null, null]")
+    rs = parse_ruleset(rules.replace("MIN", "0"))
+    ind = {
+        "incidence_7d": IndicatorSeries(estimate=np.array([[160.0] * 4])),
+        "ww": IndicatorSeries(estimate=np.array([[2.5] * 4])),
+    }
+    ev = evaluate(rs, ind, regions=["r"], dates=np.arange(4) + np.datetime64("2031-03-10"))
+    assert_array_equal(ev.tier[0], [0, 0, 2, 2])
+    assert ev.explain(0, 3).sentence == (
+        "Stays at High (2): 7-day incidence 160 per 100 000 over the enter threshold 150; "
+        "wastewater 2.5, at its top tier Heightened (1)."
+    )
+
+
+def test_explain_pending_lowering_names_both_tiers_in_sentence_and_held_by() -> None:
+    # 100 < exit 120 from day 3: 3 of 3 release days on day 5, decided 1 that day (100 > 50),
+    # in force from day 6 (2031-03-16)
+    ev = _run([160, 160, 160, 100, 100, 100, 100, 100])
+    assert_array_equal(ev.tier[0], [0, 0, 2, 2, 2, 2, 1, 1])
+    e = ev.explain(0, 5)
+    assert e.sentence.startswith(
+        "Held at High (2): lowering to Heightened (1) decided today, in force from 2031-03-16: "
+        "7-day incidence 100 per 100 000 under the exit threshold 120 for 3 of 3 days;"
+    )
+    assert e.data["held_by"] == ["lowering to Heightened (1) in force from 2031-03-16"]
+    assert (e.data["tier"], e.data["tier_name"], e.data["decided"]) == (2, "High", 1)
