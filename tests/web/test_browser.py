@@ -95,7 +95,7 @@ def sign_in(pg: object, base: str, name: str) -> None:
     pg.goto(base + "/staff/")  # type: ignore[attr-defined]
     pg.fill("#name", name)  # type: ignore[attr-defined]
     pg.fill("#password", PASSWORDS[name])  # type: ignore[attr-defined]
-    pg.click("button[type=submit]")  # type: ignore[attr-defined]
+    pg.click("form.login button[type=submit]")  # type: ignore[attr-defined]
     pg.wait_for_url(base + "/staff/")  # type: ignore[attr-defined]
 
 
