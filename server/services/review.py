@@ -524,6 +524,9 @@ def _published_events(
 def _first_publications(session: Session) -> list[LatestItem]:
     """Current items of districts never decided that a publication would start (tier >= 0)."""
     decided = set(session.scalars(select(DecisionRow.region_id).distinct()))
+    districts = set(session.scalars(select(Region.id).where(Region.level == "district")))
+    if not districts - decided:  # every district decided once: no need to read the run
+        return []
     latest = current_run(session=session)
     if latest is None:
         return []

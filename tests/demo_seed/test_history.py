@@ -12,7 +12,12 @@ from demo_seed.history import HOLD_DAYS, PENDING_DAYS, REVIEW_LAG_DAYS, official
 from demo_seed.seed import seed_demo
 from server.config import Settings
 from server.services.database import Database
-from server.services.review import decision_history, official_tiers, pending_changes
+from server.services.review import (
+    decision_history,
+    has_something_to_publish,
+    official_tiers,
+    pending_changes,
+)
 
 NAMES = {0: "Zero", 1: "One", 2: "Two", 3: "Three"}
 START = date(2026, 1, 1)
@@ -72,7 +77,10 @@ def test_demo_with_history_publishes_the_past_and_leaves_recent_changes(tmp_path
             public = official_tiers(session=session)
             pending = pending_changes(session=session)
             history = decision_history(session=session)
+            # every district decided and published: nothing for "Publish" to do
+            publishable = has_something_to_publish(session=session)
         assert len(public) == 14  # every invented district has a published tier
+        assert not publishable
         newest = max(d.effective_date for d in history)
         assert newest <= date(2026, 11, 30) - timedelta(days=PENDING_DAYS - REVIEW_LAG_DAYS - 1)
         for change in pending:  # what is pending changed after the history ends
