@@ -103,9 +103,13 @@ class Observation(Base):
     every writer resolves codes against the catalogue first
     (:func:`server.store.vintages.code_maps`) and writes the vintage row in the same transaction,
     and no row of region, measure or vintage is ever deleted.
+
+    On SQLite the table is ``WITHOUT ROWID`` (revision 0005): the primary key is the table's own
+    B-tree, so a bulk insert writes one B-tree instead of a rowid table plus the key's index.
     """
 
     __tablename__ = "observation"
+    __table_args__ = {"sqlite_with_rowid": False}
 
     measure_id: Mapped[int] = mapped_column(Integer, primary_key=True)
     region_id: Mapped[int] = mapped_column(Integer, primary_key=True)

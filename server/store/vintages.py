@@ -196,9 +196,10 @@ def insert_observation_arrays(
 ) -> int:
     """Bulk-insert resolved observations of one (already flushed) vintage; returns the count.
 
-    ``day`` is days since 1970-01-01. The arrays are written as they are: the caller has checked
+    ``day`` is days since 1970-01-01. The arrays are not checked again: the caller has checked
     them (codes resolved, keys unique, values finite). On PostgreSQL one binary ``COPY``, fed in
-    slices of :data:`COPY_SLICE` rows; on SQLite one ``executemany`` on the driver connection.
+    slices of :data:`COPY_SLICE` rows; on SQLite one ``executemany`` on the driver connection,
+    in primary-key order.
     Both run inside the session's transaction.
     """
     n = int(np.asarray(day).size)
@@ -219,6 +220,12 @@ def insert_observation_arrays(
                                          day[part], value[part]))
                 copy.write(COPY_TRAILER)
         return n
+    # In key order (measure, region, day): the WITHOUT ROWID table's B-tree then grows by
+    # appending instead of splitting pages all over (the insert alone of 2 M rows that came in
+    # date order: 5.0 -> 3.1 s, measured twice on a shared 2-core machine).
+    order = np.lexsort((np.asarray(day), np.asarray(region_id), np.asarray(measure_id)))
+    region_id, measure_id = np.asarray(region_id)[order], np.asarray(measure_id)[order]
+    day, value = np.asarray(day)[order], np.asarray(value)[order]
     dates = _iso_dates(np.asarray(day, dtype=np.int64))
     cursor = raw.cursor()  # type: ignore[union-attr]
     try:
