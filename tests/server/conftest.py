@@ -20,6 +20,22 @@ from demo_seed.seed import seed_demo
 from server.config import Settings
 from server.services.database import Database
 
+#: A one-criterion invented ruleset for the feed-staleness tests (test_district_indicators.py,
+#: test_feeds_state.py).
+STALE_RULES = """\
+name: stale
+version: "1"
+tiers:
+  - {name: T0, staff: s, public: p}
+  - {name: T1, staff: s, public: p}
+indicators:
+  incidence_7d: {label: 7-day incidence, unit: per 100 000, decimals: 0}
+criteria:
+  - {id: incidence, indicator: incidence_7d, enter: [50], exit: [35]}
+timing: {confirm_days: 1, release_days: 1, min_days_in_tier: 0, effective_delay_days: 0}
+"""
+
+
 #: Days and last day of the seeded demo (the tests' expected values are for exactly these).
 DEMO_DAYS = 150
 DEMO_END = date(2026, 11, 30)

@@ -22,6 +22,7 @@ from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.models import Assessment, Region
 from server.store.models import Ruleset as RulesetRow
+from tests.server.conftest import STALE_RULES
 
 FEEDS = parse_feeds(
     "feeds:\n  - name: fast\n    source: {kind: push}\n    stale_after: 3d\n    measures: [cases]\n"
@@ -29,18 +30,6 @@ FEEDS = parse_feeds(
     source="t.yaml",
 )
 START = date(2026, 3, 1)
-RULES = """\
-name: stale
-version: "1"
-tiers:
-  - {name: T0, staff: s, public: p}
-  - {name: T1, staff: s, public: p}
-indicators:
-  incidence_7d: {label: 7-day incidence, unit: per 100 000, decimals: 0}
-criteria:
-  - {id: incidence, indicator: incidence_7d, enter: [50], exit: [35]}
-timing: {confirm_days: 1, release_days: 1, min_days_in_tier: 0, effective_delay_days: 0}
-"""
 
 
 def _setup(session: Session) -> None:
@@ -100,7 +89,7 @@ def test_stale_feed_shows_as_stale_data_in_the_engine_explanation(session: Sessi
     at = datetime(2026, 3, 16, 6, tzinfo=UTC)
     _send(session, "fast", "ZA", range(0, 10), at)
     _send(session, "slow", "ZB", range(0, 10), at)
-    rs = parse_ruleset(RULES)
+    rs = parse_ruleset(STALE_RULES)
     data = load_district_data(session=session, start=START, end=date(2026, 3, 15), as_of=at,
                               stale_after=feed_limits(FEEDS))
     result = evaluate(rs, district_indicators(data, rs), regions=data.regions, dates=data.dates,
@@ -127,8 +116,8 @@ def test_evaluate_districts_passes_the_feed_limits_to_the_engine(session: Sessio
     at = datetime(2026, 3, 16, 6, tzinfo=UTC)
     _send(session, "fast", "ZA", range(0, 10), at)   # to 10 March, limit 3 days
     _send(session, "slow", "ZB", range(0, 15), at)   # to 15 March: the evaluated range's end
-    with_limits = _ruleset_row(session, RULES)
-    without = _ruleset_row(session, RULES.replace("name: stale", "name: no-limits"))
+    with_limits = _ruleset_row(session, STALE_RULES)
+    without = _ruleset_row(session, STALE_RULES.replace("name: stale", "name: no-limits"))
     run = evaluate_districts(session=session, ruleset_row=with_limits, cutoff=at,
                              stale_after=feed_limits(FEEDS))
     plain = evaluate_districts(session=session, ruleset_row=without, cutoff=at)

@@ -37,6 +37,7 @@ from server.store import (
     upsert_regions,
 )
 from server.store.models import Assessment, FeedState, FeedToken, Region, Vintage
+from tests.server.conftest import STALE_RULES
 from web.feeds_api import receipt_json
 
 CATALOGUE = parse_feeds(
@@ -291,22 +292,10 @@ def test_rejected_rows_name_the_file_and_the_uploader(db: Database) -> None:
 
 # --- 0. the evaluation after an upload uses the feeds' staleness limits -------------------------
 
-RULES = """\
-name: stale
-version: "1"
-tiers:
-  - {name: T0, staff: s, public: p}
-  - {name: T1, staff: s, public: p}
-indicators:
-  incidence_7d: {label: 7-day incidence, unit: per 100 000, decimals: 0}
-criteria:
-  - {id: incidence, indicator: incidence_7d, enter: [50], exit: [35]}
-timing: {confirm_days: 1, release_days: 1, min_days_in_tier: 0, effective_delay_days: 0}
-"""
 
 
 def test_evaluation_after_upload_marks_a_stale_feed(db: Database, tmp_path: Path) -> None:
-    (tmp_path / "rules.yaml").write_text(RULES)
+    (tmp_path / "rules.yaml").write_text(STALE_RULES)
     with db.transaction() as session:
         upsert_regions(session=session, records=[RegionRecord(
             code="SB", name="Saltmarsh", level="district", parent=None, population=100)])
