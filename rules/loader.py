@@ -179,42 +179,59 @@ def _read_tiers(r: NodeReader, node: yaml.Node) -> tuple[Tier, ...] | None:
     for i, item in enumerate(items):
         path: Path = ("tiers", i)
         m = r.mapping(item, path, required=("name", "staff", "public"),
-                      optional=("level", "translations"))
+                      optional=("level", "translations", "measures", "advice"))
         if m is None or not all(k in m for k in ("name", "staff", "public")):
             tiers.append(None)
             continue
         level = r.integer(m["level"], path + ("level",)) if "level" in m else i
         fields = {k: r.text(m[k], path + (k,)) for k in ("name", "staff", "public")}
+        extra = _read_public_texts(r, m, path)
         translations = (
             _read_tier_texts(r, m["translations"], path + ("translations",))
             if "translations" in m else ()
         )
-        if level is None or translations is None or any(v is None for v in fields.values()):
+        if (level is None or translations is None or extra is None
+                or any(v is None for v in fields.values())):
             tiers.append(None)
             continue
-        tiers.append(r.build(item, path, Tier, level=level, translations=translations, **fields))
+        tiers.append(r.build(item, path, Tier, level=level, translations=translations,
+                             **fields, **extra))
     return None if any(t is None for t in tiers) else tuple(t for t in tiers if t is not None)
+
+
+def _read_public_texts(
+    r: NodeReader, m: dict[str, yaml.Node], path: Path
+) -> dict[str, Any] | None:
+    """A tier's optional ``measures`` (list of texts) and ``advice`` (text); None on error."""
+    out: dict[str, Any] = {}
+    if "measures" in m:
+        out["measures"] = r.text_list(m["measures"], path + ("measures",))
+    if "advice" in m:
+        out["advice"] = r.text(m["advice"], path + ("advice",))
+    return None if any(v is None for v in out.values()) else out
 
 
 def _read_tier_texts(
     r: NodeReader, node: yaml.Node, path: Path
 ) -> tuple[tuple[str, TierText], ...] | None:
-    """``translations: {de: {name: ..., public: ...}, ...}`` of one tier."""
+    """``translations: {de: {name: ..., public: ..., measures: [...], advice: ...}, ...}``."""
     m = r.mapping(node, path, free_keys=True)
     if m is None:
         return None
     out: list[tuple[str, TierText] | None] = []
     for lang, item in m.items():
-        t = r.mapping(item, path + (lang,), required=("name",), optional=("public",))
+        t = r.mapping(item, path + (lang,), required=("name",),
+                      optional=("public", "measures", "advice"))
         if t is None or "name" not in t:
             out.append(None)
             continue
         name = r.text(t["name"], path + (lang, "name"))
         public = r.text(t["public"], path + (lang, "public")) if "public" in t else ""
-        if name is None or public is None:
+        extra = _read_public_texts(r, t, path + (lang,))
+        if name is None or public is None or extra is None:
             out.append(None)
             continue
-        text = r.build(item, path + (lang,), TierText, name=name, public=public)
+        text = r.build(item, path + (lang,), TierText, name=name, public=public, **extra)
         out.append(None if text is None else (lang, text))
     return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 

@@ -73,15 +73,19 @@ def _identifier(path: tuple[str | int, ...], value: str) -> None:
 class Tier:
     """One ordered level: number, name, staff description and plain-language public text.
 
-    ``translations`` pairs a language code (``de``, ``fr-CH``) with the tier's name and public
-    text in that language, for the public pages; a language not listed falls back to ``name``
-    and ``public``.
+    ``measures`` lists, in plain words, what applies to residents at this tier and ``advice`` is
+    the office's advice for people at higher risk; both are written by the office and shown on
+    the public pages. ``translations`` pairs a language code (``de``, ``fr-CH``) with the tier's
+    name and texts in that language, for the public pages; a language or text not listed falls
+    back to the tier's own.
     """
 
     level: int
     name: str
     staff: str
     public: str
+    measures: tuple[str, ...] = ()
+    advice: str = ""
     translations: tuple[tuple[str, TierText], ...] = ()
 
     def __post_init__(self) -> None:
@@ -106,13 +110,25 @@ class Tier:
         text = self._text(lang)
         return text.public if text is not None and text.public else self.public
 
+    def measures_in(self, lang: str | None) -> tuple[str, ...]:
+        """What applies at this tier, in ``lang`` (the default list without a translation)."""
+        text = self._text(lang)
+        return text.measures if text is not None and text.measures else self.measures
+
+    def advice_in(self, lang: str | None) -> str:
+        """Advice for people at higher risk in ``lang`` (the default without a translation)."""
+        text = self._text(lang)
+        return text.advice if text is not None and text.advice else self.advice
+
 
 @dataclass(frozen=True, kw_only=True)
 class TierText:
-    """A tier's name and public text in one language."""
+    """A tier's name and public texts in one language."""
 
     name: str
     public: str = ""
+    measures: tuple[str, ...] = ()
+    advice: str = ""
 
     def __post_init__(self) -> None:
         if not self.name.strip():

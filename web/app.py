@@ -17,7 +17,7 @@ from server.services.auth import LoginLimiter, SessionSigner
 from server.services.backtest_jobs import BacktestJobs
 from server.services.database import Database
 from server.services.notify import notify_config_from
-from web import assets, health, login, policies, public, review, staff, users
+from web import assets, downloads, health, login, policies, public, review, staff, users
 from web.apidocs import mount_api_docs
 from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
@@ -107,6 +107,7 @@ def create_app(
     app.include_router(feeds_api_router)
     app.include_router(staff.router, prefix="/staff")
     app.include_router(public.router)
+    app.include_router(downloads.router)
     return app
 
 

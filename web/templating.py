@@ -57,6 +57,7 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.install_gettext_callables(  # type: ignore[attr-defined]
         catalogs.gettext, catalogs.ngettext, newstyle=True
     )
+    env.globals["catalogs"] = catalogs  # for texts built in Python (feeds, downloads)
     env.filters["thousands"] = _thousands
     env.filters["iso"] = _iso
     env.filters["number"] = _number

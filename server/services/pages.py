@@ -30,6 +30,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
+from server.services.outlook import Outlook, district_outlook
 from server.services.policies import parsed
 from server.services.review import OfficialTier, official_tiers
 from server.store import read_dense
@@ -65,9 +66,13 @@ class UnknownDistrictError(ServiceError, LookupError):
 
 @dataclass(frozen=True, kw_only=True)
 class TierInfo:
+    """A tier as residents read it: name, meaning, what applies and advice for people at risk."""
+
     level: int
     name: str
     public: str
+    measures: tuple[str, ...] = ()
+    advice: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -119,6 +124,12 @@ class PublicDistrictPage:
     tiers: tuple[TierInfo, ...]
     threshold: int
     stamp: str
+    outlook: Outlook | None = None
+
+    @property
+    def tier_info(self) -> TierInfo | None:
+        """The published tier's texts (None when nothing is published)."""
+        return next((t for t in self.tiers if t.level == self.tier), None)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -163,7 +174,8 @@ def _tiers(ruleset: Ruleset | None, lang: str | None) -> tuple[TierInfo, ...]:
     """The active ruleset's tiers in ``lang`` (its translations; the default text otherwise)."""
     if ruleset is None:
         return ()
-    return tuple(TierInfo(level=t.level, name=t.name_in(lang), public=t.public_in(lang).strip())
+    return tuple(TierInfo(level=t.level, name=t.name_in(lang), public=t.public_in(lang).strip(),
+                          measures=t.measures_in(lang), advice=t.advice_in(lang).strip())
                  for t in ruleset.tiers)
 
 
@@ -299,6 +311,7 @@ def public_district_page(
         since=off.since if off else None,
         published_at=off.published_at if off else None, data_until=data_until, weeks=weeks,
         tiers=tiers, threshold=threshold, stamp=public_stamp(session=session).key,
+        outlook=district_outlook(session=session, code=code, official=off, lang=lang),
     )
 
 
