@@ -30,27 +30,36 @@ def _nan(values: Sequence[float | None]) -> list[float | None]:
     return [None if v is None or not math.isfinite(v) else v for v in values]
 
 
-def criterion_figure(series: CriterionSeries, tier_names: Sequence[str]) -> go.Figure:
-    """The estimate with its confidence band, and each tier's enter and exit thresholds.
+def criterion_figure(
+    series: CriterionSeries, tier_names: Sequence[str], tier: int | None = None
+) -> go.Figure:
+    """The estimate with its confidence band and the two thresholds that matter at ``tier``.
 
-    The area between a tier's exit and enter threshold is the hysteresis band (shaded in the
-    tier's colour): inside it a tier already held is kept.
+    Drawn are the exit threshold of ``tier`` (under it, for the release period, the tier is left)
+    and the enter threshold of the next tier (over it, for the confirmation period, the tier
+    rises), as they stood each day. The y axis covers the estimate and both thresholds; a
+    confidence band wider than that is cut at the top, so thresholds stay readable in small
+    districts. ``tier`` None (no tier known) draws the enter threshold of tier 1.
     """
     dates = [d.isoformat() for d in series.dates]
     colours = tier_colours(len(tier_names))
+    current = 0 if tier is None or tier < 0 else min(tier, len(tier_names) - 1)
     fig = go.Figure()
-    for t, (enter, exit_) in enumerate(zip(series.enter, series.exit, strict=True)):
-        if all(v is None for v in enter):
+    shown: list[float] = []
+    lines = []
+    if current >= 1 and current - 1 < len(series.exit):
+        lines.append((series.exit[current - 1], current, "dot",
+                      f"leave {tier_names[current]} below"))
+    if current + 1 < len(tier_names) and current < len(series.enter):
+        lines.append((series.enter[current], current + 1, "dash",
+                      f"{tier_names[current + 1]} from"))
+    for values, t, dash, label in lines:
+        if all(v is None for v in values):
             continue
-        colour = colours[t + 1].fill
-        name = tier_names[t + 1]
-        fig.add_trace(go.Scatter(x=dates, y=_nan(exit_), mode="lines", line={
-            "color": colour, "width": 1, "dash": "dot", "shape": "hv"}, name=f"{name}: leave below",
-            legendgroup=name))
-        fig.add_trace(go.Scatter(x=dates, y=_nan(enter), mode="lines", fill="tonexty",
-                                 fillcolor=_alpha(colour, 0.25), line={
-                                     "color": colour, "width": 1.5, "dash": "dash", "shape": "hv"},
-                                 name=f"{name}: enter", legendgroup=name))
+        fig.add_trace(go.Scatter(x=dates, y=_nan(values), mode="lines", name=label, line={
+            "color": colours[t].fill if t > 0 else OUTLINE, "width": 2, "dash": dash,
+            "shape": "hv"}))
+        shown += [v for v in values if v is not None and math.isfinite(v)]
     if any(v is not None for v in series.lower):
         fig.add_trace(go.Scatter(x=dates, y=_nan(series.upper), mode="lines",
                                  line={"width": 0}, showlegend=False, hoverinfo="skip"))
@@ -62,6 +71,9 @@ def criterion_figure(series: CriterionSeries, tier_names: Sequence[str]) -> go.F
     unit = f" ({series.unit})" if series.unit else ""
     fig.update_layout(title={"text": series.label + unit, "x": 0}, **_LAYOUT)
     fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    top = max(shown + [v for v in _nan(series.value) if v is not None], default=None)
+    if top is not None and top > 0:
+        fig.update_yaxes(range=[0, top * 1.2])
     return fig
 
 

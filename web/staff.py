@@ -85,7 +85,10 @@ def district(
 ) -> Response:
     """Charts per indicator with thresholds and bands, the tier timeline, recent revisions."""
     dossier = district_dossier(session=session, code=code, start=start, end=end)
-    charts = [figure_json(criterion_figure(c, dossier.tier_names)) for c in dossier.criteria]
+    now = next((t for t in reversed(dossier.official) if t is not None), None)
+    if now is None and dossier.recommended:
+        now = dossier.recommended[-1]
+    charts = [figure_json(criterion_figure(c, dossier.tier_names, now)) for c in dossier.criteria]
     return render(request, "staff/district.html", {
         "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
     })
