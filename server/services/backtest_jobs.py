@@ -162,6 +162,16 @@ class JobStatus:
         return min(1.0, self.done / self.total) if self.total else 0.0
 
     @property
+    def versions(self) -> int:
+        """How many policy versions the job replays (2 when comparing)."""
+        return 1 if self.compare_id is None or self.compare_id == self.ruleset_id else 2
+
+    @property
+    def days(self) -> int:
+        """Days of the replayed period (``total`` counts them once per version)."""
+        return self.total // self.versions
+
+    @property
     def finished(self) -> bool:
         return self.state in ("done", "failed")
 

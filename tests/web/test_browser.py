@@ -267,5 +267,9 @@ def test_two_version_backtest_fits_a_wide_screen(server: str, page: object) -> N
     page.click("text=Run backtest")
     page.wait_for_selector("svg.tier-strip", timeout=240_000)
     assert page.locator("svg.tier-strip").count() == 2
+    # Each strip fits its column: the whole period is visible without scrolling sideways.
+    assert page.evaluate(
+        "[...document.querySelectorAll('svg.tier-strip')].every(s => s.getBoundingClientRect()"
+        ".right <= s.parentElement.getBoundingClientRect().right + 1)")
     shot(page, "14-backtest-two-versions")
     assert page.evaluate("document.documentElement.scrollWidth") <= 1400
