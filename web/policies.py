@@ -14,6 +14,7 @@ from server.services.policies import (
     DraftCheck,
     activate_version,
     check_draft,
+    policy_comparison,
     policy_diff,
     policy_view,
     store_draft,
@@ -68,9 +69,10 @@ def policies(
 
 @router.get("/policies/diff", response_class=HTMLResponse)
 def diff(request: Request, session: SessionDep, user: StaffDep, old: int, new: int) -> Response:
-    """Line diff of two versions' YAML."""
-    return render(request, "staff/policy_diff.html",
-                  {"lines": policy_diff(session=session, old_id=old, new_id=new)})
+    """Two versions compared item by item (with units), and the line diff of their YAML."""
+    return render(request, "staff/policy_diff.html", {
+        "comparison": policy_comparison(session=session, old_id=old, new_id=new),
+        "lines": policy_diff(session=session, old_id=old, new_id=new)})
 
 
 @router.post("/policies/draft", response_class=HTMLResponse)

@@ -16,7 +16,7 @@ from datetime import UTC, datetime, timedelta
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from rules import Ruleset, RulesetError, parse_ruleset
+from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import activate_ruleset
@@ -28,6 +28,9 @@ __all__ = [
     "DraftRefusedError",
     "PolicyView",
     "ThresholdRow",
+    "ComparisonLine",
+    "PolicyComparison",
+    "policy_comparison",
     "UnknownPolicyError",
     "VersionLine",
     "activate_version",
@@ -78,6 +81,7 @@ class ThresholdRow:
     direction: str
     cells: tuple[str, ...]
     note: str
+    unit: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -103,25 +107,30 @@ def versions(*, session: Session) -> list[VersionLine]:
     return [_line(r) for r in rows]
 
 
-def _cell(enter: float | None, exit_: float | None, rising: bool) -> str:
+def _cell(enter: float | None, exit_: float | None, rising: bool, spec: IndicatorSpec) -> str:
+    """``>= 75 per 100 000 (leave < 35 per 100 000)``, in the indicator's decimals and unit."""
     if enter is None:
         return "—"
-    op, rel = (">=", "<") if rising else ("<=", ">")
-    text = f"{op} {enter:g}"
-    return text if exit_ == enter or exit_ is None else f"{text} (leave {rel} {exit_:g})"
+    op, rel = ("≥", "<") if rising else ("≤", ">")
+    text = f"{op} {spec.format(enter)}"
+    if exit_ == enter or exit_ is None:
+        return text
+    return f"{text} (leave {rel} {spec.format(exit_)})"
 
 
 def _row(rs: Ruleset, cid: str, th: object, note: str) -> ThresholdRow:
     crit = rs.criterion(cid)
+    spec = rs.indicator(crit.indicator)
     thresholds = th if th is not None else crit.thresholds
     rising = thresholds.direction == "rising"  # type: ignore[attr-defined]
     cells = tuple(
-        _cell(e, x, rising)
+        _cell(e, x, rising, spec)
         for e, x in zip(thresholds.enter, thresholds.exit, strict=True)  # type: ignore[attr-defined]
     )
     return ThresholdRow(
-        criterion=crit.label or rs.indicator(crit.indicator).label, indicator=crit.indicator,
+        criterion=crit.label or spec.label, indicator=crit.indicator,
         statistic=crit.statistic, direction=crit.direction, cells=cells, note=note,
+        unit=spec.unit,
     )
 
 
@@ -187,6 +196,70 @@ def policy_diff(*, session: Session, old_id: int, new_id: int) -> list[str]:
         old.yaml_text.splitlines(), new.yaml_text.splitlines(),
         fromfile=f"{old.name} {old.version}", tofile=f"{new.name} {new.version}", lineterm="",
     ))
+
+
+@dataclass(frozen=True, kw_only=True)
+class ComparisonLine:
+    """One item of a policy as two versions state it (``None``: not in that version)."""
+
+    section: str
+    item: str
+    old: str | None
+    new: str | None
+
+    @property
+    def changed(self) -> bool:
+        return self.old != self.new
+
+
+@dataclass(frozen=True, kw_only=True)
+class PolicyComparison:
+    old: VersionLine
+    new: VersionLine
+    lines: tuple[ComparisonLine, ...]
+
+    @property
+    def changed(self) -> tuple[ComparisonLine, ...]:
+        return tuple(c for c in self.lines if c.changed)
+
+
+def _items(view: PolicyView) -> dict[tuple[str, str], str]:
+    """A policy's statements keyed by (section, item), for comparing versions."""
+    out: dict[tuple[str, str], str] = {}
+    names = {level: name for level, name, _s, _p in view.tiers}
+    for level, name, staff, public in view.tiers:
+        out[("Tiers", f"Tier {level}")] = name
+        out[("Tiers", f"Tier {level}: staff guidance")] = staff
+        out[("Tiers", f"Tier {level}: public text")] = public
+    for r in view.thresholds:
+        key = r.criterion + (f" ({r.note})" if r.note else "")
+        out[("Thresholds", f"{key}: compared on")] = (
+            "interval bounds" if r.statistic == "bounds" else "estimate")
+        for k, cell in enumerate(r.cells, start=1):
+            out[("Thresholds", f"{key}: {names.get(k, f'tier {k}')} ({k})")] = cell
+    for label, value in view.timing:
+        out[("Timing", label)] = value
+    out[("Combination", "Criteria combine by")] = view.combination
+    for g in view.gates:
+        gid, _sep, text = g.partition(": ")
+        out[("Gates", gid)] = text
+    for p in view.prepare:
+        pid, _sep, text = p.partition(": ")
+        out[("Prepare signals", pid)] = text
+    return out
+
+
+def policy_comparison(*, session: Session, old_id: int, new_id: int) -> PolicyComparison:
+    """Two versions compared item by item (tiers, thresholds with units, timing, gates,
+    prepare signals), in the order of the newer version, then items only the older one has."""
+    old_view = policy_view(session=session, ruleset_id=old_id)
+    new_view = policy_view(session=session, ruleset_id=new_id)
+    assert old_view is not None and new_view is not None
+    old, new = _items(old_view), _items(new_view)
+    keys = list(new) + [k for k in old if k not in new]
+    lines = tuple(ComparisonLine(section=k[0], item=k[1], old=old.get(k), new=new.get(k))
+                  for k in keys)
+    return PolicyComparison(old=old_view.version, new=new_view.version, lines=lines)
 
 
 @dataclass(frozen=True, kw_only=True)

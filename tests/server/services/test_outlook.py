@@ -9,7 +9,7 @@ on the upper bound and escalates on the lower one. The policy is rules/policies/
 
 from __future__ import annotations
 
-from datetime import date, datetime, timezone
+from datetime import UTC, date, datetime
 from pathlib import Path
 
 import pytest
@@ -35,7 +35,7 @@ def _item(cid: str, indicator: str, value: float, *, lower: float | None = None,
 
 def _official(tier: int, since: date) -> OfficialTier:
     return OfficialTier(region="D99", name="Invented", tier=tier, tier_name="", public_text="",
-                        since=since, published_at=datetime(2026, 1, 1, tzinfo=timezone.utc))
+                        since=since, published_at=datetime(2026, 1, 1, tzinfo=UTC))
 
 
 def _explanation(items: list[dict], *, decided: int, down: int = 0, day: str = "2026-03-10"):
@@ -137,7 +137,8 @@ def test_outlook_top_tier_has_no_step_up_and_unknown_figures_are_not_judged() ->
     assert o.down is not None and o.down.figures[0].met is None
 
 
-@pytest.mark.parametrize(("lang", "name"), [(None, "Heightened"), ("de", "Erhöht")], ids=["en", "de"])
+@pytest.mark.parametrize(("lang", "name"), [(None, "Heightened"), ("de", "Erhöht")],
+                         ids=["en", "de"])
 def test_outlook_names_tiers_in_the_page_language(lang: str | None, name: str) -> None:
     items = [_item("positivity", "positivity_7d", 5.0)]
     o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2),
