@@ -22,14 +22,9 @@ from rules.levels import (
     is_stale,
     meets,
 )
+from tests.rules.conftest import THREE_TIERS
 
-RULES = """\
-name: levels
-version: "1"
-tiers:
-  - {name: Calm, staff: s, public: p}
-  - {name: Busy, staff: s, public: p}
-  - {name: Hectic, staff: s, public: p}
+RULES = 'name: levels\nversion: "1"\n' + THREE_TIERS + """\
 indicators:
   incidence: {label: incidence, max_age_days: 3}
   beds_free: {label: free beds}

@@ -13,14 +13,9 @@ from numpy.testing import assert_array_equal
 
 from rules import EvaluationInputError, IndicatorSeries, parse_ruleset
 from rules.signals import SignalState, compare, evaluate_signals
+from tests.rules.conftest import THREE_TIERS
 
-RULES = """\
-name: signals
-version: "1"
-tiers:
-  - {name: Calm, staff: s, public: p}
-  - {name: Busy, staff: s, public: p}
-  - {name: Hectic, staff: s, public: p}
+RULES = 'name: signals\nversion: "1"\n' + THREE_TIERS + """\
 indicators:
   incidence: {label: incidence}
   trend: {label: trend, max_age_days: 2}
