@@ -364,17 +364,6 @@ def _keep_next_run(
     session.flush()
 
 
-@dataclass(frozen=True, kw_only=True)
-class LatestAssessment:
-    region: str
-    ref_date: date
-    tier: int
-    tier_name: str
-    previous_tier: int | None
-    prepare: tuple[str, ...]
-    sentence: str
-
-
 def newest_run_of(*, session: Session, ruleset_id: int) -> RunRow | None:
     """The recorded evaluation run of ``ruleset_id`` with the newest data cutoff (None: none)."""
     return session.scalar(
@@ -414,28 +403,6 @@ def current_assessment_id(*, session: Session, region_id: int) -> int | None:
     ))
 
 
-def latest_assessments(*, session: Session) -> dict[str, LatestAssessment]:
-    """The newest stored assessment of each district under the active ruleset."""
-    newest = _newest_run(session)
-    if newest is None:
-        return {}
-    row, cutoff, last_day = newest
-    ruleset: Ruleset = parse_ruleset(row.yaml_text, source=row.name)
-    query = assessments_as_of(
-        select(Region.code, Assessment).join(Region, Region.id == Assessment.region_id),
-        ruleset_id=row.id, cutoff=cutoff, start=last_day, end=last_day,
-    )
-    out = {}
-    for code, a in session.execute(query).all():
-        out[code] = LatestAssessment(
-            region=code, ref_date=a.ref_date, tier=a.recommended_tier,
-            tier_name=ruleset.tier_name(a.recommended_tier), previous_tier=a.previous_tier,
-            prepare=tuple(k for k, v in a.prepare_signals.items() if v),
-            sentence=a.explanation.get("sentence", ""),
-        )
-    return out
-
-
 @dataclass(frozen=True, kw_only=True, eq=False)
 class LatestItem:
     """A district's newest stored assessment and the first day of its current recommendation."""
@@ -458,49 +425,6 @@ class LatestRun:
     items: tuple[LatestItem, ...]
 
 
-def latest_assessment_rows(*, session: Session) -> LatestRun | None:
-    """Assessments of the newest run's last day (active ruleset, as of the run's cutoff), with
-    the start of each district's current recommendation.
-
-    ``since`` is the first day of the trailing run of days with the same recommended tier.
-    """
-    newest = _newest_run(session)
-    if newest is None:
-        return None
-    row, cutoff, last_day = newest
-    history = session.execute(
-        assessments_as_of(
-            select(Assessment.region_id, Assessment.ref_date, Assessment.recommended_tier),
-            ruleset_id=row.id, cutoff=cutoff, end=last_day,
-        ).order_by(Assessment.region_id, Assessment.ref_date.desc())
-    ).all()
-    since: dict[int, date] = {}
-    current: dict[int, int] = {}
-    broken: set[int] = set()
-    for region_id, day, tier in history:
-        if region_id in broken:
-            continue
-        if region_id not in current:
-            current[region_id] = tier
-        if tier != current[region_id]:
-            broken.add(region_id)
-            continue
-        since[region_id] = day
-    query = assessments_as_of(
-        select(Region.id, Region.code, Region.name, Assessment)
-        .join(Region, Region.id == Assessment.region_id),
-        ruleset_id=row.id, cutoff=cutoff, start=last_day, end=last_day,
-    ).order_by(Region.code)
-    items = tuple(
-        LatestItem(region_id=rid, code=code, name=name, assessment=a, since=since[rid])
-        for rid, code, name, a in session.execute(query).all()
-    )
-    return LatestRun(
-        ruleset_row=row, ruleset=parse_ruleset(row.yaml_text, source=row.name),
-        data_cutoff=cutoff, last_day=last_day, items=items,
-    )
-
-
 PACKAGED_POLICIES = Path(rules.__file__).with_name("policies")
 
 
@@ -516,7 +440,6 @@ def default_ruleset_path(configured: Path | None) -> Path:
 
 __all__ = [
     "EvaluationRun",
-    "LatestAssessment",
     "LatestItem",
     "LatestRun",
     "activate_ruleset",
@@ -527,8 +450,6 @@ __all__ = [
     "default_ruleset_path",
     "evaluate_active",
     "evaluate_districts",
-    "latest_assessment_rows",
-    "latest_assessments",
     "newest_cutoff",
     "newest_run",
     "newest_run_of",

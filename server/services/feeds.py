@@ -704,16 +704,6 @@ def ingest_push(
     ).receipt
 
 
-def push_payload(
-    db: Database, *, catalogue: FeedCatalogue, feed_name: str, token: str | None,
-    content: bytes, content_type: str = "", time_zone: str = "UTC",
-) -> IngestReceipt:
-    """Check the feed and its token (:func:`check_push`), then :func:`ingest_push` ``content``."""
-    feed = check_push(db, catalogue=catalogue, feed_name=feed_name, token=token)
-    return ingest_push(db, feed=feed, content=content, content_type=content_type,
-                       time_zone=time_zone)
-
-
 def upload_payload(
     db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str, content: bytes,
     actor: str, time_zone: str = "UTC", dry_run: bool = False,

@@ -1,4 +1,9 @@
-"""Use case: record batches of observations as vintages (the path every feed ends in)."""
+"""Use case: record ready-made batches of observations as vintages, and the measure catalogue.
+
+:class:`VintageWriter` appends data frames that need no row validation (the demo seeder and
+``bench/web.py`` use it). Configured feeds do not come this way: a feed file or push is parsed,
+validated and landed by :func:`server.services.ingest.ingest_payload`.
+"""
 
 from __future__ import annotations
 
@@ -27,7 +32,8 @@ def define_measures(*, session: Session, measures: Iterable[MeasureRecord]) -> i
 
 
 class VintageWriter:
-    """Appends many vintages in one session, resolving region and measure codes once."""
+    """Appends many already valid batches as vintages in one session, resolving region and
+    measure codes once (feeds land through :func:`server.services.ingest.ingest_payload`)."""
 
     def __init__(self, *, session: Session, feed: str, source: str = "") -> None:
         self._session = session

@@ -20,7 +20,7 @@ from server.services.backtest import (
     write_timelines,
 )
 from server.services.district_indicators import district_indicators, load_district_data
-from server.services.evaluation import latest_assessment_rows
+from server.services.review import current_run
 from server.store.models import Assessment, Region
 
 pytestmark = pytest.mark.slow
@@ -32,7 +32,7 @@ BEHIND = ZoneInfo("Etc/GMT+8")
 
 def test_backtest_on_latest_data_matches_the_stored_evaluation(demo_session: Session) -> None:
     result = run_backtest(session=demo_session, ruleset=load_ruleset(COUNTY))
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None
     stored = dict(demo_session.execute(
         select(Region.code, Assessment.recommended_tier)

@@ -12,10 +12,10 @@ from sqlalchemy.orm import Session
 from server.services.evaluation import (
     active_ruleset,
     evaluate_districts,
-    latest_assessment_rows,
     store_ruleset,
 )
 from server.services.policies import activate_version
+from server.services.review import current_run
 from server.store.models import Assessment, AuditEntry, EvaluationRun
 from server.store.models import Ruleset as RulesetRow
 
@@ -87,7 +87,7 @@ def test_every_evaluation_records_its_run(demo_session: Session) -> None:
 
 
 def test_latest_rows_give_the_start_of_the_current_recommendation(demo_session: Session) -> None:
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None and len(latest.items) == 14
     item = latest.items[0]
     days = demo_session.execute(
@@ -147,7 +147,7 @@ def test_activation_is_audited_and_evaluates_the_new_ruleset(
 ) -> None:
     row = store_ruleset(session=demo_session, path=_variant(tmp_path, "calm", "1"),
                         author="rev", activate=True)
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None and latest.ruleset_row.id == row.id and len(latest.items) == 14
     actions = list(demo_session.scalars(select(AuditEntry.subject).where(
         AuditEntry.action == "ruleset.activate", AuditEntry.actor == "rev")))

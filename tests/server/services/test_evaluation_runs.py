@@ -27,8 +27,6 @@ from server.services.evaluation import (
     current_assessment_id,
     default_ruleset_path,
     evaluate_districts,
-    latest_assessment_rows,
-    latest_assessments,
     newest_cutoff,
     store_ruleset,
 )
@@ -37,7 +35,7 @@ from server.services.observations import MeasureRecord, define_measures
 from server.services.pages import public_district_page, public_map
 from server.services.queue import review_queue
 from server.services.regions import RegionRecord, store_regions
-from server.services.review import decide, decision_history, pending_changes
+from server.services.review import current_run, decide, decision_history, pending_changes
 from server.services.users import add_user
 from server.store import revision_history
 from server.store.models import Assessment, AuditEntry, EvaluationRun, Region
@@ -112,6 +110,18 @@ def _region_id(session: Session, code: str) -> int:
 # --- on the seeded demo (SQLite) --------------------------------------------------------------
 
 
+def _current_items(session: Session) -> list[tuple[Any, ...]]:
+    """Each district's current review item, by what the pages show of it."""
+    run = current_run(session=session)
+    assert run is not None
+    return [
+        (i.code, i.assessment.id, i.assessment.ref_date, i.assessment.recommended_tier,
+         i.assessment.previous_tier, i.assessment.prepare_signals,
+         i.assessment.explanation.get("sentence", ""), i.since)
+        for i in run.items
+    ]
+
+
 def _pages(session: Session) -> dict[str, Any]:
     """What every reader shows (the overview without its run cutoff, compared apart)."""
     overview = morning_overview(session=session, now=NOW)
@@ -123,7 +133,7 @@ def _pages(session: Session) -> dict[str, Any]:
         "explanation_day": replace(
             explanation_page(session=session, code="D05", day=date(2026, 10, 16)),
             run_cutoff=None),
-        "latest": latest_assessments(session=session),
+        "latest": _current_items(session),
         "pending": pending_changes(session=session),
         "queue": review_queue(session=session),
         "public_map": public_map(session=session),
@@ -311,11 +321,11 @@ def test_runs_store_changes_only_on_both_back_ends(small: Session) -> None:
     assert full_run.rows_written == 3 * DAYS
     assert (full_run.first_day, full_run.last_day) == (END - timedelta(days=DAYS - 1), END)
     # same data, later cutoff: nothing written, readers unchanged
-    latest = latest_assessment_rows(session=small)
+    latest = current_run(session=small)
     assert latest is not None
     quiet = evaluate_districts(session=small, ruleset_row=row, cutoff=first + timedelta(hours=4))
     assert quiet is not None and quiet.written == 0 and not quiet.reused
-    again = latest_assessment_rows(session=small)
+    again = current_run(session=small)
     assert again is not None and again.data_cutoff == first + timedelta(hours=4)
     assert [(i.code, i.assessment.id, i.since) for i in again.items] == [
         (i.code, i.assessment.id, i.since) for i in latest.items]

@@ -10,10 +10,9 @@ from sqlalchemy import update
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import load_feeds
-from server.services.evaluation import latest_assessment_rows
 from server.services.feeds import feed_statuses
 from server.services.morning import morning_overview
-from server.services.review import decide, publish
+from server.services.review import current_run, decide, publish
 from server.store.models import Decision
 
 pytestmark = pytest.mark.slow
@@ -55,7 +54,7 @@ def test_overview_lists_a_source_without_definition_unjudged(demo_session: Sessi
 
 def test_overview_counts_a_decided_unpublished_district_apart(demo_session: Session) -> None:
     publish(session=demo_session, user=APPROVER)
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None
     item = next(i for i in latest.items if i.code == "D01")
     other = (item.assessment.recommended_tier + 1) % 3
@@ -82,7 +81,7 @@ def test_publications_since_the_previous_morning_are_listed_as_changes(
         published_at=datetime(2026, 11, 29, 14, 0, tzinfo=UTC)))
     assert not [c for c in morning_overview(session=demo_session, now=NOW).changes
                 if "official tier" in c.what]
-    row = latest_assessment_rows(session=demo_session)
+    row = current_run(session=demo_session)
     assert row is not None
     item = next(i for i in row.items if i.code == "D03")
     old = item.assessment.recommended_tier

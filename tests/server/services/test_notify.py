@@ -21,11 +21,7 @@ from sqlalchemy.orm import Session
 
 from rules import IndicatorSeries, evaluate, parse_ruleset
 from server.services.errors import InputFileError
-from server.services.evaluation import (
-    active_ruleset,
-    evaluate_districts,
-    latest_assessment_rows,
-)
+from server.services.evaluation import active_ruleset, evaluate_districts
 from server.services.notify import (
     SIGNATURE_HEADER,
     NotifyConfig,
@@ -37,7 +33,13 @@ from server.services.notify import (
     notify_config_from,
     sign,
 )
-from server.services.review import decide, official_tiers, pending_changes, publish
+from server.services.review import (
+    current_run,
+    decide,
+    official_tiers,
+    pending_changes,
+    publish,
+)
 from server.store.models import Assessment, AuditEntry
 from server.store.vintages import append_vintage
 
@@ -237,7 +239,7 @@ def _to(url: str) -> NotifyConfig:
 
 def _newest_assessment(session: Session, region: str) -> int:
     """Id of the assessment a decision on ``region`` answers (its newest one)."""
-    latest = latest_assessment_rows(session=session)
+    latest = current_run(session=session)
     assert latest is not None
     return next(i.assessment.id for i in latest.items if i.code == region)
 

@@ -12,8 +12,9 @@ from sqlalchemy.orm import Session
 
 from server.services.evaluation import (
     active_ruleset,
+    assessments_as_of,
     evaluate_districts,
-    latest_assessment_rows,
+    newest_run,
     store_ruleset,
 )
 from server.services.review import (
@@ -27,7 +28,7 @@ from server.services.review import (
     pending_changes,
     publish,
 )
-from server.store.models import Assessment, AuditEntry
+from server.store.models import Assessment, AuditEntry, Region
 from server.store.models import Decision as DecisionRow
 from server.store.vintages import append_vintage
 
@@ -119,7 +120,7 @@ def test_decision_history_names_user_and_recommendation(demo_session: Session) -
 
 def _make_insufficient(session: Session, region: str) -> int:
     """Turn ``region``'s newest assessment into an insufficient-data recommendation (-1)."""
-    latest = latest_assessment_rows(session=session)
+    latest = current_run(session=session)
     assert latest is not None
     aid = next(i.assessment.id for i in latest.items if i.code == region)
     session.execute(update(Assessment).where(Assessment.id == aid).values(recommended_tier=-1))
@@ -131,7 +132,7 @@ def test_confirming_insufficient_data_keeps_the_official_tier(demo_session: Sess
     publish(session=demo_session, user=APPROVER)
     region, official = next(iter(official_tiers(session=demo_session).items()))
     # the published decision answered yesterday's assessment; today's says insufficient data
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None
     item = next(i for i in latest.items if i.code == region)
     yesterday = demo_session.scalar(select(Assessment.id).where(
@@ -166,7 +167,7 @@ def test_confirming_insufficient_data_without_an_official_tier_needs_an_override
 
 def _item(session: Session, region: str) -> tuple[int, int, date]:
     """(region id, current assessment id, last day) of ``region`` in the newest stored run."""
-    latest = latest_assessment_rows(session=session)
+    latest = current_run(session=session)
     assert latest is not None
     item = next(i for i in latest.items if i.code == region)
     return item.region_id, item.assessment.id, latest.last_day
@@ -330,14 +331,45 @@ def test_has_something_to_publish_before_the_first_publication_and_after_a_decis
 # --- the current run without reading the whole history ---
 
 
+def _full_read(session: Session) -> tuple[tuple[int, datetime, date], list[tuple[str, int, date]]]:
+    """The current items read from every day of the history, the slow and obvious way.
+
+    As of the newest run's cutoff, each district's item is its row of the run's last day, and
+    its ``since`` the first day of the trailing run of days with that day's recommended tier.
+    """
+    newest = newest_run(session=session)
+    assert newest is not None
+    row, run = newest
+    history = session.execute(
+        assessments_as_of(
+            select(Region.code, Assessment.id, Assessment.ref_date, Assessment.recommended_tier)
+            .join(Region, Region.id == Assessment.region_id),
+            ruleset_id=row.id, cutoff=run.data_cutoff, end=run.last_day,
+        ).order_by(Region.code, Assessment.ref_date.desc())
+    ).all()
+    by_code: dict[str, list[tuple[int, date, int]]] = {}
+    for code, aid, day, tier in history:  # newest day first
+        by_code.setdefault(code, []).append((aid, day, tier))
+    found = []
+    for code, rows in sorted(by_code.items()):
+        aid, day, tier = rows[0]
+        if day != run.last_day:
+            continue  # not assessed on the run's last day: no item
+        since = day
+        for _aid, earlier, earlier_tier in rows[1:]:
+            if earlier_tier != tier:
+                break
+            since = earlier
+        found.append((code, aid, since))
+    return (row.id, run.data_cutoff, run.last_day), found
+
+
 def _same_as_the_full_read(session: Session) -> None:
-    full = latest_assessment_rows(session=session)
+    head, full = _full_read(session)
     fast = current_run(session=session)
-    assert full is not None and fast is not None
-    assert (fast.ruleset_row.id, fast.data_cutoff, fast.last_day) == (
-        full.ruleset_row.id, full.data_cutoff, full.last_day)
-    assert [(i.code, i.assessment.id, i.since) for i in fast.items] == [
-        (i.code, i.assessment.id, i.since) for i in full.items]
+    assert fast is not None
+    assert (fast.ruleset_row.id, fast.data_cutoff, fast.last_day) == head
+    assert [(i.code, i.assessment.id, i.since) for i in fast.items] == full
 
 
 def test_current_run_matches_the_full_read_on_the_demo(demo_session: Session) -> None:
@@ -349,7 +381,7 @@ def test_current_run_matches_the_full_read_after_corrections_and_replays(
 ) -> None:
     row = active_ruleset(session=demo_session)
     assert row is not None
-    latest = latest_assessment_rows(session=demo_session)
+    latest = current_run(session=demo_session)
     assert latest is not None
     at = latest.data_cutoff
     for k, (region, first, value) in enumerate([
