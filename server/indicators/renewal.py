@@ -2,8 +2,10 @@
 
 Incidence I is shaped (regions, days). The total infectiousness
 ``Lambda_t = sum_{k>=1} w_k I_{t-k}`` is a convolution along the day axis, computed for all regions
-at once with :func:`scipy.signal.fftconvolve` along axis 1; exact zeros and missing history are
-found with cumulative sums. The serial interval ``w`` comes from
+at once with :func:`scipy.signal.fftconvolve` along axis 1; exact zeros are restored with
+cumulative sums and the weight of missing days in the history by a second convolution. Results
+equal EpiEstim 2.2's ``estimate_R`` (Cori et al. 2013) for the same serial interval, from the
+same first window (see :func:`reproduction_number`). The serial interval ``w`` comes from
 :mod:`server.indicators.serial_interval`.
 """
 
@@ -67,8 +69,13 @@ class Reproduction:
         freeze_arrays(self)
 
 
+# Missing days in the history of Lambda_t carrying at most this much serial-interval mass are
+# counted as zero (their effect on Lambda is about that fraction); more blanks Lambda_t.
+MISSING_WEIGHT = 1e-4
+
+
 def infectiousness(incidence: ArrayLike, serial_interval: SerialInterval) -> FloatArray:
-    """Total infectiousness :math:`\\Lambda_t = \\sum_{k=1}^{K} w_k I_{t-k}` for every day.
+    """Total infectiousness :math:`\\Lambda_t = \\sum_{k=1}^{t} w_k I_{t-k}` for every day.
 
     Parameters
     ----------
@@ -80,12 +87,16 @@ def infectiousness(incidence: ArrayLike, serial_interval: SerialInterval) -> Flo
     Returns
     -------
     ndarray, shape (regions, days)
-        NaN where any of the K previous days is missing, and on the first K days (not enough
-        history); exactly 0 where those K days are all 0.
+        NaN on the first day (no history) and where missing days of the history carry more than
+        ``MISSING_WEIGHT`` (1e-4) of the serial interval's mass (lighter ones count as 0);
+        exactly 0 where the history holds no case.
 
     Notes
     -----
-    The renewal equation :math:`E[I_t] = R_t \\Lambda_t` of Cori et al. (2013), eq. 1.
+    The renewal equation :math:`E[I_t] = R_t \\Lambda_t` of Cori et al. (2013), eq. 1. Days
+    before the first day of the series count as zero incidence, as in EpiEstim's
+    ``overall_infectivity`` (:math:`\\lambda_t = \\sum_{k=1}^{t-1} I_{t-k} w_k` with days
+    counted from 1): the series is taken to start with the epidemic.
 
     References
     ----------
@@ -108,13 +119,14 @@ def _infectiousness(arr: FloatArray, w: FloatArray) -> FloatArray:
     missing = np.isnan(arr)
     filled = np.where(missing, 0.0, arr)
     lam = signal.fftconvolve(filled, w[np.newaxis, :], axes=1)[:, :days]
-    # History sums over days t-K .. t-1 restore exact zeros (FFT round-off leaves ~1e-13) and
-    # find missing days in the history, both by cumulative sums along the day axis.
+    # The history sum over days t-K .. t-1 (from day 0 while t < K) restores exact zeros (FFT
+    # round-off leaves ~1e-13), by a cumulative sum along the day axis.
     hist_sum = trailing_sum(_lagged(filled), lags)
-    hist_missing = trailing_sum(_lagged(missing.astype(np.float64)), lags)
     lam = np.where(hist_sum > 0, np.maximum(lam, 0.0), 0.0)
-    lam[hist_missing > 0] = np.nan
-    lam[:, : min(lags, days)] = np.nan  # not enough history
+    if missing.any():
+        gap = signal.fftconvolve(missing.astype(np.float64), w[np.newaxis, :], axes=1)[:, :days]
+        lam[gap > MISSING_WEIGHT] = np.nan
+    lam[:, 0] = np.nan  # no history
     return lam
 
 
@@ -184,6 +196,9 @@ def reproduction_number(
     Returns
     -------
     Reproduction
+        NaN where no estimate is given: before the first window EpiEstim estimates (below),
+        where a day of the window is missing or missing days blank :math:`\\Lambda`
+        (:func:`infectiousness`), and where the window's summed infectiousness is 0.
 
     Notes
     -----
@@ -194,8 +209,20 @@ def reproduction_number(
               \\text{rate} = \\frac1b + \\sum_{s=t-\\tau+1}^{t} \\Lambda_s,
 
     mean shape/rate, coefficient of variation :math:`1/\\sqrt{\\text{shape}}`, and quantiles
-    ``gammaincinv(shape, q) / rate``. NaN where a day of the window or of the K days before it
-    is missing, where those days precede the series, or where the summed infectiousness is 0.
+    ``gammaincinv(shape, q) / rate``: EpiEstim's ``estimate_R`` with a given serial interval.
+
+    Where estimates begin follows EpiEstim 2.2 (``estimate_R``): windows start on the second
+    day at the earliest (its ``check_times``: ``t_start`` >= 2, because the first day has no
+    history) and a window gives an estimate only when its last day, counted from 1, exceeds
+    the mean of the serial interval (``t_end > mean_si`` in ``posterior_from_si_distr``).
+    That mean is, as in EpiEstim, over the lags the series can hold (``days - 1``) for a
+    parametric interval (``discr_si(0:(T-1))``) and over the whole given ``pmf`` otherwise.
+    Days before the series count as zero incidence (:func:`infectiousness`), so early windows
+    of a series that starts inside an epidemic overestimate Rt; EpiEstim does the same.
+
+    Where the summed infectiousness of the window is 0 (no case within the serial interval
+    before it) the result is NaN; EpiEstim returns the gamma(a + sum I, scale b) posterior
+    there, which is the prior shifted by the counts and says nothing about transmission.
 
     References
     ----------
@@ -217,9 +244,16 @@ def reproduction_number(
 
     names = ("estimate", "cv", "shape", "rate", "incidence", "infectiousness")
     out = {name: np.empty(arr.shape) for name in names}
+    days = arr.shape[1]
+    si_mean = (
+        serial_interval.mean_within(days - 1) if serial_interval.parametric
+        else serial_interval.mean
+    )
+    # 0-based last day e: e - window + 1 >= 1 (t_start >= 2) and e + 1 > mean (t_end > mean_si)
+    first = max(window, int(np.floor(si_mean)))
     chunks = list(row_chunks(arr.shape[0], arr.shape[1] + serial_interval.pmf.size))
     for rows in chunks:
-        part = _posterior(arr[rows], serial_interval.pmf, window, prior_shape, prior_scale)
+        part = _posterior(arr[rows], serial_interval.pmf, window, first, prior_shape, prior_scale)
         for name, values in zip(names, part, strict=True):
             out[name][rows] = values
     shape, rate = out["shape"], out["rate"]
@@ -253,7 +287,8 @@ def reproduction_number(
 
 
 def _posterior(
-    arr: FloatArray, w: FloatArray, window: int, prior_shape: float, prior_scale: float
+    arr: FloatArray, w: FloatArray, window: int, first: int, prior_shape: float,
+    prior_scale: float,
 ) -> tuple[FloatArray, ...]:
     """Posterior mean, cv, shape, rate and window sums for a block of regions (NaN if none)."""
     lam = _infectiousness(arr, w)
@@ -262,7 +297,7 @@ def _posterior(
     lam_sum = trailing_sum(np.where(lam_missing, 0.0, lam), window)
     bad = trailing_sum((lam_missing | np.isnan(arr)).astype(np.float64), window)
     ok = (bad == 0) & (lam_sum > 0)
-    ok[:, : window - 1] = False
+    ok[:, :first] = False
     shape = np.where(ok, prior_shape + inc_sum, np.nan)
     rate = np.where(ok, 1.0 / prior_scale + lam_sum, np.nan)
     return (
