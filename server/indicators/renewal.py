@@ -12,6 +12,7 @@ same first window (see :func:`reproduction_number`). The serial interval ``w`` c
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -48,8 +49,13 @@ class Reproduction:
         Window sums of I and of Lambda.
     window : int
         Window length in days.
+    dispersion : ndarray, shape (regions, days)
+        Quasi-Poisson dispersion ``phi`` the posterior was widened by (1 without
+        ``overdispersion``).
     prior_shape, prior_scale, level : float
         Gamma prior and credible level.
+    overdispersion : str
+        ``"none"`` or ``"quasi-poisson"``.
     """
 
     estimate: FloatArray
@@ -60,10 +66,12 @@ class Reproduction:
     rate: FloatArray
     incidence: FloatArray
     infectiousness: FloatArray
+    dispersion: FloatArray
     window: int
     prior_shape: float
     prior_scale: float
     level: float
+    overdispersion: str = "none"
 
     def __post_init__(self) -> None:
         freeze_arrays(self)
@@ -177,6 +185,7 @@ def reproduction_number(
     prior_mean: float = 5.0,
     prior_sd: float = 5.0,
     level: float = 0.95,
+    overdispersion: Literal["none", "quasi-poisson"] = "none",
 ) -> Reproduction:
     """Rt over sliding windows by the method of Cori et al. (2013).
 
@@ -192,6 +201,9 @@ def reproduction_number(
         Gamma prior on Rt (shape ``(m/s)^2``, scale ``s^2/m``: 1 and 5 by default).
     level : float, default 0.95
         Credible level of the equal-tailed interval.
+    overdispersion : {"none", "quasi-poisson"}, default "none"
+        ``"quasi-poisson"`` widens the posterior by the window's Pearson dispersion (below);
+        the default is Cori et al.'s Poisson posterior, equal to EpiEstim.
 
     Returns
     -------
@@ -224,13 +236,33 @@ def reproduction_number(
     before it) the result is NaN; EpiEstim returns the gamma(a + sum I, scale b) posterior
     there, which is the prior shifted by the counts and says nothing about transmission.
 
+    With ``overdispersion="quasi-poisson"`` the Poisson likelihood is tempered by
+    :math:`1/\\phi` (quasi-likelihood with variance :math:`\\phi \\mu`, McCullagh & Nelder
+    1989, ch. 9): shape :math:`a + \\sum I / \\phi`, rate :math:`1/b + \\sum \\Lambda /
+    \\phi`, same mean, variance times about :math:`\\phi`, where
+
+    .. math:: \\phi = \\max\\Big(1, \\frac{1}{\\tau - 1} \\sum_{s:\\,\\Lambda_s > 0}
+              \\frac{(I_s - \\hat R \\Lambda_s)^2}{\\hat R \\Lambda_s}\\Big),
+              \\qquad \\hat R = \\sum I / \\sum \\Lambda,
+
+    the Pearson statistic of the window's own fit (1 where the window holds no case). Applying
+    it to Rt is this project's choice (no published source); on the demo simulator it raised
+    the coverage of the true 7-day mean Rt by 95 % intervals from 90.3 % to 93.1 % (windows
+    of at least 50 infections, 10 seeds, ``tests/reference/test_demo_truth.py``).
+
     References
     ----------
     .. [1] Cori, A., Ferguson, N. M., Fraser, C., Cauchemez, S. (2013). A new framework and
        software to estimate time-varying reproduction numbers during epidemics. Am J Epidemiol
        178:1505–1512, eq. 2 and Web Appendix 1.
+    .. [2] McCullagh, P., Nelder, J. A. (1989). Generalized Linear Models, 2nd ed., ch. 9
+       (quasi-likelihood). Chapman & Hall.
     """
     arr = as_nonnegative_counts("incidence", incidence)
+    if overdispersion not in ("none", "quasi-poisson"):
+        raise ValueError(
+            f"overdispersion: expected 'none' or 'quasi-poisson', got {overdispersion!r}"
+        )
     if not isinstance(serial_interval, SerialInterval):
         raise ValueError(
             f"serial_interval: expected a SerialInterval, got {type(serial_interval).__name__}"
@@ -242,7 +274,7 @@ def reproduction_number(
     prior_shape = (prior_mean / prior_sd) ** 2
     prior_scale = prior_sd**2 / prior_mean
 
-    names = ("estimate", "cv", "shape", "rate", "incidence", "infectiousness")
+    names = ("estimate", "cv", "shape", "rate", "incidence", "infectiousness", "dispersion")
     out = {name: np.empty(arr.shape) for name in names}
     days = arr.shape[1]
     si_mean = (
@@ -253,7 +285,10 @@ def reproduction_number(
     first = max(window, int(np.floor(si_mean)))
     chunks = list(row_chunks(arr.shape[0], arr.shape[1] + serial_interval.pmf.size))
     for rows in chunks:
-        part = _posterior(arr[rows], serial_interval.pmf, window, first, prior_shape, prior_scale)
+        part = _posterior(
+            arr[rows], serial_interval.pmf, window, first, prior_shape, prior_scale,
+            overdispersion == "quasi-poisson",
+        )
         for name, values in zip(names, part, strict=True):
             out[name][rows] = values
     shape, rate = out["shape"], out["rate"]
@@ -283,14 +318,15 @@ def reproduction_number(
         prior_shape=prior_shape,
         prior_scale=prior_scale,
         level=level,
+        overdispersion=overdispersion,
     )
 
 
 def _posterior(
     arr: FloatArray, w: FloatArray, window: int, first: int, prior_shape: float,
-    prior_scale: float,
+    prior_scale: float, quasi: bool,
 ) -> tuple[FloatArray, ...]:
-    """Posterior mean, cv, shape, rate and window sums for a block of regions (NaN if none)."""
+    """Posterior mean, cv, shape, rate, window sums and dispersion for a block of regions."""
     lam = _infectiousness(arr, w)
     lam_missing = np.isnan(lam)  # also covers missing incidence in the history
     inc_sum = trailing_sum(np.where(np.isnan(arr), 0.0, arr), window)
@@ -298,8 +334,11 @@ def _posterior(
     bad = trailing_sum((lam_missing | np.isnan(arr)).astype(np.float64), window)
     ok = (bad == 0) & (lam_sum > 0)
     ok[:, :first] = False
-    shape = np.where(ok, prior_shape + inc_sum, np.nan)
-    rate = np.where(ok, 1.0 / prior_scale + lam_sum, np.nan)
+    phi = np.where(ok, 1.0, np.nan)
+    if quasi:
+        phi = np.where(ok, _pearson_dispersion(arr, lam, inc_sum, lam_sum, window), np.nan)
+    shape = np.where(ok, prior_shape + inc_sum / phi, np.nan)
+    rate = np.where(ok, 1.0 / prior_scale + lam_sum / phi, np.nan)
     return (
         shape / rate,
         1.0 / np.sqrt(shape),
@@ -307,4 +346,23 @@ def _posterior(
         rate,
         np.where(ok, inc_sum, np.nan),
         np.where(ok, lam_sum, np.nan),
+        phi,
     )
+
+
+def _pearson_dispersion(
+    arr: FloatArray, lam: FloatArray, inc_sum: FloatArray, lam_sum: FloatArray, window: int
+) -> FloatArray:
+    """``max(1, X^2 / (window - 1))`` with ``X^2 = sum I^2 / (R Lambda) - 2 sum I + R sum Lambda``
+    over the window's days with ``Lambda > 0``, R = sum I / sum Lambda (1 where sum I = 0)."""
+    positive = np.isfinite(lam) & (lam > 0) & np.isfinite(arr)
+    safe_lam = np.where(positive, lam, 1.0)
+    ratio = trailing_sum(np.where(positive, np.where(positive, arr, 0.0) ** 2 / safe_lam, 0.0),
+                         window)
+    inc_pos = trailing_sum(np.where(positive, arr, 0.0), window)
+    lam_pos = trailing_sum(np.where(positive, lam, 0.0), window)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_hat = inc_sum / lam_sum
+        pearson = ratio / r_hat - 2.0 * inc_pos + r_hat * lam_pos
+        phi = np.maximum(pearson / max(window - 1, 1), 1.0)
+    return np.where(inc_sum > 0, phi, 1.0)

@@ -6,16 +6,19 @@ import csv
 import datetime as dt
 import io
 import math
+import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
+import statsmodels.api as sm
 from numpy.testing import assert_allclose
 from scipy import stats
+from statsmodels.tools.sm_exceptions import DomainWarning
 from typer.testing import CliRunner
 
 from server.cli import app
-from server.indicators.renewal import reproduction_number
+from server.indicators.renewal import infectiousness, reproduction_number
 from server.indicators.serial_interval import (
     discrete_serial_interval,
     gamma_serial_interval,
@@ -190,3 +193,39 @@ def test_cli_estimate_rt_equals_epiestim_parametric_si(tmp_path: Path) -> None:
             [float(rows[i]["r_mean"]), float(rows[i]["r_lower"]), float(rows[i]["r_upper"])],
             [mean, lower, upper], rtol=1e-4,
         )
+
+
+def test_quasi_poisson_dispersion_equals_statsmodels_pearson_scale() -> None:
+    # Reference: statsmodels Poisson GLM, identity link, no intercept (mu_s = R Lambda_s), fitted
+    # on the window's days; its Pearson scale X^2 / (n - 1) (McCullagh & Nelder 1989, ch. 9)
+    # floored at 1 is phi, and the posterior is gamma(a + sum I / phi, 1/b + sum Lambda / phi).
+    rng = np.random.default_rng(1989)
+    si = gamma_serial_interval(4.7, 2.9)
+    incid = rng.negative_binomial(5, 5 / (5 + 80.0 * np.exp(0.02 * np.arange(60)))).astype(float)
+    result = reproduction_number(incid, si, 7, overdispersion="quasi-poisson")
+    lam = infectiousness(incid, si)[0]
+    checked = 0
+    for end in (20, 35, 59):
+        days = slice(end - 6, end + 1)
+        with warnings.catch_warnings():  # identity link: statsmodels warns about the domain
+            warnings.simplefilter("ignore", DomainWarning)
+            family = sm.families.Poisson(sm.families.links.Identity())
+            fit = sm.GLM(incid[days], lam[days], family=family).fit(scale="X2")
+        phi = max(1.0, float(fit.scale))
+        checked += phi > 1.0
+        assert_allclose(result.dispersion[0, end], phi, rtol=1e-8)
+        assert_allclose(result.shape[0, end], 1.0 + incid[days].sum() / phi, rtol=1e-10)
+        assert_allclose(result.rate[0, end], 0.2 + lam[days].sum() / phi, rtol=1e-10)
+    assert checked >= 2  # the negative-binomial series is overdispersed
+
+
+def test_quasi_poisson_widens_the_interval_of_overdispersed_counts() -> None:
+    rng = np.random.default_rng(2)
+    incid = rng.negative_binomial(3, 3 / (3 + 200.0), size=(2, 70)).astype(float)
+    si = gamma_serial_interval(4.7, 2.9)
+    plain = reproduction_number(incid, si)
+    quasi = reproduction_number(incid, si, overdispersion="quasi-poisson")
+    ok = np.isfinite(plain.estimate)
+    assert np.mean(quasi.dispersion[ok] > 1.0) > 0.9  # negative binomial, size 3: very dispersed
+    assert np.all(quasi.upper[ok] - quasi.lower[ok] >= plain.upper[ok] - plain.lower[ok] - 1e-12)
+    assert np.all(plain.dispersion[np.isfinite(plain.estimate)] == 1.0)
