@@ -140,9 +140,10 @@ def _invented_incidence(seed: int, days: int, generation: np.ndarray) -> np.ndar
 @pytest.mark.parametrize(
     ("mu", "sigma", "days", "first_end"),
     # mu 5.2: the first estimate ends on day 8 (0-based 7, t_start = 2); mu 15.3: t_end > 15.3,
-    # so day 16 (0-based 15). The sd 2.8 beside mu 5.2 is invented for the test.
-    [(5.2, 2.8, 60, 7), (15.3, 9.1, 92, 15)],
-    ids=["mu5.2", "mu15.3-sd9.1"],
+    # so day 16 (0-based 15). The sd 2.8 beside mu 5.2 is invented for the test. On a 25-day
+    # series EpiEstim's mean SI is that of discr_si(0:24), 10.62, so estimates start on day 11.
+    [(5.2, 2.8, 60, 7), (15.3, 9.1, 92, 15), (15.3, 9.1, 25, 10)],
+    ids=["mu5.2", "mu15.3-sd9.1", "mu15.3-short-series"],
 )
 def test_cori_rt_equals_epiestim_parametric_si(
     mu: float, sigma: float, days: int, first_end: int
