@@ -58,8 +58,12 @@ nowcast: d0, d1, ..., dD -> nowcast, nowcast_lower, nowcast_upper,
 
 \b
 rt: Cori et al. (2013) posterior over --window days (7), dated on the
-  window's last day. Needs --si-mean and --si-sd (gamma serial
-  interval) or --si-file (CSV with columns k, p).
+  window's last day, equal to EpiEstim's estimate_R. Needs --si-mean
+  and --si-sd (gamma serial interval) or --si-file (CSV with columns
+  k, p). Estimates start where EpiEstim starts them: windows from the
+  second day, ending after the serial interval's mean.
+  --overdispersion quasi-poisson widens the interval by the window's
+  Pearson dispersion.
 incidence: trailing --window (7) sum per 100 000 of --population,
   exact Poisson (Garwood) bounds.
 positivity: trailing --window (7) positives / tests, Wilson bounds.
@@ -112,6 +116,9 @@ def estimate(
     si_file: Annotated[Path | None, typer.Option(help="rt: CSV `k,p` serial interval.")] = None,
     prior_mean: Annotated[float, typer.Option(help="rt: prior mean of R.")] = 5.0,
     prior_sd: Annotated[float, typer.Option(help="rt: prior SD of R.")] = 5.0,
+    overdispersion: Annotated[
+        str, typer.Option(help="rt: none (Poisson, as EpiEstim) or quasi-poisson.")
+    ] = "none",
     population: Annotated[float | None, typer.Option(help="incidence: population.")] = None,
     method: Annotated[str, typer.Option(help="aberration: c1, c2, c3 or farrington.")] = "c1",
     week_system: Annotated[str, typer.Option(help="aberration farrington: iso or cdc.")] = "iso",
@@ -154,6 +161,7 @@ def estimate(
         min_samples=min_samples, horizon=horizon, growth_window=growth_window,
         threshold=threshold, los_median=los_median, los_quartiles=(los_q1, los_q3), model=model,
         n_boot=n_boot, seed=seed, increments=increments, delay_window=delay_window,
+        overdispersion=overdispersion.lower(),
     )
     table = run_estimate(kind.value, input, options)
     if output == "-":

@@ -13,7 +13,9 @@ from server.indicators.aberration import (
 )
 from server.indicators.accuracy import (
     AccuracyReport,
+    IntervalScore,
     projection_accuracy,
+    weighted_interval_score,
 )
 from server.indicators.curves import (
     CurveFit,
@@ -109,6 +111,7 @@ __all__ = [
     "GrowthRate",
     "IcuProjection",
     "IncidenceRate",
+    "IntervalScore",
     "LengthOfStay",
     "NormalisedWastewater",
     "Nowcast",
@@ -166,5 +169,6 @@ __all__ = [
     "trend",
     "triangle_from_vintages",
     "weekly_sum",
+    "weighted_interval_score",
     "wilson_interval",
 ]

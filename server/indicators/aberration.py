@@ -24,8 +24,16 @@ from server.indicators._arrays import (
 from server.indicators._levelfit import Levels, fit_levels
 
 EARS_METHODS = ("C1", "C2", "C3")
-# Hutwagner et al. (2003) thresholds [memory: original EARS thresholds]
+EARS_DEFINITIONS = ("cdc", "surveillance")
+# Thresholds on the statistic. "cdc": 3, 3 and 2 standard deviations, the CDC's EARS as described
+# by Hutwagner et al. (2003) and Fricker et al. (2008) [memory, not checked against the papers].
+# "surveillance": z_{1-alpha} with alpha 0.001 (C1, C2) and 0.025 (C3), the defaults of earsC in
+# the R package surveillance (its code and help page): 3.0902 and 1.9600.
 EARS_THRESHOLDS = {"C1": 3.0, "C2": 3.0, "C3": 2.0}
+SURVEILLANCE_ALPHA = {"C1": 0.001, "C2": 0.001, "C3": 0.025}
+# Floor on the baseline SD. "cdc": 0.2 (common practice, no source; a flat baseline would divide
+# by zero); "surveillance": earsC's minSigma, 0 by default.
+EARS_SD_FLOOR = {"cdc": 0.2, "surveillance": 0.0}
 _EARS_BASELINE = 7
 _EARS_LAG = {"C1": 1, "C2": 3, "C3": 3}
 _FARRINGTON_ROWS = 16_384  # (region, week) fits per batch
@@ -36,8 +44,10 @@ _FARRINGTON_CELLS = 65_536  # (fit, baseline week) cells per block of fits
 class EarsResult:
     """EARS output, arrays shaped (regions, days); NaN/False where the baseline is too short.
 
-    ``statistic`` is C1, C2 or C3; ``expected`` the baseline mean; ``upper`` the count above which
-    the day alarms; ``sd`` the (floored) sample standard deviation of the baseline.
+    ``statistic`` is C1, C2 or C3 (for C3 under ``definition="surveillance"``: the excess of the
+    two previous days, the quantity its alarm compares with the threshold); ``expected`` the
+    baseline mean; ``upper`` the count above which the day alarms; ``sd`` the (floored) sample
+    standard deviation of the baseline.
     """
 
     method: str
@@ -48,6 +58,7 @@ class EarsResult:
     alarm: NDArray[np.bool_]
     threshold: float
     sd_floor: float
+    definition: str = "cdc"
 
 
 def _baseline_stats(
@@ -92,8 +103,9 @@ def ears(
     *,
     method: str = "C1",
     threshold: float | None = None,
-    sd_floor: float = 0.2,
+    sd_floor: float | None = None,
     min_baseline: int = 7,
+    definition: str = "cdc",
 ) -> EarsResult:
     """EARS C1, C2 or C3 aberration statistics for daily counts.
 
@@ -103,12 +115,19 @@ def ears(
         Daily counts, NaN for missing days (left out of baselines; no alarm on a missing day).
     method : {"C1", "C2", "C3"}
     threshold : float, optional
-        Alarm threshold on the statistic; defaults 3, 3 and 2 (Hutwagner et al. 2003) [memory].
-    sd_floor : float
-        Lower bound on the baseline sd, so a flat baseline (sd = 0) does not divide by zero
-        (common practice, no source: 0.2 by default).
+        Alarm threshold on the statistic. Default for ``"cdc"``: 3, 3 and 2 (Hutwagner et al.
+        2003; Fricker et al. 2008) [memory]; for ``"surveillance"``: ``z_{1-alpha}``, alpha
+        0.001, 0.001 and 0.025 (3.0902, 3.0902, 1.9600), earsC's defaults.
+    sd_floor : float, optional
+        Lower bound on the baseline sd. Default for ``"cdc"``: 0.2, so a flat baseline (sd = 0)
+        does not divide by zero (common practice, no source); for ``"surveillance"``: 0
+        (earsC's ``minSigma``; a flat baseline then alarms on any count above its mean).
     min_baseline : int
         Baseline days (of 7) that must be present.
+    definition : {"cdc", "surveillance"}
+        ``"cdc"``: the CDC's EARS as published (below). ``"surveillance"``: what ``earsC`` of
+        the R package surveillance computes; C1 and C2 differ only by the default threshold
+        and floor, C3 differs in what alarms (below).
 
     Returns
     -------
@@ -120,12 +139,18 @@ def ears(
 
     - C1: baseline days ``t-7 .. t-1``; ``C1_t = (y_t - m_t) / s_t``.
     - C2: baseline days ``t-9 .. t-3`` (two guard days); ``C2_t = (y_t - m_t) / s_t``.
-    - C3: ``C3_t = sum_{j=0..2} max(0, C2_{t-j} - 1)``.
+    - C3 (``"cdc"``): ``C3_t = sum_{j=0..2} max(0, C2_{t-j} - 1)`` (Fricker et al. 2008,
+      which is also the statistic of earsC's help page).
 
-    Alarm when the statistic exceeds the threshold. ``upper`` is the count at which it would:
-    ``m + threshold s`` for C1 and C2; for C3, ``m + s (1 + max(0, threshold - P))`` where ``P``
-    is the C3 contribution of the two previous days (when ``P`` already exceeds the threshold the
-    day alarms whatever its count).
+    Alarm when the statistic exceeds the threshold (strictly, as earsC's ``observed >
+    upperbound``). ``upper`` is the count at which it would: ``m + threshold s`` for C1 and C2;
+    for C3, ``m + s (1 + max(0, threshold - P))`` where ``P`` is the C3 contribution of the two
+    previous days (when ``P`` already exceeds the threshold the day alarms whatever its count).
+
+    C3 under ``"surveillance"`` follows earsC's code, not its help page: the upper bound is
+    ``max(0, y_t + s_t (threshold - P))``, so the day alarms when ``P > threshold`` and
+    ``y_t > 0``, whatever the size of ``y_t``; the help page's bound ``m + s (threshold - P)``
+    matches neither that code nor its own C3 statistic. The statistic reported is ``P``.
 
     References
     ----------
@@ -133,44 +158,64 @@ def ears(
     response Early Aberration Reporting System (EARS). J Urban Health 80(Suppl 1):i89-i96.
     Fricker RD, Hegler BL, Dunfee DA (2008). Comparing syndromic surveillance detection methods:
     EARS' versus a CUSUM-based methodology. Stat Med 27:3407-3429. [memory]
+    Salmon M, Schumacher D, Höhle M (2016). Monitoring count time series in R: aberration
+    detection in public health surveillance. J Stat Softw 70(10):1-35 (package surveillance,
+    function earsC).
     """
     y = as_nonnegative_counts("counts", counts)
     if method not in EARS_METHODS:
         raise ValueError(f"method: expected one of {EARS_METHODS}, got {method!r}")
-    if not np.isfinite(sd_floor) or sd_floor <= 0:
+    if definition not in EARS_DEFINITIONS:
+        raise ValueError(f"definition: expected one of {EARS_DEFINITIONS}, got {definition!r}")
+    floor = EARS_SD_FLOOR[definition] if sd_floor is None else float(sd_floor)
+    if not np.isfinite(floor) or floor < 0 or (floor == 0 and definition == "cdc"):
         raise ValueError(f"sd_floor: must be positive and finite, got {sd_floor!r}")
     check_window("min_baseline", min_baseline, minimum=2)
     if min_baseline > _EARS_BASELINE:
         raise ValueError(
             f"min_baseline: at most {_EARS_BASELINE} baseline days, got {min_baseline}"
         )
-    thr = EARS_THRESHOLDS[method] if threshold is None else float(threshold)
+    if threshold is not None:
+        thr = float(threshold)
+    elif definition == "cdc":
+        thr = EARS_THRESHOLDS[method]
+    else:
+        thr = float(stats.norm.ppf(1.0 - SURVEILLANCE_ALPHA[method]))
     if not np.isfinite(thr):
         raise ValueError(f"threshold: must be finite, got {threshold!r}")
-    return _ears(y, method, thr, float(sd_floor), min_baseline)
+    return _ears(y, method, thr, floor, min_baseline, definition)
 
 
-def _ears(y: FloatArray, method: str, thr: float, sd_floor: float, min_baseline: int) -> EarsResult:
+def _ears(
+    y: FloatArray, method: str, thr: float, sd_floor: float, min_baseline: int, definition: str
+) -> EarsResult:
     mean, sd_raw = _baseline_stats(y, _EARS_LAG[method], min_baseline)
     sd = np.where(np.isnan(sd_raw), np.nan, np.fmax(sd_raw, sd_floor))
-    with np.errstate(invalid="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore"):
         c = (y - mean) / sd
     if method == "C3":
         part = np.maximum(c - 1.0, 0.0)  # NaN stays NaN
         pad = np.full((y.shape[0], 2), np.nan)
         lagged = np.concatenate([pad, part], axis=1)
         previous = lagged[:, 1:-1] + lagged[:, :-2]  # days t-1 and t-2
-        statistic = part + previous
         with np.errstate(invalid="ignore"):
-            upper = mean + sd * (1.0 + np.maximum(thr - previous, 0.0))
+            if definition == "cdc":
+                statistic = part + previous
+                upper = mean + sd * (1.0 + np.maximum(thr - previous, 0.0))
+            else:  # earsC's code: max(0, y_t + s_t (z - P)), alarm when y_t exceeds it
+                statistic = np.where(np.isnan(part), np.nan, previous)
+                upper = np.maximum(y + sd * (thr - previous), 0.0)
     else:
         statistic = c
         upper = mean + thr * sd
     with np.errstate(invalid="ignore"):
-        alarm = np.isfinite(statistic) & (statistic > thr)
+        if definition == "surveillance":
+            alarm = np.isfinite(upper) & np.isfinite(y) & (y > upper)
+        else:
+            alarm = np.isfinite(statistic) & (statistic > thr)
     return EarsResult(
         method=method, statistic=statistic, expected=mean, sd=sd, upper=upper, alarm=alarm,
-        threshold=thr, sd_floor=sd_floor,
+        threshold=thr, sd_floor=sd_floor, definition=definition,
     )
 
 

@@ -1,4 +1,4 @@
-"""Retrospective accuracy of growth-curve projections over a stored history.
+"""Forecast accuracy: retrospective growth-curve projections and the weighted interval score.
 
 For each origin day the curve is fitted on the data up to that day only, the cumulative count is
 projected ``horizon`` days ahead and compared with what was observed later. The final-size
@@ -194,4 +194,99 @@ def _replay(
         converged=converged,
         mean_error_before_turning=_masked_mean(k_error, before & converged, axis=1),
         mean_error_after_turning=_masked_mean(k_error, ~before & converged, axis=1),
+    )
+
+
+@dataclass(frozen=True)
+class IntervalScore:
+    """Weighted interval score of quantile forecasts and its decomposition (Bracher et al. 2021).
+
+    Arrays have the shape of the observations; ``wis = dispersion + underprediction +
+    overprediction``. NaN where an input is missing.
+    """
+
+    wis: FloatArray
+    dispersion: FloatArray
+    underprediction: FloatArray
+    overprediction: FloatArray
+    alphas: tuple[float, ...]
+
+
+def weighted_interval_score(
+    observed: ArrayLike,
+    median: ArrayLike,
+    lower: ArrayLike,
+    upper: ArrayLike,
+    alphas: ArrayLike,
+) -> IntervalScore:
+    """Weighted interval score of a median and K central prediction intervals.
+
+    Parameters
+    ----------
+    observed, median : array_like, shape (...)
+        What happened and the forecast median.
+    lower, upper : array_like, shape (..., K)
+        Bounds of the central ``(1 - alpha_k)`` prediction intervals.
+    alphas : array_like, shape (K,)
+        Levels ``alpha_k`` in (0, 1) (0.05 for a 95 % interval).
+
+    Returns
+    -------
+    IntervalScore
+
+    Notes
+    -----
+    The interval score of the central (1 - alpha) interval [l, u] is (Gneiting & Raftery 2007,
+    eq. 43)
+
+    .. math:: IS_\\alpha(l, u; y) = (u - l) + \\frac{2}{\\alpha}(l - y)\\,1(y < l)
+              + \\frac{2}{\\alpha}(y - u)\\,1(y > u),
+
+    and the weighted interval score (Bracher et al. 2021, eq. 2, weights
+    :math:`w_0 = 1/2`, :math:`w_k = \\alpha_k/2`)
+
+    .. math:: WIS = \\frac{1}{K + 1/2}\\Big(\\tfrac12 |y - m| + \\sum_{k=1}^K
+              \\frac{\\alpha_k}{2} IS_{\\alpha_k}(l_k, u_k; y)\\Big).
+
+    Dispersion is :math:`\\sum_k \\frac{\\alpha_k}{2}(u_k - l_k) / (K + 1/2)`;
+    underprediction (the observation above the forecast) collects :math:`(y - u_k)_+` and
+    :math:`\\tfrac12 (y - m)_+`, overprediction :math:`(l_k - y)_+` and
+    :math:`\\tfrac12 (m - y)_+`, each divided by :math:`K + 1/2`.
+
+    References
+    ----------
+    Bracher J, Ray EL, Gneiting T, Reich NG (2021). Evaluating epidemic forecasts in an interval
+    format. PLoS Comput Biol 17:e1008618.
+    Gneiting T, Raftery AE (2007). Strictly proper scoring rules, prediction, and estimation.
+    J Am Stat Assoc 102:359-378.
+    """
+    a = np.asarray(alphas, dtype=np.float64).reshape(-1)
+    if a.size == 0 or not np.all((a > 0) & (a < 1)):
+        raise ValueError(f"alphas: expected levels in (0, 1), got {a.tolist()!r}")
+    y = np.asarray(observed, dtype=np.float64)
+    m = np.asarray(median, dtype=np.float64)
+    lo = np.asarray(lower, dtype=np.float64)
+    hi = np.asarray(upper, dtype=np.float64)
+    if m.shape != y.shape:
+        raise ValueError(f"median: shape {m.shape} differs from observed {y.shape}")
+    for name, arr in (("lower", lo), ("upper", hi)):
+        if arr.shape != (*y.shape, a.size):
+            raise ValueError(f"{name}: expected shape {(*y.shape, a.size)}, got {arr.shape}")
+    with np.errstate(invalid="ignore"):
+        crossed = hi < lo
+    if crossed.any():
+        first = tuple(int(i) for i in np.argwhere(crossed)[0])
+        raise ValueError(f"upper: below lower at index {first}")
+    yk = y[..., np.newaxis]
+    half = a / 2.0
+    norm = a.size + 0.5
+    dispersion = np.sum(half * (hi - lo), axis=-1) / norm
+    under = (np.sum(np.maximum(yk - hi, 0.0), axis=-1) + 0.5 * np.maximum(y - m, 0.0)) / norm
+    over = (np.sum(np.maximum(lo - yk, 0.0), axis=-1) + 0.5 * np.maximum(m - y, 0.0)) / norm
+    return IntervalScore(
+        wis=dispersion + under + over,
+        dispersion=dispersion,
+        underprediction=under,
+        overprediction=over,
+        alphas=tuple(float(x) for x in a),
     )

@@ -23,6 +23,12 @@ __all__ = [
 ]
 
 
+# Mass of the discretised gamma left out beyond the last kept lag: below this the cut changes no
+# estimate by more than about 1e-12 relative, so the result equals the untruncated distribution
+# that EpiEstim uses (discr_si over every lag up to the series length).
+TAIL_MASS = 1e-12
+
+
 @dataclass(frozen=True, eq=False)
 class SerialInterval:
     """A discrete serial-interval distribution ``pmf[k] = w_k`` for k = 0, 1, ...
@@ -30,14 +36,21 @@ class SerialInterval:
     Attributes
     ----------
     pmf : ndarray, shape (lags + 1,)
-        Probabilities, ``pmf[0] == 0`` and summing to 1.
+        Probabilities, ``pmf[0] == 0`` and summing to 1 (within 1e-6).
     mean, sd : float
         Mean and standard deviation of the discrete distribution.
+    parametric : bool
+        True when built from a parametric (gamma) serial interval by
+        :func:`gamma_serial_interval` without ``lags``: the distribution then stands for the
+        untruncated one, and :func:`~server.indicators.renewal.reproduction_number` uses, like
+        EpiEstim's ``parametric_si``, its mean over the lags the series can hold to decide
+        where estimates begin.
     """
 
     pmf: FloatArray
     mean: float
     sd: float
+    parametric: bool = False
 
     def __post_init__(self) -> None:
         pmf = np.asarray(self.pmf, dtype=np.float64)
@@ -56,11 +69,39 @@ class SerialInterval:
         """Largest lag k with a stored probability."""
         return int(self.pmf.size - 1)
 
+    def mean_within(self, lags: int) -> float:
+        """``sum_{k <= lags} k w_k``: the mean over the first ``lags`` lags, not renormalised."""
+        k = np.arange(min(self.pmf.size, max(lags, 0) + 1))
+        return float((k * self.pmf[: k.size]).sum())
 
-def _from_pmf(pmf: FloatArray) -> SerialInterval:
+
+def _from_pmf(pmf: FloatArray, *, parametric: bool = False) -> SerialInterval:
     k = np.arange(pmf.size)
     mean = float((k * pmf).sum())
-    return SerialInterval(pmf, mean, float(np.sqrt((k * k * pmf).sum() - mean**2)))
+    sd = float(np.sqrt(max((k * k * pmf).sum() - mean**2, 0.0)))
+    return SerialInterval(pmf, mean, sd, parametric)
+
+
+def _offset_gamma_weights(k: FloatArray, a: float, b: float) -> FloatArray:
+    """Web Appendix 11 weights written with survival functions ``S = 1 - F`` (S(x) = 1, x <= 0).
+
+    Substituting ``F = 1 - S`` in the appendix formula cancels the constant terms and leaves
+    ``w_k = 2(k-1) S_a(k-1) - k S_a(k) - (k-2) S_a(k-2) + ab [S_{a+1}(k) + S_{a+1}(k-2) -
+    2 S_{a+1}(k-1)]``: the same numbers, without the cancellation of CDFs near 1 in the tail.
+    """
+
+    def sf(x: FloatArray, shape: float) -> FloatArray:
+        return np.where(x > 0, stats.gamma.sf(np.maximum(x, 0.0), shape, scale=b), 1.0)
+
+    w = (
+        2 * (k - 1) * sf(k - 1, a)
+        - k * sf(k, a)
+        - (k - 2) * sf(k - 2, a)
+        + a * b * (sf(k, a + 1) + sf(k - 2, a + 1) - 2 * sf(k - 1, a + 1))
+    )
+    w = np.maximum(w, 0.0)
+    w[k == 0] = 0.0
+    return w
 
 
 def gamma_serial_interval(mean: float, sd: float, *, lags: int | None = None) -> SerialInterval:
@@ -71,8 +112,10 @@ def gamma_serial_interval(mean: float, sd: float, *, lags: int | None = None) ->
     mean, sd : float
         Mean (> 1 day) and standard deviation of the serial interval in days.
     lags : int, optional
-        Largest lag kept. By default the smallest k whose cumulative mass reaches 0.9999. The
-        kept probabilities are renormalised to sum to 1.
+        Largest lag kept; the kept probabilities are then renormalised to sum to 1. By default
+        every lag is kept up to the first K with less than ``TAIL_MASS`` (1e-12) beyond it, and
+        nothing is renormalised: ``pmf[k]`` equals EpiEstim's ``discr_si(k, mean, sd)`` for
+        every k <= K, and the dropped tail changes no Rt by more than about 1e-12 relative.
 
     Returns
     -------
@@ -86,8 +129,9 @@ def gamma_serial_interval(mean: float, sd: float, *, lags: int | None = None) ->
     .. math:: w_k = k F_a(k) + (k-2) F_a(k-2) - 2(k-1) F_a(k-1)
               + a b \\,[2 F_{a+1}(k-1) - F_{a+1}(k-2) - F_{a+1}(k)],
 
-    for k >= 0, clipped at 0 (w_0 = 0). This is the formula of Web Appendix 11; before
-    truncation the w_k sum to 1 and have mean :math:`\\mu`.
+    for k >= 0, clipped at 0 (w_0 = 0). This is the formula of Web Appendix 11 (EpiEstim's
+    ``discr_si``); it is evaluated in the equivalent survival-function form, which keeps the
+    tail accurate. Untruncated, the w_k sum to 1 and have mean :math:`\\mu`.
 
     References
     ----------
@@ -99,28 +143,18 @@ def gamma_serial_interval(mean: float, sd: float, *, lags: int | None = None) ->
     sd = check_positive("sd", sd)
     if mean <= 1.0:
         raise ValueError(f"mean: the offset gamma needs a mean above 1 day, got {mean!r}")
-    if lags is not None:
-        lags = check_window("lags", lags)
     a = ((mean - 1.0) / sd) ** 2
     b = sd * sd / (mean - 1.0)
-    n = lags if lags is not None else int(np.ceil(mean + 40.0 * sd)) + 2
-    k = np.arange(n + 1, dtype=np.float64)
-
-    def cdf(x: FloatArray, shape: float) -> FloatArray:
-        return stats.gamma.cdf(np.maximum(x, 0.0), shape, scale=b)
-
-    w = (
-        k * cdf(k, a)
-        + (k - 2) * cdf(k - 2, a)
-        - 2 * (k - 1) * cdf(k - 1, a)
-        + a * b * (2 * cdf(k - 1, a + 1) - cdf(k - 2, a + 1) - cdf(k, a + 1))
-    )
-    w = np.maximum(w, 0.0)
-    w[0] = 0.0
-    if lags is None:
-        n = int(np.searchsorted(np.cumsum(w), 0.9999)) + 1
-        w = w[: max(n, 2)]
-    return _from_pmf(w / w.sum())
+    if lags is not None:
+        lags = check_window("lags", lags)
+        w = _offset_gamma_weights(np.arange(lags + 1, dtype=np.float64), a, b)
+        return _from_pmf(w / w.sum())
+    # a grid whose end leaves far less than TAIL_MASS of the continuous law beyond it
+    n = int(np.ceil(1.0 + float(stats.gamma.isf(TAIL_MASS * 1e-3, a, scale=b)))) + 3
+    w = _offset_gamma_weights(np.arange(n + 1, dtype=np.float64), a, b)
+    beyond = np.append(np.cumsum(w[::-1])[::-1][1:], 0.0)  # beyond[k] = sum_{j > k} w_j
+    last = max(int(np.argmax(beyond < TAIL_MASS)), 1)
+    return _from_pmf(w[: last + 1], parametric=True)
 
 
 def discrete_serial_interval(pmf: ArrayLike) -> SerialInterval:

@@ -287,11 +287,12 @@ def rt_table(
     prior_mean: float = 5.0,
     prior_sd: float = 5.0,
     level: float = 0.95,
+    overdispersion: Literal["none", "quasi-poisson"] = "none",
 ) -> EstimateTable:
     """Rt by Cori et al. (2013) on ``cases``; each row is the last day of its window."""
     res = _checked(lambda: renewal.reproduction_number(
         source.values["cases"], serial, window, prior_mean=prior_mean, prior_sd=prior_sd,
-        level=level,
+        level=level, overdispersion=overdispersion,
     ))
     return _table("rt", source, {
         "r_mean": res.estimate[0], "r_lower": res.lower[0], "r_upper": res.upper[0],
@@ -588,6 +589,7 @@ class EstimateOptions:
     seed: int = 0
     increments: bool = False
     delay_window: int | None = None
+    overdispersion: str = "none"
 
 
 _COUNTS = ("cases", "positives", "tests", "admissions", "occupied", "staffed")
@@ -616,8 +618,13 @@ def run_estimate(kind: str, path: Path, options: EstimateOptions) -> EstimateTab
 
     if kind == "rt":
         serial = _serial_interval(o)
+        if o.overdispersion not in ("none", "quasi-poisson"):
+            raise EstimateOptionError(
+                f"--overdispersion: expected none or quasi-poisson, got {o.overdispersion!r}"
+            )
         return rt_table(read("cases"), serial, window=o.window or 7, prior_mean=o.prior_mean,
-                        prior_sd=o.prior_sd, level=o.level)
+                        prior_sd=o.prior_sd, level=o.level,
+                        overdispersion=o.overdispersion)  # type: ignore[arg-type]
     if kind == "incidence":
         if o.population is None:
             raise EstimateOptionError("--population: incidence needs the population")

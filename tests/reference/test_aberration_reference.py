@@ -152,3 +152,61 @@ def test_farrington_batched_weeks_match_statsmodels_per_week() -> None:
             mu0, phi = _farrington_flat_by_statsmodels(y[region], t0)
             assert_allclose(result.expected[region, t0], mu0, rtol=1e-8)
             assert_allclose(result.dispersion[region, t0], phi, rtol=1e-8)
+
+
+# ------------------------------------------------------------------ earsC (R package surveillance)
+# R cannot run here. The values below are computed by hand from earsC's documented formulas
+# (help page earsC.Rd, Salmon et al. 2016 J Stat Softw 70(10)) and, for C3, from its code
+# (R/earsC.R, where the bound differs from the help page): z = qnorm(1 - alpha) with alpha
+# 0.001 (C1, C2) and 0.025 (C3); minSigma 0; alarm when observed > upperbound.
+
+
+def test_ears_surveillance_c1_upper_is_mean_plus_z_sd() -> None:
+    result = ears(SERIES, method="C1", definition="surveillance")
+    # help page: U1(t) = mean + z_{1-alpha} S1(t); day 7: 5 + qnorm(0.999) sqrt(10/6) = 8.98948
+    z = stats.norm.ppf(0.999)
+    assert_allclose(result.threshold, 3.090232306, rtol=1e-9)
+    assert_allclose(result.upper[0, 7], 5.0 + z * np.sqrt(10.0 / 6.0))
+    assert_allclose(result.upper[0, 7], 8.98948, atol=1e-5)
+    assert bool(result.alarm[0, 7])
+    assert result.sd_floor == 0.0
+
+
+def test_ears_surveillance_flat_baseline_alarms_above_the_mean() -> None:
+    # minSigma = 0 (earsC default): a flat baseline has U1 = mean, so 6 > 5 alarms, 5 does not
+    result = ears([[5.0] * 7 + [6.0], [5.0] * 8], method="C1", definition="surveillance")
+    assert result.alarm[0, 7] and not result.alarm[1, 7]
+    assert_allclose(result.upper[:, 7], 5.0)
+    # the CDC definition floors the sd at 0.2: upper 5 + 3 * 0.2 = 5.6, so 6 alarms there too
+    assert_allclose(ears([5.0] * 7 + [6.0], method="C1").upper[0, 7], 5.6)
+
+
+SPIKE = [4.0, 6.0, 5.0, 7.0, 3.0, 5.0, 5.0, 4.0, 6.0, 5.0, 5.0, 30.0, 5.0, 2.0]
+
+
+def _c2_by_hand(y: list[float], t: int) -> tuple[float, float, float]:
+    base = y[t - 9 : t - 2]  # days t-9 .. t-3
+    m, s = statistics.mean(base), statistics.stdev(base)
+    return (y[t] - m) / s, m, s
+
+
+def test_ears_c3_cdc_alarms_on_the_spike_day_surveillance_on_the_next() -> None:
+    cdc = ears(SPIKE, method="C3")
+    surv = ears(SPIKE, method="C3", definition="surveillance")
+    z = stats.norm.ppf(0.975)  # 1.95996, earsC's C3 default (alpha 0.025)
+    # day 11 (the spike): C2_11 = (30 - 5) / 1.2910 = 19.4; C2_9, C2_10 below 1, so P_11 = 0.
+    c2 = {t: _c2_by_hand(SPIKE, t) for t in (9, 10, 11, 12)}
+    p11 = max(0.0, c2[10][0] - 1) + max(0.0, c2[9][0] - 1)
+    assert p11 == 0.0
+    # CDC (Fricker et al. 2008): C3_11 = sum of three days' excess = C2_11 - 1 > 2: alarm.
+    assert_allclose(cdc.statistic[0, 11], c2[11][0] - 1.0)
+    assert bool(cdc.alarm[0, 11])
+    # earsC code: upper_11 = max(0, y_11 + S2(11) (z - P_11)) = 30 + 1.291 z > 30: no alarm.
+    assert_allclose(surv.upper[0, 11], 30.0 + c2[11][2] * z)
+    assert not surv.alarm[0, 11]
+    # day 12: P_12 = max(0, C2_11 - 1) + max(0, C2_10 - 1) > z and y_12 = 5 > 0: earsC alarms,
+    # with upper_12 = max(0, 5 + S2(12) (z - P_12)) = 0 here.
+    p12 = max(0.0, c2[11][0] - 1) + max(0.0, c2[10][0] - 1)
+    assert_allclose(surv.statistic[0, 12], p12)
+    assert_allclose(surv.upper[0, 12], max(0.0, 5.0 + c2[12][2] * (z - p12)))
+    assert bool(surv.alarm[0, 12])

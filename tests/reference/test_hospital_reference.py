@@ -61,7 +61,7 @@ def test_length_of_stay_matches_published_median(
     los = length_of_stay(distribution=distribution, median=median, quartiles=quartiles)  # type: ignore[arg-type]
     cdf = np.cumsum(los.pmf)
     assert int(np.searchsorted(cdf, 0.5)) == int(median)
-    assert_allclose(cdf[int(median)], 0.5, atol=2e-3)  # the 90-day tail is renormalised away
+    assert_allclose(cdf[int(median)], 0.5, atol=1e-12)  # F(m) = 1/2: nothing renormalised
 
 
 def test_lognormal_length_of_stay_quartile_ratio_matches_scipy() -> None:
@@ -72,3 +72,33 @@ def test_lognormal_length_of_stay_quartile_ratio_matches_scipy() -> None:
     k = np.arange(1, 31)
     assert_allclose(los.pmf[1:31], ref.cdf(k) - ref.cdf(k - 1), rtol=1e-6, atol=1e-12)
     assert_allclose(los.mean, sum(ref.sf(np.arange(400))), rtol=1e-6)
+
+
+@pytest.mark.parametrize("current", ["residual", "survival"])
+def test_projection_equals_direct_sum_with_untruncated_length_of_stay(current: str) -> None:
+    # Direct sum with the untruncated lognormal stay (scipy.stats.lognorm.sf; census days
+    # L = ceil(X), so P(L > k) = P(X > k)) over 200 000 days, median 8, IQR 5-13 (Rees et al.
+    # 2020, BMC Med 18:270): O_h = O_0 R(h) + sum_{s=1}^{h} A_0 e^{rs} S(h - s), R(h) = S(h)
+    # ("survival") or sum_{j>=h} S(j) / sum_{j>=0} S(j) ("residual").
+    dist = stats.lognorm(s=np.log(13.0 / 5.0) / (2 * stats.norm.ppf(0.75)), scale=8.0)
+    sf = dist.sf(np.arange(200_000.0))
+    horizon, a0, o0, r = 21, 6.0, 70.0, 0.03
+    tail = np.cumsum(sf[::-1])[::-1]
+    remain = sf[: horizon + 1] if current == "survival" else tail[: horizon + 1] / tail[0]
+    expected = np.array([
+        o0 * remain[h] + sum(a0 * np.exp(r * s) * sf[h - s] for s in range(1, h + 1))
+        for h in range(horizon + 1)
+    ])
+    res = project_icu([a0], [o0], [100.0], [r], [r], [r], los=length_of_stay(), horizon=horizon,
+                      current_patients=current)  # type: ignore[arg-type]
+    assert_allclose(res.estimate[0], expected, rtol=1e-9)
+
+
+def test_default_length_of_stay_mean_equals_untruncated_mean() -> None:
+    # E[L] = sum_{k>=0} P(X > k) with scipy's lognormal survival function: 10.781 days, where the
+    # former 90-day cut with renormalisation gave 10.750.
+    dist = stats.lognorm(s=np.log(13.0 / 5.0) / (2 * stats.norm.ppf(0.75)), scale=8.0)
+    expected = dist.sf(np.arange(200_000.0)).sum()
+    assert_allclose(length_of_stay().mean, expected, rtol=1e-9)
+    assert_allclose(expected, 10.781, atol=5e-4)
+    assert_allclose(length_of_stay(max_days=90).mean, 10.750, atol=5e-4)

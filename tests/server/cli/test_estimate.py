@@ -149,6 +149,24 @@ def test_estimate_rt_equals_direct_call_and_gamma_posterior(daily: Path) -> None
     assert_allclose(numbers(cols["r_lower"])[ok], q, rtol=1e-9)
 
 
+def test_estimate_rt_quasi_poisson_equals_direct_call(daily: Path) -> None:
+    result = run("rt", "--input", str(daily), "--si-mean", "4.7", "--si-sd", "2.9",
+                 "--overdispersion", "quasi-poisson")
+    assert result.exit_code == 0, result.output
+    _, cols = read_output(result.stdout)
+    cases = with_gap(daily_frame(1)["cases"])
+    direct = reproduction_number(cases, gamma_serial_interval(4.7, 2.9), 7,
+                                 overdispersion="quasi-poisson")
+    assert_allclose(numbers(cols["r_upper"]), direct.upper[0], rtol=1e-15)
+
+
+def test_estimate_rt_unknown_overdispersion_is_refused(daily: Path) -> None:
+    result = run("rt", "--input", str(daily), "--si-mean", "4.7", "--si-sd", "2.9",
+                 "--overdispersion", "negbin")
+    assert result.exit_code == 1
+    assert "--overdispersion: expected none or quasi-poisson" in result.output
+
+
 def test_estimate_rt_rows_without_estimate_stay_empty(daily: Path) -> None:
     result = run("rt", "--input", str(daily), "--si-mean", "4.7", "--si-sd", "2.9")
     _, cols = read_output(result.stdout)

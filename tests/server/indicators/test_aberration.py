@@ -61,12 +61,25 @@ def test_ears_alarm_is_strictly_above_threshold() -> None:
         ({"sd_floor": 0.0}, "sd_floor"),
         ({"min_baseline": 9}, "min_baseline"),
         ({"threshold": float("nan")}, "threshold"),
+        ({"definition": "who"}, "definition"),
+        ({"definition": "surveillance", "sd_floor": -1.0}, "sd_floor"),
     ],
-    ids=["method", "sd-floor", "min-baseline", "threshold"],
+    ids=["method", "sd-floor", "min-baseline", "threshold", "definition", "negative-floor"],
 )
 def test_ears_rejects_bad_arguments(kwargs: dict, message: str) -> None:
     with pytest.raises(ValueError, match=message):
         ears(np.ones(20), **kwargs)
+
+
+@pytest.mark.parametrize("method", ["C1", "C2"])
+def test_ears_definitions_agree_given_the_same_threshold_and_floor_for_c1_c2(method: str) -> None:
+    y = np.random.default_rng(3).poisson(12.0, size=(3, 60)).astype(float)
+    y[:, 30] += 25.0
+    cdc = ears(y, method=method, threshold=2.5, sd_floor=0.2)
+    surv = ears(y, method=method, threshold=2.5, sd_floor=0.2, definition="surveillance")
+    assert cdc.alarm.any()
+    assert_array_equal(surv.alarm, cdc.alarm)
+    assert_allclose(surv.upper, cdc.upper)
 
 
 def test_farrington_short_history_is_nan() -> None:

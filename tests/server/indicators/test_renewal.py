@@ -63,11 +63,14 @@ def test_reproduction_number_hand_example() -> None:
     # By hand (Cori et al. 2013, eq. 2; prior shape 1, scale 5 so rate 0.2):
     # Lambda_2 = .5*4 + .5*2 = 3, Lambda_3 = .5*6 + .5*4 = 5, Lambda_4 = .5*8 + .5*6 = 7.
     # t=3: shape 1 + 6 + 8 = 15, rate 0.2 + 3 + 5 = 8.2;  t=4: shape 19, rate 12.2.
-    assert_allclose(result.shape[0, 3:], [15.0, 19.0])
-    assert_allclose(result.rate[0, 3:], [8.2, 12.2])
-    assert_allclose(result.estimate[0, 3:], [15 / 8.2, 19 / 12.2])
-    assert_allclose(result.cv[0, 3:], [15**-0.5, 19**-0.5])
-    assert np.all(np.isnan(result.estimate[0, :3]))
+    # Days before the series count as 0 (EpiEstim overall_infectivity): Lambda_1 = .5*2 = 1, so
+    # t=2 (window days 1..2): shape 1 + 4 + 6 = 11, rate 0.2 + 1 + 3 = 4.2.
+    assert_allclose(result.shape[0, 2:], [11.0, 15.0, 19.0])
+    assert_allclose(result.rate[0, 2:], [4.2, 8.2, 12.2])
+    assert_allclose(result.estimate[0, 2:], [11 / 4.2, 15 / 8.2, 19 / 12.2])
+    assert_allclose(result.cv[0, 2:], [11**-0.5, 15**-0.5, 19**-0.5])
+    # no window may hold day 0 (EpiEstim: t_start >= 2)
+    assert np.all(np.isnan(result.estimate[0, :2]))
 
 
 def test_reproduction_number_quantiles_match_scipy_gamma() -> None:
@@ -93,11 +96,38 @@ def test_reproduction_number_missing_day_blanks_windows_and_history() -> None:
     assert np.isfinite(result.estimate[0, 20:28]).all()
 
 
-def test_reproduction_number_first_estimate_needs_full_history() -> None:
-    si = discrete_serial_interval([0.0, 0.5, 0.3, 0.2])
-    result = reproduction_number(np.full((1, 20), 5.0), si, window=7)
-    # K = 3 history days plus a 7-day window: first estimate on day 3 + 7 - 1 = 9.
-    assert np.isnan(result.estimate[0, :9]).all() and np.isfinite(result.estimate[0, 9:]).all()
+def test_reproduction_number_light_missing_history_counts_as_zero() -> None:
+    si = discrete_serial_interval([0.0, 0.6, 0.39995, 0.00005])
+    incidence = np.full((1, 30), 10.0)
+    incidence[0, 10] = np.nan
+    result = reproduction_number(incidence, si, window=3)
+    # Day 10 is at lag 3 (weight 5e-5 <= 1e-4) of day 13 only: Lambda_13 counts it as 0, by hand
+    # 0.6*10 + 0.39995*10 = 9.9995; Lambda_11 and Lambda_12 (lags 1 and 2) are blank, so are
+    # the windows holding day 10, 11 or 12.
+    lam = infectiousness(incidence, si)
+    assert_allclose(lam[0, 13], 9.9995)
+    assert np.isnan(lam[0, 11:13]).all() and np.isfinite(lam[0, 10])
+    assert np.isnan(result.estimate[0, 10:15]).all() and np.isfinite(result.estimate[0, 15])
+
+
+@pytest.mark.parametrize(
+    ("window", "mean", "first"),
+    # EpiEstim estimate_R: t_start >= 2 and t_end > mean_si (days counted from 1), so the first
+    # 0-based end day is max(window, floor(mean)).
+    [(7, 2.0, 7), (3, 5.5, 5), (2, 9.0, 9), (7, 9.5, 9)],
+    ids=["window", "mean5.5", "mean-integer", "mean9.5"],
+)
+def test_reproduction_number_first_estimate_follows_epiestim_rule(
+    window: int, mean: float, first: int
+) -> None:
+    k = int(2 * mean - 1)  # two lags placed symmetrically around the mean
+    pmf = np.zeros(k + 1)
+    pmf[1] = pmf[k] = 0.5
+    si = discrete_serial_interval(pmf)
+    assert_allclose(si.mean, mean)
+    result = reproduction_number(np.full((1, 30), 5.0), si, window=window)
+    assert np.isnan(result.estimate[0, :first]).all()
+    assert np.isfinite(result.estimate[0, first:]).all()
 
 
 def test_reproduction_number_zero_infectiousness_is_nan() -> None:
@@ -113,11 +143,11 @@ def test_infectiousness_matches_numpy_convolve() -> None:
     si = gamma_serial_interval(4.7, 2.9)
     incidence = np.random.default_rng(52).poisson(50, size=(3, 80)).astype(float)
     lam = infectiousness(incidence, si)
-    k = si.lags
+    assert np.isnan(lam[:, 0]).all()  # no history on the first day
     for region in range(3):
-        # Reference: numpy.convolve, Lambda_t = sum_k w_k I_{t-k}.
+        # Reference: numpy.convolve, Lambda_t = sum_k w_k I_{t-k} (0 before the series).
         expected = np.convolve(incidence[region], si.pmf)[:80]
-        assert_allclose(lam[region, k:], expected[k:], rtol=1e-10)
+        assert_allclose(lam[region, 1:], expected[1:], rtol=1e-10)
 
 
 def test_growth_to_reproduction_matches_mgf_quadrature() -> None:

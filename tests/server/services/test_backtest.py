@@ -60,7 +60,10 @@ def test_as_known_values_equal_an_as_of_read_of_that_morning(
     j = (day - first).days
     for name in ("incidence_7d", "positivity_7d", "admissions_7d", "icu_share", "rt"):
         got = result.evaluation.indicators[name].estimate[:, j]
-        assert_allclose(got, ref[name].estimate[:, -1], rtol=1e-9, err_msg=name)
+        # rt: the replay sees WINDOW_DAYS (56) days of history, the serial interval keeps lags to
+        # 69 days (mass beyond 49 days ~1e-9), so the two agree to ~1e-8, not to rounding
+        rtol = 1e-7 if name == "rt" else 1e-9
+        assert_allclose(got, ref[name].estimate[:, -1], rtol=rtol, err_msg=name)
 
 
 def test_as_known_replay_differs_from_latest_only_through_revisions(demo_session: Session) -> None:
