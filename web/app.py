@@ -101,6 +101,7 @@ def create_app(
     app.include_router(health.router)
     app.include_router(login.router, prefix="/staff")
     app.include_router(review.router, prefix="/staff")
+    app.include_router(review.api_router)
     app.include_router(policies.router, prefix="/staff")
     app.include_router(users.router, prefix="/staff")
     app.include_router(staff_feeds_router, prefix="/staff")

@@ -80,3 +80,22 @@ def demo_session(demo_db: Database) -> Iterator[Session]:
     with demo_db.sessions() as s:
         yield s
         s.rollback()
+
+
+def seen(session: Session, assessment_id: int) -> dict[str, int | None]:
+    """What a review form opened now shows of the district of ``assessment_id``: its official
+    tier and the decision that set it (the arguments :func:`server.services.review.decide`
+    compares), read straight from the decision table."""
+    from sqlalchemy import select
+
+    from server.store.models import Assessment, Decision
+
+    assessment = session.get(Assessment, assessment_id)
+    assert assessment is not None
+    row = session.scalar(
+        select(Decision).where(Decision.region_id == assessment.region_id)
+        .order_by(Decision.effective_date.desc(), Decision.decided_at.desc(), Decision.id.desc())
+        .limit(1)
+    )
+    return {"official_tier": None if row is None else row.tier,
+            "official_decision_id": None if row is None else row.id}

@@ -13,7 +13,7 @@ from server.services.auth import (
     authenticate,
     has_role,
 )
-from tests.web.conftest import ROLE_USER, csrf_of, login
+from tests.web.conftest import ROLE_USER, csrf_of, login, seen_fields
 
 PAGES = [
     ("/staff/", "viewer"),
@@ -74,7 +74,7 @@ def test_decision_without_reason_is_refused(demo_app_client: TestClient) -> None
     action = page.split('action="/staff/review/')[1].split('"')[0]
     answer = demo_app_client.post(
         f"/staff/review/{action}", data={"csrf": csrf_of(page), "action": "confirm",
-                                          "reason": "  "})
+                                          "reason": "  ", **seen_fields(page, action)})
     assert answer.status_code == 422
     assert "a decision needs a reason" in answer.text
 
