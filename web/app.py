@@ -84,7 +84,7 @@ def create_app(
     app.state.templates.env.filters["local"] = lambda value: local_time(value, zone)
     app.state.notify = notify_config_from(settings.notify_file)
     app.state.signer = SessionSigner(settings.secret_key)
-    app.state.login_limiter = LoginLimiter()
+    app.state.login_limiter = LoginLimiter(db)
     app.state.page_cache = PageCache()
     app.state.public_stamps = StampMemo()
     # jobs run in this process; their state is in the database (server/services/backtest_jobs)
