@@ -661,7 +661,8 @@ def publish(
 
     With ``notify``, the districts whose public tier changed are notified (``published`` events).
     With nothing to publish, nothing is written (no audit entry) and the result has
-    ``decisions == 0``.
+    ``decisions == 0``. First publications are made under the districts' locks, like
+    :func:`decide`, so two publications at once start each district once.
 
     Raises
     ------
@@ -671,6 +672,12 @@ def publish(
     approver = _approver(session, user)
     now = datetime.now(UTC)
     starting = _first_publications(session)
+    if starting:
+        # under the districts' locks (in id order: two publications never wait on each other in
+        # a circle), read again: a decision or publication that committed meanwhile wins
+        for region_id in sorted(item.region_id for item in starting):
+            _lock_district(session, region_id)
+        starting = _first_publications(session)
     if not starting and not _unpublished_count(session):
         return PublishResult(published_at=now, decisions=0, regions=(), initial=())
     initial: list[str] = []

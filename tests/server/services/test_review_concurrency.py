@@ -28,6 +28,7 @@ from server.services.review import (
     DecisionConflictError,
     decide,
     pending_changes,
+    publish,
 )
 from server.services.users import add_user
 from server.store import make_sessionmaker, scratch_engine, upgrade
@@ -55,7 +56,7 @@ def _seed(db: Database, rules: Path) -> None:
             RegionRecord(code="RC", name="Racecounty", level="county", parent=None,
                          population=200_000),
             *[RegionRecord(code=f"R{i}", name=f"Racedistrict {i}", level="district",
-                           parent="RC", population=100_000) for i in range(ROUNDS + 1)],
+                           parent="RC", population=100_000) for i in range(ROUNDS + 3)],
         ], actor="test", source="test")
         for name in APPROVERS:
             add_user(session=s, name=name, role="approver", password="race-pass-1234")
@@ -63,9 +64,9 @@ def _seed(db: Database, rules: Path) -> None:
         append_vintage(session=s, feed="daily", checksum="race",
                        received_at=datetime.combine(END + timedelta(days=1), time(5), UTC),
                        rows=pd.DataFrame({
-                           "region": [f"R{i}" for i in range(ROUNDS + 1) for _ in days],
+                           "region": [f"R{i}" for i in range(ROUNDS + 3) for _ in days],
                            "measure": "cases",
-                           "ref_date": [d for _ in range(ROUNDS + 1) for d in days],
+                           "ref_date": [d for _ in range(ROUNDS + 3) for d in days],
                            "value": 40.0}))
         store_ruleset(session=s, path=rules, author="test", activate=True)
 
@@ -152,3 +153,25 @@ def test_decide_from_a_stale_form_is_refused(db: Database) -> None:
         _decider(db, APPROVERS[1], change.assessment_id, True, "from the old form")()
     assert caught.value.decision_id == made.id and caught.value.by == APPROVERS[0]
     assert caught.value.seen_decision_id is None
+
+
+def _publisher(db: Database, user: str) -> Callable[[], Any]:
+    def call() -> Any:
+        with db.transaction() as s:
+            return publish(session=s, user=user)
+    return call
+
+
+def test_publish_twice_at_once_starts_each_district_once(db: Database) -> None:
+    """The rounds above leave districts never decided; two first publications at once."""
+    with db.sessions() as s:
+        never = s.scalar(select(func.count()).select_from(Region).where(
+            Region.level == "district", ~Region.id.in_(select(DecisionRow.region_id))))
+    assert never
+    results = _together(_publisher(db, APPROVERS[0]), _publisher(db, APPROVERS[1]))
+    assert not any(isinstance(r, Exception) for r in results), results
+    assert sorted(len(r.initial) for r in results) == [0, never]
+    with db.sessions() as s:
+        per_district = s.execute(select(DecisionRow.region_id, func.count())
+                                 .group_by(DecisionRow.region_id)).all()
+    assert {n for _rid, n in per_district} == {1}
