@@ -2,9 +2,11 @@
 
 The login form is protected by a double-submit token (a random cookie echoed in a hidden field),
 since there is no session yet; after login every form carries the session-bound CSRF token.
-Failed logins are rate limited per user name (any case) and, far more loosely, per client address,
-so staff sharing one office or proxy address do not lock each other out
-(:mod:`server.services.auth` says why).
+Failed logins are rate limited per user name (any case) and client address together and, far more
+loosely, per client address, so a stranger who knows a name cannot lock its owner out and staff
+sharing one office or proxy address do not lock each other out (:mod:`server.services.auth` says
+why). Each attempt is stored before its password is checked, so the limit holds however many
+arrive at once; a refused attempt says when to try again (429).
 """
 
 from __future__ import annotations

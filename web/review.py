@@ -1,18 +1,35 @@
-"""Review queue: confirm or override each pending change with a reason; publish; history."""
+"""Review queue: confirm or override each pending change with a reason; publish; history.
+
+A decision names the assessment it answers and the official tier it saw (the form's hidden
+``official_tier`` and ``official_decision`` fields, ``"none"`` when the district had none; the
+JSON API's ``official_tier`` and ``official_decision_id``). When someone decided the district
+meanwhile, or new data changed the recommendation, nothing is stored: the page answers 409 with
+the typed reason kept (the API answers 409 with the reason in its body).
+"""
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
-from fastapi import APIRouter, Form, Query, Request
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi import APIRouter, Depends, Form, Header, HTTPException, Query, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from pydantic import BaseModel, Field
 
 from server.services.queue import review_queue
-from server.services.review import RecommendationChangedError, decide, publish
-from web.deps import ApproverDep, CsrfDep, NotifyDep, SessionDep, StaffDep
+from server.services.review import (
+    DecisionConflictError,
+    RecommendationChangedError,
+    ReviewError,
+    decide,
+    publish,
+)
+from web.deps import ApproverDep, CsrfDep, NotifyDep, SessionDep, StaffDep, signer
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
+api_router = APIRouter(tags=["staff"])
+
+NONE = "none"
 
 
 @router.get("/review", response_class=HTMLResponse)
@@ -25,25 +42,39 @@ def queue(
     return render(request, "staff/review.html", {"q": q, "published": published})
 
 
+def _seen(field: str, value: str) -> int | None:
+    """A hidden field of what the form saw: a whole number, or ``none``."""
+    text = value.strip()
+    if text == NONE:
+        return None
+    if not text.lstrip("-").isdigit():
+        raise ReviewError(field, f"{value!r} is neither a whole number nor {NONE!r}")
+    return int(text)
+
+
 @router.post("/review/{assessment_id}", response_model=None)
 def decide_one(
     request: Request, session: SessionDep, user: ApproverDep, _csrf: CsrfDep,
-    assessment_id: int, action: Annotated[str, Form()], reason: Annotated[str, Form()] = "",
-    tier: Annotated[str, Form()] = "",
+    assessment_id: int, action: Annotated[str, Form()],
+    official_tier: Annotated[str, Form()], official_decision: Annotated[str, Form()],
+    reason: Annotated[str, Form()] = "", tier: Annotated[str, Form()] = "",
 ) -> Response:
     """Confirm (``action=confirm``) or override (``action=override`` with ``tier``).
 
-    When new data changed the recommendation while the form was open, the queue is shown
-    again (409) with a notice naming the new recommendation and the typed reason kept.
+    When new data changed the recommendation, or another approver decided the district, while
+    the form was open, the queue is shown again (409) with a notice and the typed reason kept.
     """
     try:
         decide(session=session, assessment_id=assessment_id, user=user.name,
                accept=action == "confirm", tier=int(tier) if tier.strip().isdigit() else None,
-               reason=reason)
-    except RecommendationChangedError as changed:
+               reason=reason, official_tier=_seen("official_tier", official_tier),
+               official_decision_id=_seen("official_decision", official_decision))
+    except (RecommendationChangedError, DecisionConflictError) as refused:
+        changed = refused if isinstance(refused, RecommendationChangedError) else None
+        conflict = refused if isinstance(refused, DecisionConflictError) else None
         return render(request, "staff/review.html", {
             "q": review_queue(session=session), "published": "", "changed": changed,
-            "kept_reason": {changed.region: reason},
+            "conflict": conflict, "kept_reason": {refused.region: reason},
         }, status_code=409)
     return RedirectResponse("/staff/review", status_code=303)
 
@@ -56,3 +87,49 @@ def publish_all(
     result = publish(session=session, user=user.name, notify=notify)
     flag = "1" if result.decisions else "none"
     return RedirectResponse(f"/staff/review?published={flag}", status_code=303)
+
+
+# -- JSON API ---------------------------------------------------------------------------------
+class DecisionIn(BaseModel):
+    """A decision posted to the JSON API; ``official_tier`` and ``official_decision_id`` are
+    what the client saw (``null`` when the district had no official tier) and are required."""
+
+    action: Literal["confirm", "override"]
+    reason: str = Field(min_length=1)
+    tier: int | None = None
+    official_tier: int | None
+    official_decision_id: int | None
+
+
+def csrf_header(
+    request: Request, user: StaffDep, x_csrf_token: Annotated[str, Header()] = ""
+) -> None:
+    """Refuse an API post whose ``X-CSRF-Token`` header does not match the session (403)."""
+    if not signer(request).csrf_ok(request.state.sid, x_csrf_token or None):
+        raise HTTPException(status_code=403, detail="the X-CSRF-Token header is missing or old")
+
+
+@api_router.post("/api/review/{assessment_id}/decision", status_code=201, response_model=None)
+def decide_api(
+    session: SessionDep, user: ApproverDep, _csrf: Annotated[None, Depends(csrf_header)],
+    assessment_id: int, body: DecisionIn,
+) -> Response:
+    """Confirm or override one pending change; 409 (with the reason sent) when the district was
+    decided, or its recommendation changed, since the client read it."""
+    try:
+        made = decide(session=session, assessment_id=assessment_id, user=user.name,
+                      accept=body.action == "confirm", tier=body.tier, reason=body.reason,
+                      official_tier=body.official_tier,
+                      official_decision_id=body.official_decision_id)
+    except (RecommendationChangedError, DecisionConflictError) as refused:
+        kind = ("decided_meanwhile" if isinstance(refused, DecisionConflictError)
+                else "recommendation_changed")
+        return JSONResponse(status_code=409, content={
+            "detail": str(refused), "conflict": kind, "region": refused.region,
+            "reason": body.reason,
+        })
+    return JSONResponse(status_code=201, content={
+        "id": made.id, "region": made.region, "tier": made.tier, "tier_name": made.tier_name,
+        "kind": made.kind, "effective_date": made.effective_date.isoformat(),
+        "assessment_id": made.assessment_id,
+    })

@@ -14,33 +14,39 @@ Roles are ordered: viewer < analyst < approver < admin; a page that needs ``anal
 approvers and admins too. User names match whatever their case
 (:func:`server.services.users.find_user`).
 
-Failed logins are limited per user name and, much more loosely, per client address
-(:class:`LoginLimiter`): by default 5 failures of one name, and 100 failures from one address,
-within 5 minutes. The per-name limit is the guard against guessing one account's password. The
-per-address limit is 20 times higher on purpose: behind a reverse proxy, or from one office
-network, every member of staff shares an address, and a tight limit there would let a few
-mistyped passwords (or anyone who knows the login page) lock the whole office out. It still stops
-one address from trying many names quickly. Counting per (address, name) instead would add
-nothing the per-name limit does not already give.
+Failed logins are limited per (user name, client address) together and, 20 times more loosely,
+per client address (:class:`LoginLimiter`): by default 5 failures of one name from one address,
+and 100 failures from one address, within 5 minutes. Counting a name per address means a
+stranger who knows a user name cannot lock its owner out: the owner signs in from their own
+address while the stranger's address is refused. The per-address limit is loose on purpose:
+behind a reverse proxy, or from one office network, every member of staff shares an address,
+and a tight limit there would let a few mistyped passwords lock the whole office out; it still
+stops one address from trying many names quickly.
+
+Every attempt is stored and committed (``login_attempt``, in its own transaction) *before* its
+password is checked, and then counted; an attempt that finds the limit used up is refused
+without checking the password. The slow hash therefore never runs for more attempts than the
+limit allows, however many arrive at once and on however many web workers: each attempt counts
+every attempt committed before it reads, so at most ``attempts`` of them find room.
 """
 
 from __future__ import annotations
 
 import hashlib
 import hmac
+import math
 import secrets
-import threading
-import time
-from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from functools import cache
 
 from itsdangerous import BadSignature, URLSafeTimedSerializer
-from sqlalchemy import select
+from sqlalchemy import delete, select, update
 from sqlalchemy.orm import Session
 
 from server.services.audit import record
+from server.services.database import Database
 from server.services.errors import ServiceError, UnknownRoleError
 from server.services.users import (
     ROLES,
@@ -50,7 +56,7 @@ from server.services.users import (
     name_key,
     verify_password,
 )
-from server.store.models import User
+from server.store.models import LoginAttempt, User
 
 __all__ = [
     "ROLES",
@@ -86,9 +92,21 @@ class LoginRefusedError(ServiceError, ValueError):
 
 
 class TooManyAttemptsError(ServiceError, ValueError):
-    def __init__(self, retry_after: float) -> None:
+    """The login limit is used up; says for what (``name``: this name from this address,
+    ``address``: this address) and when to try again."""
+
+    def __init__(
+        self, retry_after: float, *, scope: str = "name", until: datetime | None = None
+    ) -> None:
         self.retry_after = retry_after
-        super().__init__(f"too many failed logins; try again in {retry_after:.0f} s")
+        self.scope = scope
+        self.until = until
+        what = ("for this user name from your address" if scope == "name"
+                else "from your address")
+        minutes, seconds = divmod(math.ceil(retry_after), 60)
+        wait = f"{minutes} min {seconds} s" if minutes else f"{seconds} s"
+        at = f" (at {until:%H:%M:%S} UTC)" if until is not None else ""
+        super().__init__(f"too many failed logins {what}; try again in {wait}{at}")
 
 
 class AccountError(ServiceError, ValueError):
@@ -115,16 +133,23 @@ def has_role(role: str, needed: str) -> bool:
 
 
 class LoginLimiter:
-    """Sliding-window limit of failed logins per key (user name, client address).
+    """Sliding-window limit of failed logins, shared by every web worker through the database.
 
-    At most ``attempts`` failures of one key within ``window`` seconds (``client_attempts`` for
-    keys of client addresses, see the module docstring for why it is higher); further tries are
-    refused until the oldest failure leaves the window. Memory per process (each web worker
-    limits on its own).
+    At most ``attempts`` pending or failed attempts of one (name, address) pair and
+    ``client_attempts`` of one address within ``window`` seconds; further attempts are refused
+    (and not counted) until enough of them leave the window. A successful login forgives the
+    failures of its pair. ``clock`` gives the current time (tests move it).
+
+    Each attempt runs :meth:`begin` before the password is checked: stored and committed in
+    its own short transaction of ``database``, then counted in another. :meth:`finish` records
+    the outcome in the caller's transaction (with the audit entry), so a request never holds
+    two connections at once (40 logins at once on a pool of 15 would otherwise wait on each
+    other); should that transaction roll back, the attempt stays pending and keeps counting.
     """
 
     def __init__(
-        self, *, attempts: int = 5, window: float = 300.0, client_attempts: int | None = None
+        self, database: Database, *, attempts: int = 5, window: float = 300.0,
+        client_attempts: int | None = None, clock: Callable[[], datetime] | None = None,
     ) -> None:
         if attempts < 1:
             raise ValueError(f"attempts must be >= 1, got {attempts}")
@@ -135,36 +160,74 @@ class LoginLimiter:
             raise ValueError(
                 f"client_attempts ({client_attempts}) must be >= attempts ({attempts})"
             )
+        self.database = database
         self.attempts = attempts
         self.client_attempts = client_attempts
         self.window = window
-        self._failures: dict[str, deque[float]] = {}
-        self._lock = threading.Lock()
+        self._clock = clock or (lambda: datetime.now(UTC))
 
-    def limit(self, key: str) -> int:
-        """The failures allowed for ``key`` within the window."""
-        return self.client_attempts if key.startswith("client:") else self.attempts
+    def begin(self, *, name: str, client: str) -> int:
+        """Store an attempt of ``name`` from ``client`` and count it; its id.
 
-    def check(self, key: str, *, now: float | None = None) -> None:
-        """Raise :class:`TooManyAttemptsError` when ``key`` has used up its attempts."""
-        now = time.monotonic() if now is None else now
-        with self._lock:
-            failures = self._failures.get(key)
-            if failures is None:
-                return
-            while failures and failures[0] <= now - self.window:
-                failures.popleft()
-            if len(failures) >= self.limit(key):
-                raise TooManyAttemptsError(failures[0] + self.window - now)
+        Raises
+        ------
+        TooManyAttemptsError
+            When the pair or the address has used up its attempts (the attempt is kept as
+            ``limited`` and does not count).
+        """
+        key, client = name_key(name)[:100], client[:100]
+        now = self._clock()
+        with self.database.transaction() as s:
+            row = LoginAttempt(at=now, client=client, name_key=key, outcome="pending")
+            s.add(row)
+            # attempts older than a day are of no use to any limit
+            s.execute(delete(LoginAttempt).where(LoginAttempt.at < now - timedelta(days=1)))
+            s.flush()
+            attempt = row.id
+        # a new transaction: it sees every attempt committed so far, this one included
+        since = now - timedelta(seconds=self.window)
+        refused: TooManyAttemptsError | None = None
+        with self.database.transaction() as s:
+            counted = (
+                select(LoginAttempt.at).where(
+                    LoginAttempt.client == client, LoginAttempt.at > since,
+                    LoginAttempt.outcome.in_(_COUNTED), LoginAttempt.id != attempt,
+                ).order_by(LoginAttempt.at)
+            )
+            for query, limit, scope in (
+                (counted.where(LoginAttempt.name_key == key), self.attempts, "name"),
+                (counted, self.client_attempts, "address"),
+            ):
+                others = list(s.scalars(query))
+                if len(others) < limit:
+                    continue
+                # room again once all but limit - 1 of the others have left the window
+                free_at = others[len(others) - limit] + timedelta(seconds=self.window)
+                refused = TooManyAttemptsError(max(1.0, (free_at - now).total_seconds()),
+                                               scope=scope, until=free_at)
+                s.execute(update(LoginAttempt).where(LoginAttempt.id == attempt)
+                          .values(outcome="limited"))
+                break
+        if refused is not None:
+            raise refused
+        return attempt
 
-    def failed(self, key: str, *, now: float | None = None) -> None:
-        now = time.monotonic() if now is None else now
-        with self._lock:
-            self._failures.setdefault(key, deque()).append(now)
+    def finish(self, attempt: int, *, ok: bool, session: Session) -> None:
+        """Record in ``session`` how ``attempt`` ended; a success forgives its pair's failures."""
+        row = session.get(LoginAttempt, attempt)
+        if row is None:
+            return
+        row.outcome = "ok" if ok else "failed"
+        if ok:
+            session.execute(update(LoginAttempt).where(
+                LoginAttempt.client == row.client, LoginAttempt.name_key == row.name_key,
+                LoginAttempt.outcome == "failed",
+            ).values(outcome="cleared").execution_options(synchronize_session=False))
+        session.flush()
 
-    def succeeded(self, key: str) -> None:
-        with self._lock:
-            self._failures.pop(key, None)
+
+#: Outcomes that count against the limits (in flight or failed).
+_COUNTED = ("pending", "failed")
 
 
 @cache
@@ -179,28 +242,25 @@ def _dummy_hash() -> str:
 def authenticate(
     *, session: Session, name: str, password: str, limiter: LoginLimiter, client: str
 ) -> StaffUser:
-    """Check a login; failed attempts count against ``client`` and ``name`` separately (the
-    name in any case, so ``Ines.Admin`` and ``ines.admin`` share one count).
+    """Check a login; attempts count per (name, ``client``) and per ``client`` (the name in any
+    case, so ``Ines.Admin`` and ``ines.admin`` share one count).
 
-    The password is run through scrypt whether or not the user exists or is active (against a
-    dummy hash when there is no such user), so the answer's timing does not tell which names
-    exist.
+    The attempt is stored and counted (:meth:`LoginLimiter.begin`, its own committed
+    transaction) before the password is checked. The password is run through scrypt whether or
+    not the user exists or is active (against a dummy hash when there is no such user), so the
+    answer's timing does not tell which names exist. ``session`` (on the limiter's database)
+    reads the user and records the outcome and the audit entry.
     """
-    keys = (f"client:{client}", f"user:{name_key(name)}")
-    for key in keys:
-        limiter.check(key)
+    attempt = limiter.begin(name=name, client=client)
     user = find_user(session=session, name=name)
     stored = user.password_hash if user is not None else _dummy_hash()
     valid = verify_password(password, stored)
     ok = user is not None and user.active and valid
+    limiter.finish(attempt, ok=ok, session=session)
     if not ok or user is None:
-        for key in keys:
-            limiter.failed(key)
         record(session=session, actor=name.strip()[:100] or "?", action="auth.refused",
                subject=client)
         raise LoginRefusedError()
-    for key in keys:
-        limiter.succeeded(key)
     record(session=session, actor=user.name, action="auth.login", subject=client)
     return _staff(user)
 

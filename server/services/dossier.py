@@ -22,6 +22,7 @@ from sqlalchemy.orm import Session, aliased
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.policies import parsed
+from server.services.tiers import decision_scales, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
 
@@ -312,14 +313,14 @@ def explanation_page(*, session: Session, code: str, day: date | None = None) ->
         ("Days the candidate was lower", f"{c.get('down', 0)} of {c.get('release_days', 0)}"),
         ("Days since the last change",
          f"{c.get('since_change', 0)} (minimum {c.get('min_days_in_tier', 0)})"),
-        ("Candidate tier", rs.tier_name(int(data.get("candidate", a.recommended_tier)))),
+        ("Candidate tier", tier_name(rs, int(data.get("candidate", a.recommended_tier)))),
     )
     gates = tuple((g["id"], bool(g["passed"]),
                    g.get("message") or "") for g in data.get("gates", []))
     prepare = tuple((s["id"], bool(s["active"]), s.get("message") or "")
                     for s in data.get("prepare", []))
     official = session.execute(
-        select(Decision.tier).where(Decision.region_id == region.id,
+        select(Decision).where(Decision.region_id == region.id,
                                     Decision.published_at.is_not(None),
                                     Decision.effective_date <= a.ref_date + timedelta(days=1))
         .order_by(Decision.effective_date.desc(), Decision.id.desc()).limit(1)
@@ -329,9 +330,11 @@ def explanation_page(*, session: Session, code: str, day: date | None = None) ->
         code=region.code, name=region.name, day=a.ref_date, assessment_id=a.id,
         ruleset_name=row.name, ruleset_version=row.version, ruleset_sha256=row.sha256,
         data_cutoff=a.data_cutoff, run_cutoff=cutoff, tier=a.recommended_tier,
-        tier_name=rs.tier_name(a.recommended_tier), previous_name=rs.tier_name(previous),
+        tier_name=tier_name(rs, a.recommended_tier), previous_name=tier_name(rs, previous),
         action=str(data.get("action", "")), sentence=a.explanation.get("sentence", ""),
         criteria=tuple(crits), counters=counters, held_by=tuple(data.get("held_by", [])),
         gates=gates, prepare=prepare,
-        official_name=rs.tier_name(official) if official is not None else None,
+        # named under the ruleset it was decided under (a policy change keeps the old name)
+        official_name=(decision_scales(session=session, rows=[official])[official.id]
+                       .name(official.tier) if official is not None else None),
     )

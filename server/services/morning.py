@@ -29,6 +29,7 @@ from server.services.feeds import FeedStatus, feed_statuses
 from server.services.overview import DataOverview, data_overview
 from server.services.policies import parsed
 from server.services.review import official_tiers, pending_changes
+from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, FeedState, Measure, Region, Vintage
 from server.store.types import UTCDateTime
 
@@ -202,30 +203,37 @@ def _published_changes(
     """Districts whose published official tier changed after ``since`` (the previous morning).
 
     The official tier is the published decision with the latest effective date (ties: the later
-    decision), as in :func:`server.services.review.official_tiers`."""
+    decision), as in :func:`server.services.review.official_tiers`; each is named under the
+    ruleset it was decided under (:mod:`server.services.tiers`)."""
     if since is None or ruleset is None:
         return ()
     names = {line.code: line.name for line in base.lines}
-    name = ruleset.tier_name
     rows = session.execute(
-        select(Region.code, Decision.tier, Decision.published_at)
+        select(Region.code, Decision)
         .join(Region, Region.id == Decision.region_id)
         .where(Decision.published_at.is_not(None))
         .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
     ).all()
-    before: dict[str, int] = {}
-    after: dict[str, int] = {}
-    for code, tier, published_at in rows:
-        after[code] = tier
-        if published_at is not None and published_at.astimezone(UTC) <= since:
-            before[code] = tier
+    before: dict[str, Decision] = {}
+    after: dict[str, Decision] = {}
+    for code, row in rows:
+        after[code] = row
+        if row.published_at is not None and row.published_at.astimezone(UTC) <= since:
+            before[code] = row
+    changed = {code: row for code, row in after.items()
+               if code not in before or before[code].tier != row.tier}
+    scales = decision_scales(session=session, rows=[*changed.values(), *(
+        before[c] for c in changed if c in before)])
+
+    def name(row: Decision) -> str:
+        return f"{scales[row.id].name(row.tier)} ({row.tier})"
+
     return tuple(
         Change(code=code, name=names.get(code, code), what=(
-            f"official tier published: {name(before[code])} ({before[code]}) to {name(tier)} "
-            f"({tier})" if code in before
-            else f"official tier first published: {name(tier)} ({tier})"
+            f"official tier published: {name(before[code])} to {name(row)}" if code in before
+            else f"official tier first published: {name(row)}"
         ))
-        for code, tier in sorted(after.items()) if before.get(code) != tier
+        for code, row in sorted(changed.items())
     )
 
 
@@ -318,7 +326,7 @@ def _build_base(
             code=code, name=name, area=area, population=int(population),
             official_tier=None, official_name=None,
             recommended_tier=newest.recommended_tier if newest else None,
-            recommended_name=ruleset.tier_name(newest.recommended_tier) if newest else None,
+            recommended_name=tier_name(ruleset, newest.recommended_tier) if newest else None,
             pending=False, assessment_id=newest.id if newest else None, prepare=prepare,
             indicators=indicators, sentence=sentence, geometry=geometry,
         ))
@@ -357,8 +365,8 @@ def _changes(
     if before.recommended_tier != now.recommended_tier:
         verb = "rose" if now.recommended_tier > before.recommended_tier else "fell"
         out.append(Change(code=code, name=name, what=(
-            f"recommended tier {verb} from {ruleset.tier_name(before.recommended_tier)} "
-            f"to {ruleset.tier_name(now.recommended_tier)}"
+            f"recommended tier {verb} from {tier_name(ruleset, before.recommended_tier)} "
+            f"to {tier_name(ruleset, now.recommended_tier)}"
         )))
     for sid, on in now.prepare_signals.items():
         if on and not before.prepare_signals.get(sid, False):

@@ -35,6 +35,7 @@ from server.services.policies import parsed
 from server.services.review import OfficialTier, official_tiers
 from server.store import read_dense
 from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage
+from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
 
 __all__ = [
@@ -165,11 +166,6 @@ def public_stamp(*, session: Session) -> PublicStamp:
                        last_modified=changed)
 
 
-def _ruleset(session: Session) -> Ruleset | None:
-    row = active_ruleset(session=session)
-    return None if row is None else parsed(row)
-
-
 def _tiers(ruleset: Ruleset | None, lang: str | None) -> tuple[TierInfo, ...]:
     """The active ruleset's tiers in ``lang`` (its translations; the default text otherwise)."""
     if ruleset is None:
@@ -179,10 +175,19 @@ def _tiers(ruleset: Ruleset | None, lang: str | None) -> tuple[TierInfo, ...]:
                  for t in ruleset.tiers)
 
 
-def _tier_text(tiers: tuple[TierInfo, ...], off: OfficialTier | None) -> tuple[str | None, ...]:
-    """(name, public text) of an official tier in the page's language."""
+def _tier_text(
+    session: Session, active_id: int | None, tiers: tuple[TierInfo, ...],
+    off: OfficialTier | None, lang: str | None,
+) -> tuple[str | None, ...]:
+    """(name, public text) of an official tier in the page's language.
+
+    ``tiers`` are the active ruleset's; a tier decided under another ruleset (before a policy
+    change) keeps that ruleset's name and text (:mod:`server.services.tiers`)."""
     if off is None:
         return None, None
+    if off.ruleset_id is not None and off.ruleset_id != active_id:
+        row = session.get(RulesetRow, off.ruleset_id)
+        tiers = _tiers(parsed(row) if row is not None else None, lang)
     info = next((t for t in tiers if t.level == off.tier), None)
     return (info.name, info.public) if info is not None else (off.tier_name, off.public_text)
 
@@ -203,14 +208,17 @@ def public_map(*, session: Session, lang: str | None = None) -> PublicMap:
 
     Tier names and texts are in ``lang`` where the ruleset translates them."""
     published = official_tiers(session=session, published_only=True)
-    tiers = _tiers(_ruleset(session), lang)
+    active = active_ruleset(session=session)
+    active_id = None if active is None else active.id
+    tiers = _tiers(None if active is None else parsed(active), lang)
     entries = []
     for region, area in _districts(session):
         off = published.get(region.code)
         entries.append(
             PublicMapEntry(
                 code=region.code, name=region.name, area=area,
-                tier=off.tier if off else None, tier_name=_tier_text(tiers, off)[0],
+                tier=off.tier if off else None,
+                tier_name=_tier_text(session, active_id, tiers, off, lang)[0],
                 since=off.since if off else None, geometry=region.geometry,
             )
         )
@@ -303,8 +311,10 @@ def public_district_page(
             weeks = weekly_figures(dense["cases"][0], dense.dates, float(region.population),
                                    threshold)
             data_until = last_day
-    tiers = _tiers(_ruleset(session), lang)
-    tier_name, public_text = _tier_text(tiers, off)
+    active = active_ruleset(session=session)
+    active_id = None if active is None else active.id
+    tiers = _tiers(None if active is None else parsed(active), lang)
+    tier_name, public_text = _tier_text(session, active_id, tiers, off, lang)
     return PublicDistrictPage(
         code=region.code, name=region.name, area=area,
         tier=off.tier if off else None, tier_name=tier_name, public_text=public_text,

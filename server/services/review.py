@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from functools import lru_cache
 
-from sqlalchemy import func, or_, select
+from sqlalchemy import func, or_, select, update
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset, parse_ruleset
@@ -48,12 +48,14 @@ from server.services.evaluation import (
     newest_run,
 )
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
+from server.services.tiers import Scale, decision_scales, tier_label, tier_name
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
 
 __all__ = [
     "APPROVER_ROLES",
     "Decision",
+    "DecisionConflictError",
     "DecisionRecord",
     "OfficialTier",
     "PendingChange",
@@ -104,6 +106,38 @@ class RecommendationChangedError(ReviewError):
         )
 
 
+class DecisionConflictError(ReviewError):
+    """The district was decided since the form was opened: the official tier (or the decision
+    that set it) is not the one the form saw. Two approvers deciding the same change at the same
+    moment get one stored decision and this error."""
+
+    def __init__(
+        self, *, region: str, seen_tier: int | None, seen_decision_id: int | None,
+        tier: int | None, tier_name: str, decision_id: int | None, by: str,
+        at: datetime | None,
+    ) -> None:
+        self.region = region
+        self.seen_tier = seen_tier
+        self.seen_decision_id = seen_decision_id
+        self.tier = tier
+        self.tier_name = tier_name
+        self.decision_id = decision_id
+        self.by = by
+        self.at = at
+        saw = "no official tier" if seen_tier is None else f"official tier {seen_tier}"
+        if decision_id is None:
+            now = "it has no official tier"
+        else:
+            when = f" at {at:%Y-%m-%d %H:%M:%S} UTC" if at is not None else ""
+            who = f" by {by}" if by else ""
+            now = f"it is now {tier_name} (decision {decision_id}{who}{when})"
+        super().__init__(
+            "official_tier",
+            f"the form for {region} saw {saw} (decision {seen_decision_id or 'none'}); {now}; "
+            "someone decided meanwhile: review it again",
+        )
+
+
 @dataclass(frozen=True, kw_only=True)
 class OfficialTier:
     """The tier in force for a district by decision (published, unless asked otherwise)."""
@@ -115,6 +149,11 @@ class OfficialTier:
     public_text: str
     since: date
     published_at: datetime | None
+    #: The decision that set the tier, and the ruleset it was decided under (its name and
+    #: version; ``ruleset_id`` None when not known).
+    decision_id: int = 0
+    ruleset_id: int | None = None
+    ruleset_label: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -130,6 +169,12 @@ class PendingChange:
     since: date
     assessment_id: int
     sentence: str
+    #: The decision that set the official tier (None: never decided); a decision form sends it
+    #: back with the tier, so a decision taken meanwhile is noticed (409).
+    official_decision_id: int | None = None
+    #: How the active policy takes over an official tier decided under another ruleset
+    #: (empty when it was decided under the active one).
+    official_note: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -189,26 +234,6 @@ def _active(session: Session) -> Ruleset | None:
     return None if row is None else _parse(row.yaml_text)
 
 
-def _tier_name(ruleset: Ruleset | None, tier: int) -> str:
-    if ruleset is None or not -1 <= tier <= ruleset.top_tier:
-        return str(tier)
-    return ruleset.tier_name(tier)
-
-
-def _tier_label(ruleset: Ruleset | None, tier: int | None) -> str:
-    """A tier as people read it: "High (2)"; "none" for no tier."""
-    if tier is None:
-        return "none"
-    name = _tier_name(ruleset, tier)
-    return name if tier < 0 or name == str(tier) else f"{name} ({tier})"
-
-
-def _public_text(ruleset: Ruleset | None, tier: int) -> str:
-    if ruleset is None or not 0 <= tier <= ruleset.top_tier:
-        return ""
-    return ruleset.tiers[tier].public.strip()
-
-
 #: The order in which decisions take over from one another: by the day a decision takes effect,
 #: then by when it was taken (a late decision about an earlier day never outranks a later day).
 _RANK = (DecisionRow.effective_date, DecisionRow.decided_at, DecisionRow.id)
@@ -240,19 +265,36 @@ def _since(rows: list[DecisionRow]) -> date:
 
 
 def official_tiers(*, session: Session, published_only: bool = True) -> dict[str, OfficialTier]:
-    """Official tier of every district that has one, by region code."""
-    ruleset = _active(session)
+    """Official tier of every district that has one, by region code.
+
+    Each is named under the ruleset it was decided under (:mod:`server.services.tiers`), so
+    a tier the active policy does not have (after a policy change) keeps its name."""
     regions = {r.id: r for r in session.scalars(select(Region))}
+    decisions = _decisions(session, published_only)
+    scales = decision_scales(session=session, rows=[rows[-1] for rows in decisions.values()])
     out = {}
-    for region_id, rows in _decisions(session, published_only).items():
+    for region_id, rows in decisions.items():
         last = rows[-1]
         region = regions[region_id]
+        scale = scales[last.id]
         out[region.code] = OfficialTier(
             region=region.code, name=region.name, tier=last.tier,
-            tier_name=_tier_name(ruleset, last.tier), public_text=_public_text(ruleset, last.tier),
-            since=_since(rows), published_at=last.published_at,
+            tier_name=scale.name(last.tier), public_text=scale.public(last.tier),
+            since=_since(rows), published_at=last.published_at, decision_id=last.id,
+            ruleset_id=scale.ruleset_id, ruleset_label=scale.label,
         )
     return out
+
+
+def _takeover(scale: Scale, tier: int, active: Ruleset, active_id: int, active_label: str) -> str:
+    """How the active policy takes over an official tier decided under another ruleset."""
+    if scale.ruleset_id == active_id:
+        return ""
+    under = f" under {scale.label}" if scale.label else " (ruleset not known)"
+    return (
+        f"Official: {tier_label(scale.ruleset, tier)}{under}; the active policy {active_label} "
+        f"has tiers 0–{active.top_tier}: the next decision will be on its scale"
+    )
 
 
 def current_run(*, session: Session) -> LatestRun | None:
@@ -326,10 +368,14 @@ def pending_changes(*, session: Session) -> list[PendingChange]:
         return []
     decisions = _decisions(session, published_only=False)
     answered = _answered_assessments(session, decisions)
+    scales = decision_scales(session=session, rows=[rows[-1] for rows in decisions.values()])
+    active_row = latest.ruleset_row
+    active_label = f"{active_row.name} {active_row.version}"
     out = []
     for item in latest.items:
         rows = decisions.get(item.region_id, [])
-        official = rows[-1].tier if rows else None
+        last = rows[-1] if rows else None
+        official = last.tier if last is not None else None
         if item.assessment.recommended_tier == official:
             continue
         last_answer = answered.get(item.region_id)
@@ -339,14 +385,18 @@ def pending_changes(*, session: Session) -> list[PendingChange]:
             and last_answer[0] >= item.since
         ):
             continue
+        scale = scales[last.id] if last is not None else None
         out.append(
             PendingChange(
                 region=item.code, name=item.name, official_tier=official,
-                official_name="" if official is None else latest.ruleset.tier_name(official),
+                official_name="" if official is None or scale is None else scale.name(official),
                 recommended_tier=item.assessment.recommended_tier,
-                recommended_name=latest.ruleset.tier_name(item.assessment.recommended_tier),
+                recommended_name=tier_name(latest.ruleset, item.assessment.recommended_tier),
                 since=item.since, assessment_id=item.assessment.id,
                 sentence=str(item.assessment.explanation.get("sentence", "")),
+                official_decision_id=None if last is None else last.id,
+                official_note="" if official is None or scale is None else _takeover(
+                    scale, official, latest.ruleset, active_row.id, active_label),
             )
         )
     return sorted(out, key=lambda p: p.region)
@@ -376,20 +426,61 @@ def _approver(session: Session, user: str) -> User:
 
 def _as_decision(row: DecisionRow, code: str, user: str, ruleset: Ruleset | None) -> Decision:
     return Decision(
-        id=row.id, region=code, tier=row.tier, tier_name=_tier_name(ruleset, row.tier),
+        id=row.id, region=code, tier=row.tier, tier_name=tier_name(ruleset, row.tier),
         kind=row.kind, reason=row.reason, user=user, decided_at=row.decided_at,
         effective_date=row.effective_date, assessment_id=row.assessment_id,
         published_at=row.published_at,
     )
 
 
-def _official_tier_of(session: Session, region_id: int) -> int | None:
-    """Tier of the region's top-ranked decision (published or not), None when never decided."""
+def _official_of(session: Session, region_id: int) -> DecisionRow | None:
+    """The region's top-ranked decision (published or not), None when never decided."""
     return session.scalar(
-        select(DecisionRow.tier)
+        select(DecisionRow)
         .where(DecisionRow.region_id == region_id)
         .order_by(*(c.desc() for c in _RANK))
         .limit(1)
+    )
+
+
+def _lock_district(session: Session, region_id: int) -> None:
+    """Hold the district's decisions until the transaction ends.
+
+    PostgreSQL: a row lock on the region (``SELECT ... FOR UPDATE``); a second decision on the
+    same district waits for the first transaction to end, and its next statement (READ
+    COMMITTED) sees the decision the first one stored. SQLite: a write that changes nothing takes
+    the database's one write lock now, before the decision reads what it compares (in WAL mode
+    the first statement of a write transaction reads the newest commit). Either way the check
+    "the official decision is still the one the form saw" and the insert are one atomic step.
+    """
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(select(Region.id).where(Region.id == region_id).with_for_update())
+    else:
+        session.execute(
+            update(Region).where(Region.id == region_id).values(name=Region.name)
+            .execution_options(synchronize_session=False)
+        )
+
+
+def _check_seen(
+    session: Session, region_id: int, official: DecisionRow | None, seen_tier: int | None,
+    seen_decision_id: int | None,
+) -> None:
+    """Raise :class:`DecisionConflictError` unless ``official`` is what the form saw."""
+    current_id = None if official is None else official.id
+    current_tier = None if official is None else official.tier
+    if current_id == seen_decision_id and current_tier == seen_tier:
+        return
+    code = session.scalar(select(Region.code).where(Region.id == region_id)) or ""
+    by, name = "", "none"
+    if official is not None:
+        by = session.scalar(select(User.name).where(User.id == official.decided_by)) or ""
+        name = tier_label(decision_scales(session=session, rows=[official])[official.id].ruleset,
+                          official.tier)
+    raise DecisionConflictError(
+        region=code, seen_tier=seen_tier, seen_decision_id=seen_decision_id, tier=current_tier,
+        tier_name=name, decision_id=current_id, by=by,
+        at=None if official is None else official.decided_at,
     )
 
 
@@ -421,21 +512,32 @@ def _current_for(session: Session, posted: Assessment) -> Assessment:
     raise RecommendationChangedError(
         posted_id=posted.id, region=code, current_id=current_id,
         tier=None if current is None else current.recommended_tier,
-        tier_name=None if current is None else _tier_label(ruleset, current.recommended_tier),
+        tier_name=None if current is None else tier_label(ruleset, current.recommended_tier),
     )
 
 
 def decide(
     *, session: Session, assessment_id: int, user: str, accept: bool, tier: int | None,
-    reason: str,
+    reason: str, official_tier: int | None, official_decision_id: int | None,
 ) -> Decision:
     """Confirm (``accept``) the recommendation of an assessment, or override it with ``tier``.
 
     The reason is mandatory in both cases. The decision is unpublished until :func:`publish`.
     Confirming an *insufficient data* recommendation (-1) keeps the official tier unchanged.
 
+    ``official_tier`` and ``official_decision_id`` are what the form showed: the district's
+    official tier and the decision that set it (both None when it had none;
+    :attr:`PendingChange.official_decision_id`). The decision is stored only if they are still
+    the district's official decision; the comparison and the insert run under a lock on the
+    district (:func:`_lock_district`), so of two approvers deciding the same change at the same
+    moment exactly one succeeds and the other gets :class:`DecisionConflictError`.
+
     Raises
     ------
+    DecisionConflictError
+        The district was decided since the form was opened.
+    RecommendationChangedError
+        New data changed the recommendation since the form was opened.
     ReviewError
         Blank reason, unknown assessment, an assessment that is not the district's current item
         in the review (another day, a row superseded by a newer run, a retired ruleset), a user
@@ -448,13 +550,16 @@ def decide(
     assessment = session.get(Assessment, assessment_id)
     if assessment is None:
         raise ReviewError("assessment_id", f"no assessment {assessment_id}")
+    _lock_district(session, assessment.region_id)
+    official = _official_of(session, assessment.region_id)
+    _check_seen(session, assessment.region_id, official, official_tier, official_decision_id)
     posted = assessment
     assessment = _current_for(session, posted)
     ruleset = _active(session)
     top = ruleset.top_tier if ruleset is not None else None
     kept: int | None = None
     if accept and assessment.recommended_tier < 0:
-        kept = _official_tier_of(session, assessment.region_id)
+        kept = None if official is None else official.tier
         if kept is None:
             raise ReviewError(
                 "accept", "insufficient data and no official tier to keep; override with a tier"
@@ -485,6 +590,7 @@ def decide(
         session=session, actor=user, action=f"decision.{kind}", subject=code,
         details={
             "decision_id": row.id, "assessment_id": assessment.id, "tier": chosen,
+            "seen_official_tier": official_tier, "seen_official_decision_id": official_decision_id,
             **({"posted_assessment_id": posted.id} if posted.id != assessment.id else {}),
             "recommended_tier": assessment.recommended_tier, "reason": row.reason,
             "effective_date": row.effective_date.isoformat(),
@@ -555,7 +661,8 @@ def publish(
 
     With ``notify``, the districts whose public tier changed are notified (``published`` events).
     With nothing to publish, nothing is written (no audit entry) and the result has
-    ``decisions == 0``.
+    ``decisions == 0``. First publications are made under the districts' locks, like
+    :func:`decide`, so two publications at once start each district once.
 
     Raises
     ------
@@ -565,6 +672,12 @@ def publish(
     approver = _approver(session, user)
     now = datetime.now(UTC)
     starting = _first_publications(session)
+    if starting:
+        # under the districts' locks (in id order: two publications never wait on each other in
+        # a circle), read again: a decision or publication that committed meanwhile wins
+        for region_id in sorted(item.region_id for item in starting):
+            _lock_district(session, region_id)
+        starting = _first_publications(session)
     if not starting and not _unpublished_count(session):
         return PublishResult(published_at=now, decisions=0, regions=(), initial=())
     initial: list[str] = []
@@ -609,8 +722,8 @@ def decision_history(
     unpublished_only: bool = False,
 ) -> list[DecisionRecord]:
     """Every decision, newest first (of one district when ``region`` is given, only the
-    unpublished ones with ``unpublished_only``; at most ``limit`` when given)."""
-    ruleset = _active(session)
+    unpublished ones with ``unpublished_only``; at most ``limit`` when given). Tiers are named
+    under the ruleset each decision was made under (:mod:`server.services.tiers`)."""
     query = (
         select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier)
         .join(Region, Region.id == DecisionRow.region_id)
@@ -624,13 +737,15 @@ def decision_history(
         query = query.where(DecisionRow.published_at.is_(None))
     if limit is not None:
         query = query.limit(limit)
+    found = session.execute(query).all()
+    scales = decision_scales(session=session, rows=[r[0] for r in found])
     return [
         DecisionRecord(
             id=row.id, region=code, name=name, tier=row.tier,
-            tier_name=_tier_name(ruleset, row.tier), recommended_tier=recommended,
-            recommended_name="" if recommended is None else _tier_name(ruleset, recommended),
+            tier_name=scales[row.id].name(row.tier), recommended_tier=recommended,
+            recommended_name="" if recommended is None else scales[row.id].name(recommended),
             kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
             effective_date=row.effective_date, published_at=row.published_at,
         )
-        for row, code, name, user, recommended in session.execute(query)
+        for row, code, name, user, recommended in found
     ]

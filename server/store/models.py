@@ -310,3 +310,22 @@ class BacktestJob(Base):
     heartbeat_at: Mapped[datetime] = mapped_column(UTCDateTime())
     finished_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
     results: Mapped[bytes | None] = mapped_column(LargeBinary)
+
+
+class LoginAttempt(Base):
+    """One login attempt, stored (and committed) before its password is checked.
+
+    ``outcome`` is ``pending`` while the password is being checked, then ``failed``, ``ok``,
+    ``limited`` (refused by the rate limit, password never checked) or ``cleared`` (a failure
+    forgiven by a later successful login of the same name from the same address). Pending and
+    failed attempts count against the limits (server/services/auth.py).
+    """
+
+    __tablename__ = "login_attempt"
+    __table_args__ = (Index("ix_login_attempt_client_at", "client", "at"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    at: Mapped[datetime] = mapped_column(UTCDateTime(), index=True)
+    client: Mapped[str] = mapped_column(String(100))
+    name_key: Mapped[str] = mapped_column(String(100))
+    outcome: Mapped[str] = mapped_column(String(8))

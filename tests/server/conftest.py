@@ -80,3 +80,48 @@ def demo_session(demo_db: Database) -> Iterator[Session]:
     with demo_db.sessions() as s:
         yield s
         s.rollback()
+
+
+def seen(session: Session, assessment_id: int) -> dict[str, int | None]:
+    """What a review form opened now shows of the district of ``assessment_id``: its official
+    tier and the decision that set it (the arguments :func:`server.services.review.decide`
+    compares), read straight from the decision table."""
+    from sqlalchemy import select
+
+    from server.store.models import Assessment, Decision
+
+    assessment = session.get(Assessment, assessment_id)
+    assert assessment is not None
+    row = session.scalar(
+        select(Decision).where(Decision.region_id == assessment.region_id)
+        .order_by(Decision.effective_date.desc(), Decision.decided_at.desc(), Decision.id.desc())
+        .limit(1)
+    )
+    return {"official_tier": None if row is None else row.tier,
+            "official_decision_id": None if row is None else row.id}
+
+
+@pytest.fixture(scope="session")
+def attempts_db(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Database]:
+    """A migrated SQLite file for login attempts, apart from the test's rolled-back session
+    (a limiter commits each attempt in its own transaction, which SQLite would not let through
+    while the test's session holds the write lock). :func:`authenticate` records outcomes in the
+    test's session, so attempts made through it stay pending here, which counts the same."""
+    from server.store import make_engine, make_sessionmaker, upgrade
+
+    engine = make_engine(f"sqlite:///{tmp_path_factory.mktemp('attempts') / 'attempts.db'}")
+    upgrade(engine)
+    yield Database(engine=engine, sessions=make_sessionmaker(engine))
+    engine.dispose()
+
+
+@pytest.fixture
+def attempts(attempts_db: Database) -> Database:
+    """:func:`attempts_db` with no attempt stored yet."""
+    from sqlalchemy import delete
+
+    from server.store.models import LoginAttempt
+
+    with attempts_db.transaction() as s:
+        s.execute(delete(LoginAttempt))
+    return attempts_db

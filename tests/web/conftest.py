@@ -76,3 +76,17 @@ def csrf_of(page_text: str) -> str:
     found = re.search(r'name="csrf" value="([^"]+)"', page_text)
     assert found is not None, "no CSRF field on the page"
     return found.group(1)
+
+
+def seen_fields(page_text: str, assessment_id: int | str | None = None) -> dict[str, str]:
+    """The hidden ``official_tier`` and ``official_decision`` fields of the decision form for
+    ``assessment_id`` (the first form when None): what a decision posted from it says it saw."""
+    at = page_text.index(f'action="/staff/review/{assessment_id}"' if assessment_id is not None
+                         else 'action="/staff/review/')
+    form = page_text[at:page_text.index("</form>", at)]
+    out = {}
+    for name in ("official_tier", "official_decision"):
+        found = re.search(rf'name="{name}" value="([^"]+)"', form)
+        assert found is not None, f"no {name} field in the form"
+        out[name] = found.group(1)
+    return out

@@ -7,6 +7,7 @@ import pytest
 from fastapi.testclient import TestClient
 
 from server.services.pages import suppress_count, weekly_figures
+from tests.server.conftest import seen
 from tests.web.conftest import csrf_of, login
 
 CODES = [f"D{i:02d}" for i in range(1, 15)]
@@ -29,6 +30,16 @@ def _assessment_of(client: TestClient, code: str) -> str:
     return page.text[form_at:].split('"')[1].rsplit("/", 1)[-1]
 
 
+def _official(client: TestClient, assessment: str) -> dict[str, str]:
+    """The official tier and decision of the assessment's district now, as a form shows them
+    (D02's form is posted after the first publication decided it)."""
+    with client.app.state.database.sessions() as s:  # type: ignore[attr-defined]
+        now = seen(s, int(assessment))
+    return {"official_tier": str(now["official_tier"] if now["official_tier"] is not None
+                                 else "none"),
+            "official_decision": str(now["official_decision_id"] or "none")}
+
+
 def _decide(
     client: TestClient, *, code: str, tier: int, reason: str, assessment: str | None = None
 ) -> None:
@@ -37,7 +48,7 @@ def _decide(
     answer = client.post(
         f"/staff/review/{assessment}",
         data={"csrf": csrf_of(page.text), "action": "override", "tier": str(tier),
-              "reason": reason},
+              "reason": reason, **_official(client, assessment)},
         follow_redirects=False,
     )
     assert answer.status_code == 303, answer.text

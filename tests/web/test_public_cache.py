@@ -39,7 +39,8 @@ def client(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterato
             change = next(p for p in pending_changes(session=session) if p.region == "D03")
             decide(session=session, assessment_id=change.assessment_id,
                    user=ROLE_USER["approver"], accept=True, tier=None,
-                   reason="accepted for the cache test")
+                   reason="accepted for the cache test", official_tier=change.official_tier,
+                   official_decision_id=change.official_decision_id)
             publish(session=session, user=ROLE_USER["approver"])
         yield c
 

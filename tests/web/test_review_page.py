@@ -18,7 +18,7 @@ from server.services.database import Database
 from server.services.evaluation import active_ruleset, evaluate_districts, newest_cutoff
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
-from tests.web.conftest import copy_demo, csrf_of, login, settings_for
+from tests.web.conftest import copy_demo, csrf_of, login, seen_fields, settings_for
 from web.app import create_app
 
 pytestmark = pytest.mark.slow
@@ -70,7 +70,8 @@ def test_confirm_after_new_data_with_the_same_tier_goes_through(
     current, _name = _first_form(page)
     stale = _stand_in(path, current, 0)
     answer = client.post(f"/staff/review/{stale}", data={
-        "csrf": csrf_of(page), "action": "confirm", "reason": "agreed"}, follow_redirects=False)
+        "csrf": csrf_of(page), "action": "confirm", "reason": "agreed",
+        **seen_fields(page, current)}, follow_redirects=False)
     assert answer.status_code == 303
     after = client.get("/staff/review").text
     assert f'id="p-{current}"' not in after
@@ -86,7 +87,8 @@ def test_confirm_after_new_data_with_another_tier_keeps_the_reason(
     stale = _stand_in(path, current, -1)
     reason = "checked with the lab <on the phone>"
     answer = client.post(f"/staff/review/{stale}", data={
-        "csrf": csrf_of(page), "action": "confirm", "reason": reason}, follow_redirects=False)
+        "csrf": csrf_of(page), "action": "confirm", "reason": reason,
+        **seen_fields(page, current)}, follow_redirects=False)
     assert answer.status_code == 409
     assert "new data changed the recommendation" in answer.text
     assert "It now recommends <strong>" in answer.text
@@ -202,10 +204,15 @@ def test_overview_shows_a_decided_unpublished_district(
             "select a.id, a.recommended_tier from decision d join assessment a on "
             "a.id = d.assessment_id join region r on r.id = d.region_id where r.code = 'D01'"
         ).fetchone()
+        (decision, official) = db.execute(
+            "select d.id, d.tier from decision d join region r on r.id = d.region_id "
+            "where r.code = 'D01' order by d.effective_date desc, d.decided_at desc, d.id desc"
+        ).fetchone()
     other = (tier + 1) % 3
     answer = client.post(f"/staff/review/{aid}", data={
         "csrf": csrf_of(page), "action": "override", "tier": str(other),
-        "reason": "invented reason"}, follow_redirects=False)
+        "reason": "invented reason", "official_tier": str(official),
+        "official_decision": str(decision)}, follow_redirects=False)
     assert answer.status_code == 303
     text = client.get("/staff/").text
     assert "<strong>0</strong> pending, <strong>1</strong> decided awaiting publication" in text

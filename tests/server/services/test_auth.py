@@ -16,19 +16,28 @@ from server.services.auth import (
     set_active,
     set_password,
 )
+from server.services.database import Database
 from server.services.users import add_user
 
 KEY = "s" * 40
 
 
-def _user(session: Session, name: str = "tess.token", role: str = "analyst"):
+@pytest.fixture
+def limiter(attempts: Database) -> LoginLimiter:
+    return LoginLimiter(attempts)
+
+
+def _user(session: Session, limiter: LoginLimiter, name: str = "tess.token",
+          role: str = "analyst"):
     add_user(session=session, name=name, role=role, password="pass-word-1234")
     return authenticate(session=session, name=name, password="pass-word-1234",
-                        limiter=LoginLimiter(), client="test")
+                        limiter=limiter, client="test")
 
 
-def test_session_token_round_trip_carries_generation(session: Session) -> None:
-    user = _user(session)
+def test_session_token_round_trip_carries_generation(
+    session: Session, limiter: LoginLimiter
+) -> None:
+    user = _user(session, limiter)
     signer = SessionSigner(KEY)
     data = signer.read(signer.issue(user))
     assert data is not None
@@ -41,13 +50,13 @@ def test_session_token_without_generation_is_refused() -> None:
     assert SessionSigner(KEY).read(old) is None
 
 
-def test_session_token_with_other_key_is_refused(session: Session) -> None:
-    token = SessionSigner("o" * 40).issue(_user(session))
+def test_session_token_with_other_key_is_refused(session: Session, limiter: LoginLimiter) -> None:
+    token = SessionSigner("o" * 40).issue(_user(session, limiter))
     assert SessionSigner(KEY).read(token) is None
 
 
-def test_end_session_refuses_earlier_tokens(session: Session) -> None:
-    user = _user(session)
+def test_end_session_refuses_earlier_tokens(session: Session, limiter: LoginLimiter) -> None:
+    user = _user(session, limiter)
     signer = SessionSigner(KEY)
     data = signer.read(signer.issue(user))
     assert data is not None
@@ -66,8 +75,10 @@ def test_end_session_refuses_earlier_tokens(session: Session) -> None:
     ],
     ids=["role", "disable", "password"],
 )
-def test_account_changes_refuse_earlier_tokens(session: Session, change: object) -> None:
-    user = _user(session)
+def test_account_changes_refuse_earlier_tokens(
+    session: Session, limiter: LoginLimiter, change: object
+) -> None:
+    user = _user(session, limiter)
     signer = SessionSigner(KEY)
     data = signer.read(signer.issue(user))
     assert data is not None
@@ -76,8 +87,8 @@ def test_account_changes_refuse_earlier_tokens(session: Session, change: object)
     assert session_user(session=session, data=data) is None
 
 
-def test_unchanged_role_keeps_sessions(session: Session) -> None:
-    user = _user(session)
+def test_unchanged_role_keeps_sessions(session: Session, limiter: LoginLimiter) -> None:
+    user = _user(session, limiter)
     signer = SessionSigner(KEY)
     data = signer.read(signer.issue(user))
     assert data is not None
@@ -86,12 +97,12 @@ def test_unchanged_role_keeps_sessions(session: Session) -> None:
     assert session_user(session=session, data=data) is not None
 
 
-def test_token_of_new_generation_is_accepted(session: Session) -> None:
-    user = _user(session)
+def test_token_of_new_generation_is_accepted(session: Session, limiter: LoginLimiter) -> None:
+    user = _user(session, limiter)
     end_session(session=session, user=user)
     session.flush()
     again = authenticate(session=session, name="tess.token", password="pass-word-1234",
-                         limiter=LoginLimiter(), client="test")
+                         limiter=limiter, client="test")
     assert again.generation == 1
     signer = SessionSigner(KEY)
     data = signer.read(signer.issue(again))

@@ -41,6 +41,7 @@ from server.store import revision_history
 from server.store.models import Assessment, AuditEntry, EvaluationRun, Region
 from server.store.models import Ruleset as RulesetRow
 from server.store.vintages import append_vintage
+from tests.server.conftest import seen
 
 A = Assessment
 CONTENT = (A.region_id, A.ref_date, A.recommended_tier, A.previous_tier, A.criteria,
@@ -206,9 +207,9 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     old_d02 = current_assessment_id(session=demo_session, region_id=d02)
     assert old_d01 is not None and old_d02 is not None
     decide(session=demo_session, assessment_id=old_d01, user=APPROVER, accept=True, tier=None,
-           reason="agreed at the morning meeting")
+           reason="agreed at the morning meeting", **seen(demo_session, old_d01))
     decide(session=demo_session, assessment_id=old_d02, user=APPROVER, accept=False, tier=0,
-           reason="local cluster contained")
+           reason="local cluster contained", **seen(demo_session, old_d02))
     at = cutoff + timedelta(hours=2)
     _revise(demo_session, "D01", date(2026, 11, 24), 7, 3000.0, at)  # D01's last week only
     run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=at)
@@ -229,7 +230,8 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     new_row = demo_session.get(Assessment, new_d01)
     assert new_row is not None and new_row.recommended_tier == old_row.recommended_tier
     late = decide(session=demo_session, assessment_id=old_d01, user=APPROVER, accept=True,
-                  tier=None, reason="form opened before the correction")
+                  tier=None, reason="form opened before the correction",
+                  **seen(demo_session, old_d01))
     assert late.assessment_id == new_d01
     entry = demo_session.scalars(
         select(AuditEntry).where(AuditEntry.action == "decision.confirmed")
@@ -363,7 +365,7 @@ def test_a_decision_on_a_row_of_an_earlier_run_stays_current_while_unchanged(
     current = current_assessment_id(session=small, region_id=t0)
     assert current is not None
     decide(session=small, assessment_id=current, user=APPROVER, accept=False, tier=1,
-           reason="invented test decision")
+           reason="invented test decision", **seen(small, current))
     at = _arrival(END) + timedelta(hours=6)
     _revise(small, "T2", END - timedelta(days=10), 3, 700.0, at)
     run = evaluate_districts(session=small, ruleset_row=row, cutoff=at)

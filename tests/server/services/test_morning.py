@@ -14,6 +14,7 @@ from server.services.feeds import feed_statuses
 from server.services.morning import morning_overview
 from server.services.review import current_run, decide, publish
 from server.store.models import Decision
+from tests.server.conftest import seen
 
 pytestmark = pytest.mark.slow
 APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
@@ -59,7 +60,7 @@ def test_overview_counts_a_decided_unpublished_district_apart(demo_session: Sess
     item = next(i for i in latest.items if i.code == "D01")
     other = (item.assessment.recommended_tier + 1) % 3
     decide(session=demo_session, assessment_id=item.assessment.id, user=APPROVER, accept=False,
-           tier=other, reason="invented reason")
+           tier=other, reason="invented reason", **seen(demo_session, item.assessment.id))
     view = morning_overview(session=demo_session, now=NOW)
     line = next(x for x in view.every if x.code == "D01")
     assert (line.decided_tier, line.pending, view.decided) == (other, False, 1)
@@ -87,7 +88,8 @@ def test_publications_since_the_previous_morning_are_listed_as_changes(
     old = item.assessment.recommended_tier
     other = (old + 1) % 4
     decide(session=demo_session, assessment_id=item.assessment.id, user=APPROVER, accept=False,
-           tier=other, reason="invented override for the test")
+           tier=other, reason="invented override for the test",
+           **seen(demo_session, item.assessment.id))
     publish(session=demo_session, user=APPROVER)
     changes = {c.code: c.what for c in morning_overview(session=demo_session, now=NOW).changes
                if "official tier" in c.what}

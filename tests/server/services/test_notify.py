@@ -42,6 +42,7 @@ from server.services.review import (
 )
 from server.store.models import Assessment, AuditEntry
 from server.store.vintages import append_vintage
+from tests.server.conftest import seen
 
 RULES = """\
 name: notify
@@ -306,7 +307,8 @@ def test_publication_posts_each_changed_public_tier(
     # an override that changes one district's tier: the next publication sends only that one
     target = next(iter(public.values()))
     decide(session=demo_session, assessment_id=_newest_assessment(demo_session, target.region),
-           user=APPROVER, accept=False, tier=(target.tier + 1) % 4, reason="invented test reason")
+           user=APPROVER, accept=False, tier=(target.tier + 1) % 4, reason="invented test reason",
+           **seen(demo_session, _newest_assessment(demo_session, target.region)))
     publish(session=demo_session, user=APPROVER, notify=_to(url))
     (second,) = json.loads(handler.received[1][1])["events"]
     assert (second["kind"], second["region"], second["tier"], second["previous"]) == (

@@ -31,6 +31,7 @@ from server.services.review import (
 from server.store.models import Assessment, AuditEntry, Region
 from server.store.models import Decision as DecisionRow
 from server.store.vintages import append_vintage
+from tests.server.conftest import seen
 
 pytestmark = pytest.mark.slow
 APPROVER, ANALYST = "otto.approver", "ada.analyst"  # invented demo accounts (demo_seed.seed)
@@ -47,27 +48,28 @@ def test_decide_requires_a_reason(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match="reason: a decision needs a reason"):
         decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
-               tier=None, reason="  ")
+               tier=None, reason="  ", **seen(demo_session, first.assessment_id))
 
 
 def test_decide_refuses_an_analyst(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match="only approvers and admins decide"):
         decide(session=demo_session, assessment_id=first.assessment_id, user=ANALYST, accept=True,
-               tier=None, reason="ok")
+               tier=None, reason="ok", **seen(demo_session, first.assessment_id))
 
 
 def test_decide_override_out_of_range_tier(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     with pytest.raises(ReviewError, match=r"tier: 7 is not a tier \(0..3\)"):
         decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
-               tier=7, reason="no")
+               tier=7, reason="no", **seen(demo_session, first.assessment_id))
 
 
 def test_decision_removes_the_pending_change(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
-           tier=None, reason="agreed at the morning meeting")
+           tier=None, reason="agreed at the morning meeting",
+           **seen(demo_session, first.assessment_id))
     assert first.region not in {p.region for p in pending_changes(session=demo_session)}
 
 
@@ -75,7 +77,8 @@ def test_override_keeps_its_tier_and_is_not_asked_again(demo_session: Session) -
     first = pending_changes(session=demo_session)[0]
     other = (first.recommended_tier + 1) % 4
     d = decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
-               tier=other, reason="local outbreak contained")
+               tier=other, reason="local outbreak contained",
+               **seen(demo_session, first.assessment_id))
     assert (d.kind, d.tier) == ("overridden", other)
     assert first.region not in {p.region for p in pending_changes(session=demo_session)}
 
@@ -83,7 +86,7 @@ def test_override_keeps_its_tier_and_is_not_asked_again(demo_session: Session) -
 def test_unpublished_decision_is_not_public(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=True,
-           tier=None, reason="agreed")
+           tier=None, reason="agreed", **seen(demo_session, first.assessment_id))
     assert official_tiers(session=demo_session) == {}
     assert first.region in official_tiers(session=demo_session, published_only=False)
 
@@ -101,7 +104,8 @@ def test_first_publication_starts_every_district_from_its_recommendation(
 def test_publish_writes_the_audit_log(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
-           tier=0, reason="hospital figures corrected by phone")
+           tier=0, reason="hospital figures corrected by phone",
+           **seen(demo_session, first.assessment_id))
     publish(session=demo_session, user=APPROVER)
     actions = list(demo_session.scalars(select(AuditEntry.action).where(
         AuditEntry.action.like("decision.%"))))
@@ -111,7 +115,7 @@ def test_publish_writes_the_audit_log(demo_session: Session) -> None:
 def test_decision_history_names_user_and_recommendation(demo_session: Session) -> None:
     first = pending_changes(session=demo_session)[0]
     decide(session=demo_session, assessment_id=first.assessment_id, user=APPROVER, accept=False,
-           tier=0, reason="figures corrected")
+           tier=0, reason="figures corrected", **seen(demo_session, first.assessment_id))
     (record,) = decision_history(session=demo_session, region=first.region)
     assert (record.user, record.recommended_tier, record.tier, record.reason) == (
         APPROVER, first.recommended_tier, 0, "figures corrected"
@@ -144,7 +148,7 @@ def test_confirming_insufficient_data_keeps_the_official_tier(demo_session: Sess
     aid = _make_insufficient(demo_session, region)
     assert region in {p.region for p in pending_changes(session=demo_session)}
     d = decide(session=demo_session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
-               reason="testing site closed for a week; keep the tier")
+               reason="testing site closed for a week; keep the tier", **seen(demo_session, aid))
     assert (d.kind, d.tier, d.reason) == (
         "confirmed", official.tier, "testing site closed for a week; keep the tier"
     )
@@ -159,7 +163,7 @@ def test_confirming_insufficient_data_without_an_official_tier_needs_an_override
     aid = _make_insufficient(demo_session, region)
     with pytest.raises(ReviewError, match="accept: insufficient data and no official tier"):
         decide(session=demo_session, assessment_id=aid, user=APPROVER, accept=True, tier=None,
-               reason="agreed")
+               reason="agreed", **seen(demo_session, aid))
 
 
 # --- only the current item can be decided; the official tier is the one taking effect last ---
@@ -193,7 +197,7 @@ def test_decide_on_a_superseded_row_with_the_same_tier_decides_the_current_one(
     assert row is not None
     posted = _earlier_row(demo_session, region_id, last_day, row.recommended_tier)
     d = decide(session=demo_session, assessment_id=posted, user=APPROVER, accept=True,
-               tier=None, reason="typed before the feed landed")
+               tier=None, reason="typed before the feed landed", **seen(demo_session, posted))
     assert (d.assessment_id, d.tier, d.effective_date) == (
         current, row.recommended_tier, last_day + timedelta(days=1))
     details = demo_session.scalars(select(AuditEntry.details).where(
@@ -212,7 +216,7 @@ def test_decide_on_a_superseded_row_with_another_tier_is_refused_naming_the_new_
     posted = _earlier_row(demo_session, region_id, last_day, other)
     with pytest.raises(RecommendationChangedError) as caught:
         decide(session=demo_session, assessment_id=posted, user=APPROVER, accept=False, tier=0,
-               reason="stale form")
+               reason="stale form", **seen(demo_session, posted))
     changed = caught.value
     assert (changed.region, changed.current_id, changed.tier) == (
         "D01", current, row.recommended_tier)
@@ -240,7 +244,7 @@ def test_decide_refuses_an_assessment_of_an_older_cutoff_with_another_tier(
     demo_session.expire_all()
     with pytest.raises(ReviewError, match=rf"assessment_id: {stale} is not the district's"):
         decide(session=demo_session, assessment_id=stale, user=APPROVER, accept=True, tier=None,
-               reason="form opened before the new data")
+               reason="form opened before the new data", **seen(demo_session, stale))
 
 
 def test_decide_refuses_an_assessment_of_a_retired_ruleset(
@@ -252,11 +256,11 @@ def test_decide_refuses_an_assessment_of_a_retired_ruleset(
     store_ruleset(session=demo_session, path=tmp_path / "calm.yaml", author="rev", activate=True)
     with pytest.raises(ReviewError, match=rf"assessment_id: {before} is not the district's"):
         decide(session=demo_session, assessment_id=before, user=APPROVER, accept=True, tier=None,
-               reason="form from before the activation")
+               reason="form from before the activation", **seen(demo_session, before))
     # the new ruleset's item is the one that can be decided
     _region_id, after, _day = _item(demo_session, "D01")
     d = decide(session=demo_session, assessment_id=after, user=APPROVER, accept=True, tier=None,
-               reason="agreed")
+               reason="agreed", **seen(demo_session, after))
     assert d.assessment_id == after != before
 
 
@@ -266,10 +270,10 @@ def test_stale_form_post_never_becomes_the_public_tier(demo_session: Session) ->
     oldest = demo_session.scalar(select(Assessment.id).where(Assessment.region_id == region_id)
                                  .order_by(Assessment.ref_date, Assessment.id).limit(1))
     decide(session=demo_session, assessment_id=current, user=APPROVER, accept=False, tier=2,
-           reason="x")
+           reason="x", **seen(demo_session, current))
     with pytest.raises(ReviewError, match="assessment_id"):
         decide(session=demo_session, assessment_id=oldest, user=APPROVER, accept=False, tier=0,
-               reason="stale form")
+               reason="stale form", **seen(demo_session, oldest))
     publish(session=demo_session, user=APPROVER)
     assert official_tiers(session=demo_session)["D01"].tier == 2
 
@@ -324,7 +328,7 @@ def test_has_something_to_publish_before_the_first_publication_and_after_a_decis
     assert not has_something_to_publish(session=demo_session)
     _region_id, current, _day = _item(demo_session, "D01")
     decide(session=demo_session, assessment_id=current, user=APPROVER, accept=False, tier=0,
-           reason="figures corrected")
+           reason="figures corrected", **seen(demo_session, current))
     assert has_something_to_publish(session=demo_session)
 
 
