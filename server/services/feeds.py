@@ -141,10 +141,19 @@ def token_matches(*, session: Session, feed: str, token: str | None) -> bool:
 # --- runs ----------------------------------------------------------------------------------------
 
 def _state(session: Session, feed: str) -> FeedState:
+    """The feed's state row, created on first use; a row another ingest created meanwhile is
+    taken (on SQLite the ingest's savepoint has committed the vintage by then, so two first
+    pushes of a feed can race here)."""
     row = session.get(FeedState, feed)
     if row is None:
-        row = FeedState(feed=feed, last_error="", failures=0)
-        session.add(row)
+        try:
+            with session.begin_nested():
+                row = FeedState(feed=feed, last_error="", failures=0)
+                session.add(row)
+        except IntegrityError:
+            row = session.get(FeedState, feed, populate_existing=True)
+            if row is None:
+                raise
     return row
 
 
