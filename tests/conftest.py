@@ -16,7 +16,8 @@ import pytest
 from sqlalchemy import Engine
 from sqlalchemy.orm import Session
 
-from server.store import scratch_engine, upgrade
+from server.services.database import Database
+from server.store import make_sessionmaker, scratch_engine, upgrade
 
 POSTGRES_URL = os.environ.get("TIERWISE_TEST_POSTGRES_URL")
 
@@ -59,3 +60,14 @@ def session(migrated_engine: Engine) -> Iterator[Session]:
         db.close()
         outer.rollback()
         connection.close()
+
+
+@pytest.fixture(params=BACKENDS)
+def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Database]:
+    """A migrated database whose commits are real (a fresh SQLite file or PostgreSQL schema per
+    test, dropped afterwards): for the scheduler, crash and concurrency tests."""
+    url = f"sqlite:///{tmp_path / 'committed.db'}" if request.param == "sqlite" else POSTGRES_URL
+    assert url is not None
+    with scratch_engine(url, prefix="tw_commit") as engine:
+        upgrade(engine)
+        yield Database(engine=engine, sessions=make_sessionmaker(engine))

@@ -16,6 +16,8 @@ from server.config import Settings
 from server.services.auth import LoginLimiter, SessionSigner
 from server.services.backtest_jobs import BacktestJobs
 from server.services.database import Database
+from server.services.evaluation_worker import EvaluationWorker
+from server.services.feeds import catalogue_limits, load_catalogue
 from server.services.notify import notify_config_from
 from web import assets, downloads, health, login, policies, public, review, staff, users
 from web.apidocs import mount_api_docs
@@ -64,7 +66,10 @@ def create_app(
         with ExitStack() as stack:
             for task in background:
                 stack.enter_context(task(db))
+            # the start-up check: evaluates data a killed process landed but did not evaluate
+            _app.state.evaluations.request()
             yield
+        _app.state.evaluations.close()
         _app.state.backtests.close()  # drops queued backtests, stops a running one
         if owns_db:
             db.dispose()
@@ -90,6 +95,10 @@ def create_app(
     # jobs run in this process; their state is in the database (server/services/backtest_jobs)
     app.state.backtests = BacktestJobs(db, time_zone=settings.zone)
     app.state.maps = MapCache()
+    # one evaluation thread per process; pushes and uploads ask it and do not wait
+    app.state.evaluations = EvaluationWorker(
+        db, notify=app.state.notify, limits=lambda: catalogue_limits(load_catalogue(settings)),
+    )
     app.add_middleware(StampInvalidator)
     app.add_middleware(SecurityHeaders)
     install_error_handlers(app)

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, BackgroundTasks, Header, Request
+from fastapi import APIRouter, Header, Request
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
@@ -26,14 +26,12 @@ from server.services.feeds import (
     FeedTokenError,
     NotAPushFeedError,
     UnknownFeedError,
-    catalogue_limits,
     check_push,
-    evaluate_after_ingest,
     ingest_push,
     load_catalogue,
 )
 from server.services.ingest import IngestReceipt
-from web.deps import NotifyDep, SettingsDep
+from web.deps import SettingsDep
 
 router = APIRouter(tags=["feeds"])
 
@@ -103,8 +101,7 @@ def _bearer(authorization: str | None) -> str | None:
 
 @router.post("/api/feeds/{name}/push")
 async def push(
-    name: str, request: Request, settings: SettingsDep, notify: NotifyDep,
-    background: BackgroundTasks,
+    name: str, request: Request, settings: SettingsDep,
     authorization: Annotated[str | None, Header()] = None,
     content_type: Annotated[str, Header()] = "text/csv",
 ) -> JSONResponse:
@@ -131,6 +128,6 @@ async def push(
     except (FeedFileError, NotAPushFeedError) as exc:
         return JSONResponse({"detail": str(exc)}, status_code=422)
     if not receipt.unchanged and receipt.rows_accepted:
-        background.add_task(evaluate_after_ingest, db, notify, catalogue_limits(catalogue))
+        request.app.state.evaluations.request()  # coalesced, off the request path
     status = 200 if receipt.unchanged else 201
     return JSONResponse(receipt_json(receipt), status_code=status)

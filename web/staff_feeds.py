@@ -5,20 +5,18 @@ from __future__ import annotations
 from datetime import UTC, datetime
 from typing import Annotated
 
-from fastapi import APIRouter, BackgroundTasks, File, Form, Request, UploadFile
+from fastapi import APIRouter, File, Form, Request, UploadFile
 from fastapi.responses import HTMLResponse
 
 from server.services.auth import has_role
 from server.services.feeds import (
     FeedFileError,
     UnknownFeedError,
-    catalogue_limits,
-    evaluate_after_ingest,
     feeds_page,
     load_catalogue,
     upload_payload,
 )
-from web.deps import AnalystDep, CsrfDep, NotifyDep, SessionDep, SettingsDep, StaffDep
+from web.deps import AnalystDep, CsrfDep, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -52,7 +50,7 @@ def feeds(
 @router.post("/feeds/upload", response_class=HTMLResponse)
 def upload(
     request: Request, settings: SettingsDep, user: AnalystDep, _csrf: CsrfDep,
-    notify: NotifyDep, background: BackgroundTasks, feed: Annotated[str, Form()],
+    feed: Annotated[str, Form()],
     file: Annotated[UploadFile, File()], dry_run: Annotated[bool, Form()] = False,
 ) -> HTMLResponse:
     """Take in an uploaded file for a feed and show its receipt.
@@ -72,8 +70,7 @@ def upload(
     except (FeedFileError, UnknownFeedError) as exc:
         error = str(exc)
     if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run:
-        background.add_task(evaluate_after_ingest, request.app.state.database, notify,
-                            catalogue_limits(catalogue))
+        request.app.state.evaluations.request()  # coalesced, off the request path
     return render(
         request, "staff/feeds_receipt.html",
         {"receipt": receipt, "error": error, "feed": feed},

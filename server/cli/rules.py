@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import date, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated
 
@@ -193,6 +193,9 @@ def evaluate_command(
             raise fail(f"--cutoff: {cutoff!r} is not an ISO time stamp") from None
         if when.tzinfo is None:
             raise fail(f"--cutoff: {cutoff!r} needs a time zone (e.g. +00:00)")
+        if when > datetime.now(UTC):
+            # a run there would stand for data that have not arrived yet
+            raise fail(f"--cutoff: {cutoff!r} is in the future")
     settings = Settings(demo_mode=True)
     notify = notify_config_from(settings.notify_file)  # None unless TIERWISE_NOTIFY_FILE is set
     limits = catalogue_limits(configured_catalogue(settings))

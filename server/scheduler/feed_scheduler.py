@@ -8,7 +8,9 @@ runs missed while no instance was up are run once, as soon as a leader is back.
 
 Jobs are synchronised from the feed catalogue when an instance becomes leader: a job whose trigger
 is unchanged keeps its stored next run time (so a missed run is not forgotten); a changed one is
-replaced; jobs of feeds no longer configured are removed.
+replaced; jobs of feeds no longer configured are removed. A new leader also runs one catch-up
+evaluation at once (:func:`server.scheduler.jobs.catch_up_evaluation`): data a killed process
+landed but did not evaluate are evaluated before the next feed run.
 """
 
 from __future__ import annotations
@@ -28,7 +30,13 @@ from apscheduler.triggers.base import BaseTrigger
 from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
-from server.scheduler.jobs import JOB_FUNCTION, Runtime, register, unregister
+from server.scheduler.jobs import (
+    CATCH_UP_FUNCTION,
+    JOB_FUNCTION,
+    Runtime,
+    register,
+    unregister,
+)
 from server.services.database import Database
 from server.services.feeds import LeaderLease
 
@@ -36,6 +44,7 @@ log = logging.getLogger(__name__)
 
 LEASE_NAME = "tierwise-scheduler"
 JOB_TABLE = "apscheduler_jobs"
+CATCH_UP_JOB = "evaluate:catch-up"
 
 
 class SharedEngineJobStore(SQLAlchemyJobStore):  # type: ignore[misc]
@@ -162,6 +171,9 @@ class FeedScheduler:
                 JOB_FUNCTION, trigger=trigger, args=[self.holder, name], id=job_id,
                 name=f"pull {name}", replace_existing=True,
             )
+        # once, now (a date trigger without a date): evaluate what a killed process left
+        aps.add_job(CATCH_UP_FUNCTION, trigger="date", args=[self.holder], id=CATCH_UP_JOB,
+                    name="catch-up evaluation", replace_existing=True)
 
     def next_runs(self) -> dict[str, object]:
         """Job id -> next run time (only on the leader)."""

@@ -14,11 +14,13 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from server.services.database import Database
+from server.services.evaluation import EvaluationRun, evaluate_if_behind
 from server.services.feeds import FeedRun, catalogue_limits, feed_named, run_feed
 
 log = logging.getLogger(__name__)
 
 JOB_FUNCTION = "server.scheduler.jobs:run_scheduled_feed"
+CATCH_UP_FUNCTION = "server.scheduler.jobs:catch_up_evaluation"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -63,4 +65,23 @@ def run_scheduled_feed(key: str, feed_name: str) -> FeedRun | None:
     )
     log.info("feed %s: %d vintage(s) landed, not modified: %s, errors: %s",
              feed_name, run.landed, run.not_modified, list(run.errors))
+    return run
+
+
+def catch_up_evaluation(key: str) -> EvaluationRun | None:
+    """Evaluate data stored but not yet evaluated (a process killed between its ingest and its
+    evaluation), for the scheduler registered under ``key``: run once when an instance becomes
+    the leader (:func:`~server.services.evaluation.evaluate_if_behind`)."""
+    with _LOCK:
+        runtime = _RUNTIMES.get(key)
+    if runtime is None:
+        log.warning("no scheduler runtime %r in this process; skipping the catch-up", key)
+        return None
+    run = evaluate_if_behind(
+        runtime.db, notify=runtime.notify,  # type: ignore[arg-type]
+        stale_after=catalogue_limits(runtime.catalogue),  # type: ignore[arg-type]
+    )
+    if run is not None:
+        log.info("catch-up: evaluated %s at cutoff %s", run.ruleset_name,
+                 run.data_cutoff.isoformat())
     return run

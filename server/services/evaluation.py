@@ -15,6 +15,13 @@ run (nothing is recomputed or rewritten). A run stored at a cutoff older than an
 replay of a past morning) keeps the later run's reading unchanged: where it writes a row that the
 later run had read from before its cutoff, it copies that older row to the later run's cutoff.
 
+New data mean a new evaluation in one place only, :func:`evaluate_if_behind`: it compares the
+newest vintage with the newest run of the active ruleset, and every way in and every start
+(``serve``, the scheduler, ``ingest``) calls it, so a process killed between its ingest and its
+evaluation leaves nothing unevaluated for long. Evaluations serialise on a lock
+(:func:`serialise_evaluations`); one that finds the run of its cutoff stored meanwhile reuses
+it, on SQLite and PostgreSQL alike.
+
 When the caller passes a loaded notification config (``notify=``, from ``settings.notify_file``),
 a run that evaluates (one that does not reuse a stored run) delivers the newest day's events:
 recommended tier changes in force that day and prepare signals that started showing that day;
@@ -30,24 +37,38 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Select, and_, func, insert, select, type_coerce, update
+from sqlalchemy import Select, and_, func, insert, select, text, type_coerce, update
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 import rules
 from rules import Evaluation, Ruleset, evaluate, parse_ruleset
 from server.services.audit import record
+from server.services.database import Database
 from server.services.district_indicators import district_indicators, load_district_data
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.store.models import Assessment, Observation, Region, Vintage
 from server.store.models import EvaluationRun as RunRow
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
+
+log = logging.getLogger(__name__)
+
+#: Key of the PostgreSQL advisory lock that serialises evaluations (every ruleset, every process).
+EVALUATION_LOCK_KEY = int.from_bytes(
+    hashlib.sha256(b"tierwise-evaluation").digest()[:8], "big", signed=True
+)
+#: How long an evaluation on SQLite waits for the database's write lock, in milliseconds: an
+#: ingest holds that lock for its whole length (tens of seconds for a large file), longer than
+#: the engine's usual ``busy_timeout`` (``server/store/engine.py``). Common practice, no source.
+SQLITE_LOCK_WAIT_MS = 300_000
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -158,14 +179,12 @@ def evaluate_districts(
     if span is None:
         return None
     start, end = span
-    stored = session.scalar(
-        select(RunRow).where(RunRow.ruleset_id == ruleset_row.id, RunRow.data_cutoff == cutoff)
+    reused = EvaluationRun(
+        ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
+        start=start, end=end, written=0, reused=True, evaluation=None,
     )
-    if stored is not None:
-        return EvaluationRun(
-            ruleset_id=ruleset_row.id, ruleset_name=ruleset_row.name, data_cutoff=cutoff,
-            start=start, end=end, written=0, reused=True, evaluation=None,
-        )
+    if _stored_run(session, ruleset_row.id, cutoff):
+        return reused
     ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
                               stale_after=stale_after)
@@ -173,12 +192,25 @@ def evaluate_districts(
         ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
         region_levels=data.levels,
     )
-    written = _store_assessments(session, ruleset_row.id, cutoff, result)
-    session.add(RunRow(
-        ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
-        rows_written=written, created_at=datetime.now(UTC),
-    ))
-    session.flush()
+    serialise_evaluations(session)
+    if _stored_run(session, ruleset_row.id, cutoff):  # another evaluation stored it meanwhile
+        return reused
+    try:
+        with session.begin_nested():
+            written = _store_assessments(session, ruleset_row.id, cutoff, result)
+            session.add(RunRow(
+                ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
+                rows_written=written, created_at=datetime.now(UTC),
+            ))
+            session.flush()
+    except IntegrityError:
+        # Only reachable when an evaluation that does not take the lock stored the same run
+        # first: reuse the run that won.
+        if not _stored_run(session, ruleset_row.id, cutoff):
+            raise
+        log.info("evaluation of %s at %s collided with a stored run; reusing it",
+                 ruleset_row.name, cutoff.isoformat())
+        return reused
     notified: tuple[Delivery, ...] = ()
     if notify is not None:
         notified = deliver_and_record(
@@ -191,20 +223,82 @@ def evaluate_districts(
     )
 
 
-def evaluate_active(
-    *, session: Session, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None,
-) -> EvaluationRun | None:
-    """Evaluate the active ruleset on the newest data (the hook run after every ingestion).
+def _stored_run(session: Session, ruleset_id: int, cutoff: datetime) -> bool:
+    return session.scalar(
+        select(RunRow.id).where(RunRow.ruleset_id == ruleset_id, RunRow.data_cutoff == cutoff)
+    ) is not None
 
-    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`. Returns None when no
-    ruleset is active or there are no data.
+
+def serialise_evaluations(session: Session) -> None:
+    """Hold the evaluation lock until ``session``'s transaction ends (commit or rollback).
+
+    Two evaluations at the same cutoff would otherwise both store their rows and collide on the
+    unique keys of ``assessment`` and ``evaluation_run``; taken just before an evaluation reads
+    the rows it compares with and stores its own, the lock makes the second one see the first
+    one's run and reuse it (:func:`evaluate_districts`).
+
+    PostgreSQL: ``pg_advisory_xact_lock`` on :data:`EVALUATION_LOCK_KEY`, released at the end
+    of the transaction or when a killed holder's connection goes. SQLite: the first write of a
+    transaction takes the database's write lock until the transaction ends, and a write that
+    changes no row is enough; it waits up to :data:`SQLITE_LOCK_WAIT_MS` for that lock.
+    """
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": EVALUATION_LOCK_KEY})
+        return
+    connection = session.connection()
+    before = int(connection.exec_driver_sql("PRAGMA busy_timeout").scalar() or 0)
+    connection.exec_driver_sql(f"PRAGMA busy_timeout = {SQLITE_LOCK_WAIT_MS}")
+    try:
+        connection.exec_driver_sql(
+            "UPDATE evaluation_run SET rows_written = rows_written WHERE 0 = 1"
+        )
+    finally:
+        connection.exec_driver_sql(f"PRAGMA busy_timeout = {before}")
+
+
+def evaluation_behind(*, session: Session) -> tuple[RulesetRow, datetime] | None:
+    """The active ruleset and the newest data cutoff when data newer than the ruleset's newest
+    evaluation are stored (None: no active ruleset, no data, or evaluated up to the newest
+    vintage).
+
+    Compares the newest vintage's ``received_at`` (the default cutoff) with the newest
+    ``evaluation_run`` cutoff of the active ruleset. Vintages taken in without an explicit time
+    are stamped in commit order (:func:`server.services.ingest.ingest_payload`), so a vintage
+    committed after a run always has a later ``received_at`` than that run's cutoff.
     """
     row = active_ruleset(session=session)
     if row is None:
         return None
-    return evaluate_districts(session=session, ruleset_row=row, notify=notify,
-                              stale_after=stale_after)
+    newest = newest_cutoff(session=session)
+    if newest is None:
+        return None
+    run = newest_run_of(session=session, ruleset_id=row.id)
+    if run is not None and run.data_cutoff >= newest:
+        return None
+    return row, newest
+
+
+def evaluate_if_behind(
+    db: Database, *, notify: NotifyConfig | None = None,
+    stale_after: Mapping[str, timedelta] | None = None,
+) -> EvaluationRun | None:
+    """Evaluate the active ruleset at the newest cutoff when new data are not yet evaluated.
+
+    The one place that decides that new data mean a new evaluation: every way in (push, upload,
+    ``tierwise ingest``, scheduled feed runs) calls it after its ingest commits, and every start
+    (``tierwise serve``, the scheduler's leader, ``tierwise ingest``) calls it too, so data
+    landed by a process killed before its evaluation are evaluated by the next start. Runs in
+    its own transaction; concurrent calls serialise (:func:`serialise_evaluations`) and the
+    later one reuses the stored run. Returns None when there is nothing to evaluate.
+    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`.
+    """
+    with db.transaction() as session:
+        behind = evaluation_behind(session=session)
+        if behind is None:
+            return None
+        row, cutoff = behind
+        return evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff,
+                                  notify=notify, stale_after=stale_after)
 
 
 def assessments_as_of(
@@ -448,12 +542,14 @@ __all__ = [
     "content_sha256",
     "current_assessment_id",
     "default_ruleset_path",
-    "evaluate_active",
     "evaluate_districts",
+    "evaluate_if_behind",
+    "evaluation_behind",
     "newest_cutoff",
     "newest_run",
     "newest_run_of",
     "policies_dir",
+    "serialise_evaluations",
     "store_ruleset",
 ]
 

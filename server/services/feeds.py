@@ -2,7 +2,9 @@
 
 A *run* of a pulled feed takes every waiting file of a file-drop folder (or one conditional GET of
 an HTTP source), ingests each as one vintage, records the feed's state (ETag, Last-Modified, last
-success or error) in the same transaction, and triggers the evaluation once after commit.
+success or error) in the same transaction, and after commit asks for an evaluation once
+(:func:`server.services.evaluation.evaluate_if_behind`, which evaluates only data not yet
+evaluated, whether this run or an earlier, killed one landed them).
 
 Freshness: for each feed and region, the newest reference date and the newest time a vintage of
 that feed was received; a region is *stale* for the feed when today (in the office's time zone)
@@ -41,7 +43,7 @@ from server.services.audit import record
 from server.services.database import Database
 from server.services.district_indicators import feed_limits
 from server.services.errors import ServiceError
-from server.services.evaluation import evaluate_active
+from server.services.evaluation import evaluate_if_behind
 from server.services.ingest import (
     IngestOutcome,
     IngestReceipt,
@@ -139,10 +141,19 @@ def token_matches(*, session: Session, feed: str, token: str | None) -> bool:
 # --- runs ----------------------------------------------------------------------------------------
 
 def _state(session: Session, feed: str) -> FeedState:
+    """The feed's state row, created on first use; a row another ingest created meanwhile is
+    taken (on SQLite the ingest's savepoint has committed the vintage by then, so two first
+    pushes of a feed can race here)."""
     row = session.get(FeedState, feed)
     if row is None:
-        row = FeedState(feed=feed, last_error="", failures=0)
-        session.add(row)
+        try:
+            with session.begin_nested():
+                row = FeedState(feed=feed, last_error="", failures=0)
+                session.add(row)
+        except IntegrityError:
+            row = session.get(FeedState, feed, populate_existing=True)
+            if row is None:
+                raise
     return row
 
 
@@ -207,6 +218,8 @@ def ingest_recorded(
     Every way in uses it, so each records its outcome alike (:func:`record_feed_state`): a
     landed or unchanged payload in the ingest transaction, a file rejected whole
     (:class:`FeedFileError`, re-raised) as the feed's last error. A dry run records nothing.
+    Without ``received_at`` the vintage is stamped in commit order
+    (:func:`~server.services.ingest.stamp_in_commit_order`).
     """
     at = received_at or datetime.now(UTC)
     after = None if dry_run else (
@@ -215,7 +228,7 @@ def ingest_recorded(
     )
     try:
         return ingest_and_evaluate(
-            db, feed=feed, payload=payload, time_zone=time_zone, received_at=at,
+            db, feed=feed, payload=payload, time_zone=time_zone, received_at=received_at,
             dry_run=dry_run, progress=progress, evaluate=evaluate, after_landing=after,
             notify=notify, stale_after=stale_after,
         )
@@ -250,28 +263,30 @@ def run_feed(
     """Run a pulled feed once: each waiting file, or one conditional GET. Errors are recorded in
     the feed state; transient fetch errors are re-raised after being recorded (the scheduler
     logs them and the next run tries again). ``stale_after``: the catalogue's feed limits for
-    the evaluation (:func:`catalogue_limits`)."""
+    the evaluation (:func:`catalogue_limits`). Vintages are received at ``now`` when given,
+    else stamped in commit order. With ``evaluate`` the run ends with
+    :func:`~server.services.evaluation.evaluate_if_behind` (``evaluated``: there were data
+    to evaluate)."""
     at = now or datetime.now(UTC)
     if isinstance(feed.source, FileSource):
-        receipts, errors = _run_files(db, feed, feed.source, time_zone, at)
+        receipts, errors = _run_files(db, feed, feed.source, time_zone, at, now)
         not_modified = False
     elif isinstance(feed.source, HttpSource):
         receipts, errors, not_modified = _run_http(
-            db, feed, feed.source, time_zone, at, environ or {}, policy, client
+            db, feed, feed.source, time_zone, at, environ or {}, policy, client, now
         )
     else:
         raise ServiceError(f"feed {feed.name!r} is a push feed; it has nothing to pull")
     evaluated = False
-    if evaluate and any(not r.unchanged and r.rows_accepted for r in receipts):
-        with db.transaction() as session:
-            evaluated = evaluate_active(session=session, notify=notify,
-                                        stale_after=stale_after) is not None
+    if evaluate:
+        evaluated = evaluate_if_behind(db, notify=notify, stale_after=stale_after) is not None
     return FeedRun(feed=feed.name, receipts=tuple(receipts), not_modified=not_modified,
                    errors=tuple(errors), evaluated=evaluated)
 
 
 def _run_files(
-    db: Database, feed: FeedDefinition, source: FileSource, time_zone: str, at: datetime
+    db: Database, feed: FeedDefinition, source: FileSource, time_zone: str, at: datetime,
+    received_at: datetime | None = None,
 ) -> tuple[list[IngestReceipt], list[str]]:
     receipts, errors = [], []
     files = pending_files(source)
@@ -282,7 +297,7 @@ def _run_files(
         try:
             outcome = ingest_recorded(
                 db, feed=feed, payload=Payload.from_path(path), time_zone=time_zone,
-                received_at=at,
+                received_at=received_at,
             )
         except FeedFileError as exc:
             move_aside(path, source, outcome="rejected", now=at)
@@ -296,6 +311,7 @@ def _run_files(
 def _run_http(
     db: Database, feed: FeedDefinition, source: HttpSource, time_zone: str, at: datetime,
     environ: Mapping[str, str], policy: RetryPolicy | None, client: httpx.Client | None,
+    received_at: datetime | None = None,
 ) -> tuple[list[IngestReceipt], list[str], bool]:
     with db.sessions() as session:
         state = session.get(FeedState, feed.name)
@@ -316,7 +332,8 @@ def _run_http(
     try:
         outcome = ingest_recorded(
             db, feed=feed, payload=Payload.from_bytes(source.url, got.content),
-            time_zone=time_zone, received_at=at, etag=got.etag, last_modified=got.last_modified,
+            time_zone=time_zone, received_at=received_at, etag=got.etag,
+            last_modified=got.last_modified,
         )
     except FeedFileError as exc:
         return [], [str(exc)], False
@@ -693,8 +710,9 @@ def ingest_push(
     """Ingest a pushed ``content`` for an already checked ``feed`` as one vintage (committed).
 
     JSON bodies (``application/json``) are read as JSON records whatever the feed's format.
-    The evaluation hook is left to the caller (:func:`evaluate_after_ingest`), so the pusher
-    gets its receipt without waiting for it.
+    The evaluation is left to the caller (the web app queues it on its evaluation worker,
+    :class:`server.services.evaluation_worker.EvaluationWorker`), so the pusher gets its
+    receipt without waiting for it.
     """
     if "json" in content_type.lower() and feed.format != "json":
         feed = replace(feed, format="json")
@@ -728,16 +746,6 @@ def catalogue_limits(catalogue: FeedCatalogue) -> dict[str, timedelta]:
     """Feed name -> ``stale_after`` of every configured feed, for the evaluation
     (:func:`server.services.district_indicators.feed_limits`)."""
     return feed_limits(catalogue)
-
-
-def evaluate_after_ingest(
-    db: Database, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None,
-) -> None:
-    """The evaluation hook, in its own transaction (run after a push or upload committed);
-    ``stale_after`` as in :func:`~server.services.evaluation.evaluate_districts`."""
-    with db.transaction() as session:
-        evaluate_active(session=session, notify=notify, stale_after=stale_after)
 
 
 @dataclass(frozen=True, kw_only=True)

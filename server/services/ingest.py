@@ -6,19 +6,29 @@ killed process leaves no partial vintage). Content identical to an earlier vinta
 feed (same SHA-256) is a no-op. Rows are read in blocks, so memory stays bounded by the compact
 arrays of accepted rows (about 40 bytes a row) rather than by the file's text.
 
-After a payload lands and is committed, :func:`ingest_and_evaluate` runs the evaluation hook
-(:func:`server.services.evaluation.evaluate_active`) in its own transaction.
+A vintage taken in without an explicit time is stamped (``received_at``) at the end of its
+transaction, in commit order: on SQLite the transaction holds the database's write lock from its
+first row on; on PostgreSQL the stamp is taken under an advisory lock held until commit. So a
+vintage committed after an evaluation always has a later ``received_at`` than that evaluation's
+cutoff, and the check for unevaluated data (:func:`server.services.evaluation.evaluate_if_behind`)
+cannot miss it.
+
+After a payload is committed (landed, or identical to a stored vintage),
+:func:`ingest_and_evaluate` runs :func:`~server.services.evaluation.evaluate_if_behind` in its own
+transaction: re-running an ingest whose process was killed after its commit evaluates what the
+killed run did not.
 """
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 from typing import BinaryIO
 
 import numpy as np
-from sqlalchemy import select
+from sqlalchemy import func, select, text, type_coerce
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedDefinition
@@ -37,10 +47,11 @@ from server.feeds.validation import (
 )
 from server.services.audit import record
 from server.services.database import Database
-from server.services.evaluation import EvaluationRun, evaluate_active
+from server.services.evaluation import EvaluationRun, evaluate_if_behind
 from server.services.notify import NotifyConfig
 from server.store.models import Measure, Region, Vintage
 from server.store.reads import newest_values
+from server.store.types import UTCDateTime
 from server.store.vintages import (
     Rejection,
     find_vintage_by_checksum,
@@ -49,6 +60,10 @@ from server.store.vintages import (
 )
 
 KEPT_REJECTIONS = 1000
+#: Key of the PostgreSQL advisory lock under which a vintage is stamped (held until commit).
+STAMP_LOCK_KEY = int.from_bytes(
+    hashlib.sha256(b"tierwise-vintage-stamp").digest()[:8], "big", signed=True
+)
 NO_DATA_ROWS = "no data rows: the file holds a header (or an empty list) and no rows to take in"
 Progress = Callable[[int], None]
 
@@ -146,11 +161,31 @@ class _Tally:
         )
 
 
+def stamp_in_commit_order(*, session: Session) -> datetime:
+    """A ``received_at`` later than every committed vintage's, taken so that it stays the latest
+    until this transaction commits (module docstring).
+
+    PostgreSQL: under ``pg_advisory_xact_lock`` (:data:`STAMP_LOCK_KEY`), held until the
+    transaction ends, so the next stamp is taken after this vintage is committed or gone.
+    SQLite: the ingest transaction already holds the write lock. The stamp is the clock, or one
+    microsecond past the newest stored stamp when the clock is not ahead of it.
+    """
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": STAMP_LOCK_KEY})
+    now = datetime.now(UTC)
+    newest = session.scalar(select(type_coerce(func.max(Vintage.received_at), UTCDateTime())))
+    return now if newest is None or now > newest else newest + timedelta(microseconds=1)
+
+
 def ingest_payload(
     *, session: Session, feed: FeedDefinition, payload: Payload, received_at: datetime,
     today: date, dry_run: bool = False, progress: Progress | None = None,
+    stamp: bool = False,
 ) -> IngestReceipt:
     """Validate ``payload`` against ``feed`` and land it as one vintage (never commits).
+
+    With ``stamp``, the vintage's ``received_at`` is set at the end, in commit order
+    (:func:`stamp_in_commit_order`); ``received_at`` is then only the provisional value.
 
     Raises :class:`~server.feeds.errors.FeedFileError` (and nothing is written) when the file is
     rejected whole: undecodable bytes, a header without the required columns, no bytes at all,
@@ -217,6 +252,8 @@ def ingest_payload(
             )
             vintage.rows_accepted = len(kept)
             vintage.rows_rejected = tally.total
+            if stamp:
+                vintage.received_at = received_at = stamp_in_commit_order(session=session)
             record(
                 session=session, actor="feeds", action="feed.ingest", subject=feed.name,
                 details={"vintage": vintage.id, "source": payload.label[:200],
@@ -274,7 +311,8 @@ def _late_rejections(
 
 @dataclass(frozen=True, kw_only=True)
 class IngestOutcome:
-    """A committed ingestion and the evaluation it triggered (None when nothing new landed)."""
+    """A committed ingestion and the evaluation after it (None when every vintage was already
+    evaluated, or no ruleset is active)."""
 
     receipt: IngestReceipt
     evaluation: EvaluationRun | None
@@ -294,22 +332,26 @@ def ingest_and_evaluate(
     after_landing: Callable[[Session, IngestReceipt], None] | None = None,
     notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
 ) -> IngestOutcome:
-    """Ingest ``payload`` in its own transaction; after commit, run the evaluation hook.
+    """Ingest ``payload`` in its own transaction; after commit, evaluate what is not evaluated.
 
     ``after_landing`` runs inside the ingest transaction (the feed state is recorded there, so
-    ETag and vintage commit together). ``stale_after`` (feed name -> staleness limit, from the
-    feed catalogue) goes to the evaluation (:func:`~server.services.evaluation.evaluate_districts`).
+    ETag and vintage commit together). Without ``received_at`` the vintage is stamped in commit
+    order (:func:`stamp_in_commit_order`). With ``evaluate``, every committed ingest (an
+    identical payload too) ends with :func:`~server.services.evaluation.evaluate_if_behind`, which
+    also catches up on data an earlier, killed run landed. ``stale_after`` (feed name ->
+    staleness limit, from the feed catalogue) goes to the evaluation
+    (:func:`~server.services.evaluation.evaluate_districts`).
     """
     now = received_at or datetime.now(UTC)
     with db.transaction() as session:
         receipt = ingest_payload(
             session=session, feed=feed, payload=payload, received_at=now,
             today=office_today(now, time_zone), dry_run=dry_run, progress=progress,
+            stamp=received_at is None,
         )
         if after_landing is not None:
             after_landing(session, receipt)
     run = None
-    if evaluate and not dry_run and not receipt.unchanged and receipt.rows_accepted:
-        with db.transaction() as session:
-            run = evaluate_active(session=session, notify=notify, stale_after=stale_after)
+    if evaluate and not dry_run:
+        run = evaluate_if_behind(db, notify=notify, stale_after=stale_after)
     return IngestOutcome(receipt=receipt, evaluation=run)

@@ -125,3 +125,45 @@ def attempts(attempts_db: Database) -> Database:
     with attempts_db.transaction() as s:
         s.execute(delete(LoginAttempt))
     return attempts_db
+
+
+#: One push feed for the small offices of the crash and concurrency tests.
+SMALL_FEEDS = """\
+feeds:
+  - name: long-csv
+    source: {kind: push}
+    measures: [cases, tests, positives]
+"""
+
+
+def seed_small_office(db: Database, folder: Path, *, districts: int = 3) -> Path:
+    """Invented districts ``S01``.., the measures the evaluation reads, :data:`STALE_RULES`
+    active, and the feed file :data:`SMALL_FEEDS` (written to ``folder``, returned). No data."""
+    from server.services.evaluation import store_ruleset
+    from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+
+    (folder / "rules.yaml").write_text(STALE_RULES)
+    feeds = folder / "feeds.yaml"
+    feeds.write_text(SMALL_FEEDS)
+    with db.transaction() as session:
+        upsert_regions(session=session, records=[
+            RegionRecord(code=f"S{k:02d}", name=f"Smallfield {k}", level="district",
+                         parent=None, population=10_000) for k in range(1, districts + 1)])
+        upsert_measures(session=session, records=[
+            MeasureRecord(name=m, unit="n", kind="count", aggregation="sum")
+            for m in ("cases", "tests", "positives", "hosp_admissions", "gp_ari",
+                      "icu_occupied", "icu_staffed", "ww_concentration", "ww_flow")])
+        store_ruleset(session=session, path=folder / "rules.yaml", activate=True)
+    return feeds
+
+
+def cases_csv(days: int, *, districts: int = 3, value: int = 5,
+              end: date = date(2026, 3, 31)) -> bytes:
+    """A long-layout CSV of daily cases for ``S01``.. over the ``days`` days up to ``end``."""
+    from datetime import timedelta
+
+    lines = ["region,date,measure,value"] + [
+        f"S{k:02d},{end - timedelta(days=d)},cases,{value + k}"
+        for d in range(days) for k in range(1, districts + 1)
+    ]
+    return ("\n".join(lines) + "\n").encode()

@@ -1,34 +1,12 @@
-"""Committed databases (a fresh SQLite file or PostgreSQL schema per test) and a feed server."""
+"""A feed server for the scheduler tests (``committed_db`` is in ``tests/conftest.py``)."""
 
 from __future__ import annotations
 
-import os
 import threading
 from collections.abc import Iterator
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from pathlib import Path
 
 import pytest
-
-from server.services.database import Database
-from server.store import make_sessionmaker, scratch_engine, upgrade
-
-POSTGRES_URL = os.environ.get("TIERWISE_TEST_POSTGRES_URL")
-
-
-@pytest.fixture(params=[
-    pytest.param("sqlite", id="sqlite"),
-    pytest.param("postgresql", id="postgresql", marks=[
-        pytest.mark.postgres,
-        pytest.mark.skipif(not POSTGRES_URL, reason="TIERWISE_TEST_POSTGRES_URL is not set")]),
-])
-def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Database]:
-    """A migrated database whose commits are real (the scheduler commits), dropped afterwards."""
-    url = f"sqlite:///{tmp_path / 'sched.db'}" if request.param == "sqlite" else POSTGRES_URL
-    assert url is not None
-    with scratch_engine(url, prefix="tw_sched") as engine:
-        upgrade(engine)
-        yield Database(engine=engine, sessions=make_sessionmaker(engine))
 
 
 class FeedServer:

@@ -4,13 +4,14 @@ from __future__ import annotations
 
 import time
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 
 import pytest
 from apscheduler.schedulers.background import BackgroundScheduler
 from sqlalchemy import func, select
 
-from server.feeds.definition import parse_feeds
-from server.feeds.sources import RetryPolicy
+from server.feeds.definition import load_feeds, parse_feeds
+from server.feeds.sources import Payload, RetryPolicy
 from server.scheduler.feed_scheduler import (
     JOB_TABLE,
     FeedScheduler,
@@ -18,9 +19,11 @@ from server.scheduler.feed_scheduler import (
     trigger_of,
 )
 from server.services.database import Database
-from server.services.feeds import LeaderLease, run_feed
+from server.services.evaluation import evaluation_behind
+from server.services.feeds import LeaderLease, ingest_recorded, run_feed
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.models import FeedState, Vintage
+from tests.server.conftest import cases_csv, seed_small_office
 
 FAST = RetryPolicy(attempts=2, first_wait=0.0, max_wait=0.0)
 
@@ -165,3 +168,24 @@ def test_scheduler_missed_runs_after_downtime_run_once(  # type: ignore[no-untyp
         assert next_run > datetime.now(UTC)  # type: ignore[operator]
     finally:
         again.stop()
+
+
+def test_new_leader_evaluates_data_left_unevaluated(committed_db: Database,
+                                                    tmp_path: Path) -> None:
+    # A vintage landed by a process killed before its evaluation: the next leader catches up.
+    feeds = load_feeds(seed_small_office(committed_db, tmp_path))
+    ingest_recorded(committed_db, feed=feeds["long-csv"],
+                    payload=Payload.from_bytes("push", cases_csv(20)), evaluate=False)
+
+    def behind() -> bool:
+        with committed_db.sessions() as session:
+            return evaluation_behind(session=session) is not None
+
+    assert behind()
+    leader = FeedScheduler(committed_db, catalogue=feeds, lease_seconds=1.0, tick_seconds=0.2,
+                           holder="catch-up")
+    leader.start()
+    try:
+        assert wait_for(lambda: not behind(), timeout=60)
+    finally:
+        leader.stop()

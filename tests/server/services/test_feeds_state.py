@@ -15,11 +15,10 @@ from server.feeds.errors import EmptyFileError, EncodingError, HeaderError
 from server.feeds.parser import read_chunks
 from server.feeds.sources import Payload
 from server.services.database import Database
-from server.services.evaluation import store_ruleset
+from server.services.evaluation import evaluate_if_behind, store_ruleset
 from server.services.feeds import (
     catalogue_limits,
     duration_text,
-    evaluate_after_ingest,
     feed_statuses,
     ingest_push,
     ingest_recorded,
@@ -309,7 +308,7 @@ def test_evaluation_after_upload_marks_a_stale_feed(db: Database, tmp_path: Path
         f"SA,{d},cases,2\n".encode() for d in days[:10]))          # to 10 March, limit 3 days
     upload(db, b"region,date,measure,value\n" + b"".join(
         f"SB,{d},cases,2\n".encode() for d in days), feed="rare")  # to 15 March
-    evaluate_after_ingest(db, None, catalogue_limits(CATALOGUE))
+    evaluate_if_behind(db, stale_after=catalogue_limits(CATALOGUE))
     with db.sessions() as session:
         status = {
             (code, day): a.explanation["data"]["criteria"][0]["status"]
