@@ -182,8 +182,8 @@ def test_explanation_of_a_row_kept_from_an_earlier_run_names_both_cutoffs(
     client, path = review_client
     _evaluate_later(path, 5)
     text = client.get("/staff/district/D05/explain").text
-    found = re.search(r"Computed with data as of ([^;]+); shown under the evaluation of "
-                      r"(\S+ \S+ UTC)", text)
+    found = re.search(r"Data cutoff</dt><dd>(\S+ \S+ UTC) · newest evaluation: "
+                      r"(\S+ \S+ UTC)</dd>", text)
     assert found is not None, "an unchanged run keeps the earlier row"
     assert found.group(1) != found.group(2)
 
