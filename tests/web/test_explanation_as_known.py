@@ -20,7 +20,7 @@ from fastapi.testclient import TestClient
 
 from server.services.evaluation import evaluate_active, newest_cutoff
 from server.store.vintages import append_vintage
-from tests.web.conftest import DEMO_END, copy_demo, login, settings_for
+from tests.web.conftest import DEMO_END, copy_demo, csrf_of, login, settings_for
 from web.app import create_app
 
 DISTRICT, DAY = "D09", date(2026, 10, 30)  # raised Baseline -> High that day in the demo (seed 7)
@@ -185,3 +185,26 @@ def test_review_card_names_the_day_of_the_change_and_opens_it(
     explained = demo_app_client.get(html.unescape(link.group(1))).text
     assert f"on {moved}</h1>" in explained
     assert _sentence(explained) == sentence
+
+
+def test_decision_history_links_the_assessment_decided_on_as_it_was(
+    own_client: TestClient,
+) -> None:
+    login(own_client, "otto.approver")
+    page = own_client.get("/staff/review").text
+    card = _between(page, '<article class="pending-card"', "</article>")
+    action = re.search(r'action="(/staff/review/\d+)"', card)
+    assert action is not None
+    answer = own_client.post(action.group(1), data={
+        "csrf": csrf_of(page), "action": "confirm", "reason": "invented test reason"},
+        follow_redirects=False)
+    assert answer.status_code == 303
+    history = _between(own_client.get("/staff/review").text, 'id="hist-h"', "</section>")
+    link = re.search(r'<a href="([^"]+)" title="The explanation of ([\d-]+) as it was', history)
+    assert link is not None and link.group(2) == DEMO_END.isoformat()
+    then = own_client.get(html.unescape(link.group(1))).text
+    assert f"on {DEMO_END}</h1>" in then
+    _revise(own_client)  # later data do not change what the decision answered
+    again = _between(own_client.get("/staff/review").text, 'id="hist-h"', "</section>")
+    assert link.group(1) in again
+    assert _main_part(own_client.get(html.unescape(link.group(1))).text) == _main_part(then)
