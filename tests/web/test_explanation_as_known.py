@@ -103,8 +103,10 @@ def _revise(client: TestClient) -> None:
 def _main_part(page: str) -> str:
     """The page from the headline to the end of the briefing, without the run's cutoff (which
     names the newest evaluation) and without "Revised since"."""
-    part = _between(page, "<h1>", '<section class="revised"')
-    return re.sub(r" · newest evaluation: [^<]*", "", part)
+    part = _between(page, "<h1>", '<p class="print-note">')
+    part = re.sub(r'<section class="revised".*?</section>', "", part, flags=re.S)
+    part = re.sub(r"<dt>Revised since</dt><dd>[^<]*</dd>", "", part)
+    return re.sub(r"\s+", " ", part).strip()
 
 
 def test_explanation_of_a_revised_day_keeps_the_values_known_then(
@@ -115,8 +117,8 @@ def test_explanation_of_a_revised_day_keeps_the_values_known_then(
     assert "Raised from Baseline (0) to High (2) on 2026-10-30" in _sentence(before)
     assert _agrees(before) >= 3
     # the table holds the decision day's criteria, the ones the sentence quotes
-    assert "As they stood on 2026-10-29, the day the change was decided" in before
-    assert "Nothing: the newest evaluation" in before
+    assert "Criteria on 2026-10-29, the day the change was decided</h2>" in before
+    assert "<dt>Revised since</dt><dd>Nothing (newest evaluation: " in before
     incidence_then = _table(before)[0]
     _revise(own_client)
     after = own_client.get(url).text
@@ -124,6 +126,7 @@ def test_explanation_of_a_revised_day_keeps_the_values_known_then(
     assert _main_part(after) == _main_part(before)
     assert _agrees(after) >= 3
     # the revision, apart, in the printed part of the page
+    assert "Yes, see below: with the newest data the tier would be Severe (3)." in after
     revised = html.unescape(_between(after, '<section class="revised"', "</section>"))
     assert "noprint" not in revised.split(">", 1)[0]
     rows = re.findall(r'<tr><th scope="row">([^<]+)</th><td class="num">([^<]+)</td>'
