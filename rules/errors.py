@@ -11,13 +11,15 @@ attribute lists them all (the first one is the exception itself).
 turns it into a :class:`RulesetError` at the node the field came from.
 :class:`EvaluationInputError` is raised by the evaluator when the indicator arrays do not fit the
 ruleset.
+:class:`StoredExplanationError` is raised by :func:`rules.record.read_explanation` when a stored
+explanation lacks a key it needs.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
 
-__all__ = ["EvaluationInputError", "FieldError", "RulesetError"]
+__all__ = ["EvaluationInputError", "FieldError", "RulesetError", "StoredExplanationError"]
 
 
 class RulesetError(ValueError):
@@ -95,6 +97,23 @@ class EvaluationInputError(ValueError):
     def __init__(self, argument: str, message: str) -> None:
         self.argument = argument
         super().__init__(f"{argument}: {message}")
+
+
+class StoredExplanationError(ValueError):
+    """A stored explanation (an assessment's ``explanation`` JSON) lacks a key or holds a
+    value of the wrong kind.
+
+    Parameters
+    ----------
+    path : str
+        Key path inside the stored JSON, e.g. ``data.criteria[1].indicator``.
+    message : str
+        What is wrong, naming the offending value.
+    """
+
+    def __init__(self, path: str, message: str) -> None:
+        self.path = path
+        super().__init__(f"stored explanation: {path}: {message}")
 
 
 def _dotted(path: Sequence[str | int]) -> str:

@@ -34,6 +34,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from rules.formatting import number_text, reading_text, value_text, with_unit
 from rules.levels import (
     REASON_MISSING,
     REASON_NOWCAST,
@@ -70,23 +71,10 @@ def _num(x: float) -> float | None:
     return None if x is None or not math.isfinite(float(x)) else float(x)
 
 
-def _fmt(spec: IndicatorSpec, value: float | None) -> str:
-    if value is None:
-        return "n/a"
-    return f"{value:.{spec.decimals}f}"
-
-
-def _unit(spec: IndicatorSpec, text: str) -> str:
-    if not spec.unit:
-        return text
-    return text + spec.unit if spec.unit.startswith("%") else f"{text} {spec.unit}"
-
-
 def _value_text(spec: IndicatorSpec, item: dict[str, Any]) -> str:
-    text = _fmt(spec, item["value"])
-    if item["statistic"] == "bounds" and item["lower"] is not None and item["upper"] is not None:
-        text += f" ({_fmt(spec, item['lower'])}–{_fmt(spec, item['upper'])})"
-    return _unit(spec, text)
+    if item["statistic"] == "bounds":
+        return reading_text(spec, item["value"], item["lower"], item["upper"])
+    return with_unit(spec, number_text(spec, item["value"]))
 
 
 def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
@@ -246,10 +234,10 @@ def _insufficient(ev: Evaluation, date: str, gates: list[dict[str, Any]], unknow
             continue
         if gi["indicator"] is not None:
             spec = ev.ruleset.indicator(gi["indicator"])
-            val = "missing" if gi["value"] is None else _unit(spec, _fmt(spec, gi["value"]))
+            val = "missing" if gi["value"] is None else value_text(spec, gi["value"])
             need = gi["op"].replace("_", " ")
             parts.append(
-                f"{spec.label} {val}, needs {need} {_unit(spec, _fmt(spec, gi['threshold']))}"
+                f"{spec.label} {val}, needs {need} {value_text(spec, gi['threshold'])}"
             )
         else:
             parts.append(

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable
-from datetime import date
+from datetime import date, datetime
 
 from fastapi import APIRouter, Query, Request
 from fastapi.responses import HTMLResponse, Response
@@ -96,8 +96,15 @@ def district(
 
 @router.get("/district/{code}/explain", response_class=HTMLResponse)
 def explain(
-    request: Request, code: str, session: SessionDep, user: StaffDep, day: date | None = None
+    request: Request, code: str, session: SessionDep, settings: SettingsDep, user: StaffDep,
+    day: date | None = None, as_of: datetime | None = None,
 ) -> Response:
-    """Why the district has its recommended tier on a day: a printable one-page briefing."""
-    return render(request, "staff/explain.html",
-                  {"e": explanation_page(session=session, code=code, day=day)})
+    """Why the district has its recommended tier on a day: a printable one-page briefing.
+
+    The assessment made for the day from the data as they were then (``as_of``: the one in
+    force at that data cutoff), with what later data revised listed apart.
+    """
+    return render(request, "staff/explain.html", {
+        "e": explanation_page(session=session, code=code, day=day, as_of=as_of),
+        "zone": settings.time_zone,
+    })

@@ -19,10 +19,14 @@ from typing import Any
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
+from rules import Ruleset
+from rules.formatting import interval_text, value_text
+from rules.record import CriterionState
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
+from server.services.explanations import RevisedSince, explained_day, revised_since
 from server.services.policies import parsed
-from server.services.tiers import decision_scales, tier_name
+from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
 
@@ -229,6 +233,15 @@ class ExplainedCriterion:
 
 @dataclass(frozen=True, kw_only=True)
 class ExplanationPage:
+    """One assessment of a district and day, from one stored record.
+
+    By default the assessment *made for* the day (its first stored row: the data as they were
+    when the day was first assessed); with ``as_of`` the one in force at that cutoff.
+    ``criteria`` are those the sentence describes, of ``basis_day`` (the day a move was decided,
+    else ``day``), as known at the same cutoff. ``revised`` compares with the newest run's
+    reading of the day (None: the newest run reads this very record).
+    """
+
     code: str
     name: str
     day: date
@@ -238,36 +251,55 @@ class ExplanationPage:
     ruleset_sha256: str
     #: the cutoff the assessment was computed at (its row's own; reproducible from it)
     data_cutoff: datetime
-    #: the cutoff of the evaluation run it is shown under (the newest run; same or later)
-    run_cutoff: datetime
+    #: when the row was written
+    made_at: datetime
+    #: the cutoff of the newest evaluation run (same or later)
+    run_cutoff: datetime | None
+    #: True: the first assessment of the day; False: a later reading (``as_of``)
+    first: bool
     tier: int
     tier_name: str
+    #: "Severe (3)", as the sentences and "Revised since" name it
+    tier_label: str
     previous_name: str
     action: str
+    decided_on: date | None
     sentence: str
+    basis_day: date
     criteria: tuple[ExplainedCriterion, ...]
     counters: tuple[tuple[str, str], ...]
     held_by: tuple[str, ...]
     gates: tuple[tuple[str, bool, str], ...]
     prepare: tuple[tuple[str, bool, str], ...]
     official_name: str | None
+    revised: RevisedSince | None
+    tier_now_name: str | None
 
 
-def _fmt(v: float | None, decimals: int, unit: str = "") -> str:
-    if v is None:
-        return "n/a"
-    text = f"{v:.{decimals}f}"
-    if not unit:
-        return text
-    return text + unit if unit.startswith("%") else f"{text} {unit}"
+def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str]) -> ExplainedCriterion:
+    spec = rs.indicator(c.indicator)
+    thresholds = tuple(
+        (names[t + 1], "—" if e is None else value_text(spec, e),
+         "—" if x is None else value_text(spec, x))
+        for t, (e, x) in enumerate(zip(c.enter, c.exit, strict=False))
+    )
+    note = f"thresholds changed while {c.conditioned_by} is high" if c.conditioned_by else ""
+    return ExplainedCriterion(
+        label=c.label, value_text=value_text(spec, c.value),
+        interval_text=interval_text(spec, c.lower, c.upper), statistic=c.statistic,
+        direction=c.direction, level=c.level, status=c.status, thresholds=thresholds,
+        count_text="—" if c.count is None else f"{c.count:.0f}", note=note,
+    )
 
 
-def explanation_page(*, session: Session, code: str, day: date | None = None) -> ExplanationPage:
+def explanation_page(
+    *, session: Session, code: str, day: date | None = None, as_of: datetime | None = None,
+) -> ExplanationPage:
     """Why district ``code`` has its recommended tier on ``day`` (default: the newest day).
 
-    The assessment is the one in force at the newest run of the active ruleset; an unchanged
-    result keeps the row of the earlier cutoff it was first computed at, and the page gives both
-    that cutoff (``data_cutoff``) and the run's (``run_cutoff``).
+    Shows the assessment made for the day, from the data as they were then (``as_of``: the one
+    in force at that cutoff instead), and what the newest run reads differently
+    (:mod:`server.services.explanations`).
     """
     region, _area = _region(session, code)
     row = active_ruleset(session=session)
@@ -275,66 +307,51 @@ def explanation_page(*, session: Session, code: str, day: date | None = None) ->
     if row is None or cutoff is None:
         raise NoAssessmentError(code, day)
     rs = parsed(row)
-    query = assessments_as_of(
-        select(Assessment), ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
-        start=day, end=day,
-    )
     if day is None:
-        query = query.order_by(Assessment.ref_date.desc()).limit(1)
-    a = session.scalars(query).first()
-    if a is None:
-        raise NoAssessmentError(code, day)
-    data = a.explanation.get("data", {})
-    names = [t.name for t in rs.tiers]
-    crits = []
-    for item in data.get("criteria", []):
-        spec = rs.indicator(item["indicator"])
-        interval = (f"{_fmt(item['lower'], spec.decimals)}–{_fmt(item['upper'], spec.decimals)}"
-                    if item.get("lower") is not None and item.get("upper") is not None else "—")
-        thresholds = tuple(
-            (names[t + 1], _fmt(e, spec.decimals, spec.unit) if e is not None else "—",
-             _fmt(x, spec.decimals, spec.unit) if x is not None else "—")
-            for t, (e, x) in enumerate(zip(item.get("enter", []), item.get("exit", []),
-                                           strict=False))
-        )
-        note = f"thresholds changed while {item['conditioned_by']} is high" \
-            if item.get("conditioned_by") else ""
-        crits.append(ExplainedCriterion(
-            label=item.get("label", item["id"]),
-            value_text=_fmt(item.get("value"), spec.decimals, spec.unit),
-            interval_text=interval, statistic=item.get("statistic", "estimate"),
-            direction=item.get("direction", "rising"), level=int(item.get("level", 0)),
-            status=item.get("status", ""), thresholds=thresholds,
-            count_text="—" if item.get("count") is None else f"{item['count']:.0f}", note=note,
+        day = session.scalar(assessments_as_of(
+            select(func.max(Assessment.ref_date)).select_from(Assessment),
+            ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
         ))
-    c = data.get("counters", {})
+        if day is None:
+            raise NoAssessmentError(code, None)
+    shown = explained_day(session=session, ruleset_id=row.id, region_id=region.id, day=day,
+                          run_cutoff=cutoff, as_of=as_of)
+    if shown is None:
+        raise NoAssessmentError(code, day)
+    record = shown.record
+    names = [t.name for t in rs.tiers]
+    c = record.counters
     counters = (
-        ("Days the candidate was higher", f"{c.get('up', 0)} of {c.get('confirm_days', 0)}"),
-        ("Days the candidate was lower", f"{c.get('down', 0)} of {c.get('release_days', 0)}"),
-        ("Days since the last change",
-         f"{c.get('since_change', 0)} (minimum {c.get('min_days_in_tier', 0)})"),
-        ("Candidate tier", tier_name(rs, int(data.get("candidate", a.recommended_tier)))),
+        ("Days the candidate was higher", f"{c.up} of {c.confirm_days}"),
+        ("Days the candidate was lower", f"{c.down} of {c.release_days}"),
+        ("Days since the last change", f"{c.since_change} (minimum {c.min_days_in_tier})"),
+        ("Candidate tier", tier_label(rs, record.candidate)),
     )
-    gates = tuple((g["id"], bool(g["passed"]),
-                   g.get("message") or "") for g in data.get("gates", []))
-    prepare = tuple((s["id"], bool(s["active"]), s.get("message") or "")
-                    for s in data.get("prepare", []))
     official = session.execute(
         select(Decision).where(Decision.region_id == region.id,
                                     Decision.published_at.is_not(None),
-                                    Decision.effective_date <= a.ref_date + timedelta(days=1))
+                                    Decision.effective_date <= shown.day + timedelta(days=1))
         .order_by(Decision.effective_date.desc(), Decision.id.desc()).limit(1)
     ).scalar()
-    previous = a.previous_tier if a.previous_tier is not None else a.recommended_tier
+    previous = shown.previous_tier if shown.previous_tier is not None else shown.recommended_tier
+    revised = revised_since(session=session, ruleset=rs, shown=shown, run_cutoff=cutoff)
     return ExplanationPage(
-        code=region.code, name=region.name, day=a.ref_date, assessment_id=a.id,
+        code=region.code, name=region.name, day=shown.day, assessment_id=shown.assessment_id,
         ruleset_name=row.name, ruleset_version=row.version, ruleset_sha256=row.sha256,
-        data_cutoff=a.data_cutoff, run_cutoff=cutoff, tier=a.recommended_tier,
-        tier_name=tier_name(rs, a.recommended_tier), previous_name=tier_name(rs, previous),
-        action=str(data.get("action", "")), sentence=a.explanation.get("sentence", ""),
-        criteria=tuple(crits), counters=counters, held_by=tuple(data.get("held_by", [])),
-        gates=gates, prepare=prepare,
+        data_cutoff=shown.data_cutoff, made_at=shown.created_at, run_cutoff=cutoff,
+        first=shown.first, tier=shown.recommended_tier,
+        tier_name=tier_name(rs, shown.recommended_tier),
+        tier_label=tier_label(rs, shown.recommended_tier),
+        previous_name=tier_name(rs, previous), action=record.action,
+        decided_on=record.decided_on, sentence=record.sentence, basis_day=shown.basis_day,
+        criteria=tuple(_explained_criterion(rs, item, names) for item in shown.basis),
+        counters=counters, held_by=record.held_by,
+        gates=tuple((g.id, g.passed, g.message) for g in record.gates),
+        prepare=tuple((s.id, s.active, s.message) for s in record.prepare),
         # named under the ruleset it was decided under (a policy change keeps the old name)
         official_name=(decision_scales(session=session, rows=[official])[official.id]
                        .name(official.tier) if official is not None else None),
+        revised=revised,
+        tier_now_name=None if revised is None else tier_label(rs, revised.tier_now),
     )
+

@@ -16,6 +16,7 @@ from server.services.review import (
     has_something_to_publish,
     pending_changes,
 )
+from server.services.review_cards import ReviewCard, review_cards
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
 
@@ -35,6 +36,8 @@ class ReviewQueue:
     """
 
     pending: tuple[PendingChange, ...]
+    #: one card per pending change, same order: the change, its day and its reasons
+    cards: tuple[ReviewCard, ...]
     unpublished: tuple[DecisionRecord, ...]
     publishable: bool
     history: tuple[DecisionRecord, ...]
@@ -68,8 +71,10 @@ def review_queue(
     if region:
         count = count.join(Region, Region.id == DecisionRow.region_id).where(Region.code == region)
     total = session.scalar(count) or 0
+    pending = tuple(pending_changes(session=session))
     return ReviewQueue(
-        pending=tuple(pending_changes(session=session)), unpublished=unpublished,
+        pending=pending, cards=review_cards(session=session, pending=pending),
+        unpublished=unpublished,
         publishable=has_something_to_publish(session=session),
         history=tuple(history), history_total=total, history_all=show_all,
         history_region=region or None, history_regions=regions, tier_names=names,

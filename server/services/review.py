@@ -211,6 +211,10 @@ class DecisionRecord:
     decided_at: datetime
     effective_date: date
     published_at: datetime | None
+    #: the day and data cutoff of the assessment answered (None: none, or another ruleset's),
+    #: for its explanation as it was when decided
+    assessment_day: date | None = None
+    assessment_cutoff: datetime | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -724,8 +728,11 @@ def decision_history(
     """Every decision, newest first (of one district when ``region`` is given, only the
     unpublished ones with ``unpublished_only``; at most ``limit`` when given). Tiers are named
     under the ruleset each decision was made under (:mod:`server.services.tiers`)."""
+    active = active_ruleset(session=session)
+    active_id = -1 if active is None else active.id  # only the active ruleset's are linked
     query = (
-        select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier)
+        select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier,
+               Assessment.ref_date, Assessment.data_cutoff, Assessment.ruleset_id)
         .join(Region, Region.id == DecisionRow.region_id)
         .outerjoin(User, User.id == DecisionRow.decided_by)
         .outerjoin(Assessment, Assessment.id == DecisionRow.assessment_id)
@@ -746,6 +753,8 @@ def decision_history(
             recommended_name="" if recommended is None else scales[row.id].name(recommended),
             kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
             effective_date=row.effective_date, published_at=row.published_at,
+            assessment_day=day if ruleset_id == active_id else None,
+            assessment_cutoff=cutoff if ruleset_id == active_id else None,
         )
-        for row, code, name, user, recommended in found
+        for row, code, name, user, recommended, day, cutoff, ruleset_id in found
     ]

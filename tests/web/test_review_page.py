@@ -184,10 +184,10 @@ def test_explanation_of_a_row_kept_from_an_earlier_run_names_both_cutoffs(
     client, path = review_client
     _evaluate_later(path, 5)
     text = client.get("/staff/district/D05/explain").text
-    found = re.search(r"Computed with data as of ([^;]+); shown under the evaluation of "
-                      r"(\S+ \S+ UTC)", text)
-    assert found is not None, "an unchanged run keeps the earlier row"
-    assert found.group(1) != found.group(2)
+    made = re.search(r"from the data received up to (\S+ \S+ UTC)", text)
+    newest = re.search(r"Nothing \(newest evaluation: (\S+ \S+ UTC)\)", text)
+    assert made is not None and newest is not None, "an unchanged run keeps the earlier row"
+    assert made.group(1) != newest.group(1)
 
 
 def test_overview_shows_a_decided_unpublished_district(

@@ -352,7 +352,12 @@ def test_runs_store_changes_only_on_both_back_ends(small: Session) -> None:
     assert dossier.recommended[-1] == full[(t1, END)][0]
     explained = explanation_page(session=small, code="T1")
     assert explained.run_cutoff == at and explained.day == END
-    assert explained.data_cutoff == (at if (t1, END) in written else first)
+    # the assessment made for the day, from the data as they were then; the newest reading
+    # with ``as_of`` (issue 11: a past day is not explained with later data)
+    assert explained.data_cutoff == first and explained.first
+    newest = explanation_page(session=small, code="T1", as_of=at)
+    assert newest.data_cutoff == (at if (t1, END) in written else first)
+    assert (explained.revised is None) == ((t1, END) not in written)
     _assert_rows_add_up(small)
 
 
