@@ -21,6 +21,7 @@ from server.services import auth
 from tests.web.conftest import PASSWORDS, copy_demo, login, settings_for
 from web.app import create_app
 
+pytestmark = pytest.mark.slow
 ADMIN = "ines.admin"  # invented demo account (demo_seed.seed)
 STRANGER, OFFICE = ("198.51.100.7", 40000), ("10.1.2.3", 40001)  # documentation addresses
 

@@ -21,6 +21,7 @@ from fastapi.testclient import TestClient
 from tests.web.conftest import copy_demo, csrf_of, login, seen_fields, settings_for
 from web.app import create_app
 
+pytestmark = pytest.mark.slow
 APPROVER, ADMIN = "otto.approver", "ines.admin"  # invented demo accounts (demo_seed.seed)
 
 

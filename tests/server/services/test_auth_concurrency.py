@@ -31,6 +31,7 @@ from server.store import make_sessionmaker, scratch_engine, upgrade
 from server.store.models import LoginAttempt
 from tests.conftest import BACKENDS, POSTGRES_URL
 
+pytestmark = pytest.mark.slow
 OWNER, PASSWORD = "ines.owner", "owner-pass-1234"  # invented account
 ATTACKS = 40
 

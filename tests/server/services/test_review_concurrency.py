@@ -38,6 +38,7 @@ from server.store.vintages import append_vintage
 from tests.conftest import BACKENDS, POSTGRES_URL
 from tests.server.conftest import STALE_RULES
 
+pytestmark = pytest.mark.slow
 APPROVERS = ("ada.approver", "bo.approver")  # invented accounts
 END = date(2031, 3, 31)
 DAYS = 21
