@@ -49,6 +49,7 @@ __all__ = [
     "ChangePoints",
     "PiecewiseFit",
     "Screening",
+    "binary_segmentation",
     "detect_changepoints",
     "fit_piecewise",
     "screen_breaks",
@@ -59,6 +60,7 @@ _WEEK = 7
 _MAX_NEWTON = 60
 _NEWTON_TOL = 1e-10
 _CHUNK_ROWS = 256
+_PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
 # ---------------------------------------------------------------- results
@@ -247,8 +249,9 @@ def _prefix(values: FloatArray) -> FloatArray:
 class _LineCosts:
     """Weighted residual sum of squares of a straight-line fit on any day range, in O(1)."""
 
-    def __init__(self, z: FloatArray, w: FloatArray) -> None:
+    def __init__(self, z: FloatArray, w: FloatArray, *, slope: bool = True) -> None:
         n = z.shape[1]
+        self.slope = slope
         t = np.arange(n, dtype=np.float64) - 0.5 * (n - 1)
         self.s = [_prefix(w), _prefix(w * t), _prefix(w * t * t), _prefix(w * z),
                   _prefix(w * t * z), _prefix(w * z * z)]
@@ -260,6 +263,8 @@ class _LineCosts:
             np.take_along_axis(p, hi, axis=1) - np.take_along_axis(p, lo, axis=1) for p in self.s
         )
         det = s0 * s2 - s1 * s1
+        if not self.slope:
+            det = np.zeros_like(det)
         with np.errstate(invalid="ignore", divide="ignore"):
             explained = (s2 * sz * sz - 2.0 * s1 * sz * stz + s0 * stz * stz) / det
             mean_only = np.where(s0 > 0, sz * sz / s0, 0.0)
@@ -332,8 +337,49 @@ def screen_breaks(
     adjusted = y / f[:, np.arange(n) % _WEEK]
     z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
     w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
-    costs = _LineCosts(z, w)
+    return binary_segmentation(z, w, min_segment=min_segment, max_breaks=max_breaks,
+                               penalty=penalty, slope=True, extra_params=_WEEK - 1)
 
+
+def binary_segmentation(
+    z: FloatArray,
+    w: FloatArray,
+    *,
+    min_segment: int,
+    max_breaks: int,
+    penalty: float = 1.0,
+    slope: bool = True,
+    extra_params: int = 0,
+) -> Screening:
+    """Binary segmentation of weighted series into straight lines (or constants), batched.
+
+    Parameters
+    ----------
+    z, w : ndarray, shape (regions, days)
+        Values and weights (weight 0 for a missing day; ``z`` finite everywhere).
+    min_segment, max_breaks : int
+        Fewest days per segment; most breaks searched.
+    penalty : float
+        Multiplier of the BIC penalty.
+    slope : bool
+        Fit a line per segment (True) or a constant (False).
+    extra_params : int
+        Parameters shared by all segments (weekday effects), counted in the criterion.
+
+    Returns
+    -------
+    Screening
+
+    Notes
+    -----
+    Each step adds to every region the split with the largest drop of the weighted residual
+    sum of squares, evaluated for all days at once from prefix sums. Model k has
+    ``p_k = (q + 1) k + q + extra_params`` parameters (``q`` per segment, a date per break) and
+    criterion ``RSS_k / phi + penalty * p_k * log n`` with ``phi = RSS_K / (n - p_K)`` from
+    the largest model (Scott & Knott 1974; Schwarz 1978; Lebreton et al. 1992).
+    """
+    rows, n = z.shape
+    costs = _LineCosts(z, w, slope=slope)
     order = np.full((rows, max_breaks), -1, dtype=np.int64)
     gain = np.zeros((rows, max_breaks))
     is_bound = np.zeros((rows, n + 1), dtype=bool)
@@ -359,13 +405,14 @@ def screen_breaks(
         gain[found, step] = np.maximum(best_gain[found], 0.0)
         is_bound[np.flatnonzero(found), best[found]] = True
 
-    n_obs = observed.sum(axis=1).astype(np.float64)
+    n_obs = (w > 0).sum(axis=1).astype(np.float64)
     rss0 = costs.cost(np.zeros((rows, 1), np.int64), np.full((rows, 1), n, np.int64))[:, 0]
     k = np.arange(max_breaks + 1)
     rss = rss0[:, None] - np.concatenate([np.zeros((rows, 1)), np.cumsum(gain, axis=1)], axis=1)
     valid = np.concatenate([np.ones((rows, 1), bool), order >= 0], axis=1)
     valid = np.logical_and.accumulate(valid, axis=1)
-    params = 3 * k + 8
+    q = 2 if slope else 1
+    params = (q + 1) * k + q + extra_params
     largest = valid.sum(axis=1) - 1
     with np.errstate(invalid="ignore", divide="ignore"):
         phi = rss[np.arange(rows), largest] / (n_obs - params[largest])
@@ -830,7 +877,7 @@ def detect_changepoints(
     breaks = np.where(keep, screening.order, -1)
     fit = fit_piecewise(y, breaks, dispersion=dispersion)
     prof = _Profile(*(np.full((rows, kmax), -1, dtype=np.int64) for _ in range(3)))
-    for _ in range(2):
+    for _ in range(_PROFILE_PASSES):
         if kmax == 0:
             break
         prof = _profile_breaks(y, fit, min_segment=min_segment, search=search,
