@@ -72,10 +72,11 @@ class Screening:
 
     Attributes
     ----------
-    order : ndarray of int, shape (regions, max_breaks)
-        Break days in the order binary segmentation found them (-1 where none was possible).
-    gain : ndarray, shape (regions, max_breaks)
-        Drop of the weighted residual sum of squares each break brought.
+    breaks : ndarray of int, shape (regions, max_breaks)
+        Break days of the chosen model, sorted (-1 after the last).
+    rss : ndarray, shape (regions, max_breaks + 1)
+        Weighted residual sum of squares of the models with 0, 1, ... breaks (inf where not
+        fitted).
     criterion : ndarray, shape (regions, max_breaks + 1)
         Quasi-likelihood BIC of the models with 0, 1, ... breaks (inf where not fitted).
     n_breaks : ndarray of int, shape (regions,)
@@ -84,8 +85,8 @@ class Screening:
         Residual variance of the largest model, the ``phi`` of the criterion.
     """
 
-    order: IntArray
-    gain: FloatArray
+    breaks: IntArray
+    rss: FloatArray
     criterion: FloatArray
     n_breaks: IntArray
     dispersion: FloatArray
@@ -259,8 +260,15 @@ class _LineCosts:
 
     def cost(self, lo: IntArray, hi: IntArray) -> FloatArray:
         """RSS of the weighted line on days ``lo <= t < hi`` (arrays shaped like ``lo``)."""
+        return self._cost(self.s, lo, hi)
+
+    def cost_rows(self, rows: IntArray, lo: IntArray, hi: IntArray) -> FloatArray:
+        """:meth:`cost` for a subset of the rows."""
+        return self._cost([p[rows] for p in self.s], lo, hi)
+
+    def _cost(self, sums: list[FloatArray], lo: IntArray, hi: IntArray) -> FloatArray:
         s0, s1, s2, sz, stz, szz = (
-            np.take_along_axis(p, hi, axis=1) - np.take_along_axis(p, lo, axis=1) for p in self.s
+            np.take_along_axis(p, hi, axis=1) - np.take_along_axis(p, lo, axis=1) for p in sums
         )
         det = s0 * s2 - s1 * s1
         if not self.slope:
@@ -373,20 +381,24 @@ def binary_segmentation(
     Notes
     -----
     Each step adds to every region the split with the largest drop of the weighted residual
-    sum of squares, evaluated for all days at once from prefix sums. Model k has
+    sum of squares, evaluated for all days at once from prefix sums. The breaks are then moved,
+    one at a time, to their best day between their neighbours (two sweeps), and removed again
+    one by one, the one whose removal raises the sum least first, its neighbours moved again
+    after each removal (backward elimination), which gives the models with ``max_breaks``,
+    ..., 1, 0 breaks. Model k has
     ``p_k = (q + 1) k + q + extra_params`` parameters (``q`` per segment, a date per break) and
     criterion ``RSS_k / phi + penalty * p_k * log n`` with ``phi = RSS_K / (n - p_K)`` from
     the largest model (Scott & Knott 1974; Schwarz 1978; Lebreton et al. 1992).
     """
     rows, n = z.shape
     costs = _LineCosts(z, w, slope=slope)
-    order = np.full((rows, max_breaks), -1, dtype=np.int64)
-    gain = np.zeros((rows, max_breaks))
-    is_bound = np.zeros((rows, n + 1), dtype=bool)
-    is_bound[:, 0] = is_bound[:, n] = True
+    every = np.arange(rows)
     days = np.arange(n + 1)
     tau = np.broadcast_to(days, (rows, n + 1))
-    for step in range(max_breaks):
+    # 1. binary segmentation up to max_breaks
+    is_bound = np.zeros((rows, n + 1), dtype=bool)
+    is_bound[:, 0] = is_bound[:, n] = True
+    for _ in range(max_breaks):
         lo = np.maximum.accumulate(np.where(is_bound, days, 0), axis=1)
         hi = np.minimum.accumulate(np.where(is_bound, days, n)[:, ::-1], axis=1)[:, ::-1]
         hi_next = np.concatenate([hi[:, 1:], np.full((rows, 1), n)], axis=1)
@@ -399,28 +411,80 @@ def binary_segmentation(
         g = costs.cost(lo_c, hi_c) - costs.cost(lo_c, tc) - costs.cost(tc, hi_c)
         g = np.where(ok, g, -np.inf)
         best = np.argmax(g, axis=1)
-        best_gain = g[np.arange(rows), best]
-        found = np.isfinite(best_gain)
-        order[found, step] = best[found]
-        gain[found, step] = np.maximum(best_gain[found], 0.0)
+        found = np.isfinite(g[every, best])
         is_bound[np.flatnonzero(found), best[found]] = True
+    # bounds: 0, breaks..., then n repeated
+    bounds = np.sort(np.where(is_bound, days, n), axis=1)[:, : max_breaks + 2]
+    bounds[:, 0] = 0
+
+    def rss_of(b: IntArray) -> FloatArray:
+        return np.asarray(costs.cost(b[:, :-1], b[:, 1:]).sum(axis=1))
+
+    # 2. refine every break, then 3. eliminate backwards, refining the neighbours
+    for _sweep in range(2):
+        for k in range(1, max_breaks + 1):
+            _refine_rows(bounds, k, costs, every, tau, min_segment, n)
+    models = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
+    rss = np.full((rows, max_breaks + 1), np.inf)
+    real = (bounds[:, 1:-1] < n).sum(axis=1)
+    for k in range(max_breaks, -1, -1):
+        at = real == k
+        rss[at, k] = rss_of(bounds)[at]
+        models[at, k, :] = np.where(bounds[at, 1:-1] < n, bounds[at, 1:-1], -1)
+        if k == 0:
+            break
+        # regions holding k breaks drop the one whose removal costs least
+        inner = bounds[:, 1:-1]
+        inc = (costs.cost(bounds[:, :-2], bounds[:, 2:]) - costs.cost(bounds[:, :-2], inner)
+               - costs.cost(inner, bounds[:, 2:]))
+        inc = np.where(inner < n, inc, np.inf)
+        drop = np.argmin(inc, axis=1) + 1
+        rr = np.flatnonzero(at)
+        bounds[rr, drop[rr]] = n
+        bounds[rr] = np.sort(bounds[rr], axis=1)
+        real[rr] -= 1
+        for offset in (-1, 0):
+            k_ref = np.clip(drop + offset, 1, max_breaks)
+            for kk in np.unique(k_ref[rr]):
+                sub = rr[k_ref[rr] == kk]
+                if sub.size:
+                    part = bounds[sub]
+                    _refine_rows(part, int(kk), costs, sub, tau[: sub.size], min_segment, n)
+                    bounds[sub] = part
 
     n_obs = (w > 0).sum(axis=1).astype(np.float64)
-    rss0 = costs.cost(np.zeros((rows, 1), np.int64), np.full((rows, 1), n, np.int64))[:, 0]
-    k = np.arange(max_breaks + 1)
-    rss = rss0[:, None] - np.concatenate([np.zeros((rows, 1)), np.cumsum(gain, axis=1)], axis=1)
-    valid = np.concatenate([np.ones((rows, 1), bool), order >= 0], axis=1)
-    valid = np.logical_and.accumulate(valid, axis=1)
+    k_all = np.arange(max_breaks + 1)
+    valid = np.isfinite(rss)
     q = 2 if slope else 1
-    params = (q + 1) * k + q + extra_params
-    largest = valid.sum(axis=1) - 1
+    params = (q + 1) * k_all + q + extra_params
+    largest = np.where(valid, k_all[None, :], -1).max(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        phi = rss[np.arange(rows), largest] / (n_obs - params[largest])
+        phi = rss[every, largest] / (n_obs - params[largest])
         phi = np.where(phi > 0, phi, 1.0)
         crit = rss / phi[:, None] + penalty * params[None, :] * np.log(n_obs)[:, None]
     crit = np.where(valid, crit, np.inf)
     n_breaks = np.argmin(crit, axis=1).astype(np.int64)
-    return Screening(order, gain, crit, n_breaks, phi)
+    chosen = np.sort(np.where(models[every, n_breaks] >= 0, models[every, n_breaks], n + 1),
+                     axis=1)
+    chosen = np.where(chosen > n, -1, chosen)
+    return Screening(chosen, rss, crit, n_breaks, phi)
+
+
+def _refine_rows(b: IntArray, k: int, costs: _LineCosts, rows_idx: IntArray, tau: IntArray,
+                 min_segment: int, n: int) -> None:
+    """Move inner bound k of the selected rows to its best day between its neighbours."""
+    if k >= b.shape[1] - 1:
+        return
+    lo, cur, hi = b[:, k - 1 : k], b[:, k], b[:, k + 1 : k + 2]
+    ok = (tau > lo + min_segment - 1) & (tau < hi - min_segment + 1) & (cur < n)[:, None]
+    lo_c = np.broadcast_to(lo, tau.shape)
+    hi_c = np.broadcast_to(hi, tau.shape)
+    tc = np.where(ok, tau, lo_c)
+    total = np.where(ok, costs.cost_rows(rows_idx, lo_c, tc) + costs.cost_rows(rows_idx, tc, hi_c),
+                     np.inf)
+    best = np.argmin(total, axis=1)
+    move = np.isfinite(total[np.arange(b.shape[0]), best])
+    b[move, k] = best[move]
 
 
 # ---------------------------------------------------------------- exact fit
@@ -872,9 +936,8 @@ def detect_changepoints(
     check_positive("si_sd", si_sd)
     screening = screen_breaks(y, min_segment=min_segment, max_breaks=max_breaks,
                               penalty=penalty)
-    kmax = screening.order.shape[1]
-    keep = np.arange(kmax)[None, :] < screening.n_breaks[:, None]
-    breaks = np.where(keep, screening.order, -1)
+    kmax = screening.breaks.shape[1]
+    breaks = screening.breaks
     fit = fit_piecewise(y, breaks, dispersion=dispersion)
     prof = _Profile(*(np.full((rows, kmax), -1, dtype=np.int64) for _ in range(3)))
     for _ in range(_PROFILE_PASSES):

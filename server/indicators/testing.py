@@ -176,9 +176,7 @@ def detect_testing_changes(
     scr = binary_segmentation(z, w, min_segment=min_segment, max_breaks=kmax,
                               penalty=check_positive("penalty", penalty), slope=True,
                               extra_params=_WEEK - 1)
-    keep = np.arange(kmax)[None, :] < scr.n_breaks[:, None]
-    day = np.sort(np.where(keep, scr.order, n + 1), axis=1)
-    day = np.where(day > n, -1, day)
+    day = scr.breaks
     has = day >= 0
     tau = np.where(has, day, 0)
     lo = np.clip(tau - compare, 0, n)
