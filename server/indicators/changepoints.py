@@ -25,7 +25,7 @@ No database, web or clock here.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import Literal
 
 import numpy as np
@@ -60,6 +60,8 @@ _WEEK = 7
 _MAX_NEWTON = 60
 _NEWTON_TOL = 1e-10
 _CHUNK_ROWS = 256
+_SCREEN_ROWS = 256  # screening works on blocks of rows that stay in cache
+_REFINE_REACH = 28  # days a screened break may move per refinement step
 _PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
@@ -258,26 +260,33 @@ class _LineCosts:
                   _prefix(w * t * z), _prefix(w * z * z)]
         self.count = _prefix((w > 0).astype(np.float64))
 
+    def at(self, index: IntArray, rows: IntArray | None = None) -> list[FloatArray]:
+        """The prefix sums at ``index`` (shape (rows, m), or (rows, 1) to broadcast)."""
+        if rows is None:
+            return [np.take_along_axis(p, index, axis=1) for p in self.s]
+        return [p[rows[:, None], index] for p in self.s]
+
+    def full(self, rows: IntArray | None = None) -> list[FloatArray]:
+        """The prefix sums at every day 0..n (no gather)."""
+        return self.s if rows is None else [p[rows] for p in self.s]
+
     def cost(self, lo: IntArray, hi: IntArray) -> FloatArray:
         """RSS of the weighted line on days ``lo <= t < hi`` (arrays shaped like ``lo``)."""
-        return self._cost(self.s, lo, hi)
+        return self.rss(self.at(lo), self.at(hi))
 
-    def cost_rows(self, rows: IntArray, lo: IntArray, hi: IntArray) -> FloatArray:
-        """:meth:`cost` for a subset of the rows."""
-        return self._cost([p[rows] for p in self.s], lo, hi)
-
-    def _cost(self, sums: list[FloatArray], lo: IntArray, hi: IntArray) -> FloatArray:
-        s0, s1, s2, sz, stz, szz = (
-            np.take_along_axis(p, hi, axis=1) - np.take_along_axis(p, lo, axis=1) for p in sums
-        )
-        det = s0 * s2 - s1 * s1
+    def rss(self, lo: list[FloatArray], hi: list[FloatArray]) -> FloatArray:
+        """RSS from the prefix sums at the two ends (broadcasting)."""
+        s0, s1, s2, sz, stz, szz = (b - a for a, b in zip(lo, hi, strict=True))
         if not self.slope:
-            det = np.zeros_like(det)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                mean_only = np.where(s0 > 0, sz * sz / np.where(s0 > 0, s0, 1.0), 0.0)
+            return np.asarray(np.maximum(szz - mean_only, 0.0))
+        det = s0 * s2 - s1 * s1
         with np.errstate(invalid="ignore", divide="ignore"):
             explained = (s2 * sz * sz - 2.0 * s1 * sz * stz + s0 * stz * stz) / det
             mean_only = np.where(s0 > 0, sz * sz / s0, 0.0)
         explained = np.where(det > 1e-9 * np.maximum(s0 * s2, 1e-300), explained, mean_only)
-        return np.maximum(szz - explained, 0.0)
+        return np.asarray(np.maximum(szz - explained, 0.0))
 
 
 def screen_breaks(
@@ -345,8 +354,13 @@ def screen_breaks(
     adjusted = y / f[:, np.arange(n) % _WEEK]
     z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
     w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
-    return binary_segmentation(z, w, min_segment=min_segment, max_breaks=max_breaks,
-                               penalty=penalty, slope=True, extra_params=_WEEK - 1)
+    parts = [
+        binary_segmentation(z[c], w[c], min_segment=min_segment, max_breaks=max_breaks,
+                            penalty=penalty, slope=True, extra_params=_WEEK - 1)
+        for c in (slice(i, i + _SCREEN_ROWS) for i in range(0, max(rows, 1), _SCREEN_ROWS))
+    ]
+    return Screening(*(np.concatenate([getattr(p, f) for p in parts], axis=0)
+                       for f in ("breaks", "rss", "criterion", "n_breaks", "dispersion")))
 
 
 def binary_segmentation(
@@ -382,7 +396,8 @@ def binary_segmentation(
     -----
     Each step adds to every region the split with the largest drop of the weighted residual
     sum of squares, evaluated for all days at once from prefix sums. The breaks are then moved,
-    one at a time, to their best day between their neighbours (two sweeps), and removed again
+    one at a time, to their best day between their neighbours within 28 days (two sweeps),
+    and removed again
     one by one, the one whose removal raises the sum least first, its neighbours moved again
     after each removal (backward elimination), which gives the models with ``max_breaks``,
     ..., 1, 0 breaks. Model k has
@@ -405,10 +420,10 @@ def binary_segmentation(
         lo_c = np.where(is_bound, np.concatenate([np.zeros((rows, 1), np.int64), lo[:, :-1]],
                                                  axis=1), lo)
         ok = (~is_bound) & (tau - lo_c >= min_segment) & (hi_next - tau >= min_segment)
-        lo_c = np.where(ok, lo_c, 0)
-        hi_c = np.where(ok, hi_next, n)
-        tc = np.where(ok, tau, 0)
-        g = costs.cost(lo_c, hi_c) - costs.cost(lo_c, tc) - costs.cost(tc, hi_c)
+        at_lo = costs.at(np.where(ok, lo_c, 0))
+        at_hi = costs.at(np.where(ok, hi_next, n))
+        at_t = costs.full()
+        g = costs.rss(at_lo, at_hi) - costs.rss(at_lo, at_t) - costs.rss(at_t, at_hi)
         g = np.where(ok, g, -np.inf)
         best = np.argmax(g, axis=1)
         found = np.isfinite(g[every, best])
@@ -420,10 +435,11 @@ def binary_segmentation(
     def rss_of(b: IntArray) -> FloatArray:
         return np.asarray(costs.cost(b[:, :-1], b[:, 1:]).sum(axis=1))
 
+
     # 2. refine every break, then 3. eliminate backwards, refining the neighbours
     for _sweep in range(2):
         for k in range(1, max_breaks + 1):
-            _refine_rows(bounds, k, costs, every, tau, min_segment, n)
+            _refine_rows(bounds, np.full(rows, k), costs, every, min_segment, n)
     models = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
     rss = np.full((rows, max_breaks + 1), np.inf)
     real = (bounds[:, 1:-1] < n).sum(axis=1)
@@ -444,13 +460,9 @@ def binary_segmentation(
         bounds[rr] = np.sort(bounds[rr], axis=1)
         real[rr] -= 1
         for offset in (-1, 0):
-            k_ref = np.clip(drop + offset, 1, max_breaks)
-            for kk in np.unique(k_ref[rr]):
-                sub = rr[k_ref[rr] == kk]
-                if sub.size:
-                    part = bounds[sub]
-                    _refine_rows(part, int(kk), costs, sub, tau[: sub.size], min_segment, n)
-                    bounds[sub] = part
+            part = bounds[rr]
+            _refine_rows(part, drop[rr] + offset, costs, rr, min_segment, n)
+            bounds[rr] = part
 
     n_obs = (w > 0).sum(axis=1).astype(np.float64)
     k_all = np.arange(max_breaks + 1)
@@ -470,21 +482,28 @@ def binary_segmentation(
     return Screening(chosen, rss, crit, n_breaks, phi)
 
 
-def _refine_rows(b: IntArray, k: int, costs: _LineCosts, rows_idx: IntArray, tau: IntArray,
+def _refine_rows(b: IntArray, k: IntArray, costs: _LineCosts, rows_idx: IntArray,
                  min_segment: int, n: int) -> None:
-    """Move inner bound k of the selected rows to its best day between its neighbours."""
-    if k >= b.shape[1] - 1:
+    """Move inner bound ``k[i]`` of row i to its best day between its neighbours, within
+    ``_REFINE_REACH`` days of where it is (in place).
+
+    ``b`` holds the bounds of the rows ``rows_idx`` of ``costs``; ``k`` one index per row.
+    """
+    if b.shape[0] == 0:
         return
-    lo, cur, hi = b[:, k - 1 : k], b[:, k], b[:, k + 1 : k + 2]
-    ok = (tau > lo + min_segment - 1) & (tau < hi - min_segment + 1) & (cur < n)[:, None]
-    lo_c = np.broadcast_to(lo, tau.shape)
-    hi_c = np.broadcast_to(hi, tau.shape)
-    tc = np.where(ok, tau, lo_c)
-    total = np.where(ok, costs.cost_rows(rows_idx, lo_c, tc) + costs.cost_rows(rows_idx, tc, hi_c),
-                     np.inf)
+    r = np.arange(b.shape[0])
+    k = np.clip(k, 1, b.shape[1] - 2)
+    lo, cur, hi = b[r, k - 1][:, None], b[r, k], b[r, k + 1][:, None]
+    cand = cur[:, None] + np.arange(-_REFINE_REACH, _REFINE_REACH + 1)[None, :]
+    ok = (cand > lo + min_segment - 1) & (cand < hi - min_segment + 1) & (cur < n)[:, None]
+    cand = np.clip(cand, 0, n)
+    at_lo = costs.at(lo, rows_idx)
+    at_hi = costs.at(hi, rows_idx)
+    at_t = costs.at(cand, rows_idx)
+    total = np.where(ok, costs.rss(at_lo, at_t) + costs.rss(at_t, at_hi), np.inf)
     best = np.argmin(total, axis=1)
-    move = np.isfinite(total[np.arange(b.shape[0]), best])
-    b[move, k] = best[move]
+    move = np.isfinite(total[r, best])
+    b[r[move], k[move]] = cand[r, best][move]
 
 
 # ---------------------------------------------------------------- exact fit
@@ -940,18 +959,41 @@ def detect_changepoints(
     breaks = screening.breaks
     fit = fit_piecewise(y, breaks, dispersion=dispersion)
     prof = _Profile(*(np.full((rows, kmax), -1, dtype=np.int64) for _ in range(3)))
+    todo = np.arange(rows)
     for _ in range(_PROFILE_PASSES):
-        if kmax == 0:
+        if kmax == 0 or todo.size == 0:
             break
-        prof = _profile_breaks(y, fit, min_segment=min_segment, search=search,
-                               window=profile_window, level=level)
-        current = np.where(fit.bounds[:, 1:-1] < n, fit.bounds[:, 1:-1], -1)
-        moved = np.any((prof.best != current) & (prof.best >= 0), axis=1)
-        if not moved.any():
+        part = _profile_breaks(y[todo], _fit_rows_of(fit, todo), min_segment=min_segment,
+                               search=search, window=profile_window, level=level)
+        for full, sub in zip((prof.best, prof.lower, prof.upper),
+                             (part.best, part.lower, part.upper), strict=True):
+            full[todo] = sub
+        current = np.where(fit.bounds[todo, 1:-1] < n, fit.bounds[todo, 1:-1], -1)
+        moved = np.any((part.best != current) & (part.best >= 0), axis=1)
+        todo = todo[moved]
+        if todo.size == 0:
             break
-        new = np.where(prof.best >= 0, prof.best, current)
-        fit = fit_piecewise(y, new, dispersion=dispersion)
+        new = np.where(prof.best[todo] >= 0, prof.best[todo], current[moved])
+        fit = _replace_rows(fit, todo, fit_piecewise(y[todo], new, dispersion=dispersion))
     return _assemble(fit, screening, prof, level, si_mean, si_sd)
+
+
+def _fit_rows_of(fit: PiecewiseFit, rows: IntArray) -> PiecewiseFit:
+    """The fit of some rows only."""
+    return PiecewiseFit(*(getattr(fit, f.name)[rows] for f in fields(PiecewiseFit)))
+
+
+def _replace_rows(fit: PiecewiseFit, rows: IntArray, sub: PiecewiseFit) -> PiecewiseFit:
+    """``fit`` with ``rows`` taken from ``sub`` (the segment axis padded to the wider one)."""
+    out = []
+    for f in fields(PiecewiseFit):
+        a, b = getattr(fit, f.name), getattr(sub, f.name)
+        a = np.array(a, copy=True)
+        if a.shape[1:] != b.shape[1:]:
+            raise ValueError(f"{f.name}: shapes {a.shape} and {b.shape} differ")
+        a[rows] = b
+        out.append(a)
+    return PiecewiseFit(*out)
 
 
 def _assemble(fit: PiecewiseFit, screening: Screening, prof: _Profile, level: float,
