@@ -27,12 +27,12 @@ from server.indicators._arrays import (
     check_positive,
     freeze_arrays,
 )
-from server.indicators.changepoints import (
-    _WEEK,
-    _centred_mean,
-    _check_int,
-    _weekday_factors,
+from server.indicators._segmentation import (
+    WEEK,
     binary_segmentation,
+    centred_mean,
+    check_int,
+    weekday_factors,
 )
 
 BoolArray = NDArray[np.bool_]
@@ -158,24 +158,24 @@ def detect_testing_changes(
         raise ValueError(f"positives: {pos[first]} exceeds tests {t[first]} at index {first}")
     rows, n = t.shape
     pop = as_population("population", population, rows)[:, 0]
-    min_segment = _check_int("min_segment", min_segment, 7)
-    compare = _check_int("compare", compare, 1)
+    min_segment = check_int("min_segment", min_segment, 7)
+    compare = check_int("compare", compare, 1)
     level = check_level("level", level)
     min_ratio = check_positive("min_ratio", min_ratio)
     if n < 2 * min_segment:
         raise ValueError(f"tests: {n} days is fewer than 2 * min_segment = {2 * min_segment}")
     limit = n // min_segment - 1
-    kmax = min(10, limit) if max_breaks is None else min(_check_int("max_breaks", max_breaks, 0),
+    kmax = min(10, limit) if max_breaks is None else min(check_int("max_breaks", max_breaks, 0),
                                                          limit)
     ok = np.isfinite(t) & np.isfinite(pos)
-    smooth = _centred_mean(t, ok, 3)
-    f = _weekday_factors(t, ok, smooth)
-    adjusted = np.where(ok, t, 0.0) / f[:, np.arange(n) % _WEEK]
+    smooth = centred_mean(t, ok, 3)
+    f = weekday_factors(t, ok, smooth)
+    adjusted = np.where(ok, t, 0.0) / f[:, np.arange(n) % WEEK]
     z = np.where(ok, np.log(adjusted + 0.5), 0.0)
     w = np.where(ok, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
     scr = binary_segmentation(z, w, min_segment=min_segment, max_breaks=kmax,
                               penalty=check_positive("penalty", penalty), slope=True,
-                              extra_params=_WEEK - 1)
+                              extra_params=WEEK - 1)
     day = scr.breaks
     has = day >= 0
     tau = np.where(has, day, 0)
