@@ -22,11 +22,13 @@ __all__ = [
     "HospitalAdmissions",
     "IcuCensus",
     "LabTests",
+    "AscertainmentChange",
     "case_reports",
     "gp_consultations",
     "hospital_admissions",
     "icu_census",
     "lab_tests",
+    "testing_change",
     "weekday",
 ]
 
@@ -43,6 +45,27 @@ ICU_LOS_MEDIAN, ICU_LOS_SIGMA = 8.0, 0.71
 GP_WEEKDAY = np.array([1.35, 1.10, 1.00, 1.00, 0.95, 0.15, 0.05])
 GP_BASELINE_PER_100K = 25.0
 GP_SHARE_OF_INFECTIONS = 0.10
+
+
+@dataclass(frozen=True)
+class AscertainmentChange:
+    """The true testing-policy change: from ``index`` (a test-date day) ascertainment steps
+    from ``ascertainment[0]`` to ``ascertainment[1]`` and negative tests per 100 000 a day
+    (before weekday and winter factors) from ``negatives_per_100k[0]`` to ``[1]``."""
+
+    index: int
+    ascertainment: tuple[float, float]
+    negatives_per_100k: tuple[float, float]
+
+    @property
+    def case_ratio(self) -> float:
+        """Factor on expected cases: ascertainment after / before."""
+        return self.ascertainment[1] / self.ascertainment[0]
+
+
+def testing_change(change_index: int) -> AscertainmentChange:
+    """The testing change the observation models apply at ``change_index``."""
+    return AscertainmentChange(change_index, ASCERTAINMENT, NEGATIVE_TESTS_PER_100K)
 
 
 def weekday(dates: np.ndarray) -> np.ndarray:

@@ -28,12 +28,14 @@ import pandas as pd
 from demo_seed.errors import ScenarioArgumentError
 from demo_seed.geography import Catchment, Geography, build_geography
 from demo_seed.observation import (
+    AscertainmentChange,
     case_reports,
     gp_consultations,
     hospital_admissions,
     icu_census,
     lab_tests,
 )
+from demo_seed.observation import testing_change as testing_change_at
 from demo_seed.storyline import Truth, build_calendar, simulate_truth
 from demo_seed.vintages import delayed_report_rows, first_report_rows, rows_to_frame
 from demo_seed.wastewater import wastewater
@@ -110,6 +112,7 @@ class Scenario:
     truth: Truth
     policy_dates: tuple[tuple[date, str], ...]
     testing_change: date
+    testing_change_truth: AscertainmentChange | None = None
 
 
 def _validate(seed: object, end: object, days: object) -> None:
@@ -205,4 +208,5 @@ def build_scenario(*, seed: int = 7, end: date | None = None, days: int = 548) -
     return Scenario(seed=seed, start=start, end=last, regions=region_specs(geography),
                     catchments=geography.catchments, observations=rows_to_frame(blocks, dates),
                     truth=truth, policy_dates=truth.policy_dates,
-                    testing_change=calendar.testing_change)
+                    testing_change=calendar.testing_change,
+                    testing_change_truth=testing_change_at(change))

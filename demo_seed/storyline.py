@@ -22,7 +22,7 @@ import numpy as np
 from demo_seed.epidemic import SeirResult, mixing_matrix, simulate_seir
 from demo_seed.geography import Geography
 
-__all__ = ["Calendar", "Truth", "build_calendar", "simulate_truth"]
+__all__ = ["Calendar", "TransmissionChange", "Truth", "build_calendar", "simulate_truth"]
 
 LATENT_MEAN = 3.0            # days in E (geometric)
 INFECTIOUS_MEAN = 4.0        # days in I (geometric)
@@ -72,6 +72,21 @@ class Calendar:
 
 
 @dataclass(frozen=True)
+class TransmissionChange:
+    """A true change of the policy multiplier of transmission.
+
+    ``date`` is the first day of the change (in infection time), which is complete after
+    ``ramp_days`` days; ``ratio`` = new multiplier / old one (0.55 means transmission falls by
+    45 %). Reported counts show it after the delay from infection to test.
+    """
+
+    date: date
+    ramp_days: int
+    ratio: float
+    label: str
+
+
+@dataclass(frozen=True)
 class Truth:
     """Ground truth of the scenario; arrays shaped ``(districts, days)`` unless noted.
 
@@ -82,6 +97,7 @@ class Truth:
     lag 1 day), so incidence follows :math:`I_t \\approx R_t \\sum_s w_s I_{t-s}`.
     ``transmission`` (seasonal x variant x policy, without the behavioural response) and
     ``policy`` are ``(days,)`` multipliers; ``population`` is ``(districts,)``.
+    ``transmission_changes`` records each policy step's date and size.
     """
 
     dates: np.ndarray
@@ -98,6 +114,7 @@ class Truth:
     policy: np.ndarray
     population: np.ndarray
     policy_dates: tuple[tuple[date, str], ...]
+    transmission_changes: tuple[TransmissionChange, ...] = ()
 
 
 def _ramp(days: int, start: int, width: int) -> np.ndarray:
@@ -204,9 +221,16 @@ def simulate_truth(geography: Geography, calendar: Calendar, seed: int | None) -
     start = calendar.dates[0].astype(object)
     policy_dates = tuple((start + timedelta(days=d), rule.label)
                          for rule, d in zip(POLICIES, fired, strict=True))
+    levels = [1.0, *(rule.level for rule in POLICIES)]
+    changes = tuple(
+        TransmissionChange(date=start + timedelta(days=d), ramp_days=POLICY_RAMP_DAYS,
+                           ratio=levels[k + 1] / levels[k], label=rule.label)
+        for k, (rule, d) in enumerate(zip(POLICIES, fired, strict=True))
+    )
     return Truth(dates=calendar.dates, districts=codes, infections=res.infections,
                  rt=res.rt, generation_interval=res.generation_interval,
                  importations=res.importations, susceptible=res.susceptible,
                  exposed=res.exposed, infectious=res.infectious, recovered=res.recovered,
                  transmission=calendar.seasonal * calendar.variant * _policy_curve(days, fired),
-                 policy=_policy_curve(days, fired), population=pop, policy_dates=policy_dates)
+                 policy=_policy_curve(days, fired), population=pop, policy_dates=policy_dates,
+                 transmission_changes=changes)

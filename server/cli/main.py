@@ -10,6 +10,7 @@ from typing import Annotated
 import typer
 
 from server.cli.decisions import decisions_app
+from server.cli.effects import effects_app
 from server.cli.estimate import estimate_command
 from server.cli.feeds import feeds_app, ingest_command, scheduler_command
 from server.cli.output import fail, friendly_errors, progress_bar, say
@@ -42,6 +43,7 @@ app.add_typer(feeds_app, name="feeds")
 app.command("ingest")(ingest_command)
 app.command("scheduler")(scheduler_command)
 app.add_typer(decisions_app, name="decisions")
+app.add_typer(effects_app, name="effects")
 
 
 def _settings(**overrides: object) -> Settings:

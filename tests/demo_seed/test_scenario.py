@@ -221,3 +221,16 @@ def test_build_scenario_default_end_is_yesterday() -> None:
 def test_build_scenario_bad_argument_raises(kwargs: dict, message: str) -> None:
     with pytest.raises(ScenarioArgumentError, match=message):
         build_scenario(**kwargs)
+
+
+def test_build_scenario_records_transmission_and_testing_truth(scenario) -> None:  # type: ignore[no-untyped-def]
+    from demo_seed.storyline import POLICIES
+
+    changes = scenario.truth.transmission_changes
+    assert [c.date for c in changes] == [d for d, _ in scenario.policy_dates]
+    levels = [1.0, *(p.level for p in POLICIES)]
+    assert [c.ratio for c in changes] == pytest.approx(
+        [b / a for a, b in zip(levels, levels[1:], strict=False)])
+    truth = scenario.testing_change_truth
+    assert scenario.start + timedelta(days=truth.index) == scenario.testing_change
+    assert truth.case_ratio == pytest.approx(0.45 / 0.28)

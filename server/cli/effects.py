@@ -1,0 +1,98 @@
+"""``tierwise effects``: did it work? Change points in transmission and changes in testing."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.markup import escape
+
+from server.cli.output import fail, friendly_errors, say
+from server.services.effects import (
+    BreakOptions,
+    EffectsTable,
+    breaks_table,
+    effects_csv,
+    testing_table,
+)
+
+effects_app = typer.Typer(
+    help="Did it work? Breaks in transmission and changes in testing, from a daily CSV file.",
+    no_args_is_help=True,
+)
+
+Output = Annotated[str, typer.Option("--output", "-o", help="CSV to write, - for stdout.")]
+MinSegment = Annotated[int, typer.Option(min=7, help="Fewest days between breaks.")]
+MaxBreaks = Annotated[int | None, typer.Option(min=0, help="Most breaks (default: up to 10).")]
+Penalty = Annotated[float, typer.Option(help="Multiplier of the BIC penalty (1 = BIC).")]
+Level = Annotated[float, typer.Option(help="Interval level.")]
+
+
+def _emit(table: EffectsTable, output: str) -> None:
+    if output == "-":
+        say(escape(effects_csv(table).rstrip("\n")))
+        return
+    if not output:
+        raise fail("--output: give a file name or - for stdout")
+    from server.services.effects import write_effects
+
+    write_effects(table, Path(output))
+    say(f"{table.kind}: {len(table.rows)} rows written to {output}")
+
+
+@effects_app.command("breaks")
+@friendly_errors
+def breaks_command(
+    file: Annotated[Path, typer.Argument(help="Daily CSV with columns date, cases.")],
+    output: Output = "-",
+    min_segment: MinSegment = 14,
+    max_breaks: MaxBreaks = None,
+    penalty: Penalty = 1.0,
+    level: Level = 0.95,
+    dispersion: Annotated[str, typer.Option(help="quasipoisson or poisson.")] = "quasipoisson",
+    si_mean: Annotated[float, typer.Option(help="Generation interval mean, days.")] = 4.7,
+    si_sd: Annotated[float, typer.Option(help="Generation interval SD, days.")] = 2.9,
+) -> None:
+    """Breaks in the growth of daily cases, and each segment's growth rate, doubling time and R.
+
+    Model: log E[cases] = level + growth x day per segment, plus weekday effects,
+    quasi-Poisson. Breaks by binary segmentation screening, their number by a
+    quasi-likelihood BIC, their dates by profile likelihood. One row per segment;
+    the break that opens a segment is on its row (break_lower/break_upper: profile
+    interval of its date; growth_change and level_change: new segment minus old at
+    the break). R from the growth rate for a gamma generation interval
+    (Wallinga & Lipsitch 2007). Breaks are dated in the cases' time: a measure shows
+    in cases by test date one to two weeks after it takes effect.
+    """
+    options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
+                           level=level, dispersion=dispersion.lower(), si_mean=si_mean,
+                           si_sd=si_sd)
+    _emit(breaks_table(file, options), output)
+
+
+@effects_app.command("testing")
+@friendly_errors
+def testing_command(
+    file: Annotated[Path, typer.Argument(help="Daily CSV with columns date, tests, positives.")],
+    population: Annotated[float, typer.Option(help="Population (tests per 100 000).")],
+    output: Output = "-",
+    min_segment: MinSegment = 14,
+    max_breaks: MaxBreaks = None,
+    penalty: Penalty = 1.0,
+    level: Level = 0.95,
+    compare: Annotated[int, typer.Option(min=1, help="Days compared on each side.")] = 7,
+    min_ratio: Annotated[float, typer.Option(help="Smallest factor of tests flagged.")] = 1.2,
+) -> None:
+    """Level shifts in testing, flagged when positivity moves the other way.
+
+    One row per break in daily tests: tests per 100 000 over the --compare days
+    before and from the break, their ratio, positivity before and after and its odds
+    ratio, and testing_change = true when tests moved by at least --min-ratio and
+    positivity significantly the other way (wider or narrower testing, which moves
+    case counts on its own).
+    """
+    options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
+                           level=level, population=population, compare=compare,
+                           min_ratio=min_ratio)
+    _emit(testing_table(file, options), output)

@@ -1,0 +1,107 @@
+"""``tierwise effects breaks|testing``: columns, values against direct calls, errors."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+from pathlib import Path
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from typer.testing import CliRunner
+
+from server.cli import app
+from server.indicators.changepoints import detect_changepoints
+from server.indicators.testing import detect_testing_changes
+from server.services.effects import BREAK_COLUMNS, TESTING_COLUMNS
+
+START = dt.date(2031, 1, 6)  # a Monday
+DAYS = 140
+MISSING = 33
+
+
+def _frame(seed: int) -> dict[str, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    t = np.arange(DAYS)
+    eta = np.where(t < 70, np.log(120) + 0.03 * t, np.log(120) + 2.1 - 0.2 - 0.04 * (t - 70))
+    cases = rng.poisson(np.exp(eta)).astype(float)
+    neg = rng.poisson(np.where(t < 90, 2000.0, 5000.0)).astype(float)
+    return {"cases": cases, "tests": cases + neg, "positives": cases}
+
+
+def _write(tmp_path: Path, data: dict[str, np.ndarray]) -> Path:
+    path = tmp_path / "daily.csv"
+    lines = ["date," + ",".join(data)]
+    for i in range(DAYS):
+        if i == MISSING:
+            continue
+        day = START + dt.timedelta(days=i)
+        lines.append(day.isoformat() + "," + ",".join(str(int(v[i])) for v in data.values()))
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def _rows(text: str) -> list[dict[str, str]]:
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+def test_effects_breaks_matches_the_indicator(tmp_path: Path) -> None:
+    data = _frame(1)
+    out = tmp_path / "out.csv"
+    result = CliRunner().invoke(app, ["effects", "breaks", str(_write(tmp_path, data)),
+                                      "-o", str(out)])
+    assert result.exit_code == 0, result.output
+    rows = _rows(out.read_text())
+    assert tuple(rows[0]) == BREAK_COLUMNS
+    cases = data["cases"].copy()
+    cases[MISSING] = np.nan  # the file leaves that date out: missing, not zero
+    ref = detect_changepoints(cases)
+    assert len(rows) == ref.n_breaks[0] + 1
+    assert_allclose([float(r["growth_rate"]) for r in rows],
+                    ref.growth[0, : len(rows)], rtol=1e-12)
+    assert rows[0]["break_date"] == ""
+    first = START + dt.timedelta(days=int(ref.breaks[0, 0]))
+    assert rows[1]["break_date"] == rows[1]["start"] == first.isoformat()
+
+
+def test_effects_testing_flags_the_change(tmp_path: Path) -> None:
+    data = _frame(2)
+    result = CliRunner().invoke(app, ["effects", "testing", str(_write(tmp_path, data)),
+                                      "--population", "500000"])
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    assert tuple(rows[0]) == TESTING_COLUMNS
+    flagged = [r["date"] for r in rows if r["testing_change"] == "true"]
+    assert flagged == [(START + dt.timedelta(days=90)).isoformat()]
+    tests, pos = data["tests"].copy(), data["positives"].copy()
+    tests[MISSING] = pos[MISSING] = np.nan
+    ref = detect_testing_changes(tests, pos, population=5e5)
+    assert_allclose([float(r["tests_ratio"]) for r in rows],
+                    ref.tests_ratio[0, : len(rows)], rtol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["effects", "testing", "{file}"], "Missing option '--population'"),
+        (["effects", "breaks", "{file}", "--dispersion", "nb"], "--dispersion: expected"),
+        (["effects", "breaks", "{missing}"], "file not found"),
+    ],
+    ids=["no-population", "bad-dispersion", "no-file"],
+)
+def test_effects_errors_name_the_problem(tmp_path: Path, args: list[str], message: str) -> None:
+    path = _write(tmp_path, _frame(3))
+    argv = [a.format(file=path, missing=tmp_path / "nope.csv") for a in args]
+    result = CliRunner().invoke(app, argv)
+    assert result.exit_code != 0
+    assert message in result.output
+
+
+def test_effects_breaks_names_a_missing_column(tmp_path: Path) -> None:
+    path = tmp_path / "x.csv"
+    path.write_text("date,cases_total\n2031-01-01,3\n", encoding="utf-8")
+    result = CliRunner().invoke(app, ["effects", "breaks", str(path)])
+    assert result.exit_code == 1
+    assert "missing column 'cases'" in result.output
