@@ -9,7 +9,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.services.queue import review_queue
 from server.services.review import RecommendationChangedError, decide, publish
-from web.deps import ApproverDep, CsrfDep, NotifyDep, SessionDep, StaffDep
+from web.deps import ApproverDep, BigRowId, CsrfDep, NotifyDep, SessionDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -28,7 +28,7 @@ def queue(
 @router.post("/review/{assessment_id}", response_model=None)
 def decide_one(
     request: Request, session: SessionDep, user: ApproverDep, _csrf: CsrfDep,
-    assessment_id: int, action: Annotated[str, Form()], reason: Annotated[str, Form()] = "",
+    assessment_id: BigRowId, action: Annotated[str, Form()], reason: Annotated[str, Form()] = "",
     tier: Annotated[str, Form()] = "",
 ) -> Response:
     """Confirm (``action=confirm``) or override (``action=override`` with ``tier``).
@@ -38,7 +38,8 @@ def decide_one(
     """
     try:
         decide(session=session, assessment_id=assessment_id, user=user.name,
-               accept=action == "confirm", tier=int(tier) if tier.strip().isdigit() else None,
+               accept=action == "confirm",
+               tier=int(tier) if tier.strip().isascii() and tier.strip().isdigit() else None,
                reason=reason)
     except RecommendationChangedError as changed:
         return render(request, "staff/review.html", {

@@ -466,8 +466,13 @@ class _JsonStream:
             if not self.more():
                 return ""
 
-    def value(self, decoder: json.JSONDecoder, label: str) -> object:
-        """The next JSON value, reading more text until it is complete (its text: ``last``)."""
+    def value(self, decoder: json.JSONDecoder, label: str, record: int | None = None) -> object:
+        """The next JSON value, reading more text until it is complete (its text: ``last``).
+
+        ``record`` (1-based position in the list of records) is named in errors. A value nested
+        more deeply than Python's recursion limit allows (about 1 000 levels) rejects the file
+        with that record's place, as any other invalid JSON does.
+        """
         self.peek()
         while True:
             try:
@@ -477,14 +482,22 @@ class _JsonStream:
                 # Further back it is invalid (and a record longer than MAX_RECORD_BYTES is, too).
                 if len(self.text) - exc.pos <= MAX_RECORD_BYTES and self.more():
                     continue
-                raise FeedFileError(label, self.where(exc.pos), f"not valid JSON ({exc.msg})"
-                                    ) from None
+                raise FeedFileError(label, self._place(exc.pos, record),
+                                    f"not valid JSON ({exc.msg})") from None
+            except RecursionError:
+                raise FeedFileError(
+                    label, self._place(self.pos, record),
+                    "the JSON is nested too deeply (a record is an object of plain values)",
+                ) from None
             if end == len(self.text) and not self.done and isinstance(value, int | float):
                 self.more()  # a number may go on in the next block
                 continue
             self.last = self.text[self.pos:end]
             self.pos = end
             return value
+
+    def _place(self, pos: int, record: int | None) -> str:
+        return self.where(pos) if record is None else f"record {record}, {self.where(pos)}"
 
     def expect(self, allowed: str, label: str) -> str:
         char = self.peek()
@@ -498,7 +511,7 @@ class _JsonStream:
 
 def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]:
     """Records of ``[...]`` or of the ``records`` list of ``{...}``, each with its text."""
-    decoder = json.JSONDecoder()
+    decoder = _decoder()
     shape = "expected a JSON array of records or {\"records\": [...]}"
     start = text.peek()
     if start == "{":
@@ -532,14 +545,24 @@ def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]
         raise FeedFileError(label, text.where(text.pos), "not valid JSON (Extra data)")
 
 
+def _keep_digits(digits: str) -> str:
+    """JSON integers are kept as their digits: a value is read from its text anyway, and
+    ``int()`` refuses more than 4 300 digits (a ``ValueError`` outside ``JSONDecodeError``)."""
+    return digits
+
+
+def _decoder() -> json.JSONDecoder:
+    return json.JSONDecoder(parse_int=_keep_digits)
+
+
 def _json_array(
     text: _JsonStream, decoder: json.JSONDecoder, label: str
 ) -> Iterator[tuple[object, str]]:
     if text.peek() == "]":
         text.pos += 1
         return
-    while True:
-        record = text.value(decoder, label)
+    for number in itertools.count(1):
+        record = text.value(decoder, label, number)
         yield record, text.last
         if text.expect(",]", label) == "]":
             return

@@ -30,6 +30,13 @@ spread back to rows with numpy; messages are built for rejected rows only.
 
 An ISO week is stored on its Monday. Values are multiplied by the measure's ``scale`` before the
 count and range checks.
+
+A count is a whole number from 0 to :data:`MAX_COUNT`. A count within :data:`COUNT_TOLERANCE` of a
+whole number (``5.0000000001``, ``4.9e-324``: floating-point residue from a sender that computes
+counts as floats) is stored *as that whole number*, so what is stored is exactly what the
+indicators take (``server.indicators.poisson`` refuses any fraction); a larger fraction is
+``non_integer_count``. A count over :data:`MAX_COUNT`, or a value that the scale makes infinite,
+is ``out_of_range``.
 """
 
 from __future__ import annotations
@@ -59,6 +66,11 @@ REASONS = (
     "bad_digit_grouping",
 )
 AMBIGUOUS, BAD_GROUPING = 1, 2
+# A count closer than this to a whole number is that whole number (stored rounded).
+COUNT_TOLERANCE = 1e-9
+# The largest count stored: float64 holds every whole number up to 2**53 exactly, and a 7-day
+# window of such counts still sums to a finite number.
+MAX_COUNT = float(2**53)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -328,12 +340,20 @@ def validate_chunk(
         value = value * scale
         flag(is_count & (value < 0), "negative_count",
              framed("a count cannot be negative: ", raw_value, ""))
-        flag(is_count & (np.abs(value - np.rint(value)) > 1e-9), "non_integer_count",
+        flag(is_count & (np.abs(value - np.rint(value)) > COUNT_TOLERANCE), "non_integer_count",
              framed("a count must be a whole number: ", raw_value, ""))
+        flag(~np.isfinite(value), "out_of_range", lambda idx: [
+            f"value {str(v)[:80]!r} times the scale {s:g} is too large to store"
+            for v, s in zip(raw_value.take(idx).values, scale[idx], strict=True)
+        ])
+        flag(is_count & (value > MAX_COUNT), "out_of_range",
+             framed("count ", raw_value, f" is above the largest count stored ({MAX_COUNT:.0f})"))
         flag((value < low) | (value > high), "out_of_range", lambda idx: [
             f"value {str(v)[:80]!r} is outside the plausible range [{a:g}, {b:g}]"
             for v, a, b in zip(raw_value.take(idx).values, low[idx], high[idx], strict=True)
         ])
+        # Counts are stored as the whole numbers they were checked to be (-0.0 becomes 0.0).
+        value = np.where(is_count, np.rint(value) + 0.0, value)
     bad = reason != 0
     good = ~bad
     accepted = Accepted(
