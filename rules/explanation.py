@@ -35,6 +35,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from rules.levels import (
+    REASON_INVALID,
     REASON_MISSING,
     REASON_NOWCAST,
     REASON_SMALL_COUNT,
@@ -55,6 +56,7 @@ _REASONS = {
     REASON_STALE: "stale",
     REASON_NOWCAST: "nowcast excluded",
     REASON_SMALL_COUNT: "count below minimum",
+    REASON_INVALID: "invalid",
 }
 
 
@@ -134,6 +136,8 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
         return f"{label} data {item['age_days']:g} days old"
     if item["status"] == "nowcast excluded":
         return f"{label} is a nowcast"
+    if item["status"] == "invalid":
+        return f"{label} data invalid (a stored value cannot be used)"
     return f"{label} data {item['status']}"
 
 
