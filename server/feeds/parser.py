@@ -321,6 +321,23 @@ def _stray_quotes(text: bytes, delimiter: str) -> bool:
     return bool((~allowed[padded[quotes]] & ~allowed[padded[quotes + 2]]).any())
 
 
+def _too_wide(text: bytes, delimiter: str, fields: int) -> bool:
+    """Whether a line holds far more delimiters than the header has fields.
+
+    The C parser makes one column per field of the widest record, which takes about a minute
+    for a line of a million fields; such blocks are read record by record (the record is then
+    ``malformed_row``). A quoted field may hold delimiters, hence the margin.
+    """
+    data = np.frombuffer(text, dtype=np.uint8)
+    delimiters = np.flatnonzero(data == ord(delimiter))
+    limit = max(64, 4 * fields)
+    if delimiters.size <= limit:
+        return False
+    newlines = np.flatnonzero(data == NEWLINE)
+    per_line = np.diff(np.searchsorted(delimiters, np.r_[-1, newlines]))
+    return bool(per_line.size and per_line.max() > limit)
+
+
 def _parse_block(
     block: _Block, names: list[str], wanted: list[str], delimiter: str
 ) -> RawChunk:
@@ -330,7 +347,8 @@ def _parse_block(
         empty = Coded(codes=np.zeros(n, dtype=np.intp), uniques=np.array([""], dtype=object))
         return block.chunk(dict.fromkeys(wanted, empty), np.ones(n, dtype=bool))
     frame = None
-    if not _stray_quotes(block.text, delimiter):
+    if not _stray_quotes(block.text, delimiter) and not _too_wide(block.text, delimiter,
+                                                                  len(names)):
         frame = _fast_parse(block.text, names, delimiter, n)
     if frame is not None:
         return block.chunk(

@@ -10,6 +10,7 @@ unknown_region         the region code (after the feed's mapping) is not in the 
 unknown_measure        the measure is not one this feed carries, or not in the catalogue
 unparsable_date        not an ISO 8601 date (weekly feeds also take ISO weeks, 2026-W14)
 future_date            the reference date is after today in the office's time zone
+date_too_old           the reference date is before :data:`EARLIEST_DATE` (1990-01-01)
 missing_value          the value is empty
 ambiguous_number       a separator the feed declares neither as ``decimal`` nor ``thousands``
 bad_digit_grouping     thousands separators not between groups of three digits
@@ -57,15 +58,18 @@ from server.store.vintages import Rejection
 
 EPOCH = date(1970, 1, 1)
 Messages = Callable[[NDArray[np.int64]], list[str]]
-ISO_DATE = re.compile(r"^(\d{4})-(\d{2})-(\d{2})$")
-ISO_WEEK = re.compile(r"^(\d{4})-?W(\d{2})$")
+ISO_DATE = re.compile(r"^([0-9]{4})-([0-9]{2})-([0-9]{2})$")  # ASCII digits only
+ISO_WEEK = re.compile(r"^([0-9]{4})-?W([0-9]{2})$")
 REASONS = (
     "malformed_row", "unknown_region", "unknown_measure", "unparsable_date", "future_date",
     "missing_value", "non_numeric_value", "negative_count", "non_integer_count", "out_of_range",
     "duplicate_row", "conflicting_duplicate", "positives_exceed_tests", "ambiguous_number",
-    "bad_digit_grouping",
+    "bad_digit_grouping", "date_too_old",
 )
 AMBIGUOUS, BAD_GROUPING = 1, 2
+# Reference dates before this are refused: every evaluation runs from the oldest stored date, so
+# one row dated 0001-01-01 would make each one span two thousand years.
+EARLIEST_DATE = date(1990, 1, 1)
 # A count closer than this to a whole number is that whole number (stored rounded).
 COUNT_TOLERANCE = 1e-9
 # The largest count stored: float64 holds every whole number up to 2**53 exactly, and a 7-day
@@ -306,6 +310,8 @@ def validate_chunk(
     today_n = (today - EPOCH).days
     with np.errstate(invalid="ignore"):
         flag(day > today_n, "future_date", framed("date ", cols["date"], " is in the future"))
+        flag(day < (EARLIEST_DATE - EPOCH).days, "date_too_old", framed(
+            "date ", cols["date"], f" is before {EARLIEST_DATE.isoformat()}, the earliest taken"))
     raw_value = cols["value"]
     flag(raw_value.equals(""), "missing_value", fixed("the value is empty"))
     parsed, problem = parse_numbers(

@@ -106,3 +106,16 @@ def test_json_integers_keep_their_digits_as_values() -> None:
     (chunk,) = json_chunks(b'[{"region": "A", "date": "2026-01-04", "measure": "cases", '
                            b'"value": 12}]')
     assert chunk.columns["value"].values.tolist() == ["12"]
+
+
+@pytest.mark.parametrize(
+    ("day", "reason"),
+    [pytest.param("0001-01-01", "date_too_old", id="year-1"),
+     pytest.param("1989-12-31", "date_too_old", id="day-before-floor"),
+     pytest.param("9999-12-31", "future_date", id="year-9999"),
+     pytest.param("2026-02-30", "unparsable_date", id="no-such-day")],
+)
+def test_dates_far_out_are_rejected(day: str, reason: str) -> None:
+    result = check(f"region,date,measure,value\nA,{day},cases,1\nA,1990-01-01,cases,2\n")
+    assert [(r.line, r.reason) for r in result.rejections] == [(2, reason)]
+    assert result.accepted.line.tolist() == [3]
