@@ -36,6 +36,7 @@ import numpy as np
 
 from rules.formatting import number_text, reading_text, value_text, with_unit
 from rules.levels import (
+    REASON_INVALID,
     REASON_MISSING,
     REASON_NOWCAST,
     REASON_SMALL_COUNT,
@@ -56,6 +57,7 @@ _REASONS = {
     REASON_STALE: "stale",
     REASON_NOWCAST: "nowcast excluded",
     REASON_SMALL_COUNT: "count below minimum",
+    REASON_INVALID: "invalid",
 }
 
 
@@ -122,6 +124,8 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
         return f"{label} data {item['age_days']:g} days old"
     if item["status"] == "nowcast excluded":
         return f"{label} is a nowcast"
+    if item["status"] == "invalid":
+        return f"{label} data invalid (a stored value cannot be used)"
     return f"{label} data {item['status']}"
 
 

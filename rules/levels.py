@@ -29,6 +29,7 @@ from rules.ruleset import Ruleset
 from rules.series import IndicatorSeries
 
 __all__ = [
+    "REASON_INVALID",
     "REASON_MISSING",
     "REASON_NOWCAST",
     "REASON_OK",
@@ -42,6 +43,7 @@ __all__ = [
 ]
 
 REASON_OK, REASON_MISSING, REASON_STALE, REASON_NOWCAST, REASON_SMALL_COUNT = 0, 1, 2, 3, 4
+REASON_INVALID = 5  # the value rests on input data found unusable (IndicatorSeries.invalid)
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -121,10 +123,13 @@ def _highest_level(
 
 
 def is_stale(series: IndicatorSeries, max_age_days: float | None) -> NDArray[np.bool_]:
-    """Stale flag ``(R, D)``: the series' ``stale`` mask, or data older than ``max_age_days``."""
+    """Unusable flag ``(R, D)``: the series' ``stale`` mask, data older than ``max_age_days``, or
+    the ``invalid`` mask (gates and signals treat invalid data as they treat stale data)."""
     stale = np.zeros(series.shape, dtype=bool) if series.stale is None else series.stale.copy()
     if series.age_days is not None and max_age_days is not None:
         stale |= series.age_days > max_age_days
+    if series.invalid is not None:
+        stale |= series.invalid
     return stale
 
 
@@ -247,14 +252,12 @@ def compute_levels(
             else np.zeros(series.shape, dtype=bool)
         )
         e, x, ina = _variant(th, enter_v, hold_v, count)
-        code = np.where(
-            missing,
-            REASON_MISSING,
-            np.where(
-                stale,
-                REASON_STALE,
-                np.where(excluded, REASON_NOWCAST, np.where(ina, REASON_SMALL_COUNT, REASON_OK)),
-            ),
+        invalid = (series.invalid if series.invalid is not None
+                   else np.zeros(series.shape, dtype=bool))
+        code = np.select(  # the first that applies (invalid values are also NaN and stale)
+            [invalid, missing, stale, excluded, ina],
+            [REASON_INVALID, REASON_MISSING, REASON_STALE, REASON_NOWCAST, REASON_SMALL_COUNT],
+            REASON_OK,
         ).astype(np.int8)
         known[:, c, :] = (~missing & ~stale & ~excluded).T
         reason[:, c, :] = code.T

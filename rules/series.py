@@ -5,7 +5,9 @@ required. ``lower``/``upper`` are needed by criteria using ``statistic: bounds``
 reading a bound; ``count`` by criteria with ``min_count``. ``stale`` flags values known to be out of
 date; ``age_days`` (days since the data were last refreshed) marks values older than the
 indicator's ``max_age_days`` as stale and lets explanations say how old they are. ``nowcast``
-flags values that are nowcasts of recent days.
+flags values that are nowcasts of recent days. ``invalid`` flags values that rest on input the
+caller found unusable (a stored count that is not a whole number, say): unknown, explained as
+``invalid``.
 """
 
 from __future__ import annotations
@@ -41,6 +43,8 @@ class IndicatorSeries:
         Age of the data in days.
     nowcast : bool array, (regions, days), optional
         True where the value is a nowcast.
+    invalid : bool array, (regions, days), optional
+        True where the value rests on unusable input data (unknown to the engine).
     """
 
     estimate: FloatArray
@@ -50,6 +54,7 @@ class IndicatorSeries:
     stale: BoolArray | None = None
     age_days: FloatArray | None = None
     nowcast: BoolArray | None = None
+    invalid: BoolArray | None = None
 
     def __post_init__(self) -> None:
         est = _float2d("estimate", self.estimate)
@@ -58,7 +63,7 @@ class IndicatorSeries:
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, _float2d(name, value, est.shape))
-        for name in ("stale", "nowcast"):
+        for name in ("stale", "nowcast", "invalid"):
             value = getattr(self, name)
             if value is not None:
                 arr = np.asarray(value)

@@ -4,6 +4,11 @@
 role and the roles above it. A request without a valid session is sent to the login page
 (:class:`LoginRequired`); a signed-in user without the role gets 403. Every POST of a staff form
 goes through :func:`csrf_protected`.
+
+Integer parameters of routes use the bounded types below (:data:`RowId`, :data:`BigRowId`,
+:data:`PageNumber`): a value the database column cannot hold is a 422 like any other bad
+parameter, never an overflow inside the driver (SQLite and psycopg raise on integers past their
+column's range).
 """
 
 from __future__ import annotations
@@ -13,6 +18,7 @@ from typing import Annotated
 
 from fastapi import Depends, HTTPException, Request
 from fastapi.templating import Jinja2Templates
+from pydantic import Field
 from sqlalchemy.orm import Session
 
 from server.config import Settings
@@ -21,6 +27,16 @@ from server.services.database import Database
 from server.services.notify import NotifyConfig
 
 SESSION_COOKIE = "tw_session"
+
+INT32_MAX = 2**31 - 1  # PostgreSQL ``integer`` (the ruleset, user and region keys)
+INT64_MAX = 2**63 - 1  # ``bigint`` (assessment, vintage, decision keys) and SQLite's INTEGER
+
+# The key of a row in a table with ``integer`` keys (a ruleset version): 1 .. 2**31 - 1.
+RowId = Annotated[int, Field(ge=1, le=INT32_MAX)]
+# The key of a row in a table with ``bigint`` keys (an assessment): 1 .. 2**63 - 1.
+BigRowId = Annotated[int, Field(ge=1, le=INT64_MAX)]
+# A page of a paged list: 1 .. 2**31 - 1 (the offset it gives stays within 64 bits).
+PageNumber = Annotated[int, Field(ge=1, le=INT32_MAX)]
 
 
 class LoginRequired(Exception):  # noqa: N818 - a control-flow signal, handled by the app

@@ -22,10 +22,12 @@ from server.services.policies import (
 )
 from web.backtests import OUTLINE, tier_strip
 from web.deps import (
+    INT32_MAX,
     AdminDep,
     AnalystDep,
     CsrfDep,
     NotifyDep,
+    RowId,
     SessionDep,
     SettingsDep,
     StaffDep,
@@ -58,7 +60,7 @@ def decode_draft(raw: bytes, filename: str) -> str | DraftCheck:
 
 @router.get("/policies", response_class=HTMLResponse)
 def policies(
-    request: Request, session: SessionDep, user: StaffDep, id: int | None = None
+    request: Request, session: SessionDep, user: StaffDep, id: RowId | None = None
 ) -> Response:
     """A version (default: the active one) as tiers and a thresholds table; all versions."""
     return render(request, "staff/policies.html", {
@@ -68,7 +70,9 @@ def policies(
 
 
 @router.get("/policies/diff", response_class=HTMLResponse)
-def diff(request: Request, session: SessionDep, user: StaffDep, old: int, new: int) -> Response:
+def diff(
+    request: Request, session: SessionDep, user: StaffDep, old: RowId, new: RowId
+) -> Response:
     """Two versions compared item by item (with units), and the line diff of their YAML."""
     return render(request, "staff/policy_diff.html", {
         "comparison": policy_comparison(session=session, old_id=old, new_id=new),
@@ -110,12 +114,20 @@ def draft(
 @router.post("/policies/{ruleset_id}/activate")
 def activate(
     session: SessionDep, user: AdminDep, _csrf: CsrfDep, notify: NotifyDep,
-    settings: SettingsDep, ruleset_id: int,
+    settings: SettingsDep, ruleset_id: RowId,
 ) -> RedirectResponse:
     """Make a version active and evaluate it (admins only)."""
     activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify,
                      stale_after=catalogue_limits(load_catalogue(settings)))
     return RedirectResponse("/staff/policies", status_code=303)
+
+
+def _row_id(text: str) -> int | None:
+    """A ruleset id from a form field ("" or anything that is not a key: None)."""
+    text = text.strip()
+    if not (text.isascii() and text.isdigit() and len(text) <= 10):
+        return None
+    return int(text) if 1 <= int(text) <= INT32_MAX else None
 
 
 def _jobs(request: Request) -> BacktestJobs:
@@ -124,13 +136,13 @@ def _jobs(request: Request) -> BacktestJobs:
 
 @router.post("/policies/{ruleset_id}/backtest")
 def backtest(
-    request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep, ruleset_id: int,
+    request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep, ruleset_id: RowId,
     compare: Annotated[str, Form()] = "", as_known: Annotated[str, Form()] = "",
 ) -> RedirectResponse:
     """Start a background backtest of a version (optionally beside another, e.g. the active)."""
     job_id = _jobs(request).start(
         session=session, ruleset_id=ruleset_id,
-        compare_id=int(compare) if compare.strip().isdigit() else None,
+        compare_id=_row_id(compare),
         as_known=bool(as_known), user=user.name,
     )
     return RedirectResponse(f"/staff/policies/backtests/{job_id}", status_code=303)

@@ -23,7 +23,17 @@ from server.services.review import (
     decide,
     publish,
 )
-from web.deps import ApproverDep, CsrfDep, NotifyDep, SessionDep, StaffDep, signer
+from web.deps import (
+    INT32_MAX,
+    INT64_MAX,
+    ApproverDep,
+    BigRowId,
+    CsrfDep,
+    NotifyDep,
+    SessionDep,
+    StaffDep,
+    signer,
+)
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -47,7 +57,8 @@ def _seen(field: str, value: str) -> int | None:
     text = value.strip()
     if text == NONE:
         return None
-    if not text.lstrip("-").isdigit():
+    digits = text.removeprefix("-")
+    if not (digits.isascii() and digits.isdigit()) or len(digits) > 18:
         raise ReviewError(field, f"{value!r} is neither a whole number nor {NONE!r}")
     return int(text)
 
@@ -55,7 +66,7 @@ def _seen(field: str, value: str) -> int | None:
 @router.post("/review/{assessment_id}", response_model=None)
 def decide_one(
     request: Request, session: SessionDep, user: ApproverDep, _csrf: CsrfDep,
-    assessment_id: int, action: Annotated[str, Form()],
+    assessment_id: BigRowId, action: Annotated[str, Form()],
     official_tier: Annotated[str, Form()], official_decision: Annotated[str, Form()],
     reason: Annotated[str, Form()] = "", tier: Annotated[str, Form()] = "",
 ) -> Response:
@@ -66,7 +77,8 @@ def decide_one(
     """
     try:
         decide(session=session, assessment_id=assessment_id, user=user.name,
-               accept=action == "confirm", tier=int(tier) if tier.strip().isdigit() else None,
+               accept=action == "confirm",
+               tier=int(tier) if tier.strip().isascii() and tier.strip().isdigit() else None,
                reason=reason, official_tier=_seen("official_tier", official_tier),
                official_decision_id=_seen("official_decision", official_decision))
     except (RecommendationChangedError, DecisionConflictError) as refused:
@@ -96,9 +108,9 @@ class DecisionIn(BaseModel):
 
     action: Literal["confirm", "override"]
     reason: str = Field(min_length=1)
-    tier: int | None = None
-    official_tier: int | None
-    official_decision_id: int | None
+    tier: int | None = Field(default=None, ge=-1, le=INT32_MAX)
+    official_tier: int | None = Field(ge=-1, le=INT32_MAX)
+    official_decision_id: int | None = Field(ge=1, le=INT64_MAX)
 
 
 def csrf_header(
@@ -112,7 +124,7 @@ def csrf_header(
 @api_router.post("/api/review/{assessment_id}/decision", status_code=201, response_model=None)
 def decide_api(
     session: SessionDep, user: ApproverDep, _csrf: Annotated[None, Depends(csrf_header)],
-    assessment_id: int, body: DecisionIn,
+    assessment_id: BigRowId, body: DecisionIn,
 ) -> Response:
     """Confirm or override one pending change; 409 (with the reason sent) when the district was
     decided, or its recommendation changed, since the client read it."""

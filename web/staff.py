@@ -6,7 +6,7 @@ import threading
 from collections.abc import Callable
 from datetime import date, datetime
 
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 from fastapi.templating import Jinja2Templates
 
@@ -14,7 +14,7 @@ from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.morning import MorningOverview, morning_overview
 from web.charts import criterion_figure, figure_json, timeline_figure
-from web.deps import SessionDep, SettingsDep, StaffDep
+from web.deps import PageNumber, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -24,10 +24,10 @@ router = APIRouter(tags=["staff"])
 def home(
     request: Request, session: SessionDep, settings: SettingsDep, user: StaffDep,
     sort: str = "pending", q: str = "", tier: str = "", pending: str = "",
-    page: int = Query(1, ge=1),
+    page: PageNumber = 1,
 ) -> Response:
     """Every district: official and recommended tier, signals, indicators; feeds; changes."""
-    tier_filter = int(tier) if tier.strip().isdigit() else None
+    tier_filter = int(tier) if tier.strip().isascii() and tier.strip().isdigit() else None
     view = morning_overview(session=session, sort=sort, query=q, tier=tier_filter,
                             pending_only=pending == "true", page=page,
                             catalogue=load_catalogue(settings), time_zone=settings.time_zone)

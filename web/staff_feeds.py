@@ -1,12 +1,23 @@
-"""Staff page of the feeds: health of each feed, the newest rejected rows, a manual upload."""
+"""Staff page of the feeds: health of each feed, the newest rejected rows, a manual upload.
+
+The upload is capped like the push: a body over ``Settings.upload_max_bytes`` answers 413 with a
+plain message, refused before reading when its ``Content-Length`` says so and otherwise as soon
+as that many bytes have arrived (:class:`CappedUploadRoute`). The form parser spools the file to
+disk past 1 MB and ingestion reads it from there in blocks, so memory does not grow with it.
+"""
 
 from __future__ import annotations
 
+from collections.abc import Awaitable, Callable
 from datetime import UTC, datetime
 from typing import Annotated
 
-from fastapi import APIRouter, File, Form, Request, UploadFile
+from fastapi import APIRouter, File, Form, HTTPException, Request, UploadFile
 from fastapi.responses import HTMLResponse
+from fastapi.routing import APIRoute
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.responses import Response
+from starlette.types import Message
 
 from server.services.auth import has_role
 from server.services.feeds import (
@@ -19,7 +30,62 @@ from server.services.feeds import (
 from web.deps import AnalystDep, CsrfDep, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
-router = APIRouter(tags=["staff"])
+
+class UploadTooLargeError(ValueError):
+    """An uploaded body is (or declares to be) larger than ``Settings.upload_max_bytes``."""
+
+    def __init__(self, limit: int, size: int | None) -> None:
+        self.limit = limit
+        got = f"{size:,} bytes" if size is not None else "more"
+        super().__init__(f"the upload of {got} is over the limit of {limit:,} bytes "
+                         "(TIERWISE_UPLOAD_MAX_BYTES); split the file or ask an administrator")
+
+
+def _too_large(exc: UploadTooLargeError) -> HTTPException:
+    return HTTPException(status_code=413, detail=str(exc))
+
+
+class CappedUploadRoute(APIRoute):
+    """A route whose request body may not pass ``Settings.upload_max_bytes`` (413).
+
+    The check wraps the ASGI ``receive`` before FastAPI parses the form, so an oversized file is
+    never read whole: a declared ``Content-Length`` over the limit is refused at once, and a body
+    sent without one is cut off when the bytes received pass the limit.
+    """
+
+    def get_route_handler(self) -> Callable[[Request], Awaitable[Response]]:
+        handler = super().get_route_handler()
+
+        async def capped(request: Request) -> Response:
+            limit = request.app.state.settings.upload_max_bytes
+            declared = request.headers.get("content-length", "").strip()
+            if declared.isascii() and declared.isdigit() and int(declared) > limit:
+                raise _too_large(UploadTooLargeError(limit, int(declared)))
+            receive, seen = request.receive, 0
+
+            async def counted() -> Message:
+                nonlocal seen
+                message = await receive()
+                seen += len(message.get("body", b""))
+                if seen > limit:
+                    raise UploadTooLargeError(limit, None)
+                return message
+
+            try:
+                return await handler(Request(request.scope, counted))
+            except UploadTooLargeError as exc:
+                raise _too_large(exc) from None
+            except StarletteHTTPException as exc:  # FastAPI turns errors while parsing the form
+                # into a 400 (Starlette's class) caused by the original error
+
+                if isinstance(exc.__cause__, UploadTooLargeError):
+                    raise _too_large(exc.__cause__) from None
+                raise
+
+        return capped
+
+
+router = APIRouter(tags=["staff"], route_class=CappedUploadRoute)
 
 
 UPLOAD_ROLE = "analyst"
@@ -58,13 +124,12 @@ def upload(
     A plain (sync) route: FastAPI has parsed the form before the call and runs the route in its
     thread pool, so the ingestion does not block the event loop.
     """
-    content = file.file.read()
     catalogue = load_catalogue(settings)
     error, receipt = None, None
     try:
         receipt = upload_payload(
             request.app.state.database, catalogue=catalogue, feed_name=feed,
-            filename=file.filename or "upload", content=content, actor=user.name,
+            filename=file.filename or "upload", content=file.file, actor=user.name,
             time_zone=settings.time_zone, dry_run=dry_run,
         )
     except (FeedFileError, UnknownFeedError) as exc:

@@ -61,6 +61,11 @@ class Settings(BaseSettings):
     scheduler: bool = Field(
         default=True, description="Run the feed scheduler inside `tierwise serve`"
     )
+    upload_max_bytes: int = Field(
+        default=50_000_000, ge=1,
+        description="Largest file a staff member may upload on the Feeds page (bytes); a "
+        "larger one is refused with 413 before it is read whole",
+    )
     notify_file: Path | None = Field(
         default=None,
         description="Notification recipients YAML (webhooks and e-mail; default: none)",

@@ -321,6 +321,23 @@ def _stray_quotes(text: bytes, delimiter: str) -> bool:
     return bool((~allowed[padded[quotes]] & ~allowed[padded[quotes + 2]]).any())
 
 
+def _too_wide(text: bytes, delimiter: str, fields: int) -> bool:
+    """Whether a line holds far more delimiters than the header has fields.
+
+    The C parser makes one column per field of the widest record, which takes about a minute
+    for a line of a million fields; such blocks are read record by record (the record is then
+    ``malformed_row``). A quoted field may hold delimiters, hence the margin.
+    """
+    data = np.frombuffer(text, dtype=np.uint8)
+    delimiters = np.flatnonzero(data == ord(delimiter))
+    limit = max(64, 4 * fields)
+    if delimiters.size <= limit:
+        return False
+    newlines = np.flatnonzero(data == NEWLINE)
+    per_line = np.diff(np.searchsorted(delimiters, np.r_[-1, newlines]))
+    return bool(per_line.size and per_line.max() > limit)
+
+
 def _parse_block(
     block: _Block, names: list[str], wanted: list[str], delimiter: str
 ) -> RawChunk:
@@ -330,7 +347,8 @@ def _parse_block(
         empty = Coded(codes=np.zeros(n, dtype=np.intp), uniques=np.array([""], dtype=object))
         return block.chunk(dict.fromkeys(wanted, empty), np.ones(n, dtype=bool))
     frame = None
-    if not _stray_quotes(block.text, delimiter):
+    if not _stray_quotes(block.text, delimiter) and not _too_wide(block.text, delimiter,
+                                                                  len(names)):
         frame = _fast_parse(block.text, names, delimiter, n)
     if frame is not None:
         return block.chunk(
@@ -466,8 +484,13 @@ class _JsonStream:
             if not self.more():
                 return ""
 
-    def value(self, decoder: json.JSONDecoder, label: str) -> object:
-        """The next JSON value, reading more text until it is complete (its text: ``last``)."""
+    def value(self, decoder: json.JSONDecoder, label: str, record: int | None = None) -> object:
+        """The next JSON value, reading more text until it is complete (its text: ``last``).
+
+        ``record`` (1-based position in the list of records) is named in errors. A value nested
+        more deeply than Python's recursion limit allows (about 1 000 levels) rejects the file
+        with that record's place, as any other invalid JSON does.
+        """
         self.peek()
         while True:
             try:
@@ -477,14 +500,22 @@ class _JsonStream:
                 # Further back it is invalid (and a record longer than MAX_RECORD_BYTES is, too).
                 if len(self.text) - exc.pos <= MAX_RECORD_BYTES and self.more():
                     continue
-                raise FeedFileError(label, self.where(exc.pos), f"not valid JSON ({exc.msg})"
-                                    ) from None
+                raise FeedFileError(label, self._place(exc.pos, record),
+                                    f"not valid JSON ({exc.msg})") from None
+            except RecursionError:
+                raise FeedFileError(
+                    label, self._place(self.pos, record),
+                    "the JSON is nested too deeply (a record is an object of plain values)",
+                ) from None
             if end == len(self.text) and not self.done and isinstance(value, int | float):
                 self.more()  # a number may go on in the next block
                 continue
             self.last = self.text[self.pos:end]
             self.pos = end
             return value
+
+    def _place(self, pos: int, record: int | None) -> str:
+        return self.where(pos) if record is None else f"record {record}, {self.where(pos)}"
 
     def expect(self, allowed: str, label: str) -> str:
         char = self.peek()
@@ -498,7 +529,7 @@ class _JsonStream:
 
 def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]:
     """Records of ``[...]`` or of the ``records`` list of ``{...}``, each with its text."""
-    decoder = json.JSONDecoder()
+    decoder = _decoder()
     shape = "expected a JSON array of records or {\"records\": [...]}"
     start = text.peek()
     if start == "{":
@@ -532,14 +563,24 @@ def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]
         raise FeedFileError(label, text.where(text.pos), "not valid JSON (Extra data)")
 
 
+def _keep_digits(digits: str) -> str:
+    """JSON integers are kept as their digits: a value is read from its text anyway, and
+    ``int()`` refuses more than 4 300 digits (a ``ValueError`` outside ``JSONDecodeError``)."""
+    return digits
+
+
+def _decoder() -> json.JSONDecoder:
+    return json.JSONDecoder(parse_int=_keep_digits)
+
+
 def _json_array(
     text: _JsonStream, decoder: json.JSONDecoder, label: str
 ) -> Iterator[tuple[object, str]]:
     if text.peek() == "]":
         text.pos += 1
         return
-    while True:
-        record = text.value(decoder, label)
+    for number in itertools.count(1):
+        record = text.value(decoder, label, number)
         yield record, text.last
         if text.expect(",]", label) == "]":
             return

@@ -45,6 +45,22 @@ class Payload:
         )
 
     @classmethod
+    def from_file(cls, label: str, handle: BinaryIO) -> Payload:
+        """Content of an open, seekable file (an upload spooled to disk), read in blocks.
+
+        Each opening reads ``handle`` from its start; leaving the ``with`` block does not close
+        it (its owner does).
+        """
+        digest = hashlib.sha256()
+        handle.seek(0)
+        size = 0
+        while block := handle.read(READ_BYTES):
+            digest.update(block)
+            size += len(block)
+        return cls(label=label, opener=lambda: _Rewound(handle),  # type: ignore[arg-type,return-value]
+                   checksum=digest.hexdigest(), size=size)
+
+    @classmethod
     def from_path(cls, path: Path) -> Payload:
         digest = hashlib.sha256()
         with path.open("rb") as handle:
@@ -54,6 +70,23 @@ class Payload:
             label=str(path), opener=lambda: path.open("rb"), checksum=digest.hexdigest(),
             size=path.stat().st_size,
         )
+
+
+class _Rewound:
+    """A shared file read from its start; ``with`` leaves it open (see Payload.from_file)."""
+
+    def __init__(self, handle: BinaryIO) -> None:
+        handle.seek(0)
+        self.handle = handle
+
+    def read(self, size: int = -1) -> bytes:
+        return self.handle.read(size)
+
+    def __enter__(self) -> _Rewound:
+        return self
+
+    def __exit__(self, *_exc: object) -> None:
+        return None
 
 
 def pending_files(source: FileSource) -> list[Path]:

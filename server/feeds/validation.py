@@ -10,6 +10,7 @@ unknown_region         the region code (after the feed's mapping) is not in the 
 unknown_measure        the measure is not one this feed carries, or not in the catalogue
 unparsable_date        not an ISO 8601 date (weekly feeds also take ISO weeks, 2026-W14)
 future_date            the reference date is after today in the office's time zone
+date_too_old           the reference date is before :data:`EARLIEST_DATE` (1990-01-01)
 missing_value          the value is empty
 ambiguous_number       a separator the feed declares neither as ``decimal`` nor ``thousands``
 bad_digit_grouping     thousands separators not between groups of three digits
@@ -30,6 +31,13 @@ spread back to rows with numpy; messages are built for rejected rows only.
 
 An ISO week is stored on its Monday. Values are multiplied by the measure's ``scale`` before the
 count and range checks.
+
+A count is a whole number from 0 to :data:`MAX_COUNT`. A count within :data:`COUNT_TOLERANCE` of a
+whole number (``5.0000000001``, ``4.9e-324``: floating-point residue from a sender that computes
+counts as floats) is stored *as that whole number*, so what is stored is exactly what the
+indicators take (``server.indicators.poisson`` refuses any fraction); a larger fraction is
+``non_integer_count``. A count over :data:`MAX_COUNT`, or a value that the scale makes infinite,
+is ``out_of_range``.
 """
 
 from __future__ import annotations
@@ -50,15 +58,23 @@ from server.store.vintages import Rejection
 
 EPOCH = date(1970, 1, 1)
 Messages = Callable[[NDArray[np.int64]], list[str]]
-ISO_DATE = re.compile(r"^(\d{4})-(\d{2})-(\d{2})$")
-ISO_WEEK = re.compile(r"^(\d{4})-?W(\d{2})$")
+ISO_DATE = re.compile(r"^([0-9]{4})-([0-9]{2})-([0-9]{2})$")  # ASCII digits only
+ISO_WEEK = re.compile(r"^([0-9]{4})-?W([0-9]{2})$")
 REASONS = (
     "malformed_row", "unknown_region", "unknown_measure", "unparsable_date", "future_date",
     "missing_value", "non_numeric_value", "negative_count", "non_integer_count", "out_of_range",
     "duplicate_row", "conflicting_duplicate", "positives_exceed_tests", "ambiguous_number",
-    "bad_digit_grouping",
+    "bad_digit_grouping", "date_too_old",
 )
 AMBIGUOUS, BAD_GROUPING = 1, 2
+# Reference dates before this are refused: every evaluation runs from the oldest stored date, so
+# one row dated 0001-01-01 would make each one span two thousand years.
+EARLIEST_DATE = date(1990, 1, 1)
+# A count closer than this to a whole number is that whole number (stored rounded).
+COUNT_TOLERANCE = 1e-9
+# The largest count stored: float64 holds every whole number up to 2**53 exactly, and a 7-day
+# window of such counts still sums to a finite number.
+MAX_COUNT = float(2**53)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -294,6 +310,8 @@ def validate_chunk(
     today_n = (today - EPOCH).days
     with np.errstate(invalid="ignore"):
         flag(day > today_n, "future_date", framed("date ", cols["date"], " is in the future"))
+        flag(day < (EARLIEST_DATE - EPOCH).days, "date_too_old", framed(
+            "date ", cols["date"], f" is before {EARLIEST_DATE.isoformat()}, the earliest taken"))
     raw_value = cols["value"]
     flag(raw_value.equals(""), "missing_value", fixed("the value is empty"))
     parsed, problem = parse_numbers(
@@ -328,12 +346,20 @@ def validate_chunk(
         value = value * scale
         flag(is_count & (value < 0), "negative_count",
              framed("a count cannot be negative: ", raw_value, ""))
-        flag(is_count & (np.abs(value - np.rint(value)) > 1e-9), "non_integer_count",
+        flag(is_count & (np.abs(value - np.rint(value)) > COUNT_TOLERANCE), "non_integer_count",
              framed("a count must be a whole number: ", raw_value, ""))
+        flag(~np.isfinite(value), "out_of_range", lambda idx: [
+            f"value {str(v)[:80]!r} times the scale {s:g} is too large to store"
+            for v, s in zip(raw_value.take(idx).values, scale[idx], strict=True)
+        ])
+        flag(is_count & (value > MAX_COUNT), "out_of_range",
+             framed("count ", raw_value, f" is above the largest count stored ({MAX_COUNT:.0f})"))
         flag((value < low) | (value > high), "out_of_range", lambda idx: [
             f"value {str(v)[:80]!r} is outside the plausible range [{a:g}, {b:g}]"
             for v, a, b in zip(raw_value.take(idx).values, low[idx], high[idx], strict=True)
         ])
+        # Counts are stored as the whole numbers they were checked to be (-0.0 becomes 0.0).
+        value = np.where(is_count, np.rint(value) + 0.0, value)
     bad = reason != 0
     good = ~bad
     accepted = Accepted(

@@ -12,6 +12,15 @@ day more than the limit after its newest reference date as known at the cutoff, 
 indicator built from it carries ``stale`` there, so the engine explains it as stale data. The
 limit is the one of the feed that told the newest date (the most lenient one on a tie).
 
+A stored value the indicators cannot take (a count that is negative, not within
+:data:`~server.feeds.validation.COUNT_TOLERANCE` of a whole number or over
+:data:`~server.feeds.validation.MAX_COUNT`; an infinite or negative wastewater value;
+positives above tests on a day) never stops the evaluation: it is read as missing, logged with
+its region, measure and date, and every indicator value built from it is ``invalid`` (the
+engine treats it as unknown and explains it so) for that district only. Counts within the
+tolerance are rounded, as feed validation stores them (:mod:`server.feeds.validation`); older
+releases stored them unrounded.
+
 Indicator names known here (a ruleset may use any subset): ``incidence_7d``, ``positivity_7d``,
 ``tests_7d``, ``admissions_7d``, ``icu_share``, ``rt``, ``ww_trend``, ``gp_aberration``. Percentages
 (positivity, ICU share) are expressed in percent, as policies write them.
@@ -19,6 +28,7 @@ Indicator names known here (a ruleset may use any subset): ``incidence_7d``, ``p
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
@@ -30,6 +40,8 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import IndicatorSeries, Ruleset
 from server.feeds.definition import FeedDefinition
+from server.feeds.validation import COUNT_TOLERANCE, MAX_COUNT
+from server.indicators._arrays import trailing_sum
 from server.indicators.aberration import ears
 from server.indicators.hospital import admission_rate, occupancy_share
 from server.indicators.poisson import incidence_rate
@@ -48,6 +60,60 @@ AREA_MEASURES = ("icu_occupied", "icu_staffed")
 PLANT_MEASURES = ("ww_concentration", "ww_flow")
 # Districts below this population are matched by overrides as level "small_district".
 SMALL_DISTRICT_POPULATION = 30_000
+# Days a bad input day reaches forward: 7-day windows; EARS C2 (baseline t-9 .. t-3 and the day
+# itself, ``server.indicators.aberration``); the wastewater trend's 15-day window.
+WEEK, EARS_C2_REACH, WW_TREND_WINDOW = 7, 10, 15
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True, kw_only=True)
+class BadValue:
+    """A stored value the indicators cannot take, read as missing (and logged)."""
+
+    region: str
+    measure: str
+    ref_date: date
+    value: float
+    problem: str
+
+
+def usable(
+    values: NDArray[np.float64], *, count: bool
+) -> tuple[NDArray[np.float64], NDArray[np.bool_], NDArray[np.str_]]:
+    """``values`` with unusable entries made NaN, where they were, and why (``""``: fine).
+
+    Counts must be whole numbers in ``[0, MAX_COUNT]``; those within ``COUNT_TOLERANCE`` of one
+    are rounded to it (as feed validation stores them). Other measures must be finite and not
+    negative. NaN stays NaN (a missing day).
+    """
+    problem = np.full(values.shape, "", dtype="<U40")
+    with np.errstate(invalid="ignore"):
+        problem[np.isinf(values)] = "not finite"
+        problem[(values < 0) & (problem == "")] = "negative"
+        if count:
+            whole = np.rint(values)
+            problem[(np.abs(values - whole) > COUNT_TOLERANCE) & (problem == "")] = (
+                "not a whole number")
+            problem[(values > MAX_COUNT) & (problem == "")] = "over the largest count"
+    bad = problem != ""
+    cleaned = np.where(bad, np.nan, np.rint(values) + 0.0 if count else values)
+    return cleaned, bad, problem
+
+
+def _clean(
+    arrays: Mapping[str, NDArray[np.float64]], regions: Sequence[str],
+    dates: NDArray[np.datetime64], *, count: bool, found: list[BadValue],
+) -> tuple[dict[str, NDArray[np.float64]], dict[str, NDArray[np.bool_]]]:
+    """:func:`usable` over each measure's (regions, days) array; bad values go to ``found``."""
+    values, masks = {}, {}
+    for measure, arr in arrays.items():
+        values[measure], masks[measure], problem = usable(arr, count=count)
+        for r, d in np.argwhere(masks[measure]).tolist():
+            found.append(BadValue(region=regions[r], measure=measure,
+                                  ref_date=dates[d].astype("datetime64[D]").item(),
+                                  value=float(arr[r, d]), problem=str(problem[r, d])))
+    return values, masks
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -67,6 +133,19 @@ class DistrictData:
     # Per measure, (districts, days) (area measures by district): True where the feed's
     # staleness limit is passed; ``ww_plants``: every plant serving the district is stale.
     stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    # Per measure, (districts, days): True where the stored value was unusable and read as
+    # missing (:func:`usable`); ``ww_plants``: some plant serving the district had one.
+    invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    bad_values: tuple[BadValue, ...] = ()
+
+    def invalid_of(self, *measures: str, reach: int = 1) -> NDArray[np.bool_] | None:
+        """Where any of ``measures`` had an unusable value within the last ``reach`` days
+        (the day itself included); None when none had any."""
+        masks = [self.invalid[m] for m in measures if m in self.invalid and self.invalid[m].any()]
+        if not masks:
+            return None
+        hit = np.logical_or.reduce(masks).astype(np.float64)
+        return trailing_sum(hit, reach) > 0.5
 
     def stale_of(self, *measures: str) -> NDArray[np.bool_] | None:
         """Where any of ``measures`` is past its feed's staleness limit (None: nowhere known)."""
@@ -162,6 +241,25 @@ def load_district_data(
     for plant_code, district_code, share in links:
         i, j = codes.index(district_code), plant_codes.index(plant_code)
         served[i, j] = share * population[i]
+    found: list[BadValue] = []
+    district_values, invalid = _clean(district.values, codes, district.dates, count=True,
+                                      found=found)
+    area_values, area_bad = _clean(area.values, areas, district.dates, count=True, found=found)
+    for m in AREA_MEASURES:
+        area_of_district[m] = np.where(
+            pick[:, None] >= 0, area_values[m][np.maximum(pick, 0)], np.nan) if areas else (
+            area_of_district[m])
+        invalid[m] = (pick[:, None] >= 0) & area_bad[m][np.maximum(pick, 0)] if areas else (
+            np.zeros((len(codes), n_days), dtype=bool))
+    plant_values, plant_bad = _clean(plant.values, plant_codes, district.dates, count=False,
+                                     found=found)
+    invalid["ww_plants"] = (served > 0).astype(np.float64) @ (
+        plant_bad["ww_concentration"] | plant_bad["ww_flow"]).astype(np.float64) > 0
+    for bad in found[:20]:
+        log.warning("stored %s of %s on %s is %s (%r): read as missing, its indicators are "
+                    "invalid", bad.measure, bad.region, bad.ref_date, bad.problem, bad.value)
+    if len(found) > 20:
+        log.warning("%d more unusable stored values", len(found) - 20)
     levels = tuple(
         "small_district" if p < SMALL_DISTRICT_POPULATION else "district" for p in population
     )
@@ -180,9 +278,9 @@ def load_district_data(
                                                   served)
     return DistrictData(
         regions=codes, levels=levels, population=population, dates=district.dates,
-        district=district.values, area_of_district=area_of_district, plant=plant.values,
+        district=district_values, area_of_district=area_of_district, plant=plant_values,
         plant_population=np.array([r[1] for r in plant_rows], dtype=np.float64),
-        served=served, as_of=as_of, stale=stale,
+        served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
     )
 
 
@@ -228,7 +326,7 @@ def carry_forward(series: IndicatorSeries) -> IndicatorSeries:
     return IndicatorSeries(
         estimate=hold(est), lower=hold(series.lower), upper=hold(series.upper),  # type: ignore[arg-type]
         count=hold(series.count), age_days=np.where(last >= 0, age, np.nan),
-        stale=series.stale, nowcast=series.nowcast,
+        stale=series.stale, nowcast=series.nowcast, invalid=series.invalid,
     )
 
 
@@ -238,16 +336,25 @@ def _incidence(d: DistrictData) -> IndicatorSeries:
     return IndicatorSeries(
         estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
         age_days=data_age(cases), stale=d.stale_of("cases"),
+        invalid=d.invalid_of("cases", reach=WEEK),
     )
 
 
 def _positivity(d: DistrictData) -> IndicatorSeries:
     pos, tests = d.district["positives"], d.district["tests"]
+    with np.errstate(invalid="ignore"):
+        over = pos > tests  # a pair no check let through together (older data): unusable
+    if over.any():
+        pos, tests = np.where(over, np.nan, pos), np.where(over, np.nan, tests)
     est = positivity(pos, tests, 7)
+    invalid = d.invalid_of("positives", "tests", reach=WEEK)
+    if over.any():
+        over_week = trailing_sum(over.astype(np.float64), WEEK) > 0.5
+        invalid = over_week if invalid is None else invalid | over_week
     return IndicatorSeries(
         estimate=100 * est.estimate, lower=100 * est.lower, upper=100 * est.upper,
         count=est.positives, age_days=data_age(pos, tests),
-        stale=d.stale_of("positives", "tests"),
+        stale=d.stale_of("positives", "tests"), invalid=invalid,
     )
 
 
@@ -255,7 +362,7 @@ def _tests(d: DistrictData) -> IndicatorSeries:
     tests = d.district["tests"]
     est = tests_per_population(tests, d.population, 7)
     return IndicatorSeries(estimate=est.estimate, age_days=data_age(tests),
-                           stale=d.stale_of("tests"))
+                           stale=d.stale_of("tests"), invalid=d.invalid_of("tests", reach=WEEK))
 
 
 def _admissions(d: DistrictData) -> IndicatorSeries:
@@ -264,6 +371,7 @@ def _admissions(d: DistrictData) -> IndicatorSeries:
     return IndicatorSeries(
         estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
         age_days=data_age(adm), stale=d.stale_of("hosp_admissions"),
+        invalid=d.invalid_of("hosp_admissions", reach=WEEK),
     )
 
 
@@ -271,7 +379,8 @@ def _icu(d: DistrictData) -> IndicatorSeries:
     occ, staffed = d.area_of_district["icu_occupied"], d.area_of_district["icu_staffed"]
     share = occupancy_share(occ, staffed)
     return IndicatorSeries(estimate=100 * share.estimate, age_days=data_age(occ, staffed),
-                           stale=d.stale_of("icu_occupied", "icu_staffed"))
+                           stale=d.stale_of("icu_occupied", "icu_staffed"),
+                           invalid=d.invalid_of("icu_occupied", "icu_staffed"))
 
 
 def _rt(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
@@ -280,35 +389,45 @@ def _rt(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
         float(params.get("serial_interval_mean", 4.7)), float(params.get("serial_interval_sd", 2.9))
     )
     cases = d.district["cases"]
-    est = reproduction_number(cases, si, int(params.get("window", 7)))
-    return IndicatorSeries(
+    window = int(params.get("window", 7))
+    est = reproduction_number(cases, si, window)
+    return IndicatorSeries(  # a day reaches the window and the serial interval's lags after it
         estimate=est.estimate, lower=est.lower, upper=est.upper, age_days=data_age(cases),
-        stale=d.stale_of("cases"),
+        stale=d.stale_of("cases"), invalid=d.invalid_of("cases", reach=window + si.pmf.size - 1),
     )
 
 
 def _ww_trend(d: DistrictData) -> IndicatorSeries:
     conc, flow = d.plant["ww_concentration"], d.plant["ww_flow"]
-    norm = normalise(
-        conc, ["flow"] * conc.shape[0], flow=flow, population_served=d.plant_population
-    )
-    per_plant = trend(norm.log_value, window=15)
-    sampled = np.isfinite(norm.log_value)
+    with np.errstate(over="ignore"):  # a product past the float range: that day is unusable
+        norm = normalise(
+            conc, ["flow"] * conc.shape[0], flow=flow, population_served=d.plant_population
+        )
+    log_value = norm.log_value
+    overflow = np.isinf(log_value)
+    if overflow.any():
+        log_value = np.where(overflow, np.nan, log_value)
+    per_plant = trend(log_value, window=WW_TREND_WINDOW)
+    sampled = np.isfinite(log_value)
     # A district's trend is the population-weighted mean of its plants' trends on sample days.
     on_samples = np.where(sampled, per_plant.estimate, np.nan)
     estimate = to_districts(on_samples, d.served)
     lower = to_districts(np.where(sampled, per_plant.lower, np.nan), d.served)
     upper = to_districts(np.where(sampled, per_plant.upper, np.nan), d.served)
     age = data_age(to_districts(np.where(sampled, 1.0, np.nan), d.served))
+    bad = d.invalid.get("ww_plants", np.zeros(estimate.shape, dtype=bool)) | (
+        (d.served > 0).astype(np.float64) @ overflow.astype(np.float64) > 0)
+    invalid = trailing_sum(bad.astype(np.float64), WW_TREND_WINDOW) > 0.5 if bad.any() else None
     return IndicatorSeries(estimate=estimate, lower=lower, upper=upper, age_days=age,
-                           stale=d.stale_of("ww_plants"))
+                           stale=d.stale_of("ww_plants"), invalid=invalid)
 
 
 def _gp(d: DistrictData) -> IndicatorSeries:
     gp = d.district["gp_ari"]
     result = ears(gp, method="C2")
     alarm = np.where(np.isfinite(result.statistic), result.alarm.astype(np.float64), np.nan)
-    return IndicatorSeries(estimate=alarm, age_days=data_age(gp), stale=d.stale_of("gp_ari"))
+    return IndicatorSeries(estimate=alarm, age_days=data_age(gp), stale=d.stale_of("gp_ari"),
+                           invalid=d.invalid_of("gp_ari", reach=EARS_C2_REACH))
 
 
 BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {

@@ -22,6 +22,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
+from typing import BinaryIO
 
 import httpx
 from sqlalchemy import Date, delete, func, select, text, type_coerce, update
@@ -723,19 +724,21 @@ def ingest_push(
 
 
 def upload_payload(
-    db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str, content: bytes,
-    actor: str, time_zone: str = "UTC", dry_run: bool = False,
+    db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str,
+    content: bytes | BinaryIO, actor: str, time_zone: str = "UTC", dry_run: bool = False,
 ) -> IngestReceipt:
     """A file a staff member uploaded by hand (any configured feed's layout).
 
-    Recorded in the feed state like every other way in (:func:`ingest_recorded`); the vintage's
-    source is ``upload FILENAME by ACTOR``.
+    ``content`` is the bytes or an open, seekable file (an upload spooled to disk, read in
+    blocks). Recorded in the feed state like every other way in (:func:`ingest_recorded`); the
+    vintage's source is ``upload FILENAME by ACTOR``.
     """
     feed = feed_named(catalogue, feed_name)
     label = f"{UPLOAD_PREFIX}{filename}{UPLOAD_BY}{actor}"[:500]
+    payload = (Payload.from_bytes(label, content) if isinstance(content, bytes)
+               else Payload.from_file(label, content))
     return ingest_recorded(
-        db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
-        dry_run=dry_run,
+        db, feed=feed, payload=payload, time_zone=time_zone, dry_run=dry_run,
     ).receipt
 
 

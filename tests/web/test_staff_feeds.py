@@ -8,8 +8,10 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
+from sqlalchemy import func, select
 
 from demo_seed.feeds import DEMO_FEEDS_FILE
+from server.store.models import Vintage
 from tests.web.conftest import ROLE_USER, copy_demo, csrf_of, login, settings_for
 from web.app import create_app
 
@@ -71,3 +73,63 @@ def test_rejected_header_only_upload_shows_the_reason_and_the_last_error(
     row = re.search(r'<a href="/staff/feeds\?feed=long-csv">.*?</tr>', page, re.S)
     assert row is not None and "no data rows" in row.group(0)
     assert "<strong>attention</strong>" in row.group(0)
+
+
+@pytest.fixture(scope="module")
+def small_cap(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
+    """A client whose upload limit is 2 000 bytes."""
+    path = copy_demo(demo_file, tmp_path_factory.mktemp("cap") / "demo.db")
+    settings = settings_for(path, feeds_file=DEMO_FEEDS_FILE, upload_max_bytes=2000)
+    with TestClient(create_app(settings)) as c:
+        yield c
+
+
+def _vintages(client: TestClient) -> int:
+    with client.app.state.database.transaction() as session:  # type: ignore[attr-defined]
+        return int(session.scalar(select(func.count()).select_from(Vintage)) or 0)
+
+
+def test_upload_over_the_limit_is_413_and_stores_nothing(small_cap: TestClient) -> None:
+    login(small_cap, ROLE_USER["analyst"])
+    before = _vintages(small_cap)
+    rows = "".join(f"D13,2026-11-{d:02d},cases,{d}\n" for d in range(1, 29)) * 4
+    body = ("region,date,measure,value\n" + rows).encode()
+    assert len(body) > 2000
+    answer = upload(small_cap, body, name="big.csv")
+    assert answer.status_code == 413
+    assert "over the limit of 2,000 bytes" in answer.text
+    assert _vintages(small_cap) == before
+
+
+def test_upload_without_a_length_is_cut_off_at_the_limit(small_cap: TestClient) -> None:
+    """A chunked body (no Content-Length) is refused once 2 000 bytes have arrived."""
+    login(small_cap, ROLE_USER["analyst"])
+    csrf = csrf_of(small_cap.get("/staff/feeds").text)
+    boundary = "tw-boundary"
+    head = (f"--{boundary}\r\nContent-Disposition: form-data; name=\"csrf\"\r\n\r\n{csrf}\r\n"
+            f"--{boundary}\r\nContent-Disposition: form-data; name=\"feed\"\r\n\r\nlong-csv\r\n"
+            f"--{boundary}\r\nContent-Disposition: form-data; name=\"file\"; "
+            f"filename=\"big.csv\"\r\nContent-Type: text/csv\r\n\r\n"
+            "region,date,measure,value\n").encode()
+    sent: list[int] = []
+
+    def chunks() -> Iterator[bytes]:
+        yield head
+        for _ in range(1000):  # up to 1 MB, far past the limit
+            sent.append(1)
+            yield b"D13,2026-11-01,cases,1\n" * 40
+        yield f"\r\n--{boundary}--\r\n".encode()
+
+    before = _vintages(small_cap)
+    answer = small_cap.post("/staff/feeds/upload", content=chunks(),
+                            headers={"Content-Type": f"multipart/form-data; boundary={boundary}"})
+    assert answer.status_code == 413, answer.text[-3000:]
+    assert _vintages(small_cap) == before
+
+
+def test_upload_within_the_limit_is_read_from_the_spooled_file(small_cap: TestClient) -> None:
+    login(small_cap, ROLE_USER["analyst"])
+    answer = upload(small_cap, b"region,date,measure,value\nD13,2026-11-21,cases,17\n",
+                    name="small.csv")
+    assert answer.status_code == 200
+    assert "<strong>1</strong> row accepted" in re.sub(r"\s+", " ", answer.text)

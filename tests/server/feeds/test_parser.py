@@ -253,7 +253,7 @@ def test_json_records_streamed_in_blocks_keep_position_and_text(block: int) -> N
 @pytest.mark.parametrize("block", [3, 1 << 20])
 def test_json_error_named_with_line_and_column_whatever_the_blocks(block: int) -> None:
     content = b'[{"region": "A", "date": "d", "measure": "cases", "value": 1}\n,\n{"value": tru}]'
-    with pytest.raises(FeedFileError, match=r"f.json: line 3 column 11: not valid JSON"):
+    with pytest.raises(FeedFileError, match=r"f.json: record 2, line 3 column 11: not valid JSON"):
         list(read_chunks(io.BytesIO(content), JSON_FEED, label="f.json", block_bytes=block))
 
 

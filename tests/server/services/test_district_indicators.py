@@ -5,6 +5,8 @@ from __future__ import annotations
 from datetime import UTC, date, datetime, timedelta
 
 import numpy as np
+import pandas as pd
+import pytest
 from numpy.testing import assert_array_equal
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -22,6 +24,7 @@ from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.models import Assessment, Region
 from server.store.models import Ruleset as RulesetRow
+from server.store.vintages import append_vintage
 from tests.server.conftest import STALE_RULES
 
 FEEDS = parse_feeds(
@@ -136,3 +139,63 @@ def test_evaluate_districts_passes_the_feed_limits_to_the_engine(session: Sessio
     assert plain.evaluation is not None
     za = plain.evaluation.regions.index("ZA")
     assert plain.evaluation.explain(za, 14).data["criteria"][0]["status"] == "ok"
+
+
+def _legacy(session: Session, rows: list[tuple[str, str, date, float]]) -> None:
+    """Values as an earlier release could store them (no check: ``append_vintage`` as is)."""
+    append_vintage(session=session, feed="old", received_at=datetime(2026, 3, 16, 7, tzinfo=UTC),
+                   checksum=f"legacy-{len(rows)}-{rows[0][3]!r}",
+                   rows=pd.DataFrame(rows, columns=["region", "measure", "ref_date", "value"]))
+
+
+@pytest.mark.parametrize("bad", [5.0000000001, 4.5, -3.0, 1e300],
+                         ids=["residue", "fraction", "negative", "huge"])
+def test_bad_stored_count_is_invalid_in_its_district_only(session: Session, bad: float) -> None:
+    """One unusable stored count never stops the evaluation: that district's incidence is
+    unknown (``invalid``) on the 7 days whose window holds it; the other district is evaluated.
+    A count within 1e-9 of a whole number is rounded instead, as validation stores it."""
+    _setup(session)
+    at = datetime(2026, 3, 16, 6, tzinfo=UTC)
+    _send(session, "fast", "ZA", range(0, 15), at)
+    _send(session, "fast", "ZB", range(0, 15), at)
+    _legacy(session, [("ZA", "cases", date(2026, 3, 5), bad)])
+    rs = parse_ruleset(STALE_RULES)
+    data = load_district_data(session=session, start=START, end=date(2026, 3, 15))
+    result = evaluate(rs, district_indicators(data, rs), regions=data.regions, dates=data.dates,
+                      region_levels=data.levels)
+    status = [result.explain(0, d).data["criteria"][0]["status"] for d in range(15)]
+    other = {result.explain(1, d).data["criteria"][0]["status"] for d in range(6, 15)}
+    assert other == {"ok"}
+    if bad == 5.0000000001:
+        assert data.bad_values == () and data.district["cases"][0, 4] == 5.0
+        assert status[6:] == ["ok"] * 9
+        return
+    # 5 March is day 4: windows ending on days 4 .. 10 hold it.
+    assert status[4:11] == ["invalid"] * 7 and status[11:] == ["ok"] * 4
+    assert [(b.region, b.measure, b.ref_date) for b in data.bad_values] == [
+        ("ZA", "cases", date(2026, 3, 5))]
+    sentence = result.explain(0, 8).sentence
+    assert "7-day incidence data invalid (a stored value cannot be used)" in sentence
+
+
+def test_stored_positives_above_tests_make_positivity_invalid_not_an_error(
+    session: Session,
+) -> None:
+    _setup(session)
+    rows = [(code, m, START + timedelta(days=d), v) for code in ("ZA", "ZB") for d in range(15)
+            for m, v in (("tests", 100.0), ("positives", 10.0))]
+    rows = [r if (r[0], r[1], r[2]) != ("ZA", "positives", date(2026, 3, 5))
+            else (r[0], r[1], r[2], 500.0) for r in rows]
+    _legacy(session, rows)
+    data = load_district_data(session=session, start=START, end=date(2026, 3, 15))
+    text = STALE_RULES.replace("incidence_7d: {label: 7-day incidence, unit: per 100 000, "
+                               "decimals: 0}", "positivity_7d: {label: positivity, unit: '%', "
+                               "decimals: 1}").replace("indicator: incidence_7d",
+                                                       "indicator: positivity_7d")
+    rs = parse_ruleset(text)
+    series = district_indicators(data, rs)["positivity_7d"]
+    assert series.invalid is not None
+    assert np.flatnonzero(series.invalid[0]).tolist() == list(range(4, 11))
+    assert not series.invalid[1].any()
+    # 10 of 100 tests positive in ZB: 10% (7 days of 10 / 100).
+    assert series.estimate[1, 14] == pytest.approx(10.0)

@@ -1,0 +1,86 @@
+"""Hostile input through ``tierwise ingest`` (in process, as ``tests/server/cli`` drives it).
+
+1 000 generated files (``hostile_files``, seed 2026): no traceback, exit status 0 or 1 with one
+line, stored rows of earlier vintages never changed, nothing stored for a file rejected whole or
+without a good row, and the evaluation of the active ruleset succeeds after every file.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from server.cli import app
+from server.cli import feeds as cli_feeds
+from server.services.database import Database
+from server.store import make_engine, make_sessionmaker
+from tests.server.feeds.hostile_files import (
+    FEEDS_YAML,
+    Tally,
+    digest,
+    evaluate_now,
+    feed_of,
+    hostile_files,
+    prepare,
+)
+
+SEED, COUNT = 2026, 1000
+log = logging.getLogger(__name__)
+
+
+@pytest.mark.slow
+@pytest.mark.hostile
+def test_hostile_files_through_the_cli_ingest(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    url = f"sqlite:///{tmp_path / 'hostile.db'}"
+    (tmp_path / "feeds.yaml").write_text(FEEDS_YAML)
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", url)
+    monkeypatch.setenv("TIERWISE_FEEDS_FILE", str(tmp_path / "feeds.yaml"))
+    engine = make_engine(url)
+    db = Database(engine=engine, sessions=make_sessionmaker(engine))
+    prepare(db, tmp_path)
+    # The command runs in process on one engine: each invocation otherwise builds its own and
+    # compiles every SQL statement afresh (a second of a 2-core machine per file).
+    monkeypatch.setattr(cli_feeds, "_database", lambda _settings: db)
+    runner = CliRunner()
+    tally = Tally()
+    started = time.monotonic()
+    path = tmp_path / "in.bin"
+    try:
+        for file in hostile_files(SEED, COUNT):
+            before, _n, newest = digest(db)
+            path.write_bytes(file.content)
+            result = runner.invoke(app, ["ingest", str(path), "--feed", feed_of(file)])
+            tally.tried += 1
+            problem = None
+            if result.exception is not None and not isinstance(result.exception, SystemExit):
+                problem = f"raised {type(result.exception).__name__}: {result.exception}"
+            elif result.exit_code not in (0, 1) or "Traceback" in result.output:
+                problem = f"exit {result.exit_code}: {result.output[-300:]}"
+            if digest(db, up_to_vintage=newest)[0] != before:
+                tally.rows_changed += 1
+                problem = problem or "stored rows of earlier vintages changed"
+            after = digest(db)[0]
+            if result.exit_code == 1:
+                tally.rejected_whole += 1
+                if after != before:
+                    problem = problem or "a file rejected whole stored rows"
+            elif after != before:
+                tally.landed += 1
+            try:
+                tally.evaluations += evaluate_now(db)
+            except Exception as exc:  # noqa: BLE001 - any failure is what the suite reports
+                problem = problem or f"evaluation failed: {type(exc).__name__}: {exc}"
+            if problem:
+                tally.failures.append(f"{file.name}: {problem}")
+    finally:
+        db.dispose()
+    log.info("%s in %.0f s", tally.summary("cli ingest"), time.monotonic() - started)
+    assert tally.failures == []
+    assert tally.tried == COUNT and tally.evaluations == COUNT and tally.rows_changed == 0
+    assert tally.landed > 50 and tally.rejected_whole > 100  # both outcomes were exercised
