@@ -21,7 +21,9 @@ def _sqlite_pragmas(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
     cursor.execute("PRAGMA journal_mode=WAL")
     cursor.execute("PRAGMA foreign_keys=ON")
     cursor.execute("PRAGMA synchronous=NORMAL")
-    cursor.execute("PRAGMA busy_timeout=10000")
+    # Writers queue for the write lock (pushes landing at once, an evaluation): wait up to 30 s,
+    # as the driver's own timeout does, instead of failing with "database is locked".
+    cursor.execute("PRAGMA busy_timeout=30000")
     cursor.close()
 
 
