@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from datetime import date
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated
 
@@ -92,6 +92,7 @@ def demo(
     that the demo did not create is never touched.
     """
     from demo_seed.seed import seed_demo
+    from demo_seed.story import demo_morning, morning_lines
 
     end = date.fromisoformat(end_date) if end_date else None
     from demo_seed.feeds import DEMO_FEEDS_FILE
@@ -104,16 +105,20 @@ def demo(
             db, seed=seed, days=days, end=end, rules_dir=settings.rules_dir, progress=progress_bar,
             history=True,
         )
+        morning = demo_morning(db, now=datetime.now(UTC), time_zone=settings.time_zone)
     finally:
         db.dispose()
     say(
-        f"Seeded {summary.districts} districts, {summary.vintages} daily vintages, "
+        f"Seeded {summary.districts} districts, {summary.vintages} vintages through the demo "
+        f"feeds, "
         f"{summary.observations:,} observations from {summary.start} to {summary.end} "
         f"into {_shown(settings.database_url)}"
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     say(f"Recorded {summary.decisions} past official decisions of the invented office "
-        "(published); the newest changes await review")
+        "(published)")
+    for line in morning_lines(morning):
+        say(line)
     for name, role, password in summary.users:
         say(f"  demo user {name!r} ({role}), password {password!r}")
     for feed, token in summary.push_tokens.items():
