@@ -28,6 +28,7 @@ from demo_seed.feeds import (
 )
 from demo_seed.history import defer_newest_change, official_history
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
+from demo_seed.standin import wastewater_csv
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
 from server.services.evaluation import (
@@ -65,6 +66,7 @@ class SeedSummary:
     assessments: int
     push_tokens: dict[str, str]
     decisions: int = 0
+    wastewater_csv: bytes = b""  # what the stand-in water authority serves (demo_seed.standin)
 
 
 def _no_progress(_n: int = 1) -> None:
@@ -162,6 +164,7 @@ def seed_demo(
         observations=len(scenario.observations), users=DEMO_USERS,
         ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
         push_tokens=tokens, decisions=decisions,
+        wastewater_csv=wastewater_csv(scenario.observations),
     )
 
 

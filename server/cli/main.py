@@ -80,8 +80,8 @@ def demo(
         bool,
         typer.Option(
             "--scheduler/--no-scheduler",
-            help="Run the demo feeds' schedules while serving (off by default: the demo's "
-            "HTTP feed points at a water-authority server that does not exist here).",
+            help="Run the demo feeds' schedules while serving (off by default); the demo then "
+            "starts a stand-in for the invented water authority's server on 127.0.0.1:8765.",
         ),
     ] = False,
 ) -> None:
@@ -123,11 +123,26 @@ def demo(
         say(f"  demo user {name!r} ({role}), password {password!r}")
     for feed, token in summary.push_tokens.items():
         say(f"  push token of feed {feed!r}: {token}")
+    authority = None
+    if serve and scheduler:
+        from demo_seed.standin import PORT, WaterAuthority
+
+        try:
+            authority = WaterAuthority(summary.wastewater_csv).start()
+            say(f"Invented water authority's stand-in serving {authority.url} "
+                "(the wastewater-http feed pulls it every 6 h)")
+        except OSError as exc:
+            say(f"Could not start the water authority's stand-in on 127.0.0.1:{PORT} ({exc}); "
+                "the wastewater-http feed's pulls will fail")
     say(f"Public view: http://127.0.0.1:{port}/")
     say(f"Staff pages: http://127.0.0.1:{port}/staff/")
     say(f"API docs:    http://127.0.0.1:{port}/docs")
     if serve:
-        _run_server(settings, host="127.0.0.1", port=port, workers=1)
+        try:
+            _run_server(settings, host="127.0.0.1", port=port, workers=1)
+        finally:
+            if authority is not None:
+                authority.stop()
 
 
 @app.command("serve")
