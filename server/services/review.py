@@ -302,8 +302,8 @@ def _takeover(scale: Scale, tier: int, active: Ruleset, active_id: int, active_l
 
 
 def current_run(*, session: Session) -> LatestRun | None:
-    """The same as :func:`~server.services.evaluation.latest_assessment_rows` without reading
-    every day of the history.
+    """Each district's current recommendation under the active ruleset's newest run, and the
+    day it took that value, without reading every day of the history.
 
     A district's current recommendation starts on its newest *transition* in force at the run:
     the newest row (greatest day, as of the run's cutoff) whose ``previous_tier`` differs from

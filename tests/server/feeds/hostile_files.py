@@ -21,7 +21,12 @@ from pathlib import Path
 from sqlalchemy import func, select
 
 from server.services.database import Database
-from server.services.evaluation import evaluate_active, store_ruleset
+from server.services.evaluation import (
+    active_ruleset,
+    evaluate_districts,
+    newest_cutoff,
+    store_ruleset,
+)
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
 from server.store.models import Observation, Vintage
@@ -333,9 +338,13 @@ def digest(db: Database, *, up_to_vintage: int | None = None) -> tuple[str, int,
 
 
 def evaluate_now(db: Database) -> bool:
-    """Run the evaluation of the active ruleset on the newest data; True when it went through."""
+    """Run the evaluation of the active ruleset on the newest data; True when it went through
+    (a run already stored for that cutoff is reused: nothing new landed)."""
     with db.transaction() as session:
-        evaluate_active(session=session)
+        row, cutoff = active_ruleset(session=session), newest_cutoff(session=session)
+        if row is None or cutoff is None:
+            return False
+        evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff)
     return True
 
 
