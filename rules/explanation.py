@@ -23,7 +23,9 @@ its number (:meth:`~rules.ruleset.Ruleset.tier_name`), as the pages do:
 
 A threshold of the tier the sentence is about is "the enter threshold 150"; one of another tier
 names that tier: "the High (2) enter threshold 150". Unknown criteria follow "Unknown:", active
-prepare signals "Prepare:".
+prepare signals "Prepare:". A known criterion whose value is a nowcast is named after
+"Nowcast:": "7-day incidence rests on a nowcast of 3 incomplete days (reporting delays pooled
+over North)."
 """
 
 from __future__ import annotations
@@ -125,7 +127,20 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
         "exit": [None if k < th.first[r] else _num(v) for k, v in enumerate(th.exit[:, r])],
         "min_count": _num(th.min_count[r]),
         "conditioned_by": conditioned,
+        "nowcast": bool(series.nowcast is not None and series.nowcast[r, d]),
+        "nowcast_days": None if series.nowcast_days is None else _num(series.nowcast_days[r, d]),
+        "nowcast_basis": None if series.nowcast_basis is None else series.nowcast_basis[r],
     }
+
+
+def _nowcast_text(ev: Evaluation, item: dict[str, Any]) -> str:
+    """'<label> rests on a nowcast of N incomplete days (basis)' for a known nowcast value."""
+    label = ev.ruleset.indicator(item["indicator"]).label
+    days = item.get("nowcast_days")
+    what = (f"a nowcast of {days:g} incomplete day{'s' if days != 1 else ''}"
+            if days else "a nowcast")
+    basis = f" ({item['nowcast_basis']})" if item.get("nowcast_basis") else ""
+    return f"{label} rests on {what}{basis}"
 
 
 def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
@@ -133,7 +148,7 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
     if item["status"] == "stale" and item["age_days"] is not None:
         return f"{label} data {item['age_days']:g} days old"
     if item["status"] == "nowcast excluded":
-        return f"{label} is a nowcast"
+        return f"{label} still incomplete (nowcasts not used)"
     return f"{label} data {item['status']}"
 
 
@@ -401,7 +416,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         held_by.append(f"{to} in force from {effective}")
     else:
         held_by = _held(ev, r, d, decided, items)
-        mentioned_unknown = any("data" in h or "nowcast" in h for h in held_by)
+        mentioned_unknown = any("data" in h or "nowcast" in h or "incomplete" in h for h in held_by)
         action = "held" if held_by else "unchanged"
         if held_by:
             sentence = f"Held at {_tier(ev, decided)}: " + "; ".join(held_by)
@@ -412,6 +427,9 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         sentence += "."
         if unknown and not mentioned_unknown:
             sentence += " Unknown: " + "; ".join(_unknown_text(ev, it) for it in unknown) + "."
+        nowcasts = [it for it in items if it["known"] and it["nowcast"]]
+        if nowcasts:
+            sentence += " Nowcast: " + "; ".join(_nowcast_text(ev, it) for it in nowcasts) + "."
     active = [s for s in signals if s["active"]]
     if active:
         sentence += " Prepare: " + " ".join(
