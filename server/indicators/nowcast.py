@@ -388,6 +388,7 @@ def delay_model(
     groups: ArrayLike | None = None,
     window: int = 60,
     min_reports: float = 400.0,
+    period: int = 1,
 ) -> DelayModel:
     """Chain-ladder delay distribution at each cutoff, pooled where a region has few reports.
 
@@ -406,6 +407,12 @@ def delay_model(
         A region with fewer reports in the window borrows the delays of its group, and a group
         with fewer those of all regions. Common practice (no source): the shares are binomial,
         400 reports give them a standard error of at most 2.5 points.
+    period : int
+        Estimate the delays separately for reference days of each residue modulo ``period``
+        (7: by weekday, as reports thin out at weekends); a day at delay d uses the
+        distribution of the days with its weekday, so ``reported[..., d]`` is that of the
+        stratum d mod ``period`` relative to the cutoff. ``reports`` and the
+        pooling count all strata together.
 
     Returns
     -------
@@ -437,6 +444,7 @@ def delay_model(
     """
     c = as_triangle("triangle", triangle)
     window = check_window("window", window, minimum=2)
+    period = check_window("period", period)
     if not min_reports >= 0:
         raise ValueError(f"min_reports: must be >= 0, got {min_reports!r}")
     n_regions, days, width = c.shape
@@ -451,28 +459,38 @@ def delay_model(
     if n_groups:
         np.add.at(pooled, grp[grp >= 0], filled[grp >= 0])
     stack = np.concatenate([filled, pooled, filled.sum(axis=0, keepdims=True)], axis=0)
-    prefix = np.zeros((stack.shape[0], days + 1, width))
-    np.cumsum(stack, axis=1, out=prefix[:, 1:])
     lo = np.clip(cut - window + 1, 0, days)  # (cutoffs,)
     d = np.arange(width - 1)
     hi = np.clip(cut[:, None] - d[None, :] - 1, -1, days - 1)  # last row of factor d
     hi = np.maximum(hi, lo[:, None] - 1)
-    # (pools, cutoffs, delays - 1)
-    a = prefix[:, hi + 1, d] - prefix[:, lo[:, None], d]
-    b = prefix[:, hi + 1, d + 1] - prefix[:, lo[:, None], d + 1]
-    ratio = np.where(b > 0, np.divide(a, b, out=np.ones_like(a), where=b > 0), 1.0)
-    h = np.clip((b - a + 0.5) / (b + 1.0), 1e-12, 1 - 1e-12)
-    v = np.where(b > 0, h / ((1.0 - h) * (b + 1.0)), 0.0)
-    ones = np.ones(ratio.shape[:2] + (1,))
-    reported = np.cumprod(np.concatenate([ratio, ones], axis=2)[..., ::-1], axis=2)[..., ::-1]
-    zeros = np.zeros(v.shape[:2] + (1,))
-    log_var = np.cumsum(np.concatenate([v, zeros], axis=2)[..., ::-1], axis=2)[..., ::-1]
-    reports = b[..., 0]  # reports at delay 1 of the window's rows (pools, cutoffs)
+    n_pools = stack.shape[0]
+    reported = np.empty((n_pools, cut.size, width))
+    log_var = np.empty((n_pools, cut.size, width))
+    reports = np.zeros((n_pools, cut.size))
+    prefix = np.zeros((n_pools, days + 1, width))
+    residue = np.arange(days) % period
+    for rho in range(period):
+        # rows of one residue class of the reference day; a cutoff's stratum s (delays
+        # congruent to s) holds the rows i with (cutoff - i) % period == s
+        np.cumsum(np.where((residue == rho)[None, :, None], stack, 0.0), axis=1,
+                  out=prefix[:, 1:])
+        a = prefix[:, hi + 1, d] - prefix[:, lo[:, None], d]  # (pools, cutoffs, delays - 1)
+        b = prefix[:, hi + 1, d + 1] - prefix[:, lo[:, None], d + 1]
+        reports += b[..., 0]
+        q_s, lv_s = _chain_ladder(a, b)
+        for stratum in range(period):
+            at = (cut - stratum) % period == rho
+            cols = np.arange(stratum, width, period)
+            reported[:, at[:, None] & np.isin(np.arange(width), cols)[None, :]] = q_s[
+                :, at][:, :, cols].reshape(n_pools, -1)
+            log_var[:, at[:, None] & np.isin(np.arange(width), cols)[None, :]] = lv_s[
+                :, at][:, :, cols].reshape(n_pools, -1)
     own = np.arange(n_regions)
     group_row = np.where(grp >= 0, n_regions + grp, stack.shape[0] - 1)
     all_row = stack.shape[0] - 1
-    use_own = reports[own] >= min_reports
-    use_group = ~use_own & (grp[:, None] >= 0) & (reports[group_row] >= min_reports)
+    per_stratum = reports / period
+    use_own = per_stratum[own] >= min_reports
+    use_group = ~use_own & (grp[:, None] >= 0) & (per_stratum[group_row] >= min_reports)
     pool = np.where(use_own, POOL_OWN, np.where(use_group, POOL_GROUP, POOL_ALL)).astype(np.int8)
     row = np.where(use_own, own[:, None], np.where(use_group, group_row[:, None], all_row))
     col = np.arange(cut.size)[None, :]
@@ -480,6 +498,19 @@ def delay_model(
         reported=reported[row, col], log_var=log_var[row, col], pool=pool,
         reports=reports[row, col],
     )
+
+
+def _chain_ladder(a: FloatArray, b: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Shares known by each delay and Var(log share) from the factor sums ``a``/``b``
+    (``(..., delays - 1)``; see :func:`delay_model`)."""
+    ratio = np.where(b > 0, np.divide(a, b, out=np.ones_like(a), where=b > 0), 1.0)
+    h = np.clip((b - a + 0.5) / (b + 1.0), 1e-12, 1 - 1e-12)
+    v = np.where(b > 0, h / ((1.0 - h) * (b + 1.0)), 0.0)
+    ones = np.ones(ratio.shape[:-1] + (1,))
+    reported = np.cumprod(np.concatenate([ratio, ones], axis=-1)[..., ::-1], axis=-1)[..., ::-1]
+    zeros = np.zeros(v.shape[:-1] + (1,))
+    log_var = np.cumsum(np.concatenate([v, zeros], axis=-1)[..., ::-1], axis=-1)[..., ::-1]
+    return reported, log_var
 
 
 # -- nowcast of trailing-window sums ---------------------------------------------------------

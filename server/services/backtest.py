@@ -53,6 +53,7 @@ from server.services.district_indicators import (
     DISTRICT_MEASURES,
     NOWCAST_DELAYS,
     NOWCAST_MEASURES,
+    NOWCAST_PERIOD,
     NOWCAST_WINDOW,
     PLANT_MEASURES,
     DistrictData,
@@ -273,7 +274,8 @@ def _rolling_model(
     """Delay models at ``cutoffs`` (regions, cutoffs, delays), from the rows they need only."""
     lo = max(int(cutoffs.min()) - NOWCAST_WINDOW, 0)
     hi = int(cutoffs.max()) + 1
-    return delay_model(tri[:, lo:hi], cutoffs=cutoffs - lo, groups=groups, window=NOWCAST_WINDOW)
+    return delay_model(tri[:, lo:hi], cutoffs=cutoffs - lo, groups=groups, window=NOWCAST_WINDOW,
+                       period=NOWCAST_PERIOD)
 
 
 def _stacked_input(

@@ -72,6 +72,8 @@ NOWCAST_MEASURES = DISTRICT_MEASURES
 #: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
 NOWCAST_DELAYS = 60
 NOWCAST_WINDOW = 60
+#: Delays estimated per weekday of the reference day (reports thin out at weekends).
+NOWCAST_PERIOD = 7
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -208,7 +210,8 @@ def nowcast_inputs(
             rows.region[pick], rows.ref_day[pick], receipt[pick], rows.value[pick],
             regions=len(regions), days=NOWCAST_WINDOW, delays=NOWCAST_DELAYS, last_receipt=cutoff,
         )
-        model = delay_model(tri, cutoffs=[cutoff], groups=group_index, window=NOWCAST_WINDOW)
+        model = delay_model(tri, cutoffs=[cutoff], groups=group_index, window=NOWCAST_WINDOW,
+                            period=NOWCAST_PERIOD)
         out[measure] = NowcastInput(model=model, known_delay=known_delay,
                                     basis=pool_basis(model.pool[:, 0], basis_names))
     return out
