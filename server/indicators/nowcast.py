@@ -411,8 +411,8 @@ def delay_model(
         Estimate the delays separately for reference days of each residue modulo ``period``
         (7: by weekday, as reports thin out at weekends); a day at delay d uses the
         distribution of the days with its weekday, so ``reported[..., d]`` is that of the
-        stratum d mod ``period`` relative to the cutoff. ``reports`` and the
-        pooling count all strata together.
+        stratum d mod ``period`` relative to the cutoff. Pooling compares the
+        reports per stratum with ``min_reports``.
 
     Returns
     -------
@@ -476,7 +476,7 @@ def delay_model(
                   out=prefix[:, 1:])
         a = prefix[:, hi + 1, d] - prefix[:, lo[:, None], d]  # (pools, cutoffs, delays - 1)
         b = prefix[:, hi + 1, d + 1] - prefix[:, lo[:, None], d + 1]
-        reports += b[..., 0]
+        reports += b.max(axis=2)
         q_s, lv_s = _chain_ladder(a, b)
         for stratum in range(period):
             at = (cut - stratum) % period == rho
