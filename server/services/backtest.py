@@ -190,7 +190,7 @@ class _Rows:
 
 def _read_rows(
     session: Session, measures: list[str], codes: dict[str, list[str]], first: date,
-    time_zone: tzinfo,
+    time_zone: tzinfo, since: date | None = None,
 ) -> _Rows:
     row_of = {}
     for group, group_codes in codes.items():
@@ -206,6 +206,8 @@ def _read_rows(
         .where(Measure.name.in_(measures))
         .order_by(Vintage.received_at, Vintage.id)
     )
+    if since is not None:
+        query = query.where(Observation.ref_date >= since)
     m_idx, r_idx, c_idx, vals, known = [], [], [], [], []
     for name, code, ref, value, received in session.execute(query):
         key = (group_of[name], code)
@@ -421,7 +423,7 @@ class NowcastScore:
 def nowcast_accuracy_report(
     *, session: Session, measures: tuple[str, ...] = ("cases", "hosp_admissions"),
     regions: tuple[str, ...] | None = None, later_days: int = LATER_DAYS,
-    time_zone: tzinfo = UTC,
+    time_zone: tzinfo = UTC, last_mornings: int | None = None,
 ) -> list[NowcastScore]:
     """Score the nowcast each past morning made of the last 7 days against the count known
     ``later_days`` days later, per measure and district (``regions``; default all) and for all
@@ -431,7 +433,9 @@ def nowcast_accuracy_report(
     day ``t``. Its nowcast is the 7-day count of days ``t - 6 .. t`` from the delay model of
     that morning (:func:`server.indicators.nowcast.nowcast_window`); the later count is the
     same days' reports received by day ``t + later_days + 1``. Mornings whose window is complete
-    (nothing to nowcast) or too recent to have a later count are not scored.
+    (nothing to nowcast) or too recent to have a later count are not scored; with
+    ``last_mornings`` only that many of the newest scorable mornings are (and only the rows
+    they need are read).
     """
     first, last = data_span(session=session)
     base = load_district_data(session=session, start=first, end=first, nowcast=False)
@@ -442,8 +446,13 @@ def nowcast_accuracy_report(
                      for c in base.regions], dtype=np.int64)
     names = [m for m in measures if m in NOWCAST_MEASURES]
     codes = {"district": list(base.regions), "area": [], "plant": []}
-    rows = _read_rows(session, names, codes, first, time_zone)
     mornings = np.arange(6, n_days - later_days, dtype=np.int64)
+    if last_mornings is not None:
+        mornings = mornings[-last_mornings:] if last_mornings > 0 else mornings[:0]
+    since = None
+    if last_mornings is not None and mornings.size:
+        since = first + timedelta(days=max(int(mornings[0]) - NOWCAST_WINDOW - 7, 0))
+    rows = _read_rows(session, names, codes, first, time_zone, since=since)
     wanted = [base.regions.index(c) for c in regions] if regions is not None else list(
         range(len(base.regions)))
     out: list[NowcastScore] = []

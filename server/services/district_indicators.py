@@ -487,3 +487,70 @@ def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, Indic
     if unknown:
         raise UnknownIndicatorError(unknown)
     return {name: BUILDERS[name](data, ruleset) for name in wanted}
+
+
+@dataclass(frozen=True, kw_only=True)
+class NowcastSeries:
+    """One district's daily counts as reported beside their nowcast, for the district page.
+
+    ``nowcast``/``lower``/``upper`` (95 % predictive interval of the final count) are None on
+    complete days, except the last complete one, where they equal the report so the dashed
+    line joins the reported one.
+    """
+
+    measure: str
+    dates: tuple[date, ...]
+    reported: tuple[float | None, ...]
+    nowcast: tuple[float | None, ...]
+    lower: tuple[float | None, ...]
+    upper: tuple[float | None, ...]
+    basis: str
+
+
+def district_nowcast(
+    *, session: Session, code: str, end: date, as_of: datetime | None = None,
+    measure: str = "cases", days: int = 42, time_zone: tzinfo = UTC,
+) -> NowcastSeries | None:
+    """The last ``days`` days to ``end`` of ``measure`` in district ``code``, reported and
+    nowcast as known at ``as_of`` (None: nothing stored)."""
+    parent = aliased(Region)
+    rows = session.execute(
+        select(Region.code, parent.code, parent.name)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district").order_by(Region.code)
+    ).all()
+    codes = tuple(r[0] for r in rows)
+    if code not in codes:
+        return None
+    start = end - timedelta(days=days - 1)
+    dense = read_dense(session=session, measures=(measure,), start=start, end=end,
+                       regions=codes, as_of=as_of)
+    inputs = nowcast_inputs(
+        session=session, regions=codes, groups=[r[1] for r in rows], dates=dense.dates,
+        as_of=as_of, group_names={r[1]: r[2] for r in rows if r[1] is not None},
+        time_zone=time_zone,
+    )
+    if measure not in inputs:
+        return None
+    inp = inputs[measure]
+    i = codes.index(code)
+    nc = nowcast_window(dense[measure], inp.known_delay, inp.model, window=1)
+    open_ = nc.incomplete[i] & np.isfinite(nc.estimate[i])
+    show = open_.copy()
+    before = np.flatnonzero(~open_ & np.isfinite(dense[measure][i]))
+    if open_.any() and before.size:
+        joined = before[before < np.flatnonzero(open_)[0]]
+        if joined.size:
+            show[joined[-1]] = True
+
+    def cells(values: NDArray[np.float64]) -> tuple[float | None, ...]:
+        return tuple(float(v) if s and np.isfinite(v) else None
+                     for v, s in zip(values, show, strict=True))
+
+    reported = dense[measure][i]
+    return NowcastSeries(
+        measure=measure, dates=tuple(d.astype(date) for d in dense.dates),
+        reported=tuple(float(v) if np.isfinite(v) else None for v in reported),
+        nowcast=cells(nc.estimate[i]), lower=cells(nc.lower[i]), upper=cells(nc.upper[i]),
+        basis=inp.basis[i],
+    )

@@ -321,9 +321,17 @@ def read_vintage_rows(
     missing = [r for r in regions if r not in region_ids]
     if missing:
         raise UnknownCodeError("region", missing)
+    # vintages are few: their times are read once and mapped, not converted per row
+    vintage_query = select(Vintage.id, Vintage.received_at)
+    if as_of is not None:
+        vintage_query = vintage_query.where(Vintage.received_at <= as_of)
+    stamp_of = {
+        v: np.datetime64(t.astimezone(UTC).replace(tzinfo=None) if t.tzinfo else t, "us")
+        for v, t in session.execute(vintage_query)
+    }
     query = (
         select(Observation.measure_id, Observation.region_id, Observation.ref_date,
-               Vintage.received_at, Observation.value)
+               Observation.vintage_id, Observation.value)
         .join(Vintage, Vintage.id == Observation.vintage_id)
         .where(Observation.measure_id.in_(list(measure_ids.values())),
                Observation.region_id.in_(list(region_ids.values())),
@@ -338,11 +346,14 @@ def read_vintage_rows(
         return VintageRows(measures=tuple(measures), regions=tuple(regions), start=start,
                            measure=e, region=e, ref_day=e,
                            received_at=np.zeros(0, dtype="datetime64[us]"), value=np.zeros(0))
-    mid, rid, ref, received, value = zip(*rows, strict=True)
+    mid, rid, ref, vid, value = zip(*rows, strict=True)
     m_index = {measure_ids[m]: k for k, m in enumerate(measures)}
     r_index = {region_ids[r]: k for k, r in enumerate(regions)}
-    stamps = np.array([t.astimezone(UTC).replace(tzinfo=None) if t.tzinfo else t
-                       for t in received], dtype="datetime64[us]")
+    vintages = np.asarray(vid, dtype=np.int64)
+    ids = np.fromiter(stamp_of, dtype=np.int64, count=len(stamp_of))
+    times = np.array(list(stamp_of.values()), dtype="datetime64[us]")
+    order = np.argsort(ids)
+    stamps = times[order][np.searchsorted(ids[order], vintages)]
     return VintageRows(
         measures=tuple(measures), regions=tuple(regions), start=start,
         measure=np.fromiter((m_index[m] for m in mid), dtype=np.int64, count=len(rows)),
