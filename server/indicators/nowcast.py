@@ -328,9 +328,9 @@ def triangle_from_rows(
     # the newest row of each cell: the last one in arrival order
     _, first_of_reversed = np.unique(flat[::-1], return_index=True)
     take = flat.size - 1 - first_of_reversed
-    out = np.full(regions * days * delays, np.nan)
-    out[flat[take]] = v[take]
-    out = out.reshape(regions, days, delays)
+    cells = np.full(regions * days * delays, np.nan)
+    cells[flat[take]] = v[take]
+    out: FloatArray = cells.reshape(regions, days, delays)
     idx = np.where(np.isfinite(out), np.arange(delays), -1)
     np.maximum.accumulate(idx, axis=2, out=idx)
     out = np.where(idx >= 0, np.take_along_axis(out, np.maximum(idx, 0), axis=2), np.nan)

@@ -6,7 +6,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-
 from scipy import stats
 
 from server.indicators.nowcast import (

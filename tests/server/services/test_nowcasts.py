@@ -12,7 +12,7 @@ from numpy.testing import assert_allclose
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from rules import load_ruleset, parse_ruleset
+from rules import evaluate, load_ruleset, parse_ruleset
 from rules.levels import REASON_NOWCAST
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import Payload
@@ -112,11 +112,11 @@ def test_use_nowcast_false_makes_incomplete_days_unknown(session: Session) -> No
     series = district_indicators(data, rs)["incidence_7d"]
     assert series.nowcast is not None
     assert series.nowcast[0].tolist()[-3:] == [False, True, True]
-    from rules import evaluate
     ev = evaluate(rs, {"incidence_7d": series}, regions=data.regions, dates=data.dates,
                   region_levels=data.levels)
     assert ev.reason[0, 0, -2:].tolist() == [REASON_NOWCAST] * 2
-    assert "7-day incidence still incomplete (nowcasts not used)" in ev.explain(0, DAYS - 1).sentence
+    sentence = ev.explain(0, DAYS - 1).sentence
+    assert "7-day incidence still incomplete (nowcasts not used)" in sentence
 
 
 @pytest.mark.slow
