@@ -49,6 +49,7 @@ from server.indicators.nowcast import (
     triangle_from_rows,
     triangle_from_vintages,
 )
+from server.services.district_indicators import NOWCAST_PERIOD
 
 RT_TARGET_S = 1.0
 FULL_TARGET_S = 15.0
@@ -309,7 +310,8 @@ def nowcast_section(bench: Callable[..., float], cases: np.ndarray, regions: int
     assert isinstance(tri, np.ndarray)
 
     def delays() -> None:
-        holder["model"] = delay_model(tri, cutoffs=[ref], groups=groups, window=60, period=7)
+        holder["model"] = delay_model(tri, cutoffs=[ref], groups=groups, window=60,
+                                      period=NOWCAST_PERIOD)
 
     bench("nowcast delays", delays, lambda: [estimate_delay(tri[r]) for r in range(sample)])
     model = holder["model"]

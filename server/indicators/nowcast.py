@@ -631,24 +631,33 @@ def nowcast_window(
     nb_var = np.where(usable, base * (1.0 - qs) / qs**2, 0.0)
     g = np.where(usable, base / qs, 0.0)
     lv = np.where(usable, lv, 0.0)
+    known = _trailing(x, window)
+    estimate = _trailing(daily, window)
+    count = _trailing(incomplete.astype(np.float64), window)
+    lower, upper = known.copy(), known.copy()
+    # only windows from the first incomplete day on need the predictive part: work on the
+    # columns they cover (the daily evaluation's incomplete days are its last few)
+    any_open = np.flatnonzero(usable.any(axis=0))
+    j0 = int(any_open[0]) if any_open.size else x.shape[1]
+    s0 = max(j0 - window + 1, 0)
+    g, lv, mean, nb_var = g[:, s0:], lv[:, s0:], mean[:, s0:], nb_var[:, s0:]
     # delay variance of the window sums: sum_m lv_{t-m} g_{t-m} (g_{t-m} + 2 sum_{b<m} g_{t-b})
-    n_days = x.shape[1]
-    delay_var = np.zeros_like(x)
-    inner = np.zeros_like(x)
+    n_days = g.shape[1]
+    delay_var = np.zeros_like(g)
+    inner = np.zeros_like(g)
     for m in range(min(window, n_days)):
-        gm = np.zeros_like(x)
+        gm = np.zeros_like(g)
         gm[:, m:] = g[:, : n_days - m]
-        lm = np.zeros_like(x)
+        lm = np.zeros_like(g)
         lm[:, m:] = lv[:, : n_days - m]
         delay_var += lm * gm * (gm + 2.0 * inner)
         inner += gm
-    known = _trailing(x, window)
-    estimate = _trailing(daily, window)
-    mu = _trailing(mean, window)
-    var = _trailing(nb_var, window) + np.where(np.isfinite(known), delay_var, np.nan)
-    count = _trailing(incomplete.astype(np.float64), window)
-    lower, upper = known.copy(), known.copy()
-    open_ = np.isfinite(estimate) & (mu > 0)
+    mu = np.zeros_like(x)
+    var = np.zeros_like(x)
+    mu[:, s0:] = _trailing(mean, window)
+    var[:, s0:] = _trailing(nb_var, window) + delay_var
+    open_ = np.isfinite(estimate) & np.isfinite(mu) & (mu > 0)
+    open_[:, :j0] = False
     if open_.any():
         m_o, v_o = mu[open_], np.maximum(var[open_], mu[open_] * (1 + 1e-9))
         size, p = m_o**2 / (v_o - m_o), m_o / v_o

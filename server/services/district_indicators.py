@@ -72,8 +72,10 @@ NOWCAST_MEASURES = DISTRICT_MEASURES
 #: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
 NOWCAST_DELAYS = 60
 NOWCAST_WINDOW = 60
-#: Delays estimated per weekday of the reference day (reports thin out at weekends).
-NOWCAST_PERIOD = 7
+#: Strata of the delay estimate by reference day modulo this (7: by weekday). Measured on the
+#: demo (cases, every morning against the count known 28 days later): by weekday, median error
+#: 8.8 % but the 95 % interval covered 99 % (too wide); pooled over weekdays, 10.7 % and 96 %.
+NOWCAST_PERIOD = 1
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
