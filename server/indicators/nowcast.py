@@ -618,6 +618,14 @@ def nowcast_window(
         raise ValueError(f"model: {reported.shape[0]} regions, values have {x.shape[0]}")
     width = reported.shape[1]
     delay = np.broadcast_to(np.asarray(known_delay, dtype=np.int64), x.shape)
+    # days known at the last delay are complete: only the windows from the first day known
+    # earlier need the nowcast (in the daily evaluation, the last ``delays`` days)
+    young = np.flatnonzero((delay < width - 1).any(axis=0))
+    first = max(int(young[0]) - window + 1, 0) if young.size else x.shape[1]
+    if first > 0:
+        return _joined(x, first, nowcast_window(
+            x[:, first:], delay[:, first:], model, window=window, level=level,
+            threshold=threshold, prior_shape=prior_shape), window)
     index = np.clip(delay, 0, width - 1)
     q = np.take_along_axis(reported, index, axis=1)
     lv = np.take_along_axis(log_var, index, axis=1)
@@ -674,6 +682,30 @@ def nowcast_window(
         incomplete=incomplete, nowcast=np.isfinite(count) & (count > 0),
         days=np.where(np.isfinite(count), count, 0.0), level=level,
     )
+
+
+def _joined(x: FloatArray, first: int, tail: WindowNowcast, window: int) -> WindowNowcast:
+    """The nowcast of all days from the nowcast of the days from ``first`` on (the earlier
+    ones complete: their windows are plain trailing sums)."""
+    daily = x.copy()
+    daily[:, first:] = tail.daily
+    known = _trailing(x, window)
+    estimate = _trailing(daily, window)
+    lower, upper = known.copy(), known.copy()
+    valid = first + window - 1  # the tail's own first window - 1 columns are cut short
+    lower[:, valid:] = tail.lower[:, window - 1:]
+    upper[:, valid:] = tail.upper[:, window - 1:]
+    incomplete = np.zeros(x.shape, dtype=bool)
+    incomplete[:, first:] = tail.incomplete
+    flag = np.zeros(x.shape, dtype=bool)
+    flag[:, valid:] = tail.nowcast[:, window - 1:]
+    days = np.zeros(x.shape)
+    days[:, valid:] = tail.days[:, window - 1:]
+    bad = ~np.isfinite(estimate)
+    lower[bad] = np.nan
+    upper[bad] = np.nan
+    return WindowNowcast(daily=daily, estimate=estimate, lower=lower, upper=upper, known=known,
+                         incomplete=incomplete, nowcast=flag, days=days, level=tail.level)
 
 
 # -- accuracy, measured as known -------------------------------------------------------------

@@ -67,8 +67,9 @@ AREA_MEASURES = ("icu_occupied", "icu_staffed")
 PLANT_MEASURES = ("ww_concentration", "ww_flow")
 # Districts below this population are matched by overrides as level "small_district".
 SMALL_DISTRICT_POPULATION = 30_000
-#: Count measures nowcast from their reporting triangles.
-NOWCAST_MEASURES = DISTRICT_MEASURES
+#: Count measures nowcast from their reporting triangles: those the nowcast indicators use
+#: (positives and GP consultations would add triangle rows that no indicator reads).
+NOWCAST_MEASURES = ("cases", "tests", "hosp_admissions")
 #: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
 NOWCAST_DELAYS = 60
 NOWCAST_WINDOW = 60

@@ -235,3 +235,23 @@ def test_nowcast_accuracy_by_hand() -> None:
     assert_allclose(acc.unadjusted_error, [np.median([6 / 11, 0.5, 0.5])])
     assert_allclose(acc.coverage, [2 / 3])
     assert acc.mornings.tolist() == [3]
+
+
+def test_nowcast_window_on_a_long_series_equals_the_recent_days_alone() -> None:
+    # old days are complete (known at the last delay): the long series is plain trailing sums
+    # there, and its newest windows equal the nowcast of the last days alone
+    rng = np.random.default_rng(3)
+    x = rng.poisson(30, (2, 40)).astype(float)
+    delay = 40 - np.arange(40)  # the newest day known at delay 1
+    model = _one([0.3, 0.6, 0.8, 0.9, 0.97, 1.0], [0.05, 0.03, 0.02, 0.01, 0.005, 0.0])
+    model = DelayModel(np.repeat(model.reported, 2, 0), np.repeat(model.log_var, 2, 0),
+                       np.zeros((2, 1), dtype=np.int8), np.ones((2, 1)))
+    full = nowcast_window(x, delay, model, window=7)
+    recent = nowcast_window(x[:, -12:], delay[-12:], model, window=7)
+    assert_allclose(full.lower[:, -6:], recent.lower[:, -6:])
+    assert_allclose(full.upper[:, -6:], recent.upper[:, -6:])
+    assert_allclose(full.estimate[:, -6:], recent.estimate[:, -6:])
+    plain = np.convolve(x[0], np.ones(7), mode="valid")[:20]
+    assert_allclose(full.estimate[0, 6:26], plain)
+    assert_allclose(full.lower[0, 6:26], plain)
+    assert full.nowcast[:, -4:].all() and not full.nowcast[:, :30].any()
