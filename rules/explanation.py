@@ -105,6 +105,7 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
             th, conditioned = lv.cond_thresholds[j], ev.ruleset.criteria[src].id
             enter_level = int(lv.cond_enter_level[j, d, r])
     age = None if series.age_days is None else _num(series.age_days[r, d])
+    nowcast = bool(series.nowcast is not None and series.nowcast[r, d])
     return {
         "id": crit.id,
         "indicator": crit.indicator,
@@ -127,9 +128,13 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
         "exit": [None if k < th.first[r] else _num(v) for k, v in enumerate(th.exit[:, r])],
         "min_count": _num(th.min_count[r]),
         "conditioned_by": conditioned,
-        "nowcast": bool(series.nowcast is not None and series.nowcast[r, d]),
-        "nowcast_days": None if series.nowcast_days is None else _num(series.nowcast_days[r, d]),
-        "nowcast_basis": None if series.nowcast_basis is None else series.nowcast_basis[r],
+        # None unless this value is a nowcast, so that a record does not change with the flags
+        # of other regions or days
+        "nowcast": nowcast,
+        "nowcast_days": _num(series.nowcast_days[r, d])
+        if nowcast and series.nowcast_days is not None else None,
+        "nowcast_basis": series.nowcast_basis[r]
+        if nowcast and series.nowcast_basis is not None else None,
     }
 
 
