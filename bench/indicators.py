@@ -25,6 +25,7 @@ from server.indicators import (
     GrowthRate,
     capacity_crossing,
     ears,
+    estimate_delay,
     farrington_flexible,
     fit_growth_curve,
     gamma_serial_interval,
@@ -41,6 +42,14 @@ from server.indicators import (
 )
 from server.indicators import level as ww_level
 from server.indicators.growth import design_matrix
+from server.indicators.nowcast import (
+    DelayModel,
+    delay_model,
+    nowcast_window,
+    triangle_from_rows,
+    triangle_from_vintages,
+)
+from server.services.district_indicators import NOWCAST_PERIOD
 
 RT_TARGET_S = 1.0
 FULL_TARGET_S = 15.0
@@ -241,6 +250,8 @@ def main() -> None:
     parser.add_argument("--sample", type=int, default=5, help="regions in each baseline loop")
     parser.add_argument("--only-changepoints", action="store_true",
                         help="run only the change-point section")
+    parser.add_argument("--store", action="store_true",
+                        help="also time the nowcast's store read in a temporary SQLite")
     args = parser.parse_args()
     if args.only_changepoints:
         bench_changepoints(args.regions, args.days, min(args.sample, 2))
@@ -310,13 +321,7 @@ def main() -> None:
 
     bench("icu projection", run_icu,
           lambda: baseline_icu(a0[:sample], a0[:sample] * 9, np.full(sample, 0.01), los.survival))
-    delays = 15
-    ref = min(60, days)
-    rng = np.random.default_rng(5)
-    share = np.cumsum(rng.dirichlet(np.ones(delays), (regions, ref)), axis=2)
-    tri = np.round(cases[:, -ref:, None] * share)
-    tri[:, np.arange(ref)[:, None] + np.arange(delays)[None, :] > ref - 1] = np.nan
-    bench("nowcast (60 days)", lambda: nowcast(tri), None)
+    nowcast_section(bench, cases, regions, days, sample)
     daily_total = sum(t for _, t, _, _ in rows)
     daily_cpu = sum(c for _, _, c, _ in rows)
 
@@ -336,7 +341,132 @@ def main() -> None:
         if (regions, days) != (3000, 1096):
             note += " [targets are for 3000 x 1096]"
         print(f"{verdict}: {name} {value:.3f} s < {target:g} s{note}")
+    if args.store:
+        store_read(regions)
+
     bench_changepoints(regions, days, min(args.sample, 2))
+
+# -- nowcasts from vintages (triangle, pooled weekday delays, 7-day nowcast) ---------------------
+
+NOWCAST_PMF = np.array([0.22, 0.38, 0.18, 0.09, 0.05, 0.03, 0.02, 0.012, 0.008, 0.005, 0.005])
+
+
+def vintage_rows(cases: np.ndarray, ref: int, seed: int = 5) -> tuple[np.ndarray, ...]:
+    """Invented vintage rows (region, ref_day, receipt_day, value) of the last ``ref`` days, in
+    arrival order: each day's count split over delays 0..10, one row per delay with news."""
+    rng = np.random.default_rng(seed)
+    final = cases[:, -ref:].astype(np.int64)
+    by_delay = rng.multinomial(final, NOWCAST_PMF / NOWCAST_PMF.sum()).astype(float)
+    cum = np.cumsum(by_delay, axis=2)
+    d = np.arange(NOWCAST_PMF.size)
+    emit = (d == 0) | (by_delay > 0)
+    emit &= (np.arange(ref)[:, None] + d[None, :] <= ref)[None]
+    r, i, k = np.nonzero(emit)
+    order = np.argsort(i + k, kind="stable")
+    return r[order], i[order], (i + k)[order], cum[r, i, k][order]
+
+
+def nowcast_section(bench: Callable[..., float], cases: np.ndarray, regions: int, days: int,
+                    sample: int) -> None:
+    """Nowcasts built from vintage rows as the daily evaluation builds them: the triangle of the
+    last 60 days (60 delays), pooled weekday chain-ladder delays, the 7-day nowcast over all
+    days. Baselines: pandas ``triangle_from_vintages``, a per-region loop of the plain chain
+    ladder ``estimate_delay``, and the earlier per-day ``nowcast`` (no delay uncertainty)."""
+    ref, width = min(60, days), 60
+    region, ref_day, receipt, value = vintage_rows(cases, ref)
+    groups = np.arange(regions) // 20  # invented parent areas of 20 districts
+    holder: dict[str, object] = {}
+
+    def triangle() -> None:
+        holder["tri"] = triangle_from_rows(region, ref_day, receipt, value, regions=regions,
+                                           days=ref, delays=width, last_receipt=ref)
+
+    def base_triangle() -> None:
+        pick = region < sample
+        frame = pd.DataFrame({"region": region[pick], "ref_date": ref_day[pick],
+                              "known_on": receipt[pick], "value": value[pick]})
+        origin = pd.Timestamp("2031-01-01")
+        frame["ref_date"] = origin + pd.to_timedelta(frame["ref_date"], unit="D")
+        frame["known_on"] = origin + pd.to_timedelta(frame["known_on"], unit="D")
+        triangle_from_vintages(frame, delays=width, as_of=origin + pd.Timedelta(days=ref))
+
+    bench("nowcast triangle", triangle, base_triangle)
+    tri = holder["tri"]
+    assert isinstance(tri, np.ndarray)
+
+    def delays() -> None:
+        holder["model"] = delay_model(tri, cutoffs=[ref], groups=groups, window=60,
+                                      period=NOWCAST_PERIOD)
+
+    bench("nowcast delays", delays, lambda: [estimate_delay(tri[r]) for r in range(sample)])
+    model = holder["model"]
+    assert isinstance(model, DelayModel)
+    known = cases.copy()
+    known[:, -ref:] = tri[:, np.arange(ref), np.clip(ref - np.arange(ref), 0, width - 1)]
+    known_delay = ref - (np.arange(days) - (days - ref))
+    bench("nowcast 7-day", lambda: nowcast_window(known, known_delay, model, window=7),
+          lambda: nowcast(tri[:sample]))
+
+
+def store_read(regions: int, ref: int = 60) -> None:
+    """Store-read cost of the triangle: one read of every vintage row of the last ``ref`` days
+    (``read_vintage_rows``), against ``read_dense`` of the same days, in a temporary SQLite."""
+    import tempfile
+    from datetime import UTC, date, datetime, timedelta
+    from pathlib import Path
+
+    from server.services.database import Database
+    from server.store import (
+        MeasureRecord,
+        RegionRecord,
+        append_vintage,
+        make_sessionmaker,
+        read_dense,
+        scratch_engine,
+        upgrade,
+        upsert_measures,
+        upsert_regions,
+    )
+    from server.store.reads import read_vintage_rows
+
+    data = synthetic(regions, ref)
+    region, ref_day, receipt, value = vintage_rows(data["cases"], ref)
+    codes = np.array([f"B{i:05d}" for i in range(regions)])
+    first = date(2031, 1, 1)
+    with tempfile.TemporaryDirectory() as tmp, scratch_engine(
+        f"sqlite:///{Path(tmp) / 'bench.db'}", prefix="tw_bench"
+    ) as engine:
+        upgrade(engine)
+        db = Database(engine=engine, sessions=make_sessionmaker(engine))
+        with db.transaction() as s:
+            upsert_regions(session=s, records=[
+                RegionRecord(code=c, name=c, level="district", parent=None, population=10_000)
+                for c in codes])
+            upsert_measures(session=s, records=[
+                MeasureRecord(name="cases", unit="persons", kind="count", aggregation="sum")])
+        t0 = time.perf_counter()
+        for day in range(ref + 1):
+            pick = receipt == day
+            frame = pd.DataFrame({
+                "region": codes[region[pick]], "measure": "cases",
+                "ref_date": [first + timedelta(days=int(i)) for i in ref_day[pick]],
+                "value": value[pick]})
+            at = datetime(2031, 1, 1, 6, tzinfo=UTC) + timedelta(days=day)
+            with db.transaction() as s:
+                append_vintage(session=s, feed="bench", received_at=at, rows=frame,
+                               checksum=f"bench-{day}")
+        print(f"store: {region.size:,} vintage rows of {regions} regions x {ref} days "
+              f"written in {time.perf_counter() - t0:.1f} s")
+        end = first + timedelta(days=ref - 1)
+        with db.sessions() as s:
+            t_rows, c_rows = timed_cpu(lambda: read_vintage_rows(
+                session=s, measures=["cases"], regions=list(codes), start=first, end=end))
+            t_dense, c_dense = timed_cpu(lambda: read_dense(
+                session=s, measures=["cases"], start=first, end=end, regions=list(codes)))
+        print(f"{'store read (triangle)':<24} {t_rows:8.3f} s  ({c_rows:7.3f} s)   read_dense "
+              f"of the same days {t_dense:.3f} s ({c_dense:.3f} s cpu)  ratio "
+              f"{t_rows / t_dense:.1f}x (cpu {c_rows / c_dense:.1f}x)")
+
 
 if __name__ == "__main__":
     main()

@@ -23,7 +23,9 @@ its number (:meth:`~rules.ruleset.Ruleset.tier_name`), as the pages do:
 
 A threshold of the tier the sentence is about is "the enter threshold 150"; one of another tier
 names that tier: "the High (2) enter threshold 150". Unknown criteria follow "Unknown:", active
-prepare signals "Prepare:".
+prepare signals "Prepare:". A known criterion whose value is a nowcast is named after
+"Nowcast:": "7-day incidence rests on a nowcast of 3 incomplete days (reporting delays pooled
+over North)."
 """
 
 from __future__ import annotations
@@ -93,6 +95,7 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
             th, conditioned = lv.cond_thresholds[j], ev.ruleset.criteria[src].id
             enter_level = int(lv.cond_enter_level[j, d, r])
     age = None if series.age_days is None else _num(series.age_days[r, d])
+    nowcast = bool(series.nowcast is not None and series.nowcast[r, d])
     return {
         "id": crit.id,
         "indicator": crit.indicator,
@@ -115,7 +118,24 @@ def _criterion_item(ev: Evaluation, c: int, r: int, d: int) -> dict[str, Any]:
         "exit": [None if k < th.first[r] else _num(v) for k, v in enumerate(th.exit[:, r])],
         "min_count": _num(th.min_count[r]),
         "conditioned_by": conditioned,
+        # None unless this value is a nowcast, so that a record does not change with the flags
+        # of other regions or days
+        "nowcast": nowcast,
+        "nowcast_days": _num(series.nowcast_days[r, d])
+        if nowcast and series.nowcast_days is not None else None,
+        "nowcast_basis": series.nowcast_basis[r]
+        if nowcast and series.nowcast_basis is not None else None,
     }
+
+
+def _nowcast_text(ev: Evaluation, item: dict[str, Any]) -> str:
+    """'<label> rests on a nowcast of N incomplete days (basis)' for a known nowcast value."""
+    label = ev.ruleset.indicator(item["indicator"]).label
+    days = item.get("nowcast_days")
+    what = (f"a nowcast of {days:g} incomplete day{'s' if days != 1 else ''}"
+            if days else "a nowcast")
+    basis = f" ({item['nowcast_basis']})" if item.get("nowcast_basis") else ""
+    return f"{label} rests on {what}{basis}"
 
 
 def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
@@ -123,7 +143,7 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
     if item["status"] == "stale" and item["age_days"] is not None:
         return f"{label} data {item['age_days']:g} days old"
     if item["status"] == "nowcast excluded":
-        return f"{label} is a nowcast"
+        return f"{label} still incomplete (nowcasts not used)"
     if item["status"] == "invalid":
         return f"{label} data invalid (a stored value cannot be used)"
     return f"{label} data {item['status']}"
@@ -393,7 +413,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         held_by.append(f"{to} in force from {effective}")
     else:
         held_by = _held(ev, r, d, decided, items)
-        mentioned_unknown = any("data" in h or "nowcast" in h for h in held_by)
+        mentioned_unknown = any("data" in h or "nowcast" in h or "incomplete" in h for h in held_by)
         action = "held" if held_by else "unchanged"
         if held_by:
             sentence = f"Held at {_tier(ev, decided)}: " + "; ".join(held_by)
@@ -404,6 +424,9 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         sentence += "."
         if unknown and not mentioned_unknown:
             sentence += " Unknown: " + "; ".join(_unknown_text(ev, it) for it in unknown) + "."
+        nowcasts = [it for it in items if it["known"] and it["nowcast"]]
+        if nowcasts:
+            sentence += " Nowcast: " + "; ".join(_nowcast_text(ev, it) for it in nowcasts) + "."
     active = [s for s in signals if s["active"]]
     if active:
         sentence += " Prepare: " + " ".join(

@@ -5,9 +5,10 @@ required. ``lower``/``upper`` are needed by criteria using ``statistic: bounds``
 reading a bound; ``count`` by criteria with ``min_count``. ``stale`` flags values known to be out of
 date; ``age_days`` (days since the data were last refreshed) marks values older than the
 indicator's ``max_age_days`` as stale and lets explanations say how old they are. ``nowcast``
-flags values that are nowcasts of recent days. ``invalid`` flags values that rest on input the
-caller found unusable (a stored count that is not a whole number, say): unknown, explained as
-``invalid``.
+flags values that are nowcasts of recent days; ``nowcast_days`` (how many days of the value's
+window are still incomplete) and ``nowcast_basis`` (per region, whose reports the delays rest on)
+let explanations say so. ``invalid`` flags values that rest on input the caller found unusable (a
+stored count that is not a whole number, say): unknown, explained as ``invalid``.
 """
 
 from __future__ import annotations
@@ -43,6 +44,10 @@ class IndicatorSeries:
         Age of the data in days.
     nowcast : bool array, (regions, days), optional
         True where the value is a nowcast.
+    nowcast_days : array, (regions, days), optional
+        Days of the value's window still incomplete (nowcast).
+    nowcast_basis : tuple of str, (regions,), optional
+        Per region, what the reporting delays rest on ("pooled over North").
     invalid : bool array, (regions, days), optional
         True where the value rests on unusable input data (unknown to the engine).
     """
@@ -54,12 +59,14 @@ class IndicatorSeries:
     stale: BoolArray | None = None
     age_days: FloatArray | None = None
     nowcast: BoolArray | None = None
+    nowcast_days: FloatArray | None = None
+    nowcast_basis: tuple[str, ...] | None = None
     invalid: BoolArray | None = None
 
     def __post_init__(self) -> None:
         est = _float2d("estimate", self.estimate)
         object.__setattr__(self, "estimate", est)
-        for name in ("lower", "upper", "count", "age_days"):
+        for name in ("lower", "upper", "count", "age_days", "nowcast_days"):
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, _float2d(name, value, est.shape))
@@ -70,6 +77,13 @@ class IndicatorSeries:
                 if arr.dtype != np.bool_:
                     raise EvaluationInputError(name, f"expected booleans, got dtype {arr.dtype}")
                 object.__setattr__(self, name, _shape(name, arr, est.shape))
+        if self.nowcast_basis is not None:
+            basis = tuple(str(b) for b in self.nowcast_basis)
+            if len(basis) != est.shape[0]:
+                raise EvaluationInputError(
+                    "nowcast_basis", f"{len(basis)} entries for {est.shape[0]} regions"
+                )
+            object.__setattr__(self, "nowcast_basis", basis)
 
     @property
     def shape(self) -> tuple[int, int]:

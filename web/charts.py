@@ -13,10 +13,13 @@ from datetime import date
 
 import plotly.graph_objects as go
 
+from server.services.district_indicators import NowcastSeries
 from server.services.dossier import CriterionSeries, DistrictDossier
 from web.palette import INK, OUTLINE, tier_colours
 
-__all__ = ["criterion_figure", "figure_json", "sparkline_points", "timeline_figure"]
+__all__ = [
+    "criterion_figure", "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
+]
 
 _LAYOUT = {
     "margin": {"l": 56, "r": 16, "t": 36, "b": 36}, "height": 280, "paper_bgcolor": "#fbfaf7",
@@ -107,6 +110,30 @@ def timeline_figure(dossier: DistrictDossier) -> go.Figure:
     fig.update_layout(title={"text": "Tier: official and recommended", "x": 0}, **_LAYOUT)
     fig.update_yaxes(tickvals=list(range(len(names))), ticktext=list(names),
                      range=[-0.6, len(names) - 0.5], gridcolor="#ebe8e1")
+    return fig
+
+
+def nowcast_figure(series: NowcastSeries, label: str = "Cases") -> go.Figure:
+    """Daily counts as reported so far (bars) and the nowcast of the days still being reported
+    (dashed line) with its 95 % predictive band."""
+    dates = [d.isoformat() for d in series.dates]
+    fig = go.Figure()
+    fig.add_trace(go.Bar(x=dates, y=_nan([v if v is not None else math.nan
+                                          for v in series.reported]),
+                         marker={"color": "#9aa5b1"}, name="reported so far"))
+    upper = [v if v is not None else math.nan for v in series.upper]
+    lower = [v if v is not None else math.nan for v in series.lower]
+    fig.add_trace(go.Scatter(x=dates, y=_nan(upper), mode="lines", line={"width": 0},
+                             showlegend=False, hoverinfo="skip"))
+    fig.add_trace(go.Scatter(x=dates, y=_nan(lower), mode="lines", fill="tonexty",
+                             fillcolor="rgba(111,95,158,0.22)", line={"width": 0},
+                             name="95% interval of the nowcast"))
+    fig.add_trace(go.Scatter(
+        x=dates, y=_nan([v if v is not None else math.nan for v in series.nowcast]),
+        mode="lines+markers", line={"color": "#6f5f9e", "width": 2, "dash": "dash"},
+        marker={"size": 5}, name="nowcast (expected final count)"))
+    fig.update_layout(title={"text": f"{label}: reported and nowcast", "x": 0}, **_LAYOUT)
+    fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
     return fig
 
 

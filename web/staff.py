@@ -13,7 +13,7 @@ from fastapi.templating import Jinja2Templates
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.morning import MorningOverview, morning_overview
-from web.charts import criterion_figure, figure_json, timeline_figure
+from web.charts import criterion_figure, figure_json, nowcast_figure, timeline_figure
 from web.deps import PageNumber, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
@@ -91,6 +91,7 @@ def district(
     charts = [figure_json(criterion_figure(c, dossier.tier_names, now)) for c in dossier.criteria]
     return render(request, "staff/district.html", {
         "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
+        "nowcast": figure_json(nowcast_figure(dossier.nowcast)) if dossier.nowcast else None,
     })
 
 

@@ -107,10 +107,21 @@ def backtest_command(
     output: Annotated[
         Path | None, typer.Option("--output", help="Folder for per-region tier timelines (CSV).")
     ] = None,
+    nowcast: Annotated[
+        bool,
+        typer.Option("--nowcast-accuracy/--no-nowcast-accuracy",
+                     help="Score each past morning's nowcast of the last 7 days against the "
+                     "count known four weeks later."),
+    ] = True,
 ) -> None:
     """Replay a ruleset over the stored history and summarise it: tier changes per region per
     year, days in each tier, prepare signals and their lead before the next escalation."""
-    from server.services.backtest import data_span, run_backtest, write_timelines
+    from server.services.backtest import (
+        data_span,
+        nowcast_accuracy_report,
+        run_backtest,
+        write_timelines,
+    )
     from server.services.database import Database
 
     rulesets = [_load(rules)] + ([_load(compare)] if compare is not None else [])
@@ -118,6 +129,7 @@ def backtest_command(
     settings = Settings(demo_mode=True)
     db = Database.from_settings(settings)
     results = []
+    scores = []
     try:
         db.check()
         for rs in rulesets:
@@ -132,6 +144,9 @@ def backtest_command(
                             as_known=as_known, progress=advance, time_zone=settings.zone,
                         )
                     )
+        if nowcast:
+            with db.transaction() as session:
+                scores = nowcast_accuracy_report(session=session, time_zone=settings.zone)
     finally:
         db.dispose()
     first_result = results[0]
@@ -143,6 +158,8 @@ def backtest_command(
     )
     for line in _summary_table(results):
         say(escape(line))
+    for line in _nowcast_lines(scores):
+        say(escape(line))
     if output is not None:
         for i, r in enumerate(results):
             same = i > 0 and r.ruleset.name == rulesets[0].name
@@ -150,6 +167,20 @@ def backtest_command(
             path = write_timelines(r, output, stem=stem)
             say(f"timelines: {path}")
         _per_region(results, output)
+
+
+def _nowcast_lines(scores: list) -> list[str]:  # type: ignore[type-arg]
+    """The nowcast-accuracy section: all districts, then each district, per measure."""
+    if not scores:
+        return []
+    out = ["", "Nowcast accuracy (each morning's last 7 days against the count known 28 days "
+           "later; error = median absolute relative error):"]
+    for s in scores:
+        if s.region is None:
+            out.append(f"  {s.measure}, all districts: {s.line}")
+        elif s.mornings:
+            out.append(f"    {s.region}: {s.line.split(': ', 1)[1]}")
+    return out
 
 
 def _per_region(results: list, output: Path) -> None:  # type: ignore[type-arg]

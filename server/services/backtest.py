@@ -17,6 +17,13 @@ known that day; the windows of a block of days are stacked along the region axis
 indicator is computed once per block for all (day, district) pairs; the last column of every
 window is that day's as-known value. Wastewater trends count a sample only on the day it first
 becomes known.
+
+Nowcasts in the as-known replay: every count measure's reporting triangle is built once from the
+same rows (a row received on local day ``k`` is known at delay ``k - ref_day``; morning ``t`` sees
+receipts up to day ``t + 1``), and each morning's windows carry the delay model estimated from
+the cells observable that morning, so ``use_nowcast`` decides as it would have that morning.
+:func:`nowcast_accuracy_report` scores those nowcasts: each morning's nowcast 7-day count against
+the count known :data:`LATER_DAYS` days later.
 """
 
 from __future__ import annotations
@@ -34,13 +41,26 @@ from sqlalchemy.orm import Session
 
 from rules import Evaluation, IndicatorSeries, Ruleset, evaluate
 from rules.timeline import TimelineSummary, summarise_timeline
+from server.indicators.nowcast import (
+    DelayModel,
+    delay_model,
+    nowcast_accuracy,
+    nowcast_window,
+    triangle_from_rows,
+)
 from server.services.district_indicators import (
     AREA_MEASURES,
     DISTRICT_MEASURES,
+    NOWCAST_DELAYS,
+    NOWCAST_MEASURES,
+    NOWCAST_PERIOD,
+    NOWCAST_WINDOW,
     PLANT_MEASURES,
     DistrictData,
+    NowcastInput,
     district_indicators,
     load_district_data,
+    pool_basis,
 )
 from server.services.errors import ServiceError
 from server.store.models import Measure, Observation, Region, Vintage
@@ -49,8 +69,10 @@ __all__ = [
     "WINDOW_DAYS",
     "BacktestError",
     "BacktestResult",
+    "NowcastScore",
     "as_known_cutoff",
     "data_span",
+    "nowcast_accuracy_report",
     "run_backtest",
     "write_timelines",
 ]
@@ -61,6 +83,8 @@ WINDOW_DAYS = 56
 BLOCK_DAYS = 32
 #: Indicators that exist on sample days only (no carrying forward).
 SAMPLE_INDICATORS = ("ww_trend",)
+#: A nowcast is scored against the count known this many days after its morning.
+LATER_DAYS = 28
 
 
 class BacktestError(ServiceError, ValueError):
@@ -166,7 +190,7 @@ class _Rows:
 
 def _read_rows(
     session: Session, measures: list[str], codes: dict[str, list[str]], first: date,
-    time_zone: tzinfo,
+    time_zone: tzinfo, since: date | None = None,
 ) -> _Rows:
     row_of = {}
     for group, group_codes in codes.items():
@@ -182,6 +206,8 @@ def _read_rows(
         .where(Measure.name.in_(measures))
         .order_by(Vintage.received_at, Vintage.id)
     )
+    if since is not None:
+        query = query.where(Observation.ref_date >= since)
     m_idx, r_idx, c_idx, vals, known = [], [], [], [], []
     for name, code, ref, value, received in session.execute(query):
         key = (group_of[name], code)
@@ -204,7 +230,10 @@ def _read_rows(
 _GROUPS = {"district": DISTRICT_MEASURES, "area": AREA_MEASURES, "plant": PLANT_MEASURES}
 
 
-def _stack(base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int) -> DistrictData:
+def _stack(
+    base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int,
+    nowcasts: dict[str, NowcastInput] | None = None,
+) -> DistrictData:
     """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts."""
     w = snaps["cases"].shape[1]
     served = np.kron(np.eye(n), base.served)
@@ -219,6 +248,51 @@ def _stack(base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int) ->
         plant={m: snaps[m] for m in PLANT_MEASURES},
         plant_population=np.tile(base.plant_population, n),
         served=served,
+        nowcasts=nowcasts or {},
+    )
+
+
+def _triangles(
+    rows: _Rows, measures: list[str], n_regions: int, n_days: int
+) -> dict[str, NDArray[np.float64]]:
+    """Cumulative reporting triangles of the district count measures over the whole period.
+
+    A row counted from as-known day ``k`` was received on day ``k + 1`` (:func:`_read_rows`).
+    """
+    out = {}
+    for m in NOWCAST_MEASURES:
+        k = measures.index(m)
+        sel = np.flatnonzero(rows.measure == k)  # rows are in arrival order
+        out[m] = triangle_from_rows(
+            rows.row[sel], rows.col[sel], rows.known_day[sel] + 1, rows.value[sel],
+            regions=n_regions, days=n_days, delays=NOWCAST_DELAYS, last_receipt=n_days,
+        )
+    return out
+
+
+def _rolling_model(
+    tri: NDArray[np.float64], cutoffs: NDArray[np.int64], groups: NDArray[np.int64]
+) -> DelayModel:
+    """Delay models at ``cutoffs`` (regions, cutoffs, delays), from the rows they need only."""
+    lo = max(int(cutoffs.min()) - NOWCAST_WINDOW, 0)
+    hi = int(cutoffs.max()) + 1
+    return delay_model(tri[:, lo:hi], cutoffs=cutoffs - lo, groups=groups, window=NOWCAST_WINDOW,
+                       period=NOWCAST_PERIOD)
+
+
+def _stacked_input(
+    model: DelayModel, known_delay: NDArray[np.int64], group_names: list[str | None]
+) -> NowcastInput:
+    """A (regions, cutoffs) delay model as the input of cutoff-major stacked windows."""
+    def flat(a: NDArray) -> NDArray:  # type: ignore[type-arg]
+        return np.swapaxes(a, 0, 1).reshape((-1, 1) + a.shape[2:])
+
+    pools = np.swapaxes(model.pool, 0, 1).reshape(-1)
+    n = model.pool.shape[1]
+    return NowcastInput(
+        model=DelayModel(flat(model.reported), flat(model.log_var), flat(model.pool),
+                         flat(model.reports)),
+        known_delay=known_delay, basis=pool_basis(pools, group_names * n),
     )
 
 
@@ -245,8 +319,13 @@ def _as_known_indicators(
     w = WINDOW_DAYS
     wanted = sorted(ruleset.used_indicators())
     parts: dict[str, list[NDArray[np.float64]]] = {
-        f"{n}.{k}": [] for n in wanted for k in ("estimate", "lower", "upper", "count", "age")
+        f"{n}.{k}": [] for n in wanted
+        for k in ("estimate", "lower", "upper", "count", "age", "nowcast", "nowcast_days")
     }
+    triangles = _triangles(rows, measures, len(base.regions), n_days)
+    area_names: list[str | None] = [area_parent.get(c) for c in base.regions]
+    # window column j of morning t is known at delay t + 1 - (t - w + 1 + j) = w - j
+    window_delay = np.arange(w, 0, -1, dtype=np.int64)
     newest_prev: NDArray[np.float64] | None = None
     for block_start in range(0, n_days, BLOCK_DAYS):
         days = range(block_start, min(block_start + BLOCK_DAYS, n_days))
@@ -268,7 +347,12 @@ def _as_known_indicators(
                 snaps[m].append(window)
         stacked = {m: np.concatenate(v, axis=0) for m, v in snaps.items()}
         n = len(days)
-        series = district_indicators(_stack(base, stacked, n), ruleset)
+        cutoffs = np.asarray(days, dtype=np.int64) + 1
+        nowcasts = {
+            m: _stacked_input(_rolling_model(tri, cutoffs, pick), window_delay, area_names)
+            for m, tri in triangles.items()
+        }
+        series = district_indicators(_stack(base, stacked, n, nowcasts), ruleset)
         for name, s in series.items():
             r = len(base.regions)
             est = s.estimate.reshape(n, r, w)
@@ -285,8 +369,11 @@ def _as_known_indicators(
                 parts[f"{name}.age"].append(age)
                 continue
             parts[f"{name}.estimate"].append(est[:, :, -1])
+            flag = (np.zeros(s.shape) if s.nowcast is None else s.nowcast.astype(np.float64))
+            nc_days = np.zeros(s.shape) if s.nowcast_days is None else s.nowcast_days
             for key, arr in (("lower", s.lower), ("upper", s.upper), ("count", s.count),
-                             ("age", s.age_days)):
+                             ("age", s.age_days), ("nowcast", flag),
+                             ("nowcast_days", nc_days)):
                 if arr is not None:
                     parts[f"{name}.{key}"].append(arr.reshape(n, r, w)[:, :, -1])
         tick(n)
@@ -296,12 +383,119 @@ def _as_known_indicators(
             got = parts[f"{name}.{key}"]
             return np.concatenate(got, axis=0).T.copy() if got else None
 
+        flags = get("nowcast") if name not in SAMPLE_INDICATORS else None
         indicators[name] = IndicatorSeries(
             estimate=get("estimate"), lower=get("lower"), upper=get("upper"),  # type: ignore[arg-type]
             count=get("count"), age_days=get("age"),
+            nowcast=None if flags is None else flags > 0,
+            nowcast_days=get("nowcast_days") if flags is not None else None,
         )
     dates = np.arange(np.datetime64(first, "D"), np.datetime64(end, "D") + 1)
     return replace(base, dates=dates, as_of=None), indicators
+
+
+@dataclass(frozen=True, kw_only=True)
+class NowcastScore:
+    """Accuracy of one measure's nowcast of the last 7 days, for a district or all (``region``
+    None): median absolute relative error of the nowcast and of the unadjusted count reported
+    that morning, and the share of mornings whose later count fell inside the 95 % interval."""
+
+    measure: str
+    region: str | None
+    error: float
+    unadjusted_error: float
+    coverage: float
+    mornings: int
+
+    @property
+    def line(self) -> str:
+        """'nowcast of the last 7 days: median error X % (unadjusted Y %), 95 % interval
+        covered Z % of N mornings'."""
+        if self.mornings == 0:
+            return "nowcast of the last 7 days: no morning needed one"
+        return (
+            f"nowcast of the last 7 days: median error {100 * self.error:.1f} % (unadjusted "
+            f"{100 * self.unadjusted_error:.1f} %), 95 % interval covered "
+            f"{100 * self.coverage:.0f} % of {self.mornings} mornings"
+        )
+
+
+def nowcast_accuracy_report(
+    *, session: Session, measures: tuple[str, ...] = ("cases", "hosp_admissions"),
+    regions: tuple[str, ...] | None = None, later_days: int = LATER_DAYS,
+    time_zone: tzinfo = UTC, last_mornings: int | None = None,
+) -> list[NowcastScore]:
+    """Score the nowcast each past morning made of the last 7 days against the count known
+    ``later_days`` days later, per measure and district (``regions``; default all) and for all
+    districts together.
+
+    Morning ``t`` is the as-known day of the backtest: receipts up to day ``t + 1``, the newest
+    day ``t``. Its nowcast is the 7-day count of days ``t - 6 .. t`` from the delay model of
+    that morning (:func:`server.indicators.nowcast.nowcast_window`); the later count is the
+    same days' reports received by day ``t + later_days + 1``. Mornings whose window is complete
+    (nothing to nowcast) or too recent to have a later count are not scored; with
+    ``last_mornings`` only that many of the newest scorable mornings are (and only the rows
+    they need are read).
+    """
+    first, last = data_span(session=session)
+    base = load_district_data(session=session, start=first, end=first, nowcast=False)
+    n_days = (last - first).days + 1
+    area_parent = _area_rows(session, base)
+    areas = sorted(set(area_parent.values()))
+    pick = np.array([areas.index(area_parent[c]) if c in area_parent else -1
+                     for c in base.regions], dtype=np.int64)
+    names = [m for m in measures if m in NOWCAST_MEASURES]
+    codes = {"district": list(base.regions), "area": [], "plant": []}
+    mornings = np.arange(6, n_days - later_days, dtype=np.int64)
+    if last_mornings is not None:
+        mornings = mornings[-last_mornings:] if last_mornings > 0 else mornings[:0]
+    since = None
+    if last_mornings is not None and mornings.size:
+        since = first + timedelta(days=max(int(mornings[0]) - NOWCAST_WINDOW - 7, 0))
+    rows = _read_rows(session, names, codes, first, time_zone, since=since)
+    wanted = [base.regions.index(c) for c in regions] if regions is not None else list(
+        range(len(base.regions)))
+    out: list[NowcastScore] = []
+    for k, measure in enumerate(names):
+        sel = np.flatnonzero(rows.measure == k)
+        tri = triangle_from_rows(
+            rows.row[sel], rows.col[sel], rows.known_day[sel] + 1, rows.value[sel],
+            regions=len(base.regions), days=n_days, delays=NOWCAST_DELAYS, last_receipt=n_days,
+        )
+        if mornings.size == 0:
+            scores = nowcast_accuracy(*(np.zeros((len(base.regions), 0)),) * 6)
+        else:
+            model = _rolling_model(tri, mornings + 1, pick)
+            days = mornings[:, None] - np.arange(6, -1, -1)[None, :]  # (mornings, 7)
+            known_at = np.minimum(mornings[:, None] + 1 - days, NOWCAST_DELAYS - 1)
+            later_at = np.minimum(mornings[:, None] + later_days + 1 - days, NOWCAST_DELAYS - 1)
+            values = tri[:, days, known_at]  # (regions, mornings, 7)
+            later = tri[:, days, later_at].sum(axis=2)
+            n_r, n_m = values.shape[:2]
+            stacked = DelayModel(
+                model.reported.reshape(n_r * n_m, 1, -1), model.log_var.reshape(n_r * n_m, 1, -1),
+                model.pool.reshape(-1, 1), model.reports.reshape(-1, 1),
+            )
+            nc = nowcast_window(values.reshape(n_r * n_m, 7), np.arange(7, 0, -1), stacked,
+                                window=7)
+            def col(a: NDArray, n_r: int = n_r, n_m: int = n_m) -> NDArray:  # type: ignore[type-arg]
+                return a[:, -1].reshape(n_r, n_m)
+
+            est, lo, hi, rep = col(nc.estimate), col(nc.lower), col(nc.upper), col(nc.known)
+            scored = col(nc.nowcast)
+            scores = nowcast_accuracy(est, lo, hi, rep, later, scored)
+            total = nowcast_accuracy(*(a[wanted].reshape(1, -1)
+                                       for a in (est, lo, hi, rep, later, scored)))
+            out.append(NowcastScore(
+                measure=measure, region=None, error=float(total.error[0]),
+                unadjusted_error=float(total.unadjusted_error[0]),
+                coverage=float(total.coverage[0]), mornings=int(total.mornings[0])))
+        for r in wanted:
+            out.append(NowcastScore(
+                measure=measure, region=base.regions[r], error=float(scores.error[r]),
+                unadjusted_error=float(scores.unadjusted_error[r]),
+                coverage=float(scores.coverage[r]), mornings=int(scores.mornings[r])))
+    return out
 
 
 def _area_rows(session: Session, base: DistrictData) -> dict[str, str]:

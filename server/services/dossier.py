@@ -22,6 +22,8 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from rules.formatting import interval_text, value_text
 from rules.record import CriterionState
+from server.services.backtest import nowcast_accuracy_report
+from server.services.district_indicators import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.explanations import RevisedSince, explained_day, revised_since
@@ -44,6 +46,8 @@ __all__ = [
 
 REVISION_DAYS = 7
 REVISION_MEASURE = "cases"
+#: Mornings the district page scores the nowcast over (about half a year).
+NOWCAST_MORNINGS = 182
 
 
 class NoAssessmentError(ServiceError, LookupError):
@@ -110,6 +114,10 @@ class DistrictDossier:
     sentence: str
     #: the day ``sentence`` describes: the period's last assessed day (None: no assessment)
     sentence_day: date | None = None
+    #: newest days of cases, reported and nowcast, as known at the run's cutoff
+    nowcast: NowcastSeries | None = None
+    #: accuracy of the nowcast of the last 7 days over the last NOWCAST_MORNINGS mornings
+    nowcast_accuracy: str | None = None
 
 
 def _region(session: Session, code: str) -> tuple[Region, str | None]:
@@ -214,7 +222,17 @@ def district_dossier(
         revisions=revisions,
         sentence=rows[-1].explanation.get("sentence", "") if rows else "",
         sentence_day=rows[-1].ref_date if rows else None,
+        nowcast=district_nowcast(session=session, code=code, end=last, as_of=cutoff),
+        nowcast_accuracy=_nowcast_line(session, code),
     )
+
+
+def _nowcast_line(session: Session, code: str) -> str | None:
+    """The district's cases nowcast accuracy line (None: no morning to score)."""
+    scores = nowcast_accuracy_report(session=session, measures=(REVISION_MEASURE,),
+                                     regions=(code,), last_mornings=NOWCAST_MORNINGS)
+    mine = [s for s in scores if s.region == code and s.mornings]
+    return mine[0].line if mine else None
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -54,7 +54,8 @@ def test_as_known_values_equal_an_as_of_read_of_that_morning(
     result = run_backtest(session=demo_session, ruleset=rs, as_known=True, time_zone=zone)
     first = result.evaluation.dates[0].astype(date)
     data = load_district_data(
-        session=demo_session, start=first, end=day, as_of=as_known_cutoff(day, zone)
+        session=demo_session, start=first, end=day, as_of=as_known_cutoff(day, zone),
+        time_zone=zone,
     )
     ref = district_indicators(data, rs)
     j = (day - first).days
@@ -64,6 +65,12 @@ def test_as_known_values_equal_an_as_of_read_of_that_morning(
         # 69 days (mass beyond 49 days ~1e-9), so the two agree to ~1e-8, not to rounding
         rtol = 1e-7 if name == "rt" else 1e-9
         assert_allclose(got, ref[name].estimate[:, -1], rtol=rtol, err_msg=name)
+    # the nowcast of that morning too: the same days flagged, the same interval
+    inc = result.evaluation.indicators["incidence_7d"]
+    assert ref["incidence_7d"].nowcast is not None and inc.nowcast is not None
+    assert_array_equal(inc.nowcast[:, j], ref["incidence_7d"].nowcast[:, -1])
+    assert inc.nowcast[:, j].any()
+    assert_allclose(inc.lower[:, j], ref["incidence_7d"].lower[:, -1], rtol=1e-9)
 
 
 def test_as_known_replay_differs_from_latest_only_through_revisions(demo_session: Session) -> None:
