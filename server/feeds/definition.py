@@ -173,6 +173,11 @@ class FeedDefinition:
             raise ValueError("a push feed has no schedule")
 
     @property
+    def measure_names(self) -> tuple[str, ...]:
+        """The catalogue measures this feed carries."""
+        return tuple(m.measure for m in self.measures)
+
+    @property
     def required_columns(self) -> list[str]:
         """Columns the header must have."""
         c = self.columns
