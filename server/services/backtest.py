@@ -61,6 +61,7 @@ from server.services.district_indicators import (
     district_indicators,
     load_district_data,
     pool_basis,
+    usable,
 )
 from server.services.errors import ServiceError
 from server.store.models import Measure, Observation, Region, Vintage
@@ -237,8 +238,18 @@ def _stack(
     """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts."""
     w = snaps["cases"].shape[1]
     served = np.kron(np.eye(n), base.served)
+    # Stored values the indicators cannot take are read as missing and flagged, as the daily
+    # evaluation does (district_indicators.usable); the base's own flags are for its own days.
+    cleaned: dict[str, NDArray[np.float64]] = {}
+    invalid: dict[str, NDArray[np.bool_]] = {}
+    for m in (*DISTRICT_MEASURES, *AREA_MEASURES, *PLANT_MEASURES):
+        cleaned[m], invalid[m], _why = usable(snaps[m], count=m not in PLANT_MEASURES)
+    invalid["ww_plants"] = (served > 0).astype(np.float64) @ (
+        invalid["ww_concentration"] | invalid["ww_flow"]).astype(np.float64) > 0
+    snaps = cleaned
     return replace(
-        base,
+        base, invalid={m: v for m, v in invalid.items() if m not in PLANT_MEASURES},
+        bad_values=(),
         regions=tuple(f"{k}:{c}" for k in range(n) for c in base.regions),
         levels=base.levels * n,
         population=np.tile(base.population, n),
