@@ -54,9 +54,13 @@ def _decide(
     assert answer.status_code == 303, answer.text
 
 
+D02_PUBLISHED: list[int] = []  # filled by the fixture: the tier published for D02
+
+
 @pytest.fixture(scope="module")
 def published(demo_app_client: TestClient) -> TestClient:
-    """D01 overridden to tier 1 and published; then D02 decided (tier 0) but not published."""
+    """D01 overridden to tier 1 and published; then D02 decided at another tier than the one
+    published for it, but not published (``D02_PUBLISHED`` holds the published one)."""
     client = demo_app_client
     assert login(client, "otto.approver") == 303
     d02 = _assessment_of(client, "D02")
@@ -64,7 +68,10 @@ def published(demo_app_client: TestClient) -> TestClient:
     review = client.get("/staff/review")
     assert client.post("/staff/publish", data={"csrf": csrf_of(review.text)},
                        follow_redirects=False).status_code == 303
-    _decide(client, code="D02", tier=0, reason="UNPUBLISHED-REASON-4410", assessment=d02)
+    shown = client.get("/api/public/districts/D02").json()["tier"]
+    D02_PUBLISHED.append(shown)
+    _decide(client, code="D02", tier=(shown + 1) % 4, reason="UNPUBLISHED-REASON-4410",
+            assessment=d02)
     client.cookies.clear()
     return client
 
@@ -88,8 +95,8 @@ def test_public_district_shows_published_override(published: TestClient) -> None
 
 
 def test_public_district_ignores_unpublished_decision(published: TestClient) -> None:
-    # D02 was published at its recommendation (Severe) and then decided 0, unpublished.
-    assert published.get("/api/public/districts/D02").json()["tier"] == 3
+    # D02 was published at its recommendation and then decided at another tier, unpublished.
+    assert published.get("/api/public/districts/D02").json()["tier"] == D02_PUBLISHED[-1]
 
 
 def test_public_index_names_every_district(published: TestClient) -> None:
