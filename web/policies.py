@@ -104,7 +104,7 @@ def draft(
     result = check_draft(text, filename=name)
     if result.ok and store:
         new_id = store_draft(session=session, text=text, author=user.name, filename=name)
-        return RedirectResponse(f"/staff/policies?id={new_id}", status_code=303)
+        return RedirectResponse(f"/staff/policies?id={new_id}#active-h", status_code=303)
     return render(request, "staff/policies.html", {
         "view": policy_view(session=session), "versions": versions(session=session),
         "check": result, "draft_text": text, "backtests": _jobs(request).recent(session=session),

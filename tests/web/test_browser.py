@@ -262,7 +262,8 @@ def test_two_version_backtest_fits_a_wide_screen(server: str, page: object) -> N
     yaml_text = page.locator("pre.yaml").text_content()  # inside a closed <details>
     variant = re.sub(r"^version: .*$", 'version: "2031.88"', yaml_text, count=1, flags=re.M)
     page.fill("#text", variant)
-    with page.expect_navigation(url=re.compile(r".*/staff/policies\?id=\d+$"), timeout=60_000):
+    stored = re.compile(r".*/staff/policies\?id=\d+(#active-h)?$")
+    with page.expect_navigation(url=stored, timeout=60_000):
         page.click("button[name=store]")
     page.click("text=Run backtest")
     page.wait_for_selector("svg.tier-strip", timeout=240_000)

@@ -343,7 +343,7 @@ def evaluate_now(db: Database) -> bool:
     with db.transaction() as session:
         row, cutoff = active_ruleset(session=session), newest_cutoff(session=session)
         if row is None or cutoff is None:
-            return False
+            return True  # nothing stored yet: nothing to evaluate
         evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff)
     return True
 
