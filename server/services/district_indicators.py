@@ -287,12 +287,15 @@ def nowcast_inputs(
     known_delay = (np.datetime64(first, "D") + cutoff - dates.astype("datetime64[D]")).astype(
         np.int64)
     out = {}
+    # A stored value the indicators cannot take (:func:`usable`) is left out of the triangle, as
+    # it is read as missing everywhere else; counts within the tolerance are rounded.
+    values, unusable, _why = usable(rows.value, count=True)
     for k, measure in enumerate(NOWCAST_MEASURES):
-        pick = rows.measure == k
+        pick = (rows.measure == k) & ~unusable
         if not pick.any():
             continue
         tri = triangle_from_rows(
-            rows.region[pick], rows.ref_day[pick], receipt[pick], rows.value[pick],
+            rows.region[pick], rows.ref_day[pick], receipt[pick], values[pick],
             regions=len(regions), days=NOWCAST_WINDOW, delays=NOWCAST_DELAYS, last_receipt=cutoff,
         )
         model = delay_model(tri, cutoffs=[cutoff], groups=group_index, window=NOWCAST_WINDOW,
