@@ -18,7 +18,6 @@ PACKAGES = ("server", "web", "rules", "demo_seed")
 DISTRIBUTION = {
     "yaml": "pyyaml",
     "pydantic_settings": "pydantic-settings",
-    "swagger_ui_bundle": "swagger-ui-bundle",
     "multipart": "python-multipart",
 }
 # Installed with a declared dependency and part of its public interface.

@@ -3,8 +3,7 @@
 The policy allows scripts only from the app itself (no inline script, no eval), so the pages and
 plotly.js work offline and injected markup cannot run. Plotly sets inline ``style`` attributes,
 hence ``style-src 'self' 'unsafe-inline'`` (styles cannot run code). The interactive API docs at
-``/docs`` load Swagger UI from the app (web/apidocs.py) and start it with one inline script, so that
-page alone gets a policy that allows inline script, still from nowhere but the app.
+``/docs`` (web/apidocs.py) load Swagger UI and its start script from the app under the same policy.
 """
 
 from __future__ import annotations
@@ -36,11 +35,6 @@ _HEADERS = [
     (b"permissions-policy", b"camera=(), microphone=(), geolocation=(), interest-cohort=()"),
     (b"cross-origin-opener-policy", b"same-origin"),
 ]
-DOCS_CSP = (
-    "default-src 'self'; script-src 'self' 'unsafe-inline'; style-src 'self' 'unsafe-inline'; "
-    "img-src 'self' data:; object-src 'none'; base-uri 'none'; frame-ancestors 'none'"
-)
-_DOCS = "/docs"
 
 
 class SecurityHeaders:
@@ -66,14 +60,12 @@ class SecurityHeaders:
         )
         token = current_language.set(lang)
         scope.setdefault("state", {})["lang"] = lang
-        path: str = scope.get("path", "")
         secure = scope.get("scheme") == "https"
 
         async def send_with_headers(message: Message) -> None:
             if message["type"] == "http.response.start":
                 extra = list(_HEADERS)
-                policy = DOCS_CSP if path == _DOCS else CSP
-                extra.append((b"content-security-policy", policy.encode()))
+                extra.append((b"content-security-policy", CSP.encode()))
                 if secure:
                     extra.append((b"strict-transport-security", b"max-age=31536000"))
                 message["headers"] = list(message.get("headers", [])) + extra

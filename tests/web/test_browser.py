@@ -274,3 +274,28 @@ def test_two_version_backtest_fits_a_wide_screen(server: str, page: object) -> N
         ".right <= s.parentElement.getBoundingClientRect().right + 1)")
     shot(page, "14-backtest-two-versions")
     assert page.evaluate("document.documentElement.scrollWidth") <= 1400
+
+
+def test_api_docs_list_every_operation_of_the_openapi_document(
+    server: str, page: object
+) -> None:
+    described = httpx.get(server + "/openapi.json", timeout=10).json()
+    assert described["openapi"].startswith("3.1")  # the version Swagger UI 4 could not read
+    expected = {
+        (method.upper(), path)
+        for path, item in described["paths"].items()
+        for method in item
+        if method in ("get", "put", "post", "delete", "patch", "head", "options", "trace")
+    }
+    page.goto(server + "/docs")
+    page.wait_for_selector(".opblock", timeout=20000)
+    shown = page.eval_on_selector_all(  # type: ignore[attr-defined]
+        ".opblock",
+        "blocks => blocks.map(b => [b.querySelector('.opblock-summary-method').textContent,"
+        " b.querySelector('.opblock-summary-path').getAttribute('data-path')])",
+    )
+    assert len(shown) == len(expected)
+    assert {(m, p) for m, p in shown} == expected
+    assert "Unable to render" not in page.content()
+    assert not [e for e in page.csp_errors if "Content Security Policy" in e]
+    shot(page, "13-api-docs")

@@ -116,10 +116,13 @@ def test_api_docs_load_only_local_assets(client: TestClient) -> None:
     assert client.get("/static/swagger/swagger-ui-bundle.js").status_code == 200
 
 
-def test_api_docs_policy_allows_no_other_origin(client: TestClient) -> None:
-    policy = client.get("/docs").headers["content-security-policy"]
-    assert "script-src 'self' 'unsafe-inline'" in policy
+def test_api_docs_policy_forbids_inline_script(client: TestClient) -> None:
+    page = client.get("/docs")
+    policy = page.headers["content-security-policy"]
+    script = next(d for d in policy.split("; ") if d.startswith("script-src"))
+    assert script == "script-src 'self'"
     assert "http" not in policy
+    assert "<script>" not in page.text  # Swagger UI starts from /static/apidocs.js
 
 
 def test_database_ping_raises_when_the_database_is_unreachable(tmp_path: Path) -> None:
