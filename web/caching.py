@@ -28,7 +28,8 @@ from typing import Any
 from fastapi import Request, Response
 from starlette.concurrency import run_in_threadpool
 
-from server.services.pages import PublicStamp
+from server.services.database import Database
+from server.services.pages import PublicStamp, public_stamp
 
 __all__ = ["MAX_AGE", "STAMP_TTL", "PageCache", "StampInvalidator", "StampMemo", "conditional"]
 
@@ -171,3 +172,18 @@ async def conditional(
     body, media, status = hit
     headers["content-type"] = media
     return Response(content=body, status_code=status, headers=headers)
+
+
+def stamp_reader(db: Database) -> Callable[[], PublicStamp]:
+    """Read the publication stamp in a transaction of its own (for :func:`conditional`)."""
+
+    def read() -> PublicStamp:
+        with db.transaction() as session:
+            return public_stamp(session=session)
+
+    return read
+
+
+def page_language(request: Request) -> str:
+    """The page's language (chosen by the i18n middleware; the cache is keyed by it too)."""
+    return str(getattr(request.state, "lang", "en"))

@@ -18,7 +18,7 @@ from fastapi import APIRouter, HTTPException, Path, Request, Response
 from fastapi.responses import HTMLResponse
 
 from server.services.database import Database
-from server.services.pages import PublicStamp, UnknownDistrictError, public_stamp
+from server.services.pages import UnknownDistrictError
 from server.services.public_data import (
     DICTIONARY,
     DownloadTable,
@@ -29,7 +29,7 @@ from server.services.public_data import (
     weekly_case_table,
 )
 from web.atom import ATOM_TYPE, AtomText, atom_feed
-from web.caching import conditional
+from web.caching import conditional, page_language, stamp_reader
 from web.deps import DatabaseDep, SettingsDep
 from web.templating import render
 
@@ -39,16 +39,6 @@ DOWNLOADS = ("tiers", "tier_changes", "weekly_cases")
 _CODE = Path(pattern=r"^[A-Za-z0-9_-]{1,64}$")
 
 
-def _stamp(db: Database) -> Callable[[], PublicStamp]:
-    def read() -> PublicStamp:
-        with db.transaction() as session:
-            return public_stamp(session=session)
-
-    return read
-
-
-def _lang(request: Request) -> str:
-    return str(getattr(request.state, "lang", "en"))
 
 
 def _gettext(request: Request) -> Callable[[str], str]:
@@ -58,9 +48,9 @@ def _gettext(request: Request) -> Callable[[str], str]:
 def _table(name: str, db: Database, request: Request, threshold: int) -> DownloadTable:
     with db.transaction() as session:
         if name == "tiers":
-            return published_tier_table(session=session, lang=_lang(request))
+            return published_tier_table(session=session, lang=page_language(request))
         if name == "tier_changes":
-            return tier_change_table(session=session, lang=_lang(request))
+            return tier_change_table(session=session, lang=page_language(request))
         return weekly_case_table(session=session, threshold=threshold)
 
 
@@ -86,14 +76,14 @@ async def data_page(request: Request, db: DatabaseDep, settings: SettingsDep) ->
 
     def build() -> Response:
         with db.transaction() as session:
-            changes = published_changes(session=session, lang=_lang(request))
+            changes = published_changes(session=session, lang=page_language(request))
         districts = sorted({(c.code, c.name) for c in changes}, key=lambda x: x[1])
         return render(request, "public/data.html", {
             "dictionary": DICTIONARY, "downloads": DOWNLOADS, "districts": districts,
             "threshold": settings.small_count_threshold,
         })
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 @router.get("/data/dictionary.json")
@@ -118,7 +108,7 @@ async def download(
                 "content-disposition": f'attachment; filename="{name}.csv"'})
         return Response(_json(table), media_type="application/json")
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 def _atom_text(request: Request, district: str | None) -> AtomText:
@@ -139,14 +129,14 @@ async def county_feed(request: Request, db: DatabaseDep, settings: SettingsDep) 
 
     def build() -> Response:
         with db.transaction() as session:
-            changes = published_changes(session=session, lang=_lang(request))
+            changes = published_changes(session=session, lang=page_language(request))
         body = atom_feed(changes[:200], base_url=settings.public_base_url,
                          self_path="/feeds/tiers.atom", page_path="/",
                          text=_atom_text(request, None), feed_key="county",
                          fallback_updated=datetime(2000, 1, 1, tzinfo=UTC))
         return Response(body, media_type=ATOM_TYPE)
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 @router.get("/feeds/district/{code}.atom")
@@ -158,7 +148,7 @@ async def district_feed(
     def build() -> Response:
         with db.transaction() as session:
             try:
-                data = district_changes(session=session, code=code, lang=_lang(request))
+                data = district_changes(session=session, code=code, lang=page_language(request))
             except UnknownDistrictError as exc:
                 raise HTTPException(status_code=404, detail=str(exc)) from exc
         body = atom_feed(data.changes, base_url=settings.public_base_url,
@@ -167,7 +157,7 @@ async def district_feed(
                          fallback_updated=datetime(2000, 1, 1, tzinfo=UTC))
         return Response(body, media_type=ATOM_TYPE)
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 # HEAD answers like GET (kept out of the OpenAPI schema).

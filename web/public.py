@@ -9,20 +9,16 @@ thread pool, each in its own transaction) only when the caches cannot answer.
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from typing import Any
 
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 
-from server.services.database import Database
 from server.services.pages import (
-    PublicStamp,
     public_district_page,
     public_map,
-    public_stamp,
 )
-from web.caching import conditional
+from web.caching import conditional, page_language, stamp_reader
 from web.deps import DatabaseDep, SettingsDep
 from web.i18n import LANGUAGES
 from web.mapsvg import svg_map
@@ -31,17 +27,6 @@ from web.templating import render
 router = APIRouter(tags=["public"])
 
 
-def _stamp(db: Database) -> Callable[[], PublicStamp]:
-    def read() -> PublicStamp:
-        with db.transaction() as session:
-            return public_stamp(session=session)
-
-    return read
-
-
-def _lang(request: Request) -> str:
-    """The page's language (chosen by the i18n middleware; the cache is keyed by it too)."""
-    return str(getattr(request.state, "lang", "en"))
 
 
 @router.get("/", response_class=HTMLResponse)
@@ -50,13 +35,13 @@ async def index(request: Request, db: DatabaseDep, settings: SettingsDep) -> Res
 
     def build() -> Response:
         with db.transaction() as session:
-            data = public_map(session=session, lang=_lang(request))
+            data = public_map(session=session, lang=page_language(request))
         shapes = svg_map((d.code, d.geometry) for d in data.districts)
         return render(request, "public/index.html", {"data": data, "map": shapes,
                                                      "by_code": {d.code: d for d in data.districts},
                                                      "threshold": settings.small_count_threshold})
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 @router.get("/district/{code}", response_class=HTMLResponse)
@@ -67,11 +52,11 @@ async def district(request: Request, code: str, db: DatabaseDep, settings: Setti
         with db.transaction() as session:
             page = public_district_page(session=session, code=code,
                                         threshold=settings.small_count_threshold,
-                                        lang=_lang(request))
+                                        lang=page_language(request))
         top = max((w.rate for w in page.weeks if w.rate is not None), default=0.0)
         return render(request, "public/district.html", {"page": page, "top_rate": top})
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 @router.get("/language")
@@ -97,10 +82,10 @@ async def districts_json(request: Request, db: DatabaseDep) -> Response:
 
     def build() -> Response:
         with db.transaction() as session:
-            data = public_map(session=session, lang=_lang(request))
+            data = public_map(session=session, lang=page_language(request))
         return JSONResponse([_district_json(d) for d in data.districts])
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 @router.get("/api/public/districts/{code}")
@@ -117,7 +102,7 @@ async def district_json(
         with db.transaction() as session:
             p = public_district_page(session=session, code=code,
                                      threshold=settings.small_count_threshold,
-                                     lang=_lang(request))
+                                     lang=page_language(request))
         return JSONResponse({
             "code": p.code, "name": p.name, "area": p.area, "tier": p.tier,
             "tier_name": p.tier_name, "meaning": p.public_text,
@@ -130,7 +115,7 @@ async def district_json(
                       for w in p.weeks],
         })
 
-    return await conditional(request, _stamp(db), build)
+    return await conditional(request, stamp_reader(db), build)
 
 
 # HEAD answers the same as GET without the body (kept out of the OpenAPI schema, which would
