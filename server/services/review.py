@@ -49,11 +49,11 @@ from server.services.evaluation import (
 )
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.services.tiers import Scale, decision_scales, tier_label, tier_name
+from server.services.users import may
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
 
 __all__ = [
-    "APPROVER_ROLES",
     "Decision",
     "DecisionConflictError",
     "DecisionRecord",
@@ -70,9 +70,6 @@ __all__ = [
     "pending_changes",
     "publish",
 ]
-
-#: Roles allowed to decide and publish.
-APPROVER_ROLES = ("approver", "admin")
 
 
 class ReviewError(ServiceError, ValueError):
@@ -423,7 +420,7 @@ def _approver(session: Session, user: str) -> User:
     row = session.scalar(select(User).where(User.name == user))
     if row is None or not row.active:
         raise ReviewError("user", f"{user!r} is not an active staff account")
-    if row.role not in APPROVER_ROLES:
+    if not may(row.role, "decide"):
         raise ReviewError("user", f"{user!r} is a {row.role}; only approvers and admins decide")
     return row
 
