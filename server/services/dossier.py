@@ -27,7 +27,7 @@ from server.services.district_indicators import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.explanations import RevisedSince, explained_day, revised_since
-from server.services.policies import parsed
+from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region

@@ -54,6 +54,7 @@ from server.services.audit import record
 from server.services.database import Database
 from server.services.district_indicators import district_indicators, load_district_data
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
+from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Observation, Region, Vintage
 from server.store.models import EvaluationRun as RunRow
 from server.store.models import Ruleset as RulesetRow
@@ -96,17 +97,17 @@ def store_ruleset(
     with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
-    parsed = parse_ruleset(text, source=str(path))
-    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == parsed.sha256))
+    loaded = parse_ruleset(text, source=str(path))
+    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == loaded.sha256))
     if row is None:
         row = RulesetRow(
-            name=parsed.name, version=str(parsed.version), yaml_text=text, sha256=parsed.sha256,
+            name=loaded.name, version=str(loaded.version), yaml_text=text, sha256=loaded.sha256,
             author=author, created_at=datetime.now(UTC), status="draft",
         )
         session.add(row)
         session.flush()
         record(session=session, actor=author or "system", action="ruleset.store",
-               subject=f"{parsed.name} {parsed.version}", details={"sha256": parsed.sha256})
+               subject=f"{loaded.name} {loaded.version}", details={"sha256": loaded.sha256})
     session.flush()
     if activate and row.status != "active":
         activate_ruleset(session=session, row=row, actor=author or "system",
@@ -185,7 +186,7 @@ def evaluate_districts(
     )
     if _stored_run(session, ruleset_row.id, cutoff):
         return reused
-    ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
+    ruleset = parsed(ruleset_row)
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
                               stale_after=stale_after)
     result = evaluate(
