@@ -36,7 +36,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from rules.formatting import number_text, reading_text, value_text, with_unit
+from rules.formatting import level_names, number_text, reading_text, value_text, with_unit
 from rules.levels import (
     REASON_INVALID,
     REASON_MISSING,
@@ -162,6 +162,8 @@ def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> fl
 
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
+    if level_names(spec) is not None and float(thr).is_integer():
+        return number_text(spec, thr)  # "medium (2)"
     return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
 
 
