@@ -385,9 +385,11 @@ def seasonal_intensity(
     if days.size and (np.any(np.diff(days).astype(np.int64) != 7)
                       or days[0].astype(dt.date).weekday() != 0):
         raise ValueError("week_starts: expected consecutive Mondays")
-    if min_seasons < 1 or max_seasons < min_seasons:
-        raise ValueError(f"min_seasons {min_seasons} and max_seasons {max_seasons}: need "
-                         "1 <= min_seasons <= max_seasons")
+    if min_seasons < 3:
+        raise ValueError(f"min_seasons: the baseline needs at least 3 past seasons, got "
+                         f"{min_seasons}")
+    if max_seasons < min_seasons:
+        raise ValueError(f"max_seasons: {max_seasons} is fewer than min_seasons {min_seasons}")
     lay = season_layout(days, start_week=start_week, end_week=end_week)
     n_regions, n_weeks = w.shape
     n_seasons = len(lay.starts)
