@@ -132,7 +132,7 @@ def weekly_intensity(daily: NDArray[np.float64], first_day: np.datetime64,
                      population: NDArray[np.float64] | None, p: SeasonalParams
                      ) -> WeeklyIntensity:
     """Daily counts (regions, days) from ``first_day`` -> weekly rates and their MEM levels."""
-    start = np.datetime64(first_day, "D").astype(object)
+    start = np.asarray(first_day, dtype="datetime64[D]").item()
     weekly = weekly_sum(daily, start, system="iso", max_missing=0)
     rates = weekly.values
     if population is not None:

@@ -132,3 +132,49 @@ def test_explanation_names_the_level() -> None:
 def test_bad_parameters_name_the_key(params: dict, match: str) -> None:
     with pytest.raises(SeasonalParamError, match=match):
         seasonal_params(params, {"gp_ari": None, "cases": None})
+
+
+def test_policy_runs_on_stored_observations(session) -> None:  # type: ignore[no-untyped-def]
+    """End to end through the store: stored daily counts -> evaluate_districts -> the stored
+    explanation names the level."""
+    from datetime import UTC, datetime
+
+    import pandas as pd
+    from sqlalchemy import select
+
+    from server.services.evaluation import evaluate_districts
+    from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+    from server.store.models import Assessment, Region
+    from server.store.models import Ruleset as RulesetRow
+    from server.store.vintages import append_vintage
+
+    data = _data(seed=4)
+    upsert_regions(session=session, records=[
+        RegionRecord(code=code, name=f"Quillby {code}", level="district", parent=None,
+                     population=int(pop)) for code, pop in zip(data.regions, data.population,
+                                                               strict=True)])
+    upsert_measures(session=session, records=[
+        MeasureRecord(name=m, unit="n", kind="count", aggregation="sum")
+        for m in ("cases", "tests", "positives", "hosp_admissions", "gp_ari", "icu_occupied",
+                  "icu_staffed", "ww_concentration", "ww_flow")])
+    days = pd.to_datetime(data.dates).date
+    rows = pd.DataFrame(
+        [(code, MEASURE, day, float(v)) for r, code in enumerate(data.regions)
+         for day, v in zip(days, data.district[MEASURE][r], strict=True)],
+        columns=["region", "measure", "ref_date", "value"])
+    append_vintage(session=session, feed="gp", received_at=datetime(2025, 3, 20, tzinfo=UTC),
+                   checksum="seasonal-test", rows=rows)
+    rs = parse_ruleset(POLICY)
+    row = RulesetRow(name=rs.name, version=str(rs.version), yaml_text=POLICY, sha256=rs.sha256,
+                     author="t", created_at=datetime.now(UTC), status="draft")
+    session.add(row)
+    session.flush()
+    run = evaluate_districts(session=session, ruleset_row=row)
+    assert run is not None and run.evaluation is not None
+    expected = district_indicators(data, rs)["seasonal_intensity"].estimate
+    qa = run.evaluation.regions.index("QA")
+    assert_allclose(run.evaluation.indicators["seasonal_intensity"].estimate[qa], expected[0])
+    sentences = [a.explanation["sentence"] for a in session.scalars(
+        select(Assessment).join(Region, Region.id == Assessment.region_id)
+        .where(Region.code == "QA"))]
+    assert any("Respiratory intensity very high (4)" in s for s in sentences)
