@@ -12,8 +12,9 @@ scale by :func:`server.indicators.seasonal.seasonal_intensity`.
 
 The indicator's value on a day is the level of the newest complete ISO week (ended on or before
 that day): 0 below the epidemic threshold, 1 low, 2 medium, 3 high, 4 very high. A week without a
-value, and every week before ``min_seasons`` past seasons exist ("not enough seasons"), has no
-value: the engine reads it as missing (unknown). ``age_days`` counts the days since that week's
+value has none (missing, unknown); every week before ``min_seasons`` past seasons exist has none
+either and carries ``no_baseline`` (unknown, explained as "no baseline yet (not enough past
+seasons)"). ``age_days`` counts the days since that week's
 Sunday.
 """
 
@@ -31,6 +32,7 @@ from server.indicators.seasonal import (
     DELTA,
     INTENSITY_LEVELS,
     MAX_SEASONS,
+    NOT_ENOUGH_SEASONS,
     THRESHOLD_LEVEL,
     SeasonalIntensity,
     seasonal_intensity,
@@ -168,6 +170,9 @@ def seasonal_series(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
         return IndicatorSeries(estimate=daily.copy())
     w = weekly_intensity(daily, d.dates[0], d.population, p)
     level, age = _on_days(w.result.level, w.week_starts, d.dates)
+    short, _ = _on_days((w.result.state == NOT_ENOUGH_SEASONS).astype(np.float64),
+                        w.week_starts, d.dates)
     stale = d.stale_of(p.measure)
     invalid = d.invalid_of(p.measure, reach=7)
-    return IndicatorSeries(estimate=level, age_days=age, stale=stale, invalid=invalid)
+    return IndicatorSeries(estimate=level, age_days=age, stale=stale, invalid=invalid,
+                           no_baseline=short > 0.5)

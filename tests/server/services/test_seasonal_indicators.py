@@ -117,6 +117,13 @@ def test_explanation_names_the_level() -> None:
     day = int(np.flatnonzero(series.estimate[0] == 2)[0])
     sentence = result.explain(0, day).sentence
     assert "Respiratory intensity medium (2)" in sentence
+    # a day with a complete week but fewer than three past seasons: no baseline yet
+    early = int(np.flatnonzero(data.dates == np.datetime64("2021-01-10"))[0])
+    assert np.isnan(series.estimate[0, early]) and series.no_baseline[0, early]
+    item = result.explain(0, early).data["criteria"][0]
+    assert item["status"] == "no baseline"
+    assert ("Respiratory intensity has no baseline yet (not enough past seasons)"
+            in result.explain(0, early).sentence)
     assert number_text(rs.indicator("seasonal_intensity"), 4.0) == "very high (4)"
     assert number_text(rs.indicator("seasonal_intensity"), 2.5) == "2"  # not a level: a number
 
