@@ -248,9 +248,11 @@ def mem_thresholds(
     Notes
     -----
     With ``n = max(1, round(30 / k))`` for ``k`` seasons pooled, the ``n`` highest pre-epidemic
-    weekly values of each season (weeks before its epidemic; all weeks when it has none) are
-    pooled into ``x`` and the ``n`` highest epidemic values into ``y``. With ``z_a`` the standard
-    normal quantile (one-sided, as the package's ``qnorm(1 - (1 - a) / 1)``):
+    weekly values of each season (weeks before its epidemic) are pooled into ``x`` and the ``n``
+    highest epidemic values into ``y``. A season whose MAP slope is under ``delta`` from its
+    first week has no epidemic and gives no values: in mem its optimum is the curve's row 0, so
+    ``memtiming`` takes start = end = 0 and ``datos[-(0:n)]`` leaves no pre-epidemic weeks.
+    With ``z_a`` the standard normal quantile (one-sided: ``qnorm(1 - (1 - a) / 1)`` in mem):
 
     - epidemic threshold ``mean(x) + z_0.95 * sd(x) / sqrt(m)`` (``m`` values; "point": without
       the ``sqrt(m)``);
@@ -269,7 +271,7 @@ def mem_thresholds(
     week = np.arange(v.shape[-1])[None, None, :]
     s, e = t.start[..., None], t.end[..., None]
     has = t.length[..., None] > 0
-    pre_mask = pool[..., None] & np.where(has, week < s, True)
+    pre_mask = pool[..., None] & has & (week < s)  # no epidemic: no values, as mem
     epi_mask = pool[..., None] & has & (week >= s) & (week <= e)
     pre = _top_n(v, pre_mask, n)
     epi = _top_n(v, epi_mask, n)

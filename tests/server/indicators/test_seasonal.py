@@ -85,6 +85,18 @@ def test_epidemic_timing_flat_season_is_all_epidemic_or_none() -> None:
     assert none.length[0, 0] == 0
 
 
+def test_season_without_epidemic_gives_no_values() -> None:
+    # memtiming with the optimum at the MAP curve's row 0: start = end = 0, and R's
+    # datos[-(0:n)] drops every week, so such a season adds neither pre nor epidemic values.
+    # a flat 40-week season (each week adds 2.5 < 2.8 points) beside seasons A, B and C
+    s = np.concatenate([np.full((1, 1, 40), 5.0),
+                        np.pad(SEASONS, ((0, 0), (0, 0), (0, 30)), constant_values=NAN)], axis=1)
+    th = mem_thresholds(s, smooth=False)
+    assert th.seasons[0] == 4 and th.n[0] == 8  # round(30 / 4) = 7.5 -> 8
+    pre = th.pre_values[0][np.isfinite(th.pre_values[0])]
+    assert_allclose(np.sort(pre), [0, 1, 1, 1, 2, 2])  # only seasons A, B, C give values
+
+
 @pytest.mark.parametrize(("seasons", "n"), [
     (3, 10), (4, 8),    # 30/4 = 7.5 rounds half to even -> 8 (R round, IEC 60559 [from memory])
     (7, 4), (12, 2),    # 30/12 = 2.5 -> 2
