@@ -296,3 +296,50 @@ def test_bad_calendar_is_refused() -> None:
                                                       dtype="datetime64[D]"))
     with pytest.raises(ValueError, match="start_week"):
         season_layout(_mondays("2020-01-06", 3), start_week=60)
+
+
+def _mem_by_the_r_steps(seasons: list[np.ndarray]) -> tuple[float, np.ndarray]:
+    """One region, season by season, as the mem source's loops read (no vectorising): the MAP
+    curve by explicit window sums (calcular.map), statsmodels WLS for the smoothing (suavizado),
+    the slope rule (calcular.optimo.criterio), max.n.valores and the mean-CI limits with scipy."""
+    n = max(1, round(30 / len(seasons)))
+    pre_all, epi_all = [], []
+    for x in seasons:
+        w = len(x)
+        best, start = [0.0], [0]
+        for s in range(1, w + 1):
+            sums = [x[i:i + s].sum() for i in range(w - s + 1)]
+            best.append(max(sums))
+            start.append(sums.index(max(sums)))
+        pct = 100 * np.array(best) / x.sum()
+        t = np.arange(w + 1.0)
+        smooth = np.maximum([sm.WLS(pct, sm.add_constant(t - e),
+                                    weights=np.exp(-0.5 * (t - e) ** 2)).fit().params[0]
+                             for e in t], 0)
+        slope = np.diff(smooth)
+        under = [s for s in range(1, w + 1) if slope[s - 1] < 2.8]
+        length = (min(under) - 1) if under else w
+        if length == 0:
+            continue
+        a = start[length]
+        pre_all += sorted(x[:a], reverse=True)[:n]
+        epi_all += sorted(x[a:a + length], reverse=True)[:n]
+    pre, epi = np.array(pre_all), np.log(np.array(epi_all))
+    threshold = stats.norm.ppf(0.95, loc=pre.mean(), scale=stats.sem(pre))
+    levels = np.exp(stats.norm.ppf([0.40, 0.90, 0.975], loc=epi.mean(), scale=stats.sem(epi)))
+    return float(threshold), levels
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_many_regions_equal_the_r_steps_one_season_at_a_time(seed: int) -> None:
+    rng = np.random.default_rng(100 + seed)
+    n_seasons = int(rng.integers(3, 13))
+    t = np.arange(30)
+    peak = 12 + rng.normal(0, 3, size=(4, n_seasons, 1))
+    height = 200 * np.exp(rng.normal(0, 0.5, size=(4, n_seasons, 1)))
+    s = rng.poisson(8 + height * np.exp(-0.5 * ((t - peak) / 2.5) ** 2)).astype(float)
+    th = mem_thresholds(s)
+    for r in range(4):
+        threshold, levels = _mem_by_the_r_steps(list(s[r]))
+        assert_allclose(th.epidemic[r], threshold, rtol=1e-10)
+        assert_allclose(th.intensity[r], levels, rtol=1e-10)
