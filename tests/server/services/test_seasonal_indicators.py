@@ -185,3 +185,11 @@ def test_policy_runs_on_stored_observations(session) -> None:  # type: ignore[no
         select(Assessment).join(Region, Region.id == Assessment.region_id)
         .where(Region.code == "QA"))]
     assert any("Respiratory intensity very high (4)" in s for s in sentences)
+
+
+def test_policy_with_a_non_integer_season_week_is_refused_with_its_line() -> None:
+    from rules.errors import RulesetError
+
+    bad = POLICY.replace("start_week: 40", "start_week: 40.5")
+    with pytest.raises(RulesetError, match=r":\d+:\d+: .*params\.start_week.*positive int"):
+        parse_ruleset(bad, source="seasonal.yaml")
