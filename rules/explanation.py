@@ -36,10 +36,11 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from rules.formatting import number_text, reading_text, value_text, with_unit
+from rules.formatting import level_names, number_text, reading_text, value_text, with_unit
 from rules.levels import (
     REASON_INVALID,
     REASON_MISSING,
+    REASON_NO_BASELINE,
     REASON_NOWCAST,
     REASON_SMALL_COUNT,
     REASON_STALE,
@@ -60,6 +61,7 @@ _REASONS = {
     REASON_NOWCAST: "nowcast excluded",
     REASON_SMALL_COUNT: "count below minimum",
     REASON_INVALID: "invalid",
+    REASON_NO_BASELINE: "no baseline",
 }
 
 
@@ -146,6 +148,8 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
         return f"{label} still incomplete (nowcasts not used)"
     if item["status"] == "invalid":
         return f"{label} data invalid (a stored value cannot be used)"
+    if item["status"] == "no baseline":
+        return f"{label} has no baseline yet (not enough past seasons)"
     return f"{label} data {item['status']}"
 
 
@@ -162,6 +166,8 @@ def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> fl
 
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
+    if level_names(spec) is not None and float(thr).is_integer():
+        return number_text(spec, thr)  # "medium (2)"
     return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
 
 

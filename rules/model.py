@@ -51,6 +51,10 @@ _KNOWN_PARAMS: dict[str, tuple[type, float]] = {
     "serial_interval_sd": (float, 0.0),
     "samples": (int, 1),
     "per": (float, 0.0),
+    "start_week": (int, 1),  # seasonal_intensity (ranges checked by the services layer)
+    "end_week": (int, 1),
+    "seasons": (int, 1),
+    "min_seasons": (int, 1),
 }
 
 
