@@ -68,6 +68,7 @@ __all__ = [
     "RecordLine",
     "forecast_record",
     "forecast_record_as_known",
+    "forecasts_stored",
     "read_known",
     "record_lines",
     "store_forecasts",
@@ -202,7 +203,10 @@ def read_known(
 # -- storing ------------------------------------------------------------------------------------
 
 def _baselines(forecast: QuantileForecast, known: KnownData) -> NDArray[np.float64]:
-    """Each forecast region's mean of the target over the 7 days ending at the origin."""
+    """Each forecast region's mean of the target over the 7 days ending at the origin (NaN where
+    ``known`` lacks the target's measures or the region)."""
+    if any(m not in known.values for m in TARGET_MEASURES.get(forecast.target, ("?",))):
+        return np.full(len(forecast.regions), np.nan)
     series = known.target(forecast.target)
     origin = np.datetime64(forecast.origin, "D")
     end = int((origin - known.dates[0]).astype(np.int64))

@@ -4,6 +4,7 @@ replay, and the page sentences."""
 from __future__ import annotations
 
 from datetime import UTC, date, datetime, time, timedelta
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -12,11 +13,17 @@ from numpy.testing import assert_allclose
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from server.feeds.definition import load_feeds
+from server.feeds.sources import Payload
 from server.indicators.forecast_scores import last_week_mean, poisson_persistence, score_forecasts
 from server.indicators.quantile_forecast import DEFAULT_LEVELS, QuantileForecast
 from server.services.backtest import as_known_cutoff
+from server.services.database import Database
+from server.services.evaluation import evaluate_if_behind, store_forecasts_after_tiers
+from server.services.feeds import ingest_recorded
 from server.services.forecast_record import (
     ForecastRecordError,
+    KnownData,
     PoissonPersistence,
     forecast_record,
     forecast_record_as_known,
@@ -29,6 +36,7 @@ from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures,
 from server.store.errors import UnknownCodeError
 from server.store.models import ForecastQuantiles, ForecastRun
 from server.store.vintages import append_vintage
+from tests.server.conftest import cases_csv, seed_small_office
 
 FIRST = date(2026, 3, 2)
 DAYS = 70
@@ -171,3 +179,35 @@ def test_record_lines_keep_the_newest_scored(session: Session, store: Sim) -> No
     assert all(0 <= x.inside_90 <= 20 and x.relative_wis is not None for x in lines)
     assert record_lines(session=session, region="A0", horizons=(14,), last=60)[0].forecasts == (
         DAYS - 1 - 14 - 30 + 1)
+
+
+class _Broken:
+    name = "broken"
+    measures = ("hosp_admissions",)
+
+    def __call__(self, known: KnownData) -> list[QuantileForecast]:
+        raise RuntimeError("model blew up")
+
+
+def test_morning_stores_forecasts_after_the_tiers(committed_db: Database, tmp_path: Path,
+                                                  caplog: pytest.LogCaptureFixture) -> None:
+    path = seed_small_office(committed_db, tmp_path)
+    path.write_text(path.read_text().replace("positives]", "positives, hosp_admissions]"))
+    feed = load_feeds(path)["long-csv"]
+    cases = cases_csv(30)
+    admissions = cases.split(b"\n", 1)[1].replace(b",cases,", b",hosp_admissions,")
+    receipt = ingest_recorded(committed_db, feed=feed, evaluate=False,
+                              payload=Payload.from_bytes("push", cases + admissions)).receipt
+    assert receipt.rows_accepted == 180, receipt
+    run = evaluate_if_behind(committed_db, forecaster=_Broken())
+    assert run is not None and run.written > 0  # the tiers stand
+    assert "storing the forecasts at cutoff" in caplog.text
+    with committed_db.sessions() as session:
+        assert session.scalar(select(func.count()).select_from(ForecastRun)) == 0
+    # the next start stores them (default forecaster), once
+    assert store_forecasts_after_tiers(committed_db, run.data_cutoff) == 3
+    assert store_forecasts_after_tiers(committed_db, run.data_cutoff) == 0
+    with committed_db.sessions() as session:
+        stored = session.scalars(select(ForecastRun)).one()
+        assert (stored.target, stored.data_cutoff, stored.origin) == (
+            "hosp_admissions", run.data_cutoff, date(2026, 3, 31))
