@@ -38,6 +38,7 @@ from sqlalchemy.orm import Session
 
 from server.indicators.forecast_scores import (
     ForecastRecord,
+    ForecastScores,
     last_week_mean,
     poisson_persistence,
     score_forecasts,
@@ -80,6 +81,8 @@ log = logging.getLogger(__name__)
 
 #: Days of history a forecaster is given, ending at the newest day known at the cutoff.
 HISTORY_DAYS = 56
+#: Region forecasts scored in one pass (bounds the memory of the quantile arrays).
+SCORE_CHUNK = 100_000
 #: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds.
 TARGET_MEASURES: dict[str, tuple[str, ...]] = {
     "hosp_admissions": ("hosp_admissions",),
@@ -368,26 +371,50 @@ def _score(
         first = min(m.forecast.origin for m in items) + timedelta(days=int(h.min()))
         last_day = max(m.forecast.origin for m in items) + timedelta(days=int(h.max()))
         out_rows, outcome = _outcomes(session, target, regions, first, last_day)
-        values = np.concatenate([m.forecast.values for m in items])
-        baseline = np.concatenate([m.baseline for m in items])
         region_idx = np.concatenate(
             [[row_of[c] for c in m.forecast.regions] for m in items]).astype(np.int64)
-        out_idx = np.asarray([out_rows[regions[i]] for i in region_idx], dtype=np.int64)
-        day0 = np.concatenate([
-            np.full(len(m.forecast.regions), (m.forecast.origin - first).days) for m in items])
-        cols = day0[:, None] + h[None, :]
-        inside = (cols >= 0) & (cols < outcome.shape[1])
-        observed = np.where(inside, outcome[out_idx[:, None], np.clip(cols, 0, outcome.shape[1]
-                                                                      - 1)], np.nan)
         order = np.concatenate([
             np.full(len(m.forecast.regions), m.cutoff.timestamp()) for m in items])
-        scores = score_forecasts(values, levels, observed, baseline)
+        parts = []
+        for chunk in _chunks(items):
+            baseline = np.concatenate([m.baseline for m in chunk])
+            out_idx = np.concatenate([[out_rows[c] for c in m.forecast.regions] for m in chunk]
+                                     ).astype(np.int64)
+            day0 = np.concatenate([np.full(len(m.forecast.regions), (m.forecast.origin - first)
+                                           .days) for m in chunk])
+            cols = day0[:, None] + h[None, :]
+            inside = (cols >= 0) & (cols < outcome.shape[1])
+            observed = np.where(
+                inside, outcome[out_idx[:, None], np.clip(cols, 0, outcome.shape[1] - 1)], np.nan)
+            values = np.concatenate([m.forecast.values for m in chunk])
+            parts.append(score_forecasts(values, levels, observed, baseline))
+        scores = ForecastScores(
+            scored=np.concatenate([p.scored for p in parts]),
+            wis=np.concatenate([p.wis for p in parts]),
+            naive_error=np.concatenate([p.naive_error for p in parts]),
+            inside_50=np.concatenate([p.inside_50 for p in parts]),
+            inside_90=np.concatenate([p.inside_90 for p in parts]),
+            has_50=parts[0].has_50, has_90=parts[0].has_90,
+        )
         rec = summarise_scores(scores, groups=region_idx, n_groups=len(regions), order=order,
                                horizons=h, last=last)
         cells.extend(_cells(rec, target, scenario, regions))
         if pooled:
             cells.extend(_cells(_pool(rec, h), target, scenario, [None]))
     return cells
+
+
+def _chunks(items: Sequence[_Made]) -> Iterable[Sequence[_Made]]:
+    """Consecutive runs of ``items`` holding about :data:`SCORE_CHUNK` region forecasts each."""
+    size = SCORE_CHUNK
+    start, n = 0, 0
+    for k, m in enumerate(items):
+        n += len(m.forecast.regions)
+        if n >= size:
+            yield items[start: k + 1]
+            start, n = k + 1, 0
+    if start < len(items):
+        yield items[start:]
 
 
 def _pool(rec: ForecastRecord, h: NDArray[np.int64]) -> ForecastRecord:

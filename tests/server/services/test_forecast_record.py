@@ -13,6 +13,7 @@ from numpy.testing import assert_allclose
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+import server.services.forecast_record as forecast_record_module
 from server.feeds.definition import load_feeds
 from server.feeds.sources import Payload
 from server.indicators.forecast_scores import last_week_mean, poisson_persistence, score_forecasts
@@ -144,7 +145,7 @@ def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> N
 
 
 def test_as_known_record_equals_record_of_stored_mornings(
-    session: Session, store: Sim
+    session: Session, store: Sim, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # the replay never stores; the same forecasts stored morning by morning score the same
     start, end = FIRST + timedelta(days=10), FIRST + timedelta(days=60)
@@ -154,6 +155,7 @@ def test_as_known_record_equals_record_of_stored_mornings(
                                 forecaster=FORECASTER)
         day += timedelta(days=1)
     stored = forecast_record(session=session, last=None, pooled=True)
+    monkeypatch.setattr(forecast_record_module, "SCORE_CHUNK", 5)  # scored in many passes
     replay = forecast_record_as_known(session=session, forecaster=FORECASTER, start=start,
                                       end=end)
     key = lambda c: (c.target, c.scenario, c.region or "", c.horizon)  # noqa: E731
