@@ -35,7 +35,7 @@ from server.services.forecast_record import (
 )
 from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.errors import UnknownCodeError
-from server.store.models import ForecastQuantiles, ForecastRun
+from server.store.models import ForecastQuantiles, ForecastRun, Observation
 from server.store.vintages import append_vintage
 from tests.server.conftest import cases_csv, seed_small_office
 
@@ -213,3 +213,24 @@ def test_morning_stores_forecasts_after_the_tiers(committed_db: Database, tmp_pa
         stored = session.scalars(select(ForecastRun)).one()
         assert (stored.target, stored.data_cutoff, stored.origin) == (
             "hosp_admissions", run.data_cutoff, date(2026, 3, 31))
+
+
+@pytest.mark.slow
+def test_district_dossier_carries_the_record_of_district_and_area(demo_session: Session) -> None:
+    from server.services.dossier import district_dossier
+    from server.store.models import Region
+
+    last = demo_session.scalar(select(func.max(Observation.ref_date)))
+    assert last is not None
+    # 40 mornings, origins last - 40 .. last - 1: h-day forecasts of origins up to last - h
+    # have outcomes (34 at 7 days, 27 at 14)
+    for k in range(40, 0, -1):
+        store_morning_forecasts(session=demo_session,
+                                cutoff=as_known_cutoff(last - timedelta(days=k)))
+    code = demo_session.scalars(
+        select(Region.code).where(Region.level == "district").order_by(Region.code)).first()
+    assert code is not None
+    lines = district_dossier(session=demo_session, code=code).forecast_record
+    assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
+        ("hosp_admissions", 7, 34), ("hosp_admissions", 14, 27),
+        ("icu_occupied", 7, 34), ("icu_occupied", 14, 27)}
