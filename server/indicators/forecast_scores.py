@@ -213,8 +213,8 @@ def forecast_record(
     size = n_groups * n_h
 
     def total(a: NDArray[np.generic]) -> FloatArray:
-        return np.bincount(cell, weights=a[use].astype(np.float64), minlength=size).reshape(
-            n_groups, n_h)
+        sums = np.bincount(cell, weights=a[use].astype(np.float64), minlength=size)
+        return sums.astype(np.float64).reshape(n_groups, n_h)
 
     count = np.bincount(cell, minlength=size).reshape(n_groups, n_h)
     in50 = total(scores.inside_50).astype(np.int64)
