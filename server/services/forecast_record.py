@@ -246,6 +246,12 @@ def store_forecasts(
             raise ForecastRecordError(
                 f"{fc.target}/{fc.scenario}: quantiles must be finite (region "
                 f"{fc.regions[int(np.argwhere(~np.isfinite(values))[0][0])]!r})")
+        crossed = np.diff(values, axis=2) < 0
+        if crossed.any():
+            r, h, _ = np.argwhere(crossed)[0]
+            raise ForecastRecordError(
+                f"{fc.target}/{fc.scenario}: quantiles decrease with the level (region "
+                f"{fc.regions[int(r)]!r}, horizon {int(fc.horizons[int(h)])})")
         base = _baselines(fc, known)
         with session.begin_nested():
             old = select(ForecastRun.id).where(

@@ -114,6 +114,13 @@ def test_store_forecasts_refuses_unknown_region_and_target(
                            values=np.zeros((1, 1, 5)))
     with pytest.raises(ForecastRecordError, match="target: 'deaths'"):
         store_forecasts(session=session, forecasts=[bad], cutoff=cutoff, known=known)
+    crossing = QuantileForecast(
+        target="hosp_admissions", scenario="x", regions=("D0", "D1"), origin=FIRST,
+        horizons=np.array([1, 7]), levels=np.array(DEFAULT_LEVELS),
+        values=np.array([[[1, 2, 3, 4, 5]] * 2, [[1, 2, 3, 4, 5], [1, 2, 4, 3, 5]]], float))
+    with pytest.raises(ForecastRecordError, match="region 'D1', horizon 7"):
+        store_forecasts(session=session, forecasts=[crossing], cutoff=cutoff, known=known)
+    assert session.scalar(select(func.count()).select_from(ForecastRun)) == 0
 
 
 def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> None:
