@@ -214,7 +214,8 @@ def _forecast_lines(cells: list) -> list[str]:  # type: ignore[type-arg]
     if not pooled:
         return []
     out = ["", "Forecast record (each morning's forecasts from the data known that morning, "
-           "against the values known now; WIS relative to the error of last week's mean; "
+           "against the values known now, the last 7 days left to settle; WIS relative to the "
+           "error of last week's mean; "
            "every horizon and region in forecast_record.csv with --output):",
            "  target, scenario, horizon: forecasts, 50 % band, 90 % band, mean WIS, "
            "relative WIS"]

@@ -67,6 +67,7 @@ __all__ = [
     "PoissonPersistence",
     "RecordCell",
     "RecordLine",
+    "SETTLE_DAYS",
     "forecast_record",
     "forecast_record_as_known",
     "forecasts_stored",
@@ -81,6 +82,10 @@ log = logging.getLogger(__name__)
 
 #: Days of history a forecaster is given, ending at the newest day known at the cutoff.
 HISTORY_DAYS = 56
+#: Target days this close to the newest stored day of a target are not scored yet: their counts
+#: are still being reported (common practice, no source; the nowcast, docs/estimate.md, shows how
+#: much of a day arrives late).
+SETTLE_DAYS = 7
 #: Region forecasts scored in one pass (bounds the memory of the quantile arrays).
 SCORE_CHUNK = 100_000
 #: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds.
@@ -350,18 +355,29 @@ class _Made:
 
 def _outcomes(
     session: Session, target: str, regions: Sequence[str], start: date, end: date,
+    settle_days: int,
 ) -> tuple[dict[str, int], NDArray[np.float64]]:
-    """The target's values as known now, (regions, days) from ``start``."""
+    """The target's values as known now, (regions, days) from ``start``; NaN on the last
+    ``settle_days`` days of the target's stored data (not final yet)."""
     have = _present(session, TARGET_MEASURES[target])
     if len(have) < len(TARGET_MEASURES[target]):
         return {c: i for i, c in enumerate(regions)}, np.full((len(regions), 1), np.nan)
-    dense = read_dense(session=session, measures=list(TARGET_MEASURES[target]), start=start,
-                       end=end, regions=list(regions))
-    return {c: i for i, c in enumerate(dense.regions)}, target_values(target, dense.values)
+    measures = list(TARGET_MEASURES[target])
+    dense = read_dense(session=session, measures=measures, start=start, end=end,
+                       regions=list(regions))
+    values = target_values(target, dense.values)
+    newest = session.scalar(
+        select(func.max(Observation.ref_date)).join(Measure, Measure.id == Observation.measure_id)
+        .where(Measure.name.in_(measures)))
+    if newest is not None and settle_days > 0:
+        unsettled = dense.dates > np.datetime64(newest - timedelta(days=settle_days), "D")
+        values = np.where(unsettled[None, :], np.nan, values)
+    return {c: i for i, c in enumerate(dense.regions)}, values
 
 
 def _score(
     session: Session, made: Sequence[_Made], *, last: int | None, pooled: bool,
+    settle_days: int,
 ) -> list[RecordCell]:
     groups: dict[tuple[str, str, tuple[int, ...], tuple[float, ...]], list[_Made]] = {}
     for m in made:
@@ -376,7 +392,7 @@ def _score(
         row_of = {c: i for i, c in enumerate(regions)}
         first = min(m.forecast.origin for m in items) + timedelta(days=int(h.min()))
         last_day = max(m.forecast.origin for m in items) + timedelta(days=int(h.max()))
-        out_rows, outcome = _outcomes(session, target, regions, first, last_day)
+        out_rows, outcome = _outcomes(session, target, regions, first, last_day, settle_days)
         region_idx = np.concatenate(
             [[row_of[c] for c in m.forecast.regions] for m in items]).astype(np.int64)
         order = np.concatenate([
@@ -511,23 +527,25 @@ def _stored(
 def forecast_record(
     *, session: Session, target: str | None = None, scenario: str | None = None,
     regions: Sequence[str] | None = None, last: int | None = 60, pooled: bool = False,
-    since: date | None = None,
+    since: date | None = None, settle_days: int = SETTLE_DAYS,
 ) -> list[RecordCell]:
     """The record of the stored forecasts, per target, scenario, region and horizon.
 
-    Only forecasts whose target day has an outcome (as known now) count; of those, each cell's
+    Only forecasts whose target day has an outcome (as known now, and at least ``settle_days``
+    before the newest stored day of the target) count; of those, each cell's
     newest ``last`` (all with None). ``pooled`` adds a row per target, scenario and horizon with
     every region's newest ``last`` together (``region`` None). Without ``since``, only runs
-    whose origin is within ``last`` + 28 days of the newest stored origin are read (enough for
-    daily forecasts up to 21 days ahead).
+    whose origin is within ``last + 28 + settle_days`` days of the newest stored origin are
+    read (enough for daily forecasts up to 21 days ahead).
     """
     if since is None and last is not None:
         newest = session.scalar(select(func.max(ForecastRun.origin)))
         if newest is None:
             return []
-        since = newest - timedelta(days=last + 28)
+        since = newest - timedelta(days=last + 28 + settle_days)
     return _score(session, _stored(session, target=target, scenario=scenario, regions=regions,
-                                   since=since), last=last, pooled=pooled)
+                                   since=since), last=last, pooled=pooled,
+                  settle_days=settle_days)
 
 
 # -- the record over the past, as known each morning ---------------------------------------------
@@ -535,14 +553,15 @@ def forecast_record(
 def forecast_record_as_known(
     *, session: Session, forecaster: Forecaster | None = None, time_zone: tzinfo = UTC,
     start: date | None = None, end: date | None = None, last: int | None = None,
-    step: int = 1,
+    step: int = 1, settle_days: int = SETTLE_DAYS,
 ) -> list[RecordCell]:
     """The record of ``forecaster`` over the past, each morning on the data known that morning.
 
     Morning ``t`` (every ``step`` days from ``start``, default the 8th stored day, to ``end``,
     default the last) sees the rows received by the end of local day ``t + 1``
     (:func:`server.services.backtest.as_known_cutoff`), :data:`HISTORY_DAYS` days of them.
-    Nothing is stored. Returns per-region cells and the pooled cells (``region`` None).
+    Nothing is stored; outcomes as in :func:`forecast_record`. Returns per-region cells and the
+    pooled cells (``region`` None).
     """
     from server.services.backtest import as_known_cutoff, data_span
 
@@ -600,7 +619,7 @@ def forecast_record_as_known(
                                   for k, m in enumerate(measures)})
         for f in fc(known):
             made.append(_Made(forecast=f, baseline=_baselines(f, known), cutoff=cutoff))
-    return _score(session, made, last=last, pooled=True)
+    return _score(session, made, last=last, pooled=True, settle_days=settle_days)
 
 
 # -- sentences for pages ------------------------------------------------------------------------
@@ -621,11 +640,12 @@ class RecordLine:
 
 def record_lines(
     *, session: Session, region: str, horizons: Sequence[int] = (7, 14),
-    scenario: str | None = None, last: int = 60,
+    scenario: str | None = None, last: int = 60, settle_days: int = SETTLE_DAYS,
 ) -> list[RecordLine]:
     """The record sentences of one district or area: per target and chosen horizon, the newest
     ``last`` scored forecasts (targets with none scored yet are left out)."""
-    cells = forecast_record(session=session, scenario=scenario, regions=[region], last=last)
+    cells = forecast_record(session=session, scenario=scenario, regions=[region], last=last,
+                            settle_days=settle_days)
     return [
         RecordLine(target=c.target, scenario=c.scenario, horizon=c.horizon,
                    forecasts=c.forecasts, inside_90=c.inside_90,

@@ -23,6 +23,7 @@ from server.services.database import Database
 from server.services.evaluation import evaluate_if_behind, store_forecasts_after_tiers
 from server.services.feeds import ingest_recorded
 from server.services.forecast_record import (
+    SETTLE_DAYS,
     ForecastRecordError,
     KnownData,
     PoissonPersistence,
@@ -140,7 +141,9 @@ def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> N
             hist = (final if t >= 61 else reported)[i: i + 1, : t + 1]
             values.append(poisson_persistence(hist, horizons=h, levels=DEFAULT_LEVELS)[0])
             baseline.append(last_week_mean(hist)[0])
-            observed.append(np.where(t + h < DAYS, final[i, np.minimum(t + h, DAYS - 1)], np.nan))
+            # outcomes: final values, the last SETTLE_DAYS stored days not yet scored
+            settled = t + h <= DAYS - 1 - SETTLE_DAYS
+            observed.append(np.where(settled, final[i, np.minimum(t + h, DAYS - 1)], np.nan))
         s = score_forecasts(np.array(values), DEFAULT_LEVELS, np.array(observed),
                             np.array(baseline))
         for j, hz in enumerate(h):
@@ -175,7 +178,8 @@ def test_as_known_record_equals_record_of_stored_mornings(
     pooled = next(c for c in replay if c.region is None and c.target == "hosp_admissions"
                   and c.horizon == 7)
     # stationary Poisson counts: the 90 % band holds about 90 % (plumbing check; measured 0.91)
-    assert pooled.forecasts == 6 * 51 and 0.84 < pooled.coverage_90 < 0.97
+    # mornings 10..55 have a settled 7-day outcome (day <= 69 - 7)
+    assert pooled.forecasts == 6 * 46 and 0.84 < pooled.coverage_90 < 0.97
 
 
 def test_record_lines_keep_the_newest_scored(session: Session, store: Sim) -> None:
@@ -183,11 +187,14 @@ def test_record_lines_keep_the_newest_scored(session: Session, store: Sim) -> No
         store_morning_forecasts(session=session, cutoff=as_known_cutoff(FIRST + timedelta(t)),
                                 forecaster=FORECASTER)
     lines = record_lines(session=session, region="D3", horizons=(7, 14), last=20)
+    # settled outcomes end at day 62: 7-day forecasts of mornings 30..55, 14-day of 30..48
     assert [(x.target, x.horizon, x.forecasts) for x in lines] == [
-        ("hosp_admissions", 7, 20), ("hosp_admissions", 14, 20)]
+        ("hosp_admissions", 7, 20), ("hosp_admissions", 14, 19)]
     assert all(0 <= x.inside_90 <= 20 and x.relative_wis is not None for x in lines)
-    assert record_lines(session=session, region="A0", horizons=(14,), last=60)[0].forecasts == (
-        DAYS - 1 - 14 - 30 + 1)
+    assert record_lines(session=session, region="A0", horizons=(14,), last=60)[0].forecasts == 19
+    # without waiting for the last days to settle: mornings 30..55
+    assert record_lines(session=session, region="A0", horizons=(14,), last=60,
+                        settle_days=0)[0].forecasts == 26
 
 
 class _Broken:
@@ -229,8 +236,8 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
 
     last = demo_session.scalar(select(func.max(Observation.ref_date)))
     assert last is not None
-    # 40 mornings, origins last - 40 .. last - 1: h-day forecasts of origins up to last - h
-    # have outcomes (34 at 7 days, 27 at 14)
+    # 40 mornings, origins last - 40 .. last - 1: h-day forecasts of origins up to
+    # last - 7 - h have settled outcomes (27 at 7 days, 20 at 14)
     for k in range(40, 0, -1):
         store_morning_forecasts(session=demo_session,
                                 cutoff=as_known_cutoff(last - timedelta(days=k)))
@@ -239,5 +246,5 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
     assert code is not None
     lines = district_dossier(session=demo_session, code=code).forecast_record
     assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
-        ("hosp_admissions", 7, 34), ("hosp_admissions", 14, 27),
-        ("icu_occupied", 7, 34), ("icu_occupied", 14, 27)}
+        ("hosp_admissions", 7, 27), ("hosp_admissions", 14, 20),
+        ("icu_occupied", 7, 27), ("icu_occupied", 14, 20)}
