@@ -75,6 +75,20 @@ def _num(x: float) -> float | None:
     return None if x is None or not math.isfinite(float(x)) else float(x)
 
 
+def _signal_message(ev: Evaluation, indicator: str, message: str, r: int, d: int) -> str:
+    """A signal's message with ``{reading}`` replaced by its indicator's value and interval that
+    day ("9 (6–14) days"; :func:`rules.formatting.reading_text`)."""
+    if "{reading}" not in message:
+        return message
+    series, spec = ev.indicators[indicator], ev.ruleset.indicator(indicator)
+
+    def at(values: Any) -> float | None:
+        return None if values is None else _num(values[r, d])
+
+    text = reading_text(spec, at(series.estimate), at(series.lower), at(series.upper))
+    return message.replace("{reading}", text)
+
+
 def _value_text(spec: IndicatorSpec, item: dict[str, Any]) -> str:
     if item["statistic"] == "bounds":
         return reading_text(spec, item["value"], item["lower"], item["upper"])
@@ -375,7 +389,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
             "id": s.id,
             "active": bool(ev.prepare[i, r, d]),
             "run": int(ev.prepare_run[i, r, d]),
-            "message": s.message,
+            "message": _signal_message(ev, s.indicator, s.message, r, d),
         }
         for i, s in enumerate(rs.prepare)
     ]
