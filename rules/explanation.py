@@ -51,7 +51,7 @@ from rules.ruleset import INSUFFICIENT_DATA
 if TYPE_CHECKING:
     from rules.evaluation import Evaluation
 
-__all__ = ["Explanation", "explain"]
+__all__ = ["Explanation", "explain", "signal_message"]
 
 _REASONS = {
     0: "ok",
@@ -75,12 +75,15 @@ def _num(x: float) -> float | None:
     return None if x is None or not math.isfinite(float(x)) else float(x)
 
 
-def _signal_message(ev: Evaluation, indicator: str, message: str, r: int, d: int) -> str:
-    """A signal's message with ``{reading}`` replaced by its indicator's value and interval that
-    day ("9 (6–14) days"; :func:`rules.formatting.reading_text`)."""
+def signal_message(ev: Evaluation, signal: int, r: int, d: int) -> str:
+    """Prepare signal ``signal``'s message for region ``r`` on day ``d``, with ``{reading}``
+    replaced by its indicator's value and interval that day ("9 (6–14) days";
+    :func:`rules.formatting.reading_text`)."""
+    sig = ev.ruleset.prepare[signal]
+    message = sig.message
     if "{reading}" not in message:
         return message
-    series, spec = ev.indicators[indicator], ev.ruleset.indicator(indicator)
+    series, spec = ev.indicators[sig.indicator], ev.ruleset.indicator(sig.indicator)
 
     def at(values: Any) -> float | None:
         return None if values is None else _num(values[r, d])
@@ -389,7 +392,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
             "id": s.id,
             "active": bool(ev.prepare[i, r, d]),
             "run": int(ev.prepare_run[i, r, d]),
-            "message": _signal_message(ev, s.indicator, s.message, r, d),
+            "message": signal_message(ev, i, r, d),
         }
         for i, s in enumerate(rs.prepare)
     ]
