@@ -42,6 +42,7 @@ if TYPE_CHECKING:  # district_indicators registers these builders: import it laz
 
 __all__ = [
     "DEFAULT_SCENARIO",
+    "admissions_with_nowcast",
     "GROWTH_WINDOW",
     "days_to_share_series",
     "forecast_scenarios",
@@ -92,6 +93,15 @@ def area_sum(values: NDArray[np.float64], group: NDArray[np.int64], n: int) -> N
     return out
 
 
+def admissions_with_nowcast(d: DistrictData) -> NDArray[np.float64]:
+    """Daily hospital admissions per district, the nowcast on the days still being reported."""
+    adm = d.district["hosp_admissions"]
+    nc = d.nowcast_of("hosp_admissions", window=1)
+    if nc is not None:
+        adm = np.where(nc.nowcast & np.isfinite(nc.estimate), nc.estimate, adm)
+    return adm
+
+
 def _inputs(d: DistrictData) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64],
                                  NDArray[np.float64], NDArray[np.float64]]:
     """Area index per district; per area census, staffed beds, growth rate and its error."""
@@ -100,10 +110,7 @@ def _inputs(d: DistrictData) -> tuple[NDArray[np.int64], NDArray[np.float64], ND
     n = int(group.max()) + 1 if group.size else 0
     first = np.zeros(n, dtype=np.int64)
     first[group[::-1]] = np.arange(group.size)[::-1]
-    adm = d.district["hosp_admissions"]
-    nc = d.nowcast_of("hosp_admissions", window=1)
-    if nc is not None:
-        adm = np.where(nc.nowcast & np.isfinite(nc.estimate), nc.estimate, adm)
+    adm = admissions_with_nowcast(d)
     area_adm = area_sum(adm, group, n)
     fit = rolling_growth_rate(area_adm, GROWTH_WINDOW, day_of_week=False, max_missing=2)
     enough = trailing_sum(np.nan_to_num(area_adm), GROWTH_WINDOW) >= MIN_ADMISSIONS

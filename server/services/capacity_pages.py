@@ -15,7 +15,7 @@ import math
 import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date, datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -25,7 +25,11 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.indicators.capacity import CapacityForecasts, capacity_forecasts
 from server.indicators.quantile_forecast import QuantileForecast
-from server.services.capacity_indicators import as_path, forecast_scenarios
+from server.services.capacity_indicators import (
+    admissions_with_nowcast,
+    as_path,
+    forecast_scenarios,
+)
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, newest_run_of
@@ -33,7 +37,7 @@ from server.services.policies import parsed
 from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = ["AreaCapacity", "DistrictForecast", "Fan", "NoCapacityError", "area_capacity",
-           "district_forecast"]
+           "capacity_forecasts_at", "district_forecast"]
 
 #: Days of history loaded (growth window, the days shown before the forecast, nowcasts).
 HISTORY = 70
@@ -197,10 +201,7 @@ def _inputs(session: Session, area_code: str) -> _Inputs:
     index = [data.regions.index(c) for c, _n in districts if c in data.regions]
     if not index:
         raise NoCapacityError(area_code)
-    adm = data.district["hosp_admissions"]
-    nc = data.nowcast_of("hosp_admissions", window=1)
-    if nc is not None:
-        adm = np.where(nc.nowcast & np.isfinite(nc.estimate), nc.estimate, adm)
+    adm = admissions_with_nowcast(data)
     occ = data.area_of_district["icu_occupied"][index[0]]
     staffed = data.area_of_district["icu_staffed"][index[0]]
     summed = adm[index].sum(axis=0)
@@ -267,3 +268,43 @@ def district_forecast(*, session: Session, code: str) -> DistrictForecast | None
         fans=_fans(own, "hosp_admissions", 0, labels), days=_days(area, 0, labels),
         forecasts=own.forecasts,
     )
+
+
+def capacity_forecasts_at(
+    *, session: Session, end: date, as_of: datetime | None = None, ruleset: Ruleset | None = None,
+    sims: int = 400, seed: int = 0,
+) -> list[QuantileForecast]:
+    """Every forecast tierwise makes from the data known at ``as_of``, origin ``end``.
+
+    Districts: ``hosp_admissions`` per scenario; areas (the districts' parents): the same for
+    their summed admissions plus ``icu_occupied`` and ``icu_share`` (percent of staffed beds).
+    Admissions on days still being reported are the nowcast. Scenarios are the ruleset's (the
+    active one when None; "the trend continues" when it declares none). A region whose inputs
+    are missing on ``end`` gets NaN rows. For the forecast record (storing and scoring).
+    """
+    if ruleset is None:
+        row = active_ruleset(session=session)
+        ruleset = parsed(row) if row is not None else None
+    scenarios = [as_path(s) for s in forecast_scenarios(ruleset)]
+    data = load_district_data(session=session, start=end - timedelta(days=HISTORY - 1), end=end,
+                              as_of=as_of)
+    adm = admissions_with_nowcast(data)
+    out = list(capacity_forecasts(adm, regions=data.regions, origin=end, scenarios=scenarios,
+                                  horizon=HORIZON, sims=sims, seed=seed).forecasts)
+    parent = aliased(Region)
+    links = dict(session.execute(
+        select(Region.code, parent.code).join(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district")).all())
+    areas = sorted({links[c] for c in data.regions if c in links})
+    if not areas:
+        return out
+    first = {a: next(i for i, c in enumerate(data.regions) if links.get(c) == a) for a in areas}
+    member = np.array([[links.get(c) == a for c in data.regions] for a in areas], dtype=float)
+    summed = member @ np.nan_to_num(adm)
+    summed[(member @ np.isnan(adm).astype(float)) > 0] = np.nan
+    occ = np.array([data.area_of_district["icu_occupied"][first[a], -1] for a in areas])
+    staffed = np.array([data.area_of_district["icu_staffed"][first[a], -1] for a in areas])
+    out += capacity_forecasts(summed, regions=tuple(areas), origin=end, scenarios=scenarios,
+                              occupied=occ, staffed=staffed, horizon=HORIZON, sims=sims,
+                              shares=(_share_of(ruleset),), seed=seed + 1).forecasts
+    return out

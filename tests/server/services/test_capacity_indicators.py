@@ -121,3 +121,18 @@ def test_demo_policy_prepares_for_icu_capacity_before_the_icu_criterion(
     assert fired, "the icu-capacity signal never fired on the demo"
     ahead = [severe[r] > fired[r] for r in severe if r in fired]  # type: ignore[operator]
     assert ahead and all(ahead)
+
+
+def test_forecasts_at_a_cutoff_cover_every_district_and_area(demo_session: Session) -> None:
+    from datetime import date
+
+    from server.services.capacity_pages import capacity_forecasts_at
+
+    got = capacity_forecasts_at(session=demo_session, end=date(2026, 11, 20), sims=100)
+    kinds = {(f.target, f.scenario, len(f.regions)) for f in got}
+    scenarios = {"trend", "levels-off", "halves"}
+    assert kinds == {("hosp_admissions", s, 14) for s in scenarios} | {
+        (t, s, 3) for t in ("hosp_admissions", "icu_occupied", "icu_share") for s in scenarios}
+    share = next(f for f in got if f.target == "icu_share" and f.scenario == "trend")
+    assert share.regions == ("R1", "R2", "R3") and share.origin == date(2026, 11, 20)
+    assert np.isfinite(share.values).all()
