@@ -92,3 +92,13 @@ def test_projected_capacity_signal_explains_itself_with_its_reading() -> None:
     sentence = explain(ev, 0, 3).sentence
     assert sentence.endswith(
         "Prepare: ICU share projected to reach 85% in 9 (6–14) days if the trend continues.")
+
+
+def test_summary_lists_the_scenarios() -> None:
+    from rules import summary
+
+    text = summary(parse_ruleset(RULES.replace("SCENARIO", "trend")))
+    assert "Scenario levels-off (if it levels off within 7 days): growth rate 0/day within 7 " \
+           "days" in text
+    assert "Scenario halves (if admissions halve within 14 days): admissions x0.5 within 14 " \
+           "days" in text
