@@ -11,8 +11,8 @@ Uncertainty. :func:`capacity_forecasts` draws the growth rate from its sampling 
 and the current admission level from its Poisson (Jeffreys) posterior (parameter uncertainty),
 then each day's admissions and bed census given them (count noise): predictive quantiles come
 from the simulated values, one :class:`QuantileForecast` per target and scenario. The day a
-scenario reaches a share of staffed beds is read from each simulation's *expected* share path,
-so its interval carries the parameter uncertainty only. :func:`projected_share` is the
+scenario reaches a share of staffed beds is read from simulated census paths (parameters and
+count noise, one deviate per path). :func:`projected_share` is the
 deterministic counterpart used for the daily indicator series of the rules engine: the expected
 path at the growth rate's median and at its 5 % and 95 % quantiles (the path is monotone in r).
 
@@ -29,7 +29,7 @@ from datetime import date
 from typing import Literal
 
 import numpy as np
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 
 from server.indicators._arrays import FloatArray, as_regions_days, check_window
 from server.indicators.growth import growth_rate
@@ -50,6 +50,7 @@ EXACT_BELOW = 2.0
 Z90 = 1.6448536269514722
 
 ScenarioKind = Literal["trend", "growth_to", "change"]
+AnyFloat = NDArray[np.floating]  # the simulation runs in single precision
 TARGETS = ("hosp_admissions", "icu_occupied", "icu_share")
 
 
@@ -117,10 +118,12 @@ class OccupancyPath:
 
 @dataclass(frozen=True, eq=False)
 class DaysToShare:
-    """First day (1..horizon) a scenario's expected share of staffed beds reaches ``share``.
+    """First day (1..horizon) a scenario's simulated census reaches ``share`` of staffed beds.
 
     ``estimate`` is the median over the simulations, ``lower``/``upper`` the 5 % and 95 %
     quantiles; 0 = already reached today, ``inf`` = not within ``horizon``, NaN = no data.
+    Each simulated path carries its parameters and count noise with one normal deviate per
+    simulation over the horizon (a census changes slowly: the same patients stay).
     """
 
     scenario: str
@@ -387,6 +390,7 @@ def capacity_forecasts(
         z_adm = rng.standard_normal((m, sims, horizon), dtype=np.float32)
         z_occ = rng.standard_normal((m, sims, horizon), dtype=np.float32) if capacity else z_adm
         hist = history_weights(r, los, horizon) if capacity and census.any() else None
+        z_path = rng.standard_normal((m, sims, 1), dtype=np.float32)
         for sc in scenarios:
             log_mult = sc.log_multiplier(r, horizon)
             with np.errstate(over="ignore"):
@@ -410,7 +414,12 @@ def capacity_forecasts(
             out[("icu_occupied", sc.name)][blk] = np.where(keep, qb, np.nan)
             out[("icu_share", sc.name)][blk] = np.where(
                 keep, 100.0 * qb / np.where(census, b0[blk], 1.0)[:, None, None], np.nan)
-            share_path = 100.0 * path.total / np.where(census, b0[blk], 1.0)[:, None, None]
+            # Crossing days from census paths whose count noise keeps one deviate per
+            # simulation over the horizon (a census changes slowly: the same patients).
+            paths = np.concatenate([np.broadcast_to(occ0[:, None, None], (m, sims, 1)),
+                                    count_draws(rng, cur + new, var, third,
+                                                np.broadcast_to(z_path, cur.shape))], axis=-1)
+            share_path = 100.0 * paths / np.where(census, b0[blk], 1.0)[:, None, None]
             for q_share in shares:
                 first = _first_day(share_path, float(q_share))
                 qd = np.quantile(first, (0.5, 0.05, 0.95), axis=1, method="inverted_cdf")
@@ -439,9 +448,8 @@ def _level_factor(r: FloatArray) -> FloatArray:
 
 
 def count_draws(
-    rng: np.random.Generator, mean: FloatArray, var: FloatArray, third: FloatArray,
-    z: FloatArray,
-) -> FloatArray:
+    rng: np.random.Generator, mean: AnyFloat, var: AnyFloat, third: AnyFloat, z: AnyFloat,
+) -> AnyFloat:
     """Integer draws with the given mean, variance and third cumulant, from normal deviates z.
 
     Where ``mean >= EXACT_BELOW`` the Cornish-Fisher expansion to the skewness term is rounded:
@@ -478,7 +486,7 @@ def count_draws(
     return x
 
 
-def _quantiles(x: FloatArray, levels: FloatArray) -> FloatArray:
+def _quantiles(x: AnyFloat, levels: FloatArray) -> AnyFloat:
     """Quantiles over axis 1 of (regions, sims, horizon) -> (regions, horizon, levels), with
     numpy's default "linear" rule (position q (n - 1) in the sorted sample)."""
     s = np.sort(np.moveaxis(x, 1, -1), axis=-1)
