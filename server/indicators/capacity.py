@@ -26,7 +26,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date
-from typing import Literal
+from typing import Literal, cast
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -92,15 +92,17 @@ class Scenario:
     def log_multiplier(self, r: ArrayLike, horizon: int) -> FloatArray:
         """:math:`\\sum_{i \\le h} r_i` for h = 1..horizon (closed form of the cumulative sum of
         :meth:`growth_path`), shaped ``r.shape + (horizon,)``."""
-        r = np.asarray(r, dtype=np.float64)[..., np.newaxis]
-        h = np.arange(1, horizon + 1, dtype=np.float64)
+        arr = np.asarray(r)
+        dt = np.float32 if arr.dtype == np.float32 else np.float64  # single stays single
+        rate = cast(AnyFloat, np.asarray(arr, dtype=dt)[..., np.newaxis])
+        h: AnyFloat = np.arange(1, horizon + 1, dtype=dt)
         if self.kind == "trend":
-            return r * h
+            return rate * h
         if self.kind == "growth_to":
-            ramp = np.cumsum(np.minimum(h / self.within_days, 1.0))
-            return r * h + (self.value - r) * ramp
+            ramp: AnyFloat = np.cumsum(np.minimum(h / self.within_days, 1.0)).astype(dt)
+            return rate * h + (self.value - rate) * ramp
         log_v = np.log(self.value) * np.minimum(h, self.within_days) / self.within_days
-        return np.broadcast_to(log_v, r.shape[:-1] + (horizon,)).copy()
+        return np.broadcast_to(log_v.astype(dt), rate.shape[:-1] + (horizon,)).copy()
 
 
 @dataclass(frozen=True, eq=False)
@@ -174,14 +176,16 @@ def history_weights(r: ArrayLike, los: LengthOfStay, horizon: int) -> tuple[Floa
               a_0 = \\frac{O_0}{\\sum_j e^{-rj} S(j)}.
 
     At r = 0 and K beyond the longest stay, :math:`R_0` is the equilibrium residual-stay
-    survival and :math:`a_0 = O_0 / E[L]` (Little 1961).
+    survival and :math:`a_0 = O_0 / E[L]` (Little 1961). Single-precision ``r`` gives
+    single-precision results (the simulation's); anything else is computed in double.
     """
-    r = np.asarray(r, dtype=np.float64)
+    r = np.asarray(r)
+    r = r if r.dtype == np.float32 else r.astype(np.float64)
     surv = _survival(los, HISTORY_DAYS + horizon + 1)
     j = np.arange(HISTORY_DAYS)
-    shifted = surv[j[:, None] + np.arange(horizon + 1)[None, :]]  # (K, H + 1): S(j + h)
+    shifted = surv[j[:, None] + np.arange(horizon + 1)[None, :]].astype(r.dtype)  # S(j + h)
     with np.errstate(over="ignore", invalid="ignore"):
-        w = np.exp(-r[..., None] * j)
+        w = np.exp(-r[..., None] * j.astype(r.dtype))
         tail = w @ shifted
         base = tail[..., 0]
         return tail / base[..., None], 1.0 / base  # absurd rates overflow: NaN, not a value
@@ -204,18 +208,19 @@ def expected_occupancy(
     ----------
     Little JDC (1961). A proof for the queuing formula L = lambda W. Oper Res 9:383-387.
     """
-    o0 = np.asarray(occupied, dtype=np.float64)
-    r = np.asarray(r, dtype=np.float64)
+    r = np.asarray(r)
+    r = r if r.dtype == np.float32 else r.astype(np.float64)
+    o0 = np.asarray(occupied, dtype=r.dtype)
     o0, r = np.broadcast_arrays(o0, r)
     remain, per_patient = history if history is not None else history_weights(r, los, horizon)
     log_mult = scenario.log_multiplier(r, horizon)
     with np.errstate(over="ignore", invalid="ignore"):
-        adm = np.empty(r.shape + (horizon + 1,))
+        adm = np.empty(r.shape + (horizon + 1,), dtype=r.dtype)
         adm[..., 0] = o0 * per_patient
         adm[..., 1:] = adm[..., :1] * np.exp(log_mult)
         surv = _survival(los, horizon + 1)
         lag = np.arange(horizon + 1)[None, :] - np.arange(1, horizon + 1)[:, None]  # h - s
-        kernel = np.where(lag >= 0, surv[np.clip(lag, 0, None)], 0.0)  # (H, H + 1)
+        kernel = np.where(lag >= 0, surv[np.clip(lag, 0, None)], 0.0).astype(r.dtype)
         new = adm[..., 1:] @ kernel
     return OccupancyPath(current=o0[..., None] * remain, new=new, admissions=adm)
 
@@ -381,6 +386,7 @@ def capacity_forecasts(
             good, r_hat[blk], 0.0)[:, None]
         mu = rng.gamma(np.where(good, week[blk], 0.0)[:, None] + 0.5, size=(m, sims))
         a0 = mu * _level_factor(r)
+        r32 = r.astype(np.float32)
         census = good & np.isfinite(o0[blk]) & (b0[blk] > 0)
         occ0 = np.where(census, np.rint(o0[blk]), 0.0)
         # One set of normal deviates per block, shared by the scenarios (common random numbers:
@@ -389,12 +395,12 @@ def capacity_forecasts(
         # the means are capped at MAX_MEAN): half the memory traffic of the largest arrays.
         z_adm = rng.standard_normal((m, sims, horizon), dtype=np.float32)
         z_occ = rng.standard_normal((m, sims, horizon), dtype=np.float32) if capacity else z_adm
-        hist = history_weights(r, los, horizon) if capacity and census.any() else None
+        hist = history_weights(r32, los, horizon) if capacity and census.any() else None
         z_path = rng.standard_normal((m, sims, 1), dtype=np.float32)
         for sc in scenarios:
-            log_mult = sc.log_multiplier(r, horizon)
+            log_mult = sc.log_multiplier(r32, horizon)
             with np.errstate(over="ignore"):
-                lam = np.exp(log_mult.astype(np.float32))
+                lam = np.exp(log_mult)
                 lam *= a0[..., None].astype(np.float32)
                 np.minimum(lam, MAX_MEAN, out=lam)
             draws = count_draws(rng, lam, lam, lam, z_adm)
@@ -402,9 +408,9 @@ def capacity_forecasts(
             out[("hosp_admissions", sc.name)][blk] = np.where(good[:, None, None], q, np.nan)
             if hist is None:
                 continue
-            path = expected_occupancy(occ0[:, None], r, sc, los, horizon, history=hist)
-            cur = path.current[..., 1:].astype(np.float32)
-            new = np.minimum(path.new[..., 1:], MAX_MEAN).astype(np.float32)
+            path = expected_occupancy(occ0[:, None], r32, sc, los, horizon, history=hist)
+            cur = path.current[..., 1:]
+            new = np.minimum(path.new[..., 1:], MAX_MEAN)
             stay = np.clip(cur / np.maximum(occ0, 1.0).astype(np.float32)[:, None, None], 0, 1)
             var = cur * (1.0 - stay) + new
             third = cur * (1.0 - stay) * (1.0 - 2.0 * stay) + new
