@@ -173,6 +173,67 @@ def baseline_icu(a0: np.ndarray, o0: np.ndarray, r: np.ndarray, surv: np.ndarray
 
 
 CHANGEPOINT_TARGET_S = 30.0
+CAPACITY_TARGET_S = 3.0
+CAPACITY_SIMS = 200
+
+
+def baseline_capacity(adm: np.ndarray, occ: np.ndarray, staffed: np.ndarray,
+                      scenarios: list[object], sims: int, horizon: int = 21) -> None:
+    """A plain per-region loop: statsmodels quasi-Poisson fit of the last 14 days, then per
+    scenario exact numpy Poisson/binomial draws and numpy quantiles (the same model)."""
+    from server.indicators.capacity import history_weights
+
+    rng = np.random.default_rng(1)
+    x = sm.add_constant(np.arange(14.0))
+    los = length_of_stay()
+    surv = los.survival
+    levels = [0.05, 0.25, 0.5, 0.75, 0.95]
+    for i in range(adm.shape[0]):
+        fit = sm.GLM(adm[i, -14:], x, family=sm.families.Poisson()).fit(scale="X2")
+        r = rng.normal(fit.params[1], fit.bse[1], sims)
+        mu = rng.gamma(adm[i, -7:].sum() + 0.5, size=sims)
+        a0 = mu * np.expm1(-r) / np.expm1(-7 * r)
+        remain, per = history_weights(r, los, horizon)
+        for sc in scenarios:
+            mult = np.exp(sc.log_multiplier(r, horizon))  # type: ignore[attr-defined]
+            draws = rng.poisson(a0[:, None] * mult)
+            np.quantile(draws, levels, axis=0)
+            icu = occ[i] * per[:, None] * mult
+            new = np.stack([np.convolve(row, surv)[1: horizon + 1] for row in
+                            np.concatenate([np.zeros((sims, 1)), icu], axis=1)])
+            beds = rng.binomial(int(occ[i]), remain[:, 1:]) + rng.poisson(new)
+            np.quantile(beds, levels, axis=0)
+            np.quantile(100 * (occ[i] * remain[:, 1:] + new) / staffed[i], levels, axis=0)
+
+
+def bench_capacity(regions: int, sample: int) -> None:
+    """Capacity forecasts: regions x 3 scenarios x 21 days with intervals, all targets."""
+    from datetime import date
+
+    from server.indicators.capacity import Scenario, capacity_forecasts
+
+    rng = np.random.default_rng(9)
+    days = 28
+    r = rng.uniform(-0.04, 0.06, (regions, 1))
+    adm = rng.poisson(rng.uniform(2, 40, (regions, 1)) * np.exp(r * np.arange(days))).astype(float)
+    occ = np.rint(rng.uniform(5, 60, regions))
+    staffed = np.full(regions, 100.0)
+    scenarios = [Scenario(name="trend"),
+                 Scenario(name="levels-off", kind="growth_to", value=0.0, within_days=7),
+                 Scenario(name="halves", kind="change", value=0.5, within_days=14)]
+    names = [f"R{i}" for i in range(regions)]
+    took, cpu = timed_cpu(lambda: capacity_forecasts(
+        adm, regions=names, origin=date(2030, 1, 1), scenarios=scenarios, occupied=occ,
+        staffed=staffed, sims=CAPACITY_SIMS))
+    sample = min(sample, regions)
+    base = timed(lambda: baseline_capacity(adm[:sample], occ[:sample], staffed[:sample],
+                                           list(scenarios), CAPACITY_SIMS)) * regions / sample
+    print(f"{'capacity forecasts':<24} {took:8.3f} s  ({cpu:7.3f} s)   baseline {base:8.2f} s  "
+          f"ratio {base / took:7.1f}x  ({regions} regions x 3 scenarios x 21 days, "
+          f"{CAPACITY_SIMS} simulations, admissions + ICU beds + share; loop on {sample})")
+    verdict = "PASS" if took < CAPACITY_TARGET_S else "MISS"
+    note = "" if regions == 3000 else " [target is for 3000 regions]"
+    print(f"{verdict}: capacity forecasts {took:.3f} s < {CAPACITY_TARGET_S:g} s{note}")
 
 
 def synthetic_breaks(regions: int, days: int, seed: int = 2025) -> tuple[np.ndarray, np.ndarray]:
@@ -257,11 +318,16 @@ def main() -> None:
     parser.add_argument("--sample", type=int, default=5, help="regions in each baseline loop")
     parser.add_argument("--only-changepoints", action="store_true",
                         help="run only the change-point section")
+    parser.add_argument("--only-capacity", action="store_true",
+                        help="run only the capacity-forecast section")
     parser.add_argument("--store", action="store_true",
                         help="also time the nowcast's store read in a temporary SQLite")
     args = parser.parse_args()
     if args.only_changepoints:
         bench_changepoints(args.regions, args.days, min(args.sample, 2))
+        return
+    if args.only_capacity:
+        bench_capacity(args.regions, max(args.sample, 20))
         return
     regions, days = args.regions, args.days
     data = synthetic(regions, days)
@@ -354,6 +420,7 @@ def main() -> None:
     if args.store:
         forecast_store_section(cases, regions)
 
+    bench_capacity(regions, max(args.sample, 20))
     bench_changepoints(regions, days, min(args.sample, 2))
 
 # -- nowcasts from vintages (triangle, pooled weekday delays, 7-day nowcast) ---------------------

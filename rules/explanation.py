@@ -52,7 +52,7 @@ from rules.ruleset import INSUFFICIENT_DATA
 if TYPE_CHECKING:
     from rules.evaluation import Evaluation
 
-__all__ = ["Explanation", "explain"]
+__all__ = ["Explanation", "explain", "signal_message"]
 
 _REASONS = {
     0: "ok",
@@ -75,6 +75,23 @@ class Explanation:
 
 def _num(x: float) -> float | None:
     return None if x is None or not math.isfinite(float(x)) else float(x)
+
+
+def signal_message(ev: Evaluation, signal: int, r: int, d: int) -> str:
+    """Prepare signal ``signal``'s message for region ``r`` on day ``d``, with ``{reading}``
+    replaced by its indicator's value and interval that day ("9 (6–14) days";
+    :func:`rules.formatting.reading_text`)."""
+    sig = ev.ruleset.prepare[signal]
+    message = sig.message
+    if "{reading}" not in message:
+        return message
+    series, spec = ev.indicators[sig.indicator], ev.ruleset.indicator(sig.indicator)
+
+    def at(values: Any) -> float | None:
+        return None if values is None else _num(values[r, d])
+
+    text = reading_text(spec, at(series.estimate), at(series.lower), at(series.upper))
+    return message.replace("{reading}", text)
 
 
 def _value_text(spec: IndicatorSpec, item: dict[str, Any]) -> str:
@@ -381,7 +398,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
             "id": s.id,
             "active": bool(ev.prepare[i, r, d]),
             "run": int(ev.prepare_run[i, r, d]),
-            "message": s.message,
+            "message": signal_message(ev, i, r, d),
         }
         for i, s in enumerate(rs.prepare)
     ]

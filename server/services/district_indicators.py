@@ -69,6 +69,7 @@ from server.indicators.serial_interval import gamma_serial_interval
 from server.indicators.wastewater import normalise, to_districts, trend
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
+from server.services.capacity_indicators import days_to_share_series, projected_share_series
 from server.services.errors import ServiceError
 from server.services.seasonal_indicators import seasonal_series
 from server.store import read_dense
@@ -601,6 +602,9 @@ BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
     "ww_trend": lambda d, _r: _ww_trend(d),
     "gp_aberration": lambda d, _r: carry_forward(_gp(d)),
     "seasonal_intensity": seasonal_series,  # weekly MEM levels (seasonal_indicators.py)
+    # Projected ICU pressure under the ruleset's scenarios (server/services/capacity_indicators).
+    "icu_share_projected": lambda d, r: carry_forward(projected_share_series(d, r)),
+    "icu_days_to_share": lambda d, r: carry_forward(days_to_share_series(d, r)),
 }
 
 
