@@ -13,6 +13,7 @@ from fastapi.templating import Jinja2Templates
 from server.services.capacity_pages import area_capacity, district_forecast
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
+from server.services.forecast_record import record_lines
 from server.services.morning import MorningOverview, morning_overview
 from web.charts import (
     admissions_fan_figure,
@@ -114,7 +115,7 @@ def capacity(request: Request, code: str, session: SessionDep, user: StaffDep) -
     area = area_capacity(session=session, code=code)
     return render(request, "staff/capacity.html", {
         "a": area, "charts": [figure_json(capacity_fan_figure(area, f)) for f in area.fans],
-        "record": area.record,
+        "record": record_lines(session=session, region=area.code),
     })
 
 

@@ -156,13 +156,12 @@ def backtest_command(
                 scores = nowcast_accuracy_report(session=session, time_zone=settings.zone)
         if forecasts and as_known:
             from server.services.forecast_record import (
-                DEFAULT_FORECASTER,
                 forecast_record_as_known,
             )
 
             with db.transaction() as session:
                 record = forecast_record_as_known(
-                    session=session, forecaster=DEFAULT_FORECASTER, time_zone=settings.zone,
+                    session=session, forecaster=None, time_zone=settings.zone,
                     start=start, end=end)
     finally:
         db.dispose()

@@ -447,9 +447,13 @@ def capacity_forecasts(
 
 
 def _level_factor(r: FloatArray) -> FloatArray:
-    """Today's expected admissions per expected 7-day sum under growth r: (1-e^-r)/(1-e^-7r)."""
-    with np.errstate(invalid="ignore", divide="ignore"):
-        f = np.expm1(-r) / np.expm1(-7.0 * r)
+    """Today's expected admissions per expected 7-day sum under growth r: (1-e^-r)/(1-e^-7r),
+    written as e^(6r) (e^r-1)/(e^(7r)-1) for r < 0 so that steep declines do not overflow."""
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        pos = np.maximum(r, 0.0)
+        neg = np.minimum(r, 0.0)
+        f = np.where(r >= 0, np.expm1(-pos) / np.expm1(-7.0 * pos),
+                     np.exp(6.0 * neg) * np.expm1(neg) / np.expm1(7.0 * neg))
     return np.where(np.abs(r) < 1e-9, 1.0 / 7.0, f)
 
 

@@ -5,8 +5,9 @@ Both read the same inputs as the engine's projected-capacity indicators
 on the days still being reported), the area's ICU census and staffed beds, as known at the
 newest evaluation run's cutoff, and the active ruleset's scenarios. The forecasts themselves
 come from :func:`server.indicators.capacity.capacity_forecasts` (simulated, 50 % and 90 %
-predictive bands); ``forecasts`` keeps them as :class:`QuantileForecast` objects for the forecast
-record, and ``record`` is where that record's lines go (None until it supplies them).
+predictive bands). The pages show the forecast record beside them
+(:func:`server.services.forecast_record.record_lines`, made by
+:mod:`server.services.capacity_forecaster`).
 """
 
 from __future__ import annotations
@@ -16,7 +17,6 @@ import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
-from typing import Any
 
 import numpy as np
 from sqlalchemy import func, select
@@ -33,7 +33,7 @@ from server.services.capacity_indicators import (
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, newest_run_of
-from server.services.policies import parsed
+from server.services.ruleset_cache import parsed
 from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = ["AreaCapacity", "DistrictForecast", "Fan", "NoCapacityError", "area_capacity",
@@ -97,8 +97,6 @@ class AreaCapacity:
     fans: tuple[Fan, ...]          # ICU beds in use per scenario
     days: tuple[DaysToShareRow, ...]
     forecasts: tuple[QuantileForecast, ...]
-    #: forecast record lines (past forecasts against what happened); None until supplied
-    record: Any = None
 
     @property
     def staffed_now(self) -> float | None:
@@ -120,8 +118,6 @@ class DistrictForecast:
     fans: tuple[Fan, ...]          # the district's hospital admissions per scenario
     days: tuple[DaysToShareRow, ...]  # the area's ICU days to the share, per scenario
     forecasts: tuple[QuantileForecast, ...]
-    #: forecast record lines; None until supplied
-    record: Any = None
 
 
 def _num(x: float) -> float | None:

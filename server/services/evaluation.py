@@ -316,7 +316,7 @@ def store_forecasts_after_tiers(
 ) -> int:
     """The morning's forecast step, after the tiers are committed: store the forecasts made
     from the data known at ``cutoff`` (``forecast_record.store_morning_forecasts``; by default
-    with its ``DEFAULT_FORECASTER``),
+    with its ``default_forecaster``),
     in a transaction of its own, unless forecasts were stored at that cutoff already. A failure
     is logged, never raised: the tiers stand without the forecasts. Returns the rows written.
     """

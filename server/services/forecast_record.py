@@ -19,8 +19,9 @@ morning ``t`` sees what was received by the end of local day ``t + 1`` (the as-k
 ``tierwise backtest``), the forecaster runs on that, and the forecasts are scored the same way.
 
 The forecaster is a parameter everywhere: anything with ``name``, ``measures`` (the stored
-measures it reads) and ``__call__(known) -> Sequence[QuantileForecast]``. Until the capacity
-forecaster is wired, :data:`DEFAULT_FORECASTER` is :class:`PoissonPersistence`.
+measures it reads) and ``__call__(known) -> Sequence[QuantileForecast]``. The default is
+:func:`default_forecaster` (the capacity forecaster; :class:`PoissonPersistence` where there are
+no areas).
 """
 
 from __future__ import annotations
@@ -45,6 +46,7 @@ from server.indicators.forecast_scores import (
 )
 from server.indicators.forecast_scores import forecast_record as summarise_scores
 from server.indicators.quantile_forecast import DEFAULT_LEVELS, QuantileForecast
+from server.services.capacity_forecaster import record_forecaster
 from server.services.errors import ServiceError
 from server.store.errors import UnknownCodeError
 from server.store.models import (
@@ -183,9 +185,15 @@ class PoissonPersistence:
         return out
 
 
-#: The forecaster of the morning's stored forecasts and of ``tierwise backtest``: replace with
-#: the capacity forecaster when it lands (one line).
+#: The forecaster where the capacity forecaster has nothing to forecast (no district has an area).
 DEFAULT_FORECASTER: Forecaster = PoissonPersistence()
+
+
+def default_forecaster(session: Session) -> Forecaster:
+    """The forecaster of the morning's stored forecasts and of ``tierwise backtest``: the
+    capacity forecaster under the active ruleset's first scenario
+    (:mod:`server.services.capacity_forecaster`), else :data:`DEFAULT_FORECASTER`."""
+    return record_forecaster(session) or DEFAULT_FORECASTER
 
 
 # -- reading what was known ---------------------------------------------------------------------
@@ -293,7 +301,7 @@ def store_morning_forecasts(
     Runs after the tiers are written (:func:`server.services.evaluation.evaluate_if_behind`).
     Returns the region rows written (0 when nothing is known yet).
     """
-    fc = forecaster or DEFAULT_FORECASTER
+    fc = forecaster or default_forecaster(session)
     known = read_known(session=session, cutoff=cutoff, measures=_present(session, fc.measures))
     if known is None:
         return 0
@@ -565,7 +573,7 @@ def forecast_record_as_known(
     """
     from server.services.backtest import as_known_cutoff, data_span
 
-    fc = forecaster or DEFAULT_FORECASTER
+    fc = forecaster or default_forecaster(session)
     measures = _present(session, fc.measures)
     first, last_day = data_span(session=session)
     start = start or first + timedelta(days=7)

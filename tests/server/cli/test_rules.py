@@ -115,7 +115,7 @@ def test_backtest_as_known_prints_and_writes_the_forecast_record(
     result = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--as-known",
                  "--no-nowcast-accuracy", "--output", str(tmp_path))
     assert result.exit_code == 0, result.output
-    assert "Forecast record" in result.output and "hosp_admissions, persistence, 14 d:" in (
+    assert "Forecast record" in result.output and "hosp_admissions, trend, 14 d:" in (
         result.output)
     with (tmp_path / "forecast_record.csv").open() as fh:
         rows = list(csv.DictReader(fh))

@@ -245,6 +245,11 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
         select(Region.code).where(Region.level == "district").order_by(Region.code)).first()
     assert code is not None
     lines = district_dossier(session=demo_session, code=code).forecast_record
+    # The capacity forecaster (the default) forecasts from the newest day of admissions, a day
+    # before the newest ICU census, so one more origin has settled (28 at 7 days, 21 at 14).
+    # The district's own admissions are left out: under 10 admissions in 14 days the growth
+    # rate is not estimated (server.indicators.capacity); the area's admissions are forecast but
+    # not stored per area, so they cannot be scored yet.
     assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
-        ("hosp_admissions", 7, 27), ("hosp_admissions", 14, 20),
-        ("icu_occupied", 7, 27), ("icu_occupied", 14, 20)}
+        ("icu_occupied", 7, 28), ("icu_occupied", 14, 21),
+        ("icu_share", 7, 28), ("icu_share", 14, 21)}
