@@ -51,6 +51,7 @@ from server.indicators.nowcast import (
     nowcast,
     triangle_from_vintages,
 )
+from server.indicators.phase import WavePhase, fit_phase, wave_start
 from server.indicators.poisson import (
     IncidenceRate,
     PoissonInterval,
@@ -126,6 +127,7 @@ __all__ = [
     "TestingRate",
     "WastewaterLevel",
     "WastewaterTrend",
+    "WavePhase",
     "WeeklySeries",
     "WindowedSeries",
     "admission_rate",
@@ -139,6 +141,7 @@ __all__ = [
     "estimate_delay",
     "farrington_flexible",
     "fit_growth_curve",
+    "fit_phase",
     "gamma_serial_interval",
     "growth_rate",
     "growth_to_reproduction",
@@ -168,6 +171,7 @@ __all__ = [
     "to_districts",
     "trend",
     "triangle_from_vintages",
+    "wave_start",
     "weekly_sum",
     "weighted_interval_score",
     "wilson_interval",
