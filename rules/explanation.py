@@ -36,7 +36,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from rules.formatting import number_text, reading_text, value_text, with_unit
+from rules.formatting import category_label, number_text, reading_text, value_text, with_unit
 from rules.levels import (
     REASON_INVALID,
     REASON_MISSING,
@@ -162,7 +162,9 @@ def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> fl
 
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
-    return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
+    label = category_label(spec, thr)
+    return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "") + (
+        f" ({label})" if label else "")
 
 
 def _tier(ev: Evaluation, level: int) -> str:

@@ -12,19 +12,38 @@ from __future__ import annotations
 
 from rules.model import IndicatorSpec
 
-__all__ = ["MISSING", "NO_INTERVAL", "interval_text", "number_text", "reading_text",
-           "value_text", "with_unit"]
+__all__ = ["CATEGORIES", "MISSING", "NO_INTERVAL", "category_label", "interval_text",
+           "number_text", "reading_text", "value_text", "with_unit"]
 
 #: A value that is not known (None or not finite upstream).
 MISSING = "n/a"
 #: An interval with a missing bound.
 NO_INTERVAL = "—"
+#: Indicators whose values are category codes 0, 1, ...: the word for each code. A value is
+#: written as its word, a threshold as its number and word ("3 (growing)"). ``wave_phase``:
+#: :data:`server.indicators.phase.PHASE_LABELS` (a test keeps the two equal).
+CATEGORIES: dict[str, tuple[str, ...]] = {
+    "wave_phase": ("declining", "past its turning point", "slowing", "growing"),
+}
+
+
+def category_label(spec: IndicatorSpec, value: float | None) -> str | None:
+    """The word for ``value`` when ``spec`` is a category indicator and ``value`` one of its
+    codes; None otherwise."""
+    labels = CATEGORIES.get(spec.name)
+    if labels is None or value is None or value != int(value) or not 0 <= value < len(labels):
+        return None
+    return labels[int(value)]
 
 
 def number_text(spec: IndicatorSpec, value: float | None) -> str:
-    """``value`` with the spec's decimals, no unit; :data:`MISSING` for None."""
+    """``value`` with the spec's decimals, no unit; :data:`MISSING` for None; the word of a
+    category code (:data:`CATEGORIES`)."""
     if value is None:
         return MISSING
+    label = category_label(spec, value)
+    if label is not None:
+        return label
     return f"{value:.{spec.decimals}f}"
 
 

@@ -13,6 +13,7 @@ from fastapi.templating import Jinja2Templates
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.morning import MorningOverview, morning_overview
+from server.services.phase_indicators import district_phase
 from web.charts import criterion_figure, figure_json, nowcast_figure, timeline_figure
 from web.deps import PageNumber, SessionDep, SettingsDep, StaffDep
 from web.templating import render
@@ -92,6 +93,7 @@ def district(
     return render(request, "staff/district.html", {
         "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
         "nowcast": figure_json(nowcast_figure(dossier.nowcast)) if dossier.nowcast else None,
+        "phase": district_phase(session=session, code=dossier.code, end=dossier.last_day),
     })
 
 

@@ -70,6 +70,7 @@ from server.indicators.wastewater import normalise, to_districts, trend
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
 from server.services.errors import ServiceError
+from server.services.phase_indicators import wave_phase_series
 from server.store import read_dense
 from server.store.models import Catchment, Region
 from server.store.reads import feed_last_dates, read_vintage_rows
@@ -599,6 +600,7 @@ BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
     # Wastewater trends exist on sample days only: prepare signals count samples, not days.
     "ww_trend": lambda d, _r: _ww_trend(d),
     "gp_aberration": lambda d, _r: carry_forward(_gp(d)),
+    "wave_phase": lambda d, r: carry_forward(wave_phase_series(d, r)),  # phase_indicators.py
 }
 
 
