@@ -102,10 +102,57 @@ def phase_section(regions: int, days: int, sample: int) -> tuple[float, float, f
     return wall, cpu, base
 
 
+SCENARIOS = (  # (name, K, a, t0, v, last day): invented waves
+    ("logistic, after the turn", 5000.0, 0.2, 40.0, 1.0, 59),
+    ("logistic, other", 2000.0, 0.3, 30.0, 1.0, 45),
+    ("richards v=2.5, after", 8000.0, 0.15, 45.0, 2.5, 79),
+    ("richards v=0.6, after", 12000.0, 0.1, 50.0, 0.6, 85),
+    ("logistic, before (day 24)", 5000.0, 0.2, 40.0, 1.0, 24),
+)
+
+
+def accuracy_section(reps: int, seed: int = 99) -> None:
+    """Parameter recovery and interval coverage on simulated waves (wave start detected)."""
+    rng = np.random.default_rng(seed)
+    print(f"recovery and 95 % coverage over {reps} simulated waves each (start detected):")
+    for name, k, a, t0, v, last in SCENARIOS:
+        t = np.arange(last + 1, dtype=np.float64)
+        mu = richards_cumulative(t, k, a, t0, v) - richards_cumulative(t - 1, k, a, t0, v)
+        y = rng.poisson(np.broadcast_to(mu + 0.5, (reps, t.size))).astype(np.float64)
+        fit = fit_phase(y, model="logistic" if v == 1.0 else "richards")
+        ok = fit.converged
+
+        def cover(iv: object, truth: float, ok: np.ndarray = ok) -> float:
+            lo, hi = iv.lower[ok], iv.upper[ok]  # type: ignore[attr-defined]
+            return float(np.mean((lo <= truth) & (truth <= hi)))
+
+        share = richards_cumulative(float(last), k, a, t0, v) / k
+        weeks = [mu[last - 7 * j - 6: last - 7 * j + 1].sum() + 3.5 for j in range(3)]
+        r_true = np.log(weeks[0] / weeks[1]) / 7
+        dr_true = np.log(weeks[0] * weeks[2] / weeks[1] ** 2) / 7
+        r_cov = np.mean((fit.growth_rate.lower <= r_true) & (r_true <= fit.growth_rate.upper))
+        dr_cov = np.mean((fit.growth_change.lower <= dr_true)
+                         & (dr_true <= fit.growth_change.upper))
+        k_med = np.median(fit.final_size.estimate[ok]) if ok.any() else np.nan
+        phases = np.bincount(fit.phase[np.isfinite(fit.phase)].astype(int), minlength=4)
+        print(f"  {name:<27} identified {ok.mean():.2f}; K median {k_med:8.0f} (true {k:.0f}) "
+              f"cover {cover(fit.final_size, k):.3f}; t0 median "
+              f"{np.median(fit.turning_day.estimate[ok]):5.1f} cover "
+              f"{cover(fit.turning_day, t0):.3f}; share cover {cover(fit.share_reached, share):.3f}"
+              + (f"; v cover {cover(fit.shape, v):.3f}" if v != 1.0 else "")
+              + f"; weekly r cover {r_cov:.3f}, dr {dr_cov:.3f}; lower-bound flag "
+              f"{fit.final_size_is_lower_bound.mean():.2f}; phases (decl, past, slow, grow) "
+              f"{phases.tolist()}")
+
+
 if __name__ == "__main__":
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--regions", type=int, default=3000)
     parser.add_argument("--days", type=int, default=PHASE_DAYS)
     parser.add_argument("--sample", type=int, default=5)
+    parser.add_argument("--accuracy", type=int, default=0, metavar="REPS",
+                        help="also print recovery and coverage over REPS simulated waves")
     args = parser.parse_args()
     phase_section(args.regions, args.days, args.sample)
+    if args.accuracy:
+        accuracy_section(args.accuracy)
