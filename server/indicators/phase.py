@@ -2,12 +2,11 @@
 
 For every row of a (regions, days) array of daily counts:
 
-1. **Wave start** (:func:`wave_start`). The counts are smoothed by a centred 7-day mean. The
-   first wave in the window starts at the lowest smoothed day before the window's highest one; a
-   later trough starts a newer wave when the smoothed counts after it rise to at least
-   ``rise`` times the trough *and* by at least ``min_rise`` cases a day; the newest such trough
-   starts the current wave. (Common practice, no source; the factor 2 and 3 cases a day are
-   ours.)
+1. **Wave start** (:func:`wave_start`). The counts are smoothed by a centred 7-day mean. A
+   trough separates two waves when the smoothed counts before it had reached 1.5 times it and
+   those after it reach 2 times it, each by at least 3 cases a day; the current wave starts at
+   the lowest day of the last such valley, or, without one, at the lowest day before the
+   window's highest. (Common practice, no source; the factors are ours.)
 2. **Fit** (:func:`fit_phase`). The cumulative Richards curve of :mod:`server.indicators.curves`,
    ``C(t) = K (1 + v exp(-a v (t - t0)))^(-1/v)`` (``v = 1``: logistic), is fitted to the counts
    since the wave start by Poisson maximum likelihood, the count of day ``t`` having mean
@@ -19,8 +18,9 @@ For every row of a (regions, days) array of daily counts:
    for the logistic); the turning day ``t0``; and, from the data, the growth rate of the last
    week's count over the week before and its change over the week before that (the second
    difference of log weekly counts). Intervals: delta method on the inverse Fisher information
-   times a quasi-Poisson dispersion for the fitted quantities; delta method on Poisson weekly
-   counts (variance of ``log N`` about ``1 / N``) times the same dispersion for the weekly ones.
+   times a quasi-Poisson dispersion (daily counts) for the fitted quantities; delta method on
+   Poisson weekly counts (variance of ``log N`` about ``1 / N``) times the dispersion of the
+   weekly counts around the fitted curve's (no weekday pattern) for the weekly ones.
 4. **Phase** (:data:`PHASES`): before the fitted turning point (``T < t0``) a wave is
    *slowing* when the upper bound of the change in the weekly growth rate is below 0, else
    *growing*; after it, *declining* when the upper bound of the last week's growth rate is below
@@ -91,7 +91,7 @@ def _argext(values: FloatArray, lo: NDArray[np.int64], hi: NDArray[np.int64], *,
 
 
 def wave_start(
-    counts: ArrayLike, *, rise: float = 2.0, min_rise: float = 3.0, max_waves: int = 6
+    counts: ArrayLike, *, rise: float = 2.0, dip: float = 1.5, min_rise: float = 3.0
 ) -> NDArray[np.int64]:
     """Index of the day the current wave of each row began (rule in the module docstring).
 
@@ -100,11 +100,11 @@ def wave_start(
     counts : array_like, shape (regions, days)
         Daily counts; NaN marks a missing day.
     rise : float
-        A later trough starts a new wave when the smoothed counts after it reach ``rise`` times it.
+        A trough separates two waves when the smoothed counts after it reach ``rise`` times it...
+    dip : float
+        ... and those before it had reached ``dip`` times it...
     min_rise : float
-        ... and rise by at least this many counts a day.
-    max_waves : int
-        Troughs examined after the first (a bound on the loop; each pass is vectorised).
+        ... each by at least this many counts a day.
 
     Returns
     -------
@@ -112,31 +112,33 @@ def wave_start(
 
     Notes
     -----
-    Smoothed counts ``s`` (centred 7-day mean). First pass: ``p`` = the day of the highest ``s``,
-    start = the last day of the lowest ``s`` on or before ``p``. Each further pass: ``q`` = the
-    last day of the lowest ``s`` after ``p``; when ``max s after q >= rise * s[q]`` and
-    ``>= s[q] + min_rise``, the start moves to ``q`` and ``p`` to the day of that maximum.
-    Common practice, no source.
+    Smoothed counts ``s`` (centred 7-day mean), ``A(d) = max s[..d]``, ``B(d) = max s[d..]``.
+    Day ``d`` lies in a valley between waves when ``A(d) >= dip s[d]``, ``B(d) >= rise s[d]``
+    and both exceed ``s[d]`` by ``min_rise``. The current wave starts at the last day of the
+    lowest ``s`` in the last run of valley days; without one, at the last day of the lowest
+    ``s`` before the highest. Common practice, no source (the factors are ours).
     """
     y = as_nonnegative_counts("counts", counts)
     s = _centred_mean(y)
     rows, days = s.shape
     zero = np.zeros(rows, dtype=np.int64)
-    end = np.full(rows, days - 1, dtype=np.int64)
-    peak = _argext(s, zero, end, find_max=True, last=False)
-    start = _argext(s, zero, peak, find_max=False, last=True)
-    for _ in range(max_waves):
-        after = np.minimum(peak + 1, days - 1)
-        q = _argext(s, after, end, find_max=False, last=True)
-        p2 = _argext(s, q, end, find_max=True, last=False)
-        sq = np.take_along_axis(s, q[:, None], axis=1)[:, 0]
-        sp = np.take_along_axis(s, p2[:, None], axis=1)[:, 0]
-        with np.errstate(invalid="ignore"):
-            new = (peak < days - 1) & (sp >= rise * sq) & (sp >= sq + min_rise)
-        if not new.any():
-            break
-        start, peak = np.where(new, q, start), np.where(new, p2, peak)
-    return start
+    if days == 0:
+        return zero
+    filled = np.where(np.isfinite(s), s, -np.inf)
+    before = np.maximum.accumulate(filled, axis=1)
+    after = np.maximum.accumulate(filled[:, ::-1], axis=1)[:, ::-1]
+    with np.errstate(invalid="ignore"):
+        valley = (np.isfinite(s) & (before >= dip * s) & (after >= rise * s)
+                  & (before >= s + min_rise) & (after >= s + min_rise))
+    has = valley.any(axis=1)
+    idx = np.arange(days)
+    last = np.max(np.where(valley, idx, -1), axis=1)
+    gap = np.max(np.where(~valley & (idx <= last[:, None]), idx, -1), axis=1)
+    in_valley = _argext(s, np.maximum(gap + 1, 0), np.maximum(last, 0), find_max=False,
+                        last=True)
+    peak = _argext(s, zero, np.full(rows, days - 1, dtype=np.int64), find_max=True, last=False)
+    first_wave = _argext(s, zero, peak, find_max=False, last=True)
+    return np.where(has, in_valley, first_wave).astype(np.int64)
 
 
 def _log_cum_and_grad(theta: FloatArray, t: FloatArray, grad: bool = True
@@ -246,7 +248,9 @@ class WavePhase:
     the logistic. ``final_size_is_lower_bound`` is True before the fitted turning point
     (:data:`LOWER_BOUND_WARNING`). ``converged`` is False where the fit stopped at the upper
     bound of the final size or the turning day (still exponential: the final size is not
-    identified); such rows count as before the turning point.
+    identified); such rows count as before the turning point. ``dispersion`` is that of the
+    daily counts (the fitted quantities' intervals), ``weekly_dispersion`` that of the weekly
+    counts (the weekly diagnostics' intervals).
     """
 
     start: NDArray[np.int64]
@@ -266,6 +270,7 @@ class WavePhase:
     model: NDArray[np.int64]
     loglik: FloatArray
     dispersion: FloatArray
+    weekly_dispersion: FloatArray
     converged: NDArray[np.bool_]
     level: float
 
@@ -361,6 +366,26 @@ def _weekly_growth(y: FloatArray, w: FloatArray, last: NDArray[np.int64], phi: F
         se_dr = np.sqrt(phi * (1 / n0 + 4 / n1 + 1 / n2)) / _WEEK
     return (PhaseInterval(r, r - z * se_r, r + z * se_r),
             PhaseInterval(dr, dr - z * se_dr, dr + z * se_dr))
+
+
+def _weekly_dispersion(y: FloatArray, w: FloatArray, mu: FloatArray, start: NDArray[np.int64],
+                       last: NDArray[np.int64], n_par: NDArray[np.int64]) -> FloatArray:
+    """Quasi-Poisson dispersion of the wave's weekly counts (weeks ending at T, T - 7, ...)
+    around the fitted curve's, ``max(1, X^2 / (weeks - p))``; NaN with fewer than p + 3 weeks.
+
+    Weekly sums carry no weekday pattern, so this is the dispersion the weekly diagnostics use.
+    """
+    cy = np.pad(np.cumsum(w * y, axis=1), ((0, 0), (1, 0)))
+    cm = np.pad(np.cumsum(w * mu, axis=1), ((0, 0), (1, 0)))
+    ends = last[:, None] - _WEEK * np.arange(y.shape[1] // _WEEK)[None, :]
+    valid = ends - _WEEK + 1 >= start[:, None]
+    e = np.clip(ends, _WEEK - 1, None)
+    n_obs = np.take_along_axis(cy, e + 1, axis=1) - np.take_along_axis(cy, e + 1 - _WEEK, axis=1)
+    n_fit = np.take_along_axis(cm, e + 1, axis=1) - np.take_along_axis(cm, e + 1 - _WEEK, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pearson = np.where(valid, (n_obs - n_fit) ** 2 / np.maximum(n_fit, _MU_FLOOR), 0.0)
+        dof = valid.sum(axis=1) - n_par
+        return np.where(dof >= 3, np.maximum(1.0, pearson.sum(axis=1) / dof), np.nan)
 
 
 def classify(turned: ArrayLike, growth_upper: ArrayLike, change_upper: ArrayLike) -> FloatArray:
@@ -471,13 +496,16 @@ def fit_phase(
             used[fit_rows] = pick
         theta[fit_rows], ll[fit_rows] = th, llf
         k_free = np.column_stack([np.ones((len(th), 3), dtype=bool), used[fit_rows] == 1])
-        cov_f, phi_f, _ = _covariance(yf, wf, t, th, k_free, 3 + used[fit_rows])
+        cov_f, phi_f, mu_f = _covariance(yf, wf, t, th, k_free, 3 + used[fit_rows])
+        phi_week_f = _weekly_dispersion(yf, wf, mu_f, sf, lf, 3 + used[fit_rows])
         at_bound = (th[:, 0] > hi[:, 0] - np.log(2.0)) | (th[:, 2] > hi[:, 2] - 1.0)
     cov = np.full((rows, 4, 4), np.nan)
     phi = nan.copy()
+    phi_week = np.ones(rows)
     converged = np.zeros(rows, dtype=bool)
     if fit_rows.size:
         cov[fit_rows], phi[fit_rows] = cov_f, phi_f
+        phi_week[fit_rows] = np.where(np.isfinite(phi_week_f), phi_week_f, phi_f)
         converged[fit_rows] = np.isfinite(ll[fit_rows]) & ~at_bound
 
     def wald(i: int, log: bool) -> PhaseInterval:
@@ -505,7 +533,7 @@ def fit_phase(
                                  1 / (1 + np.exp(-(logit + z * se_logit))))
     v_hat = v_iv.estimate
     share_tp = (1.0 + v_hat) ** (-1.0 / v_hat)
-    growth, change = _weekly_growth(y, w, last, np.where(np.isfinite(phi), phi, 1.0), z)
+    growth, change = _weekly_growth(y, w, last, phi_week, z)
     # A fit stopped at the bound of K or t0 is still exponential: not turned, final size unknown.
     turned = converged & (last > t0_iv.estimate)
     phase = np.where(np.isfinite(ll), classify(turned, growth.upper, change.upper), np.nan)
@@ -514,5 +542,5 @@ def fit_phase(
         final_size=k_iv, turning_day=t0_iv, rate=a_iv, shape=v_iv, share_reached=share_iv,
         share_at_turning_point=share_tp, growth_rate=growth, growth_change=change, phase=phase,
         final_size_is_lower_bound=np.isfinite(ll) & ~turned, model=used,
-        loglik=ll, dispersion=phi, converged=converged, level=level,
+        loglik=ll, dispersion=phi, weekly_dispersion=phi_week, converged=converged, level=level,
     )

@@ -19,17 +19,20 @@ one district with its diagnostics.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta, tzinfo
 from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import NDArray
-from sqlalchemy.orm import Session
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
 
 from rules import IndicatorSeries, Ruleset
 from server.indicators._arrays import trailing_sum
+from server.indicators.nowcast import nowcast_window
 from server.indicators.phase import PHASE_LABELS, PHASES, WavePhase, fit_phase
 from server.store import read_dense
+from server.store.models import Region
 
 if TYPE_CHECKING:
     from server.services.district_indicators import DistrictData
@@ -76,8 +79,8 @@ def wave_phase_series(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
     counts, used = cases, np.zeros(cases.shape, dtype=bool)
     nc = d.nowcast_of("cases", window=1)
     if nc is not None:
-        used = nc.nowcast & np.isfinite(nc.estimate)
-        counts = np.where(used, nc.estimate, cases)
+        used = nc.incomplete & np.isfinite(nc.daily)
+        counts = np.where(used, nc.daily, cases)
     cutoffs = _cutoffs(days, max(stride, 1), max(history, 0))
     fit = fit_phase(_windows(counts, cutoffs, min(WINDOW_DAYS, days)))
     estimate[:, cutoffs] = fit.phase.reshape(regions, len(cutoffs))
@@ -143,59 +146,96 @@ def _estimate(iv: object, i: int = 0) -> Estimate:
                     upper=_num(iv.upper[i]))  # type: ignore[attr-defined]
 
 
+@dataclass(frozen=True, kw_only=True)
+class DistrictPhase:
+    """The page panel: the district's wave and that of its area (the sum of the area's
+    districts' cases; None for a district without an area)."""
+
+    district: PhasePanel
+    area: PhasePanel | None
+    area_name: str | None
+
+
 def district_phase(
-    *, session: Session, code: str, end: date, as_of: datetime | None = None
-) -> PhasePanel | None:
-    """The phase of district ``code``'s current wave on ``end`` (None: no cases stored).
+    *, session: Session, code: str, end: date, as_of: datetime | None = None,
+    time_zone: tzinfo = UTC,
+) -> DistrictPhase | None:
+    """The phase of the current wave of district ``code`` and of its area on ``end``.
 
     Uses the cases of the :data:`WINDOW_DAYS` days to ``end`` as known at ``as_of``, with the
-    days still being reported replaced by their nowcast, as the indicator does.
+    days still being reported replaced by their nowcast, as the indicator does; the area's
+    counts are the sums over its districts (nowcasts included). Both are fitted in one batch.
+    None when the district is unknown or has no cases stored.
     """
-    from server.services.district_indicators import district_nowcast
+    from server.services.district_indicators import nowcast_inputs, usable
 
+    parent = aliased(Region)
+    rows = session.execute(
+        select(Region.code, parent.code, parent.name)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district").order_by(Region.code)
+    ).all()
+    codes = tuple(r[0] for r in rows)
+    if code not in codes:
+        return None
+    i = codes.index(code)
+    area, area_name = rows[i][1], rows[i][2]
+    members = [j for j, r in enumerate(rows) if area is not None and r[1] == area]
     start = end - timedelta(days=WINDOW_DAYS - 1)
     dense = read_dense(session=session, measures=("cases",), start=start, end=end,
-                       regions=(code,), as_of=as_of)
-    counts = np.asarray(dense["cases"], dtype=np.float64)
-    if counts.size == 0 or not np.isfinite(counts).any():
+                       regions=codes, as_of=as_of)
+    counts, _bad, _why = usable(np.asarray(dense["cases"], dtype=np.float64), count=True)
+    if counts.size == 0 or not np.isfinite(counts[i]).any():
         return None
-    counts = np.where(np.isfinite(counts) & (counts >= 0), np.rint(counts), np.nan)
-    used = 0
-    nc = district_nowcast(session=session, code=code, end=end, as_of=as_of, days=WINDOW_DAYS)
-    if nc is not None:
-        reported = np.array([np.nan if v is None else v for v in nc.reported])
-        nowcast = np.array([np.nan if v is None else v for v in nc.nowcast])
-        over = np.isfinite(nowcast) & ~(np.isfinite(reported) & (nowcast == reported))
-        counts = np.where(over[None, :], nowcast[None, :], counts)
-        used = int(over.sum())
-    fit = fit_phase(counts)
-    return _panel(fit, dense.dates, used)
+    used = np.zeros(counts.shape, dtype=bool)
+    inputs = nowcast_inputs(
+        session=session, regions=codes, groups=[r[1] for r in rows], dates=dense.dates,
+        as_of=as_of, group_names={r[1]: r[2] for r in rows if r[1] is not None},
+        time_zone=time_zone,
+    )
+    if "cases" in inputs:
+        inp = inputs["cases"]
+        nc = nowcast_window(counts, inp.known_delay, inp.model, window=1)
+        used = nc.incomplete & np.isfinite(nc.daily)
+        counts = np.where(used, nc.daily, counts)
+    series = [counts[i]]
+    if members:
+        part = counts[members]
+        series.append(np.where(np.isfinite(part).any(axis=0), np.nansum(part, axis=0), np.nan))
+    fit = fit_phase(np.vstack(series))
+    return DistrictPhase(
+        district=_panel(fit, 0, dense.dates, int(used[i].sum())),
+        area=_panel(fit, 1, dense.dates, int(used[members].any(axis=0).sum()))
+        if members else None,
+        area_name=area_name if members else None,
+    )
 
 
-def _panel(fit: WavePhase, dates: NDArray[np.datetime64], nowcast_days: int) -> PhasePanel:
+def _panel(fit: WavePhase, i: int, dates: NDArray[np.datetime64], nowcast_days: int
+           ) -> PhasePanel:
     day0 = dates[0].astype("datetime64[D]").astype(date)
-    identified = bool(fit.converged[0])
+    identified = bool(fit.converged[i])
     none = Estimate(value=None, lower=None, upper=None)
 
     def on(offset: float | None) -> date | None:
         return None if offset is None else day0 + timedelta(days=round(offset))
 
-    t0 = _estimate(fit.turning_day) if identified else none
-    code = fit.phase[0]
+    t0 = _estimate(fit.turning_day, i) if identified else none
+    code = fit.phase[i]
     known = bool(np.isfinite(code))
     return PhasePanel(
-        last_day=day0 + timedelta(days=int(fit.last_day[0])),
+        last_day=day0 + timedelta(days=int(fit.last_day[i])),
         phase=PHASES[int(code)] if known else None,
         phase_label=PHASE_LABELS[int(code)] if known else None,
-        wave_start=day0 + timedelta(days=int(fit.start[0])),
-        days_fitted=int(fit.n_days[0]), cases_in_wave=float(fit.cases_in_wave[0]),
-        model=MODEL_NAMES[int(fit.model[0])],
-        final_size=_estimate(fit.final_size) if identified else none,
-        final_size_is_lower_bound=bool(fit.final_size_is_lower_bound[0]),
-        share_reached=_estimate(fit.share_reached) if identified else none,
-        share_at_turning_point=_num(fit.share_at_turning_point[0]) if identified else None,
+        wave_start=day0 + timedelta(days=int(fit.start[i])),
+        days_fitted=int(fit.n_days[i]), cases_in_wave=float(fit.cases_in_wave[i]),
+        model=MODEL_NAMES[int(fit.model[i])],
+        final_size=_estimate(fit.final_size, i) if identified else none,
+        final_size_is_lower_bound=bool(fit.final_size_is_lower_bound[i]),
+        share_reached=_estimate(fit.share_reached, i) if identified else none,
+        share_at_turning_point=_num(fit.share_at_turning_point[i]) if identified else None,
         turning_date=on(t0.value), turning_date_lower=on(t0.lower),
         turning_date_upper=on(t0.upper),
-        growth_rate=_estimate(fit.growth_rate), growth_change=_estimate(fit.growth_change),
+        growth_rate=_estimate(fit.growth_rate, i), growth_change=_estimate(fit.growth_change, i),
         level=fit.level, nowcast_days=nowcast_days,
     )

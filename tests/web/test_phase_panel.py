@@ -24,6 +24,9 @@ def test_district_page_shows_the_phase_with_its_diagnostics(demo_app_client: Tes
         assert label in section
     if "at least" in section:  # before the turning point the warning goes with the lower bound
         assert "known to underestimate it" in section
+    assert "<h3>District</h3>" in section
+    assert re.search(r"<h3>Area [^<]+ \(all its districts\)</h3>", section)
+    assert section.count("Share of the fitted final size reached") == 2
 
 
 def test_district_page_phase_in_german(demo_app_client: TestClient) -> None:
@@ -31,3 +34,4 @@ def test_district_page_phase_in_german(demo_app_client: TestClient) -> None:
     text = demo_app_client.get("/staff/district/D01", params={"lang": "de"}).text
     assert "Phase der aktuellen Welle" in text
     assert "Erreichter Anteil der angepassten Endgröße" in text
+    assert "<h3>Bezirk</h3>" in text

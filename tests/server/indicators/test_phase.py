@@ -135,12 +135,25 @@ def test_weekly_growth_diagnostics_match_a_hand_worked_case() -> None:
     # Hand-worked: r = ln(300 / 200) / 7 = 0.0579236; dr = ln(300 * 100 / 200^2) / 7 = -0.0410974.
     assert_allclose(fit.growth_rate.estimate, np.log(1.5) / 7, rtol=1e-12)
     assert_allclose(fit.growth_change.estimate, np.log(0.75) / 7, rtol=1e-12)
-    phi = fit.dispersion[0]
+    phi = fit.weekly_dispersion[0]  # fewer than p + 3 weeks: the daily counts' dispersion
+    assert phi == fit.dispersion[0]
     se_r = np.sqrt(phi * (1 / 300 + 1 / 200)) / 7
     se_dr = np.sqrt(phi * (1 / 300 + 4 / 200 + 1 / 100)) / 7
     assert_allclose(fit.growth_rate.upper - fit.growth_rate.estimate, 1.959964 * se_r, rtol=1e-5)
     assert_allclose(fit.growth_change.upper - fit.growth_change.estimate, 1.959964 * se_dr,
                     rtol=1e-5)
+
+
+def test_weekday_pattern_inflates_the_daily_dispersion_but_not_the_weekly_one() -> None:
+    # Weekly sums carry no weekday pattern: the weekly diagnostics keep Poisson-sized intervals.
+    mu = _means(84, 3000, 0.15, 45)
+    pattern = np.array([1.5, 1.3, 1.0, 1.0, 0.9, 0.7, 0.6])
+    pattern = np.tile(pattern / pattern.mean(), 12)
+    y = np.random.default_rng(21).poisson(np.broadcast_to(mu * pattern, (50, 84))).astype(float)
+    fit = fit_phase(y, model="logistic", start=np.zeros(50, dtype=int))
+    # (measured 4.2 and 1.5; within-week trend x pattern leaves some weekly excess)
+    assert np.median(fit.dispersion) > 3
+    assert np.median(fit.weekly_dispersion) < 0.5 * np.median(fit.dispersion)
 
 
 def test_share_reached_on_an_exact_logistic() -> None:
@@ -226,6 +239,19 @@ def test_wave_start_finds_the_trough_before_the_current_wave() -> None:
     # Up to day 60 only the first wave is seen: it started at the beginning of the window.
     assert wave_start(y[None, :60])[0] <= 5
     assert t[-1] == 139
+
+
+def test_wave_start_skips_a_small_earlier_bump_lower_window_start() -> None:
+    # The window opens lower (1/day) than the trough (4/day) after a small bump (8/day) that
+    # precedes the big wave: the big wave starts at the trough, not at the window's first day.
+    bump = _means(150, 400, 0.25, 20)
+    big = _means(150, 15000, 0.12, 110)
+    base = np.r_[np.full(8, 1.0), np.full(142, 3.5)]
+    mean = bump + big + base
+    y = np.random.default_rng(22).poisson(np.broadcast_to(mean, (20, 150))).astype(float)
+    trough = int(np.argmin(mean[25:100])) + 25
+    start = wave_start(y)
+    assert (np.abs(start - trough) <= 14).all() and np.median(start) > 30
 
 
 def test_wave_start_ignores_noise_at_small_counts() -> None:
