@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+from datetime import timedelta
+
 import numpy as np
 from numpy.testing import assert_array_equal
+from sqlalchemy.orm import Session
 
 from rules import evaluate, parse_ruleset
 from rules.formatting import CATEGORIES
@@ -81,3 +84,22 @@ def test_explanation_writes_the_phase_as_a_word() -> None:
 
 def test_category_words_are_the_phase_labels() -> None:
     assert CATEGORIES["wave_phase"] == PHASE_LABELS
+
+
+def test_wave_phase_on_the_demo_uses_nowcasts_and_matches_the_page(demo_session: Session) -> None:
+    from server.services.district_indicators import load_district_data
+    from server.services.phase_indicators import district_phase
+    from tests.server.conftest import DEMO_END
+
+    data = load_district_data(session=demo_session, start=DEMO_END - timedelta(days=149),
+                              end=DEMO_END)
+    rs = parse_ruleset(RULES)
+    series = district_indicators(data, rs)["wave_phase"]
+    assert np.isfinite(series.estimate[:, -1]).all()
+    assert series.nowcast is not None and series.nowcast[:, -1].all()  # the last days are late
+    assert series.nowcast_days is not None and (series.nowcast_days[:, -1] >= 1).all()
+    # The page's panel fits the same counts on the same window: the same phase.
+    i = data.regions.index("D03")
+    panel = district_phase(session=demo_session, code="D03", end=DEMO_END)
+    assert panel is not None and panel.district.phase is not None
+    assert PHASE_LABELS.index(panel.district.phase_label) == series.estimate[i, -1]
