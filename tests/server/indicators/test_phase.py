@@ -222,10 +222,11 @@ def test_batched_fit_matches_scipy_minimize_on_random_waves(richards: bool) -> N
                     start=np.zeros(len(rows), dtype=int))
     for i, r in enumerate(rows):
         ll_ref, x_ref = _scipy_fit(r, richards)
-        assert fit.loglik[i] >= ll_ref - 1e-3
-        assert abs(fit.loglik[i] - ll_ref) < 0.05
-        assert_allclose(fit.final_size.estimate[i], np.exp(x_ref[0]), rtol=0.01)
-        assert_allclose(fit.turning_day.estimate[i], x_ref[2], atol=0.1)
+        # measured: log-likelihoods within 1e-7, final sizes within 1e-5, turning days 2e-4
+        assert fit.loglik[i] >= ll_ref - 1e-4
+        assert abs(fit.loglik[i] - ll_ref) < 1e-3
+        assert_allclose(fit.final_size.estimate[i], np.exp(x_ref[0]), rtol=1e-3)
+        assert_allclose(fit.turning_day.estimate[i], x_ref[2], atol=0.01)
 
 
 def test_wave_start_finds_the_trough_before_the_current_wave() -> None:
