@@ -58,6 +58,8 @@ _LOG_V = (np.log(0.05), np.log(20.0))
 _WEEK = 7
 #: Steps every starting value gets before the best one per row is kept; steps after that.
 _SCREEN_ITERATIONS, _ITERATIONS = 15, 80
+#: Rows fitted together (memory stays bounded; larger batches gain nothing).
+_CHUNK_ROWS = 500
 
 
 def _centred_mean(y: FloatArray, width: int = _WEEK) -> FloatArray:
@@ -479,9 +481,14 @@ def fit_phase(
     theta = np.full((rows, 4), np.nan)
     ll = nan.copy()
     used = np.zeros(rows, dtype=np.int64)
-    if fit_rows.size:
-        yf, wf, sf, lf = y[fit_rows], w[fit_rows], begin[fit_rows], last[fit_rows]
-        lo, hi = _bounds(total[fit_rows], sf, lf)
+    cov = np.full((rows, 4, 4), np.nan)
+    phi = nan.copy()
+    phi_week = np.ones(rows)
+    converged = np.zeros(rows, dtype=bool)
+    for part in range(0, fit_rows.size, _CHUNK_ROWS):  # bounded memory; each chunk batched
+        r = fit_rows[part: part + _CHUNK_ROWS]
+        yf, wf, sf, lf = y[r], w[r], begin[r], last[r]
+        lo, hi = _bounds(total[r], sf, lf)
         logistic = np.array([True, True, True, False])
         th_l, ll_l = _fit_model(yf, wf, t, _starts(yf, wf, t, sf, lf), logistic, lo, hi)
         th, llf = th_l, ll_l
@@ -493,20 +500,14 @@ def fit_phase(
                 2.0 * (ll_r - ll_l) > 2.0)
             th = np.where(pick[:, None], th_r, th_l)
             llf = np.where(pick, ll_r, ll_l)
-            used[fit_rows] = pick
-        theta[fit_rows], ll[fit_rows] = th, llf
-        k_free = np.column_stack([np.ones((len(th), 3), dtype=bool), used[fit_rows] == 1])
-        cov_f, phi_f, mu_f = _covariance(yf, wf, t, th, k_free, 3 + used[fit_rows])
-        phi_week_f = _weekly_dispersion(yf, wf, mu_f, sf, lf, 3 + used[fit_rows])
+            used[r] = pick
+        theta[r], ll[r] = th, llf
+        k_free = np.column_stack([np.ones((len(th), 3), dtype=bool), used[r] == 1])
+        cov[r], phi[r], mu_f = _covariance(yf, wf, t, th, k_free, 3 + used[r])
+        phi_week_f = _weekly_dispersion(yf, wf, mu_f, sf, lf, 3 + used[r])
+        phi_week[r] = np.where(np.isfinite(phi_week_f), phi_week_f, phi[r])
         at_bound = (th[:, 0] > hi[:, 0] - np.log(2.0)) | (th[:, 2] > hi[:, 2] - 1.0)
-    cov = np.full((rows, 4, 4), np.nan)
-    phi = nan.copy()
-    phi_week = np.ones(rows)
-    converged = np.zeros(rows, dtype=bool)
-    if fit_rows.size:
-        cov[fit_rows], phi[fit_rows] = cov_f, phi_f
-        phi_week[fit_rows] = np.where(np.isfinite(phi_week_f), phi_week_f, phi_f)
-        converged[fit_rows] = np.isfinite(ll[fit_rows]) & ~at_bound
+        converged[r] = np.isfinite(llf) & ~at_bound
 
     def wald(i: int, log: bool) -> PhaseInterval:
         est = theta[:, i]
