@@ -3,8 +3,9 @@
 Run ``.venv/bin/python bench/indicators.py`` (3 000 regions x 1 096 days) or with
 ``--regions 300 --days 400`` for a quick run. Data are invented and seeded (Poisson counts around a
 random walk of log incidence). Each baseline is a plain loop over regions with pandas, scipy or
-statsmodels, timed on a subsample in the same run and scaled to all regions. Prints only; no test
-asserts timings.
+statsmodels, timed on a subsample in the same run and scaled to all regions. The wave-phase section
+(``bench/phase.py``, ``--only-phase``) fits its own invented waves over 150 days and is part of the
+daily set. Prints only; no test asserts timings.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ from collections.abc import Callable
 import numpy as np
 import pandas as pd
 import statsmodels.api as sm
+from phase import PHASE_DAYS, phase_section  # bench/phase.py, beside this script
 from scipy import stats
 from statsmodels.nonparametric.smoothers_lowess import lowess
 from statsmodels.stats.proportion import proportion_confint
@@ -320,9 +322,14 @@ def main() -> None:
                         help="run only the change-point section")
     parser.add_argument("--only-capacity", action="store_true",
                         help="run only the capacity-forecast section")
+    parser.add_argument("--only-phase", action="store_true",
+                        help="run only the wave-phase section (bench/phase.py)")
     parser.add_argument("--store", action="store_true",
                         help="also time the nowcast's store read in a temporary SQLite")
     args = parser.parse_args()
+    if args.only_phase:
+        phase_section(args.regions, min(args.days, PHASE_DAYS), args.sample)
+        return
     if args.only_changepoints:
         bench_changepoints(args.regions, args.days, min(args.sample, 2))
         return
@@ -395,6 +402,8 @@ def main() -> None:
     bench("icu projection", run_icu,
           lambda: baseline_icu(a0[:sample], a0[:sample] * 9, np.full(sample, 0.01), los.survival))
     nowcast_section(bench, cases, regions, days, sample)
+    p_wall, p_cpu, p_base = phase_section(regions, min(days, PHASE_DAYS), sample)
+    rows.append(("wave phase", p_wall, p_cpu, p_base))
     daily_total = sum(t for _, t, _, _ in rows)
     daily_cpu = sum(c for _, _, c, _ in rows)
 

@@ -184,7 +184,7 @@ def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> fl
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
     if level_names(spec) is not None and float(thr).is_integer():
-        return number_text(spec, thr)  # "medium (2)"
+        return number_text(spec, thr)  # "medium (2)", "growing (3)"
     return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
 
 

@@ -13,7 +13,8 @@ from __future__ import annotations
 
 from rules.model import IndicatorSpec
 
-__all__ = ["INTENSITY_LEVEL_NAMES", "MISSING", "NO_INTERVAL", "interval_text", "level_names",
+__all__ = ["CATEGORIES", "INTENSITY_LEVEL_NAMES", "MISSING", "NO_INTERVAL", "category_label",
+           "interval_text", "level_names",
            "number_text", "reading_text", "value_text", "with_unit"]
 
 #: A value that is not known (None or not finite upstream).
@@ -22,23 +23,41 @@ MISSING = "n/a"
 NO_INTERVAL = "—"
 #: Names of the values 0..4 of a seasonal intensity indicator (moving epidemic method).
 INTENSITY_LEVEL_NAMES = ("below threshold", "low", "medium", "high", "very high")
-_LEVEL_KINDS = {"seasonal_intensity": INTENSITY_LEVEL_NAMES}
+#: Indicators whose values are category codes 0, 1, ...: the word for each code, by indicator
+#: kind (the ``kind`` parameter, else the indicator's name). Values and thresholds are written as
+#: the word and the code, "medium (2)", "growing (3)". ``wave_phase``:
+#: :data:`server.indicators.phase.PHASE_LABELS` (a test keeps the two equal).
+CATEGORIES: dict[str, tuple[str, ...]] = {
+    "seasonal_intensity": INTENSITY_LEVEL_NAMES,
+    "wave_phase": ("declining", "past its turning point", "slowing", "growing"),
+}
 
 
 def level_names(spec: IndicatorSpec) -> tuple[str, ...] | None:
-    """Names of the values of an indicator whose values are ordered levels (the seasonal
-    intensity, by its name or its ``kind`` parameter); None for an ordinary number."""
+    """Names of the values of a category indicator (by its ``kind`` parameter or its name);
+    None for an ordinary number."""
     kind = spec.params.get("kind", spec.name)
-    return _LEVEL_KINDS.get(kind) if isinstance(kind, str) else None
+    return CATEGORIES.get(kind) if isinstance(kind, str) else None
+
+
+def category_label(spec: IndicatorSpec, value: float | None) -> str | None:
+    """The word for ``value`` when ``spec`` is a category indicator and ``value`` one of its
+    codes; None otherwise."""
+    names = level_names(spec)
+    if names is None or value is None or not float(value).is_integer() \
+            or not 0 <= value < len(names):
+        return None
+    return names[int(value)]
 
 
 def number_text(spec: IndicatorSpec, value: float | None) -> str:
-    """``value`` with the spec's decimals, no unit; :data:`MISSING` for None."""
+    """``value`` with the spec's decimals, no unit; :data:`MISSING` for None; the word of a
+    category code (:data:`CATEGORIES`)."""
     if value is None:
         return MISSING
-    names = level_names(spec)
-    if names is not None and float(value).is_integer() and 0 <= value < len(names):
-        return f"{names[int(value)]} ({int(value)})"  # "medium (2)"
+    label = category_label(spec, value)
+    if label is not None:
+        return f"{label} ({int(value)})"  # "medium (2)"
     return f"{value:.{spec.decimals}f}"
 
 

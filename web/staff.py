@@ -15,6 +15,7 @@ from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.forecast_record import record_lines
 from server.services.morning import MorningOverview, morning_overview
+from server.services.phase_indicators import district_phase
 from web.charts import (
     admissions_fan_figure,
     capacity_fan_figure,
@@ -102,6 +103,7 @@ def district(
     return render(request, "staff/district.html", {
         "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
         "nowcast": figure_json(nowcast_figure(dossier.nowcast)) if dossier.nowcast else None,
+        "phase": district_phase(session=session, code=dossier.code, end=dossier.last_day),
         "forecast": forecast,
         "forecast_charts": [figure_json(admissions_fan_figure(f)) for f in forecast.fans]
         if forecast else [],

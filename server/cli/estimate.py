@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 from rich.markup import escape
 
-from server.cli.output import fail, friendly_errors, say
+from server.cli.output import fail, friendly_errors, say, warn
 from server.services.estimates import EstimateOptions, estimates_csv, run_estimate, write_estimates
 
 
@@ -95,7 +95,9 @@ icu-projection: for each date, ICU beds in use --horizon (14) days
   earliest day).
 curve-fit: logistic (or --model richards) fitted to all rows; final
   size and cumulative count --horizon (7) days after the last date,
-  with bootstrap intervals, on the last row only.
+  with bootstrap intervals, on the last row only. Before the fitted
+  turning point the final size is a lower bound (upper bound left
+  empty, a warning on stderr): such fits underestimate it.
 nowcast: d0..dD hold the cumulative count of each date known d days
   later (empty where not yet known; --increments when they hold the
   counts first reported at each delay); chain-ladder estimate of the
@@ -187,6 +189,8 @@ def estimate(
         end_week=end_week, seasons=seasons, min_seasons=min_seasons, interval=interval.lower(),
     )
     table = run_estimate(kind.value, input, options)
+    for text in table.warnings:
+        warn(text)
     if output == "-":
         say(escape(estimates_csv(table).rstrip("\n")))
         return

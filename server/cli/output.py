@@ -31,6 +31,11 @@ def fail(message: str) -> typer.Exit:
     return typer.Exit(code=1)
 
 
+def warn(message: str) -> None:
+    """Print one warning line on stderr (stdout may be carrying a CSV)."""
+    err_console.print(f"[bold yellow]warning:[/] {message}", highlight=False, soft_wrap=True)
+
+
 def settings_error_line(exc: ValidationError) -> str:
     parts = []
     for error in exc.errors():

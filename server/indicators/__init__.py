@@ -59,6 +59,7 @@ from server.indicators.nowcast import (
     nowcast,
     triangle_from_vintages,
 )
+from server.indicators.phase import WavePhase, fit_phase, wave_start
 from server.indicators.poisson import (
     IncidenceRate,
     PoissonInterval,
@@ -136,6 +137,7 @@ __all__ = [
     "TestingRate",
     "WastewaterLevel",
     "WastewaterTrend",
+    "WavePhase",
     "WeeklySeries",
     "WindowedSeries",
     "admission_rate",
@@ -150,6 +152,7 @@ __all__ = [
     "farrington_flexible",
     "forecast_record",
     "fit_growth_curve",
+    "fit_phase",
     "gamma_serial_interval",
     "growth_rate",
     "growth_to_reproduction",
@@ -182,6 +185,7 @@ __all__ = [
     "to_districts",
     "trend",
     "triangle_from_vintages",
+    "wave_start",
     "weekly_sum",
     "weighted_interval_score",
     "wilson_interval",

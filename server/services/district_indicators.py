@@ -71,6 +71,7 @@ from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
 from server.services.capacity_indicators import days_to_share_series, projected_share_series
 from server.services.errors import ServiceError
+from server.services.phase_indicators import wave_phase_series
 from server.services.seasonal_indicators import seasonal_series
 from server.store import read_dense
 from server.store.models import Catchment, Region
@@ -605,6 +606,7 @@ BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
     # Projected ICU pressure under the ruleset's scenarios (server/services/capacity_indicators).
     "icu_share_projected": lambda d, r: carry_forward(projected_share_series(d, r)),
     "icu_days_to_share": lambda d, r: carry_forward(days_to_share_series(d, r)),
+    "wave_phase": lambda d, r: carry_forward(wave_phase_series(d, r)),  # phase_indicators.py
 }
 
 

@@ -24,6 +24,7 @@ from numpy.typing import NDArray
 from server.indicators import aberration, curves, growth, hospital, renewal, wastewater
 from server.indicators.nowcast import cumulative_triangle
 from server.indicators.nowcast import nowcast as chain_ladder_nowcast
+from server.indicators.phase import LOWER_BOUND_WARNING
 from server.indicators.poisson import incidence_rate
 from server.indicators.seasonal import NOT_ENOUGH_SEASONS, seasonal_intensity
 from server.indicators.serial_interval import (
@@ -99,6 +100,8 @@ class EstimateTable:
     columns: tuple[str, ...]
     data: tuple[FloatArray, ...]
     flags: frozenset[str] = field(default_factory=frozenset)
+    #: Sentences the caller must show beside the table (the CLI prints them on stderr).
+    warnings: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if len(self.columns) != len(self.data):
@@ -272,10 +275,11 @@ def _checked(compute: Callable[[], T]) -> T:
 
 
 def _table(
-    kind: str, source: DailyTable, columns: Mapping[str, FloatArray], flags: Sequence[str] = ()
+    kind: str, source: DailyTable, columns: Mapping[str, FloatArray], flags: Sequence[str] = (),
+    warnings: tuple[str, ...] = (),
 ) -> EstimateTable:
     data = tuple(np.asarray(v, dtype=np.float64).reshape(-1) for v in columns.values())
-    return EstimateTable(kind, source.dates, tuple(columns), data, frozenset(flags))
+    return EstimateTable(kind, source.dates, tuple(columns), data, frozenset(flags), warnings)
 
 
 # ---------------------------------------------------------------- one function per KIND
@@ -490,7 +494,11 @@ def curve_fit_table(
 
     Every row: the observed cumulative count and the fitted cumulative and daily counts. The last
     row only: the final size and the cumulative count projected ``horizon`` days after the last
-    date, each with its bootstrap interval.
+    date, each with its bootstrap interval; the share of the fitted final size reached and the
+    share at the turning point, ``(1 + v)^(-1/v)`` (Richards 1959). Before the fitted turning
+    point (or when the fit is still exponential) the final size is a lower bound: its upper bound
+    is left empty, ``final_size_is_lower_bound`` is true and the table carries
+    :data:`~server.indicators.phase.LOWER_BOUND_WARNING`.
     """
     cases = source.values["cases"]
     fit = _checked(lambda: curves.fit_growth_curve(
@@ -503,6 +511,9 @@ def curve_fit_table(
     fitted = curves.richards_cumulative(t, k, a, t0, v)
     daily = fitted - curves.richards_cumulative(t - 1.0, k, a, t0, v)
     last = np.full(days, np.nan)
+    turned = bool(fit.converged[0]) and bool(t0 < days - 1)
+    warnings = () if turned or not np.isfinite(k) else (
+        f"final size at least {k:,.0f} (a lower bound): {LOWER_BOUND_WARNING}",)
 
     def at_end(value: float) -> FloatArray:
         out = last.copy()
@@ -513,11 +524,14 @@ def curve_fit_table(
         "cumulative": np.cumsum(np.nan_to_num(cases)),
         "fitted_cumulative": fitted, "fitted_daily": daily,
         "final_size": at_end(k), "final_size_lower": at_end(fit.final_size.lower[0]),
-        "final_size_upper": at_end(fit.final_size.upper[0]),
+        "final_size_upper": at_end(fit.final_size.upper[0] if turned else np.nan),
+        "final_size_is_lower_bound": at_end(0.0 if turned else 1.0),
+        "share_reached": at_end(fit.share_reached.estimate[0]),
+        "share_at_turning_point": at_end(curves.richards_inflection(1.0, v)),
         "projected_cumulative": at_end(fit.projection.estimate[0, 0]),
         "projected_lower": at_end(fit.projection.lower[0, 0]),
         "projected_upper": at_end(fit.projection.upper[0, 0]),
-    })
+    }, flags=("final_size_is_lower_bound",), warnings=warnings)
 
 
 def delay_columns(header: Sequence[str]) -> list[str]:

@@ -106,7 +106,8 @@ KIND_COLUMNS = {
                        "days_to_threshold", "days_to_threshold_lower",
                        "days_to_threshold_upper"],
     "curve-fit": ["cumulative", "fitted_cumulative", "fitted_daily", "final_size",
-                  "final_size_lower", "final_size_upper", "projected_cumulative",
+                  "final_size_lower", "final_size_upper", "final_size_is_lower_bound",
+                  "share_reached", "share_at_turning_point", "projected_cumulative",
                   "projected_lower", "projected_upper"],
 }
 
@@ -322,3 +323,40 @@ def test_estimate_help_lists_every_kind() -> None:
     assert result.exit_code == 0
     for kind in [*KIND_ARGS, "nowcast"]:
         assert f"{kind}:" in result.output
+
+
+def _logistic_wave(days: int, seed: int) -> dict[str, np.ndarray]:
+    # A logistic wave turning at day 40 with final size 5000 (the held-out case of issue 13).
+    from server.indicators.curves import richards_cumulative
+
+    t = np.arange(days, dtype=float)
+    mu = richards_cumulative(t, 5000, 0.2, 40) - richards_cumulative(t - 1, 5000, 0.2, 40)
+    return {"cases": np.random.default_rng(seed).poisson(mu).astype(float)}
+
+
+def test_curve_fit_before_the_turning_point_warns_and_gives_a_lower_bound(tmp_path: Path) -> None:
+    path = write_csv(tmp_path / "early.csv", _logistic_wave(25, 3), skip=())
+    result = run("curve-fit", "--input", str(path), "--n-boot", "10")
+    assert result.exit_code == 0, result.output
+    assert "lower bound" in result.stderr and "underestimate" in result.stderr
+    _, cols = read_output(result.stdout)
+    assert cols["final_size_is_lower_bound"][-1] == "true"
+    assert cols["final_size_upper"][-1] == ""
+    # Logistic (Richards 1959, v = 1): the share at the turning point is 1/2.
+    assert float(cols["share_at_turning_point"][-1]) == pytest.approx(0.5)
+    assert float(cols["share_reached"][-1]) < 0.5
+
+
+def test_curve_fit_after_the_turning_point_gives_an_interval_without_warning(
+    tmp_path: Path,
+) -> None:
+    path = write_csv(tmp_path / "late.csv", _logistic_wave(70, 4), skip=())
+    result = run("curve-fit", "--input", str(path), "--n-boot", "20")
+    assert result.exit_code == 0, result.output
+    assert "lower bound" not in result.stderr
+    _, cols = read_output(result.stdout)
+    assert cols["final_size_is_lower_bound"][-1] == "false"
+    final = float(cols["final_size"][-1])
+    lower, upper = float(cols["final_size_lower"][-1]), float(cols["final_size_upper"][-1])
+    assert lower <= final <= upper
+    assert final == pytest.approx(5000, rel=0.05)  # the simulator's final size
