@@ -53,6 +53,7 @@ from rules import Evaluation, Ruleset, evaluate, parse_ruleset
 from server.services.audit import record
 from server.services.database import Database
 from server.services.district_indicators import district_indicators, load_district_data
+from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.store.models import Assessment, Observation, Region, Vintage
 from server.store.models import EvaluationRun as RunRow
@@ -96,7 +97,8 @@ def store_ruleset(
     with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
-    parsed = parse_ruleset(text, source=str(path))
+    parsed = parse_ruleset(text, source=str(path),
+                           indicators=indicator_check(store_measures(session=session)))
     row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == parsed.sha256))
     if row is None:
         row = RulesetRow(
@@ -187,7 +189,8 @@ def evaluate_districts(
         return reused
     ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
-                              stale_after=stale_after)
+                              stale_after=stale_after, needs=measure_needs(
+                                  ruleset, store_measures(session=session)))
     result = evaluate(
         ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
         region_levels=data.levels,
