@@ -529,6 +529,8 @@ def resolve(
     known = {p.name for p in kind.params}
     params: dict[str, ParamValue] = {}
     for key, value in given.items():
+        if key not in known and spec.kind is None:
+            continue  # an old name's free parameters were never read, and still are not
         if key not in known:
             raise FieldError(("params", key), f"unknown parameter {key!r} of kind "
                                               f"{kind.name!r} (expected one of: "
