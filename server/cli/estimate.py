@@ -10,21 +10,18 @@ import typer
 from rich.markup import escape
 
 from server.cli.output import fail, friendly_errors, say
-from server.services.estimates import EstimateOptions, estimates_csv, run_estimate, write_estimates
+from server.services.estimates import (
+    KINDS,
+    EstimateOptions,
+    estimates_csv,
+    registry_kinds,
+    run_estimate,
+    write_estimates,
+)
 
-
-class Kind(StrEnum):
-    """The indicators ``tierwise estimate`` computes."""
-
-    rt = "rt"
-    incidence = "incidence"
-    positivity = "positivity"
-    aberration = "aberration"
-    growth = "growth"
-    wastewater = "wastewater"
-    icu_projection = "icu-projection"
-    curve_fit = "curve-fit"
-    nowcast = "nowcast"
+#: The indicators ``tierwise estimate`` computes: its own tables, then every other kind of the
+#: policy registry (``tierwise rules kinds``).
+Kind = StrEnum("Kind", {k.replace("-", "_"): k for k in (*KINDS, *registry_kinds())})  # type: ignore[misc]
 
 
 HELP = """Compute one indicator for a daily CSV file.
@@ -55,6 +52,13 @@ curve-fit: cases -> cumulative, fitted_cumulative, fitted_daily,
   projected_cumulative, projected_lower, projected_upper
 nowcast: d0, d1, ..., dD -> nowcast, nowcast_lower, nowcast_upper,
   known, reported_share
+testing_rate, growth_rate, occupancy_share, wastewater_trend,
+  wastewater_level (and every other policy kind, `tierwise rules
+  kinds`): the measure's column (--measure, default the kind's own,
+  e.g. tests) and its measure parameters' columns -> value, lower,
+  upper, count, computed as a policy's indicator; --param NAME=VALUE
+  as the policy's params; --population (the people a plant serves for
+  the wastewater kinds)
 
 \b
 rt: Cori et al. (2013) posterior over --window days (7), dated on the
@@ -151,6 +155,12 @@ def estimate(
     delay_window: Annotated[
         int | None, typer.Option(help="nowcast: recent dates used for the delays.")
     ] = None,
+    measure: Annotated[
+        str | None, typer.Option(help="policy kinds: the measure (column) to read.")
+    ] = None,
+    param: Annotated[
+        list[str] | None, typer.Option(help="policy kinds: NAME=VALUE, as in a policy.")
+    ] = None,
 ) -> None:
     options = EstimateOptions(
         window=window, level=level, max_missing=max_missing, si_mean=si_mean, si_sd=si_sd,
@@ -161,7 +171,7 @@ def estimate(
         min_samples=min_samples, horizon=horizon, growth_window=growth_window,
         threshold=threshold, los_median=los_median, los_quartiles=(los_q1, los_q3), model=model,
         n_boot=n_boot, seed=seed, increments=increments, delay_window=delay_window,
-        overdispersion=overdispersion.lower(),
+        overdispersion=overdispersion.lower(), measure=measure, params=tuple(param or ()),
     )
     table = run_estimate(kind.value, input, options)
     if output == "-":
