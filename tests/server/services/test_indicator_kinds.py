@@ -281,3 +281,16 @@ def test_wastewater_level_of_a_one_plant_district_is_its_plants_level(
         on = np.isfinite(norm.log_value[j])
         assert_allclose(series["lvl"].estimate[i, on], lvl[j, on])
         assert np.isfinite(lvl[j, on]).sum() > 10
+
+
+def test_resolve_a_wastewater_target_per_pathogen() -> None:
+    # one wastewater target per pathogen: the qualified concentration has its base's kind
+    spec = parse_ruleset(_policy("  flu_ww:\n    label: w\n    kind: wastewater_trend\n"
+                                 "    measure: ww_concentration.influenza\n", "flu_ww"),
+                         indicators=indicator_check()).indicator("flu_ww")
+    ind = resolve(spec)
+    assert ind is not None and ind.measures() == ("ww_concentration.influenza", "ww_flow")
+    assert _problems(_policy("  flu:\n    label: w\n    kind: incidence\n"
+                             "    measure: ww_concentration.influenza\n", "flu"))[0][2] == (
+        "'ww_concentration.influenza' is a concentration measure; this kind takes count "
+        "measures")
