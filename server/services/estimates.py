@@ -727,7 +727,7 @@ def registry_kinds() -> tuple[str, ...]:
     """Indicator kinds of the policy registry that :data:`KINDS` does not name already
     (``testing_rate``, ``growth_rate``, ``occupancy_share``, ``wastewater_trend``, ...); each
     runs through :func:`registry_table`."""
-    return tuple(k for k in REGISTRY if k not in KINDS)
+    return tuple(k for k, v in REGISTRY.items() if k not in KINDS and v.in_estimate)
 
 
 def _param_value(text: str) -> ParamValue:

@@ -33,7 +33,7 @@ Adding a kind: its method in ``server/indicators``, a builder and one :class:`Ki
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from types import MappingProxyType
 from typing import Literal
 
@@ -75,6 +75,7 @@ __all__ = [
     "UnknownIndicatorError",
     "check_indicator",
     "compute",
+    "from_named_builder",
     "indicator_check",
     "known_measures",
     "measure_kind",
@@ -157,6 +158,8 @@ class Indicator:
     kind: Kind
     measure: str
     params: Mapping[str, ParamValue]
+    #: The ruleset that declares it (None outside one: ``tierwise estimate``).
+    ruleset: Ruleset | None = field(default=None, compare=False, repr=False)
 
     def measures(self) -> tuple[str, ...]:
         """Every measure it reads: the measure, then the measure parameters."""
@@ -176,7 +179,10 @@ class Kind:
     measures are stored (``district``; ``area``: the district's parent area, e.g. ICU beds;
     ``plant``: wastewater treatment plants, weighted by the people of each district they
     serve). ``on_samples``: the values exist on sample days only (not carried forward; prepare
-    signals count samples). ``builder`` computes it for every district.
+    signals count samples); ``carry``: the newest value is held on days without one (unless
+    ``on_samples``). ``builder`` computes it for every district. ``reads``: measures read
+    whatever the declaration names (for builders that read fixed measures);
+    ``open_params``: parameters the kind does not list pass unchecked (its builder checks them).
     """
 
     name: str
@@ -189,6 +195,11 @@ class Kind:
     on_samples: bool = False
     #: Checks between parameters (given all of them); raises FieldError.
     check: Callable[[Mapping[str, ParamValue]], None] | None = None
+    carry: bool = True
+    reads: MeasureNeeds | None = None
+    open_params: bool = False
+    #: ``tierwise estimate`` offers it (a builder that needs its ruleset cannot run there).
+    in_estimate: bool = True
 
     def param(self, name: str) -> Param:
         for p in self.params:
@@ -200,7 +211,7 @@ class Kind:
         """The series for every district (the newest value held while none is new, unless
         ``on_samples``; :func:`~server.services.district_indicators.carry_forward`)."""
         series = self.builder(data, ind)
-        return series if self.on_samples else carry_forward(series)
+        return series if self.on_samples or not self.carry else carry_forward(series)
 
 
 def measure_kind(name: str, measures: Mapping[str, str]) -> str | None:
@@ -460,8 +471,9 @@ class Default:
     params: Mapping[str, ParamValue] = field(default_factory=dict)
 
 
-#: The indicator names of earlier releases, each a declaration by default.
-DEFAULTS: Mapping[str, Default] = MappingProxyType({
+#: The indicator names of earlier releases, each a declaration by default (:func:`register`
+#: adds the names of kinds registered with ``default=True``).
+DEFAULTS: dict[str, Default] = ({
     "incidence_7d": Default(kind="incidence", measure="cases"),
     "positivity_7d": Default(kind="positivity", measure="positives"),
     "tests_7d": Default(kind="testing_rate", measure="tests"),
@@ -473,12 +485,60 @@ DEFAULTS: Mapping[str, Default] = MappingProxyType({
 })
 
 
-def register(kind: Kind, *, replace: bool = False) -> Kind:
-    """Add ``kind`` to :data:`KINDS` (a second kind of the same name needs ``replace``)."""
+def register(kind: Kind, *, replace: bool = False, default: bool = False) -> Kind:
+    """Add ``kind`` to :data:`KINDS` (a second kind of the same name needs ``replace``); with
+    ``default`` a declaration named as the kind needs no ``kind:`` (:data:`DEFAULTS`)."""
     if kind.name in KINDS and not replace:
         raise ValueError(f"indicator kind {kind.name!r} is registered already")
     KINDS[kind.name] = kind
+    if default:
+        DEFAULTS[kind.name] = Default(kind=kind.name, measure=kind.default_measure)
     return kind
+
+
+class _NamedView:
+    """A ruleset as a name-based builder sees it: ``indicator(name)`` is the declaration being
+    built (with its resolved parameters), whatever it is called; all else is the ruleset's."""
+
+    def __init__(self, ruleset: Ruleset, name: str, ind: Indicator) -> None:
+        self._ruleset, self._name, self._ind = ruleset, name, ind
+
+    def indicator(self, name: str) -> IndicatorSpec:
+        if name == self._name:
+            return replace(self._ruleset.indicator(self._ind.name), name=self._name,
+                           params=dict(self._ind.params))
+        return self._ruleset.indicator(name)
+
+    def used_indicators(self) -> tuple[str, ...]:
+        return (*self._ruleset.used_indicators(), self._name)
+
+    def __getattr__(self, attr: str) -> object:
+        return getattr(self._ruleset, attr)
+
+
+def from_named_builder(
+    builder: Callable[[DistrictData, Ruleset], IndicatorSeries], *, name: str, help: str,
+    default_measure: str, measure_kinds: tuple[str, ...], level: Level = "district",
+    params: tuple[Param, ...] = (), carry: bool = True, on_samples: bool = False,
+    reads: MeasureNeeds | None = None,
+) -> Kind:
+    """A kind from a :data:`~server.services.district_indicators.BUILDERS`-style function,
+    which reads its parameters as ``ruleset.indicator(name).params``; it sees the declaration
+    being built under ``name`` (so a policy may declare it under any name, with ``kind:``).
+
+    ``params`` are checked; others pass to the builder unchecked. It reads ``reads`` (default:
+    the measures of earlier releases) besides the declared measure; ``carry`` holds the newest
+    value on days without one, as ``carry_forward`` in a BUILDERS line does.
+    """
+    def build(d: DistrictData, ind: Indicator) -> IndicatorSeries:
+        if ind.ruleset is None:
+            raise ValueError(f"indicator kind {name!r} is computed within a ruleset only")
+        return builder(d, _NamedView(ind.ruleset, name, ind))  # type: ignore[arg-type]
+
+    return Kind(name=name, help=help, default_measure=default_measure,
+                measure_kinds=measure_kinds, level=level, params=params, builder=build,
+                carry=carry, on_samples=on_samples, reads=reads or MeasureNeeds(),
+                open_params=True, in_estimate=False)
 
 
 class UnknownIndicatorError(ServiceError, ValueError):
@@ -512,7 +572,8 @@ def _declared(spec: IndicatorSpec) -> tuple[str, str, dict[str, ParamValue]] | N
 
 
 def resolve(
-    spec: IndicatorSpec, measures: Mapping[str, str] = STANDARD_MEASURES
+    spec: IndicatorSpec, measures: Mapping[str, str] = STANDARD_MEASURES,
+    ruleset: Ruleset | None = None,
 ) -> Indicator | None:
     """The declaration ``spec`` checked against the registry and ``measures`` (name -> kind of
     measure); None for a name that is no kind (a name-based builder, or unknown).
@@ -529,7 +590,9 @@ def resolve(
     known = {p.name for p in kind.params}
     params: dict[str, ParamValue] = {}
     for key, value in given.items():
-        if key not in known and spec.kind is None:
+        if key not in known and (spec.kind is None or kind.open_params):
+            if kind.open_params:
+                params[key] = value  # the builder checks its own parameters
             continue  # an old name's free parameters were never read, and still are not
         if key not in known:
             raise FieldError(("params", key), f"unknown parameter {key!r} of kind "
@@ -542,7 +605,7 @@ def resolve(
     if kind.check is not None:
         kind.check(params)
     return Indicator(name=spec.name, kind=kind, measure=measure,
-                     params=MappingProxyType(params))
+                     params=MappingProxyType(params), ruleset=ruleset)
 
 
 def check_indicator(
@@ -578,7 +641,7 @@ def _resolved(ruleset: Ruleset, measures: Mapping[str, str]) -> dict[str, Indica
     for name in ruleset.used_indicators():
         spec = ruleset.indicator(name)
         try:
-            out[name] = resolve(spec, measures)
+            out[name] = resolve(spec, measures, ruleset)
         except FieldError as exc:
             raise IndicatorDeclarationError(name, exc) from None
     return out
@@ -601,6 +664,9 @@ def measure_needs(
                 found["plant"] |= set(PLANT_MEASURES)
             continue
         found[ind.kind.level] |= set(ind.measures())
+        if ind.kind.reads is not None:
+            for level in ("district", "area", "plant"):
+                found[level] |= set(getattr(ind.kind.reads, level))
     return MeasureNeeds(district=tuple(sorted(found["district"])),
                         area=tuple(sorted(found["area"])), plant=tuple(sorted(found["plant"])))
 

@@ -12,15 +12,17 @@ from numpy.testing import assert_allclose, assert_array_equal
 from scipy import stats
 from sqlalchemy.orm import Session
 
-from rules import RulesetError, load_ruleset, parse_ruleset
+from rules import IndicatorSeries, RulesetError, load_ruleset, parse_ruleset
 from server.indicators.wastewater import level, normalise, smooth
 from server.services.district_indicators import district_indicators, load_district_data
 from server.services.indicator_kinds import (
+    DEFAULTS,
     KINDS,
     Kind,
     Param,
     UnknownIndicatorError,
     compute,
+    from_named_builder,
     indicator_check,
     measure_kind,
     measure_needs,
@@ -294,3 +296,29 @@ def test_resolve_a_wastewater_target_per_pathogen() -> None:
                              "    measure: ww_concentration.influenza\n", "flu"))[0][2] == (
         "'ww_concentration.influenza' is a concentration measure; this kind takes count "
         "measures")
+
+
+def test_a_named_builder_registers_as_a_kind_in_one_line(demo_session: Session) -> None:
+    # A BUILDERS-style function reads its parameters as ruleset.indicator(NAME).params and a
+    # fixed measure (as the wave-phase, capacity and seasonal builders of other branches do).
+    def doubled_cases(d, ruleset):  # type: ignore[no-untyped-def]
+        window = int(ruleset.indicator("doubled").params.get("window", 7))
+        counts = d.district["cases"]
+        return IndicatorSeries(estimate=2 * np.cumsum(np.nan_to_num(counts), axis=1) / window)
+
+    kind = from_named_builder(doubled_cases, name="doubled", help="test", default_measure="cases",
+                              measure_kinds=("count",))
+    register(kind, default=True)
+    try:
+        text = (HEAD + "  doubled: {label: d, params: {window: 2}}\n"
+                "  other:\n    label: o\n    kind: doubled\n    params: {window: 4}\n"
+                "criteria:\n  - {id: a, indicator: doubled, enter: [1], exit: [1]}\n"
+                "  - {id: b, indicator: other, enter: [1], exit: [1]}\n")
+        _rs, needs, data, series = _demo(demo_session, text)
+        assert "cases" in needs.district and needs.area  # the measures of earlier releases
+        total = np.cumsum(np.nan_to_num(data.district["cases"]), axis=1)
+        assert_allclose(series["doubled"].estimate, total)  # 2 x total / 2
+        assert_allclose(series["other"].estimate, total / 2)  # 2 x total / 4
+    finally:
+        KINDS.pop("doubled")
+        DEFAULTS.pop("doubled")
