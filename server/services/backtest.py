@@ -61,6 +61,7 @@ from server.services.district_indicators import (
     NowcastInput,
     district_indicators,
     load_district_data,
+    nowcast_measures,
     pool_basis,
     usable,
 )
@@ -255,6 +256,7 @@ def _stack(
     snaps = cleaned
     return replace(
         base, invalid={m: v for m, v in invalid.items() if m not in needs.plant},
+        plant_invalid={m: invalid[m] for m in needs.plant}, plant_stale={},
         bad_values=(),
         regions=tuple(f"{k}:{c}" for k in range(n) for c in base.regions),
         levels=base.levels * n,
@@ -277,7 +279,7 @@ def _triangles(
     A row counted from as-known day ``k`` was received on day ``k + 1`` (:func:`_read_rows`).
     """
     out = {}
-    for m in (m for m in NOWCAST_MEASURES if m in measures):
+    for m in nowcast_measures(measures):
         k = measures.index(m)
         sel = np.flatnonzero(rows.measure == k)  # rows are in arrival order
         out[m] = triangle_from_rows(

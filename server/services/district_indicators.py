@@ -137,6 +137,12 @@ def _clean(
 #: Count measures nowcast from their reporting triangles: those the nowcast indicators use
 #: (positives and GP consultations would add triangle rows that no indicator reads).
 NOWCAST_MEASURES = ("cases", "tests", "hosp_admissions")
+
+
+def nowcast_measures(measures: Iterable[str]) -> tuple[str, ...]:
+    """Those of ``measures`` nowcast: :data:`NOWCAST_MEASURES` and their pathogen-specific
+    measures (``cases.influenza``)."""
+    return tuple(m for m in measures if m.split(".", 1)[0] in NOWCAST_MEASURES)
 #: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
 NOWCAST_DELAYS = 60
 NOWCAST_WINDOW = 60
@@ -182,6 +188,27 @@ class DistrictData:
     bad_values: tuple[BadValue, ...] = ()
     # The store's measure catalogue (name -> kind of measure) the declarations are checked on.
     measure_kinds: Mapping[str, str] = field(default_factory=dict)
+    # Per plant measure, (plants, days): unusable values / past the feed's limit, so that each
+    # wastewater target (one per pathogen) is judged on its own measures (``ww_plants``: all).
+    plant_invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    plant_stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+
+    def plants_invalid(self, *measures: str) -> NDArray[np.bool_]:
+        """(districts, days): some plant serving the district had an unusable value of one of
+        ``measures`` (``ww_plants`` when they were not read apart)."""
+        if not all(m in self.plant_invalid for m in measures):
+            return self.invalid.get("ww_plants", np.zeros(
+                (len(self.regions), self.dates.size), dtype=bool))
+        bad = np.logical_or.reduce([self.plant_invalid[m] for m in measures])
+        return (self.served > 0).astype(np.float64) @ bad.astype(np.float64) > 0
+
+    def plants_stale(self, *measures: str) -> NDArray[np.bool_] | None:
+        """(districts, days): every plant serving the district is past its feed's limit for one
+        of ``measures`` (None: nowhere known; ``ww_plants`` when they were not read apart)."""
+        if not all(m in self.plant_stale for m in measures):
+            return self.stale_of("ww_plants")
+        return _all_plants_stale(
+            np.logical_or.reduce([self.plant_stale[m] for m in measures]), self.served)
 
     def invalid_of(self, *measures: str, reach: int = 1) -> NDArray[np.bool_] | None:
         """Where any of ``measures`` had an unusable value within the last ``reach`` days
@@ -257,6 +284,7 @@ def nowcast_inputs(
     *, session: Session, regions: Sequence[str], groups: Sequence[str | None],
     dates: NDArray[np.datetime64], as_of: datetime | None,
     group_names: Mapping[str, str] | None = None, time_zone: tzinfo = UTC,
+    measures: Sequence[str] = NOWCAST_MEASURES,
 ) -> dict[str, NowcastInput]:
     """Delay models of every count measure at the cutoff, from one read of stored vintages.
 
@@ -266,12 +294,12 @@ def nowcast_inputs(
     (or of the newest row received). ``groups`` are the districts' parent areas,
     which small districts pool their delays over (:func:`server.indicators.nowcast.delay_model`).
     """
-    if not regions or dates.size == 0:
+    if not regions or dates.size == 0 or not measures:
         return {}
     end = dates[-1].astype("datetime64[D]")
     first = end - np.timedelta64(NOWCAST_WINDOW - 1, "D")
     rows = read_vintage_rows(
-        session=session, measures=NOWCAST_MEASURES, regions=regions,
+        session=session, measures=measures, regions=regions,
         start=first.astype(date), end=end.astype(date), as_of=as_of,
     )
     if len(rows) == 0:
@@ -291,7 +319,7 @@ def nowcast_inputs(
     # A stored value the indicators cannot take (:func:`usable`) is left out of the triangle, as
     # it is read as missing everywhere else; counts within the tolerance are rounded.
     values, unusable, _why = usable(rows.value, count=True)
-    for k, measure in enumerate(NOWCAST_MEASURES):
+    for k, measure in enumerate(measures):
         pick = (rows.measure == k) & ~unusable
         if not pick.any():
             continue
@@ -388,6 +416,7 @@ def load_district_data(
         "small_district" if p < SMALL_DISTRICT_POPULATION else "district" for p in population
     )
     stale: dict[str, NDArray[np.bool_]] = {}
+    plants: dict[str, NDArray[np.bool_]] = {}
     if stale_after is not None:
         dates = district.dates
         stale.update(stale_masks(session=session, regions=codes, measures=needs.district,
@@ -405,10 +434,12 @@ def load_district_data(
         district=district_values, area_of_district=area_of_district, plant=plant_values,
         plant_population=np.array([r[1] for r in plant_rows], dtype=np.float64),
         served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
+        plant_invalid=plant_bad, plant_stale=plants,
         measure_kinds=store_measures(session=session),
         nowcasts=nowcast_inputs(
             session=session, regions=codes, groups=parents, dates=district.dates, as_of=as_of,
             group_names={r[2]: r[3] for r in rows if r[2] is not None}, time_zone=time_zone,
+            measures=nowcast_measures(needs.district),
         ) if nowcast else {},
     )
 

@@ -328,7 +328,8 @@ def _plant_log(d: DistrictData, ind: Indicator) -> tuple[np.ndarray, np.ndarray]
 
 
 def _on_districts(
-    d: DistrictData, per_plant: tuple[np.ndarray, np.ndarray | None, np.ndarray | None],
+    d: DistrictData, ind: Indicator,
+    per_plant: tuple[np.ndarray, np.ndarray | None, np.ndarray | None],
     log_value: np.ndarray, overflow: np.ndarray, reach: int,
 ) -> IndicatorSeries:
     """Plant values on sample days as the population-weighted mean over each district's
@@ -339,18 +340,19 @@ def _on_districts(
         for a in per_plant)
     assert estimate is not None
     age = data_age(to_districts(np.where(sampled, 1.0, np.nan), d.served))
-    bad = d.invalid.get("ww_plants", np.zeros(estimate.shape, dtype=bool)) | (
+    measures = ind.measures()
+    bad = d.plants_invalid(*measures) | (
         (d.served > 0).astype(np.float64) @ overflow.astype(np.float64) > 0)
     invalid = trailing_sum(bad.astype(np.float64), reach) > 0.5 if bad.any() else None
     return IndicatorSeries(estimate=estimate, lower=lower, upper=upper, age_days=age,
-                           stale=d.stale_of("ww_plants"), invalid=invalid)
+                           stale=d.plants_stale(*measures), invalid=invalid)
 
 
 def _wastewater_trend(d: DistrictData, ind: Indicator) -> IndicatorSeries:
     log_value, overflow = _plant_log(d, ind)
     w = _window(ind)
     per_plant = trend(log_value, window=w)
-    return _on_districts(d, (per_plant.estimate, per_plant.lower, per_plant.upper),
+    return _on_districts(d, ind, (per_plant.estimate, per_plant.lower, per_plant.upper),
                          log_value, overflow, w)
 
 
@@ -361,7 +363,7 @@ def _wastewater_level(d: DistrictData, ind: Indicator) -> IndicatorSeries:
     lvl = level(log_value, current=smoothed.estimate, baseline_days=baseline,
                 quantile=float(ind.params["quantile"]),  # type: ignore[arg-type]
                 min_samples=_window(ind, "min_samples"))
-    return _on_districts(d, (lvl.estimate, None, None), log_value, overflow, baseline)
+    return _on_districts(d, ind, (lvl.estimate, None, None), log_value, overflow, baseline)
 
 
 #: Days a bad input day reaches forward in EARS: the baseline and the day itself

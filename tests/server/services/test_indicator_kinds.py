@@ -322,3 +322,33 @@ def test_a_named_builder_registers_as_a_kind_in_one_line(demo_session: Session) 
     finally:
         KINDS.pop("doubled")
         DEFAULTS.pop("doubled")
+
+
+def test_each_wastewater_target_is_judged_on_its_own_plant_measures() -> None:
+    from server.services.district_indicators import DistrictData
+
+    days = 40
+    rng = np.random.default_rng(3)
+    conc = np.where(np.arange(days) % 2 == 0, np.exp(8 + rng.normal(0, 0.1, days)), np.nan)
+    bad = np.zeros((1, days), dtype=bool)
+    bad[0, 20] = True  # one unusable influenza value at the plant
+    data = DistrictData(
+        regions=("D1",), levels=("district",), population=np.array([1e4]),
+        dates=np.arange(np.datetime64("2026-01-01"), np.datetime64("2026-01-01") + days),
+        district={}, area_of_district={},
+        plant={"ww_concentration": conc[None], "ww_concentration.influenza": conc[None],
+               "ww_flow": np.full((1, days), 1e6)},
+        plant_population=np.array([1e4]), served=np.array([[1e4]]), as_of=None,
+        plant_invalid={"ww_concentration": np.zeros((1, days), bool),
+                       "ww_concentration.influenza": bad, "ww_flow": np.zeros((1, days), bool)},
+    )
+    text = _policy("  sars:\n    label: s\n    kind: wastewater_trend\n"
+                   "  flu:\n    label: f\n    kind: wastewater_trend\n"
+                   "    measure: ww_concentration.influenza\n", "sars")
+    rs = parse_ruleset(text, indicators=indicator_check())
+    sars, flu = (KINDS["wastewater_trend"].build(data, resolve(rs.indicator(n)))  # type: ignore[arg-type]
+                 for n in ("sars", "flu"))
+    assert sars.invalid is None
+    # the bad day reaches the 15-day trend window after it
+    assert np.flatnonzero(flu.invalid[0]).tolist() == list(range(20, 35))
+    assert_array_equal(sars.estimate, flu.estimate)

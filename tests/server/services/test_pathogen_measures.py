@@ -155,3 +155,24 @@ criteria:
         assert_allclose(series.estimate[i, 6:], x / pop * 1e5, rtol=1e-12)
         assert_allclose(series.upper[i, 6:], stats.chi2.ppf(0.975, 2 * x + 2) / 2 / pop * 1e5,
                         rtol=1e-9)
+
+
+def test_pathogen_count_measures_get_their_own_reporting_triangle(session: Session) -> None:
+    _setup(session)
+    rows = {"ZA": {"covid": [4] * 10, "flu": [2] * 10, "rsv": [1] * 10}}
+    _ingest(session, rows, datetime(2026, 3, 12, 6, tzinfo=UTC))
+    text = """name: flu
+version: "1"
+tiers:
+  - {name: T0, staff: s, public: p}
+  - {name: T1, staff: s, public: p}
+indicators:
+  rsv_7d: {label: r, kind: incidence, measure: cases.rsv}
+criteria:
+  - {id: rsv, indicator: rsv_7d, enter: [50], exit: [30]}
+"""
+    rs = parse_ruleset(text)
+    data = load_district_data(session=session, start=START, end=START + timedelta(days=9),
+                              needs=measure_needs(rs, store_measures(session=session)))
+    assert set(data.nowcasts) == {"cases.rsv"}  # only what the policy reads, pathogen and all
+    assert data.nowcasts["cases.rsv"].model.reported.shape[0] == 2  # both districts
