@@ -32,7 +32,7 @@ Adding a kind: its method in ``server/indicators``, a builder and one :class:`Ki
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from types import MappingProxyType
 from typing import Literal
@@ -631,11 +631,25 @@ def known_measures(measures: Mapping[str, str] | None = None) -> dict[str, str]:
 
 
 def indicator_check(
-    measures: Mapping[str, str] | None = None,
+    measures: Mapping[str, str] | None = None, *, pathogens: Sequence[str] | None = None,
 ) -> Callable[[IndicatorSpec], None]:
-    """The check :func:`rules.parse_ruleset` takes, over :func:`known_measures`."""
+    """The check :func:`rules.parse_ruleset` takes, over :func:`known_measures`; with
+    ``pathogens`` (the feeds file's list) a qualified measure's pathogen must be one of them."""
     known = known_measures(measures)
-    return lambda spec: check_indicator(spec, known)
+
+    def check(spec: IndicatorSpec) -> None:
+        ind = resolve(spec, known)
+        if ind is None or pathogens is None:
+            return
+        roles = [("measure",)] + [("params", p.name) for p in ind.kind.params
+                                  if p.type == "measure" and p.name in ind.params]
+        for role, name in zip(roles, ind.measures(), strict=True):
+            base, dot, pathogen = name.partition(".")
+            if dot and name not in known and pathogen not in pathogens:
+                raise FieldError(role, f"unknown pathogen {pathogen!r} in {name!r} "
+                                       f"(configured: {', '.join(pathogens) or 'none'})")
+
+    return check
 
 
 def _resolved(ruleset: Ruleset, measures: Mapping[str, str]) -> dict[str, Indicator | None]:

@@ -137,3 +137,21 @@ def test_rules_kinds_lists_every_kind_with_its_parameters() -> None:
                  "occupancy_share", "wastewater_trend", "wastewater_level", "aberration"):
         assert f"\n{kind}: " in "\n" + result.output
     assert "  serial_interval_mean (float, > 1, <= 60; default 4.7)" in result.output
+
+
+def test_rules_check_refuses_a_pathogen_the_feeds_do_not_list(tmp_path: Path) -> None:
+    text = (POLICIES / "county.yaml").read_text().replace(
+        "  gp_aberration:\n", "  flu_ww:\n    label: influenza wastewater\n"
+        "    kind: wastewater_trend\n    measure: ww_concentration.measles\n"
+        "  gp_aberration:\n")
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(text)
+    line = text.splitlines().index("    measure: ww_concentration.measles") + 1
+    result = run("rules", "check", str(bad))
+    assert result.exit_code == 1
+    assert (f"{bad}:{line}:14: indicators.flu_ww.measure: unknown pathogen 'measles' in "
+            "'ww_concentration.measles' (configured: sars-cov-2, influenza, rsv)"
+            in result.output.replace("\n", ""))
+    good = tmp_path / "good.yaml"
+    good.write_text(text.replace(".measles", ".influenza"))
+    assert run("rules", "check", str(good)).exit_code == 0
