@@ -168,7 +168,7 @@ def _measures(engine: Engine) -> list[tuple]:
                    Measure.description).order_by(Measure.id))]
 
 
-def test_0007_keeps_every_row_and_as_of_read_and_fills_the_base_measure(
+def test_0007_pathogen_keeps_every_row_and_as_of_read_and_fills_the_base_measure(
     migrated_engine: Engine, tmp_path: Path
 ) -> None:
     url = (f"sqlite:///{tmp_path / 'old.db'}" if migrated_engine.dialect.name == "sqlite"
@@ -176,13 +176,13 @@ def test_0007_keeps_every_row_and_as_of_read_and_fills_the_base_measure(
     at = datetime(2030, 3, 7, 5, 0, tzinfo=UTC)
     cutoffs = [at + timedelta(hours=h) for h in (-1, 0, 12, 24, 48)]
     with scratch_engine(url, prefix="tw_mig") as engine:
-        upgrade(engine, "0006")
+        upgrade(engine, "0007")
         with engine.begin() as connection:
             connection.execute(insert(Region.__table__), [
                 {"id": k, "code": f"D{k:02d}", "name": f"Invented district {k}",
                  "level": "district", "population": 1000 * k, "attributes": {}}
                 for k in (1, 2)])
-            # the table as 0006 has it: no base, no pathogen
+            # the table before 0007_pathogen: no base, no pathogen
             connection.execute(text(
                 "INSERT INTO measure (id, name, unit, kind, aggregation, description) VALUES "
                 "(1, 'cases', 'n', 'count', 'sum', ''), "
@@ -212,7 +212,7 @@ def test_0007_keeps_every_row_and_as_of_read_and_fills_the_base_measure(
         config = alembic_config(engine)
         with engine.begin() as connection:
             config.attributes["connection"] = connection
-            command.downgrade(config, "0006")
+            command.downgrade(config, "0007")
         down = _observations_and_reads(engine, cutoffs), _measures(engine)
     assert len(before[0][0]) == len(rows)
     assert len({str(r) for r in before[0][1]}) > 2  # the as-of reads differ between cutoffs

@@ -9,7 +9,7 @@ Both columns are added in place (no table copy: on SQLite a copy of ``measure`` 
 drop the table the observations point at); ``base`` is filled from ``name``.
 
 Revision ID: 0007_pathogen
-Revises: 0006
+Revises: 0007 (0007_forecast_record)
 Create Date: 2026-12-04 19:50:00
 """
 
@@ -19,7 +19,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision = "0007_pathogen"
-down_revision = "0006"
+down_revision = "0007"
 branch_labels = None
 depends_on = None
 
