@@ -62,8 +62,6 @@ from server.indicators.nowcast import (
     triangle_from_rows,
 )
 from server.indicators.poisson import poisson_interval
-from server.services.capacity_indicators import days_to_share_series, projected_share_series
-from server.services.seasonal_indicators import seasonal_series
 from server.store import read_dense
 from server.store.models import Catchment, Measure, Region
 from server.store.reads import feed_last_dates, read_vintage_rows
@@ -549,12 +547,7 @@ def on_nowcast(
 #: ``kind``. Registering a kind there is the better way (its parameters and measures are
 #: checked; ``indicator_kinds.from_named_builder`` turns one of these into a kind); this table
 #: keeps name-based builders working.
-BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
-    "seasonal_intensity": seasonal_series,  # weekly MEM levels (seasonal_indicators.py)
-    # Projected ICU pressure under the ruleset's scenarios (server/services/capacity_indicators).
-    "icu_share_projected": lambda d, r: carry_forward(projected_share_series(d, r)),
-    "icu_days_to_share": lambda d, r: carry_forward(days_to_share_series(d, r)),
-}
+BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {}
 
 
 def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, IndicatorSeries]:

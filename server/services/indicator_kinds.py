@@ -51,6 +51,7 @@ from server.indicators.serial_interval import gamma_serial_interval
 from server.indicators.wastewater import level, normalise, smooth, to_districts, trend
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
+from server.services.capacity_indicators import days_to_share_series, projected_share_series
 from server.services.district_indicators import (
     AREA_MEASURES,
     BUILDERS,
@@ -64,6 +65,7 @@ from server.services.district_indicators import (
     store_measures,
 )
 from server.services.errors import ServiceError
+from server.services.seasonal_indicators import seasonal_series
 
 __all__ = [
     "DEFAULTS",
@@ -522,7 +524,7 @@ def from_named_builder(
     builder: Callable[[DistrictData, Ruleset], IndicatorSeries], *, name: str, help: str,
     default_measure: str, measure_kinds: tuple[str, ...], level: Level = "district",
     params: tuple[Param, ...] = (), carry: bool = True, on_samples: bool = False,
-    reads: MeasureNeeds | None = None,
+    reads: MeasureNeeds | None = None, measure_param: str | None = None,
 ) -> Kind:
     """A kind from a :data:`~server.services.district_indicators.BUILDERS`-style function,
     which reads its parameters as ``ruleset.indicator(name).params``; it sees the declaration
@@ -530,11 +532,15 @@ def from_named_builder(
 
     ``params`` are checked; others pass to the builder unchecked. It reads ``reads`` (default:
     the measures of earlier releases) besides the declared measure; ``carry`` holds the newest
-    value on days without one, as ``carry_forward`` in a BUILDERS line does.
+    value on days without one, as ``carry_forward`` in a BUILDERS line does. A builder that
+    takes its measure from a parameter names it as ``measure_param``: the declared ``measure``
+    is given there unless the parameter is set.
     """
     def build(d: DistrictData, ind: Indicator) -> IndicatorSeries:
         if ind.ruleset is None:
             raise ValueError(f"indicator kind {name!r} is computed within a ruleset only")
+        if measure_param is not None and measure_param not in ind.params:
+            ind = replace(ind, params={**ind.params, measure_param: ind.measure})
         return builder(d, _NamedView(ind.ruleset, name, ind))  # type: ignore[arg-type]
 
     return Kind(name=name, help=help, default_measure=default_measure,
@@ -736,3 +742,23 @@ def describe(kinds: Iterable[Kind] | None = None) -> list[str]:
             kind_name = p.type if isinstance(p.type, str) else p.type.__name__
             lines.append(f"  {p.name} ({kind_name}{bounds}; default {p.default!r}): {p.help}")
     return lines
+
+
+# ------------------------------------------------------------------ kinds from name-based builders
+# Builders written for district_indicators.BUILDERS (parameters read from the ruleset), each a
+# kind in one line; default=True keeps a declaration named as the kind working without `kind:`.
+
+register(from_named_builder(
+    seasonal_series, name="seasonal_intensity", default_measure="gp_ari", measure_kinds=_COUNTS,
+    carry=False, measure_param="measure",
+    help="level of the newest complete ISO week by the moving epidemic method (0 below the "
+         "epidemic threshold .. 4 very high); its own params (docs/rules.md)"), default=True)
+register(from_named_builder(
+    projected_share_series, name="icu_share_projected", default_measure="icu_occupied",
+    measure_kinds=("level", "count"), level="area",
+    help="ICU share of staffed beds expected `horizon` days ahead under a policy scenario"),
+    default=True)
+register(from_named_builder(
+    days_to_share_series, name="icu_days_to_share", default_measure="icu_occupied",
+    measure_kinds=("level", "count"), level="area",
+    help="days until the expected ICU share reaches `share` per cent"), default=True)
