@@ -6,7 +6,7 @@ Pure: imports only the standard library, PyYAML and numpy.
 from rules.errors import EvaluationInputError, FieldError, RulesetError
 from rules.evaluation import EngineState, Evaluation, evaluate
 from rules.explanation import Explanation
-from rules.loader import load_ruleset, parse_ruleset
+from rules.loader import IndicatorCheck, load_ruleset, parse_ruleset
 from rules.model import (
     Combination,
     Condition,
@@ -37,6 +37,7 @@ __all__ = [
     "Explanation",
     "FieldError",
     "Gate",
+    "IndicatorCheck",
     "IndicatorSeries",
     "IndicatorSpec",
     "Override",

@@ -9,6 +9,7 @@ a :class:`~rules.nodes.NodeReader` and builds the frozen objects of :mod:`rules.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path as FsPath
 from typing import Any
 
@@ -34,7 +35,11 @@ from rules.model import (
 from rules.nodes import MISSING, NodeReader, Path
 from rules.ruleset import Ruleset
 
-__all__ = ["load_ruleset", "parse_ruleset"]
+__all__ = ["IndicatorCheck", "load_ruleset", "parse_ruleset"]
+
+#: Checks one declared indicator (raises :class:`~rules.errors.FieldError`); see
+#: :func:`parse_ruleset`.
+IndicatorCheck = Callable[[IndicatorSpec], None]
 
 _TOP_REQUIRED = ("name", "version", "tiers", "indicators", "criteria")
 _TOP_OPTIONAL = (
@@ -51,18 +56,25 @@ _TOP_OPTIONAL = (
 _THRESHOLD_KEYS = ("enter", "exit", "strict", "enter_strict", "exit_strict")
 
 
-def load_ruleset(path: str | FsPath) -> Ruleset:
+def load_ruleset(path: str | FsPath, *, indicators: IndicatorCheck | None = None) -> Ruleset:
     """Read and parse the ruleset file at ``path`` (UTF-8); errors name the file."""
     p = FsPath(path)
     try:
         text = p.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise RulesetError(str(path), 0, 0, "", f"cannot read the file: {exc}") from exc
-    return parse_ruleset(text, source=str(path))
+    return parse_ruleset(text, source=str(path), indicators=indicators)
 
 
-def parse_ruleset(text: str, *, source: str = "<string>") -> Ruleset:
+def parse_ruleset(
+    text: str, *, source: str = "<string>", indicators: IndicatorCheck | None = None
+) -> Ruleset:
     """Parse ruleset YAML ``text``; ``source`` names it in error messages.
+
+    ``indicators``, when given, checks each declared indicator against what the caller can
+    compute (the services pass their registry of indicator kinds): it raises
+    :class:`~rules.errors.FieldError` with a path relative to the declaration (``("params",
+    "window")``), reported at that key's line like every other problem.
 
     Raises
     ------
@@ -80,14 +92,16 @@ def parse_ruleset(text: str, *, source: str = "<string>") -> Ruleset:
     if root is None:
         raise RulesetError(source, 1, 1, "", "the file is empty")
     reader = NodeReader(source)
-    result = _read_root(reader, root, text, source)
+    result = _read_root(reader, root, text, source, indicators)
     if reader.errors or result is None:
         first, *rest = reader.errors or [RulesetError(source, 1, 1, "", "invalid ruleset")]
         raise RulesetError(first.file, first.line, first.column, first.path, first.message, rest)
     return result
 
 
-def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Ruleset | None:
+def _read_root(
+    r: NodeReader, root: yaml.Node, text: str, source: str, check: IndicatorCheck | None
+) -> Ruleset | None:
     top = r.mapping(root, (), required=_TOP_REQUIRED, optional=_TOP_OPTIONAL)
     if top is None:
         return None
@@ -101,7 +115,8 @@ def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Rulese
         if fresh and "max_age_days" in fresh:
             default_age = _num(r, fresh["max_age_days"], ("freshness", "max_age_days"))
     indicators = (
-        _read_indicators(r, top["indicators"], default_age) if "indicators" in top else None
+        _read_indicators(r, top["indicators"], default_age, check)
+        if "indicators" in top else None
     )
     criteria = _read_list(r, top, "criteria", _read_criterion)
     directions: dict[str, str] | None = (
@@ -241,8 +256,13 @@ def _read_tier_texts(
     return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 
 
+def _checked(*, check: IndicatorCheck, spec: IndicatorSpec) -> bool:
+    check(spec)
+    return True
+
+
 def _read_indicators(
-    r: NodeReader, node: yaml.Node, default_age: float | None
+    r: NodeReader, node: yaml.Node, default_age: float | None, check: IndicatorCheck | None
 ) -> tuple[IndicatorSpec, ...] | None:
     m = r.mapping(node, ("indicators",), free_keys=True)
     if m is None:
@@ -254,14 +274,15 @@ def _read_indicators(
             item,
             path,
             required=("label",),
-            optional=("unit", "decimals", "max_age_days", "params"),
+            optional=("kind", "measure", "unit", "decimals", "max_age_days", "params"),
         )
         if spec is None or "label" not in spec:
             out.append(None)
             continue
         kwargs: dict[str, Any] = {"name": name, "label": r.text(spec["label"], path + ("label",))}
-        if "unit" in spec:
-            kwargs["unit"] = r.text(spec["unit"], path + ("unit",))
+        for key in ("kind", "measure", "unit"):
+            if key in spec:
+                kwargs[key] = r.text(spec[key], path + (key,))
         if "decimals" in spec:
             kwargs["decimals"] = r.integer(spec["decimals"], path + ("decimals",), minimum=0)
         age_node = spec.get("max_age_days")
@@ -280,7 +301,12 @@ def _read_indicators(
         ):
             out.append(None)
             continue
-        out.append(r.build(item, path, IndicatorSpec, **kwargs))
+        built = r.build(item, path, IndicatorSpec, **kwargs)
+        if built is not None and check is not None and r.build(
+            item, path, _checked, check=check, spec=built
+        ) is None:
+            built = None
+        out.append(built)
     return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 
 

@@ -78,6 +78,15 @@ def _identifier(path: tuple[str | int, ...], value: str) -> None:
         raise FieldError(path, f"expected a name of letters, digits, '_' or '-', got {value!r}")
 
 
+def _measure_name(path: tuple[str | int, ...], value: str) -> None:
+    """A measure name: an identifier, optionally qualified by dots (``cases.influenza``)."""
+    if not isinstance(value, str) or not all(
+        part and part.replace("_", "a").replace("-", "a").isalnum() for part in value.split(".")
+    ):
+        raise FieldError(path, f"expected a measure name (letters, digits, '_', '-', '.'), "
+                               f"got {value!r}")
+
+
 @dataclass(frozen=True, kw_only=True)
 class Tier:
     """One ordered level: number, name, staff description and plain-language public text.
@@ -148,6 +157,10 @@ class TierText:
 class IndicatorSpec:
     """An indicator the services layer provides, with display hints and typed parameters.
 
+    ``kind`` names the method from the services' registry of indicator kinds and ``measure`` the
+    measure it is applied to (``docs/rules.md``, "Indicators"); both ``None`` for a name the
+    services know by itself (``incidence_7d``, ...). The kind, the measure and the parameters are
+    checked against the registry by the check the loader is given; here only their form.
     ``max_age_days`` marks data older than that many days as stale (unknown).
     """
 
@@ -157,9 +170,17 @@ class IndicatorSpec:
     decimals: int = 1
     max_age_days: float | None = None
     params: Mapping[str, ParamValue] = field(default_factory=dict)
+    kind: str | None = None
+    measure: str | None = None
 
     def __post_init__(self) -> None:
         _identifier(("name",), self.name)
+        if self.kind is not None:
+            _identifier(("kind",), self.kind)
+        if self.measure is not None:
+            _measure_name(("measure",), self.measure)
+        if self.measure is not None and self.kind is None:
+            raise FieldError(("measure",), f"measure {self.measure!r} given without a kind")
         _nonneg_int(("decimals",), self.decimals)
         if self.max_age_days is not None:
             _finite(("max_age_days",), self.max_age_days)

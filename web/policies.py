@@ -102,7 +102,7 @@ def draft(
                 "backtests": _jobs(request).recent(session=session),
             }, status_code=422)
         text = decoded
-    result = check_draft(text, filename=name)
+    result = check_draft(text, filename=name, session=session)
     if result.ok and store:
         new_id = store_draft(session=session, text=text, author=user.name, filename=name)
         return RedirectResponse(f"/staff/policies?id={new_id}#active-h", status_code=303)

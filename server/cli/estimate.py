@@ -10,22 +10,18 @@ import typer
 from rich.markup import escape
 
 from server.cli.output import fail, friendly_errors, say, warn
-from server.services.estimates import EstimateOptions, estimates_csv, run_estimate, write_estimates
+from server.services.estimates import (
+    KINDS,
+    EstimateOptions,
+    estimates_csv,
+    registry_kinds,
+    run_estimate,
+    write_estimates,
+)
 
-
-class Kind(StrEnum):
-    """The indicators ``tierwise estimate`` computes."""
-
-    rt = "rt"
-    incidence = "incidence"
-    positivity = "positivity"
-    aberration = "aberration"
-    growth = "growth"
-    wastewater = "wastewater"
-    icu_projection = "icu-projection"
-    curve_fit = "curve-fit"
-    nowcast = "nowcast"
-    seasonal_intensity = "seasonal-intensity"
+#: The indicators ``tierwise estimate`` computes: its own tables, then every other kind of the
+#: policy registry (``tierwise rules kinds``).
+Kind = StrEnum("Kind", {k.replace("-", "_"): k for k in (*KINDS, *registry_kinds())})  # type: ignore[misc]
 
 
 HELP = """Compute one indicator for a daily CSV file.
@@ -59,6 +55,13 @@ nowcast: d0, d1, ..., dD -> nowcast, nowcast_lower, nowcast_upper,
 seasonal-intensity: cases -> weekly_value, epidemic_threshold,
   medium_threshold, high_threshold, very_high_threshold, level,
   seasons, not_enough_seasons (true/false)
+testing_rate, growth_rate, occupancy_share, wastewater_trend,
+  wastewater_level (and every other policy kind, `tierwise rules
+  kinds`): the measure's column (--measure, default the kind's own,
+  e.g. tests) and its measure parameters' columns -> value, lower,
+  upper, count, computed as a policy's indicator; --param NAME=VALUE
+  as the policy's params; --population (the people a plant serves for
+  the wastewater kinds)
 
 \b
 rt: Cori et al. (2013) posterior over --window days (7), dated on the
@@ -175,6 +178,12 @@ def estimate(
         int, typer.Option(help="seasonal-intensity: past seasons needed.")
     ] = 3,
     interval: Annotated[str, typer.Option(help="seasonal-intensity: mean or point.")] = "mean",
+    measure: Annotated[
+        str | None, typer.Option(help="policy kinds: the measure (column) to read.")
+    ] = None,
+    param: Annotated[
+        list[str] | None, typer.Option(help="policy kinds: NAME=VALUE, as in a policy.")
+    ] = None,
 ) -> None:
     options = EstimateOptions(
         window=window, level=level, max_missing=max_missing, si_mean=si_mean, si_sd=si_sd,
@@ -187,6 +196,7 @@ def estimate(
         n_boot=n_boot, seed=seed, increments=increments, delay_window=delay_window,
         overdispersion=overdispersion.lower(), weekly=weekly, start_week=start_week,
         end_week=end_week, seasons=seasons, min_seasons=min_seasons, interval=interval.lower(),
+        measure=measure, params=tuple(param or ()),
     )
     table = run_estimate(kind.value, input, options)
     for text in table.warnings:

@@ -16,12 +16,18 @@ from server.config import Settings
 rules_app = typer.Typer(help="Check tier-policy (ruleset) files.", no_args_is_help=True)
 
 
-def _load(file: Path):  # type: ignore[no-untyped-def]
-    """The ruleset in ``file``; every problem printed as ``file:line:col: path: message``."""
+def _load(  # type: ignore[no-untyped-def]
+    file: Path, measures: dict[str, str] | None = None, pathogens: tuple[str, ...] | None = None,
+):
+    """The ruleset in ``file``, its indicators checked against the registry of indicator kinds
+    (on the standard measures and ``measures``; qualified measures' pathogens against
+    ``pathogens``); every problem printed as ``file:line:col: path: message``."""
+    from server.services.indicator_kinds import indicator_check
+
     if not file.is_file():
         raise fail(f"{file}: no such file")
     try:
-        return load_ruleset(file)
+        return load_ruleset(file, indicators=indicator_check(measures, pathogens=pathogens))
     except RulesetError as exc:
         for problem in exc.errors:
             err_console.print(escape(problem.location()), highlight=False, soft_wrap=True)
@@ -32,12 +38,47 @@ def _load(file: Path):  # type: ignore[no-untyped-def]
 @friendly_errors
 def rules_check(
     file: Annotated[Path, typer.Argument(help="Ruleset YAML file.")],
+    store: Annotated[
+        bool, typer.Option("--store", help="Also accept the measures of the configured "
+                           "database's catalogue (TIERWISE_DATABASE_URL).")
+    ] = False,
 ) -> None:
     """Validate a ruleset file and print its summary (tiers, thresholds, timing, signals).
 
+    Each indicator's kind, measure and parameters are checked against the registry of
+    indicator kinds (`tierwise rules kinds`), a pathogen-specific measure's pathogen against
+    the feeds file's `pathogens` (TIERWISE_FEEDS_FILE; default sars-cov-2, influenza, rsv).
     Exits with status 1 and one `file:line:col: key.path: message` line per problem."""
-    ruleset = _load(file)
+    from server.feeds.definition import DEFAULT_PATHOGENS
+    from server.services.feeds import feeds_file, load_catalogue
+
+    settings = Settings(demo_mode=True)
+    pathogens = (load_catalogue(settings).pathogens if feeds_file(settings) is not None
+                 else DEFAULT_PATHOGENS)
+    measures = None
+    if store:
+        from server.services.database import Database
+        from server.services.indicator_kinds import store_measures
+
+        db = Database.from_settings(settings)
+        try:
+            db.check()
+            with db.transaction() as session:
+                measures = store_measures(session=session)
+        finally:
+            db.dispose()
+    ruleset = _load(file, measures, pathogens)
     say(escape(summary(ruleset).rstrip()))
+
+
+@rules_app.command("kinds")
+@friendly_errors
+def rules_kinds() -> None:
+    """List the indicator kinds a policy may declare, with their measures and parameters."""
+    from server.services.indicator_kinds import describe
+
+    for line in describe():
+        say(escape(line))
 
 
 def _day(value: str | None, option: str) -> date | None:

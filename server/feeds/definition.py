@@ -24,6 +24,9 @@ from server.feeds.errors import FeedConfigError
 NAME = re.compile(r"^[a-z0-9][a-z0-9_-]{0,99}$")
 DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhdw])\s*$")
 UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}
+#: Pathogens a feeds file allows when it lists none (``pathogens:``); the demo's.
+DEFAULT_PATHOGENS = ("sars-cov-2", "influenza", "rsv")
+PATHOGEN = re.compile(r"[a-z0-9][a-z0-9_-]{0,39}")
 LAYOUTS = ("long", "wide")
 FORMATS = ("csv", "json")
 CADENCES = ("daily", "weekly", "irregular")
@@ -82,6 +85,14 @@ class MeasureMap:
     scale: float = 1.0
     minimum: float | None = None
     maximum: float | None = None
+    #: The pathogen (or surveillance stream) of a pathogen-specific measure: the catalogue
+    #: measure is then ``base.pathogen`` (``cases.influenza``); None: unqualified.
+    pathogen: str | None = None
+
+    @property
+    def base(self) -> str:
+        """The measure this one qualifies (the measure itself when unqualified)."""
+        return self.measure[: -len(self.pathogen) - 1] if self.pathogen else self.measure
 
     def __post_init__(self) -> None:
         if self.scale == 0 or self.scale != self.scale:
@@ -196,6 +207,8 @@ class FeedCatalogue:
 
     path: str
     feeds: Mapping[str, FeedDefinition]
+    #: The pathogens (or surveillance streams) measures may be qualified by (``pathogens:``).
+    pathogens: tuple[str, ...] = ()
 
     def __getitem__(self, name: str) -> FeedDefinition:
         try:
@@ -269,13 +282,29 @@ def parse_feeds(text: str, *, source: str = "<feeds>", base: Path | None = None)
     document = reader.plain(root, "")
     if not isinstance(document, dict) or not isinstance(document.get("feeds"), list):
         raise reader.error("feeds", "expected a top-level key `feeds:` holding a list")
+    pathogens = _pathogens(reader, document.get("pathogens", list(DEFAULT_PATHOGENS)))
     feeds: dict[str, FeedDefinition] = {}
     for i, raw in enumerate(document["feeds"]):
-        feed = _feed(reader, raw, f"feeds[{i}]", base or Path("."))
+        feed = _feed(reader, raw, f"feeds[{i}]", base or Path("."), pathogens)
         if feed.name in feeds:
             raise reader.error(f"feeds[{i}].name", f"feed {feed.name!r} is defined twice")
         feeds[feed.name] = feed
-    return FeedCatalogue(path=source, feeds=feeds)
+    return FeedCatalogue(path=source, feeds=feeds, pathogens=pathogens)
+
+
+def _pathogens(reader: _Reader, raw: Any) -> tuple[str, ...]:
+    """The configured pathogen names: a list of lower-case names (letters, digits, '-', '_')."""
+    if not isinstance(raw, list):
+        raise reader.error("pathogens", "expected a list of pathogen names")
+    out: list[str] = []
+    for i, name in enumerate(raw):
+        if not isinstance(name, str) or not PATHOGEN.fullmatch(name):
+            raise reader.error(f"pathogens[{i}]", f"{name!r} is not a pathogen name (lower-case "
+                                                  "letters, digits, '-' or '_')")
+        if name in out:
+            raise reader.error(f"pathogens[{i}]", f"{name!r} is listed twice")
+        out.append(name)
+    return tuple(out)
 
 
 def load_feeds(path: Path) -> FeedCatalogue:
@@ -293,7 +322,9 @@ _FEED_KEYS = {
 }
 
 
-def _feed(reader: _Reader, raw: Any, path: str, base: Path) -> FeedDefinition:
+def _feed(
+    reader: _Reader, raw: Any, path: str, base: Path, pathogens: tuple[str, ...]
+) -> FeedDefinition:
     if not isinstance(raw, dict):
         raise reader.error(path, "each feed is a mapping")
     unknown = sorted(set(raw) - _FEED_KEYS)
@@ -303,7 +334,7 @@ def _feed(reader: _Reader, raw: Any, path: str, base: Path) -> FeedDefinition:
         if key not in raw:
             raise reader.error(path, f"missing required key {key!r}")
     source = _source(reader, raw["source"], f"{path}.source", base)
-    measures = _measures(reader, raw["measures"], f"{path}.measures")
+    measures = _measures(reader, raw["measures"], f"{path}.measures", pathogens)
     kwargs: dict[str, Any] = {}
     for key in ("description", "format", "layout", "encoding", "decimal", "dates", "cadence"):
         if key in raw:
@@ -369,22 +400,39 @@ def _source(reader: _Reader, raw: Any, path: str, base: Path) -> Source:
     raise reader.error(f"{path}.kind", f"{kind!r} is not one of file, http, push")
 
 
-def _measures(reader: _Reader, raw: Any, path: str) -> tuple[MeasureMap, ...]:
+def _measures(
+    reader: _Reader, raw: Any, path: str, pathogens: tuple[str, ...]
+) -> tuple[MeasureMap, ...]:
+    """Each column's measure; ``cases.influenza`` (or ``cases`` with ``pathogen: influenza``)
+    is the pathogen-specific measure, its pathogen one of ``pathogens``."""
     if isinstance(raw, list):  # short form: [cases, tests]
         raw = {str(m): {} for m in raw}
     if not isinstance(raw, dict) or not raw:
         raise reader.error(path, "expected a mapping of measure name: settings (or a list)")
-    out = []
+    out: list[MeasureMap] = []
     for name, spec in raw.items():
         spec = dict(spec or {})
         where = f"{path}.{name}"
-        allowed = {"source", "scale", "min", "max"}
+        allowed = {"source", "scale", "min", "max", "pathogen"}
         if set(spec) - allowed:
             bad = sorted(set(spec) - allowed)[0]
             raise reader.error(f"{where}.{bad}", f"unknown key; allowed: {sorted(allowed)}")
+        base_name, dot, qualifier = str(name).partition(".")
+        pathogen = qualifier if dot else None
+        if spec.get("pathogen") is not None:
+            if dot:
+                raise reader.error(f"{where}.pathogen", f"{name!r} names its pathogen already")
+            pathogen = str(spec["pathogen"])
+        if pathogen is not None and pathogen not in pathogens:
+            at = f"{where}.pathogen" if "pathogen" in spec else where
+            raise reader.error(at, f"unknown pathogen {pathogen!r} (configured: "
+                                   f"{', '.join(pathogens) or 'none'}; `pathogens:` lists them)")
+        measure = f"{base_name}.{pathogen}" if pathogen is not None else base_name
+        if any(m.measure == measure for m in out):
+            raise reader.error(where, f"measure {measure!r} is mapped twice")
         try:
             out.append(MeasureMap(
-                measure=str(name), source=str(spec.get("source", name)),
+                measure=measure, pathogen=pathogen, source=str(spec.get("source", name)),
                 scale=float(spec.get("scale", 1.0)),
                 minimum=None if spec.get("min") is None else float(spec["min"]),
                 maximum=None if spec.get("max") is None else float(spec["max"]),

@@ -29,7 +29,7 @@ the count known :data:`LATER_DAYS` days later.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta, tzinfo
 from pathlib import Path
@@ -57,13 +57,16 @@ from server.services.district_indicators import (
     NOWCAST_WINDOW,
     PLANT_MEASURES,
     DistrictData,
+    MeasureNeeds,
     NowcastInput,
     district_indicators,
     load_district_data,
+    nowcast_measures,
     pool_basis,
     usable,
 )
 from server.services.errors import ServiceError
+from server.services.indicator_kinds import measure_needs, sample_indicators, store_measures
 from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = [
@@ -82,8 +85,6 @@ __all__ = [
 WINDOW_DAYS = 56
 #: Days of as-known windows stacked into one indicator pass.
 BLOCK_DAYS = 32
-#: Indicators that exist on sample days only (no carrying forward).
-SAMPLE_INDICATORS = ("ww_trend",)
 #: A nowcast is scored against the count known this many days after its morning.
 LATER_DAYS = 28
 
@@ -157,7 +158,8 @@ def run_backtest(
     if as_known:
         data, indicators = _as_known_indicators(session, ruleset, first, end, tick, time_zone)
     else:
-        data = load_district_data(session=session, start=first, end=end)
+        data = load_district_data(session=session, start=first, end=end,
+                                  needs=measure_needs(ruleset, store_measures(session=session)))
         indicators = district_indicators(data, ruleset)
         tick((end - first).days + 1)
     ev = evaluate(
@@ -192,12 +194,13 @@ class _Rows:
 def _read_rows(
     session: Session, measures: list[str], codes: dict[str, list[str]], first: date,
     time_zone: tzinfo, since: date | None = None,
+    groups: Mapping[str, Sequence[str]] | None = None,
 ) -> _Rows:
     row_of = {}
     for group, group_codes in codes.items():
         for i, code in enumerate(group_codes):
             row_of[(group, code)] = i
-    group_of = {m: g for g, ms in _GROUPS.items() for m in ms}
+    group_of = {m: g for g, ms in (groups or _GROUPS).items() for m in ms}
     query = (
         select(Measure.name, Region.code, Observation.ref_date, Observation.value,
                Vintage.received_at)
@@ -233,30 +236,35 @@ _GROUPS = {"district": DISTRICT_MEASURES, "area": AREA_MEASURES, "plant": PLANT_
 
 def _stack(
     base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int,
-    nowcasts: dict[str, NowcastInput] | None = None,
+    nowcasts: dict[str, NowcastInput] | None = None, needs: MeasureNeeds | None = None,
 ) -> DistrictData:
-    """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts."""
-    w = snaps["cases"].shape[1]
+    """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts
+    (of the measures ``needs``; default those of earlier releases)."""
+    needs = needs or MeasureNeeds()
+    w = next(iter(snaps.values())).shape[1]
     served = np.kron(np.eye(n), base.served)
     # Stored values the indicators cannot take are read as missing and flagged, as the daily
     # evaluation does (district_indicators.usable); the base's own flags are for its own days.
     cleaned: dict[str, NDArray[np.float64]] = {}
     invalid: dict[str, NDArray[np.bool_]] = {}
-    for m in (*DISTRICT_MEASURES, *AREA_MEASURES, *PLANT_MEASURES):
-        cleaned[m], invalid[m], _why = usable(snaps[m], count=m not in PLANT_MEASURES)
-    invalid["ww_plants"] = (served > 0).astype(np.float64) @ (
-        invalid["ww_concentration"] | invalid["ww_flow"]).astype(np.float64) > 0
+    for m in (*needs.district, *needs.area, *needs.plant):
+        cleaned[m], invalid[m], _why = usable(snaps[m], count=m not in needs.plant)
+    plant_bad = np.zeros((base.plant_population.size * n, w), dtype=bool)
+    for m in needs.plant:
+        plant_bad |= invalid[m]
+    invalid["ww_plants"] = (served > 0).astype(np.float64) @ plant_bad.astype(np.float64) > 0
     snaps = cleaned
     return replace(
-        base, invalid={m: v for m, v in invalid.items() if m not in PLANT_MEASURES},
+        base, invalid={m: v for m, v in invalid.items() if m not in needs.plant},
+        plant_invalid={m: invalid[m] for m in needs.plant}, plant_stale={},
         bad_values=(),
         regions=tuple(f"{k}:{c}" for k in range(n) for c in base.regions),
         levels=base.levels * n,
         population=np.tile(base.population, n),
         dates=base.dates[:w],
-        district={m: snaps[m] for m in DISTRICT_MEASURES},
-        area_of_district={m: snaps[m] for m in AREA_MEASURES},
-        plant={m: snaps[m] for m in PLANT_MEASURES},
+        district={m: snaps[m] for m in needs.district},
+        area_of_district={m: snaps[m] for m in needs.area},
+        plant={m: snaps[m] for m in needs.plant},
         plant_population=np.tile(base.plant_population, n),
         served=served,
         nowcasts=nowcasts or {},
@@ -271,7 +279,7 @@ def _triangles(
     A row counted from as-known day ``k`` was received on day ``k + 1`` (:func:`_read_rows`).
     """
     out = {}
-    for m in NOWCAST_MEASURES:
+    for m in nowcast_measures(measures):
         k = measures.index(m)
         sel = np.flatnonzero(rows.measure == k)  # rows are in arrival order
         out[m] = triangle_from_rows(
@@ -311,7 +319,8 @@ def _as_known_indicators(
     session: Session, ruleset: Ruleset, first: date, end: date, tick: Callable[[int], None],
     time_zone: tzinfo,
 ) -> tuple[DistrictData, dict[str, IndicatorSeries]]:
-    base = load_district_data(session=session, start=first, end=first)
+    needs = measure_needs(ruleset, store_measures(session=session))
+    base = load_district_data(session=session, start=first, end=first, needs=needs)
     n_days = (end - first).days + 1
     area_parent = _area_rows(session, base)
     plants = list(
@@ -319,10 +328,12 @@ def _as_known_indicators(
     )
     areas = sorted(set(area_parent.values()))
     codes = {"district": list(base.regions), "area": areas, "plant": plants}
-    measures = [*DISTRICT_MEASURES, *AREA_MEASURES, *PLANT_MEASURES]
-    rows = _read_rows(session, measures, codes, first, time_zone)
+    measures = [*needs.district, *needs.area, *needs.plant]
+    groups = {"district": needs.district, "area": needs.area, "plant": needs.plant}
+    rows = _read_rows(session, measures, codes, first, time_zone, groups=groups)
     size = {"district": len(base.regions), "area": len(areas), "plant": len(plants)}
-    group_of = {m: g for g, ms in _GROUPS.items() for m in ms}
+    group_of = {m: g for g, ms in groups.items() for m in ms}
+    on_samples = sample_indicators(ruleset)
     current = [np.full((size[group_of[m]], n_days), np.nan) for m in measures]
     pick = np.array([areas.index(area_parent[c]) if c in area_parent else -1 for c in base.regions])
     order = np.argsort(rows.known_day, kind="stable")  # arrival order kept within a day
@@ -353,7 +364,7 @@ def _as_known_indicators(
                 window = np.full((current[k].shape[0], w), np.nan)
                 src = current[k][:, max(left, 0) : t + 1]
                 window[:, w - src.shape[1] :] = src
-                if m in AREA_MEASURES:
+                if m in needs.area:
                     window = np.where(pick[:, None] >= 0, window[np.maximum(pick, 0)], np.nan)
                 snaps[m].append(window)
         stacked = {m: np.concatenate(v, axis=0) for m, v in snaps.items()}
@@ -363,11 +374,11 @@ def _as_known_indicators(
             m: _stacked_input(_rolling_model(tri, cutoffs, pick), window_delay, area_names)
             for m, tri in triangles.items()
         }
-        series = district_indicators(_stack(base, stacked, n, nowcasts), ruleset)
+        series = district_indicators(_stack(base, stacked, n, nowcasts, needs), ruleset)
         for name, s in series.items():
             r = len(base.regions)
             est = s.estimate.reshape(n, r, w)
-            if name in SAMPLE_INDICATORS:
+            if name in on_samples:
                 last = _newest_column(est)
                 newest_prev, est_last, age = _new_samples(est, last, newest_prev, days)
                 parts[f"{name}.estimate"].append(est_last)
@@ -394,7 +405,7 @@ def _as_known_indicators(
             got = parts[f"{name}.{key}"]
             return np.concatenate(got, axis=0).T.copy() if got else None
 
-        flags = get("nowcast") if name not in SAMPLE_INDICATORS else None
+        flags = get("nowcast") if name not in on_samples else None
         indicators[name] = IndicatorSeries(
             estimate=get("estimate"), lower=get("lower"), upper=get("upper"),  # type: ignore[arg-type]
             count=get("count"), age_days=get("age"),

@@ -30,9 +30,9 @@ on the nowcast of the days still incomplete; those values carry ``nowcast`` so t
 with ``use_nowcast: false`` is unknown there (``docs/rules.md``). Positivity and Rt stay on the
 reports received so far.
 
-Indicator names known here (a ruleset may use any subset): ``incidence_7d``, ``positivity_7d``,
-``tests_7d``, ``admissions_7d``, ``icu_share``, ``rt``, ``ww_trend``, ``gp_aberration``. Percentages
-(positivity, ICU share) are expressed in percent, as policies write them.
+The indicators themselves are kinds of :mod:`server.services.indicator_kinds` (a policy declares
+each as a kind applied to a measure); :func:`district_indicators` computes those a ruleset uses,
+and :func:`load_district_data` reads the measures they need (:class:`MeasureNeeds`).
 """
 
 from __future__ import annotations
@@ -52,8 +52,6 @@ from rules import IndicatorSeries, Ruleset
 from server.feeds.definition import FeedDefinition
 from server.feeds.validation import COUNT_TOLERANCE, MAX_COUNT
 from server.indicators._arrays import trailing_sum
-from server.indicators.aberration import ears
-from server.indicators.hospital import admission_rate, occupancy_share
 from server.indicators.nowcast import (
     POOL_ALL,
     POOL_GROUP,
@@ -63,18 +61,9 @@ from server.indicators.nowcast import (
     nowcast_window,
     triangle_from_rows,
 )
-from server.indicators.poisson import incidence_rate, poisson_interval
-from server.indicators.renewal import reproduction_number
-from server.indicators.serial_interval import gamma_serial_interval
-from server.indicators.wastewater import normalise, to_districts, trend
-from server.indicators.wilson import positivity
-from server.indicators.wilson import testing_rate as tests_per_population
-from server.services.capacity_indicators import days_to_share_series, projected_share_series
-from server.services.errors import ServiceError
-from server.services.phase_indicators import wave_phase_series
-from server.services.seasonal_indicators import seasonal_series
+from server.indicators.poisson import poisson_interval
 from server.store import read_dense
-from server.store.models import Catchment, Region
+from server.store.models import Catchment, Measure, Region
 from server.store.reads import feed_last_dates, read_vintage_rows
 
 DISTRICT_MEASURES = ("cases", "tests", "positives", "hosp_admissions", "gp_ari")
@@ -82,9 +71,16 @@ AREA_MEASURES = ("icu_occupied", "icu_staffed")
 PLANT_MEASURES = ("ww_concentration", "ww_flow")
 # Districts below this population are matched by overrides as level "small_district".
 SMALL_DISTRICT_POPULATION = 30_000
-# Days a bad input day reaches forward: 7-day windows; EARS C2 (baseline t-9 .. t-3 and the day
-# itself, ``server.indicators.aberration``); the wastewater trend's 15-day window.
-WEEK, EARS_C2_REACH, WW_TREND_WINDOW = 7, 10, 15
+
+
+@dataclass(frozen=True, kw_only=True)
+class MeasureNeeds:
+    """The measures to read, by where they are stored: per district, per parent area (given to
+    each of its districts), per treatment plant. The default: those of earlier releases."""
+
+    district: tuple[str, ...] = DISTRICT_MEASURES
+    area: tuple[str, ...] = AREA_MEASURES
+    plant: tuple[str, ...] = PLANT_MEASURES
 
 log = logging.getLogger(__name__)
 
@@ -141,6 +137,12 @@ def _clean(
 #: Count measures nowcast from their reporting triangles: those the nowcast indicators use
 #: (positives and GP consultations would add triangle rows that no indicator reads).
 NOWCAST_MEASURES = ("cases", "tests", "hosp_admissions")
+
+
+def nowcast_measures(measures: Iterable[str]) -> tuple[str, ...]:
+    """Those of ``measures`` nowcast: :data:`NOWCAST_MEASURES` and their pathogen-specific
+    measures (``cases.influenza``)."""
+    return tuple(m for m in measures if m.split(".", 1)[0] in NOWCAST_MEASURES)
 #: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
 NOWCAST_DELAYS = 60
 NOWCAST_WINDOW = 60
@@ -184,6 +186,29 @@ class DistrictData:
     # missing (:func:`usable`); ``ww_plants``: some plant serving the district had one.
     invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
     bad_values: tuple[BadValue, ...] = ()
+    # The store's measure catalogue (name -> kind of measure) the declarations are checked on.
+    measure_kinds: Mapping[str, str] = field(default_factory=dict)
+    # Per plant measure, (plants, days): unusable values / past the feed's limit, so that each
+    # wastewater target (one per pathogen) is judged on its own measures (``ww_plants``: all).
+    plant_invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    plant_stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+
+    def plants_invalid(self, *measures: str) -> NDArray[np.bool_]:
+        """(districts, days): some plant serving the district had an unusable value of one of
+        ``measures`` (``ww_plants`` when they were not read apart)."""
+        if not all(m in self.plant_invalid for m in measures):
+            return self.invalid.get("ww_plants", np.zeros(
+                (len(self.regions), self.dates.size), dtype=bool))
+        bad = np.logical_or.reduce([self.plant_invalid[m] for m in measures])
+        return (self.served > 0).astype(np.float64) @ bad.astype(np.float64) > 0
+
+    def plants_stale(self, *measures: str) -> NDArray[np.bool_] | None:
+        """(districts, days): every plant serving the district is past its feed's limit for one
+        of ``measures`` (None: nowhere known; ``ww_plants`` when they were not read apart)."""
+        if not all(m in self.plant_stale for m in measures):
+            return self.stale_of("ww_plants")
+        return _all_plants_stale(
+            np.logical_or.reduce([self.plant_stale[m] for m in measures]), self.served)
 
     def invalid_of(self, *measures: str, reach: int = 1) -> NDArray[np.bool_] | None:
         """Where any of ``measures`` had an unusable value within the last ``reach`` days
@@ -259,6 +284,7 @@ def nowcast_inputs(
     *, session: Session, regions: Sequence[str], groups: Sequence[str | None],
     dates: NDArray[np.datetime64], as_of: datetime | None,
     group_names: Mapping[str, str] | None = None, time_zone: tzinfo = UTC,
+    measures: Sequence[str] = NOWCAST_MEASURES,
 ) -> dict[str, NowcastInput]:
     """Delay models of every count measure at the cutoff, from one read of stored vintages.
 
@@ -268,12 +294,12 @@ def nowcast_inputs(
     (or of the newest row received). ``groups`` are the districts' parent areas,
     which small districts pool their delays over (:func:`server.indicators.nowcast.delay_model`).
     """
-    if not regions or dates.size == 0:
+    if not regions or dates.size == 0 or not measures:
         return {}
     end = dates[-1].astype("datetime64[D]")
     first = end - np.timedelta64(NOWCAST_WINDOW - 1, "D")
     rows = read_vintage_rows(
-        session=session, measures=NOWCAST_MEASURES, regions=regions,
+        session=session, measures=measures, regions=regions,
         start=first.astype(date), end=end.astype(date), as_of=as_of,
     )
     if len(rows) == 0:
@@ -293,7 +319,7 @@ def nowcast_inputs(
     # A stored value the indicators cannot take (:func:`usable`) is left out of the triangle, as
     # it is read as missing everywhere else; counts within the tolerance are rounded.
     values, unusable, _why = usable(rows.value, count=True)
-    for k, measure in enumerate(NOWCAST_MEASURES):
+    for k, measure in enumerate(measures):
         pick = (rows.measure == k) & ~unusable
         if not pick.any():
             continue
@@ -311,7 +337,7 @@ def nowcast_inputs(
 def load_district_data(
     *, session: Session, start: date, end: date, as_of: datetime | None = None,
     stale_after: Mapping[str, timedelta] | None = None, nowcast: bool = True,
-    time_zone: tzinfo = UTC,
+    time_zone: tzinfo = UTC, needs: MeasureNeeds | None = None,
 ) -> DistrictData:
     """Dense district, area and plant arrays over ``start..end`` as known at ``as_of``.
 
@@ -319,8 +345,11 @@ def load_district_data(
     each measure's days past its feed's limit (:func:`stale_masks`); without it nothing is
     marked and only the ruleset's ``max_age_days`` applies. With ``nowcast`` the count
     measures carry their delay models (:func:`nowcast_inputs`, days of receipt in
-    ``time_zone``).
+    ``time_zone``). ``needs`` says which measures to read (default: :class:`MeasureNeeds`,
+    those of earlier releases; :func:`server.services.indicator_kinds.measure_needs` gives
+    those of a ruleset).
     """
+    needs = needs or MeasureNeeds()
     parent = aliased(Region)
     rows = session.execute(
         select(Region.code, Region.population, parent.code, parent.name)
@@ -332,26 +361,26 @@ def load_district_data(
     population = np.array([r[1] for r in rows], dtype=np.float64)
     parents = [r[2] for r in rows]
     district = read_dense(
-        session=session, measures=DISTRICT_MEASURES, start=start, end=end, regions=codes,
+        session=session, measures=needs.district, start=start, end=end, regions=codes,
         as_of=as_of,
     )
     areas = sorted({p for p in parents if p is not None})
     area = read_dense(
-        session=session, measures=AREA_MEASURES, start=start, end=end, regions=areas, as_of=as_of
+        session=session, measures=needs.area, start=start, end=end, regions=areas, as_of=as_of
     )
     pick = np.array([areas.index(p) if p in areas else -1 for p in parents])
-    n_days = district[DISTRICT_MEASURES[0]].shape[1]
+    n_days = district.dates.size
     area_of_district = {  # no area above any district: unknown (indexing an empty array fails)
         m: np.where(pick[:, None] >= 0, area[m][np.maximum(pick, 0)], np.nan) if areas
         else np.full((len(codes), n_days), np.nan)
-        for m in AREA_MEASURES
+        for m in needs.area
     }
     plant_rows = session.execute(
         select(Region.code, Region.population).where(Region.level == "plant").order_by(Region.code)
     ).all()
     plant_codes = [r[0] for r in plant_rows]
     plant = read_dense(
-        session=session, measures=PLANT_MEASURES, start=start, end=end, regions=plant_codes,
+        session=session, measures=needs.plant, start=start, end=end, regions=plant_codes,
         as_of=as_of,
     )
     served = np.zeros((len(codes), len(plant_codes)))
@@ -368,7 +397,7 @@ def load_district_data(
     district_values, invalid = _clean(district.values, codes, district.dates, count=True,
                                       found=found)
     area_values, area_bad = _clean(area.values, areas, district.dates, count=True, found=found)
-    for m in AREA_MEASURES:
+    for m in needs.area:
         area_of_district[m] = np.where(
             pick[:, None] >= 0, area_values[m][np.maximum(pick, 0)], np.nan) if areas else (
             area_of_district[m])
@@ -376,8 +405,8 @@ def load_district_data(
             np.zeros((len(codes), n_days), dtype=bool))
     plant_values, plant_bad = _clean(plant.values, plant_codes, district.dates, count=False,
                                      found=found)
-    invalid["ww_plants"] = (served > 0).astype(np.float64) @ (
-        plant_bad["ww_concentration"] | plant_bad["ww_flow"]).astype(np.float64) > 0
+    invalid["ww_plants"] = (served > 0).astype(np.float64) @ _any_plant(
+        plant_bad, len(plant_codes), n_days).astype(np.float64) > 0
     for bad in found[:20]:
         log.warning("stored %s of %s on %s is %s (%r): read as missing, its indicators are "
                     "invalid", bad.measure, bad.region, bad.ref_date, bad.problem, bad.value)
@@ -387,28 +416,50 @@ def load_district_data(
         "small_district" if p < SMALL_DISTRICT_POPULATION else "district" for p in population
     )
     stale: dict[str, NDArray[np.bool_]] = {}
+    plants: dict[str, NDArray[np.bool_]] = {}
     if stale_after is not None:
         dates = district.dates
-        stale.update(stale_masks(session=session, regions=codes, measures=DISTRICT_MEASURES,
+        stale.update(stale_masks(session=session, regions=codes, measures=needs.district,
                                  dates=dates, as_of=as_of, stale_after=stale_after))
-        for m, mask in stale_masks(session=session, regions=areas, measures=AREA_MEASURES,
+        for m, mask in stale_masks(session=session, regions=areas, measures=needs.area,
                                    dates=dates, as_of=as_of, stale_after=stale_after).items():
             stale[m] = (pick[:, None] >= 0) & mask[np.maximum(pick, 0)] if areas else np.zeros(
                 (len(codes), dates.size), dtype=bool)
-        plants = stale_masks(session=session, regions=plant_codes, measures=PLANT_MEASURES,
+        plants = stale_masks(session=session, regions=plant_codes, measures=needs.plant,
                              dates=dates, as_of=as_of, stale_after=stale_after)
-        stale["ww_plants"] = _all_plants_stale(plants["ww_concentration"] | plants["ww_flow"],
+        stale["ww_plants"] = _all_plants_stale(_any_plant(plants, len(plant_codes), n_days),
                                                   served)
     return DistrictData(
         regions=codes, levels=levels, population=population, dates=district.dates,
         district=district_values, area_of_district=area_of_district, plant=plant_values,
         plant_population=np.array([r[1] for r in plant_rows], dtype=np.float64),
         served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
+        plant_invalid=plant_bad, plant_stale=plants,
+        measure_kinds=store_measures(session=session),
         nowcasts=nowcast_inputs(
             session=session, regions=codes, groups=parents, dates=district.dates, as_of=as_of,
             group_names={r[2]: r[3] for r in rows if r[2] is not None}, time_zone=time_zone,
+            measures=nowcast_measures(needs.district),
         ) if nowcast else {},
     )
+
+
+def store_measures(*, session: Session) -> dict[str, str]:
+    """The store's measure catalogue: name -> kind of measure (count, level, concentration)."""
+    return {row[0]: row[1] for row in session.execute(select(Measure.name, Measure.kind))}
+
+
+def _any_plant(
+    masks: Mapping[str, NDArray[np.bool_]], plants: int, days: int
+) -> NDArray[np.bool_]:
+    """(plants, days): any of the plant measures' ``masks`` (all False without any).
+
+    The wastewater indicators of every plant measure share it: a bad or stale value of one
+    measure flags the others' districts too (as the one pair of earlier releases did)."""
+    out = np.zeros((plants, days), dtype=bool)
+    for mask in masks.values():
+        out |= mask
+    return out
 
 
 def _all_plants_stale(
@@ -458,17 +509,18 @@ def carry_forward(series: IndicatorSeries) -> IndicatorSeries:
     )
 
 
-def _on_nowcast(
+def on_nowcast(
     series: IndicatorSeries, d: DistrictData, measure: str, *, per: float = 100_000,
-    bounds: bool = True,
+    bounds: bool = True, window: int = 7,
 ) -> IndicatorSeries:
-    """``series`` (a rate per ``per`` of a 7-day count) computed on the nowcast where flagged.
+    """``series`` (a rate per ``per`` of a ``window``-day count) computed on the nowcast where
+    flagged (measures without a reporting triangle: ``series`` unchanged).
 
     There the estimate is the nowcast 7-day count and, with ``bounds``, the interval runs from
     the exact Poisson lower bound of the nowcast's lower predictive bound to the upper bound of
     its upper one (Garwood 1936): the count noise and the unknown late reports together.
     """
-    nc = d.nowcast_of(measure)
+    nc = d.nowcast_of(measure, window)
     if nc is None:
         return series
     flag = nc.nowcast & np.isfinite(nc.estimate)
@@ -490,141 +542,20 @@ def _on_nowcast(
     )
 
 
-def _incidence(d: DistrictData) -> IndicatorSeries:
-    cases = d.district["cases"]
-    est = incidence_rate(cases, d.population, 7)
-    return _on_nowcast(IndicatorSeries(
-        estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
-        age_days=data_age(cases), stale=d.stale_of("cases"),
-        invalid=d.invalid_of("cases", reach=WEEK),
-    ), d, "cases")
-
-
-def _positivity(d: DistrictData) -> IndicatorSeries:
-    pos, tests = d.district["positives"], d.district["tests"]
-    with np.errstate(invalid="ignore"):
-        over = pos > tests  # a pair no check let through together (older data): unusable
-    if over.any():
-        pos, tests = np.where(over, np.nan, pos), np.where(over, np.nan, tests)
-    est = positivity(pos, tests, 7)
-    invalid = d.invalid_of("positives", "tests", reach=WEEK)
-    if over.any():
-        over_week = trailing_sum(over.astype(np.float64), WEEK) > 0.5
-        invalid = over_week if invalid is None else invalid | over_week
-    return IndicatorSeries(
-        estimate=100 * est.estimate, lower=100 * est.lower, upper=100 * est.upper,
-        count=est.positives, age_days=data_age(pos, tests),
-        stale=d.stale_of("positives", "tests"), invalid=invalid,
-    )
-
-
-def _tests(d: DistrictData) -> IndicatorSeries:
-    tests = d.district["tests"]
-    est = tests_per_population(tests, d.population, 7)
-    return _on_nowcast(IndicatorSeries(estimate=est.estimate, age_days=data_age(tests),
-                                       stale=d.stale_of("tests"),
-                                       invalid=d.invalid_of("tests", reach=WEEK)),
-                       d, "tests", bounds=False)
-
-
-def _admissions(d: DistrictData) -> IndicatorSeries:
-    adm = d.district["hosp_admissions"]
-    est = admission_rate(adm, d.population, window=7)
-    return _on_nowcast(IndicatorSeries(
-        estimate=est.estimate, lower=est.lower, upper=est.upper, count=est.count,
-        age_days=data_age(adm), stale=d.stale_of("hosp_admissions"),
-        invalid=d.invalid_of("hosp_admissions", reach=WEEK),
-    ), d, "hosp_admissions")
-
-
-def _icu(d: DistrictData) -> IndicatorSeries:
-    occ, staffed = d.area_of_district["icu_occupied"], d.area_of_district["icu_staffed"]
-    share = occupancy_share(occ, staffed)
-    return IndicatorSeries(estimate=100 * share.estimate, age_days=data_age(occ, staffed),
-                           stale=d.stale_of("icu_occupied", "icu_staffed"),
-                           invalid=d.invalid_of("icu_occupied", "icu_staffed"))
-
-
-def _rt(d: DistrictData, ruleset: Ruleset) -> IndicatorSeries:
-    params = ruleset.indicator("rt").params if "rt" in ruleset.used_indicators() else {}
-    si = gamma_serial_interval(
-        float(params.get("serial_interval_mean", 4.7)), float(params.get("serial_interval_sd", 2.9))
-    )
-    cases = d.district["cases"]
-    window = int(params.get("window", 7))
-    est = reproduction_number(cases, si, window)
-    return IndicatorSeries(  # a day reaches the window and the serial interval's lags after it
-        estimate=est.estimate, lower=est.lower, upper=est.upper, age_days=data_age(cases),
-        stale=d.stale_of("cases"), invalid=d.invalid_of("cases", reach=window + si.pmf.size - 1),
-    )
-
-
-def _ww_trend(d: DistrictData) -> IndicatorSeries:
-    conc, flow = d.plant["ww_concentration"], d.plant["ww_flow"]
-    with np.errstate(over="ignore"):  # a product past the float range: that day is unusable
-        norm = normalise(
-            conc, ["flow"] * conc.shape[0], flow=flow, population_served=d.plant_population
-        )
-    log_value = norm.log_value
-    overflow = np.isinf(log_value)
-    if overflow.any():
-        log_value = np.where(overflow, np.nan, log_value)
-    per_plant = trend(log_value, window=WW_TREND_WINDOW)
-    sampled = np.isfinite(log_value)
-    # A district's trend is the population-weighted mean of its plants' trends on sample days.
-    on_samples = np.where(sampled, per_plant.estimate, np.nan)
-    estimate = to_districts(on_samples, d.served)
-    lower = to_districts(np.where(sampled, per_plant.lower, np.nan), d.served)
-    upper = to_districts(np.where(sampled, per_plant.upper, np.nan), d.served)
-    age = data_age(to_districts(np.where(sampled, 1.0, np.nan), d.served))
-    bad = d.invalid.get("ww_plants", np.zeros(estimate.shape, dtype=bool)) | (
-        (d.served > 0).astype(np.float64) @ overflow.astype(np.float64) > 0)
-    invalid = trailing_sum(bad.astype(np.float64), WW_TREND_WINDOW) > 0.5 if bad.any() else None
-    return IndicatorSeries(estimate=estimate, lower=lower, upper=upper, age_days=age,
-                           stale=d.stale_of("ww_plants"), invalid=invalid)
-
-
-def _gp(d: DistrictData) -> IndicatorSeries:
-    gp = d.district["gp_ari"]
-    result = ears(gp, method="C2")
-    alarm = np.where(np.isfinite(result.statistic), result.alarm.astype(np.float64), np.nan)
-    return IndicatorSeries(estimate=alarm, age_days=data_age(gp), stale=d.stale_of("gp_ari"),
-                           invalid=d.invalid_of("gp_ari", reach=EARS_C2_REACH))
-
-
-BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
-    "incidence_7d": lambda d, _r: carry_forward(_incidence(d)),
-    "positivity_7d": lambda d, _r: carry_forward(_positivity(d)),
-    "tests_7d": lambda d, _r: carry_forward(_tests(d)),
-    "admissions_7d": lambda d, _r: carry_forward(_admissions(d)),
-    "icu_share": lambda d, _r: carry_forward(_icu(d)),
-    "rt": lambda d, r: carry_forward(_rt(d, r)),
-    # Wastewater trends exist on sample days only: prepare signals count samples, not days.
-    "ww_trend": lambda d, _r: _ww_trend(d),
-    "gp_aberration": lambda d, _r: carry_forward(_gp(d)),
-    "seasonal_intensity": seasonal_series,  # weekly MEM levels (seasonal_indicators.py)
-    # Projected ICU pressure under the ruleset's scenarios (server/services/capacity_indicators).
-    "icu_share_projected": lambda d, r: carry_forward(projected_share_series(d, r)),
-    "icu_days_to_share": lambda d, r: carry_forward(days_to_share_series(d, r)),
-    "wave_phase": lambda d, r: carry_forward(wave_phase_series(d, r)),  # phase_indicators.py
-}
-
-
-class UnknownIndicatorError(ServiceError, ValueError):
-    def __init__(self, names: list[str]) -> None:
-        super().__init__(
-            f"the ruleset uses indicator(s) {', '.join(names)} that tierwise does not compute; "
-            f"known: {', '.join(sorted(BUILDERS))}"
-        )
+#: Indicators computed by name (a function of the data and the ruleset), beside the kinds of
+#: :mod:`server.services.indicator_kinds`: a policy may declare a name from here without
+#: ``kind``. Registering a kind there is the better way (its parameters and measures are
+#: checked; ``indicator_kinds.from_named_builder`` turns one of these into a kind); this table
+#: keeps name-based builders working.
+BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {}
 
 
 def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, IndicatorSeries]:
-    """The indicator series ``ruleset`` uses, computed for every district at once."""
-    wanted = sorted(ruleset.used_indicators())
-    unknown = [name for name in wanted if name not in BUILDERS]
-    if unknown:
-        raise UnknownIndicatorError(unknown)
-    return {name: BUILDERS[name](data, ruleset) for name in wanted}
+    """The indicator series ``ruleset`` uses, computed for every district at once
+    (:func:`server.services.indicator_kinds.compute`)."""
+    from server.services.indicator_kinds import compute  # it imports this module
+
+    return compute(data, ruleset)
 
 
 @dataclass(frozen=True, kw_only=True)

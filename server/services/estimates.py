@@ -21,6 +21,8 @@ from typing import Literal, TypeVar
 import numpy as np
 from numpy.typing import NDArray
 
+from rules import FieldError, IndicatorSpec
+from rules.model import ParamValue
 from server.indicators import aberration, curves, growth, hospital, renewal, wastewater
 from server.indicators.nowcast import cumulative_triangle
 from server.indicators.nowcast import nowcast as chain_ladder_nowcast
@@ -34,7 +36,10 @@ from server.indicators.serial_interval import (
 )
 from server.indicators.wilson import positivity as wilson_positivity
 from server.indicators.windows import weekly_sum
+from server.services.district_indicators import DistrictData, usable
 from server.services.errors import EstimateOptionError, InputFileError
+from server.services.indicator_kinds import KINDS as REGISTRY
+from server.services.indicator_kinds import resolve
 
 FloatArray = NDArray[np.float64]
 T = TypeVar("T")
@@ -57,6 +62,8 @@ __all__ = [
     "read_daily_csv",
     "read_serial_interval_csv",
     "read_triangle_csv",
+    "registry_kinds",
+    "registry_table",
     "run_estimate",
     "rt_table",
     "seasonal_table",
@@ -671,6 +678,8 @@ class EstimateOptions:
     seasons: int = 10
     min_seasons: int = 3
     interval: str = "mean"
+    measure: str | None = None
+    params: tuple[str, ...] = ()
 
 
 _COUNTS = ("cases", "positives", "tests", "admissions", "occupied", "staffed")
@@ -761,7 +770,12 @@ def run_estimate(kind: str, path: Path, options: EstimateOptions) -> EstimateTab
         return seasonal_table(read("cases"), weekly=o.weekly, population=o.population,
                               start_week=o.start_week, end_week=o.end_week, seasons=o.seasons,
                               min_seasons=o.min_seasons, interval=o.interval)
-    raise EstimateOptionError(f"KIND: expected one of {', '.join(KINDS)}, got {kind!r}")
+    if kind in registry_kinds():
+        people = o.population_served if o.population_served is not None else o.population
+        return registry_table(kind, path, measure=o.measure, params=o.params,
+                              population=people, window=o.window)
+    raise EstimateOptionError(
+        f"KIND: expected one of {', '.join((*KINDS, *registry_kinds()))}, got {kind!r}")
 
 
 # ---------------------------------------------------------------- writing
@@ -791,3 +805,83 @@ def write_estimates(table: EstimateTable, path: Path) -> None:
         Path(path).write_text(estimates_csv(table), encoding="utf-8")
     except OSError as exc:
         raise InputFileError(str(path), "", f"cannot be written ({exc.strerror})") from None
+
+
+# ---------------------------------------------------------------- any registered indicator kind
+
+
+def registry_kinds() -> tuple[str, ...]:
+    """Indicator kinds of the policy registry that :data:`KINDS` does not name already
+    (``testing_rate``, ``growth_rate``, ``occupancy_share``, ``wastewater_trend``, ...); each
+    runs through :func:`registry_table`."""
+    return tuple(k for k, v in REGISTRY.items() if k not in KINDS and v.in_estimate)
+
+
+def _param_value(text: str) -> ParamValue:
+    """A ``--param`` value as a policy's YAML would read it: true/false, integer, number, text."""
+    low = text.strip().lower()
+    if low in ("true", "false"):
+        return low == "true"
+    for kind in (int, float):
+        try:
+            return kind(text)  # type: ignore[no-any-return]
+        except ValueError:
+            pass
+    return text.strip()
+
+
+def registry_table(
+    kind: str, path: Path, *, measure: str | None = None, params: Sequence[str] = (),
+    population: float | None = None, window: int | None = None,
+) -> EstimateTable:
+    """One registered indicator kind on a daily CSV, computed by the same builder a policy's
+    indicator uses (:mod:`server.services.indicator_kinds`).
+
+    The file has one column per measure the kind reads, named as the measure (``--measure``,
+    default the kind's; measure parameters such as ``denominator`` name further columns);
+    ``params`` are ``NAME=VALUE`` texts checked as a policy's ``params``. ``population`` is the
+    district's (for rates), or the people a plant serves (wastewater kinds). Output columns:
+    ``value``, ``lower``, ``upper`` and ``count``, as the kind gives them.
+    """
+    k = REGISTRY[kind]
+    given: dict[str, ParamValue] = {}
+    for item in params:
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip():
+            raise EstimateOptionError(f"--param: expected NAME=VALUE, got {item!r}")
+        given[name.strip()] = _param_value(value)
+    if window is not None:
+        given["window"] = window
+    try:
+        ind = resolve(IndicatorSpec(name="estimate", label=kind, kind=kind,
+                                    measure=measure or k.default_measure, params=given))
+    except FieldError as exc:
+        where = exc.field[-1] if exc.field[:1] == ("params",) else "measure"
+        raise EstimateOptionError(f"--{'param ' if where != 'measure' else ''}{where}: "
+                                  f"{exc.message}") from None
+    assert ind is not None
+    columns = ind.measures()
+    counts = [c for c in columns if k.level != "plant"]
+    table = read_daily_csv(path, required=columns, counts=counts,
+                           nonnegative=[c for c in columns if c not in counts])
+    if population is None:
+        raise EstimateOptionError(f"--population: {kind} needs the population"
+                                  f"{' served by the plant' if k.level == 'plant' else ''}")
+    if not (math.isfinite(population) and population > 0):
+        raise EstimateOptionError(f"--population: expected a positive number, got {population}")
+    values = {c: usable(table.values[c][None, :], count=c in counts)[0] for c in columns}
+    days = np.array(table.dates, dtype="datetime64[D]")
+    one = np.array([population], dtype=np.float64)
+    data = DistrictData(
+        regions=("file",), levels=("district",), population=one, dates=days,
+        district=values if k.level == "district" else {},
+        area_of_district=values if k.level == "area" else {},
+        plant=values if k.level == "plant" else {}, plant_population=one,
+        served=one[:, None] if k.level == "plant" else np.zeros((1, 0)), as_of=None,
+    )
+    series = _checked(lambda: k.builder(data, ind))
+    out = {"value": series.estimate[0]}
+    for name, arr in (("lower", series.lower), ("upper", series.upper), ("count", series.count)):
+        if arr is not None:
+            out[name] = arr[0]
+    return _table(kind, table, out)

@@ -58,6 +58,7 @@ from server.services.forecast_record import (
     forecasts_stored,
     store_morning_forecasts,
 )
+from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Observation, Region, Vintage
@@ -102,7 +103,8 @@ def store_ruleset(
     with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
-    loaded = parse_ruleset(text, source=str(path))
+    loaded = parse_ruleset(text, source=str(path),
+                           indicators=indicator_check(store_measures(session=session)))
     row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == loaded.sha256))
     if row is None:
         row = RulesetRow(
@@ -193,7 +195,8 @@ def evaluate_districts(
         return reused
     ruleset = parsed(ruleset_row)
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
-                              stale_after=stale_after)
+                              stale_after=stale_after, needs=measure_needs(
+                                  ruleset, store_measures(session=session)))
     result = evaluate(
         ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
         region_levels=data.levels,

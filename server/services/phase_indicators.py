@@ -1,7 +1,7 @@
 """The phase of each district's current wave: the ``wave_phase`` indicator and the page panel.
 
 :func:`wave_phase_series` builds the indicator a policy may use (registered in
-:data:`server.services.district_indicators.BUILDERS`). Its value on a day is the phase code of
+:mod:`server.services.indicator_kinds`). Its value on a day is the phase code of
 :func:`server.indicators.phase.fit_phase` on the district's cases of the :data:`WINDOW_DAYS`
 days to that day (``0`` declining, ``1`` past its turning point, ``2`` slowing, ``3`` growing;
 :data:`server.indicators.phase.PHASES`). Fits are made on *cutoff days*: the last day and every
@@ -37,8 +37,8 @@ from server.store.models import Region
 if TYPE_CHECKING:
     from server.services.district_indicators import DistrictData
 
-# district_indicators registers wave_phase_series in its BUILDERS, so its helpers are imported
-# where they are used (an import at the top would be circular).
+# district_indicators' helpers are imported where they are used (the kinds registry imports
+# both modules; importing it at the top here was circular before the registry).
 
 #: Days of cases each fit sees (the wave start is searched within them).
 WINDOW_DAYS = 150

@@ -19,6 +19,7 @@ from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import activate_ruleset
+from server.services.indicator_kinds import indicator_check, store_measures
 from server.services.notify import NotifyConfig
 from server.services.ruleset_cache import parsed
 from server.store.models import Ruleset as RulesetRow
@@ -255,10 +256,16 @@ class DraftCheck:
     version: str | None = None
 
 
-def check_draft(text: str, *, filename: str = "draft.yaml") -> DraftCheck:
-    """Validate a draft's YAML text; the message names line, column and key of any problem."""
+def check_draft(
+    text: str, *, filename: str = "draft.yaml", session: Session | None = None
+) -> DraftCheck:
+    """Validate a draft's YAML text; the message names line, column and key of any problem.
+
+    Its indicators are checked against the registry of indicator kinds, on the standard
+    measures and (given ``session``) the store's."""
+    measures = store_measures(session=session) if session is not None else None
     try:
-        rs = parse_ruleset(text, source=filename)
+        rs = parse_ruleset(text, source=filename, indicators=indicator_check(measures))
     except RulesetError as exc:
         return DraftCheck(ok=False, message=str(exc))
     return DraftCheck(ok=True, message=f"{rs.name} {rs.version} is valid", name=rs.name,
@@ -273,7 +280,8 @@ class DraftRefusedError(ServiceError, ValueError):
 def store_draft(*, session: Session, text: str, author: str, filename: str = "draft.yaml") -> int:
     """Store a valid draft as a new version (status draft); returns its id."""
     try:
-        rs = parse_ruleset(text, source=filename)
+        rs = parse_ruleset(text, source=filename,
+                           indicators=indicator_check(store_measures(session=session)))
     except RulesetError as exc:
         raise DraftRefusedError(str(exc)) from exc
     same = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == rs.sha256))

@@ -27,11 +27,25 @@ class RegionRecord:
 
 @dataclass(frozen=True, kw_only=True)
 class MeasureRecord:
+    """A catalogue measure. ``pathogen`` qualifies a base measure: name ``cases.influenza`` is
+    ``cases`` of pathogen ``influenza`` (the name must be ``base.pathogen``)."""
+
     name: str
     unit: str
     kind: str
     aggregation: str
     description: str = ""
+    pathogen: str | None = None
+
+    def __post_init__(self) -> None:
+        if self.pathogen is not None and not self.name.endswith(f".{self.pathogen}"):
+            raise ValueError(f"measure {self.name!r}: a measure of pathogen {self.pathogen!r} "
+                             f"is named BASE.{self.pathogen}")
+
+    @property
+    def base(self) -> str:
+        """The measure this one qualifies (the name itself when unqualified)."""
+        return self.name[: -len(self.pathogen) - 1] if self.pathogen else self.name
 
 
 def upsert_regions(*, session: Session, records: Sequence[RegionRecord]) -> tuple[int, int]:
@@ -90,5 +104,6 @@ def upsert_measures(*, session: Session, records: Iterable[MeasureRecord]) -> in
             added += 1
         row.unit, row.kind = rec.unit, rec.kind
         row.aggregation, row.description = rec.aggregation, rec.description
+        row.base, row.pathogen = rec.base, rec.pathogen
     session.flush()
     return added

@@ -77,6 +77,11 @@ class Measure(Base):
     kind: Mapped[str] = mapped_column(String(32))  # count | level | concentration
     aggregation: Mapped[str] = mapped_column(String(16))  # sum | mean | none
     description: Mapped[str] = mapped_column(Text, default="")
+    # The measure this one qualifies (``cases`` for ``cases.influenza``; else the name itself)
+    # and the pathogen or surveillance stream it concerns (None: unqualified). Revision 0007.
+    # (:func:`server.store.catalogue.upsert_measures` sets it.)
+    base: Mapped[str] = mapped_column(String(64), index=True, server_default="")
+    pathogen: Mapped[str | None] = mapped_column(String(40), default=None)
 
 
 class Vintage(Base):

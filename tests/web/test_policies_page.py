@@ -44,3 +44,21 @@ def test_policy_diff_page_compares_item_by_item(demo_app_client: TestClient) -> 
     row = re.search(r"Days to confirm a fall</th><td class=\"del\">(\d+)</td><td class=\"add\">"
                     r"(\d+)</td>", diff.text)
     assert row is not None and row.groups() == ("28", "21")
+
+
+def test_draft_with_a_bad_indicator_declaration_names_line_and_key(
+    demo_app_client: TestClient,
+) -> None:
+    login(demo_app_client, "ada.analyst")
+    page = demo_app_client.get("/staff/policies").text
+    yaml_text = re.search(r'<pre class="yaml">(.*?)</pre>', page, flags=re.S)
+    assert yaml_text is not None
+    text = html.unescape(yaml_text.group(1)).replace(
+        "  gp_aberration:\n", "  adm_14d:\n    label: admissions\n    kind: incidence\n"
+        "    measure: hosp_admissions\n    params: {window: 400}\n  gp_aberration:\n")
+    line = text.splitlines().index("    params: {window: 400}") + 1
+    answer = demo_app_client.post("/staff/policies/draft",
+                                  data={"csrf": csrf_of(page), "text": text, "store": "1"})
+    assert answer.status_code == 422
+    assert (f"draft.yaml:{line}:22: indicators.adm_14d.params.window: 400 is above the maximum "
+            "366") in html.unescape(answer.text)

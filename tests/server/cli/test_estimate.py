@@ -360,3 +360,64 @@ def test_curve_fit_after_the_turning_point_gives_an_interval_without_warning(
     lower, upper = float(cols["final_size_lower"][-1]), float(cols["final_size_upper"][-1])
     assert lower <= final <= upper
     assert final == pytest.approx(5000, rel=0.05)  # the simulator's final size
+# -- the kinds of the policy registry, through the builders a policy's indicators use ---------
+
+
+def test_registry_wastewater_trend_matches_scipy_linregress(tmp_path: Path) -> None:
+    frame = daily_frame(11)
+    flow = np.where(np.isfinite(frame["concentration"]), 2.0e7, np.nan)
+    path = write_csv(tmp_path / "ww.csv", {"ww_concentration": frame["concentration"],
+                                           "ww_flow": flow}, skip=())
+    result = run("wastewater_trend", "-i", str(path), "--population", "40000")
+    assert result.exit_code == 0, result.output
+    header, cols = read_output(result.output)
+    assert header == ["date", "value", "lower", "upper"]
+    value, lower, upper = (numbers(cols[c]) for c in ("value", "lower", "upper"))
+    log_load = np.log(frame["concentration"] * flow / 40000)
+    checked = 0
+    for t in range(DAYS):
+        window = np.arange(max(t - 14, 0), t + 1)
+        on = window[np.isfinite(log_load[window])]
+        if not np.isfinite(log_load[t]) or on.size < 3:
+            assert np.isnan(value[t])  # on sample days only, from 3 samples in 15 days
+            continue
+        # Ordinary least squares of the log load on the day (scipy.stats.linregress); the
+        # trend is 100 (e^b - 1) % per day with a t-interval on b (docs/estimate.md).
+        fit = stats.linregress(on, log_load[on])
+        half = stats.t.ppf(0.975, on.size - 2) * fit.stderr
+        assert_allclose(value[t], 100 * np.expm1(fit.slope), rtol=1e-9)
+        assert_allclose([lower[t], upper[t]],
+                        100 * np.expm1([fit.slope - half, fit.slope + half]), rtol=1e-9)
+        checked += 1
+    assert checked > 15
+
+
+def test_registry_testing_rate_on_another_measure_with_a_window_param(tmp_path: Path) -> None:
+    frame = daily_frame(12)
+    path = write_csv(tmp_path / "t.csv", {"positives": frame["positives"],
+                                          "tests": frame["tests"]})
+    result = run("testing_rate", "-i", str(path), "--population", "25000",
+                 "--measure", "positives", "--param", "window=3", "--param", "per=1000")
+    assert result.exit_code == 0, result.output
+    value = numbers(read_output(result.output)[1]["value"])
+    pos = with_gap(frame["positives"])
+    # tests (here positives) per 1 000 people over 3 days, by definition; a window holding the
+    # missing day has no value
+    want = np.array([pos[t - 2: t + 1].sum() / 25000 * 1000 if t >= 2 else np.nan
+                     for t in range(DAYS)])
+    assert_allclose(value, want, rtol=1e-12)
+
+
+@pytest.mark.parametrize(("args", "message"), [
+    (("--param", "window=400"), "--param window: 400 is above the maximum 366"),
+    (("--param", "bogus=1"), "--param bogus: unknown parameter 'bogus' of kind 'testing_rate'"),
+    (("--param", "window"), "--param: expected NAME=VALUE, got 'window'"),
+    (("--measure", "ww_flow"), "--measure: 'ww_flow' is a level measure; this kind takes count"),
+], ids=["bound", "unknown", "form", "measure-kind"])
+def test_registry_options_are_checked_as_a_policy_is(
+    tmp_path: Path, args: tuple[str, ...], message: str,
+) -> None:
+    path = write_csv(tmp_path / "t.csv", {"tests": daily_frame(13)["tests"]})
+    result = run("testing_rate", "-i", str(path), "--population", "25000", *args)
+    assert result.exit_code == 1
+    assert message in result.output

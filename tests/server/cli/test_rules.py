@@ -105,6 +105,58 @@ def test_backtest_as_known_uses_the_office_time_zone(
     assert zones == [ZoneInfo("Etc/GMT+8")] and "data as known each day" in result.output
 
 
+def test_rules_check_reports_indicator_kind_measure_and_parameter(tmp_path: Path) -> None:
+    text = (POLICIES / "county.yaml").read_text().replace(
+        "  gp_aberration:\n", "  adm_growth:\n    label: admissions growth\n    kind: growth_rate\n"
+        "    measure: icu_staffed\n    params: {window: 10, day_of_week: maybe}\n"
+        "  gp_aberration:\n")
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(text)
+    line = text.splitlines().index("    measure: icu_staffed") + 1
+    result = run("rules", "check", str(bad))
+    assert result.exit_code == 1
+    # one problem per indicator: the first the registry finds (here the measure)
+    assert f"{bad}:{line}:14: indicators.adm_growth.measure: 'icu_staffed' is a level measure; " \
+           "this kind takes count measures" in result.output.replace("\n", "")
+
+
+def test_rules_check_accepts_a_kind_on_another_measure(tmp_path: Path) -> None:
+    text = (POLICIES / "county.yaml").read_text().replace(
+        "  gp_aberration:\n", "  adm_growth:\n    label: admissions growth\n    kind: growth_rate\n"
+        "    measure: hosp_admissions\n    params: {window: 21}\n  gp_aberration:\n")
+    good = tmp_path / "good.yaml"
+    good.write_text(text)
+    result = run("rules", "check", str(good))
+    assert result.exit_code == 0, result.output
+
+
+def test_rules_kinds_lists_every_kind_with_its_parameters() -> None:
+    result = run("rules", "kinds")
+    assert result.exit_code == 0
+    for kind in ("incidence", "positivity", "testing_rate", "growth_rate", "rt",
+                 "occupancy_share", "wastewater_trend", "wastewater_level", "aberration"):
+        assert f"\n{kind}: " in "\n" + result.output
+    assert "  serial_interval_mean (float, > 1, <= 60; default 4.7)" in result.output
+
+
+def test_rules_check_refuses_a_pathogen_the_feeds_do_not_list(tmp_path: Path) -> None:
+    text = (POLICIES / "county.yaml").read_text().replace(
+        "  gp_aberration:\n", "  flu_ww:\n    label: influenza wastewater\n"
+        "    kind: wastewater_trend\n    measure: ww_concentration.measles\n"
+        "  gp_aberration:\n")
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(text)
+    line = text.splitlines().index("    measure: ww_concentration.measles") + 1
+    result = run("rules", "check", str(bad))
+    assert result.exit_code == 1
+    assert (f"{bad}:{line}:14: indicators.flu_ww.measure: unknown pathogen 'measles' in "
+            "'ww_concentration.measles' (configured: sars-cov-2, influenza, rsv)"
+            in result.output.replace("\n", ""))
+    good = tmp_path / "good.yaml"
+    good.write_text(text.replace(".measles", ".influenza"))
+    assert run("rules", "check", str(good)).exit_code == 0
+
+
 @pytest.mark.slow
 def test_backtest_as_known_prints_and_writes_the_forecast_record(
     demo_path: Path, monkeypatch: pytest.MonkeyPatch, tmp_path: Path

@@ -9,7 +9,7 @@ import pytest
 from alembic import command
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
-from sqlalchemy import Connection, Engine, func, insert, select
+from sqlalchemy import Connection, Engine, func, insert, select, text
 from sqlalchemy.orm import Session
 
 from server.store import current_revision, head_revision, read_dense, scratch_engine, upgrade
@@ -159,3 +159,67 @@ def test_0005_keeps_every_observation_and_as_of_read(
     assert len({str(r) for r in before[1]}) > 2  # the as-of reads differ between cutoffs
     assert after == before
     assert down == before
+
+
+def _measures(engine: Engine) -> list[tuple]:
+    with engine.connect() as connection:
+        return [tuple(r) for r in connection.execute(
+            select(Measure.id, Measure.name, Measure.unit, Measure.kind, Measure.aggregation,
+                   Measure.description).order_by(Measure.id))]
+
+
+def test_0007_pathogen_keeps_every_row_and_as_of_read_and_fills_the_base_measure(
+    migrated_engine: Engine, tmp_path: Path
+) -> None:
+    url = (f"sqlite:///{tmp_path / 'old.db'}" if migrated_engine.dialect.name == "sqlite"
+           else migrated_engine.url.render_as_string(hide_password=False))
+    at = datetime(2030, 3, 7, 5, 0, tzinfo=UTC)
+    cutoffs = [at + timedelta(hours=h) for h in (-1, 0, 12, 24, 48)]
+    with scratch_engine(url, prefix="tw_mig") as engine:
+        upgrade(engine, "0007")
+        with engine.begin() as connection:
+            connection.execute(insert(Region.__table__), [
+                {"id": k, "code": f"D{k:02d}", "name": f"Invented district {k}",
+                 "level": "district", "population": 1000 * k, "attributes": {}}
+                for k in (1, 2)])
+            # the table before 0007_pathogen: no base, no pathogen
+            connection.execute(text(
+                "INSERT INTO measure (id, name, unit, kind, aggregation, description) VALUES "
+                "(1, 'cases', 'n', 'count', 'sum', ''), "
+                "(2, 'positivity', '%', 'level', 'mean', 'invented'), "
+                "(3, 'cases.influenza', 'n', 'count', 'sum', '')"))
+            rows = []
+            for vintage in (1, 2, 3):
+                connection.execute(insert(Vintage.__table__).values(
+                    id=vintage, feed="invented", source="", received_at=at
+                    + timedelta(days=vintage - 1), checksum=f"{vintage:064d}",
+                    rows_accepted=0, rows_rejected=0))
+                for measure in (1, 2, 3):
+                    for region in (1, 2):
+                        for day in range(1, 4 + vintage):
+                            if (region + day + vintage) % 3 or vintage == 1:
+                                rows.append({"measure_id": measure, "region_id": region,
+                                             "ref_date": date(2030, 3, day),
+                                             "vintage_id": vintage,
+                                             "value": 10.0 * vintage + region + day / 8})
+            connection.execute(insert(Observation.__table__), rows)
+        before = _observations_and_reads(engine, cutoffs), _measures(engine)
+        upgrade(engine)
+        after = _observations_and_reads(engine, cutoffs), _measures(engine)
+        with engine.connect() as connection:
+            filled = connection.execute(
+                select(Measure.name, Measure.base, Measure.pathogen).order_by(Measure.id)).all()
+        config = alembic_config(engine)
+        with engine.begin() as connection:
+            config.attributes["connection"] = connection
+            command.downgrade(config, "0007")
+        down = _observations_and_reads(engine, cutoffs), _measures(engine)
+    assert len(before[0][0]) == len(rows)
+    assert len({str(r) for r in before[0][1]}) > 2  # the as-of reads differ between cutoffs
+    assert after == before
+    assert down == before
+    # an unqualified measure is its own base; one stored before 0007 under a qualified name
+    # stays unqualified (its pathogen was never recorded)
+    assert [tuple(r) for r in filled] == [("cases", "cases", None),
+                                          ("positivity", "positivity", None),
+                                          ("cases.influenza", "cases.influenza", None)]
