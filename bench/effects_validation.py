@@ -68,7 +68,8 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
                              penalty=PENALTY, shape=SHAPE)
     out: dict[str, list[float]] = {k: [] for k in (
         "hit_big", "hit_small", "false", "false_excl_testing", "cover", "cover_big",
-        "testing_hit", "testing_false", "offset", "n_breaks_error", "cover_realised")}
+        "testing_hit", "testing_false", "offset", "n_breaks_error", "cover_realised",
+        "cover_alone")}
     for i in range(regions):
         has = cp.breaks[i] >= 0
         if SHAPE == "kink":  # transmission time
@@ -97,6 +98,9 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
                 out["cover"].append(float(lo <= truth <= hi))
                 if big:
                     out["cover_big"].append(float(lo <= truth <= hi))
+                alone = np.sum(np.abs(est - est[k]) <= 21) == 1
+                if alone:
+                    out["cover_alone"].append(float(lo <= truth <= hi))
                 real = _realised_change(sc, i, day, days)
                 if np.isfinite(real):
                     out["cover_realised"].append(float(lo <= real <= hi))
@@ -148,6 +152,7 @@ def main() -> None:
     print(f"95 % interval of the growth change covers the truth: {share('cover')}")
     print(f"  steps >= 20 % only: {share('cover_big')}")
     print(f"  against the simulated infections' own growth change: {share('cover_realised')}")
+    print(f"  breaks with no other break within 21 days: {share('cover_alone')}")
     err = np.array(total.get("n_breaks_error", []))
     print(f"breaks found minus true steps per region: mean {err.mean():+.2f}, "
           f"exact {np.mean(err == 0):.3f}")
