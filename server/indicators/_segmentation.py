@@ -478,11 +478,14 @@ def screen_kinks(
     :func:`screen_breaks`, but one continuous line with kinks: ``z = a + b t + sum_k d_k
     (t - tau_k)_+``. Each step adds, for every region at once, the kink with the largest drop
     of the weighted residual sum of squares (:func:`hinge_scan`; forward stepwise selection of
-    hinges as in MARS, Friedman 1991). Model k has ``p_k = 2 k + 8`` parameters (a slope change
-    and a date per kink, level and slope, six weekday effects) and criterion
+    hinges as in MARS, Friedman 1991); then, from the largest model, the kink whose removal
+    raises the sum least is dropped and the others are moved to their best days (one sweep),
+    down to none (backward elimination); each k keeps the better of the two paths. Model k has
+    ``p_k = 2 k + 8`` parameters (a slope change and a date per kink, level and slope, six
+    weekday effects) and criterion
     ``RSS_k / phi + penalty * p_k * log n`` with ``phi = RSS_K / (n - p_K)`` from the largest
-    model (Schwarz 1978; Lebreton et al. 1992). The chosen kinks are then moved, one at a time,
-    to the best day between their neighbours (two sweeps).
+    model, at least 1 (Schwarz 1978; Lebreton et al. 1992). The chosen kinks are then moved, one
+    at a time, to the best day between their neighbours (two sweeps).
 
     References
     ----------
@@ -613,9 +616,6 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         best = np.argmax(g, axis=1)
         found = ok[every, best] & np.all(kinks[:, :k] >= 0, axis=1)
         kinks[found, k] = best[found]
-        if k:  # greedy additions misplace earlier kinks; move each to its best day again
-            part = refine_kinks(z, w, kinks[:, : k + 1], min_segment, steps, sweeps=1)
-            kinks[:, : k + 1] = np.where(found[:, None], part, kinks[:, : k + 1])
     # backward elimination from the largest model: drop the kink whose removal costs least,
     # move the rest to their best days; keep whichever of the two paths fits better at each k
     cur = sort_kinks(kinks)
