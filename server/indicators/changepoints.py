@@ -928,10 +928,10 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
 
     def info_score(b: FloatArray, idx: IntArray) -> tuple[FloatArray, FloatArray]:
         xi = x[idx]
-        with np.errstate(over="ignore"):
+        with np.errstate(over="ignore", invalid="ignore"):  # a diverging row: not converged
             mu = wobs[idx] * np.exp(np.einsum("rnp,rp->rn", xi, b))
-        info = np.matmul((xi * mu[..., None]).transpose(0, 2, 1), xi)
-        score = np.einsum("rnp,rn->rp", xi, wobs[idx] * yy[idx] - mu)
+            info = np.matmul((xi * mu[..., None]).transpose(0, 2, 1), xi)
+            score = np.einsum("rnp,rn->rp", xi, wobs[idx] * yy[idx] - mu)
         dead = ~live[idx]
         rr, cc = np.nonzero(dead)
         info[rr, cc, :] = 0.0
