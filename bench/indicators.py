@@ -239,7 +239,8 @@ def bench_capacity(regions: int, sample: int) -> None:
 
 
 def synthetic_breaks(regions: int, days: int, seed: int = 2025) -> tuple[np.ndarray, np.ndarray]:
-    """Poisson counts with 0-6 breaks per region (growth and level change), weekday effects."""
+    """Poisson counts with 0-6 changes of growth per region (continuous log mean, the shape a
+    step in transmission takes in cases), weekday effects."""
     rng = np.random.default_rng(seed)
     t = np.arange(days)
     weekday = np.array([0.0, 0.1, 0.05, 0.0, -0.1, -0.4, -0.6])
@@ -252,7 +253,7 @@ def synthetic_breaks(regions: int, days: int, seed: int = 2025) -> tuple[np.ndar
         level, slope, last = np.log(rng.uniform(30, 400)), rng.normal(0, 0.01), 0
         for c in [*cuts, days]:
             eta[i, last:c] = level + slope * (t[last:c] - last)
-            level = eta[i, c - 1] + slope + rng.normal(0, 0.15)
+            level = eta[i, c - 1] + slope
             slope = float(np.clip(-slope * 0.5 + rng.normal(0, 0.02), -0.05, 0.05))
             last = c
     counts = rng.poisson(np.exp(np.clip(eta, -5, 9) + weekday[t % 7])).astype(float)
@@ -260,37 +261,27 @@ def synthetic_breaks(regions: int, days: int, seed: int = 2025) -> tuple[np.ndar
 
 
 def baseline_changepoint_profile(counts: np.ndarray, breaks: np.ndarray, search: int) -> None:
-    """Per region: the exact stage with statsmodels, a Poisson GLM (segments + weekdays) for
-    every candidate date of every break, then the final fit."""
-    from server.indicators.changepoints import _bounds
+    """Per region: the exact stage with statsmodels, a Poisson GLM (line with kinks + weekdays,
+    the same design as :func:`server.indicators.changepoints.kink_design`) for every candidate
+    date of every kink, then the final fit."""
+    from server.indicators.changepoints import kink_design
 
     days = counts.shape[1]
-    t = np.arange(days)
-
-    def design(edges: np.ndarray) -> np.ndarray:
-        segs = len(edges) - 1
-        x = np.zeros((days, 2 * segs + 6))
-        for j in range(segs):
-            inside = (t >= edges[j]) & (t < edges[j + 1])
-            x[inside, j] = 1.0
-            x[inside, segs + j] = t[inside] - 0.5 * (edges[j] + edges[j + 1] - 1)
-        for k in range(1, 7):
-            x[:, 2 * segs + k - 1] = t % 7 == k
-        return x
-
     for y, b in zip(counts, breaks, strict=True):
-        edges = _bounds(b[None, :], days)[0]
-        edges = edges[np.r_[True, np.diff(edges) > 0]]
-        for k in range(1, len(edges) - 1):
+        kinks = np.sort(b[b >= 0])
+        for k in range(kinks.size):
             for d in range(-search, search + 1):
-                trial = edges.copy()
-                trial[k] = min(max(edges[k] + d, edges[k - 1] + 1), edges[k + 1] - 1)
-                sm.GLM(y, design(trial), family=sm.families.Poisson()).fit()
-        sm.GLM(y, design(edges), family=sm.families.Poisson()).fit()
+                trial = kinks.copy()
+                trial[k] = min(max(kinks[k] + d, 1), days - 1)
+                if np.unique(trial).size < trial.size:
+                    continue
+                x = kink_design(days, trial[None, :])[0]
+                sm.GLM(y, x, family=sm.families.Poisson()).fit()
+        sm.GLM(y, kink_design(days, kinks[None, :])[0], family=sm.families.Poisson()).fit()
 
 
 def bench_changepoints(regions: int, days: int, sample: int) -> None:
-    """Change points in transmission (screening + exact Poisson profile) for every region."""
+    """Change points in transmission (kink model: screening + exact Poisson profile)."""
     from server.indicators.changepoints import detect_changepoints
 
     counts, truth = synthetic_breaks(regions, days)

@@ -27,7 +27,9 @@ from demo_seed.observation import testing_change as testing_change_at
 __all__ = ["StepScenario", "growth_from_reproduction", "simulate_steps"]
 
 LATENT_MEAN, INFECTIOUS_MEAN = 3.0, 4.0
+GENERATION_MEAN = LATENT_MEAN + INFECTIOUS_MEAN
 BURN_IN = 60
+BAND = 3.0  # steps steer incidence back when it has drifted by more than this factor
 R_RANGE = (0.75, 1.3)
 START = np.datetime64("2031-03-03")  # a Monday; invented calendar
 
@@ -118,12 +120,17 @@ def simulate_steps(seed: int, *, regions: int = 20, days: int = 240,
 
     Notes
     -----
-    Per region: population log-uniform in 10-50 million (so that the depletion of
-    susceptibles stays small); 1-3 steps at least 35 days apart, from day 40 to
-    ``days - 50`` (infection time); the first R uniform in ``R_RANGE``; each step
-    multiplies R by ``e^{+-u}`` with u uniform in (log 1.1, log 1.7), the sign chosen to keep
-    R in ``R_RANGE``. The testing change falls at least 21 days (test-date time) from every
-    step as it shows in cases. Invented values (common practice, no source).
+    Per region: population log-uniform in 50-250 million (so that the depletion of
+    susceptibles stays below a few per cent, about 1 % typically); 1-3 steps at least 35
+    days apart, from day 40 to ``days - 50`` (infection time); the first R uniform in
+    ``R_RANGE``; each step multiplies R by ``e^{+-u}`` with u uniform in (log 1.1, log 1.7),
+    the sign random unless incidence would then drift by more than a factor ``BAND`` from
+    its start by the next step (or the end, after the last step; drift taken as ``log R / 7``
+    per day): then the sign that ends nearer the start; a step leaving ``R_RANGE`` stops at
+    its bound (so a few steps are smaller than 10 %). Without the steering, growing regions
+    deplete their susceptibles by up to 20 % and the gradual fall of growth is itself a change
+    the methods rightly see. The testing change falls at least 21 days (test-date time) from
+    every step as it shows in cases. Invented values (common practice, no source).
     """
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ScenarioArgumentError("seed", seed, "must be a non-negative int")
@@ -131,7 +138,7 @@ def simulate_steps(seed: int, *, regions: int = 20, days: int = 240,
         raise ScenarioArgumentError("days", days, "must be at least 150")
     rng = np.random.default_rng([seed, 31])
     total = days + BURN_IN
-    pop = np.exp(rng.uniform(np.log(1e7), np.log(5e7), regions))
+    pop = np.exp(rng.uniform(np.log(5e7), np.log(2.5e8), regions))
     reproduction = np.empty((regions, total))
     change_day = np.full((regions, 3), -1, dtype=np.int64)
     change_ratio = np.full((regions, 3), np.nan)
@@ -140,19 +147,32 @@ def simulate_steps(seed: int, *, regions: int = 20, days: int = 240,
         reproduction[i] = big_r
         k = int(rng.integers(1, 4))
         day = 40 + int(rng.integers(0, 15))
+        drift = np.log(big_r) / GENERATION_MEAN * day  # rough log of incidence / incidence at 0
         for j in range(k):
             if day > days - 50:
                 break
             u = rng.uniform(np.log(1.1), np.log(1.7))
-            sign = rng.choice([-1.0, 1.0])
-            new = big_r * np.exp(sign * u)
-            if not R_RANGE[0] <= new <= R_RANGE[1]:
-                new = big_r * np.exp(-sign * u)
+            gap = 35 + int(rng.integers(0, 30))
+            last = j == k - 1 or day + gap > days - 50
+            span = days - day if last else gap
+            first = rng.choice([-1.0, 1.0])
+            options = []
+            for sign in (first, -first):
+                new = big_r * np.exp(sign * u)
+                if not R_RANGE[0] <= new <= R_RANGE[1]:  # neither way fits: step to the bound
+                    new = min(max(new, R_RANGE[0]), R_RANGE[1])
+                ahead = drift + np.log(new) / GENERATION_MEAN * span
+                options.append((abs(ahead) > np.log(BAND), new, ahead))
+            # the random sign unless it leaves the band: then the sign ending nearer the start
+            if options[0][0] or options[0][1] == big_r:
+                options.sort(key=lambda o: abs(o[2]))
+            _, new, ahead = options[0]
             change_day[i, j] = day
             change_ratio[i, j] = new / big_r
             reproduction[i, BURN_IN + day:] = new
             big_r = new
-            day += 35 + int(rng.integers(0, 30))
+            drift = ahead if last else drift + np.log(new) / GENERATION_MEAN * gap
+            day += gap
     w = generation_interval_pmf(LATENT_MEAN, INFECTIOUS_MEAN)
     r0 = growth_from_reproduction(reproduction[:, 0], w)
     target = np.exp(rng.uniform(np.log(300.0), np.log(1500.0), regions))

@@ -53,21 +53,30 @@ def breaks_command(
     dispersion: Annotated[str, typer.Option(help="quasipoisson or poisson.")] = "quasipoisson",
     si_mean: Annotated[float, typer.Option(help="Generation interval mean, days.")] = 4.7,
     si_sd: Annotated[float, typer.Option(help="Generation interval SD, days.")] = 2.9,
+    shape: Annotated[str, typer.Option(help="kink (continuous) or step.")] = "kink",
+    infection_delay: Annotated[float | None, typer.Option(
+        help="Mean days from infection to the cases' date (gives transmission dates).")] = None,
+    population: Annotated[float | None, typer.Option(
+        help="Population: with tests and positives columns, testing changes become level "
+             "shifts of cases.")] = None,
 ) -> None:
-    """Breaks in the growth of daily cases, and each segment's growth rate, doubling time and R.
+    """Changes in the growth of daily cases, and each segment's growth rate, doubling time and R.
 
-    Model: log E[cases] = level + growth x day per segment, plus weekday effects,
-    quasi-Poisson. Breaks by binary segmentation screening, their number by a
-    quasi-likelihood BIC, their dates by profile likelihood. One row per segment;
-    the break that opens a segment is on its row (break_lower/break_upper: profile
-    interval of its date; growth_change and level_change: new segment minus old at
-    the break). R from the growth rate for a gamma generation interval
-    (Wallinga & Lipsitch 2007). Breaks are dated in the cases' time: a measure shows
-    in cases by test date one to two weeks after it takes effect.
+    Model (--shape kink): log E[cases] is one continuous line whose slope changes at
+    each break, plus weekday effects, quasi-Poisson; with --population and columns
+    tests, positives, flagged testing changes enter as level shifts. Breaks by forward
+    selection, their number by a quasi-likelihood BIC, their dates by profile likelihood.
+    (--shape step: a separate line per segment, level and slope both jump.) One row per
+    segment; the break that opens a segment is on its row (break_lower/break_upper:
+    profile interval of its date; growth_change: new slope minus old). R from the
+    growth rate for a gamma generation interval (Wallinga & Lipsitch 2007). With
+    --infection-delay, transmission_date = break - delay + E[T^2]/(2 E[T]) (T the
+    generation interval): the day transmission changed.
     """
     options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
                            level=level, dispersion=dispersion.lower(), si_mean=si_mean,
-                           si_sd=si_sd)
+                           si_sd=si_sd, shape=shape.lower(), infection_delay=infection_delay,
+                           population=population)
     _emit(breaks_table(file, options), output)
 
 

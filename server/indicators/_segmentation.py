@@ -359,3 +359,295 @@ def _refine_rows(b: IntArray, k: IntArray, costs: _LineCosts, rows_idx: IntArray
     best = np.argmin(total, axis=1)
     move = np.isfinite(total[r, best])
     b[r[move], k[move]] = cand[r, best][move]
+
+
+# ---------------------------------------------------------------- kinks (continuous lines)
+
+
+def suffix_sums(values: FloatArray) -> FloatArray:
+    """``S[..., tau] = sum of values[..., t] over t > tau`` for tau = 0 .. n - 1."""
+    c = np.cumsum(values, axis=-1)
+    return np.asarray(c[..., -1:] - c)
+
+
+def _hinge_sums(v: FloatArray, axis: int) -> FloatArray:
+    """``sum_{t > tau} v_t (t - tau)`` for every tau along ``axis`` (two reverse cumsums)."""
+    u = np.flip(np.cumsum(np.flip(v, axis=axis), axis=axis), axis=axis)  # sum_{t >= s}
+    inner = np.flip(np.cumsum(np.flip(u, axis=axis), axis=axis), axis=axis)  # sum_{s >= tau}
+    return np.asarray(inner - u)  # sum_{s > tau} U(s)
+
+
+def hinge(n: int, tau: IntArray) -> FloatArray:
+    """Hinge columns ``(t - tau)_+ / n``: shape ``tau.shape + (n,)``; tau >= n gives zeros."""
+    t = np.arange(n, dtype=np.float64)
+    return np.asarray(np.maximum(t - np.asarray(tau, dtype=np.float64)[..., None], 0.0) / n)
+
+
+def hinge_scan(z: FloatArray, w: FloatArray, x: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Weighted least squares of ``z`` on ``x`` and the drop of the residual sum of squares
+    from adding one more hinge column ``(t - tau)_+`` for every tau at once.
+
+    Parameters
+    ----------
+    z, w : ndarray, shape (regions, days)
+        Response and weights (0 for a missing day).
+    x : ndarray, shape (regions, days, p)
+        Design; an all-zero column is allowed (its coefficient is fixed at 0).
+
+    Returns
+    -------
+    rss : ndarray, shape (regions,)
+        Weighted residual sum of squares of the fit on ``x``.
+    gain : ndarray, shape (regions, days)
+        ``rss`` minus the sum with the hinge at tau added:
+        ``(h' W e)^2 / (h' W h - h' W X (X' W X)^{-1} X' W h)`` (the partitioned regression
+        of Frisch and Waugh 1933; Lovell 1963), 0 where the hinge is collinear with ``x``.
+
+    Notes
+    -----
+    Every inner product with a hinge is a difference of suffix sums:
+    ``sum_{t > tau} v_t (t - tau) = S(v t) - tau S(v)``, so all days cost O(days x p^2).
+    """
+    rows, n, p = x.shape
+    xw = x * w[..., None]
+    a = np.matmul(xw.transpose(0, 2, 1), x)
+    diag = np.einsum("rpp->rp", a)
+    zero = diag <= 0
+    a[:, np.arange(p), np.arange(p)] += zero
+    ainv = np.linalg.inv(a)
+    beta = np.einsum("rpq,rq->rp", ainv, np.einsum("rnp,rn->rp", xw, z))
+    e = z - np.einsum("rnp,rp->rn", x, beta)
+    rss = (w * e * e).sum(axis=1)
+    # sum_{t > tau} v_t (t - tau) = sum_{s > tau} U(s) with U(s) = sum_{t >= s} v_t
+    num = _hinge_sums(w * e, axis=1)
+    c = _hinge_sums(xw, axis=1)  # (rows, n, p)
+    t = np.arange(n, dtype=np.float64)
+    tau = t[None, :]
+    hh = suffix_sums(w * t * t) - 2.0 * tau * suffix_sums(w * t) + tau * tau * suffix_sums(w)
+    quad = (np.matmul(c, ainv) * c).sum(axis=2)
+    den = hh - quad
+    with np.errstate(invalid="ignore", divide="ignore"):
+        gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num * num / den, 0.0)
+    return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
+
+
+def kink_allowed(kinks: IntArray, n: int, min_segment: int) -> BoolArray:
+    """Days where a new kink keeps ``min_segment`` days from both ends and every kink in
+    ``kinks`` (shape (regions, k), -1 for none): shape (regions, n)."""
+    t = np.arange(n)
+    ok = (t >= min_segment) & (t <= n - min_segment)
+    ok = np.broadcast_to(ok, (kinks.shape[0], n)).copy()
+    for j in range(kinks.shape[1]):
+        k = kinks[:, j : j + 1]
+        ok &= (k < 0) | (np.abs(t[None, :] - k) >= min_segment)
+    return ok
+
+
+def screen_kinks(
+    counts: ArrayLike,
+    *,
+    min_segment: int = 14,
+    max_breaks: int | None = None,
+    penalty: float = 1.0,
+    level_shifts: IntArray | None = None,
+) -> Screening:
+    """Screen for changes of growth rate: forward selection of hinges on weekday-adjusted log
+    counts, the number chosen by a quasi-likelihood BIC.
+
+    Parameters
+    ----------
+    counts : array_like, shape (regions, days)
+        Daily counts; NaN for a missing day.
+    min_segment : int
+        Fewest days between kinks and from either end (at least 7).
+    max_breaks : int, optional
+        Most kinks searched (default ``min(10, days // min_segment - 1)``).
+    penalty : float
+        Multiplier of the BIC penalty ``log n`` per parameter (1 is the plain BIC).
+    level_shifts : ndarray of int, shape (regions, m), optional
+        Days from which the counts' level may jump for a reason other than transmission (a
+        testing change; -1 for none): a step column ``1(t >= day)`` each, in every model.
+
+    Returns
+    -------
+    Screening
+
+    Notes
+    -----
+    ``z_t = log(y_t / f_{t mod 7} + 0.5)`` with weights ``m_t + 0.5`` as in
+    :func:`screen_breaks`, but one continuous line with kinks: ``z = a + b t + sum_k d_k
+    (t - tau_k)_+``. Each step adds, for every region at once, the kink with the largest drop
+    of the weighted residual sum of squares (:func:`hinge_scan`; forward stepwise selection of
+    hinges as in MARS, Friedman 1991); then, from the largest model, the kink whose removal
+    raises the sum least is dropped and the others are moved to their best days (one sweep),
+    down to none (backward elimination); each k keeps the better of the two paths. Model k has
+    ``p_k = 2 k + 8`` parameters (a slope change and a date per kink, level and slope, six
+    weekday effects) and criterion
+    ``RSS_k / phi + penalty * p_k * log n`` with ``phi = RSS_K / (n - p_K)`` from the largest
+    model, at least 1 (Schwarz 1978; Lebreton et al. 1992). The chosen kinks are then moved, one
+    at a time, to the best day between their neighbours (two sweeps).
+
+    References
+    ----------
+    .. [1] Friedman JH (1991). Multivariate adaptive regression splines. Ann Stat 19:1-67.
+    .. [2] Schwarz G (1978). Estimating the dimension of a model. Ann Stat 6:461-464.
+    """
+    y = as_nonnegative_counts("counts", counts)
+    rows, n = y.shape
+    min_segment = check_int("min_segment", min_segment, 7)
+    if n < 2 * min_segment:
+        raise ValueError(f"counts: {n} days is fewer than 2 * min_segment = {2 * min_segment}")
+    limit = n // min_segment - 1
+    if max_breaks is None:
+        max_breaks = min(10, limit)
+    max_breaks = min(check_int("max_breaks", max_breaks, 0), limit)
+    penalty = check_positive("penalty", penalty)
+    observed = np.isfinite(y)
+    smooth = centred_mean(y, observed, 3)
+    f = weekday_factors(y, observed, smooth)
+    adjusted = y / f[:, np.arange(n) % WEEK]
+    z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
+    w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
+    steps = step_columns(n, level_shifts, rows)
+    parts = [
+        _kink_block(z[c], w[c], min_segment, max_breaks, penalty,
+                    None if steps is None else steps[c])
+        for c in (slice(i, i + _SCREEN_ROWS) for i in range(0, max(rows, 1), _SCREEN_ROWS))
+    ]
+    return Screening(*(np.concatenate([getattr(p, f) for p in parts], axis=0)
+                       for f in ("breaks", "rss", "criterion", "n_breaks", "dispersion")))
+
+
+def line_design(n: int, kinks: IntArray, extra: FloatArray | None = None) -> FloatArray:
+    """``[1, (t - (n-1)/2) / n, hinges of kinks (zero column where -1), extra...]``:
+    shape (regions, n, 2 + k + extra)."""
+    rows, k = kinks.shape
+    t = np.arange(n, dtype=np.float64)
+    base = np.stack([np.ones(n), (t - 0.5 * (n - 1)) / n], axis=1)
+    cols = [np.broadcast_to(base, (rows, n, 2))]
+    if k:
+        h = hinge(n, np.where(kinks >= 0, kinks, n))  # (rows, k, n)
+        cols.append(h.transpose(0, 2, 1))
+    if extra is not None:
+        cols.append(np.broadcast_to(extra, (rows, n, extra.shape[-1])))
+    return np.concatenate(cols, axis=2)
+
+
+def refine_kinks(z: FloatArray, w: FloatArray, kinks: IntArray, min_segment: int,
+                 extra: FloatArray | None = None, sweeps: int = 2) -> IntArray:
+    """Move each kink, one at a time, to the day of least weighted RSS with the others fixed."""
+    rows, n = z.shape
+    kinks = kinks.copy()
+    for _ in range(sweeps):
+        moved = False
+        for j in range(kinks.shape[1]):
+            has = kinks[:, j] >= 0
+            if not has.any():
+                continue
+            others = kinks.copy()
+            others[:, j] = -1
+            _, gain = hinge_scan(z, w, line_design(n, others, extra))
+            ok = kink_allowed(others, n, min_segment)
+            best = np.argmax(np.where(ok, gain, -1.0), axis=1)
+            new = np.where(has & ok[np.arange(rows), best], best, kinks[:, j])
+            moved |= bool(np.any(new != kinks[:, j]))
+            kinks[:, j] = new
+        if not moved:
+            break
+    return sort_kinks(kinks)
+
+
+def sort_kinks(kinks: IntArray) -> IntArray:
+    """Sorted ascending with -1 entries last."""
+    big = np.iinfo(np.int64).max
+    s = np.sort(np.where(kinks >= 0, kinks, big), axis=1)
+    return np.asarray(np.where(s == big, -1, s), dtype=np.int64)
+
+
+def step_columns(n: int, days: IntArray | None, rows: int) -> FloatArray | None:
+    """Step columns ``1(t >= day)`` shaped (regions, n, m) (zero where day is -1)."""
+    if days is None:
+        return None
+    d = np.asarray(days)
+    if d.ndim == 1:
+        d = d[:, None] if d.shape[0] == rows else np.broadcast_to(d, (rows, d.shape[0]))
+    if d.ndim != 2 or d.shape[0] != rows:
+        raise ValueError(f"level_shifts: expected shape (regions, m) with {rows} regions, "
+                         f"got {d.shape}")
+    if d.size and not np.issubdtype(d.dtype, np.integer):
+        raise ValueError("level_shifts: day indices must be integers (-1 for none)")
+    if np.any((d != -1) & ((d < 1) | (d >= n))):
+        raise ValueError(f"level_shifts: day indices must lie in 1..{n - 1} (-1 for none)")
+    t = np.arange(n)
+    cols = (t[None, :, None] >= d[:, None, :]) & (d[:, None, :] >= 0)
+    return np.asarray(cols, dtype=np.float64)
+
+
+def _drop_costs(z: FloatArray, w: FloatArray, x: FloatArray, k: int) -> FloatArray:
+    """Rise of the weighted RSS from dropping each hinge column ``2 .. 2 + k`` of ``x``:
+    ``beta_j^2 / [(X' W X)^{-1}]_jj`` (the usual partial F numerator), shape (rows, k)."""
+    p = x.shape[2]
+    xw = x * w[..., None]
+    a = np.matmul(xw.transpose(0, 2, 1), x)
+    zero = np.einsum("rpp->rp", a) <= 0
+    a[:, np.arange(p), np.arange(p)] += zero
+    ainv = np.linalg.inv(a)
+    beta = np.einsum("rpq,rq->rp", ainv, np.einsum("rnp,rn->rp", xw, z))
+    j = np.arange(2, 2 + k)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.asarray(beta[:, j] ** 2 / ainv[:, j, j])
+
+
+def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
+                penalty: float, steps: FloatArray | None = None) -> Screening:
+    rows, n = z.shape
+    every = np.arange(rows)
+    kinks = np.full((rows, max_breaks), -1, dtype=np.int64)
+    rss = np.full((rows, max_breaks + 1), np.inf)
+    path = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
+    for k in range(max_breaks + 1):
+        r0, gain = hinge_scan(z, w, line_design(n, kinks[:, :k], steps))
+        rss[:, k] = np.where(np.all(kinks[:, :k] >= 0, axis=1), r0, np.inf)
+        path[:, k] = kinks
+        if k == max_breaks:
+            break
+        ok = kink_allowed(kinks[:, :k], n, min_segment)
+        g = np.where(ok, gain, -1.0)
+        best = np.argmax(g, axis=1)
+        found = ok[every, best] & np.all(kinks[:, :k] >= 0, axis=1)
+        kinks[found, k] = best[found]
+    # backward elimination from the largest model: drop the kink whose removal costs least,
+    # move the rest to their best days; keep whichever of the two paths fits better at each k
+    cur = sort_kinks(kinks)
+    for k in range(max_breaks, 0, -1):
+        r = np.flatnonzero((cur >= 0).sum(axis=1) == k)
+        if r.size == 0:
+            continue
+        cost = _drop_costs(z[r], w[r], line_design(n, cur[r], None if steps is None
+                                                   else steps[r]), cur.shape[1])
+        j = np.argmin(np.where(cur[r] >= 0, cost, np.inf), axis=1)
+        part = cur[r].copy()
+        part[np.arange(r.size), j] = -1
+        part = refine_kinks(z[r], w[r], sort_kinks(part), min_segment,
+                            None if steps is None else steps[r], sweeps=1)
+        cur[r] = part
+        back, _ = hinge_scan(z[r], w[r], line_design(n, part[:, : k - 1], None if steps is None
+                                                     else steps[r]))
+        better = back < rss[r, k - 1]
+        rss[r[better], k - 1] = back[better]
+        path[r[better], k - 1] = part[better]
+    n_obs = (w > 0).sum(axis=1).astype(np.float64)
+    k_all = np.arange(max_breaks + 1)
+    valid = np.isfinite(rss)
+    n_steps = 0 if steps is None else steps.any(axis=1).sum(axis=1)
+    params = 2 * k_all + 2 + (WEEK - 1)
+    largest = np.where(valid, k_all[None, :], -1).max(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        phi = rss[every, largest] / (n_obs - params[largest] - n_steps)
+        phi = np.where(phi > 1.0, phi, 1.0)  # quasi-Poisson: never below Poisson variance
+        crit = rss / phi[:, None] + penalty * params[None, :] * np.log(n_obs)[:, None]
+    crit = np.where(valid, crit, np.inf)
+    n_breaks = np.argmin(crit, axis=1).astype(np.int64)
+    chosen = path[every, n_breaks]
+    chosen = refine_kinks(z, w, sort_kinks(chosen), min_segment, steps)
+    return Screening(chosen, rss, crit, n_breaks, phi)

@@ -45,8 +45,14 @@ from server.indicators._segmentation import (
     Screening,
     binary_segmentation,
     check_int,
+    hinge_scan,
+    kink_allowed,
+    line_design,
     prefix_sums,
     screen_breaks,
+    screen_kinks,
+    sort_kinks,
+    step_columns,
 )
 from server.indicators.serial_interval import growth_to_reproduction
 
@@ -55,6 +61,10 @@ Dispersion = Literal["quasipoisson", "poisson"]
 
 __all__ = [
     "ChangePoints",
+    "KinkFit",
+    "fit_kinks",
+    "kink_design",
+    "screen_kinks",
     "PiecewiseFit",
     "Screening",
     "binary_segmentation",
@@ -150,12 +160,17 @@ class ChangePoints:
     reproduction, reproduction_lower, reproduction_upper : ndarray
         R of each segment from its growth rate (Wallinga & Lipsitch 2007, gamma generation
         interval).
-    fit : PiecewiseFit
-        The final fit.
+    fit : PiecewiseFit or KinkFit
+        The final fit (:class:`KinkFit` for ``shape='kink'``).
     screening : Screening
         The screening stage.
     level : float
         Interval level.
+    transmission_day, transmission_lower, transmission_upper : ndarray, shape (regions, max_breaks)
+        Estimated day of the change in transmission behind each kink, in infection time, with
+        the break date's interval shifted alike: ``break - infection_delay + E[T^2] / (2 E[T])``
+        (see :func:`detect_changepoints`); NaN without ``infection_delay`` or for
+        ``shape='step'``.
     """
 
     n_breaks: IntArray
@@ -179,9 +194,12 @@ class ChangePoints:
     reproduction: FloatArray
     reproduction_lower: FloatArray
     reproduction_upper: FloatArray
-    fit: PiecewiseFit
+    fit: PiecewiseFit | KinkFit
     screening: Screening
     level: float
+    transmission_day: FloatArray
+    transmission_lower: FloatArray
+    transmission_upper: FloatArray
 
     def __post_init__(self) -> None:
         freeze_arrays(self)
@@ -568,6 +586,9 @@ def detect_changepoints(
     profile_window: int = 28,
     si_mean: float = 4.7,
     si_sd: float = 2.9,
+    shape: Literal["kink", "step"] = "kink",
+    level_shifts: ArrayLike | None = None,
+    infection_delay: float | None = None,
 ) -> ChangePoints:
     """Find breaks in the growth of daily counts and estimate each segment's growth and R.
 
@@ -634,6 +655,20 @@ def detect_changepoints(
                          f"{profile_window}")
     check_positive("si_mean", si_mean)
     check_positive("si_sd", si_sd)
+    if shape not in ("kink", "step"):
+        raise ValueError(f"shape: must be 'kink' or 'step', got {shape!r}")
+    if infection_delay is not None:
+        infection_delay = float(infection_delay)
+        if not np.isfinite(infection_delay) or infection_delay < 0:
+            raise ValueError(f"infection_delay: must be a finite number >= 0, got "
+                             f"{infection_delay!r}")
+    if shape == "kink":
+        kfit, kscreen, kprof = _detect_kinks(
+            y, min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
+            dispersion=dispersion, level=level, level_shifts=level_shifts)
+        lag = None if infection_delay is None else (
+            infection_delay - (si_sd**2 + si_mean**2) / (2.0 * si_mean))
+        return _assemble_kinks(kfit, kscreen, kprof, level, si_mean, si_sd, lag)
     screening = screen_breaks(y, min_segment=min_segment, max_breaks=max_breaks,
                               penalty=penalty)
     kmax = screening.breaks.shape[1]
@@ -733,4 +768,401 @@ def _assemble(fit: PiecewiseFit, screening: Screening, prof: _Profile, level: fl
         growth_upper=g_hi, doubling_time=dt, doubling_lower=dt_lo, doubling_upper=dt_hi,
         reproduction=rep, reproduction_lower=rep_lo, reproduction_upper=rep_hi,
         fit=fit, screening=screening, level=level,
+        transmission_day=np.full((rows, kmax), np.nan),
+        transmission_lower=np.full((rows, kmax), np.nan),
+        transmission_upper=np.full((rows, kmax), np.nan),
+    )
+
+
+# ---------------------------------------------------------------- kinks: continuous log-linear
+
+
+@dataclass(frozen=True, eq=False)
+class KinkFit:
+    """Maximum-likelihood fit of the continuous piecewise log-linear model for given kinks.
+
+    ``log mu_t = a + b s_t + sum_k d_k h_k(t) + sum_m c_m 1(t >= L_m) + g_{t mod 7}`` with
+    ``s_t = (t - (n - 1)/2) / n``, hinges ``h_k(t) = (t - tau_k)_+ / n`` and level shifts
+    ``L_m`` (testing changes), ``g_0 = 0``.
+
+    Attributes
+    ----------
+    kinks : ndarray of int, shape (regions, K)
+        Sorted kink days tau_k, -1 after the last (its column is all zero, coefficient 0).
+    level_shifts : ndarray of int, shape (regions, M)
+        Level-shift days, -1 for none.
+    coef : ndarray, shape (regions, p)
+        ``(a, b, d_1..d_K, c_1..c_M, g_1..g_6)`` (no ``g`` without weekday effects).
+    covariance : ndarray, shape (regions, p, p)
+        Inverse Fisher information at unit dispersion (multiply by ``dispersion``).
+    dispersion : ndarray, shape (regions,)
+        Pearson chi-square over ``n - p - K`` (a date per kink counted), at least 1 for
+        quasi-Poisson; 1 for Poisson.
+    loglik : ndarray, shape (regions,)
+        Poisson log-likelihood without the ``log y!`` term.
+    mu : ndarray, shape (regions, days)
+        Fitted means (NaN on missing days).
+    converged : ndarray of bool, shape (regions,)
+    """
+
+    kinks: IntArray
+    level_shifts: IntArray
+    coef: FloatArray
+    covariance: FloatArray
+    dispersion: FloatArray
+    loglik: FloatArray
+    mu: FloatArray
+    converged: BoolArray
+
+    def __post_init__(self) -> None:
+        freeze_arrays(self)
+
+
+def _weekday_columns(n: int) -> FloatArray:
+    cls = np.arange(n) % _WEEK
+    return np.asarray((cls[:, None] == np.arange(1, _WEEK)[None, :]), dtype=np.float64)
+
+
+def kink_design(n: int, kinks: IntArray, level_shifts: IntArray | None = None,
+                day_of_week: bool = True) -> FloatArray:
+    """Design of :class:`KinkFit`: shape (regions, n, p), zero columns for -1 entries."""
+    rows = kinks.shape[0]
+    steps = step_columns(n, level_shifts, rows)
+    extra = [] if steps is None else [steps]
+    if day_of_week:
+        extra.append(np.broadcast_to(_weekday_columns(n), (rows, n, _WEEK - 1)))
+    more = np.concatenate(extra, axis=2) if extra else None
+    return line_design(n, kinks, more)
+
+
+def _normalise_days(name: str, days: ArrayLike | None, rows: int, n: int) -> IntArray:
+    if days is None:
+        return np.zeros((rows, 0), dtype=np.int64)
+    d = np.asarray(days)
+    if d.ndim == 1:
+        d = np.broadcast_to(d, (rows, d.shape[0]))
+    if d.ndim != 2 or d.shape[0] != rows:
+        raise ValueError(f"{name}: expected shape (regions, k) with {rows} regions, got "
+                         f"{d.shape}")
+    if d.size and not np.issubdtype(d.dtype, np.integer):
+        raise ValueError(f"{name}: day indices must be integers (-1 for none)")
+    d = np.asarray(d, dtype=np.int64)
+    if np.any((d != -1) & ((d < 1) | (d >= n))):
+        raise ValueError(f"{name}: day indices must lie in 1..{n - 1} (-1 for none)")
+    return d
+
+
+def fit_kinks(
+    counts: ArrayLike,
+    kinks: ArrayLike,
+    *,
+    level_shifts: ArrayLike | None = None,
+    dispersion: Dispersion = "quasipoisson",
+    day_of_week: bool = True,
+) -> KinkFit:
+    """Fit the continuous piecewise log-linear Poisson model with given kinks.
+
+    Parameters
+    ----------
+    counts : array_like, shape (regions, days)
+        Daily counts; NaN for a missing day.
+    kinks : array_like of int, shape (regions, k) or (k,)
+        Days at which the growth rate changes (1 .. days - 1), -1 for none; any order.
+    level_shifts : array_like of int, shape (regions, m) or (m,), optional
+        Days from which the level may jump (testing changes), -1 for none.
+    dispersion : {'quasipoisson', 'poisson'}
+    day_of_week : bool
+        Include the six weekday effects.
+
+    Returns
+    -------
+    KinkFit
+
+    Notes
+    -----
+    A Poisson GLM with log link on the design of :class:`KinkFit`, fitted by Newton's method
+    (Fisher scoring, the same for the canonical link) with step halving, all regions at once:
+    :math:`X^T W X` by batched matrix products. Converged when every step is below 1e-10.
+    The design is the same as a GLM library's given the same columns, so the estimates agree
+    with ``statsmodels.GLM`` to its convergence tolerance (McCullagh & Nelder 1989, ch. 2 and
+    6). Hinge columns are continuous in t: the growth rate changes at a kink and the level
+    does not jump, the shape a step in transmission takes once the infection-to-report delay
+    has smeared it (see :func:`detect_changepoints`).
+    """
+    y = as_nonnegative_counts("counts", counts)
+    rows, n = y.shape
+    if dispersion not in ("quasipoisson", "poisson"):
+        raise ValueError(f"dispersion: must be 'quasipoisson' or 'poisson', got {dispersion!r}")
+    k = _normalise_days("kinks", kinks, rows, n)
+    k = sort_kinks(k)
+    if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
+        raise ValueError("kinks: a day appears twice in one region")
+    shifts = _normalise_days("level_shifts", level_shifts, rows, n)
+    parts = [
+        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week)
+        for s in (slice(i, min(i + _CHUNK_ROWS, rows)) for i in range(0, max(rows, 1),
+                                                                        _CHUNK_ROWS))
+    ]
+    out = [np.concatenate([p[i] for p in parts], axis=0) for i in range(len(parts[0]))]
+    return KinkFit(k, shifts, *out)
+
+
+def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str,
+               day_of_week: bool) -> tuple[FloatArray, ...]:
+    rows, n = y.shape
+    x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
+    p = x.shape[2]
+    observed = np.isfinite(y)
+    yy = np.where(observed, y, 0.0)
+    wobs = observed.astype(np.float64)
+    live = np.einsum("rnp,rn->rp", x * x, wobs) > 0  # a column with no observed day is fixed
+    total = yy.sum(axis=1)
+    exists = total > 0
+    beta = np.zeros((rows, p))
+    beta[:, 0] = np.log(np.maximum(total, 0.5) / np.maximum(wobs.sum(axis=1), 1.0))
+
+    def loglik(b: FloatArray, idx: IntArray) -> FloatArray:
+        e = np.einsum("rnp,rp->rn", x[idx], b)
+        with np.errstate(over="ignore", invalid="ignore"):
+            return np.asarray((wobs[idx] * (yy[idx] * e - np.exp(e))).sum(axis=1))
+
+    def info_score(b: FloatArray, idx: IntArray) -> tuple[FloatArray, FloatArray]:
+        xi = x[idx]
+        with np.errstate(over="ignore", invalid="ignore"):  # a diverging row: not converged
+            mu = wobs[idx] * np.exp(np.einsum("rnp,rp->rn", xi, b))
+            info = np.matmul((xi * mu[..., None]).transpose(0, 2, 1), xi)
+            score = np.einsum("rnp,rn->rp", xi, wobs[idx] * yy[idx] - mu)
+        dead = ~live[idx]
+        rr, cc = np.nonzero(dead)
+        info[rr, cc, :] = 0.0
+        info[rr, :, cc] = 0.0
+        info[rr, cc, cc] = 1.0
+        score[rr, cc] = 0.0
+        return info, score
+
+    converged = np.zeros(rows, dtype=bool)
+    active = np.flatnonzero(exists)
+    ll = loglik(beta, np.arange(rows))
+    for _ in range(_MAX_NEWTON):
+        if active.size == 0:
+            break
+        info, score = info_score(beta[active], active)
+        try:
+            step = np.linalg.solve(info, score[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            step = np.stack([np.linalg.lstsq(a, s, rcond=None)[0] for a, s in
+                             zip(info, score, strict=True)])
+        t = np.ones(active.size)
+        cur = ll[active]
+        new_b = beta[active] + step
+        new_ll = loglik(new_b, active)
+        for _halve in range(30):
+            worse = ~(new_ll >= cur - 1e-9 * np.abs(cur)) | ~np.isfinite(new_ll)
+            if not worse.any():
+                break
+            t = np.where(worse, t / 2.0, t)
+            new_b = beta[active] + t[:, None] * step
+            new_ll = np.where(worse, loglik(new_b, active), new_ll)
+        beta[active] = new_b
+        ll[active] = new_ll
+        done = np.max(np.abs(t[:, None] * step), axis=1) < _NEWTON_TOL
+        converged[active[done]] = True
+        active = active[~done]
+    every = np.arange(rows)
+    info, _ = info_score(beta, every)
+    cov = np.full((rows, p, p), np.nan)
+    ok = converged & exists
+    if ok.any():
+        cov[ok] = np.linalg.inv(info[ok])
+        dead = ~live
+        cov[ok] = np.where((dead[ok][:, :, None] | dead[ok][:, None, :]), 0.0, cov[ok])
+    e = np.einsum("rnp,rp->rn", x, beta)
+    with np.errstate(over="ignore"):
+        mu = np.where(observed, np.exp(e), np.nan)
+    n_obs = observed.sum(axis=1)
+    n_params = live.sum(axis=1) + (kinks >= 0).sum(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pearson = np.where(observed, (yy - np.nan_to_num(mu)) ** 2 / np.nan_to_num(mu), 0.0)
+        phi = pearson.sum(axis=1) / (n_obs - n_params)
+    if dispersion == "poisson":
+        phi = np.ones(rows)
+    else:
+        phi = np.where(n_obs > n_params, np.maximum(phi, 1.0), np.nan)
+    beta = np.where(ok[:, None], beta, np.nan)
+    phi = np.where(ok, phi, np.nan)
+    ll = np.where(ok, loglik(np.nan_to_num(beta), every), np.nan)
+    return beta, cov, phi, ll, mu, ok
+
+
+def _kink_fit_rows(fit: KinkFit, rows: IntArray) -> KinkFit:
+    return KinkFit(*(getattr(fit, f.name)[rows] for f in fields(KinkFit)))
+
+
+def _kink_replace(fit: KinkFit, rows: IntArray, sub: KinkFit) -> KinkFit:
+    out = []
+    for f in fields(KinkFit):
+        a = np.array(getattr(fit, f.name), copy=True)
+        a[rows] = getattr(sub, f.name)
+        out.append(a)
+    return KinkFit(*out)
+
+
+def _kink_scan(y: FloatArray, fit: KinkFit, j: int,
+               day_of_week: bool) -> tuple[FloatArray, FloatArray, BoolArray]:
+    """Working-response profile of kink ``j``: RSS with the kink at every day, others fixed.
+
+    Returns ``(rss_without, gain, allowed)``: the weighted RSS of the working response
+    ``eta + (y - mu) / mu`` (weights ``mu``) without kink j, the drop from adding it at each
+    day, and the days it may take (``min_segment`` is applied by the caller through
+    ``allowed``).
+    """
+    rows, n = y.shape
+    mu = np.nan_to_num(fit.mu, nan=0.0)
+    observed = np.isfinite(y) & (mu > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.where(observed, np.log(np.where(observed, mu, 1.0))
+                     + (np.nan_to_num(y) - mu) / np.where(observed, mu, 1.0), 0.0)
+    w = np.where(observed, mu, 0.0)
+    others = fit.kinks.copy()
+    others[:, j] = -1
+    x = kink_design(n, others, fit.level_shifts if fit.level_shifts.shape[1] else None,
+                    day_of_week)
+    rss0, gain = hinge_scan(z, w, x)
+    return rss0, gain, others >= 0
+
+
+def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, penalty: float,
+                  dispersion: Dispersion, level: float, level_shifts: IntArray | None,
+                  ) -> tuple[KinkFit, Screening, _Profile]:
+    rows, n = y.shape
+    shifts = _normalise_days("level_shifts", level_shifts, rows, n)
+    screening = screen_kinks(y, min_segment=min_segment, max_breaks=max_breaks,
+                             penalty=penalty, level_shifts=shifts if shifts.shape[1] else None)
+    kinks = screening.breaks.copy()
+    kmax = kinks.shape[1]
+    fit = fit_kinks(y, kinks, level_shifts=shifts, dispersion=dispersion)
+    crit = float(stats.chi2.ppf(level, 1))
+    log_n = np.log(np.maximum(np.isfinite(y).sum(axis=1), 2))
+    # 1. each kink to its profile maximum (others fixed); 2. a kink whose removal costs less
+    #    than its BIC penalty (2 log n: a slope change and a date) is dropped; refit; repeat
+    todo = np.arange(rows)
+    for _ in range(_PROFILE_PASSES + kmax):
+        if todo.size == 0 or kmax == 0:
+            break
+        sub = _kink_fit_rows(fit, todo)
+        new = sub.kinks.copy()
+        weakest = np.full(todo.size, np.inf)
+        weakest_at = np.full(todo.size, -1)
+        for j in range(kmax):
+            has = sub.kinks[:, j] >= 0
+            if not has.any():
+                continue
+            _, gain, _ = _kink_scan(y[todo], sub, j, True)
+            others = new.copy()
+            others[:, j] = -1
+            ok = kink_allowed(others, n, min_segment)
+            best = np.argmax(np.where(ok, gain, -1.0), axis=1)
+            r = np.arange(todo.size)
+            move = has & ok[r, best]
+            new[:, j] = np.where(move, best, new[:, j])
+            worth = gain[r, np.where(move, best, 0)] / sub.dispersion
+            worth = np.where(move, worth, np.inf)
+            lower = worth < weakest
+            weakest = np.where(lower, worth, weakest)
+            weakest_at = np.where(lower, j, weakest_at)
+        drop = weakest < penalty * 2.0 * log_n[todo]
+        r = np.flatnonzero(drop)
+        new[r, weakest_at[r]] = -1
+        new = sort_kinks(new)
+        changed = np.any(new != sub.kinks, axis=1)
+        todo = todo[changed]
+        if todo.size == 0:
+            break
+        fit = _kink_replace(fit, todo, fit_kinks(y[todo], new[changed],
+                                                  level_shifts=shifts[todo],
+                                                  dispersion=dispersion))
+    # intervals of each kink date from its profile at the final fit
+    best = np.where(fit.kinks >= 0, fit.kinks, -1)
+    lower = best.copy()
+    upper = best.copy()
+    r = np.arange(rows)
+    for j in range(kmax):
+        has = (fit.kinks[:, j] >= 0) & fit.converged
+        if not has.any():
+            continue
+        idx = np.flatnonzero(has)
+        sub = _kink_fit_rows(fit, idx)
+        _, gain, _ = _kink_scan(y[idx], sub, j, True)
+        others = sub.kinks.copy()
+        others[:, j] = -1
+        ok = kink_allowed(others, n, min_segment)
+        top = gain[np.arange(idx.size), sub.kinks[:, j]]
+        stat = (top[:, None] - gain) / sub.dispersion[:, None]
+        inset = ok & (stat <= crit)
+        inset[np.arange(idx.size), sub.kinks[:, j]] = True
+        # the connected run of accepted days around the estimate
+        day = np.arange(n)[None, :]
+        here = sub.kinks[:, j][:, None]
+        gap_left = np.where(~inset & (day < here), day, -1).max(axis=1)
+        gap_right = np.where(~inset & (day > here), day, n).min(axis=1)
+        lower[idx, j] = gap_left + 1
+        upper[idx, j] = gap_right - 1
+    del r
+    return fit, screening, _Profile(best, lower, upper)
+
+
+def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
+                    si_mean: float, si_sd: float, lag: float | None) -> ChangePoints:
+    rows, kmax = fit.kinks.shape
+    n = fit.mu.shape[1]
+    segs = kmax + 1
+    z = float(special.ndtri(0.5 + level / 2.0))
+    cov = fit.covariance * fit.dispersion[:, None, None]
+    has = fit.kinks >= 0
+    n_breaks = has.sum(axis=1).astype(np.int64)
+    seg_ok = np.arange(segs)[None, :] <= n_breaks[:, None]
+    p = fit.coef.shape[1]
+    grad = np.zeros((rows, segs, p))
+    grad[:, :, 1] = 1.0 / n
+    for j in range(1, segs):
+        grad[:, j, 2 : 2 + j] = 1.0 / n
+    coef = np.nan_to_num(fit.coef)
+    growth = np.einsum("rsp,rp->rs", grad, coef)
+    with np.errstate(invalid="ignore"):
+        se_r = np.sqrt(np.einsum("rsp,rpq,rsq->rs", grad, cov, grad))
+    bad = ~seg_ok | ~fit.converged[:, None]
+    growth = np.where(bad, np.nan, growth)
+    g_lo, g_hi = growth - z * se_r, growth + z * se_r
+    d_r = np.where(has, coef[:, 2 : 2 + kmax] / n, np.nan)
+    idx = np.arange(kmax)
+    with np.errstate(invalid="ignore"):
+        se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
+    d_r = np.where(fit.converged[:, None], d_r, np.nan)
+    breaks = np.where(has, fit.kinks, -1)
+    bounds = np.concatenate([np.zeros((rows, 1), np.int64), np.where(has, fit.kinks, n),
+                             np.full((rows, 1), n)], axis=1)
+    start = np.where(seg_ok, bounds[:, :-1], -1)
+    end = np.where(seg_ok, np.minimum(bounds[:, 1:], n), -1)
+    end = np.where(seg_ok & (np.arange(segs)[None, :] == n_breaks[:, None]), n, end)
+    dt, dt_lo, dt_hi = _doubling(growth, g_lo, g_hi)
+    nan = np.full((rows, kmax), np.nan)
+    if lag is None:
+        tr = tr_lo = tr_hi = nan
+    else:
+        tr = np.where(has, breaks - lag, np.nan)
+        tr_lo = np.where(has, prof.lower - lag, np.nan)
+        tr_hi = np.where(has, prof.upper - lag, np.nan)
+    return ChangePoints(
+        n_breaks=n_breaks, breaks=breaks, break_lower=np.where(has, prof.lower, -1),
+        break_upper=np.where(has, prof.upper, -1),
+        growth_change=d_r, growth_change_lower=d_r - z * se_d,
+        growth_change_upper=d_r + z * se_d,
+        level_change=nan, level_change_lower=nan, level_change_upper=nan,
+        segment_start=start, segment_end=end, growth=growth, growth_lower=g_lo,
+        growth_upper=g_hi, doubling_time=dt, doubling_lower=dt_lo, doubling_upper=dt_hi,
+        reproduction=growth_to_reproduction(growth, si_mean, si_sd),
+        reproduction_lower=growth_to_reproduction(g_lo, si_mean, si_sd),
+        reproduction_upper=growth_to_reproduction(g_hi, si_mean, si_sd),
+        fit=fit, screening=screening, level=level,
+        transmission_day=tr, transmission_lower=tr_lo, transmission_upper=tr_hi,
     )

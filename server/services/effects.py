@@ -40,6 +40,7 @@ BREAK_COLUMNS = (
     "doubling_time", "doubling_time_lower", "doubling_time_upper", "r", "r_lower", "r_upper",
     "break_date", "break_lower", "break_upper", "growth_change", "growth_change_lower",
     "growth_change_upper", "level_change", "level_change_lower", "level_change_upper",
+    "transmission_date", "transmission_lower", "transmission_upper",
 )
 TESTING_COLUMNS = (
     "date", "tests_per_100k_before", "tests_per_100k_after", "tests_ratio",
@@ -72,6 +73,8 @@ class BreakOptions:
     population: float | None = None
     compare: int = 7
     min_ratio: float = 1.2
+    shape: str = "kink"
+    infection_delay: float | None = None
 
 
 def _num(value: float) -> str:
@@ -86,6 +89,15 @@ def _checked_options(o: BreakOptions) -> None:
     if o.dispersion not in ("quasipoisson", "poisson"):
         raise EstimateOptionError(
             f"--dispersion: expected quasipoisson or poisson, got {o.dispersion!r}")
+    if o.shape not in ("kink", "step"):
+        raise EstimateOptionError(f"--shape: expected kink or step, got {o.shape!r}")
+
+
+def _shifted_day(dates: tuple[dt.date, ...], value: float) -> str:
+    """The date ``value`` days after the first (rounded; may fall before the series)."""
+    if math.isnan(value):
+        return ""
+    return (dates[0] + dt.timedelta(days=int(round(value)))).isoformat()
 
 
 def _call(what: str, fn, *args, **kwargs):  # type: ignore[no-untyped-def]
@@ -102,14 +114,26 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
     """Change points of ``cases`` in the file at ``path``; one row per segment."""
     o = options
     _checked_options(o)
-    source = read_daily_csv(path, required=("cases",), counts=("cases",))
+    source = read_daily_csv(path, required=("cases",), optional=("tests", "positives"),
+                            counts=("cases", "tests", "positives"))
     cases = source.values["cases"]
     if np.isfinite(cases).sum() < 2 * o.min_segment:
         raise InputFileError(source.path, "", f"cases: {int(np.isfinite(cases).sum())} days "
                              f"with counts, fewer than 2 * --min-segment = {2 * o.min_segment}")
+    shifts = None
+    if o.shape == "kink" and o.population is not None and {"tests", "positives"} <= set(
+            source.values):
+        # testing changes move the level of cases on their own: a level shift each
+        testing = _call("tests", detect_testing_changes, source.values["tests"],
+                        source.values["positives"], population=[o.population],
+                        min_segment=o.min_segment, compare=o.compare, min_ratio=o.min_ratio,
+                        level=o.level)
+        flagged = testing.day[0][testing.flagged[0]]
+        shifts = np.asarray(flagged, dtype=np.int64)[None, :] if flagged.size else None
     res = _call("cases", detect_changepoints, cases, min_segment=o.min_segment,
                 max_breaks=o.max_breaks, penalty=o.penalty, dispersion=o.dispersion,
-                level=o.level, si_mean=o.si_mean, si_sd=o.si_sd)
+                level=o.level, si_mean=o.si_mean, si_sd=o.si_sd, shape=o.shape,
+                level_shifts=shifts, infection_delay=o.infection_delay)
     dates = source.dates
     rows = []
     for j in range(int(res.n_breaks[0]) + 1):
@@ -121,7 +145,7 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
             res.doubling_lower, res.doubling_upper, res.reproduction, res.reproduction_lower,
             res.reproduction_upper)]
         if j == 0:
-            cells += [""] * 9
+            cells += [""] * 12
         else:
             k = j - 1
             cells += [_day(dates, int(res.breaks[0, k])), _day(dates, int(res.break_lower[0, k])),
@@ -129,6 +153,8 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
             cells += [_num(a[0, k]) for a in (
                 res.growth_change, res.growth_change_lower, res.growth_change_upper,
                 res.level_change, res.level_change_lower, res.level_change_upper)]
+            cells += [_shifted_day(dates, float(a[0, k])) for a in (
+                res.transmission_day, res.transmission_lower, res.transmission_upper)]
         rows.append(tuple(cells))
     return EffectsTable("breaks", BREAK_COLUMNS, tuple(rows))
 

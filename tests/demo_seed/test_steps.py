@@ -8,7 +8,7 @@ from numpy.testing import assert_allclose
 
 from demo_seed.epidemic import generation_interval_pmf
 from demo_seed.errors import ScenarioArgumentError
-from demo_seed.steps import growth_from_reproduction, simulate_steps
+from demo_seed.steps import R_RANGE, growth_from_reproduction, simulate_steps
 
 
 @pytest.fixture(scope="module")
@@ -23,7 +23,18 @@ def test_simulate_steps_ratios_match_reproduction(steps) -> None:  # type: ignor
                 continue
             before, after = steps.reproduction[i, day - 1], steps.reproduction[i, day]
             assert after / before == pytest.approx(ratio)
-            assert 1.1 - 1e-9 <= max(ratio, 1 / ratio) <= 1.7 + 1e-9
+            # 10-70 %, or smaller where R stopped at the bound of its range
+            assert 1.0 < max(ratio, 1 / ratio) <= 1.7 + 1e-9
+            assert (1.1 - 1e-9 <= max(ratio, 1 / ratio)
+                    or after == pytest.approx(R_RANGE[0]) or after == pytest.approx(R_RANGE[1]))
+    assert np.all((steps.reproduction >= R_RANGE[0] - 1e-12)
+                  & (steps.reproduction <= R_RANGE[1] + 1e-12))
+
+
+def test_simulate_steps_keeps_susceptible_depletion_small() -> None:
+    # a clean scenario: growth changes only at the steps, not by running out of susceptibles
+    sc = simulate_steps(0, regions=20, days=240)
+    assert np.max(sc.infections.sum(axis=1) / sc.population) < 0.05
 
 
 def test_simulate_steps_testing_change_moves_tests_and_positivity(steps) -> None:  # type: ignore[no-untyped-def]

@@ -1,12 +1,13 @@
 """Internal check on INVENTED data: change points and testing changes against the truth of the
 clean step scenario (demo_seed/steps.py).
 
-Not a published reference. Over 50 seeds x 20 regions (bench/effects_validation.py) about 30 %
-of R steps of at least 20 % were dated within 3 days of the day they show in cases, about half of
-the breaks lay more than 7 days from any true change (the SEIR's response to a step takes one to
-two weeks, which straight lines in log counts describe with two breaks), and 88 % of testing
-changes were flagged within 3 days with no false flags. The thresholds below guard those
-measured figures on two seeds; they are regression guards, not targets met.
+Not a published reference. Over 50 seeds x 20 regions (bench/effects_validation.py, kink model
+told the simulator's generation interval and infection-to-test delay and the flagged testing
+changes) 84 % of R steps of at least 20 % were dated within 3 days in transmission time, 24 %
+of breaks lay more than 7 days from any true change, and 99 % of testing changes were flagged
+within 3 days with no false flags. The thresholds below guard those measured figures on two
+seeds; they are regression guards (false breaks and interval coverage miss the issue's
+targets).
 """
 
 from __future__ import annotations
@@ -21,17 +22,28 @@ from server.indicators.testing import detect_testing_changes
 
 @pytest.fixture(scope="module")
 def found() -> dict[str, list[float]]:
-    out: dict[str, list[float]] = {"near": [], "within20": [], "flag": [], "false_flag": []}
+    out: dict[str, list[float]] = {"near": [], "within20": [], "flag": [], "false_flag": [],
+                                   "false": []}
     for seed in (0, 1):
         sc = simulate_steps(seed, regions=20, days=240)
-        cp = detect_changepoints(sc.cases)
         tc = detect_testing_changes(sc.tests, sc.positives, population=sc.population)
+        shifts = np.full((20, 3), -1)
         for i in range(20):
-            est = cp.breaks[i][cp.breaks[i] >= 0]
+            flagged = tc.flagged_days(i)[:3]
+            shifts[i, : len(flagged)] = flagged
+        # the step scenario's SEIR: generation interval mean 7, SD 5 days
+        cp = detect_changepoints(sc.cases, level_shifts=shifts, si_mean=7.0, si_sd=5.0,
+                                 infection_delay=sc.report_shift)
+        for i in range(20):
+            est = cp.transmission_day[i][cp.breaks[i] >= 0]
+            true = sc.change_day[i][sc.change_day[i] >= 0]
+            for b, c in zip(est, cp.breaks[i][cp.breaks[i] >= 0], strict=True):
+                near_test = sc.testing_day[i] >= 0 and abs(c - sc.testing_day[i]) <= 7
+                out["false"].append(float(not np.any(np.abs(true - b) <= 7) and not near_test))
             for day, ratio in zip(sc.change_day[i], sc.change_ratio[i], strict=True):
                 if day < 0 or 0.8 < ratio < 1.2:
                     continue
-                dist = np.abs(est - (day + sc.report_shift))
+                dist = np.abs(est - day)
                 out["near"].append(float(dist.size > 0 and dist.min() <= 3))
                 out["within20"].append(float(dist.size > 0 and dist.min() <= 20))
             flags = tc.flagged_days(i)
@@ -44,8 +56,9 @@ def found() -> dict[str, list[float]]:
 @pytest.mark.slow
 def test_changepoints_find_most_demo_steps_within_three_weeks(found) -> None:  # type: ignore[no-untyped-def]
     assert len(found["within20"]) > 40
-    assert np.mean(found["within20"]) >= 0.85
-    assert np.mean(found["near"]) >= 0.2
+    assert np.mean(found["within20"]) >= 0.9
+    assert np.mean(found["near"]) >= 0.75
+    assert np.mean(found["false"]) <= 0.4
 
 
 @pytest.mark.slow

@@ -9,6 +9,14 @@
 - Break dates against the exact dynamic-programming segmentation of ``ruptures`` (Truong,
   Oudre & Vayatis 2020, Signal Processing 167:107299) with its linear-regression cost on the
   log counts: a plausibility check of the screening, not an exact reference.
+- The continuous (kink) model with given kinks and a level shift against statsmodels' Poisson
+  GLM on the same design matrix; its break detection against ``ruptures``' exact segmentation
+  with the continuous piecewise-linear cost (``clinear``) on the log counts (plausibility).
+- Where a step in R shows as a kink: the asymptotes of the renewal equation
+  ``i_t = R_t sum_s w_s i_{t-s}`` (Fraser 2007, PLoS ONE 2:e758; Wallinga & Lipsitch 2007)
+  after a step at day d meet at ``d - E[T^2] / (2 E[T])`` to first order in the growth rate
+  (derived here: the mean age of the generation interval's forward recurrence, Feller 1971,
+  vol. II, XI.4), checked by iterating the renewal equation itself.
 """
 
 from __future__ import annotations
@@ -18,7 +26,12 @@ import pytest
 import statsmodels.api as sm
 from numpy.testing import assert_allclose
 
-from server.indicators.changepoints import detect_changepoints, fit_piecewise
+from server.indicators.changepoints import (
+    detect_changepoints,
+    fit_kinks,
+    fit_piecewise,
+    kink_design,
+)
 
 WEEKDAY = np.array([0.0, 0.12, 0.05, 0.02, -0.08, -0.45, -0.7])
 
@@ -105,3 +118,72 @@ def test_detect_changepoints_agrees_with_ruptures_dynp(seed: int) -> None:
     assert np.all(np.abs(np.array(found) - np.array(theirs)) <= 7)
     # a change of slope alone (no jump) is dated less sharply: within 5 days on these seeds
     assert np.all(np.abs(np.array(found) - np.array(truth)) <= 5)
+
+
+@pytest.mark.parametrize("seed", [6, 7], ids=["seed6", "seed7"])
+def test_fit_kinks_matches_statsmodels_glm(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    n = 160
+    t = np.arange(n)
+    eta = (np.log(90) + 0.03 * t - 0.06 * np.maximum(t - 55, 0) + 0.05 * np.maximum(t - 110, 0)
+           + np.where(t >= 130, 0.4, 0.0) + WEEKDAY[t % 7])
+    y = rng.poisson(np.exp(eta)).astype(float)
+    y[[9, 80, 81]] = np.nan
+    observed = np.isfinite(y)
+    fit = fit_kinks(y, [110, 55], level_shifts=[130])
+    x = kink_design(n, np.array([[55, 110]]), np.array([[130]]))[0]
+    # statsmodels 0.14 GLM, Poisson family, the same columns
+    ref = sm.GLM(y[observed], x[observed], family=sm.families.Poisson()).fit(tol=1e-13,
+                                                                           maxiter=100)
+    assert fit.converged[0]
+    assert_allclose(fit.coef[0], ref.params, rtol=0, atol=1e-6)
+    assert_allclose(fit.covariance[0], ref.cov_params(), rtol=1e-6, atol=1e-12)
+    assert_allclose(fit.mu[0, observed], ref.fittedvalues, rtol=1e-6)
+    phi = ref.pearson_chi2 / (ref.df_resid - 2)  # one more df per kink date
+    assert_allclose(fit.dispersion[0], max(phi, 1.0), rtol=1e-6)
+
+
+@pytest.mark.parametrize("seed", [14, 15, 16], ids=["seed14", "seed15", "seed16"])
+def test_detect_kinks_agree_with_ruptures_clinear(seed: int) -> None:
+    import ruptures as rpt
+    rng = np.random.default_rng(seed)
+    n, truth = 180, [60, 120]
+    t = np.arange(n)
+    eta = np.log(150) + 0.04 * t - 0.07 * np.maximum(t - 60, 0) + 0.05 * np.maximum(t - 120, 0)
+    y = rng.poisson(np.exp(eta + WEEKDAY[t % 7])).astype(float)
+    ours = sorted(int(b) for b in detect_changepoints(y).breaks[0] if b >= 0)
+    # ruptures 1.1: exact segmentation, continuous piecewise-linear cost, on the 7-day mean of
+    # the log counts (ends padded with the end values, so the mean is not pulled down there)
+    smooth = np.convolve(np.pad(np.log(y + 0.5), 3, mode="edge"), np.ones(7) / 7, mode="valid")
+    theirs = rpt.Dynp(model="clinear", min_size=14, jump=1).fit(smooth[:, None]).predict(
+        n_bkps=2)[:-1]
+    assert len(ours) == 2
+    assert np.all(np.abs(np.array(ours) - np.array(theirs)) <= 5)  # plausibility
+    assert np.all(np.abs(np.array(ours) - np.array(truth)) <= 3)
+
+
+@pytest.mark.parametrize(("r1", "r2"), [(0.8, 1.2), (1.25, 0.85), (1.0, 1.3)])
+def test_step_in_r_shows_as_a_kink_at_the_mean_age(r1: float, r2: float) -> None:
+    from scipy import optimize, stats
+    mean, sd = 7.0, 5.0
+    shape, scale = (mean / sd) ** 2, sd**2 / mean
+    lags = np.arange(1, 41)
+    w = np.diff(stats.gamma.cdf(np.arange(0, 41), shape, scale=scale))
+    w /= w.sum()
+    m1, m2 = (w * lags).sum(), (w * lags**2).sum()
+
+    def growth(big_r: float) -> float:  # Euler-Lotka for the discrete pmf
+        return float(optimize.brentq(lambda r: big_r * np.sum(w * np.exp(-r * lags)) - 1,
+                                     -0.5, 0.5))
+
+    g1, g2 = growth(r1), growth(r2)
+    n, d = 500, 250
+    i = np.exp(g1 * np.arange(n))
+    for day in range(d, n):
+        i[day] = r2 * np.sum(w * i[day - lags])
+    li = np.log(i)
+    after = np.polyfit(np.arange(d + 80, d + 140), li[d + 80 : d + 140], 1)
+    before_at_d = li[d - 1] + g1
+    meet = d + (np.polyval(after, d) - before_at_d) / (g1 - g2)
+    # first order in r; measured 0.64, 0.2 and 0.3 days off on these three steps
+    assert abs((meet - d) + m2 / (2 * m1)) <= 1.0

@@ -105,3 +105,24 @@ def test_effects_breaks_names_a_missing_column(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["effects", "breaks", str(path)])
     assert result.exit_code == 1
     assert "missing column 'cases'" in result.output
+
+
+def test_effects_breaks_uses_testing_changes_and_gives_transmission_dates(tmp_path: Path) -> None:
+    data = _frame(4)
+    data["cases"] = data["positives"] = np.where(np.arange(DAYS) >= 90, data["cases"] * 1.6,
+                                                 data["cases"]).round()
+    data["tests"] = data["cases"] + np.where(np.arange(DAYS) >= 90, 5000.0, 2000.0)
+    path = _write(tmp_path, data)
+    argv = ["effects", "breaks", str(path), "--population", "500000", "--infection-delay",
+            "8.5", "--si-mean", "7", "--si-sd", "5"]
+    result = CliRunner().invoke(app, argv)
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    cases = data["cases"].copy()
+    cases[MISSING] = np.nan
+    ref = detect_changepoints(cases, level_shifts=[90], infection_delay=8.5, si_mean=7.0,
+                              si_sd=5.0)
+    assert len(rows) == ref.n_breaks[0] + 1
+    lag = 8.5 - (5.0**2 + 7.0**2) / (2 * 7.0)
+    first = START + dt.timedelta(days=int(round(ref.breaks[0, 0] - lag)))
+    assert rows[1]["transmission_date"] == first.isoformat()

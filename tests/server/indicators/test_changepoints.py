@@ -6,7 +6,13 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from server.indicators.changepoints import detect_changepoints, fit_piecewise, screen_breaks
+from server.indicators._segmentation import hinge_scan, line_design
+from server.indicators.changepoints import (
+    detect_changepoints,
+    fit_kinks,
+    fit_piecewise,
+    screen_breaks,
+)
 
 WEEKDAY = np.array([0.0, 0.1, 0.05, 0.0, -0.1, -0.4, -0.6])
 
@@ -20,7 +26,8 @@ def _two_regimes(seed: int, n: int = 160, brk: int = 80, base: float = 100.0) ->
 
 
 def test_detect_changepoints_finds_a_clear_break() -> None:
-    res = detect_changepoints(_two_regimes(1))
+    # a jump and a change of slope: the step model (a line per segment)
+    res = detect_changepoints(_two_regimes(1), shape="step")
     assert res.n_breaks[0] == 1
     assert abs(res.breaks[0, 0] - 80) <= 2
     assert res.break_lower[0, 0] <= res.breaks[0, 0] <= res.break_upper[0, 0]
@@ -30,19 +37,21 @@ def test_detect_changepoints_finds_a_clear_break() -> None:
     assert res.level_change_lower[0, 0] < -0.25 < res.level_change_upper[0, 0]
 
 
-def test_detect_changepoints_pads_after_the_last_break() -> None:
-    res = detect_changepoints(_two_regimes(2))
+@pytest.mark.parametrize("shape", ["kink", "step"])
+def test_detect_changepoints_pads_after_the_last_break(shape: str) -> None:
+    res = detect_changepoints(_two_regimes(2), shape=shape)
     k = int(res.n_breaks[0])
     assert np.all(res.breaks[0, k:] == -1)
     assert np.all(np.isnan(res.growth[0, k + 1 :]))
     assert res.segment_start[0, 0] == 0 and res.segment_end[0, k] == 160
 
 
-def test_detect_changepoints_rarely_breaks_a_single_exponential() -> None:
+@pytest.mark.parametrize("shape", ["kink", "step"])
+def test_detect_changepoints_rarely_breaks_a_single_exponential(shape: str) -> None:
     rng = np.random.default_rng(3)
     t = np.arange(150)
     y = rng.poisson(np.exp(np.log(60) + 0.01 * t + WEEKDAY[t % 7])[None, :].repeat(30, 0))
-    res = detect_changepoints(y.astype(float))
+    res = detect_changepoints(y.astype(float), shape=shape)
     assert np.mean(res.n_breaks > 0) <= 0.15  # measured 0.10 on similar series (BIC)
 
 
@@ -50,7 +59,7 @@ def test_detect_changepoints_missing_days_stay_missing() -> None:
     y = _two_regimes(4)
     gappy = y.copy()
     gappy[[5, 40, 41, 100]] = np.nan
-    res = detect_changepoints(gappy)
+    res = detect_changepoints(gappy, shape="step")
     assert np.all(np.isnan(res.fit.mu[0, [5, 40, 41, 100]]))
     assert abs(res.breaks[0, 0] - 80) <= 2
     with pytest.raises(AssertionError):  # a zero in place of NaN changes the fit
@@ -112,3 +121,67 @@ def test_detect_changepoints_refuses_negative_counts() -> None:
     y[3] = -1
     with pytest.raises(ValueError, match="counts: negative count"):
         detect_changepoints(y)
+
+
+def _kinked(seed: int, n: int = 200, kinks: tuple[int, ...] = (70, 140), base: float = 150.0,
+            slopes: tuple[float, ...] = (0.03, -0.03, 0.01), shift: int | None = None
+            ) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    t = np.arange(n)
+    eta = np.log(base) + slopes[0] * t
+    for k, (a, b) in zip(kinks, zip(slopes[:-1], slopes[1:], strict=True), strict=True):
+        eta += (b - a) * np.maximum(t - k, 0)
+    if shift is not None:
+        eta += np.where(t >= shift, np.log(1.6), 0.0)
+    return rng.poisson(np.exp(eta + WEEKDAY[t % 7])).astype(float)
+
+
+def test_detect_changepoints_dates_kinks_and_their_slope_changes() -> None:
+    res = detect_changepoints(_kinked(21))
+    assert res.n_breaks[0] == 2
+    assert np.all(np.abs(res.breaks[0, :2] - np.array([70, 140])) <= 3)
+    for k, truth in enumerate((-0.06, 0.04)):
+        assert res.growth_change_lower[0, k] < truth < res.growth_change_upper[0, k]
+        assert res.break_lower[0, k] <= res.breaks[0, k] <= res.break_upper[0, k]
+    # the kink model is continuous: no level change
+    assert np.all(np.isnan(res.level_change[0]))
+
+
+def test_detect_changepoints_level_shift_absorbs_a_testing_change() -> None:
+    y = _kinked(22, kinks=(70,), slopes=(0.02, -0.02), shift=130)
+    plain = detect_changepoints(y)
+    shifted = detect_changepoints(y, level_shifts=[130])
+    # without the shift the jump in cases needs extra kinks near day 130
+    assert np.any(np.abs(plain.breaks[0] - 130) <= 10)
+    assert shifted.n_breaks[0] == 1 and abs(shifted.breaks[0, 0] - 70) <= 3
+
+
+def test_transmission_day_is_the_break_less_the_delay_plus_mean_age() -> None:
+    res = detect_changepoints(_kinked(23), infection_delay=8.5, si_mean=7.0, si_sd=5.0)
+    lag = 8.5 - (5.0**2 + 7.0**2) / (2 * 7.0)
+    k = int(res.n_breaks[0])
+    assert_allclose(res.transmission_day[0, :k], res.breaks[0, :k] - lag)
+    assert_allclose(res.transmission_lower[0, :k], res.break_lower[0, :k] - lag)
+    assert np.all(np.isnan(detect_changepoints(_kinked(23)).transmission_day))
+
+
+def test_hinge_scan_gain_matches_a_direct_least_squares_fit() -> None:
+    # numpy.linalg.lstsq (LAPACK gelsd) on the weighted design with the hinge column added
+    rng = np.random.default_rng(24)
+    n = 60
+    z = rng.normal(size=(1, n)).cumsum(axis=1)
+    w = rng.uniform(0.5, 2.0, size=(1, n))
+    x = line_design(n, np.array([[20]]))
+    rss0, gain = hinge_scan(z, w, x)
+    sw = np.sqrt(w[0])
+    for tau in (5, 33, 50):
+        h = np.maximum(np.arange(n) - tau, 0) / n
+        full = np.column_stack([x[0], h]) * sw[:, None]
+        coef = np.linalg.lstsq(full, z[0] * sw, rcond=None)[0]
+        rss = np.sum((z[0] * sw - full @ coef) ** 2)
+        assert_allclose(rss0[0] - gain[0, tau], rss, rtol=1e-9)
+
+
+def test_fit_kinks_refuses_a_repeated_day() -> None:
+    with pytest.raises(ValueError, match="kinks: a day appears twice"):
+        fit_kinks(_kinked(25), [70, 70])
