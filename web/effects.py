@@ -2,9 +2,9 @@
 
 ``GET /staff/effects?start=&end=`` (ISO dates; default the last 120 days of data) lists every
 published tier change and every recorded event of the period (:mod:`server.services.event_effects`)
-with a small-multiples chart and the table beside it; ``window``, ``delay``, ``transition`` and
-``lead`` (days) override the estimate's windows. ``POST /staff/effects`` records an event
-(analysts and up) and comes back to the page.
+with a small-multiples chart and the table beside it; ``window``, ``delay``, ``transition``,
+``lead`` and ``settle`` (days) override the estimate's windows. ``POST /staff/effects``
+records an event (analysts and up) and comes back to the page.
 """
 
 from __future__ import annotations
@@ -45,7 +45,8 @@ def _days(field: str, text: str, default: int) -> int:
 @router.get("/effects", response_class=HTMLResponse)
 def effects(
     request: Request, session: SessionDep, user: StaffDep, start: str = "", end: str = "",
-    window: str = "", delay: str = "", transition: str = "", lead: str = "", done: str = "",
+    window: str = "", delay: str = "", transition: str = "", lead: str = "", settle: str = "",
+    done: str = "",
 ) -> Response:
     """The events of the period with their estimates, the chart and the form."""
     today = dt.date.today()
@@ -56,7 +57,7 @@ def effects(
         options = EffectOptions(
             window=_days("window", window, base.window), delay=_days("delay", delay, base.delay),
             transition=_days("transition", transition, base.transition),
-            lead=_days("lead", lead, base.lead))
+            lead=_days("lead", lead, base.lead), settle=_days("settle", settle, base.settle))
         page = effects_page(session=session, start=first, end=last, options=options)
     except EventError as exc:
         raise HTTPException(status_code=422, detail=str(exc)) from None

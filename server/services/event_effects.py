@@ -49,6 +49,7 @@ __all__ = [
 #: Kinds of recorded events (``tier_change`` is reserved for published decisions).
 EVENT_KINDS = ("measure_start", "measure_end", "school_holidays", "testing_change", "other")
 CASES = "cases"
+DEFAULT_SETTLE = 3
 NOTE_MAX = 2000
 
 
@@ -69,10 +70,13 @@ class EffectOptions:
     delay: int = DEFAULT_DELAY
     transition: int = DEFAULT_TRANSITION
     lead: int = DEFAULT_LEAD
+    #: Newest days left out because late reports are still arriving; an estimate can be told
+    #: ``settle`` days after its window's last day (common practice, no source).
+    settle: int = DEFAULT_SETTLE
 
     def __post_init__(self) -> None:
         for name, low, high in (("window", 7, 56), ("delay", 0, 42), ("transition", 0, 28),
-                                ("lead", 0, 28)):
+                                ("lead", 0, 28), ("settle", 0, 28)):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
                 raise EventError(name, f"expected a whole number of days in {low}..{high}, "
@@ -108,7 +112,7 @@ class EventEffect:
 class EffectsPage:
     start: dt.date
     end: dt.date
-    data_end: dt.date | None
+    data_end: dt.date | None  # newest day with cases; the estimates use up to data_end - settle
     options: EffectOptions
     events: tuple[EventEffect, ...]
     regions: tuple[tuple[str, str], ...]  # (code, name) that events can be recorded for
@@ -232,7 +236,8 @@ def effects_page(
     codes = sorted({regions[e.region_id].code for e in raw})
     row_of = {c: i for i, c in enumerate(codes)}
     first = start - dt.timedelta(days=o.window + o.delay + 90)
-    last = data_end if data_end is not None and data_end >= first else first
+    usable = None if data_end is None else data_end - dt.timedelta(days=o.settle)
+    last = usable if usable is not None and usable >= first else first
     counts = _series(session, codes, first, last, regions)
     day_index = np.array([(e.day - first).days for e in raw])
     rows = np.array([row_of[regions[e.region_id].code] for e in raw])
@@ -254,7 +259,7 @@ def effects_page(
         out.append(EventEffect(
             day=e.day, region=region.code, region_name=region.name, level=region.level,
             kind=e.kind, note=e.note, recorded_by=e.by, status=status,
-            ready_on=day(res.ready_day[k]),
+            ready_on=day(res.ready_day[k] + o.settle),
             before=(day(span[0]), day(span[0] + o.window - 1)),
             after=(day(res.after_start[k]), day(span[1] - 1)),
             r_before=_triple(res, "r_before", k), r_after=_triple(res, "r_after", k),

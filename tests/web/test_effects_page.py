@@ -44,8 +44,8 @@ def test_page_lists_each_tier_change_with_effect_or_too_early(client: TestClient
     assert len(rows) == 2  # the first publication is no change
     assert 'data-status="ready"' in rows[0] and "2026-10-01" in rows[0]
     assert re.search(r"[+-]0\.\d{3} <small>\([+-]0\.\d{3}", rows[0])  # change with its interval
-    # Tier change on Nov 25: after window ends 25 + 7 + 7 + 14 - 1 days later.
-    assert "Too early to tell; can say from 2026-12-22." in html.unescape(rows[1])
+    # Tier change on Nov 25: after window ends 7 + 7 + 14 - 1 days later, plus 3 settle days.
+    assert "Too early to tell; can say from 2026-12-25." in html.unescape(rows[1])
     assert 'data-figure="' in page.text  # the small multiples, drawn from the ready event
     assert 'action="/staff/effects" class="login"' not in page.text  # viewers cannot record
 

@@ -94,7 +94,7 @@ def test_effects_page_estimates_the_district_series_as_stored(
     _decision(session, "Q1", date(2026, 4, 13), 1, True)  # day 43: kink at day 50 = 43 + 7
     page = effects_page(session=session, start=date(2026, 4, 1), end=date(2026, 4, 30))
     (event,) = page.events
-    ref = before_after(county["Q1"], [0], [43])
+    ref = before_after(county["Q1"][:DAYS - 3], [0], [43])  # the newest 3 days still settle
     assert event.status == "ready"
     assert_allclose(event.r_change, (ref.r_change[0], ref.r_change_lower[0],
                                      ref.r_change_upper[0]), rtol=1e-12)
@@ -116,7 +116,8 @@ def test_recorded_county_event_uses_summed_districts_and_is_audited(
     assert entry.details["kind"] == "school_holidays"
     page = effects_page(session=session, start=date(2026, 4, 1), end=date(2026, 4, 30))
     (event,) = page.events
-    ref = before_after(county["Q1"] + county["Q2"], [0], [(date(2026, 4, 20) - START).days])
+    ref = before_after((county["Q1"] + county["Q2"])[:DAYS - 3], [0],
+                       [(date(2026, 4, 20) - START).days])
     assert event.level == "county" and event.recorded_by == "ivy.analyst"
     assert_allclose(event.r_before[0], ref.r_before[0], rtol=1e-12)
     assert event.breaks_known
@@ -130,8 +131,9 @@ def test_event_near_the_data_end_is_too_early_with_the_day(
     (event,) = effects_page(session=session, start=date(2026, 5, 1),
                             end=date(2026, 6, 1)).events
     assert event.status == "too_early"
-    # After window: event + delay 7 + transition 7 .. + 14 days; its last day is the ready day.
-    assert event.ready_on == date(2026, 5, 25) + timedelta(days=7 + 7 + 14 - 1)
+    # After window: event + delay 7 + transition 7 .. + 14 days; told 3 settle days after its
+    # last day.
+    assert event.ready_on == date(2026, 5, 25) + timedelta(days=7 + 7 + 14 - 1 + 3)
     assert np.isnan(event.r_change[0])
 
 
