@@ -19,7 +19,18 @@ from server.services.database import Database
 from server.services.evaluation_worker import EvaluationWorker
 from server.services.feeds import catalogue_limits, load_catalogue
 from server.services.notify import notify_config_from
-from web import assets, downloads, health, login, policies, public, review, staff, users
+from web import (
+    assets,
+    downloads,
+    effects,
+    health,
+    login,
+    policies,
+    public,
+    review,
+    staff,
+    users,
+)
 from web.apidocs import mount_api_docs
 from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
@@ -113,6 +124,7 @@ def create_app(
     app.include_router(review.api_router)
     app.include_router(policies.router, prefix="/staff")
     app.include_router(users.router, prefix="/staff")
+    app.include_router(effects.router, prefix="/staff")
     app.include_router(staff_feeds_router, prefix="/staff")
     app.include_router(feeds_api_router)
     app.include_router(staff.router, prefix="/staff")

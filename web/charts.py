@@ -16,11 +16,12 @@ import plotly.graph_objects as go
 from server.services.capacity_pages import AreaCapacity, Fan
 from server.services.district_indicators import NowcastSeries
 from server.services.dossier import CriterionSeries, DistrictDossier
+from server.services.event_effects import EventEffect
 from web.palette import INK, OUTLINE, tier_colours
 
 __all__ = [
-    "admissions_fan_figure", "capacity_fan_figure", "criterion_figure", "figure_json",
-    "nowcast_figure", "sparkline_points", "timeline_figure",
+    "admissions_fan_figure", "capacity_fan_figure", "criterion_figure", "effects_figure",
+    "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
 ]
 
 _LAYOUT = {
@@ -188,6 +189,37 @@ def admissions_fan_figure(fan: Fan) -> go.Figure:
     _fan_traces(fig, fan)
     fig.update_layout(title={"text": f"Hospital admissions {fan.label}", "x": 0}, **_LAYOUT)
     fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    return fig
+
+
+def effects_figure(events: Sequence[EventEffect], columns: int = 4) -> go.Figure | None:
+    """Small multiples: R before and after each estimated event, with 95 % intervals.
+
+    One panel per event whose estimate is ready (same y axis for all, a dotted line at R = 1);
+    None when no event has an estimate. The page's table carries the same numbers."""
+    from plotly.subplots import make_subplots
+
+    ready = [e for e in events if e.status == "ready"]
+    if not ready:
+        return None
+    cols = min(columns, len(ready))
+    rows = math.ceil(len(ready) / cols)
+    titles = [f"{e.region_name} {e.day.isoformat()}" for e in ready]
+    fig = make_subplots(rows=rows, cols=cols, subplot_titles=titles, shared_yaxes=True)
+    for k, e in enumerate(ready):
+        est = [e.rt_before[0], e.rt_after[0]]
+        fig.add_trace(go.Scatter(
+            x=["before", "after"], y=_nan(est), mode="markers", showlegend=False,
+            marker={"color": INK, "size": 8},
+            error_y={"type": "data", "symmetric": False,
+                     "array": _nan([e.rt_before[2] - est[0], e.rt_after[2] - est[1]]),
+                     "arrayminus": _nan([est[0] - e.rt_before[1], est[1] - e.rt_after[1]])},
+            hovertemplate="R %{x}: %{y:.2f}<extra></extra>"), row=k // cols + 1, col=k % cols + 1)
+    fig.add_hline(y=1.0, line={"color": OUTLINE, "dash": "dot", "width": 1})
+    layout = {**_LAYOUT, "height": 200 * rows + 40, "hovermode": "closest"}
+    fig.update_layout(title={"text": "R before and after each event (95% intervals)", "x": 0},
+                      **layout)
+    fig.update_annotations(font={"size": 11})
     return fig
 
 

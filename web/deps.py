@@ -119,6 +119,7 @@ DecideDep = Annotated[StaffUser, Depends(allowed("decide"))]
 PublishDep = Annotated[StaffUser, Depends(allowed("publish"))]
 ActivatePolicyDep = Annotated[StaffUser, Depends(allowed("activate_policy"))]
 ManageUsersDep = Annotated[StaffUser, Depends(allowed("manage_users"))]
+RecordEventDep = Annotated[StaffUser, Depends(allowed("record_event"))]
 
 
 async def csrf_protected(request: Request, user: StaffDep) -> None:

@@ -17,6 +17,7 @@ from server.indicators.accuracy import (
     projection_accuracy,
     weighted_interval_score,
 )
+from server.indicators.before_after import BeforeAfter, before_after
 from server.indicators.curves import (
     CurveFit,
     CurveInterval,
@@ -110,6 +111,8 @@ from server.indicators.windows import (
 )
 
 __all__ = [
+    "BeforeAfter",
+    "before_after",
     "AccuracyReport",
     "CapacityCrossing",
     "CurveFit",

@@ -30,6 +30,7 @@ PERMISSIONS: dict[str, str] = {
     "upload": "analyst",  # hand uploads to a feed
     "draft_policy": "analyst",  # store and check a draft ruleset
     "backtest": "analyst",  # start and read backtests
+    "record_event": "analyst",  # record a dated event (measure, holidays, testing change)
     "decide": "approver",  # confirm or override a recommended tier
     "publish": "approver",  # publish decided tiers to the public view
     "activate_policy": "admin",  # make a ruleset version the active one

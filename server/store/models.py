@@ -230,6 +230,22 @@ class Decision(Base):
     published_at: Mapped[datetime | None] = mapped_column(UTCDateTime())
 
 
+class RecordedEvent(Base):
+    """A dated fact about a region recorded by staff (a measure starts or ends, school holidays,
+    a change of testing criteria), for before/after estimates. Published tier changes are read
+    from ``decision`` and never copied here. Append-only, like the audit log."""
+
+    __tablename__ = "recorded_event"
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    region_id: Mapped[int] = mapped_column(ForeignKey("region.id"), index=True)
+    day: Mapped[date] = mapped_column(Date, index=True)
+    kind: Mapped[str] = mapped_column(String(32))
+    note: Mapped[str] = mapped_column(Text)
+    recorded_by: Mapped[int | None] = mapped_column(ForeignKey("app_user.id"))
+    recorded_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
 class AuditEntry(Base):
     """Append-only log of who did what."""
 

@@ -7,7 +7,8 @@ from datetime import date, timedelta
 import pytest
 
 from server.services.dossier import CriterionSeries
-from web.charts import criterion_figure
+from server.services.event_effects import EventEffect
+from web.charts import criterion_figure, effects_figure
 
 NAMES = ("Baseline", "Heightened", "High", "Severe")
 
@@ -46,3 +47,28 @@ def test_criterion_figure_keeps_thresholds_readable_under_a_wide_interval() -> N
 def test_criterion_figure_clamps_a_tier_beyond_the_policy() -> None:
     fig = criterion_figure(_series(), NAMES, 7)  # official tier from an older, larger policy
     assert "leave Severe below" in _names(fig)
+
+
+def _event(status: str, k: int) -> EventEffect:
+    nan3 = (float("nan"),) * 3
+    ready = status == "ready"
+    day = date(2026, 3, 1) + timedelta(days=k)
+    return EventEffect(
+        day=day, region=f"Q{k}", region_name=f"Invented {k}", level="district",
+        kind="other", note="n", recorded_by="", status=status, ready_on=day,
+        before=(day, day), after=(day, day), r_before=nan3, r_after=nan3, r_change=nan3,
+        rt_before=(1.2, 1.1, 1.4) if ready else nan3, rt_after=(0.9, 0.8, 1.05) if ready else nan3,
+        rt_ratio=nan3, breaks=(), breaks_known=False)
+
+
+def test_effects_figure_draws_one_panel_per_ready_event_with_its_interval() -> None:
+    events = [_event("ready", 0), _event("too_early", 1), _event("ready", 2)]
+    fig = effects_figure(events)
+    assert fig is not None and len(fig.data) == 2
+    trace = fig.data[0]
+    assert list(trace.y) == [1.2, 0.9]
+    assert list(trace.error_y.array) == pytest.approx([0.2, 0.15])
+    assert list(trace.error_y.arrayminus) == pytest.approx([0.1, 0.1])
+    assert [a.text for a in fig.layout.annotations] == ["Invented 0 2026-03-01",
+                                                        "Invented 2 2026-03-03"]
+    assert effects_figure([_event("too_early", 1)]) is None
