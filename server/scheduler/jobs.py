@@ -81,7 +81,6 @@ def catch_up_evaluation(key: str) -> EvaluationRun | None:
     run = evaluate_if_behind(
         runtime.db, notify=runtime.notify,  # type: ignore[arg-type]
         stale_after=catalogue_limits(runtime.catalogue),  # type: ignore[arg-type]
-        precedence=runtime.catalogue.precedence(),  # type: ignore[attr-defined]
     )
     if run is not None:
         log.info("catch-up: evaluated %s at cutoff %s", run.ruleset_name,
