@@ -149,50 +149,59 @@ def check_revisions(
     feed_of = dict(session.execute(
         select(Vintage.id, Vintage.feed).where(Vintage.id.in_(np.unique(vintages).tolist()))
     ).all())
-    old_feeds = np.array([feed_of.get(int(v), "") for v in vintages.tolist()], dtype=object)
-    measures = np.array([measure_names.get(int(m), str(m)) for m in rows.measure_id[idx]],
-                        dtype=object)
+    # per distinct vintage and measure, then spread back (the rows may be many)
+    uv, v_inv = np.unique(vintages, return_inverse=True)
+    v_feed = [feed_of.get(int(v), "") for v in uv.tolist()]
+    measure_ids = rows.measure_id[idx]
+    um, m_inv = np.unique(measure_ids, return_inverse=True)
+    m_name = [measure_names.get(int(m), str(m)) for m in um.tolist()]
     ranks = precedence or {}
 
     def rank(measure: str, name: str) -> int:
         return int(ranks.get(measure, {}).get(name, 0))
 
-    outranked = np.array([
-        of != feed and rank(m, of) > rank(m, feed)
-        for of, m in zip(old_feeds.tolist(), measures.tolist(), strict=True)
-    ], dtype=bool)
-    messages = tuple(
-        f"{measures[i]} for {region_codes.get(int(rows.region_id[idx[i]]), '?')} on "
-        f"{(EPOCH + timedelta(days=int(rows.day[idx[i]]))).isoformat()} was sent by feed "
-        f"{old_feeds[i]!r} (vintage {int(vintages[i])}), which takes precedence for "
-        f"{measures[i]} ({rank(measures[i], old_feeds[i])} over "
-        f"{rank(measures[i], feed)}); this row is not taken in"
-        for i in np.flatnonzero(outranked).tolist()
-    )
+    # rank of the old value's feed and of this feed, per (vintage, measure) pair
+    old_rank = np.array([[rank(m, f) for m in m_name] for f in v_feed], dtype=np.int64)
+    mine = np.array([rank(m, feed) for m in m_name], dtype=np.int64)
+    is_other = np.array([f != feed for f in v_feed], dtype=bool)[v_inv]
+    outranked = is_other & (old_rank[v_inv, m_inv] > mine[m_inv])
+    days = rows.day[idx]
+    regions = rows.region_id[idx]
+
+    def where(i: int) -> tuple[str, str, str]:
+        return (m_name[m_inv[i]], region_codes.get(int(regions[i]), "?"),
+                (EPOCH + timedelta(days=int(days[i]))).isoformat())
+
+    messages = []
+    for i in np.flatnonzero(outranked).tolist():
+        m, code, day = where(i)
+        of = v_feed[v_inv[i]]
+        messages.append(
+            f"{m} for {code} on {day} was sent by feed {of!r} (vintage {int(vintages[i])}), "
+            f"which takes precedence for {m} ({rank(m, of)} over {rank(m, feed)}); this row is "
+            "not taken in")
     keep = ~outranked
-    other = keep & (old_feeds != feed)
-    order = np.lexsort((rows.day[idx], rows.region_id[idx], measures.astype(str)))
-    listed = [int(i) for i in order.tolist() if keep[i]][:KEPT_REVISIONS]
+    other = keep & is_other
+    order = np.lexsort((days, regions, measure_ids))
+    listed = order[keep[order]][:KEPT_REVISIONS].tolist()
     revisions = tuple(
         RevisedValue(
-            region=region_codes.get(int(rows.region_id[idx[i]]), "?"), measure=measures[i],
-            day=EPOCH + timedelta(days=int(rows.day[idx[i]])), old=float(old[i]),
-            new=float(rows.value[idx[i]]), old_feed=str(old_feeds[i]),
+            region=region_codes.get(int(regions[i]), "?"), measure=m_name[m_inv[i]],
+            day=EPOCH + timedelta(days=int(days[i])), old=float(old[i]),
+            new=float(rows.value[idx[i]]), old_feed=v_feed[v_inv[i]],
             old_vintage_id=int(vintages[i]), line=int(rows.line[idx[i]]), feed=feed,
         )
         for i in listed
     )
     digest = ""
     if other.any():
+        chosen = order[other[order]]
         h = hashlib.sha256()
-        for i in order.tolist():
-            if other[i]:
-                h.update(
-                    f"{int(rows.region_id[idx[i]])},{measures[i]},{int(rows.day[idx[i]])},"
-                    f"{old[i]!r},{float(rows.value[idx[i]])!r},{int(vintages[i])}\n".encode()
-                )
+        for part in (regions, measure_ids, days, old, rows.value[idx], vintages):
+            h.update(np.ascontiguousarray(part[chosen]).tobytes())
         digest = h.hexdigest()
     return RevisionCheck(
         revisions=revisions, revised=int(keep.sum()), revised_other_feeds=int(other.sum()),
-        outranked=idx[outranked].astype(np.int64), outranked_messages=messages, digest=digest,
+        outranked=idx[outranked].astype(np.int64), outranked_messages=tuple(messages),
+        digest=digest,
     )
