@@ -41,6 +41,13 @@ from server.indicators import (
     weekly_sum,
 )
 from server.indicators import level as ww_level
+from server.indicators.forecast_scores import (
+    ForecastScores,
+    forecast_record,
+    last_week_mean,
+    poisson_persistence,
+    score_forecasts,
+)
 from server.indicators.growth import design_matrix
 from server.indicators.nowcast import (
     DelayModel,
@@ -166,6 +173,67 @@ def baseline_icu(a0: np.ndarray, o0: np.ndarray, r: np.ndarray, surv: np.ndarray
 
 
 CHANGEPOINT_TARGET_S = 30.0
+CAPACITY_TARGET_S = 3.0
+CAPACITY_SIMS = 200
+
+
+def baseline_capacity(adm: np.ndarray, occ: np.ndarray, staffed: np.ndarray,
+                      scenarios: list[object], sims: int, horizon: int = 21) -> None:
+    """A plain per-region loop: statsmodels quasi-Poisson fit of the last 14 days, then per
+    scenario exact numpy Poisson/binomial draws and numpy quantiles (the same model)."""
+    from server.indicators.capacity import history_weights
+
+    rng = np.random.default_rng(1)
+    x = sm.add_constant(np.arange(14.0))
+    los = length_of_stay()
+    surv = los.survival
+    levels = [0.05, 0.25, 0.5, 0.75, 0.95]
+    for i in range(adm.shape[0]):
+        fit = sm.GLM(adm[i, -14:], x, family=sm.families.Poisson()).fit(scale="X2")
+        r = rng.normal(fit.params[1], fit.bse[1], sims)
+        mu = rng.gamma(adm[i, -7:].sum() + 0.5, size=sims)
+        a0 = mu * np.expm1(-r) / np.expm1(-7 * r)
+        remain, per = history_weights(r, los, horizon)
+        for sc in scenarios:
+            mult = np.exp(sc.log_multiplier(r, horizon))  # type: ignore[attr-defined]
+            draws = rng.poisson(a0[:, None] * mult)
+            np.quantile(draws, levels, axis=0)
+            icu = occ[i] * per[:, None] * mult
+            new = np.stack([np.convolve(row, surv)[1: horizon + 1] for row in
+                            np.concatenate([np.zeros((sims, 1)), icu], axis=1)])
+            beds = rng.binomial(int(occ[i]), remain[:, 1:]) + rng.poisson(new)
+            np.quantile(beds, levels, axis=0)
+            np.quantile(100 * (occ[i] * remain[:, 1:] + new) / staffed[i], levels, axis=0)
+
+
+def bench_capacity(regions: int, sample: int) -> None:
+    """Capacity forecasts: regions x 3 scenarios x 21 days with intervals, all targets."""
+    from datetime import date
+
+    from server.indicators.capacity import Scenario, capacity_forecasts
+
+    rng = np.random.default_rng(9)
+    days = 28
+    r = rng.uniform(-0.04, 0.06, (regions, 1))
+    adm = rng.poisson(rng.uniform(2, 40, (regions, 1)) * np.exp(r * np.arange(days))).astype(float)
+    occ = np.rint(rng.uniform(5, 60, regions))
+    staffed = np.full(regions, 100.0)
+    scenarios = [Scenario(name="trend"),
+                 Scenario(name="levels-off", kind="growth_to", value=0.0, within_days=7),
+                 Scenario(name="halves", kind="change", value=0.5, within_days=14)]
+    names = [f"R{i}" for i in range(regions)]
+    took, cpu = timed_cpu(lambda: capacity_forecasts(
+        adm, regions=names, origin=date(2030, 1, 1), scenarios=scenarios, occupied=occ,
+        staffed=staffed, sims=CAPACITY_SIMS))
+    sample = min(sample, regions)
+    base = timed(lambda: baseline_capacity(adm[:sample], occ[:sample], staffed[:sample],
+                                           list(scenarios), CAPACITY_SIMS)) * regions / sample
+    print(f"{'capacity forecasts':<24} {took:8.3f} s  ({cpu:7.3f} s)   baseline {base:8.2f} s  "
+          f"ratio {base / took:7.1f}x  ({regions} regions x 3 scenarios x 21 days, "
+          f"{CAPACITY_SIMS} simulations, admissions + ICU beds + share; loop on {sample})")
+    verdict = "PASS" if took < CAPACITY_TARGET_S else "MISS"
+    note = "" if regions == 3000 else " [target is for 3000 regions]"
+    print(f"{verdict}: capacity forecasts {took:.3f} s < {CAPACITY_TARGET_S:g} s{note}")
 
 
 def synthetic_breaks(regions: int, days: int, seed: int = 2025) -> tuple[np.ndarray, np.ndarray]:
@@ -250,11 +318,16 @@ def main() -> None:
     parser.add_argument("--sample", type=int, default=5, help="regions in each baseline loop")
     parser.add_argument("--only-changepoints", action="store_true",
                         help="run only the change-point section")
+    parser.add_argument("--only-capacity", action="store_true",
+                        help="run only the capacity-forecast section")
     parser.add_argument("--store", action="store_true",
                         help="also time the nowcast's store read in a temporary SQLite")
     args = parser.parse_args()
     if args.only_changepoints:
         bench_changepoints(args.regions, args.days, min(args.sample, 2))
+        return
+    if args.only_capacity:
+        bench_capacity(args.regions, max(args.sample, 20))
         return
     regions, days = args.regions, args.days
     data = synthetic(regions, days)
@@ -343,7 +416,11 @@ def main() -> None:
         print(f"{verdict}: {name} {value:.3f} s < {target:g} s{note}")
     if args.store:
         store_read(regions)
+    forecast_scoring_section(cases, regions, sample)
+    if args.store:
+        forecast_store_section(cases, regions)
 
+    bench_capacity(regions, max(args.sample, 20))
     bench_changepoints(regions, days, min(args.sample, 2))
 
 # -- nowcasts from vintages (triangle, pooled weekday delays, 7-day nowcast) ---------------------
@@ -466,6 +543,165 @@ def store_read(regions: int, ref: int = 60) -> None:
         print(f"{'store read (triangle)':<24} {t_rows:8.3f} s  ({c_rows:7.3f} s)   read_dense "
               f"of the same days {t_dense:.3f} s ({c_dense:.3f} s cpu)  ratio "
               f"{t_rows / t_dense:.1f}x (cpu {c_rows / c_dense:.1f}x)")
+
+
+# -- the forecast record: one year of daily forecasts scored --------------------------------------
+
+FORECAST_LEVELS = np.array([0.05, 0.25, 0.5, 0.75, 0.95])
+FORECAST_HORIZONS = np.arange(1, 22)
+FORECAST_CHUNK = 30  # origins scored in one pass (memory: regions x 30 x 21 x 5 floats)
+
+
+def year_of_forecasts(cases: np.ndarray, origins: int = 365) -> tuple[np.ndarray, ...]:
+    """Poisson-persistence forecasts of ``cases`` made on each of the last ``origins`` days that
+    have 21 later days, their outcomes and baselines: (origins, regions, 21, 5) etc."""
+    days = cases.shape[1]
+    first = days - 21 - origins
+    if first < 7:
+        raise SystemExit(f"--days {days}: the forecast section needs {origins + 28} days")
+    vals = np.empty((origins, cases.shape[0], FORECAST_HORIZONS.size, FORECAST_LEVELS.size))
+    obs = np.empty((origins, cases.shape[0], FORECAST_HORIZONS.size))
+    base = np.empty((origins, cases.shape[0]))
+    for k in range(origins):
+        o = first + k
+        window = cases[:, o - 6: o + 1]
+        vals[k] = poisson_persistence(window, horizons=FORECAST_HORIZONS, levels=FORECAST_LEVELS)
+        obs[k] = cases[:, o + FORECAST_HORIZONS]
+        base[k] = last_week_mean(window)
+    return vals, obs, base
+
+
+def score_year(vals: np.ndarray, obs: np.ndarray, base: np.ndarray) -> object:
+    """The record of every region and horizon over the newest 60 forecasts (vectorised)."""
+    n_o, n_r = base.shape
+    parts = [score_forecasts(vals[a: a + FORECAST_CHUNK].reshape(-1, *vals.shape[2:]),
+                             FORECAST_LEVELS, obs[a: a + FORECAST_CHUNK].reshape(-1, vals.shape[2]),
+                             base[a: a + FORECAST_CHUNK].reshape(-1))
+             for a in range(0, n_o, FORECAST_CHUNK)]
+    scores = ForecastScores(*(np.concatenate([getattr(p, f) for p in parts]) for f in
+                              ("scored", "wis", "naive_error", "inside_50", "inside_90")),
+                            has_50=True, has_90=True)
+    groups = np.tile(np.arange(n_r), n_o)
+    order = np.repeat(np.arange(n_o), n_r)
+    return forecast_record(scores, groups=groups, n_groups=n_r, order=order,
+                           horizons=FORECAST_HORIZONS, last=60)
+
+
+def baseline_score_loop(vals: np.ndarray, obs: np.ndarray, base: np.ndarray) -> None:
+    """Per region and origin: scoringrules' interval scores, coverage and the naive error with
+    numpy, then the newest 60 per horizon with pandas."""
+    import scoringrules as sr
+
+    alphas = np.array([0.1, 0.5])
+    for r in range(vals.shape[1]):
+        wis, naive, in50, in90 = [], [], [], []
+        for k in range(vals.shape[0]):
+            q, y = vals[k, r], obs[k, r]
+            intervals = sr.interval_score(y, q[:, :2], q[:, :2:-1], alphas, backend="numpy")
+            wis.append((0.5 * np.abs(y - q[:, 2]) + (alphas / 2 * intervals).sum(axis=1)) / 2.5)
+            naive.append(np.abs(y - base[k, r]))
+            in50.append((q[:, 1] <= y) & (y <= q[:, 3]))
+            in90.append((q[:, 0] <= y) & (y <= q[:, 4]))
+        frame = pd.DataFrame({
+            "origin": np.repeat(np.arange(vals.shape[0]), FORECAST_HORIZONS.size),
+            "horizon": np.tile(FORECAST_HORIZONS, vals.shape[0]),
+            "wis": np.concatenate(wis), "naive": np.concatenate(naive),
+            "in50": np.concatenate(in50), "in90": np.concatenate(in90),
+        })
+        newest = frame.sort_values("origin").groupby("horizon").tail(60)
+        newest.groupby("horizon")[["wis", "naive", "in50", "in90"]].mean()
+
+
+def forecast_scoring_section(cases: np.ndarray, regions: int, sample: int) -> None:
+    vals, obs, base = year_of_forecasts(cases)
+    rec = score_year(vals, obs, base)  # warm-up, and the figures below
+    took, cpu = timed_cpu(lambda: score_year(vals, obs, base))
+    loop = timed(lambda: baseline_score_loop(vals[:, :sample], obs[:, :sample],
+                                             base[:, :sample])) * regions / sample
+    n = vals.shape[0] * regions
+    print(f"{'forecast record (1 y)':<24} {took:8.3f} s  ({cpu:7.3f} s)   baseline {loop:8.2f} s  "
+          f"ratio {loop / took:7.1f}x  ({n:,} forecasts x 21 horizons x 5 quantiles, newest 60; "
+          f"loop with scoringrules on {sample} regions)")
+    assert hasattr(rec, "coverage_90")
+    print(f"  persistence on the synthetic counts: 90 % band held "
+          f"{np.nanmean(rec.coverage_90):.1%}, 50 % band {np.nanmean(rec.coverage_50):.1%}, "
+          f"relative WIS {np.nanmedian(rec.relative_wis):.2f} (median over regions and horizons)")
+
+
+def forecast_store_section(cases: np.ndarray, regions: int, mornings: int = 100) -> None:
+    """The stored path in a temporary SQLite: one morning's forecasts of every region written
+    (``store_forecasts``), then the record of the newest 60 read back and scored
+    (``forecast_record``: the runs of the last 88 days, outcomes from ``read_dense``)."""
+    import tempfile
+    from datetime import UTC, date, datetime, timedelta
+    from pathlib import Path
+
+    from server.indicators.quantile_forecast import QuantileForecast
+    from server.services.database import Database
+    from server.services.forecast_record import (
+        KnownData,
+        store_forecasts,
+    )
+    from server.services.forecast_record import (
+        forecast_record as stored_record,
+    )
+    from server.store import (
+        MeasureRecord,
+        RegionRecord,
+        append_vintage,
+        make_sessionmaker,
+        scratch_engine,
+        upgrade,
+        upsert_measures,
+        upsert_regions,
+    )
+
+    days = cases.shape[1]
+    first_origin = days - 21 - mornings
+    codes = [f"B{i:05d}" for i in range(regions)]
+    day0 = date(2031, 1, 1)
+    with tempfile.TemporaryDirectory() as tmp, scratch_engine(
+        f"sqlite:///{Path(tmp) / 'bench.db'}", prefix="tw_bench"
+    ) as engine:
+        upgrade(engine)
+        db = Database(engine=engine, sessions=make_sessionmaker(engine))
+        with db.transaction() as s:
+            upsert_regions(session=s, records=[
+                RegionRecord(code=c, name=c, level="district", parent=None, population=10_000)
+                for c in codes])
+            upsert_measures(session=s, records=[MeasureRecord(
+                name="hosp_admissions", unit="persons", kind="count", aggregation="sum")])
+            lo = first_origin - 7
+            r, d = np.meshgrid(np.arange(regions), np.arange(lo, days), indexing="ij")
+            append_vintage(session=s, feed="bench", checksum="bench",
+                           received_at=datetime(2032, 1, 1, tzinfo=UTC), rows=pd.DataFrame({
+                               "region": np.asarray(codes)[r.ravel()],
+                               "measure": "hosp_admissions",
+                               "ref_date": [day0 + timedelta(days=int(x)) for x in d.ravel()],
+                               "value": cases[:, lo:].ravel()}))
+        dates = np.arange(np.datetime64(day0, "D"), np.datetime64(day0, "D") + days)
+        writes = []
+        for k in range(mornings):
+            o = first_origin + k
+            known = KnownData(cutoff=datetime(2031, 1, 2, tzinfo=UTC) + timedelta(days=o),
+                              regions=tuple(codes), dates=dates[o - 6: o + 1],
+                              values={"hosp_admissions": cases[:, o - 6: o + 1]})
+            fc = QuantileForecast(
+                target="hosp_admissions", scenario="persistence", regions=tuple(codes),
+                origin=day0 + timedelta(days=o), horizons=FORECAST_HORIZONS,
+                levels=FORECAST_LEVELS, values=poisson_persistence(
+                    cases[:, o - 6: o + 1], horizons=FORECAST_HORIZONS, levels=FORECAST_LEVELS))
+            t0 = time.perf_counter()
+            with db.transaction() as s:
+                store_forecasts(session=s, forecasts=[fc], cutoff=known.cutoff, known=known)
+            writes.append(time.perf_counter() - t0)
+        with db.transaction() as s:
+            took, cpu = timed_cpu(lambda: stored_record(session=s, last=60))
+            one, _ = timed_cpu(lambda: stored_record(session=s, last=60, regions=codes[:1]))
+        print(f"{'forecast store (sqlite)':<24} one morning of {regions:,} regions: median "
+              f"{np.median(writes):.3f} s to write; record of the newest 60 for all regions "
+              f"{took:.3f} s ({cpu:.3f} s cpu), for one region {one:.3f} s "
+              f"({mornings} mornings stored)")
 
 
 if __name__ == "__main__":

@@ -36,10 +36,11 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from rules.formatting import number_text, reading_text, value_text, with_unit
+from rules.formatting import level_names, number_text, reading_text, value_text, with_unit
 from rules.levels import (
     REASON_INVALID,
     REASON_MISSING,
+    REASON_NO_BASELINE,
     REASON_NOWCAST,
     REASON_SMALL_COUNT,
     REASON_STALE,
@@ -51,7 +52,7 @@ from rules.ruleset import INSUFFICIENT_DATA
 if TYPE_CHECKING:
     from rules.evaluation import Evaluation
 
-__all__ = ["Explanation", "explain"]
+__all__ = ["Explanation", "explain", "signal_message"]
 
 _REASONS = {
     0: "ok",
@@ -60,6 +61,7 @@ _REASONS = {
     REASON_NOWCAST: "nowcast excluded",
     REASON_SMALL_COUNT: "count below minimum",
     REASON_INVALID: "invalid",
+    REASON_NO_BASELINE: "no baseline",
 }
 
 
@@ -73,6 +75,23 @@ class Explanation:
 
 def _num(x: float) -> float | None:
     return None if x is None or not math.isfinite(float(x)) else float(x)
+
+
+def signal_message(ev: Evaluation, signal: int, r: int, d: int) -> str:
+    """Prepare signal ``signal``'s message for region ``r`` on day ``d``, with ``{reading}``
+    replaced by its indicator's value and interval that day ("9 (6–14) days";
+    :func:`rules.formatting.reading_text`)."""
+    sig = ev.ruleset.prepare[signal]
+    message = sig.message
+    if "{reading}" not in message:
+        return message
+    series, spec = ev.indicators[sig.indicator], ev.ruleset.indicator(sig.indicator)
+
+    def at(values: Any) -> float | None:
+        return None if values is None else _num(values[r, d])
+
+    text = reading_text(spec, at(series.estimate), at(series.lower), at(series.upper))
+    return message.replace("{reading}", text)
 
 
 def _value_text(spec: IndicatorSpec, item: dict[str, Any]) -> str:
@@ -146,6 +165,8 @@ def _unknown_text(ev: Evaluation, item: dict[str, Any]) -> str:
         return f"{label} still incomplete (nowcasts not used)"
     if item["status"] == "invalid":
         return f"{label} data invalid (a stored value cannot be used)"
+    if item["status"] == "no baseline":
+        return f"{label} has no baseline yet (not enough past seasons)"
     return f"{label} data {item['status']}"
 
 
@@ -162,6 +183,8 @@ def _threshold(ev: Evaluation, item: dict[str, Any], kind: str, tier: int) -> fl
 
 def _thr_text(ev: Evaluation, item: dict[str, Any], thr: float) -> str:
     spec = ev.ruleset.indicator(item["indicator"])
+    if level_names(spec) is not None and float(thr).is_integer():
+        return number_text(spec, thr)  # "medium (2)"
     return f"{thr:g}" + ("%" if spec.unit.startswith("%") else "")
 
 
@@ -375,7 +398,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
             "id": s.id,
             "active": bool(ev.prepare[i, r, d]),
             "run": int(ev.prepare_run[i, r, d]),
-            "message": s.message,
+            "message": signal_message(ev, i, r, d),
         }
         for i, s in enumerate(rs.prepare)
     ]

@@ -6,25 +6,39 @@ review cards all write values through these functions, so the same number reads 
 everywhere: ``value_text`` gives "162 per 100 000" (a unit starting with "%" is written without a
 space: "8.1%"), ``interval_text`` "148–177", and ``reading_text`` "162 (148–177) per 100 000" or
 "8.1% (6.0–10.9)", the form the sentences use for a criterion compared on its interval bounds.
+An indicator of ordered levels (the seasonal intensity) reads by level name: "medium (2)".
 """
 
 from __future__ import annotations
 
 from rules.model import IndicatorSpec
 
-__all__ = ["MISSING", "NO_INTERVAL", "interval_text", "number_text", "reading_text",
-           "value_text", "with_unit"]
+__all__ = ["INTENSITY_LEVEL_NAMES", "MISSING", "NO_INTERVAL", "interval_text", "level_names",
+           "number_text", "reading_text", "value_text", "with_unit"]
 
 #: A value that is not known (None or not finite upstream).
 MISSING = "n/a"
 #: An interval with a missing bound.
 NO_INTERVAL = "—"
+#: Names of the values 0..4 of a seasonal intensity indicator (moving epidemic method).
+INTENSITY_LEVEL_NAMES = ("below threshold", "low", "medium", "high", "very high")
+_LEVEL_KINDS = {"seasonal_intensity": INTENSITY_LEVEL_NAMES}
+
+
+def level_names(spec: IndicatorSpec) -> tuple[str, ...] | None:
+    """Names of the values of an indicator whose values are ordered levels (the seasonal
+    intensity, by its name or its ``kind`` parameter); None for an ordinary number."""
+    kind = spec.params.get("kind", spec.name)
+    return _LEVEL_KINDS.get(kind) if isinstance(kind, str) else None
 
 
 def number_text(spec: IndicatorSpec, value: float | None) -> str:
     """``value`` with the spec's decimals, no unit; :data:`MISSING` for None."""
     if value is None:
         return MISSING
+    names = level_names(spec)
+    if names is not None and float(value).is_integer() and 0 <= value < len(names):
+        return f"{names[int(value)]} ({int(value)})"  # "medium (2)"
     return f"{value:.{spec.decimals}f}"
 
 

@@ -31,6 +31,7 @@ from rules.series import IndicatorSeries
 __all__ = [
     "REASON_INVALID",
     "REASON_MISSING",
+    "REASON_NO_BASELINE",
     "REASON_NOWCAST",
     "REASON_OK",
     "REASON_SMALL_COUNT",
@@ -44,6 +45,7 @@ __all__ = [
 
 REASON_OK, REASON_MISSING, REASON_STALE, REASON_NOWCAST, REASON_SMALL_COUNT = 0, 1, 2, 3, 4
 REASON_INVALID = 5  # the value rests on input data found unusable (IndicatorSeries.invalid)
+REASON_NO_BASELINE = 6  # no value: its baseline is too short (IndicatorSeries.no_baseline)
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -254,9 +256,12 @@ def compute_levels(
         e, x, ina = _variant(th, enter_v, hold_v, count)
         invalid = (series.invalid if series.invalid is not None
                    else np.zeros(series.shape, dtype=bool))
+        no_base = (series.no_baseline & missing if series.no_baseline is not None
+                   else np.zeros(series.shape, dtype=bool))
         code = np.select(  # the first that applies (invalid values are also NaN and stale)
-            [invalid, missing, stale, excluded, ina],
-            [REASON_INVALID, REASON_MISSING, REASON_STALE, REASON_NOWCAST, REASON_SMALL_COUNT],
+            [invalid, no_base, missing, stale, excluded, ina],
+            [REASON_INVALID, REASON_NO_BASELINE, REASON_MISSING, REASON_STALE, REASON_NOWCAST,
+             REASON_SMALL_COUNT],
             REASON_OK,
         ).astype(np.int8)
         known[:, c, :] = (~missing & ~stale & ~excluded).T

@@ -25,6 +25,7 @@ from rules.model import (
     IndicatorSpec,
     Override,
     PrepareSignal,
+    Scenario,
     Thresholds,
     Tier,
     TierText,
@@ -45,6 +46,7 @@ _TOP_OPTIONAL = (
     "freshness",
     "overrides",
     "prepare",
+    "scenarios",
 )
 _THRESHOLD_KEYS = ("enter", "exit", "strict", "enter_strict", "exit_strict")
 
@@ -113,6 +115,7 @@ def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Rulese
         r, top, "overrides", lambda r_, n, p: _read_override(r_, n, p, directions)
     )
     prepare = _read_list(r, top, "prepare", _read_signal)
+    scenarios = _read_list(r, top, "scenarios", _read_scenario)
     combination = (
         _read_combination(r, top["combination"]) if "combination" in top else Combination()
     )
@@ -128,6 +131,7 @@ def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Rulese
         conditions,
         overrides,
         prepare,
+        scenarios,
         combination,
         timing,
     )
@@ -149,6 +153,7 @@ def _read_root(r: NodeReader, root: yaml.Node, text: str, source: str) -> Rulese
         timing=timing,
         overrides=overrides,
         prepare=prepare,
+        scenarios=scenarios,
         text=text,
         source=source,
     )
@@ -507,6 +512,37 @@ def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | 
         return None
     kwargs["op"], kwargs["value"] = comp
     return r.build(node, path, PrepareSignal, **kwargs)
+
+
+def _read_scenario(r: NodeReader, node: yaml.Node, path: Path) -> Scenario | None:
+    m = r.mapping(node, path, required=("name", "label"),
+                  optional=("growth", "change", "within_days"))
+    if m is None or "name" not in m or "label" not in m:
+        return None
+    kwargs: dict[str, Any] = {"name": r.text(m["name"], path + ("name",)),
+                              "label": r.text(m["label"], path + ("label",))}
+    if ("growth" in m) == ("change" in m):
+        r.error(node, path, "a scenario needs exactly one of 'growth' (current, or a daily rate "
+                "reached within_days) and 'change' (a factor reached within_days)")
+        return None
+    growth = m.get("growth")
+    if isinstance(growth, yaml.ScalarNode) and growth.value == "current":
+        kwargs["kind"] = "trend"
+        if "within_days" in m:
+            r.error(m["within_days"], path + ("within_days",),
+                    "'growth: current' continues the trend; within_days does not apply")
+            return None
+    else:
+        key = "growth" if "growth" in m else "change"
+        kwargs["kind"] = "growth_to" if key == "growth" else "change"
+        kwargs["value"] = _num(r, m[key], path + (key,))
+        if "within_days" not in m:
+            r.error(node, path, f"'{key}' needs 'within_days' (days until it is reached)")
+            return None
+        kwargs["within_days"] = r.integer(m["within_days"], path + ("within_days",), minimum=1)
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, Scenario, **kwargs)
 
 
 def _read_combination(r: NodeReader, node: yaml.Node) -> Combination | None:

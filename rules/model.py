@@ -30,6 +30,7 @@ __all__ = [
     "IndicatorSpec",
     "Override",
     "PrepareSignal",
+    "Scenario",
     "Thresholds",
     "Tier",
     "TierText",
@@ -51,7 +52,15 @@ _KNOWN_PARAMS: dict[str, tuple[type, float]] = {
     "serial_interval_sd": (float, 0.0),
     "samples": (int, 1),
     "per": (float, 0.0),
+    "start_week": (int, 1),  # seasonal_intensity (ranges checked by the services layer)
+    "end_week": (int, 1),
+    "seasons": (int, 1),
+    "min_seasons": (int, 1),
+    "horizon": (int, 1),
+    "share": (float, 0.0),
 }
+#: Longest forecast horizon, in days, a projected indicator may ask for.
+MAX_HORIZON = 21
 
 
 def _finite(path: tuple[str | int, ...], value: float) -> None:
@@ -465,3 +474,44 @@ class PrepareSignal:
         _nonneg_int(("clear_after_days",), self.clear_after_days, 1)
         if self.below_tier is not None:
             _nonneg_int(("below_tier",), self.below_tier, 1)
+
+
+ScenarioKind = Literal["trend", "growth_to", "change"]
+
+
+@dataclass(frozen=True, kw_only=True)
+class Scenario:
+    """A named future for hospital forecasts, as a path of the admissions' daily growth rate.
+
+    ``trend`` (YAML ``growth: current``): the current rate continues. ``growth_to`` (``growth:
+    v`` with ``within_days: D``): the rate moves linearly from the current one to v per day over
+    D days, then stays. ``change`` (``change: v`` with ``within_days: D``): admissions reach v
+    times today's level by day D, then hold. ``label`` completes a sentence ("if the trend
+    continues").
+    """
+
+    name: str
+    label: str
+    kind: ScenarioKind = "trend"
+    value: float = 0.0
+    within_days: int = 1
+
+    def __post_init__(self) -> None:
+        _identifier(("name",), self.name)
+        if not self.label.strip():
+            raise FieldError(("label",), "a scenario needs a non-empty label")
+        if self.kind not in ("trend", "growth_to", "change"):
+            raise FieldError(("kind",), f"expected trend, growth_to or change, got {self.kind!r}")
+        _nonneg_int(("within_days",), self.within_days, 1)
+        if self.within_days > MAX_HORIZON:
+            raise FieldError(("within_days",), f"{self.within_days} is beyond the longest "
+                             f"horizon of {MAX_HORIZON} days")
+        if self.kind == "growth_to":
+            _finite(("growth",), self.value)
+            if not -0.5 <= self.value <= 0.5:
+                raise FieldError(("growth",), f"{self.value} per day is outside -0.5..0.5 "
+                                 "(a daily growth rate, not a percentage)")
+        if self.kind == "change":
+            _finite(("change",), self.value)
+            if self.value <= 0:
+                raise FieldError(("change",), f"expected a factor above 0, got {self.value}")

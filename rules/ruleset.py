@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 
 from rules.errors import FieldError
 from rules.model import (
+    MAX_HORIZON,
     Combination,
     Condition,
     Criterion,
@@ -19,6 +20,7 @@ from rules.model import (
     IndicatorSpec,
     Override,
     PrepareSignal,
+    Scenario,
     Thresholds,
     Tier,
     Timing,
@@ -52,6 +54,7 @@ class Ruleset:
     timing: Timing = field(default_factory=Timing)
     overrides: tuple[Override, ...] = ()
     prepare: tuple[PrepareSignal, ...] = ()
+    scenarios: tuple[Scenario, ...] = ()
     text: str = ""
     source: str = "<string>"
     sha256: str = field(init=False)
@@ -118,7 +121,31 @@ class Ruleset:
                     ("prepare", i, "below_tier"), f"{sig.below_tier} is above the top tier {n}"
                 )
         _unique_seq([s.id for s in self.prepare], "prepare")
+        self._check_scenarios()
         _unique_seq([g.id for g in self.gates], "gates")
+
+    def _check_scenarios(self) -> None:
+        names = [s.name for s in self.scenarios]
+        for i, name in enumerate(names):
+            if name in names[:i]:
+                raise FieldError(("scenarios", i, "name"), f"scenario {name!r} is declared twice")
+        for ind in self.indicators:
+            wanted = ind.params.get("scenario")
+            if wanted is not None and wanted not in names:
+                known = ", ".join(names) or "none declared"
+                raise FieldError(("indicators", ind.name, "params", "scenario"),
+                                 f"{wanted!r} is not a declared scenario ({known})")
+            horizon = ind.params.get("horizon")
+            if isinstance(horizon, int) and horizon > MAX_HORIZON:
+                raise FieldError(("indicators", ind.name, "params", "horizon"),
+                                 f"{horizon} days is beyond the longest horizon of {MAX_HORIZON}")
+
+    def scenario(self, name: str) -> Scenario:
+        """The declared scenario called ``name``."""
+        for sc in self.scenarios:
+            if sc.name == name:
+                return sc
+        raise KeyError(name)
 
     def _check_combination(self, ids: list[str], n: int) -> None:
         comb = self.combination

@@ -8,7 +8,9 @@ indicator's ``max_age_days`` as stale and lets explanations say how old they are
 flags values that are nowcasts of recent days; ``nowcast_days`` (how many days of the value's
 window are still incomplete) and ``nowcast_basis`` (per region, whose reports the delays rest on)
 let explanations say so. ``invalid`` flags values that rest on input the caller found unusable (a
-stored count that is not a whole number, say): unknown, explained as ``invalid``.
+stored count that is not a whole number, say): unknown, explained as ``invalid``. ``no_baseline``
+flags values missing because the indicator's baseline does not exist yet (fewer past seasons
+than a seasonal intensity needs): unknown, explained as ``no baseline``.
 """
 
 from __future__ import annotations
@@ -50,6 +52,8 @@ class IndicatorSeries:
         Per region, what the reporting delays rest on ("pooled over North").
     invalid : bool array, (regions, days), optional
         True where the value rests on unusable input data (unknown to the engine).
+    no_baseline : bool array, (regions, days), optional
+        True where no value exists because its baseline is too short (unknown to the engine).
     """
 
     estimate: FloatArray
@@ -62,6 +66,7 @@ class IndicatorSeries:
     nowcast_days: FloatArray | None = None
     nowcast_basis: tuple[str, ...] | None = None
     invalid: BoolArray | None = None
+    no_baseline: BoolArray | None = None
 
     def __post_init__(self) -> None:
         est = _float2d("estimate", self.estimate)
@@ -70,7 +75,7 @@ class IndicatorSeries:
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, _float2d(name, value, est.shape))
-        for name in ("stale", "nowcast", "invalid"):
+        for name in ("stale", "nowcast", "invalid", "no_baseline"):
             value = getattr(self, name)
             if value is not None:
                 arr = np.asarray(value)

@@ -91,4 +91,9 @@ def summary(ruleset: Ruleset) -> str:
             f"Prepare {s.id}: {s.indicator} {s.statistic} {s.op} {s.value:g} for {s.for_count} "
             f"{s.count_by}, clears after {s.clear_after_days} quiet days"
         )
+    for sc in rs.scenarios:
+        path = {"trend": "the current growth rate continues",
+                "growth_to": f"growth rate {sc.value:g}/day within {sc.within_days} days",
+                "change": f"admissions x{sc.value:g} within {sc.within_days} days"}[sc.kind]
+        out.append(f"Scenario {sc.name} ({sc.label}): {path}")
     return "\n".join(out) + "\n"

@@ -13,12 +13,14 @@ from datetime import date
 
 import plotly.graph_objects as go
 
+from server.services.capacity_pages import AreaCapacity, Fan
 from server.services.district_indicators import NowcastSeries
 from server.services.dossier import CriterionSeries, DistrictDossier
 from web.palette import INK, OUTLINE, tier_colours
 
 __all__ = [
-    "criterion_figure", "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
+    "admissions_fan_figure", "capacity_fan_figure", "criterion_figure", "figure_json",
+    "nowcast_figure", "sparkline_points", "timeline_figure",
 ]
 
 _LAYOUT = {
@@ -133,6 +135,58 @@ def nowcast_figure(series: NowcastSeries, label: str = "Cases") -> go.Figure:
         mode="lines+markers", line={"color": "#6f5f9e", "width": 2, "dash": "dash"},
         marker={"size": 5}, name="nowcast (expected final count)"))
     fig.update_layout(title={"text": f"{label}: reported and nowcast", "x": 0}, **_LAYOUT)
+    fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    return fig
+
+
+def _fan_traces(fig: go.Figure, fan: Fan, colour: str = "111,95,158") -> None:
+    """50 % and 90 % predictive bands and the median of one scenario's fan."""
+    dates = [d.isoformat() for d in fan.dates]
+
+    def y(values: Sequence[float | None]) -> list[float | None]:
+        return _nan([math.nan if v is None else v for v in values])
+
+    for lo, hi, alpha, name in ((fan.lower90, fan.upper90, 0.14, "90% band"),
+                                (fan.lower50, fan.upper50, 0.30, "50% band")):
+        fig.add_trace(go.Scatter(x=dates, y=y(hi), mode="lines", line={"width": 0},
+                                 showlegend=False, hoverinfo="skip"))
+        fig.add_trace(go.Scatter(x=dates, y=y(lo), mode="lines", fill="tonexty",
+                                 fillcolor=f"rgba({colour},{alpha})", line={"width": 0},
+                                 name=name))
+    fig.add_trace(go.Scatter(x=dates, y=y(fan.median), mode="lines",
+                             line={"color": f"rgb({colour})", "width": 2, "dash": "dash"},
+                             name="median"))
+
+
+def capacity_fan_figure(area: AreaCapacity, fan: Fan) -> go.Figure:
+    """ICU beds in use (line), the scenario's forecast fan, staffed beds and the configured
+    share of them (held at the last day's value over the forecast)."""
+    fig = go.Figure()
+    past = [d.isoformat() for d in area.dates]
+    future = [d.isoformat() for d in fan.dates]
+    fig.add_trace(go.Scatter(x=past, y=_nan([math.nan if v is None else v
+                                             for v in area.occupied]),
+                             mode="lines", line={"color": INK, "width": 2}, name="beds in use"))
+    _fan_traces(fig, fan)
+    staffed = [math.nan if v is None else v for v in area.staffed]
+    now = area.staffed_now if area.staffed_now is not None else math.nan
+    fig.add_trace(go.Scatter(x=past + future, y=_nan(staffed + [now] * len(future)),
+                             mode="lines", line={"color": OUTLINE, "width": 1.5},
+                             name="staffed beds"))
+    fig.add_trace(go.Scatter(
+        x=past + future, y=_nan([v * area.share / 100 for v in staffed + [now] * len(future)]),
+        mode="lines", line={"color": "#a23b2a", "width": 1.5, "dash": "dot"},
+        name=f"{area.share:g}% of staffed beds"))
+    fig.update_layout(title={"text": fan.label, "x": 0}, **_LAYOUT)
+    fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    return fig
+
+
+def admissions_fan_figure(fan: Fan) -> go.Figure:
+    """One scenario's forecast of daily hospital admissions: median, 50 % and 90 % bands."""
+    fig = go.Figure()
+    _fan_traces(fig, fan)
+    fig.update_layout(title={"text": f"Hospital admissions {fan.label}", "x": 0}, **_LAYOUT)
     fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
     return fig
 

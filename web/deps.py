@@ -1,9 +1,10 @@
 """Request dependencies: the session, settings, templates, the signed-in user and CSRF checks.
 
-``StaffDep`` admits any signed-in staff member; ``require("approver")`` and friends admit that
-role and the roles above it. A request without a valid session is sent to the login page
-(:class:`LoginRequired`); a signed-in user without the role gets 403. Every POST of a staff form
-goes through :func:`csrf_protected`.
+``StaffDep`` admits any signed-in staff member; ``allowed("decide")`` and the named dependencies
+below admit those whose role may do that action (``server.services.users.PERMISSIONS``, the one
+table of who may do what; templates ask ``user.may(action)``). A request without a valid session
+is sent to the login page (:class:`LoginRequired`); a signed-in user without the role gets 403.
+Every POST of a staff form goes through :func:`csrf_protected`.
 
 Integer parameters of routes use the bounded types below (:data:`RowId`, :data:`BigRowId`,
 :data:`PageNumber`): a value the database column cannot hold is a 422 like any other bad
@@ -22,9 +23,10 @@ from pydantic import Field
 from sqlalchemy.orm import Session
 
 from server.config import Settings
-from server.services.auth import SessionSigner, StaffUser, has_role, session_user
+from server.services.auth import SessionSigner, StaffUser, session_user
 from server.services.database import Database
 from server.services.notify import NotifyConfig
+from server.services.users import PERMISSIONS
 
 SESSION_COOKIE = "tw_session"
 
@@ -98,20 +100,25 @@ def current_user(request: Request, session: SessionDep) -> StaffUser:
 StaffDep = Annotated[StaffUser, Depends(current_user)]
 
 
-def require(role: str) -> Callable[[StaffUser], StaffUser]:
-    """A dependency admitting ``role`` and above; others get 403."""
+def allowed(action: str) -> Callable[[StaffUser], StaffUser]:
+    """A dependency admitting staff who may do ``action``; others get 403."""
+    needed = PERMISSIONS[action]  # an unknown action fails at import, not on a request
 
     def check(user: StaffDep) -> StaffUser:
-        if not has_role(user.role, role):
-            raise HTTPException(status_code=403, detail=f"this page needs the {role} role")
+        if not user.may(action):
+            raise HTTPException(status_code=403, detail=f"this page needs the {needed} role")
         return user
 
     return check
 
 
-AnalystDep = Annotated[StaffUser, Depends(require("analyst"))]
-ApproverDep = Annotated[StaffUser, Depends(require("approver"))]
-AdminDep = Annotated[StaffUser, Depends(require("admin"))]
+UploadDep = Annotated[StaffUser, Depends(allowed("upload"))]
+DraftPolicyDep = Annotated[StaffUser, Depends(allowed("draft_policy"))]
+BacktestDep = Annotated[StaffUser, Depends(allowed("backtest"))]
+DecideDep = Annotated[StaffUser, Depends(allowed("decide"))]
+PublishDep = Annotated[StaffUser, Depends(allowed("publish"))]
+ActivatePolicyDep = Annotated[StaffUser, Depends(allowed("activate_policy"))]
+ManageUsersDep = Annotated[StaffUser, Depends(allowed("manage_users"))]
 
 
 async def csrf_protected(request: Request, user: StaffDep) -> None:

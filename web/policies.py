@@ -23,9 +23,10 @@ from server.services.policies import (
 from web.backtests import OUTLINE, tier_strip
 from web.deps import (
     INT32_MAX,
-    AdminDep,
-    AnalystDep,
+    ActivatePolicyDep,
+    BacktestDep,
     CsrfDep,
+    DraftPolicyDep,
     NotifyDep,
     RowId,
     SessionDep,
@@ -81,7 +82,7 @@ def diff(
 
 @router.post("/policies/draft", response_class=HTMLResponse)
 def draft(
-    request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep,
+    request: Request, session: SessionDep, user: DraftPolicyDep, _csrf: CsrfDep,
     file: UploadFile | None = None, text: Annotated[str, Form()] = "",
     store: Annotated[str, Form()] = "",
 ) -> Response:
@@ -113,7 +114,7 @@ def draft(
 
 @router.post("/policies/{ruleset_id}/activate")
 def activate(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, notify: NotifyDep,
+    session: SessionDep, user: ActivatePolicyDep, _csrf: CsrfDep, notify: NotifyDep,
     settings: SettingsDep, ruleset_id: RowId,
 ) -> RedirectResponse:
     """Make a version active and evaluate it (admins only)."""
@@ -136,7 +137,7 @@ def _jobs(request: Request) -> BacktestJobs:
 
 @router.post("/policies/{ruleset_id}/backtest")
 def backtest(
-    request: Request, session: SessionDep, user: AnalystDep, _csrf: CsrfDep, ruleset_id: RowId,
+    request: Request, session: SessionDep, user: BacktestDep, _csrf: CsrfDep, ruleset_id: RowId,
     compare: Annotated[str, Form()] = "", as_known: Annotated[str, Form()] = "",
 ) -> RedirectResponse:
     """Start a background backtest of a version (optionally beside another, e.g. the active)."""
@@ -150,7 +151,7 @@ def backtest(
 
 @router.get("/policies/backtests/{job_id}", response_class=HTMLResponse)
 def backtest_job(
-    request: Request, session: SessionDep, user: AnalystDep, job_id: str
+    request: Request, session: SessionDep, user: BacktestDep, job_id: str
 ) -> Response:
     """A backtest's progress (the page reloads itself every 2 s while it runs), then its result.
 

@@ -26,10 +26,11 @@ from server.services.review import (
 from web.deps import (
     INT32_MAX,
     INT64_MAX,
-    ApproverDep,
     BigRowId,
     CsrfDep,
+    DecideDep,
     NotifyDep,
+    PublishDep,
     SessionDep,
     SettingsDep,
     StaffDep,
@@ -66,7 +67,7 @@ def _seen(field: str, value: str) -> int | None:
 
 @router.post("/review/{assessment_id}", response_model=None)
 def decide_one(
-    request: Request, session: SessionDep, user: ApproverDep, _csrf: CsrfDep,
+    request: Request, session: SessionDep, user: DecideDep, _csrf: CsrfDep,
     assessment_id: BigRowId, action: Annotated[str, Form()],
     official_tier: Annotated[str, Form()], official_decision: Annotated[str, Form()],
     settings: SettingsDep, reason: Annotated[str, Form()] = "",
@@ -107,7 +108,7 @@ def decide_one(
 
 @router.post("/publish")
 def publish_all(
-    session: SessionDep, user: ApproverDep, _csrf: CsrfDep, notify: NotifyDep,
+    session: SessionDep, user: PublishDep, _csrf: CsrfDep, notify: NotifyDep,
     settings: SettingsDep,
 ) -> RedirectResponse:
     """Publish every unpublished decision to the public view ("nothing" when there is none)."""
@@ -139,7 +140,7 @@ def csrf_header(
 
 @api_router.post("/api/review/{assessment_id}/decision", status_code=201, response_model=None)
 def decide_api(
-    session: SessionDep, user: ApproverDep, _csrf: Annotated[None, Depends(csrf_header)],
+    session: SessionDep, user: DecideDep, _csrf: Annotated[None, Depends(csrf_header)],
     assessment_id: BigRowId, body: DecisionIn, settings: SettingsDep,
 ) -> Response:
     """Confirm or override one pending change; 409 (with the reason sent) when the district was

@@ -10,10 +10,18 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 from fastapi.templating import Jinja2Templates
 
+from server.services.capacity_pages import area_capacity, district_forecast
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.morning import MorningOverview, morning_overview
-from web.charts import criterion_figure, figure_json, nowcast_figure, timeline_figure
+from web.charts import (
+    admissions_fan_figure,
+    capacity_fan_figure,
+    criterion_figure,
+    figure_json,
+    nowcast_figure,
+    timeline_figure,
+)
 from web.deps import PageNumber, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
@@ -89,9 +97,24 @@ def district(
     if now is None and dossier.recommended:
         now = dossier.recommended[-1]
     charts = [figure_json(criterion_figure(c, dossier.tier_names, now)) for c in dossier.criteria]
+    forecast = district_forecast(session=session, code=code)
     return render(request, "staff/district.html", {
         "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
         "nowcast": figure_json(nowcast_figure(dossier.nowcast)) if dossier.nowcast else None,
+        "forecast": forecast,
+        "forecast_charts": [figure_json(admissions_fan_figure(f)) for f in forecast.fans]
+        if forecast else [],
+    })
+
+
+@router.get("/areas/{code}/capacity", response_class=HTMLResponse)
+def capacity(request: Request, code: str, session: SessionDep, user: StaffDep) -> Response:
+    """ICU beds in use against staffed beds, each scenario's forecast fan and the days until
+    the configured share of staffed beds."""
+    area = area_capacity(session=session, code=code)
+    return render(request, "staff/capacity.html", {
+        "a": area, "charts": [figure_json(capacity_fan_figure(area, f)) for f in area.fans],
+        "record": area.record,
     })
 
 

@@ -19,7 +19,6 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 from starlette.types import Message
 
-from server.services.auth import has_role
 from server.services.feeds import (
     FeedFileError,
     UnconfirmedRevisionsError,
@@ -28,8 +27,9 @@ from server.services.feeds import (
     load_catalogue,
     upload_payload,
 )
+from server.services.users import PERMISSIONS
 from web import held_uploads
-from web.deps import AnalystDep, CsrfDep, SessionDep, SettingsDep, StaffDep
+from web.deps import CsrfDep, SessionDep, SettingsDep, StaffDep, UploadDep
 from web.templating import render
 
 
@@ -90,7 +90,6 @@ class CappedUploadRoute(APIRoute):
 router = APIRouter(tags=["staff"], route_class=CappedUploadRoute)
 
 
-UPLOAD_ROLE = "analyst"
 
 
 @router.get("/feeds", response_class=HTMLResponse)
@@ -110,14 +109,14 @@ def feeds(
     return render(
         request, "staff/feeds.html",
         {"page": page, "feed_names": sorted(catalogue.feeds), "selected": feed,
-         "upload_feed": chosen, "can_upload": has_role(user.role, UPLOAD_ROLE),
-         "upload_role": UPLOAD_ROLE},
+         "upload_feed": chosen, "can_upload": user.may("upload"),
+         "upload_role": PERMISSIONS["upload"]},
     )
 
 
 @router.post("/feeds/upload", response_class=HTMLResponse)
 def upload(
-    request: Request, settings: SettingsDep, user: AnalystDep, _csrf: CsrfDep,
+    request: Request, settings: SettingsDep, user: UploadDep, _csrf: CsrfDep,
     feed: Annotated[str, Form()],
     file: Annotated[UploadFile | None, File()] = None, dry_run: Annotated[bool, Form()] = False,
     held: Annotated[str, Form()] = "", confirmed: Annotated[str, Form()] = "",

@@ -22,7 +22,7 @@ from server.services.auth import (
     set_active,
     set_password,
 )
-from web.deps import AdminDep, CsrfDep, SessionDep
+from web.deps import CsrfDep, ManageUsersDep, SessionDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -43,7 +43,7 @@ def _done(what: str, name: str, **extra: str) -> RedirectResponse:
 
 @router.get("/users", response_class=HTMLResponse)
 def users(
-    request: Request, session: SessionDep, user: AdminDep, done: str = "", name: str = "",
+    request: Request, session: SessionDep, user: ManageUsersDep, done: str = "", name: str = "",
     role: str = "",
 ) -> Response:
     """Every staff account and its role; after a change, a notice saying what was done."""
@@ -57,7 +57,7 @@ def users(
 
 @router.post("/users")
 def add(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: Annotated[str, Form()],
+    session: SessionDep, user: ManageUsersDep, _csrf: CsrfDep, name: Annotated[str, Form()],
     role: Annotated[str, Form()], password: Annotated[str, Form()],
 ) -> RedirectResponse:
     account = add_account(session=session, name=name, role=role, password=password,
@@ -67,7 +67,8 @@ def add(
 
 @router.post("/users/{name}/role")
 def role(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: str, role: Annotated[str, Form()]
+    session: SessionDep, user: ManageUsersDep, _csrf: CsrfDep, name: str,
+    role: Annotated[str, Form()],
 ) -> RedirectResponse:
     change_role(session=session, name=name, role=role, actor=user.name)
     return _done("role", name, role=role)
@@ -75,7 +76,7 @@ def role(
 
 @router.post("/users/{name}/active")
 def active(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: str,
+    session: SessionDep, user: ManageUsersDep, _csrf: CsrfDep, name: str,
     active: Annotated[str, Form()],
 ) -> RedirectResponse:
     set_active(session=session, name=name, active=active == "yes", actor=user.name)
@@ -84,7 +85,7 @@ def active(
 
 @router.post("/users/{name}/password")
 def password(
-    session: SessionDep, user: AdminDep, _csrf: CsrfDep, name: str,
+    session: SessionDep, user: ManageUsersDep, _csrf: CsrfDep, name: str,
     password: Annotated[str, Form()],
 ) -> RedirectResponse:
     """Set a new password (an admin resetting a forgotten one); the user signs in again."""

@@ -25,6 +25,7 @@ class Kind(StrEnum):
     icu_projection = "icu-projection"
     curve_fit = "curve-fit"
     nowcast = "nowcast"
+    seasonal_intensity = "seasonal-intensity"
 
 
 HELP = """Compute one indicator for a daily CSV file.
@@ -55,6 +56,9 @@ curve-fit: cases -> cumulative, fitted_cumulative, fitted_daily,
   projected_cumulative, projected_lower, projected_upper
 nowcast: d0, d1, ..., dD -> nowcast, nowcast_lower, nowcast_upper,
   known, reported_share
+seasonal-intensity: cases -> weekly_value, epidemic_threshold,
+  medium_threshold, high_threshold, very_high_threshold, level,
+  seasons, not_enough_seasons (true/false)
 
 \b
 rt: Cori et al. (2013) posterior over --window days (7), dated on the
@@ -97,6 +101,16 @@ nowcast: d0..dD hold the cumulative count of each date known d days
   counts first reported at each delay); chain-ladder estimate of the
   final count with its interval, the latest known count and the share
   of the final count already reported.
+seasonal-intensity: moving epidemic method (Vega et al. 2013, 2015).
+  Daily counts are summed into ISO weeks (a week with a missing day
+  is missing), each week written on its Sunday; with --weekly each row
+  is one ISO week's count. --population gives rates per 100 000.
+  Seasons run from ISO week --start-week (40) to --end-week (20); a
+  week is judged against the last --seasons (10) seasons ended before
+  it; level 0 below the epidemic threshold, 1 low, 2 medium, 3 high,
+  4 very high; empty with not_enough_seasons true under
+  --min-seasons (3). --interval mean (as published) or point (the mem
+  package's defaults).
 """
 
 
@@ -151,6 +165,14 @@ def estimate(
     delay_window: Annotated[
         int | None, typer.Option(help="nowcast: recent dates used for the delays.")
     ] = None,
+    weekly: Annotated[bool, typer.Option(help="seasonal-intensity: rows are weeks.")] = False,
+    start_week: Annotated[int, typer.Option(help="seasonal-intensity: first ISO week.")] = 40,
+    end_week: Annotated[int, typer.Option(help="seasonal-intensity: last ISO week.")] = 20,
+    seasons: Annotated[int, typer.Option(help="seasonal-intensity: past seasons pooled.")] = 10,
+    min_seasons: Annotated[
+        int, typer.Option(help="seasonal-intensity: past seasons needed.")
+    ] = 3,
+    interval: Annotated[str, typer.Option(help="seasonal-intensity: mean or point.")] = "mean",
 ) -> None:
     options = EstimateOptions(
         window=window, level=level, max_missing=max_missing, si_mean=si_mean, si_sd=si_sd,
@@ -161,7 +183,8 @@ def estimate(
         min_samples=min_samples, horizon=horizon, growth_window=growth_window,
         threshold=threshold, los_median=los_median, los_quartiles=(los_q1, los_q3), model=model,
         n_boot=n_boot, seed=seed, increments=increments, delay_window=delay_window,
-        overdispersion=overdispersion.lower(),
+        overdispersion=overdispersion.lower(), weekly=weekly, start_week=start_week,
+        end_week=end_week, seasons=seasons, min_seasons=min_seasons, interval=interval.lower(),
     )
     table = run_estimate(kind.value, input, options)
     if output == "-":

@@ -113,6 +113,12 @@ def backtest_command(
                      help="Score each past morning's nowcast of the last 7 days against the "
                      "count known four weeks later."),
     ] = True,
+    forecasts: Annotated[
+        bool,
+        typer.Option("--forecast-record/--no-forecast-record",
+                     help="With --as-known: make each past morning's forecasts from the data "
+                     "known that morning and score them against the outcomes known now."),
+    ] = True,
 ) -> None:
     """Replay a ruleset over the stored history and summarise it: tier changes per region per
     year, days in each tier, prepare signals and their lead before the next escalation."""
@@ -130,6 +136,7 @@ def backtest_command(
     db = Database.from_settings(settings)
     results = []
     scores = []
+    record: list = []  # type: ignore[type-arg]
     try:
         db.check()
         for rs in rulesets:
@@ -147,6 +154,16 @@ def backtest_command(
         if nowcast:
             with db.transaction() as session:
                 scores = nowcast_accuracy_report(session=session, time_zone=settings.zone)
+        if forecasts and as_known:
+            from server.services.forecast_record import (
+                DEFAULT_FORECASTER,
+                forecast_record_as_known,
+            )
+
+            with db.transaction() as session:
+                record = forecast_record_as_known(
+                    session=session, forecaster=DEFAULT_FORECASTER, time_zone=settings.zone,
+                    start=start, end=end)
     finally:
         db.dispose()
     first_result = results[0]
@@ -160,6 +177,8 @@ def backtest_command(
         say(escape(line))
     for line in _nowcast_lines(scores):
         say(escape(line))
+    for line in _forecast_lines(record):
+        say(escape(line))
     if output is not None:
         for i, r in enumerate(results):
             same = i > 0 and r.ruleset.name == rulesets[0].name
@@ -167,6 +186,8 @@ def backtest_command(
             path = write_timelines(r, output, stem=stem)
             say(f"timelines: {path}")
         _per_region(results, output)
+        if record:
+            say(f"forecast record: {_forecast_csv(record, output)}")
 
 
 def _nowcast_lines(scores: list) -> list[str]:  # type: ignore[type-arg]
@@ -181,6 +202,48 @@ def _nowcast_lines(scores: list) -> list[str]:  # type: ignore[type-arg]
         elif s.mornings:
             out.append(f"    {s.region}: {s.line.split(': ', 1)[1]}")
     return out
+
+
+#: Horizons (days) of the forecast record printed by ``tierwise backtest``.
+SHOWN_HORIZONS = (1, 3, 7, 14, 21)
+
+
+def _forecast_lines(cells: list) -> list[str]:  # type: ignore[type-arg]
+    """The forecast-record section: all regions pooled, per target, scenario and horizon."""
+    pooled = [c for c in cells if c.region is None and c.horizon in SHOWN_HORIZONS]
+    if not pooled:
+        return []
+    out = ["", "Forecast record (each morning's forecasts from the data known that morning, "
+           "against the values known now, the last 7 days left to settle; WIS relative to the "
+           "error of last week's mean; "
+           "every horizon and region in forecast_record.csv with --output):",
+           "  target, scenario, horizon: forecasts, 50 % band, 90 % band, mean WIS, "
+           "relative WIS"]
+    for c in pooled:
+        if c.forecasts == 0:
+            out.append(f"  {c.target}, {c.scenario}, {c.horizon} d: no outcome yet")
+            continue
+        out.append(
+            f"  {c.target}, {c.scenario}, {c.horizon} d: {c.forecasts}, "
+            f"{100 * c.coverage_50:.0f} %, {100 * c.coverage_90:.0f} %, {c.mean_wis:.3g}, "
+            f"{c.relative_wis:.2f}")
+    return out
+
+
+def _forecast_csv(cells: list, output: Path) -> Path:  # type: ignore[type-arg]
+    """Every cell of the forecast record as CSV (``region`` empty: all regions pooled)."""
+    lines = ["target,scenario,region,horizon,forecasts,inside_50,inside_90,coverage_50,"
+             "coverage_90,mean_wis,naive_error,relative_wis"]
+    for c in cells:
+        lines.append(",".join([
+            c.target, c.scenario, c.region or "", str(c.horizon), str(c.forecasts),
+            str(c.inside_50), str(c.inside_90),
+            *("" if x != x else repr(x) for x in (c.coverage_50, c.coverage_90, c.mean_wis,
+                                                  c.naive_error, c.relative_wis)),
+        ]))
+    path = output / "forecast_record.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
 
 
 def _per_region(results: list, output: Path) -> None:  # type: ignore[type-arg]

@@ -49,16 +49,19 @@ from server.services.audit import record
 from server.services.database import Database
 from server.services.errors import ServiceError, UnknownRoleError
 from server.services.users import (
+    PERMISSIONS,
     ROLES,
     add_user,
     find_user,
     hash_password,
+    may,
     name_key,
     verify_password,
 )
 from server.store.models import LoginAttempt, User
 
 __all__ = [
+    "PERMISSIONS",
     "ROLES",
     "AccountError",
     "LoginLimiter",
@@ -74,6 +77,7 @@ __all__ = [
     "has_role",
     "list_accounts",
     "load_user",
+    "may",
     "session_user",
     "set_active",
     "set_password",
@@ -123,6 +127,10 @@ class StaffUser:
     role: str
     active: bool = True
     generation: int = 0
+
+    def may(self, action: str) -> bool:
+        """May this person do ``action`` (a key of ``PERMISSIONS``)? Templates ask this."""
+        return self.active and may(self.role, action)
 
 
 def has_role(role: str, needed: str) -> bool:

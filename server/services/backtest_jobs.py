@@ -42,7 +42,8 @@ from sqlalchemy.orm import Session
 from server.services.backtest import BacktestResult, data_span, run_backtest
 from server.services.database import Database
 from server.services.errors import ServiceError
-from server.services.policies import UnknownPolicyError, parsed
+from server.services.policies import UnknownPolicyError
+from server.services.ruleset_cache import parsed
 from server.store.models import BacktestJob
 from server.store.models import Ruleset as RulesetRow
 

@@ -69,7 +69,9 @@ from server.indicators.serial_interval import gamma_serial_interval
 from server.indicators.wastewater import normalise, to_districts, trend
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
+from server.services.capacity_indicators import days_to_share_series, projected_share_series
 from server.services.errors import ServiceError
+from server.services.seasonal_indicators import seasonal_series
 from server.store import read_dense
 from server.store.models import Catchment, Region
 from server.store.reads import feed_last_dates, read_vintage_rows
@@ -599,6 +601,10 @@ BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {
     # Wastewater trends exist on sample days only: prepare signals count samples, not days.
     "ww_trend": lambda d, _r: _ww_trend(d),
     "gp_aberration": lambda d, _r: carry_forward(_gp(d)),
+    "seasonal_intensity": seasonal_series,  # weekly MEM levels (seasonal_indicators.py)
+    # Projected ICU pressure under the ruleset's scenarios (server/services/capacity_indicators).
+    "icu_share_projected": lambda d, r: carry_forward(projected_share_series(d, r)),
+    "icu_days_to_share": lambda d, r: carry_forward(days_to_share_series(d, r)),
 }
 
 

@@ -27,7 +27,8 @@ from server.services.district_indicators import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.explanations import RevisedSince, explained_day, revised_since
-from server.services.policies import parsed
+from server.services.forecast_record import RecordLine, record_lines
+from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
@@ -118,6 +119,8 @@ class DistrictDossier:
     nowcast: NowcastSeries | None = None
     #: accuracy of the nowcast of the last 7 days over the last NOWCAST_MORNINGS mornings
     nowcast_accuracy: str | None = None
+    #: the forecast record of the district and of its area (staff/_forecast_record.html)
+    forecast_record: tuple[RecordLine, ...] = ()
 
 
 def _region(session: Session, code: str) -> tuple[Region, str | None]:
@@ -224,7 +227,16 @@ def district_dossier(
         sentence_day=rows[-1].ref_date if rows else None,
         nowcast=district_nowcast(session=session, code=code, end=last, as_of=cutoff),
         nowcast_accuracy=_nowcast_line(session, code),
+        forecast_record=_forecast_record(session, region),
     )
+
+
+def _forecast_record(session: Session, region: Region) -> tuple[RecordLine, ...]:
+    """The record sentences of the district's own forecasts and of its area's (ICU)."""
+    lines = record_lines(session=session, region=region.code)
+    if region.parent is not None:
+        lines += record_lines(session=session, region=region.parent.code)
+    return tuple(lines)
 
 
 def _nowcast_line(session: Session, code: str) -> str | None:

@@ -25,6 +25,7 @@ from server.indicators import aberration, curves, growth, hospital, renewal, was
 from server.indicators.nowcast import cumulative_triangle
 from server.indicators.nowcast import nowcast as chain_ladder_nowcast
 from server.indicators.poisson import incidence_rate
+from server.indicators.seasonal import NOT_ENOUGH_SEASONS, seasonal_intensity
 from server.indicators.serial_interval import (
     SerialInterval,
     discrete_serial_interval,
@@ -57,6 +58,7 @@ __all__ = [
     "read_triangle_csv",
     "run_estimate",
     "rt_table",
+    "seasonal_table",
     "serial_interval_from_gamma",
     "wastewater_table",
     "write_estimates",
@@ -64,7 +66,7 @@ __all__ = [
 
 KINDS = (
     "rt", "incidence", "positivity", "aberration", "growth", "wastewater", "icu-projection",
-    "curve-fit", "nowcast",
+    "curve-fit", "nowcast", "seasonal-intensity",
 )
 _MISSING_TOKENS = frozenset({"", "na", "nan", "null"})
 
@@ -553,6 +555,65 @@ def nowcast_table(
     })
 
 
+def seasonal_table(
+    source: DailyTable, *, weekly: bool = False, population: float | None = None,
+    start_week: int = 40, end_week: int = 20, seasons: int = 10, min_seasons: int = 3,
+    interval: str = "mean",
+) -> EstimateTable:
+    """MEM seasonal intensity of ``cases`` (:mod:`server.indicators.seasonal`).
+
+    Daily rows are summed into ISO weeks (a week with a missing day, or cut by an end of the
+    file, is missing) and each week's result is written on its Sunday; with ``weekly`` each row
+    is one ISO week's count (any day of the week names it) and results are written on that row.
+    With ``population`` the weekly values are rates per 100 000. ``level`` is 0 below the
+    epidemic threshold, 1 low, 2 medium, 3 high, 4 very high; empty with
+    ``not_enough_seasons`` true when fewer than ``min_seasons`` past seasons exist.
+    """
+    cases = source.values["cases"]
+    first = source.dates[0]
+    days = len(source.dates)
+    if weekly:
+        present = np.flatnonzero(source.lines > 0)
+        monday = np.array([(source.dates[i] - dt.timedelta(days=source.dates[i].weekday()))
+                           for i in present], dtype="datetime64[D]")
+        for a, b in zip(present[:-1], present[1:], strict=True):
+            if source.dates[a].isocalendar()[:2] == source.dates[b].isocalendar()[:2]:
+                raise InputFileError(source.path, f"lines {source.lines[a]} and "
+                                     f"{source.lines[b]}", "date: both rows name ISO week "
+                                     f"{source.dates[b].isocalendar()[0]}-W"
+                                     f"{source.dates[b].isocalendar()[1]:02d}")
+        starts = np.arange(monday[0], monday[-1] + np.timedelta64(7, "D"), 7)
+        values = np.full((1, starts.size), np.nan)
+        values[0, ((monday - starts[0]).astype(np.int64) // 7)] = cases[present]
+        at = present
+        week_of_row = (monday - starts[0]).astype(np.int64) // 7
+    else:
+        weeks = _checked(lambda: weekly_sum(cases, first, system="iso"))
+        starts = np.array(weeks.start_dates, dtype="datetime64[D]")
+        values = weeks.values
+        ends = np.array([(s - first).days + 6 for s in weeks.start_dates])
+        inside = (ends >= 0) & (ends < days)
+        at, week_of_row = ends[inside], np.flatnonzero(inside)
+    if population is not None:
+        if not population > 0:
+            raise EstimateOptionError(f"--population: expected a positive number, got {population}")
+        values = values / population * 100_000
+    res = _checked(lambda: seasonal_intensity(
+        values, starts, start_week=start_week, end_week=end_week, max_seasons=seasons,
+        min_seasons=min_seasons, interval=interval,  # type: ignore[arg-type]
+    ))
+    out = {name: np.full(days, np.nan) for name in (
+        "weekly_value", "epidemic_threshold", "medium_threshold", "high_threshold",
+        "very_high_threshold", "level", "seasons", "not_enough_seasons")}
+    for name, col in (("weekly_value", values), ("epidemic_threshold", res.epidemic),
+                      ("medium_threshold", res.medium), ("high_threshold", res.high),
+                      ("very_high_threshold", res.very_high), ("level", res.level)):
+        out[name][at] = col[0, week_of_row]
+    out["seasons"][at] = res.seasons[0, week_of_row]
+    out["not_enough_seasons"][at] = res.state[0, week_of_row] == NOT_ENOUGH_SEASONS
+    return _table("seasonal-intensity", source, out, flags=("not_enough_seasons",))
+
+
 # ---------------------------------------------------------------- dispatch
 
 
@@ -590,6 +651,12 @@ class EstimateOptions:
     increments: bool = False
     delay_window: int | None = None
     overdispersion: str = "none"
+    weekly: bool = False
+    start_week: int = 40
+    end_week: int = 20
+    seasons: int = 10
+    min_seasons: int = 3
+    interval: str = "mean"
 
 
 _COUNTS = ("cases", "positives", "tests", "admissions", "occupied", "staffed")
@@ -674,6 +741,12 @@ def run_estimate(kind: str, path: Path, options: EstimateOptions) -> EstimateTab
     if kind == "nowcast":
         return nowcast_table(read_triangle_csv(path), increments=o.increments,
                              delay_window=o.delay_window, level=o.level)
+    if kind == "seasonal-intensity":
+        if o.interval not in ("mean", "point"):
+            raise EstimateOptionError(f"--interval: expected mean or point, got {o.interval!r}")
+        return seasonal_table(read("cases"), weekly=o.weekly, population=o.population,
+                              start_week=o.start_week, end_week=o.end_week, seasons=o.seasons,
+                              min_seasons=o.min_seasons, interval=o.interval)
     raise EstimateOptionError(f"KIND: expected one of {', '.join(KINDS)}, got {kind!r}")
 
 

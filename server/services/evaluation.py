@@ -53,7 +53,13 @@ from rules import Evaluation, Ruleset, evaluate, parse_ruleset
 from server.services.audit import record
 from server.services.database import Database
 from server.services.district_indicators import district_indicators, load_district_data
+from server.services.forecast_record import (
+    Forecaster,
+    forecasts_stored,
+    store_morning_forecasts,
+)
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
+from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Observation, Region, Vintage
 from server.store.models import EvaluationRun as RunRow
 from server.store.models import Ruleset as RulesetRow
@@ -96,17 +102,17 @@ def store_ruleset(
     with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
-    parsed = parse_ruleset(text, source=str(path))
-    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == parsed.sha256))
+    loaded = parse_ruleset(text, source=str(path))
+    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == loaded.sha256))
     if row is None:
         row = RulesetRow(
-            name=parsed.name, version=str(parsed.version), yaml_text=text, sha256=parsed.sha256,
+            name=loaded.name, version=str(loaded.version), yaml_text=text, sha256=loaded.sha256,
             author=author, created_at=datetime.now(UTC), status="draft",
         )
         session.add(row)
         session.flush()
         record(session=session, actor=author or "system", action="ruleset.store",
-               subject=f"{parsed.name} {parsed.version}", details={"sha256": parsed.sha256})
+               subject=f"{loaded.name} {loaded.version}", details={"sha256": loaded.sha256})
     session.flush()
     if activate and row.status != "active":
         activate_ruleset(session=session, row=row, actor=author or "system",
@@ -185,7 +191,7 @@ def evaluate_districts(
     )
     if _stored_run(session, ruleset_row.id, cutoff):
         return reused
-    ruleset = parse_ruleset(ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}")
+    ruleset = parsed(ruleset_row)
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
                               stale_after=stale_after)
     result = evaluate(
@@ -280,7 +286,7 @@ def evaluation_behind(*, session: Session) -> tuple[RulesetRow, datetime] | None
 
 def evaluate_if_behind(
     db: Database, *, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None,
+    stale_after: Mapping[str, timedelta] | None = None, forecaster: Forecaster | None = None,
 ) -> EvaluationRun | None:
     """Evaluate the active ruleset at the newest cutoff when new data are not yet evaluated.
 
@@ -290,15 +296,41 @@ def evaluate_if_behind(
     landed by a process killed before its evaluation are evaluated by the next start. Runs in
     its own transaction; concurrent calls serialise (:func:`serialise_evaluations`) and the
     later one reuses the stored run. Returns None when there is nothing to evaluate.
-    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`.
+    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`. After the run commits, the
+    morning's forecasts are stored (:func:`store_forecasts_after_tiers`, ``forecaster``).
     """
     with db.transaction() as session:
         behind = evaluation_behind(session=session)
         if behind is None:
             return None
         row, cutoff = behind
-        return evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff,
-                                  notify=notify, stale_after=stale_after)
+        run = evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff,
+                                 notify=notify, stale_after=stale_after)
+    if run is not None:
+        store_forecasts_after_tiers(db, run.data_cutoff, forecaster=forecaster)
+    return run
+
+
+def store_forecasts_after_tiers(
+    db: Database, cutoff: datetime, *, forecaster: Forecaster | None = None
+) -> int:
+    """The morning's forecast step, after the tiers are committed: store the forecasts made
+    from the data known at ``cutoff`` (``forecast_record.store_morning_forecasts``; by default
+    with its ``DEFAULT_FORECASTER``),
+    in a transaction of its own, unless forecasts were stored at that cutoff already. A failure
+    is logged, never raised: the tiers stand without the forecasts. Returns the rows written.
+    """
+    try:
+        with db.transaction() as session:
+            if forecasts_stored(session=session, cutoff=cutoff):
+                return 0
+            written = store_morning_forecasts(session=session, cutoff=cutoff,
+                                              forecaster=forecaster)
+    except Exception:  # logged, never raised: the forecast record must not hold up the tiers
+        log.exception("storing the forecasts at cutoff %s failed", cutoff.isoformat())
+        return 0
+    log.info("stored forecasts at cutoff %s: %d region rows", cutoff.isoformat(), written)
+    return written
 
 
 def assessments_as_of(

@@ -27,8 +27,8 @@ from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.feeds import FeedStatus, feed_statuses
 from server.services.overview import DataOverview, data_overview
-from server.services.policies import parsed
 from server.services.review import official_tiers, pending_changes
+from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, FeedState, Measure, Region, Vintage
 from server.store.types import UTCDateTime

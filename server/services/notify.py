@@ -59,6 +59,7 @@ from sqlalchemy.orm import Session
 from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential
 
 from rules import Evaluation
+from rules.explanation import signal_message
 from server.services.audit import record
 from server.services.errors import InputFileError
 from server.store.models import AuditEntry
@@ -234,7 +235,8 @@ def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
         out.append(
             Event(
                 kind="prepare", region=ev.regions[r], date=day, tier=int(tier[r]), previous=None,
-                signal=sig.id, sentence=sig.message or f"signal {sig.id} active",
+                signal=sig.id,
+                sentence=signal_message(ev, int(s), int(r), d) or f"signal {sig.id} active",
             )
         )
     return out

@@ -30,10 +30,10 @@ from pathlib import Path
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from rules import parse_ruleset
 from server.services.audit import record
 from server.services.errors import InputFileError
 from server.services.evaluation import active_ruleset
+from server.services.ruleset_cache import parsed
 from server.services.users import name_key
 from server.store.models import Decision, Region, User
 
@@ -187,9 +187,7 @@ def import_official_history(
     """
     items = list(records)
     ruleset_row = active_ruleset(session=session)
-    top = None if ruleset_row is None else parse_ruleset(
-        ruleset_row.yaml_text, source=f"ruleset:{ruleset_row.name}"
-    ).top_tier
+    top = None if ruleset_row is None else parsed(ruleset_row).top_tier
     regions = dict(session.execute(
         select(Region.code, Region.id).where(Region.level == "district")
     ).all())

@@ -30,8 +30,8 @@ from sqlalchemy.orm import Session
 
 from rules import Ruleset
 from server.services.evaluation import active_ruleset, current_assessment_id
-from server.services.policies import parsed
 from server.services.review import OfficialTier
+from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Region
 
 __all__ = [

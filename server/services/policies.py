@@ -8,7 +8,6 @@ version with status ``draft``; an admin activates it (the previous active versio
 from __future__ import annotations
 
 import difflib
-import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
@@ -21,6 +20,7 @@ from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import activate_ruleset
 from server.services.notify import NotifyConfig
+from server.services.ruleset_cache import parsed
 from server.store.models import Ruleset as RulesetRow
 
 __all__ = [
@@ -42,24 +42,9 @@ __all__ = [
     "versions",
 ]
 
-_PARSED: dict[str, Ruleset] = {}
-_LOCK = threading.Lock()
-
-
 class UnknownPolicyError(ServiceError, LookupError):
     def __init__(self, ruleset_id: int) -> None:
         super().__init__(f"no ruleset version with id {ruleset_id}")
-
-
-def parsed(row: RulesetRow) -> Ruleset:
-    """The parsed ruleset of a stored row (parsed once per text, by SHA-256)."""
-    with _LOCK:
-        hit = _PARSED.get(row.sha256)
-    if hit is None:
-        hit = parse_ruleset(row.yaml_text, source=f"{row.name}-{row.version}.yaml")
-        with _LOCK:
-            _PARSED[row.sha256] = hit
-    return hit
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -25,7 +25,7 @@ from server.services.pages import (
     public_map,
     weekly_figures,
 )
-from server.services.policies import parsed
+from server.services.ruleset_cache import parsed
 from server.store import read_dense
 from server.store.models import Decision, Measure, Observation, Region
 

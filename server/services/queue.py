@@ -8,7 +8,6 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.services.evaluation import active_ruleset
-from server.services.policies import parsed
 from server.services.review import (
     DecisionRecord,
     PendingChange,
@@ -17,6 +16,7 @@ from server.services.review import (
     pending_changes,
 )
 from server.services.review_cards import ReviewCard, review_cards
+from server.services.ruleset_cache import parsed
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
 

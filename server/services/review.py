@@ -35,13 +35,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
-from functools import lru_cache
 from zoneinfo import ZoneInfo
 
 from sqlalchemy import func, or_, select, update
 from sqlalchemy.orm import Session, aliased
 
-from rules import Ruleset, parse_ruleset
+from rules import Ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
 from server.services.evaluation import (
@@ -53,12 +52,13 @@ from server.services.evaluation import (
     newest_run,
 )
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
+from server.services.ruleset_cache import parsed
 from server.services.tiers import Scale, decision_scales, tier_label, tier_name
+from server.services.users import may
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
 
 __all__ = [
-    "APPROVER_ROLES",
     "Decision",
     "DecisionConflictError",
     "DecisionRecord",
@@ -76,9 +76,6 @@ __all__ = [
     "pending_changes",
     "publish",
 ]
-
-#: Roles allowed to decide and publish.
-APPROVER_ROLES = ("approver", "admin")
 
 
 class ReviewError(ServiceError, ValueError):
@@ -240,14 +237,9 @@ class PublishResult:
     notified: tuple[Delivery, ...] = field(default=())
 
 
-@lru_cache(maxsize=16)
-def _parse(text: str) -> Ruleset:
-    return parse_ruleset(text, source="active ruleset")
-
-
 def _active(session: Session) -> Ruleset | None:
     row = active_ruleset(session=session)
-    return None if row is None else _parse(row.yaml_text)
+    return None if row is None else parsed(row)
 
 
 #: The order in which decisions take over from one another: by the day a decision takes effect,
@@ -368,7 +360,7 @@ def current_run(*, session: Session) -> LatestRun | None:
         for rid, code, name, item in found
     )
     return LatestRun(
-        ruleset_row=row, ruleset=_parse(row.yaml_text), data_cutoff=cutoff, last_day=last_day,
+        ruleset_row=row, ruleset=parsed(row), data_cutoff=cutoff, last_day=last_day,
         items=items,
     )
 
@@ -451,7 +443,7 @@ def _approver(session: Session, user: str) -> User:
     row = session.scalar(select(User).where(User.name == user))
     if row is None or not row.active:
         raise ReviewError("user", f"{user!r} is not an active staff account")
-    if row.role not in APPROVER_ROLES:
+    if not may(row.role, "decide"):
         raise ReviewError("user", f"{user!r} is a {row.role}; only approvers and admins decide")
     return row
 
@@ -790,7 +782,7 @@ def decision_history(
         if row.assessment_id is None and row.id in looked_up:
             recommended, day, cutoff, later = looked_up[row.id]
             ruleset_id = active_id
-            name_of = tier_name(_parse(active.yaml_text) if active else None, recommended)
+            name_of = tier_name(parsed(active) if active else None, recommended)
         else:
             name_of = "" if recommended is None else scales[row.id].name(recommended)
         out.append(DecisionRecord(

@@ -26,7 +26,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
-from server.services.policies import parsed
+from server.services.ruleset_cache import parsed
 from server.store.models import Assessment
 from server.store.models import Decision as DecisionRow
 from server.store.models import Ruleset as RulesetRow

@@ -23,6 +23,18 @@ from server.services.errors import DuplicateUserError, UnknownRoleError
 from server.store.models import User
 
 ROLES = ("viewer", "analyst", "approver", "admin")
+# What each action needs: that role or one ranked above it. The one place that says who may do
+# what; routes (``web.deps.allowed``), templates (``user.may("decide")``) and services ask it.
+PERMISSIONS: dict[str, str] = {
+    "read": "viewer",  # staff pages, explanations, briefings
+    "upload": "analyst",  # hand uploads to a feed
+    "draft_policy": "analyst",  # store and check a draft ruleset
+    "backtest": "analyst",  # start and read backtests
+    "decide": "approver",  # confirm or override a recommended tier
+    "publish": "approver",  # publish decided tiers to the public view
+    "activate_policy": "admin",  # make a ruleset version the active one
+    "manage_users": "admin",  # accounts, roles, passwords
+}
 _N, _R, _P = 2**14, 8, 1
 
 
@@ -83,3 +95,11 @@ def add_user(*, session: Session, name: str, role: str, password: str, actor: st
     session.flush()
     record(session=session, actor=actor, action="users.add", subject=name, details={"role": role})
     return user
+
+
+def may(role: str, action: str) -> bool:
+    """True when ``role`` may do ``action`` (a key of :data:`PERMISSIONS`)."""
+    if action not in PERMISSIONS:
+        raise KeyError(f"unknown action {action!r}; known: {', '.join(PERMISSIONS)}")
+    needed = PERMISSIONS[action]
+    return role in ROLES and ROLES.index(role) >= ROLES.index(needed)

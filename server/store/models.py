@@ -329,3 +329,50 @@ class LoginAttempt(Base):
     client: Mapped[str] = mapped_column(String(100))
     name_key: Mapped[str] = mapped_column(String(100))
     outcome: Mapped[str] = mapped_column(String(8))
+
+
+class ForecastRun(Base):
+    """One stored forecast: a target under a scenario, made at a data cutoff (revision 0007).
+
+    ``horizons`` and ``levels`` are the forecast's days ahead of ``origin`` and its quantile
+    levels (JSON lists); each region's quantiles are a :class:`ForecastQuantiles` row. A rerun
+    at the same (target, scenario, cutoff) replaces the run and its rows
+    (server/services/forecast_record.py), so there is one forecast per key.
+    """
+
+    __tablename__ = "forecast_run"
+    __table_args__ = (
+        UniqueConstraint("target", "scenario", "data_cutoff"),
+        Index("ix_forecast_run_target_origin", "target", "scenario", "origin"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    target: Mapped[str] = mapped_column(String(64))
+    scenario: Mapped[str] = mapped_column(String(64))
+    data_cutoff: Mapped[datetime] = mapped_column(UTCDateTime())
+    origin: Mapped[date] = mapped_column(Date)
+    forecaster: Mapped[str] = mapped_column(String(100))
+    horizons: Mapped[list[int]] = mapped_column(JSON)
+    levels: Mapped[list[float]] = mapped_column(JSON)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+
+
+class ForecastQuantiles(Base):
+    """One region's quantiles of a :class:`ForecastRun`, with the naive baseline.
+
+    ``quantiles`` holds the (horizons x levels) values as little-endian float64, horizon-major
+    (one row per region and run instead of one per horizon and level: 27 000 rows a morning for
+    3 000 regions, 3 targets and 3 scenarios rather than 2.8 million). ``baseline`` is the mean
+    of the target over the 7 days ending at the origin as known at the cutoff (NaN stored as
+    NULL), the naive forecast the record compares with.
+    """
+
+    __tablename__ = "forecast_quantiles"
+    __table_args__ = (Index("ix_forecast_quantiles_region", "region_id", "run_id"),)
+
+    run_id: Mapped[int] = mapped_column(
+        ForeignKey("forecast_run.id", ondelete="CASCADE"), primary_key=True
+    )
+    region_id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    baseline: Mapped[float | None] = mapped_column(Float)
+    quantiles: Mapped[bytes] = mapped_column(LargeBinary)

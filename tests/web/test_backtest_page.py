@@ -20,7 +20,8 @@ from sqlalchemy import func, select
 
 from server.services import backtest_jobs
 from server.services.backtest import run_backtest
-from server.services.policies import parsed, store_draft
+from server.services.policies import store_draft
+from server.services.ruleset_cache import parsed
 from server.store.models import Region
 from server.store.models import Ruleset as RulesetRow
 from tests.web.conftest import ROLE_USER, copy_demo, csrf_of, login, settings_for

@@ -9,10 +9,13 @@ from fastapi.testclient import TestClient
 
 from server.services import auth
 from server.services.auth import (
+    PERMISSIONS,
     LoginLimiter,
     LoginRefusedError,
+    StaffUser,
     authenticate,
     has_role,
+    may,
 )
 from tests.web.conftest import ROLE_USER, csrf_of, login, seen_fields
 
@@ -311,3 +314,29 @@ def test_district_period_names_the_day_of_its_sentence_and_links_it(
     assert 'href="/staff/district/D04/explain?day=2026-10-20">Explanation of 2026-10-20</a>' in text
     assert "Explanation of the newest day, 2026-11-30" in text
 
+
+
+# The permission table (server.services.users.PERMISSIONS) is the one source of who may do what:
+# every staff route that changes something admits exactly the roles its action names.
+@pytest.mark.parametrize("action", sorted(PERMISSIONS))
+@pytest.mark.parametrize("role", ROLES)
+def test_may_follows_the_permission_table(role: str, action: str) -> None:
+    assert may(role, action) is has_role(role, PERMISSIONS[action])
+    assert StaffUser(id=1, name="x", role=role).may(action) is may(role, action)
+    assert StaffUser(id=1, name="x", role=role, active=False).may(action) is False
+
+
+def test_may_refuses_an_unknown_action() -> None:
+    with pytest.raises(KeyError, match="unknown action"):
+        may("admin", "launch")
+
+
+def test_templates_ask_permissions_instead_of_listing_roles() -> None:
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[2] / "web" / "templates"
+    offenders = [
+        str(path.relative_to(root)) for path in root.rglob("*.html")
+        if "user.role ==" in path.read_text() or "user.role in" in path.read_text()
+    ]
+    assert offenders == []

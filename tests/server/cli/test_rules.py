@@ -103,3 +103,27 @@ def test_backtest_as_known_uses_the_office_time_zone(
     result = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--as-known")
     assert result.exit_code == 0, result.output
     assert zones == [ZoneInfo("Etc/GMT+8")] and "data as known each day" in result.output
+
+
+@pytest.mark.slow
+def test_backtest_as_known_prints_and_writes_the_forecast_record(
+    demo_path: Path, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    import csv
+
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{demo_path}")
+    result = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--as-known",
+                 "--no-nowcast-accuracy", "--output", str(tmp_path))
+    assert result.exit_code == 0, result.output
+    assert "Forecast record" in result.output and "hosp_admissions, persistence, 14 d:" in (
+        result.output)
+    with (tmp_path / "forecast_record.csv").open() as fh:
+        rows = list(csv.DictReader(fh))
+    pooled = [r for r in rows if r["region"] == "" and r["target"] == "hosp_admissions"]
+    assert [int(r["horizon"]) for r in pooled] == list(range(1, 22))
+    by_region = [r for r in rows if r["region"] and r["target"] == "hosp_admissions"
+                 and r["horizon"] == "14"]
+    # the pooled row adds up the districts' rows
+    assert sum(int(r["inside_90"]) for r in by_region) == int(pooled[13]["inside_90"])
+    latest = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--no-nowcast-accuracy")
+    assert latest.exit_code == 0 and "Forecast record" not in latest.output

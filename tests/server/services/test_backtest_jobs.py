@@ -36,8 +36,8 @@ from server.services.backtest_jobs import (
 from server.services.database import Database
 from server.services.evaluation import default_ruleset_path, store_ruleset
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
-from server.services.policies import parsed
 from server.services.regions import RegionRecord, store_regions
+from server.services.ruleset_cache import parsed
 from server.store import make_sessionmaker, scratch_engine, upgrade
 from server.store.models import BacktestJob
 from server.store.models import Ruleset as RulesetRow
