@@ -6,7 +6,11 @@ Generates a long CSV (``region,date,measure,value``) of ``--regions`` x ``--days
 COPY on PostgreSQL, executemany on SQLite). Prints rows per second and the ratio ingest / read_csv.
 Target: at least 100 000 rows/s, i.e. within 10x of parsing alone.
 
-    python bench/ingest.py [--regions 3000] [--days 667] [--postgres URL]
+    python bench/ingest.py [--regions 3000] [--days 667] [--postgres URL] [--revise]
+
+``--revise`` then ingests a second file of the same keys with other values, so that nearly every
+row revises a stored value (each compared with the current value first,
+``server/services/revisions.py``), and prints its time against the first ingest's.
 
 ``--postgres`` must name a scratch database; the benchmark works in a schema of its own and drops
 it at the end. Without it only SQLite (a temporary file) is measured.
@@ -53,7 +57,9 @@ def write_csv(path: Path, regions: int, days: int, seed: int = 5) -> int:
     return regions * days
 
 
-def ingest_rate(url: str, path: Path, regions: int) -> tuple[float, int]:
+def ingest_rate(
+    url: str, path: Path, regions: int, again: Path | None = None
+) -> tuple[float, int, float | None, int]:
     with scratch_engine(url, prefix="tw_bench") as engine:
         upgrade(engine)
         db = Database(engine=engine, sessions=make_sessionmaker(engine))
@@ -68,7 +74,15 @@ def ingest_rate(url: str, path: Path, regions: int) -> tuple[float, int]:
             receipt = ingest_payload(
                 session=session, feed=FEED, payload=Payload.from_path(path),
                 received_at=datetime.now(UTC), today=date.today())
-        return time.perf_counter() - start, receipt.rows_accepted
+        first = time.perf_counter() - start
+        if again is None:
+            return first, receipt.rows_accepted, None, 0
+        start = time.perf_counter()
+        with db.transaction() as session:
+            second = ingest_payload(
+                session=session, feed=FEED, payload=Payload.from_path(again),
+                received_at=datetime.now(UTC), today=date.today())
+        return first, receipt.rows_accepted, time.perf_counter() - start, second.revised
 
 
 def main() -> None:
@@ -76,6 +90,8 @@ def main() -> None:
     parser.add_argument("--regions", type=int, default=3000)
     parser.add_argument("--days", type=int, default=667)
     parser.add_argument("--postgres", default=None, help="scratch PostgreSQL URL")
+    parser.add_argument("--revise", action="store_true",
+                        help="then ingest a file revising nearly every value")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "long.csv"
@@ -91,11 +107,18 @@ def main() -> None:
         targets = [("sqlite", f"sqlite:///{Path(tmp) / 'bench.db'}")]
         if args.postgres:
             targets.append(("postgresql", args.postgres))
+        again = None
+        if args.revise:
+            again = Path(tmp) / "revised.csv"
+            write_csv(again, args.regions, args.days, seed=6)
         for name, url in targets:
-            seconds, accepted = ingest_rate(url, path, args.regions)
+            seconds, accepted, second, revised = ingest_rate(url, path, args.regions, again)
             assert accepted == rows, (accepted, rows)
             print(f"{name:>10}: ingest {seconds:.2f} s, {rows / seconds:,.0f} rows/s, "
                   f"{seconds / parse:.1f}x read_csv")
+            if second is not None:
+                print(f"{name:>10}: revising ingest {second:.2f} s ({revised:,} revised), "
+                      f"{second / seconds:.2f}x the first ingest")
 
 
 if __name__ == "__main__":

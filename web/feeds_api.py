@@ -89,6 +89,14 @@ def receipt_json(receipt: IngestReceipt) -> dict[str, Any]:
             {receipt.unit: r.line, "reason": r.reason, "message": r.message}
             for r in receipt.rejections
         ],
+        "revised": receipt.revised,
+        "revised_other_feeds": receipt.revised_other_feeds,
+        "revisions": [
+            {"region": v.region, "measure": v.measure, "date": v.day.isoformat(),
+             "old": v.old, "new": v.new, "old_feed": v.old_feed,
+             "old_vintage_id": v.old_vintage_id, receipt.unit: v.line}
+            for v in receipt.revisions
+        ],
     }
 
 
@@ -116,7 +124,8 @@ async def push(
         body = await read_capped(request, feed=feed.name, limit=push_limit(feed))
         receipt = await run_in_threadpool(
             lambda: ingest_push(db, feed=feed, content=body, content_type=content_type,
-                                time_zone=settings.time_zone)
+                                time_zone=settings.time_zone,
+                                precedence=catalogue.precedence())
         )
     except UnknownFeedError as exc:
         return JSONResponse({"detail": str(exc)}, status_code=404)

@@ -32,6 +32,7 @@ from web.deps import (
     NotifyDep,
     PublishDep,
     SessionDep,
+    SettingsDep,
     StaffDep,
     signer,
 )
@@ -69,19 +70,23 @@ def decide_one(
     request: Request, session: SessionDep, user: DecideDep, _csrf: CsrfDep,
     assessment_id: BigRowId, action: Annotated[str, Form()],
     official_tier: Annotated[str, Form()], official_decision: Annotated[str, Form()],
-    reason: Annotated[str, Form()] = "", tier: Annotated[str, Form()] = "",
+    settings: SettingsDep, reason: Annotated[str, Form()] = "",
+    tier: Annotated[str, Form()] = "",
 ) -> Response:
     """Confirm (``action=confirm``) or override (``action=override`` with ``tier``).
 
     When new data changed the recommendation, or another approver decided the district, while
     the form was open, the queue is shown again (409) with a notice and the typed reason kept.
+    A decision that cannot be taken as posted (no reason, an override without a tier) shows the
+    queue again (422) with the problem beside the form, the typed reason and chosen tier kept.
     """
     try:
         decide(session=session, assessment_id=assessment_id, user=user.name,
                accept=action == "confirm",
                tier=int(tier) if tier.strip().isascii() and tier.strip().isdigit() else None,
                reason=reason, official_tier=_seen("official_tier", official_tier),
-               official_decision_id=_seen("official_decision", official_decision))
+               official_decision_id=_seen("official_decision", official_decision),
+               time_zone=settings.time_zone)
     except (RecommendationChangedError, DecisionConflictError) as refused:
         changed = refused if isinstance(refused, RecommendationChangedError) else None
         conflict = refused if isinstance(refused, DecisionConflictError) else None
@@ -89,15 +94,26 @@ def decide_one(
             "q": review_queue(session=session), "published": "", "changed": changed,
             "conflict": conflict, "kept_reason": {refused.region: reason},
         }, status_code=409)
+    except ReviewError as invalid:  # raised before anything is written
+        q = review_queue(session=session)
+        region = next((p.region for p in q.pending if p.assessment_id == assessment_id), "")
+        return render(request, "staff/review.html", {
+            "q": q, "published": "", "kept_reason": {region: reason},
+            "kept_tier": {region: tier.strip()},
+            "invalid": {"region": region, "argument": invalid.argument,
+                        "action": action, "message": str(invalid), "reason": reason},
+        }, status_code=422)
     return RedirectResponse("/staff/review", status_code=303)
 
 
 @router.post("/publish")
 def publish_all(
-    session: SessionDep, user: PublishDep, _csrf: CsrfDep, notify: NotifyDep
+    session: SessionDep, user: PublishDep, _csrf: CsrfDep, notify: NotifyDep,
+    settings: SettingsDep,
 ) -> RedirectResponse:
     """Publish every unpublished decision to the public view ("nothing" when there is none)."""
-    result = publish(session=session, user=user.name, notify=notify)
+    result = publish(session=session, user=user.name, notify=notify,
+                     time_zone=settings.time_zone)
     flag = "1" if result.decisions else "none"
     return RedirectResponse(f"/staff/review?published={flag}", status_code=303)
 
@@ -125,7 +141,7 @@ def csrf_header(
 @api_router.post("/api/review/{assessment_id}/decision", status_code=201, response_model=None)
 def decide_api(
     session: SessionDep, user: DecideDep, _csrf: Annotated[None, Depends(csrf_header)],
-    assessment_id: BigRowId, body: DecisionIn,
+    assessment_id: BigRowId, body: DecisionIn, settings: SettingsDep,
 ) -> Response:
     """Confirm or override one pending change; 409 (with the reason sent) when the district was
     decided, or its recommendation changed, since the client read it."""
@@ -133,7 +149,8 @@ def decide_api(
         made = decide(session=session, assessment_id=assessment_id, user=user.name,
                       accept=body.action == "confirm", tier=body.tier, reason=body.reason,
                       official_tier=body.official_tier,
-                      official_decision_id=body.official_decision_id)
+                      official_decision_id=body.official_decision_id,
+                      time_zone=settings.time_zone)
     except (RecommendationChangedError, DecisionConflictError) as refused:
         kind = ("decided_meanwhile" if isinstance(refused, DecisionConflictError)
                 else "recommendation_changed")

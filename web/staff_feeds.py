@@ -21,12 +21,14 @@ from starlette.types import Message
 
 from server.services.feeds import (
     FeedFileError,
+    UnconfirmedRevisionsError,
     UnknownFeedError,
     feeds_page,
     load_catalogue,
     upload_payload,
 )
 from server.services.users import PERMISSIONS
+from web import held_uploads
 from web.deps import CsrfDep, SessionDep, SettingsDep, StaffDep, UploadDep
 from web.templating import render
 
@@ -116,27 +118,56 @@ def feeds(
 def upload(
     request: Request, settings: SettingsDep, user: UploadDep, _csrf: CsrfDep,
     feed: Annotated[str, Form()],
-    file: Annotated[UploadFile, File()], dry_run: Annotated[bool, Form()] = False,
+    file: Annotated[UploadFile | None, File()] = None, dry_run: Annotated[bool, Form()] = False,
+    held: Annotated[str, Form()] = "", confirmed: Annotated[str, Form()] = "",
 ) -> HTMLResponse:
     """Take in an uploaded file for a feed and show its receipt.
+
+    An upload that would revise values another feed sent stores nothing: the page lists those
+    values and asks for confirmation (409). The file is held meanwhile (:mod:`web.held_uploads`,
+    outside the database); confirming posts ``held`` and ``confirmed`` (the digest of the
+    revisions shown) back, and the file is taken in only if it would still revise exactly those.
 
     A plain (sync) route: FastAPI has parsed the form before the call and runs the route in its
     thread pool, so the ingestion does not block the event loop.
     """
     catalogue = load_catalogue(settings)
-    error, receipt = None, None
+    error, receipt, asking = None, None, None
+    holding = None
     try:
-        receipt = upload_payload(
-            request.app.state.database, catalogue=catalogue, feed_name=feed,
-            filename=file.filename or "upload", content=file.file, actor=user.name,
-            time_zone=settings.time_zone, dry_run=dry_run,
-        )
-    except (FeedFileError, UnknownFeedError) as exc:
+        if held:
+            holding = held_uploads.open_held(held, actor=user.name, feed=feed)
+            name, content = holding.filename, holding.open()
+        elif file is not None:
+            name, content = file.filename or "upload", file.file
+        else:
+            raise held_uploads.HeldUploadError("choose a file to upload")
+        try:
+            receipt = upload_payload(
+                request.app.state.database, catalogue=catalogue, feed_name=feed,
+                filename=name, content=content, actor=user.name,
+                time_zone=settings.time_zone, dry_run=dry_run, confirmed=confirmed,
+            )
+        finally:
+            if holding is not None:
+                content.close()
+    except UnconfirmedRevisionsError as exc:
+        receipt = exc.receipt  # type: ignore[assignment]
+        if holding is None:
+            assert file is not None
+            file.file.seek(0)
+            holding = held_uploads.hold(file.file, filename=name, actor=user.name, feed=feed)
+        asking = {"held": holding.token, "digest": exc.digest, "again": bool(confirmed)}
+    except (FeedFileError, UnknownFeedError, held_uploads.HeldUploadError) as exc:
         error = str(exc)
-    if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run:
+    else:
+        if holding is not None:
+            holding.discard()
+    if receipt is not None and not receipt.unchanged and receipt.rows_accepted and not dry_run \
+            and asking is None:
         request.app.state.evaluations.request()  # coalesced, off the request path
     return render(
         request, "staff/feeds_receipt.html",
-        {"receipt": receipt, "error": error, "feed": feed},
-        status_code=422 if error else 200,
+        {"receipt": receipt, "error": error, "feed": feed, "asking": asking},
+        status_code=422 if error else 409 if asking else 200,
     )

@@ -115,7 +115,7 @@ def ingest_command(
                 db, feed=definition, payload=payload, time_zone=settings.time_zone,
                 dry_run=dry_run, progress=advance, evaluate=True,
                 notify=notify_config_from(settings.notify_file),
-                stale_after=catalogue_limits(catalogue),
+                stale_after=catalogue_limits(catalogue), precedence=catalogue.precedence(),
             )
     finally:
         db.dispose()
@@ -190,7 +190,7 @@ def run_command(
         run = run_feed(
             db, feed=definition, time_zone=settings.time_zone, environ=os.environ,
             notify=notify_config_from(settings.notify_file),
-            stale_after=catalogue_limits(catalogue),
+            stale_after=catalogue_limits(catalogue), precedence=catalogue.precedence(),
         )
     finally:
         db.dispose()

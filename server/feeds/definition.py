@@ -85,6 +85,9 @@ class MeasureMap:
     scale: float = 1.0
     minimum: float | None = None
     maximum: float | None = None
+    #: Rank of this feed for this measure: a row is not taken in when the value it would revise
+    #: came from a feed ranked higher for the measure (reason ``outranked``); 0 by default.
+    precedence: int = 0
     #: The pathogen (or surveillance stream) of a pathogen-specific measure: the catalogue
     #: measure is then ``base.pathogen`` (``cases.influenza``); None: unqualified.
     pathogen: str | None = None
@@ -97,6 +100,8 @@ class MeasureMap:
     def __post_init__(self) -> None:
         if self.scale == 0 or self.scale != self.scale:
             raise ValueError(f"scale must be a non-zero number, got {self.scale!r}")
+        if isinstance(self.precedence, bool) or not isinstance(self.precedence, int):
+            raise ValueError(f"precedence must be a whole number, got {self.precedence!r}")
         if self.minimum is not None and self.maximum is not None and self.minimum > self.maximum:
             raise ValueError(f"min {self.minimum} is above max {self.maximum}")
 
@@ -152,6 +157,9 @@ class FeedDefinition:
     schedule: Schedule | None = None
     cadence: str = "daily"
     stale_after: timedelta = timedelta(days=3)
+    #: Health turns to *attention* when the last delivery rejected a larger share of its rows
+    #: (0.1 = 10 %: common practice, no source).
+    max_rejected_share: float = 0.1
 
     def __post_init__(self) -> None:
         if not NAME.match(self.name):
@@ -182,6 +190,9 @@ class FeedDefinition:
             raise ValueError(f"stale_after must be positive, got {self.stale_after}")
         if isinstance(self.source, PushSource) and self.schedule is not None:
             raise ValueError("a push feed has no schedule")
+        share = self.max_rejected_share
+        if isinstance(share, bool) or not isinstance(share, int | float) or not 0 <= share <= 1:
+            raise ValueError(f"max_rejected_share must be a share from 0 to 1, got {share!r}")
 
     @property
     def measure_names(self) -> tuple[str, ...]:
@@ -224,6 +235,15 @@ class FeedCatalogue:
 
     def __len__(self) -> int:
         return len(self.feeds)
+
+    def precedence(self) -> dict[str, dict[str, int]]:
+        """Measure -> feed -> rank, for every measure some feed ranks above 0 (a feed not
+        listed, or not configured any more, ranks 0)."""
+        out: dict[str, dict[str, int]] = {}
+        for feed in self.feeds.values():
+            for m in feed.measures:
+                out.setdefault(m.measure, {})[feed.name] = m.precedence
+        return {k: v for k, v in out.items() if any(v.values())}
 
 
 def parse_duration(text: Any) -> timedelta:
@@ -319,6 +339,7 @@ def load_feeds(path: Path) -> FeedCatalogue:
 _FEED_KEYS = {
     "name", "description", "source", "format", "layout", "delimiter", "encoding", "decimal",
     "thousands", "dates", "columns", "measures", "regions", "schedule", "cadence", "stale_after",
+    "max_rejected_share",
 }
 
 
@@ -354,6 +375,8 @@ def _feed(
         kwargs["schedule"] = _schedule(reader, raw["schedule"], f"{path}.schedule")
     if "stale_after" in raw:
         kwargs["stale_after"] = _duration(reader, raw["stale_after"], f"{path}.stale_after")
+    if "max_rejected_share" in raw:
+        kwargs["max_rejected_share"] = raw["max_rejected_share"]
     try:
         return FeedDefinition(name=str(raw["name"]), source=source, measures=measures, **kwargs)
     except ValueError as exc:
@@ -413,7 +436,7 @@ def _measures(
     for name, spec in raw.items():
         spec = dict(spec or {})
         where = f"{path}.{name}"
-        allowed = {"source", "scale", "min", "max", "pathogen"}
+        allowed = {"source", "scale", "min", "max", "pathogen", "precedence"}
         if set(spec) - allowed:
             bad = sorted(set(spec) - allowed)[0]
             raise reader.error(f"{where}.{bad}", f"unknown key; allowed: {sorted(allowed)}")
@@ -436,6 +459,7 @@ def _measures(
                 scale=float(spec.get("scale", 1.0)),
                 minimum=None if spec.get("min") is None else float(spec["min"]),
                 maximum=None if spec.get("max") is None else float(spec["max"]),
+                precedence=spec.get("precedence", 0),
             ))
         except (TypeError, ValueError) as exc:
             raise reader.error(where, str(exc)) from None

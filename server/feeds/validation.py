@@ -24,7 +24,9 @@ File checks (over all rows that passed, see :func:`check_file`): ``duplicate_row
 value as an earlier line, which is kept), ``conflicting_duplicate`` (same key, different values:
 every such line is rejected), ``positives_exceed_tests`` (both lines rejected); and, with values
 read from the store, ``positives_exceed_tests`` for a file's positives (tests) whose tests
-(positives) for that region and date are only stored (:func:`check_stored_pairs`).
+(positives) for that region and date are only stored (:func:`check_stored_pairs`), and
+``outranked`` for a row that would revise a value sent by a feed of higher precedence for the
+measure (``server/services/revisions.py``).
 
 Checks run on the distinct values of each column (:class:`~server.feeds.parser.Coded`) and are
 spread back to rows with numpy; messages are built for rejected rows only.
@@ -64,7 +66,7 @@ REASONS = (
     "malformed_row", "unknown_region", "unknown_measure", "unparsable_date", "future_date",
     "missing_value", "non_numeric_value", "negative_count", "non_integer_count", "out_of_range",
     "duplicate_row", "conflicting_duplicate", "positives_exceed_tests", "ambiguous_number",
-    "bad_digit_grouping", "date_too_old",
+    "bad_digit_grouping", "date_too_old", "outranked",
 )
 AMBIGUOUS, BAD_GROUPING = 1, 2
 # Reference dates before this are refused: every evaluation runs from the oldest stored date, so

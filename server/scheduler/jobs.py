@@ -62,6 +62,7 @@ def run_scheduled_feed(key: str, feed_name: str) -> FeedRun | None:
         policy=runtime.retry,  # type: ignore[arg-type]
         notify=runtime.notify,  # type: ignore[arg-type]
         stale_after=catalogue_limits(runtime.catalogue),  # type: ignore[arg-type]
+        precedence=runtime.catalogue.precedence(),  # type: ignore[attr-defined]
     )
     log.info("feed %s: %d vintage(s) landed, not modified: %s, errors: %s",
              feed_name, run.landed, run.not_modified, list(run.errors))

@@ -52,6 +52,8 @@ from server.services.ingest import (
     office_today,
 )
 from server.services.notify import NotifyConfig
+from server.services.revisions import Precedence
+from server.services.revisions import UnconfirmedRevisionsError as UnconfirmedRevisionsError
 from server.store.models import (
     FeedState,
     FeedToken,
@@ -213,8 +215,14 @@ def ingest_recorded(
     progress: Callable[[int], None] | None = None, evaluate: bool = False,
     notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
     etag: str | None = None, last_modified: str | None = None,
+    precedence: Precedence | None = None, confirm_other_feeds: bool = False,
+    confirmed: str = "",
 ) -> IngestOutcome:
     """:func:`~server.services.ingest.ingest_and_evaluate` that records the feed state.
+
+    ``precedence`` (:meth:`FeedCatalogue.precedence`), ``confirm_other_feeds`` and
+    ``confirmed``: as :func:`~server.services.ingest.ingest_payload`; an upload refused for
+    want of confirmation (:class:`UnconfirmedRevisionsError`) records nothing.
 
     Every way in uses it, so each records its outcome alike (:func:`record_feed_state`): a
     landed or unchanged payload in the ingest transaction, a file rejected whole
@@ -231,7 +239,8 @@ def ingest_recorded(
         return ingest_and_evaluate(
             db, feed=feed, payload=payload, time_zone=time_zone, received_at=received_at,
             dry_run=dry_run, progress=progress, evaluate=evaluate, after_landing=after,
-            notify=notify, stale_after=stale_after,
+            notify=notify, stale_after=stale_after, precedence=precedence,
+            confirm_other_feeds=confirm_other_feeds, confirmed=confirmed,
         )
     except FeedFileError as exc:
         if not dry_run:
@@ -259,7 +268,7 @@ def run_feed(
     environ: Mapping[str, str] | None = None, now: datetime | None = None,
     policy: RetryPolicy | None = None, client: httpx.Client | None = None,
     evaluate: bool = True, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None,
+    stale_after: Mapping[str, timedelta] | None = None, precedence: Precedence | None = None,
 ) -> FeedRun:
     """Run a pulled feed once: each waiting file, or one conditional GET. Errors are recorded in
     the feed state; transient fetch errors are re-raised after being recorded (the scheduler
@@ -270,11 +279,11 @@ def run_feed(
     to evaluate)."""
     at = now or datetime.now(UTC)
     if isinstance(feed.source, FileSource):
-        receipts, errors = _run_files(db, feed, feed.source, time_zone, at, now)
+        receipts, errors = _run_files(db, feed, feed.source, time_zone, at, now, precedence)
         not_modified = False
     elif isinstance(feed.source, HttpSource):
         receipts, errors, not_modified = _run_http(
-            db, feed, feed.source, time_zone, at, environ or {}, policy, client, now
+            db, feed, feed.source, time_zone, at, environ or {}, policy, client, now, precedence
         )
     else:
         raise ServiceError(f"feed {feed.name!r} is a push feed; it has nothing to pull")
@@ -287,7 +296,7 @@ def run_feed(
 
 def _run_files(
     db: Database, feed: FeedDefinition, source: FileSource, time_zone: str, at: datetime,
-    received_at: datetime | None = None,
+    received_at: datetime | None = None, precedence: Precedence | None = None,
 ) -> tuple[list[IngestReceipt], list[str]]:
     receipts, errors = [], []
     files = pending_files(source)
@@ -298,7 +307,7 @@ def _run_files(
         try:
             outcome = ingest_recorded(
                 db, feed=feed, payload=Payload.from_path(path), time_zone=time_zone,
-                received_at=received_at,
+                received_at=received_at, precedence=precedence,
             )
         except FeedFileError as exc:
             move_aside(path, source, outcome="rejected", now=at)
@@ -312,7 +321,7 @@ def _run_files(
 def _run_http(
     db: Database, feed: FeedDefinition, source: HttpSource, time_zone: str, at: datetime,
     environ: Mapping[str, str], policy: RetryPolicy | None, client: httpx.Client | None,
-    received_at: datetime | None = None,
+    received_at: datetime | None = None, precedence: Precedence | None = None,
 ) -> tuple[list[IngestReceipt], list[str], bool]:
     with db.sessions() as session:
         state = session.get(FeedState, feed.name)
@@ -334,7 +343,7 @@ def _run_http(
         outcome = ingest_recorded(
             db, feed=feed, payload=Payload.from_bytes(source.url, got.content),
             time_zone=time_zone, received_at=received_at, etag=got.etag,
-            last_modified=got.last_modified,
+            last_modified=got.last_modified, precedence=precedence,
         )
     except FeedFileError as exc:
         return [], [str(exc)], False
@@ -375,17 +384,32 @@ class FeedStatus:
     # When a feed that never delivered is past its first expected delivery plus its staleness
     # limit (:func:`first_delivery_due`); None: not yet, or no expectation (irregular cadence).
     overdue_since: datetime | None = None
+    #: the feed definition's limit on the rejected share of a delivery
+    max_rejected_share: float = 0.1
+
+    @property
+    def rejected_share(self) -> float | None:
+        """Rejected rows / all rows of the last delivery (None: nothing delivered)."""
+        total = self.last_accepted + self.last_rejected
+        return self.last_rejected / total if total else None
+
+    @property
+    def too_many_rejected(self) -> bool:
+        """Whether the last delivery rejected more than ``max_rejected_share`` of its rows."""
+        share = self.rejected_share
+        return share is not None and share > self.max_rejected_share
 
     @property
     def health(self) -> str:
-        """``ok``, ``attention`` (an error or stale regions), ``no delivery yet`` (configured,
-        nothing received and not yet overdue) or ``overdue`` (nothing received past the first
-        expected delivery plus the staleness limit). Never ``ok`` before a first delivery."""
+        """``ok``, ``attention`` (an error, stale regions, or a last delivery that rejected more
+        than ``max_rejected_share`` of its rows), ``no delivery yet`` (configured, nothing
+        received and not yet overdue) or ``overdue`` (nothing received past the first expected
+        delivery plus the staleness limit). Never ``ok`` before a first delivery."""
         if self.last_error:
             return "attention"
         if self.vintages == 0:
             return "overdue" if self.overdue_since is not None else "no delivery yet"
-        return "attention" if self.stale_regions else "ok"
+        return "attention" if self.stale_regions or self.too_many_rejected else "ok"
 
     @property
     def healthy(self) -> bool:
@@ -510,7 +534,7 @@ def feed_statuses(
             last_rejected=last.rows_rejected if last else 0, regions=len(mine),
             stale_regions=tuple(f.region for f in mine if f.stale),
             newest_ref_date=max((f.latest_ref_date for f in mine), default=None),
-            overdue_since=overdue_since,
+            overdue_since=overdue_since, max_rejected_share=feed.max_rejected_share,
         ))
     return out
 
@@ -706,7 +730,7 @@ def check_push(
 
 def ingest_push(
     db: Database, *, feed: FeedDefinition, content: bytes, content_type: str = "",
-    time_zone: str = "UTC",
+    time_zone: str = "UTC", precedence: Precedence | None = None,
 ) -> IngestReceipt:
     """Ingest a pushed ``content`` for an already checked ``feed`` as one vintage (committed).
 
@@ -720,18 +744,23 @@ def ingest_push(
     label = f"push to {feed.name}"
     return ingest_recorded(
         db, feed=feed, payload=Payload.from_bytes(label, content), time_zone=time_zone,
+        precedence=precedence,
     ).receipt
 
 
 def upload_payload(
     db: Database, *, catalogue: FeedCatalogue, feed_name: str, filename: str,
     content: bytes | BinaryIO, actor: str, time_zone: str = "UTC", dry_run: bool = False,
+    confirmed: str = "",
 ) -> IngestReceipt:
     """A file a staff member uploaded by hand (any configured feed's layout).
 
     ``content`` is the bytes or an open, seekable file (an upload spooled to disk, read in
     blocks). Recorded in the feed state like every other way in (:func:`ingest_recorded`); the
-    vintage's source is ``upload FILENAME by ACTOR``.
+    vintage's source is ``upload FILENAME by ACTOR``. The catalogue's precedence applies, and
+    an upload that would revise values another feed sent stores nothing and raises
+    :class:`UnconfirmedRevisionsError` unless ``confirmed`` is the digest of those revisions
+    (the receipt the person confirmed).
     """
     feed = feed_named(catalogue, feed_name)
     label = f"{UPLOAD_PREFIX}{filename}{UPLOAD_BY}{actor}"[:500]
@@ -739,6 +768,7 @@ def upload_payload(
                else Payload.from_file(label, content))
     return ingest_recorded(
         db, feed=feed, payload=payload, time_zone=time_zone, dry_run=dry_run,
+        precedence=catalogue.precedence(), confirm_other_feeds=True, confirmed=confirmed,
     ).receipt
 
 

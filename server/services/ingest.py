@@ -49,6 +49,13 @@ from server.services.audit import record
 from server.services.database import Database
 from server.services.evaluation import EvaluationRun, evaluate_if_behind
 from server.services.notify import NotifyConfig
+from server.services.revisions import (
+    Precedence,
+    RevisedValue,
+    RevisionCheck,
+    UnconfirmedRevisionsError,
+    check_revisions,
+)
 from server.store.models import Measure, Region, Vintage
 from server.store.reads import newest_values
 from server.store.types import UTCDateTime
@@ -95,6 +102,14 @@ class IngestReceipt:
     rejections: tuple[Rejection, ...]  # the first KEPT_REJECTIONS, in line order
     # ``line`` (CSV) or ``record`` (JSON: position in the list): what ``Rejection.line`` counts
     unit: str = "line"
+    #: stored values this payload revises (old -> new, and the feed that sent the old one), the
+    #: first KEPT_REVISIONS; ``revised`` counts all, ``revised_other_feeds`` those another feed
+    #: sent (``server/services/revisions.py``)
+    revisions: tuple[RevisedValue, ...] = ()
+    revised: int = 0
+    revised_other_feeds: int = 0
+    #: what a confirmation of those revisions sends back (empty: nothing to confirm)
+    revisions_digest: str = ""
 
     @property
     def identical_to(self) -> int | None:
@@ -180,12 +195,20 @@ def stamp_in_commit_order(*, session: Session) -> datetime:
 def ingest_payload(
     *, session: Session, feed: FeedDefinition, payload: Payload, received_at: datetime,
     today: date, dry_run: bool = False, progress: Progress | None = None,
-    stamp: bool = False,
+    stamp: bool = False, precedence: Precedence | None = None,
+    confirm_other_feeds: bool = False, confirmed: str = "",
 ) -> IngestReceipt:
     """Validate ``payload`` against ``feed`` and land it as one vintage (never commits).
 
     With ``stamp``, the vintage's ``received_at`` is set at the end, in commit order
     (:func:`stamp_in_commit_order`); ``received_at`` is then only the provisional value.
+
+    Accepted rows are compared with the current stored values (:mod:`server.services.revisions`):
+    the receipt lists the values revised; rows outranked by a feed of higher ``precedence``
+    (measure -> feed -> rank) are rejected (``outranked``). With ``confirm_other_feeds``, a
+    payload that would revise values sent by another feed is landed only when ``confirmed`` is
+    the digest of exactly those revisions; otherwise nothing is written and
+    :class:`~server.services.revisions.UnconfirmedRevisionsError` carries the would-be receipt.
 
     Raises :class:`~server.feeds.errors.FeedFileError` (and nothing is written) when the file is
     rejected whole: undecodable bytes, a header without the required columns, no bytes at all,
@@ -245,6 +268,23 @@ def ingest_payload(
         del accepted
         # Index order (measure, region, date): B-tree inserts then append instead of splitting.
         kept = kept.take(np.lexsort((kept.day, kept.region_id, kept.measure_id)))
+        revised = check_revisions(session=session, rows=kept, catalogue=catalogue,
+                                  feed=feed.name, precedence=precedence)
+        if revised.outranked.size:
+            outranked = _late_rejections(
+                feed, payload, kept.line[revised.outranked],
+                ("outranked",) * revised.outranked.size, revised.outranked_messages,
+            )
+            tally.add(outranked)
+            if not dry_run:
+                insert_rejections(session=session, vintage_id=vintage.id, rejections=outranked)
+            mask = np.ones(len(kept), dtype=bool)
+            mask[revised.outranked] = False
+            kept = kept.take(mask)
+        if (not dry_run and confirm_other_feeds and revised.revised_other_feeds
+                and confirmed != revised.digest):
+            preview = _receipt(feed, payload, received_at, None, True, kept, tally, revised)
+            raise UnconfirmedRevisionsError(preview, revised, feed.name)  # undoes the savepoint
         if not dry_run:
             insert_observation_arrays(
                 session=session, vintage_id=vintage.id, region_id=kept.region_id,
@@ -257,15 +297,28 @@ def ingest_payload(
             record(
                 session=session, actor="feeds", action="feed.ingest", subject=feed.name,
                 details={"vintage": vintage.id, "source": payload.label[:200],
-                         "accepted": len(kept), "rejected": tally.total},
+                         "accepted": len(kept), "rejected": tally.total,
+                         "revised": revised.revised,
+                         "revised_other_feeds": revised.revised_other_feeds,
+                         **({"confirmed_revisions": revised.digest}
+                            if confirm_other_feeds and revised.digest else {})},
             )
             session.flush()
+    return _receipt(feed, payload, received_at, None if dry_run else vintage.id, dry_run, kept,
+                    tally, revised)
+
+
+def _receipt(
+    feed: FeedDefinition, payload: Payload, received_at: datetime, vintage_id: int | None,
+    dry_run: bool, kept: Accepted, tally: _Tally, revised: RevisionCheck,
+) -> IngestReceipt:
     return IngestReceipt(
         feed=feed.name, source=payload.label, checksum=payload.checksum, received_at=received_at,
-        vintage_id=None if dry_run else vintage.id, unchanged=False, dry_run=dry_run,
+        vintage_id=vintage_id, unchanged=False, dry_run=dry_run,
         rows_accepted=len(kept), rows_rejected=tally.total, reasons=tally.reasons(),
         rejections=tuple(sorted(tally.kept, key=lambda r: (r.line, r.reason))),
-        unit=record_unit(feed),
+        unit=record_unit(feed), revisions=revised.revisions, revised=revised.revised,
+        revised_other_feeds=revised.revised_other_feeds, revisions_digest=revised.digest,
     )
 
 
@@ -331,8 +384,12 @@ def ingest_and_evaluate(
     evaluate: bool = True,
     after_landing: Callable[[Session, IngestReceipt], None] | None = None,
     notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
+    precedence: Precedence | None = None, confirm_other_feeds: bool = False,
+    confirmed: str = "",
 ) -> IngestOutcome:
     """Ingest ``payload`` in its own transaction; after commit, evaluate what is not evaluated.
+
+    ``precedence``, ``confirm_other_feeds`` and ``confirmed``: as :func:`ingest_payload`.
 
     ``after_landing`` runs inside the ingest transaction (the feed state is recorded there, so
     ETag and vintage commit together). Without ``received_at`` the vintage is stamped in commit
@@ -347,7 +404,8 @@ def ingest_and_evaluate(
         receipt = ingest_payload(
             session=session, feed=feed, payload=payload, received_at=now,
             today=office_today(now, time_zone), dry_run=dry_run, progress=progress,
-            stamp=received_at is None,
+            stamp=received_at is None, precedence=precedence,
+            confirm_other_feeds=confirm_other_feeds, confirmed=confirmed,
         )
         if after_landing is not None:
             after_landing(session, receipt)

@@ -237,6 +237,39 @@ def _published_changes(
     )
 
 
+def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[Change, ...]:
+    """Overrides taken after ``since`` (the previous morning), published or not: a person set
+    a tier other than the engine's recommendation, which the day's changes should say even
+    when the published tier did not move. Tiers are named under the ruleset each decision was
+    made under (:mod:`server.services.tiers`)."""
+    if since is None:
+        return ()
+    names = {line.code: line.name for line in base.lines}
+    rows = session.execute(
+        select(Region.code, Decision, Assessment.recommended_tier)
+        .join(Region, Region.id == Decision.region_id)
+        .outerjoin(Assessment, Assessment.id == Decision.assessment_id)
+        .where(Decision.kind == "overridden", Decision.decided_at > since)
+        .order_by(Region.code, Decision.decided_at, Decision.id)
+    ).all()
+    if not rows:
+        return ()
+    scales = decision_scales(session=session, rows=[row for _code, row, _rec in rows])
+    out = []
+    for code, row, recommended in rows:
+        scale = scales[row.id]
+        rec = "" if recommended is None else (
+            f" (recommended: {scale.name(recommended)}"
+            f"{'' if recommended < 0 else f' ({recommended})'})")
+        state = ("published" if row.published_at is not None
+                 else "not yet published")
+        out.append(Change(code=code, name=names.get(code, code), what=(
+            f"overridden to {scale.name(row.tier)} ({row.tier}){rec}, in force from "
+            f"{row.effective_date.isoformat()}, {state}: {row.reason}"
+        )))
+    return tuple(out)
+
+
 def _review_state(
     session: Session, key: tuple[object, ...], base: _Base, since: datetime | None = None,
     ruleset: Ruleset | None = None,
@@ -275,7 +308,8 @@ def _review_state(
                 counts[off.tier] = counts.get(off.tier, 0) + 1
         hit = _Review(lines=tuple(lines), tier_counts=counts, pending=len(pending),
                       decided=sum(1 for line in lines if line.decided_tier is not None),
-                      published=_published_changes(session, base, since, ruleset))
+                      published=_published_changes(session, base, since, ruleset)
+                      + _overrides(session, base, since))
         with _LOCK:
             _REVIEW.clear()
             _REVIEW[stamp] = hit

@@ -7,8 +7,12 @@ recommendation or overrides it, always with a reason; :func:`publish` makes ever
 decision visible to the public. Districts with no decision yet start from their recommended tier
 when first published. Every decision and publication is written to the audit log.
 
-A decision on an assessment of day ``d`` is effective from ``d + 1`` (the morning after the data
-it was based on). Only the district's current item can be decided: its assessment of the newest
+A decision takes effect as the active policy's ``timing.effective_delay_days`` says
+(:func:`effective_from`): that many days after the office's calendar day on which it is taken,
+and never before the day after the data it answered (a decision taken on the 4th under a delay of
+one day is in force from the 5th; under no delay from the 4th).
+
+Only the district's current item can be decided: its assessment of the newest
 day in force at the active ruleset's newest evaluation run (the row with the greatest data cutoff
 not after the run's; a run stores only what changed, so an unchanged recommendation keeps its
 row, its id and any decision on it); a form posted for any other assessment (an older day, a row
@@ -31,6 +35,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
+from zoneinfo import ZoneInfo
 
 from sqlalchemy import func, or_, select, update
 from sqlalchemy.orm import Session, aliased
@@ -65,6 +70,7 @@ __all__ = [
     "current_run",
     "decide",
     "decision_history",
+    "effective_from",
     "has_something_to_publish",
     "official_tiers",
     "pending_changes",
@@ -212,6 +218,12 @@ class DecisionRecord:
     #: for its explanation as it was when decided
     assessment_day: date | None = None
     assessment_cutoff: datetime | None = None
+    #: True when the decision answered no assessment (``recorded``, imported) and the
+    #: recommendation shown is the engine's for the day it was taken, read as known then, or,
+    #: when that day was first assessed after the decision, as first assessed
+    #: (``recommended_later``)
+    recommended_looked_up: bool = False
+    recommended_later: bool = False
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -411,6 +423,22 @@ def _answered_assessments(
     return {ids[aid]: (day, tier) for aid, day, tier in session.execute(query)}
 
 
+def effective_from(
+    data_day: date, decided_at: datetime, ruleset: Ruleset | None, time_zone: str = "UTC"
+) -> date:
+    """The first day a decision is in force: ``timing.effective_delay_days`` of ``ruleset``
+    after the office's calendar day of ``decided_at`` (in ``time_zone``), and at the earliest
+    the day after ``data_day``, the day of the data it answered (docs/decisions.md).
+
+    A decision taken on day t under a delay of k days is in force from t + k, as the engine
+    counts it for its own decisions (``docs/rules.md``, "Semantics", point 4); the floor keeps a
+    decision from reaching back over days already assessed.
+    """
+    delay = 1 if ruleset is None else ruleset.timing.effective_delay_days
+    taken_on = decided_at.astimezone(ZoneInfo(time_zone)).date()
+    return max(data_day + timedelta(days=1), taken_on + timedelta(days=delay))
+
+
 def _approver(session: Session, user: str) -> User:
     row = session.scalar(select(User).where(User.name == user))
     if row is None or not row.active:
@@ -515,6 +543,7 @@ def _current_for(session: Session, posted: Assessment) -> Assessment:
 def decide(
     *, session: Session, assessment_id: int, user: str, accept: bool, tier: int | None,
     reason: str, official_tier: int | None, official_decision_id: int | None,
+    time_zone: str = "UTC", now: datetime | None = None,
 ) -> Decision:
     """Confirm (``accept``) the recommendation of an assessment, or override it with ``tier``.
 
@@ -527,6 +556,9 @@ def decide(
     the district's official decision; the comparison and the insert run under a lock on the
     district (:func:`_lock_district`), so of two approvers deciding the same change at the same
     moment exactly one succeeds and the other gets :class:`DecisionConflictError`.
+
+    The decision takes effect on :func:`effective_from` of the assessment's day and ``now``
+    (the clock when None) in the office's ``time_zone``.
 
     Raises
     ------
@@ -573,10 +605,11 @@ def decide(
         if tier < 0 or (top is not None and tier > top):
             raise ReviewError("tier", f"{tier} is not a tier (0..{top})")
         chosen, kind = tier, "overridden"
-    now = datetime.now(UTC)
+    now = now or datetime.now(UTC)
     row = DecisionRow(
         region_id=assessment.region_id, assessment_id=assessment.id,
-        effective_date=assessment.ref_date + timedelta(days=1), tier=chosen, kind=kind,
+        effective_date=effective_from(assessment.ref_date, now, ruleset, time_zone),
+        tier=chosen, kind=kind,
         reason=reason.strip(), decided_by=approver.id, decided_at=now, published_at=None,
     )
     session.add(row)
@@ -651,7 +684,8 @@ def has_something_to_publish(*, session: Session) -> bool:
 
 
 def publish(
-    *, session: Session, user: str, notify: NotifyConfig | None = None
+    *, session: Session, user: str, notify: NotifyConfig | None = None,
+    time_zone: str = "UTC",
 ) -> PublishResult:
     """Publish every unpublished decision; districts never decided start from their recommendation.
 
@@ -678,12 +712,14 @@ def publish(
         return PublishResult(published_at=now, decisions=0, regions=(), initial=())
     initial: list[str] = []
     if starting:
+        ruleset = _active(session)
         for item in starting:
             a = item.assessment
             session.add(
                 DecisionRow(
                     region_id=item.region_id, assessment_id=a.id,
-                    effective_date=a.ref_date + timedelta(days=1), tier=a.recommended_tier,
+                    effective_date=effective_from(a.ref_date, now, ruleset, time_zone),
+                    tier=a.recommended_tier,
                     kind="confirmed", reason="first publication: starts from the recommended tier",
                     decided_by=approver.id, decided_at=now, published_at=None,
                 )
@@ -738,15 +774,64 @@ def decision_history(
         query = query.limit(limit)
     found = session.execute(query).all()
     scales = decision_scales(session=session, rows=[r[0] for r in found])
-    return [
-        DecisionRecord(
+    looked_up = _recommended_when_taken(
+        session, active_id, [r[0] for r in found if r[0].assessment_id is None])
+    out = []
+    for row, code, name, user, recommended, day, cutoff, ruleset_id in found:
+        later = False
+        if row.assessment_id is None and row.id in looked_up:
+            recommended, day, cutoff, later = looked_up[row.id]
+            ruleset_id = active_id
+            name_of = tier_name(parsed(active) if active else None, recommended)
+        else:
+            name_of = "" if recommended is None else scales[row.id].name(recommended)
+        out.append(DecisionRecord(
             id=row.id, region=code, name=name, tier=row.tier,
             tier_name=scales[row.id].name(row.tier), recommended_tier=recommended,
-            recommended_name="" if recommended is None else scales[row.id].name(recommended),
+            recommended_name=name_of,
             kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
             effective_date=row.effective_date, published_at=row.published_at,
             assessment_day=day if ruleset_id == active_id else None,
             assessment_cutoff=cutoff if ruleset_id == active_id else None,
-        )
-        for row, code, name, user, recommended, day, cutoff, ruleset_id in found
-    ]
+            recommended_looked_up=row.assessment_id is None and row.id in looked_up,
+            recommended_later=later,
+        ))
+    return out
+
+
+def _recommended_when_taken(
+    session: Session, ruleset_id: int, rows: list[DecisionRow]
+) -> dict[int, tuple[int, date, datetime, bool]]:
+    """For decisions that answered no assessment (imported ``recorded`` ones): decision id ->
+    (recommended tier, day, data cutoff, first assessed after the decision) of the active
+    ruleset's assessment of the day the decision was taken (its ``decided_at`` in UTC, at the
+    latest the day before it took effect), as known at ``decided_at``: the row with the greatest
+    data cutoff not after it, else (the day was assessed only later) the first row of the day.
+    Decisions whose day has no assessment are left out."""
+    if not rows or ruleset_id < 0:
+        return {}
+    def day_of(r: DecisionRow) -> date:
+        return min(r.decided_at.astimezone(UTC).date(), r.effective_date - timedelta(days=1))
+    wanted = {(r.region_id, day_of(r)) for r in rows}
+    found = session.execute(
+        select(Assessment.region_id, Assessment.ref_date, Assessment.data_cutoff,
+               Assessment.recommended_tier)
+        .where(Assessment.ruleset_id == ruleset_id,
+               Assessment.region_id.in_(sorted({k[0] for k in wanted})),
+               Assessment.ref_date.in_(sorted({k[1] for k in wanted})))
+        .order_by(Assessment.data_cutoff)
+    ).all()
+    by_key: dict[tuple[int, date], list[tuple[datetime, int]]] = {}
+    for region_id, day, cutoff, tier in found:
+        if (region_id, day) in wanted:
+            by_key.setdefault((region_id, day), []).append((cutoff, tier))
+    out = {}
+    for r in rows:
+        day = day_of(r)
+        versions = by_key.get((r.region_id, day))
+        if not versions:
+            continue
+        known = [v for v in versions if v[0] <= r.decided_at]
+        cutoff, tier = known[-1] if known else versions[0]
+        out[r.id] = (tier, day, cutoff, not known)
+    return out

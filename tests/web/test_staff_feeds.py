@@ -50,14 +50,15 @@ def test_upload_form_defaults_to_the_push_feed_and_keeps_the_choice(client: Test
 
 def test_receipt_is_singular_and_links_back_to_the_same_feed(client: TestClient) -> None:
     login(client, ROLE_USER["analyst"])
-    answer = upload(client, b"region,date,measure,value\nD13,2026-11-20,cases,29\n"
-                            b"D99,2026-11-20,cases,1\n", name="one-good.csv")
+    # a day after the demo's data (2026-11-30): nothing stored to revise, so nothing to confirm
+    answer = upload(client, b"region,date,measure,value\nD13,2026-12-01,cases,29\n"
+                            b"D99,2026-12-01,cases,1\n", name="one-good.csv")
     assert answer.status_code == 200
     text = re.sub(r"\s+", " ", answer.text)
     assert "<strong>1</strong> row accepted, <strong>1</strong> rejected" in text
     assert 'href="/staff/feeds?upload=long-csv"' in text
-    again = upload(client, b"region,date,measure,value\nD13,2026-11-20,cases,29\n"
-                           b"D99,2026-11-20,cases,1\n", name="one-good.csv")
+    again = upload(client, b"region,date,measure,value\nD13,2026-12-01,cases,29\n"
+                           b"D99,2026-12-01,cases,1\n", name="one-good.csv")
     assert "identical to vintage" in again.text
     page = client.get("/staff/feeds?feed=long-csv").text
     assert "<td>one-good.csv</td><td>ada.analyst</td>" in page
@@ -129,7 +130,7 @@ def test_upload_without_a_length_is_cut_off_at_the_limit(small_cap: TestClient) 
 
 def test_upload_within_the_limit_is_read_from_the_spooled_file(small_cap: TestClient) -> None:
     login(small_cap, ROLE_USER["analyst"])
-    answer = upload(small_cap, b"region,date,measure,value\nD13,2026-11-21,cases,17\n",
-                    name="small.csv")
+    answer = upload(small_cap, b"region,date,measure,value\nD13,2026-12-02,cases,17\n",
+                    name="small.csv")  # after the demo's data: nothing to revise or confirm
     assert answer.status_code == 200
     assert "<strong>1</strong> row accepted" in re.sub(r"\s+", " ", answer.text)

@@ -196,10 +196,14 @@ def test_decide_on_a_superseded_row_with_the_same_tier_decides_the_current_one(
     row = demo_session.get(Assessment, current)
     assert row is not None
     posted = _earlier_row(demo_session, region_id, last_day, row.recommended_tier)
+    # decided the morning after the newest data: the demo policy's effective_delay_days 1
+    # puts it in force the day after that (effective_from; was the data day + 1 before)
+    morning = datetime.combine(last_day + timedelta(days=1), datetime.min.time(), UTC)
     d = decide(session=demo_session, assessment_id=posted, user=APPROVER, accept=True,
-               tier=None, reason="typed before the feed landed", **seen(demo_session, posted))
+               tier=None, reason="typed before the feed landed", **seen(demo_session, posted),
+               now=morning + timedelta(hours=9))
     assert (d.assessment_id, d.tier, d.effective_date) == (
-        current, row.recommended_tier, last_day + timedelta(days=1))
+        current, row.recommended_tier, last_day + timedelta(days=2))
     details = demo_session.scalars(select(AuditEntry.details).where(
         AuditEntry.action == "decision.confirmed")).one()
     assert (details["assessment_id"], details["posted_assessment_id"]) == (current, posted)
