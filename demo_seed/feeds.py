@@ -37,6 +37,10 @@ ARRIVAL: dict[str, time] = {
     "wastewater-http": time(6, 0),  # pulled every 6 hours
     "gp-sentinel": time(6, 45),
 }
+#: The invented office's time zone (an IANA name): ``tierwise demo`` serves with it unless
+#: TIERWISE_TIME_ZONE is set, so pages that show the office's local time show it; the feeds'
+#: arrival hours above stay in UTC.
+DEMO_TIME_ZONE = "Europe/Berlin"
 LATE_FEED = "gp-sentinel"
 LATE_DAYS = 5  # its last delivery came this many days before the newest morning
 SOURCES: dict[str, str] = {

@@ -97,10 +97,11 @@ def demo(
     from demo_seed.story import demo_morning, morning_lines
 
     end = date.fromisoformat(end_date) if end_date else None
-    from demo_seed.feeds import DEMO_FEEDS_FILE
+    from demo_seed.feeds import DEMO_FEEDS_FILE, DEMO_TIME_ZONE
 
     feeds = {} if os.environ.get("TIERWISE_FEEDS_FILE") else {"feeds_file": DEMO_FEEDS_FILE}
-    settings = _settings(demo_mode=True, scheduler=scheduler, **feeds)
+    zone = {} if os.environ.get("TIERWISE_TIME_ZONE") else {"time_zone": DEMO_TIME_ZONE}
+    settings = _settings(demo_mode=True, scheduler=scheduler, **feeds, **zone)
     db = _database(settings, check=False)
     try:
         summary = seed_demo(
@@ -136,6 +137,7 @@ def demo(
         except OSError as exc:
             say(f"Could not start the water authority's stand-in on 127.0.0.1:{PORT} ({exc}); "
                 "the wastewater-http feed's pulls will fail")
+    say(f"Office time zone: {settings.time_zone} (the public pages show publication times in it)")
     say(f"Public view: http://127.0.0.1:{port}/")
     say(f"Staff pages: http://127.0.0.1:{port}/staff/")
     say(f"API docs:    http://127.0.0.1:{port}/docs")
