@@ -10,6 +10,7 @@ values (the deterministic mean), which the tests compare with the final-size equ
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -153,7 +154,9 @@ def simulate_seir(*, population: np.ndarray, mixing: np.ndarray, beta: np.ndarra
                   latent_mean: float, infectious_mean: float, initial_exposed: np.ndarray,
                   importation_rate: np.ndarray | float = 0.0, waning_days: float | None = None,
                   awareness_scale: float | None = None, awareness_lag: int = 5,
-                  rng: np.random.Generator | None = None) -> SeirResult:
+                  rng: np.random.Generator | None = None,
+                  target_rt: Callable[[int, np.ndarray], np.ndarray] | None = None,
+                  ) -> SeirResult:
     """Run the chain-binomial metapopulation SEIR model.
 
     Parameters
@@ -179,6 +182,10 @@ def simulate_seir(*, population: np.ndarray, mixing: np.ndarray, beta: np.ndarra
         Days between infections and the public's awareness of them.
     rng : numpy.random.Generator, optional
         Random source; ``None`` runs the deterministic mean of the same equations.
+    target_rt : callable, optional
+        ``target_rt(t, infections)`` with the new infections of days ``0..t-1`` (shape
+        ``(n, t)``) returns the reproduction number each district should have on day *t*,
+        shape ``(n,)``; NaN leaves a district to ``beta`` (see Notes).
 
     Returns
     -------
@@ -197,8 +204,13 @@ def simulate_seir(*, population: np.ndarray, mixing: np.ndarray, beta: np.ndarra
     plus Poisson importations into E and binomial waning R -> S. With ``awareness_scale``
     :math:`h`, contacts fall with the district's 7-day infections per 100 000 seen
     ``awareness_lag`` days late, :math:`x_{i,t}`:
-    :math:`\beta^{eff}_{i,t} = \beta_{i,t} / (1 + (x_{i,t}/h)^2)`, an awareness-driven
-    response that flattens peaks into plateaus [3]_. Without waning and
+    :math:`\\beta^{eff}_{i,t} = \\beta_{i,t} / (1 + (x_{i,t}/h)^2)`, an awareness-driven
+    response that flattens peaks into plateaus [3]_. Where ``target_rt`` gives
+    :math:`R^*_{i,t}`, the day's rate is set so that the district's own infectious people
+    would cause :math:`R^*` infections each, whatever its neighbours' prevalence:
+    :math:`\\beta^{eff}_{i,t} = R^*_{i,t} \\, p_r \\, (I_i/N_i) / (\\sum_j M_{ij} I_j/N_j)
+    \\cdot N_i / S_i` (a scripted course, replacing ``beta`` and the behavioural response
+    there). Without waning and
     importations, one district, and the deterministic mean, the final size obeys
     :math:`z = 1 - e^{-R_0 z}` with :math:`R_0 = \\beta / p_r` exactly, because
     :math:`\\log(S_\\infty/S_0) = -\\beta \\sum_t I_t / N` and :math:`\\sum_t I_t = z N / p_r`
@@ -239,6 +251,12 @@ def simulate_seir(*, population: np.ndarray, mixing: np.ndarray, beta: np.ndarra
         if awareness_scale is not None and t > awareness_lag:
             seen = out["inf"][:, max(0, t - awareness_lag - 7): t - awareness_lag].sum(axis=1)
             b_t = b_t / (1.0 + (seen / pop * 1e5 / awareness_scale) ** 2)
+        if target_rt is not None:
+            wanted = np.asarray(target_rt(t, out["inf"][:, :t]), dtype=float)
+            pressure = mix @ (i_ / pop)
+            scripted = np.isfinite(wanted) & (s > 0) & (pressure > 0)
+            own = np.divide(i_ / pop, pressure, out=np.ones(n), where=pressure > 0)
+            b_t = np.where(scripted, wanted * p_r * own * pop / np.maximum(s, 1.0), b_t)
         lam = b_t * (mix @ (i_ / pop))
         out["rt"][:, t] = b_t * s / pop / p_r
         new_inf = draw(s, -np.expm1(-lam))

@@ -6,7 +6,10 @@ it follows each district's recommended tiers and records the official tier a wee
 have set -- a change is taken up once it has held for a few days, and the newest ones are left
 for the demo's approver to decide. One step down, in the most populous district, is held a week
 longer than recommended, as offices sometimes do, so the history shows an official line that
-departs from the recommendation with a reason.
+departs from the recommendation with a reason. And when the newest recommendations hold no step
+down (or no step up) that awaits review, the office's review is recorded as having deferred the
+newest one of the last weeks (:func:`defer_newest_change`): it kept that district's tier, with a
+reason, so the morning's queue holds a change each way for the demo's approver.
 
 Everything here is invented for the demonstration.
 """
@@ -20,13 +23,26 @@ import numpy as np
 
 from server.services.official_history import OfficialRecord
 
-__all__ = ["DECIDER", "HOLD_DAYS", "PENDING_DAYS", "REVIEW_LAG_DAYS", "official_history"]
+__all__ = [
+    "DECIDER",
+    "DEFER_WITHIN_DAYS",
+    "HOLD_DAYS",
+    "PENDING_DAYS",
+    "REVIEW_LAG_DAYS",
+    "defer_newest_change",
+    "official_history",
+]
 
 DECIDER = "otto.approver"   # the demo's approver account
 REVIEW_LAG_DAYS = 2         # a change is taken up once it has held this many days
 PENDING_DAYS = 7            # changes newer than this are left to the demo's reviewer
 HOLD_DAYS = 7               # the one step down held longer than recommended
 DECIDED_AT = time(14, 0)    # the review meets in the early afternoon (UTC)
+DEFER_WITHIN_DAYS = 35      # only a change of the last five weeks is deferred
+_DOWN_REASON = ("Weekly review: step down to {new} deferred; {kept} kept until the district's "
+                "care homes report two quiet weeks.")
+_UP_REASON = ("Weekly review: step up to {new} deferred; the rise is traced to one outbreak "
+              "that the district is containing. {kept} kept; to be reviewed again.")
 
 
 def _record(code: str, effective: date, tier: int, reason: str) -> OfficialRecord:
@@ -110,4 +126,44 @@ def official_history(
                                    f"Weekly review: recommended step {verb} to "
                                    f"{tier_name(new)} confirmed."))
             official = new
+    return out
+
+
+def defer_newest_change(
+    records: list[OfficialRecord], *, final: np.ndarray, regions: Sequence[str],
+    tier_name: Callable[[int], str], newest: date,
+) -> list[OfficialRecord]:
+    """``records`` with the newest step down and the newest step up deferred, unless one waits.
+
+    A change waits when a district's newest recommendation (``final``, by ``regions``) differs
+    from its newest official tier. For each direction (down, up) with no change waiting, the
+    newest record that moved a district that way, to the tier still recommended there and no
+    more than :data:`DEFER_WITHIN_DAYS` before ``newest``, is replaced by a record of the same
+    date that keeps the tier before it, with a reason; so that change waits for review.
+    """
+    last: dict[str, OfficialRecord] = {}
+    before: dict[str, int] = {}
+    for rec in records:
+        if rec.region in last:
+            before[rec.region] = last[rec.region].tier
+        last[rec.region] = rec
+    now = {code: int(final[i]) for i, code in enumerate(regions)}
+    out = list(records)
+    for sign, why in ((-1, _DOWN_REASON), (1, _UP_REASON)):
+        if any(now[c] >= 0 and (now[c] - r.tier) * sign > 0 for c, r in last.items()):
+            continue
+        moves = [r for c, r in last.items()
+                 if c in before and (r.tier - before[c]) * sign > 0 and now[c] == r.tier
+                 and (newest - r.effective_date).days <= DEFER_WITHIN_DAYS]
+        if not moves:
+            continue
+        move = max(moves, key=lambda r: (r.effective_date, r.region))
+        kept = before[move.region]
+        deferred = OfficialRecord(
+            line=0, region=move.region, effective_date=move.effective_date, tier=kept,
+            reason=why.format(new=tier_name(move.tier), kept=tier_name(kept)),
+            decided_by=move.decided_by, decided_at=move.decided_at,
+        )
+        out = [deferred if r is move else r for r in out]
+        last[move.region] = deferred
     return out

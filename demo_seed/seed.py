@@ -1,8 +1,10 @@
 """Fill a database with the invented demo scenario, through the services layer.
 
 Every name, place and number written here is invented for the demonstration. The data arrive as the
-vintages they would have arrived as: one per day, each holding that day's new values and the
-revisions of earlier days, so as-of reads see the county as it was known on any morning.
+vintages they would have arrived as: one per feed and day (through the demo feeds of
+:mod:`demo_seed.feeds`), each holding that day's new values and the revisions of earlier days,
+so as-of reads see the county as it was known on any morning, and the Feeds page judges real
+deliveries (one feed is late on purpose).
 """
 
 from __future__ import annotations
@@ -10,14 +12,23 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
-from datetime import UTC, date, datetime, time, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
 import pandas as pd
 
-from demo_seed.feeds import configure_demo_feeds
-from demo_seed.history import official_history
+from demo_seed.feeds import (
+    ARRIVAL,
+    FEED_OF_MEASURE,
+    LATE_DAYS,
+    LATE_FEED,
+    SOURCES,
+    configure_demo_feeds,
+    demo_limits,
+)
+from demo_seed.history import defer_newest_change, official_history
 from demo_seed.scenario import MEASURES, Scenario, build_scenario
+from demo_seed.standin import wastewater_csv
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
 from server.services.evaluation import (
@@ -26,6 +37,7 @@ from server.services.evaluation import (
     default_ruleset_path,
     store_ruleset,
 )
+from server.services.feeds import record_feed_state
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions
@@ -40,8 +52,6 @@ DEMO_USERS = (
     ("ines.admin", "admin", "demo-admin"),
     ("vic.viewer", "viewer", "demo-viewer"),
 )
-FEED = "demo-county"
-ARRIVAL = time(5, 30)  # the night's files land at 05:30 UTC
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -56,20 +66,35 @@ class SeedSummary:
     assessments: int
     push_tokens: dict[str, str]
     decisions: int = 0
+    wastewater_csv: bytes = b""  # what the stand-in water authority serves (demo_seed.standin)
 
 
 def _no_progress(_n: int = 1) -> None:
     return None
 
 
-def received_at(day: date) -> datetime:
-    """When the vintage of ``day`` arrived: the next morning (data of a day are known after it)."""
-    return datetime.combine(day + timedelta(days=1), ARRIVAL, tzinfo=UTC)
+def received_at(day: date, feed: str = "long-csv") -> datetime:
+    """When ``feed``'s vintage of ``day`` arrived: the next morning at the feed's hour (data of
+    a day are known after it)."""
+    return datetime.combine(day + timedelta(days=1), ARRIVAL[feed], tzinfo=UTC)
 
 
-def _vintages(observations: pd.DataFrame) -> Iterator[tuple[date, pd.DataFrame]]:
-    for known_on, group in observations.groupby("known_on", sort=True):
-        yield pd.Timestamp(known_on).date(), group[["region", "measure", "ref_date", "value"]]
+def _vintages(
+    observations: pd.DataFrame, end: date,
+) -> Iterator[tuple[str, date, pd.DataFrame]]:
+    """(feed, day known, rows) of every delivery, by day and feed; the late feed's last
+    :data:`~demo_seed.feeds.LATE_DAYS` deliveries never came."""
+    feeds = observations["measure"].map(FEED_OF_MEASURE)
+    if feeds.isna().any():
+        missing = sorted(set(observations.loc[feeds.isna(), "measure"]))
+        raise ValueError(f"no demo feed delivers {', '.join(missing)}")
+    last_late = end - timedelta(days=LATE_DAYS)
+    frame = observations.assign(feed=feeds)
+    for (known_on, feed), group in frame.groupby(["known_on", "feed"], sort=True):
+        day = pd.Timestamp(known_on).date()
+        if feed == LATE_FEED and day > last_late:
+            continue
+        yield str(feed), day, group[["region", "measure", "ref_date", "value"]]
 
 
 def seed_demo(
@@ -103,17 +128,22 @@ def seed_demo(
         )
         for name, role, password in DEMO_USERS:
             add_user(session=session, name=name, role=role, password=password, actor="demo")
-    batches = list(_vintages(scenario.observations))
+    batches = list(_vintages(scenario.observations, scenario.end))
     bar = (
         progress("seeding daily vintages", len(batches))
         if progress
         else nullcontext(_no_progress)
     )
     with bar as advance, db.transaction() as session:
-        writer = VintageWriter(session=session, feed=FEED, source="demo_seed simulator")
-        for day, rows in batches:
-            writer.append(rows, received_at=received_at(day))
+        writers = {feed: VintageWriter(session=session, feed=feed, source=source)
+                   for feed, source in SOURCES.items()}
+        last: dict[str, datetime] = {}
+        for feed, day, rows in batches:
+            last[feed] = received_at(day, feed)
+            writers[feed].append(rows, received_at=last[feed])
             advance(1)
+        for feed, at in last.items():
+            record_feed_state(session, feed=feed, at=at)
         record(
             session=session, actor="demo", action=DEMO_MARK, subject=f"seed={seed}",
             details={"start": scenario.start.isoformat(), "end": scenario.end.isoformat()},
@@ -122,7 +152,8 @@ def seed_demo(
         ruleset = store_ruleset(
             session=session, path=default_ruleset_path(rules_dir), author="demo"
         )
-        run = activate_ruleset(session=session, row=ruleset, actor="demo")
+        run = activate_ruleset(session=session, row=ruleset, actor="demo",
+                               stale_after=demo_limits())
     decisions = 0
     if history and run is not None:
         decisions = _record_history(db, scenario, run)
@@ -133,6 +164,7 @@ def seed_demo(
         observations=len(scenario.observations), users=DEMO_USERS,
         ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
         push_tokens=tokens, decisions=decisions,
+        wastewater_csv=wastewater_csv(scenario.observations),
     )
 
 
@@ -144,6 +176,10 @@ def _record_history(db: Database, scenario: Scenario, run: EvaluationRun) -> int
     records = official_history(
         regions=evaluation.regions, populations=[population[c] for c in evaluation.regions],
         dates=evaluation.dates, tier=evaluation.tier, tier_name=evaluation.ruleset.tier_name,
+    )
+    records = defer_newest_change(
+        records, final=evaluation.tier[:, -1], regions=evaluation.regions,
+        tier_name=evaluation.ruleset.tier_name, newest=scenario.end,
     )
     with db.transaction() as session:
         result = import_official_history(

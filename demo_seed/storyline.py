@@ -10,16 +10,29 @@ contacts as local incidence rises (awareness-driven behaviour). Reacting keeps t
 the scenario -- a first wave stopped by limits, a quiet spell, a larger second wave (the one
 that fills the ICUs), and a third wave after easing -- much the same for any end date and
 seed. A policy not triggered by its latest day is placed at that day.
+
+The last :data:`EPILOGUE_DAYS` days follow a script anchored to the end date, so that the
+newest morning tells the same story for any seed, length and end date: the west (Upper
+Corven) is past its wave, two of its districts only lately; the centre (Astrel Downs) sits on
+a plateau; in the east (Grennwater) a village has a local outbreak and the largest district
+has begun to rise, its neighbours more slowly (:data:`SCRIPT`). The policies' windows are
+fractions of the days before the epilogue, so the three waves play out before it.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date, timedelta
 
 import numpy as np
 
-from demo_seed.epidemic import SeirResult, mixing_matrix, simulate_seir
+from demo_seed.epidemic import (
+    SeirResult,
+    generation_interval_pmf,
+    mixing_matrix,
+    simulate_seir,
+)
 from demo_seed.geography import Geography
 
 __all__ = ["Calendar", "TransmissionChange", "Truth", "build_calendar", "simulate_truth"]
@@ -37,6 +50,33 @@ SIGNAL_LAG_DAYS = 5
 SEED_EXPOSED = {"D01": 40.0, "D08": 12.0, "D12": 6.0}
 IMPORTATION_PER_PERSON = 1.5e-6
 AWARENESS_SCALE = 1500.0     # weekly infections per 100 000 that halve contacts
+EPILOGUE_DAYS = 105          # the last 15 weeks follow SCRIPT
+SCRIPT_GAIN = 1.0            # share of the gap to the script closed per generation
+SCRIPT_RT = (0.4, 3.0)       # reproduction numbers the script may ask for
+
+# District -> the course of its true infections per 100 000 per 7 days over the epilogue, as
+# anchors (days before the end date, level); it starts from where the district stands
+# EPILOGUE_DAYS before the end and is log-linear between anchors. Cases follow infections by
+# about 8 days and are about 45 % of them, so, with the demo policy's thresholds and timing
+# (enter on the lower bound, 28 days lower before a step down, 5 days higher before a step
+# up), the anchors below bring: the west down to Heightened a month before the end except
+# Kessanthal and Wendmarsh, whose steps down are recommended in the last week; the centre on
+# High; Haldenmoor (a village, too small to fill the region's ICU) on Severe; Grennick up to
+# High in the last days, and rising infections in its neighbours. Invented for the demo.
+_LOW = ((84, 45.0), (0, 40.0))
+_PLATEAU = ((84, 250.0), (0, 250.0))
+SCRIPT: dict[str, tuple[tuple[int, float], ...]] = {
+    "D01": ((84, 110.0), (0, 110.0)),
+    "D02": _LOW,
+    "D03": ((84, 110.0), (0, 110.0)),
+    "D04": ((84, 900.0), (0, 900.0)),
+    "D05": ((84, 900.0), (63, 900.0), (45, 80.0), (0, 75.0)),
+    "D06": _PLATEAU, "D07": _PLATEAU, "D08": _PLATEAU, "D09": _PLATEAU, "D10": _PLATEAU,
+    "D11": _LOW,
+    "D12": ((84, 150.0), (35, 150.0), (0, 450.0)),
+    "D13": ((84, 45.0), (30, 40.0), (5, 1500.0), (0, 1800.0)),
+    "D14": ((84, 45.0), (25, 40.0), (0, 1200.0)),
+}
 
 
 @dataclass(frozen=True)
@@ -157,14 +197,72 @@ def _policy_curve(days: int, fired: list[int]) -> np.ndarray:
     return curve
 
 
-def _trigger_day(signal: np.ndarray, rule: PolicyRule, previous: int) -> int:
+def _trigger_day(signal: np.ndarray, rule: PolicyRule, previous: int, span: int) -> int:
     """First day the rule fires in its window; its latest day if it never does."""
-    days = signal.shape[0]
+    days = span
     first = max(int(rule.earliest * days), previous + rule.min_gap_days)
     last = max(int(rule.latest * days), first)
     window = signal[first : last + 1]
     hit = window >= rule.threshold if rule.rising else window <= rule.threshold
     return first + int(np.argmax(hit)) if np.any(hit) else last
+
+
+def _script_levels(codes: tuple[str, ...], start: np.ndarray) -> np.ndarray:
+    """Scripted weekly infections per 100 000, shape ``(districts, EPILOGUE_DAYS + 1)``, column
+    *k* for *k* days before the end; column ``EPILOGUE_DAYS`` is ``start``."""
+    k = np.arange(EPILOGUE_DAYS + 1)
+    out = np.empty((len(codes), k.size))
+    for i, code in enumerate(codes):
+        anchors = ((EPILOGUE_DAYS, max(float(start[i]), 1.0)), *SCRIPT[code])
+        ks = np.array([a for a, _ in anchors][::-1], dtype=float)
+        logs = np.log([v for _, v in anchors][::-1])
+        out[i] = np.exp(np.interp(k, ks, logs))
+    return out
+
+
+def script_control(codes: tuple[str, ...], population: np.ndarray, days: int,
+                   generation_interval: np.ndarray) -> Callable[[int, np.ndarray], np.ndarray]:
+    """The ``target_rt`` of :func:`~demo_seed.epidemic.simulate_seir` that follows :data:`SCRIPT`.
+
+    Notes
+    -----
+    On day *t* of the epilogue, with *x* the district's infections per 100 000 over the last
+    7 days and :math:`T(k)` the script *k* days before the end, the growth rate asked for is
+    the script's own, :math:`r = \\ln(T(k-1)/T(k))`, plus a share ``SCRIPT_GAIN`` of the gap
+    :math:`\\ln(T(k+4)/x)` per mean generation time :math:`\\bar g` (the trailing week is
+    centred 4 days back). It becomes a reproduction number through the Euler-Lotka equation
+    of the model's generation interval, :math:`R = 1 / \\sum_s w_s e^{-r s}` [1]_, bounded by
+    ``SCRIPT_RT``.
+
+    References
+    ----------
+    .. [1] Wallinga, J. and Lipsitch, M. (2007). How generation intervals shape the
+       relationship between growth rates and reproductive numbers. Proc. R. Soc. B 274,
+       599-604.
+    """
+    first = days - 1 - EPILOGUE_DAYS
+    lags = np.arange(1, generation_interval.size + 1)
+    mean_gen = float(np.sum(lags * generation_interval))
+    levels: list[np.ndarray] = []
+    nan = np.full(len(codes), np.nan)
+
+    def target(t: int, infections: np.ndarray) -> np.ndarray:
+        if t < max(first, 7):
+            return nan
+        week = infections[:, t - 7 : t].sum(axis=1) / population * 1e5
+        if not levels:
+            levels.append(_script_levels(codes, week))
+        path = levels[0]
+        k = days - 1 - t
+        ahead = path[:, max(k - 1, 0)]
+        behind = path[:, min(k + 4, EPILOGUE_DAYS)]
+        gap = np.log(behind / np.maximum(week, 0.5))
+        r = np.log(ahead / path[:, k]) + SCRIPT_GAIN * gap / mean_gen
+        rt = 1.0 / np.sum(generation_interval[None, :] * np.exp(-r[:, None] * lags[None, :]),
+                          axis=1)
+        return np.clip(rt, *SCRIPT_RT)
+
+    return target
 
 
 def simulate_truth(geography: Geography, calendar: Calendar, seed: int | None) -> Truth:
@@ -202,21 +300,25 @@ def simulate_truth(geography: Geography, calendar: Calendar, seed: int | None) -
     base = (R_BASE / INFECTIOUS_MEAN) * factor[:, None] * (calendar.seasonal
                                                            * calendar.variant)[None, :]
 
+    gi = generation_interval_pmf(LATENT_MEAN, INFECTIOUS_MEAN)
+    story_days = max(days - EPILOGUE_DAYS, 1)  # the policies play out before the epilogue
+
     def run(fired: list[int]) -> SeirResult:
         rng = None if seed is None else np.random.default_rng([seed, 11])
+        control = script_control(codes, pop, days, gi)
         beta = base * _policy_curve(days, fired)[None, :]
         return simulate_seir(population=pop, mixing=mix, beta=beta, latent_mean=LATENT_MEAN,
                              infectious_mean=INFECTIOUS_MEAN, initial_exposed=e0,
                              importation_rate=imports, waning_days=WANING_DAYS,
                              awareness_scale=AWARENESS_SCALE, awareness_lag=SIGNAL_LAG_DAYS,
-                             rng=rng)
+                             rng=rng, target_rt=control)
 
     fired: list[int] = []
     res = run(fired)
     for rule in POLICIES:
         weekly = np.convolve(res.infections.sum(axis=0), np.ones(7))[:days] / pop.sum() * 1e5
         seen = np.concatenate([np.zeros(SIGNAL_LAG_DAYS), weekly[: days - SIGNAL_LAG_DAYS]])
-        fired.append(_trigger_day(seen, rule, fired[-1] if fired else 0))
+        fired.append(_trigger_day(seen, rule, fired[-1] if fired else 0, story_days))
         res = run(fired)
     start = calendar.dates[0].astype(object)
     policy_dates = tuple((start + timedelta(days=d), rule.label)

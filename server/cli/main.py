@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from datetime import date
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated
 
@@ -82,8 +82,8 @@ def demo(
         bool,
         typer.Option(
             "--scheduler/--no-scheduler",
-            help="Run the demo feeds' schedules while serving (off by default: the demo's "
-            "HTTP feed points at a water-authority server that does not exist here).",
+            help="Run the demo feeds' schedules while serving (off by default); the demo then "
+            "starts a stand-in for the invented water authority's server on 127.0.0.1:8765.",
         ),
     ] = False,
 ) -> None:
@@ -94,37 +94,59 @@ def demo(
     that the demo did not create is never touched.
     """
     from demo_seed.seed import seed_demo
+    from demo_seed.story import demo_morning, morning_lines
 
     end = date.fromisoformat(end_date) if end_date else None
-    from demo_seed.feeds import DEMO_FEEDS_FILE
+    from demo_seed.feeds import DEMO_FEEDS_FILE, DEMO_TIME_ZONE
 
     feeds = {} if os.environ.get("TIERWISE_FEEDS_FILE") else {"feeds_file": DEMO_FEEDS_FILE}
-    settings = _settings(demo_mode=True, scheduler=scheduler, **feeds)
+    zone = {} if os.environ.get("TIERWISE_TIME_ZONE") else {"time_zone": DEMO_TIME_ZONE}
+    settings = _settings(demo_mode=True, scheduler=scheduler, **feeds, **zone)
     db = _database(settings, check=False)
     try:
         summary = seed_demo(
             db, seed=seed, days=days, end=end, rules_dir=settings.rules_dir, progress=progress_bar,
             history=True,
         )
+        morning = demo_morning(db, now=datetime.now(UTC), time_zone=settings.time_zone)
     finally:
         db.dispose()
     say(
-        f"Seeded {summary.districts} districts, {summary.vintages} daily vintages, "
+        f"Seeded {summary.districts} districts, {summary.vintages} vintages through the demo "
+        f"feeds, "
         f"{summary.observations:,} observations from {summary.start} to {summary.end} "
         f"into {_shown(settings.database_url)}"
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     say(f"Recorded {summary.decisions} past official decisions of the invented office "
-        "(published); the newest changes await review")
+        "(published)")
+    for line in morning_lines(morning):
+        say(line)
     for name, role, password in summary.users:
         say(f"  demo user {name!r} ({role}), password {password!r}")
     for feed, token in summary.push_tokens.items():
         say(f"  push token of feed {feed!r}: {token}")
+    authority = None
+    if serve and scheduler:
+        from demo_seed.standin import PORT, WaterAuthority
+
+        try:
+            authority = WaterAuthority(summary.wastewater_csv).start()
+            say(f"Invented water authority's stand-in serving {authority.url} "
+                "(the wastewater-http feed pulls it every 6 h)")
+        except OSError as exc:
+            say(f"Could not start the water authority's stand-in on 127.0.0.1:{PORT} ({exc}); "
+                "the wastewater-http feed's pulls will fail")
+    say(f"Office time zone: {settings.time_zone} (the public pages show publication times in it)")
     say(f"Public view: http://127.0.0.1:{port}/")
     say(f"Staff pages: http://127.0.0.1:{port}/staff/")
     say(f"API docs:    http://127.0.0.1:{port}/docs")
     if serve:
-        _run_server(settings, host="127.0.0.1", port=port, workers=1)
+        try:
+            _run_server(settings, host="127.0.0.1", port=port, workers=1)
+        finally:
+            if authority is not None:
+                authority.stop()
 
 
 @app.command("serve")

@@ -806,5 +806,7 @@ def feeds_page(
         statuses=feed_statuses(session=session, catalogue=catalogue, now=now,
                                time_zone=time_zone),
         rejections=recent_rejections(session=session, feed=feed, limit=200),
-        feeds_file=catalogue.path, upload_default=default_upload_feed(catalogue),
+        # the file's name only: staff pages do not show the server's directories
+        feeds_file=Path(catalogue.path).name if catalogue.path else "",
+        upload_default=default_upload_feed(catalogue),
     )

@@ -113,3 +113,40 @@ def test_simulate_seir_awareness_caps_incidence_at_plateau() -> None:
     # Weitz et al. 2020 (PNAS 117:32764) [memory]: awareness-driven transmission
     # beta / (1 + (x/h)^k) plateaus where R0 / (1 + (x/h)^k) = 1, i.e. x = h (R0 - 1)^(1/k)
     assert_allclose(weekly.max(), h * np.sqrt(r0 - 1.0), rtol=0.1)
+
+
+def test_simulate_seir_target_rt_sets_the_growth_of_a_scripted_district() -> None:
+    # beta says R = 3; the script asks for R = 1.3 from day 20 on: the script wins
+    days, wanted = 130, 1.3
+    beta = np.full((1, days), 3.0 / INFECTIOUS)
+    res = simulate_seir(
+        population=np.array([1e9]), mixing=np.ones((1, 1)), beta=beta, latent_mean=LATENT,
+        infectious_mean=INFECTIOUS, initial_exposed=np.array([10.0]),
+        target_rt=lambda t, _inf: np.array([wanted if t >= 20 else np.nan]),
+    )
+    assert_allclose(res.rt[0, 20:], wanted, rtol=1e-6)
+    assert_allclose(res.rt[0, :20], 3.0, rtol=1e-3)
+    t = np.arange(80, 130)
+    r = np.polyfit(t, np.log(res.infections[0, t]), 1)[0]
+    w = res.generation_interval
+    s = np.arange(1, w.shape[0] + 1)
+    # Wallinga & Lipsitch 2007 (Proc R Soc B 274:599), Euler-Lotka: 1/R = sum_s w_s e^{-r s}
+    assert_allclose(1.0 / np.sum(w * np.exp(-r * s)), wanted, rtol=1e-3)
+
+
+def test_simulate_seir_target_rt_ignores_neighbours_prevalence() -> None:
+    # two districts mixing half their contacts; the quiet one is scripted to R = 1.2 and its
+    # infectious people cause 1.2 infections each although its neighbour is 100 times busier
+    mix = np.array([[0.5, 0.5], [0.5, 0.5]])
+    days = 60
+    beta = np.full((2, days), 1.0 / INFECTIOUS)
+    res = simulate_seir(
+        population=np.array([1e8, 1e8]), mixing=mix, beta=beta, latent_mean=LATENT,
+        infectious_mean=INFECTIOUS, initial_exposed=np.array([1000.0, 10.0]),
+        target_rt=lambda t, _inf: np.array([np.nan, 1.2]),
+    )
+    pressure = mix @ (res.infectious[:, :-1] / 1e8)
+    # force of infection in district 2 = R* p_r I_2/N_2 (its own infectious only)
+    own = 1.2 / INFECTIOUS * res.infectious[1, :-1] / 1e8
+    beta_eff = res.rt[1, 1:] / INFECTIOUS * 1e8 / res.susceptible[1, :-1]
+    assert_allclose(beta_eff * pressure[1], own, rtol=1e-5)

@@ -8,7 +8,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from demo_seed.history import HOLD_DAYS, PENDING_DAYS, REVIEW_LAG_DAYS, official_history
+from demo_seed.history import (
+    DEFER_WITHIN_DAYS,
+    HOLD_DAYS,
+    PENDING_DAYS,
+    REVIEW_LAG_DAYS,
+    defer_newest_change,
+    official_history,
+)
 from demo_seed.seed import seed_demo
 from server.config import Settings
 from server.services.database import Database
@@ -87,3 +94,42 @@ def test_demo_with_history_publishes_the_past_and_leaves_recent_changes(tmp_path
             assert change.since > date(2026, 11, 30) - timedelta(days=PENDING_DAYS + 1)
     finally:
         db.dispose()
+
+
+def _rec(region: str, day: int, tier: int):  # type: ignore[no-untyped-def]
+    from datetime import UTC, datetime
+
+    from server.services.official_history import OfficialRecord
+    eff = START + timedelta(days=day)
+    return OfficialRecord(line=0, region=region, effective_date=eff, tier=tier, reason="r",
+                          decided_by="otto.approver",
+                          decided_at=datetime(eff.year, eff.month, eff.day, tzinfo=UTC))
+
+
+def _defer(records, final, newest_day=100):  # type: ignore[no-untyped-def]
+    return defer_newest_change(records, final=np.asarray(final), regions=["X0", "X1", "X2"],
+                               tier_name=NAMES.__getitem__,
+                               newest=START + timedelta(days=newest_day))
+
+
+def test_defer_keeps_the_tier_before_the_newest_step_each_way() -> None:
+    records = [_rec("X0", 0, 2), _rec("X0", 80, 1), _rec("X1", 0, 2), _rec("X1", 90, 1),
+               _rec("X2", 0, 0), _rec("X2", 95, 1)]
+    out = _defer(records, final=[1, 1, 1])
+    # X1 stepped down last (day 90): kept at Two; X2's step up (day 95): kept at Zero
+    assert [(r.region, r.tier) for r in out] == [
+        ("X0", 2), ("X0", 1), ("X1", 2), ("X1", 2), ("X2", 0), ("X2", 0)]
+    assert "step down to One deferred" in out[3].reason
+    assert "step up to One deferred" in out[5].reason
+    assert out[3].effective_date == records[3].effective_date
+
+
+def test_defer_leaves_the_history_when_changes_already_wait() -> None:
+    records = [_rec("X0", 0, 2), _rec("X0", 80, 1), _rec("X1", 0, 0), _rec("X1", 90, 1)]
+    # X0 is recommended Zero (a step down waits), X1 Two (a step up waits)
+    assert _defer(records, final=[0, 2, 0]) == records
+
+
+def test_defer_leaves_changes_older_than_five_weeks() -> None:
+    records = [_rec("X0", 0, 2), _rec("X0", 50, 1)]
+    assert _defer(records, final=[1, 0, 0], newest_day=50 + DEFER_WITHIN_DAYS + 1) == records

@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
 import numpy as np
 import pytest
 from sqlalchemy import func, select
 
+from demo_seed.feeds import LATE_DAYS
 from demo_seed.seed import DEMO_USERS, SeedSummary, received_at, seed_demo
 from server.config import Settings
 from server.services.database import Database
@@ -42,17 +43,25 @@ def test_seed_demo_issues_push_tokens_that_verify(
     seeded_with_summary: tuple[Database, SeedSummary],
 ) -> None:
     db, summary = seeded_with_summary
-    assert set(summary.push_tokens) == {"long-csv", "gp-weekly"}
+    assert set(summary.push_tokens) == {"long-csv", "gp-sentinel"}
     with db.sessions() as s:
         assert token_matches(session=s, feed="long-csv", token=summary.push_tokens["long-csv"])
         assert not token_matches(session=s, feed="long-csv", token="wrong-token")
 
 
-def test_seed_demo_writes_one_vintage_per_day(seeded: Database) -> None:
+def test_seed_demo_writes_one_vintage_per_feed_and_day(seeded: Database) -> None:
     with seeded.sessions() as s:
-        assert s.scalar(select(func.count()).select_from(Vintage)) == DAYS
-        newest = s.scalar(select(func.max(Vintage.received_at)))
-    assert newest is not None and newest.date() == date(2026, 4, 1)
+        per_feed = dict(s.execute(select(Vintage.feed, func.count()).group_by(Vintage.feed)).all())
+        newest = dict(s.execute(
+            select(Vintage.feed, func.max(Vintage.received_at)).group_by(Vintage.feed)).all())
+    # the configured demo feeds, nothing under another name (demo_seed/feeds.yaml)
+    assert set(per_feed) == {"long-csv", "lab-drop", "wastewater-http", "gp-sentinel"}
+    assert per_feed["long-csv"] == DAYS  # cases and the ICU census are known every day
+    assert per_feed["lab-drop"] == DAYS - 1  # tests arrive the day after
+    assert per_feed["wastewater-http"] < DAYS  # samples 2-3 times a week
+    assert newest["long-csv"].date() == date(2026, 4, 1)
+    # the late feed: its last delivery came LATE_DAYS mornings before the newest
+    assert newest["gp-sentinel"].date() == date(2026, 4, 1) - timedelta(days=LATE_DAYS)
 
 
 def test_seed_demo_creates_districts_areas_and_plants(seeded: Database) -> None:
@@ -144,3 +153,4 @@ def test_seed_demo_refuses_a_database_it_did_not_create(tmp_path: Path) -> None:
 
 def test_received_at_is_next_morning_utc() -> None:
     assert received_at(date(2026, 3, 1)) == datetime(2026, 3, 2, 5, 30, tzinfo=UTC)
+    assert received_at(date(2026, 3, 1), "lab-drop") == datetime(2026, 3, 2, 5, 15, tzinfo=UTC)

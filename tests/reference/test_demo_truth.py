@@ -7,7 +7,11 @@ track the true Rt averaged over each 7-day window. Exact 95 % coverage is not ex
 simulator's Rt is local (beta * S/N * D) while neighbour coupling and importations add infections
 the renewal equation attributes to local transmission, and large counts give narrow intervals.
 The thresholds below were measured (windows with at least 50 infections) and are set a little
-lower as a regression guard:
+lower as a regression guard. Only the days before the demo's scripted epilogue are scored
+(``demo_seed.storyline.EPILOGUE_DAYS``): there a controller sets each district's Rt day by day to
+follow the story's script, against its neighbours' pressure, and the 7-day renewal estimate is
+not meant to follow that (measured on seed 7: 0.686 of 1029 epilogue windows, before it 0.888 of
+4338). Measured before the storyline epilogue existed, on whole scenarios:
 
 - seed 7: coverage 0.899 of the 7-day mean, median relative error 0.054;
 - seeds 0-9 pooled (51 834 windows): Poisson posterior 0.903 of the 7-day mean and 0.881 of the
@@ -24,6 +28,7 @@ import pytest
 from numpy.lib.stride_tricks import sliding_window_view
 
 from demo_seed.scenario import build_scenario
+from demo_seed.storyline import EPILOGUE_DAYS
 from server.indicators.renewal import reproduction_number
 from server.indicators.serial_interval import discrete_serial_interval
 
@@ -40,7 +45,8 @@ def _windows(seed: int, overdispersion: str = "none") -> dict[str, np.ndarray]:
     window_mean[:, WINDOW - 1 :] = sliding_window_view(truth.rt, WINDOW, axis=1).mean(-1)
     infections = np.full_like(truth.rt, np.nan)
     infections[:, WINDOW - 1 :] = sliding_window_view(truth.infections, WINDOW, axis=1).sum(-1)
-    usable = np.isfinite(est.estimate) & (infections >= 50)
+    before_script = np.arange(truth.rt.shape[1]) < truth.rt.shape[1] - 1 - EPILOGUE_DAYS
+    usable = np.isfinite(est.estimate) & (infections >= 50) & before_script[None, :]
     return {
         "estimate": est.estimate[usable], "lower": est.lower[usable], "upper": est.upper[usable],
         "mean": window_mean[usable], "daily": truth.rt[usable],

@@ -44,7 +44,7 @@ def test_viewer_sees_who_can_upload_instead_of_the_form(client: TestClient) -> N
 def test_upload_form_defaults_to_the_push_feed_and_keeps_the_choice(client: TestClient) -> None:
     login(client, ROLE_USER["analyst"])
     assert selected_feed(client.get("/staff/feeds").text) == "long-csv"
-    assert selected_feed(client.get("/staff/feeds?upload=gp-weekly").text) == "gp-weekly"
+    assert selected_feed(client.get("/staff/feeds?upload=gp-sentinel").text) == "gp-sentinel"
     assert selected_feed(client.get("/staff/feeds?upload=nonesuch").text) == "long-csv"
 
 

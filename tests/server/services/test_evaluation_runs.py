@@ -108,6 +108,33 @@ def _region_id(session: Session, code: str) -> int:
     return rid
 
 
+def _pooled_with(session: Session, code: str) -> set[int]:
+    """Ids of ``code`` and the other districts of its parent area: small districts nowcast on
+    reporting delays pooled over their area (:func:`server.services.district_indicators.
+    nowcast_inputs`), so a revision of one district may move its area's pooled nowcasts."""
+    region = session.scalar(select(Region).where(Region.code == code))
+    assert region is not None and region.parent_id is not None
+    return set(session.scalars(select(Region.id).where(Region.parent_id == region.parent_id,
+                                                       Region.level == "district")))
+
+
+def _assert_moved_by_the_pool(written: dict[tuple[int, date], Any], revised: int,
+                              pool: set[int], area: str) -> None:
+    """Every row written for a district other than the revised one rests on a nowcast pooled
+    over the revised district's area (the only way the revision reaches it)."""
+    others = {(rid, day): content for (rid, day), content in written.items() if rid != revised}
+    assert {rid for rid, _day in written} <= pool
+    for content in others.values():
+        bases = {c.get("nowcast_basis") for c in content[-1]["data"]["criteria"]}
+        assert f"reporting delays pooled over {area}" in bases
+
+
+def _area_name(session: Session, code: str) -> str:
+    region = session.scalar(select(Region).where(Region.code == code))
+    assert region is not None and region.parent is not None
+    return region.parent.name
+
+
 # --- on the seeded demo (SQLite) --------------------------------------------------------------
 
 
@@ -182,7 +209,10 @@ def test_a_revision_of_one_district_rewrites_only_the_days_it_changed(
     run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=at)
     assert run is not None and run.written > 0
     written = _written(demo_session, row.id, at)
-    assert {rid for rid, _day in written} == {d01}
+    # D01 and, through the delays pooled over its area, only its area's pooled districts
+    assert d01 in {rid for rid, _day in written}
+    _assert_moved_by_the_pool(written, d01, _pooled_with(demo_session, "D01"),
+                              _area_name(demo_session, "D01"))
     assert min(day for _rid, day in written) == first  # nothing before the first corrected day
     full = _full(demo_session, row, at)
     assert _in_force(demo_session, row.id, at) == full
@@ -192,7 +222,7 @@ def test_a_revision_of_one_district_rewrites_only_the_days_it_changed(
     tiers_before = [before[(d01, first + timedelta(days=k))][0] for k in range(20)]
     tiers_after = [full[(d01, first + timedelta(days=k))][0] for k in range(20)]
     assert tiers_before != tiers_after
-    assert max(day for _rid, day in written) > first + timedelta(days=9 + 7)
+    assert max(day for rid, day in written if rid == d01) > first + timedelta(days=9 + 7)
     assert run.written == len(written)
     _assert_rows_add_up(demo_session)
 
@@ -202,7 +232,13 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     row = active_ruleset(session=demo_session)
     cutoff = newest_cutoff(session=demo_session)
     assert row is not None and cutoff is not None
-    d01, d02 = _region_id(demo_session, "D01"), _region_id(demo_session, "D02")
+    # D01 is revised; the other district is one outside D01's area, whose nowcasts do not pool
+    # D01's delays (the first such district of the demo)
+    pool = _pooled_with(demo_session, "D01")
+    other = demo_session.scalar(select(Region.code).where(
+        Region.level == "district", Region.id.not_in(pool)).order_by(Region.code))
+    assert other is not None
+    d01, d02 = _region_id(demo_session, "D01"), _region_id(demo_session, other)
     old_d01 = current_assessment_id(session=demo_session, region_id=d01)
     old_d02 = current_assessment_id(session=demo_session, region_id=d02)
     assert old_d01 is not None and old_d02 is not None
@@ -211,12 +247,21 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     decide(session=demo_session, assessment_id=old_d02, user=APPROVER, accept=False, tier=0,
            reason="local cluster contained", **seen(demo_session, old_d02))
     at = cutoff + timedelta(hours=2)
-    _revise(demo_session, "D01", date(2026, 11, 24), 7, 3000.0, at)  # D01's last week only
+    # D01's last week only, each day one case more than known (a small correction that keeps
+    # its recommendation, so the late form below still matches)
+    week = [date(2026, 11, 24) + timedelta(days=k) for k in range(7)]
+    known = [revision_history(session=demo_session, region="D01", measure="cases",
+                              ref_date=day)[-1].value for day in week]
+    append_vintage(
+        session=demo_session, feed="correction", received_at=at, checksum="fix-D01-week",
+        rows=pd.DataFrame({"region": "D01", "measure": "cases", "ref_date": week,
+                           "value": [v + 1.0 for v in known]}),
+    )
     run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=at)
     assert run is not None and run.written > 0
-    # D02 unchanged: its decided row is still the current item and still settled
+    # the other district unchanged: its decided row is still the current item and still settled
     assert current_assessment_id(session=demo_session, region_id=d02) == old_d02
-    assert "D02" not in {p.region for p in pending_changes(session=demo_session)}
+    assert other not in {p.region for p in pending_changes(session=demo_session)}
     # D01 changed on its last day: a newer row is current; the decided row stays readable
     new_d01 = current_assessment_id(session=demo_session, region_id=d01)
     assert new_d01 is not None and new_d01 != old_d01
@@ -224,7 +269,7 @@ def test_decisions_keep_resolving_across_runs(demo_session: Session) -> None:
     assert old_row is not None and old_row.data_cutoff == cutoff
     history = {h.region: h for h in decision_history(session=demo_session)}
     assert history["D01"].recommended_tier == old_row.recommended_tier
-    assert history["D02"].tier == 0
+    assert history[other].tier == 0
     # a form opened before the correction: D01 still recommends the same tier, so the decision
     # goes through against the current row and the audit names the row the form was posted for
     new_row = demo_session.get(Assessment, new_d01)
@@ -272,7 +317,12 @@ def test_replaying_an_older_cutoff_leaves_later_runs_reading_the_same(
     # the later run still reads the original assessments (copied to its cutoff where needed)
     assert _in_force(demo_session, row.id, right) == original
     copies = _written(demo_session, row.id, right)
-    assert copies and {rid for rid, _day in copies} == {d04}
+    assert copies and d04 in {rid for rid, _day in copies}
+    # beside D04, only districts whose wrong-file rows rest on delays pooled over D04's area
+    _assert_moved_by_the_pool(_written(demo_session, row.id, wrong), d04,
+                              _pooled_with(demo_session, "D04"), _area_name(demo_session, "D04"))
+    assert {rid for rid, _day in copies} <= {rid for rid, _day in _written(demo_session, row.id,
+                                                                              wrong)}
     assert _in_force(demo_session, row.id, wrong) == _full(demo_session, row, wrong)
     _assert_rows_add_up(demo_session)
 

@@ -9,7 +9,7 @@ import pytest
 from sqlalchemy import update
 from sqlalchemy.orm import Session
 
-from server.feeds.definition import load_feeds
+from server.feeds.definition import FeedCatalogue, load_feeds, parse_feeds
 from server.services.feeds import feed_statuses
 from server.services.morning import morning_overview
 from server.services.review import current_run, decide, publish
@@ -37,20 +37,26 @@ def test_overview_lists_every_configured_feed_with_the_feeds_page_verdict(
 def test_overview_says_no_delivery_yet_for_a_configured_feed_that_never_delivered(
     demo_session: Session,
 ) -> None:
-    catalogue = load_feeds(DEMO_FEEDS)
+    # the seeded demo delivers through every demo feed; add one that never delivered
+    text = DEMO_FEEDS.read_text(encoding="utf-8") + (
+        "  - name: never-delivered\n    source: {kind: push}\n    measures: [cases]\n")
+    catalogue = parse_feeds(text, source="feeds.yaml", base=DEMO_FEEDS.parent)
     view = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
     never = [f for f in view.feeds if f.configured and f.received_at is None]
-    assert never, "the seeded demo lands its data through 'demo-county', not the demo feeds"
+    assert [f.feed for f in never] == ["never-delivered"]
     assert all(f.status in ("no delivery yet", "overdue") and f.age_hours is None
                for f in never)
 
 
 def test_overview_lists_a_source_without_definition_unjudged(demo_session: Session) -> None:
-    view = morning_overview(session=demo_session, now=NOW, catalogue=load_feeds(DEMO_FEEDS))
+    demo = load_feeds(DEMO_FEEDS)
+    catalogue = FeedCatalogue(path=demo.path, feeds={
+        name: feed for name, feed in demo.feeds.items() if name != "gp-sentinel"})
+    view = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
     other = {f.feed: f for f in view.feeds if not f.configured}
-    assert "demo-county" in other
-    assert other["demo-county"].status == "not configured"
-    assert not other["demo-county"].late
+    assert "gp-sentinel" in other  # delivered, but no longer in the feed file
+    assert other["gp-sentinel"].status == "not configured"
+    assert not other["gp-sentinel"].late
 
 
 def test_overview_counts_a_decided_unpublished_district_apart(demo_session: Session) -> None:

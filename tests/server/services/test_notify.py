@@ -223,8 +223,13 @@ def test_deliver_goes_on_after_a_malformed_webhook(hook: tuple[str, type[_Hook]]
 # --- wiring into the evaluation and publication services (a seeded 150-day demo database) ---
 
 APPROVER = "otto.approver"  # invented demo account (demo_seed.seed)
-# the demo's vintage for 16 Oct (received 17 Oct 05:30): D12 moves 0 -> 1, D14's Rt signal starts
-CUTOFF = datetime(2026, 10, 17, 5, 30, tzinfo=UTC)
+# Mornings of the seeded demo (tests/server/conftest.py: default seed, end 30 Nov 2026) whose
+# newest day has events, found by evaluating every morning of its last 100 days as known then:
+# the long-csv file of 28 Nov (received 29 Nov 05:30) moves Seldrin (D05) down a tier, the last
+# step down of the storyline's west (demo_seed.storyline.SCRIPT); the morning of 19 Sep, after
+# every feed has landed, starts D03's Rt signal. No morning of those 100 days has both.
+CUTOFF = datetime(2026, 11, 29, 5, 30, tzinfo=UTC)
+PREPARE_CUTOFF = datetime(2026, 9, 19, 7, 0, tzinfo=UTC)
 
 
 def _closed_port() -> int:
@@ -256,12 +261,18 @@ def test_evaluation_posts_the_newest_days_events(
     url, handler = hook
     row = active_ruleset(session=demo_session)
     assert row is not None
-    run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
-    assert run is not None and run.evaluation is not None
-    (body,) = [json.loads(b) for _h, b in handler.received]
-    posted = sorted((e["kind"], e["region"], e["date"]) for e in body["events"])
-    assert posted == [("prepare", "D14", "2026-10-16"), ("tier_change", "D12", "2026-10-16")]
-    assert [a.subject for a in _audit(demo_session, "notify.sent")] == ["desk"]
+    for cutoff, kind in ((CUTOFF, "tier_change"), (PREPARE_CUTOFF, "prepare")):
+        run = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=cutoff,
+                                 notify=_to(url))
+        assert run is not None and run.evaluation is not None
+        expected = events_on_day(run.evaluation)
+        newest = (cutoff - timedelta(days=1)).date().isoformat()
+        assert {e.kind for e in expected} == {kind}
+        body = json.loads(handler.received[-1][1])
+        posted = sorted((e["kind"], e["region"], e["date"]) for e in body["events"])
+        assert posted == sorted((e.kind, e.region, newest) for e in expected)
+    assert len(handler.received) == 2
+    assert [a.subject for a in _audit(demo_session, "notify.sent")] == ["desk", "desk"]
 
 
 @pytest.mark.slow
@@ -326,6 +337,12 @@ def test_failed_publication_notice_never_undoes_the_publication(demo_session: Se
     assert (entry.actor, entry.details["context"]) == (APPROVER, "publication")
 
 
+def _posted_key(event: dict[str, object]) -> str:
+    """:attr:`Event.key` of a posted event, rebuilt from its JSON."""
+    what = event["signal"] if event["kind"] == "prepare" else event["tier"]
+    return f"{event['kind']}|{event['region']}|{event['date']}|{what}"
+
+
 def _second_ingestion(session: Session, minutes: int) -> datetime:
     """A late file the same morning re-sending one known value; returns its arrival time."""
     later = CUTOFF + timedelta(minutes=minutes)
@@ -347,11 +364,11 @@ def test_second_ingestion_the_same_morning_sends_nothing_again(
     evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=_to(url))
     later = _second_ingestion(demo_session, 20)
     again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=_to(url))
-    # the same newest day (16 Oct) evaluated again: new assessments, the same events
+    # the same newest day evaluated again: new assessments, the same events
     assert again is not None and again.written > 0 and again.evaluation is not None
-    assert sorted(e.key for e in events_on_day(again.evaluation)) == [
-        "prepare|D14|2026-10-16|rt-over-one", "tier_change|D12|2026-10-16|1",
-    ]
+    first = json.loads(handler.received[0][1])["events"]
+    assert first and sorted(e.key for e in events_on_day(again.evaluation)) == sorted(
+        _posted_key(e) for e in first)
     assert len(handler.received) == 1 and again.notified == ()
     assert len(_audit(demo_session, "notify.sent")) == 1
 
@@ -369,7 +386,8 @@ def test_an_event_already_sent_to_one_recipient_still_goes_to_another(
     later = _second_ingestion(demo_session, 25)
     again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=both)
     assert again is not None
-    assert [(d.recipient, d.events) for d in again.notified] == [("night", 2)]
+    sent = len(json.loads(handler.received[0][1])["events"])
+    assert sent > 0 and [(d.recipient, d.events) for d in again.notified] == [("night", sent)]
     assert len(handler.received) == 2
 
 
@@ -384,5 +402,8 @@ def test_a_failed_notice_is_sent_at_the_next_evaluation(
     evaluate_districts(session=demo_session, ruleset_row=row, cutoff=CUTOFF, notify=dead)
     later = _second_ingestion(demo_session, 30)
     again = evaluate_districts(session=demo_session, ruleset_row=row, cutoff=later, notify=_to(url))
-    assert again is not None and [d.ok for d in again.notified] == [True]
-    assert len(json.loads(handler.received[0][1])["events"]) == 2
+    assert again is not None and again.evaluation is not None
+    assert [d.ok for d in again.notified] == [True]
+    events = json.loads(handler.received[0][1])["events"]
+    assert events and sorted(_posted_key(e) for e in events) == sorted(
+        e.key for e in events_on_day(again.evaluation))

@@ -1,0 +1,63 @@
+"""``tierwise demo``: the printed morning is read from the seeded database; it serves in the
+invented office's time zone."""
+
+from __future__ import annotations
+
+import importlib
+from datetime import datetime
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import pytest
+from fastapi.testclient import TestClient
+from typer.testing import CliRunner
+
+from demo_seed.feeds import DEMO_TIME_ZONE
+from server.cli import app
+from server.config import Settings
+from web.app import create_app
+
+cli_main = importlib.import_module("server.cli.main")  # the module; server.cli.main is a function
+
+pytestmark = pytest.mark.slow
+
+
+def test_demo_prints_the_morning_it_seeded(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{tmp_path / 'demo.db'}")
+    monkeypatch.delenv("TIERWISE_FEEDS_FILE", raising=False)
+    result = CliRunner().invoke(app, ["demo", "--no-serve", "--days", "150"])
+    assert result.exit_code == 0, result.output
+    out = result.output
+    # the invented story of the newest morning (demo_seed.storyline.SCRIPT, demo_seed.feeds)
+    assert "await review (sign in as the approver):" in out
+    assert "step up" in out and "step down" in out
+    assert "Prepare signals showing:" in out
+    assert "Feeds on time: long-csv, lab-drop, wastewater-http; needing attention: gp-sentinel" \
+        in out
+    assert "the newest changes await review" not in out  # no fixed claim any more
+
+
+@pytest.mark.parametrize(("env", "expected"), [(None, DEMO_TIME_ZONE), ("Pacific/Auckland",
+                                                                         "Pacific/Auckland")])
+def test_demo_serves_in_the_office_time_zone(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, env: str | None, expected: str
+) -> None:
+    monkeypatch.setenv("TIERWISE_DATABASE_URL", f"sqlite:///{tmp_path / 'demo.db'}")
+    monkeypatch.delenv("TIERWISE_FEEDS_FILE", raising=False)
+    if env is None:
+        monkeypatch.delenv("TIERWISE_TIME_ZONE", raising=False)
+    else:
+        monkeypatch.setenv("TIERWISE_TIME_ZONE", env)
+    served: list[Settings] = []
+    monkeypatch.setattr(cli_main, "_run_server",
+                        lambda settings, **_kw: served.append(settings))
+    result = CliRunner().invoke(app, ["demo", "--days", "150", "--port", "8999"])
+    assert result.exit_code == 0, result.output
+    assert [s.time_zone for s in served] == [expected]
+    assert f"Office time zone: {expected}" in result.output
+    # what the public page then shows: its publication time in that zone, with the zone's name
+    with TestClient(create_app(served[0])) as client:
+        page = client.get("/").text
+    day, clock, name = page.split("Last published: ")[1].split(".")[0].split(" ")
+    shown = datetime.fromisoformat(f"{day}T{clock}").replace(tzinfo=ZoneInfo(expected))
+    assert name == shown.tzname() != "UTC"
