@@ -58,7 +58,7 @@ from server.indicators.nowcast import (
     triangle_from_rows,
     triangle_from_vintages,
 )
-from server.services.district_indicators import NOWCAST_PERIOD
+from server.services.district_nowcasts import NOWCAST_PERIOD
 
 RT_TARGET_S = 1.0
 FULL_TARGET_S = 15.0

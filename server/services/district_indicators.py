@@ -1,474 +1,61 @@
 """Use case: turn stored measures into the indicator series a ruleset asks for, for every district.
 
-Reads dense (regions x days) arrays from the store (current or as of a cutoff), computes the
-indicators with :mod:`server.indicators`, and hands them to the rules engine as
+The data come from the store as :class:`~server.services.district_data.DistrictData`
+(:func:`~server.services.district_data.load_district_data`); the indicators are kinds of
+:mod:`server.services.indicator_kinds` (a policy declares each as a kind applied to a measure),
+computed with :mod:`server.indicators` and handed to the rules engine as
 :class:`rules.IndicatorSeries`, each with the age of its underlying data so stale inputs are
-unknown.
+unknown. :func:`district_indicators` computes those a ruleset uses. The helpers here are shared
+by the builders: :func:`data_age`, :func:`carry_forward` (hold the newest value while its age
+grows) and :func:`on_nowcast`.
 
-Two limits make old data unknown. The ruleset's ``max_age_days`` per indicator judges the age of
-the data behind each value. A feed's ``stale_after`` (``docs/feeds.md``) judges the feed: given
-``stale_after`` (feed name -> limit, :func:`feed_limits`), a region's measure is *stale* on every
-day more than the limit after its newest reference date as known at the cutoff, and every
-indicator built from it carries ``stale`` there, so the engine explains it as stale data. The
-limit is the one of the feed that told the newest date (the most lenient one on a tie).
+Nowcasts: ``incidence_7d``, ``admissions_7d`` and ``tests_7d`` are computed on the nowcast of the
+days still incomplete (:mod:`server.services.district_nowcasts`); those values carry ``nowcast``
+so that a criterion with ``use_nowcast: false`` is unknown there (``docs/rules.md``).
+Positivity and Rt stay on the reports received so far.
 
-A stored value the indicators cannot take (a count that is negative, not within
-:data:`~server.feeds.validation.COUNT_TOLERANCE` of a whole number or over
-:data:`~server.feeds.validation.MAX_COUNT`; an infinite or negative wastewater value;
-positives above tests on a day) never stops the evaluation: it is read as missing, logged with
-its region, measure and date, and every indicator value built from it is ``invalid`` (the
-engine treats it as unknown and explains it so) for that district only. Counts within the
-tolerance are rounded, as feed validation stores them (:mod:`server.feeds.validation`); older
-releases stored them unrounded.
-
-Nowcasts. Count measures arrive late (a case tested on Monday may be reported on Thursday), so
-the last days read low. :func:`nowcast_inputs` builds each count measure's reporting triangle from
-the stored vintages of the last :data:`NOWCAST_WINDOW` days (one store read), estimates the
-reporting delays at the cutoff (chain ladder, pooled over the parent area or all districts for
-districts with few reports) and ``incidence_7d``, ``admissions_7d`` and ``tests_7d`` are computed
-on the nowcast of the days still incomplete; those values carry ``nowcast`` so that a criterion
-with ``use_nowcast: false`` is unknown there (``docs/rules.md``). Positivity and Rt stay on the
-reports received so far.
-
-The indicators themselves are kinds of :mod:`server.services.indicator_kinds` (a policy declares
-each as a kind applied to a measure); :func:`district_indicators` computes those a ruleset uses,
-and :func:`load_district_data` reads the measures they need (:class:`MeasureNeeds`).
+A stored value the indicators cannot take (:mod:`server.services.stored_values`) makes every
+indicator value built from it ``invalid`` (the engine treats it as unknown and explains it so).
 """
 
 from __future__ import annotations
 
-import logging
-from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
-from datetime import UTC, date, datetime, timedelta, tzinfo
+from collections.abc import Callable
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from sqlalchemy import select
-from sqlalchemy.orm import Session, aliased
 
 from rules import IndicatorSeries, Ruleset
-from server.feeds.definition import FeedDefinition
-from server.feeds.validation import COUNT_TOLERANCE, MAX_COUNT
-from server.indicators._arrays import trailing_sum
-from server.indicators.nowcast import (
-    POOL_ALL,
-    POOL_GROUP,
-    DelayModel,
-    WindowNowcast,
-    delay_model,
-    nowcast_window,
-    triangle_from_rows,
-)
 from server.indicators.poisson import poisson_interval
-from server.store import read_dense
-from server.store.models import Catchment, Measure, Region
-from server.store.reads import feed_last_dates, read_vintage_rows
+from server.services.district_data import (
+    AREA_MEASURES,
+    DISTRICT_MEASURES,
+    PLANT_MEASURES,
+    DistrictData,
+    MeasureNeeds,
+    feed_limits,
+    load_district_data,
+)
+from server.services.district_nowcasts import (
+    NOWCAST_DELAYS,
+    NOWCAST_MEASURES,
+    NOWCAST_PERIOD,
+    NOWCAST_WINDOW,
+    NowcastInput,
+    nowcast_measures,
+    pool_basis,
+)
+from server.services.stored_values import usable
 
-DISTRICT_MEASURES = ("cases", "tests", "positives", "hosp_admissions", "gp_ari")
-AREA_MEASURES = ("icu_occupied", "icu_staffed")
-PLANT_MEASURES = ("ww_concentration", "ww_flow")
-# Districts below this population are matched by overrides as level "small_district".
-SMALL_DISTRICT_POPULATION = 30_000
-
-
-@dataclass(frozen=True, kw_only=True)
-class MeasureNeeds:
-    """The measures to read, by where they are stored: per district, per parent area (given to
-    each of its districts), per treatment plant. The default: those of earlier releases."""
-
-    district: tuple[str, ...] = DISTRICT_MEASURES
-    area: tuple[str, ...] = AREA_MEASURES
-    plant: tuple[str, ...] = PLANT_MEASURES
-
-log = logging.getLogger(__name__)
-
-
-@dataclass(frozen=True, kw_only=True)
-class BadValue:
-    """A stored value the indicators cannot take, read as missing (and logged)."""
-
-    region: str
-    measure: str
-    ref_date: date
-    value: float
-    problem: str
-
-
-def usable(
-    values: NDArray[np.float64], *, count: bool
-) -> tuple[NDArray[np.float64], NDArray[np.bool_], NDArray[np.str_]]:
-    """``values`` with unusable entries made NaN, where they were, and why (``""``: fine).
-
-    Counts must be whole numbers in ``[0, MAX_COUNT]``; those within ``COUNT_TOLERANCE`` of one
-    are rounded to it (as feed validation stores them). Other measures must be finite and not
-    negative. NaN stays NaN (a missing day).
-    """
-    problem = np.full(values.shape, "", dtype="<U40")
-    with np.errstate(invalid="ignore"):
-        problem[np.isinf(values)] = "not finite"
-        problem[(values < 0) & (problem == "")] = "negative"
-        if count:
-            whole = np.rint(values)
-            problem[(np.abs(values - whole) > COUNT_TOLERANCE) & (problem == "")] = (
-                "not a whole number")
-            problem[(values > MAX_COUNT) & (problem == "")] = "over the largest count"
-    bad = problem != ""
-    cleaned = np.where(bad, np.nan, np.rint(values) + 0.0 if count else values)
-    return cleaned, bad, problem
-
-
-def _clean(
-    arrays: Mapping[str, NDArray[np.float64]], regions: Sequence[str],
-    dates: NDArray[np.datetime64], *, count: bool, found: list[BadValue],
-) -> tuple[dict[str, NDArray[np.float64]], dict[str, NDArray[np.bool_]]]:
-    """:func:`usable` over each measure's (regions, days) array; bad values go to ``found``."""
-    values, masks = {}, {}
-    for measure, arr in arrays.items():
-        values[measure], masks[measure], problem = usable(arr, count=count)
-        for r, d in np.argwhere(masks[measure]).tolist():
-            found.append(BadValue(region=regions[r], measure=measure,
-                                  ref_date=dates[d].astype("datetime64[D]").item(),
-                                  value=float(arr[r, d]), problem=str(problem[r, d])))
-    return values, masks
-
-
-#: Count measures nowcast from their reporting triangles: those the nowcast indicators use
-#: (positives and GP consultations would add triangle rows that no indicator reads).
-NOWCAST_MEASURES = ("cases", "tests", "hosp_admissions")
-
-
-def nowcast_measures(measures: Iterable[str]) -> tuple[str, ...]:
-    """Those of ``measures`` nowcast: :data:`NOWCAST_MEASURES` and their pathogen-specific
-    measures (``cases.influenza``)."""
-    return tuple(m for m in measures if m.split(".", 1)[0] in NOWCAST_MEASURES)
-#: Delays 0 .. NOWCAST_DELAYS - 1 in the triangle; reference days whose reports estimate them.
-NOWCAST_DELAYS = 60
-NOWCAST_WINDOW = 60
-#: Strata of the delay estimate by reference day modulo this (7: by weekday). Measured on the
-#: demo (cases, every morning against the count known 28 days later): by weekday, median error
-#: 8.8 % but the 95 % interval covered 99 % (too wide); pooled over weekdays, 10.7 % and 96 %.
-NOWCAST_PERIOD = 1
-
-
-@dataclass(frozen=True, kw_only=True, eq=False)
-class NowcastInput:
-    """One count measure's delay model at the cutoff and the delay each day is known at.
-
-    ``model`` is shaped (districts, 1, delays); ``known_delay`` (districts, days) or (days,);
-    ``basis`` says per district whose reports the delays rest on.
-    """
-
-    model: DelayModel
-    known_delay: NDArray[np.int64]
-    basis: tuple[str, ...]
-
-
-@dataclass(frozen=True, kw_only=True)
-class DistrictData:
-    """Everything the indicators need, read from the store for one date range and cutoff."""
-
-    regions: tuple[str, ...]
-    levels: tuple[str, ...]
-    population: NDArray[np.float64]
-    dates: NDArray[np.datetime64]
-    district: Mapping[str, NDArray[np.float64]]
-    area_of_district: Mapping[str, NDArray[np.float64]]
-    plant: Mapping[str, NDArray[np.float64]]
-    plant_population: NDArray[np.float64]
-    served: NDArray[np.float64]  # (districts, plants): people of each district served by a plant
-    as_of: datetime | None
-    # Per measure, (districts, days) (area measures by district): True where the feed's
-    # staleness limit is passed; ``ww_plants``: every plant serving the district is stale.
-    stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
-    # Per measure, (districts, days): True where the stored value was unusable and read as
-    # missing (:func:`usable`); ``ww_plants``: some plant serving the district had one.
-    invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
-    bad_values: tuple[BadValue, ...] = ()
-    # The store's measure catalogue (name -> kind of measure) the declarations are checked on.
-    measure_kinds: Mapping[str, str] = field(default_factory=dict)
-    # Per plant measure, (plants, days): unusable values / past the feed's limit, so that each
-    # wastewater target (one per pathogen) is judged on its own measures (``ww_plants``: all).
-    plant_invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
-    plant_stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
-
-    def plants_invalid(self, *measures: str) -> NDArray[np.bool_]:
-        """(districts, days): some plant serving the district had an unusable value of one of
-        ``measures`` (``ww_plants`` when they were not read apart)."""
-        if not all(m in self.plant_invalid for m in measures):
-            return self.invalid.get("ww_plants", np.zeros(
-                (len(self.regions), self.dates.size), dtype=bool))
-        bad = np.logical_or.reduce([self.plant_invalid[m] for m in measures])
-        return (self.served > 0).astype(np.float64) @ bad.astype(np.float64) > 0
-
-    def plants_stale(self, *measures: str) -> NDArray[np.bool_] | None:
-        """(districts, days): every plant serving the district is past its feed's limit for one
-        of ``measures`` (None: nowhere known; ``ww_plants`` when they were not read apart)."""
-        if not all(m in self.plant_stale for m in measures):
-            return self.stale_of("ww_plants")
-        return _all_plants_stale(
-            np.logical_or.reduce([self.plant_stale[m] for m in measures]), self.served)
-
-    def invalid_of(self, *measures: str, reach: int = 1) -> NDArray[np.bool_] | None:
-        """Where any of ``measures`` had an unusable value within the last ``reach`` days
-        (the day itself included); None when none had any."""
-        masks = [self.invalid[m] for m in measures if m in self.invalid and self.invalid[m].any()]
-        if not masks:
-            return None
-        hit = np.logical_or.reduce(masks).astype(np.float64)
-        return trailing_sum(hit, reach) > 0.5
-
-    # Per count measure: what its nowcast needs (:func:`nowcast_inputs`); empty: no nowcasts.
-    nowcasts: Mapping[str, NowcastInput] = field(default_factory=dict)
-
-    def nowcast_of(self, measure: str, window: int = 7) -> WindowNowcast | None:
-        """Nowcast of ``measure``'s trailing ``window``-day sums (None: no triangle)."""
-        inp = self.nowcasts.get(measure)
-        if inp is None:
-            return None
-        return nowcast_window(self.district[measure], inp.known_delay, inp.model, window=window)
-
-    def stale_of(self, *measures: str) -> NDArray[np.bool_] | None:
-        """Where any of ``measures`` is past its feed's staleness limit (None: nowhere known)."""
-        masks = [self.stale[m] for m in measures if m in self.stale]
-        return np.logical_or.reduce(masks) if masks else None
-
-
-def feed_limits(feeds: Iterable[FeedDefinition]) -> dict[str, timedelta]:
-    """Feed name -> its ``stale_after``, the argument :func:`load_district_data` takes."""
-    return {f.name: f.stale_after for f in feeds}
-
-
-def stale_masks(
-    *, session: Session, regions: Sequence[str], measures: Sequence[str],
-    dates: NDArray[np.datetime64], as_of: datetime | None, stale_after: Mapping[str, timedelta],
-) -> dict[str, NDArray[np.bool_]]:
-    """Per measure, (regions, days): True on days past the feed limit after the newest date.
-
-    The newest reference date of each region and measure is the one known at ``as_of``; its
-    limit is that of the feed that told it (the longest when several feeds told the same date).
-    Feeds without a limit in ``stale_after`` (no longer configured) never make data stale.
-    """
-    row = {code: i for i, code in enumerate(regions)}
-    newest: dict[tuple[str, str], tuple[date, timedelta]] = {}
-    for last in feed_last_dates(session=session, measures=measures, as_of=as_of):
-        limit = stale_after.get(last.feed)
-        if limit is None or last.region not in row:
-            continue
-        key = (last.region, last.measure)
-        known = newest.get(key)
-        if known is None or last.ref_date > known[0] or (
-            last.ref_date == known[0] and limit > known[1]
-        ):
-            newest[key] = (last.ref_date, limit)
-    days = dates.astype("datetime64[D]")
-    out = {m: np.zeros((len(regions), days.size), dtype=bool) for m in measures}
-    for (region, measure), (ref, limit) in newest.items():
-        after = (days - np.datetime64(ref, "D")).astype(np.float64)
-        out[measure][row[region]] = after > limit / timedelta(days=1)
-    return out
-
-
-def pool_basis(pool: NDArray[np.int8], group_names: Sequence[str | None]) -> tuple[str, ...]:
-    """Per district, whose reports its delay distribution rests on (for explanations)."""
-    return tuple(
-        "reporting delays pooled over all districts" if p == POOL_ALL
-        else f"reporting delays pooled over {name}" if p == POOL_GROUP and name
-        else "the district's own reporting delays"
-        for p, name in zip(pool.tolist(), group_names, strict=True)
-    )
-
-
-def nowcast_inputs(
-    *, session: Session, regions: Sequence[str], groups: Sequence[str | None],
-    dates: NDArray[np.datetime64], as_of: datetime | None,
-    group_names: Mapping[str, str] | None = None, time_zone: tzinfo = UTC,
-    measures: Sequence[str] = NOWCAST_MEASURES,
-) -> dict[str, NowcastInput]:
-    """Delay models of every count measure at the cutoff, from one read of stored vintages.
-
-    The triangle covers the last :data:`NOWCAST_WINDOW` reference days up to ``dates[-1]``;
-    a row's delay is its day of receipt (the office's local day in ``time_zone``, as the
-    as-known backtest counts) minus its reference day; the cutoff is the local day of ``as_of``
-    (or of the newest row received). ``groups`` are the districts' parent areas,
-    which small districts pool their delays over (:func:`server.indicators.nowcast.delay_model`).
-    """
-    if not regions or dates.size == 0 or not measures:
-        return {}
-    end = dates[-1].astype("datetime64[D]")
-    first = end - np.timedelta64(NOWCAST_WINDOW - 1, "D")
-    rows = read_vintage_rows(
-        session=session, measures=measures, regions=regions,
-        start=first.astype(date), end=end.astype(date), as_of=as_of,
-    )
-    if len(rows) == 0:
-        return {}
-    local = pd.DatetimeIndex(rows.received_at).tz_localize(UTC).tz_convert(time_zone)
-    local_days = local.tz_localize(None).to_numpy().astype("datetime64[D]")
-    receipt = (local_days - first).astype(np.int64)
-    cutoff = int(receipt.max()) if as_of is None else int(
-        (np.datetime64(as_of.astimezone(time_zone).date(), "D") - first).astype(np.int64))
-    names = sorted({g for g in groups if g is not None})
-    group_index = np.array([names.index(g) if g is not None else -1 for g in groups])
-    label = group_names or {}
-    basis_names = [label.get(g, g) if g is not None else None for g in groups]
-    known_delay = (np.datetime64(first, "D") + cutoff - dates.astype("datetime64[D]")).astype(
-        np.int64)
-    out = {}
-    # A stored value the indicators cannot take (:func:`usable`) is left out of the triangle, as
-    # it is read as missing everywhere else; counts within the tolerance are rounded.
-    values, unusable, _why = usable(rows.value, count=True)
-    for k, measure in enumerate(measures):
-        pick = (rows.measure == k) & ~unusable
-        if not pick.any():
-            continue
-        tri = triangle_from_rows(
-            rows.region[pick], rows.ref_day[pick], receipt[pick], values[pick],
-            regions=len(regions), days=NOWCAST_WINDOW, delays=NOWCAST_DELAYS, last_receipt=cutoff,
-        )
-        model = delay_model(tri, cutoffs=[cutoff], groups=group_index, window=NOWCAST_WINDOW,
-                            period=NOWCAST_PERIOD)
-        out[measure] = NowcastInput(model=model, known_delay=known_delay,
-                                    basis=pool_basis(model.pool[:, 0], basis_names))
-    return out
-
-
-def load_district_data(
-    *, session: Session, start: date, end: date, as_of: datetime | None = None,
-    stale_after: Mapping[str, timedelta] | None = None, nowcast: bool = True,
-    time_zone: tzinfo = UTC, needs: MeasureNeeds | None = None,
-) -> DistrictData:
-    """Dense district, area and plant arrays over ``start..end`` as known at ``as_of``.
-
-    With ``stale_after`` (feed name -> staleness limit, :func:`feed_limits`), ``stale`` marks
-    each measure's days past its feed's limit (:func:`stale_masks`); without it nothing is
-    marked and only the ruleset's ``max_age_days`` applies. With ``nowcast`` the count
-    measures carry their delay models (:func:`nowcast_inputs`, days of receipt in
-    ``time_zone``). ``needs`` says which measures to read (default: :class:`MeasureNeeds`,
-    those of earlier releases; :func:`server.services.indicator_kinds.measure_needs` gives
-    those of a ruleset).
-    """
-    needs = needs or MeasureNeeds()
-    parent = aliased(Region)
-    rows = session.execute(
-        select(Region.code, Region.population, parent.code, parent.name)
-        .outerjoin(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district")
-        .order_by(Region.code)
-    ).all()
-    codes = tuple(r[0] for r in rows)
-    population = np.array([r[1] for r in rows], dtype=np.float64)
-    parents = [r[2] for r in rows]
-    district = read_dense(
-        session=session, measures=needs.district, start=start, end=end, regions=codes,
-        as_of=as_of,
-    )
-    areas = sorted({p for p in parents if p is not None})
-    area = read_dense(
-        session=session, measures=needs.area, start=start, end=end, regions=areas, as_of=as_of
-    )
-    pick = np.array([areas.index(p) if p in areas else -1 for p in parents])
-    n_days = district.dates.size
-    area_of_district = {  # no area above any district: unknown (indexing an empty array fails)
-        m: np.where(pick[:, None] >= 0, area[m][np.maximum(pick, 0)], np.nan) if areas
-        else np.full((len(codes), n_days), np.nan)
-        for m in needs.area
-    }
-    plant_rows = session.execute(
-        select(Region.code, Region.population).where(Region.level == "plant").order_by(Region.code)
-    ).all()
-    plant_codes = [r[0] for r in plant_rows]
-    plant = read_dense(
-        session=session, measures=needs.plant, start=start, end=end, regions=plant_codes,
-        as_of=as_of,
-    )
-    served = np.zeros((len(codes), len(plant_codes)))
-    plant_alias, district_alias = aliased(Region), aliased(Region)
-    links = session.execute(
-        select(plant_alias.code, district_alias.code, Catchment.share)
-        .join(plant_alias, plant_alias.id == Catchment.plant_id)
-        .join(district_alias, district_alias.id == Catchment.district_id)
-    ).all()
-    for plant_code, district_code, share in links:
-        i, j = codes.index(district_code), plant_codes.index(plant_code)
-        served[i, j] = share * population[i]
-    found: list[BadValue] = []
-    district_values, invalid = _clean(district.values, codes, district.dates, count=True,
-                                      found=found)
-    area_values, area_bad = _clean(area.values, areas, district.dates, count=True, found=found)
-    for m in needs.area:
-        area_of_district[m] = np.where(
-            pick[:, None] >= 0, area_values[m][np.maximum(pick, 0)], np.nan) if areas else (
-            area_of_district[m])
-        invalid[m] = (pick[:, None] >= 0) & area_bad[m][np.maximum(pick, 0)] if areas else (
-            np.zeros((len(codes), n_days), dtype=bool))
-    plant_values, plant_bad = _clean(plant.values, plant_codes, district.dates, count=False,
-                                     found=found)
-    invalid["ww_plants"] = (served > 0).astype(np.float64) @ _any_plant(
-        plant_bad, len(plant_codes), n_days).astype(np.float64) > 0
-    for bad in found[:20]:
-        log.warning("stored %s of %s on %s is %s (%r): read as missing, its indicators are "
-                    "invalid", bad.measure, bad.region, bad.ref_date, bad.problem, bad.value)
-    if len(found) > 20:
-        log.warning("%d more unusable stored values", len(found) - 20)
-    levels = tuple(
-        "small_district" if p < SMALL_DISTRICT_POPULATION else "district" for p in population
-    )
-    stale: dict[str, NDArray[np.bool_]] = {}
-    plants: dict[str, NDArray[np.bool_]] = {}
-    if stale_after is not None:
-        dates = district.dates
-        stale.update(stale_masks(session=session, regions=codes, measures=needs.district,
-                                 dates=dates, as_of=as_of, stale_after=stale_after))
-        for m, mask in stale_masks(session=session, regions=areas, measures=needs.area,
-                                   dates=dates, as_of=as_of, stale_after=stale_after).items():
-            stale[m] = (pick[:, None] >= 0) & mask[np.maximum(pick, 0)] if areas else np.zeros(
-                (len(codes), dates.size), dtype=bool)
-        plants = stale_masks(session=session, regions=plant_codes, measures=needs.plant,
-                             dates=dates, as_of=as_of, stale_after=stale_after)
-        stale["ww_plants"] = _all_plants_stale(_any_plant(plants, len(plant_codes), n_days),
-                                                  served)
-    return DistrictData(
-        regions=codes, levels=levels, population=population, dates=district.dates,
-        district=district_values, area_of_district=area_of_district, plant=plant_values,
-        plant_population=np.array([r[1] for r in plant_rows], dtype=np.float64),
-        served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
-        plant_invalid=plant_bad, plant_stale=plants,
-        measure_kinds=store_measures(session=session),
-        nowcasts=nowcast_inputs(
-            session=session, regions=codes, groups=parents, dates=district.dates, as_of=as_of,
-            group_names={r[2]: r[3] for r in rows if r[2] is not None}, time_zone=time_zone,
-            measures=nowcast_measures(needs.district),
-        ) if nowcast else {},
-    )
-
-
-def store_measures(*, session: Session) -> dict[str, str]:
-    """The store's measure catalogue: name -> kind of measure (count, level, concentration)."""
-    return {row[0]: row[1] for row in session.execute(select(Measure.name, Measure.kind))}
-
-
-def _any_plant(
-    masks: Mapping[str, NDArray[np.bool_]], plants: int, days: int
-) -> NDArray[np.bool_]:
-    """(plants, days): any of the plant measures' ``masks`` (all False without any).
-
-    The wastewater indicators of every plant measure share it: a bad or stale value of one
-    measure flags the others' districts too (as the one pair of earlier releases did)."""
-    out = np.zeros((plants, days), dtype=bool)
-    for mask in masks.values():
-        out |= mask
-    return out
-
-
-def _all_plants_stale(
-    plant_stale: NDArray[np.bool_], served: NDArray[np.float64]
-) -> NDArray[np.bool_]:
-    """(districts, days): every plant serving the district is stale (none serving: False)."""
-    serving = served > 0
-    fresh = serving.astype(np.float64) @ (~plant_stale).astype(np.float64)
-    return serving.any(axis=1)[:, None] & (fresh == 0)
+# Besides its own names, re-exported for the modules outside this split that still import them
+# from here (server/services/feeds.py, backtest.py, capacity_indicators.py, capacity_pages.py);
+# new code imports them from district_data / district_nowcasts / stored_values.
+__all__ = [
+    "AREA_MEASURES", "BUILDERS", "DISTRICT_MEASURES", "NOWCAST_DELAYS", "NOWCAST_MEASURES",
+    "NOWCAST_PERIOD", "NOWCAST_WINDOW", "PLANT_MEASURES", "DistrictData", "MeasureNeeds",
+    "NowcastInput", "carry_forward", "data_age", "district_indicators", "feed_limits",
+    "load_district_data", "nowcast_measures", "on_nowcast", "pool_basis", "usable",
+]
 
 
 def data_age(*arrays: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -557,69 +144,3 @@ def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, Indic
 
     return compute(data, ruleset)
 
-
-@dataclass(frozen=True, kw_only=True)
-class NowcastSeries:
-    """One district's daily counts as reported beside their nowcast, for the district page.
-
-    ``nowcast``/``lower``/``upper`` (95 % predictive interval of the final count) are None on
-    complete days, except the last complete one, where they equal the report so the dashed
-    line joins the reported one.
-    """
-
-    measure: str
-    dates: tuple[date, ...]
-    reported: tuple[float | None, ...]
-    nowcast: tuple[float | None, ...]
-    lower: tuple[float | None, ...]
-    upper: tuple[float | None, ...]
-    basis: str
-
-
-def district_nowcast(
-    *, session: Session, code: str, end: date, as_of: datetime | None = None,
-    measure: str = "cases", days: int = 42, time_zone: tzinfo = UTC,
-) -> NowcastSeries | None:
-    """The last ``days`` days to ``end`` of ``measure`` in district ``code``, reported and
-    nowcast as known at ``as_of`` (None: nothing stored)."""
-    parent = aliased(Region)
-    rows = session.execute(
-        select(Region.code, parent.code, parent.name)
-        .outerjoin(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district").order_by(Region.code)
-    ).all()
-    codes = tuple(r[0] for r in rows)
-    if code not in codes:
-        return None
-    start = end - timedelta(days=days - 1)
-    dense = read_dense(session=session, measures=(measure,), start=start, end=end,
-                       regions=codes, as_of=as_of)
-    inputs = nowcast_inputs(
-        session=session, regions=codes, groups=[r[1] for r in rows], dates=dense.dates,
-        as_of=as_of, group_names={r[1]: r[2] for r in rows if r[1] is not None},
-        time_zone=time_zone,
-    )
-    if measure not in inputs:
-        return None
-    inp = inputs[measure]
-    i = codes.index(code)
-    nc = nowcast_window(dense[measure], inp.known_delay, inp.model, window=1)
-    open_ = nc.incomplete[i] & np.isfinite(nc.estimate[i])
-    show = open_.copy()
-    before = np.flatnonzero(~open_ & np.isfinite(dense[measure][i]))
-    if open_.any() and before.size:
-        joined = before[before < np.flatnonzero(open_)[0]]
-        if joined.size:
-            show[joined[-1]] = True
-
-    def cells(values: NDArray[np.float64]) -> tuple[float | None, ...]:
-        return tuple(float(v) if s and np.isfinite(v) else None
-                     for v, s in zip(values, show, strict=True))
-
-    reported = dense[measure][i]
-    return NowcastSeries(
-        measure=measure, dates=tuple(d.astype(date) for d in dense.dates),
-        reported=tuple(float(v) if np.isfinite(v) else None for v in reported),
-        nowcast=cells(nc.estimate[i]), lower=cells(nc.lower[i]), upper=cells(nc.upper[i]),
-        basis=inp.basis[i],
-    )

@@ -23,7 +23,7 @@ from rules import Ruleset
 from rules.formatting import interval_text, value_text
 from rules.record import CriterionState
 from server.services.backtest import nowcast_accuracy_report
-from server.services.district_indicators import NowcastSeries, district_nowcast
+from server.services.district_nowcasts import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.explanations import RevisedSince, explained_day, revised_since

@@ -36,10 +36,11 @@ from server.indicators.serial_interval import (
 )
 from server.indicators.wilson import positivity as wilson_positivity
 from server.indicators.windows import weekly_sum
-from server.services.district_indicators import DistrictData, usable
+from server.services.district_data import DistrictData
 from server.services.errors import EstimateOptionError, InputFileError
 from server.services.indicator_kinds import KINDS as REGISTRY
 from server.services.indicator_kinds import resolve
+from server.services.stored_values import usable
 
 FloatArray = NDArray[np.float64]
 T = TypeVar("T")

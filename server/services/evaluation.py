@@ -52,7 +52,8 @@ import rules
 from rules import Evaluation, Ruleset, evaluate, parse_ruleset
 from server.services.audit import record
 from server.services.database import Database
-from server.services.district_indicators import district_indicators, load_district_data
+from server.services.district_data import load_district_data
+from server.services.district_indicators import district_indicators
 from server.services.forecast_record import (
     Forecaster,
     forecasts_stored,

@@ -52,18 +52,15 @@ from server.indicators.wastewater import level, normalise, smooth, to_districts,
 from server.indicators.wilson import positivity
 from server.indicators.wilson import testing_rate as tests_per_population
 from server.services.capacity_indicators import days_to_share_series, projected_share_series
-from server.services.district_indicators import (
+from server.services.district_data import (
     AREA_MEASURES,
-    BUILDERS,
     DISTRICT_MEASURES,
     PLANT_MEASURES,
     DistrictData,
     MeasureNeeds,
-    carry_forward,
-    data_age,
-    on_nowcast,
     store_measures,
 )
+from server.services.district_indicators import BUILDERS, carry_forward, data_age, on_nowcast
 from server.services.errors import ServiceError
 from server.services.phase_indicators import wave_phase_series
 from server.services.seasonal_indicators import seasonal_series

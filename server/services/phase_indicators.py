@@ -35,7 +35,7 @@ from server.store import read_dense
 from server.store.models import Region
 
 if TYPE_CHECKING:
-    from server.services.district_indicators import DistrictData
+    from server.services.district_data import DistrictData
 
 # district_indicators' helpers are imported where they are used (the kinds registry imports
 # both modules; importing it at the top here was circular before the registry).
@@ -167,7 +167,8 @@ def district_phase(
     counts are the sums over its districts (nowcasts included). Both are fitted in one batch.
     None when the district is unknown or has no cases stored.
     """
-    from server.services.district_indicators import nowcast_inputs, usable
+    from server.services.district_nowcasts import nowcast_inputs
+    from server.services.stored_values import usable
 
     parent = aliased(Region)
     rows = session.execute(

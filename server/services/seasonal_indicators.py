@@ -41,7 +41,7 @@ from server.indicators.windows import weekly_sum
 from server.services.errors import ServiceError
 
 if TYPE_CHECKING:
-    from server.services.district_indicators import DistrictData
+    from server.services.district_data import DistrictData
 
 __all__ = ["NAME", "SeasonalParams", "SeasonalParamError", "seasonal_params",
            "seasonal_series", "weekly_intensity"]

@@ -14,11 +14,8 @@ from sqlalchemy.orm import Session
 from rules import evaluate, parse_ruleset
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import Payload
-from server.services.district_indicators import (
-    district_indicators,
-    feed_limits,
-    load_district_data,
-)
+from server.services.district_data import feed_limits, load_district_data
+from server.services.district_indicators import district_indicators
 from server.services.evaluation import evaluate_districts
 from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions

@@ -14,7 +14,8 @@ from sqlalchemy.orm import Session
 
 from rules import IndicatorSeries, RulesetError, load_ruleset, parse_ruleset
 from server.indicators.wastewater import level, normalise, smooth
-from server.services.district_indicators import district_indicators, load_district_data
+from server.services.district_data import load_district_data
+from server.services.district_indicators import district_indicators
 from server.services.indicator_kinds import (
     DEFAULTS,
     KINDS,
@@ -325,7 +326,7 @@ def test_a_named_builder_registers_as_a_kind_in_one_line(demo_session: Session) 
 
 
 def test_each_wastewater_target_is_judged_on_its_own_plant_measures() -> None:
-    from server.services.district_indicators import DistrictData
+    from server.services.district_data import DistrictData
 
     days = 40
     rng = np.random.default_rng(3)

@@ -17,7 +17,8 @@ from rules.levels import REASON_NOWCAST
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import Payload
 from server.services.backtest import nowcast_accuracy_report, run_backtest
-from server.services.district_indicators import district_indicators, load_district_data
+from server.services.district_data import load_district_data
+from server.services.district_indicators import district_indicators
 from server.services.evaluation import evaluate_districts
 from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions

@@ -12,7 +12,8 @@ from rules import evaluate, parse_ruleset
 from rules.formatting import CATEGORIES
 from server.indicators.curves import richards_cumulative
 from server.indicators.phase import GROWING, PHASE_LABELS, fit_phase
-from server.services.district_indicators import DistrictData, district_indicators
+from server.services.district_data import DistrictData
+from server.services.district_indicators import district_indicators
 from server.services.phase_indicators import STRIDE_DAYS, WINDOW_DAYS
 
 RULES = """\
@@ -87,7 +88,7 @@ def test_category_words_are_the_phase_labels() -> None:
 
 
 def test_wave_phase_on_the_demo_uses_nowcasts_and_matches_the_page(demo_session: Session) -> None:
-    from server.services.district_indicators import load_district_data
+    from server.services.district_data import load_district_data
     from server.services.phase_indicators import district_phase
     from tests.server.conftest import DEMO_END
 

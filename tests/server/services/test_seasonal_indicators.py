@@ -18,7 +18,8 @@ from numpy.testing import assert_allclose, assert_array_equal
 from rules import evaluate, parse_ruleset
 from rules.formatting import number_text
 from server.indicators.seasonal import season_layout
-from server.services.district_indicators import DistrictData, district_indicators
+from server.services.district_data import DistrictData
+from server.services.district_indicators import district_indicators
 from server.services.seasonal_indicators import (
     SeasonalParamError,
     seasonal_params,
