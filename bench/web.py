@@ -54,7 +54,7 @@ from server.services.database import Database  # noqa: E402
 from server.services.evaluation import default_ruleset_path, store_ruleset  # noqa: E402
 from server.services.observations import MeasureRecord, VintageWriter, define_measures  # noqa: E402
 from server.services.regions import RegionRecord, store_regions  # noqa: E402
-from server.services.review import publish  # noqa: E402
+from server.services.review_publication import publish  # noqa: E402
 from server.services.users import add_user  # noqa: E402
 from web.app import create_app  # noqa: E402
 

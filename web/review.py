@@ -16,13 +16,13 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from pydantic import BaseModel, Field
 
 from server.services.queue import review_queue
-from server.services.review import (
+from server.services.review_decisions import (
     DecisionConflictError,
     RecommendationChangedError,
     ReviewError,
     decide,
-    publish,
 )
+from server.services.review_publication import publish
 from web.deps import (
     INT32_MAX,
     INT64_MAX,

@@ -30,7 +30,7 @@ from sqlalchemy.orm import Session
 
 from rules import Ruleset
 from server.services.evaluation import active_ruleset, current_assessment_id
-from server.services.review import OfficialTier
+from server.services.review_official import OfficialTier
 from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Region
 

@@ -31,7 +31,7 @@ from rules import Ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset
 from server.services.outlook import Outlook, district_outlook
-from server.services.review import OfficialTier, official_tiers
+from server.services.review_official import OfficialTier, official_tiers
 from server.services.ruleset_cache import parsed
 from server.store import read_dense
 from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage

@@ -8,14 +8,10 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.services.evaluation import active_ruleset
-from server.services.review import (
-    DecisionRecord,
-    PendingChange,
-    decision_history,
-    has_something_to_publish,
-    pending_changes,
-)
 from server.services.review_cards import ReviewCard, review_cards
+from server.services.review_official import DecisionRecord, decision_history
+from server.services.review_pending import PendingChange, pending_changes
+from server.services.review_publication import has_something_to_publish
 from server.services.ruleset_cache import parsed
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region

@@ -23,7 +23,7 @@ from sqlalchemy.orm import Session
 
 from rules.record import read_explanation
 from server.services.evaluation import newest_run
-from server.services.review import PendingChange
+from server.services.review_pending import PendingChange
 from server.store.models import Assessment, Region
 
 __all__ = ["ReviewCard", "review_cards"]
