@@ -10,14 +10,8 @@ import typer
 from rich.markup import escape
 
 from server.cli.output import fail, friendly_errors, say, warn
-from server.services.estimates import (
-    KINDS,
-    EstimateOptions,
-    estimates_csv,
-    registry_kinds,
-    run_estimate,
-    write_estimates,
-)
+from server.services.estimate_csv import estimates_csv, write_estimates
+from server.services.estimates import KINDS, EstimateOptions, registry_kinds, run_estimate
 
 #: The indicators ``tierwise estimate`` computes: its own tables, then every other kind of the
 #: policy registry (``tierwise rules kinds``).

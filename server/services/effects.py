@@ -3,7 +3,7 @@
 ``tierwise effects breaks`` reads ``date, cases`` and writes one row per segment between breaks
 (the break that opens the segment on the same row); ``tierwise effects testing`` reads
 ``date, tests, positives`` and writes one row per break in testing. Files are read as by
-``tierwise estimate`` (:func:`server.services.estimates.read_daily_csv`): missing dates and empty
+``tierwise estimate`` (:func:`server.services.estimate_csv.read_daily_csv`): missing dates and empty
 cells are missing, never zero. Broken input raises
 :class:`~server.services.errors.InputFileError`; bad options
 :class:`~server.services.errors.EstimateOptionError`.
@@ -22,7 +22,7 @@ from numpy.typing import NDArray
 from server.indicators.changepoints import detect_changepoints
 from server.indicators.testing import detect_testing_changes
 from server.services.errors import EstimateOptionError, InputFileError
-from server.services.estimates import read_daily_csv
+from server.services.estimate_csv import read_daily_csv
 
 __all__ = [
     "BREAK_COLUMNS",

@@ -11,7 +11,7 @@ from numpy.testing import assert_allclose
 from scipy import stats
 
 from server.services.errors import InputFileError
-from server.services.estimates import (
+from server.services.estimate_csv import (
     EstimateTable,
     estimates_csv,
     read_daily_csv,
