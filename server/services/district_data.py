@@ -165,7 +165,6 @@ def stale_masks(
     return out
 
 
-
 def load_district_data(
     *, session: Session, start: date, end: date, as_of: datetime | None = None,
     stale_after: Mapping[str, timedelta] | None = None, nowcast: bool = True,
@@ -302,4 +301,3 @@ def _all_plants_stale(
     serving = served > 0
     fresh = serving.astype(np.float64) @ (~plant_stale).astype(np.float64)
     return serving.any(axis=1)[:, None] & (fresh == 0)
-

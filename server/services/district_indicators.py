@@ -143,4 +143,3 @@ def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, Indic
     from server.services.indicator_kinds import compute  # it imports this module
 
     return compute(data, ruleset)
-

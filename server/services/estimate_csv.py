@@ -262,4 +262,3 @@ def write_estimates(table: EstimateTable, path: Path) -> None:
         Path(path).write_text(estimates_csv(table), encoding="utf-8")
     except OSError as exc:
         raise InputFileError(str(path), "", f"cannot be written ({exc.strerror})") from None
-

@@ -373,4 +373,3 @@ def seasonal_table(
     out["seasons"][at] = res.seasons[0, week_of_row]
     out["not_enough_seasons"][at] = res.state[0, week_of_row] == NOT_ENOUGH_SEASONS
     return as_table("seasonal-intensity", source, out, flags=("not_enough_seasons",))
-

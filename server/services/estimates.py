@@ -18,9 +18,7 @@ import numpy as np
 
 from rules import FieldError, IndicatorSpec
 from rules.model import ParamValue
-from server.indicators.serial_interval import (
-    SerialInterval,
-)
+from server.indicators.serial_interval import SerialInterval
 from server.services.district_data import DistrictData
 from server.services.errors import EstimateOptionError
 from server.services.estimate_csv import (
@@ -270,4 +268,3 @@ def registry_table(
         if arr is not None:
             out[name] = arr[0]
     return as_table(kind, table, out)
-

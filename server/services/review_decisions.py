@@ -27,7 +27,6 @@ until its recommendation changes again; a district with no official tier yet can
 at "insufficient data" and needs an override with a tier.
 """
 
-
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -132,13 +131,10 @@ class Decision:
     published_at: datetime | None
 
 
-
 def active_policy(session: Session) -> Ruleset | None:
     row = active_ruleset(session=session)
     return None if row is None else parsed(row)
 
-
-#: The order in which decisions take over from one another: by the day a decision takes effect,
 
 def effective_from(
     data_day: date, decided_at: datetime, ruleset: Ruleset | None, time_zone: str = "UTC"
@@ -345,5 +341,3 @@ def decide(
         at=now,
     )
     return _as_decision(row, code, user, ruleset)
-
-

@@ -15,9 +15,7 @@ from datetime import UTC, date, datetime, timedelta
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from server.services.evaluation import (
-    active_ruleset,
-)
+from server.services.evaluation import active_ruleset
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Region, User
@@ -40,7 +38,6 @@ class OfficialTier:
     decision_id: int = 0
     ruleset_id: int | None = None
     ruleset_label: str = ""
-
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -72,7 +69,7 @@ class DecisionRecord:
     recommended_later: bool = False
 
 
-
+#: The order in which decisions take over from one another: by the day a decision takes effect,
 #: then by when it was taken (a late decision about an earlier day never outranks a later day).
 RANK = (DecisionRow.effective_date, DecisionRow.decided_at, DecisionRow.id)
 

@@ -53,7 +53,6 @@ class PendingChange:
     official_note: str = ""
 
 
-
 def _takeover(scale: Scale, tier: int, active: Ruleset, active_id: int, active_label: str) -> str:
     """How the active policy takes over an official tier decided under another ruleset."""
     if scale.ruleset_id == active_id:
@@ -181,5 +180,3 @@ def _answered_assessments(
         Assessment.id.in_(list(ids))
     )
     return {ids[aid]: (day, tier) for aid, day, tier in session.execute(query)}
-
-

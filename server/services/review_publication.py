@@ -18,9 +18,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.services.audit import record
-from server.services.evaluation import (
-    LatestItem,
-)
+from server.services.evaluation import LatestItem
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.services.review_decisions import (
     active_policy,
@@ -43,7 +41,6 @@ class PublishResult:
     regions: tuple[str, ...]
     initial: tuple[str, ...]
     notified: tuple[Delivery, ...] = field(default=())
-
 
 
 def _published_events(
@@ -163,5 +160,3 @@ def publish(
         published_at=now, decisions=len(rows), regions=regions, initial=tuple(sorted(initial)),
         notified=notified,
     )
-
-

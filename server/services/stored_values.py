@@ -66,6 +66,3 @@ def clean_arrays(
                                   ref_date=dates[d].astype("datetime64[D]").item(),
                                   value=float(arr[r, d]), problem=str(problem[r, d])))
     return values, masks
-
-
-#: Count measures nowcast from their reporting triangles: those the nowcast indicators use
