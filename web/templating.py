@@ -18,6 +18,7 @@ from server.config import Settings
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
+from web.words import translate_sentence
 
 TEMPLATES = Path(__file__).with_name("templates")
 
@@ -90,6 +91,9 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.filters["iso"] = _iso
     env.filters["number"] = _number
     env.filters["day"] = format_day
+    env.filters["word"] = catalogs.gettext  # Python-built words, web/words.py
+    env.filters["sentence"] = lambda text: translate_sentence(
+        text, catalogs.gettext, current_language.get())
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url
