@@ -172,6 +172,12 @@ class IndicatorSpec:
     params: Mapping[str, ParamValue] = field(default_factory=dict)
     kind: str | None = None
     measure: str | None = None
+    #: the label in other languages: (language code, label) pairs, for the pages
+    translations: tuple[tuple[str, str], ...] = ()
+
+    def label_in(self, lang: str | None) -> str:
+        """The label in ``lang`` (the policy's own label when there is no translation)."""
+        return next((t for code, t in self.translations if code == lang), self.label)
 
     def __post_init__(self) -> None:
         _identifier(("name",), self.name)

@@ -15,10 +15,12 @@ from fastapi.responses import HTMLResponse
 from fastapi.templating import Jinja2Templates
 
 from server.config import Settings
+from server.services.evaluation import active_ruleset
+from server.services.ruleset_cache import parsed
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
-from web.words import translate_sentence
+from web.words import policy_words, translate_sentence
 
 TEMPLATES = Path(__file__).with_name("templates")
 
@@ -92,14 +94,25 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.filters["number"] = _number
     env.filters["day"] = format_day
     env.filters["word"] = catalogs.gettext  # Python-built words, web/words.py
-    env.filters["sentence"] = lambda text: translate_sentence(
-        text, catalogs.gettext, current_language.get())
+    env.filters["sentence"] = jinja2.pass_context(lambda ctx, text: translate_sentence(
+        text, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
+    # a tier name or indicator label of the active policy in the page's language
+    env.filters["pw"] = jinja2.pass_context(
+        lambda ctx, text: (ctx.get("policy_words") or {}).get(text, text))
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url
     env.globals["demo_mode"] = settings.demo_mode
     env.globals["languages"] = [(code, LANGUAGE_NAMES[code]) for code in LANGUAGES]
     return templates
+
+
+def _policy_words(request: Request, lang: str) -> dict[str, str]:
+    if lang == "en" or not hasattr(request.app.state, "database"):
+        return {}
+    with request.app.state.database.transaction() as session:
+        row = active_ruleset(session=session)
+        return policy_words(parsed(row) if row is not None else None, lang)
 
 
 def render(
@@ -112,6 +125,7 @@ def render(
         "user": getattr(state, "user", None),
         "csrf": getattr(state, "csrf", ""),
         "lang": getattr(state, "lang", "en"),
+        "policy_words": _policy_words(request, getattr(state, "lang", "en")),
         **context,
     }
     return templates.TemplateResponse(request, name, ctx, status_code=status_code)

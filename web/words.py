@@ -12,8 +12,12 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable
+from typing import TYPE_CHECKING
 
-__all__ = ["N_", "PATTERNS", "WORDS", "translate_sentence"]
+if TYPE_CHECKING:
+    from rules import Ruleset
+
+__all__ = ["N_", "PATTERNS", "WORDS", "policy_words", "translate_sentence"]
 
 
 def N_(message: str) -> str:  # noqa: N802 - the gettext convention for "mark, do not translate"
@@ -67,8 +71,8 @@ PATTERNS: tuple[tuple[str, str], ...] = (
      r"\(the district's own reporting delays\)\.",
      N_("Nowcast: %(label)s rests on a nowcast of %(n)s incomplete days (the district's own "
         "reporting delays).")),
-    (rf"(?<= )under (?P<value>{_VALUE})", N_("under %(value)s")),
-    (rf"(?<= )over (?P<value>{_VALUE})", N_("over %(value)s")),
+    (rf"(?<=[\d%] )under (?P<value>{_VALUE})", N_("under %(value)s")),
+    (rf"(?<=[\d%] )over (?P<value>{_VALUE})", N_("over %(value)s")),
     (r"per 100 000", N_("per 100 000")),
     (r"^(?P<k>\d+) of (?P<n>\d+)$", N_("%(k)s of %(n)s")),
     (r"^(?P<days>\d+) \(minimum (?P<minimum>\d+)\)$", N_("%(days)s (minimum %(minimum)s)")),
@@ -79,11 +83,23 @@ _NUMBER = re.compile(r"(?<=\d)\.(?=\d)")
 _ISO_DAY = re.compile(r"\b(\d{4})-(\d{2})-(\d{2})\b")
 
 
-def translate_sentence(text: str, gettext: Callable[[str], str], lang: str) -> str:
+def policy_words(ruleset: Ruleset | None, lang: str) -> dict[str, str]:
+    """The active policy's tier names and indicator labels in ``lang`` (its ``translations``),
+    keyed by the policy's own text; empty for English or a policy without translations."""
+    if ruleset is None or lang == "en":
+        return {}
+    words = {t.name: t.name_in(lang) for t in ruleset.tiers}
+    words.update({i.label: i.label_in(lang) for i in ruleset.indicators})
+    return {k: v for k, v in words.items() if k != v}
+
+
+def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
+                       words: dict[str, str] | None = None) -> str:
     """``text`` (an engine sentence or counter value) with its fixed English patterns in ``lang``.
 
     English and an empty text come back unchanged; in German decimal points between digits
-    become commas and ISO days ``dd.mm.yyyy`` (the form of the ``day`` filter)."""
+    become commas and ISO days ``dd.mm.yyyy`` (the form of the ``day`` filter). ``words`` (from
+    :func:`policy_words`) replaces the policy's tier names and labels, longest first."""
     if lang == "en" or not text:
         return text
     for pattern, message in _COMPILED:
@@ -94,4 +110,8 @@ def translate_sentence(text: str, gettext: Callable[[str], str], lang: str) -> s
     if lang == "de":
         text = _NUMBER.sub(",", text)
         text = _ISO_DAY.sub(r"\3.\2.\1", text)
+    if words:
+        names = sorted(words, key=len, reverse=True)
+        rx = re.compile(r"(?<!\w)(?:" + "|".join(re.escape(n) for n in names) + r")(?!\w)")
+        text = rx.sub(lambda m: words[m.group(0)], text)
     return text
