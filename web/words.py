@@ -12,10 +12,29 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable
-from typing import TYPE_CHECKING
+from typing import Protocol
 
-if TYPE_CHECKING:
-    from rules import Ruleset
+
+class _Tier(Protocol):
+    @property
+    def name(self) -> str: ...
+
+    def name_in(self, lang: str | None) -> str: ...
+
+
+class _Indicator(Protocol):
+    @property
+    def label(self) -> str: ...
+
+    def label_in(self, lang: str | None) -> str: ...
+
+
+class _Policy(Protocol):  # rules.Ruleset (web does not import rules)
+    @property
+    def tiers(self) -> tuple[_Tier, ...]: ...
+
+    @property
+    def indicators(self) -> tuple[_Indicator, ...]: ...
 
 __all__ = ["N_", "PATTERNS", "WORDS", "policy_words", "translate_sentence"]
 
@@ -83,7 +102,7 @@ _NUMBER = re.compile(r"(?<=\d)\.(?=\d)")
 _ISO_DAY = re.compile(r"\b(\d{4})-(\d{2})-(\d{2})\b")
 
 
-def policy_words(ruleset: Ruleset | None, lang: str) -> dict[str, str]:
+def policy_words(ruleset: _Policy | None, lang: str) -> dict[str, str]:
     """The active policy's tier names and indicator labels in ``lang`` (its ``translations``),
     keyed by the policy's own text; empty for English or a policy without translations."""
     if ruleset is None or lang == "en":
@@ -91,6 +110,12 @@ def policy_words(ruleset: Ruleset | None, lang: str) -> dict[str, str]:
     words = {t.name: t.name_in(lang) for t in ruleset.tiers}
     words.update({i.label: i.label_in(lang) for i in ruleset.indicators})
     return {k: v for k, v in words.items() if k != v}
+
+
+def _filler(template: str) -> Callable[[re.Match[str]], str]:
+    def fill(m: re.Match[str]) -> str:
+        return template % m.groupdict()
+    return fill
 
 
 def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
@@ -106,12 +131,17 @@ def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
         translated = gettext(message)
         if translated == message:
             continue
-        text = pattern.sub(lambda m, t=translated: t % m.groupdict(), text)
+        text = pattern.sub(_filler(translated), text)
     if lang == "de":
         text = _NUMBER.sub(",", text)
         text = _ISO_DAY.sub(r"\3.\2.\1", text)
     if words:
         names = sorted(words, key=len, reverse=True)
         rx = re.compile(r"(?<!\w)(?:" + "|".join(re.escape(n) for n in names) + r")(?!\w)")
-        text = rx.sub(lambda m: words[m.group(0)], text)
+        table = words
+
+        def swap(m: re.Match[str]) -> str:
+            return table[m.group(0)]
+
+        text = rx.sub(swap, text)
     return text
