@@ -181,6 +181,12 @@ class IndicatorSpec:
 
     def __post_init__(self) -> None:
         _identifier(("name",), self.name)
+        for lang, label in self.translations:
+            if not _LANGUAGE.fullmatch(lang):
+                raise FieldError(("translations", lang),
+                                 f"{lang!r} is not a language code (such as de or fr-CH)")
+            if not label.strip():
+                raise FieldError(("translations", lang), "a translated label may not be empty")
         if self.kind is not None:
             _identifier(("kind",), self.kind)
         if self.measure is not None:
