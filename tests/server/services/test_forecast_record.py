@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-from sqlalchemy import func, select
+from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session
 
 import server.services.forecast_record as forecast_record_module
@@ -32,6 +32,7 @@ from server.services.forecast_record import (
     read_known,
     record_lines,
     store_forecasts,
+    store_forecasts_as_known,
     store_morning_forecasts,
 )
 from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
@@ -152,6 +153,35 @@ def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> N
             assert cell.inside_90 == int(s.inside_90[:, j].sum())
             assert_allclose(cell.mean_wis, np.nanmean(s.wis[:, j]), rtol=1e-12)
             assert_allclose(cell.naive_error, np.nanmean(s.naive_error[:, j]), rtol=1e-12)
+
+
+def test_stored_as_known_mornings_equal_the_morning_step(session: Session, store: Sim) -> None:
+    # store_forecasts_as_known (the demo's seeded record) keeps what the morning step would have
+    # stored at each as-known cutoff: same runs, same quantiles, same baselines
+    start, end = FIRST + timedelta(days=20), FIRST + timedelta(days=30)
+    n = store_forecasts_as_known(session=session, forecaster=FORECASTER, start=start, end=end)
+    assert n == 11 * (len(DISTRICTS) + len(AREAS))
+    seeded = {(r.target, r.data_cutoff.replace(tzinfo=None), r.origin): r.id
+              for r in session.scalars(select(ForecastRun))}
+    assert {k[1] for k in seeded} == {
+        as_known_cutoff(start + timedelta(days=d)).replace(tzinfo=None) for d in range(11)}
+    seeded_rows = {(k, q.region_id): (q.baseline, q.quantiles)
+                   for k, run_id in seeded.items()
+                   for q in session.scalars(select(ForecastQuantiles)
+                                            .where(ForecastQuantiles.run_id == run_id))}
+    session.execute(delete(ForecastQuantiles))
+    session.execute(delete(ForecastRun))
+    for d in range(11):
+        store_morning_forecasts(session=session, cutoff=as_known_cutoff(start + timedelta(days=d)),
+                                forecaster=FORECASTER)
+    again = {(r.target, r.data_cutoff.replace(tzinfo=None), r.origin): r.id
+             for r in session.scalars(select(ForecastRun))}
+    assert set(again) == set(seeded)
+    again_rows = {(k, q.region_id): (q.baseline, q.quantiles)
+                  for k, run_id in again.items()
+                  for q in session.scalars(select(ForecastQuantiles)
+                                           .where(ForecastQuantiles.run_id == run_id))}
+    assert again_rows == seeded_rows
 
 
 def test_as_known_record_equals_record_of_stored_mornings(
