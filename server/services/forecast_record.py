@@ -91,7 +91,8 @@ HISTORY_DAYS = 56
 SETTLE_DAYS = 7
 #: Region forecasts scored in one pass (bounds the memory of the quantile arrays).
 SCORE_CHUNK = 100_000
-#: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds.
+#: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds in
+#: percent, as the capacity forecasts give it (server/indicators/capacity.py).
 TARGET_MEASURES: dict[str, tuple[str, ...]] = {
     "hosp_admissions": ("hosp_admissions",),
     "icu_occupied": ("icu_occupied",),
@@ -111,7 +112,7 @@ def target_values(target: str, values: Mapping[str, NDArray[np.float64]]) -> NDA
     if target == "icu_share":
         with np.errstate(invalid="ignore", divide="ignore"):
             staffed = values["icu_staffed"]
-            return np.where(staffed > 0, values["icu_occupied"] / staffed, np.nan)
+            return np.where(staffed > 0, 100.0 * values["icu_occupied"] / staffed, np.nan)
     return values[TARGET_MEASURES[target][0]]
 
 

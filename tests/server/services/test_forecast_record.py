@@ -283,3 +283,26 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
     assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
         ("icu_occupied", 7, 28), ("icu_occupied", 14, 21),
         ("icu_share", 7, 28), ("icu_share", 14, 21)}
+
+
+def test_icu_share_is_scored_in_the_forecasts_percent(session: Session, store: Sim) -> None:
+    # The capacity forecaster gives icu_share in percent of staffed beds (quantiles = 100 x
+    # beds quantiles / staffed beds, server/indicators/capacity.py). With staffed beds constant
+    # (40) the share's WIS is the beds' WIS times 100/40 and so is its naive error: coverage
+    # and relative WIS must equal those of ICU beds (WIS is linear in scale, Bracher et al.
+    # 2021, eq. 2). Scored as a fraction, the share's relative WIS was about 300.
+    from server.services.capacity_forecaster import CapacityForecaster
+    from server.services.capacity_indicators import DEFAULT_SCENARIO, as_path
+
+    fc = CapacityForecaster(parents={d: AREAS[i % 2] for i, d in enumerate(DISTRICTS)},
+                            scenario=as_path(DEFAULT_SCENARIO), sims=200)
+    cells = forecast_record_as_known(session=session, forecaster=fc,
+                                     start=FIRST + timedelta(days=20),
+                                     end=FIRST + timedelta(days=50), step=3)
+    pooled = {(c.target, c.horizon): c for c in cells if c.region is None}
+    for h in (7, 14):
+        beds, share = pooled[("icu_occupied", h)], pooled[("icu_share", h)]
+        assert share.forecasts == beds.forecasts > 0
+        assert (share.inside_50, share.inside_90) == (beds.inside_50, beds.inside_90)
+        assert_allclose(share.mean_wis, beds.mean_wis * 100 / 40, rtol=1e-9)
+        assert_allclose(share.relative_wis, beds.relative_wis, rtol=1e-9)
