@@ -249,7 +249,7 @@ def store_forecasts(
     region_ids = dict(session.execute(select(Region.code, Region.id)).all())
     written = 0
     now = datetime.now(UTC)
-    for fc in forecasts:
+    for fc in _merged(forecasts):
         missing = [c for c in fc.regions if c not in region_ids]
         if missing:
             raise UnknownCodeError("region", missing)
@@ -293,6 +293,31 @@ def store_forecasts(
                 session.execute(insert(ForecastQuantiles), rows)
         written += len(rows)
     return written
+
+
+def _merged(forecasts: Iterable[QuantileForecast]) -> list[QuantileForecast]:
+    """One forecast per (target, scenario): a forecaster may return several (the capacity
+    forecaster's districts and areas), and a run is stored per (target, scenario, cutoff)."""
+    groups: dict[tuple[str, str], list[QuantileForecast]] = {}
+    for fc in forecasts:
+        groups.setdefault((fc.target, fc.scenario), []).append(fc)
+    out = []
+    for (target, scenario), items in groups.items():
+        head = items[0]
+        for other in items[1:]:
+            if (other.origin != head.origin or not np.array_equal(other.horizons, head.horizons)
+                    or not np.array_equal(other.levels, head.levels)):
+                raise ForecastRecordError(
+                    f"{target}/{scenario}: forecasts of one morning differ in origin, horizons "
+                    "or levels")
+        regions = tuple(c for f in items for c in f.regions)
+        if len(set(regions)) < len(regions):
+            raise ForecastRecordError(f"{target}/{scenario}: a region is forecast twice")
+        out.append(head if len(items) == 1 else QuantileForecast(
+            target=target, scenario=scenario, regions=regions, origin=head.origin,
+            horizons=head.horizons, levels=head.levels,
+            values=np.concatenate([f.values for f in items])))
+    return out
 
 
 def store_morning_forecasts(
