@@ -231,8 +231,7 @@ def backtest_command(
             path = write_timelines(r, output, stem=stem)
             say(f"timelines: {path}")
         _per_region(results, output)
-        if any(leads):
-            say(f"capacity leads: {_leads_csv(results, leads, output)}")
+        say(f"capacity leads: {_leads_csv(results, leads, output)}")
         if record:
             say(f"forecast record: {_forecast_csv(record, output)}")
 
