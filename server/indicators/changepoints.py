@@ -614,6 +614,11 @@ def detect_changepoints(
         Days either side of a break used by its profile (within the neighbouring segments).
     si_mean, si_sd : float
         Mean and SD of the gamma generation interval for R (default 4.7 and 2.9 days).
+    dependence_block : int or None
+        Kink model only: window (days) of the long-run dispersion of :func:`block_dispersion`;
+        the intervals of the growth rates and their changes use the larger of it and the
+        daily dispersion, with a t quantile when it is the larger (default 42, chosen on
+        validation seeds 100-129; ``None``: the daily dispersion and a normal quantile).
 
     Returns
     -------
