@@ -619,6 +619,7 @@ def detect_changepoints(
         the intervals of the growth rates and their changes use the larger of it and the
         daily dispersion, with a t quantile when it is the larger (default 42, chosen on
         validation seeds 100-129; ``None``: the daily dispersion and a normal quantile).
+        The same dispersion scales the exact stage's test for dropping a weak kink.
 
     Returns
     -------
@@ -674,7 +675,8 @@ def detect_changepoints(
     if shape == "kink":
         kfit, kscreen, kprof = _detect_kinks(
             y, min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
-            dispersion=dispersion, level=level, level_shifts=level_shifts)
+            dispersion=dispersion, level=level, level_shifts=level_shifts,
+            block=dependence_block)
         lag = None if infection_delay is None else (
             infection_delay - (si_sd**2 + si_mean**2) / (2.0 * si_mean))
         return _assemble_kinks(kfit, kscreen, kprof, level, si_mean, si_sd, lag,
@@ -1043,7 +1045,7 @@ def _chunks(rows: IntArray) -> list[IntArray]:
 
 def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, penalty: float,
                   dispersion: Dispersion, level: float, level_shifts: IntArray | None,
-                  ) -> tuple[KinkFit, Screening, _Profile]:
+                  block: int | None = None) -> tuple[KinkFit, Screening, _Profile]:
     rows, n = y.shape
     shifts = _normalise_days("level_shifts", level_shifts, rows, n)
     screening = screen_kinks(y, min_segment=min_segment, max_breaks=max_breaks,
@@ -1054,7 +1056,8 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
     crit = float(stats.chi2.ppf(level, 1))
     log_n = np.log(np.maximum(np.isfinite(y).sum(axis=1), 2))
     # 1. each kink to its profile maximum (others fixed); 2. a kink whose removal costs less
-    #    than its BIC penalty (2 log n: a slope change and a date) is dropped; refit; repeat
+    #    than its BIC penalty (2 log n: a slope change and a date), in units of the larger of
+    #    the daily and the long-run dispersion, is dropped; refit; repeat
     todo = np.arange(rows)
     for _ in range(_PROFILE_PASSES + kmax):
         if todo.size == 0 or kmax == 0:
@@ -1065,6 +1068,11 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
         for part in _chunks(np.arange(todo.size)):
             sub = _kink_fit_rows(fit, todo[part])
             scanner = _kink_scanner(y[todo[part]], sub, True)
+            scale = sub.dispersion
+            if block is not None:
+                q = 2 + (sub.kinks >= 0).sum(axis=1) + (sub.level_shifts >= 0).sum(axis=1)
+                phi_b, _ = block_dispersion(y[todo[part]], sub.mu, block, q)
+                scale = np.where(np.isfinite(phi_b), np.maximum(phi_b, scale), scale)
             for j in range(kmax):
                 has = sub.kinks[:, j] >= 0
                 if not has.any():
@@ -1079,7 +1087,7 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
                 r = np.arange(part.size)
                 move = has & ok[r, best]
                 new[part, j] = np.where(move, best, new[part, j])
-                worth = gain[r, np.where(move, best, 0)] / sub.dispersion
+                worth = gain[r, np.where(move, best, 0)] / scale
                 worth = np.where(move, worth, np.inf)
                 lower = worth < weakest[part]
                 weakest[part] = np.where(lower, worth, weakest[part])
