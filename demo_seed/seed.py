@@ -29,7 +29,7 @@ from demo_seed.feeds import (
     demo_limits,
 )
 from demo_seed.history import defer_newest_change, official_history
-from demo_seed.scenario import MEASURES, Scenario, build_scenario
+from demo_seed.scenario import MEASURES, PATHOGEN_MEASURES, Scenario, build_scenario
 from demo_seed.standin import wastewater_csv
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
@@ -122,8 +122,9 @@ def seed_demo(
                 MeasureRecord(
                     name=name, unit=spec["unit"], kind=spec["kind"],
                     aggregation=spec["aggregation"], description=spec.get("description", ""),
+                    pathogen=spec.get("pathogen"),
                 )
-                for name, spec in MEASURES.items()
+                for name, spec in {**MEASURES, **PATHOGEN_MEASURES}.items()
             ],
         )
         store_regions(
@@ -134,7 +135,8 @@ def seed_demo(
         )
         for name, role, password in DEMO_USERS:
             add_user(session=session, name=name, role=role, password=password, actor="demo")
-    batches = list(_vintages(scenario.observations, scenario.end))
+    batches = list(_vintages(pd.concat([scenario.observations, scenario.pathogen_observations]),
+                             scenario.end))
     bar = (
         progress("seeding daily vintages", len(batches))
         if progress

@@ -29,7 +29,7 @@ the count known :data:`LATER_DAYS` days later.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta, tzinfo
 from pathlib import Path
@@ -129,10 +129,15 @@ def as_known_cutoff(day: date, time_zone: tzinfo = UTC) -> datetime:
     return midnight - timedelta(microseconds=1)
 
 
-def data_span(*, session: Session) -> tuple[date, date]:
-    first, last = session.execute(
-        select(func.min(Observation.ref_date), func.max(Observation.ref_date))
-    ).one()
+def data_span(*, session: Session, measures: Iterable[str] | None = None) -> tuple[date, date]:
+    """The first and last stored days (of ``measures`` only, when given: a policy's span is that
+    of the measures it reads, so a long pathogen history does not lengthen other policies)."""
+    query = select(func.min(Observation.ref_date), func.max(Observation.ref_date))
+    names = None if measures is None else sorted(set(measures))
+    if names:
+        query = query.join(Measure, Measure.id == Observation.measure_id).where(
+            Measure.name.in_(names))
+    first, last = session.execute(query).one()
     if first is None:  # the first and last stored days
         raise BacktestError("database", "there are no observations to replay")
     return first, last
@@ -152,7 +157,9 @@ def run_backtest(
     of days finish (``n`` days each; the total is the number of days replayed).
     """
     t0 = time.perf_counter()
-    first, last = data_span(session=session)
+    needs = measure_needs(ruleset, store_measures(session=session))
+    first, last = data_span(session=session,
+                            measures=(*needs.district, *needs.area, *needs.plant))
     start, end = start or first, end or last
     if end < start:
         raise BacktestError("--to", f"{end} is before --from {start}")
@@ -162,8 +169,7 @@ def run_backtest(
     if as_known:
         data, indicators = _as_known_indicators(session, ruleset, first, end, tick, time_zone)
     else:
-        data = load_district_data(session=session, start=first, end=end,
-                                  needs=measure_needs(ruleset, store_measures(session=session)))
+        data = load_district_data(session=session, start=first, end=end, needs=needs)
         indicators = district_indicators(data, ruleset)
         tick((end - first).days + 1)
     ev = evaluate(
