@@ -26,8 +26,10 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from scipy import stats  # noqa: E402
+
 from demo_seed.steps import StepScenario, simulate_steps  # noqa: E402
-from server.indicators.changepoints import detect_changepoints  # noqa: E402
+from server.indicators.changepoints import block_dispersion, detect_changepoints  # noqa: E402
 from server.indicators.testing import detect_testing_changes  # noqa: E402
 
 SETTLE = 28  # days after a step at which its new growth rate is taken as the truth
@@ -35,6 +37,8 @@ GI_MEAN, GI_SD = 7.0, 5.0  # the step scenario's SEIR: exponential latent 3 d + 
 SHAPE = "kink"
 SHIFTS = True
 PENALTY = 1.0
+BLOCK: int | None = 42
+CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
 
 
 def _realised_change(sc: StepScenario, i: int, day: int, days: int) -> float:
@@ -65,11 +69,20 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
     # SD 5) and infection-to-test delay; the method is told these, not the step dates
     cp = detect_changepoints(sc.cases, level_shifts=shifts if SHIFTS else None,
                              si_mean=GI_MEAN, si_sd=GI_SD, infection_delay=sc.report_shift,
-                             penalty=PENALTY, shape=SHAPE)
+                             penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK)
+    if BLOCK is None and SHAPE == "kink":  # half-widths the other block lengths would give
+        phi0 = cp.fit.dispersion
+        q = 2 + (cp.breaks >= 0).sum(axis=1) + (cp.fit.level_shifts >= 0).sum(axis=1)
+        widen = {}
+        for b in CALIBRATE:
+            phi_b, df = block_dispersion(sc.cases, cp.fit.mu, b, q)
+            t = stats.t.ppf(0.975, np.where(np.isfinite(df), df, 1.0))
+            wider = np.isfinite(phi_b) & (phi_b > phi0)
+            widen[b] = np.where(wider, t / 1.959964 * np.sqrt(phi_b / phi0), 1.0)
     out: dict[str, list[float]] = {k: [] for k in (
         "hit_big", "hit_small", "false", "false_excl_testing", "cover", "cover_big",
         "testing_hit", "testing_false", "offset", "n_breaks_error", "cover_realised",
-        "cover_alone")}
+        "cover_alone", *(f"cover_block{b}" for b in CALIBRATE))}
     for i in range(regions):
         has = cp.breaks[i] >= 0
         if SHAPE == "kink":  # transmission time
@@ -96,6 +109,11 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
                 truth = after - before
                 lo, hi = cp.growth_change_lower[i, k], cp.growth_change_upper[i, k]
                 out["cover"].append(float(lo <= truth <= hi))
+                if BLOCK is None and SHAPE == "kink":
+                    mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
+                    for b in CALIBRATE:
+                        h = half * widen[b][i]
+                        out[f"cover_block{b}"].append(float(mid - h <= truth <= mid + h))
                 if big:
                     out["cover_big"].append(float(lo <= truth <= hi))
                 alone = np.sum(np.abs(est - est[k]) <= 21) == 1
@@ -121,6 +139,12 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=50)
+    parser.add_argument("--seed-start", type=int, default=0,
+                        help="first seed (calibrate on seeds disjoint from those reported)")
+    parser.add_argument("--block", type=int, default=42,
+                        help="dependence_block of detect_changepoints; 0 for none (daily "
+                             "dispersion only), which also prints the coverage other block "
+                             "lengths would give")
     parser.add_argument("--regions", type=int, default=20)
     parser.add_argument("--days", type=int, default=240)
     parser.add_argument("--shape", choices=("kink", "step"), default="kink")
@@ -128,11 +152,12 @@ def main() -> None:
     parser.add_argument("--no-shifts", action="store_true",
                         help="do not pass the flagged testing changes as level shifts")
     args = parser.parse_args()
-    global SHAPE, SHIFTS, PENALTY
+    global SHAPE, SHIFTS, PENALTY, BLOCK
     SHAPE, SHIFTS, PENALTY = args.shape, not args.no_shifts, args.penalty
+    BLOCK = args.block or None
     total: dict[str, list[float]] = {}
     began = time.perf_counter()
-    for seed in range(args.seeds):
+    for seed in range(args.seed_start, args.seed_start + args.seeds):
         for k, v in evaluate(seed, args.regions, args.days).items():
             total.setdefault(k, []).extend(v)
     took = time.perf_counter() - began
@@ -141,7 +166,9 @@ def main() -> None:
         v = total.get(key, [])
         return f"{np.mean(v):.3f} of {len(v)}" if v else "n/a"
 
-    print(f"seeds {args.seeds} x {args.regions} regions x {args.days} days ({took:.0f} s)")
+    last = args.seed_start + args.seeds - 1
+    print(f"seeds {args.seed_start}..{last}: {args.seeds} x {args.regions} regions x "
+          f"{args.days} days ({took:.0f} s)")
     print(f"steps >= 20 % found within +-3 days: {share('hit_big')}")
     print(f"steps < 20 % found within +-3 days:  {share('hit_small')}")
     off = np.array(total.get("offset", []))
@@ -153,6 +180,9 @@ def main() -> None:
     print(f"  steps >= 20 % only: {share('cover_big')}")
     print(f"  against the simulated infections' own growth change: {share('cover_realised')}")
     print(f"  breaks with no other break within 21 days: {share('cover_alone')}")
+    for b in CALIBRATE:
+        if total.get(f"cover_block{b}"):
+            print(f"  with a {b}-day block dispersion: {share(f'cover_block{b}')}")
     err = np.array(total.get("n_breaks_error", []))
     print(f"breaks found minus true steps per region: mean {err.mean():+.2f}, "
           f"exact {np.mean(err == 0):.3f}")

@@ -29,6 +29,8 @@ FEED_OF_MEASURE: dict[str, str] = {
     "ww_concentration": "wastewater-http", "ww_flow": "wastewater-http",
     "ww_marker": "wastewater-http",
     "gp_ari": "gp-sentinel",
+    "gp_ari.influenza": "gp-sentinel", "gp_ari.rsv": "gp-sentinel",
+    "cases.influenza": "long-csv", "cases.rsv": "long-csv",
 }
 #: feed -> when its delivery lands on the morning after the data are known (UTC)
 ARRIVAL: dict[str, time] = {

@@ -18,7 +18,7 @@ All names, places and numbers are invented for the demo.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime, timedelta
 from typing import Any
 
@@ -36,12 +36,14 @@ from demo_seed.observation import (
     lab_tests,
 )
 from demo_seed.observation import testing_change as testing_change_at
+from demo_seed.seasons import PATHOGENS, history_start, simulate_seasons
 from demo_seed.storyline import Truth, build_calendar, simulate_truth
 from demo_seed.vintages import delayed_report_rows, first_report_rows, rows_to_frame
 from demo_seed.wastewater import wastewater
 
 __all__ = [
     "MEASURES",
+    "PATHOGEN_MEASURES",
     "Catchment",
     "RegionSpec",
     "Scenario",
@@ -85,6 +87,21 @@ MEASURES: dict[str, dict[str, str]] = {
                               "the next day."},
 }
 
+#: The pathogen-specific measures of the influenza and RSV seasons (:mod:`demo_seed.seasons`),
+#: delivered for :data:`~demo_seed.seasons.PAST_SEASONS` past seasons before the scenario too.
+PATHOGEN_MEASURES: dict[str, dict[str, str]] = {
+    f"{base}.{pathogen}": {
+        "unit": unit, "kind": "count", "aggregation": "sum", "pathogen": pathogen,
+        "description": f"{text} ({label}), reported the next day.",
+    }
+    for pathogen, label in (("influenza", "influenza"), ("rsv", "RSV"))
+    for base, unit, text in (
+        ("gp_ari", "consultations", "GP consultations for acute respiratory illness with "
+                                    "a positive sentinel swab"),
+        ("cases", "cases", "Laboratory-confirmed cases by test date"),
+    )
+}
+
 
 @dataclass(frozen=True)
 class RegionSpec:
@@ -113,6 +130,9 @@ class Scenario:
     policy_dates: tuple[tuple[date, str], ...]
     testing_change: date
     testing_change_truth: AscertainmentChange | None = None
+    #: rows of :data:`PATHOGEN_MEASURES`, same columns as ``observations``; the days before
+    #: ``start`` arrive as one backfill delivery on ``start`` (the sentinel network's archive)
+    pathogen_observations: pd.DataFrame | None = None
 
 
 def _validate(seed: object, end: object, days: object) -> None:
@@ -209,4 +229,23 @@ def build_scenario(*, seed: int = 7, end: date | None = None, days: int = 548) -
                     catchments=geography.catchments, observations=rows_to_frame(blocks, dates),
                     truth=truth, policy_dates=truth.policy_dates,
                     testing_change=calendar.testing_change,
-                    testing_change_truth=testing_change_at(change))
+                    testing_change_truth=testing_change_at(change),
+                    pathogen_observations=pathogen_rows(seed, start, last, districts, pop))
+
+
+def pathogen_rows(seed: int, start: date, end: date, districts: tuple[str, ...],
+                  population: np.ndarray) -> pd.DataFrame:
+    """Rows of :data:`PATHOGEN_MEASURES` from :func:`demo_seed.seasons.simulate_seasons`, from
+    :func:`~demo_seed.seasons.history_start` (or ``start`` if earlier) to ``end``: each day's
+    value known the next day, the days before ``start`` all known on ``start``."""
+    first = min(start, history_start(end))
+    blocks = []
+    dates = np.datetime64(first) + np.arange((end - first).days + 1).astype("timedelta64[D]")
+    begin = (start - first).days
+    for k, pathogen in enumerate(PATHOGENS):
+        run = simulate_seasons(pathogen=pathogen, start=first, end=end, population=population,
+                               rng=np.random.default_rng([seed, 40 + k]))
+        for base, values in (("gp_ari", run.gp), ("cases", run.cases)):
+            block = first_report_rows(values, districts, f"{base}.{pathogen}", lag=1)
+            blocks.append(replace(block, known_day=np.maximum(block.known_day, begin)))
+    return rows_to_frame(blocks, dates)

@@ -14,11 +14,13 @@ from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import pandas as pd
 
 from demo_seed.feeds import (
     ARRIVAL,
+    DEMO_TIME_ZONE,
     FEED_OF_MEASURE,
     LATE_DAYS,
     LATE_FEED,
@@ -27,7 +29,7 @@ from demo_seed.feeds import (
     demo_limits,
 )
 from demo_seed.history import defer_newest_change, official_history
-from demo_seed.scenario import MEASURES, Scenario, build_scenario
+from demo_seed.scenario import MEASURES, PATHOGEN_MEASURES, Scenario, build_scenario
 from demo_seed.standin import wastewater_csv
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
@@ -38,10 +40,14 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.feeds import record_feed_state
+from server.services.forecast_record import store_forecasts_as_known
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.users import add_user
+
+#: Past mornings whose forecasts the demo stores (60 scored at 21 days, 7 settling).
+RECORD_MORNINGS = 90
 
 ProgressFactory = Callable[[str, int], AbstractContextManager[Callable[[int], None]]]
 
@@ -116,8 +122,9 @@ def seed_demo(
                 MeasureRecord(
                     name=name, unit=spec["unit"], kind=spec["kind"],
                     aggregation=spec["aggregation"], description=spec.get("description", ""),
+                    pathogen=spec.get("pathogen"),
                 )
-                for name, spec in MEASURES.items()
+                for name, spec in {**MEASURES, **PATHOGEN_MEASURES}.items()
             ],
         )
         store_regions(
@@ -128,7 +135,8 @@ def seed_demo(
         )
         for name, role, password in DEMO_USERS:
             add_user(session=session, name=name, role=role, password=password, actor="demo")
-    batches = list(_vintages(scenario.observations, scenario.end))
+    batches = list(_vintages(pd.concat([scenario.observations, scenario.pathogen_observations]),
+                             scenario.end))
     bar = (
         progress("seeding daily vintages", len(batches))
         if progress
@@ -154,6 +162,9 @@ def seed_demo(
         )
         run = activate_ruleset(session=session, row=ruleset, actor="demo",
                                stale_after=demo_limits())
+    with db.transaction() as session:  # the record of the last 90 mornings, each as known then
+        store_forecasts_as_known(session=session, time_zone=ZoneInfo(DEMO_TIME_ZONE),
+                                 start=scenario.end - timedelta(days=RECORD_MORNINGS - 1))
     decisions = 0
     if history and run is not None:
         decisions = _record_history(db, scenario, run)

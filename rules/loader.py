@@ -274,7 +274,8 @@ def _read_indicators(
             item,
             path,
             required=("label",),
-            optional=("kind", "measure", "unit", "decimals", "max_age_days", "params"),
+            optional=("kind", "measure", "unit", "decimals", "max_age_days", "params",
+                      "translations"),
         )
         if spec is None or "label" not in spec:
             out.append(None)
@@ -285,6 +286,10 @@ def _read_indicators(
                 kwargs[key] = r.text(spec[key], path + (key,))
         if "decimals" in spec:
             kwargs["decimals"] = r.integer(spec["decimals"], path + ("decimals",), minimum=0)
+        if "translations" in spec:  # {de: "7-Tage-Inzidenz", ...}: the label per language
+            tm = r.mapping(spec["translations"], path + ("translations",), free_keys=True) or {}
+            kwargs["translations"] = tuple(
+                (lang, r.text(v, path + ("translations", lang)) or "") for lang, v in tm.items())
         age_node = spec.get("max_age_days")
         kwargs["max_age_days"] = (
             _num(r, age_node, path + ("max_age_days",)) if age_node is not None else default_age

@@ -172,9 +172,21 @@ class IndicatorSpec:
     params: Mapping[str, ParamValue] = field(default_factory=dict)
     kind: str | None = None
     measure: str | None = None
+    #: the label in other languages: (language code, label) pairs, for the pages
+    translations: tuple[tuple[str, str], ...] = ()
+
+    def label_in(self, lang: str | None) -> str:
+        """The label in ``lang`` (the policy's own label when there is no translation)."""
+        return next((t for code, t in self.translations if code == lang), self.label)
 
     def __post_init__(self) -> None:
         _identifier(("name",), self.name)
+        for lang, label in self.translations:
+            if not _LANGUAGE.fullmatch(lang):
+                raise FieldError(("translations", lang),
+                                 f"{lang!r} is not a language code (such as de or fr-CH)")
+            if not label.strip():
+                raise FieldError(("translations", lang), "a translated label may not be empty")
         if self.kind is not None:
             _identifier(("kind",), self.kind)
         if self.measure is not None:

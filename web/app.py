@@ -35,6 +35,7 @@ from web.apidocs import mount_api_docs
 from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
 from web.feeds_api import router as feeds_api_router
+from web.i18n import current_language
 from web.mapsvg import MapCache
 from web.security import SecurityHeaders
 from web.staff_feeds import router as staff_feeds_router
@@ -48,10 +49,12 @@ def local_time(value: date | datetime | None, zone: ZoneInfo) -> str:
     CET``); a date stays a date, None is a dash."""
     if value is None:
         return "—"
+    german = current_language.get() == "de"  # written-out form of the page's language
     if not isinstance(value, datetime):
-        return value.isoformat()
+        return value.strftime("%d.%m.%Y") if german else value.isoformat()
     here = value.astimezone(zone)
-    return f"{here:%Y-%m-%d %H:%M} {here.tzname()}"
+    return f"{here:%d.%m.%Y %H:%M} {here.tzname()}" if german else (
+        f"{here:%Y-%m-%d %H:%M} {here.tzname()}")
 
 
 BackgroundTask = Callable[[Database], AbstractContextManager[object]]

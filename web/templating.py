@@ -8,20 +8,51 @@ from pathlib import Path
 from typing import Any
 
 import jinja2
+from babel.dates import format_date
+from babel.numbers import format_decimal, get_group_symbol
 from fastapi import Request
 from fastapi.responses import HTMLResponse
 from fastapi.templating import Jinja2Templates
 
 from server.config import Settings
+from server.services.evaluation import active_ruleset
+from server.services.ruleset_cache import parsed
 from web.charts import sparkline_points
-from web.i18n import LANGUAGE_NAMES, LANGUAGES, load_catalogs
+from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
+from web.words import policy_words, translate_sentence
 
 TEMPLATES = Path(__file__).with_name("templates")
 
 
+# Numbers: the decimal sign of the page's language (209.9 / 209,9, Babel's CLDR data), digits
+# grouped in threes by a narrow space in every language (ISO 80000-1, 7.3.1: never by a point or
+# comma, so "1.234" cannot be misread across languages).
+GROUP = "\u202f"
+
+
+def format_number(value: float, decimals: int, lang: str | None = None) -> str:
+    """``value`` with ``decimals`` places in the language of the request (or ``lang``)."""
+    locale = lang or current_language.get()
+    pattern = "#,##0" + ("." + "0" * decimals if decimals > 0 else "")
+    text = format_decimal(value, format=pattern, locale=locale)
+    return text.replace(get_group_symbol(locale), GROUP)
+
+
+def format_day(value: date | datetime | None, lang: str | None = None) -> str:
+    """A day or time stamp written out in a sentence: ISO 8601 in English (the pages' choice,
+    unambiguous), the German numeric form (``20.11.2026``, ``20.11.2026 05:30 UTC``) in German.
+    Tables, form fields and links keep :func:`_iso`."""
+    locale = lang or current_language.get()
+    if value is None or locale == "en":
+        return _iso(value)
+    if isinstance(value, datetime):
+        return value.strftime("%d.%m.%Y %H:%M UTC")  # as stored, like _iso
+    return format_date(value, "dd.MM.yyyy", locale=locale)
+
+
 def _thousands(value: int | float) -> str:
-    return f"{value:,.0f}".replace(",", "\u202f")
+    return format_number(value, 0)
 
 
 def _iso(value: date | datetime | None) -> str:
@@ -35,7 +66,7 @@ def _iso(value: date | datetime | None) -> str:
 def _number(value: float | None, decimals: int = 1) -> str:
     if value is None or not math.isfinite(value):
         return "—"
-    return f"{value:,.{decimals}f}".replace(",", "\u202f")
+    return format_number(value, decimals)
 
 
 def _tier_style(level: int | None, n_tiers: int) -> dict[str, str]:
@@ -61,12 +92,27 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.filters["thousands"] = _thousands
     env.filters["iso"] = _iso
     env.filters["number"] = _number
+    env.filters["day"] = format_day
+    env.filters["word"] = catalogs.gettext  # Python-built words, web/words.py
+    env.filters["sentence"] = jinja2.pass_context(lambda ctx, text: translate_sentence(
+        text, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
+    # a tier name or indicator label of the active policy in the page's language
+    env.filters["pw"] = jinja2.pass_context(
+        lambda ctx, text: (ctx.get("policy_words") or {}).get(text, text))
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url
     env.globals["demo_mode"] = settings.demo_mode
     env.globals["languages"] = [(code, LANGUAGE_NAMES[code]) for code in LANGUAGES]
     return templates
+
+
+def _policy_words(request: Request, lang: str) -> dict[str, str]:
+    if lang == "en" or not hasattr(request.app.state, "database"):
+        return {}
+    with request.app.state.database.transaction() as session:
+        row = active_ruleset(session=session)
+        return policy_words(parsed(row) if row is not None else None, lang)
 
 
 def render(
@@ -79,6 +125,7 @@ def render(
         "user": getattr(state, "user", None),
         "csrf": getattr(state, "csrf", ""),
         "lang": getattr(state, "lang", "en"),
+        "policy_words": _policy_words(request, getattr(state, "lang", "en")),
         **context,
     }
     return templates.TemplateResponse(request, name, ctx, status_code=status_code)

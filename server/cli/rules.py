@@ -164,6 +164,7 @@ def backtest_command(
     """Replay a ruleset over the stored history and summarise it: tier changes per region per
     year, days in each tier, prepare signals and their lead before the next escalation."""
     from server.services.backtest import (
+        capacity_leads,
         data_span,
         nowcast_accuracy_report,
         run_backtest,
@@ -178,6 +179,7 @@ def backtest_command(
     results = []
     scores = []
     record: list = []  # type: ignore[type-arg]
+    leads: list = []  # type: ignore[type-arg]
     try:
         db.check()
         for rs in rulesets:
@@ -192,6 +194,7 @@ def backtest_command(
                             as_known=as_known, progress=advance, time_zone=settings.zone,
                         )
                     )
+                leads.append(capacity_leads(session=session, result=results[-1]))
         if nowcast:
             with db.transaction() as session:
                 scores = nowcast_accuracy_report(session=session, time_zone=settings.zone)
@@ -215,6 +218,8 @@ def backtest_command(
     )
     for line in _summary_table(results):
         say(escape(line))
+    for line in _lead_lines(results, leads):
+        say(escape(line))
     for line in _nowcast_lines(scores):
         say(escape(line))
     for line in _forecast_lines(record):
@@ -226,8 +231,41 @@ def backtest_command(
             path = write_timelines(r, output, stem=stem)
             say(f"timelines: {path}")
         _per_region(results, output)
+        say(f"capacity leads: {_leads_csv(results, leads, output)}")
         if record:
             say(f"forecast record: {_forecast_csv(record, output)}")
+
+
+def _lead_lines(results: list, leads: list) -> list[str]:  # type: ignore[type-arg]
+    """Per ruleset, capacity prepare signal and area: how many days ahead of each real crossing
+    of the configured ICU share the signal fired."""
+    out: list[str] = []
+    for r, items in zip(results, leads, strict=True):
+        if not items:
+            continue
+        out += ["", f"Capacity prepare signals of {r.ruleset.name} (days ahead of the day the "
+                "area's ICU share, as known now, reached the share the indicator projects to):"]
+        for x in items:
+            name = r.names.get(x.area, x.area)
+            when = (f"fired {x.fired}, {x.lead_days} days ahead" if x.fired is not None
+                    else "did not fire before it")
+            out.append(f"  {x.signal}, {name} ({x.area}): reached {x.share:g} % on "
+                       f"{x.crossed}; {when}")
+    return out
+
+
+def _leads_csv(results: list, leads: list, output: Path) -> Path:  # type: ignore[type-arg]
+    """The capacity leads of every ruleset as CSV (``fired`` and ``lead_days`` empty: none)."""
+    lines = ["ruleset,signal,area,share,crossed,fired,lead_days"]
+    for r, items in zip(results, leads, strict=True):
+        for x in items:
+            lines.append(",".join([
+                r.ruleset.name, x.signal, x.area, f"{x.share:g}", x.crossed.isoformat(),
+                "" if x.fired is None else x.fired.isoformat(),
+                "" if x.lead_days is None else str(x.lead_days)]))
+    path = output / "capacity_leads.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
 
 
 def _nowcast_lines(scores: list) -> list[str]:  # type: ignore[type-arg]

@@ -370,11 +370,12 @@ def suffix_sums(values: FloatArray) -> FloatArray:
     return np.asarray(c[..., -1:] - c)
 
 
-def _hinge_sums(v: FloatArray, axis: int) -> FloatArray:
-    """``sum_{t > tau} v_t (t - tau)`` for every tau along ``axis`` (two reverse cumsums)."""
-    u = np.flip(np.cumsum(np.flip(v, axis=axis), axis=axis), axis=axis)  # sum_{t >= s}
-    inner = np.flip(np.cumsum(np.flip(u, axis=axis), axis=axis), axis=axis)  # sum_{s >= tau}
-    return np.asarray(inner - u)  # sum_{s > tau} U(s)
+def _hinge_sums_last(v: FloatArray) -> FloatArray:
+    """``sum_{t > tau} v_t (t - tau)`` for every tau along the last axis:
+    ``S(v t) - tau S(v)`` from two forward cumulative sums (contiguous, no flips)."""
+    n = v.shape[-1]
+    t = np.arange(n, dtype=np.float64)
+    return np.asarray(suffix_sums(v * t) - t * suffix_sums(v))
 
 
 def hinge(n: int, tau: IntArray) -> FloatArray:
@@ -407,28 +408,93 @@ def hinge_scan(z: FloatArray, w: FloatArray, x: FloatArray) -> tuple[FloatArray,
     -----
     Every inner product with a hinge is a difference of suffix sums:
     ``sum_{t > tau} v_t (t - tau) = S(v t) - tau S(v)``, so all days cost O(days x p^2).
+    The work runs on (regions, p, days) arrays so that every cumulative sum and product is
+    along contiguous memory.
     """
-    rows, n, p = x.shape
-    xw = x * w[..., None]
-    a = np.matmul(xw.transpose(0, 2, 1), x)
-    diag = np.einsum("rpp->rp", a)
-    zero = diag <= 0
+    xt = np.ascontiguousarray(x.transpose(0, 2, 1))  # (rows, p, n)
+    return _scan_t(z, w, xt)
+
+
+def _hinge_square_sums(w: FloatArray) -> FloatArray:
+    """``sum_{t > tau} w_t (t - tau)^2`` for every tau."""
+    t = np.arange(w.shape[-1], dtype=np.float64)
+    return np.asarray(suffix_sums(w * t * t) - 2.0 * t * suffix_sums(w * t)
+                      + t * t * suffix_sums(w))
+
+
+def _scan_t(z: FloatArray, w: FloatArray, xt: FloatArray, c_fixed: FloatArray | None = None,
+            hh: FloatArray | None = None) -> tuple[FloatArray, FloatArray]:
+    """:func:`hinge_scan` on the design ``xt`` laid out (rows, p, days); ``c_fixed`` holds the
+    hinge sums of the first columns of ``xt * w`` and ``hh`` those of the hinge itself, when
+    already known."""
+    rows, p, n = xt.shape
+    xwt = xt * w[:, None, :]
+    a = np.matmul(xwt, xt.transpose(0, 2, 1))
+    zero = np.einsum("rpp->rp", a) <= 0
     a[:, np.arange(p), np.arange(p)] += zero
-    ainv = np.linalg.inv(a)
-    beta = np.einsum("rpq,rq->rp", ainv, np.einsum("rnp,rn->rp", xw, z))
-    e = z - np.einsum("rnp,rp->rn", x, beta)
+    try:
+        ainv = np.linalg.inv(a)
+    except np.linalg.LinAlgError:  # columns with next to no weight (counts near 0 at an end)
+        ainv = np.linalg.pinv(a, hermitian=True)
+    beta = np.einsum("rpq,rq->rp", ainv, np.matmul(xwt, z[..., None])[..., 0])
+    e = z - np.matmul(beta[:, None, :], xt)[:, 0, :]
     rss = (w * e * e).sum(axis=1)
-    # sum_{t > tau} v_t (t - tau) = sum_{s > tau} U(s) with U(s) = sum_{t >= s} v_t
-    num = _hinge_sums(w * e, axis=1)
-    c = _hinge_sums(xw, axis=1)  # (rows, n, p)
-    t = np.arange(n, dtype=np.float64)
-    tau = t[None, :]
-    hh = suffix_sums(w * t * t) - 2.0 * tau * suffix_sums(w * t) + tau * tau * suffix_sums(w)
-    quad = (np.matmul(c, ainv) * c).sum(axis=2)
+    num = _hinge_sums_last(w * e)
+    if c_fixed is None:
+        c = _hinge_sums_last(xwt)  # (rows, p, n)
+    else:
+        f = c_fixed.shape[1]
+        c = np.concatenate([c_fixed, _hinge_sums_last(xwt[:, f:])], axis=1) if f < p else c_fixed
+    if hh is None:
+        hh = _hinge_square_sums(w)
+    quad = (np.matmul(ainv, c) * c).sum(axis=1)
     den = hh - quad
     with np.errstate(invalid="ignore", divide="ignore"):
         gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num * num / den, 0.0)
     return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
+
+
+class KinkScanner:
+    """:func:`hinge_scan` of ``z`` on a line with kinks plus ``extra`` columns, for many kink
+    sets on the same ``z`` and ``w``: the hinge sums of the fixed columns (level, slope,
+    ``extra``) are computed once, and rows are grouped by their number of kinks so that no
+    all-zero hinge column is carried (the same results as :func:`hinge_scan` on
+    :func:`line_design`, column order aside, which does not change a least-squares fit)."""
+
+    def __init__(self, z: FloatArray, w: FloatArray, extra: FloatArray | None = None) -> None:
+        rows, n = z.shape
+        self.z, self.w, self.n = z, w, n
+        t = np.arange(n, dtype=np.float64)
+        base = np.broadcast_to(np.stack([np.ones(n), (t - 0.5 * (n - 1)) / n]), (rows, 2, n))
+        cols = [base] if extra is None else [base, extra.transpose(0, 2, 1)]
+        self.fixed = np.ascontiguousarray(np.concatenate(cols, axis=1))
+        self.c_fixed = _hinge_sums_last(self.fixed * w[:, None, :])
+        self.hh = _hinge_square_sums(w)
+
+    def scan(self, kinks: IntArray, rows: IntArray | None = None
+             ) -> tuple[FloatArray, FloatArray]:
+        """``(rss, gain)`` of :func:`hinge_scan` for ``kinks`` (shape (len(rows), k), -1 for
+        none) on the rows ``rows`` (all by default)."""
+        if rows is None:
+            rows = np.arange(self.z.shape[0])
+        k = sort_kinks(kinks)
+        count = (k >= 0).sum(axis=1)
+        rss = np.empty(rows.size)
+        gain = np.empty((rows.size, self.n))
+        for m in np.unique(count):
+            i = np.flatnonzero(count == m)
+            r = rows[i]
+            xt = self.fixed[r]
+            if m:
+                xt = np.concatenate([xt, hinge(self.n, k[i, :m])], axis=1)
+            rss[i], gain[i] = _scan_t(self.z[r], self.w[r], xt, self.c_fixed[r], self.hh[r])
+        return rss, gain
+
+
+def scan_kinks(z: FloatArray, w: FloatArray, kinks: IntArray,
+               extra: FloatArray | None = None) -> tuple[FloatArray, FloatArray]:
+    """:func:`hinge_scan` on ``line_design(n, kinks, extra)`` by :class:`KinkScanner`."""
+    return KinkScanner(z, w, extra).scan(kinks)
 
 
 def kink_allowed(kinks: IntArray, n: int, min_segment: int) -> BoolArray:
@@ -479,8 +545,9 @@ def screen_kinks(
     (t - tau_k)_+``. Each step adds, for every region at once, the kink with the largest drop
     of the weighted residual sum of squares (:func:`hinge_scan`; forward stepwise selection of
     hinges as in MARS, Friedman 1991); then, from the largest model, the kink whose removal
-    raises the sum least is dropped and the others are moved to their best days (one sweep),
-    down to none (backward elimination); each k keeps the better of the two paths. Model k has
+    raises the sum least is dropped and its two neighbours are moved to their best days (one
+    sweep), down to none (backward elimination); each k keeps the better of the two paths.
+    Model k has
     ``p_k = 2 k + 8`` parameters (a slope change and a date per kink, level and slope, six
     weekday effects) and criterion
     ``RSS_k / phi + penalty * p_k * log n`` with ``phi = RSS_K / (n - p_K)`` from the largest
@@ -533,26 +600,36 @@ def line_design(n: int, kinks: IntArray, extra: FloatArray | None = None) -> Flo
     return np.concatenate(cols, axis=2)
 
 
-def refine_kinks(z: FloatArray, w: FloatArray, kinks: IntArray, min_segment: int,
-                 extra: FloatArray | None = None, sweeps: int = 2) -> IntArray:
-    """Move each kink, one at a time, to the day of least weighted RSS with the others fixed."""
-    rows, n = z.shape
+def refine_kinks(scanner: KinkScanner, kinks: IntArray, min_segment: int, sweeps: int = 2,
+                 which: BoolArray | None = None, rows: IntArray | None = None) -> IntArray:
+    """Move each kink, one at a time, to the day of least weighted RSS with the others fixed.
+
+    ``kinks`` belong to ``rows`` of the scanner (all by default); ``which`` (shape of
+    ``kinks``) limits the moves to the marked kinks. Only rows holding a kink to move are
+    scanned, and a further sweep only rows where a kink moved.
+    """
+    n = scanner.n
+    if rows is None:
+        rows = np.arange(kinks.shape[0])
     kinks = kinks.copy()
+    mask = kinks >= 0 if which is None else (kinks >= 0) & which
+    active = np.ones(kinks.shape[0], dtype=bool)
     for _ in range(sweeps):
-        moved = False
+        moved = np.zeros(kinks.shape[0], dtype=bool)
         for j in range(kinks.shape[1]):
-            has = kinks[:, j] >= 0
-            if not has.any():
+            r = np.flatnonzero(mask[:, j] & active)
+            if r.size == 0:
                 continue
-            others = kinks.copy()
+            others = kinks[r].copy()
             others[:, j] = -1
-            _, gain = hinge_scan(z, w, line_design(n, others, extra))
+            _, gain = scanner.scan(others, rows[r])
             ok = kink_allowed(others, n, min_segment)
             best = np.argmax(np.where(ok, gain, -1.0), axis=1)
-            new = np.where(has & ok[np.arange(rows), best], best, kinks[:, j])
-            moved |= bool(np.any(new != kinks[:, j]))
-            kinks[:, j] = new
-        if not moved:
+            new = np.where(ok[np.arange(r.size), best], best, kinks[r, j])
+            moved[r] |= new != kinks[r, j]
+            kinks[r, j] = new
+        active = moved
+        if not active.any():
             break
     return sort_kinks(kinks)
 
@@ -602,11 +679,12 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
                 penalty: float, steps: FloatArray | None = None) -> Screening:
     rows, n = z.shape
     every = np.arange(rows)
+    scanner = KinkScanner(z, w, steps)
     kinks = np.full((rows, max_breaks), -1, dtype=np.int64)
     rss = np.full((rows, max_breaks + 1), np.inf)
     path = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
     for k in range(max_breaks + 1):
-        r0, gain = hinge_scan(z, w, line_design(n, kinks[:, :k], steps))
+        r0, gain = scanner.scan(kinks[:, :k])
         rss[:, k] = np.where(np.all(kinks[:, :k] >= 0, axis=1), r0, np.inf)
         path[:, k] = kinks
         if k == max_breaks:
@@ -628,11 +706,13 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         j = np.argmin(np.where(cur[r] >= 0, cost, np.inf), axis=1)
         part = cur[r].copy()
         part[np.arange(r.size), j] = -1
-        part = refine_kinks(z[r], w[r], sort_kinks(part), min_segment,
-                            None if steps is None else steps[r], sweeps=1)
+        # the kinks on either side of the dropped one (sorted positions j - 1 and j) move
+        pos = np.arange(cur.shape[1])[None, :]
+        near = (pos == j[:, None] - 1) | (pos == j[:, None])
+        part = refine_kinks(scanner, sort_kinks(part), min_segment, sweeps=1, which=near,
+                            rows=r)
         cur[r] = part
-        back, _ = hinge_scan(z[r], w[r], line_design(n, part[:, : k - 1], None if steps is None
-                                                     else steps[r]))
+        back, _ = scanner.scan(part[:, : k - 1], r)
         better = back < rss[r, k - 1]
         rss[r[better], k - 1] = back[better]
         path[r[better], k - 1] = part[better]
@@ -649,5 +729,5 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
     crit = np.where(valid, crit, np.inf)
     n_breaks = np.argmin(crit, axis=1).astype(np.int64)
     chosen = path[every, n_breaks]
-    chosen = refine_kinks(z, w, sort_kinks(chosen), min_segment, steps)
+    chosen = refine_kinks(scanner, sort_kinks(chosen), min_segment)
     return Screening(chosen, rss, crit, n_breaks, phi)

@@ -29,7 +29,7 @@ the count known :data:`LATER_DAYS` days later.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, timedelta, tzinfo
 from pathlib import Path
@@ -68,11 +68,15 @@ from server.services.district_indicators import (
 from server.services.errors import ServiceError
 from server.services.indicator_kinds import measure_needs, sample_indicators, store_measures
 from server.store.models import Measure, Observation, Region, Vintage
+from server.store.reads import read_dense
 
 __all__ = [
     "WINDOW_DAYS",
     "BacktestError",
     "BacktestResult",
+    "CapacityLead",
+    "capacity_leads",
+    "crossing_leads",
     "NowcastScore",
     "as_known_cutoff",
     "data_span",
@@ -125,10 +129,15 @@ def as_known_cutoff(day: date, time_zone: tzinfo = UTC) -> datetime:
     return midnight - timedelta(microseconds=1)
 
 
-def data_span(*, session: Session) -> tuple[date, date]:
-    first, last = session.execute(
-        select(func.min(Observation.ref_date), func.max(Observation.ref_date))
-    ).one()
+def data_span(*, session: Session, measures: Iterable[str] | None = None) -> tuple[date, date]:
+    """The first and last stored days (of ``measures`` only, when given: a policy's span is that
+    of the measures it reads, so a long pathogen history does not lengthen other policies)."""
+    query = select(func.min(Observation.ref_date), func.max(Observation.ref_date))
+    names = None if measures is None else sorted(set(measures))
+    if names:
+        query = query.join(Measure, Measure.id == Observation.measure_id).where(
+            Measure.name.in_(names))
+    first, last = session.execute(query).one()
     if first is None:  # the first and last stored days
         raise BacktestError("database", "there are no observations to replay")
     return first, last
@@ -148,7 +157,9 @@ def run_backtest(
     of days finish (``n`` days each; the total is the number of days replayed).
     """
     t0 = time.perf_counter()
-    first, last = data_span(session=session)
+    needs = measure_needs(ruleset, store_measures(session=session))
+    first, last = data_span(session=session,
+                            measures=(*needs.district, *needs.area, *needs.plant))
     start, end = start or first, end or last
     if end < start:
         raise BacktestError("--to", f"{end} is before --from {start}")
@@ -158,8 +169,7 @@ def run_backtest(
     if as_known:
         data, indicators = _as_known_indicators(session, ruleset, first, end, tick, time_zone)
     else:
-        data = load_district_data(session=session, start=first, end=end,
-                                  needs=measure_needs(ruleset, store_measures(session=session)))
+        data = load_district_data(session=session, start=first, end=end, needs=needs)
         indicators = district_indicators(data, ruleset)
         tick((end - first).days + 1)
     ev = evaluate(
@@ -175,6 +185,104 @@ def run_backtest(
         ruleset=ruleset, as_known=as_known, start=start, end=end, evaluation=ev,
         summary=summary, seconds=time.perf_counter() - t0, names=names,
     )
+
+
+# -- capacity prepare signals against the real crossing ------------------------------------------
+
+#: Indicator kinds that project the ICU share towards a configured ``share`` (percent).
+CAPACITY_KINDS = ("icu_days_to_share", "icu_share_projected")
+
+
+@dataclass(frozen=True, kw_only=True)
+class CapacityLead:
+    """One real crossing of an area's ICU share and how long before it a prepare signal fired.
+
+    ``crossed`` is a day the area's ICU share (occupied / staffed beds, as known at the end)
+    reached ``share`` percent after being below it the day before; ``fired`` the signal's first
+    firing day within the ``lookback`` days before (and since the share was last at or above
+    ``share``), None when it did not fire; ``lead_days`` = ``crossed - fired``.
+    """
+
+    signal: str
+    area: str
+    share: float
+    crossed: date
+    fired: date | None
+
+    @property
+    def lead_days(self) -> int | None:
+        return None if self.fired is None else (self.crossed - self.fired).days
+
+
+def crossing_leads(
+    share: NDArray[np.float64], fired: NDArray[np.bool_], threshold: float, lookback: int
+) -> list[tuple[int, int, int]]:
+    """(row, crossing day, first firing day or -1) for every upward crossing of ``threshold``.
+
+    ``share`` and ``fired`` are (rows, days). A crossing is a day with ``share >= threshold``
+    whose previous known day was below it (the first known day does not count); the firing day
+    is the first ``fired`` day in ``max(c - lookback, day after the last day at or above the
+    threshold) .. c``.
+    """
+    out = []
+    for r in range(share.shape[0]):
+        known = np.flatnonzero(np.isfinite(share[r]))
+        above = share[r, known] >= threshold
+        ups = known[1:][above[1:] & ~above[:-1]]
+        for c in ups:
+            before = known[(known < c) & (share[r, known] >= threshold)]
+            lo = max(int(c) - lookback, int(before[-1]) + 1 if before.size else 0)
+            hits = np.flatnonzero(fired[r, lo: int(c) + 1])
+            out.append((r, int(c), lo + int(hits[0]) if hits.size else -1))
+    return out
+
+
+def capacity_leads(
+    *, session: Session, result: BacktestResult, lookback: int | None = None
+) -> list[CapacityLead]:
+    """For each prepare signal on a projected-capacity indicator (:data:`CAPACITY_KINDS`), per
+    area and real crossing of the indicator's ``share`` (default 85 %) within the result's
+    period, how many days ahead the signal fired (:func:`crossing_leads`; ``lookback`` defaults
+    to the indicator's ``horizon``, else 21 days). An area fires when any of its districts
+    does (they share the area's projection)."""
+    rs, ev = result.ruleset, result.evaluation
+    specs = []
+    for k, sig in enumerate(rs.prepare):
+        spec = rs.indicator(sig.indicator)
+        if (spec.kind or spec.name) in CAPACITY_KINDS:
+            specs.append((k, sig, float(spec.params.get("share", 85.0)),
+                          int(lookback or spec.params.get("horizon", 21))))
+    if not specs:
+        return []
+    from server.services.capacity_forecaster import district_parents
+
+    parent = {c: a for c, a in district_parents(session).items() if c in set(ev.regions)}
+    areas = sorted(set(parent.values()))
+    if not areas:
+        return []
+    first = ev.dates[0].astype(date)
+    last = ev.dates[-1].astype(date)
+    dense = read_dense(session=session, measures=["icu_occupied", "icu_staffed"], start=first,
+                       end=last, regions=areas)
+    row = {c: i for i, c in enumerate(dense.regions)}
+    occ, staffed = dense.values["icu_occupied"], dense.values["icu_staffed"]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(staffed > 0, 100.0 * occ / staffed, np.nan)
+    share = np.stack([share[row[a]] if a in row else np.full(ev.dates.size, np.nan)
+                      for a in areas])
+    member = np.array([[parent.get(c) == a for c in ev.regions] for a in areas])
+    cols = result.period
+    out = []
+    for k, sig, threshold, days in specs:
+        fired = (member.astype(np.int64) @ ev.prepare[k].astype(np.int64)) > 0
+        for r, c, f in crossing_leads(share, fired, threshold, days):
+            if not cols.start <= c < cols.stop:
+                continue
+            out.append(CapacityLead(
+                signal=sig.id, area=areas[r], share=threshold,
+                crossed=first + timedelta(days=c),
+                fired=None if f < 0 else first + timedelta(days=f)))
+    return out
 
 
 # -- as-known replay -----------------------------------------------------------------------------

@@ -38,7 +38,7 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -62,7 +62,7 @@ from server.services.forecast_record import (
 from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.services.ruleset_cache import parsed
-from server.store.models import Assessment, Observation, Region, Vintage
+from server.store.models import Assessment, Measure, Observation, Region, Vintage
 from server.store.models import EvaluationRun as RunRow
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
@@ -158,12 +158,18 @@ def newest_cutoff(*, session: Session) -> datetime | None:
     return session.scalar(select(type_coerce(func.max(Vintage.received_at), UTCDateTime())))
 
 
-def _date_range(session: Session, cutoff: datetime) -> tuple[date, date] | None:
-    first, last = session.execute(
-        select(func.min(Observation.ref_date), func.max(Observation.ref_date))
-        .join(Vintage, Vintage.id == Observation.vintage_id)
-        .where(Vintage.received_at <= cutoff)
-    ).one()
+def _date_range(session: Session, cutoff: datetime, measures: Sequence[str] = ()
+                ) -> tuple[date, date] | None:
+    """First and last stored days known at ``cutoff``, of ``measures`` (all when empty): a
+    policy is evaluated over the span of the measures it reads, so a long history of one
+    measure (the demo's pathogen seasons) does not lengthen the others' evaluation."""
+    query = (select(func.min(Observation.ref_date), func.max(Observation.ref_date))
+             .join(Vintage, Vintage.id == Observation.vintage_id)
+             .where(Vintage.received_at <= cutoff))
+    if measures:
+        query = query.join(Measure, Measure.id == Observation.measure_id).where(
+            Measure.name.in_(sorted(set(measures))))
+    first, last = session.execute(query).one()
     return None if first is None else (first, last)
 
 
@@ -184,7 +190,9 @@ def evaluate_districts(
     cutoff = cutoff or newest_cutoff(session=session)
     if cutoff is None:
         return None
-    span = _date_range(session, cutoff)
+    ruleset = parsed(ruleset_row)
+    needs = measure_needs(ruleset, store_measures(session=session))
+    span = _date_range(session, cutoff, (*needs.district, *needs.area, *needs.plant))
     if span is None:
         return None
     start, end = span
@@ -194,10 +202,8 @@ def evaluate_districts(
     )
     if _stored_run(session, ruleset_row.id, cutoff):
         return reused
-    ruleset = parsed(ruleset_row)
     data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
-                              stale_after=stale_after, needs=measure_needs(
-                                  ruleset, store_measures(session=session)))
+                              stale_after=stale_after, needs=needs)
     result = evaluate(
         ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
         region_levels=data.levels,

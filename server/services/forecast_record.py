@@ -27,7 +27,7 @@ no areas).
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta, tzinfo
 from typing import Protocol
@@ -76,6 +76,7 @@ __all__ = [
     "read_known",
     "record_lines",
     "store_forecasts",
+    "store_forecasts_as_known",
     "store_morning_forecasts",
     "target_values",
 ]
@@ -90,7 +91,8 @@ HISTORY_DAYS = 56
 SETTLE_DAYS = 7
 #: Region forecasts scored in one pass (bounds the memory of the quantile arrays).
 SCORE_CHUNK = 100_000
-#: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds.
+#: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds in
+#: percent, as the capacity forecasts give it (server/indicators/capacity.py).
 TARGET_MEASURES: dict[str, tuple[str, ...]] = {
     "hosp_admissions": ("hosp_admissions",),
     "icu_occupied": ("icu_occupied",),
@@ -110,7 +112,7 @@ def target_values(target: str, values: Mapping[str, NDArray[np.float64]]) -> NDA
     if target == "icu_share":
         with np.errstate(invalid="ignore", divide="ignore"):
             staffed = values["icu_staffed"]
-            return np.where(staffed > 0, values["icu_occupied"] / staffed, np.nan)
+            return np.where(staffed > 0, 100.0 * values["icu_occupied"] / staffed, np.nan)
     return values[TARGET_MEASURES[target][0]]
 
 
@@ -247,7 +249,7 @@ def store_forecasts(
     region_ids = dict(session.execute(select(Region.code, Region.id)).all())
     written = 0
     now = datetime.now(UTC)
-    for fc in forecasts:
+    for fc in _merged(forecasts):
         missing = [c for c in fc.regions if c not in region_ids]
         if missing:
             raise UnknownCodeError("region", missing)
@@ -291,6 +293,31 @@ def store_forecasts(
                 session.execute(insert(ForecastQuantiles), rows)
         written += len(rows)
     return written
+
+
+def _merged(forecasts: Iterable[QuantileForecast]) -> list[QuantileForecast]:
+    """One forecast per (target, scenario): a forecaster may return several (the capacity
+    forecaster's districts and areas), and a run is stored per (target, scenario, cutoff)."""
+    groups: dict[tuple[str, str], list[QuantileForecast]] = {}
+    for fc in forecasts:
+        groups.setdefault((fc.target, fc.scenario), []).append(fc)
+    out = []
+    for (target, scenario), items in groups.items():
+        head = items[0]
+        for other in items[1:]:
+            if (other.origin != head.origin or not np.array_equal(other.horizons, head.horizons)
+                    or not np.array_equal(other.levels, head.levels)):
+                raise ForecastRecordError(
+                    f"{target}/{scenario}: forecasts of one morning differ in origin, horizons "
+                    "or levels")
+        regions = tuple(c for f in items for c in f.regions)
+        if len(set(regions)) < len(regions):
+            raise ForecastRecordError(f"{target}/{scenario}: a region is forecast twice")
+        out.append(head if len(items) == 1 else QuantileForecast(
+            target=target, scenario=scenario, regions=regions, origin=head.origin,
+            horizons=head.horizons, levels=head.levels,
+            values=np.concatenate([f.values for f in items])))
+    return out
 
 
 def store_morning_forecasts(
@@ -571,9 +598,46 @@ def forecast_record_as_known(
     Nothing is stored; outcomes as in :func:`forecast_record`. Returns per-region cells and the
     pooled cells (``region`` None).
     """
+    made = [
+        _Made(forecast=f, baseline=_baselines(f, known), cutoff=known.cutoff)
+        for known, forecasts in _as_known_mornings(
+            session=session, forecaster=forecaster or default_forecaster(session),
+            time_zone=time_zone, start=start, end=end, step=step)
+        for f in forecasts
+    ]
+    return _score(session, made, last=last, pooled=True, settle_days=settle_days)
+
+
+def store_forecasts_as_known(
+    *, session: Session, forecaster: Forecaster | None = None, time_zone: tzinfo = UTC,
+    start: date | None = None, end: date | None = None, step: int = 1,
+) -> int:
+    """Store the forecasts past mornings would have made, each from the data known that morning.
+
+    The same replay as :func:`forecast_record_as_known` (morning ``t``'s cutoff is
+    :func:`server.services.backtest.as_known_cutoff` of ``t``), kept with
+    :func:`store_forecasts` as if the morning step had run on each of those mornings; the demo
+    seeds its record so (``demo_seed/seed.py``). Returns the region rows written. Does not
+    commit.
+    """
+    fc = forecaster or default_forecaster(session)
+    written = 0
+    for known, forecasts in _as_known_mornings(session=session, forecaster=fc,
+                                               time_zone=time_zone, start=start, end=end,
+                                               step=step):
+        written += store_forecasts(session=session, forecasts=forecasts, cutoff=known.cutoff,
+                                   known=known, forecaster=fc.name)
+    return written
+
+
+def _as_known_mornings(
+    *, session: Session, forecaster: Forecaster, time_zone: tzinfo, start: date | None,
+    end: date | None, step: int,
+) -> Iterator[tuple[KnownData, list[QuantileForecast]]]:
+    """Each replayed morning's data as known (cutoff included) and the forecasts made from it."""
     from server.services.backtest import as_known_cutoff, data_span
 
-    fc = forecaster or default_forecaster(session)
+    fc = forecaster
     measures = _present(session, fc.measures)
     first, last_day = data_span(session=session)
     start = start or first + timedelta(days=7)
@@ -606,7 +670,6 @@ def forecast_record_as_known(
     v_a, k_a = np.asarray(vals, dtype=np.float64), np.asarray(known_day, dtype=np.int64)
     dense = np.full((len(measures), len(codes), n_days), np.nan)
     applied = 0
-    made: list[_Made] = []
     dates = np.arange(np.datetime64(first, "D"), np.datetime64(last_day, "D") + 1)
     for t in range((start - first).days, (end - first).days + 1):
         # rows come in order of receipt, so their as-known days never decrease
@@ -625,9 +688,7 @@ def forecast_record_as_known(
         known = KnownData(cutoff=cutoff, regions=codes, dates=dates[lo: newest + 1],
                           values={m: dense[k, :, lo: newest + 1].copy()
                                   for k, m in enumerate(measures)})
-        for f in fc(known):
-            made.append(_Made(forecast=f, baseline=_baselines(f, known), cutoff=cutoff))
-    return _score(session, made, last=last, pooled=True, settle_days=settle_days)
+        yield known, list(fc(known))
 
 
 # -- sentences for pages ------------------------------------------------------------------------

@@ -200,6 +200,9 @@ class Kind:
     open_params: bool = False
     #: ``tierwise estimate`` offers it (a builder that needs its ruleset cannot run there).
     in_estimate: bool = True
+    #: A parameter that names the measure (a name-based builder's own ``params: {measure:}``):
+    #: given there, it is the measure the declaration reads.
+    measure_param: str | None = None
 
     def param(self, name: str) -> Param:
         for p in self.params:
@@ -544,7 +547,7 @@ def from_named_builder(
     return Kind(name=name, help=help, default_measure=default_measure,
                 measure_kinds=measure_kinds, level=level, params=params, builder=build,
                 carry=carry, on_samples=on_samples, reads=reads or MeasureNeeds(),
-                open_params=True, in_estimate=False)
+                open_params=True, in_estimate=False, measure_param=measure_param)
 
 
 class UnknownIndicatorError(ServiceError, ValueError):
@@ -592,6 +595,10 @@ def resolve(
         return None
     kind_name, measure, given = declared
     kind = KINDS[kind_name]
+    named = given.get(kind.measure_param) if kind.measure_param else None
+    if isinstance(named, str) and (spec.kind is None or spec.measure is None):
+        measure = named   # params: {measure: gp_ari.rsv} names what it reads
+        _measure_of(("params", str(kind.measure_param)), measure, kind.measure_kinds, measures)
     _measure_of(("measure",), measure, kind.measure_kinds, measures)
     known = {p.name for p in kind.params}
     params: dict[str, ParamValue] = {}

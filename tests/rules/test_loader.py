@@ -256,3 +256,24 @@ def test_tier_translation_errors_are_located(translations: str, where: str) -> N
     with pytest.raises(RulesetError) as info:
         parse_ruleset(text, source="f.yaml")
     assert any(re.search(where, p.location()) for p in info.value.errors), info.value.errors
+
+
+def test_indicator_label_translations_are_read_and_fall_back_to_the_label() -> None:
+    text = BASE.replace("  incidence_7d: {label: incidence}\n",
+                        "  incidence_7d: {label: incidence, translations: {de: Inzidenz}}\n")
+    spec = next(i for i in parse_ruleset(text).indicators if i.name == "incidence_7d")
+    assert (spec.label_in("de"), spec.label_in("fr"), spec.label_in(None)) == (
+        "Inzidenz", "incidence", "incidence")
+
+
+@pytest.mark.parametrize(("translations", "where"), [
+    ("{German: Inzidenz}", r"f\.yaml:\d+:\d+: indicators\.incidence_7d\.translations\.German: "
+                           r"'German' is not a language code"),
+    ("{de: ''}", r"f\.yaml:\d+:\d+: indicators\.incidence_7d\.translations\.de: "),
+])
+def test_indicator_translation_errors_are_located(translations: str, where: str) -> None:
+    text = BASE.replace("  incidence_7d: {label: incidence}\n",
+                        f"  incidence_7d: {{label: incidence, translations: {translations}}}\n")
+    with pytest.raises(RulesetError) as info:
+        parse_ruleset(text, source="f.yaml")
+    assert any(re.search(where, p.location()) for p in info.value.errors), info.value.errors

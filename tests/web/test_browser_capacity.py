@@ -16,5 +16,9 @@ def test_capacity_page_draws_each_scenarios_fan(server: str, page: object) -> No
     charts = page.locator(".chart")  # type: ignore[attr-defined]
     assert charts.count() == 3
     assert page.locator(".chart[data-drawn]").count() == 3  # type: ignore[attr-defined]
+    # the demo seeds its past mornings' forecasts: the record is shown, not "no past forecasts"
+    record = page.locator("section.forecast-record li")  # type: ignore[attr-defined]
+    assert record.count() >= 4
+    assert "share of ICU beds in use" in " ".join(record.all_inner_texts())
     assert not [e for e in page.csp_errors if "Content Security Policy" in e]  # type: ignore[attr-defined]
     shot(page, "20-staff-area-capacity")

@@ -117,7 +117,7 @@ def test_upload_asks_before_revising_another_feed_then_lists_revisions(
     server: str, page, tmp_path: Path,  # type: ignore[no-untyped-def]  # noqa: F811
 ) -> None:
     one_row = tmp_path / "hand-count.csv"
-    one_row.write_text("region,date,measure,value\nD01,2026-11-29,cases,12\n")
+    one_row.write_text("region,date,measure,value\nD01,2026-11-29,tests,4321\n")
     sign_in(page, server, "ada.analyst")
     page.goto(server + "/staff/feeds")
     page.set_input_files("input[name=file]", str(one_row))
@@ -125,8 +125,8 @@ def test_upload_asks_before_revising_another_feed_then_lists_revisions(
     alert = page.locator("#confirm-h")
     assert "Nothing was stored yet." in alert.inner_text()
     first = page.locator("table tbody tr.other-feed").first.locator("td").all_inner_texts()
-    assert first[:3] == ["D01", "cases", "2026-11-29"] and first[4] == "12"
-    assert first[5].startswith("demo-county (another feed)")
+    assert first[:3] == ["D01", "tests", "2026-11-29"] and first[4] == "4321"
+    assert first[5].startswith("lab-drop (another feed)")
     shot(page, "23-upload-asks-before-revising")
     page.click("form.confirm-upload button[type=submit]")
     assert "This vintage replaces 1 stored value" in page.locator("#revised-h + p").inner_text()

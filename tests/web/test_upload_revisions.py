@@ -50,15 +50,16 @@ def test_upload_over_another_feeds_value_asks_then_lands_on_confirmation(
     client: TestClient,
 ) -> None:
     before = _stored(client)
-    asked = _upload(client, b"region,date,measure,value\nD01,2026-11-29,cases,12\n")
+    asked = _upload(client, b"region,date,measure,value\nD01,2026-11-29,tests,4321\n")
     assert asked.status_code == 409
     text = re.sub(r"\s+", " ", asked.text)
     assert "Nothing was stored yet." in text
     assert "This file would revise 1 value sent by another feed" in text
     # the row of the revision: region, measure, date, old -> new, who sent the old one
-    row = re.search(r'<tr class="other-feed"><td>D01</td><td>cases</td><td>2026-11-29</td>'
-                    r'<td class="num">(\d+)</td><td class="num">12</td>'
-                    r"<td><strong>demo-county</strong>", text)
+    # the demo's tests arrive through lab-drop (demo_seed/feeds.yaml); long-csv takes them too
+    row = re.search(r'<tr class="other-feed"><td>D01</td><td>tests</td><td>2026-11-29</td>'
+                    r'<td class="num">(\d+)</td><td class="num">4321</td>'
+                    r"<td><strong>lab-drop</strong>", text)
     assert row is not None, text
     assert _stored(client) == before
     token = _hidden(asked.text, "held")
@@ -70,13 +71,13 @@ def test_upload_over_another_feeds_value_asks_then_lands_on_confirmation(
     text = re.sub(r"\s+", " ", landed.text)
     assert "This vintage replaces 1 stored value as the current one (1 sent by another feed)." \
         in text
-    assert f'<td class="num">{row.group(1)}</td><td class="num">12</td>' in text
+    assert f'<td class="num">{row.group(1)}</td><td class="num">4321</td>' in text
     assert _stored(client) == (before[0] + 1, before[1] + 1)
     assert not (held_uploads.folder() / f"{token}.bin").exists()
 
 
 def test_a_held_upload_is_only_for_its_uploader(client: TestClient) -> None:
-    asked = _upload(client, b"region,date,measure,value\nD02,2026-11-29,cases,3\n")
+    asked = _upload(client, b"region,date,measure,value\nD02,2026-11-29,tests,3210\n")
     token, digest = _hidden(asked.text, "held"), _hidden(asked.text, "confirmed")
     before = _stored(client)
     login(client, ROLE_USER["admin"])

@@ -177,5 +177,18 @@ def test_backtest_as_known_prints_and_writes_the_forecast_record(
                  and r["horizon"] == "14"]
     # the pooled row adds up the districts' rows
     assert sum(int(r["inside_90"]) for r in by_region) == int(pooled[13]["inside_90"])
+    # the capacity prepare signal's leads: one printed line per row of capacity_leads.csv
+    from datetime import date
+
+    with (tmp_path / "capacity_leads.csv").open() as fh:
+        leads = list(csv.DictReader(fh))
+    printed = [ln for ln in result.output.splitlines() if ln.startswith("  icu-capacity, ")]
+    assert len(printed) == len(leads)
+    for row, line in zip(leads, printed, strict=True):
+        assert row["signal"] == "icu-capacity" and row["share"] == "85"
+        assert f"({row['area']}): reached 85 % on {row['crossed']}" in line
+        if row["fired"]:
+            lead = (date.fromisoformat(row["crossed"]) - date.fromisoformat(row["fired"])).days
+            assert int(row["lead_days"]) == lead and f"{lead} days ahead" in line
     latest = run("backtest", "--rules", str(POLICIES / "county.yaml"), "--no-nowcast-accuracy")
     assert latest.exit_code == 0 and "Forecast record" not in latest.output

@@ -6,8 +6,9 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from server.indicators._segmentation import hinge_scan, line_design
+from server.indicators._segmentation import hinge_scan, line_design, scan_kinks
 from server.indicators.changepoints import (
+    block_dispersion,
     detect_changepoints,
     fit_kinks,
     fit_piecewise,
@@ -185,3 +186,57 @@ def test_hinge_scan_gain_matches_a_direct_least_squares_fit() -> None:
 def test_fit_kinks_refuses_a_repeated_day() -> None:
     with pytest.raises(ValueError, match="kinks: a day appears twice"):
         fit_kinks(_kinked(25), [70, 70])
+
+
+def test_scan_kinks_grouped_equals_the_full_design() -> None:
+    # grouping rows by kink count drops all-zero hinge columns; numpy.linalg.lstsq on the full
+    # padded design (zero columns included) is the reference
+    rng = np.random.default_rng(26)
+    n = 90
+    z = rng.normal(size=(3, n)).cumsum(axis=1)
+    w = rng.uniform(0.5, 2.0, size=(3, n))
+    kinks = np.array([[30, -1, 60], [-1, -1, -1], [20, 45, 70]])
+    rss, gain = scan_kinks(z, w, kinks)
+    for i in range(3):
+        x = line_design(n, kinks[i : i + 1])[0]
+        sw = np.sqrt(w[i])
+        for tau in (10, 50, 80):
+            h = np.maximum(np.arange(n) - tau, 0) / n
+            full = np.column_stack([x, h]) * sw[:, None]
+            coef = np.linalg.lstsq(full, z[i] * sw, rcond=None)[0]
+            assert_allclose(rss[i] - gain[i, tau], np.sum((z[i] * sw - full @ coef) ** 2),
+                            rtol=1e-8)
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.5])
+def test_block_dispersion_matches_the_long_run_variance_of_an_ar1(rho: float) -> None:
+    # y = mu + sqrt(mu) x with x a unit-variance AR(1): the variance of a sum of B consecutive
+    # x is sum_{|h|<B} (B - |h|) rho^|h| (Brockwell and Davis 1991, Time Series: Theory and
+    # Methods, sec. 7.1), so E[phi_B] is that over B (no fitted parameters: q = 0)
+    rng = np.random.default_rng(27)
+    n, block, mu = 140_000, 28, 400.0
+    e = rng.normal(size=n) * np.sqrt(1 - rho**2)
+    x = np.empty(n)
+    x[0] = rng.normal()
+    for t in range(1, n):
+        x[t] = rho * x[t - 1] + e[t]
+    y = (mu + np.sqrt(mu) * x)[None, :]
+    phi, df = block_dispersion(y, np.full((1, n), mu), block, np.array([0]))
+    h = np.arange(-block + 1, block)
+    expected = np.sum((block - np.abs(h)) * rho ** np.abs(h)) / block
+    # overlapping batch means: relative SD about sqrt(4/3 * block / n) (Meketon & Schmeiser 1984)
+    assert abs(phi[0] - expected) < 4 * expected * np.sqrt(4 / 3 * block / n)
+    assert_allclose(df[0], 1.5 * n / block)
+
+
+def test_dependence_block_only_widens_the_growth_intervals() -> None:
+    y = np.stack([_kinked(28), _kinked(29)])
+    plain = detect_changepoints(y, dependence_block=None)
+    wide = detect_changepoints(y, dependence_block=42)
+    assert_allclose(wide.growth_change, plain.growth_change)
+    has = plain.breaks >= 0
+    w0 = (plain.growth_change_upper - plain.growth_change_lower)[has]
+    w1 = (wide.growth_change_upper - wide.growth_change_lower)[has]
+    assert np.all(w1 >= w0 - 1e-15)
+    with pytest.raises(ValueError, match="dependence_block"):
+        detect_changepoints(y, dependence_block=0)

@@ -101,26 +101,23 @@ def test_builders_are_registered_for_rulesets() -> None:
     assert set(out) == {"icu_share_projected", "icu_days_to_share"}
 
 
-def test_demo_policy_prepares_for_icu_capacity_before_the_icu_criterion(
+def test_demo_policy_capacity_signal_raises_no_alarm_in_a_quiet_autumn(
     demo_session: Session,
 ) -> None:
-    """The demo's evaluation (seeded with rules/policies/county.yaml) fires the projected
-    capacity signal, and its first day in each district comes before the ICU criterion first
-    reaches its top level there."""
+    """On the 150-day test demo (July to November) no area's ICU share comes near the policy's
+    85 %: the projected-capacity signal is evaluated every day and never fires. Its lead before
+    a real crossing is checked on a constructed store (test_capacity_leads.py) and measured on
+    the 548-day demo, where it fired 20 days before Grennwater crossed (docs/estimate.md)."""
     rs = load_ruleset(COUNTY)
     icu = [c.id for c in rs.criteria].index("icu")
     rows = demo_session.scalars(select(Assessment).order_by(Assessment.ref_date)).all()
-    fired: dict[int, object] = {}
-    severe: dict[int, object] = {}
-    for a in rows:
-        if a.prepare_signals.get("icu-capacity") and a.region_id not in fired:
-            fired[a.region_id] = a.ref_date
-        level = a.explanation["data"]["criteria"][icu].get("level")
-        if level == rs.top_tier and a.region_id not in severe:
-            severe[a.region_id] = a.ref_date
-    assert fired, "the icu-capacity signal never fired on the demo"
-    ahead = [severe[r] > fired[r] for r in severe if r in fired]  # type: ignore[operator]
-    assert ahead and all(ahead)
+    shares = [a.explanation["data"]["criteria"][icu].get("value") for a in rows]
+    known = [v for v in shares if v is not None]
+    assert len(known) > 0.9 * len(rows) and max(known) < 0.5 * 85
+    signals = [p for a in rows for p in a.explanation["data"]["prepare"]
+               if p["id"] == "icu-capacity"]
+    assert len(signals) == len(rows)  # evaluated every day
+    assert not any(a.prepare_signals.get("icu-capacity") for a in rows)
 
 
 def test_forecasts_at_a_cutoff_cover_every_district_and_area(demo_session: Session) -> None:

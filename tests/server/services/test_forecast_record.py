@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
-from sqlalchemy import func, select
+from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session
 
 import server.services.forecast_record as forecast_record_module
@@ -32,11 +32,12 @@ from server.services.forecast_record import (
     read_known,
     record_lines,
     store_forecasts,
+    store_forecasts_as_known,
     store_morning_forecasts,
 )
 from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.errors import UnknownCodeError
-from server.store.models import ForecastQuantiles, ForecastRun, Observation
+from server.store.models import ForecastQuantiles, ForecastRun
 from server.store.vintages import append_vintage
 from tests.server.conftest import cases_csv, seed_small_office
 
@@ -154,6 +155,35 @@ def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> N
             assert_allclose(cell.naive_error, np.nanmean(s.naive_error[:, j]), rtol=1e-12)
 
 
+def test_stored_as_known_mornings_equal_the_morning_step(session: Session, store: Sim) -> None:
+    # store_forecasts_as_known (the demo's seeded record) keeps what the morning step would have
+    # stored at each as-known cutoff: same runs, same quantiles, same baselines
+    start, end = FIRST + timedelta(days=20), FIRST + timedelta(days=30)
+    n = store_forecasts_as_known(session=session, forecaster=FORECASTER, start=start, end=end)
+    assert n == 11 * (len(DISTRICTS) + len(AREAS))
+    seeded = {(r.target, r.data_cutoff.replace(tzinfo=None), r.origin): r.id
+              for r in session.scalars(select(ForecastRun))}
+    assert {k[1] for k in seeded} == {
+        as_known_cutoff(start + timedelta(days=d)).replace(tzinfo=None) for d in range(11)}
+    seeded_rows = {(k, q.region_id): (q.baseline, q.quantiles)
+                   for k, run_id in seeded.items()
+                   for q in session.scalars(select(ForecastQuantiles)
+                                            .where(ForecastQuantiles.run_id == run_id))}
+    session.execute(delete(ForecastQuantiles))
+    session.execute(delete(ForecastRun))
+    for d in range(11):
+        store_morning_forecasts(session=session, cutoff=as_known_cutoff(start + timedelta(days=d)),
+                                forecaster=FORECASTER)
+    again = {(r.target, r.data_cutoff.replace(tzinfo=None), r.origin): r.id
+             for r in session.scalars(select(ForecastRun))}
+    assert set(again) == set(seeded)
+    again_rows = {(k, q.region_id): (q.baseline, q.quantiles)
+                  for k, run_id in again.items()
+                  for q in session.scalars(select(ForecastQuantiles)
+                                           .where(ForecastQuantiles.run_id == run_id))}
+    assert again_rows == seeded_rows
+
+
 def test_as_known_record_equals_record_of_stored_mornings(
     session: Session, store: Sim, monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -234,22 +264,61 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
     from server.services.dossier import district_dossier
     from server.store.models import Region
 
-    last = demo_session.scalar(select(func.max(Observation.ref_date)))
-    assert last is not None
-    # 40 mornings, origins last - 40 .. last - 1: h-day forecasts of origins up to
-    # last - 7 - h have settled outcomes (27 at 7 days, 20 at 14)
-    for k in range(40, 0, -1):
-        store_morning_forecasts(session=demo_session,
-                                cutoff=as_known_cutoff(last - timedelta(days=k)))
+    # The demo seeds the forecasts of its last 90 mornings as known then (demo_seed/seed.py,
+    # store_forecasts_as_known): h-day forecasts of origins up to last - 7 - h have settled
+    # outcomes (76 at 7 days, 69 at 14), of which the newest 60 are shown.
     code = demo_session.scalars(
         select(Region.code).where(Region.level == "district").order_by(Region.code)).first()
     assert code is not None
     lines = district_dossier(session=demo_session, code=code).forecast_record
-    # The capacity forecaster (the default) forecasts from the newest day of admissions, a day
-    # before the newest ICU census, so one more origin has settled (28 at 7 days, 21 at 14).
-    # The district's own admissions are left out: under 10 admissions in 14 days the growth
-    # rate is not estimated (server.indicators.capacity); the area's admissions are forecast but
-    # not stored per area, so they cannot be scored yet.
+    # the district's own admissions (stored with the areas' admissions in one run per morning)
+    # and its area's ICU beds and share; the area's admissions have no stored outcome (the
+    # store holds admissions per district only), so they are not scored
     assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
-        ("icu_occupied", 7, 28), ("icu_occupied", 14, 21),
-        ("icu_share", 7, 28), ("icu_share", 14, 21)}
+        ("hosp_admissions", 7, 60), ("hosp_admissions", 14, 60),
+        ("icu_occupied", 7, 60), ("icu_occupied", 14, 60),
+        ("icu_share", 7, 60), ("icu_share", 14, 60)}
+
+
+def test_icu_share_is_scored_in_the_forecasts_percent(session: Session, store: Sim) -> None:
+    # The capacity forecaster gives icu_share in percent of staffed beds (quantiles = 100 x
+    # beds quantiles / staffed beds, server/indicators/capacity.py). With staffed beds constant
+    # (40) the share's WIS is the beds' WIS times 100/40 and so is its naive error: coverage
+    # and relative WIS must equal those of ICU beds (WIS is linear in scale, Bracher et al.
+    # 2021, eq. 2). Scored as a fraction, the share's relative WIS was about 300.
+    from server.services.capacity_forecaster import CapacityForecaster
+    from server.services.capacity_indicators import DEFAULT_SCENARIO, as_path
+
+    fc = CapacityForecaster(parents={d: AREAS[i % 2] for i, d in enumerate(DISTRICTS)},
+                            scenario=as_path(DEFAULT_SCENARIO), sims=200)
+    cells = forecast_record_as_known(session=session, forecaster=fc,
+                                     start=FIRST + timedelta(days=20),
+                                     end=FIRST + timedelta(days=50), step=3)
+    pooled = {(c.target, c.horizon): c for c in cells if c.region is None}
+    for h in (7, 14):
+        beds, share = pooled[("icu_occupied", h)], pooled[("icu_share", h)]
+        assert share.forecasts == beds.forecasts > 0
+        assert (share.inside_50, share.inside_90) == (beds.inside_50, beds.inside_90)
+        assert_allclose(share.mean_wis, beds.mean_wis * 100 / 40, rtol=1e-9)
+        assert_allclose(share.relative_wis, beds.relative_wis, rtol=1e-9)
+
+
+def test_forecasts_of_one_target_from_one_morning_are_stored_together(
+    session: Session, store: Sim
+) -> None:
+    # The capacity forecaster returns admissions per district and per area as two forecasts;
+    # both are kept (one run per target, scenario and cutoff), never the second alone.
+    cutoff = as_known_cutoff(FIRST + timedelta(days=30))
+    known = read_known(session=session, cutoff=cutoff, measures=["hosp_admissions"])
+    assert known is not None
+    levels = np.array(DEFAULT_LEVELS)
+    parts = [QuantileForecast(target="hosp_admissions", scenario="x", regions=codes,
+                              origin=FIRST + timedelta(days=30), horizons=np.array([1, 7]),
+                              levels=levels, values=np.tile(levels * 10, (len(codes), 2, 1)))
+             for codes in (("D0", "D1"), ("A0",))]
+    assert store_forecasts(session=session, forecasts=parts, cutoff=cutoff, known=known) == 3
+    assert session.scalar(select(func.count()).select_from(ForecastRun)) == 1
+    assert session.scalar(select(func.count()).select_from(ForecastQuantiles)) == 3
+    with pytest.raises(ForecastRecordError, match="forecast twice"):
+        store_forecasts(session=session, forecasts=[parts[0], parts[0]], cutoff=cutoff,
+                        known=known)

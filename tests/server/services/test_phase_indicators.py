@@ -96,9 +96,16 @@ def test_wave_phase_on_the_demo_uses_nowcasts_and_matches_the_page(demo_session:
                               end=DEMO_END)
     rs = parse_ruleset(RULES)
     series = district_indicators(data, rs)["wave_phase"]
-    assert np.isfinite(series.estimate[:, -1]).all()
-    assert series.nowcast is not None and series.nowcast[:, -1].all()  # the last days are late
-    assert series.nowcast_days is not None and (series.nowcast_days[:, -1] >= 1).all()
+    # A district with fewer cases in the window than the fit needs (fit_phase's min_cases, 30)
+    # has no phase (unknown); every other district has one.
+    enough = np.nansum(data.district["cases"], axis=1) >= 30
+    assert enough.sum() >= 10  # the demo's quiet districts are few
+    assert (np.isfinite(series.estimate[:, -1]) == enough).all()
+    # the last days are still being reported in most districts: there the phase is fitted on the
+    # nowcast and says how many days of it it used
+    assert series.nowcast is not None and series.nowcast[enough, -1].mean() >= 0.8
+    flagged = series.nowcast[:, -1]
+    assert series.nowcast_days is not None and (series.nowcast_days[flagged, -1] >= 1).all()
     # The page's panel fits the same counts on the same window: the same phase.
     i = data.regions.index("D03")
     panel = district_phase(session=demo_session, code="D03", end=DEMO_END)

@@ -1,10 +1,10 @@
 """A policy on the seasonal intensity (moving epidemic method) of a district measure.
 
 The policy below grades districts by the MEM level of GP consultations for acute respiratory
-illness (``gp_ari``); the pathogen-specific RSV measure arrives separately: switching the policy
-to it is the one line :data:`MEASURE`. The thresholds themselves are checked against the
-published definitions in ``tests/server/indicators/test_seasonal.py``; here the wiring is: daily
-counts -> ISO weeks -> weekly rates per 100 000 -> levels -> the engine's tiers and sentences.
+illness with RSV (``gp_ari.rsv``, :data:`MEASURE`); any other count measure is the same one line.
+The thresholds themselves are checked against the published definitions in
+``tests/server/indicators/test_seasonal.py``; here the wiring is: daily counts -> ISO weeks ->
+weekly rates per 100 000 -> levels -> the engine's tiers and sentences.
 """
 
 from __future__ import annotations
@@ -26,7 +26,7 @@ from server.services.seasonal_indicators import (
     weekly_intensity,
 )
 
-MEASURE = "gp_ari"  # the RSV measure's name goes here once it exists
+MEASURE = "gp_ari.rsv"  # GP consultations with RSV (a pathogen-specific measure)
 
 POLICY = f"""\
 name: seasonal
@@ -162,9 +162,11 @@ def test_policy_runs_on_stored_observations(session) -> None:  # type: ignore[no
                      population=int(pop)) for code, pop in zip(data.regions, data.population,
                                                                strict=True)])
     upsert_measures(session=session, records=[
-        MeasureRecord(name=m, unit="n", kind="count", aggregation="sum")
-        for m in ("cases", "tests", "positives", "hosp_admissions", "gp_ari", "icu_occupied",
-                  "icu_staffed", "ww_concentration", "ww_flow")])
+        *(MeasureRecord(name=m, unit="n", kind="count", aggregation="sum")
+          for m in ("cases", "tests", "positives", "hosp_admissions", "gp_ari", "icu_occupied",
+                    "icu_staffed", "ww_concentration", "ww_flow")),
+        MeasureRecord(name=MEASURE, unit="n", kind="count", aggregation="sum",
+                      pathogen=MEASURE.partition(".")[2] or None)])
     days = pd.to_datetime(data.dates).date
     rows = pd.DataFrame(
         [(code, MEASURE, day, float(v)) for r, code in enumerate(data.regions)
