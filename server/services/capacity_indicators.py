@@ -33,7 +33,7 @@ from numpy.typing import NDArray
 from rules import IndicatorSeries, Ruleset
 from rules import Scenario as RuleScenario
 from server.indicators._arrays import trailing_sum
-from server.indicators.capacity import Scenario, projected_share
+from server.indicators.capacity import Scenario, projected_share, shrunk_growth
 from server.indicators.growth import rolling_growth_rate
 from server.indicators.hospital import LengthOfStay, length_of_stay
 
@@ -114,8 +114,8 @@ def _inputs(d: DistrictData) -> tuple[NDArray[np.int64], NDArray[np.float64], ND
     area_adm = area_sum(adm, group, n)
     fit = rolling_growth_rate(area_adm, GROWTH_WINDOW, day_of_week=False, max_missing=2)
     enough = trailing_sum(np.nan_to_num(area_adm), GROWTH_WINDOW) >= MIN_ADMISSIONS
-    return (group, occ[first], staffed[first], np.where(enough, fit.estimate, np.nan),
-            fit.std_error)
+    r, se = shrunk_growth(fit.estimate, fit.std_error)  # as the forecasts do
+    return (group, occ[first], staffed[first], np.where(enough, r, np.nan), se)
 
 
 def _series(

@@ -215,3 +215,24 @@ def test_halving_scenario_ends_at_half_the_level() -> None:
 def test_scenario_refuses_bad_definitions(kwargs: dict[str, object], match: str) -> None:
     with pytest.raises(ValueError, match=match):
         Scenario(name="x", **kwargs)  # type: ignore[arg-type]
+
+
+def test_shrunk_growth_is_the_normal_posterior() -> None:
+    # The posterior of a normal likelihood N(r_hat, se^2) and a normal prior N(0, tau^2) is
+    # normal with the precision-weighted mean and variance (Gelman et al. 2013, Bayesian Data
+    # Analysis, 3rd ed., eq. 2.12, from memory); checked here by numerical integration (scipy).
+    from scipy import integrate
+
+    from server.indicators.capacity import GROWTH_PRIOR_SD, shrunk_growth
+
+    for r_hat, se in [(0.12, 0.01), (0.3, 0.2), (-0.25, 0.15), (0.0, 0.05)]:
+        def density(r: float, r_hat: float = r_hat, se: float = se) -> float:
+            return float(stats.norm.pdf(r, r_hat, se) * stats.norm.pdf(r, 0.0, GROWTH_PRIOR_SD))
+
+        mass = integrate.quad(density, -2, 2, points=[0.0, r_hat])[0]
+        mean = integrate.quad(lambda r: r * density(r), -2, 2, points=[0.0, r_hat])[0] / mass
+        second = integrate.quad(lambda r: r * r * density(r), -2, 2, points=[0.0, r_hat])[0]
+        var = second / mass - mean**2
+        got_r, got_se = shrunk_growth(np.array([r_hat]), np.array([se]))
+        assert got_r[0] == pytest.approx(mean, abs=1e-9)
+        assert got_se[0] == pytest.approx(np.sqrt(var), rel=1e-6)

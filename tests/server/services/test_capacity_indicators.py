@@ -75,10 +75,13 @@ def test_projection_uses_the_areas_summed_admissions(scenario: str) -> None:
     got = projected_share_series(d, rs)
     area = d.district["hosp_admissions"][:2].sum(axis=0, keepdims=True)
     fit = rolling_growth_rate(area, GROWTH_WINDOW, day_of_week=False, max_missing=2)
+    # the fitted rate combined with the N(0, 0.05^2) prior (precision-weighted, by hand)
+    tau2, v = 0.05**2, fit.std_error**2
+    r, se = fit.estimate * tau2 / (tau2 + v), np.sqrt(tau2 * v / (tau2 + v))
     sc = rs.scenario(scenario)
     want = projected_share(
         d.area_of_district["icu_occupied"][:1], d.area_of_district["icu_staffed"][:1],
-        fit.estimate, fit.std_error, los=length_of_stay(), horizon=10,
+        r, se, los=length_of_stay(), horizon=10,
         scenario=Scenario(name=sc.name, kind=sc.kind, value=sc.value,
                           within_days=sc.within_days))
     assert_allclose(got.estimate[0], want.share_estimate[0], equal_nan=True)
