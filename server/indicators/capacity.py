@@ -54,12 +54,13 @@ AnyFloat = NDArray[np.floating]  # the simulation runs in single precision
 TARGETS = ("hosp_admissions", "icu_occupied", "icu_share")
 #: Prior standard deviation of the daily growth rate (normal, centred on 0): the fitted rate is
 #: combined with it by the normal-normal rule, r = r_hat tau^2 / (tau^2 + se^2), se^2 = tau^2
-#: se_hat^2 / (tau^2 + se_hat^2). 0.05 a day is a doubling or halving in about two weeks at one
-#: standard deviation (a weakly informative choice, common practice, no source). It leaves well
-#: estimated rates nearly unchanged and stops a rate fitted on a handful of admissions from being
-#: extrapolated 21 days ahead (the forecast record on the demo showed district forecasts
-#: thousands of times the naive error without it).
-GROWTH_PRIOR_SD = 0.05
+#: se_hat^2 / (tau^2 + se_hat^2). 0.1 a day is a doubling or halving in about a week at one
+#: standard deviation: weakly informative (common practice, no source). It leaves well estimated
+#: rates nearly unchanged and stops a rate fitted on a handful of admissions from being
+#: extrapolated 21 days ahead (without it, district forecasts on the demo scored thousands of
+#: times the naive error). Chosen on the demo, so not an independent check: 0.05 also tamed
+#: them but cut the capacity signal's lead before the demo's one real crossing from 20 days to 4.
+GROWTH_PRIOR_SD = 0.1
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -75,8 +75,8 @@ def test_projection_uses_the_areas_summed_admissions(scenario: str) -> None:
     got = projected_share_series(d, rs)
     area = d.district["hosp_admissions"][:2].sum(axis=0, keepdims=True)
     fit = rolling_growth_rate(area, GROWTH_WINDOW, day_of_week=False, max_missing=2)
-    # the fitted rate combined with the N(0, 0.05^2) prior (precision-weighted, by hand)
-    tau2, v = 0.05**2, fit.std_error**2
+    # the fitted rate combined with the N(0, 0.1^2) prior (precision-weighted, by hand)
+    tau2, v = 0.1**2, fit.std_error**2
     r, se = fit.estimate * tau2 / (tau2 + v), np.sqrt(tau2 * v / (tau2 + v))
     sc = rs.scenario(scenario)
     want = projected_share(
