@@ -32,9 +32,14 @@ from numpy.typing import NDArray
 
 from rules.model import Combination, Timing
 
-__all__ = ["TierState", "candidate_bounds", "step_tiers"]
+__all__ = ["NEVER_CHANGED", "TierState", "candidate_bounds", "step_tiers"]
 
 IntArray = NDArray[np.int32]
+
+
+#: ``since`` of a region whose tier has not changed in the evaluated period: far beyond any
+#: ``min_days_in_tier`` (and growing by one a day); pages show it as "—".
+NEVER_CHANGED = 10**6
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -50,7 +55,7 @@ class TierState:
 
     @classmethod
     def initial(
-        cls, n_regions: int, tier: int | NDArray[np.int32] = 0, since: int = 10**6
+        cls, n_regions: int, tier: int | NDArray[np.int32] = 0, since: int = NEVER_CHANGED
     ) -> TierState:
         """Regions at ``tier``, long enough in it that ``min_days_in_tier`` does not block."""
         t = np.broadcast_to(np.asarray(tier, dtype=np.int32), (n_regions,)).copy()

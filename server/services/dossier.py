@@ -21,6 +21,7 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
 from rules.formatting import interval_text, value_text
+from rules.hysteresis import NEVER_CHANGED
 from rules.record import CriterionState
 from server.services.backtest import nowcast_accuracy_report
 from server.services.district_nowcasts import NowcastSeries, district_nowcast
@@ -354,7 +355,9 @@ def explanation_page(
     counters = (
         ("Days the candidate was higher", f"{c.up} of {c.confirm_days}"),
         ("Days the candidate was lower", f"{c.down} of {c.release_days}"),
-        ("Days since the last change", f"{c.since_change} (minimum {c.min_days_in_tier})"),
+        ("Days since the last change",
+         f"{'—' if c.since_change >= NEVER_CHANGED else c.since_change} "
+         f"(minimum {c.min_days_in_tier})"),
         ("Candidate tier", tier_label(rs, record.candidate)),
     )
     official = session.execute(
