@@ -20,14 +20,15 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from sqlalchemy import select
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from server.indicators.capacity import Scenario, capacity_forecasts
 from server.indicators.quantile_forecast import QuantileForecast
 from server.services.capacity_indicators import as_path, forecast_scenarios
+from server.services.hierarchy import membership, sum_up
 from server.services.ruleset_cache import parsed
-from server.store.models import Region
 from server.store.models import Ruleset as RulesetRow
+from server.store.reads import district_areas
 
 if TYPE_CHECKING:
     from server.services.forecast_record import KnownData
@@ -66,9 +67,7 @@ class CapacityForecaster:
                                       window=GROWTH_WINDOW, sims=self.sims).forecasts)
         areas = sorted({self.parents[c] for c in districts} & set(index))
         if areas:
-            member = np.array([[self.parents[c] == a for c in districts] for a in areas], float)
-            summed = member @ np.nan_to_num(adm)
-            summed[(member @ np.isnan(adm).astype(float)) > 0] = np.nan
+            summed = sum_up(adm, membership(districts, self.parents, areas), areas).values
             at_origin = [index[a] for a in areas]
             occupied = staffed = None
             if "icu_occupied" in known.values and "icu_staffed" in known.values:
@@ -95,10 +94,7 @@ def _finite_rows(forecast: QuantileForecast) -> QuantileForecast | None:
 
 def district_parents(session: Session) -> dict[str, str]:
     """District code -> its parent area's code, for districts that have one."""
-    parent = aliased(Region)
-    return dict(session.execute(
-        select(Region.code, parent.code).join(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district")).all())
+    return {r.code: r.area for r in district_areas(session=session) if r.area is not None}
 
 
 def record_forecaster(session: Session) -> CapacityForecaster | None:

@@ -25,6 +25,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.indicators.capacity import CapacityForecasts, capacity_forecasts
 from server.indicators.quantile_forecast import QuantileForecast
+from server.services.capacity_forecaster import district_parents
 from server.services.capacity_indicators import (
     admissions_with_nowcast,
     as_path,
@@ -33,6 +34,7 @@ from server.services.capacity_indicators import (
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, newest_run_of
+from server.services.hierarchy import membership, sum_up
 from server.services.ruleset_cache import parsed
 from server.store.models import Measure, Observation, Region, Vintage
 
@@ -287,17 +289,12 @@ def capacity_forecasts_at(
     adm = admissions_with_nowcast(data)
     out = list(capacity_forecasts(adm, regions=data.regions, origin=end, scenarios=scenarios,
                                   horizon=HORIZON, sims=sims, seed=seed).forecasts)
-    parent = aliased(Region)
-    links = dict(session.execute(
-        select(Region.code, parent.code).join(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district")).all())
+    links = district_parents(session)
     areas = sorted({links[c] for c in data.regions if c in links})
     if not areas:
         return out
     first = {a: next(i for i, c in enumerate(data.regions) if links.get(c) == a) for a in areas}
-    member = np.array([[links.get(c) == a for c in data.regions] for a in areas], dtype=float)
-    summed = member @ np.nan_to_num(adm)
-    summed[(member @ np.isnan(adm).astype(float)) > 0] = np.nan
+    summed = sum_up(adm, membership(data.regions, links, areas), areas).values
     occ = np.array([data.area_of_district["icu_occupied"][first[a], -1] for a in areas])
     staffed = np.array([data.area_of_district["icu_staffed"][first[a], -1] for a in areas])
     out += capacity_forecasts(summed, regions=tuple(areas), origin=end, scenarios=scenarios,

@@ -19,8 +19,7 @@ from datetime import UTC, date, datetime, timedelta, tzinfo
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
-from sqlalchemy import select
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from server.indicators.nowcast import (
     POOL_ALL,
@@ -32,8 +31,7 @@ from server.indicators.nowcast import (
 )
 from server.services.stored_values import usable
 from server.store import read_dense
-from server.store.models import Region
-from server.store.reads import read_vintage_rows
+from server.store.reads import district_areas, read_vintage_rows
 
 #: Count measures nowcast from their reporting triangles: those the nowcast indicators use
 #: (positives and GP consultations would add triangle rows that no indicator reads).
@@ -154,21 +152,16 @@ def district_nowcast(
 ) -> NowcastSeries | None:
     """The last ``days`` days to ``end`` of ``measure`` in district ``code``, reported and
     nowcast as known at ``as_of`` (None: nothing stored)."""
-    parent = aliased(Region)
-    rows = session.execute(
-        select(Region.code, parent.code, parent.name)
-        .outerjoin(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district").order_by(Region.code)
-    ).all()
-    codes = tuple(r[0] for r in rows)
+    rows = district_areas(session=session)
+    codes = tuple(r.code for r in rows)
     if code not in codes:
         return None
     start = end - timedelta(days=days - 1)
     dense = read_dense(session=session, measures=(measure,), start=start, end=end,
                        regions=codes, as_of=as_of)
     inputs = nowcast_inputs(
-        session=session, regions=codes, groups=[r[1] for r in rows], dates=dense.dates,
-        as_of=as_of, group_names={r[1]: r[2] for r in rows if r[1] is not None},
+        session=session, regions=codes, groups=[r.area for r in rows], dates=dense.dates,
+        as_of=as_of, group_names={r.area: r.area_name for r in rows if r.area is not None},
         time_zone=time_zone,
     )
     if measure not in inputs:

@@ -24,15 +24,14 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import NDArray
-from sqlalchemy import select
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from rules import IndicatorSeries, Ruleset
 from server.indicators._arrays import trailing_sum
 from server.indicators.nowcast import nowcast_window
 from server.indicators.phase import PHASE_LABELS, PHASES, WavePhase, fit_phase
 from server.store import read_dense
-from server.store.models import Region
+from server.store.reads import district_areas
 
 if TYPE_CHECKING:
     from server.services.district_data import DistrictData
@@ -170,18 +169,13 @@ def district_phase(
     from server.services.district_nowcasts import nowcast_inputs
     from server.services.stored_values import usable
 
-    parent = aliased(Region)
-    rows = session.execute(
-        select(Region.code, parent.code, parent.name)
-        .outerjoin(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district").order_by(Region.code)
-    ).all()
-    codes = tuple(r[0] for r in rows)
+    rows = district_areas(session=session)
+    codes = tuple(r.code for r in rows)
     if code not in codes:
         return None
     i = codes.index(code)
-    area, area_name = rows[i][1], rows[i][2]
-    members = [j for j, r in enumerate(rows) if area is not None and r[1] == area]
+    area, area_name = rows[i].area, rows[i].area_name
+    members = [j for j, r in enumerate(rows) if area is not None and r.area == area]
     start = end - timedelta(days=WINDOW_DAYS - 1)
     dense = read_dense(session=session, measures=("cases",), start=start, end=end,
                        regions=codes, as_of=as_of)
@@ -190,8 +184,8 @@ def district_phase(
         return None
     used = np.zeros(counts.shape, dtype=bool)
     inputs = nowcast_inputs(
-        session=session, regions=codes, groups=[r[1] for r in rows], dates=dense.dates,
-        as_of=as_of, group_names={r[1]: r[2] for r in rows if r[1] is not None},
+        session=session, regions=codes, groups=[r.area for r in rows], dates=dense.dates,
+        as_of=as_of, group_names={r.area: r.area_name for r in rows if r.area is not None},
         time_zone=time_zone,
     )
     if "cases" in inputs:

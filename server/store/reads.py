@@ -362,3 +362,25 @@ def read_vintage_rows(
             np.int64),
         received_at=stamps, value=np.asarray(value, dtype=np.float64),
     )
+
+
+@dataclass(frozen=True, kw_only=True)
+class DistrictArea:
+    """A district with its parent area (None where it has none)."""
+
+    code: str
+    area: str | None
+    area_name: str | None
+
+
+def district_areas(*, session: Session) -> list[DistrictArea]:
+    """Every district in code order with its parent area's code and name."""
+    from sqlalchemy.orm import aliased
+
+    parent = aliased(Region)
+    rows = session.execute(
+        select(Region.code, parent.code, parent.name)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district").order_by(Region.code)
+    ).all()
+    return [DistrictArea(code=c, area=a, area_name=n) for c, a, n in rows]
