@@ -57,7 +57,7 @@ from server.store.models import (
     Region,
     Vintage,
 )
-from server.store.reads import read_dense
+from server.store.reads import read_dense, read_vintage_rows
 
 __all__ = [
     "DEFAULT_FORECASTER",
@@ -647,27 +647,15 @@ def _as_known_mornings(
     if end < start:
         raise ForecastRecordError(f"end {end} is before start {start}")
     codes = tuple(session.scalars(select(Region.code).order_by(Region.code)))
-    row_of = {c: i for i, c in enumerate(codes)}
     n_days = (last_day - first).days + 1
-    query = (
-        select(Measure.name, Region.code, Observation.ref_date, Observation.value,
-               Vintage.received_at)
-        .join(Measure, Measure.id == Observation.measure_id)
-        .join(Region, Region.id == Observation.region_id)
-        .join(Vintage, Vintage.id == Observation.vintage_id)
-        .where(Measure.name.in_(measures))
-        .order_by(Vintage.received_at, Vintage.id)
-    )
-    m_idx, r_idx, c_idx, vals, known_day = [], [], [], [], []
-    for name, code, ref, value, received in session.execute(query):
-        m_idx.append(measures.index(name))
-        r_idx.append(row_of[code])
-        c_idx.append((ref - first).days)
-        vals.append(value)
-        aware = received if received.tzinfo else received.replace(tzinfo=UTC)
-        known_day.append((aware.astimezone(time_zone).date() - first).days - 1)
-    m_a, r_a, c_a = (np.asarray(a, dtype=np.int64) for a in (m_idx, r_idx, c_idx))
-    v_a, k_a = np.asarray(vals, dtype=np.float64), np.asarray(known_day, dtype=np.int64)
+    rows = read_vintage_rows(session=session, measures=measures, regions=codes, start=first,
+                             end=last_day)
+    # the local day each vintage was received, less one: the morning that first knows it
+    stamps, which = np.unique(rows.received_at, return_inverse=True)
+    local = np.array([(s.replace(tzinfo=UTC).astimezone(time_zone).date() - first).days - 1
+                      for s in stamps.astype("datetime64[us]").astype(object)], dtype=np.int64)
+    m_a, r_a, c_a, v_a = rows.measure, rows.region, rows.ref_day, rows.value
+    k_a = local[which] if local.size else np.zeros(0, dtype=np.int64)
     dense = np.full((len(measures), len(codes), n_days), np.nan)
     applied = 0
     dates = np.arange(np.datetime64(first, "D"), np.datetime64(last_day, "D") + 1)
