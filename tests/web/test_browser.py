@@ -11,6 +11,7 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -39,17 +40,18 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
-@pytest.fixture(scope="module")
-def server(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    path = copy_demo(demo_file, tmp_path_factory.mktemp("browser") / "demo.db")
+@contextmanager
+def serving(path: Path, **env: str) -> Iterator[str]:
+    """uvicorn in a subprocess serving the demo database at ``path`` (with more ``TIERWISE_*``
+    settings in ``env``); yields its base address once /healthz answers."""
     port = _free_port()
-    env = {**os.environ, "TIERWISE_DATABASE_URL": f"sqlite:///{path}",
-           "TIERWISE_DEMO_MODE": "true"}
+    environ = {**os.environ, "TIERWISE_DATABASE_URL": f"sqlite:///{path}",
+               "TIERWISE_DEMO_MODE": "true", **env}
     root = Path(__file__).resolve().parents[2]
     proc = subprocess.Popen(
         [sys.executable, "-m", "uvicorn", "web.app:app_from_environment", "--factory",
          "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-        cwd=root, env=env,
+        cwd=root, env=environ,
     )
     base = f"http://127.0.0.1:{port}"
     try:
@@ -65,6 +67,13 @@ def server(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterato
     finally:
         proc.terminate()
         proc.wait(timeout=10)
+
+
+@pytest.fixture(scope="module")
+def server(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    path = copy_demo(demo_file, tmp_path_factory.mktemp("browser") / "demo.db")
+    with serving(path) as base:
+        yield base
 
 
 @pytest.fixture(scope="module")

@@ -6,16 +6,11 @@ the demo's feed file. Screenshots go to ``test-artifacts/`` like the other brows
 
 from __future__ import annotations
 
-import os
 import re
-import subprocess
-import sys
-import time
 from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
-import httpx
 import pytest
 
 from demo_seed.feeds import DEMO_FEEDS_FILE
@@ -25,9 +20,9 @@ from server.services.official_history import import_official_history, read_offic
 from tests.web.conftest import copy_demo
 from tests.web.test_browser import (  # noqa: F401 - fixtures used by name
     ARTIFACTS,
-    _free_port,
     browser,
     page,
+    serving,
     shot,
     sign_in,
 )
@@ -50,29 +45,8 @@ def server(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterato
                                     records=read_official_history("past.csv", csv))
     finally:
         db.dispose()
-    port = _free_port()
-    env = {**os.environ, "TIERWISE_DATABASE_URL": f"sqlite:///{path}",
-           "TIERWISE_DEMO_MODE": "true", "TIERWISE_FEEDS_FILE": str(DEMO_FEEDS_FILE)}
-    root = Path(__file__).resolve().parents[2]
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "uvicorn", "web.app:app_from_environment", "--factory",
-         "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-        cwd=root, env=env,
-    )
-    base = f"http://127.0.0.1:{port}"
-    try:
-        for _ in range(200):
-            try:
-                if httpx.get(base + "/healthz", timeout=1).status_code == 200:
-                    break
-            except httpx.HTTPError:
-                time.sleep(0.1)
-        else:
-            raise RuntimeError("uvicorn did not start")
+    with serving(path, TIERWISE_FEEDS_FILE=str(DEMO_FEEDS_FILE)) as base:
         yield base
-    finally:
-        proc.terminate()
-        proc.wait(timeout=10)
 
 
 def test_override_without_tier_keeps_the_reason_then_decides(server: str, page) -> None:  # type: ignore[no-untyped-def]  # noqa: F811
