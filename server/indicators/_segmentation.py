@@ -144,6 +144,30 @@ class _LineCosts:
         return np.asarray(np.maximum(szz - explained, 0.0))
 
 
+def _screen_inputs(
+    counts: ArrayLike, min_segment: int, max_breaks: int | None, penalty: float
+) -> tuple[FloatArray, FloatArray, int, int, float]:
+    """Checked screening settings and the weighted log counts both screens search: log of the
+    weekday-adjusted counts + 0.5, weighted by the 3-day centred mean + 0.5 (0 where missing)."""
+    y = as_nonnegative_counts("counts", counts)
+    n = y.shape[1]
+    min_segment = check_int("min_segment", min_segment, 7)
+    if n < 2 * min_segment:
+        raise ValueError(f"counts: {n} days is fewer than 2 * min_segment = {2 * min_segment}")
+    limit = n // min_segment - 1
+    if max_breaks is None:
+        max_breaks = min(10, limit)
+    max_breaks = min(check_int("max_breaks", max_breaks, 0), limit)
+    penalty = check_positive("penalty", penalty)
+    observed = np.isfinite(y)
+    smooth = centred_mean(y, observed, 3)
+    f = weekday_factors(y, observed, smooth)
+    adjusted = y / f[:, np.arange(n) % WEEK]
+    z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
+    w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
+    return z, w, min_segment, max_breaks, penalty
+
+
 def screen_breaks(
     counts: ArrayLike,
     *,
@@ -193,22 +217,9 @@ def screen_breaks(
        testing biological hypotheses using marked animals. Ecol Monogr 62:67-118
        (quasi-likelihood information criteria, dividing by the dispersion).
     """
-    y = as_nonnegative_counts("counts", counts)
-    rows, n = y.shape
-    min_segment = check_int("min_segment", min_segment, 7)
-    if n < 2 * min_segment:
-        raise ValueError(f"counts: {n} days is fewer than 2 * min_segment = {2 * min_segment}")
-    limit = n // min_segment - 1
-    if max_breaks is None:
-        max_breaks = min(10, limit)
-    max_breaks = min(check_int("max_breaks", max_breaks, 0), limit)
-    penalty = check_positive("penalty", penalty)
-    observed = np.isfinite(y)
-    smooth = centred_mean(y, observed, 3)
-    f = weekday_factors(y, observed, smooth)
-    adjusted = y / f[:, np.arange(n) % WEEK]
-    z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
-    w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
+    z, w, min_segment, max_breaks, penalty = _screen_inputs(counts, min_segment, max_breaks,
+                                                            penalty)
+    rows, n = z.shape
     parts = [
         binary_segmentation(z[c], w[c], min_segment=min_segment, max_breaks=max_breaks,
                             penalty=penalty, slope=True, extra_params=WEEK - 1)
@@ -559,22 +570,9 @@ def screen_kinks(
     .. [1] Friedman JH (1991). Multivariate adaptive regression splines. Ann Stat 19:1-67.
     .. [2] Schwarz G (1978). Estimating the dimension of a model. Ann Stat 6:461-464.
     """
-    y = as_nonnegative_counts("counts", counts)
-    rows, n = y.shape
-    min_segment = check_int("min_segment", min_segment, 7)
-    if n < 2 * min_segment:
-        raise ValueError(f"counts: {n} days is fewer than 2 * min_segment = {2 * min_segment}")
-    limit = n // min_segment - 1
-    if max_breaks is None:
-        max_breaks = min(10, limit)
-    max_breaks = min(check_int("max_breaks", max_breaks, 0), limit)
-    penalty = check_positive("penalty", penalty)
-    observed = np.isfinite(y)
-    smooth = centred_mean(y, observed, 3)
-    f = weekday_factors(y, observed, smooth)
-    adjusted = y / f[:, np.arange(n) % WEEK]
-    z = np.where(observed, np.log(np.where(observed, adjusted, 0.0) + 0.5), 0.0)
-    w = np.where(observed, np.nan_to_num(smooth, nan=0.0) + 0.5, 0.0)
+    z, w, min_segment, max_breaks, penalty = _screen_inputs(counts, min_segment, max_breaks,
+                                                            penalty)
+    rows, n = z.shape
     steps = step_columns(n, level_shifts, rows)
     parts = [
         _kink_block(z[c], w[c], min_segment, max_breaks, penalty,
