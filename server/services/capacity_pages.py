@@ -16,7 +16,7 @@ import math
 import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import date, datetime, timedelta
+from datetime import date, timedelta
 
 import numpy as np
 from sqlalchemy import func, select
@@ -24,8 +24,6 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
 from server.indicators.capacity import CapacityForecasts, capacity_forecasts
-from server.indicators.quantile_forecast import QuantileForecast
-from server.services.capacity_forecaster import district_parents
 from server.services.capacity_indicators import (
     admissions_with_nowcast,
     as_path,
@@ -34,12 +32,11 @@ from server.services.capacity_indicators import (
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, newest_run_of
-from server.services.hierarchy import membership, sum_up
 from server.services.ruleset_cache import parsed
 from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = ["AreaCapacity", "DistrictForecast", "Fan", "NoCapacityError", "area_capacity",
-           "capacity_forecasts_at", "district_forecast"]
+           "district_forecast"]
 
 #: Days of history loaded (growth window, the days shown before the forecast, nowcasts).
 HISTORY = 70
@@ -98,7 +95,6 @@ class AreaCapacity:
     growth_se: float | None
     fans: tuple[Fan, ...]          # ICU beds in use per scenario
     days: tuple[DaysToShareRow, ...]
-    forecasts: tuple[QuantileForecast, ...]
 
     @property
     def staffed_now(self) -> float | None:
@@ -119,7 +115,6 @@ class DistrictForecast:
     share: float
     fans: tuple[Fan, ...]          # the district's hospital admissions per scenario
     days: tuple[DaysToShareRow, ...]  # the area's ICU days to the share, per scenario
-    forecasts: tuple[QuantileForecast, ...]
 
 
 def _num(x: float) -> float | None:
@@ -240,7 +235,6 @@ def area_capacity(*, session: Session, code: str) -> AreaCapacity:
         staffed=tuple(_num(v) for v in inp.staffed[shown]),
         growth=_num(fc.growth[0]), growth_se=_num(fc.growth_se[0]),
         fans=_fans(fc, "icu_occupied", 0, labels), days=_days(fc, 0, labels),
-        forecasts=fc.forecasts,
     )
 
 
@@ -264,40 +258,4 @@ def district_forecast(*, session: Session, code: str) -> DistrictForecast | None
         code=code, area=inp.area.code, area_name=inp.area.name, origin=inp.dates[-1],
         horizon=HORIZON, share=_share_of(inp.ruleset),
         fans=_fans(own, "hosp_admissions", 0, labels), days=_days(area, 0, labels),
-        forecasts=own.forecasts,
     )
-
-
-def capacity_forecasts_at(
-    *, session: Session, end: date, as_of: datetime | None = None, ruleset: Ruleset | None = None,
-    sims: int = 400, seed: int = 0,
-) -> list[QuantileForecast]:
-    """Every forecast tierwise makes from the data known at ``as_of``, origin ``end``.
-
-    Districts: ``hosp_admissions`` per scenario; areas (the districts' parents): the same for
-    their summed admissions plus ``icu_occupied`` and ``icu_share`` (percent of staffed beds).
-    Admissions on days still being reported are the nowcast. Scenarios are the ruleset's (the
-    active one when None; "the trend continues" when it declares none). A region whose inputs
-    are missing on ``end`` gets NaN rows. For the forecast record (storing and scoring).
-    """
-    if ruleset is None:
-        row = active_ruleset(session=session)
-        ruleset = parsed(row) if row is not None else None
-    scenarios = [as_path(s) for s in forecast_scenarios(ruleset)]
-    data = load_district_data(session=session, start=end - timedelta(days=HISTORY - 1), end=end,
-                              as_of=as_of)
-    adm = admissions_with_nowcast(data)
-    out = list(capacity_forecasts(adm, regions=data.regions, origin=end, scenarios=scenarios,
-                                  horizon=HORIZON, sims=sims, seed=seed).forecasts)
-    links = district_parents(session)
-    areas = sorted({links[c] for c in data.regions if c in links})
-    if not areas:
-        return out
-    first = {a: next(i for i, c in enumerate(data.regions) if links.get(c) == a) for a in areas}
-    summed = sum_up(adm, membership(data.regions, links, areas), areas).values
-    occ = np.array([data.area_of_district["icu_occupied"][first[a], -1] for a in areas])
-    staffed = np.array([data.area_of_district["icu_staffed"][first[a], -1] for a in areas])
-    out += capacity_forecasts(summed, regions=tuple(areas), origin=end, scenarios=scenarios,
-                              occupied=occ, staffed=staffed, horizon=HORIZON, sims=sims,
-                              shares=(_share_of(ruleset),), seed=seed + 1).forecasts
-    return out

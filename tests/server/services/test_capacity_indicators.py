@@ -124,15 +124,36 @@ def test_demo_policy_capacity_signal_raises_no_alarm_in_a_quiet_autumn(
 
 
 def test_forecasts_at_a_cutoff_cover_every_district_and_area(demo_session: Session) -> None:
+    """The record's forecaster (the policy's first scenario) forecasts admissions for every
+    district and every area, and ICU beds and their share for every area."""
     from datetime import date
 
-    from server.services.capacity_pages import capacity_forecasts_at
+    from server.services.backtest import as_known_cutoff
+    from server.services.capacity_forecaster import record_forecaster
+    from server.services.forecast_record import read_known
 
-    got = capacity_forecasts_at(session=demo_session, end=date(2026, 11, 20), sims=100)
-    kinds = {(f.target, f.scenario, len(f.regions)) for f in got}
-    scenarios = {"trend", "levels-off", "halves"}
-    assert kinds == {("hosp_admissions", s, 14) for s in scenarios} | {
-        (t, s, 3) for t in ("hosp_admissions", "icu_occupied", "icu_share") for s in scenarios}
-    share = next(f for f in got if f.target == "icu_share" and f.scenario == "trend")
-    assert share.regions == ("R1", "R2", "R3") and share.origin == date(2026, 11, 20)
+    fc = record_forecaster(demo_session)
+    assert fc is not None and fc.scenario.name == "trend"
+    known = read_known(session=demo_session, cutoff=as_known_cutoff(date(2026, 11, 20)),
+                       measures=fc.measures)
+    assert known is not None
+    got = fc(known)
+    # a district is forecast when its last week of admissions up to the origin is complete (as
+    # reported that morning: no nowcast here) and its 14 days hold an admission to fit a growth
+    # rate on; areas sum all their districts' reports
+    end = known.last_day("hosp_admissions")
+    adm = known.values["hosp_admissions"]
+    complete = {c for c, week, fit in zip(known.regions, adm[:, end - 6: end + 1],
+                                          adm[:, end - 13: end + 1], strict=True)
+                if c.startswith("D") and np.isfinite(week).all() and np.nansum(fit) > 0}
+    assert len(complete) >= 12
+    districts = next(f for f in got if f.target == "hosp_admissions" and len(f.regions) > 3)
+    assert set(districts.regions) == complete
+    kinds = sorted((f.target, f.scenario, len(f.regions)) for f in got)
+    assert kinds == sorted([("hosp_admissions", "trend", len(complete)),
+                            ("hosp_admissions", "trend", 3), ("icu_occupied", "trend", 3),
+                            ("icu_share", "trend", 3)])
+    share = next(f for f in got if f.target == "icu_share")
+    assert share.regions == ("R1", "R2", "R3")
+    assert share.origin == known.dates[known.last_day("hosp_admissions")].astype(date)
     assert np.isfinite(share.values).all()
