@@ -17,6 +17,7 @@ from server.indicators.accuracy import (
     projection_accuracy,
     weighted_interval_score,
 )
+from server.indicators.aggregate import Aggregate, sum_counts, weighted_mean
 from server.indicators.before_after import BeforeAfter, before_after
 from server.indicators.curves import (
     CurveFit,
@@ -111,6 +112,9 @@ from server.indicators.windows import (
 )
 
 __all__ = [
+    "Aggregate",
+    "sum_counts",
+    "weighted_mean",
     "BeforeAfter",
     "before_after",
     "AccuracyReport",

@@ -1,17 +1,24 @@
-"""Aggregating district arrays up the region hierarchy.
+"""Aggregating district arrays up the region hierarchy (the services' side).
 
-Counts aggregate upward by sum (a parent is known on a day only when every one of its children is);
-levels such as ICU beds in use also sum; rates are never averaged but recomputed by the caller from
-aggregated numerators and denominators. Vectorised: one matrix product per measure.
+The arithmetic is :mod:`server.indicators.aggregate` (pure, vectorised); this module keeps the
+names its callers use (capacity forecasts, measures and their effects): :func:`membership` and
+:func:`sum_up`, the strict sum (a parent is known on a day only when every one of its children
+is). Rates are never averaged but recomputed by the caller from aggregated numerators and
+denominators; the evaluation of a policy at area or county level aggregates whole
+:class:`~server.services.district_data.DistrictData` in :mod:`server.services.level_data`.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
+
+from server.indicators.aggregate import membership, sum_counts
+
+__all__ = ["Aggregated", "membership", "sum_up"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -24,35 +31,10 @@ class Aggregated:
     children: NDArray[np.int64]
 
 
-def membership(
-    children: Sequence[str], parent_of: Mapping[str, str | None], parents: Sequence[str]
-) -> NDArray[np.float64]:
-    """Matrix (parents, children) with 1 where a child belongs to a parent (directly or deeper)."""
-    index = {p: i for i, p in enumerate(parents)}
-    matrix = np.zeros((len(parents), len(children)))
-    for j, child in enumerate(children):
-        node = parent_of.get(child)
-        seen = set()
-        while node is not None and node not in seen:
-            seen.add(node)
-            if node in index:
-                matrix[index[node], j] = 1.0
-            node = parent_of.get(node)
-    return matrix
-
-
 def sum_up(
     values: NDArray[np.float64], matrix: NDArray[np.float64], parents: Sequence[str]
 ) -> Aggregated:
     """Sum children's values into parents; NaN on a day when any child of the parent is missing."""
-    present = np.isfinite(values)
-    totals = matrix @ np.where(present, values, 0.0)
-    reporting = (matrix @ present.astype(np.float64)).astype(np.int64)
-    children = matrix.sum(axis=1).astype(np.int64)
-    complete = reporting == children[:, None]
-    return Aggregated(
-        parents=tuple(parents),
-        values=np.where(complete & (children[:, None] > 0), totals, np.nan),
-        reporting=reporting,
-        children=children,
-    )
+    agg = sum_counts(values, matrix)
+    return Aggregated(parents=tuple(parents), values=agg.values, reporting=agg.reporting,
+                      children=agg.members)
