@@ -18,6 +18,7 @@ import yaml
 from rules.errors import RulesetError
 from rules.model import (
     COMPARISONS,
+    POLICY_LEVELS,
     Combination,
     Condition,
     Criterion,
@@ -52,6 +53,7 @@ _TOP_OPTIONAL = (
     "overrides",
     "prepare",
     "scenarios",
+    "level",
 )
 _THRESHOLD_KEYS = ("enter", "exit", "strict", "enter_strict", "exit_strict")
 
@@ -108,6 +110,7 @@ def _read_root(
     name = r.text(top["name"], ("name",)) if "name" in top else None
     version = r.text(top["version"], ("version",)) if "version" in top else None
     desc = r.text(top["description"], ("description",)) if "description" in top else ""
+    level = r.choice(top["level"], ("level",), POLICY_LEVELS) if "level" in top else "districts"
     tiers = _read_tiers(r, top["tiers"]) if "tiers" in top else None
     default_age = None
     if "freshness" in top:
@@ -149,6 +152,7 @@ def _read_root(
         scenarios,
         combination,
         timing,
+        level,
     )
     if r.errors or any(p is None for p in parts):
         return None
@@ -169,6 +173,7 @@ def _read_root(
         overrides=overrides,
         prepare=prepare,
         scenarios=scenarios,
+        level=level,
         text=text,
         source=source,
     )

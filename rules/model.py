@@ -61,6 +61,9 @@ _KNOWN_PARAMS: dict[str, tuple[type, float]] = {
 }
 #: Longest forecast horizon, in days, a projected indicator may ask for.
 MAX_HORIZON = 21
+#: The levels of the region tree a policy may apply to (``level:``; default ``districts``):
+#: the districts, the areas above them, or the county (the top of the tree).
+POLICY_LEVELS = ("districts", "areas", "county")
 
 
 def _finite(path: tuple[str | int, ...], value: float) -> None:

@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 from rules.errors import FieldError
 from rules.model import (
     MAX_HORIZON,
+    POLICY_LEVELS,
     Combination,
     Condition,
     Criterion,
@@ -55,6 +56,9 @@ class Ruleset:
     overrides: tuple[Override, ...] = ()
     prepare: tuple[PrepareSignal, ...] = ()
     scenarios: tuple[Scenario, ...] = ()
+    #: The regions it assigns tiers to (:data:`~rules.model.POLICY_LEVELS`): their indicators
+    #: are computed from counts summed over each region's districts.
+    level: str = "districts"
     text: str = ""
     source: str = "<string>"
     sha256: str = field(init=False)
@@ -63,6 +67,9 @@ class Ruleset:
         object.__setattr__(self, "sha256", hashlib.sha256(self.text.encode("utf-8")).hexdigest())
         if not self.name.strip():
             raise FieldError(("name",), "a ruleset needs a non-empty name")
+        if self.level not in POLICY_LEVELS:
+            raise FieldError(("level",), f"expected one of {', '.join(POLICY_LEVELS)}, "
+                                         f"got {self.level!r}")
         if len(self.tiers) < 2:
             raise FieldError(("tiers",), f"needs at least 2 tiers, got {len(self.tiers)}")
         for i, tier in enumerate(self.tiers):

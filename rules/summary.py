@@ -39,6 +39,8 @@ def summary(ruleset: Ruleset) -> str:
     out = [f"Ruleset {rs.name} version {rs.version} (sha256 {rs.sha256[:12]}, {rs.source})"]
     if rs.description:
         out.append(rs.description.strip())
+    if rs.level != "districts":
+        out.append(f"Applies to the {rs.level} (indicators from counts summed over districts).")
     out += ["", "Tiers:"]
     out += [f"  {t.level}  {t.name}: {t.staff.strip()}" for t in rs.tiers]
     out += ["", "Criteria (thresholds to enter each tier; release condition in brackets):"]

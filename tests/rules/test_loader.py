@@ -277,3 +277,33 @@ def test_indicator_translation_errors_are_located(translations: str, where: str)
     with pytest.raises(RulesetError) as info:
         parse_ruleset(text, source="f.yaml")
     assert any(re.search(where, p.location()) for p in info.value.errors), info.value.errors
+
+
+@pytest.mark.parametrize(("level", "expected"), [
+    (None, "districts"), ("districts", "districts"), ("areas", "areas"), ("county", "county"),
+])
+def test_policy_level_is_read_with_districts_by_default(level: str | None, expected: str) -> None:
+    text = BASE if level is None else BASE.replace("version: \"1\"\n",
+                                                   f"version: \"1\"\nlevel: {level}\n")
+    assert parse_ruleset(text).level == expected
+
+
+@pytest.mark.parametrize(("value", "where"), [
+    ("regions", r"^f\.yaml:3:8: level: expected one of districts, areas, county, got 'regions'"),
+    ("[areas]", r"^f\.yaml:3:8: level: "),
+    ("", r"^f\.yaml:3:\d+: level: "),
+])
+def test_policy_level_errors_name_line_and_key(value: str, where: str) -> None:
+    text = BASE.replace("version: \"1\"\n", f"version: \"1\"\nlevel: {value}\n")
+    with pytest.raises(RulesetError, match=where):
+        parse_ruleset(text, source="f.yaml")
+
+
+def test_policy_level_is_checked_on_the_model_too() -> None:
+    from dataclasses import replace
+
+    from rules import FieldError
+
+    rs = parse_ruleset(BASE)
+    with pytest.raises(FieldError, match="level"):
+        replace(rs, level="wards")
