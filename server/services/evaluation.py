@@ -1,4 +1,8 @@
-"""Use case: evaluate the active ruleset for every district and store the assessments.
+"""Use case: evaluate the active ruleset for the regions of its level and store the assessments.
+
+The regions are the districts, or the areas or the county of a policy with ``level``
+(:func:`server.services.level_data.evaluate_policy`: indicators from counts summed up the
+region tree, as known at the cutoff).
 
 An evaluation reads the data as known at a cutoff (the newest vintage received, unless a cutoff is
 given), computes the indicators, runs the rules engine over the whole history and records an
@@ -49,17 +53,16 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 import rules
-from rules import Evaluation, Ruleset, evaluate, parse_ruleset
+from rules import Evaluation, Ruleset, parse_ruleset
 from server.services.audit import record
 from server.services.database import Database
-from server.services.district_data import load_district_data
-from server.services.district_indicators import district_indicators
 from server.services.forecast_record import (
     Forecaster,
     forecasts_stored,
     store_morning_forecasts,
 )
 from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
+from server.services.level_data import evaluate_policy
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Measure, Observation, Region, Vintage
@@ -202,12 +205,8 @@ def evaluate_districts(
     )
     if _stored_run(session, ruleset_row.id, cutoff):
         return reused
-    data = load_district_data(session=session, start=start, end=end, as_of=cutoff,
-                              stale_after=stale_after, needs=needs)
-    result = evaluate(
-        ruleset, district_indicators(data, ruleset), regions=data.regions, dates=data.dates,
-        region_levels=data.levels,
-    )
+    result = evaluate_policy(session=session, ruleset=ruleset, start=start, end=end,
+                             as_of=cutoff, stale_after=stale_after, needs=needs)
     serialise_evaluations(session)
     if _stored_run(session, ruleset_row.id, cutoff):  # another evaluation stored it meanwhile
         return reused

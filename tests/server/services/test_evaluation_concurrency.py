@@ -96,14 +96,14 @@ def test_two_evaluations_at_once_store_one_run(
     feed = _feed(committed_db, tmp_path)
     _ingest(committed_db, feed, cases_csv(60), evaluate=False)
     both_computed = threading.Barrier(2, timeout=60)
-    engine = evaluation.evaluate
+    engine = evaluation.evaluate_policy
 
     def evaluate_then_wait(*args: Any, **kwargs: Any) -> Any:
         result = engine(*args, **kwargs)
         both_computed.wait()  # neither stores before both have computed: they must collide
         return result
 
-    monkeypatch.setattr(evaluation, "evaluate", evaluate_then_wait)
+    monkeypatch.setattr(evaluation, "evaluate_policy", evaluate_then_wait)
     results = _at_once(2, lambda: evaluate_if_behind(committed_db))
     assert all(isinstance(r, EvaluationRun) for r in results), results
     assert sorted(r.reused for r in results) == [False, True]

@@ -1,0 +1,180 @@
+"""The regions a policy assigns tiers to, and their indicator inputs.
+
+A policy applies to the districts (the default), the areas above them or the county (its
+``level``, ``docs/rules.md``, "Policies above the districts"). :func:`policy_data` reads the
+districts' measures as known at a cutoff (:func:`~server.services.district_data.
+load_district_data`, so every as-of and vintaged read stays what it is) and, above the
+districts, aggregates them up the hierarchy with the pure kernels of
+:mod:`server.indicators.aggregate` (:func:`aggregate_data`): the result is a
+:class:`~server.services.district_data.DistrictData` whose regions are the areas or the county,
+so every indicator kind computes on it unchanged, from summed counts and populations.
+:func:`evaluate_policy` runs the engine on it; the evaluation use case (and a loop over several
+active policies) calls it with the ruleset at hand.
+
+Partial coverage follows :data:`~server.indicators.aggregate.MAX_MISSING_SHARE`: a region's
+figure is missing on a day when districts holding more than that share of its population lack
+one, and its indicator is stale or invalid when districts holding more than that share are.
+Nowcasts of late reports are made per district only: above the districts the indicators use
+the reports as received.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+
+import numpy as np
+from numpy.typing import NDArray
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
+
+from rules import Evaluation, Ruleset, evaluate
+from server.indicators.aggregate import MAX_MISSING_SHARE, membership, sum_counts, weighted_mean
+from server.services.district_data import DistrictData, MeasureNeeds, load_district_data
+from server.services.district_indicators import district_indicators
+from server.services.indicator_kinds import measure_needs, store_measures
+from server.store.models import Region
+
+__all__ = ["Hierarchy", "aggregate_data", "evaluate_policy", "hierarchy", "policy_data"]
+
+#: The region level each policy level stores its assessments under (``overrides`` match it).
+REGION_LEVEL = {"areas": "area", "county": "county"}
+
+
+@dataclass(frozen=True, kw_only=True)
+class Hierarchy:
+    """The region tree above the districts: each region's parent, and the regions of a level."""
+
+    parent_of: Mapping[str, str | None]
+    names: Mapping[str, str]
+
+    def areas(self, districts: Sequence[str]) -> tuple[str, ...]:
+        """The parents of ``districts`` (those that have one), in code order."""
+        return tuple(sorted({p for d in districts if (p := self.parent_of.get(d)) is not None}))
+
+    def county(self, districts: Sequence[str]) -> tuple[str, ...]:
+        """The top of the tree above ``districts`` (a district without a parent has none)."""
+        tops = set()
+        for d in districts:
+            node, seen = self.parent_of.get(d), set()
+            while node is not None and node not in seen:
+                seen.add(node)
+                top, node = node, self.parent_of.get(node)
+            if seen:
+                tops.add(top)
+        return tuple(sorted(tops))
+
+    def regions(self, level: str, districts: Sequence[str]) -> tuple[str, ...]:
+        if level == "areas":
+            return self.areas(districts)
+        if level == "county":
+            return self.county(districts)
+        raise ValueError(f"no regions above the districts for level {level!r}")
+
+
+def hierarchy(*, session: Session) -> Hierarchy:
+    """Every region's parent code and name (one read)."""
+    parent = aliased(Region)
+    rows = session.execute(
+        select(Region.code, Region.name, parent.code).outerjoin(parent,
+                                                                 parent.id == Region.parent_id)
+    ).all()
+    return Hierarchy(parent_of={c: p for c, _n, p in rows}, names={c: n for c, n, _p in rows})
+
+
+def _share_over(mask: NDArray[np.bool_], weights: NDArray[np.float64],
+                limit: float) -> NDArray[np.bool_]:
+    """(groups, days): True where members holding more than ``limit`` of the weight are
+    flagged in ``mask`` (members, days)."""
+    total = weights.sum(axis=1)[:, None]
+    flagged = weights @ mask.astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(total > 0, flagged / total, 0.0) > limit + 1e-9
+
+
+def aggregate_data(
+    data: DistrictData, *, groups: Sequence[str], parent_of: Mapping[str, str | None],
+    region_level: str, max_missing: float = MAX_MISSING_SHARE,
+) -> DistrictData:
+    """``data`` (districts) summed into ``groups`` (areas or the county) up ``parent_of``.
+
+    District measures: counts and levels sum (:func:`~server.indicators.aggregate.sum_counts`,
+    counts kept whole), concentrations are population-weighted means. Area measures (ICU beds):
+    the area's own figures, summed over areas for a group above them. Plants: each group is
+    served by the people its districts have served (catchment shares), so the wastewater kinds
+    weight the plants by them. Stale and invalid: more than ``max_missing`` of the population.
+    """
+    districts = list(data.regions)
+    m = membership(districts, parent_of, groups)
+    pop = data.population
+    weights = m * pop[None, :]
+    kinds = data.measure_kinds
+
+    def combine(values: NDArray[np.float64], measure: str) -> NDArray[np.float64]:
+        kind = kinds.get(measure, kinds.get(measure.split(".", 1)[0], "count"))
+        if kind == "concentration":
+            return weighted_mean(values, weights, max_missing=max_missing).values
+        return sum_counts(values, m, population=pop, max_missing=max_missing,
+                          whole=kind == "count").values
+
+    # The area measures come copied to each district of an area: take one row per area.
+    area_codes = sorted({p for d in districts if (p := parent_of.get(d)) is not None})
+    area_of = [parent_of.get(d) for d in districts]
+    first = [area_of.index(a) for a in area_codes]
+    area_pop = np.array([pop[[i for i, a in enumerate(area_of) if a == c]].sum()
+                         for c in area_codes])
+    am = membership(area_codes, parent_of, groups) if area_codes else np.zeros((len(groups), 0))
+    if list(groups) == area_codes:  # the areas themselves: their own figures
+        am = np.eye(len(area_codes))
+
+    def area_values(values: NDArray[np.float64]) -> NDArray[np.float64]:
+        if not area_codes:
+            return np.full((len(groups), data.dates.size), np.nan)
+        return sum_counts(values[first], am, population=area_pop,
+                          max_missing=max_missing).values
+
+    def flags(masks: Mapping[str, NDArray[np.bool_]]) -> dict[str, NDArray[np.bool_]]:
+        return {k: _share_over(v, weights, max_missing) for k, v in masks.items()}
+
+    served = m @ data.served
+    return DistrictData(
+        regions=tuple(groups), levels=(region_level,) * len(groups), population=m @ pop,
+        dates=data.dates,
+        district={k: combine(v, k) for k, v in data.district.items()},
+        area_of_district={k: area_values(v) for k, v in data.area_of_district.items()},
+        plant=data.plant, plant_population=data.plant_population, served=served,
+        as_of=data.as_of, stale=flags(data.stale), invalid=flags(data.invalid),
+        bad_values=data.bad_values, measure_kinds=data.measure_kinds,
+        plant_invalid=data.plant_invalid, plant_stale=data.plant_stale, nowcasts={},
+    )
+
+
+def policy_data(
+    *, session: Session, ruleset: Ruleset, start: date, end: date, as_of: datetime | None,
+    stale_after: Mapping[str, timedelta] | None = None, needs: MeasureNeeds | None = None,
+) -> DistrictData:
+    """The inputs of ``ruleset``'s indicators for the regions of its level, as known at
+    ``as_of`` (districts: :func:`load_district_data` itself); ``needs`` defaults to the
+    measures its indicators read."""
+    needs = needs or measure_needs(ruleset, store_measures(session=session))
+    if ruleset.level == "districts":
+        return load_district_data(session=session, start=start, end=end, as_of=as_of,
+                                  stale_after=stale_after, needs=needs)
+    data = load_district_data(session=session, start=start, end=end, as_of=as_of,
+                              stale_after=stale_after, needs=needs, nowcast=False)
+    tree = hierarchy(session=session)
+    return aggregate_data(data, groups=tree.regions(ruleset.level, data.regions),
+                          parent_of=tree.parent_of, region_level=REGION_LEVEL[ruleset.level])
+
+
+def evaluate_policy(
+    *, session: Session, ruleset: Ruleset, start: date, end: date, as_of: datetime | None,
+    stale_after: Mapping[str, timedelta] | None = None, needs: MeasureNeeds | None = None,
+) -> Evaluation:
+    """The engine's evaluation of ``ruleset`` over ``start..end`` for the regions of its level
+    (data as known at ``as_of``); nothing is stored."""
+    data = policy_data(session=session, ruleset=ruleset, start=start, end=end, as_of=as_of,
+                       stale_after=stale_after, needs=needs)
+    return evaluate(ruleset, district_indicators(data, ruleset), regions=data.regions,
+                    dates=data.dates, region_levels=data.levels)
