@@ -10,6 +10,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 from fastapi.templating import Jinja2Templates
 
+from server.services.area_tiers import region_tiers
 from server.services.capacity_pages import area_capacity, district_forecast
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
@@ -112,12 +113,14 @@ def district(
 
 @router.get("/areas/{code}/capacity", response_class=HTMLResponse)
 def capacity(request: Request, code: str, session: SessionDep, user: StaffDep) -> Response:
-    """ICU beds in use against staffed beds, each scenario's forecast fan and the days until
-    the configured share of staffed beds."""
+    """The area's own tiers (policies set at area level), ICU beds in use against staffed
+    beds, each scenario's forecast fan and the days until the configured share of staffed
+    beds."""
     area = area_capacity(session=session, code=code)
     return render(request, "staff/capacity.html", {
         "a": area, "charts": [figure_json(capacity_fan_figure(area, f)) for f in area.fans],
         "record": record_lines(session=session, region=area.code),
+        "tiers": region_tiers(session=session, code=area.code),
     })
 
 

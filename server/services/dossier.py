@@ -29,6 +29,8 @@ from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
 from server.services.explanations import RevisedSince, explained_day, revised_since
 from server.services.forecast_record import RecordLine, record_lines
+from server.services.indicator_kinds import store_measures
+from server.services.level_data import area_figures
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
@@ -87,6 +89,9 @@ class CriterionSeries:
     upper: tuple[float | None, ...]
     enter: tuple[tuple[float | None, ...], ...]
     exit: tuple[tuple[float | None, ...], ...]
+    #: the name of the district's area when the value is the area's figure (ICU beds are
+    #: reported per area: :func:`server.services.level_data.area_figures`)
+    area: str | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -176,6 +181,7 @@ def district_dossier(
     if row is None or cutoff is None:
         raise NoAssessmentError(code, None)
     rs = parsed(row)
+    of_area = area_figures(rs, store_measures(session=session))
     span = session.execute(assessments_as_of(
         select(func.min(Assessment.ref_date), func.max(Assessment.ref_date))
         .select_from(Assessment),
@@ -207,6 +213,7 @@ def district_dossier(
                         for t in range(n)),
             exit=tuple(tuple(_num((i.get("exit") or [None] * n)[t]) for i in items)
                        for t in range(n)),
+            area=area if crit.indicator in of_area else None,
         ))
     prepare = tuple((a.ref_date, sid) for a in rows for sid, on in a.prepare_signals.items() if on)
     revisions = tuple(
@@ -260,6 +267,8 @@ class ExplainedCriterion:
     thresholds: tuple[tuple[str, str, str], ...]  # (tier name, enter, exit)
     count_text: str
     note: str
+    #: the area whose figure the district is given (None: the district's own)
+    area: str | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -307,7 +316,8 @@ class ExplanationPage:
     tier_now_name: str | None
 
 
-def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str]) -> ExplainedCriterion:
+def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str],
+                         area: str | None = None) -> ExplainedCriterion:
     spec = rs.indicator(c.indicator)
     thresholds = tuple(
         (names[t + 1], "—" if e is None else value_text(spec, e),
@@ -319,7 +329,7 @@ def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str]) -> Ex
         label=c.label, value_text=value_text(spec, c.value),
         interval_text=interval_text(spec, c.lower, c.upper), statistic=c.statistic,
         direction=c.direction, level=c.level, status=c.status, thresholds=thresholds,
-        count_text="—" if c.count is None else f"{c.count:.0f}", note=note,
+        count_text="—" if c.count is None else f"{c.count:.0f}", note=note, area=area,
     )
 
 
@@ -332,7 +342,7 @@ def explanation_page(
     in force at that cutoff instead), and what the newest run reads differently
     (:mod:`server.services.explanations`).
     """
-    region, _area = _region(session, code)
+    region, area = _region(session, code)
     row = active_ruleset(session=session)
     cutoff = _cutoff(session, row.id) if row else None
     if row is None or cutoff is None:
@@ -351,6 +361,7 @@ def explanation_page(
         raise NoAssessmentError(code, day)
     record = shown.record
     names = [t.name for t in rs.tiers]
+    of_area = area_figures(rs, store_measures(session=session))
     c = record.counters
     counters = (
         ("Days the candidate was higher", f"{c.up} of {c.confirm_days}"),
@@ -377,7 +388,9 @@ def explanation_page(
         tier_label=tier_label(rs, shown.recommended_tier),
         previous_name=tier_name(rs, previous), action=record.action,
         decided_on=record.decided_on, sentence=record.sentence, basis_day=shown.basis_day,
-        criteria=tuple(_explained_criterion(rs, item, names) for item in shown.basis),
+        criteria=tuple(
+            _explained_criterion(rs, item, names, area if item.indicator in of_area else None)
+            for item in shown.basis),
         counters=counters, held_by=record.held_by,
         gates=tuple((g.id, g.passed, g.message) for g in record.gates),
         prepare=tuple((s.id, s.active, s.message) for s in record.prepare),

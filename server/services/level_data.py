@@ -29,14 +29,20 @@ from numpy.typing import NDArray
 from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
-from rules import Evaluation, Ruleset, evaluate
+from rules import Evaluation, FieldError, Ruleset, evaluate
 from server.indicators.aggregate import MAX_MISSING_SHARE, membership, sum_counts, weighted_mean
 from server.services.district_data import DistrictData, MeasureNeeds, load_district_data
 from server.services.district_indicators import district_indicators
-from server.services.indicator_kinds import measure_needs, store_measures
+from server.services.indicator_kinds import (
+    known_measures,
+    measure_needs,
+    resolve,
+    store_measures,
+)
 from server.store.models import Region
 
-__all__ = ["Hierarchy", "aggregate_data", "evaluate_policy", "hierarchy", "policy_data"]
+__all__ = ["Hierarchy", "aggregate_data", "area_figures", "evaluate_policy", "hierarchy",
+           "policy_data"]
 
 #: The region level each policy level stores its assessments under (``overrides`` match it).
 REGION_LEVEL = {"areas": "area", "county": "county"}
@@ -178,3 +184,22 @@ def evaluate_policy(
                        stale_after=stale_after, needs=needs)
     return evaluate(ruleset, district_indicators(data, ruleset), regions=data.regions,
                     dates=data.dates, region_levels=data.levels)
+
+
+def area_figures(ruleset: Ruleset, measures: Mapping[str, str]) -> frozenset[str]:
+    """The indicators of a district-level ``ruleset`` whose measures are stored per area (ICU
+    beds): each district is given its area's figure, which the district page says. Empty for
+    a policy above the districts (there every figure is the region's own). ``measures``: the
+    store's catalogue (name -> kind)."""
+    if ruleset.level != "districts":
+        return frozenset()
+    known = known_measures(measures)
+    out = set()
+    for name in ruleset.used_indicators():
+        try:
+            ind = resolve(ruleset.indicator(name), known, ruleset)
+        except FieldError:
+            continue
+        if ind is not None and ind.kind.level == "area":
+            out.add(name)
+    return frozenset(out)

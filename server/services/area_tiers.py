@@ -1,0 +1,67 @@
+"""Page data: the tiers a region above the districts holds under policies set at its level.
+
+A policy with ``level: areas`` or ``level: county`` stores assessments for those regions
+(:mod:`server.services.level_data`). :func:`region_tiers` reads, for each active such policy,
+the region's assessment of the newest run's last day as of that run's cutoff
+(:func:`server.services.evaluation.assessments_as_of`), for the area page.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date, datetime
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from rules import Tier
+from server.services.evaluation import assessments_as_of, newest_run_of
+from server.services.ruleset_cache import parsed
+from server.store.models import Assessment, Region
+from server.store.models import Ruleset as RulesetRow
+
+__all__ = ["RegionTier", "region_tiers"]
+
+
+@dataclass(frozen=True, kw_only=True)
+class RegionTier:
+    """A region's recommended tier under one policy set at its level, on the newest day."""
+
+    policy: str  # name and version
+    level: str  # the policy's level (areas, county)
+    day: date
+    tier: int  # -1: insufficient data
+    #: the tier with its names and texts per language (None: insufficient data)
+    tier_info: Tier | None
+    n_tiers: int
+    sentence: str
+    data_cutoff: datetime
+
+
+def region_tiers(*, session: Session, code: str) -> tuple[RegionTier, ...]:
+    """The tiers of region ``code`` under every active policy above the districts that has
+    assessed it (empty: none does)."""
+    region_id = session.scalar(select(Region.id).where(Region.code == code))
+    if region_id is None:
+        return ()
+    out = []
+    for row in session.scalars(select(RulesetRow).where(RulesetRow.status == "active")
+                               .order_by(RulesetRow.id)):
+        rs = parsed(row)
+        if rs.level == "districts":
+            continue
+        run = newest_run_of(session=session, ruleset_id=row.id)
+        if run is None:
+            continue
+        found = session.scalar(assessments_as_of(
+            select(Assessment), ruleset_id=row.id, cutoff=run.data_cutoff,
+            region_id=region_id, start=run.last_day, end=run.last_day))
+        if found is None:
+            continue
+        tier = found.recommended_tier
+        out.append(RegionTier(
+            policy=f"{row.name} {row.version}", level=rs.level, day=found.ref_date, tier=tier,
+            tier_info=rs.tiers[tier] if 0 <= tier < rs.n_tiers else None, n_tiers=rs.n_tiers,
+            sentence=found.explanation.get("sentence", ""), data_cutoff=run.data_cutoff,
+        ))
+    return tuple(out)
