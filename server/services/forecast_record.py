@@ -48,6 +48,7 @@ from server.indicators.forecast_scores import forecast_record as summarise_score
 from server.indicators.quantile_forecast import DEFAULT_LEVELS, QuantileForecast
 from server.services.capacity_forecaster import record_forecaster
 from server.services.errors import ServiceError
+from server.services.hierarchy import fill_parents, hierarchy
 from server.store.errors import UnknownCodeError
 from server.store.models import (
     ForecastQuantiles,
@@ -98,6 +99,16 @@ TARGET_MEASURES: dict[str, tuple[str, ...]] = {
     "icu_occupied": ("icu_occupied",),
     "icu_share": ("icu_occupied", "icu_staffed"),
 }
+#: Measures reported per district whose area (and county) figures are their districts' sums
+#: (:func:`server.services.hierarchy.fill_parents`), so that area forecasts have a baseline
+#: and an outcome to be scored against.
+SUMMED_UP = ("hosp_admissions",)
+
+
+def _summed_up(values: dict[str, NDArray[np.float64]], regions: Sequence[str],
+               parent_of: Mapping[str, str | None]) -> dict[str, NDArray[np.float64]]:
+    return {m: fill_parents(v, regions, parent_of) if m in SUMMED_UP else v
+            for m, v in values.items()}
 
 
 class ForecastRecordError(ServiceError, ValueError):
@@ -215,7 +226,8 @@ def read_known(
     dense = read_dense(session=session, measures=list(measures),
                        start=newest - timedelta(days=days - 1), end=newest, as_of=cutoff)
     return KnownData(cutoff=cutoff, regions=dense.regions, dates=dense.dates,
-                     values=dict(dense.values))
+                     values=_summed_up(dict(dense.values), dense.regions,
+                                       hierarchy(session=session).parent_of))
 
 
 # -- storing ------------------------------------------------------------------------------------
@@ -398,9 +410,12 @@ def _outcomes(
     if len(have) < len(TARGET_MEASURES[target]):
         return {c: i for i, c in enumerate(regions)}, np.full((len(regions), 1), np.nan)
     measures = list(TARGET_MEASURES[target])
+    summed = any(m in SUMMED_UP for m in measures)  # read the districts under areas too
     dense = read_dense(session=session, measures=measures, start=start, end=end,
-                       regions=list(regions))
-    values = target_values(target, dense.values)
+                       regions=None if summed else list(regions))
+    values = target_values(target, _summed_up(dict(dense.values), dense.regions,
+                                              hierarchy(session=session).parent_of)
+                           if summed else dense.values)
     newest = session.scalar(
         select(func.max(Observation.ref_date)).join(Measure, Measure.id == Observation.measure_id)
         .where(Measure.name.in_(measures)))
@@ -647,6 +662,7 @@ def _as_known_mornings(
     if end < start:
         raise ForecastRecordError(f"end {end} is before start {start}")
     codes = tuple(session.scalars(select(Region.code).order_by(Region.code)))
+    tree = hierarchy(session=session).parent_of
     n_days = (last_day - first).days + 1
     rows = read_vintage_rows(session=session, measures=measures, regions=codes, start=first,
                              end=last_day)
@@ -674,8 +690,8 @@ def _as_known_mornings(
         lo = max(newest - HISTORY_DAYS + 1, 0)
         cutoff = as_known_cutoff(first + timedelta(days=t), time_zone)
         known = KnownData(cutoff=cutoff, regions=codes, dates=dates[lo: newest + 1],
-                          values={m: dense[k, :, lo: newest + 1].copy()
-                                  for k, m in enumerate(measures)})
+                          values=_summed_up({m: dense[k, :, lo: newest + 1].copy()
+                                             for k, m in enumerate(measures)}, codes, tree))
         yield known, list(fc(known))
 
 

@@ -21,72 +21,28 @@ the reports as received.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
-from sqlalchemy import select
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from rules import Evaluation, FieldError, Ruleset, evaluate
 from server.indicators.aggregate import MAX_MISSING_SHARE, membership, sum_counts, weighted_mean
 from server.services.district_data import DistrictData, MeasureNeeds, load_district_data
 from server.services.district_indicators import district_indicators
+from server.services.hierarchy import hierarchy
 from server.services.indicator_kinds import (
     known_measures,
     measure_needs,
     resolve,
     store_measures,
 )
-from server.store.models import Region
 
-__all__ = ["Hierarchy", "aggregate_data", "area_figures", "evaluate_policy", "hierarchy",
-           "policy_data"]
+__all__ = ["aggregate_data", "area_figures", "evaluate_policy", "policy_data"]
 
 #: The region level each policy level stores its assessments under (``overrides`` match it).
 REGION_LEVEL = {"areas": "area", "county": "county"}
-
-
-@dataclass(frozen=True, kw_only=True)
-class Hierarchy:
-    """The region tree above the districts: each region's parent, and the regions of a level."""
-
-    parent_of: Mapping[str, str | None]
-    names: Mapping[str, str]
-
-    def areas(self, districts: Sequence[str]) -> tuple[str, ...]:
-        """The parents of ``districts`` (those that have one), in code order."""
-        return tuple(sorted({p for d in districts if (p := self.parent_of.get(d)) is not None}))
-
-    def county(self, districts: Sequence[str]) -> tuple[str, ...]:
-        """The top of the tree above ``districts`` (a district without a parent has none)."""
-        tops = set()
-        for d in districts:
-            node, seen = self.parent_of.get(d), set()
-            while node is not None and node not in seen:
-                seen.add(node)
-                top, node = node, self.parent_of.get(node)
-            if seen:
-                tops.add(top)
-        return tuple(sorted(tops))
-
-    def regions(self, level: str, districts: Sequence[str]) -> tuple[str, ...]:
-        if level == "areas":
-            return self.areas(districts)
-        if level == "county":
-            return self.county(districts)
-        raise ValueError(f"no regions above the districts for level {level!r}")
-
-
-def hierarchy(*, session: Session) -> Hierarchy:
-    """Every region's parent code and name (one read)."""
-    parent = aliased(Region)
-    rows = session.execute(
-        select(Region.code, Region.name, parent.code).outerjoin(parent,
-                                                                 parent.id == Region.parent_id)
-    ).all()
-    return Hierarchy(parent_of={c: p for c, _n, p in rows}, names={c: n for c, n, _p in rows})
 
 
 def _share_over(mask: NDArray[np.bool_], weights: NDArray[np.float64],

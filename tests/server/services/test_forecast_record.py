@@ -91,7 +91,8 @@ def store(session: Session) -> tuple[np.ndarray, np.ndarray]:
 def test_store_forecasts_rerun_replaces(session: Session, store: Sim) -> None:
     cutoff = as_known_cutoff(FIRST + timedelta(days=30))
     n = store_morning_forecasts(session=session, cutoff=cutoff, forecaster=FORECASTER)
-    assert n == len(DISTRICTS) + len(AREAS)  # admissions per district, ICU per area
+    # admissions per district and per area (summed over its districts), ICU beds per area
+    assert n == len(DISTRICTS) + 2 * len(AREAS)
     again = store_morning_forecasts(session=session, cutoff=cutoff, forecaster=FORECASTER)
     assert again == n
     assert session.scalar(select(func.count()).select_from(ForecastRun)) == 2
@@ -155,12 +156,44 @@ def test_stored_record_equals_scoring_by_hand(session: Session, store: Sim) -> N
             assert_allclose(cell.naive_error, np.nanmean(s.naive_error[:, j]), rtol=1e-12)
 
 
+def test_area_admissions_are_scored_against_their_districts_sums(
+    session: Session, store: Sim
+) -> None:
+    # The areas report no admissions: their history, baseline and outcome are the strict sums
+    # of their districts' (A0: D0, D2, D4; A1: D1, D3, D5), first reported and final alike.
+    mornings = range(20, 51)
+    for t in mornings:
+        store_morning_forecasts(session=session, cutoff=as_known_cutoff(FIRST + timedelta(t)),
+                                forecaster=FORECASTER)
+    cells = forecast_record(session=session, target="hosp_admissions", last=None)
+    reported, final = store
+    h = np.array(FORECASTER.horizons)
+    for k, code in enumerate(AREAS):
+        rows = [i for i in range(len(DISTRICTS)) if i % 2 == k]
+        rep, fin = reported[rows].sum(axis=0)[None, :], final[rows].sum(axis=0)[None, :]
+        values, observed, baseline = [], [], []
+        for t in mornings:
+            hist = (fin if t >= 61 else rep)[:, : t + 1]
+            values.append(poisson_persistence(hist, horizons=h, levels=DEFAULT_LEVELS)[0])
+            baseline.append(last_week_mean(hist)[0])
+            settled = t + h <= DAYS - 1 - SETTLE_DAYS
+            observed.append(np.where(settled, fin[0, np.minimum(t + h, DAYS - 1)], np.nan))
+        s = score_forecasts(np.array(values), DEFAULT_LEVELS, np.array(observed),
+                            np.array(baseline))
+        for j, hz in enumerate(h):
+            cell = next(c for c in cells if c.region == code and c.horizon == hz)
+            assert cell.forecasts == int(s.scored[:, j].sum()) > 0
+            assert cell.inside_90 == int(s.inside_90[:, j].sum())
+            assert_allclose(cell.mean_wis, np.nanmean(s.wis[:, j]), rtol=1e-12)
+            assert_allclose(cell.naive_error, np.nanmean(s.naive_error[:, j]), rtol=1e-12)
+
+
 def test_stored_as_known_mornings_equal_the_morning_step(session: Session, store: Sim) -> None:
     # store_forecasts_as_known (the demo's seeded record) keeps what the morning step would have
     # stored at each as-known cutoff: same runs, same quantiles, same baselines
     start, end = FIRST + timedelta(days=20), FIRST + timedelta(days=30)
     n = store_forecasts_as_known(session=session, forecaster=FORECASTER, start=start, end=end)
-    assert n == 11 * (len(DISTRICTS) + len(AREAS))
+    assert n == 11 * (len(DISTRICTS) + 2 * len(AREAS))
     seeded = {(r.target, r.data_cutoff.replace(tzinfo=None), r.origin): r.id
               for r in session.scalars(select(ForecastRun))}
     assert {k[1] for k in seeded} == {
@@ -207,9 +240,10 @@ def test_as_known_record_equals_record_of_stored_mornings(
         assert_allclose([c.mean_wis, c.naive_error], [s.mean_wis, s.naive_error], rtol=1e-12)
     pooled = next(c for c in replay if c.region is None and c.target == "hosp_admissions"
                   and c.horizon == 7)
-    # stationary Poisson counts: the 90 % band holds about 90 % (plumbing check; measured 0.91)
-    # mornings 10..55 have a settled 7-day outcome (day <= 69 - 7)
-    assert pooled.forecasts == 6 * 46 and 0.84 < pooled.coverage_90 < 0.97
+    # stationary Poisson counts: the 90 % band holds about 90 % (plumbing check; measured 0.91
+    # over the districts, 0.908 with the areas' summed admissions); mornings 10..55 have a
+    # settled 7-day outcome (day <= 69 - 7), for 6 districts and 2 areas
+    assert pooled.forecasts == 8 * 46 and 0.84 < pooled.coverage_90 < 0.97
 
 
 def test_record_lines_keep_the_newest_scored(session: Session, store: Sim) -> None:
@@ -272,8 +306,8 @@ def test_district_dossier_carries_the_record_of_district_and_area(demo_session: 
     assert code is not None
     lines = district_dossier(session=demo_session, code=code).forecast_record
     # the district's own admissions (stored with the areas' admissions in one run per morning)
-    # and its area's ICU beds and share; the area's admissions have no stored outcome (the
-    # store holds admissions per district only), so they are not scored
+    # and its area's ICU beds and share and admissions (summed over its districts: the store
+    # holds admissions per district only)
     assert {(x.target, x.horizon, x.forecasts) for x in lines} == {
         ("hosp_admissions", 7, 60), ("hosp_admissions", 14, 60),
         ("icu_occupied", 7, 60), ("icu_occupied", 14, 60),
