@@ -66,7 +66,9 @@ from server.services.district_indicators import (
     usable,
 )
 from server.services.errors import ServiceError
+from server.services.hierarchy import hierarchy
 from server.services.indicator_kinds import measure_needs, sample_indicators, store_measures
+from server.services.level_data import at_level, policy_data
 from server.store.models import Measure, Observation, Region, Vintage
 from server.store.reads import read_dense
 
@@ -169,7 +171,8 @@ def run_backtest(
     if as_known:
         data, indicators = _as_known_indicators(session, ruleset, first, end, tick, time_zone)
     else:
-        data = load_district_data(session=session, start=first, end=end, needs=needs)
+        data = policy_data(session=session, ruleset=ruleset, start=first, end=end, as_of=None,
+                           needs=needs)
         indicators = district_indicators(data, ruleset)
         tick((end - first).days + 1)
     ev = evaluate(
@@ -257,6 +260,8 @@ def capacity_leads(
     from server.services.capacity_forecaster import district_parents
 
     parent = {c: a for c, a in district_parents(session).items() if c in set(ev.regions)}
+    if rs.level == "areas":  # a policy set per area: its regions are the areas themselves
+        parent = {a: a for a in ev.regions}
     areas = sorted(set(parent.values()))
     if not areas:
         return []
@@ -429,6 +434,8 @@ def _as_known_indicators(
 ) -> tuple[DistrictData, dict[str, IndicatorSeries]]:
     needs = measure_needs(ruleset, store_measures(session=session))
     base = load_district_data(session=session, start=first, end=first, needs=needs)
+    tree = hierarchy(session=session).parent_of if ruleset.level != "districts" else None
+    view = at_level(base, ruleset, tree)  # the regions the policy assigns tiers to
     n_days = (end - first).days + 1
     area_parent = _area_rows(session, base)
     plants = list(
@@ -482,9 +489,10 @@ def _as_known_indicators(
             m: _stacked_input(_rolling_model(tri, cutoffs, pick), window_delay, area_names)
             for m, tri in triangles.items()
         }
-        series = district_indicators(_stack(base, stacked, n, nowcasts, needs), ruleset)
+        series = district_indicators(
+            at_level(_stack(base, stacked, n, nowcasts, needs), ruleset, tree, blocks=n), ruleset)
         for name, s in series.items():
-            r = len(base.regions)
+            r = len(view.regions)
             est = s.estimate.reshape(n, r, w)
             if name in on_samples:
                 last = _newest_column(est)
@@ -521,7 +529,7 @@ def _as_known_indicators(
             nowcast_days=get("nowcast_days") if flags is not None else None,
         )
     dates = np.arange(np.datetime64(first, "D"), np.datetime64(end, "D") + 1)
-    return replace(base, dates=dates, as_of=None), indicators
+    return replace(view, dates=dates, as_of=None), indicators
 
 
 @dataclass(frozen=True, kw_only=True)

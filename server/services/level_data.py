@@ -31,7 +31,7 @@ from rules import Evaluation, FieldError, Ruleset, evaluate
 from server.indicators.aggregate import MAX_MISSING_SHARE, membership, sum_counts, weighted_mean
 from server.services.district_data import DistrictData, MeasureNeeds, load_district_data
 from server.services.district_indicators import district_indicators
-from server.services.hierarchy import hierarchy
+from server.services.hierarchy import Hierarchy, hierarchy
 from server.services.indicator_kinds import (
     known_measures,
     measure_needs,
@@ -39,7 +39,7 @@ from server.services.indicator_kinds import (
     store_measures,
 )
 
-__all__ = ["aggregate_data", "area_figures", "evaluate_policy", "policy_data"]
+__all__ = ["aggregate_data", "area_figures", "at_level", "evaluate_policy", "policy_data"]
 
 #: The region level each policy level stores its assessments under (``overrides`` match it).
 REGION_LEVEL = {"areas": "area", "county": "county"}
@@ -57,7 +57,7 @@ def _share_over(mask: NDArray[np.bool_], weights: NDArray[np.float64],
 
 def aggregate_data(
     data: DistrictData, *, groups: Sequence[str], parent_of: Mapping[str, str | None],
-    region_level: str, max_missing: float = MAX_MISSING_SHARE,
+    region_level: str, max_missing: float = MAX_MISSING_SHARE, blocks: int = 1,
 ) -> DistrictData:
     """``data`` (districts) summed into ``groups`` (areas or the county) up ``parent_of``.
 
@@ -66,23 +66,38 @@ def aggregate_data(
     the area's own figures, summed over areas for a group above them. Plants: each group is
     served by the people its districts have served (catchment shares), so the wastewater kinds
     weight the plants by them. Stale and invalid: more than ``max_missing`` of the population.
+
+    ``blocks``: ``data`` holds that many stacked copies of the districts, block by block, with
+    codes ``k:code`` (the as-known backtest's windows, ``backtest._stack``); each block is
+    summed on its own and the result is stacked the same way (codes ``k:group``).
     """
-    districts = list(data.regions)
+    r = len(data.regions) // blocks
+    districts = [c.split(":", 1)[1] if blocks > 1 else c for c in data.regions[:r]]
     m = membership(districts, parent_of, groups)
-    pop = data.population
+    pop = data.population[:r]
     weights = m * pop[None, :]
     kinds = data.measure_kinds
+
+    def unfold(a: NDArray) -> NDArray:  # type: ignore[type-arg]
+        """(blocks * rows, days) -> (rows, blocks * days)"""
+        return a.reshape(blocks, a.shape[0] // blocks, -1).transpose(1, 0, 2).reshape(
+            a.shape[0] // blocks, -1)
+
+    def fold(a: NDArray) -> NDArray:  # type: ignore[type-arg]
+        """(rows, blocks * days) -> (blocks * rows, days)"""
+        return a.reshape(a.shape[0], blocks, -1).transpose(1, 0, 2).reshape(
+            blocks * a.shape[0], -1)
 
     def combine(values: NDArray[np.float64], measure: str) -> NDArray[np.float64]:
         kind = kinds.get(measure, kinds.get(measure.split(".", 1)[0], "count"))
         if kind == "concentration":
-            return weighted_mean(values, weights, max_missing=max_missing).values
-        return sum_counts(values, m, population=pop, max_missing=max_missing,
-                          whole=kind == "count").values
+            return fold(weighted_mean(unfold(values), weights, max_missing=max_missing).values)
+        return fold(sum_counts(unfold(values), m, population=pop, max_missing=max_missing,
+                               whole=kind == "count").values)
 
     # The area measures come copied to each district of an area: take one row per area.
-    area_codes = sorted({p for d in districts if (p := parent_of.get(d)) is not None})
     area_of = [parent_of.get(d) for d in districts]
+    area_codes = sorted({a for a in area_of if a is not None})
     first = [area_of.index(a) for a in area_codes]
     area_pop = np.array([pop[[i for i, a in enumerate(area_of) if a == c]].sum()
                          for c in area_codes])
@@ -92,16 +107,19 @@ def aggregate_data(
 
     def area_values(values: NDArray[np.float64]) -> NDArray[np.float64]:
         if not area_codes:
-            return np.full((len(groups), data.dates.size), np.nan)
-        return sum_counts(values[first], am, population=area_pop,
-                          max_missing=max_missing).values
+            return np.full((blocks * len(groups), data.dates.size), np.nan)
+        return fold(sum_counts(unfold(values)[first], am, population=area_pop,
+                               max_missing=max_missing).values)
 
     def flags(masks: Mapping[str, NDArray[np.bool_]]) -> dict[str, NDArray[np.bool_]]:
-        return {k: _share_over(v, weights, max_missing) for k, v in masks.items()}
+        return {k: fold(_share_over(unfold(v), weights, max_missing)) for k, v in masks.items()}
 
-    served = m @ data.served
+    plants = data.plant_population.size // blocks
+    served = np.kron(np.eye(blocks), m @ data.served[:r, :plants])
+    codes = tuple(f"{k}:{g}" for k in range(blocks) for g in groups) if blocks > 1 else tuple(
+        groups)
     return DistrictData(
-        regions=tuple(groups), levels=(region_level,) * len(groups), population=m @ pop,
+        regions=codes, levels=(region_level,) * len(codes), population=np.tile(m @ pop, blocks),
         dates=data.dates,
         district={k: combine(v, k) for k, v in data.district.items()},
         area_of_district={k: area_values(v) for k, v in data.area_of_district.items()},
@@ -110,6 +128,20 @@ def aggregate_data(
         bad_values=data.bad_values, measure_kinds=data.measure_kinds,
         plant_invalid=data.plant_invalid, plant_stale=data.plant_stale, nowcasts={},
     )
+
+
+def at_level(data: DistrictData, ruleset: Ruleset, parent_of: Mapping[str, str | None] | None,
+             *, blocks: int = 1) -> DistrictData:
+    """``data`` (districts; ``blocks`` stacked copies as in :func:`aggregate_data`) summed to
+    the regions of ``ruleset``'s level (unchanged for a district-level policy)."""
+    if ruleset.level == "districts" or parent_of is None:
+        return data
+    r = len(data.regions) // blocks
+    districts = [c.split(":", 1)[1] if blocks > 1 else c for c in data.regions[:r]]
+    tree = Hierarchy(parent_of=parent_of, names={})
+    return aggregate_data(data, groups=tree.regions(ruleset.level, districts),
+                          parent_of=parent_of, region_level=REGION_LEVEL[ruleset.level],
+                          blocks=blocks)
 
 
 def policy_data(
@@ -125,9 +157,7 @@ def policy_data(
                                   stale_after=stale_after, needs=needs)
     data = load_district_data(session=session, start=start, end=end, as_of=as_of,
                               stale_after=stale_after, needs=needs, nowcast=False)
-    tree = hierarchy(session=session)
-    return aggregate_data(data, groups=tree.regions(ruleset.level, data.regions),
-                          parent_of=tree.parent_of, region_level=REGION_LEVEL[ruleset.level])
+    return at_level(data, ruleset, hierarchy(session=session).parent_of)
 
 
 def evaluate_policy(

@@ -106,3 +106,15 @@ def test_capacity_leads_on_a_constructed_store(session: Session, store: int, tmp
     # signal at "at most 10 days" fires about 10 days ahead (whole days and whole beds: +-1)
     assert lead.lead_days is not None and 9 <= lead.lead_days <= 11
 
+
+
+def test_capacity_leads_of_a_policy_set_per_area(session: Session, store: int) -> None:
+    # The same policy applied to the areas: their admissions are the districts' sums, so the
+    # projection and its lead are the same as when each district carries its area's.
+    rs = parse_ruleset(RULES.replace('version: "1"\n', 'version: "1"\nlevel: areas\n'))
+    result = run_backtest(session=session, ruleset=rs, as_known=True)
+    assert result.evaluation.regions == ("A0", "A1")
+    leads = capacity_leads(session=session, result=result)
+    assert [(x.signal, x.area, x.crossed) for x in leads] == [
+        ("soon", "A0", FIRST + timedelta(days=store))]
+    assert leads[0].lead_days is not None and 9 <= leads[0].lead_days <= 11
