@@ -25,7 +25,13 @@ from server.services.backtest import run_backtest
 from server.services.district_indicators import district_indicators
 from server.services.evaluation import evaluate_districts
 from server.services.level_data import policy_data
-from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
+from server.store.catalogue import (
+    MeasureRecord,
+    RegionRecord,
+    replace_catchments,
+    upsert_measures,
+    upsert_regions,
+)
 from server.store.models import Assessment, Region
 from server.store.models import Ruleset as RulesetRow
 from server.store.vintages import append_vintage
@@ -203,3 +209,59 @@ def test_backtests_of_an_area_policy_replay_the_areas(session: Session, store: d
         assert_allclose(known.evaluation.indicators[name].estimate[:, 6:],
                         plain.evaluation.indicators[name].estimate[:, 6:], rtol=1e-12,
                         equal_nan=True)
+
+
+WW_POLICY = """\
+name: ww-test
+version: "1"
+level: {level}
+tiers:
+  - {{name: Quiet, staff: s0, public: p0}}
+  - {{name: Loud, staff: s1, public: p1}}
+indicators:
+  ww_trend: {{label: wastewater, params: {{window: 15}}}}
+criteria:
+  - {{id: ww, indicator: ww_trend, enter: [5], exit: [2]}}
+"""
+
+
+def test_area_wastewater_is_weighted_by_the_people_each_plant_serves(
+    session: Session, store: dict
+) -> None:
+    # P0 serves all of D0 (100 000) and half of D1 (2 000 of 4 000); P1 the other half of D1,
+    # all of D2 (60 000) and a quarter of D3 (10 000). Area A0 = {D0, D1} is served 102 000 by
+    # P0 and 2 000 by P1, A1 = {D2, D3} 70 000 by P1 alone. D0 reads P0's trend alone, D2 P1's,
+    # so A0's trend is (102 000 x D0 + 2 000 x D2) / 104 000 and A1's is D2's.
+    upsert_regions(session=session, records=[
+        RegionRecord(code=p, name=f"Works {p}", level="plant", parent=None, population=n)
+        for p, n in (("P0", 102_000), ("P1", 72_000))])
+    upsert_measures(session=session, records=[
+        MeasureRecord(name="ww_concentration", unit="gc/l", kind="concentration",
+                      aggregation="mean"),
+        MeasureRecord(name="ww_flow", unit="m3", kind="level", aggregation="sum")])
+    replace_catchments(session=session, shares=[("P0", "D0", 1.0), ("P0", "D1", 0.5),
+                                                ("P1", "D1", 0.5), ("P1", "D2", 1.0),
+                                                ("P1", "D3", 0.25)])
+    rng = np.random.default_rng(7)
+    t = np.arange(0, DAYS, 2)
+    conc = {"P0": 1e5 * np.exp(0.05 * t + rng.normal(0, 0.1, t.size)),
+            "P1": 4e4 * np.exp(-0.02 * t + rng.normal(0, 0.1, t.size))}
+    rows = [(p, m, FIRST + timedelta(days=int(d)), v)
+            for p in ("P0", "P1") for d, c in zip(t, conc[p], strict=True)
+            for m, v in (("ww_concentration", float(c)), ("ww_flow", 20_000.0))]
+    end = FIRST + timedelta(days=DAYS - 1)
+    append_vintage(session=session, feed="ww", received_at=_arrival(end), checksum="w" * 64,
+                   rows=pd.DataFrame(rows, columns=["region", "measure", "ref_date", "value"]))
+    series = {}
+    for level in ("districts", "areas"):
+        rs = parse_ruleset(WW_POLICY.format(level=level))
+        data = policy_data(session=session, ruleset=rs, start=FIRST, end=end,
+                           as_of=_arrival(end))
+        series[level] = dict(zip(data.regions,
+                                 district_indicators(data, rs)["ww_trend"].estimate, strict=True))
+    d0, d2 = series["districts"]["D0"], series["districts"]["D2"]
+    both = np.isfinite(d0) & np.isfinite(d2)
+    assert both.sum() >= 10
+    assert_allclose(series["areas"]["A0"][both], (102_000 * d0 + 2_000 * d2)[both] / 104_000,
+                    rtol=1e-12)
+    assert_allclose(series["areas"]["A1"][both], d2[both], rtol=1e-12)
