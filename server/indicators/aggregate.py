@@ -2,7 +2,7 @@
 
 Pure and vectorised: a *membership matrix* ``(groups, members)`` says which member regions
 (districts, or treatment plants) make up each group (an area, the county); every aggregate is
-one matrix product per measure.
+one sparse matrix product per measure (each member lies under few groups).
 
 - **Counts** (cases, tests, admissions, beds in use, staffed beds, GP consultations and their
   denominators) sum: :func:`sum_counts`. Rates are never averaged: an indicator of a group is
@@ -30,6 +30,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy import sparse
 
 from server.indicators._arrays import as_regions_days
 
@@ -123,10 +124,11 @@ def sum_counts(
     if w.shape != (v.shape[0],) or not np.all(np.isfinite(w)) or np.any(w < 0):
         raise ValueError(f"population: expected {v.shape[0]} finite non-negative numbers")
     present = np.isfinite(v)
-    weighted = m * w[None, :]
-    total = weighted.sum(axis=1)[:, None]
+    weighted = sparse.csr_array(m * w[None, :])
+    total = np.asarray(weighted.sum(axis=1)).reshape(-1, 1)
     covered = weighted @ present.astype(np.float64)
-    raw = m @ np.where(present, v, 0.0)
+    ms = sparse.csr_array(m)
+    raw = ms @ np.where(present, v, 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         coverage = np.where(total > 0, covered / total, np.nan)
         scaled = np.where(covered > 0, raw * total / covered, np.nan)
@@ -137,7 +139,7 @@ def sum_counts(
     out = np.where(exact, raw, np.where(ok, scaled, np.nan))
     return Aggregate(
         values=out, coverage=coverage,
-        reporting=np.rint(m @ present.astype(np.float64)).astype(np.int64),
+        reporting=np.rint(ms @ present.astype(np.float64)).astype(np.int64),
         members=np.rint(m.sum(axis=1)).astype(np.int64),
     )
 
@@ -156,8 +158,9 @@ def weighted_mean(
     w = _check(weights, v.shape[0], "weights")
     share = _check_share(max_missing)
     present = np.isfinite(v)
-    num = w @ np.where(present, v, 0.0)
-    den = w @ present.astype(np.float64)
+    ws = sparse.csr_array(w)
+    num = ws @ np.where(present, v, 0.0)
+    den = ws @ present.astype(np.float64)
     total = w.sum(axis=1)[:, None]
     with np.errstate(invalid="ignore", divide="ignore"):
         coverage = np.where(total > 0, den / total, np.nan)
@@ -165,7 +168,7 @@ def weighted_mean(
     ok = (den > 0) & (coverage >= 1.0 - share - _TOLERANCE)
     return Aggregate(
         values=np.where(ok, mean, np.nan), coverage=coverage,
-        reporting=np.rint((w > 0).astype(np.float64) @ present.astype(np.float64)).astype(
-            np.int64),
+        reporting=np.rint(sparse.csr_array((w > 0).astype(np.float64))
+                          @ present.astype(np.float64)).astype(np.int64),
         members=np.rint((w > 0).sum(axis=1)).astype(np.int64),
     )

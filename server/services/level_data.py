@@ -25,6 +25,7 @@ from datetime import date, datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy import sparse
 from sqlalchemy.orm import Session
 
 from rules import Evaluation, FieldError, Ruleset, evaluate
@@ -50,7 +51,7 @@ def _share_over(mask: NDArray[np.bool_], weights: NDArray[np.float64],
     """(groups, days): True where members holding more than ``limit`` of the weight are
     flagged in ``mask`` (members, days)."""
     total = weights.sum(axis=1)[:, None]
-    flagged = weights @ mask.astype(np.float64)
+    flagged = sparse.csr_array(weights) @ mask.astype(np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(total > 0, flagged / total, 0.0) > limit + 1e-9
 
