@@ -349,8 +349,9 @@ def evaluate_command(
         typer.Option(help="Data cutoff, ISO time stamp (default: the newest vintage)."),
     ] = None,
 ) -> None:
-    """Evaluate the active ruleset for every district on the data as known at the cutoff and
-    store the assessments (a second run with the same cutoff reuses them)."""
+    """Evaluate the active ruleset for the regions of its level (districts, areas or the
+    county) on the data as known at the cutoff and store the assessments (a second run with
+    the same cutoff reuses them)."""
     from server.cli.feeds import configured_catalogue
     from server.services.database import Database
     from server.services.evaluation import active_ruleset, evaluate_districts

@@ -180,7 +180,8 @@ def evaluate_districts(
     *, session: Session, ruleset_row: RulesetRow, cutoff: datetime | None = None,
     notify: NotifyConfig | None = None, stale_after: Mapping[str, timedelta] | None = None,
 ) -> EvaluationRun | None:
-    """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff``; store results.
+    """Evaluate ``ruleset_row`` over all stored history as known at ``cutoff`` for the regions
+    of its level (:func:`server.services.level_data.evaluate_policy`); store results.
 
     Records the run and stores only the assessments that changed (module docstring). With
     ``notify``, the run sends the newest day's tier changes and starting prepare signals to its
