@@ -10,7 +10,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 from fastapi.templating import Jinja2Templates
 
-from server.services.area_tiers import region_tiers
+from server.services.area_tiers import above_district, region_tiers
 from server.services.capacity_pages import area_capacity, district_forecast
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
@@ -108,6 +108,7 @@ def district(
         "forecast": forecast,
         "forecast_charts": [figure_json(admissions_fan_figure(f)) for f in forecast.fans]
         if forecast else [],
+        "above": above_district(session=session, code=dossier.code),
     })
 
 

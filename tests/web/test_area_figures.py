@@ -59,3 +59,37 @@ def test_the_area_page_shows_the_tier_of_an_area_level_policy(
     assert re.search(r"Wards (clear|busy|stretched|overrun)", tier)
     german = _section(demo_app_client.get("/staff/areas/R2/capacity?lang=de").text, "tier-h")
     assert "Stufe des Gebiets" in german and "Stationen" in german
+
+
+def test_the_district_page_shows_its_areas_tier_beside_its_own(
+    demo_app_client: TestClient, tmp_path: Path,
+) -> None:
+    # Several active policies at once (a district policy and the area policy) are simulated by
+    # activating a copy of the county policy and marking the area policy active again.
+    from sqlalchemy import update
+
+    from server.store.models import Ruleset as RulesetRow
+
+    assert login(demo_app_client, ROLE_USER["analyst"]) == 303
+    county = tmp_path / "county-copy.yaml"
+    county.write_text((HOSPITAL.parent / "county.yaml").read_text().replace(
+        "name: county-demo", "name: county-copy", 1))
+    db = demo_app_client.app.state.database  # type: ignore[attr-defined]
+    with db.transaction() as session:
+        store_ruleset(session=session, path=HOSPITAL, author="test")
+        store_ruleset(session=session, path=county, author="test", activate=True)
+        session.execute(update(RulesetRow).where(RulesetRow.name == "hospital-demo")
+                        .values(status="active"))
+    with db.transaction() as session:  # the area policy evaluated (idempotent if it was)
+        from server.services.evaluation import evaluate_districts
+
+        row = session.query(RulesetRow).filter_by(name="hospital-demo").one()
+        evaluate_districts(session=session, ruleset_row=row)
+    html = demo_app_client.get("/staff/district/D06").text
+    found = re.search(r'<ul class="area-tiers">(.*?)</ul>', html, re.S)
+    assert found is not None
+    line = found.group(1)
+    assert "Astrel Downs, under the policy set for it:" in line
+    assert re.search(r"Wards (clear|busy|stretched|overrun)", line)
+    assert 'href="/staff/areas/R2/capacity"' in line
+    assert NOTE in _section(html, "c-icu")  # the district policy's own criteria as before
