@@ -513,8 +513,8 @@ def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | 
         node,
         path,
         required=("id", "indicator"),
-        optional=("statistic", "for", "count_by", "clear_after_days", "below_tier", "message")
-        + COMPARISONS,
+        optional=("statistic", "for", "count_by", "clear_after_days", "below_tier", "message",
+                  "translations") + COMPARISONS,
     )
     if m is None or "id" not in m or "indicator" not in m:
         return None
@@ -539,19 +539,30 @@ def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | 
         kwargs["below_tier"] = r.integer(m["below_tier"], path + ("below_tier",), minimum=1)
     if "message" in m:
         kwargs["message"] = r.text(m["message"], path + ("message",))
+    if "translations" in m:  # {de: "...", ...}: the message per language
+        kwargs["translations"] = _read_translations(r, m["translations"], path)
     if comp is None or any(v is None for v in kwargs.values()):
         return None
     kwargs["op"], kwargs["value"] = comp
     return r.build(node, path, PrepareSignal, **kwargs)
 
 
+def _read_translations(r: NodeReader, node: yaml.Node, path: Path) -> tuple[tuple[str, str], ...]:
+    """``translations: {de: "...", fr-CH: "..."}`` of one text (an empty text is kept for the
+    model's check, which names the language)."""
+    tm = r.mapping(node, path + ("translations",), free_keys=True) or {}
+    return tuple((lang, r.text(v, path + ("translations", lang)) or "") for lang, v in tm.items())
+
+
 def _read_scenario(r: NodeReader, node: yaml.Node, path: Path) -> Scenario | None:
     m = r.mapping(node, path, required=("name", "label"),
-                  optional=("growth", "change", "within_days"))
+                  optional=("growth", "change", "within_days", "translations"))
     if m is None or "name" not in m or "label" not in m:
         return None
     kwargs: dict[str, Any] = {"name": r.text(m["name"], path + ("name",)),
                               "label": r.text(m["label"], path + ("label",))}
+    if "translations" in m:  # {de: "bei gleichem Trend", ...}: the label per language
+        kwargs["translations"] = _read_translations(r, m["translations"], path)
     if ("growth" in m) == ("change" in m):
         r.error(node, path, "a scenario needs exactly one of 'growth' (current, or a daily rate "
                 "reached within_days) and 'change' (a factor reached within_days)")

@@ -29,12 +29,32 @@ class _Indicator(Protocol):
     def label_in(self, lang: str | None) -> str: ...
 
 
+class _Scenario(Protocol):
+    @property
+    def label(self) -> str: ...
+
+    def label_in(self, lang: str | None) -> str: ...
+
+
+class _Signal(Protocol):
+    @property
+    def message(self) -> str: ...
+
+    def message_in(self, lang: str | None) -> str: ...
+
+
 class _Policy(Protocol):  # rules.Ruleset (web does not import rules)
     @property
     def tiers(self) -> tuple[_Tier, ...]: ...
 
     @property
     def indicators(self) -> tuple[_Indicator, ...]: ...
+
+    @property
+    def scenarios(self) -> tuple[_Scenario, ...]: ...
+
+    @property
+    def prepare(self) -> tuple[_Signal, ...]: ...
 
 __all__ = ["N_", "PATTERNS", "WORDS", "policy_words", "translate_sentence"]
 
@@ -56,8 +76,18 @@ WORDS: tuple[str, ...] = (
     # a criterion's status (rules/explanation.py: _REASONS)
     N_("missing"), N_("stale"), N_("nowcast excluded"), N_("count below minimum"), N_("invalid"),
     N_("no baseline"),
-    # feed kinds (feeds.yaml)
-    N_("file"), N_("push"),
+    # feed kinds (feeds.yaml) and a feed without a schedule (server/services/feeds.py)
+    N_("file"), N_("push"), N_("http"), N_("manual"),
+    # roles (server/services/auth.py: ROLES)
+    N_("viewer"), N_("analyst"), N_("approver"), N_("admin"),
+    # a policy version's status (server/services/evaluation.py)
+    N_("active"), N_("draft"), N_("retired"),
+    # a backtest's state (server/services/backtest_jobs.py)
+    N_("queued"), N_("running"), N_("done"), N_("failed"),
+    # the timing rows and combination of the policy page (server/services/policies.py)
+    N_("Days to confirm a rise"), N_("Days to confirm a fall"), N_("Minimum days in a tier"),
+    N_("Most tiers down at once"), N_("Days until a decision takes effect"), N_("no limit"),
+    N_("the highest criterion level"), N_("a weighted score of criterion levels"),
 )
 
 
@@ -83,13 +113,72 @@ PATTERNS: tuple[tuple[str, str], ...] = (
     (rf"over the enter threshold (?P<value>{_VALUE}) for (?P<k>\d+) of (?P<n>\d+) days",
      N_("over the enter threshold %(value)s for %(k)s of %(n)s days")),
     (rf"lower bound under (?P<value>{_VALUE})", N_("lower bound under %(value)s")),
-    (r"inactive \(count (?P<count>\d+) under the minimum (?P<minimum>\d+)\)",
+    (r"inactive \(count (?P<count>[\d.]+) under the minimum (?P<minimum>[\d.]+)\)",
      N_("inactive (count %(count)s under the minimum %(minimum)s)")),
     (rf"\(decided on (?P<day>{_DAY})\)", N_("(decided on %(day)s)")),
     (r"Nowcast: (?P<label>[^.;]+?) rests on a nowcast of (?P<n>\d+) incomplete days "
      r"\(the district's own reporting delays\)\.",
      N_("Nowcast: %(label)s rests on a nowcast of %(n)s incomplete days (the district's own "
         "reporting delays).")),
+    (r"Nowcast: (?P<label>[^.;]+?) rests on a nowcast of (?P<n>\d+) incomplete days "
+     r"\(reporting delays pooled over all districts\)\.",
+     N_("Nowcast: %(label)s rests on a nowcast of %(n)s incomplete days (reporting delays "
+        "pooled over all districts).")),
+    (r"Nowcast: (?P<label>[^.;]+?) rests on a nowcast of (?P<n>\d+) incomplete days "
+     r"\(reporting delays pooled over (?P<area>[^)]+)\)\.",
+     N_("Nowcast: %(label)s rests on a nowcast of %(n)s incomplete days (reporting delays "
+        "pooled over %(area)s).")),
+    (r"\(reporting delays pooled over all districts\)",
+     N_("(reporting delays pooled over all districts)")),
+    (r"\(reporting delays pooled over (?P<area>[^)]+)\)",
+     N_("(reporting delays pooled over %(area)s)")),
+    (r"\(the district's own reporting delays\)", N_("(the district's own reporting delays)")),
+    (r"^reporting delays pooled over all districts$",
+     N_("reporting delays pooled over all districts")),
+    (r"^reporting delays pooled over (?P<area>.+)$", N_("reporting delays pooled over %(area)s")),
+    (r"^the district's own reporting delays$", N_("the district's own reporting delays")),
+    # the nowcast accuracy line of the district page (server/services/backtest.py)
+    (r"^nowcast of the last 7 days: median error (?P<error>[\d.]+) % \(unadjusted "
+     r"(?P<unadjusted>[\d.]+) %\), 95 % interval covered (?P<coverage>\d+) % of "
+     r"(?P<n>\d+) mornings$",
+     N_("nowcast of the last 7 days: median error %(error)s %% (unadjusted %(unadjusted)s %%), "
+        "95 %% interval covered %(coverage)s %% of %(n)s mornings")),
+    (r"^nowcast of the last 7 days: no morning needed one$",
+     N_("nowcast of the last 7 days: no morning needed one")),
+    # changes since the previous day (server/services/morning.py)
+    (r"^recommended tier rose from (?P<old>.+?) to (?P<new>.+)$",
+     N_("recommended tier rose from %(old)s to %(new)s")),
+    (r"^recommended tier fell from (?P<old>.+?) to (?P<new>.+)$",
+     N_("recommended tier fell from %(old)s to %(new)s")),
+    (r"^prepare signal (?P<signal>\S+) fired$", N_("prepare signal %(signal)s fired")),
+    (r"^official tier published: (?P<old>.+?) to (?P<new>.+)$",
+     N_("official tier published: %(old)s to %(new)s")),
+    (r"^official tier first published: (?P<new>.+)$",
+     N_("official tier first published: %(new)s")),
+    (r"^overridden to (?P<tier>[^(]+?) \((?P<n>\d+)\)", N_("overridden to %(tier)s (%(n)s)")),
+    (r" \(recommended: ", N_(" (recommended: ")),
+    (rf", in force from (?P<day>{_DAY}), not yet published: ",
+     N_(", in force from %(day)s, not yet published: ")),
+    (rf", in force from (?P<day>{_DAY}), published: ", N_(", in force from %(day)s, published: ")),
+    # thresholds, notes and gates of the policy page (server/services/policies.py)
+    (r"\(leave (?P<rest>[<>] [^)]+)\)", N_("(leave %(rest)s)")),
+    (r"^inactive below (?P<n>[\d.]+) events$", N_("inactive below %(n)s events")),
+    (r"^while (?P<source>\S+) is at tier (?P<n>\d+) or above$",
+     N_("while %(source)s is at tier %(n)s or above")),
+    (r"^the highest tier at least (?P<m>\d+) criteria reach$",
+     N_("the highest tier at least %(m)s criteria reach")),
+    (r"^(?P<head>[\w-]+: .+?) at least (?P<value>[\d.]+)$", N_("%(head)s at least %(value)s")),
+    (r"^(?P<head>[\w-]+: .+?) at most (?P<value>[\d.]+)$", N_("%(head)s at most %(value)s")),
+    (r"^(?P<head>[\w-]+: .+?) must be known$", N_("%(head)s must be known")),
+    # a feed's schedule (server/services/feeds.py: _schedule_text)
+    (r"^every (?P<span>\d+ (?:d|h|min|s)) \((?P<zone>[^)]+)\)$", N_("every %(span)s (%(zone)s)")),
+    # a tier change on the effects page (server/services/event_effects.py)
+    (r"^tier (?P<old>\S+) -> (?P<new>\d+) \(confirmed\): ",
+     N_("tier %(old)s → %(new)s (confirmed): ")),
+    (r"^tier (?P<old>\S+) -> (?P<new>\d+) \(overridden\): ",
+     N_("tier %(old)s → %(new)s (overridden): ")),
+    (r"^tier (?P<old>\S+) -> (?P<new>\d+) \(recorded\): ",
+     N_("tier %(old)s → %(new)s (recorded): ")),
     (rf"(?<=[\d%] )under (?P<value>{_VALUE})", N_("under %(value)s")),
     (rf"(?<=[\d%] )over (?P<value>{_VALUE})", N_("over %(value)s")),
     (r"per 100 000", N_("per 100 000")),
@@ -103,12 +192,16 @@ _ISO_DAY = re.compile(r"\b(\d{4})-(\d{2})-(\d{2})\b")
 
 
 def policy_words(ruleset: _Policy | None, lang: str) -> dict[str, str]:
-    """The active policy's tier names and indicator labels in ``lang`` (its ``translations``),
-    keyed by the policy's own text; empty for English or a policy without translations."""
+    """The active policy's tier names, indicator labels, scenario labels and prepare-signal
+    messages in ``lang`` (their ``translations``), keyed by the policy's own text; empty for
+    English or a policy without translations. A message may hold ``{reading}`` (the indicator's
+    value, filled in by the engine): :func:`translate_sentence` matches it as a placeholder."""
     if ruleset is None or lang == "en":
         return {}
     words = {t.name: t.name_in(lang) for t in ruleset.tiers}
     words.update({i.label: i.label_in(lang) for i in ruleset.indicators})
+    words.update({s.label: s.label_in(lang) for s in ruleset.scenarios})
+    words.update({s.message: s.message_in(lang) for s in ruleset.prepare if s.message})
     return {k: v for k, v in words.items() if k != v}
 
 
@@ -136,6 +229,11 @@ def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
         text = _NUMBER.sub(",", text)
         text = _ISO_DAY.sub(r"\3.\2.\1", text)
     if words:
+        for name in [n for n in words if "{reading}" in n]:
+            before, _, after = name.partition("{reading}")
+            rx_msg = re.compile(re.escape(before) + r"(?P<reading>.+?)" + re.escape(after))
+            german = words[name]
+            text = rx_msg.sub(lambda m, g=german: g.replace("{reading}", m.group("reading")), text)
         names = sorted(words, key=len, reverse=True)
         rx = re.compile(r"(?<!\w)(?:" + "|".join(re.escape(n) for n in names) + r")(?!\w)")
         table = words
