@@ -20,7 +20,7 @@ from server.services.ruleset_cache import parsed
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
-from web.words import policy_words, translate_sentence
+from web.words import UNITS, measure_text, policy_words, translate_sentence
 
 TEMPLATES = Path(__file__).with_name("templates")
 
@@ -115,6 +115,12 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     # a tier name or indicator label of the active policy in the page's language
     env.filters["pw"] = jinja2.pass_context(
         lambda ctx, text: (ctx.get("policy_words") or {}).get(text, text))
+    # a measure of the store (``MeasureLabel`` or a name) in the page's language (web/words.py)
+    env.filters["measure_label"] = lambda m: measure_text(
+        getattr(m, "name", m), getattr(m, "label", m), catalogs.gettext, current_language.get())
+    env.filters["measure_description"] = lambda m: measure_text(
+        m.name, m.description or m.label, catalogs.gettext, current_language.get(), which=1)
+    env.filters["unit"] = lambda u: catalogs.gettext(UNITS[u]) if u in UNITS else u
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url

@@ -56,7 +56,8 @@ class _Policy(Protocol):  # rules.Ruleset (web does not import rules)
     @property
     def prepare(self) -> tuple[_Signal, ...]: ...
 
-__all__ = ["N_", "PATTERNS", "WORDS", "policy_words", "translate_sentence"]
+__all__ = ["MEASURES", "N_", "PATHOGENS", "PATTERNS", "UNITS", "WORDS", "measure_text",
+           "policy_words", "translate_sentence"]
 
 
 def N_(message: str) -> str:  # noqa: N802 - the gettext convention for "mark, do not translate"
@@ -89,6 +90,52 @@ WORDS: tuple[str, ...] = (
     N_("Most tiers down at once"), N_("Days until a decision takes effect"), N_("no limit"),
     N_("the highest criterion level"), N_("a weighted score of criterion levels"),
 )
+
+
+# Measures in the store have an English name, unit and description (the feed file's words). A
+# page in another language names a measure by its base name (``cases`` of ``cases.influenza``)
+# through the catalog, the pathogen in brackets; a measure the catalog does not know keeps the
+# store's words. (label, description) per base name.
+MEASURES: dict[str, tuple[str, str]] = {
+    "cases": (N_("Confirmed cases"), N_("Confirmed cases by test date")),
+    "tests": (N_("Tests performed"), N_("Tests performed by test date")),
+    "positives": (N_("Positive tests"), N_("Positive tests by test date")),
+    "hosp_admissions": (N_("Hospital admissions"),
+                        N_("Hospital admissions with the infection by admission date")),
+    "icu_occupied": (N_("Patients in intensive care"),
+                     N_("Patients with the infection in intensive care at the daily census")),
+    "icu_staffed": (N_("Staffed intensive-care beds"),
+                    N_("Staffed adult intensive-care beds at the daily census")),
+    "ww_concentration": (N_("Viral RNA in wastewater"),
+                         N_("Viral RNA in 24-hour composite influent samples, per plant")),
+    "ww_flow": (N_("Influent flow"),
+                N_("Influent flow over the 24 hours of the sample, per plant")),
+    "ww_marker": (N_("Faecal marker virus"),
+                  N_("Faecal marker virus in the same sample, to normalise for dilution")),
+    "gp_ari": (N_("GP consultations for acute respiratory illness"),
+               N_("GP consultations for acute respiratory illness")),
+}
+PATHOGENS: dict[str, str] = {"influenza": N_("influenza"), "rsv": N_("RSV"),
+                             "covid": N_("COVID-19")}
+UNITS: dict[str, str] = {
+    "cases": N_("cases"), "tests": N_("tests"), "admissions": N_("admissions"),
+    "patients": N_("patients"), "beds": N_("beds"), "consultations": N_("consultations"),
+    "gene copies/L": N_("gene copies/L"), "copies/L": N_("copies/L"), "m3/day": N_("m3/day"),
+}
+
+
+def measure_text(name: str, fallback: str, gettext: Callable[[str], str], lang: str,
+                 *, which: int = 0) -> str:
+    """Measure ``name``'s label (``which=0``) or description (1) in ``lang``: from the catalog
+    by its base name, ``" (pathogen)"`` added; ``fallback`` (the store's words) in English or
+    for a measure the catalog does not know."""
+    base, _, pathogen = name.partition(".")
+    if lang == "en" or base not in MEASURES:
+        return fallback
+    text = gettext(MEASURES[base][which])
+    if pathogen:
+        text += f" ({gettext(PATHOGENS.get(pathogen, pathogen))})"
+    return text
 
 
 # Fixed patterns of the engine's sentences (rules/explanation.py) and of the explanation's counter
