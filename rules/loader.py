@@ -234,24 +234,32 @@ def _read_public_texts(
 def _read_tier_texts(
     r: NodeReader, node: yaml.Node, path: Path
 ) -> tuple[tuple[str, TierText], ...] | None:
-    """``translations: {de: {name: ..., public: ..., measures: [...], advice: ...}, ...}``."""
+    """``translations: {de: {name, public, measures: [...], advice, staff}, ...}``."""
     m = r.mapping(node, path, free_keys=True)
     if m is None:
         return None
     out: list[tuple[str, TierText] | None] = []
     for lang, item in m.items():
         t = r.mapping(item, path + (lang,), required=("name",),
-                      optional=("public", "measures", "advice"))
+                      optional=("public", "measures", "advice", "staff"))
         if t is None or "name" not in t:
             out.append(None)
             continue
         name = r.text(t["name"], path + (lang, "name"))
         public = r.text(t["public"], path + (lang, "public")) if "public" in t else ""
+        if "staff" in t:
+            extra_staff = r.text(t["staff"], path + (lang, "staff"))
+            if extra_staff is None:
+                out.append(None)
+                continue
+        else:
+            extra_staff = ""
         extra = _read_public_texts(r, t, path + (lang,))
         if name is None or public is None or extra is None:
             out.append(None)
             continue
-        text = r.build(item, path + (lang,), TierText, name=name, public=public, **extra)
+        text = r.build(item, path + (lang,), TierText, name=name, public=public,
+                       staff=extra_staff, **extra)
         out.append(None if text is None else (lang, text))
     return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 

@@ -138,15 +138,21 @@ class Tier:
         text = self._text(lang)
         return text.advice if text is not None and text.advice else self.advice
 
+    def staff_in(self, lang: str | None) -> str:
+        """The staff guidance in ``lang`` (the default text without a translation)."""
+        text = self._text(lang)
+        return text.staff if text is not None and text.staff else self.staff
+
 
 @dataclass(frozen=True, kw_only=True)
 class TierText:
-    """A tier's name and public texts in one language."""
+    """A tier's name, public texts and staff guidance in one language."""
 
     name: str
     public: str = ""
     measures: tuple[str, ...] = ()
     advice: str = ""
+    staff: str = ""
 
     def __post_init__(self) -> None:
         if not self.name.strip():

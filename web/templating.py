@@ -17,6 +17,7 @@ from fastapi.templating import Jinja2Templates
 from server.config import Settings
 from server.services.evaluation import active_ruleset
 from server.services.ruleset_cache import parsed
+from web.chart_words import translate_figure
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
@@ -121,6 +122,9 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.filters["measure_description"] = lambda m: measure_text(
         m.name, m.description or m.label, catalogs.gettext, current_language.get(), which=1)
     env.filters["unit"] = lambda u: catalogs.gettext(UNITS[u]) if u in UNITS else u
+    # a chart's legend, titles and tick labels in the page's language (web/chart_words.py)
+    env.filters["figure"] = jinja2.pass_context(lambda ctx, fig: translate_figure(
+        fig, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url

@@ -19,6 +19,16 @@ class _Tier(Protocol):
     @property
     def name(self) -> str: ...
 
+    @property
+    def public(self) -> str: ...
+
+    @property
+    def staff(self) -> str: ...
+
+    def public_in(self, lang: str | None) -> str: ...
+
+    def staff_in(self, lang: str | None) -> str: ...
+
     def name_in(self, lang: str | None) -> str: ...
 
 
@@ -246,10 +256,13 @@ def policy_words(ruleset: _Policy | None, lang: str) -> dict[str, str]:
     if ruleset is None or lang == "en":
         return {}
     words = {t.name: t.name_in(lang) for t in ruleset.tiers}
+    for t in ruleset.tiers:  # the policy page's staff guidance and public text
+        words[t.public.strip()] = t.public_in(lang).strip()
+        words[t.staff.strip()] = t.staff_in(lang).strip()
     words.update({i.label: i.label_in(lang) for i in ruleset.indicators})
     words.update({s.label: s.label_in(lang) for s in ruleset.scenarios})
     words.update({s.message: s.message_in(lang) for s in ruleset.prepare if s.message})
-    return {k: v for k, v in words.items() if k != v}
+    return {k: v for k, v in words.items() if k and v and k != v}
 
 
 def _filler(template: str) -> Callable[[re.Match[str]], str]:
@@ -282,7 +295,7 @@ def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
             german = words[name]
             text = rx_msg.sub(lambda m, g=german: g.replace("{reading}", m.group("reading")), text)
         names = sorted(words, key=len, reverse=True)
-        rx = re.compile(r"(?<!\w)(?:" + "|".join(re.escape(n) for n in names) + r")(?!\w)")
+        rx = re.compile(r"(?<![\w-])(?:" + "|".join(re.escape(n) for n in names) + r")(?![\w-])")
         table = words
 
         def swap(m: re.Match[str]) -> str:
