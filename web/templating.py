@@ -113,6 +113,9 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     env.filters["word"] = catalogs.gettext  # Python-built words, web/words.py
     env.filters["sentence"] = jinja2.pass_context(lambda ctx, text: translate_sentence(
         text, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
+    # why a feed row was rejected, its values quoted as sent (web/words.py)
+    env.filters["reason"] = lambda text: translate_sentence(
+        text, catalogs.gettext, current_language.get(), numbers=False)
     # a tier name or indicator label of the active policy in the page's language
     env.filters["pw"] = jinja2.pass_context(
         lambda ctx, text: (ctx.get("policy_words") or {}).get(text, text))

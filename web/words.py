@@ -169,6 +169,56 @@ PATTERNS: tuple[tuple[str, str], ...] = (
      N_("under the exit threshold %(value)s for %(days)s days")),
     (rf"over the enter threshold (?P<value>{_VALUE}) for (?P<k>\d+) of (?P<n>\d+) days",
      N_("over the enter threshold %(value)s for %(k)s of %(n)s days")),
+    # the rest of the engine's phrases (rules/explanation.py: _describe, _held, explain)
+    (r"Held at (?P<tier>[^:;]+?) \((?P<n>\d+)\):", N_("Held at %(tier)s (%(n)s):")),
+    (r"(?P<k>\d+) of (?P<n>\d+) confirmation days so far for (?P<tier>[^:;()]+?) "
+     r"\((?P<m>\d+)\)", N_("%(k)s of %(n)s confirmation days so far for %(tier)s (%(m)s)")),
+    (r"(?P<k>\d+) of (?P<n>\d+) release days so far", N_("%(k)s of %(n)s release days so far")),
+    (r"(?P<k>\d+) of (?P<n>\d+) minimum days in tier \((?P<r>\d+) of (?P<r2>\d+) release days "
+     r"met\)", N_("%(k)s of %(n)s minimum days in tier (%(r)s of %(r2)s release days met)")),
+    (rf"upper bound held above the exit threshold (?P<value>{_VALUE})",
+     N_("upper bound held above the exit threshold %(value)s")),
+    (rf"lower bound held below the exit threshold (?P<value>{_VALUE})",
+     N_("lower bound held below the exit threshold %(value)s")),
+    (rf"held above the exit threshold (?P<value>{_VALUE})",
+     N_("held above the exit threshold %(value)s")),
+    (rf"held below the exit threshold (?P<value>{_VALUE})",
+     N_("held below the exit threshold %(value)s")),
+    (rf"over the enter threshold (?P<value>{_VALUE}) for (?P<days>\d+) days",
+     N_("over the enter threshold %(value)s for %(days)s days")),
+    (rf"over the enter threshold (?P<value>{_VALUE})", N_("over the enter threshold %(value)s")),
+    (rf"under the exit threshold (?P<value>{_VALUE})", N_("under the exit threshold %(value)s")),
+    (rf"under the (?P<tier>[^:;()]+?) exit threshold (?P<value>{_VALUE}) for (?P<days>\d+) days",
+     N_("under the %(tier)s exit threshold %(value)s for %(days)s days")),
+    (rf"under the (?P<tier>[^:;()]+?) exit threshold (?P<value>{_VALUE})",
+     N_("under the %(tier)s exit threshold %(value)s")),
+    (rf"over the (?P<tier>[^:;()]+?) enter threshold (?P<value>{_VALUE}) for (?P<days>\d+) days",
+     N_("over the %(tier)s enter threshold %(value)s for %(days)s days")),
+    (rf"over the (?P<tier>[^:;()]+?) enter threshold (?P<value>{_VALUE})",
+     N_("over the %(tier)s enter threshold %(value)s")),
+    (r", at its top tier ", N_(", at its top tier ")),
+    (rf"raise to (?P<tier>[^:;()]+? \(\d+\)) decided today, in force from (?P<day>{_DAY})",
+     N_("raise to %(tier)s decided today, in force from %(day)s")),
+    (rf"lowering to (?P<tier>[^:;()]+? \(\d+\)) decided today, in force from (?P<day>{_DAY})",
+     N_("lowering to %(tier)s decided today, in force from %(day)s")),
+    (rf"raise to (?P<tier>[^:;()]+? \(\d+\)) decided on (?P<k>{_DAY}), in force from "
+     rf"(?P<day>{_DAY})", N_("raise to %(tier)s decided on %(k)s, in force from %(day)s")),
+    (rf"lowering to (?P<tier>[^:;()]+? \(\d+\)) decided on (?P<k>{_DAY}), in force from "
+     rf"(?P<day>{_DAY})", N_("lowering to %(tier)s decided on %(k)s, in force from %(day)s")),
+    (rf"raise to (?P<tier>[^:;()]+? \(\d+\)) in force from (?P<day>{_DAY})",
+     N_("raise to %(tier)s in force from %(day)s")),
+    (rf"lowering to (?P<tier>[^:;()]+? \(\d+\)) in force from (?P<day>{_DAY})",
+     N_("lowering to %(tier)s in force from %(day)s")),
+    (r"candidate (?P<tier>[^:;()]+? \(\d+\))", N_("candidate %(tier)s")),
+    (r"\(at most (?P<n>\d+) step\(s\) down at once; ", N_("(at most %(n)s step(s) down at once; ")),
+    (rf"Insufficient data on (?P<day>{_DAY}):", N_("Insufficient data on %(day)s:")),
+    (r" Unknown: ", N_(" Unknown: ")),
+    (r" data (?P<days>[\d.]+) days old", N_(" data %(days)s days old")),
+    (r" still incomplete \(nowcasts not used\)", N_(" still incomplete (nowcasts not used)")),
+    (r" data invalid \(a stored value cannot be used\)",
+     N_(" data invalid (a stored value cannot be used)")),
+    (r" has no baseline yet \(not enough past seasons\)",
+     N_(" has no baseline yet (not enough past seasons)")),
     (rf"lower bound under (?P<value>{_VALUE})", N_("lower bound under %(value)s")),
     (r"inactive \(count (?P<count>[\d.]+) under the minimum (?P<minimum>[\d.]+)\)",
      N_("inactive (count %(count)s under the minimum %(minimum)s)")),
@@ -236,6 +286,19 @@ PATTERNS: tuple[tuple[str, str], ...] = (
      N_("tier %(old)s → %(new)s (overridden): ")),
     (r"^tier (?P<old>\S+) -> (?P<new>\d+) \(recorded\): ",
      N_("tier %(old)s → %(new)s (recorded): ")),
+    # the commonest reasons a feed row is rejected (server/feeds/validation.py), on the receipt
+    (r"^value (?P<value>'.*') is not a number$", N_("value %(value)s is not a number")),
+    (r"^unknown region code (?P<code>'.*')$", N_("unknown region code %(code)s")),
+    (r"^date (?P<value>'.*') is not a date \((?P<expect>[^)]*)\)$",
+     N_("date %(value)s is not a date (%(expect)s)")),
+    (r"^date (?P<value>'.*') is in the future$", N_("date %(value)s is in the future")),
+    (r"^value (?P<value>'.*') is outside the plausible range (?P<range>\[[^\]]*\])$",
+     N_("value %(value)s is outside the plausible range %(range)s")),
+    (r"^measure (?P<measure>'.*') is not carried by feed (?P<feed>'.*')$",
+     N_("measure %(measure)s is not carried by feed %(feed)s")),
+    (r"^a count cannot be negative: (?P<value>.*)$", N_("a count cannot be negative: %(value)s")),
+    (r"^a count must be a whole number: (?P<value>.*)$",
+     N_("a count must be a whole number: %(value)s")),
     (rf"(?<=[\d%] )under (?P<value>{_VALUE})", N_("under %(value)s")),
     (rf"(?<=[\d%] )over (?P<value>{_VALUE})", N_("over %(value)s")),
     (r"per 100 000", N_("per 100 000")),
@@ -272,11 +335,12 @@ def _filler(template: str) -> Callable[[re.Match[str]], str]:
 
 
 def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
-                       words: dict[str, str] | None = None) -> str:
+                       words: dict[str, str] | None = None, *, numbers: bool = True) -> str:
     """``text`` (an engine sentence or counter value) with its fixed English patterns in ``lang``.
 
     English and an empty text come back unchanged; in German decimal points between digits
-    become commas and ISO days ``dd.mm.yyyy`` (the form of the ``day`` filter). ``words`` (from
+    become commas and ISO days ``dd.mm.yyyy`` (the form of the ``day`` filter), unless
+    ``numbers`` is false (a rejected row's values as sent). ``words`` (from
     :func:`policy_words`) replaces the policy's tier names and labels, longest first."""
     if lang == "en" or not text:
         return text
@@ -285,7 +349,7 @@ def translate_sentence(text: str, gettext: Callable[[str], str], lang: str,
         if translated == message:
             continue
         text = pattern.sub(_filler(translated), text)
-    if lang == "de":
+    if lang == "de" and numbers:  # not in values quoted as sent (a rejected row)
         text = _NUMBER.sub(",", text)
         text = _ISO_DAY.sub(r"\3.\2.\1", text)
     if words:
