@@ -44,6 +44,7 @@ IndicatorCheck = Callable[[IndicatorSpec], None]
 _TOP_REQUIRED = ("name", "version", "tiers", "indicators", "criteria")
 _TOP_OPTIONAL = (
     "description",
+    "translations",
     "gates",
     "combination",
     "conditions",
@@ -108,6 +109,16 @@ def _read_root(
     name = r.text(top["name"], ("name",)) if "name" in top else None
     version = r.text(top["version"], ("version",)) if "version" in top else None
     desc = r.text(top["description"], ("description",)) if "description" in top else ""
+    desc_translations: tuple[tuple[str, str], ...] | None = ()
+    if "translations" in top:  # {de: {description: ...}}: the policy's own words per language
+        tm = r.mapping(top["translations"], ("translations",), free_keys=True) or {}
+        items = []
+        for lang, node in tm.items():
+            t = r.mapping(node, ("translations", lang), optional=("description",)) or {}
+            if "description" in t:
+                items.append((lang, r.text(t["description"], ("translations", lang,
+                                                              "description")) or ""))
+        desc_translations = tuple(items)
     tiers = _read_tiers(r, top["tiers"]) if "tiers" in top else None
     default_age = None
     if "freshness" in top:
@@ -159,6 +170,7 @@ def _read_root(
         name=name,
         version=version,
         description=desc,
+        description_translations=desc_translations,
         tiers=tiers,
         indicators=indicators,
         criteria=criteria,

@@ -66,6 +66,11 @@ class _Policy(Protocol):  # rules.Ruleset (web does not import rules)
     @property
     def prepare(self) -> tuple[_Signal, ...]: ...
 
+    @property
+    def description(self) -> str: ...
+
+    def description_in(self, lang: str | None) -> str: ...
+
 __all__ = ["MEASURES", "N_", "PATHOGENS", "PATTERNS", "UNITS", "WORDS", "measure_text",
            "policy_words", "translate_sentence"]
 
@@ -325,6 +330,7 @@ def policy_words(ruleset: _Policy | None, lang: str) -> dict[str, str]:
     words.update({i.label: i.label_in(lang) for i in ruleset.indicators})
     words.update({s.label: s.label_in(lang) for s in ruleset.scenarios})
     words.update({s.message: s.message_in(lang) for s in ruleset.prepare if s.message})
+    words[ruleset.description.strip()] = ruleset.description_in(lang).strip()
     return {k: v for k, v in words.items() if k and v and k != v}
 
 
