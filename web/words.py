@@ -104,6 +104,22 @@ WORDS: tuple[str, ...] = (
     N_("Days to confirm a rise"), N_("Days to confirm a fall"), N_("Minimum days in a tier"),
     N_("Most tiers down at once"), N_("Days until a decision takes effect"), N_("no limit"),
     N_("the highest criterion level"), N_("a weighted score of criterion levels"),
+    # the public data dictionary (server/services/public_data.py)
+    N_("text"), N_("integer"), N_("number"), N_("true/false"), N_("date (ISO 8601)"),
+    N_("date-time (ISO 8601, UTC)"),
+    N_("District code used by the health office."), N_("District name."),
+    N_("Area the district belongs to (may be empty)."),
+    N_("Published alert tier, 0 the lowest; empty when none is published."),
+    N_("Name of the tier in the policy."), N_("Day from which the tier is in force."),
+    N_("When the health authority published the tier."), N_("District code."),
+    N_("Day from which the new tier is in force."), N_("The new published tier."),
+    N_("Name of the new tier."),
+    N_("The published tier before the change; empty for the first one."),
+    N_("When the change was published."),
+    N_("Last day of the seven-day week (weeks end on the newest data day)."),
+    N_("Confirmed cases in the week by test date; '<N' when fewer than N (suppressed to protect "
+       "privacy); empty when a day is missing."),
+    N_("Cases per 100 000 residents; empty when the count is suppressed."),
 )
 
 
@@ -282,6 +298,11 @@ PATTERNS: tuple[tuple[str, str], ...] = (
     (r"^(?P<head>[\w-]+: .+?) at least (?P<value>[\d.]+)$", N_("%(head)s at least %(value)s")),
     (r"^(?P<head>[\w-]+: .+?) at most (?P<value>[\d.]+)$", N_("%(head)s at most %(value)s")),
     (r"^(?P<head>[\w-]+: .+?) must be known$", N_("%(head)s must be known")),
+    # the public data dictionary's provisional flag (server/services/public_data.py)
+    (r"^True while the week still contains days whose late reports are arriving \(the last "
+     r"(?P<days>\d+) days\): it will rise\.$",
+     N_("True while the week still contains days whose late reports are arriving (the last "
+        "%(days)s days): it will rise.")),
     # a feed's schedule (server/services/feeds.py: _schedule_text)
     (r"^every (?P<span>\d+ (?:d|h|min|s)) \((?P<zone>[^)]+)\)$", N_("every %(span)s (%(zone)s)")),
     # a tier change on the effects page (server/services/event_effects.py)
@@ -306,7 +327,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
      N_("a count must be a whole number: %(value)s")),
     (rf"(?<=[\d%] )under (?P<value>{_VALUE})", N_("under %(value)s")),
     (rf"(?<=[\d%] )over (?P<value>{_VALUE})", N_("over %(value)s")),
-    (r"per 100 000", N_("per 100 000")),
+    (r"per 100[ \u202f\u00a0]000", N_("per 100 000")),
     (r"^(?P<k>\d+) of (?P<n>\d+)$", N_("%(k)s of %(n)s")),
     (r"^(?P<days>\d+) \(minimum (?P<minimum>\d+)\)$", N_("%(days)s (minimum %(minimum)s)")),
     (r"Prepare:", N_("Prepare:")),
