@@ -36,7 +36,7 @@ from web.feeds_api import router as feeds_api_router
 from web.mapsvg import MapCache
 from web.security import SecurityHeaders
 from web.staff_feeds import router as staff_feeds_router
-from web.templating import make_templates
+from web.templating import local_time, make_templates  # noqa: F401 - local_time: older imports
 
 STATIC = Path(__file__).with_name("static")
 
