@@ -207,3 +207,24 @@ def test_users_policies_review_and_explanations_use_the_office_clock(client: Tes
         text = client.get(path, params={"lang": "de"}).text
         assert zone_times.search(text), path
         assert not re.search(r"\d{2}:\d{2} UTC\b", text), path
+
+
+def test_engine_sentences_of_held_and_lowered_days_in_german() -> None:
+    # sentences as rules/explanation.py writes them (held on confirmation days, a lowering with
+    # an inactive criterion of a fractional count), read through the shipped German catalog
+    from web.i18n import load_catalogs
+    from web.words import translate_sentence
+
+    gettext = load_catalogs().translations["de"].gettext
+    held = ("Held at Heightened (1): 4 of 5 confirmation days so far for High (2) (7-day "
+            "incidence 330 (230–471) per 100 000 over the enter threshold 150 for 4 days).")
+    assert translate_sentence(held, gettext, "de") == (
+        "Gehalten bei Heightened (1): bisher 4 von 5 Bestätigungstagen für High (2) (7-day "
+        "incidence 330 (230–471) je 100 000 seit 4 Tagen über der Eintrittsschwelle 150).")
+    lowered = ("Lowered from High (2) to Baseline (0) on 2026-12-03: 7-day incidence 19 (8–42) "
+               "per 100 000 inactive (count 11.5 under the minimum 20).")
+    assert translate_sentence(lowered, gettext, "de", {"High": "Hoch", "Baseline": "Grundstufe",
+                                                      "7-day incidence": "7-Tage-Inzidenz"}) == (
+        "Herabgestuft von Hoch (2) auf Grundstufe (0) am 03.12.2026: 7-Tage-Inzidenz 19 (8–42) "
+        "je 100 000 ausgesetzt (Fallzahl 11,5 unter dem Minimum 20).")
+    assert translate_sentence(held, gettext, "en") == held
