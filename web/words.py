@@ -293,6 +293,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
     (r"^inactive below (?P<n>[\d.]+) events$", N_("inactive below %(n)s events")),
     (r"^while (?P<source>\S+) is at tier (?P<n>\d+) or above$",
      N_("while %(source)s is at tier %(n)s or above")),
+    (r"^override (?P<id>[\w-]+)$", N_("override %(id)s")),
     (r"^the highest tier at least (?P<m>\d+) criteria reach$",
      N_("the highest tier at least %(m)s criteria reach")),
     (r"^(?P<head>[\w-]+: .+?) at least (?P<value>[\d.]+)$", N_("%(head)s at least %(value)s")),
