@@ -45,6 +45,7 @@ IndicatorCheck = Callable[[IndicatorSpec], None]
 _TOP_REQUIRED = ("name", "version", "tiers", "indicators", "criteria")
 _TOP_OPTIONAL = (
     "description",
+    "translations",
     "gates",
     "combination",
     "conditions",
@@ -111,6 +112,16 @@ def _read_root(
     version = r.text(top["version"], ("version",)) if "version" in top else None
     desc = r.text(top["description"], ("description",)) if "description" in top else ""
     level = r.choice(top["level"], ("level",), POLICY_LEVELS) if "level" in top else "districts"
+    desc_translations: tuple[tuple[str, str], ...] | None = ()
+    if "translations" in top:  # {de: {description: ...}}: the policy's own words per language
+        tm = r.mapping(top["translations"], ("translations",), free_keys=True) or {}
+        items = []
+        for lang, node in tm.items():
+            t = r.mapping(node, ("translations", lang), optional=("description",)) or {}
+            if "description" in t:
+                items.append((lang, r.text(t["description"], ("translations", lang,
+                                                              "description")) or ""))
+        desc_translations = tuple(items)
     tiers = _read_tiers(r, top["tiers"]) if "tiers" in top else None
     default_age = None
     if "freshness" in top:
@@ -163,6 +174,7 @@ def _read_root(
         name=name,
         version=version,
         description=desc,
+        description_translations=desc_translations,
         tiers=tiers,
         indicators=indicators,
         criteria=criteria,
@@ -239,24 +251,32 @@ def _read_public_texts(
 def _read_tier_texts(
     r: NodeReader, node: yaml.Node, path: Path
 ) -> tuple[tuple[str, TierText], ...] | None:
-    """``translations: {de: {name: ..., public: ..., measures: [...], advice: ...}, ...}``."""
+    """``translations: {de: {name, public, measures: [...], advice, staff}, ...}``."""
     m = r.mapping(node, path, free_keys=True)
     if m is None:
         return None
     out: list[tuple[str, TierText] | None] = []
     for lang, item in m.items():
         t = r.mapping(item, path + (lang,), required=("name",),
-                      optional=("public", "measures", "advice"))
+                      optional=("public", "measures", "advice", "staff"))
         if t is None or "name" not in t:
             out.append(None)
             continue
         name = r.text(t["name"], path + (lang, "name"))
         public = r.text(t["public"], path + (lang, "public")) if "public" in t else ""
+        if "staff" in t:
+            extra_staff = r.text(t["staff"], path + (lang, "staff"))
+            if extra_staff is None:
+                out.append(None)
+                continue
+        else:
+            extra_staff = ""
         extra = _read_public_texts(r, t, path + (lang,))
         if name is None or public is None or extra is None:
             out.append(None)
             continue
-        text = r.build(item, path + (lang,), TierText, name=name, public=public, **extra)
+        text = r.build(item, path + (lang,), TierText, name=name, public=public,
+                       staff=extra_staff, **extra)
         out.append(None if text is None else (lang, text))
     return None if any(o is None for o in out) else tuple(o for o in out if o is not None)
 
@@ -518,8 +538,8 @@ def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | 
         node,
         path,
         required=("id", "indicator"),
-        optional=("statistic", "for", "count_by", "clear_after_days", "below_tier", "message")
-        + COMPARISONS,
+        optional=("statistic", "for", "count_by", "clear_after_days", "below_tier", "message",
+                  "translations") + COMPARISONS,
     )
     if m is None or "id" not in m or "indicator" not in m:
         return None
@@ -544,19 +564,30 @@ def _read_signal(r: NodeReader, node: yaml.Node, path: Path) -> PrepareSignal | 
         kwargs["below_tier"] = r.integer(m["below_tier"], path + ("below_tier",), minimum=1)
     if "message" in m:
         kwargs["message"] = r.text(m["message"], path + ("message",))
+    if "translations" in m:  # {de: "...", ...}: the message per language
+        kwargs["translations"] = _read_translations(r, m["translations"], path)
     if comp is None or any(v is None for v in kwargs.values()):
         return None
     kwargs["op"], kwargs["value"] = comp
     return r.build(node, path, PrepareSignal, **kwargs)
 
 
+def _read_translations(r: NodeReader, node: yaml.Node, path: Path) -> tuple[tuple[str, str], ...]:
+    """``translations: {de: "...", fr-CH: "..."}`` of one text (an empty text is kept for the
+    model's check, which names the language)."""
+    tm = r.mapping(node, path + ("translations",), free_keys=True) or {}
+    return tuple((lang, r.text(v, path + ("translations", lang)) or "") for lang, v in tm.items())
+
+
 def _read_scenario(r: NodeReader, node: yaml.Node, path: Path) -> Scenario | None:
     m = r.mapping(node, path, required=("name", "label"),
-                  optional=("growth", "change", "within_days"))
+                  optional=("growth", "change", "within_days", "translations"))
     if m is None or "name" not in m or "label" not in m:
         return None
     kwargs: dict[str, Any] = {"name": r.text(m["name"], path + ("name",)),
                               "label": r.text(m["label"], path + ("label",))}
+    if "translations" in m:  # {de: "bei gleichem Trend", ...}: the label per language
+        kwargs["translations"] = _read_translations(r, m["translations"], path)
     if ("growth" in m) == ("change" in m):
         r.error(node, path, "a scenario needs exactly one of 'growth' (current, or a daily rate "
                 "reached within_days) and 'change' (a factor reached within_days)")

@@ -141,15 +141,21 @@ class Tier:
         text = self._text(lang)
         return text.advice if text is not None and text.advice else self.advice
 
+    def staff_in(self, lang: str | None) -> str:
+        """The staff guidance in ``lang`` (the default text without a translation)."""
+        text = self._text(lang)
+        return text.staff if text is not None and text.staff else self.staff
+
 
 @dataclass(frozen=True, kw_only=True)
 class TierText:
-    """A tier's name and public texts in one language."""
+    """A tier's name, public texts and staff guidance in one language."""
 
     name: str
     public: str = ""
     measures: tuple[str, ...] = ()
     advice: str = ""
+    staff: str = ""
 
     def __post_init__(self) -> None:
         if not self.name.strip():
@@ -472,6 +478,16 @@ class Override:
         return region in self.regions or (level is not None and level in self.levels)
 
 
+def _check_translations(translations: tuple[tuple[str, str], ...]) -> None:
+    """A text's ``translations``: language codes, no empty text."""
+    for lang, text in translations:
+        if not _LANGUAGE.fullmatch(lang):
+            raise FieldError(("translations", lang),
+                             f"{lang!r} is not a language code (such as de or fr-CH)")
+        if not text.strip():
+            raise FieldError(("translations", lang), "a translated text may not be empty")
+
+
 @dataclass(frozen=True, kw_only=True)
 class PrepareSignal:
     """A condition on a leading indicator that fires with a message and clears after a quiet period.
@@ -493,9 +509,16 @@ class PrepareSignal:
     clear_after_days: int = 7
     below_tier: int | None = None
     message: str = ""
+    #: the message in other languages: (language code, message) pairs, for the pages
+    translations: tuple[tuple[str, str], ...] = ()
+
+    def message_in(self, lang: str | None) -> str:
+        """The message in ``lang`` (the policy's own message when there is no translation)."""
+        return next((t for code, t in self.translations if code == lang), self.message)
 
     def __post_init__(self) -> None:
         _identifier(("id",), self.id)
+        _check_translations(self.translations)
         _identifier(("indicator",), self.indicator)
         if self.op not in COMPARISONS:
             raise FieldError((), f"signal {self.id!r} needs one of {', '.join(COMPARISONS)}")
@@ -531,9 +554,16 @@ class Scenario:
     kind: ScenarioKind = "trend"
     value: float = 0.0
     within_days: int = 1
+    #: the label in other languages: (language code, label) pairs, for the pages
+    translations: tuple[tuple[str, str], ...] = ()
+
+    def label_in(self, lang: str | None) -> str:
+        """The label in ``lang`` (the policy's own label when there is no translation)."""
+        return next((t for code, t in self.translations if code == lang), self.label)
 
     def __post_init__(self) -> None:
         _identifier(("name",), self.name)
+        _check_translations(self.translations)
         if not self.label.strip():
             raise FieldError(("label",), "a scenario needs a non-empty label")
         if self.kind not in ("trend", "growth_to", "change"):

@@ -49,6 +49,8 @@ class Ruleset:
     indicators: tuple[IndicatorSpec, ...]
     criteria: tuple[Criterion, ...]
     description: str = ""
+    #: the description in other languages: (language code, text) pairs, for the staff pages
+    description_translations: tuple[tuple[str, str], ...] = ()
     gates: tuple[Gate, ...] = ()
     combination: Combination = field(default_factory=Combination)
     conditions: tuple[Condition, ...] = ()
@@ -202,6 +204,11 @@ class Ruleset:
             if crit.id == cid:
                 return crit
         raise KeyError(cid)
+
+    def description_in(self, lang: str | None) -> str:
+        """The description in ``lang`` (the policy's own without a translation)."""
+        return next((t for code, t in self.description_translations if code == lang),
+                    self.description)
 
     def tier_name(self, level: int) -> str:
         """Name of tier ``level``; ``"insufficient data"`` for :data:`INSUFFICIENT_DATA`."""

@@ -4,9 +4,7 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator, Callable, Sequence
 from contextlib import AbstractContextManager, ExitStack, asynccontextmanager
-from datetime import date, datetime
 from pathlib import Path
-from zoneinfo import ZoneInfo
 
 from fastapi import FastAPI
 from fastapi.responses import RedirectResponse
@@ -35,26 +33,12 @@ from web.apidocs import mount_api_docs
 from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
 from web.feeds_api import router as feeds_api_router
-from web.i18n import current_language
 from web.mapsvg import MapCache
 from web.security import SecurityHeaders
 from web.staff_feeds import router as staff_feeds_router
-from web.templating import make_templates
+from web.templating import local_time, make_templates  # noqa: F401 - local_time: older imports
 
 STATIC = Path(__file__).with_name("static")
-
-
-def local_time(value: date | datetime | None, zone: ZoneInfo) -> str:
-    """A time stamp in the office's time zone with the zone's abbreviation (``2026-11-30 06:30
-    CET``); a date stays a date, None is a dash."""
-    if value is None:
-        return "—"
-    german = current_language.get() == "de"  # written-out form of the page's language
-    if not isinstance(value, datetime):
-        return value.strftime("%d.%m.%Y") if german else value.isoformat()
-    here = value.astimezone(zone)
-    return f"{here:%d.%m.%Y %H:%M} {here.tzname()}" if german else (
-        f"{here:%Y-%m-%d %H:%M} {here.tzname()}")
 
 
 BackgroundTask = Callable[[Database], AbstractContextManager[object]]
@@ -99,8 +83,6 @@ def create_app(
     app.state.settings = settings
     app.state.database = db
     app.state.templates = make_templates(settings)
-    zone = settings.zone
-    app.state.templates.env.filters["local"] = lambda value: local_time(value, zone)
     app.state.notify = notify_config_from(settings.notify_file)
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter(db)

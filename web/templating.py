@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from datetime import date, datetime
+from datetime import UTC, date, datetime, tzinfo
 from pathlib import Path
 from typing import Any
 
@@ -17,10 +17,11 @@ from fastapi.templating import Jinja2Templates
 from server.config import Settings
 from server.services.evaluation import active_ruleset
 from server.services.ruleset_cache import parsed
+from web.chart_words import translate_figure
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs
 from web.palette import NO_TIER, tier_colours
-from web.words import policy_words, translate_sentence
+from web.words import UNITS, measure_text, policy_words, translate_sentence
 
 TEMPLATES = Path(__file__).with_name("templates")
 
@@ -39,28 +40,42 @@ def format_number(value: float, decimals: int, lang: str | None = None) -> str:
     return text.replace(get_group_symbol(locale), GROUP)
 
 
-def format_day(value: date | datetime | None, lang: str | None = None) -> str:
-    """A day or time stamp written out in a sentence: ISO 8601 in English (the pages' choice,
-    unambiguous), the German numeric form (``20.11.2026``, ``20.11.2026 05:30 UTC``) in German.
-    Tables, form fields and links keep :func:`_iso`."""
+def local_time(value: date | datetime | None, zone: tzinfo = UTC, lang: str | None = None,
+               *, written: bool = True) -> str:
+    """A time stamp in the office's time zone ``zone`` with the zone's abbreviation (``2026-11-30
+    06:30 CET``, in German ``30.11.2026 06:30 CET``); a date stays a date, None is a dash.
+
+    The one way a page shows a time (the ``local`` filter; ``day`` and ``iso`` hand time stamps
+    to it): stored times are UTC, the office reads its own clock. ``written=False`` keeps the
+    ISO order of the day in every language (tables). Form fields and CSV files keep ISO 8601 in
+    UTC with its offset (``datetime.isoformat()``), not this."""
+    if value is None:
+        return "—"
     locale = lang or current_language.get()
-    if value is None or locale == "en":
-        return _iso(value)
-    if isinstance(value, datetime):
-        return value.strftime("%d.%m.%Y %H:%M UTC")  # as stored, like _iso
-    return format_date(value, "dd.MM.yyyy", locale=locale)
+    german = written and locale == "de"
+    if not isinstance(value, datetime):
+        return format_date(value, "dd.MM.yyyy", locale=locale) if german else value.isoformat()
+    here = (value if value.tzinfo else value.replace(tzinfo=UTC)).astimezone(zone)
+    return f"{here:%d.%m.%Y %H:%M} {here.tzname()}" if german else (
+        f"{here:%Y-%m-%d %H:%M} {here.tzname()}")
+
+
+def format_day(value: date | datetime | None, lang: str | None = None,
+               zone: tzinfo = UTC) -> str:
+    """A day or time stamp written out in a sentence: ISO 8601 in English (the pages' choice,
+    unambiguous), the German numeric form (``20.11.2026``, ``20.11.2026 06:30 CET``) in German;
+    a time stamp in the office's time zone ``zone`` (:func:`local_time`). Tables, form fields
+    and links keep :func:`_iso`."""
+    return local_time(value, zone, lang)
 
 
 def _thousands(value: int | float) -> str:
     return format_number(value, 0)
 
 
-def _iso(value: date | datetime | None) -> str:
-    if value is None:
-        return "—"
-    if isinstance(value, datetime):
-        return value.strftime("%Y-%m-%d %H:%M UTC")
-    return value.isoformat()
+def _iso(value: date | datetime | None, zone: tzinfo = UTC) -> str:
+    """A day as ISO 8601; a time stamp in the office's time zone in ISO order (table cells)."""
+    return local_time(value, zone, "en", written=False)
 
 
 def _number(value: float | None, decimals: int = 1) -> str:
@@ -90,15 +105,29 @@ def make_templates(settings: Settings) -> Jinja2Templates:
     )
     env.globals["catalogs"] = catalogs  # for texts built in Python (feeds, downloads)
     env.filters["thousands"] = _thousands
-    env.filters["iso"] = _iso
+    zone = settings.zone  # every time a page shows is in the office's time zone
+    env.filters["iso"] = lambda value: _iso(value, zone)
     env.filters["number"] = _number
-    env.filters["day"] = format_day
+    env.filters["day"] = lambda value: format_day(value, zone=zone)
+    env.filters["local"] = lambda value: local_time(value, zone)
     env.filters["word"] = catalogs.gettext  # Python-built words, web/words.py
     env.filters["sentence"] = jinja2.pass_context(lambda ctx, text: translate_sentence(
         text, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
+    # why a feed row was rejected, its values quoted as sent (web/words.py)
+    env.filters["reason"] = lambda text: translate_sentence(
+        text, catalogs.gettext, current_language.get(), numbers=False)
     # a tier name or indicator label of the active policy in the page's language
     env.filters["pw"] = jinja2.pass_context(
         lambda ctx, text: (ctx.get("policy_words") or {}).get(text, text))
+    # a measure of the store (``MeasureLabel`` or a name) in the page's language (web/words.py)
+    env.filters["measure_label"] = lambda m: measure_text(
+        getattr(m, "name", m), getattr(m, "label", m), catalogs.gettext, current_language.get())
+    env.filters["measure_description"] = lambda m: measure_text(
+        m.name, m.description or m.label, catalogs.gettext, current_language.get(), which=1)
+    env.filters["unit"] = lambda u: catalogs.gettext(UNITS[u]) if u in UNITS else u
+    # a chart's legend, titles and tick labels in the page's language (web/chart_words.py)
+    env.filters["figure"] = jinja2.pass_context(lambda ctx, fig: translate_figure(
+        fig, catalogs.gettext, current_language.get(), ctx.get("policy_words")))
     env.globals["sparkline"] = sparkline_points
     env.globals["tier_style"] = _tier_style
     env.globals["public_base_url"] = settings.public_base_url

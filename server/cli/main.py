@@ -137,7 +137,7 @@ def demo(
         except OSError as exc:
             say(f"Could not start the water authority's stand-in on 127.0.0.1:{PORT} ({exc}); "
                 "the wastewater-http feed's pulls will fail")
-    say(f"Office time zone: {settings.time_zone} (the public pages show publication times in it)")
+    say(f"Office time zone: {settings.time_zone} (every page shows its times in it)")
     say(f"Public view: http://127.0.0.1:{port}/")
     say(f"Staff pages: http://127.0.0.1:{port}/staff/")
     say(f"API docs:    http://127.0.0.1:{port}/docs")

@@ -237,13 +237,24 @@ def test_tier_translations_are_read_and_fall_back_to_the_default() -> None:
     assert (busy.name_in("it"), busy.name_in(None), busy.public_in("it")) == ("Busy", "Busy", "p1")
 
 
+def test_tier_staff_guidance_translation_falls_back_to_the_default() -> None:
+    text = BASE.replace(
+        "  - {name: Busy, staff: s1, public: p1}\n",
+        "  - name: Busy\n    staff: s1\n    public: p1\n    translations:\n"
+        "      de: {name: Betrieb, staff: Dienst}\n      fr-CH: {name: Occupé}\n",
+    )
+    busy = parse_ruleset(text).tiers[1]
+    assert (busy.staff_in("de"), busy.staff_in("fr-CH"), busy.staff_in(None)) == (
+        "Dienst", "s1", "s1")
+
+
 @pytest.mark.parametrize(
     ("translations", "where"),
     [
         ("      German: {name: Betrieb}\n",
          r"f\.yaml:9:\d+: tiers\[1\]\.translations\.German: 'German' is not a language code"),
-        ("      de: {name: Betrieb, staff: x}\n",
-         r"f\.yaml:9:\d+: tiers\[1\]\.translations\.de\.staff: unknown key 'staff'"),
+        ("      de: {name: Betrieb, colour: x}\n",
+         r"f\.yaml:9:\d+: tiers\[1\]\.translations\.de\.colour: unknown key 'colour'"),
         ("      de: {public: x}\n",
          r"f\.yaml:9:\d+: tiers\[1\]\.translations\.de: missing required key 'name'"),
     ],

@@ -52,6 +52,24 @@ def test_scenarios_are_read_with_their_kinds() -> None:
     assert rs.scenario("halves").label == "if admissions halve within 14 days"
 
 
+def test_scenario_labels_and_signal_messages_carry_translations() -> None:
+    text = RULES.replace("SCENARIO", "trend").replace(
+        "    label: if the trend continues\n",
+        "    label: if the trend continues\n    translations: {de: bei gleichem Trend}\n").replace(
+        "    message: ICU share projected to reach 85% in {reading} if the trend continues.\n",
+        "    message: ICU share projected to reach 85% in {reading} if the trend continues.\n"
+        "    translations: {de: \"Intensivbettenanteil in {reading} bei 85 %.\"}\n")
+    rs = parse_ruleset(text)
+    assert (rs.scenario("trend").label_in("de"), rs.scenario("trend").label_in("fr")) == (
+        "bei gleichem Trend", "if the trend continues")
+    assert rs.scenario("halves").label_in("de") == "if admissions halve within 14 days"
+    assert rs.prepare[0].message_in("de") == "Intensivbettenanteil in {reading} bei 85 %."
+    assert rs.prepare[0].message_in("en").startswith("ICU share projected")
+    with pytest.raises(RulesetError,
+                       match=r"x\.yaml:\d+:\d+: scenarios\[0\]\.translations\.German"):
+        parse_ruleset(text.replace("{de: bei gleichem", "{German: bei gleichem"), source="x.yaml")
+
+
 @pytest.mark.parametrize(("old", "new", "where"), [
     ("    change: 0.5\n", "    change: -2\n", r"x\.yaml:31:13: scenarios\[2\]\.change: .*above 0"),
     ("    growth: 0\n", "    growth: 0\n    change: 2\n",

@@ -36,9 +36,9 @@ def _line(n: int, inside: int, ratio: float | None) -> RecordLine:
         ("en", _line(1, 1, None), "Of the last 1 14-day forecast of hospital admissions, 1 fell "
          "inside the 90 % band."),
         ("de", _line(60, 52, 0.8), "Krankenhausaufnahmen, letzte 60 14-Tage-Prognosen: 52 im "
-         "90-%-Band; 0.8 des naiven Fehlers."),
+         "90-%-Band; 0,8 des naiven Fehlers."),
         ("de", _line(1, 0, 1.3), "Krankenhausaufnahmen, letzte 1 14-Tage-Prognose: 0 im "
-         "90-%-Band; 1.3 des naiven Fehlers."),
+         "90-%-Band; 1,3 des naiven Fehlers."),
     ],
     ids=["en-plural", "en-singular", "de-plural", "de-singular"],
 )

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Iterator
-from datetime import date, datetime
+from datetime import UTC, date, datetime
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -54,7 +54,7 @@ def test_german_numbers_use_the_decimal_comma_and_a_narrow_space_for_thousands()
 def test_german_dates_in_sentences_and_iso_elsewhere() -> None:
     assert format_day(date(2026, 11, 20), "de") == "20.11.2026"  # DIN 5008 numeric form
     assert format_day(date(2026, 11, 20), "en") == "2026-11-20"  # ISO 8601
-    assert format_day(datetime(2026, 12, 1, 5, 30), "de") == "01.12.2026 05:30 UTC"
+    assert format_day(datetime(2026, 12, 1, 5, 30, tzinfo=UTC), "de") == "01.12.2026 05:30 UTC"
     assert format_day(None, "de") == "—"
 
 
@@ -126,7 +126,8 @@ def _english_patterns() -> list[tuple[str, re.Pattern[str]]]:
 @pytest.fixture(scope="module")
 def client(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
     path = copy_demo(demo_file, tmp_path_factory.mktemp("german-pages") / "demo.db")
-    with TestClient(create_app(settings_for(path, feeds_file=DEMO_FEEDS_FILE))) as c:
+    with TestClient(create_app(settings_for(path, feeds_file=DEMO_FEEDS_FILE,
+                                             time_zone="Europe/Berlin"))) as c:
         yield c
 
 
@@ -136,6 +137,9 @@ PAGES = [
     ("/staff/district/D01/explain?day=2026-11-20", "viewer"),
     ("/staff/review", "approver"), ("/staff/feeds", "analyst"),
     ("/staff/policies", "analyst"), ("/staff/users", "admin"),
+    ("/staff/areas/R1/capacity", "viewer"), ("/staff/effects", "analyst"),
+    ("/staff/district/D13", "viewer"), ("/staff/feeds?feed=long-csv", "analyst"),
+    ("/staff/district/D01/explain", "viewer"),
 ]
 
 
