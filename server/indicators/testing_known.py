@@ -6,13 +6,15 @@ could be known *that* day. Here a change that starts on day ``tau`` is judged on
 the ``m = t - tau + 1`` days ``[tau, t]`` (``min_days <= m <= compare``) against the same
 weekdays one and two weeks before (``[tau - 7, tau - 7 + m)`` and ``[tau - 14, tau - 14 + m)``),
 so weekday effects cancel and no later day is read. A candidate is flagged when tests moved by at
-least ``min_ratio`` against each of the two earlier weeks and against their mean with a
-quasi-Poisson interval excluding 1, and the odds of a positive test moved significantly the
-other way (Woolf 1955), the signature of :func:`detect_testing_changes`. On each day the
+least ``min_ratio`` against each of the two earlier weeks and, beyond doubt, against their
+mean (the quasi-Poisson interval's bound nearer 1 is past ``min_ratio``), and the odds of a positive test moved the other way (the
+signature of :func:`detect_testing_changes`, which also asks the odds ratio's interval (Woolf
+1955) to exclude 1: a small district has too few positives in three days for that, so here the
+direction alone counts and the interval is reported). On each day the
 flagged candidate with the largest standardised change is taken; it is a *new* change when its
 first day is at least ``separation`` days after the change already known; within ``compare``
-days of a change's detection the day's best start replaces its start (the first days may
-flag a start a day or two early), after that the known change stands (its size re-estimated
+days of a change's detection a start flagged with a larger standardised change than the known
+start has that day replaces it (the first days may flag a start a day or two early), after that the known change stands (its size re-estimated
 as its days grow, up to ``compare``). Everything is numpy
 over regions; only the carrying of the known change walks the days (one vector step a day).
 The rule is common practice with no single source; ``bench/testing_validation.py`` measures it
@@ -57,8 +59,8 @@ class KnownTestingChanges:
     tests_ratio, tests_ratio_lower, tests_ratio_upper : ndarray
         Tests on the change's days known so far (up to ``compare``) over the same weekdays one
         and two weeks before, with its interval (NaN: none known).
-    odds_ratio : ndarray
-        Odds of a positive test after / before over the same days.
+    odds_ratio, odds_ratio_lower, odds_ratio_upper : ndarray
+        Odds of a positive test after / before over the same days, with Woolf's interval.
     level : float
     """
 
@@ -68,6 +70,8 @@ class KnownTestingChanges:
     tests_ratio_lower: FloatArray
     tests_ratio_upper: FloatArray
     odds_ratio: FloatArray
+    odds_ratio_lower: FloatArray
+    odds_ratio_upper: FloatArray
     level: float
 
     def __post_init__(self) -> None:
@@ -191,18 +195,16 @@ def testing_changes_as_known(
             each = np.minimum(np.log(a / b1), np.log(a / b2))
             each_down = np.maximum(np.log(a / b1), np.log(a / b2))
         seen &= (a > 0) & (b1 > 0) & (b2 > 0)
-        wider = (log_r >= big) & (each >= big) & (log_r - zq * se > 0) & (
-            log_or + zq * se_or < 0)
-        narrower = (log_r <= -big) & (each_down <= -big) & (log_r + zq * se < 0) & (
-            log_or - zq * se_or > 0)
+        wider = (each >= big) & (log_r - zq * se >= big) & (log_or < 0)
+        narrower = (each_down <= -big) & (log_r + zq * se <= -big) & (log_or > 0)
         flagged = seen & (wider | narrower)
         with np.errstate(invalid="ignore"):
             score = np.where(flagged, np.abs(log_r) / se, -np.inf)
-        by_m[m] = (log_r, se, log_or, score)
+        by_m[m] = (log_r, se, log_or, se_or, score)
     # best flagged candidate ending on each day t: start t - m + 1 over m
     best = np.full((rows, n), -np.inf)
     best_start = np.full((rows, n), -1, dtype=np.int64)
-    for m, (_lr, _se, _lor, score) in by_m.items():
+    for m, (*_est, score) in by_m.items():
         end = starts + m - 1  # the day a start is judged on with m days
         keep = end < n
         s_on_day = np.full((rows, n), -np.inf)
@@ -219,6 +221,8 @@ def testing_changes_as_known(
     cur_found = np.full(rows, -1, dtype=np.int64)
     blocked = np.full(rows, -(10**9), dtype=np.int64)  # start of a dismissed change
     has_any = np.isfinite(best).any(axis=0)
+    scores = np.stack([by_m[m][-1] for m in range(min_days, compare + 1)])
+    rix = np.arange(rows)
     dismiss_days = {frm for items in gone.values() for _d, frm in items}
     for d in range(n):
         if d in dismiss_days:
@@ -233,8 +237,10 @@ def testing_changes_as_known(
             new = (s >= 0) & ((cur < 0) | (s >= cur + separation)) & (
                 np.abs(s - blocked) >= separation)
             # while its first days come in, the known change takes the best start flagged
+            m_cur = np.clip(d - cur + 1, min_days, compare) - min_days
+            cur_score = scores[m_cur, rix, np.maximum(cur, 0)]
             refine = (s >= 0) & ~new & (cur >= 0) & (d - cur_found < compare) & (
-                np.abs(s - cur) < separation)
+                np.abs(s - cur) < separation) & (best[:, d] > cur_score)
             cur = np.where(new | refine, s, cur)
             cur_found = np.where(new, d, cur_found)
         change[:, d], found[:, d] = cur, cur_found
@@ -245,14 +251,17 @@ def testing_changes_as_known(
     log_r = np.full((rows, n), np.nan)
     se = np.full((rows, n), np.nan)
     log_or = np.full((rows, n), np.nan)
+    se_or = np.full((rows, n), np.nan)
     ridx = np.arange(rows)[:, None]
-    for m, (lr, sm, lor, _score) in by_m.items():
+    for m, (lr, sm, lor, sor, _score) in by_m.items():
         at = known & (m_now == m)
         log_r = np.where(at, lr[ridx, col], log_r)
         se = np.where(at, sm[ridx, col], se)
         log_or = np.where(at, lor[ridx, col], log_or)
+        se_or = np.where(at, sor[ridx, col], se_or)
     return KnownTestingChanges(
         change_day=change, detected_day=found, tests_ratio=np.exp(log_r),
         tests_ratio_lower=np.exp(log_r - zq * se), tests_ratio_upper=np.exp(log_r + zq * se),
-        odds_ratio=np.exp(log_or), level=level,
+        odds_ratio=np.exp(log_or), odds_ratio_lower=np.exp(log_or - zq * se_or),
+        odds_ratio_upper=np.exp(log_or + zq * se_or), level=level,
     )

@@ -87,6 +87,9 @@ class DistrictData:
     # wastewater target (one per pathogen) is judged on its own measures (``ww_plants``: all).
     plant_invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
     plant_stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    # Testing changes an analyst dismissed: (district code, change date, office day dismissed),
+    # read as known at ``as_of`` (:mod:`server.services.testing_reviews`).
+    testing_dismissals: tuple[tuple[str, date, date], ...] = ()
 
     def plants_invalid(self, *measures: str) -> NDArray[np.bool_]:
         """(districts, days): some plant serving the district had an unusable value of one of
