@@ -5,20 +5,23 @@ finds on day 60 rests on days after 60 as well. The engine needs, for every regi
 could be known *that* day. Here a change that starts on day ``tau`` is judged on day ``t`` from
 the ``m = t - tau + 1`` days ``[tau, t]`` (``min_days <= m <= compare``) against the same
 weekdays one and two weeks before (``[tau - 7, tau - 7 + m)`` and ``[tau - 14, tau - 14 + m)``),
-so weekday effects cancel and no later day is read. A candidate is flagged when tests moved by at
-least ``min_ratio`` against each of the two earlier weeks and, beyond doubt, against their
-mean (the quasi-Poisson interval's bound nearer 1 is past ``min_ratio``), and the odds of a positive test moved the other way (the
+so weekday effects cancel and no later day is read.
+
+A candidate is flagged when tests moved by at least ``min_ratio`` against each of the two
+earlier weeks and, beyond doubt, against their mean (the quasi-Poisson interval's bound nearer 1
+is past ``min_ratio``), and the odds of a positive test moved the other way. That is the
 signature of :func:`detect_testing_changes`, which also asks the odds ratio's interval (Woolf
 1955) to exclude 1: a small district has too few positives in three days for that, so here the
-direction alone counts and the interval is reported). On each day the
-flagged candidate with the largest standardised change is taken; it is a *new* change when its
-first day is at least ``separation`` days after the change already known; within ``compare``
-days of a change's detection a start flagged with a larger standardised change than the known
-start has that day replaces it (the first days may flag a start a day or two early), after that the known change stands (its size re-estimated
-as its days grow, up to ``compare``). Everything is numpy
-over regions; only the carrying of the known change walks the days (one vector step a day).
-The rule is common practice with no single source; ``bench/testing_validation.py`` measures it
-on the simulator's known testing changes.
+direction alone counts and the interval is reported.
+
+On each day the flagged candidate with the largest standardised change is taken; it is a *new*
+change when its first day is at least ``separation`` days after the change already known. Within
+``compare`` days of a change's detection a start flagged with a larger standardised change than
+the known start has that day replaces it (the first days may flag a start a day or two early);
+after that the known change stands, its size re-estimated as its days grow, up to ``compare``.
+Everything is numpy over regions; only the carrying of the known change walks the days (one
+vector step a day). The rule is common practice with no single source;
+``bench/testing_validation.py`` measures it on the simulator's known testing changes.
 """
 
 from __future__ import annotations
