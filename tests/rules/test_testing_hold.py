@@ -161,3 +161,12 @@ def test_loader_names_line_and_key(hold: str, where: str, message: str) -> None:
     line = int(text.split(":")[1])
     assert line > POLICY.count("\n")  # at the option, not at the top of the file
     assert where in text and message in text
+
+
+def test_summary_states_the_hold() -> None:
+    from rules import summary
+
+    text = summary(parse_ruleset(POLICY + HOLD))
+    assert ("Testing hold: cases cannot raise the tier for 5 day(s) after a testing change "
+            "(testing) unless admissions agree") in text
+    assert "Testing hold" not in summary(parse_ruleset(POLICY))
