@@ -30,7 +30,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import ArrayLike
 from scipy import special
 
 from server.indicators._arrays import (
@@ -93,13 +93,46 @@ def _sums(values: FloatArray) -> FloatArray:
     return p
 
 
-def _window(p: FloatArray, start: NDArray[np.int64], m: int) -> FloatArray:
-    """Sums over ``[start, start + m)`` for every start (NaN where it leaves the series)."""
+def _window(p: FloatArray, offset: int, m: int) -> FloatArray:
+    """Column ``j``: the sum over days ``[j + offset, j + offset + m)`` (NaN where that leaves
+    the series); ``p`` are prefix sums (slices, no gathers)."""
     n = p.shape[1] - 1
-    ok = (start >= 0) & (start + m <= n)
-    s = np.clip(start, 0, n - m)
-    out = p[:, s + m] - p[:, s]
-    return np.where(ok[None, :], out, np.nan)
+    out = np.full((p.shape[0], n), np.nan)
+    lo, hi = max(0, -offset), min(n, n - m - offset + 1)
+    if hi > lo:
+        np.subtract(p[:, lo + offset + m : hi + offset + m], p[:, lo + offset : hi + offset],
+                    out=out[:, lo:hi])
+    return out
+
+
+class _Cells:
+    """Estimates at chosen (region, start, days after) cells, from prefix sums."""
+
+    def __init__(self, pt: FloatArray, pp: FloatArray, pn: FloatArray, sx: FloatArray,
+                 sc: FloatArray, zq: float) -> None:
+        self.pt, self.pp, self.pn, self.sx, self.sc, self.zq = pt, pp, pn, sx, sc, zq
+
+    def _sum(self, p: FloatArray, r: IntArray, lo: IntArray, m: IntArray) -> FloatArray:
+        return np.asarray(p[r, lo + m] - p[r, lo])
+
+    def at(self, r: IntArray, c: IntArray, m: IntArray) -> tuple[FloatArray, ...]:
+        """log tests ratio, its SE, log odds ratio, its SE and whether every day was seen."""
+        a, pa = self._sum(self.pt, r, c, m), self._sum(self.pp, r, c, m)
+        b1, b2 = self._sum(self.pt, r, c - WEEK, m), self._sum(self.pt, r, c - 2 * WEEK, m)
+        pb = self._sum(self.pp, r, c - WEEK, m) + self._sum(self.pp, r, c - 2 * WEEK, m)
+        seen = ((self._sum(self.pn, r, c, m) == m) & (self._sum(self.pn, r, c - WEEK, m) == m)
+                & (self._sum(self.pn, r, c - 2 * WEEK, m) == m))
+        lo = np.maximum(c - DISPERSION_DAYS + 1, 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            phi = (self.sx[r, c + 1] - self.sx[r, lo]) / (self.sc[r, c + 1] - self.sc[r, lo])
+            phi = np.where(np.isfinite(phi), np.maximum(phi, 1.0), np.inf)  # none: no flag
+            log_r = np.log(2.0 * a / (b1 + b2))
+            se = np.sqrt(phi * (1.0 / a + 1.0 / (b1 + b2)))
+            na, nb = a - pa, (b1 + b2) - pb
+            log_or = (np.log(pa + 0.5) + np.log(nb + 0.5) - np.log(pb + 0.5)
+                      - np.log(na + 0.5))
+            se_or = np.sqrt(1 / (pa + 0.5) + 1 / (na + 0.5) + 1 / (pb + 0.5) + 1 / (nb + 0.5))
+        return log_r, se, log_or, se_or, seen
 
 
 def testing_changes_as_known(
@@ -167,54 +200,49 @@ def testing_changes_as_known(
     zq = float(special.ndtri(0.5 + level / 2.0))
     starts = np.arange(n, dtype=np.int64)
     # dispersion of tests before each start: week-on-week log ratios of whole weeks
-    w1, w2 = _window(pt, starts - WEEK, WEEK), _window(pt, starts - 2 * WEEK, WEEK)
-    full = (_window(pn, starts - WEEK, WEEK) == WEEK) & (_window(pn, starts - 2 * WEEK, WEEK)
-                                                         == WEEK)
+    w1, w2 = _window(pt, -WEEK, WEEK), _window(pt, -2 * WEEK, WEEK)
+    full = (_window(pn, -WEEK, WEEK) == WEEK) & (_window(pn, -2 * WEEK, WEEK) == WEEK)
     with np.errstate(divide="ignore", invalid="ignore"):
         x = np.log(w1 / w2) ** 2 / (1.0 / w1 + 1.0 / w2)
     good = full & (w1 > 0) & (w2 > 0) & np.isfinite(x)
     sx, sc = _sums(np.where(good, x, 0.0)), _sums(good.astype(np.float64))
-    lo = np.clip(starts - DISPERSION_DAYS + 1, 0, n)
-    hi = np.clip(starts + 1, 0, n)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        phi = np.maximum((sx[:, hi] - sx[:, lo]) / (sc[:, hi] - sc[:, lo]), 1.0)
-    phi = np.where(np.isfinite(phi), phi, np.inf)  # no whole weeks before: nothing flagged
-    # per length m of the days after a start: estimates for every start (columns = starts)
-    by_m = {}
-    for m in range(min_days, compare + 1):
-        a = _window(pt, starts, m)
-        b1, b2 = _window(pt, starts - WEEK, m), _window(pt, starts - 2 * WEEK, m)
-        pa = _window(pp, starts, m)
-        pb = _window(pp, starts - WEEK, m) + _window(pp, starts - 2 * WEEK, m)
-        seen = (_window(pn, starts, m) == m) & (_window(pn, starts - WEEK, m) == m) & (
-            _window(pn, starts - 2 * WEEK, m) == m)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            log_r = np.log(2.0 * a / (b1 + b2))
-            se = np.sqrt(phi * (1.0 / a + 1.0 / (b1 + b2)))
-            na, nb = a - pa, (b1 + b2) - pb
-            log_or = (np.log(pa + 0.5) + np.log(nb + 0.5) - np.log(pb + 0.5)
-                      - np.log(na + 0.5))
-            se_or = np.sqrt(1 / (pa + 0.5) + 1 / (na + 0.5) + 1 / (pb + 0.5) + 1 / (nb + 0.5))
-            each = np.minimum(np.log(a / b1), np.log(a / b2))
-            each_down = np.maximum(np.log(a / b1), np.log(a / b2))
-        seen &= (a > 0) & (b1 > 0) & (b2 > 0)
-        wider = (each >= big) & (log_r - zq * se >= big) & (log_or < 0)
-        narrower = (each_down <= -big) & (log_r + zq * se <= -big) & (log_or > 0)
-        flagged = seen & (wider | narrower)
-        with np.errstate(invalid="ignore"):
-            score = np.where(flagged, np.abs(log_r) / se, -np.inf)
-        by_m[m] = (log_r, se, log_or, se_or, score)
-    # best flagged candidate ending on each day t: start t - m + 1 over m
+    cells = _Cells(pt, pp, pn, sx, sc, zq)
+    # per length m of the days after a start, the score of every start (columns = starts):
+    # a cheap screen on the factors first, the estimates only where it passes
+    up, down = float(np.exp(big)), float(np.exp(-big))
+    scores = np.full((compare - min_days + 1, rows, n), -np.inf)
+    for j, m in enumerate(range(min_days, compare + 1)):
+        if n - m + 1 <= 2 * WEEK:
+            continue
+        sums = pt[:, m:] - pt[:, : n + 1 - m]  # column s: the m days from s
+        a, b1, b2 = sums[:, 2 * WEEK :], sums[:, WEEK:-WEEK], sums[:, : -2 * WEEK]  # s >= 14
+        high = np.maximum(b1, b2)
+        high *= up
+        screen = a >= high
+        low = np.minimum(b1, b2)
+        seen_before = low > 0
+        low *= down
+        screen |= a <= low
+        screen &= seen_before
+        screen &= a > 0
+        r_i, c_i = np.nonzero(screen)
+        c_i = c_i + 2 * WEEK
+        if not r_i.size:
+            continue
+        log_r, se, log_or, _se_or, seen = cells.at(r_i, c_i, np.full(r_i.size, m))
+        wider = (log_r - zq * se >= big) & (log_or < 0)
+        narrower = (log_r + zq * se <= -big) & (log_or > 0)
+        keep = seen & (wider | narrower)
+        scores[j, r_i[keep], c_i[keep]] = np.abs(log_r[keep]) / se[keep]
+    # best flagged candidate judged on each day t: start t - m + 1 over m
     best = np.full((rows, n), -np.inf)
     best_start = np.full((rows, n), -1, dtype=np.int64)
-    for m, (*_est, score) in by_m.items():
-        end = starts + m - 1  # the day a start is judged on with m days
-        keep = end < n
-        s_on_day = np.full((rows, n), -np.inf)
-        s_on_day[:, end[keep]] = score[:, keep]
-        better = s_on_day > best
-        best = np.where(better, s_on_day, best)
-        best_start = np.where(better, (starts - m + 1)[None, :], best_start)
+    for j, m in enumerate(range(min_days, compare + 1)):
+        on_day = scores[j, :, : n - m + 1]  # start s judged on day s + m - 1
+        best_view, start_view = best[:, m - 1 :], best_start[:, m - 1 :]
+        better = on_day > best_view
+        np.copyto(best_view, on_day, where=better)
+        np.copyto(start_view, np.broadcast_to(starts[: n - m + 1], on_day.shape), where=better)
     gone: dict[int, list[tuple[int, int]]] = {}
     for r, day, frm in dismissed:
         gone.setdefault(int(r), []).append((int(day), int(frm)))
@@ -224,7 +252,6 @@ def testing_changes_as_known(
     cur_found = np.full(rows, -1, dtype=np.int64)
     blocked = np.full(rows, -(10**9), dtype=np.int64)  # start of a dismissed change
     has_any = np.isfinite(best).any(axis=0)
-    scores = np.stack([by_m[m][-1] for m in range(min_days, compare + 1)])
     rix = np.arange(rows)
     dismiss_days = {frm for items in gone.values() for _d, frm in items}
     for d in range(n):
@@ -248,20 +275,14 @@ def testing_changes_as_known(
             cur_found = np.where(new, d, cur_found)
         change[:, d], found[:, d] = cur, cur_found
     # the size as known on each day: the change's days up to that day, at most `compare`
-    known = change >= 0
-    m_now = np.clip(np.arange(n)[None, :] - change + 1, min_days, compare)
-    col = np.where(known, change, 0)
-    log_r = np.full((rows, n), np.nan)
-    se = np.full((rows, n), np.nan)
-    log_or = np.full((rows, n), np.nan)
-    se_or = np.full((rows, n), np.nan)
-    ridx = np.arange(rows)[:, None]
-    for m, (lr, sm, lor, sor, _score) in by_m.items():
-        at = known & (m_now == m)
-        log_r = np.where(at, lr[ridx, col], log_r)
-        se = np.where(at, sm[ridx, col], se)
-        log_or = np.where(at, lor[ridx, col], log_or)
-        se_or = np.where(at, sor[ridx, col], se_or)
+    log_r, se, log_or, se_or = (np.full((rows, n), np.nan) for _ in range(4))
+    r_i, d_i = np.nonzero(change >= 0)
+    if r_i.size:
+        c_i = change[r_i, d_i]
+        m_i = np.clip(d_i - c_i + 1, min_days, compare)
+        est = cells.at(r_i, c_i, m_i)
+        for out, value in zip((log_r, se, log_or, se_or), est[:4], strict=True):
+            out[r_i, d_i] = value
     return KnownTestingChanges(
         change_day=change, detected_day=found, tests_ratio=np.exp(log_r),
         tests_ratio_lower=np.exp(log_r - zq * se), tests_ratio_upper=np.exp(log_r + zq * se),
