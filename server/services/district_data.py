@@ -35,6 +35,7 @@ from server.indicators._arrays import trailing_sum
 from server.indicators.nowcast import WindowNowcast, nowcast_window
 from server.services.district_nowcasts import NowcastInput, nowcast_inputs, nowcast_measures
 from server.services.stored_values import BadValue, clean_arrays
+from server.services.testing_reviews import dismissals
 from server.store import read_dense
 from server.store.models import Catchment, Measure, Region
 from server.store.reads import feed_last_dates
@@ -271,6 +272,7 @@ def load_district_data(
         served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
         plant_invalid=plant_bad, plant_stale=plants,
         measure_kinds=store_measures(session=session),
+        testing_dismissals=dismissals(session=session, as_of=as_of),
         nowcasts=nowcast_inputs(
             session=session, regions=codes, groups=parents, dates=district.dates, as_of=as_of,
             group_names={r[2]: r[3] for r in rows if r[2] is not None}, time_zone=time_zone,
