@@ -91,3 +91,20 @@ def test_a_viewer_cannot_give_a_verdict(demo_app_client: TestClient) -> None:
     answer = demo_app_client.post("/staff/district/D01/testing-review", data={
         "csrf": csrf, "change_day": CHANGE.isoformat(), "verdict": "dismissed", "note": "x"})
     assert answer.status_code == 403
+
+
+def test_explanations_after_the_demo_change_name_it(demo_app_client: TestClient) -> None:
+    assert login(demo_app_client, "vic.viewer") == 303
+    page = demo_app_client.get("/staff/district/D01/explain",
+                               params={"day": (CHANGE + timedelta(days=6)).isoformat()})
+    assert page.status_code == 200
+    text = html.unescape(page.text)
+    found = re.search(r"Testing: tests rose (\d+)% from (\S+): part of the rise in cases "
+                      r"reflects more testing\.", text)
+    assert found is not None
+    # the demo's negative tests step from 150 to 420 per 100 000 a day: tests more than double
+    assert int(found.group(1)) > 100
+    assert abs((date.fromisoformat(found.group(2)) - CHANGE).days) <= 3
+    later = demo_app_client.get("/staff/district/D01/explain",
+                                params={"day": (CHANGE + timedelta(days=30)).isoformat()})
+    assert "Testing: tests" not in html.unescape(later.text)  # past the hold's 14 days
