@@ -289,7 +289,8 @@ def evaluate(
     conds = list(zip(lv.cond_source, lv.cond_level, lv.cond_target, strict=True))
     band = np.empty((n_c, n_r), dtype=np.int8)
     hold_on, held_idx, unless_idx = _hold_days(ruleset, indicators)
-    hold_any = np.zeros(n_d, dtype=bool) if hold_on is None else hold_on.any(axis=1)
+    hold_any: NDArray[np.bool_] = (np.zeros(n_d, dtype=bool) if hold_on is None
+                                   else np.asarray(hold_on.any(axis=1)))
     testing_held = np.zeros((n_d, n_r), dtype=bool)
     for d in range(n_d):
         kn = lv.known[d]
@@ -305,14 +306,15 @@ def evaluate(
         low, high = candidate_bounds(cur, kn, max_level, comb, weights, cutoffs)
         if hold_any[d]:  # case-based escalations held after a testing change
             assert hold_on is not None
-            on = hold_on[d].copy()
+            hold_now = hold_on[d].copy()
             if unless_idx:
-                on &= ~np.any(kn[unless_idx] & (cur[unless_idx] > held), axis=0)
+                hold_now &= ~np.any(kn[unless_idx] & (cur[unless_idx] > held), axis=0)
             capped = cur.copy()
-            capped[held_idx] = np.where(on, np.minimum(cur[held_idx], held), cur[held_idx])
+            capped[held_idx] = np.where(hold_now, np.minimum(cur[held_idx], held),
+                                        cur[held_idx])
             free = low
             low, high = candidate_bounds(capped, kn, max_level, comb, weights, cutoffs)
-            testing_held[d] = on & (free > np.maximum(low, held))
+            testing_held[d] = hold_now & (free > np.maximum(low, held))
         ok = ok_t[d]
         a_out, b_out = above_out[d], below_out[d]
         np.add(above, 1, out=a_out)

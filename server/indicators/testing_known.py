@@ -185,10 +185,10 @@ def testing_changes_as_known(
     pos = as_nonnegative_counts("positives", positives)
     if pos.shape != t.shape:
         raise ValueError(f"positives: shape {pos.shape} differs from tests {t.shape}")
-    for name, value, low in (("compare", compare, 1), ("min_days", min_days, 1),
-                             ("separation", separation, 1)):
-        if isinstance(value, bool) or not isinstance(value, int) or value < low:
-            raise ValueError(f"{name}: expected an integer >= {low}, got {value!r}")
+    for name, given, least in (("compare", compare, 1), ("min_days", min_days, 1),
+                               ("separation", separation, 1)):
+        if isinstance(given, bool) or not isinstance(given, int) or given < least:
+            raise ValueError(f"{name}: expected an integer >= {least}, got {given!r}")
     if min_days > compare or compare > WEEK:
         raise ValueError(f"compare: expected min_days <= compare <= {WEEK}, got {compare}")
     level = check_level("level", level)
