@@ -18,6 +18,11 @@ least 21 days from every transmission step as it shows in cases) it prints, over
   ``unless`` at work, counted apart as let through). *Real rises*:
   raises decided without the hold within 28 days after a true step up of R (>= 20 %) as it
   shows in cases; the share the held engine also raised within those days, and its extra delay.
+- *Real rises with a testing change on the same day*: the same regions' infections observed
+  again (the demo's observation models, new draws) with the testing change put on the day
+  their first step up of R (>= 20 %) shows in cases; the raises without the hold within 28
+  days of it, the share the held engine also raised, its extra delay, and the share raised
+  while the hold was on (admissions agreed) rather than after its 14 days.
 
 Not a benchmark of speed and not a test; it measures the method on invented data.
 """
@@ -33,7 +38,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from demo_seed.observation import hospital_admissions  # noqa: E402
+from demo_seed.observation import case_reports, hospital_admissions, lab_tests  # noqa: E402
 from demo_seed.steps import simulate_steps  # noqa: E402
 from rules import IndicatorSeries, evaluate, parse_ruleset  # noqa: E402
 from server.indicators.testing_known import testing_changes_as_known  # noqa: E402
@@ -134,6 +139,53 @@ def run_seed(seed: int, regions: int, days: int) -> dict[str, list[float]]:
             out["real_kept"].append(float(kept.size > 0))
             if kept.size:
                 out["extra_delay"].append(float(kept[0] - ups[0]))
+    out.update(coinciding(sc, adm, seed, kwargs))
+    return out
+
+
+def coinciding(sc, adm: np.ndarray, seed: int, kwargs: dict) -> dict[str, list[float]]:  # type: ignore[no-untyped-def, type-arg]
+    """The testing change moved onto the day a real rise shows (see the module docstring)."""
+    regions, days = sc.cases.shape
+    rng = np.random.default_rng([seed, 35])
+    shown = np.full(regions, -1)
+    cases, tests, pos = (np.full((regions, days), np.nan) for _ in range(3))
+    for i in range(regions):
+        ups = [int(d + round(sc.report_shift)) for d, r in zip(sc.change_day[i],
+                                                               sc.change_ratio[i], strict=True)
+               if d >= 0 and r >= 1.2]
+        if not ups:
+            continue
+        shown[i] = ups[0]
+        rep = case_reports(sc.infections[i:i + 1], sc.dates, shown[i], rng)
+        lab = lab_tests(rep.final, sc.population[i:i + 1], sc.dates, shown[i], rng)
+        cases[i], tests[i], pos[i] = rep.final[0], lab.tests[0], lab.positives[0]
+    rows = np.flatnonzero(shown >= 0)
+    out: dict[str, list[float]] = {"both": [], "both_kept": [], "both_delay": [],
+                                   "both_during": []}
+    if not rows.size:
+        return out
+    known = testing_changes_as_known(tests[rows], pos[rows])
+    series = {
+        "case_growth": IndicatorSeries(estimate=week_on_week(cases[rows])),
+        "admission_growth": IndicatorSeries(estimate=week_on_week(adm[rows])),
+        "testing_change": IndicatorSeries(estimate=known.since, size=known.tests_ratio),
+    }
+    kw = {**kwargs, "regions": [f"R{i}" for i in rows]}
+    free = evaluate(parse_ruleset(POLICY), series, **kw)
+    held = evaluate(parse_ruleset(POLICY + HOLD), series, **kw)
+    for k, (f_up, h_up) in enumerate(zip(raise_days(free.decided), raise_days(held.decided),
+                                         strict=True)):
+        s0 = int(shown[rows[k]])
+        ups = f_up[(f_up >= s0) & (f_up < s0 + 28)]
+        if not ups.size:
+            continue
+        out["both"].append(1.0)
+        kept = h_up[(h_up >= s0) & (h_up < s0 + 28)]
+        out["both_kept"].append(float(kept.size > 0))
+        if kept.size:
+            out["both_delay"].append(float(kept[0] - ups[0]))
+            since = known.since[k, kept[0]]
+            out["both_during"].append(float(0 <= since < HOLD_DAYS))
     return out
 
 
@@ -171,6 +223,12 @@ def main() -> None:
     print(f"real rises (R up >= 20 %) still raised with the hold: {np.mean(total['real_kept']):.1%}"
           f" of {len(total['real'])}; extra delay median {np.median(extra):.0f}, "
           f"max {extra.max():.0f} days")
+    both = np.array(total["both_delay"])
+    print(f"real rises with a testing change the same day, still raised with the hold: "
+          f"{np.mean(total['both_kept']):.1%} of {len(total['both'])}; extra delay median "
+          f"{np.median(both):.0f}, 90th percentile {np.percentile(both, 90):.0f}, max "
+          f"{both.max():.0f} days; raised while the hold was on (admissions agreed): "
+          f"{np.mean(total['both_during']):.1%}")
 
 
 if __name__ == "__main__":
