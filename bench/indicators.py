@@ -58,6 +58,8 @@ from server.indicators.nowcast import (
     triangle_from_rows,
     triangle_from_vintages,
 )
+from server.indicators.testing import detect_testing_changes
+from server.indicators.testing_known import testing_changes_as_known
 from server.services.district_nowcasts import NOWCAST_PERIOD
 
 RT_TARGET_S = 1.0
@@ -392,6 +394,18 @@ def main() -> None:
 
     bench("icu projection", run_icu,
           lambda: baseline_icu(a0[:sample], a0[:sample] * 9, np.full(sample, 0.01), los.survival))
+    # testing changes as known each day (the testing_change kind); baseline: the whole-series
+    # screen (server.indicators.testing) re-run on the days up to each day, timed on every 28th
+    # day of 2 regions and scaled
+    pos = np.minimum(cases, tests)
+    as_known_days = range(60, days, 28)
+
+    def rerun_daily() -> None:
+        for d in as_known_days:
+            detect_testing_changes(tests[:2, : d + 1], pos[:2, : d + 1], population=[1e5] * 2)
+
+    bench("testing changes (known)", lambda: testing_changes_as_known(tests, pos), rerun_daily,
+          base_scale=regions / 2 * days / len(as_known_days))
     nowcast_section(bench, cases, regions, days, sample)
     p_wall, p_cpu, p_base = phase_section(regions, min(days, PHASE_DAYS), sample)
     rows.append(("wave phase", p_wall, p_cpu, p_base))

@@ -100,6 +100,10 @@ class Evaluation:
         decided the day before). An unknown day ends the run; a day whose gate fails freezes it.
     prepare, prepare_run : arrays ``(signals, regions, days)``
         Whether each prepare signal shows, and its current run length.
+    testing_held : bool array
+        The policy's ``testing_hold`` took an escalation away that day: the case-based
+        criteria alone called for a higher candidate within the days after a testing change
+        and no criterion independent of testing agreed (all False without the option).
 
     Notes
     -----
@@ -134,6 +138,7 @@ class Evaluation:
     start_in_force: NDArray[np.int32]
     final_state: EngineState
     criterion_levels: CriterionLevels = field(repr=False)
+    testing_held: NDArray[np.bool_] = field(default_factory=lambda: np.zeros((0, 0), bool))
 
     def explain(self, region_index: int, day_index: int) -> Explanation:
         """Structured explanation and one or two sentences for one region and day."""
@@ -200,6 +205,20 @@ def _gates(
         for cid in gate.known:
             out[g] &= lv.known[:, ids.index(cid), :].T
     return out
+
+
+def _hold_days(ruleset: Ruleset, indicators: Mapping[str, IndicatorSeries]
+               ) -> tuple[NDArray[np.bool_] | None, list[int], list[int]]:
+    """(days, regions) within the testing hold, held and agreeing criterion indices."""
+    hold = ruleset.testing_hold
+    if hold is None:
+        return None, [], []
+    ids = [c.id for c in ruleset.criteria]
+    since = indicators[hold.indicator].estimate
+    with np.errstate(invalid="ignore"):
+        on = (since >= 0) & (since < hold.days)
+    return (np.ascontiguousarray(on.T), [ids.index(c) for c in hold.criteria],
+            [ids.index(c) for c in hold.unless])
 
 
 def evaluate(
@@ -269,6 +288,10 @@ def evaluate(
     tiers = state.tiers
     conds = list(zip(lv.cond_source, lv.cond_level, lv.cond_target, strict=True))
     band = np.empty((n_c, n_r), dtype=np.int8)
+    hold_on, held_idx, unless_idx = _hold_days(ruleset, indicators)
+    hold_any: NDArray[np.bool_] = (np.zeros(n_d, dtype=bool) if hold_on is None
+                                   else np.asarray(hold_on.any(axis=1)))
+    testing_held = np.zeros((n_d, n_r), dtype=bool)
     for d in range(n_d):
         kn = lv.known[d]
         held = tiers.tier.astype(np.int8)  # the tier already held: kept while exit is met
@@ -281,6 +304,17 @@ def evaluate(
             np.copyto(cur[tgt], alt, where=on)
         np.copyto(cur, prev, where=unknown[d])  # unknown: level carried
         low, high = candidate_bounds(cur, kn, max_level, comb, weights, cutoffs)
+        if hold_any[d]:  # case-based escalations held after a testing change
+            assert hold_on is not None
+            hold_now = hold_on[d].copy()
+            if unless_idx:
+                hold_now &= ~np.any(kn[unless_idx] & (cur[unless_idx] > held), axis=0)
+            capped = cur.copy()
+            capped[held_idx] = np.where(hold_now, np.minimum(cur[held_idx], held),
+                                        cur[held_idx])
+            free = low
+            low, high = candidate_bounds(capped, kn, max_level, comb, weights, cutoffs)
+            testing_held[d] = hold_now & (free > np.maximum(low, held))
         ok = ok_t[d]
         a_out, b_out = above_out[d], below_out[d]
         np.add(above, 1, out=a_out)
@@ -339,4 +373,5 @@ def evaluate(
         start_in_force=np.asarray(start_in_force, dtype=np.int32).copy(),
         final_state=final,
         criterion_levels=lv,
+        testing_held=testing_held.T.copy(),
     )

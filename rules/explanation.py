@@ -21,6 +21,10 @@ its number (:meth:`~rules.ruleset.Ruleset.tier_name`), as the pages do:
 * a day a gate fails (tier -1, named by no number): "Insufficient data on 2031-05-14: tests 100
   per 100 000, needs at least 150 per 100 000."
 
+Within a policy's ``testing_hold`` days after a testing change the sentence ends "Testing: tests
+rose 60% from 2031-03-02: part of the rise in cases reflects more testing."; a day on which the
+hold took an escalation away reads "Held at Baseline (0): held back by testing change (...)".
+
 A threshold of the tier the sentence is about is "the enter threshold 150"; one of another tier
 names that tier: "the High (2) enter threshold 150". Unknown criteria follow "Unknown:", active
 prepare signals "Prepare:". A known criterion whose value is a nowcast is named after
@@ -36,7 +40,14 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from rules.formatting import level_names, number_text, reading_text, value_text, with_unit
+from rules.formatting import (
+    change_text,
+    level_names,
+    number_text,
+    reading_text,
+    value_text,
+    with_unit,
+)
 from rules.levels import (
     REASON_INVALID,
     REASON_MISSING,
@@ -52,7 +63,7 @@ from rules.ruleset import INSUFFICIENT_DATA
 if TYPE_CHECKING:
     from rules.evaluation import Evaluation
 
-__all__ = ["Explanation", "explain", "signal_message"]
+__all__ = ["Explanation", "explain", "signal_message", "testing_text"]
 
 _REASONS = {
     0: "ok",
@@ -372,6 +383,42 @@ def _held(ev: Evaluation, r: int, d: int, tier: int, items: list[dict[str, Any]]
     return held_by
 
 
+def _testing_change(ev: Evaluation, r: int, d: int) -> dict[str, Any] | None:
+    """The testing change known on day ``d`` within the policy's ``testing_hold`` days (None:
+    none, or no such option)."""
+    hold = ev.ruleset.testing_hold
+    if hold is None:
+        return None
+    series = ev.indicators[hold.indicator]
+    since = _num(series.estimate[r, d])
+    if since is None or not 0 <= since < hold.days:
+        return None
+
+    def at(values: Any) -> float | None:
+        return None if values is None else _num(values[r, d])
+
+    return {
+        "date": str(ev.dates[d] - np.timedelta64(int(since), "D")),
+        "days_since": int(since),
+        "tests_ratio": at(series.size),
+        "tests_ratio_lower": at(series.lower),
+        "tests_ratio_upper": at(series.upper),
+        "held": bool(ev.testing_held.size and ev.testing_held[r, d]),
+    }
+
+
+def testing_text(change: dict[str, Any]) -> str:
+    """"Testing: tests rose 60% from 2031-03-02: part of the rise in cases reflects more
+    testing." (or the fall, with less testing)."""
+    ratio = change.get("tests_ratio")
+    if ratio is None:
+        return f"Testing: testing changed from {change['date']}."
+    more = ratio >= 1
+    return (f"Testing: tests {change_text(ratio)} from {change['date']}: part of the "
+            f"{'rise' if more else 'fall'} in cases reflects {'more' if more else 'less'} "
+            "testing.")
+
+
 def _pending(ev: Evaluation, r: int, d: int) -> int | None:
     """Day index of a decided move not yet in force on day ``d`` (None when there is none)."""
     delay = ev.ruleset.timing.effective_delay_days
@@ -436,6 +483,13 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         held_by.append(f"{to} in force from {effective}")
     else:
         held_by = _held(ev, r, d, decided, items)
+        if ev.testing_held.size and ev.testing_held[r, d]:
+            hold = rs.testing_hold
+            push = [_describe(ev, it, decided, named=decided + 1) for it in items
+                    if hold is not None and it["id"] in hold.criteria and it["known"]
+                    and it["level"] > decided]
+            held_by.insert(0, "held back by testing change"
+                           + (f" ({'; '.join(push)})" if push else ""))
         mentioned_unknown = any("data" in h or "nowcast" in h or "incomplete" in h for h in held_by)
         action = "held" if held_by else "unchanged"
         if held_by:
@@ -450,6 +504,9 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         nowcasts = [it for it in items if it["known"] and it["nowcast"]]
         if nowcasts:
             sentence += " Nowcast: " + "; ".join(_nowcast_text(ev, it) for it in nowcasts) + "."
+    testing = _testing_change(ev, r, d)
+    if testing is not None:
+        sentence += " " + testing_text(testing)
     active = [s for s in signals if s["active"]]
     if active:
         sentence += " Prepare: " + " ".join(
@@ -481,6 +538,7 @@ def explain(ev: Evaluation, r: int, d: int) -> Explanation:
         "gates": gates,
         "prepare": signals,
         "held_by": held_by,
+        "testing_change": testing,
         "sentence": sentence,
     }
     return Explanation(data=data, sentence=sentence)

@@ -15,7 +15,7 @@ from rules.model import IndicatorSpec
 
 __all__ = ["CATEGORIES", "INTENSITY_LEVEL_NAMES", "MISSING", "NO_INTERVAL", "category_label",
            "interval_text", "level_names",
-           "number_text", "reading_text", "value_text", "with_unit"]
+           "number_text", "reading_text", "change_text", "value_text", "with_unit"]
 
 #: A value that is not known (None or not finite upstream).
 MISSING = "n/a"
@@ -92,3 +92,10 @@ def reading_text(spec: IndicatorSpec, value: float | None, lower: float | None,
     if spec.unit.startswith("%"):
         return with_unit(spec, text) + interval
     return with_unit(spec, text + interval)
+
+
+def change_text(ratio: float) -> str:
+    """A factor as the change it makes, in whole per cent: 1.6 -> "rose 60%", 0.7 -> "fell
+    30%" (a change under 0.5 % reads "rose 0%")."""
+    pct = (ratio - 1.0) * 100.0
+    return f"rose {pct:.0f}%" if pct >= 0 else f"fell {-pct:.0f}%"

@@ -28,6 +28,7 @@ from rules.model import (
     Override,
     PrepareSignal,
     Scenario,
+    TestingHold,
     Thresholds,
     Tier,
     TierText,
@@ -55,6 +56,7 @@ _TOP_OPTIONAL = (
     "prepare",
     "scenarios",
     "level",
+    "testing_hold",
 )
 _THRESHOLD_KEYS = ("enter", "exit", "strict", "enter_strict", "exit_strict")
 
@@ -149,6 +151,7 @@ def _read_root(
         _read_combination(r, top["combination"]) if "combination" in top else Combination()
     )
     timing = _read_timing(r, top["timing"]) if "timing" in top else Timing()
+    hold = _read_testing_hold(r, top["testing_hold"]) if "testing_hold" in top else False
     parts = (
         name,
         version,
@@ -164,6 +167,7 @@ def _read_root(
         combination,
         timing,
         level,
+        hold,
     )
     if r.errors or any(p is None for p in parts):
         return None
@@ -186,6 +190,7 @@ def _read_root(
         prepare=prepare,
         scenarios=scenarios,
         level=level,
+        testing_hold=hold or None,
         text=text,
         source=source,
     )
@@ -656,3 +661,19 @@ def _read_timing(r: NodeReader, node: yaml.Node) -> Timing | None:
     if any(v is None for v in kwargs.values()):
         return None
     return r.build(node, path, Timing, **kwargs)
+
+
+def _read_testing_hold(r: NodeReader, node: yaml.Node) -> TestingHold | None:
+    path: Path = ("testing_hold",)
+    m = r.mapping(node, path, required=("indicator", "days", "criteria"), optional=("unless",))
+    if m is None or not {"indicator", "days", "criteria"} <= set(m):
+        return None
+    kwargs: dict[str, Any] = {
+        "indicator": r.text(m["indicator"], path + ("indicator",)),
+        "days": r.integer(m["days"], path + ("days",), minimum=1),
+        "criteria": r.text_list(m["criteria"], path + ("criteria",)),
+        "unless": r.text_list(m["unless"], path + ("unless",)) if "unless" in m else (),
+    }
+    if any(v is None for v in kwargs.values()):
+        return None
+    return r.build(node, path, TestingHold, **kwargs)

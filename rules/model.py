@@ -31,6 +31,7 @@ __all__ = [
     "Override",
     "PrepareSignal",
     "Scenario",
+    "TestingHold",
     "Thresholds",
     "Tier",
     "TierText",
@@ -581,3 +582,35 @@ class Scenario:
             _finite(("change",), self.value)
             if self.value <= 0:
                 raise FieldError(("change",), f"expected a factor above 0, got {self.value}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class TestingHold:
+    """Hold case-based escalations for ``days`` days after a detected testing change.
+
+    ``indicator`` gives, per region and day, the days since the first day of the latest testing
+    change known that day (a ``testing_change`` indicator; missing: none). While it is below
+    ``days``, the ``criteria`` (those that count cases, whose rise may only reflect more
+    testing) cannot raise the tier above the one held, unless one of the ``unless`` criteria
+    (indicators that do not depend on testing: positivity, admissions, wastewater) is itself
+    above the tier held that day. Falls are never held.
+    """
+
+    __test__ = False  # not a pytest class despite its name
+
+    indicator: str
+    days: int
+    criteria: tuple[str, ...]
+    unless: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        _identifier(("indicator",), self.indicator)
+        _nonneg_int(("days",), self.days, 1)
+        if not self.criteria:
+            raise FieldError(("criteria",), "names no criterion to hold")
+        for key in ("criteria", "unless"):
+            for i, cid in enumerate(getattr(self, key)):
+                _identifier((key, i), cid)
+        for i, cid in enumerate(self.unless):
+            if cid in self.criteria:
+                raise FieldError(("unless", i), f"{cid!r} is also a held criterion")

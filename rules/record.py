@@ -30,6 +30,7 @@ __all__ = [
     "ExplanationRecord",
     "GateState",
     "SignalState",
+    "TestingChangeNote",
     "read_criteria",
     "read_explanation",
 ]
@@ -90,6 +91,21 @@ class SignalState:
 
 
 @dataclass(frozen=True, kw_only=True)
+class TestingChangeNote:
+    """The testing change known on the day, within the policy's ``testing_hold`` days."""
+
+    __test__ = False  # not a pytest class despite its name
+
+    date: date
+    days_since: int
+    tests_ratio: float | None
+    tests_ratio_lower: float | None
+    tests_ratio_upper: float | None
+    #: the hold took an escalation away that day
+    held: bool
+
+
+@dataclass(frozen=True, kw_only=True)
 class ExplanationRecord:
     """Why a region has its tier on a day, as stored with its assessment."""
 
@@ -110,6 +126,8 @@ class ExplanationRecord:
     prepare: tuple[SignalState, ...]
     held_by: tuple[str, ...]
     sentence: str
+    #: None in rows written before testing changes were explained (and on other days)
+    testing_change: TestingChangeNote | None = None
 
     @property
     def basis_day(self) -> date:
@@ -179,6 +197,7 @@ def read_explanation(stored: Mapping[str, Any], *, tier: int | None = None
     if tier is None:
         raise StoredExplanationError("data.tier", "missing")
     c = data.get("counters") or {}
+    tc = data.get("testing_change")
     decided_on = data.get("decided_on")
     effective = data.get("effective_date")
     return ExplanationRecord(
@@ -202,4 +221,12 @@ def read_explanation(stored: Mapping[str, Any], *, tier: int | None = None
                       for s in data.get("prepare") or ()),
         held_by=tuple(str(h) for h in data.get("held_by") or ()),
         sentence=str(stored.get("sentence", data.get("sentence", ""))),
+        testing_change=None if not tc else TestingChangeNote(
+            date=_date(tc.get("date"), "data.testing_change.date"),
+            days_since=int(tc.get("days_since", 0)),
+            tests_ratio=_float(tc.get("tests_ratio")),
+            tests_ratio_lower=_float(tc.get("tests_ratio_lower")),
+            tests_ratio_upper=_float(tc.get("tests_ratio_upper")),
+            held=bool(tc.get("held", False)),
+        ),
     )

@@ -22,6 +22,7 @@ from rules.model import (
     Override,
     PrepareSignal,
     Scenario,
+    TestingHold,
     Thresholds,
     Tier,
     Timing,
@@ -61,6 +62,7 @@ class Ruleset:
     #: The regions it assigns tiers to (:data:`~rules.model.POLICY_LEVELS`): their indicators
     #: are computed from counts summed over each region's districts.
     level: str = "districts"
+    testing_hold: TestingHold | None = None
     text: str = ""
     source: str = "<string>"
     sha256: str = field(init=False)
@@ -131,6 +133,7 @@ class Ruleset:
                 )
         _unique_seq([s.id for s in self.prepare], "prepare")
         self._check_scenarios()
+        self._check_testing_hold(names, ids)
         _unique_seq([g.id for g in self.gates], "gates")
 
     def _check_scenarios(self) -> None:
@@ -148,6 +151,18 @@ class Ruleset:
             if isinstance(horizon, int) and horizon > MAX_HORIZON:
                 raise FieldError(("indicators", ind.name, "params", "horizon"),
                                  f"{horizon} days is beyond the longest horizon of {MAX_HORIZON}")
+
+    def _check_testing_hold(self, names: list[str], ids: list[str]) -> None:
+        hold = self.testing_hold
+        if hold is None:
+            return
+        if hold.indicator not in names:
+            raise FieldError(("testing_hold", "indicator"),
+                             f"{hold.indicator!r} is not a declared indicator")
+        for key in ("criteria", "unless"):
+            for i, cid in enumerate(getattr(hold, key)):
+                if cid not in ids:
+                    raise FieldError(("testing_hold", key, i), f"{cid!r} is not a criterion")
 
     def scenario(self, name: str) -> Scenario:
         """The declared scenario called ``name``."""
@@ -221,6 +236,8 @@ class Ruleset:
         used = {c.indicator for c in self.criteria}
         used |= {g.indicator for g in self.gates if g.indicator is not None}
         used |= {s.indicator for s in self.prepare}
+        if self.testing_hold is not None:
+            used.add(self.testing_hold.indicator)
         return tuple(ind.name for ind in self.indicators if ind.name in used)
 
 

@@ -10,7 +10,9 @@ window are still incomplete) and ``nowcast_basis`` (per region, whose reports th
 let explanations say so. ``invalid`` flags values that rest on input the caller found unusable (a
 stored count that is not a whole number, say): unknown, explained as ``invalid``. ``no_baseline``
 flags values missing because the indicator's baseline does not exist yet (fewer past seasons
-than a seasonal intensity needs): unknown, explained as ``no baseline``.
+than a seasonal intensity needs): unknown, explained as ``no baseline``. ``size`` is the size of
+a dated change an indicator counts days from (a ``testing_change``: tests after / before), for
+the explanation.
 """
 
 from __future__ import annotations
@@ -54,6 +56,8 @@ class IndicatorSeries:
         True where the value rests on unusable input data (unknown to the engine).
     no_baseline : bool array, (regions, days), optional
         True where no value exists because its baseline is too short (unknown to the engine).
+    size : array, (regions, days), optional
+        Size of the dated change the value counts days from (tests after / before).
     """
 
     estimate: FloatArray
@@ -67,11 +71,12 @@ class IndicatorSeries:
     nowcast_basis: tuple[str, ...] | None = None
     invalid: BoolArray | None = None
     no_baseline: BoolArray | None = None
+    size: FloatArray | None = None
 
     def __post_init__(self) -> None:
         est = _float2d("estimate", self.estimate)
         object.__setattr__(self, "estimate", est)
-        for name in ("lower", "upper", "count", "age_days", "nowcast_days"):
+        for name in ("lower", "upper", "count", "age_days", "nowcast_days", "size"):
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, _float2d(name, value, est.shape))

@@ -78,6 +78,11 @@ def summary(ruleset: Ruleset) -> str:
         f"at least {t.min_days_in_tier} day(s) in tier, at most {steps} step(s) down, "
         f"effective after {t.effective_delay_days} day(s)"
     )
+    hold = rs.testing_hold
+    if hold is not None:
+        unless = f" unless {' or '.join(hold.unless)} agree" if hold.unless else ""
+        out.append(f"Testing hold: {', '.join(hold.criteria)} cannot raise the tier for "
+                   f"{hold.days} day(s) after a testing change ({hold.indicator}){unless}")
     for g in rs.gates:
         cond_text = (
             f"{g.indicator} {g.op} {g.value:g}"

@@ -14,14 +14,15 @@ from datetime import date
 import plotly.graph_objects as go
 
 from server.services.capacity_pages import AreaCapacity, Fan
+from server.services.district_marks import DistrictMarks
 from server.services.district_nowcasts import NowcastSeries
 from server.services.dossier import CriterionSeries, DistrictDossier
 from server.services.event_effects import EventEffect
 from web.palette import INK, OUTLINE, tier_colours
 
 __all__ = [
-    "admissions_fan_figure", "capacity_fan_figure", "criterion_figure", "effects_figure",
-    "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
+    "add_marks", "admissions_fan_figure", "capacity_fan_figure", "chart_marks", "criterion_figure",
+    "effects_figure", "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
 ]
 
 _LAYOUT = {
@@ -220,6 +221,37 @@ def effects_figure(events: Sequence[EventEffect], columns: int = 4) -> go.Figure
     fig.update_layout(title={"text": "R before and after each event (95% intervals)", "x": 0},
                       **layout)
     fig.update_annotations(font={"size": 11})
+    return fig
+
+
+#: How each kind of mark is drawn: colour, dash.
+MARK_STYLES = {"break": ("#5b6770", "dot"), "event": ("#6f5f9e", "solid"),
+               "testing": ("#b06000", "dash")}
+
+
+def chart_marks(marks: DistrictMarks, start: date, end: date
+                ) -> list[tuple[date, str, str]]:
+    """(day, style, label) of the marks within ``start..end``: breaks in cases, events (tier
+    changes and recorded events) and testing changes (a dismissed one says so)."""
+    out = [(b.day, "break", "break") for b in marks.breaks]
+    out += [(e.day, "event", e.kind.replace("_", " ")) for e in marks.events]
+    out += [(t.day, "testing", "testing change" + (
+        " (dismissed)" if t.verdict is not None and t.verdict.verdict == "dismissed" else ""))
+        for t in marks.testing]
+    return sorted(m for m in out if start <= m[0] <= end)
+
+
+def add_marks(fig: go.Figure, marks: DistrictMarks, start: date, end: date) -> go.Figure:
+    """Vertical lines with a label at the top for every mark of :func:`chart_marks` (the page
+    lists the same marks with their estimates in a table under the charts)."""
+    for day, style, label in chart_marks(marks, start, end):
+        colour, dash = MARK_STYLES[style]
+        x = day.isoformat()
+        fig.add_shape(type="line", xref="x", yref="paper", x0=x, x1=x, y0=0, y1=1,
+                      line={"color": colour, "width": 1.5, "dash": dash}, name=label)
+        fig.add_annotation(x=x, y=1, xref="x", yref="paper", text=label, showarrow=False,
+                           textangle=-90, xanchor="right", yanchor="top",
+                           font={"size": 10, "color": colour})
     return fig
 
 

@@ -5,19 +5,23 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable
 from datetime import date, datetime
+from typing import Annotated
 
-from fastapi import APIRouter, Request
-from fastapi.responses import HTMLResponse, Response
+from fastapi import APIRouter, Form, HTTPException, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 
 from server.services.area_tiers import above_district, region_tiers
 from server.services.capacity_pages import area_capacity, district_forecast
+from server.services.district_marks import district_marks
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
 from server.services.forecast_record import record_lines
 from server.services.morning import MorningOverview, morning_overview
 from server.services.phase_indicators import district_phase
+from server.services.testing_reviews import TestingReviewError, review_testing_change
 from web.charts import (
+    add_marks,
     admissions_fan_figure,
     capacity_fan_figure,
     criterion_figure,
@@ -25,7 +29,7 @@ from web.charts import (
     nowcast_figure,
     timeline_figure,
 )
-from web.deps import PageNumber, SessionDep, SettingsDep, StaffDep
+from web.deps import CsrfDep, PageNumber, RecordEventDep, SessionDep, SettingsDep, StaffDep
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -99,10 +103,17 @@ def district(
     now = next((t for t in reversed(dossier.official) if t is not None), None)
     if now is None and dossier.recommended:
         now = dossier.recommended[-1]
-    charts = [figure_json(criterion_figure(c, dossier.tier_names, now)) for c in dossier.criteria]
+    marks = district_marks(session=session, code=dossier.code, start=dossier.start,
+                           end=dossier.end)
+
+    def marked(fig: object) -> str:
+        return figure_json(add_marks(fig, marks, dossier.start, dossier.end))
+
+    charts = [marked(criterion_figure(c, dossier.tier_names, now)) for c in dossier.criteria]
     forecast = district_forecast(session=session, code=code)
     return render(request, "staff/district.html", {
-        "d": dossier, "charts": charts, "timeline": figure_json(timeline_figure(dossier)),
+        "d": dossier, "charts": charts, "timeline": marked(timeline_figure(dossier)),
+        "marks": marks,
         "nowcast": figure_json(nowcast_figure(dossier.nowcast)) if dossier.nowcast else None,
         "phase": district_phase(session=session, code=dossier.code, end=dossier.last_day),
         "forecast": forecast,
@@ -110,6 +121,24 @@ def district(
         if forecast else [],
         "above": above_district(session=session, code=dossier.code),
     })
+
+
+@router.post("/district/{code}/testing-review", response_model=None)
+def testing_review(
+    code: str, session: SessionDep, settings: SettingsDep, user: RecordEventDep, _csrf: CsrfDep,
+    change_day: Annotated[str, Form()], verdict: Annotated[str, Form()],
+    note: Annotated[str, Form()] = "",
+) -> Response:
+    """Confirm or dismiss a detected testing change (audit-logged); back to the district."""
+    try:
+        day = date.fromisoformat(change_day.strip())
+        review_testing_change(session=session, user=user.name, region=code, change_day=day,
+                              verdict=verdict, note=note, time_zone=settings.time_zone)
+    except ValueError as exc:  # TestingReviewError or a day that is not YYYY-MM-DD
+        detail = str(exc) if isinstance(exc, TestingReviewError) else (
+            f"change_day: {change_day!r} is not an ISO date (YYYY-MM-DD)")
+        raise HTTPException(status_code=422, detail=detail) from None
+    return RedirectResponse(f"/staff/district/{code}#marks-h", status_code=303)
 
 
 @router.get("/areas/{code}/capacity", response_class=HTMLResponse)

@@ -332,6 +332,15 @@ PATTERNS: tuple[tuple[str, str], ...] = (
     (r"^(?P<k>\d+) of (?P<n>\d+)$", N_("%(k)s of %(n)s")),
     (r"^(?P<days>\d+) \(minimum (?P<minimum>\d+)\)$", N_("%(days)s (minimum %(minimum)s)")),
     (r"Prepare:", N_("Prepare:")),
+    (rf"Testing: tests rose (?P<pct>\d+)% from (?P<day>{_DAY}): part of the rise in cases "
+     r"reflects more testing\.",
+     N_("Testing: tests rose %(pct)s%% from %(day)s: part of the rise in cases reflects more "
+        "testing.")),
+    (rf"Testing: tests fell (?P<pct>\d+)% from (?P<day>{_DAY}): part of the fall in cases "
+     r"reflects less testing\.",
+     N_("Testing: tests fell %(pct)s%% from %(day)s: part of the fall in cases reflects less "
+        "testing.")),
+    (r"held back by testing change", N_("held back by testing change")),
 )
 _COMPILED = tuple((re.compile(p), m) for p, m in PATTERNS)
 _NUMBER = re.compile(r"(?<=\d)\.(?=\d)")

@@ -35,6 +35,7 @@ from server.indicators._arrays import trailing_sum
 from server.indicators.nowcast import WindowNowcast, nowcast_window
 from server.services.district_nowcasts import NowcastInput, nowcast_inputs, nowcast_measures
 from server.services.stored_values import BadValue, clean_arrays
+from server.services.testing_reviews import dismissals
 from server.store import read_dense
 from server.store.models import Catchment, Measure, Region
 from server.store.reads import feed_last_dates
@@ -87,6 +88,9 @@ class DistrictData:
     # wastewater target (one per pathogen) is judged on its own measures (``ww_plants``: all).
     plant_invalid: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
     plant_stale: Mapping[str, NDArray[np.bool_]] = field(default_factory=dict)
+    # Testing changes an analyst dismissed: (district code, change date, office day dismissed),
+    # read as known at ``as_of`` (:mod:`server.services.testing_reviews`).
+    testing_dismissals: tuple[tuple[str, date, date], ...] = ()
 
     def plants_invalid(self, *measures: str) -> NDArray[np.bool_]:
         """(districts, days): some plant serving the district had an unusable value of one of
@@ -268,6 +272,7 @@ def load_district_data(
         served=served, as_of=as_of, stale=stale, invalid=invalid, bad_values=tuple(found),
         plant_invalid=plant_bad, plant_stale=plants,
         measure_kinds=store_measures(session=session),
+        testing_dismissals=dismissals(session=session, as_of=as_of),
         nowcasts=nowcast_inputs(
             session=session, regions=codes, groups=parents, dates=district.dates, as_of=as_of,
             group_names={r[2]: r[3] for r in rows if r[2] is not None}, time_zone=time_zone,

@@ -64,6 +64,7 @@ from server.services.district_indicators import BUILDERS, carry_forward, data_ag
 from server.services.errors import ServiceError
 from server.services.phase_indicators import wave_phase_series
 from server.services.seasonal_indicators import seasonal_series
+from server.services.testing_indicators import testing_change_series
 
 __all__ = [
     "DEFAULTS",
@@ -771,3 +772,24 @@ register(from_named_builder(
     wave_phase_series, name="wave_phase", default_measure="cases", measure_kinds=_COUNTS,
     help="phase of the current wave from logistic/Richards fits (0 declining, 1 past its "
          "turning point, 2 slowing, 3 growing)"), default=True)
+def _testing_check(params: Mapping[str, ParamValue]) -> None:
+    if int(params["min_days"]) > int(params["compare"]):
+        raise FieldError(("params", "min_days"), f"{params['min_days']} is more than compare "
+                         f"{params['compare']}")
+
+
+register(Kind(
+    name="testing_change", builder=testing_change_series, default_measure="positives",
+    measure_kinds=_COUNTS, carry=False, check=_testing_check,
+    params=(Param(name="denominator", type="measure", default="tests", measure_kinds=_COUNTS,
+                  help="the tests the measure is positive among"),
+            Param(name="compare", type=int, default=7, minimum=1, maximum=7,
+                  help="most days after a change its size is estimated from"),
+            Param(name="min_days", type=int, default=3, minimum=1, maximum=7,
+                  help="days after a change before it is flagged"),
+            Param(name="min_ratio", type=float, default=1.2, above=1, maximum=10,
+                  help="smallest factor of tests (after / before, either way) flagged"),
+            Param(name="separation", type=int, default=28, minimum=7, maximum=366,
+                  help="days after a known change within which a flag is the same change")),
+    help="days since the first day of the latest testing change known that day (tests moved "
+         "against the same weekdays 1 and 2 weeks before, positivity the other way)"))

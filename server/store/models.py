@@ -246,6 +246,24 @@ class RecordedEvent(Base):
     recorded_at: Mapped[datetime] = mapped_column(UTCDateTime())
 
 
+class TestingChangeReview(Base):
+    """An analyst's verdict on a detected testing change of a district: ``confirmed`` or
+    ``dismissed``. Append-only; the newest verdict on a change counts from ``office_day`` (the
+    office's day it was given) on, never for the days before (as known)."""
+
+    __tablename__ = "testing_change_review"
+    __test__ = False  # not a pytest class despite its name
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    region_id: Mapped[int] = mapped_column(ForeignKey("region.id"), index=True)
+    change_day: Mapped[date] = mapped_column(Date)
+    verdict: Mapped[str] = mapped_column(String(16))
+    note: Mapped[str] = mapped_column(Text)
+    office_day: Mapped[date] = mapped_column(Date)
+    reviewed_by: Mapped[int | None] = mapped_column(ForeignKey("app_user.id"))
+    reviewed_at: Mapped[datetime] = mapped_column(UTCDateTime(), index=True)
+
+
 class AuditEntry(Base):
     """Append-only log of who did what."""
 

@@ -211,6 +211,7 @@ def _county(
         "rt": IndicatorSeries(estimate=z + 1, lower=z + rt_low, upper=z + 2),
         "gp_aberration": s(z),
         "icu_days_to_share": s(z + 22),  # 22: 85 % of ICU beds not within the 21 days projected
+        "testing_change": IndicatorSeries(estimate=z + np.nan),  # no testing change known
     }
     return evaluate(
         rs, ind, regions=[f"d{i}" for i in range(r)], dates=_dates(d), region_levels=levels

@@ -72,3 +72,27 @@ def test_effects_figure_draws_one_panel_per_ready_event_with_its_interval() -> N
     assert [a.text for a in fig.layout.annotations] == ["Invented 0 2026-03-01",
                                                         "Invented 2 2026-03-03"]
     assert effects_figure([_event("too_early", 1)]) is None
+
+
+def test_marks_are_vertical_lines_with_labels_inside_the_period_only() -> None:
+    from server.services.district_marks import BreakMark, DistrictMarks, TestingMark
+    from server.services.testing_reviews import Verdict
+    from web.charts import add_marks
+
+    day = date(2026, 3, 3)
+    marks = DistrictMarks(
+        breaks=(BreakMark(day=day, lower=day, upper=day, growth_change=(0.02, 0.01, 0.03)),
+                BreakMark(day=date(2026, 2, 1), lower=day, upper=day,
+                          growth_change=(0.02, 0.01, 0.03))),  # before the period: not drawn
+        breaks_known=True, events=(_event("ready", 1),),
+        testing=(TestingMark(day=date(2026, 3, 4), detected_on=date(2026, 3, 5),
+                             tests_ratio=(1.6, 1.4, 1.8), odds_ratio=0.7,
+                             verdict=Verdict(change_day=date(2026, 3, 4), verdict="dismissed",
+                                             note="n", by="ada", office_day=day)),))
+    fig = add_marks(criterion_figure(_series(), NAMES, 0), marks, date(2026, 3, 1),
+                    date(2026, 3, 5))
+    lines = [(s.x0, s.line.dash) for s in fig.layout.shapes]
+    assert lines == [("2026-03-02", "solid"), ("2026-03-03", "dot"), ("2026-03-04", "dash")]
+    assert [a.text for a in fig.layout.annotations] == [
+        "other", "break", "testing change (dismissed)"]  # the invented event is of kind other
+    assert all(s.yref == "paper" and (s.y0, s.y1) == (0, 1) for s in fig.layout.shapes)

@@ -1,0 +1,153 @@
+"""Read model: what the district page marks on its charts and lists under them.
+
+* *Breaks*: change points of the district's daily cases over the period shown and the 90 days
+  before, found as the effects page finds them
+  (:func:`server.indicators.changepoints.detect_changepoints`, default settings), with the
+  interval of each date and the change of the growth rate.
+* *Events*: published tier changes and recorded events of the district, its area and the county
+  in the period, with their before/after estimates (:func:`server.services.event_effects.
+  effects_page`; "too early to tell" until the data allow).
+* *Testing changes*: the changes the ``testing_change`` screen knew over the period
+  (:func:`server.indicators.testing_known.testing_changes_as_known`, as of the day each was
+  detected plus its estimation days), with the newest analyst verdict on each
+  (:mod:`server.services.testing_reviews`).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import numpy as np
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
+
+from server.indicators.changepoints import detect_changepoints
+from server.indicators.testing_known import testing_changes_as_known
+from server.services.event_effects import EventEffect, effects_page
+from server.services.testing_reviews import SAME_CHANGE_DAYS, Verdict, verdicts_of
+from server.store.models import Region
+from server.store.reads import read_dense
+
+__all__ = ["BreakMark", "DistrictMarks", "TestingMark", "district_marks"]
+
+#: Days before the period the break search and the testing screen also read.
+LEAD_DAYS = 90
+
+
+@dataclass(frozen=True, kw_only=True)
+class BreakMark:
+    """A detected break in the district's cases: its day (first day of the new segment) with
+    its interval, and the change of the daily growth rate with its interval."""
+
+    day: dt.date
+    lower: dt.date
+    upper: dt.date
+    growth_change: tuple[float, float, float]
+
+
+@dataclass(frozen=True, kw_only=True)
+class TestingMark:
+    """A testing change the screen knew: its first day, the day it was detected, tests after /
+    before (with interval) and the odds ratio of a positive test; the newest verdict on it."""
+
+    day: dt.date
+    detected_on: dt.date
+    tests_ratio: tuple[float, float, float]
+    odds_ratio: float
+    verdict: Verdict | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class DistrictMarks:
+    breaks: tuple[BreakMark, ...]
+    #: False when the break search could not run (too few days of cases)
+    breaks_known: bool
+    events: tuple[EventEffect, ...]
+    testing: tuple[TestingMark, ...]
+
+
+def _dense(session: Session, measure: str, code: str, first: dt.date, last: dt.date
+           ) -> np.ndarray | None:
+    try:
+        return read_dense(session=session, measures=[measure], start=first, end=last,
+                          regions=[code])[measure][0]
+    except LookupError:  # a measure the store does not hold
+        return None
+
+
+def _breaks(cases: np.ndarray | None, first: dt.date, start: dt.date
+            ) -> tuple[tuple[BreakMark, ...], bool]:
+    if cases is None:
+        return (), False
+    seen = np.flatnonzero(np.isfinite(cases))
+    if seen.size < 28:
+        return (), False
+    a, b = int(seen[0]), int(seen[-1]) + 1
+    try:
+        found = detect_changepoints(cases[a:b])
+    except ValueError:
+        return (), False
+
+    def day(j: float) -> dt.date:
+        return first + dt.timedelta(days=a + int(j))
+
+    out = []
+    for k in range(int(found.n_breaks[0])):
+        mark = BreakMark(
+            day=day(found.breaks[0, k]), lower=day(found.break_lower[0, k]),
+            upper=day(found.break_upper[0, k]),
+            growth_change=(float(found.growth_change[0, k]),
+                           float(found.growth_change_lower[0, k]),
+                           float(found.growth_change_upper[0, k])))
+        if mark.day >= start:
+            out.append(mark)
+    return tuple(out), True
+
+
+def _testing(tests: np.ndarray | None, positives: np.ndarray | None, first: dt.date,
+             start: dt.date, verdicts: tuple[Verdict, ...]) -> tuple[TestingMark, ...]:
+    if tests is None or positives is None or tests.size < 28:
+        return ()
+    with np.errstate(invalid="ignore"):
+        over = positives > tests
+    t, p = np.where(over, np.nan, tests), np.where(over, np.nan, positives)
+    known = testing_changes_as_known(t[None, :], p[None, :])
+    found = known.detected_day[0]
+    out = []
+    for detected in np.unique(found[found >= 0]):
+        days = np.flatnonzero(found == detected)
+        at = int(days[-1])  # the change as known on the last day it was the newest
+        change = first + dt.timedelta(days=int(known.change_day[0, at]))
+        if change < start:
+            continue
+        verdict = next((v for v in reversed(verdicts)
+                        if abs((v.change_day - change).days) <= SAME_CHANGE_DAYS), None)
+        out.append(TestingMark(
+            day=change, detected_on=first + dt.timedelta(days=int(detected)),
+            tests_ratio=(float(known.tests_ratio[0, at]), float(known.tests_ratio_lower[0, at]),
+                         float(known.tests_ratio_upper[0, at])),
+            odds_ratio=float(known.odds_ratio[0, at]), verdict=verdict))
+    return tuple(out)
+
+
+def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date
+                   ) -> DistrictMarks:
+    """Breaks, events and testing changes of district ``code`` from ``start`` to ``end``."""
+    first = start - dt.timedelta(days=LEAD_DAYS)
+    cases = _dense(session, "cases", code, first, end)
+    breaks, known = _breaks(cases, first, start)
+    parent = aliased(Region)
+    county = aliased(Region)
+    row = session.execute(
+        select(parent.code, county.code).select_from(Region)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .outerjoin(county, county.id == parent.parent_id)
+        .where(Region.code == code)).first()
+    mine = {code} | ({c for c in row if c is not None} if row is not None else set())
+    events = tuple(e for e in effects_page(session=session, start=start, end=end).events
+                   if e.region in mine)
+    testing = _testing(_dense(session, "tests", code, first, end),
+                       _dense(session, "positives", code, first, end), first, start,
+                       verdicts_of(session=session, code=code))
+    return DistrictMarks(breaks=breaks, breaks_known=known, events=events, testing=testing)
