@@ -12,7 +12,8 @@ For every row of a (regions, days) array of daily counts:
    since the wave start by Poisson maximum likelihood, the count of day ``t`` having mean
    ``C(t) - C(t - 1)``. All rows are fitted together by Levenberg-Marquardt steps on Fisher
    scoring (Marquardt 1963) with a common iteration count and per-row acceptance and convergence
-   masks, from several starting values taken from the data; the best likelihood wins.
+   masks, from several starting values taken from the data; the best likelihood wins (the
+   kernel, shared with the curve fit, is :mod:`server.indicators._richards`).
 3. **Diagnostics at the last day T** of each row: the share of the fitted final size reached,
    ``C(T) / K``, against the share at the turning point ``(1 + v)^(-1/v)`` (Richards 1959; 1/2
    for the logistic); the turning day ``t0``; and, from the data, the growth rate of the last
