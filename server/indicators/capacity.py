@@ -54,6 +54,9 @@ Z90 = 1.6448536269514722
 ScenarioKind = Literal["trend", "growth_to", "change"]
 AnyFloat = NDArray[np.floating]  # the simulation runs in single precision
 TARGETS = ("hosp_admissions", "icu_occupied", "icu_share")
+#: Kinds of bed a census can be forecast for: the targets are ``<beds>_occupied`` and
+#: ``<beds>_share`` (intensive care; general, "ward", beds).
+BEDS = ("icu", "ward")
 #: Prior standard deviation of the daily growth rate (normal, centred on 0): the fitted rate is
 #: combined with it by the normal-normal rule, r = r_hat tau^2 / (tau^2 + se^2), se^2 = tau^2
 #: se_hat^2 / (tau^2 + se_hat^2). 0.1 a day is a doubling or halving in about a week at one
@@ -322,6 +325,7 @@ def capacity_forecasts(
     levels: Sequence[float] = DEFAULT_LEVELS,
     shares: Sequence[float] = (85.0,),
     seed: int = 0,
+    beds: str = "icu",
 ) -> CapacityForecasts:
     """Simulated admissions, census and share of staffed beds, days 1..horizon, per scenario.
 
@@ -347,6 +351,10 @@ def capacity_forecasts(
         Shares of staffed beds (percent) whose crossing day is reported.
     seed : int
         Seed of the ``numpy.random.Generator`` (same seed, same forecasts).
+    beds : {"icu", "ward"}
+        The kind of bed ``occupied`` and ``staffed`` count; names the census targets
+        (``icu_occupied``/``icu_share`` or ``ward_occupied``/``ward_share``). The model is the
+        same; pass the kind's own ``los``.
 
     Returns
     -------
@@ -382,6 +390,9 @@ def capacity_forecasts(
         raise ValueError(f"regions: {len(regions)} names for {n} rows of admissions")
     if not scenarios:
         raise ValueError("scenarios: at least one scenario is needed")
+    if beds not in BEDS:
+        raise ValueError(f"beds: expected one of {BEDS}, got {beds!r}")
+    targets = ("hosp_admissions", f"{beds}_occupied", f"{beds}_share")
     los = los or length_of_stay()
     lv = np.asarray(levels, dtype=np.float64)
     capacity = occupied is not None and staffed is not None
@@ -394,7 +405,7 @@ def capacity_forecasts(
     rng = np.random.default_rng(seed)
     path_chol = census_correlation(los, horizon).T.astype(np.float32)
     out = {(t, s.name): np.full((n, horizon, lv.size), np.nan)
-           for t in TARGETS for s in scenarios}
+           for t in targets for s in scenarios}
     days = {(s.name, float(q)): np.full((3, n), np.nan) for s in scenarios for q in shares}
     for start in range(0, n, BLOCK):
         blk = slice(start, min(start + BLOCK, n))
@@ -439,11 +450,11 @@ def capacity_forecasts(
             new = np.minimum(path.new[..., 1:], MAX_MEAN)
             var = cur * (1.0 - stay) + new
             third = cur * (1.0 - stay) * (1.0 - 2.0 * stay) + new
-            beds = count_draws(rng, cur + new, var, third, z_occ)
-            qb = _quantiles(beds, lv)
+            in_bed = count_draws(rng, cur + new, var, third, z_occ)
+            qb = _quantiles(in_bed, lv)
             keep = census[:, None, None]
-            out[("icu_occupied", sc.name)][blk] = np.where(keep, qb, np.nan)
-            out[("icu_share", sc.name)][blk] = np.where(
+            out[(targets[1], sc.name)][blk] = np.where(keep, qb, np.nan)
+            out[(targets[2], sc.name)][blk] = np.where(
                 keep, 100.0 * qb / np.where(census, b0[blk], 1.0)[:, None, None], np.nan)
             # Crossing days from census paths whose count noise is correlated over the horizon
             # as a census is (census_correlation: the same patients stay).
@@ -457,7 +468,7 @@ def capacity_forecasts(
     forecasts = []
     horizons = np.arange(1, horizon + 1, dtype=np.int64)
     for sc in scenarios:
-        for t in TARGETS if capacity else TARGETS[:1]:
+        for t in targets if capacity else targets[:1]:
             forecasts.append(QuantileForecast(
                 target=t, scenario=sc.name, regions=tuple(regions), origin=origin,
                 horizons=horizons, levels=lv, values=out[(t, sc.name)]))
