@@ -18,6 +18,7 @@ from collections.abc import Callable
 import numpy as np
 import pandas as pd
 import statsmodels.api as sm
+from curves import curve_section  # bench/curves.py, beside this script
 from phase import PHASE_DAYS, phase_section  # bench/phase.py, beside this script
 from scipy import stats
 from statsmodels.nonparametric.smoothers_lowess import lowess
@@ -29,7 +30,6 @@ from server.indicators import (
     ears,
     estimate_delay,
     farrington_flexible,
-    fit_growth_curve,
     gamma_serial_interval,
     incidence_rate,
     length_of_stay,
@@ -412,12 +412,7 @@ def main() -> None:
     daily_total = sum(t for _, t, _, _ in rows)
     daily_cpu = sum(c for _, _, c, _ in rows)
 
-    curve_sample = min(sample, regions)
-    t_curve = timed(lambda: fit_growth_curve(cases[:curve_sample, -120:], n_boot=0)) * (
-        regions / curve_sample
-    )
-    print(f"{'curve fit (120 days)':<24} {t_curve:8.3f} s   scaled from {curve_sample} regions "
-          "(one fit per region; analyst tool, not in the daily set)")
+    curve_section(regions, min(days, 120), sample)  # analyst tool, not in the daily set
 
     print(f"daily indicator set:     {daily_total:8.3f} s  ({daily_cpu:7.3f} s cpu)")
     for name, value, target, note in (

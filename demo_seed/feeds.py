@@ -24,7 +24,7 @@ PUSH_FEEDS = ("long-csv", "gp-sentinel")
 #: measure -> the demo feed that delivers it
 FEED_OF_MEASURE: dict[str, str] = {
     "cases": "long-csv", "hosp_admissions": "long-csv", "icu_occupied": "long-csv",
-    "icu_staffed": "long-csv",
+    "icu_staffed": "long-csv", "ward_occupied": "long-csv", "ward_staffed": "long-csv",
     "tests": "lab-drop", "positives": "lab-drop",
     "ww_concentration": "wastewater-http", "ww_flow": "wastewater-http",
     "ww_marker": "wastewater-http",

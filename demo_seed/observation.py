@@ -21,12 +21,14 @@ __all__ = [
     "GpConsultations",
     "HospitalAdmissions",
     "IcuCensus",
+    "WardCensus",
     "LabTests",
     "AscertainmentChange",
     "case_reports",
     "gp_consultations",
     "hospital_admissions",
     "icu_census",
+    "ward_census",
     "lab_tests",
     "testing_change",
     "weekday",
@@ -42,6 +44,10 @@ HOSPITALISED_SHARE = 0.03
 INFECTION_TO_ADMISSION = (10.0, 4.0)
 ICU_SHARE = 0.18
 ICU_LOS_MEDIAN, ICU_LOS_SIGMA = 8.0, 0.71
+#: General (ward) beds: stays log-normal, median 6 days, quartiles about 4 and 9 (invented);
+#: staffed general beds per ICU bed of the region (invented).
+WARD_LOS_MEDIAN, WARD_LOS_SIGMA = 6.0, 0.6
+WARD_BEDS_PER_ICU_BED = 6.0
 GP_WEEKDAY = np.array([1.35, 1.10, 1.00, 1.00, 0.95, 0.15, 0.05])
 GP_BASELINE_PER_100K = 25.0
 GP_SHARE_OF_INFECTIONS = 0.10
@@ -254,6 +260,43 @@ def icu_census(admissions: np.ndarray, region_index: np.ndarray, beds: np.ndarra
                               surge_from)
     return IcuCensus(occupied=occupied, staffed=staffed, arrivals=arrivals,
                      transferred=transferred)
+
+
+@dataclass(frozen=True)
+class WardCensus:
+    """General-bed census per region, shape ``(regions, days)``: ``occupied`` patients with the
+    infection in a general (non-intensive-care) bed at the daily census, ``staffed`` staffed
+    general beds (for all patients, not only these)."""
+
+    occupied: np.ndarray
+    staffed: np.ndarray
+
+
+def ward_census(admissions: np.ndarray, region_index: np.ndarray, icu_beds: np.ndarray,
+                rng: np.random.Generator) -> WardCensus:
+    """General-bed occupancy of the infection's patients and staffed general beds.
+
+    Notes
+    -----
+    Every hospital admission takes a general bed on its admission day for a log-normal stay
+    (median ``WARD_LOS_MEDIAN`` days; those later moved to intensive care included: the demo
+    keeps it simple). Staffed general beds are ``WARD_BEDS_PER_ICU_BED`` times the region's
+    base ICU beds with small step changes; all numbers invented. The infection's patients
+    share them with everyone else, so their census is far below the staffed beds; no overflow.
+    """
+    n_regions = icu_beds.shape[0]
+    days = admissions.shape[1]
+    onehot = (region_index[None, :] == np.arange(n_regions)[:, None]).astype(float)
+    arrivals = (onehot @ admissions).astype(np.int64)
+    los = discretised_lognormal(WARD_LOS_MEDIAN, WARD_LOS_SIGMA, max_lag=45)
+    los[1] += los[0]  # a stay of under half a day still uses the bed
+    los[0] = 0.0
+    schedule = np.zeros((n_regions, days + los.shape[0]))
+    for t in range(days):
+        schedule[:, t: t + los.shape[0]] += rng.multinomial(arrivals[:, t], los)
+    occupied = np.cumsum(arrivals, axis=1) - np.cumsum(schedule[:, :days], axis=1)
+    staffed = np.round(_staffing_noise(WARD_BEDS_PER_ICU_BED * icu_beds.astype(float), days, rng))
+    return WardCensus(occupied=occupied.astype(float), staffed=staffed)
 
 
 @dataclass(frozen=True)

@@ -34,6 +34,7 @@ from demo_seed.observation import (
     hospital_admissions,
     icu_census,
     lab_tests,
+    ward_census,
 )
 from demo_seed.observation import testing_change as testing_change_at
 from demo_seed.seasons import PATHOGENS, history_start, simulate_seasons
@@ -72,6 +73,12 @@ MEASURES: dict[str, dict[str, str]] = {
     "icu_staffed": {"unit": "beds", "kind": "level", "aggregation": "sum",
                     "description": "Staffed adult intensive-care beds at the daily census "
                                    "(per region)."},
+    "ward_occupied": {"unit": "patients", "kind": "level", "aggregation": "sum",
+                      "description": "Patients with the infection in general (non-intensive-"
+                                     "care) beds at the daily census (per region)."},
+    "ward_staffed": {"unit": "beds", "kind": "level", "aggregation": "sum",
+                     "description": "Staffed adult general beds at the daily census "
+                                    "(per region)."},
     "ww_concentration": {"unit": "gene copies/L", "kind": "concentration",
                          "aggregation": "none",
                          "description": "Viral RNA in 24-hour composite influent samples "
@@ -208,6 +215,7 @@ def build_scenario(*, seed: int = 7, end: date | None = None, days: int = 548) -
     hosp = hospital_admissions(truth.infections, stream(23))
     beds = np.array([r.icu_beds for r in geography.regions], dtype=float)
     icu = icu_census(hosp.admissions, geography.region_index(), beds, stream(24))
+    ward = ward_census(hosp.admissions, geography.region_index(), beds, stream(27))
     served = np.array([p.served_population for p in geography.plants])
     ww = wastewater(truth.infections, geography.catchment_matrix(), served, dates, stream(25))
     gp = gp_consultations(truth.infections, pop, dates, stream(26))
@@ -220,6 +228,8 @@ def build_scenario(*, seed: int = 7, end: date | None = None, days: int = 548) -
         first_report_rows(hosp.admissions, districts, "hosp_admissions", lag=1),
         first_report_rows(icu.occupied, regions, "icu_occupied", lag=0),
         first_report_rows(icu.staffed, regions, "icu_staffed", lag=0),
+        first_report_rows(ward.occupied, regions, "ward_occupied", lag=0),
+        first_report_rows(ward.staffed, regions, "ward_staffed", lag=0),
         first_report_rows(ww.concentration, plants, "ww_concentration", lag=2),
         first_report_rows(ww.flow, plants, "ww_flow", lag=2),
         first_report_rows(ww.marker, plants, "ww_marker", lag=2),

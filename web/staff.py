@@ -12,7 +12,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 
 from server.services.area_tiers import above_district, region_tiers
-from server.services.capacity_pages import area_capacity, district_forecast
+from server.services.capacity_pages import WARD_LOS_MEDIAN, area_capacity, district_forecast
 from server.services.district_marks import district_marks
 from server.services.dossier import district_dossier, explanation_page
 from server.services.feeds import load_catalogue
@@ -142,14 +142,16 @@ def testing_review(
 
 
 @router.get("/areas/{code}/capacity", response_class=HTMLResponse)
-def capacity(request: Request, code: str, session: SessionDep, user: StaffDep) -> Response:
-    """The area's own tiers (policies set at area level), ICU beds in use against staffed
-    beds, each scenario's forecast fan and the days until the configured share of staffed
-    beds."""
-    area = area_capacity(session=session, code=code)
+def capacity(request: Request, code: str, session: SessionDep, user: StaffDep,
+             beds: str = "icu") -> Response:
+    """The area's own tiers (policies set at area level); ICU beds (or, with ``?beds=ward``,
+    general beds) in use against staffed beds, each scenario's forecast fan and the days until
+    the configured share of staffed beds."""
+    area = area_capacity(session=session, code=code, beds=beds)
     return render(request, "staff/capacity.html", {
         "a": area, "charts": [figure_json(capacity_fan_figure(area, f)) for f in area.fans],
         "record": record_lines(session=session, region=area.code),
+        "ward_los_median": WARD_LOS_MEDIAN,
         "tiers": region_tiers(session=session, code=area.code),
     })
 

@@ -9,9 +9,9 @@ which is Richards' curve ``K / (1 + Q exp(-a v (t - t0)))^(1/v)`` with ``Q = v``
 rate (for ``t << t0``, ``C(t) ~ K v^(-1/v) exp(a (t - t0))``) and ``v = 1`` is the logistic.
 
 The daily count of day ``t`` is the increment of the curve: it is modelled as Poisson with mean
-``C(t) - C(t - 1)`` and the fit maximises that likelihood (least squares on Poisson deviance
-residuals). Regions are fitted one by one with :func:`scipy.optimize.least_squares`; curve fits are
-not in the daily hot path, so the loop over regions is deliberate.
+``C(t) - C(t - 1)`` and the fit maximises that likelihood. All regions, and all bootstrap draws,
+are fitted at once by the batched Levenberg-Marquardt kernel the wave phase uses
+(:mod:`server.indicators._richards`).
 """
 
 from __future__ import annotations
@@ -20,12 +20,22 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.optimize import least_squares
 
 from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
+from server.indicators._richards import (
+    ITERATIONS,
+    MU_FLOOR,
+    SCREEN_ITERATIONS,
+    fit_best,
+    lm,
+    mean_and_jac,
+)
 
 MODELS = ("logistic", "richards")
-_MU_FLOOR = 1e-10
+_LOGISTIC = np.array([True, True, True, False])
+_RICHARDS = np.ones(4, dtype=bool)
+#: Rows fitted together (bootstrap draws count as rows; memory stays bounded).
+_CHUNK_ROWS = 2000
 _LOG_A_BOUNDS = (np.log(1e-3), np.log(3.0))
 _LOG_V_BOUNDS = (np.log(0.05), np.log(20.0))
 
@@ -116,58 +126,24 @@ def richards_peak_incidence(final_size: ArrayLike, rate: ArrayLike, shape: Array
     return a * k * v * (1.0 + v) ** (-1.0 - 1.0 / v)
 
 
-def _increments(theta: FloatArray, t: FloatArray) -> FloatArray:
-    """Expected daily counts ``C(t) - C(t - 1)`` for parameters (log K, log a, t0, log v)."""
-    k, a, t0, v = np.exp(theta[0]), np.exp(theta[1]), theta[2], np.exp(theta[3])
-    mu = richards_cumulative(t, k, a, t0, v) - richards_cumulative(t - 1.0, k, a, t0, v)
-    return np.maximum(mu, _MU_FLOOR)
-
-
-def _deviance_residuals(y: FloatArray, mu: FloatArray) -> FloatArray:
+def _deviance(y: FloatArray, w: FloatArray, mu: FloatArray) -> FloatArray:
+    """Poisson deviance ``2 sum w [y log(y/mu) - (y - mu)]`` per row."""
     with np.errstate(divide="ignore", invalid="ignore"):
         term = np.where(y > 0, y * np.log(np.where(y > 0, y, 1.0) / mu), 0.0)
-    unit = np.maximum(2.0 * (term - (y - mu)), 0.0)
-    return np.sign(y - mu) * np.sqrt(unit)
+    return np.sum(w * np.maximum(2.0 * (term - (y - mu)), 0.0), axis=1)
 
 
-@dataclass(frozen=True)
-class _SeriesFit:
-    theta: FloatArray
-    deviance: float
-    ok: bool
+def _bounds(days: int, total: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Per-row bounds of (log K, log a, t0, log v); ``total`` the count so far of each row."""
+    n = len(total)
+    lo = np.column_stack([np.log(np.maximum(0.5 * total, 1e-3)), np.full(n, _LOG_A_BOUNDS[0]),
+                          np.full(n, -2.0 * days), np.full(n, _LOG_V_BOUNDS[0])])
+    hi = np.column_stack([np.log(1e4 * total + 10.0), np.full(n, _LOG_A_BOUNDS[1]),
+                          np.full(n, 5.0 * days), np.full(n, _LOG_V_BOUNDS[1])])
+    return lo, hi
 
 
-def _fit_one(
-    t: FloatArray, y: FloatArray, starts: list[FloatArray], free_shape: bool, bounds: tuple
-) -> _SeriesFit:
-    lo, hi = bounds
-    fixed_v = 0.0  # log v = 0 -> logistic
-
-    def residuals(p: FloatArray) -> FloatArray:
-        theta = p if free_shape else np.append(p, fixed_v)
-        return _deviance_residuals(y, _increments(theta, t))
-
-    best: _SeriesFit | None = None
-    for start in starts:
-        x0 = np.clip(start if free_shape else start[:3], lo + 1e-9, hi - 1e-9)
-        res = least_squares(residuals, x0, bounds=(lo, hi), method="trf", max_nfev=400)
-        dev = float(np.sum(res.fun**2))
-        if best is None or dev < best.deviance:
-            theta = res.x if free_shape else np.append(res.x, fixed_v)
-            k_at_bound = bool(res.x[0] > hi[0] - np.log(2.0))
-            best = _SeriesFit(theta=theta, deviance=dev, ok=bool(res.success) and not k_at_bound)
-    assert best is not None
-    return best
-
-
-def _bounds(n_days: int, total: float, free_shape: bool) -> tuple[FloatArray, FloatArray]:
-    lo = [np.log(max(0.5 * total, 1e-3)), _LOG_A_BOUNDS[0], -2.0 * n_days, _LOG_V_BOUNDS[0]]
-    hi = [np.log(1e4 * total + 10.0), _LOG_A_BOUNDS[1], 5.0 * n_days, _LOG_V_BOUNDS[1]]
-    size = 4 if free_shape else 3
-    return np.asarray(lo[:size]), np.asarray(hi[:size])
-
-
-def _starts(t_last: float, total: float) -> list[FloatArray]:
+def _starts(t_last: float, total: FloatArray) -> list[FloatArray]:
     """Starting values: final size a multiple of the count so far, t0 from the logistic at T."""
     starts = []
     for mult in (1.3, 2.5, 6.0):
@@ -175,15 +151,19 @@ def _starts(t_last: float, total: float) -> list[FloatArray]:
             k = mult * total
             p = total / k
             t0 = t_last - np.log(p / (1.0 - p)) / a
-            starts.append(np.array([np.log(k), np.log(a), t0, 0.0]))
+            starts.append(np.column_stack([np.log(k), np.full(len(total), np.log(a)), t0,
+                                           np.zeros(len(total))]))
     return starts
 
 
-def _nb_draw(rng: np.random.Generator, mu: FloatArray, phi: float) -> FloatArray:
-    """Counts with mean ``mu`` and variance ``phi mu`` (gamma-Poisson; Poisson when phi = 1)."""
-    if phi <= 1.0 + 1e-9:
-        return rng.poisson(mu).astype(np.float64)
-    lam = rng.gamma(shape=mu / (phi - 1.0), scale=phi - 1.0)
+def _nb_draw(rng: np.random.Generator, mu: FloatArray, phi: FloatArray) -> FloatArray:
+    """Counts with mean ``mu`` and variance ``phi mu`` (gamma-Poisson; Poisson where phi = 1);
+    ``phi`` broadcasts against ``mu``."""
+    phi = np.broadcast_to(phi, mu.shape)
+    extra = phi > 1.0 + 1e-9
+    lam = mu.copy()
+    if extra.any():
+        lam[extra] = rng.gamma(shape=mu[extra] / (phi[extra] - 1.0), scale=phi[extra] - 1.0)
     return rng.poisson(lam).astype(np.float64)
 
 
@@ -235,14 +215,19 @@ def fit_growth_curve(
     Notes
     -----
     Mean of the count of day t: ``mu_t = C(t) - C(t-1)``, ``C`` as in :func:`richards_cumulative`.
-    The fit minimises the Poisson deviance ``2 sum[y log(y/mu) - (y - mu)]``. Overdispersion is
-    estimated quasi-Poisson style, ``phi = max(1, sum((y - mu)^2 / mu) / (n - p))``; the parametric
-    bootstrap draws counts with mean ``mu`` and variance ``phi mu`` (gamma-Poisson), which inflates
-    the intervals by roughly ``sqrt(phi)``. Each draw is refitted; intervals are percentiles of the
-    refitted parameters. Projections add future counts drawn around each draw's curve to the
-    observed cumulative count, so the prediction interval holds parameter and count noise.
-    Before the turning point the final size is known to be underestimated and weakly identified
-    (see :mod:`server.indicators.accuracy`).
+    The fit maximises the Poisson likelihood (minimises the deviance
+    ``2 sum[y log(y/mu) - (y - mu)]``) for all regions at once
+    (:mod:`server.indicators._richards`, the kernel of the wave phase), from six logistic starts
+    per region (final size 1.3, 2.5 and 6 times the count so far, rate 0.08 and 0.25 a day);
+    the Richards fit starts from the best logistic with ``v`` = 0.5, 1 and 2. Overdispersion is
+    estimated quasi-Poisson style, ``phi = max(1, sum((y - mu)^2 / mu) / (n - p))``; the
+    parametric bootstrap draws counts with mean ``mu`` and variance ``phi mu`` (gamma-Poisson),
+    which inflates the intervals by roughly ``sqrt(phi)``. Each draw is refitted from the fit
+    (all draws of all regions in one batch); intervals are percentiles of the refitted
+    parameters. Projections add future counts drawn around each draw's curve to the observed
+    cumulative count, so the prediction interval holds parameter and count noise. Before the
+    turning point the final size is known to be underestimated and weakly identified (see
+    :mod:`server.indicators.accuracy`).
 
     References
     ----------
@@ -255,6 +240,39 @@ def fit_growth_curve(
     _validate(model, horizons, n_boot, min_days)
     level = check_level("level", level)
     return _fit_all(y_all, model, horizons, n_boot, level, seed, min_days)
+
+
+def _fit_rows(y: FloatArray, w: FloatArray, t: FloatArray, total: FloatArray,
+              free_shape: bool) -> tuple[FloatArray, FloatArray]:
+    """Point fits of rows (chunked): the logistic from :func:`_starts`, then (Richards) from
+    the best logistic with three shapes. Returns theta (rows, 4) and the upper bounds."""
+    days = y.shape[1]
+    theta = np.empty((len(y), 4))
+    hi_all = np.empty((len(y), 4))
+    for part in range(0, len(y), _CHUNK_ROWS):
+        sl = slice(part, part + _CHUNK_ROWS)
+        lo, hi = _bounds(days, total[sl])
+        th, _ = fit_best(y[sl], w[sl], t, _starts(float(days - 1), total[sl]), _LOGISTIC, lo, hi)
+        if free_shape:
+            starts = [np.column_stack([th[:, :3], np.full(len(th), lv)])
+                      for lv in (np.log(0.5), 0.0, np.log(2.0))]
+            th, _ = fit_best(y[sl], w[sl], t, starts, _RICHARDS, lo, hi)
+        theta[sl], hi_all[sl] = th, hi
+    return theta, hi_all
+
+
+def _refit(y: FloatArray, w: FloatArray, t: FloatArray, start: FloatArray,
+           free_shape: bool) -> FloatArray:
+    """Refit bootstrap rows from ``start`` (chunked), bounds from each draw's own total."""
+    days = y.shape[1]
+    theta = np.empty((len(y), 4))
+    free = _RICHARDS if free_shape else _LOGISTIC
+    for part in range(0, len(y), _CHUNK_ROWS):
+        sl = slice(part, part + _CHUNK_ROWS)
+        lo, hi = _bounds(days, np.maximum((w[sl] * y[sl]).sum(axis=1), 1.0))
+        theta[sl], _ = lm(y[sl], w[sl], t, start[sl].copy(), free, lo, hi,
+                          SCREEN_ITERATIONS + ITERATIONS)
+    return theta
 
 
 def _fit_all(
@@ -286,28 +304,32 @@ def _fit_all(
     n_obs = observed.sum(axis=1).astype(np.int64)
     last_cum = np.where(observed, y_all, 0.0).sum(axis=1)
 
-    for r in range(regions):  # deliberate: one nonlinear fit per region (see module docstring)
-        mask = observed[r]
-        total = float(last_cum[r])
-        if n_obs[r] < max(min_days, n_par + 2) or total <= 0:
-            continue
-        t, y = t_all[mask], y_all[r, mask]
-        bounds = _bounds(days, total, free_shape)
-        fit = _fit_one(t, y, _starts(t_last, total), False, _bounds(days, total, False))
-        if free_shape:
-            starts = [np.append(fit.theta[:3], lv) for lv in (np.log(0.5), 0.0, np.log(2.0))]
-            fit = _fit_one(t, y, starts, True, bounds)
-        theta_hat[r], deviance[r], converged[r] = fit.theta, fit.deviance, fit.ok
-        mu = _increments(fit.theta, t)
-        phi = max(1.0, float(np.sum((y - mu) ** 2 / mu)) / max(len(y) - n_par, 1))
-        dispersion[r] = phi
-        for b in range(n_boot):
-            y_star = _nb_draw(rng, mu, phi)
-            bounds_b = _bounds(days, max(float(y_star.sum()), 1.0), free_shape)
-            fit_b = _fit_one(t, y_star, [fit.theta], free_shape, bounds_b)
-            theta_boot[r, b] = fit_b.theta
-            future = _nb_draw(rng, _increments(fit_b.theta, t_future), phi)
-            proj_boot[r, b] = total + np.cumsum(future)[h_idx]
+    fit = np.flatnonzero((n_obs >= max(min_days, n_par + 2)) & (last_cum > 0))
+    if fit.size:
+        w = observed[fit].astype(np.float64)
+        y = np.where(observed[fit], y_all[fit], 0.0)
+        theta, hi = _fit_rows(y, w, t_all, last_cum[fit], free_shape)
+        mu, _ = mean_and_jac(theta, t_all, jac=False)
+        pearson = np.sum(w * (y - mu) ** 2 / mu, axis=1)
+        phi = np.maximum(1.0, pearson / np.maximum(n_obs[fit] - n_par, 1))
+        theta_hat[fit], dispersion[fit] = theta, phi
+        deviance[fit] = _deviance(y, w, mu)
+        converged[fit] = np.isfinite(theta).all(axis=1) & (theta[:, 0] <= hi[:, 0] - np.log(2.0))
+        if n_boot:
+            y_star = _nb_draw(rng, np.repeat(mu, n_boot, axis=0), np.repeat(phi, n_boot)[:, None])
+            w_star = np.repeat(w, n_boot, axis=0)
+            th_b = _refit(y_star * w_star, w_star, t_all, np.repeat(theta, n_boot, axis=0),
+                          free_shape)
+            theta_boot[fit] = th_b.reshape(fit.size, n_boot, 4)
+            k, a, t0, v = (np.exp(th_b[:, 0]), np.exp(th_b[:, 1]), th_b[:, 2],
+                           np.exp(th_b[:, 3]))
+            grid = np.concatenate([[t_last], t_future])
+            cum = richards_cumulative(grid[None, :], k[:, None], a[:, None], t0[:, None],
+                                      v[:, None])
+            future = _nb_draw(rng, np.maximum(np.diff(cum, axis=1), MU_FLOOR),
+                              np.repeat(phi, n_boot)[:, None])
+            proj = np.repeat(last_cum[fit], n_boot)[:, None] + np.cumsum(future, axis=1)[:, h_idx]
+            proj_boot[fit] = proj.reshape(fit.size, n_boot, len(horizons))
 
     return _assemble(
         model, theta_hat, theta_boot, proj_boot, t_last, t_future, h_idx, last_cum,

@@ -12,7 +12,8 @@ For every row of a (regions, days) array of daily counts:
    since the wave start by Poisson maximum likelihood, the count of day ``t`` having mean
    ``C(t) - C(t - 1)``. All rows are fitted together by Levenberg-Marquardt steps on Fisher
    scoring (Marquardt 1963) with a common iteration count and per-row acceptance and convergence
-   masks, from several starting values taken from the data; the best likelihood wins.
+   masks, from several starting values taken from the data; the best likelihood wins (the
+   kernel, shared with the curve fit, is :mod:`server.indicators._richards`).
 3. **Diagnostics at the last day T** of each row: the share of the fitted final size reached,
    ``C(T) / K``, against the share at the turning point ``(1 + v)^(-1/v)`` (Richards 1959; 1/2
    for the logistic); the turning day ``t0``; and, from the data, the growth rate of the last
@@ -40,6 +41,10 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.stats import norm
 
 from server.indicators._arrays import FloatArray, as_nonnegative_counts, check_level, check_window
+from server.indicators._richards import MU_FLOOR as _MU_FLOOR
+from server.indicators._richards import fit_best as _fit_model
+from server.indicators._richards import log_cum_and_grad as _log_cum_and_grad
+from server.indicators._richards import mean_and_jac as _mean_and_jac
 
 #: Phase codes are indices into this tuple (a policy compares the code; higher = more growth).
 PHASES = ("declining", "past_turning_point", "slowing", "growing")
@@ -52,12 +57,9 @@ LOWER_BOUND_WARNING = (
     "curve fits made before the turning point are known to underestimate it"
 )
 
-_MU_FLOOR = 1e-10
 _LOG_A = (np.log(1e-3), np.log(3.0))
 _LOG_V = (np.log(0.05), np.log(20.0))
 _WEEK = 7
-#: Steps every starting value gets before the best one per row is kept; steps after that.
-_SCREEN_ITERATIONS, _ITERATIONS = 15, 80
 #: Rows fitted together (memory stays bounded; larger batches gain nothing).
 _CHUNK_ROWS = 500
 
@@ -143,95 +145,6 @@ def wave_start(
     return np.where(has, in_valley, first_wave).astype(np.int64)
 
 
-def _log_cum_and_grad(theta: FloatArray, t: FloatArray, grad: bool = True
-                      ) -> tuple[FloatArray, FloatArray | None]:
-    """``log C(t)`` (rows, days) and its gradient in (log K, log a, t0, log v), (rows, days, 4).
-
-    With ``u = log v - a v (t - t0)``, ``L = log(1 + e^u)`` and ``s = e^u / (1 + e^u)``:
-    ``log C = log K - L / v``; d/dlog a = ``s a (t - t0)``; d/dt0 = ``-s a``;
-    d/dlog v = ``L / v - s (1 - a v (t - t0)) / v``.
-    """
-    log_k, log_a, t0, log_v = (theta[:, i, None] for i in range(4))
-    a, v = np.exp(log_a), np.exp(log_v)
-    dt = t - t0
-    u = log_v - a * v * dt
-    big_l = np.logaddexp(0.0, u)
-    log_c = log_k - big_l / v
-    if not grad:
-        return log_c, None
-    s = np.exp(u - big_l)
-    out = np.empty(log_c.shape + (4,))
-    out[..., 0] = 1.0
-    sa = s * a
-    out[..., 1] = sa * dt
-    out[..., 2] = -sa
-    out[..., 3] = (big_l - s * (1.0 - a * v * dt)) / v
-    return log_c, out
-
-
-def _mean_and_jac(theta: FloatArray, t: FloatArray, jac: bool = True
-                  ) -> tuple[FloatArray, FloatArray | None]:
-    """Expected counts ``C(t) - C(t - 1)`` and, with ``jac``, their gradient (rows, days, 4).
-
-    ``t`` must be consecutive days: ``C`` is computed once on ``t[0] - 1, ..., t[-1]``.
-    """
-    grid = np.concatenate([t[:1] - 1.0, t])
-    lc, g = _log_cum_and_grad(theta, grid, jac)
-    lc1, lc0 = lc[:, 1:], lc[:, :-1]
-    c1 = np.exp(lc1)
-    mu = np.maximum(-c1 * np.expm1(lc0 - lc1), _MU_FLOOR)
-    if g is None:
-        return mu, None
-    cg = np.exp(lc)[..., None] * g
-    return mu, cg[:, 1:] - cg[:, :-1]
-
-
-def _loglik(y: FloatArray, w: FloatArray, mu: FloatArray) -> FloatArray:
-    """Poisson log-likelihood without the ``log y!`` term, per row (weights 0 drop days)."""
-    return np.sum(w * (y * np.log(mu) - mu), axis=1)
-
-
-def _lm(y: FloatArray, w: FloatArray, t: FloatArray, theta: FloatArray, free: NDArray[np.bool_],
-        lo: FloatArray, hi: FloatArray, iterations: int = 120) -> tuple[FloatArray, FloatArray]:
-    """Levenberg-Marquardt on Fisher scoring, all rows at once; returns (theta, loglik)."""
-    theta = np.clip(theta, lo, hi)
-    mu, _ = _mean_and_jac(theta, t, jac=False)
-    ll = _loglik(y, w, mu)
-    lam = np.full(len(y), 1e-2)
-    active = np.ones(len(y), dtype=bool)
-    fixed = ~free
-    eye = np.eye(4)
-    for _ in range(iterations):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        th = theta[idx]
-        mu_i, jmat = _mean_and_jac(th, t)
-        assert jmat is not None
-        wi = w[idx]
-        jt = np.swapaxes(jmat, 1, 2)  # (rows, 4, days)
-        score = np.matmul(jt, (wi * (y[idx] / mu_i - 1.0))[..., None])[..., 0]
-        info = np.matmul(jt * (wi / mu_i)[:, None, :], jmat)
-        info[:, fixed, :] = 0.0
-        info[:, :, fixed] = 0.0
-        score[:, fixed] = 0.0
-        diag = np.einsum("rkk->rk", info)
-        damp = lam[idx, None] * np.maximum(diag, 1e-12) + fixed * 1.0
-        step = np.linalg.solve(info + damp[..., None] * eye, score[..., None])[..., 0]
-        trial = np.clip(th + step, lo[idx], hi[idx])
-        mu_t, _ = _mean_and_jac(trial, t, jac=False)
-        ll_t = _loglik(y[idx], wi, mu_t)
-        predicted = 0.5 * np.sum(step * score, axis=1)  # gain of the step on a quadratic
-        better = np.isfinite(ll_t) & (ll_t > ll[idx])
-        gain = np.where(better, ll_t - ll[idx], 0.0)
-        theta[idx] = np.where(better[:, None], trial, th)
-        ll[idx] = np.where(better, ll_t, ll[idx])
-        lam[idx] = np.where(better, np.maximum(lam[idx] / 3.0, 1e-9), lam[idx] * 4.0)
-        done = (better & (gain < 1e-7)) | (predicted < 1e-8) | (lam[idx] > 1e10)
-        active[idx[done]] = False
-    return theta, ll
-
-
 @dataclass(frozen=True)
 class PhaseInterval:
     """A point estimate with the bounds of its interval (NaN where unknown)."""
@@ -311,20 +224,6 @@ def _bounds(total: FloatArray, start: NDArray[np.int64], last: NDArray[np.int64]
     hi = np.column_stack([np.log(1e4 * total + 10.0), np.full(len(total), _LOG_A[1]),
                           last + 5.0 * n, np.full(len(total), _LOG_V[1])])
     return lo, hi
-
-
-def _fit_model(y: FloatArray, w: FloatArray, t: FloatArray, starts: list[FloatArray],
-               free: NDArray[np.bool_], lo: FloatArray, hi: FloatArray
-               ) -> tuple[FloatArray, FloatArray]:
-    """Best of several starts: every start of every row in one batch for
-    :data:`_SCREEN_ITERATIONS` steps, then the best start of each row to convergence."""
-    k = len(starts)
-    theta, ll = _lm(np.tile(y, (k, 1)), np.tile(w, (k, 1)), t, np.concatenate(starts),
-                    free, np.tile(lo, (k, 1)), np.tile(hi, (k, 1)), _SCREEN_ITERATIONS)
-    ll = np.where(np.isfinite(ll), ll, -np.inf).reshape(k, -1)
-    best = np.argmax(ll, axis=0)
-    rows = np.arange(y.shape[0])
-    return _lm(y, w, t, theta.reshape(k, -1, 4)[best, rows], free, lo, hi, _ITERATIONS)
 
 
 def _covariance(y: FloatArray, w: FloatArray, t: FloatArray, theta: FloatArray,

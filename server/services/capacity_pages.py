@@ -23,12 +23,14 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
-from server.indicators.capacity import CapacityForecasts, capacity_forecasts
+from server.indicators.capacity import BEDS, CapacityForecasts, capacity_forecasts
+from server.indicators.hospital import LengthOfStay, length_of_stay
 from server.services.capacity_indicators import (
     admissions_with_nowcast,
     as_path,
     forecast_scenarios,
 )
+from server.services.district_data import DISTRICT_MEASURES, MeasureNeeds
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, newest_run_of
@@ -46,6 +48,17 @@ HORIZON = 21
 #: Simulations per forecast on the pages (a few regions: more than the bench's).
 SIMS = 2000
 DEFAULT_SHARE = 85.0
+#: Length of stay in general (ward) beds assumed by the general-bed forecast: log-normal,
+#: median 6 days, quartiles 4 and 9 (common practice, no source; the ICU forecast uses
+#: :func:`~server.indicators.hospital.length_of_stay`'s published default).
+WARD_LOS_MEDIAN, WARD_LOS_QUARTILES = 6.0, (4.0, 9.0)
+
+
+def bed_length_of_stay(beds: str) -> LengthOfStay:
+    """The length of stay the page's forecast of ``beds`` (``icu`` or ``ward``) assumes."""
+    if beds == "ward":
+        return length_of_stay(median=WARD_LOS_MEDIAN, quartiles=WARD_LOS_QUARTILES)
+    return length_of_stay()
 
 
 class NoCapacityError(ServiceError, LookupError):
@@ -93,8 +106,10 @@ class AreaCapacity:
     staffed: tuple[float | None, ...]
     growth: float | None
     growth_se: float | None
-    fans: tuple[Fan, ...]          # ICU beds in use per scenario
+    fans: tuple[Fan, ...]          # beds in use per scenario
     days: tuple[DaysToShareRow, ...]
+    beds: str = "icu"              # which beds: "icu" or "ward" (general beds)
+    other_beds: bool = False       # the area reports the other kind of beds too
 
     @property
     def staffed_now(self) -> float | None:
@@ -168,7 +183,7 @@ class _Inputs:
     ruleset: Ruleset | None
 
 
-def _inputs(session: Session, area_code: str) -> _Inputs:
+def _inputs(session: Session, area_code: str, beds: str = "icu") -> _Inputs:
     area = session.scalar(select(Region).where(Region.code == area_code))
     if area is None:
         raise NoCapacityError(area_code)
@@ -185,18 +200,20 @@ def _inputs(session: Session, area_code: str) -> _Inputs:
         select(func.max(Observation.ref_date))
         .join(Measure, Measure.id == Observation.measure_id)
         .join(Vintage, Vintage.id == Observation.vintage_id)
-        .where(Observation.region_id == area.id, Measure.name == "icu_occupied",
+        .where(Observation.region_id == area.id, Measure.name == f"{beds}_occupied",
                *([Vintage.received_at <= as_of] if as_of is not None else [])))
     if end is None:
         raise NoCapacityError(area_code)
     data = load_district_data(session=session, start=end - timedelta(days=HISTORY - 1), end=end,
-                              as_of=as_of)
+                              as_of=as_of, needs=MeasureNeeds(
+                                  district=DISTRICT_MEASURES,
+                                  area=(f"{beds}_occupied", f"{beds}_staffed"), plant=()))
     index = [data.regions.index(c) for c, _n in districts if c in data.regions]
     if not index:
         raise NoCapacityError(area_code)
     adm = admissions_with_nowcast(data)
-    occ = data.area_of_district["icu_occupied"][index[0]]
-    staffed = data.area_of_district["icu_staffed"][index[0]]
+    occ = data.area_of_district[f"{beds}_occupied"][index[0]]
+    staffed = data.area_of_district[f"{beds}_staffed"][index[0]]
     summed = adm[index].sum(axis=0)
     known = np.flatnonzero(np.isfinite(occ) & np.isfinite(staffed) & np.isfinite(summed))
     if known.size == 0:
@@ -209,7 +226,7 @@ def _inputs(session: Session, area_code: str) -> _Inputs:
 
 
 def _forecast(inp: _Inputs, admissions: np.ndarray, names: Sequence[str], *,
-              capacity: bool) -> CapacityForecasts:
+              capacity: bool, beds: str = "icu") -> CapacityForecasts:
     scenarios = forecast_scenarios(inp.ruleset)
     origin = inp.dates[-1]
     seed = zlib.crc32(f"{','.join(names)}|{origin}".encode())
@@ -218,15 +235,26 @@ def _forecast(inp: _Inputs, admissions: np.ndarray, names: Sequence[str], *,
         scenarios=[as_path(s) for s in scenarios],
         occupied=np.full(len(names), inp.occupied[-1]) if capacity else None,
         staffed=np.full(len(names), inp.staffed[-1]) if capacity else None,
-        horizon=HORIZON, sims=SIMS, shares=(_share_of(inp.ruleset),), seed=seed,
+        horizon=HORIZON, sims=SIMS, shares=(_share_of(inp.ruleset),), seed=seed, beds=beds,
+        los=bed_length_of_stay(beds),
     )
 
 
-def area_capacity(*, session: Session, code: str) -> AreaCapacity:
-    """The area capacity page: census, staffed beds, each scenario's fan and days to the share."""
-    inp = _inputs(session, code)
+def area_capacity(*, session: Session, code: str, beds: str = "icu") -> AreaCapacity:
+    """The area capacity page: census, staffed beds, each scenario's fan and days to the share,
+    of ICU beds (``beds="icu"``) or general beds (``"ward"``; the same model with
+    :data:`WARD_LOS_MEDIAN` days' stay and the share the policy configures for ICU beds)."""
+    if beds not in BEDS:
+        raise NoCapacityError(code)
+    inp = _inputs(session, code, beds)
+    other = next(b for b in BEDS if b != beds)
+    has_other = session.scalar(
+        select(Observation.ref_date).join(Measure, Measure.id == Observation.measure_id)
+        .where(Observation.region_id == inp.area.id, Measure.name == f"{other}_occupied")
+        .limit(1)) is not None
     labels = {s.name: s.label for s in forecast_scenarios(inp.ruleset)}
-    fc = _forecast(inp, inp.admissions.sum(axis=0, keepdims=True), (code,), capacity=True)
+    fc = _forecast(inp, inp.admissions.sum(axis=0, keepdims=True), (code,), capacity=True,
+                   beds=beds)
     shown = slice(max(len(inp.dates) - SHOWN, 0), len(inp.dates))
     return AreaCapacity(
         code=inp.area.code, name=inp.area.name, districts=inp.districts, origin=inp.dates[-1],
@@ -234,7 +262,8 @@ def area_capacity(*, session: Session, code: str) -> AreaCapacity:
         occupied=tuple(_num(v) for v in inp.occupied[shown]),
         staffed=tuple(_num(v) for v in inp.staffed[shown]),
         growth=_num(fc.growth[0]), growth_se=_num(fc.growth_se[0]),
-        fans=_fans(fc, "icu_occupied", 0, labels), days=_days(fc, 0, labels),
+        fans=_fans(fc, f"{beds}_occupied", 0, labels), days=_days(fc, 0, labels),
+        beds=beds, other_beds=has_other,
     )
 
 

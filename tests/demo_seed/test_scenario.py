@@ -16,7 +16,7 @@ from demo_seed.scenario import MEASURES, Scenario, build_scenario
 
 END = date(2030, 11, 30)   # invented fixed end date
 NAMES = ["cases", "tests", "positives", "hosp_admissions", "icu_occupied", "icu_staffed",
-         "ww_concentration", "ww_flow", "ww_marker", "gp_ari"]
+         "ward_occupied", "ward_staffed", "ww_concentration", "ww_flow", "ww_marker", "gp_ari"]
 
 
 @pytest.fixture(scope="module")
@@ -193,6 +193,24 @@ def test_build_scenario_wastewater_leads_cases(scenario: Scenario, obs: pd.DataF
 def test_build_scenario_icu_reaches_high_occupancy(obs: pd.DataFrame) -> None:
     ratio = (_final(obs, "icu_occupied") / _final(obs, "icu_staffed")).max()
     assert ratio.max() >= 0.7 and np.all(ratio <= 1.0)
+
+
+def test_build_scenario_ward_census_follows_admissions_and_little_law(
+        obs: pd.DataFrame) -> None:
+    # Little's law (Little 1961, Oper Res 9:383): over the whole run the mean general-bed
+    # census equals the mean daily admissions times the mean stay in census days (log-normal,
+    # median 6, sigma 0.6: mean about exp(0.18) x 6 + 1/2 = 7.7 days), up to the ends.
+    from demo_seed.delays import discretised_lognormal
+    from demo_seed.observation import WARD_LOS_MEDIAN, WARD_LOS_SIGMA
+
+    los = discretised_lognormal(WARD_LOS_MEDIAN, WARD_LOS_SIGMA, max_lag=45)
+    mean_stay = float(np.sum(np.arange(los.size) * los) + los[0])
+    ward = _final(obs, "ward_occupied").sum(axis=1)
+    admissions = _final(obs, "hosp_admissions").sum(axis=1)
+    inner = slice(60, -60)
+    assert abs(ward.iloc[inner].mean() / (admissions.iloc[inner].mean() * mean_stay) - 1) < 0.05
+    share = (_final(obs, "ward_occupied") / _final(obs, "ward_staffed")).max()
+    assert 0.2 < share.max() < 1.0
 
 
 def test_build_scenario_testing_change_raises_tests(scenario: Scenario,

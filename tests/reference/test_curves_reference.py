@@ -105,3 +105,32 @@ def test_logistic_bootstrap_interval_coverage_near_nominal() -> None:
         covered += int(fit.final_size.lower[0] <= k <= fit.final_size.upper[0])
     # nominal 95 %; with 20 runs at least 16 covered (binomial 5 % lower tail ~ 17, margin kept)
     assert covered >= 16
+
+
+def test_batched_logistic_fit_reaches_scipy_minimize_optimum_on_simulated_waves() -> None:
+    # The curve fit is batched (all regions at once, server/indicators/_richards.py); its
+    # Poisson deviance must reach the minimum scipy.optimize.minimize (Nelder-Mead, then L-BFGS-B
+    # polish) finds from the true parameters, region by region. Eight invented single waves,
+    # before and after their turning points, not tuned to the fit.
+    rng = np.random.default_rng(77)
+    rows, days = 8, 55
+    truth = np.column_stack([rng.uniform(1500, 9000, rows), rng.uniform(0.12, 0.3, rows),
+                             rng.uniform(25, 60, rows)])
+    t = np.arange(days, dtype=float)
+    mu = (richards_cumulative(t, *truth.T[:, :, None])
+          - richards_cumulative(t - 1, *truth.T[:, :, None]))
+    y = rng.poisson(mu).astype(float)
+    fit = fit_growth_curve(y, n_boot=0)
+
+    def deviance(p: np.ndarray, yy: np.ndarray) -> float:
+        m = np.maximum(richards_cumulative(t, np.exp(p[0]), np.exp(p[1]), p[2])
+                       - richards_cumulative(t - 1, np.exp(p[0]), np.exp(p[1]), p[2]), 1e-10)
+        return float(2 * np.sum(np.where(yy > 0, yy * np.log(np.where(yy > 0, yy, 1) / m), 0)
+                                - (yy - m)))
+
+    for r in range(rows):
+        x0 = np.array([np.log(truth[r, 0]), np.log(truth[r, 1]), truth[r, 2]])
+        nm = optimize.minimize(deviance, x0, args=(y[r],), method="Nelder-Mead",
+                               options={"xatol": 1e-8, "fatol": 1e-10, "maxiter": 5000})
+        ref = optimize.minimize(deviance, nm.x, args=(y[r],), method="L-BFGS-B")
+        assert fit.deviance[r] <= min(ref.fun, nm.fun) + 1e-3

@@ -118,3 +118,89 @@ def test_persistence_covers_about_nominal_on_stationary_counts() -> None:
     assert 0.45 < cov50 < 0.60 and 0.85 < cov90 < 0.95
     # the median is the rounded baseline, so the WIS is well under the baseline's error
     assert np.nanmean(rec.relative_wis) < 1.0
+
+
+# Bracher et al. (2021) illustrate the WIS on a worked example in the paper; its exact numbers
+# are not recalled here (from memory: a figure with a few predictive distributions and one
+# observation), so they are NOT reproduced. Instead the example below is worked by hand from
+# the paper's definitions, equation numbers as recalled [from memory: eq. 1 the interval score,
+# eq. 2 the WIS]:
+#   IS_alpha(F, y) = (u - l) + 2/alpha (l - y) 1(y < l) + 2/alpha (y - u) 1(y > u)      (eq. 1)
+#   WIS(F, y) = 1/(K + 1/2) (w_0 |y - m| + sum_k w_k IS_alpha_k(F, y)),
+#               w_0 = 1/2, w_k = alpha_k / 2                                               (eq. 2)
+# Forecast: the project's default levels 0.05, 0.25, 0.5, 0.75, 0.95 with quantiles
+# 20, 30, 40, 55, 80, so K = 2: alpha = 0.5 on [30, 55] (u - l = 25), alpha = 0.1 on [20, 80]
+# (u - l = 60), median m = 40.
+HAND_QUANTILES = [20.0, 30.0, 40.0, 55.0, 80.0]
+HAND_CASES = [
+    # y, IS_0.5, IS_0.1, WIS, inside 50 %, inside 90 %
+    # y = 40 (the median): IS_0.5 = 25, IS_0.1 = 60;
+    #   WIS = (0.5*0 + 0.25*25 + 0.05*60) / 2.5 = 9.25 / 2.5 = 3.7
+    (40.0, 25.0, 60.0, 3.7, True, True),
+    # y = 62 (between the 75 % and 95 % quantiles): IS_0.5 = 25 + 4*(62 - 55) = 53, IS_0.1 = 60;
+    #   WIS = (0.5*22 + 0.25*53 + 0.05*60) / 2.5 = 27.25 / 2.5 = 10.9
+    (62.0, 53.0, 60.0, 10.9, False, True),
+    # y = 95 (above all): IS_0.5 = 25 + 4*40 = 185, IS_0.1 = 60 + 20*15 = 360;
+    #   WIS = (0.5*55 + 0.25*185 + 0.05*360) / 2.5 = 91.75 / 2.5 = 36.7
+    (95.0, 185.0, 360.0, 36.7, False, False),
+    # y = 12 (below all): IS_0.5 = 25 + 4*18 = 97, IS_0.1 = 60 + 20*8 = 220;
+    #   WIS = (0.5*28 + 0.25*97 + 0.05*220) / 2.5 = 49.25 / 2.5 = 19.7
+    (12.0, 97.0, 220.0, 19.7, False, False),
+    # y = 30 (on the 25 % quantile, bounds included): IS_0.5 = 25, IS_0.1 = 60;
+    #   WIS = (0.5*10 + 0.25*25 + 0.05*60) / 2.5 = 14.25 / 2.5 = 5.7
+    (30.0, 25.0, 60.0, 5.7, True, True),
+]
+
+
+def test_score_forecasts_hand_worked_example_from_bracher_equations() -> None:
+    y = np.array([[c[0] for c in HAND_CASES]])  # one forecast, horizons = the cases
+    values = np.broadcast_to(HAND_QUANTILES, (1, len(HAND_CASES), 5))
+    s = score_forecasts(values, LEVELS, y, [41.0])
+    assert_allclose(s.wis[0], [c[3] for c in HAND_CASES], rtol=1e-12)
+    assert s.inside_50[0].tolist() == [c[4] for c in HAND_CASES]
+    assert s.inside_90[0].tolist() == [c[5] for c in HAND_CASES]
+    assert_allclose(s.naive_error[0], np.abs(y[0] - 41.0))  # |y - baseline|, the K = 0 WIS
+    # the interval scores (eq. 1) behind each case, through the one-interval WIS with the
+    # median at y: WIS = (alpha/2) IS_alpha / 1.5
+    for alpha, lo, hi, col in ((0.5, 30.0, 55.0, 1), (0.1, 20.0, 80.0, 2)):
+        ys = np.array([c[0] for c in HAND_CASES])
+        one = weighted_interval_score(ys, ys, np.full((ys.size, 1), lo), np.full((ys.size, 1), hi),
+                                      [alpha]).wis
+        assert_allclose(one * 1.5 / (alpha / 2), [c[col] for c in HAND_CASES], rtol=1e-12)
+
+
+def _crps_by_quadrature(y: float, mu: float, sigma: float) -> float:
+    # CRPS(F, y) = int (F(x) - 1{x >= y})^2 dx (Gneiting & Raftery 2007, eq. 20), integrated by
+    # scipy.integrate.quad on both sides of y.
+    from scipy import integrate
+
+    left = integrate.quad(lambda x: stats.norm.cdf(x, mu, sigma) ** 2, -np.inf, y,
+                          epsabs=1e-12, epsrel=1e-12)[0]
+    right = integrate.quad(lambda x: stats.norm.sf(x, mu, sigma) ** 2, y, np.inf,
+                           epsabs=1e-12, epsrel=1e-12)[0]
+    return left + right
+
+
+def test_wis_of_many_levels_tends_to_scipy_integrated_crps() -> None:
+    # Bracher et al. (2021), section 2.3 [section number from memory]: with quantile levels
+    # equally spaced the WIS approximates the CRPS, the closer the more levels. Reference: the
+    # CRPS of N(mu, sigma) integrated by scipy, which itself must match the closed form of
+    # Gneiting & Raftery (2007, eq. 5): sigma (z (2 Phi(z) - 1) + 2 phi(z) - 1/sqrt(pi)).
+    # Forecasts through score_forecasts (the quantile format the record stores); mu = 120,
+    # sigma = 15 (invented), outcomes from 75 to 170, not tuned.
+    mu, sigma = 120.0, 15.0
+    ys = np.array([75.0, 98.0, 113.0, 120.0, 131.5, 150.0, 170.0])
+    crps = np.array([_crps_by_quadrature(v, mu, sigma) for v in ys])
+    z = (ys - mu) / sigma
+    closed = sigma * (z * (2 * stats.norm.cdf(z) - 1) + 2 * stats.norm.pdf(z) - 1 / np.sqrt(np.pi))
+    assert_allclose(crps, closed, rtol=1e-8)
+    errors = []
+    for k in (4, 19, 99, 499):  # K intervals: 2K + 1 levels j / (2K + 2)
+        levels = np.arange(1, 2 * k + 2) / (2 * k + 2)
+        q = stats.norm.ppf(levels, mu, sigma)
+        values = np.broadcast_to(q, (1, ys.size, levels.size))
+        s = score_forecasts(values, levels, ys[None, :], [mu])
+        errors.append(float(np.max(np.abs(s.wis[0] / crps - 1))))
+    # measured 0.107, 0.025, 0.0050, 0.0010 (max over the outcomes): falls about like 1/K
+    assert errors[-1] < 0.002
+    assert all(b < a / 3 for a, b in zip(errors, errors[1:], strict=False))

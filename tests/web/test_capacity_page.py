@@ -55,3 +55,23 @@ def test_capacity_page_in_german(demo_app_client: TestClient) -> None:
     assert login(demo_app_client, ROLE_USER["analyst"]) == 303
     html = demo_app_client.get("/staff/areas/R1/capacity?lang=de").text
     assert "Kapazität von Upper Corven" in html
+
+
+def test_area_capacity_page_of_general_beds(demo_app_client: TestClient) -> None:
+    assert login(demo_app_client, ROLE_USER["analyst"]) == 303
+    icu = demo_app_client.get("/staff/areas/R1/capacity").text
+    assert 'href="/staff/areas/R1/capacity?beds=ward"' in icu
+    page = demo_app_client.get("/staff/areas/R1/capacity?beds=ward")
+    assert page.status_code == 200
+    html = page.text
+    assert "General beds of Upper Corven" in html
+    assert 'href="/staff/areas/R1/capacity"' in html
+    figures = _figures(html)
+    assert len(figures) == 3  # one fan per scenario, against staffed general beds
+    names = {t.get("name") for t in figures[0]["data"]}
+    assert {"beds in use", "90% band", "staffed beds", "85% of staffed beds"} <= names
+    assert "Days until 85% of staffed beds" in html
+    assert "not kept in the record yet" in html
+    assert demo_app_client.get("/staff/areas/R1/capacity?beds=maternity").status_code == 404
+    german = demo_app_client.get("/staff/areas/R1/capacity?beds=ward&lang=de").text
+    assert "Normalbetten von Upper Corven" in german

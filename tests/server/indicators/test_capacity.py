@@ -189,6 +189,32 @@ def test_capacity_forecasts_give_one_quantile_forecast_per_target_and_scenario()
     assert crossing.lower[5] <= crossing.estimate[5] <= crossing.upper[5]
 
 
+def test_general_beds_are_forecast_as_ward_targets_with_their_own_length_of_stay() -> None:
+    # The same census model for general beds: targets ward_occupied / ward_share, with the
+    # length of stay passed (median 5 days, quartiles 3 and 9: invented for the check). The
+    # simulated median follows the expected census at the fitted growth rate under that stay
+    # (expected_occupancy, checked against scipy in this file), not under the ICU stay. A
+    # changing growth rate (here to -3 % a day within 10 days) is what makes the stay matter:
+    # under a constant rate every census grows at that rate whatever the stay.
+    occ, staffed = np.full(6, 40.0), np.full(6, 100.0)
+    short = length_of_stay(median=5.0, quartiles=(3.0, 9.0))
+    ward = capacity_forecasts(**_inputs(), occupied=occ, staffed=staffed, sims=2000, beds="ward",
+                              los=short)
+    assert {f.target for f in ward.forecasts} == {"hosp_admissions", "ward_occupied",
+                                                   "ward_share"}
+    median = ward.forecast("ward_occupied", "to-minus").median()[:, 13]
+    sc = SCENARIOS["to-minus"]
+    expected = expected_occupancy(occ, ward.growth, sc, short, 14).total[:, 14]
+    under_icu_stay = expected_occupancy(occ, ward.growth, sc, length_of_stay(), 14).total[:, 14]
+    assert np.all(np.abs(under_icu_stay - expected) > 2)
+    assert_allclose(median, expected, rtol=0.06)
+    assert np.all(np.abs(median - expected) < np.abs(median - under_icu_stay))
+    assert_allclose(ward.forecast("ward_share", "trend").values,
+                    100 * ward.forecast("ward_occupied", "trend").values / 100.0)
+    with pytest.raises(ValueError, match="beds"):
+        capacity_forecasts(**_inputs(), occupied=occ, staffed=staffed, sims=50, beds="maternity")
+
+
 def test_capacity_forecasts_are_reproducible_from_the_seed() -> None:
     a = capacity_forecasts(**_inputs(), sims=50, seed=4).forecast("hosp_admissions", "trend")
     b = capacity_forecasts(**_inputs(), sims=50, seed=4).forecast("hosp_admissions", "trend")
