@@ -478,9 +478,11 @@ def main() -> None:
               f"active policies: {', '.join(r.name for r in policies)} "
               f"({len(policies)} of {len(args.policies)} activated)")
 
-        start = time.perf_counter()
-        pandas_rows = read_with_pandas(files, catalogue)
-        pandas_seconds = time.perf_counter() - start
+        pandas_seconds = float("inf")
+        for _ in range(3):  # best of three: a tenth of a second is noisy on a shared machine
+            start = time.perf_counter()
+            pandas_rows = read_with_pandas(files, catalogue)
+            pandas_seconds = min(pandas_seconds, time.perf_counter() - start)
         accepted = rejected = 0
         with timed("ingest", times, args.profile):
             for feed, path in files.items():
@@ -505,7 +507,7 @@ def main() -> None:
     morning = times["ingest"] + times["evaluation"] + times["pages"]
     load = os.getloadavg()
     print(f"night's files: {len(files)} feeds, {accepted:,} rows, {size:.1f} MB; "
-          f"pandas reads them in {pandas_seconds:.2f} s ({pandas_rows:,} rows)")
+          f"pandas reads them in {pandas_seconds:.2f} s ({pandas_rows:,} rows, best of 3)")
     print(f"  ingest      {times['ingest']:7.2f} s   {times['ingest'] / pandas_seconds:6.1f}x "
           f"pandas ({accepted / times['ingest']:,.0f} rows/s)")
     print(f"  indicators  {times['indicators']:7.2f} s   ({series} series of "
