@@ -16,7 +16,8 @@ from pathlib import Path
 
 from server.config import Settings
 from server.services.database import Database
-from server.services.feeds import FeedCatalogue, catalogue_limits, issue_token, load_catalogue
+from server.services.feed_push import issue_token
+from server.services.feeds import FeedCatalogue, catalogue_limits, load_catalogue
 
 DEMO_FEEDS_FILE = Path(__file__).with_name("feeds.yaml")
 PUSH_FEEDS = ("long-csv", "gp-sentinel")

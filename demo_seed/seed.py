@@ -39,7 +39,7 @@ from server.services.evaluation import (
     default_ruleset_path,
     store_ruleset,
 )
-from server.services.feeds import record_feed_state
+from server.services.feed_state import record_feed_state
 from server.services.forecast_record import store_forecasts_as_known
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.official_history import import_official_history

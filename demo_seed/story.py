@@ -13,7 +13,7 @@ from datetime import date, datetime
 
 from demo_seed.feeds import demo_catalogue
 from server.services.database import Database
-from server.services.feeds import feed_statuses
+from server.services.feed_health import feed_statuses
 from server.services.review import current_run, official_tiers, pending_changes
 
 __all__ = ["DemoMorning", "FeedHealth", "Pending", "demo_morning", "morning_lines"]

@@ -20,16 +20,8 @@ from fastapi import APIRouter, Header, Request
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
-from server.services.feeds import (
-    FeedDefinition,
-    FeedFileError,
-    FeedTokenError,
-    NotAPushFeedError,
-    UnknownFeedError,
-    check_push,
-    ingest_push,
-    load_catalogue,
-)
+from server.services.feed_push import FeedTokenError, NotAPushFeedError, check_push, ingest_push
+from server.services.feeds import FeedDefinition, FeedFileError, UnknownFeedError, load_catalogue
 from server.services.ingest import IngestReceipt
 from web.deps import SettingsDep
 

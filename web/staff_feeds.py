@@ -19,14 +19,14 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 from starlette.types import Message
 
+from server.services.feed_push import upload_payload
 from server.services.feeds import (
     FeedFileError,
     UnconfirmedRevisionsError,
     UnknownFeedError,
-    feeds_page,
     load_catalogue,
-    upload_payload,
 )
+from server.services.feeds_page import feeds_page
 from server.services.users import PERMISSIONS
 from web import held_uploads
 from web.deps import CsrfDep, SessionDep, SettingsDep, StaffDep, UploadDep

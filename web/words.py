@@ -81,7 +81,7 @@ def N_(message: str) -> str:  # noqa: N802 - the gettext convention for "mark, d
 
 
 WORDS: tuple[str, ...] = (
-    # feed states (server/services/feeds.py: FeedStatus.health)
+    # feed states (server/services/feed_health.py: FeedStatus.health)
     N_("ok"), N_("attention"), N_("overdue"), N_("no delivery yet"),
     # what the engine did on a day (rules/record.py: action)
     N_("raised"), N_("lowered"), N_("decided"), N_("held"), N_("unchanged"),

@@ -19,17 +19,11 @@ from server.config import Settings
 from server.feeds.definition import FeedCatalogue
 from server.feeds.sources import Payload
 from server.services.database import Database
-from server.services.feeds import (
-    catalogue_limits,
-    feed_named,
-    feed_statuses,
-    feeds_file,
-    ingest_recorded,
-    issue_token,
-    load_catalogue,
-    plural,
-    run_feed,
-)
+from server.services.feed_health import feed_statuses
+from server.services.feed_push import issue_token
+from server.services.feed_runs import run_feed
+from server.services.feed_state import ingest_recorded, plural
+from server.services.feeds import catalogue_limits, feed_named, feeds_file, load_catalogue
 from server.services.ingest import IngestReceipt
 from server.services.notify import notify_config_from
 

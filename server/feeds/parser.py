@@ -15,150 +15,29 @@ where it opened a ``malformed_row``, and reading resumes on the next line.
 Blocks are cut at record boundaries (a newline after an even number of quotes) and handed whole to
 the C parser of pandas; a block it cannot read consistently is read record by record with
 :mod:`csv` instead. Columns come out *coded* (:class:`Coded`: distinct values and one code per
-row), so validation looks up each distinct region code, date and value once. JSON feeds are one
-array of objects (or an object with a ``records`` list); their "line" is the record's position,
-starting at 1. They are streamed as well: read in blocks and decoded one record at a time.
+row; :mod:`server.feeds.chunks`), so validation looks up each distinct region code, date and
+value once. Decoding is :mod:`server.feeds.decoding`; JSON feeds are read by
+:mod:`server.feeds.json_records` (:func:`read_chunks` picks the reader by the feed's format).
 """
 
 from __future__ import annotations
 
-import codecs
 import csv
 import io
-import itertools
-import json
 import warnings
-from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
-from functools import cached_property
+from collections.abc import Iterator
+from dataclasses import dataclass
 from typing import BinaryIO
 
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from server.feeds.chunks import NEWLINE, QUOTE, Coded, RawChunk, record_ends
+from server.feeds.decoding import BLOCK_BYTES, MAX_RECORD_BYTES, Decoder
 from server.feeds.definition import FeedDefinition
-from server.feeds.errors import EmptyFileError, EncodingError, FeedFileError, HeaderError
-
-BLOCK_BYTES = 8 << 20
-MAX_RECORD_BYTES = 1 << 20
-BOM = codecs.BOM_UTF8
-NEWLINE = 0x0A
-QUOTE = 0x22
-
-
-@dataclass(frozen=True)
-class Coded:
-    """A column of strings as distinct values (``uniques``) and one code per row (``codes``)."""
-
-    codes: NDArray[np.intp]
-    uniques: NDArray[np.object_]
-
-    @classmethod
-    def of(cls, values: NDArray[np.object_] | list[str], *, strip: bool = True) -> Coded:
-        """Code ``values`` (a missing value becomes ``""``); ``strip`` strips every value."""
-        codes, uniques = pd.factorize(np.asarray(values, dtype=object))
-        uniques = np.asarray(uniques, dtype=object)
-        if (codes < 0).any():
-            uniques = np.append(uniques, "")
-            codes = np.where(codes < 0, uniques.size - 1, codes)
-        if strip and uniques.size:
-            uniques = np.asarray([str(u).strip() for u in uniques], dtype=object)
-        return cls(codes=codes.astype(np.intp, copy=False), uniques=uniques)
-
-    def __len__(self) -> int:
-        return int(self.codes.size)
-
-    @property
-    def values(self) -> NDArray[np.object_]:
-        """One string per row."""
-        return self.uniques[self.codes] if self.uniques.size else np.zeros(0, dtype=object)
-
-    def take(self, index: NDArray[np.intp] | NDArray[np.bool_]) -> Coded:
-        return Coded(codes=self.codes[index], uniques=self.uniques)
-
-    def map(self, func: Callable[[NDArray[np.object_]], NDArray]) -> NDArray:  # type: ignore[type-arg]
-        """``func`` applied to the distinct values, spread back to one result per row."""
-        mapped = np.asarray(func(self.uniques))
-        return mapped[self.codes] if self.uniques.size else mapped[:0]
-
-    def equals(self, text: str) -> NDArray[np.bool_]:
-        return self.map(lambda u: u == text).astype(bool)
-
-    @staticmethod
-    def concat(parts: list[Coded]) -> Coded:
-        """Rows of ``parts`` one after the other (their distinct values are not merged)."""
-        offsets = np.cumsum([0] + [p.uniques.size for p in parts[:-1]])
-        return Coded(
-            codes=np.concatenate([p.codes + o for p, o in zip(parts, offsets, strict=True)])
-            if parts else np.zeros(0, dtype=np.intp),
-            uniques=np.concatenate([p.uniques for p in parts]) if parts
-            else np.zeros(0, dtype=object),
-        )
-
-
-@dataclass(frozen=True, kw_only=True)
-class RawChunk:
-    """Records of one block: coded columns, start line numbers, malformed flags, raw text.
-
-    ``text`` holds the records as UTF-8 bytes, each ended by a newline; ``starts`` and ``ends``
-    give each record's span in it (found on first use when not given). JSON chunks give
-    ``records`` instead: one raw text per record.
-    """
-
-    columns: dict[str, Coded]
-    lines: NDArray[np.int64]
-    malformed: NDArray[np.bool_]
-    text: bytes = b""
-    starts: NDArray[np.int64] | None = None
-    ends: NDArray[np.int64] | None = None
-    records: NDArray[np.object_] | None = None
-    _spans: list[NDArray[np.int64]] = field(default_factory=list, repr=False, compare=False)
-
-    def __len__(self) -> int:
-        return int(self.lines.size)
-
-    def spans(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
-        """Start and end (after the newline) of every record in ``text``."""
-        if self.starts is not None and self.ends is not None:
-            return self.starts, self.ends
-        if not self._spans:
-            ends = _record_ends(self.text) + 1
-            starts = np.r_[0, ends[:-1]] if ends.size else ends
-            self._spans.extend([starts.astype(np.int64), ends])
-        return self._spans[0], self._spans[1]
-
-    def raw_at(self, index: NDArray[np.intp] | list[int]) -> list[str]:
-        """Raw text of the records at ``index`` (line breaks inside a record kept as ``\\n``)."""
-        rows = np.asarray(index, dtype=np.intp)
-        if self.records is not None:
-            return [str(r) for r in self.records[rows]]
-        starts, ends = self.spans()
-        text = self.text
-        return [
-            text[a:b].decode("utf-8").removesuffix("\n")
-            for a, b in zip(starts[rows].tolist(), ends[rows].tolist(), strict=True)
-        ]
-
-    @cached_property
-    def raw(self) -> NDArray[np.object_]:
-        """Raw text of every record (built on demand; validation reads only rejected rows)."""
-        return np.asarray(self.raw_at(np.arange(len(self))), dtype=object)
-
-    def take(self, index: NDArray[np.intp]) -> RawChunk:
-        """The records at ``index``, sharing this chunk's text."""
-        if self.records is not None:
-            return RawChunk(
-                columns={k: v.take(index) for k, v in self.columns.items()},
-                lines=self.lines[index], malformed=self.malformed[index],
-                records=self.records[index],
-            )
-        starts, ends = self.spans()
-        return RawChunk(
-            columns={k: v.take(index) for k, v in self.columns.items()},
-            lines=self.lines[index], malformed=self.malformed[index], text=self.text,
-            starts=starts[index], ends=ends[index],
-        )
+from server.feeds.errors import EmptyFileError, FeedFileError, HeaderError
+from server.feeds.json_records import read_json_records
 
 
 def sniff_delimiter(header: str) -> str:
@@ -166,55 +45,6 @@ def sniff_delimiter(header: str) -> str:
     counts = {d: header.count(d) for d in (",", ";", "\t")}
     best = max(counts, key=lambda d: counts[d])
     return best if counts[best] > 0 else ","
-
-
-class _Decoder:
-    """Incremental decoder to UTF-8 bytes that reports the byte offset of the first bad byte."""
-
-    def __init__(self, encoding: str, label: str) -> None:
-        self.encoding = encoding
-        self.label = label
-        self.offset = 0
-        self.newlines = 0  # line breaks in the bytes decoded so far
-        self.first = True
-        self.utf8 = codecs.lookup(encoding).name == "utf-8"
-        self.decoder = codecs.getincrementaldecoder(encoding)(errors="strict")
-
-    def decode(self, block: bytes, *, final: bool) -> bytes:
-        """``block`` checked (UTF-8) or decoded and re-encoded as UTF-8 (any other encoding)."""
-        start = self.offset
-        if self.first and self.utf8 and block.startswith(BOM):
-            block = block[len(BOM):]
-            start += len(BOM)
-            self.offset += len(BOM)
-        self.first = False
-        pending = len(self.decoder.getstate()[0])
-        nul = block.find(b"\x00")
-        if nul >= 0:
-            raise EncodingError(self.label, start + nul, self.encoding, self._line(block, nul))
-        try:
-            text = self.decoder.decode(block, final)
-        except UnicodeDecodeError as exc:
-            at = max(exc.start - pending, 0)
-            raise EncodingError(self.label, start - pending + exc.start, self.encoding,
-                                self._line(block, at)) from None
-        self.offset += len(block)
-        self.newlines += block.count(b"\n")
-        return block if self.utf8 else text.encode("utf-8")
-
-    def _line(self, block: bytes, at: int) -> int:
-        """Physical line (1-based) of byte ``at`` of ``block`` (line breaks as ``\\n``)."""
-        return self.newlines + block.count(b"\n", 0, at) + 1
-
-
-def _record_ends(text: bytes) -> NDArray[np.int64]:
-    """Offsets of the newlines that end a record: those after an even number of quotes."""
-    data = np.frombuffer(text, dtype=np.uint8)
-    newlines = np.flatnonzero(data == NEWLINE)
-    if b'"' not in text:
-        return newlines.astype(np.int64)
-    quotes = np.flatnonzero(data == QUOTE)
-    return newlines[(np.searchsorted(quotes, newlines) & 1) == 0]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -257,7 +87,7 @@ def _split(text: bytes, line: int) -> tuple[_Block | None, bytes, int]:
 
 
 def _blocks(
-    stream: BinaryIO, decoder: _Decoder, block_bytes: int, max_record: int
+    stream: BinaryIO, decoder: Decoder, block_bytes: int, max_record: int
 ) -> Iterator[_Block]:
     """Blocks of complete records across ``\\r\\n``, ``\\r`` and ``\\n`` endings."""
     carry = b""
@@ -378,7 +208,7 @@ def _header(
 ) -> tuple[list[str], str, _Block | None]:
     """Column names and delimiter from the first record; the rest of its block."""
     for block in blocks:
-        end = len(block.text) if block.malformed else int(_record_ends(block.text)[0]) + 1
+        end = len(block.text) if block.malformed else int(record_ends(block.text)[0]) + 1
         header = block.text[:end].decode("utf-8").removesuffix("\n")
         rest = None
         if end < len(block.text):
@@ -406,7 +236,7 @@ def read_csv_chunks(
     max_record: int = MAX_RECORD_BYTES,
 ) -> Iterator[RawChunk]:
     """Stream ``stream`` as CSV per ``feed``; yields one :class:`RawChunk` per block."""
-    blocks = _blocks(stream, _Decoder(feed.encoding, label), block_bytes, max_record)
+    blocks = _blocks(stream, Decoder(feed.encoding, label), block_bytes, max_record)
     names, delimiter, first = _header(blocks, feed, label)
     wanted = feed.required_columns
     if first is not None:
@@ -427,211 +257,12 @@ def read_raw_records(
             hit = np.flatnonzero(np.isin(chunk.lines, wanted))
             found.update(zip(chunk.lines[hit].tolist(), chunk.raw_at(hit), strict=True))
         return found
-    for block in _blocks(stream, _Decoder(feed.encoding, label), block_bytes, max_record):
+    for block in _blocks(stream, Decoder(feed.encoding, label), block_bytes, max_record):
         hit = np.flatnonzero(np.isin(block.lines, wanted))
         if hit.size:
             chunk = block.chunk({}, np.zeros(block.lines.size, dtype=bool))
             found.update(zip(block.lines[hit].tolist(), chunk.raw_at(hit), strict=True))
     return found
-
-
-class _JsonStream:
-    """Text of a JSON payload read in blocks, with the line and column of any position."""
-
-    def __init__(self, stream: BinaryIO, decoder: _Decoder, block_bytes: int) -> None:
-        self.stream = stream
-        self.decoder = codecs.getincrementaldecoder("utf-8")()
-        self.bytes = decoder
-        self.block_bytes = block_bytes
-        self.text = ""
-        self.pos = 0
-        self.line = 1  # line of text[0]
-        self.column = 1
-        self.done = False
-        self.last = ""
-
-    def more(self) -> bool:
-        """Read the next block; False at the end of the payload."""
-        if self.done:
-            return False
-        raw = self.stream.read(self.block_bytes)
-        final = not raw
-        chunk = self.decoder.decode(self.bytes.decode(raw, final=final), final)
-        if self.pos > (1 << 20):  # drop what is consumed, keeping line numbers right
-            dropped = self.text[:self.pos]
-            newlines = dropped.count("\n")
-            self.line += newlines
-            self.column = (len(dropped) - dropped.rfind("\n")) if newlines else (
-                self.column + len(dropped))
-            self.text, self.pos = self.text[self.pos:], 0
-        self.text += chunk
-        self.done = final
-        return True
-
-    def where(self, pos: int) -> str:
-        head = self.text[:pos]
-        newlines = head.count("\n")
-        column = (pos - head.rfind("\n")) if newlines else self.column + pos
-        return f"line {self.line + newlines} column {column}"
-
-    def peek(self) -> str:
-        """The next character that is not white space ("" at the end)."""
-        while True:
-            while self.pos < len(self.text) and self.text[self.pos] in " \t\r\n":
-                self.pos += 1
-            if self.pos < len(self.text):
-                return self.text[self.pos]
-            if not self.more():
-                return ""
-
-    def value(self, decoder: json.JSONDecoder, label: str, record: int | None = None) -> object:
-        """The next JSON value, reading more text until it is complete (its text: ``last``).
-
-        ``record`` (1-based position in the list of records) is named in errors. A value nested
-        more deeply than Python's recursion limit allows (about 1 000 levels) rejects the file
-        with that record's place, as any other invalid JSON does.
-        """
-        self.peek()
-        while True:
-            try:
-                value, end = decoder.raw_decode(self.text, self.pos)
-            except json.JSONDecodeError as exc:
-                # Near the end of the text the value may just be cut by the block: read on.
-                # Further back it is invalid (and a record longer than MAX_RECORD_BYTES is, too).
-                if len(self.text) - exc.pos <= MAX_RECORD_BYTES and self.more():
-                    continue
-                raise FeedFileError(label, self._place(exc.pos, record),
-                                    f"not valid JSON ({exc.msg})") from None
-            except RecursionError:
-                raise FeedFileError(
-                    label, self._place(self.pos, record),
-                    "the JSON is nested too deeply (a record is an object of plain values)",
-                ) from None
-            if end == len(self.text) and not self.done and isinstance(value, int | float):
-                self.more()  # a number may go on in the next block
-                continue
-            self.last = self.text[self.pos:end]
-            self.pos = end
-            return value
-
-    def _place(self, pos: int, record: int | None) -> str:
-        return self.where(pos) if record is None else f"record {record}, {self.where(pos)}"
-
-    def expect(self, allowed: str, label: str) -> str:
-        char = self.peek()
-        if not char or char not in allowed:
-            found = repr(char) if char else "the end"
-            raise FeedFileError(label, self.where(self.pos),
-                                f"not valid JSON (expected {' or '.join(allowed)}, found {found})")
-        self.pos += 1
-        return char
-
-
-def _json_records(text: _JsonStream, label: str) -> Iterator[tuple[object, str]]:
-    """Records of ``[...]`` or of the ``records`` list of ``{...}``, each with its text."""
-    decoder = _decoder()
-    shape = "expected a JSON array of records or {\"records\": [...]}"
-    start = text.peek()
-    if start == "{":
-        text.pos += 1
-        seen = False
-        if text.peek() == "}":
-            text.pos += 1
-        else:
-            while True:
-                key = text.value(decoder, label)
-                text.expect(":", label)
-                if key == "records" and text.peek() == "[" and not seen:
-                    seen = True
-                    text.pos += 1
-                    yield from _json_array(text, decoder, label)
-                else:
-                    text.value(decoder, label)
-                if text.expect(",}", label) == "}":
-                    break
-        if not seen:
-            raise FeedFileError(label, "", shape)
-    elif start == "[":
-        text.pos += 1
-        yield from _json_array(text, decoder, label)
-    else:
-        if start:
-            text.value(decoder, label)  # a valid JSON value of the wrong shape, or an error
-        raise FeedFileError(label, "", shape) if start else EmptyFileError(
-            label, "", "the file is empty")
-    if text.peek():
-        raise FeedFileError(label, text.where(text.pos), "not valid JSON (Extra data)")
-
-
-def _keep_digits(digits: str) -> str:
-    """JSON integers are kept as their digits: a value is read from its text anyway, and
-    ``int()`` refuses more than 4 300 digits (a ``ValueError`` outside ``JSONDecodeError``)."""
-    return digits
-
-
-def _decoder() -> json.JSONDecoder:
-    return json.JSONDecoder(parse_int=_keep_digits)
-
-
-def _json_array(
-    text: _JsonStream, decoder: json.JSONDecoder, label: str
-) -> Iterator[tuple[object, str]]:
-    if text.peek() == "]":
-        text.pos += 1
-        return
-    for number in itertools.count(1):
-        record = text.value(decoder, label, number)
-        yield record, text.last
-        if text.expect(",]", label) == "]":
-            return
-
-
-def read_json_records(
-    stream: BinaryIO | bytes, feed: FeedDefinition, *, label: str, chunk_rows: int = 50_000,
-    block_bytes: int = BLOCK_BYTES,
-) -> Iterator[RawChunk]:
-    """Stream JSON records (a list of objects, or ``{"records": [...]}``) in chunks.
-
-    The document is read in blocks and decoded one record at a time, so memory stays bounded by
-    one chunk of records. A column the feed requires that no record has rejects the whole file
-    (:class:`~server.feeds.errors.HeaderError`), raised after the last chunk: the caller's
-    transaction is rolled back then, as for any whole-file rejection.
-    """
-    source = io.BytesIO(stream) if isinstance(stream, bytes) else stream
-    text = _JsonStream(source, _Decoder(feed.encoding, label), block_bytes)
-    wanted = feed.required_columns
-    found: set[str] = set()
-    records = _json_records(text, label)
-    start = 0
-    total = 0
-    while True:
-        part = list(itertools.islice(records, chunk_rows))
-        if not part:
-            break
-        n = len(part)
-        columns = {c: np.full(n, "", dtype=object) for c in wanted}
-        malformed = np.zeros(n, dtype=bool)
-        raw = np.empty(n, dtype=object)
-        for i, (record, source) in enumerate(part):
-            raw[i] = source[:2000]
-            if not isinstance(record, dict):
-                malformed[i] = True
-                continue
-            found.update(record)
-            for c in wanted:
-                v = record.get(c)
-                columns[c][i] = "" if v is None else (str(v).lower() if isinstance(v, bool)
-                                                      else str(v))
-        del part
-        yield RawChunk(
-            columns={c: Coded.of(v) for c, v in columns.items()},
-            lines=np.arange(start + 1, start + n + 1, dtype=np.int64),
-            malformed=malformed, records=raw,
-        )
-        start += n
-        total += n
-    if total and any(c not in found for c in wanted):
-        raise HeaderError(label, wanted, sorted(found))
 
 
 def read_chunks(

@@ -20,16 +20,14 @@ non_integer_count      a count measure with a fractional value
 out_of_range           outside the plausible range set for the measure in the feed
 =====================  ==============================================================
 
-File checks (over all rows that passed, see :func:`check_file`): ``duplicate_row`` (same key and
-value as an earlier line, which is kept), ``conflicting_duplicate`` (same key, different values:
-every such line is rejected), ``positives_exceed_tests`` (both lines rejected); and, with values
-read from the store, ``positives_exceed_tests`` for a file's positives (tests) whose tests
-(positives) for that region and date are only stored (:func:`check_stored_pairs`), and
-``outranked`` for a row that would revise a value sent by a feed of higher precedence for the
+File checks (over all rows that passed) are :mod:`server.feeds.file_checks`: ``duplicate_row``,
+``conflicting_duplicate``, ``positives_exceed_tests`` (within the file and against stored values);
+``outranked`` marks a row that would revise a value sent by a feed of higher precedence for the
 measure (``server/services/revisions.py``).
 
-Checks run on the distinct values of each column (:class:`~server.feeds.parser.Coded`) and are
-spread back to rows with numpy; messages are built for rejected rows only.
+Checks run on the distinct values of each column (:class:`~server.feeds.chunks.Coded`; dates and
+numbers are read by :mod:`server.feeds.values`) and are spread back to rows with numpy; messages
+are built for rejected rows only.
 
 An ISO week is stored on its Monday. Values are multiplied by the measure's ``scale`` before the
 count and range checks.
@@ -44,31 +42,25 @@ is ``out_of_range``.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import date
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
 
+from server.feeds.chunks import Coded, RawChunk
 from server.feeds.definition import FeedDefinition
-from server.feeds.parser import Coded, RawChunk
-from server.store.reads import StoredValues
+from server.feeds.values import AMBIGUOUS, BAD_GROUPING, EPOCH, days_of, parse_numbers
 from server.store.vintages import Rejection
 
-EPOCH = date(1970, 1, 1)
 Messages = Callable[[NDArray[np.int64]], list[str]]
-ISO_DATE = re.compile(r"^([0-9]{4})-([0-9]{2})-([0-9]{2})$")  # ASCII digits only
-ISO_WEEK = re.compile(r"^([0-9]{4})-?W([0-9]{2})$")
 REASONS = (
     "malformed_row", "unknown_region", "unknown_measure", "unparsable_date", "future_date",
     "missing_value", "non_numeric_value", "negative_count", "non_integer_count", "out_of_range",
     "duplicate_row", "conflicting_duplicate", "positives_exceed_tests", "ambiguous_number",
     "bad_digit_grouping", "date_too_old", "outranked",
 )
-AMBIGUOUS, BAD_GROUPING = 1, 2
 # Reference dates before this are refused: every evaluation runs from the oldest stored date, so
 # one row dated 0001-01-01 would make each one span two thousand years.
 EARLIEST_DATE = date(1990, 1, 1)
@@ -123,94 +115,6 @@ class ChunkResult:
     accepted: Accepted
     rejections: list[Rejection]
     skipped_blank: int
-
-
-@dataclass(frozen=True, kw_only=True)
-class FileCheck:
-    """Outcome of the whole-file checks: which accepted rows to keep, and why others went."""
-
-    keep: NDArray[np.bool_]
-    lines: NDArray[np.int64]
-    reasons: tuple[str, ...]
-    messages: tuple[str, ...]
-
-
-def day_numbers(text: NDArray[np.object_], *, weeks: bool) -> NDArray[np.float64]:
-    """Days since 1970-01-01 of ISO dates (and ISO weeks when ``weeks``); NaN when unparsable."""
-    coded = Coded.of(text, strip=False)
-    return coded.map(lambda u: _days_of(u, weeks=weeks)).astype(np.float64)
-
-
-def _days_of(uniques: NDArray[np.object_], *, weeks: bool) -> NDArray[np.float64]:
-    parsed = np.full(len(uniques), np.nan)
-    for i, u in enumerate(uniques.tolist()):
-        m = ISO_DATE.match(u)
-        try:
-            if m:
-                parsed[i] = (date(int(m[1]), int(m[2]), int(m[3])) - EPOCH).days
-            elif weeks and (w := ISO_WEEK.match(u)):
-                parsed[i] = (date.fromisocalendar(int(w[1]), int(w[2]), 1) - EPOCH).days
-        except ValueError:
-            pass
-    return parsed
-
-
-def _floats(text: NDArray[np.object_]) -> NDArray[np.float64]:
-    """Numbers of ``text`` as pandas reads them (NaN when not a number)."""
-    if not text.size:
-        return np.zeros(0)
-    joined = "".join(text.tolist())
-    if joined.isascii() and "_" not in joined:  # where float() and pandas agree
-        try:
-            return text.astype(np.float64)
-        except ValueError:
-            pass
-    return np.array(pd.to_numeric(pd.Series(text, dtype=object), errors="coerce"),
-                    dtype=np.float64)
-
-
-def _grouping(decimal: str, thousands: str) -> re.Pattern[str]:
-    sep = "[ \u00a0\u202f]" if thousands == " " else re.escape(thousands)
-    return re.compile(
-        rf"^[+-]?\d{{1,3}}(?:{sep}\d{{3}})+(?:{re.escape(decimal)}\d*)?(?:[eE][+-]?\d+)?$"
-    )
-
-
-def parse_numbers(
-    text: NDArray[np.object_], *, decimal: str = ".", thousands: str | None = None
-) -> tuple[NDArray[np.float64], NDArray[np.int8]]:
-    """Values of number strings written with ``decimal`` and ``thousands``, and a problem code.
-
-    Problem codes: 0 none (the value may still be NaN or infinite), :data:`AMBIGUOUS` (the
-    string uses a separator the feed declares neither as decimal mark nor as thousands
-    separator: ``1,5`` with ``decimal: "."``, ``1.234,5`` with ``decimal: ","`` alone),
-    :data:`BAD_GROUPING` (thousands separators not between groups of three digits, or after the
-    decimal mark). Meant for distinct values (see :class:`~server.feeds.parser.Coded`).
-    """
-    other = "," if decimal == "." else "."
-    problem = np.zeros(text.size, dtype=np.int8)
-    if decimal == "." and thousands is None:
-        values = _floats(text)
-        failed = np.flatnonzero(np.isnan(values))
-        problem[failed] = [AMBIGUOUS if "," in u else 0 for u in text[failed].tolist()]
-        return values, problem
-    grouped = _grouping(decimal, thousands) if thousands is not None else None
-    marks = {thousands} | ({"\u00a0", "\u202f"} if thousands == " " else set())
-    canonical = np.empty(text.size, dtype=object)
-    for i, u in enumerate(text.tolist()):
-        if grouped is not None and any(t in u for t in marks):
-            if not grouped.match(u):
-                problem[i], canonical[i] = BAD_GROUPING, ""
-                continue
-            for t in marks:
-                u = u.replace(t, "")
-        if other in u:
-            problem[i], canonical[i] = AMBIGUOUS, ""
-            continue
-        canonical[i] = u.replace(decimal, ".")
-    values = _floats(canonical)
-    values[problem != 0] = np.nan
-    return values, problem
 
 
 def _lookup(text: Coded, mapping: Mapping[str, int]) -> NDArray[np.float64]:
@@ -305,7 +209,7 @@ def validate_chunk(
         for m in measure.take(idx).values
     ])
     weeks = feed.cadence == "weekly"
-    day = cols["date"].map(lambda u: _days_of(u, weeks=weeks))
+    day = cols["date"].map(lambda u: days_of(u, weeks=weeks))
     expect = "YYYY-MM-DD or YYYY-Www" if weeks else "YYYY-MM-DD"
     flag(np.isnan(day), "unparsable_date",
          framed("date ", cols["date"], f" is not a date ({expect})"))
@@ -388,130 +292,3 @@ def _rejections(
         out.append(Rejection(line=line, raw=record[:2000], reason=REASONS[code - 1],
                              message=text))
     return out
-
-
-def check_file(
-    accepted: Accepted, *, positives: int | None, tests: int | None, unit: str = "line"
-) -> FileCheck:
-    """Whole-file checks on rows that passed: duplicates, conflicts, positives above tests."""
-    n = len(accepted)
-    keep = np.ones(n, dtype=bool)
-    lines: list[int] = []
-    reasons: list[str] = []
-    messages: list[str] = []
-    if n == 0:
-        return FileCheck(keep=keep, lines=np.zeros(0, np.int64), reasons=(), messages=())
-    order = np.lexsort((accepted.line, accepted.day, accepted.measure_id, accepted.region_id))
-    r, m, d = accepted.region_id[order], accepted.measure_id[order], accepted.day[order]
-    same = (r[1:] == r[:-1]) & (m[1:] == m[:-1]) & (d[1:] == d[:-1])
-    if same.any():
-        start = np.r_[True, ~same]
-        group = np.cumsum(start) - 1
-        sizes = np.bincount(group)
-        v = accepted.value[order]
-        first = np.flatnonzero(start)
-        vmin = np.minimum.reduceat(v, first)
-        vmax = np.maximum.reduceat(v, first)
-        for g in np.flatnonzero(sizes > 1).tolist():
-            members = order[first[g]:first[g] + sizes[g]]
-            member_lines = accepted.line[members]
-            if vmin[g] == vmax[g]:
-                for k in members[1:].tolist():
-                    keep[k] = False
-                    lines.append(int(accepted.line[k]))
-                    reasons.append("duplicate_row")
-                    messages.append(f"repeats {unit} {int(member_lines[0])}, which was kept")
-            else:
-                said = ", ".join(
-                    f"{unit} {int(ln)} says {val:g}"
-                    for ln, val in zip(member_lines, accepted.value[members], strict=True)
-                )
-                for k in members.tolist():
-                    keep[k] = False
-                    lines.append(int(accepted.line[k]))
-                    reasons.append("conflicting_duplicate")
-                    messages.append(f"the same region, measure and date disagree: {said}")
-    if positives is not None and tests is not None:
-        _positives_over_tests(accepted, keep, positives, tests, lines, reasons, messages, unit)
-    return FileCheck(
-        keep=keep, lines=np.asarray(lines, dtype=np.int64), reasons=tuple(reasons),
-        messages=tuple(messages),
-    )
-
-
-def _positives_over_tests(
-    a: Accepted, keep: NDArray[np.bool_], positives: int, tests: int,
-    lines: list[int], reasons: list[str], messages: list[str], unit: str = "line",
-) -> None:
-    key = a.region_id * 1_000_000 + a.day
-    p = np.flatnonzero(keep & (a.measure_id == positives))
-    t = np.flatnonzero(keep & (a.measure_id == tests))
-    if p.size == 0 or t.size == 0:
-        return
-    t_sorted = t[np.argsort(key[t], kind="stable")]
-    pos = np.searchsorted(key[t_sorted], key[p])
-    pos = np.minimum(pos, t_sorted.size - 1)
-    match = key[t_sorted[pos]] == key[p]
-    p, q = p[match], t_sorted[pos[match]]
-    over = a.value[p] > a.value[q]
-    for i, j in zip(p[over].tolist(), q[over].tolist(), strict=True):
-        text = (f"positives {a.value[i]:g} ({unit} {int(a.line[i])}) exceed tests "
-                f"{a.value[j]:g} ({unit} {int(a.line[j])}) for the same region and date")
-        for k in (i, j):
-            keep[k] = False
-            lines.append(int(a.line[k]))
-            reasons.append("positives_exceed_tests")
-            messages.append(text)
-
-
-def unpaired(
-    accepted: Accepted, keep: NDArray[np.bool_], *, measure: int, other: int
-) -> NDArray[np.int64]:
-    """Rows of ``measure`` still kept whose region and date have no kept row of ``other``."""
-    key = accepted.region_id * 1_000_000 + accepted.day
-    mine = np.flatnonzero(keep & (accepted.measure_id == measure))
-    theirs = key[keep & (accepted.measure_id == other)]
-    return mine[~np.isin(key[mine], theirs)]
-
-
-def check_stored_pairs(
-    accepted: Accepted, keep: NDArray[np.bool_], *, positives: int, tests: int,
-    stored_positives: StoredValues, stored_tests: StoredValues, unit: str = "line",
-) -> FileCheck:
-    """Positives above tests where the file gives one measure and the store holds the other.
-
-    ``stored_*`` are the newest stored values for the file's unpaired rows (see
-    :func:`unpaired`). Only the file's row is rejected (``positives_exceed_tests``); the stored
-    value stays. ``keep`` is updated in place.
-    """
-    lines: list[int] = []
-    messages: list[str] = []
-    key = accepted.region_id * 1_000_000 + accepted.day
-    for mine, other, stored in ((positives, tests, stored_tests),
-                                (tests, positives, stored_positives)):
-        rows = unpaired(accepted, keep, measure=mine, other=other)
-        if rows.size == 0 or len(stored) == 0:
-            continue
-        stored_key = stored.region_id * 1_000_000 + stored.day
-        order = np.argsort(stored_key, kind="stable")
-        pos = np.minimum(np.searchsorted(stored_key[order], key[rows]), order.size - 1)
-        match = stored_key[order][pos] == key[rows]
-        rows, at = rows[match], order[pos[match]]
-        file_value, store_value = accepted.value[rows], stored.value[at]
-        over = file_value > store_value if mine == positives else store_value > file_value
-        for i, j in zip(rows[over].tolist(), at[over].tolist(), strict=True):
-            keep[i] = False
-            lines.append(int(accepted.line[i]))
-            if mine == positives:
-                text = (f"positives {accepted.value[i]:g} ({unit} {int(accepted.line[i])}) exceed "
-                        f"tests {stored.value[j]:g} already stored (vintage "
-                        f"{int(stored.vintage_id[j])}) for the same region and date")
-            else:
-                text = (f"positives {stored.value[j]:g} already stored (vintage "
-                        f"{int(stored.vintage_id[j])}) exceed tests {accepted.value[i]:g} "
-                        f"({unit} {int(accepted.line[i])}) for the same region and date")
-            messages.append(text)
-    return FileCheck(
-        keep=keep, lines=np.asarray(lines, dtype=np.int64),
-        reasons=("positives_exceed_tests",) * len(lines), messages=tuple(messages),
-    )

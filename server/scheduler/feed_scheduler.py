@@ -37,8 +37,8 @@ from server.scheduler.jobs import (
     register,
     unregister,
 )
+from server.scheduler.lease import LeaderLease
 from server.services.database import Database
-from server.services.feeds import LeaderLease
 
 log = logging.getLogger(__name__)
 

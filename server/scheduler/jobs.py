@@ -15,7 +15,8 @@ from dataclasses import dataclass, field
 
 from server.services.database import Database
 from server.services.evaluation import EvaluationRun, evaluate_if_behind
-from server.services.feeds import FeedRun, catalogue_limits, feed_named, run_feed
+from server.services.feed_runs import FeedRun, run_feed
+from server.services.feeds import catalogue_limits, feed_named
 
 log = logging.getLogger(__name__)
 

@@ -33,18 +33,10 @@ from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedDefinition
 from server.feeds.errors import EmptyFileError
+from server.feeds.file_checks import FileCheck, check_file, check_stored_pairs, unpaired
 from server.feeds.parser import read_chunks, read_raw_records
 from server.feeds.sources import Payload
-from server.feeds.validation import (
-    EPOCH,
-    Accepted,
-    Catalogue,
-    FileCheck,
-    check_file,
-    check_stored_pairs,
-    unpaired,
-    validate_chunk,
-)
+from server.feeds.validation import EPOCH, Accepted, Catalogue, validate_chunk
 from server.services.audit import record
 from server.services.database import Database
 from server.services.evaluation import EvaluationRun, evaluate_if_behind

@@ -14,7 +14,7 @@ from demo_seed.seed import DEMO_USERS, SeedSummary, received_at, seed_demo
 from server.config import Settings
 from server.services.database import Database
 from server.services.errors import NotADemoDatabaseError
-from server.services.feeds import token_matches
+from server.services.feed_push import token_matches
 from server.services.regions import RegionRecord, store_regions
 from server.store import read_dense, revision_history
 from server.store.models import Assessment, Observation, Region, User, Vintage

@@ -16,7 +16,7 @@ from sqlalchemy import func, select
 from server.config import Settings
 from server.feeds.definition import FeedDefinition, HttpSource, MeasureMap, PushSource
 from server.services.database import Database
-from server.services.feeds import issue_token
+from server.services.feed_push import issue_token
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
 from server.store.models import Vintage

@@ -23,7 +23,7 @@ from sqlalchemy import func, select
 from server.config import Settings
 from server.services.database import Database
 from server.services.evaluation import evaluation_behind
-from server.services.feeds import issue_token
+from server.services.feed_push import issue_token
 from server.store.models import EvaluationRun, Vintage
 from tests.server.conftest import cases_csv, seed_small_office
 from web.app import create_app

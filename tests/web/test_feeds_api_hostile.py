@@ -18,7 +18,7 @@ from fastapi.testclient import TestClient
 
 from server.config import Settings
 from server.services.database import Database
-from server.services.feeds import issue_token
+from server.services.feed_push import issue_token
 from tests.server.feeds.hostile_files import (
     FEEDS_YAML,
     Tally,

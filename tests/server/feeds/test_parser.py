@@ -1,4 +1,4 @@
-"""Streaming CSV/JSON reading and row validation, including property-based checks."""
+"""Streaming CSV reading and its row validation, including property-based checks."""
 
 from __future__ import annotations
 
@@ -14,16 +14,7 @@ from numpy.testing import assert_array_equal
 from server.feeds.definition import parse_feeds
 from server.feeds.errors import FeedFileError
 from server.feeds.parser import read_chunks, sniff_delimiter
-from server.feeds.validation import (
-    AMBIGUOUS,
-    BAD_GROUPING,
-    Accepted,
-    Catalogue,
-    check_file,
-    day_numbers,
-    parse_numbers,
-    validate_chunk,
-)
+from server.feeds.validation import Catalogue, validate_chunk
 
 FEEDS = parse_feeds(
     "feeds:\n  - name: long-csv\n    source: {kind: push}\n    measures: [cases, tests]\n"
@@ -69,22 +60,6 @@ def test_read_chunks_extra_field_marks_row_malformed() -> None:
 def test_read_chunks_nul_byte_rejected_with_offset() -> None:
     with pytest.raises(FeedFileError, match="byte 27"):
         chunks(b"region,date,measure,value\nA\x00")
-
-
-def test_day_numbers_iso_week_only_for_weekly() -> None:
-    text = np.asarray(["2026-W01", "2026-01-05", "2026-W54"], dtype=object)
-    # ISO 8601: 2026-W01 starts Monday 29 December 2025; 2026 has 53 weeks at most.
-    expected = (np.datetime64("2025-12-29") - np.datetime64("1970-01-01")).astype(int)
-    got = day_numbers(text, weeks=True)
-    assert got[0] == expected and np.isnan(got[2])
-    assert np.isnan(day_numbers(text, weeks=False)[0])
-
-
-def test_check_file_identical_duplicates_keep_first() -> None:
-    a = Accepted(region_id=np.array([1, 1]), measure_id=np.array([1, 1]), day=np.array([5, 5]),
-                 value=np.array([3.0, 3.0]), line=np.array([2, 3]))
-    check = check_file(a, positives=None, tests=None)
-    assert (check.keep.tolist(), check.reasons) == ([True, False], ("duplicate_row",))
 
 
 ROWS = st.lists(
@@ -185,38 +160,6 @@ def test_multiline_record_across_the_block_boundary_keeps_line_numbers() -> None
     assert rejected == [(start, "unknown_region"), (start + 3, "negative_count")]
 
 
-@pytest.mark.parametrize(
-    ("decimal", "thousands", "text", "value", "problem"),
-    [
-        pytest.param(".", None, "12.5", 12.5, 0, id="point"),
-        pytest.param(".", None, "1,5", np.nan, AMBIGUOUS, id="comma-in-point-feed"),
-        pytest.param(".", None, "1.234.5", np.nan, 0, id="not-a-number"),
-        pytest.param(",", None, "12,5", 12.5, 0, id="comma"),
-        pytest.param(",", None, "-0,25e2", -25.0, 0, id="comma-exponent"),
-        pytest.param(",", None, "1.234,5", np.nan, AMBIGUOUS, id="grouped-without-thousands"),
-        pytest.param(",", None, "1.234", np.nan, AMBIGUOUS, id="point-in-comma-feed"),
-        pytest.param(",", ".", "1.234,5", 1234.5, 0, id="grouped"),
-        pytest.param(",", ".", "12.345.678", 12345678.0, 0, id="grouped-integer"),
-        pytest.param(",", ".", "1234,5", 1234.5, 0, id="ungrouped-allowed"),
-        pytest.param(",", ".", "12.34,5", np.nan, BAD_GROUPING, id="group-of-two"),
-        pytest.param(",", ".", "1,234.5", np.nan, BAD_GROUPING, id="separator-after-mark"),
-        pytest.param(".", ",", "1,234.5", 1234.5, 0, id="point-with-comma-groups"),
-        pytest.param(".", ",", "1,5", np.nan, BAD_GROUPING, id="comma-group-of-one"),
-        pytest.param(",", " ", "1\u00a0234,5", 1234.5, 0, id="no-break-space"),
-        pytest.param(".", "'", "1'234.5", 1234.5, 0, id="apostrophe"),
-    ],
-)
-def test_parse_numbers_decimal_and_thousands(
-    decimal: str, thousands: str | None, text: str, value: float, problem: int
-) -> None:
-    # Conventions as in CLDR number formats (common practice, no source for the choice of
-    # which mixtures count as ambiguous: that is tierwise's rule, see docs/feeds.md).
-    values, problems = parse_numbers(np.asarray([text], dtype=object), decimal=decimal,
-                                     thousands=thousands)
-    assert problems.tolist() == [problem]
-    np.testing.assert_equal(values, [value])
-
-
 def test_decimal_comma_feed_rejects_ambiguous_values_with_reason() -> None:
     feed = parse_feeds(
         "feeds:\n  - name: c\n    source: {kind: push}\n    delimiter: ';'\n    decimal: ','\n"
@@ -229,35 +172,3 @@ def test_decimal_comma_feed_rejects_ambiguous_values_with_reason() -> None:
     (rejection,) = result.rejections
     assert (rejection.line, rejection.reason) == (3, "ambiguous_number")
     assert "'1.234,5' has a '.'" in rejection.message and "thousands" in rejection.message
-
-
-JSON_FEED = parse_feeds("feeds:\n  - name: j\n    source: {kind: push}\n    format: json\n"
-                        "    measures: [cases]\n", source="t.yaml")["j"]
-
-
-@pytest.mark.parametrize("block", [1, 5, 64, 1 << 20])
-def test_json_records_streamed_in_blocks_keep_position_and_text(block: int) -> None:
-    content = (b'{"source": {"note": "]},["}, "records": [\n'
-               b' {"region": "A", "date": "2026-01-01", "measure": "cases", "value": 12345},\n'
-               b' 7,\n {"region": "B", "date": "2026-01-02", "measure": "cases", "value": 1.5e3}'
-               b"\n]}")
-    parts = list(read_chunks(io.BytesIO(content), JSON_FEED, label="f.json", block_bytes=block))
-    lines = np.concatenate([c.lines for c in parts]).tolist()
-    values = [v for c in parts for v in c.columns["value"].values.tolist()]
-    raw = [r for c in parts for r in c.raw.tolist()]
-    assert (lines, values) == ([1, 2, 3], ["12345", "", "1500.0"])
-    assert raw[1] == "7" and raw[0].startswith('{"region": "A"')
-    assert [m for c in parts for m in c.malformed.tolist()] == [False, True, False]
-
-
-@pytest.mark.parametrize("block", [3, 1 << 20])
-def test_json_error_named_with_line_and_column_whatever_the_blocks(block: int) -> None:
-    content = b'[{"region": "A", "date": "d", "measure": "cases", "value": 1}\n,\n{"value": tru}]'
-    with pytest.raises(FeedFileError, match=r"f.json: record 2, line 3 column 11: not valid JSON"):
-        list(read_chunks(io.BytesIO(content), JSON_FEED, label="f.json", block_bytes=block))
-
-
-def test_json_without_a_required_key_in_any_record_is_rejected_whole() -> None:
-    content = b'[{"region": "A", "date": "2026-01-01", "count": 1}]'
-    with pytest.raises(FeedFileError, match=r"header lacks column\(s\) \['measure', 'value'\]"):
-        list(read_chunks(io.BytesIO(content), JSON_FEED, label="f.json"))

@@ -1,4 +1,4 @@
-"""The scheduler: leader lease and takeover, real APScheduler runs, a simulated day of pulls."""
+"""The scheduler: real APScheduler runs, takeover by a second instance, a simulated day of pulls."""
 
 from __future__ import annotations
 
@@ -20,7 +20,8 @@ from server.scheduler.feed_scheduler import (
 )
 from server.services.database import Database
 from server.services.evaluation import evaluation_behind
-from server.services.feeds import LeaderLease, ingest_recorded, run_feed
+from server.services.feed_runs import run_feed
+from server.services.feed_state import ingest_recorded
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.models import FeedState, Vintage
 from tests.server.conftest import cases_csv, seed_small_office
@@ -54,35 +55,6 @@ def wait_for(predicate, timeout: float = 8.0) -> bool:  # type: ignore[no-untype
             return True
         time.sleep(0.05)
     return False
-
-
-def test_lease_second_holder_waits(committed_db: Database) -> None:
-    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=5)
-    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=5)
-    try:
-        assert (first.acquire(), second.acquire(), first.acquire()) == (True, False, True)
-    finally:
-        first.release()
-        second.release()
-
-
-def test_lease_taken_over_when_holder_dies(committed_db: Database) -> None:
-    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=1)
-    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=1)
-    t0 = datetime.now(UTC)
-    assert first.acquire(t0)
-    first.abandon()  # PostgreSQL: the lock goes with the holder's connection
-    assert second.acquire(t0 + timedelta(seconds=2))  # SQLite: the row expired
-    second.release()
-
-
-def test_lease_released_lets_other_in_at_once(committed_db: Database) -> None:
-    first = LeaderLease(committed_db, name="t", holder="one", ttl_seconds=60)
-    second = LeaderLease(committed_db, name="t", holder="two", ttl_seconds=60)
-    assert first.acquire()
-    first.release()
-    assert second.acquire()
-    second.release()
 
 
 def test_simulated_day_of_hourly_pulls(committed_db: Database, feed_server) -> None:  # type: ignore[no-untyped-def]

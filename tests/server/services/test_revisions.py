@@ -16,12 +16,9 @@ from sqlalchemy import func, select
 from server.feeds.definition import parse_feeds
 from server.feeds.errors import FeedConfigError
 from server.services.database import Database
-from server.services.feeds import (
-    FeedStatus,
-    UnconfirmedRevisionsError,
-    ingest_push,
-    upload_payload,
-)
+from server.services.feed_health import FeedStatus
+from server.services.feed_push import ingest_push, upload_payload
+from server.services.revisions import UnconfirmedRevisionsError
 from server.store.models import (
     AuditEntry,
     FeedState,
