@@ -465,12 +465,34 @@ def _scan_t(z: FloatArray, w: FloatArray, xt: FloatArray, c_fixed: FloatArray | 
     return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
 
 
+def _safe_inverse(a: FloatArray) -> FloatArray:
+    """Inverse of a batch of symmetric matrices; a zero diagonal entry (a column with no
+    weight) is set to 1 first, and a singular batch falls back to the pseudo-inverse."""
+    a = np.array(a, copy=True)
+    p = a.shape[-1]
+    zero = np.einsum("rpp->rp", a) <= 0
+    a[:, np.arange(p), np.arange(p)] += zero
+    try:
+        return np.asarray(np.linalg.inv(a))
+    except np.linalg.LinAlgError:  # columns with next to no weight (counts near 0 at an end)
+        return np.asarray(np.linalg.pinv(a, hermitian=True))
+
+
 class KinkScanner:
     """:func:`hinge_scan` of ``z`` on a line with kinks plus ``extra`` columns, for many kink
-    sets on the same ``z`` and ``w``: the hinge sums of the fixed columns (level, slope,
-    ``extra``) are computed once, and rows are grouped by their number of kinks so that no
-    all-zero hinge column is carried (the same results as :func:`hinge_scan` on
-    :func:`line_design`, column order aside, which does not change a least-squares fit)."""
+    sets on the same ``z`` and ``w``.
+
+    The fixed columns ``F`` (level, slope, ``extra``) are the same in every scan, so their
+    part of the least-squares algebra is done once: ``F' W F`` and its inverse, ``F' W z``,
+    the hinge sums ``c_F(tau)`` of ``W F`` and ``c_F' (F' W F)^{-1} c_F`` for every day. A scan
+    with kink columns ``K`` then needs only the partitioned inverse (Schur complement
+    ``S = K' W K - K' W F (F' W F)^{-1} F' W K``): ``c' A^{-1} c = c_F' (F'WF)^{-1} c_F +
+    r' S^{-1} r`` with ``r = c_K - K' W F (F' W F)^{-1} c_F``, and the residual's hinge sums
+    ``h' W e = h' W z - c_F' b_F - c_K' b_K`` (Frisch & Waugh 1933; the block inverse,
+    e.g. Seber & Lee 2003, A.9). Rows are grouped by their number of kinks so that no
+    all-zero hinge column is carried. The results equal :func:`hinge_scan` on
+    :func:`line_design` to rounding.
+    """
 
     def __init__(self, z: FloatArray, w: FloatArray, extra: FloatArray | None = None) -> None:
         rows, n = z.shape
@@ -479,8 +501,16 @@ class KinkScanner:
         base = np.broadcast_to(np.stack([np.ones(n), (t - 0.5 * (n - 1)) / n]), (rows, 2, n))
         cols = [base] if extra is None else [base, extra.transpose(0, 2, 1)]
         self.fixed = np.ascontiguousarray(np.concatenate(cols, axis=1))
-        self.c_fixed = _hinge_sums_last(self.fixed * w[:, None, :])
+        fw = self.fixed * w[:, None, :]
+        self.fw = fw
+        self.c_fixed = _hinge_sums_last(fw)  # (rows, f, n)
         self.hh = _hinge_square_sums(w)
+        self.finv = _safe_inverse(np.matmul(fw, self.fixed.transpose(0, 2, 1)))
+        self.bf = np.matmul(fw, z[..., None])[..., 0]  # (rows, f)
+        self.pc = np.matmul(self.finv, self.c_fixed)  # (F'WF)^{-1} c_F, (rows, f, n)
+        self.quad_f = (self.pc * self.c_fixed).sum(axis=1)  # (rows, n)
+        self.zwz = (w * z * z).sum(axis=1)
+        self.hz = _hinge_sums_last(w * z)  # h' W z for every tau
 
     def scan(self, kinks: IntArray, rows: IntArray | None = None
              ) -> tuple[FloatArray, FloatArray]:
@@ -494,12 +524,42 @@ class KinkScanner:
         gain = np.empty((rows.size, self.n))
         for m in np.unique(count):
             i = np.flatnonzero(count == m)
-            r = rows[i]
-            xt = self.fixed[r]
-            if m:
-                xt = np.concatenate([xt, hinge(self.n, k[i, :m])], axis=1)
-            rss[i], gain[i] = _scan_t(self.z[r], self.w[r], xt, self.c_fixed[r], self.hh[r])
+            rss[i], gain[i] = self._scan_group(rows[i], k[i, :m])
         return rss, gain
+
+    def _scan_group(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
+        w, z = self.w[r], self.z[r]
+        finv, bf, cf = self.finv[r], self.bf[r], self.c_fixed[r]
+        quad = self.quad_f[r]
+        hz = self.hz[r]
+        if kinks.shape[1] == 0:
+            beta_f = np.einsum("rpq,rq->rp", finv, bf)
+            rss = self.zwz[r] - (beta_f * bf).sum(axis=1)
+            num = hz - np.einsum("rp,rpn->rn", beta_f, cf)
+        else:
+            h = hinge(self.n, kinks)  # (rows, k, n)
+            hw = h * w[:, None, :]
+            g = np.matmul(self.fw[r], h.transpose(0, 2, 1))  # F' W K, (rows, f, k)
+            hh_k = np.matmul(hw, h.transpose(0, 2, 1))  # K' W K
+            bk = np.matmul(hw, z[..., None])[..., 0]
+            fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
+            sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
+            ck = _hinge_sums_last(hw)  # (rows, k, n)
+            res = ck - np.matmul(g.transpose(0, 2, 1), self.pc[r])  # r = c_K - G' P
+            quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
+            beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
+            beta_k = np.einsum("rkl,rl->rk", sinv,
+                               bk - np.einsum("rpk,rp->rk", g, beta_f0))
+            beta_f = beta_f0 - np.einsum("rpk,rk->rp", fg, beta_k)
+            rss = self.zwz[r] - (beta_f * bf).sum(axis=1) - (beta_k * bk).sum(axis=1)
+            num = (hz - np.einsum("rp,rpn->rn", beta_f, cf)
+                   - np.einsum("rk,rkn->rn", beta_k, ck))
+        rss = np.maximum(rss, 0.0)
+        hh = self.hh[r]
+        den = hh - quad
+        with np.errstate(invalid="ignore", divide="ignore"):
+            gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num * num / den, 0.0)
+        return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
 
 
 def scan_kinks(z: FloatArray, w: FloatArray, kinks: IntArray,
