@@ -511,6 +511,16 @@ class KinkScanner:
         self.quad_f = (self.pc * self.c_fixed).sum(axis=1)  # (rows, n)
         self.zwz = (w * z * z).sum(axis=1)
         self.hz = _hinge_sums_last(w * z)  # h' W z for every tau
+        u = t - 0.5 * (n - 1)  # centred days: smaller sums, less cancellation below
+        self.u = u
+        self.su = [suffix_sums(w), suffix_sums(w * u), suffix_sums(w * u * u)]
+
+    def _cross(self, r: IntArray, a: FloatArray, b: FloatArray, at: IntArray) -> FloatArray:
+        """``sum_{t > at} w_t (u_t - a)(u_t - b)`` for rows ``r`` (``at`` shaped (rows, i, j),
+        ``a`` and ``b`` broadcasting to it, in centred days ``u``), from the suffix sums of
+        ``w``, ``w u`` and ``w u^2``."""
+        s0, s1, s2 = (np.take_along_axis(p[r][:, None, :], at, axis=2) for p in self.su)
+        return np.asarray(s2 - (a + b) * s1 + a * b * s0)
 
     def scan(self, kinks: IntArray, rows: IntArray | None = None
              ) -> tuple[FloatArray, FloatArray]:
@@ -528,7 +538,6 @@ class KinkScanner:
         return rss, gain
 
     def _scan_group(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
-        w, z = self.w[r], self.z[r]
         finv, bf, cf = self.finv[r], self.bf[r], self.c_fixed[r]
         quad = self.quad_f[r]
         hz = self.hz[r]
@@ -537,14 +546,25 @@ class KinkScanner:
             rss = self.zwz[r] - (beta_f * bf).sum(axis=1)
             num = hz - np.einsum("rp,rpn->rn", beta_f, cf)
         else:
-            h = hinge(self.n, kinks)  # (rows, k, n)
-            hw = h * w[:, None, :]
-            g = np.matmul(self.fw[r], h.transpose(0, 2, 1))  # F' W K, (rows, f, k)
-            hh_k = np.matmul(hw, h.transpose(0, 2, 1))  # K' W K
-            bk = np.matmul(hw, z[..., None])[..., 0]
+            # every product with a hinge column (t - kappa)_+ / n is a sum over t > kappa:
+            # gathered from the scanner's hinge and suffix sums, no pass over the days
+            n = self.n
+            kap = kinks[:, :, None]  # (rows, k, 1)
+            g = np.take_along_axis(cf, kinks[:, None, :], axis=2) / n  # F' W K, (rows, f, k)
+            bk = np.take_along_axis(hz, kinks, axis=1) / n  # K' W z
+            ku = kinks - 0.5 * (n - 1)
+            at = np.maximum(kinks[:, :, None], kinks[:, None, :])
+            hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
             fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
             sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
-            ck = _hinge_sums_last(hw)  # (rows, k, n)
+            # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
+            # at tau itself right of the kink, at the kink left of it
+            right = np.arange(n)[None, None, :] >= kap
+            s0, s1, s2 = (np.where(right, p[r][:, None, :],
+                                   np.take_along_axis(p[r], kinks, axis=1)[:, :, None])
+                          for p in self.su)
+            kc, uc = ku[:, :, None], self.u[None, None, :]
+            ck = (s2 - (kc + uc) * s1 + kc * uc * s0) / n  # (rows, k, n)
             res = ck - np.matmul(g.transpose(0, 2, 1), self.pc[r])  # r = c_K - G' P
             quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
             beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
