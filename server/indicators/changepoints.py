@@ -931,8 +931,17 @@ def fit_kinks(
     if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
         raise ValueError("kinks: a day appears twice in one region")
     shifts = _normalise_days("level_shifts", level_shifts, rows, n)
+    return _fit_kinks(y, k, shifts, dispersion, day_of_week)
+
+
+def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
+               day_of_week: bool = True, start: FloatArray | None = None) -> KinkFit:
+    """:func:`fit_kinks` on checked arguments (``k`` sorted), Newton's method from ``start``
+    (coefficients laid out as :attr:`KinkFit.coef`) where given and finite."""
+    rows = y.shape[0]
     parts = [
-        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week)
+        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week,
+                   None if start is None else start[s])
         for s in (slice(i, min(i + _CHUNK_ROWS, rows)) for i in range(0, max(rows, 1),
                                                                         _CHUNK_ROWS))
     ]
@@ -940,8 +949,21 @@ def fit_kinks(
     return KinkFit(k, shifts, *out)
 
 
+def _moved_start(coef: FloatArray, moved: IntArray) -> tuple[IntArray, FloatArray]:
+    """Sorted kinks of ``moved`` (each row's kinks of a fit with coefficients ``coef`` at new
+    days, -1 where dropped, any order) and those coefficients carried over to them as a
+    starting point (a dropped kink's slope change 0)."""
+    kmax = moved.shape[1]
+    big = np.iinfo(np.int64).max
+    order = np.argsort(np.where(moved >= 0, moved, big), axis=1, kind="stable")
+    d = np.where(moved >= 0, coef[:, 2 : 2 + kmax], 0.0)
+    start = np.array(coef, copy=True)
+    start[:, 2 : 2 + kmax] = np.take_along_axis(d, order, axis=1)
+    return sort_kinks(moved), start
+
+
 def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool) -> tuple[FloatArray, ...]:
+               day_of_week: bool, start: FloatArray | None = None) -> tuple[FloatArray, ...]:
     rows, n = y.shape
     x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
     p = x.shape[2]
@@ -976,6 +998,12 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
     converged = np.zeros(rows, dtype=bool)
     active = np.flatnonzero(exists)
     ll = loglik(beta, np.arange(rows))
+    if start is not None:  # a warm start where it is finite and does better than the flat one
+        warm = np.where(live, np.nan_to_num(start, nan=0.0, posinf=0.0, neginf=0.0), 0.0)
+        ll_warm = loglik(warm, np.arange(rows))
+        use = np.all(np.isfinite(start), axis=1) & np.isfinite(ll_warm) & (ll_warm > ll)
+        beta = np.where(use[:, None], warm, beta)
+        ll = np.where(use, ll_warm, ll)
     for _ in range(_MAX_NEWTON):
         if active.size == 0:
             break
@@ -1093,9 +1121,9 @@ def _drop_small_kinks(y: FloatArray, fit: KinkFit, shifts: IntArray, dispersion:
             break
         new = fit.kinks[rows].copy()
         new[np.arange(rows.size), least[rows]] = -1
-        fit = _kink_replace(fit, rows, fit_kinks(y[rows], sort_kinks(new),
-                                                  level_shifts=shifts[rows],
-                                                  dispersion=dispersion))
+        new, start = _moved_start(fit.coef[rows], new)
+        fit = _kink_replace(fit, rows, _fit_kinks(y[rows], new, shifts[rows], dispersion,
+                                                   True, start))
     return fit
 
 
@@ -1152,14 +1180,13 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
         drop = weakest < penalty * 2.0 * log_n[todo]
         r = np.flatnonzero(drop)
         new[r, weakest_at[r]] = -1
-        new = sort_kinks(new)
+        new, start = _moved_start(fit.coef[todo], new)
         changed = np.any(new != fit.kinks[todo], axis=1)
         todo = todo[changed]
         if todo.size == 0:
             break
-        fit = _kink_replace(fit, todo, fit_kinks(y[todo], new[changed],
-                                                  level_shifts=shifts[todo],
-                                                  dispersion=dispersion))
+        fit = _kink_replace(fit, todo, _fit_kinks(y[todo], new[changed], shifts[todo],
+                                                   dispersion, True, start[changed]))
     fit = _drop_small_kinks(y, fit, shifts, dispersion, float(np.log1p(min_change)),
                             si_mean, si_sd)
     # intervals of each kink date from its profile at the final fit
