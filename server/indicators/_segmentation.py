@@ -26,7 +26,7 @@ BoolArray = NDArray[np.bool_]
 __all__ = ["Screening", "binary_segmentation", "screen_breaks"]
 
 WEEK = 7
-_SCREEN_ROWS = 256  # screening works on blocks of rows that stay in cache
+_SCREEN_ROWS = 64  # screening works on blocks of rows that stay in cache
 _REFINE_REACH = 28  # days a screened break may move per refinement step
 
 
@@ -502,15 +502,16 @@ class KinkScanner:
         cols = [base] if extra is None else [base, extra.transpose(0, 2, 1)]
         self.fixed = np.ascontiguousarray(np.concatenate(cols, axis=1))
         fw = self.fixed * w[:, None, :]
-        self.fw = fw
         self.c_fixed = _hinge_sums_last(fw)  # (rows, f, n)
         self.hh = _hinge_square_sums(w)
-        self.finv = _safe_inverse(np.matmul(fw, self.fixed.transpose(0, 2, 1)))
+        self.finv = _safe_inverse(np.matmul(fw, self.fixed.transpose(0, 2, 1)))  # (rows, f, f)
         self.bf = np.matmul(fw, z[..., None])[..., 0]  # (rows, f)
-        self.pc = np.matmul(self.finv, self.c_fixed)  # (F'WF)^{-1} c_F, (rows, f, n)
-        self.quad_f = (self.pc * self.c_fixed).sum(axis=1)  # (rows, n)
-        self.zwz = (w * z * z).sum(axis=1)
+        pc = np.matmul(self.finv, self.c_fixed)  # (F'WF)^{-1} c_F, (rows, f, n)
+        self.quad_f = (pc * self.c_fixed).sum(axis=1)  # c_F' (F'WF)^{-1} c_F, (rows, n)
+        beta_f = np.einsum("rpq,rq->rp", self.finv, self.bf)
+        self.rss0 = (w * z * z).sum(axis=1) - (beta_f * self.bf).sum(axis=1)
         self.hz = _hinge_sums_last(w * z)  # h' W z for every tau
+        self.num0 = self.hz - np.einsum("rp,rpn->rn", beta_f, self.c_fixed)  # h' W e_F
         u = t - 0.5 * (n - 1)  # centred days: smaller sums, less cancellation below
         self.u = u
         self.su = [suffix_sums(w), suffix_sums(w * u), suffix_sums(w * u * u)]
@@ -519,7 +520,8 @@ class KinkScanner:
         """``sum_{t > at} w_t (u_t - a)(u_t - b)`` for rows ``r`` (``at`` shaped (rows, i, j),
         ``a`` and ``b`` broadcasting to it, in centred days ``u``), from the suffix sums of
         ``w``, ``w u`` and ``w u^2``."""
-        s0, s1, s2 = (np.take_along_axis(p[r][:, None, :], at, axis=2) for p in self.su)
+        s0, s1, s2 = (np.take_along_axis(self._take(p, r)[:, None, :], at, axis=2)
+                      for p in self.su)
         return np.asarray(s2 - (a + b) * s1 + a * b * s0)
 
     def scan(self, kinks: IntArray, rows: IntArray | None = None
@@ -537,21 +539,27 @@ class KinkScanner:
             rss[i], gain[i] = self._scan_group(rows[i], k[i, :m])
         return rss, gain
 
+    def _take(self, a: FloatArray, r: IntArray) -> FloatArray:
+        """``a[r]``, a view when ``r`` is every row in order (no copy of a large array)."""
+        if r.size == a.shape[0] and (r.size == 0 or (r[0] == 0 and np.all(np.diff(r) == 1))):
+            return a
+        return a[r]
+
     def _scan_group(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
-        finv, bf, cf = self.finv[r], self.bf[r], self.c_fixed[r]
-        quad = self.quad_f[r]
-        hz = self.hz[r]
+        quad, num0 = self._take(self.quad_f, r), self._take(self.num0, r)
+        rss0 = self.rss0[r]
         if kinks.shape[1] == 0:
-            beta_f = np.einsum("rpq,rq->rp", finv, bf)
-            rss = self.zwz[r] - (beta_f * bf).sum(axis=1)
-            num = hz - np.einsum("rp,rpn->rn", beta_f, cf)
+            rss, quad, num = rss0, quad, num0
         else:
             # every product with a hinge column (t - kappa)_+ / n is a sum over t > kappa:
             # gathered from the scanner's hinge and suffix sums, no pass over the days
             n = self.n
+            finv, bf = self.finv[r], self.bf[r]
+            f = finv.shape[1]
             kap = kinks[:, :, None]  # (rows, k, 1)
-            g = np.take_along_axis(cf, kinks[:, None, :], axis=2) / n  # F' W K, (rows, f, k)
-            bk = np.take_along_axis(hz, kinks, axis=1) / n  # K' W z
+            g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
+                             kinks[:, None, :]] / n  # F' W K, (rows, f, k)
+            bk = self.hz[r[:, None], kinks] / n  # K' W z
             ku = kinks - 0.5 * (n - 1)
             at = np.maximum(kinks[:, :, None], kinks[:, None, :])
             hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
@@ -560,22 +568,22 @@ class KinkScanner:
             # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
             # at tau itself right of the kink, at the kink left of it
             right = np.arange(n)[None, None, :] >= kap
-            s0, s1, s2 = (np.where(right, p[r][:, None, :],
-                                   np.take_along_axis(p[r], kinks, axis=1)[:, :, None])
-                          for p in self.su)
+            s0, s1, s2 = (np.where(right, self._take(p, r)[:, None, :],
+                                   p[r[:, None], kinks][:, :, None]) for p in self.su)
             kc, uc = ku[:, :, None], self.u[None, None, :]
             ck = (s2 - (kc + uc) * s1 + kc * uc * s0) / n  # (rows, k, n)
-            res = ck - np.matmul(g.transpose(0, 2, 1), self.pc[r])  # r = c_K - G' P
+            # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
+            res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
             quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
             beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
             beta_k = np.einsum("rkl,rl->rk", sinv,
                                bk - np.einsum("rpk,rp->rk", g, beta_f0))
-            beta_f = beta_f0 - np.einsum("rpk,rk->rp", fg, beta_k)
-            rss = self.zwz[r] - (beta_f * bf).sum(axis=1) - (beta_k * bk).sum(axis=1)
-            num = (hz - np.einsum("rp,rpn->rn", beta_f, cf)
-                   - np.einsum("rk,rkn->rn", beta_k, ck))
+            # residual sum of squares and h' W e less the fixed columns' fit, by the block
+            # inverse: e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
+            rss = rss0 - (beta_k * (bk - np.einsum("rpk,rp->rk", g, beta_f0))).sum(axis=1)
+            num = num0 - np.einsum("rk,rkn->rn", beta_k, res)
         rss = np.maximum(rss, 0.0)
-        hh = self.hh[r]
+        hh = self._take(self.hh, r)
         den = hh - quad
         with np.errstate(invalid="ignore", divide="ignore"):
             gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num * num / den, 0.0)

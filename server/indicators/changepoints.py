@@ -79,7 +79,7 @@ _LN2 = float(np.log(2.0))
 _WEEK = WEEK
 _MAX_NEWTON = 60
 _NEWTON_TOL = 1e-10
-_CHUNK_ROWS = 256
+_CHUNK_ROWS = 64
 _PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
