@@ -946,7 +946,14 @@ def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
                                                                         _CHUNK_ROWS))
     ]
     out = [np.concatenate([p[i] for p in parts], axis=0) for i in range(len(parts[0]))]
-    return KinkFit(k, shifts, *out)
+    fit = KinkFit(k, shifts, *out)
+    if start is None:
+        return fit
+    again = np.flatnonzero(~fit.converged & np.all(np.isfinite(start), axis=1))
+    if again.size == 0:  # a warm start that did not converge: once more from the flat one
+        return fit
+    return _kink_replace(fit, again, _fit_kinks(y[again], k[again], shifts[again], dispersion,
+                                                 day_of_week))
 
 
 def _moved_start(coef: FloatArray, moved: IntArray) -> tuple[IntArray, FloatArray]:
@@ -1042,7 +1049,7 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
         mu = np.where(observed, np.exp(e), np.nan)
     n_obs = observed.sum(axis=1)
     n_params = live.sum(axis=1) + (kinks >= 0).sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # over: diverged rows
         pearson = np.where(observed, (yy - np.nan_to_num(mu)) ** 2 / np.nan_to_num(mu), 0.0)
         phi = pearson.sum(axis=1) / (n_obs - n_params)
     if dispersion == "poisson":
