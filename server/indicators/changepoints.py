@@ -405,6 +405,11 @@ def _fit_rows(
         if active.size == 0:
             break
         info, score = info_score(beta[active], active)
+        finite = np.all(np.isfinite(info), axis=(1, 2)) & np.all(np.isfinite(score), axis=1)
+        if not finite.all():  # a diverging row (means overflowed): stop it, not converged
+            active, info, score = active[finite], info[finite], score[finite]
+            if active.size == 0:
+                break
         try:
             step = np.linalg.solve(info, score[..., None])[..., 0]
         except np.linalg.LinAlgError:
