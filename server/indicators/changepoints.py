@@ -1090,7 +1090,7 @@ def _kink_scanner(y: FloatArray, fit: KinkFit, day_of_week: bool) -> KinkScanner
     the weighted RSS of the working response ``eta + (y - mu) / mu`` (weights ``mu``) with the
     kinks ``others`` and the drop from adding one more kink at each day."""
     rows, n = y.shape
-    mu = np.nan_to_num(fit.mu, nan=0.0)
+    mu = np.where(np.isfinite(fit.mu), fit.mu, 0.0)  # a diverged row's overflowed means: none
     observed = np.isfinite(y) & (mu > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(observed, np.log(np.where(observed, mu, 1.0))
@@ -1270,7 +1270,7 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     e = e[:, block:] - e[:, :-block]
     m = n / block
     q = n_params.astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         phi = (s * s).sum(axis=1) / e.sum(axis=1) * m / (m - q)
     ok = m > q
     return np.where(ok, phi, np.nan), np.where(ok, 1.5 * m - q, np.nan)
