@@ -546,6 +546,13 @@ class KinkScanner:
         return a[r]
 
     def _scan_group(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
+        # a kink column with next to no weight (a fit whose means fell to ~0 after a day)
+        # makes the Schur complement ~0 and its inverse huge: no warning, no gain there
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            rss, gain = self._scan_group_raw(r, kinks)
+        return rss, np.where(np.isfinite(gain), gain, 0.0)
+
+    def _scan_group_raw(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
         quad, num0 = self._take(self.quad_f, r), self._take(self.num0, r)
         rss0 = self.rss0[r]
         if kinks.shape[1] == 0:
