@@ -38,6 +38,8 @@ SHAPE = "kink"
 SHIFTS = True
 PENALTY = 1.0
 BLOCK: int | None = 42
+MIN_CHANGE = 0.1
+DATE_UNCERTAINTY = True
 CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
 
 
@@ -69,7 +71,8 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
     # SD 5) and infection-to-test delay; the method is told these, not the step dates
     cp = detect_changepoints(sc.cases, level_shifts=shifts if SHIFTS else None,
                              si_mean=GI_MEAN, si_sd=GI_SD, infection_delay=sc.report_shift,
-                             penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK)
+                             penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK,
+                             min_change=MIN_CHANGE, date_uncertainty=DATE_UNCERTAINTY)
     if BLOCK is None and SHAPE == "kink":  # half-widths the other block lengths would give
         phi0 = cp.fit.dispersion
         q = 2 + (cp.breaks >= 0).sum(axis=1) + (cp.fit.level_shifts >= 0).sum(axis=1)
@@ -149,10 +152,15 @@ def main() -> None:
     parser.add_argument("--days", type=int, default=240)
     parser.add_argument("--shape", choices=("kink", "step"), default="kink")
     parser.add_argument("--penalty", type=float, default=1.0)
+    parser.add_argument("--min-change", type=float, default=0.1,
+                        help="min_change of detect_changepoints (0: every kink the BIC keeps)")
+    parser.add_argument("--no-date-uncertainty", action="store_true",
+                        help="growth intervals conditional on the break dates")
     parser.add_argument("--no-shifts", action="store_true",
                         help="do not pass the flagged testing changes as level shifts")
     args = parser.parse_args()
-    global SHAPE, SHIFTS, PENALTY, BLOCK
+    global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY
+    MIN_CHANGE, DATE_UNCERTAINTY = args.min_change, not args.no_date_uncertainty
     SHAPE, SHIFTS, PENALTY = args.shape, not args.no_shifts, args.penalty
     BLOCK = args.block or None
     total: dict[str, list[float]] = {}

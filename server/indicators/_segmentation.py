@@ -26,7 +26,7 @@ BoolArray = NDArray[np.bool_]
 __all__ = ["Screening", "binary_segmentation", "screen_breaks"]
 
 WEEK = 7
-_SCREEN_ROWS = 256  # screening works on blocks of rows that stay in cache
+_SCREEN_ROWS = 64  # screening works on blocks of rows that stay in cache
 _REFINE_REACH = 28  # days a screened break may move per refinement step
 
 
@@ -465,12 +465,34 @@ def _scan_t(z: FloatArray, w: FloatArray, xt: FloatArray, c_fixed: FloatArray | 
     return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
 
 
+def _safe_inverse(a: FloatArray) -> FloatArray:
+    """Inverse of a batch of symmetric matrices; a zero diagonal entry (a column with no
+    weight) is set to 1 first, and a singular batch falls back to the pseudo-inverse."""
+    a = np.array(a, copy=True)
+    p = a.shape[-1]
+    zero = np.einsum("rpp->rp", a) <= 0
+    a[:, np.arange(p), np.arange(p)] += zero
+    try:
+        return np.asarray(np.linalg.inv(a))
+    except np.linalg.LinAlgError:  # columns with next to no weight (counts near 0 at an end)
+        return np.asarray(np.linalg.pinv(a, hermitian=True))
+
+
 class KinkScanner:
     """:func:`hinge_scan` of ``z`` on a line with kinks plus ``extra`` columns, for many kink
-    sets on the same ``z`` and ``w``: the hinge sums of the fixed columns (level, slope,
-    ``extra``) are computed once, and rows are grouped by their number of kinks so that no
-    all-zero hinge column is carried (the same results as :func:`hinge_scan` on
-    :func:`line_design`, column order aside, which does not change a least-squares fit)."""
+    sets on the same ``z`` and ``w``.
+
+    The fixed columns ``F`` (level, slope, ``extra``) are the same in every scan, so their
+    part of the least-squares algebra is done once: ``F' W F`` and its inverse, ``F' W z``,
+    the hinge sums ``c_F(tau)`` of ``W F`` and ``c_F' (F' W F)^{-1} c_F`` for every day. A scan
+    with kink columns ``K`` then needs only the partitioned inverse (Schur complement
+    ``S = K' W K - K' W F (F' W F)^{-1} F' W K``): ``c' A^{-1} c = c_F' (F'WF)^{-1} c_F +
+    r' S^{-1} r`` with ``r = c_K - K' W F (F' W F)^{-1} c_F``, and the residual's hinge sums
+    ``h' W e = h' W z - c_F' b_F - c_K' b_K`` (Frisch & Waugh 1933; the block inverse,
+    e.g. Seber & Lee 2003, A.9). Rows are grouped by their number of kinks so that no
+    all-zero hinge column is carried. The results equal :func:`hinge_scan` on
+    :func:`line_design` to rounding.
+    """
 
     def __init__(self, z: FloatArray, w: FloatArray, extra: FloatArray | None = None) -> None:
         rows, n = z.shape
@@ -479,8 +501,28 @@ class KinkScanner:
         base = np.broadcast_to(np.stack([np.ones(n), (t - 0.5 * (n - 1)) / n]), (rows, 2, n))
         cols = [base] if extra is None else [base, extra.transpose(0, 2, 1)]
         self.fixed = np.ascontiguousarray(np.concatenate(cols, axis=1))
-        self.c_fixed = _hinge_sums_last(self.fixed * w[:, None, :])
+        fw = self.fixed * w[:, None, :]
+        self.c_fixed = _hinge_sums_last(fw)  # (rows, f, n)
         self.hh = _hinge_square_sums(w)
+        self.finv = _safe_inverse(np.matmul(fw, self.fixed.transpose(0, 2, 1)))  # (rows, f, f)
+        self.bf = np.matmul(fw, z[..., None])[..., 0]  # (rows, f)
+        pc = np.matmul(self.finv, self.c_fixed)  # (F'WF)^{-1} c_F, (rows, f, n)
+        self.quad_f = (pc * self.c_fixed).sum(axis=1)  # c_F' (F'WF)^{-1} c_F, (rows, n)
+        beta_f = np.einsum("rpq,rq->rp", self.finv, self.bf)
+        self.rss0 = (w * z * z).sum(axis=1) - (beta_f * self.bf).sum(axis=1)
+        self.hz = _hinge_sums_last(w * z)  # h' W z for every tau
+        self.num0 = self.hz - np.einsum("rp,rpn->rn", beta_f, self.c_fixed)  # h' W e_F
+        u = t - 0.5 * (n - 1)  # centred days: smaller sums, less cancellation below
+        self.u = u
+        self.su = [suffix_sums(w), suffix_sums(w * u), suffix_sums(w * u * u)]
+
+    def _cross(self, r: IntArray, a: FloatArray, b: FloatArray, at: IntArray) -> FloatArray:
+        """``sum_{t > at} w_t (u_t - a)(u_t - b)`` for rows ``r`` (``at`` shaped (rows, i, j),
+        ``a`` and ``b`` broadcasting to it, in centred days ``u``), from the suffix sums of
+        ``w``, ``w u`` and ``w u^2``."""
+        s0, s1, s2 = (np.take_along_axis(self._take(p, r)[:, None, :], at, axis=2)
+                      for p in self.su)
+        return np.asarray(s2 - (a + b) * s1 + a * b * s0)
 
     def scan(self, kinks: IntArray, rows: IntArray | None = None
              ) -> tuple[FloatArray, FloatArray]:
@@ -494,12 +536,65 @@ class KinkScanner:
         gain = np.empty((rows.size, self.n))
         for m in np.unique(count):
             i = np.flatnonzero(count == m)
-            r = rows[i]
-            xt = self.fixed[r]
-            if m:
-                xt = np.concatenate([xt, hinge(self.n, k[i, :m])], axis=1)
-            rss[i], gain[i] = _scan_t(self.z[r], self.w[r], xt, self.c_fixed[r], self.hh[r])
+            rss[i], gain[i] = self._scan_group(rows[i], k[i, :m])
         return rss, gain
+
+    def _take(self, a: FloatArray, r: IntArray) -> FloatArray:
+        """``a[r]``, a view when ``r`` is every row in order (no copy of a large array)."""
+        if r.size == a.shape[0] and (r.size == 0 or (r[0] == 0 and np.all(np.diff(r) == 1))):
+            return a
+        return a[r]
+
+    def _scan_group(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
+        # a kink column with next to no weight (a fit whose means fell to ~0 after a day)
+        # makes the Schur complement ~0 and its inverse huge: no warning, no gain there
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            rss, gain = self._scan_group_raw(r, kinks)
+        return rss, np.where(np.isfinite(gain), gain, 0.0)
+
+    def _scan_group_raw(self, r: IntArray, kinks: IntArray) -> tuple[FloatArray, FloatArray]:
+        quad, num0 = self._take(self.quad_f, r), self._take(self.num0, r)
+        rss0 = self.rss0[r]
+        if kinks.shape[1] == 0:
+            rss, quad, num = rss0, quad, num0
+        else:
+            # every product with a hinge column (t - kappa)_+ / n is a sum over t > kappa:
+            # gathered from the scanner's hinge and suffix sums, no pass over the days
+            n = self.n
+            finv, bf = self.finv[r], self.bf[r]
+            f = finv.shape[1]
+            kap = kinks[:, :, None]  # (rows, k, 1)
+            g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
+                             kinks[:, None, :]] / n  # F' W K, (rows, f, k)
+            bk = self.hz[r[:, None], kinks] / n  # K' W z
+            ku = kinks - 0.5 * (n - 1)
+            at = np.maximum(kinks[:, :, None], kinks[:, None, :])
+            hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
+            fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
+            sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
+            # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
+            # at tau itself right of the kink, at the kink left of it
+            right = np.arange(n)[None, None, :] >= kap
+            s0, s1, s2 = (np.where(right, self._take(p, r)[:, None, :],
+                                   p[r[:, None], kinks][:, :, None]) for p in self.su)
+            kc, uc = ku[:, :, None], self.u[None, None, :]
+            ck = (s2 - (kc + uc) * s1 + kc * uc * s0) / n  # (rows, k, n)
+            # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
+            res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
+            quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
+            beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
+            beta_k = np.einsum("rkl,rl->rk", sinv,
+                               bk - np.einsum("rpk,rp->rk", g, beta_f0))
+            # residual sum of squares and h' W e less the fixed columns' fit, by the block
+            # inverse: e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
+            rss = rss0 - (beta_k * (bk - np.einsum("rpk,rp->rk", g, beta_f0))).sum(axis=1)
+            num = num0 - np.einsum("rk,rkn->rn", beta_k, res)
+        rss = np.maximum(rss, 0.0)
+        hh = self._take(self.hh, r)
+        den = hh - quad
+        with np.errstate(invalid="ignore", divide="ignore"):
+            gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num * num / den, 0.0)
+        return rss, np.asarray(np.clip(gain, 0.0, rss[:, None]))
 
 
 def scan_kinks(z: FloatArray, w: FloatArray, kinks: IntArray,

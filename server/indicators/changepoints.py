@@ -63,6 +63,7 @@ __all__ = [
     "ChangePoints",
     "KinkFit",
     "block_dispersion",
+    "date_aware_covariance",
     "fit_kinks",
     "kink_design",
     "screen_kinks",
@@ -78,7 +79,7 @@ _LN2 = float(np.log(2.0))
 _WEEK = WEEK
 _MAX_NEWTON = 60
 _NEWTON_TOL = 1e-10
-_CHUNK_ROWS = 256
+_CHUNK_ROWS = 64
 _PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
@@ -404,6 +405,11 @@ def _fit_rows(
         if active.size == 0:
             break
         info, score = info_score(beta[active], active)
+        finite = np.all(np.isfinite(info), axis=(1, 2)) & np.all(np.isfinite(score), axis=1)
+        if not finite.all():  # a diverging row (means overflowed): stop it, not converged
+            active, info, score = active[finite], info[finite], score[finite]
+            if active.size == 0:
+                break
         try:
             step = np.linalg.solve(info, score[..., None])[..., 0]
         except np.linalg.LinAlgError:
@@ -591,6 +597,8 @@ def detect_changepoints(
     level_shifts: ArrayLike | None = None,
     infection_delay: float | None = None,
     dependence_block: int | None = 42,
+    min_change: float = 0.1,
+    date_uncertainty: bool = True,
 ) -> ChangePoints:
     """Find breaks in the growth of daily counts and estimate each segment's growth and R.
 
@@ -620,6 +628,16 @@ def detect_changepoints(
         daily dispersion, with a t quantile when it is the larger (default 42, chosen on
         validation seeds 100-129; ``None``: the daily dispersion and a normal quantile).
         The same dispersion scales the exact stage's test for dropping a weak kink.
+    min_change : float
+        Kink model only: smallest relative change of R reported as a break (default 0.1:
+        R after / R before at least 1.1 or at most 1/1.1, R of each segment from its growth
+        rate as below). A kink whose change is smaller is dropped and the model refitted,
+        the smallest first (chosen on validation seeds 100-149; 0 keeps every kink the BIC
+        keeps).
+    date_uncertainty : bool
+        Kink model only: the intervals of the growth rates and their changes allow for the
+        uncertainty of the break dates (:func:`date_aware_covariance`, Muggeo 2003); False
+        conditions on the dates.
 
     Returns
     -------
@@ -672,15 +690,19 @@ def detect_changepoints(
                              f"{infection_delay!r}")
     if dependence_block is not None:
         dependence_block = _check_int("dependence_block", dependence_block, 1)
+    min_change = float(min_change)
+    if not np.isfinite(min_change) or min_change < 0:
+        raise ValueError(f"min_change: must be a finite number >= 0, got {min_change!r}")
     if shape == "kink":
         kfit, kscreen, kprof = _detect_kinks(
             y, min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
             dispersion=dispersion, level=level, level_shifts=level_shifts,
-            block=dependence_block)
+            block=dependence_block, min_change=min_change, si_mean=si_mean, si_sd=si_sd)
         lag = None if infection_delay is None else (
             infection_delay - (si_sd**2 + si_mean**2) / (2.0 * si_mean))
         return _assemble_kinks(kfit, kscreen, kprof, level, si_mean, si_sd, lag,
-                               y=y, block=dependence_block)
+                               y=y, block=dependence_block,
+                               date_free=bool(date_uncertainty))
     screening = screen_breaks(y, min_segment=min_segment, max_breaks=max_breaks,
                               penalty=penalty)
     kmax = screening.breaks.shape[1]
@@ -914,17 +936,46 @@ def fit_kinks(
     if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
         raise ValueError("kinks: a day appears twice in one region")
     shifts = _normalise_days("level_shifts", level_shifts, rows, n)
+    return _fit_kinks(y, k, shifts, dispersion, day_of_week)
+
+
+def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
+               day_of_week: bool = True, start: FloatArray | None = None) -> KinkFit:
+    """:func:`fit_kinks` on checked arguments (``k`` sorted), Newton's method from ``start``
+    (coefficients laid out as :attr:`KinkFit.coef`) where given and finite."""
+    rows = y.shape[0]
     parts = [
-        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week)
+        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week,
+                   None if start is None else start[s])
         for s in (slice(i, min(i + _CHUNK_ROWS, rows)) for i in range(0, max(rows, 1),
                                                                         _CHUNK_ROWS))
     ]
     out = [np.concatenate([p[i] for p in parts], axis=0) for i in range(len(parts[0]))]
-    return KinkFit(k, shifts, *out)
+    fit = KinkFit(k, shifts, *out)
+    if start is None:
+        return fit
+    again = np.flatnonzero(~fit.converged & np.all(np.isfinite(start), axis=1))
+    if again.size == 0:  # a warm start that did not converge: once more from the flat one
+        return fit
+    return _kink_replace(fit, again, _fit_kinks(y[again], k[again], shifts[again], dispersion,
+                                                 day_of_week))
+
+
+def _moved_start(coef: FloatArray, moved: IntArray) -> tuple[IntArray, FloatArray]:
+    """Sorted kinks of ``moved`` (each row's kinks of a fit with coefficients ``coef`` at new
+    days, -1 where dropped, any order) and those coefficients carried over to them as a
+    starting point (a dropped kink's slope change 0)."""
+    kmax = moved.shape[1]
+    big = np.iinfo(np.int64).max
+    order = np.argsort(np.where(moved >= 0, moved, big), axis=1, kind="stable")
+    d = np.where(moved >= 0, coef[:, 2 : 2 + kmax], 0.0)
+    start = np.array(coef, copy=True)
+    start[:, 2 : 2 + kmax] = np.take_along_axis(d, order, axis=1)
+    return sort_kinks(moved), start
 
 
 def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool) -> tuple[FloatArray, ...]:
+               day_of_week: bool, start: FloatArray | None = None) -> tuple[FloatArray, ...]:
     rows, n = y.shape
     x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
     p = x.shape[2]
@@ -959,10 +1010,21 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
     converged = np.zeros(rows, dtype=bool)
     active = np.flatnonzero(exists)
     ll = loglik(beta, np.arange(rows))
+    if start is not None:  # a warm start where it is finite and does better than the flat one
+        warm = np.where(live, np.nan_to_num(start, nan=0.0, posinf=0.0, neginf=0.0), 0.0)
+        ll_warm = loglik(warm, np.arange(rows))
+        use = np.all(np.isfinite(start), axis=1) & np.isfinite(ll_warm) & (ll_warm > ll)
+        beta = np.where(use[:, None], warm, beta)
+        ll = np.where(use, ll_warm, ll)
     for _ in range(_MAX_NEWTON):
         if active.size == 0:
             break
         info, score = info_score(beta[active], active)
+        finite = np.all(np.isfinite(info), axis=(1, 2)) & np.all(np.isfinite(score), axis=1)
+        if not finite.all():  # a diverging row (means overflowed): stop it, not converged
+            active, info, score = active[finite], info[finite], score[finite]
+            if active.size == 0:
+                break
         try:
             step = np.linalg.solve(info, score[..., None])[..., 0]
         except np.linalg.LinAlgError:
@@ -997,7 +1059,7 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
         mu = np.where(observed, np.exp(e), np.nan)
     n_obs = observed.sum(axis=1)
     n_params = live.sum(axis=1) + (kinks >= 0).sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # over: diverged rows
         pearson = np.where(observed, (yy - np.nan_to_num(mu)) ** 2 / np.nan_to_num(mu), 0.0)
         phi = pearson.sum(axis=1) / (n_obs - n_params)
     if dispersion == "poisson":
@@ -1028,7 +1090,7 @@ def _kink_scanner(y: FloatArray, fit: KinkFit, day_of_week: bool) -> KinkScanner
     the weighted RSS of the working response ``eta + (y - mu) / mu`` (weights ``mu``) with the
     kinks ``others`` and the drop from adding one more kink at each day."""
     rows, n = y.shape
-    mu = np.nan_to_num(fit.mu, nan=0.0)
+    mu = np.where(np.isfinite(fit.mu), fit.mu, 0.0)  # a diverged row's overflowed means: none
     observed = np.isfinite(y) & (mu > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(observed, np.log(np.where(observed, mu, 1.0))
@@ -1043,9 +1105,49 @@ def _chunks(rows: IntArray) -> list[IntArray]:
     return [rows[i : i + _CHUNK_ROWS] for i in range(0, rows.size, _CHUNK_ROWS)]
 
 
+def _kink_effects(fit: KinkFit, si_mean: float, si_sd: float) -> FloatArray:
+    """``|log R_{k+1} - log R_k|`` at every kink of ``fit`` (R of the segments on either side
+    from their growth rates, Wallinga & Lipsitch 2007); inf where a segment's R is 0 or NaN
+    (never taken for a small change), NaN where there is no kink."""
+    kmax = fit.kinks.shape[1]
+    n = fit.mu.shape[1]
+    coef = np.nan_to_num(fit.coef)
+    slopes = np.cumsum(coef[:, 1 : 2 + kmax], axis=1) / n  # growth of segments 0..kmax
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_r = np.log(growth_to_reproduction(slopes, si_mean, si_sd))
+        step = np.abs(np.diff(log_r, axis=1))
+    step = np.where(np.isfinite(step), step, np.inf)
+    return np.where(fit.kinks >= 0, step, np.nan)
+
+
+def _drop_small_kinks(y: FloatArray, fit: KinkFit, shifts: IntArray, dispersion: Dispersion,
+                      small_log: float, si_mean: float, si_sd: float) -> KinkFit:
+    """Backward elimination by size: while a row's smallest ``|log R_{k+1} - log R_k|`` is
+    below ``small_log``, that kink is removed and the row refitted, the others kept at their
+    dates (which the profile stage chose with every kink in the model: small kinks there
+    stand for gradual changes of growth, and removing them first would pull the large
+    kinks' dates towards that curvature)."""
+    if small_log <= 0:
+        return fit
+    for _ in range(fit.kinks.shape[1]):
+        effect = _kink_effects(fit, si_mean, si_sd)
+        least = np.argmin(np.where(np.isnan(effect), np.inf, effect), axis=1)
+        small = effect[np.arange(effect.shape[0]), least] < small_log
+        rows = np.flatnonzero(small)
+        if rows.size == 0:
+            break
+        new = fit.kinks[rows].copy()
+        new[np.arange(rows.size), least[rows]] = -1
+        new, start = _moved_start(fit.coef[rows], new)
+        fit = _kink_replace(fit, rows, _fit_kinks(y[rows], new, shifts[rows], dispersion,
+                                                   True, start))
+    return fit
+
+
 def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, penalty: float,
                   dispersion: Dispersion, level: float, level_shifts: IntArray | None,
-                  block: int | None = None) -> tuple[KinkFit, Screening, _Profile]:
+                  block: int | None = None, min_change: float = 0.0, si_mean: float = 4.7,
+                  si_sd: float = 2.9) -> tuple[KinkFit, Screening, _Profile]:
     rows, n = y.shape
     shifts = _normalise_days("level_shifts", level_shifts, rows, n)
     screening = screen_kinks(y, min_segment=min_segment, max_breaks=max_breaks,
@@ -1095,14 +1197,15 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
         drop = weakest < penalty * 2.0 * log_n[todo]
         r = np.flatnonzero(drop)
         new[r, weakest_at[r]] = -1
-        new = sort_kinks(new)
+        new, start = _moved_start(fit.coef[todo], new)
         changed = np.any(new != fit.kinks[todo], axis=1)
         todo = todo[changed]
         if todo.size == 0:
             break
-        fit = _kink_replace(fit, todo, fit_kinks(y[todo], new[changed],
-                                                  level_shifts=shifts[todo],
-                                                  dispersion=dispersion))
+        fit = _kink_replace(fit, todo, _fit_kinks(y[todo], new[changed], shifts[todo],
+                                                   dispersion, True, start[changed]))
+    fit = _drop_small_kinks(y, fit, shifts, dispersion, float(np.log1p(min_change)),
+                            si_mean, si_sd)
     # intervals of each kink date from its profile at the final fit
     best = np.where(fit.kinks >= 0, fit.kinks, -1)
     lower = best.copy()
@@ -1167,15 +1270,69 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     e = e[:, block:] - e[:, :-block]
     m = n / block
     q = n_params.astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         phi = (s * s).sum(axis=1) / e.sum(axis=1) * m / (m - q)
     ok = m > q
     return np.where(ok, phi, np.nan), np.where(ok, 1.5 * m - q, np.nan)
 
 
+def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
+    """Inverse information of :class:`KinkFit`'s coefficients with the kink dates free (unit
+    dispersion): the block of ``(X, V)' W (X, V)`` inverted, ``W = diag(mu)``, where ``V`` has
+    one column per kink, the derivative of the linear predictor with respect to its date,
+    ``-(d_k / n) 1(t > tau_k)`` (Muggeo's ``V``).
+
+    Treating each break date as a parameter of the likelihood (its derivative is defined
+    except at the break itself) gives standard errors of the slopes that include the
+    uncertainty of the date (Muggeo 2003, section 2; the covariance his segmented regression
+    reports). The coefficients' block of the inverse is at least the conditional covariance
+    :attr:`KinkFit.covariance` (a block of an inverse information exceeds the inverse of the
+    block). Rows that did not converge are NaN; a kink whose date column is collinear with the
+    rest keeps the conditional covariance.
+    """
+    rows, kmax = fit.kinks.shape
+    n = fit.mu.shape[1]
+    out = np.array(fit.covariance, copy=True)
+    if kmax == 0:
+        return out
+    t = np.arange(n)
+    for idx in _chunks(np.flatnonzero(fit.converged & (fit.kinks >= 0).any(axis=1))):
+        kinks = fit.kinks[idx]
+        shifts = fit.level_shifts[idx]
+        x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
+        p = x.shape[2]
+        d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
+        has = kinks >= 0
+        v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :]) & has[:, None, :]))
+        xv = np.concatenate([x, v], axis=2)
+        w = np.nan_to_num(fit.mu[idx], nan=0.0)
+        info = np.matmul((xv * w[..., None]).transpose(0, 2, 1), xv)
+        diag = np.einsum("rpp->rp", info)
+        dead = diag <= 1e-12 * np.maximum(diag.max(axis=1, keepdims=True), 1e-300)
+        rr, cc = np.nonzero(dead)
+        info[rr, cc, :] = 0.0
+        info[rr, :, cc] = 0.0
+        info[rr, cc, cc] = 1.0
+        with np.errstate(invalid="ignore", over="ignore"):
+            try:
+                inv = np.linalg.inv(info)
+            except np.linalg.LinAlgError:
+                inv = np.linalg.pinv(info, hermitian=True)
+        block = inv[:, :p, :p]
+        block = np.where(dead[:, :p, None] | dead[:, None, :p], 0.0, block)
+        base = fit.covariance[idx]
+        # a date column collinear with the others (a level shift on the kink's day) or a
+        # numerically useless inverse: keep the conditional covariance
+        bad = ~np.all(np.isfinite(block), axis=(1, 2)) | np.any(
+            np.einsum("rpp->rp", block) < np.einsum("rpp->rp", base) * (1 - 1e-6), axis=1)
+        out[idx] = np.where(bad[:, None, None], base, block)
+    return out
+
+
 def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
                     si_mean: float, si_sd: float, lag: float | None, *,
-                    y: FloatArray | None = None, block: int | None = None) -> ChangePoints:
+                    y: FloatArray | None = None, block: int | None = None,
+                    date_free: bool = True) -> ChangePoints:
     rows, kmax = fit.kinks.shape
     n = fit.mu.shape[1]
     segs = kmax + 1
@@ -1189,7 +1346,8 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
         wider = np.isfinite(phi_b) & (phi_b > phi)
         phi = np.where(wider, phi_b, phi)
         zq = np.where(wider, stats.t.ppf(0.5 + level / 2.0, np.where(wider, df, 1.0)), z)
-    cov = fit.covariance * phi[:, None, None]
+    base_cov = date_aware_covariance(fit) if date_free else fit.covariance
+    cov = base_cov * phi[:, None, None]
     n_breaks = has.sum(axis=1).astype(np.int64)
     seg_ok = np.arange(segs)[None, :] <= n_breaks[:, None]
     p = fit.coef.shape[1]

@@ -187,3 +187,35 @@ def test_step_in_r_shows_as_a_kink_at_the_mean_age(r1: float, r2: float) -> None
     meet = d + (np.polyval(after, d) - before_at_d) / (g1 - g2)
     # first order in r; measured 0.64, 0.2 and 0.3 days off on these three steps
     assert abs((meet - d) + m2 / (2 * m1)) <= 1.0
+
+
+@pytest.mark.parametrize("seed", [21, 22], ids=["seed21", "seed22"])
+def test_date_aware_covariance_matches_statsmodels_with_muggeo_columns(seed: int) -> None:
+    # Muggeo (2003, Stat Med 22:3055, section 2): with the break date a parameter, the design
+    # gains V = -delta 1(t > tau) per kink, the derivative of the linear predictor in tau; the
+    # covariance of the other coefficients is their block of the inverse of the expected
+    # information of the augmented design. Reference: statsmodels 0.14 GLM(Poisson).hessian
+    # (expected information, observed=False) on [X, V] at the fitted coefficients (V's own
+    # coefficient 0, so the means are ours).
+    from server.indicators.changepoints import date_aware_covariance
+
+    rng = np.random.default_rng(seed)
+    n = 170
+    t = np.arange(n)
+    eta = (np.log(120) + 0.025 * t - 0.05 * np.maximum(t - 60, 0)
+           + 0.04 * np.maximum(t - 115, 0) + WEEKDAY[t % 7])
+    y = rng.poisson(np.exp(eta)).astype(float)
+    y[[5, 90]] = np.nan
+    observed = np.isfinite(y)
+    fit = fit_kinks(y, [60, 115])
+    ours = date_aware_covariance(fit)[0]
+    x = kink_design(n, np.array([[60, 115]]))[0]
+    delta = fit.coef[0, 2:4] / n
+    v = -delta[None, :] * (t[:, None] > np.array([60, 115])[None, :])
+    xv = np.concatenate([x, v], axis=1)[observed]
+    model = sm.GLM(y[observed], xv, family=sm.families.Poisson())
+    info = -model.hessian(np.r_[fit.coef[0], 0.0, 0.0], observed=False)
+    ref = np.linalg.inv(info)[: x.shape[1], : x.shape[1]]
+    assert_allclose(ours, ref, rtol=1e-6, atol=1e-12)
+    # the slope changes are less certain once their dates are
+    assert np.all(np.diag(ours)[2:4] > np.diag(fit.covariance[0])[2:4])

@@ -240,3 +240,42 @@ def test_dependence_block_only_widens_the_growth_intervals() -> None:
     assert np.all(w1 >= w0 - 1e-15)
     with pytest.raises(ValueError, match="dependence_block"):
         detect_changepoints(y, dependence_block=0)
+
+
+def _with_small_kink(seed: int) -> np.ndarray:
+    # growth 0.03 then 0 from day 60 (R falls by about 20 %), then -0.003 from day 130 (R
+    # changes by about 2 %); large counts so that both kinks pass the BIC
+    rng = np.random.default_rng(seed)
+    n = 200
+    t = np.arange(n)
+    eta = (np.log(3000) + 0.03 * t - 0.03 * np.maximum(t - 60, 0)
+           - 0.003 * np.maximum(t - 130, 0))
+    return rng.poisson(np.exp(eta + WEEKDAY[t % 7])).astype(float)
+
+
+def test_min_change_drops_a_kink_whose_change_of_r_is_small() -> None:
+    y = np.stack([_with_small_kink(s) for s in (41, 42, 43)])
+    every = detect_changepoints(y, min_change=0.0, si_mean=7.0, si_sd=5.0)
+    material = detect_changepoints(y, min_change=0.1, si_mean=7.0, si_sd=5.0)
+    assert np.all(np.any(np.abs(every.breaks - 130) <= 10, axis=1))  # the BIC keeps it
+    assert np.all(material.n_breaks == 1)
+    assert np.all(np.abs(material.breaks[:, 0] - 60) <= 3)
+    # every reported break changes R by at least 10 % either way (R from the reported growth)
+    has = material.breaks >= 0
+    ratio = material.reproduction[:, 1:] / material.reproduction[:, :-1]
+    assert np.all(np.abs(np.log(ratio[has])) >= np.log(1.1))
+    with pytest.raises(ValueError, match="min_change"):
+        detect_changepoints(y, min_change=-0.1)
+
+
+def test_date_uncertainty_only_widens_the_growth_intervals() -> None:
+    y = np.stack([_kinked(28), _kinked(29)])
+    fixed = detect_changepoints(y, date_uncertainty=False)
+    free = detect_changepoints(y, date_uncertainty=True)
+    assert_allclose(free.growth_change, fixed.growth_change)
+    has = fixed.breaks >= 0
+    assert has.any()
+    w0 = (fixed.growth_change_upper - fixed.growth_change_lower)[has]
+    w1 = (free.growth_change_upper - free.growth_change_lower)[has]
+    assert np.all(w1 >= w0 - 1e-15)
+    assert np.any(w1 > w0 * 1.01)
