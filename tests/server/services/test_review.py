@@ -284,8 +284,9 @@ def test_stale_form_post_never_becomes_the_public_tier(demo_session: Session) ->
 
 def _decision(session: Session, region_id: int, effective: date, tier: int, at: datetime) -> None:
     session.add(DecisionRow(
-        region_id=region_id, assessment_id=None, effective_date=effective, tier=tier,
-        kind="overridden", reason="invented", decided_by=None, decided_at=at, published_at=at,
+        policy="county-demo", region_id=region_id, assessment_id=None, effective_date=effective,
+        tier=tier, kind="overridden", reason="invented", decided_by=None, decided_at=at,
+        published_at=at,
     ))
     session.flush()
 
