@@ -17,8 +17,8 @@ from datetime import date, datetime
 from demo_seed.feeds import demo_catalogue
 from rules import Ruleset
 from server.services.database import Database
-from server.services.feeds import feed_statuses
 from server.services.evaluation import active_rulesets
+from server.services.feeds import feed_statuses
 from server.services.review import PendingChange, current_run, official_tiers, pending_changes
 
 __all__ = ["DemoMorning", "FeedHealth", "Pending", "PolicyMorning", "demo_morning",
