@@ -113,10 +113,12 @@ def _vintages(
 def seed_demo(
     db: Database, *, seed: int = 7, days: int = 548, end: date | None = None,
     rules_dir: Path | None = None, progress: ProgressFactory | None = None,
-    history: bool = False,
+    history: bool = False, policies: tuple[str, ...] = DEMO_POLICIES,
 ) -> SeedSummary:
     """Wipe the demo database, fill it with a freshly simulated scenario, and evaluate the
-    demo county's policy over the whole history (assessments as of the newest vintage).
+    demo county's policies over the whole history (assessments as of the newest vintage): the
+    lead ``county.yaml`` and the files named in ``policies`` (default :data:`DEMO_POLICIES`;
+    ``()`` for the lead policy alone), all active at once.
 
     With ``history``, the invented office's past official decisions are recorded and published
     too (:mod:`demo_seed.history`), leaving the newest changes for the demo's approver."""
@@ -164,7 +166,7 @@ def seed_demo(
             details={"start": scenario.start.isoformat(), "end": scenario.end.isoformat()},
         )
     paths = [default_ruleset_path(rules_dir)] + [
-        path for path in (policies_dir(rules_dir) / name for name in DEMO_POLICIES)
+        path for path in (policies_dir(rules_dir) / name for name in policies)
         if path.is_file()]
     runs: list[EvaluationRun] = []
     with db.transaction() as session:

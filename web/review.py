@@ -48,9 +48,12 @@ NONE = "none"
 def queue(
     request: Request, session: SessionDep, user: StaffDep,
     show_all: Annotated[str, Query(alias="all")] = "", region: str = "", published: str = "",
+    policy: str = "",
 ) -> Response:
-    """Pending changes, unpublished decisions and the decision history (newest 30, or all)."""
-    q = review_queue(session=session, show_all=show_all == "1", region=region.strip() or None)
+    """Pending changes, unpublished decisions and the decision history (newest 30, or all), of
+    every active policy or of one (``?policy=NAME``; 404 for a policy that is not active)."""
+    q = review_queue(session=session, show_all=show_all == "1", region=region.strip() or None,
+                     policy=policy.strip() or None)
     return render(request, "staff/review.html", {"q": q, "published": published})
 
 
@@ -109,11 +112,12 @@ def decide_one(
 @router.post("/publish")
 def publish_all(
     session: SessionDep, user: PublishDep, _csrf: CsrfDep, notify: NotifyDep,
-    settings: SettingsDep,
+    settings: SettingsDep, policy: Annotated[str, Form()] = "",
 ) -> RedirectResponse:
-    """Publish every unpublished decision to the public view ("nothing" when there is none)."""
+    """Publish every unpublished decision to the public view ("nothing" when there is none),
+    of every active policy or of the one named in the form's ``policy`` field."""
     result = publish(session=session, user=user.name, notify=notify,
-                     time_zone=settings.time_zone)
+                     time_zone=settings.time_zone, policy=policy.strip() or None)
     flag = "1" if result.decisions else "none"
     return RedirectResponse(f"/staff/review?published={flag}", status_code=303)
 

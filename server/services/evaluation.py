@@ -187,8 +187,8 @@ def active_ruleset(*, session: Session, policy: str | None = None) -> RulesetRow
     return rows[0] if rows else None
 
 
-class UnknownPolicyError(ServiceError, ValueError):
-    """A policy name that is not the name of an active ruleset."""
+class UnknownPolicyError(ServiceError, LookupError):
+    """A policy name that is not the name of an active ruleset (pages answer 404)."""
 
     def __init__(self, policy: str, active: Sequence[str]) -> None:
         self.policy = policy

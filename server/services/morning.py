@@ -7,6 +7,8 @@ for a sparkline; the freshness of each feed; and what changed since the previous
 The assessment-derived part depends only on the active ruleset and the data cutoff of its newest
 evaluation run, so it is built once per run and kept in memory; the review part (official tiers,
 pending changes) is merged in once per state of the decisions (one query per request tells).
+The lines are the lead policy's; with several active policies, :attr:`MorningOverview.policies`
+holds every policy's tier per district (:mod:`server.services.policy_columns`).
 """
 
 from __future__ import annotations
@@ -24,9 +26,15 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.feeds.definition import FeedCatalogue
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
+from server.services.evaluation import (
+    active_ruleset,
+    active_rulesets,
+    assessments_as_of,
+    newest_run_of,
+)
 from server.services.feeds import FeedStatus, feed_statuses
 from server.services.overview import DataOverview, data_overview
+from server.services.policy_columns import PolicyColumn, policy_columns
 from server.services.review import official_tiers, pending_changes
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
@@ -172,6 +180,8 @@ class MorningOverview:
     #: changes exactly when ``data_on_hand`` does (the newest vintage id): a key for caching
     #: anything rendered from it
     data_on_hand_key: int = 0
+    #: every active policy, the lead first, when more than one is active (else empty)
+    policies: tuple[PolicyColumn, ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -272,7 +282,7 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
 
 def _review_state(
     session: Session, key: tuple[object, ...], base: _Base, since: datetime | None = None,
-    ruleset: Ruleset | None = None,
+    ruleset: Ruleset | None = None, policy: str | None = None,
 ) -> _Review:
     """The lines with official tiers and pending changes, rebuilt only when decisions or
     assessments change.
@@ -293,7 +303,7 @@ def _review_state(
             code: o for code, o in official_tiers(session=session, published_only=False).items()
             if o.published_at is None
         }
-        pending = {p.region: p for p in pending_changes(session=session)}
+        pending = {p.region: p for p in pending_changes(session=session, policy=policy)}
         lines = []
         counts: dict[int, int] = {}
         for line in base.lines:
@@ -552,7 +562,9 @@ def morning_overview(
             _CACHE[key] = base
     # publications since the previous morning's data count as changes too
     review = _review_state(session, key, base, cutoff - timedelta(days=1) if cutoff else None,
-                           ruleset)
+                           ruleset, row.name)
+    several = len(active_rulesets(session=session)) > 1
+    columns = policy_columns(session=session) if several else ()
     lines = review.lines
     chosen = [
         line for line in lines
@@ -571,5 +583,5 @@ def morning_overview(
         tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds,
         changes=base.changes + review.published,
         every=tuple(lines), data_on_hand=on_hand, data_on_hand_key=on_hand_key,
-        measures=measures,
+        measures=measures, policies=columns,
     )

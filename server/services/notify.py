@@ -298,7 +298,7 @@ def _email(config: NotifyConfig, recipient: Recipient, events: list[Event]) -> D
     msg["Subject"] = f"tierwise: {changes} tier change(s), {signals} prepare signal(s)"
     msg["From"] = config.smtp.sender
     msg["To"] = recipient.email or ""
-    lines = [f"{e.date} {e.region}{f' [{e.policy}]' if e.policy else ''}: {e.sentence}"
+    lines = [f"{e.date} {e.region}: {f'[{e.policy}] ' if e.policy else ''}{e.sentence}"
              for e in events]
     msg.set_content("\n".join(lines) + "\n")
     try:
