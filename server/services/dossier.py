@@ -195,7 +195,7 @@ def district_dossier(
     under ``policy`` (the lead policy when None).
 
     Raises :class:`PeriodError` when both ``start`` and ``end`` are given and ``start > end``,
-    :class:`~server.services.evaluation.UnknownPolicyError` for a policy that is not active.
+    :class:`~server.services.evaluation.InactivePolicyError` for a policy that is not active.
     """
     check_period(start, end)
     region, area = _region(session, code)

@@ -187,7 +187,7 @@ def active_ruleset(*, session: Session, policy: str | None = None) -> RulesetRow
     return rows[0] if rows else None
 
 
-class UnknownPolicyError(ServiceError, LookupError):
+class InactivePolicyError(ServiceError, LookupError):
     """A policy name that is not the name of an active ruleset (pages answer 404)."""
 
     def __init__(self, policy: str, active: Sequence[str]) -> None:
@@ -199,10 +199,10 @@ class UnknownPolicyError(ServiceError, LookupError):
 def require_policy(*, session: Session, policy: str | None) -> RulesetRow | None:
     """The active ruleset of ``policy`` (the lead's when None; None when nothing is active).
 
-    Raises :class:`UnknownPolicyError` for a name that is not active."""
+    Raises :class:`InactivePolicyError` for a name that is not active."""
     row = active_ruleset(session=session, policy=policy)
     if row is None and policy is not None:
-        raise UnknownPolicyError(policy, [r.name for r in active_rulesets(session=session)])
+        raise InactivePolicyError(policy, [r.name for r in active_rulesets(session=session)])
     return row
 
 
@@ -652,7 +652,7 @@ __all__ = [
     "LatestItem",
     "LatestRun",
     "activate_ruleset",
-    "UnknownPolicyError",
+    "InactivePolicyError",
     "active_ruleset",
     "active_rulesets",
     "assessments_as_of",

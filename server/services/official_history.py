@@ -187,7 +187,7 @@ def import_official_history(
     ------
     InputFileError
         Unknown district, tier out of range, unknown or inactive staff account.
-    UnknownPolicyError
+    InactivePolicyError
         ``policy`` is not an active policy.
     """
     items = list(records)

@@ -2,7 +2,8 @@
 
 A draft is validated by the rules engine's loader, whose errors name the line, column and key
 path (``draft.yaml:23:7: criteria[1].enter[2]: ...``); a valid draft is stored as a ruleset
-version with status ``draft``; an admin activates it (the previous active version is retired).
+version with status ``draft``; an admin activates it (the active version of the same policy
+name is retired; other policies stay active).
 """
 
 from __future__ import annotations
@@ -305,7 +306,8 @@ def activate_version(
     *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None,
     stale_after: Mapping[str, timedelta] | None = None,
 ) -> None:
-    """Make a version active (every other active one is retired) and evaluate it on the newest
+    """Make a version active (the active version of its name is retired; other policies stay
+    active) and evaluate it on the newest
     data (:func:`server.services.evaluation.activate_ruleset`; ``stale_after``: the feeds'
     staleness limits)."""
     row = session.get(RulesetRow, ruleset_id)

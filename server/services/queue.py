@@ -61,7 +61,7 @@ def review_queue(
     """What the review page shows (see :class:`ReviewQueue`), of one active ``policy`` or of
     all; an unknown ``region`` filters to nothing.
 
-    Raises :class:`server.services.evaluation.UnknownPolicyError` for a policy not active."""
+    Raises :class:`server.services.evaluation.InactivePolicyError` for a policy not active."""
     row = require_policy(session=session, policy=policy)
     names = tuple(t.name for t in parsed(row).tiers) if row is not None else ()
     actives = active_rulesets(session=session)
