@@ -159,6 +159,17 @@ def activate_ruleset(
                               stale_after=stale_after)
 
 
+def retire_ruleset(*, session: Session, row: RulesetRow, actor: str) -> None:
+    """Stop running an active policy: its version is retired (audited); its assessments and
+    decisions stay, and its decisions count for the lead policy while it is not active."""
+    if row.status != "active":
+        return
+    row.status = "retired"
+    record(session=session, actor=actor, action="ruleset.retire",
+           subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
+    session.flush()
+
+
 def active_rulesets(*, session: Session) -> list[RulesetRow]:
     """Every active ruleset (one per policy name), the lead policy first.
 
@@ -668,6 +679,7 @@ __all__ = [
     "policies_behind",
     "policies_dir",
     "require_policy",
+    "retire_ruleset",
     "serialise_evaluations",
     "store_ruleset",
 ]

@@ -19,7 +19,7 @@ from sqlalchemy.orm import Session
 from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import activate_ruleset
+from server.services.evaluation import activate_ruleset, retire_ruleset
 from server.services.indicator_kinds import indicator_check, store_measures
 from server.services.notify import NotifyConfig
 from server.services.ruleset_cache import parsed
@@ -315,3 +315,12 @@ def activate_version(
         raise UnknownPolicyError(ruleset_id)
     activate_ruleset(session=session, row=row, actor=actor, notify=notify,
                      stale_after=stale_after)
+
+
+def retire_version(*, session: Session, ruleset_id: int, actor: str) -> None:
+    """Stop running an active policy version (:func:`server.services.evaluation.retire_ruleset`);
+    the other active policies go on."""
+    row = session.get(RulesetRow, ruleset_id)
+    if row is None:
+        raise UnknownPolicyError(ruleset_id)
+    retire_ruleset(session=session, row=row, actor=actor)
