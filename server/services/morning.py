@@ -224,14 +224,21 @@ def _published_changes(
         .where(Decision.published_at.is_not(None))
         .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
     ).all()
-    before: dict[str, Decision] = {}
-    after: dict[str, Decision] = {}
+    # each policy's official tiers apart (decisions of a policy no longer active: the lead's)
+    active = [r.name for r in active_rulesets(session=session)]
+    prefix = len(active) > 1
+
+    def key(code: str, row: Decision) -> tuple[str, str]:
+        return (row.policy if row.policy in active or not active else active[0], code)
+
+    before: dict[tuple[str, str], Decision] = {}
+    after: dict[tuple[str, str], Decision] = {}
     for code, row in rows:
-        after[code] = row
+        after[key(code, row)] = row
         if row.published_at is not None and row.published_at.astimezone(UTC) <= since:
-            before[code] = row
-    changed = {code: row for code, row in after.items()
-               if code not in before or before[code].tier != row.tier}
+            before[key(code, row)] = row
+    changed = {k: row for k, row in after.items()
+               if k not in before or before[k].tier != row.tier}
     scales = decision_scales(session=session, rows=[*changed.values(), *(
         before[c] for c in changed if c in before)])
 
@@ -240,10 +247,11 @@ def _published_changes(
 
     return tuple(
         Change(code=code, name=names.get(code, code), what=(
-            f"official tier published: {name(before[code])} to {name(row)}" if code in before
-            else f"official tier first published: {name(row)}"
+            (f"{policy}: " if prefix else "") + (
+                f"official tier published: {name(before[(policy, code)])} to {name(row)}"
+                if (policy, code) in before else f"official tier first published: {name(row)}")
         ))
-        for code, row in sorted(changed.items())
+        for (policy, code), row in sorted(changed.items(), key=lambda kv: (kv[0][1], kv[0][0]))
     )
 
 
@@ -265,6 +273,7 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
     if not rows:
         return ()
     scales = decision_scales(session=session, rows=[row for _code, row, _rec in rows])
+    several = len(active_rulesets(session=session)) > 1
     out = []
     for code, row, recommended in rows:
         scale = scales[row.id]
@@ -274,7 +283,8 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
         state = ("published" if row.published_at is not None
                  else "not yet published")
         out.append(Change(code=code, name=names.get(code, code), what=(
-            f"overridden to {scale.name(row.tier)} ({row.tier}){rec}, in force from "
+            (f"{row.policy}: " if several else "")
+            + f"overridden to {scale.name(row.tier)} ({row.tier}){rec}, in force from "
             f"{row.effective_date.isoformat()}, {state}: {row.reason}"
         )))
     return tuple(out)

@@ -20,7 +20,7 @@ from fastapi.testclient import TestClient
 
 from server.services.evaluation import active_rulesets
 from server.services.policy_columns import policy_columns
-from server.services.review import official_tiers, pending_changes
+from server.services.review import decide, official_tiers, pending_changes, publish
 from tests.web.conftest import ROLE_USER, login, settings_for
 from web.app import create_app
 
@@ -138,3 +138,23 @@ def test_german_overview_names_the_policies(client: TestClient) -> None:
     login(client, ROLE_USER["analyst"])
     page = client.get("/staff/?lang=de").text
     assert "Aktive Regelwerke:" in page and "(führend)" in page
+
+
+def test_a_publication_under_one_policy_is_a_change_of_that_policy(client: TestClient) -> None:
+    """Runs last: it decides and publishes one pending change of a policy other than the lead.
+    The overview's changes name the policy; the lead policy's official tiers stay."""
+    with _db(client).transaction() as s:
+        change = next(p for p in pending_changes(session=s) if p.policy != "county-demo")
+        lead_before = official_tiers(session=s, policy="county-demo")
+        decide(session=s, assessment_id=change.assessment_id, user=ROLE_USER["approver"],
+               accept=True, tier=None, reason="invented: agreed",
+               official_tier=change.official_tier,
+               official_decision_id=change.official_decision_id)
+        publish(session=s, user=ROLE_USER["approver"], policy=change.policy)
+    with _db(client).sessions() as s:
+        assert official_tiers(session=s, policy="county-demo") == lead_before
+        assert official_tiers(session=s, policy=change.policy)[change.region].tier == (
+            change.recommended_tier)
+    login(client, ROLE_USER["analyst"])
+    page = client.get("/staff/").text
+    assert f"{change.policy}: official tier published:" in page
