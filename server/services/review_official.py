@@ -161,7 +161,9 @@ def decision_history(
     decision was made under (:mod:`server.services.tiers`); imported decisions are looked up
     under ``policy``'s active ruleset (the lead's when None)."""
     active = active_ruleset(session=session, policy=policy)
-    active_id = -1 if active is None else active.id  # only the active ruleset's are linked
+    active_id = -1 if active is None else active.id
+    # only the active rulesets' assessments are linked (their explanation pages exist)
+    linked = {r.id for r in active_rulesets(session=session)} | {active_id}
     query = (
         select(DecisionRow, Region.code, Region.name, User.name, Assessment.recommended_tier,
                Assessment.ref_date, Assessment.data_cutoff, Assessment.ruleset_id)
@@ -202,8 +204,8 @@ def decision_history(
             recommended_name=name_of,
             kind=row.kind, reason=row.reason, user=user or "", decided_at=row.decided_at,
             effective_date=row.effective_date, published_at=row.published_at,
-            assessment_day=day if ruleset_id == active_id else None,
-            assessment_cutoff=cutoff if ruleset_id == active_id else None,
+            assessment_day=day if ruleset_id in linked else None,
+            assessment_cutoff=cutoff if ruleset_id in linked else None,
             recommended_looked_up=row.assessment_id is None and row.id in looked_up,
             recommended_later=later, policy=row.policy,
         ))
