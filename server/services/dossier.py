@@ -34,7 +34,7 @@ from server.services.evaluation import (
 )
 from server.services.explanations import RevisedSince, explained_day, revised_since
 from server.services.forecast_record import RecordLine, record_lines
-from server.services.policy_columns import policy_level
+from server.services.policy_columns import assessed_regions, policy_level
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
@@ -155,12 +155,14 @@ def _cutoff(session: Session, ruleset_id: int) -> datetime | None:
 
 
 def _assessed(session: Session, region: Region, row: RulesetRow) -> tuple[int, str | None]:
-    """The region whose assessments a district shows under ``row`` (its parent area under a
-    policy of ``level: areas``) and that area's name (None: the district itself)."""
-    if policy_level(parsed(row)) != "districts" and region.parent_id is not None:
-        parent = session.get(Region, region.parent_id)
-        if parent is not None:
-            return parent.id, parent.name
+    """The region whose assessments a district shows under ``row`` (the region above it at the
+    policy's level, :func:`~server.services.policy_columns.assessed_regions`) and that region's
+    name (None: the district itself)."""
+    level = policy_level(parsed(row))
+    if level != "districts":
+        found = assessed_regions(session=session, level=level).get(region.code)
+        if found is not None:
+            return found.id, found.name
     return region.id, None
 
 

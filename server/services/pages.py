@@ -31,6 +31,7 @@ from rules import Ruleset
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.outlook import Outlook, district_outlook
+from server.services.policy_columns import assessed_regions, policy_level
 from server.services.review_official import OfficialTier, official_tiers
 from server.services.ruleset_cache import parsed
 from server.store import read_dense
@@ -221,26 +222,21 @@ def other_policy_tiers(
     rows = active_rulesets(session=session)[1:]
     if not rows:
         return {}
-    parent = aliased(Region)
-    districts = session.execute(
-        select(Region.code, parent.code, parent.name)
-        .outerjoin(parent, parent.id == Region.parent_id).where(Region.level == "district")
-    ).all()
     out: dict[str, list[PolicyTier]] = {}
     for row in rows:
         ruleset = parsed(row)
         tiers = _tiers(ruleset, lang)
         published = official_tiers(session=session, published_only=True, policy=row.name)
-        areas = str(getattr(ruleset, "level", "districts")) != "districts"
-        for code, area_code, area_name in districts:
-            off = published.get(area_code if areas else code)
+        level = policy_level(ruleset)
+        for code, region in assessed_regions(session=session, level=level).items():
+            off = published.get(region.code)
             if off is None:
                 continue
             name, text = _tier_text(session, row.id, tiers, off, lang)
             out.setdefault(code, []).append(PolicyTier(
                 policy=row.name, description=ruleset.description.strip(), tier=off.tier,
                 tier_name=name or off.tier_name, public_text=text or "", since=off.since,
-                area=area_name if areas else None,
+                area=None if level == "districts" else region.name,
             ))
     return {code: tuple(found) for code, found in out.items()}
 

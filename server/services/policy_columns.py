@@ -3,8 +3,8 @@
 Several policies are active at once (:func:`server.services.evaluation.active_rulesets`, the lead
 first). For each one this gives, per district code, the official (published) tier, the newest
 recommended tier and whether a change awaits review, with the policy's pending changes. A policy
-whose assessments are for areas (``level: areas``) gives each district its parent area's tier
-(:attr:`PolicyCell.area` names the area).
+whose assessments are for areas (``level: areas``, or ``county``) gives each district the tier of
+the region above it at that level (:func:`assessed_regions`; :attr:`PolicyCell.area` names it).
 
 The result depends only on the decisions and the newest run of each active policy, so it is kept
 per worker under a stamp of both (one small query per request when nothing changed).
@@ -17,7 +17,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from sqlalchemy import func, select, type_coerce
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from server.services.evaluation import active_rulesets, newest_run_of
 from server.services.review_official import official_tiers
@@ -26,7 +26,8 @@ from server.services.ruleset_cache import parsed
 from server.store.models import Decision, Region
 from server.store.types import UTCDateTime
 
-__all__ = ["PolicyCell", "PolicyColumn", "policy_columns", "policy_level"]
+__all__ = ["AssessedRegion", "PolicyCell", "PolicyColumn", "assessed_regions", "policy_columns",
+           "policy_level"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -58,7 +59,37 @@ class PolicyColumn:
 
 def policy_level(ruleset: object) -> str:
     """The level a policy assesses: ``districts`` unless the ruleset says otherwise."""
-    return str(getattr(ruleset, "level", "districts"))
+    return str(getattr(ruleset, "level", "districts") or "districts")
+
+
+@dataclass(frozen=True, kw_only=True)
+class AssessedRegion:
+    """The region whose assessments stand for a district under a policy."""
+
+    id: int
+    code: str
+    name: str
+
+
+def assessed_regions(*, session: Session, level: str) -> dict[str, AssessedRegion]:
+    """Per district code, the region a policy of ``level`` assesses for it: the district itself
+    (``districts``), its parent (``areas``: the area above it) or the top of the tree above it
+    (``county``); districts without one are left out."""
+    rows = {rid: (code, name, lvl, parent) for rid, code, name, lvl, parent in session.execute(
+        select(Region.id, Region.code, Region.name, Region.level, Region.parent_id))}
+    out = {}
+    for rid, (code, _name, lvl, parent) in rows.items():
+        if lvl != "district":
+            continue
+        chosen: int | None = rid if level == "districts" else parent
+        if level == "county":
+            seen: set[int] = set()
+            while chosen is not None and rows[chosen][3] is not None and chosen not in seen:
+                seen.add(chosen)
+                chosen = rows[chosen][3]
+        if chosen is not None:
+            out[code] = AssessedRegion(id=chosen, code=rows[chosen][0], name=rows[chosen][1])
+    return out
 
 
 _CACHE: dict[tuple[object, ...], tuple[PolicyColumn, ...]] = {}
@@ -81,11 +112,6 @@ def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
         hit = _CACHE.get(stamp)
     if hit is not None:
         return hit
-    parent = aliased(Region)
-    districts = session.execute(
-        select(Region.code, parent.code).outerjoin(parent, parent.id == Region.parent_id)
-        .where(Region.level == "district")
-    ).all()
     columns = []
     for k, row in enumerate(rows):
         ruleset = parsed(row)
@@ -96,10 +122,8 @@ def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
         pending = pending_changes(session=session, policy=row.name)
         waiting = {p.region: p for p in pending}
         cells = {}
-        for code, area in districts:
-            key = code if level == "districts" else area
-            if key is None:
-                continue
+        for code, region in assessed_regions(session=session, level=level).items():
+            key = region.code
             item, off, change = items.get(key), official.get(key), waiting.get(key)
             recommended = None if item is None else item.assessment.recommended_tier
             cells[code] = PolicyCell(
@@ -111,7 +135,7 @@ def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
                 pending=change is not None,
                 assessment_id=(change.assessment_id if change is not None
                                else None if item is None else item.assessment.id),
-                area=None if level == "districts" else key,
+                area=None if level == "districts" else region.name,
             )
         columns.append(PolicyColumn(
             name=row.name, label=f"{row.name} {row.version}", level=level, lead=k == 0,

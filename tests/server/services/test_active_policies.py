@@ -18,6 +18,7 @@ import pytest
 from sqlalchemy import select
 
 from server.config import Settings
+from server.services import policy_columns as policy_columns_module
 from server.services.database import Database
 from server.services.evaluation import (
     EvaluationRun,
@@ -31,9 +32,10 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.notify import Event
+from server.services.policy_columns import assessed_regions, policy_columns
 from server.services.review import decide, official_tiers, pending_changes, publish
 from server.services.review_publication import has_something_to_publish
-from server.store.models import Decision, Region
+from server.store.models import Assessment, Decision, Region
 from server.store.vintages import append_vintage
 
 pytestmark = pytest.mark.slow
@@ -205,3 +207,52 @@ def test_notices_of_two_policies_are_two_notices() -> None:
     assert covid.key != flu.key
     assert covid.as_json()["policy"] == "county-demo"
     assert Event(**same).key == "tier_change|D01|2026-11-30|1"  # as before, without a policy
+
+
+def test_assessed_regions_go_up_the_hierarchy(db: Database) -> None:
+    with db.sessions() as s:
+        regions = {r.id: r for r in s.scalars(select(Region))}
+        districts = {r.code: r for r in regions.values() if r.level == "district"}
+        own = assessed_regions(session=s, level="districts")
+        areas = assessed_regions(session=s, level="areas")
+        county = assessed_regions(session=s, level="county")
+    assert {c: r.code for c, r in own.items()} == {c: c for c in districts}
+    for code, district in districts.items():
+        parent = regions[district.parent_id]  # type: ignore[index]
+        assert areas[code].code == parent.code and parent.level == "region"  # the demo's areas
+        top = regions[parent.parent_id]  # type: ignore[index]
+        assert top.level == "county" and top.parent_id is None
+        assert county[code].code == top.code
+
+
+def test_an_area_policy_gives_each_district_its_area_tier(
+    db: Database, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A policy that assesses areas (``level: areas``, read with getattr so that rulesets
+    without the field are district policies): each district shows its area's assessment."""
+    with db.transaction() as s:
+        rsv = active_ruleset(session=s, policy="county-rsv")
+        assert rsv is not None
+        run = newest_run_of(session=s, ruleset_id=rsv.id)
+        assert run is not None
+        area_ids = list(s.scalars(select(Region.id).where(Region.level == "region")
+                                  .order_by(Region.code)))  # the demo's areas
+        for k, rid in enumerate(area_ids):  # invented area assessments on the run's last day
+            s.add(Assessment(
+                ruleset_id=rsv.id, region_id=rid, ref_date=run.last_day,
+                data_cutoff=run.data_cutoff, recommended_tier=k % 3, previous_tier=k % 3,
+                criteria={}, prepare_signals={}, explanation={"sentence": "invented"},
+                content_sha256=None, created_at=run.data_cutoff))
+        s.flush()
+        monkeypatch.setattr(policy_columns_module, "policy_level",
+                            lambda rs: "areas" if rs.name == "county-rsv" else "districts")
+        policy_columns_module._CACHE.clear()
+        column = next(c for c in policy_columns(session=s) if c.name == "county-rsv")
+        areas = assessed_regions(session=s, level="areas")
+        tier_of_area = {s.get(Region, rid).code: k % 3  # type: ignore[union-attr]
+                        for k, rid in enumerate(area_ids)}
+    policy_columns_module._CACHE.clear()
+    assert column.level == "areas" and len(column.cells) == 14
+    for code, cell in column.cells.items():
+        assert cell.area == areas[code].name
+        assert cell.recommended_tier == tier_of_area[areas[code].code]
