@@ -576,11 +576,13 @@ def morning_overview(
     several = len(active_rulesets(session=session)) > 1
     columns = policy_columns(session=session) if several else ()
     lines = review.lines
+    # "pending only": a change awaits review under any active policy
+    waiting = {code for c in columns for code, cell in c.cells.items() if cell.pending}
     chosen = [
         line for line in lines
         if (not query or query.lower() in line.name.lower() or query.lower() in line.code.lower())
         and (tier is None or line.recommended_tier == tier or line.official_tier == tier)
-        and (not pending_only or line.pending)
+        and (not pending_only or line.pending or line.code in waiting)
     ]
     chosen = _sort(chosen, sort)
     pages = max(1, math.ceil(len(chosen) / per_page))

@@ -141,8 +141,9 @@ def test_german_overview_names_the_policies(client: TestClient) -> None:
 
 
 def test_a_publication_under_one_policy_is_a_change_of_that_policy(client: TestClient) -> None:
-    """Runs last: it decides and publishes one pending change of a policy other than the lead.
-    The overview's changes name the policy; the lead policy's official tiers stay."""
+    """Decides and publishes one pending change of a policy other than the lead (the tests
+    after it read the state as they find it). The overview's changes name the policy; the lead
+    policy's official tiers stay."""
     with _db(client).transaction() as s:
         change = next(p for p in pending_changes(session=s) if p.policy != "county-demo")
         lead_before = official_tiers(session=s, policy="county-demo")
@@ -158,3 +159,14 @@ def test_a_publication_under_one_policy_is_a_change_of_that_policy(client: TestC
     login(client, ROLE_USER["analyst"])
     page = client.get("/staff/").text
     assert f"{change.policy}: official tier published:" in page
+
+
+def test_pending_only_keeps_the_districts_with_a_change_under_any_policy(
+    client: TestClient,
+) -> None:
+    login(client, ROLE_USER["analyst"])
+    page = client.get("/staff/?pending=true").text
+    with _db(client).sessions() as s:
+        codes = {p.region for p in pending_changes(session=s)}
+    shown = set(re.findall(r'<th scope="row"><a href="/staff/district/(D\d+)">', page))
+    assert shown == codes and len(shown) < 14
