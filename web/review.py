@@ -21,6 +21,7 @@ from server.services.review_decisions import (
     RecommendationChangedError,
     ReviewError,
     decide,
+    policy_of_assessment,
 )
 from server.services.review_publication import publish
 from web.deps import (
@@ -96,12 +97,14 @@ def decide_one(
         return render(request, "staff/review.html", {
             "q": review_queue(session=session), "published": "", "changed": changed,
             "conflict": conflict, "kept_reason": {refused.region: reason},
+            "kept_policy": policy_of_assessment(session=session, assessment_id=assessment_id),
         }, status_code=409)
     except ReviewError as invalid:  # raised before anything is written
         q = review_queue(session=session)
         region = next((p.region for p in q.pending if p.assessment_id == assessment_id), "")
         return render(request, "staff/review.html", {
             "q": q, "published": "", "kept_reason": {region: reason},
+            "kept_policy": policy_of_assessment(session=session, assessment_id=assessment_id),
             "kept_tier": {region: tier.strip()},
             "invalid": {"region": region, "argument": invalid.argument,
                         "action": action, "message": str(invalid), "reason": reason},

@@ -143,6 +143,14 @@ def active_policy(session: Session, policy: str | None = None) -> Ruleset | None
     return None if row is None else parsed(row)
 
 
+def policy_of_assessment(*, session: Session, assessment_id: int) -> str:
+    """The policy (ruleset name) an assessment belongs to ("" when there is no such row)."""
+    return session.scalar(
+        select(RulesetRow.name).join(Assessment, Assessment.ruleset_id == RulesetRow.id)
+        .where(Assessment.id == assessment_id)
+    ) or ""
+
+
 def effective_from(
     data_day: date, decided_at: datetime, ruleset: Ruleset | None, time_zone: str = "UTC"
 ) -> date:

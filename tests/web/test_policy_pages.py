@@ -21,7 +21,7 @@ from fastapi.testclient import TestClient
 from server.services.evaluation import active_rulesets
 from server.services.policy_columns import policy_columns
 from server.services.review import decide, official_tiers, pending_changes, publish
-from tests.web.conftest import ROLE_USER, login, settings_for
+from tests.web.conftest import ROLE_USER, csrf_of, login, settings_for
 from web.app import create_app
 
 pytestmark = pytest.mark.slow
@@ -170,3 +170,22 @@ def test_pending_only_keeps_the_districts_with_a_change_under_any_policy(
         codes = {p.region for p in pending_changes(session=s)}
     shown = set(re.findall(r'<th scope="row"><a href="/staff/district/(D\d+)">', page))
     assert shown == codes and len(shown) < 14
+
+
+def test_a_refused_form_keeps_its_reason_in_its_own_policy_form(client: TestClient) -> None:
+    login(client, ROLE_USER["approver"])
+    csrf = csrf_of(client.get("/staff/review").text)
+    with _db(client).sessions() as s:
+        pending = pending_changes(session=s)
+    regions = [p.region for p in pending]
+    # a district with changes under two policies when there is one (both forms on the page)
+    change = next((p for p in pending if regions.count(p.region) > 1), pending[-1])
+    answer = client.post(f"/staff/review/{change.assessment_id}", data={
+        "csrf": csrf, "action": "override", "tier": "", "reason": "invented kept reason",
+        "official_tier": "none" if change.official_tier is None else str(change.official_tier),
+        "official_decision": ("none" if change.official_decision_id is None
+                              else str(change.official_decision_id))})
+    assert answer.status_code == 422
+    kept = re.findall(r'<textarea id="reason-(\d+)"[^>]*>invented kept reason</textarea>',
+                      answer.text)
+    assert kept == [str(change.assessment_id)]
