@@ -19,7 +19,7 @@ from sqlalchemy.orm import Session
 from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import activate_ruleset, retire_ruleset
+from server.services.evaluation import activate_ruleset, active_ruleset, retire_ruleset
 from server.services.indicator_kinds import indicator_check, store_measures
 from server.services.notify import NotifyConfig
 from server.services.ruleset_cache import parsed
@@ -122,11 +122,10 @@ def _row(rs: Ruleset, cid: str, th: object, note: str) -> ThresholdRow:
 
 
 def policy_view(*, session: Session, ruleset_id: int | None = None) -> PolicyView | None:
-    """The chosen version (default: the active one) as tiers, a thresholds table and timing."""
+    """The chosen version (default: the lead active policy's) as tiers, a thresholds table and
+    timing."""
     if ruleset_id is None:
-        row = session.scalar(
-            select(RulesetRow).where(RulesetRow.status == "active").order_by(RulesetRow.id.desc())
-        )
+        row = active_ruleset(session=session)
         if row is None:
             return None
     else:

@@ -189,3 +189,15 @@ def test_a_refused_form_keeps_its_reason_in_its_own_policy_form(client: TestClie
     kept = re.findall(r'<textarea id="reason-(\d+)"[^>]*>invented kept reason</textarea>',
                       answer.text)
     assert kept == [str(change.assessment_id)]
+
+
+def test_policies_page_lets_one_pick_each_active_policy(client: TestClient) -> None:
+    login(client, ROLE_USER["admin"])
+    page = client.get("/staff/policies").text
+    with _db(client).sessions() as s:
+        rows = active_rulesets(session=s)
+    assert f'<h2 id="active-h">{rows[0].name} {rows[0].version}' in page  # the lead by default
+    for row in rows[1:]:
+        assert f'<a href="/staff/policies?id={row.id}">{row.name} {row.version}</a>' in page
+        picked = client.get(f"/staff/policies?id={row.id}").text
+        assert f'<h2 id="active-h">{row.name} {row.version}' in picked
