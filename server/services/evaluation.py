@@ -138,7 +138,7 @@ def activate_ruleset(
 
     The other active versions of the same name are retired; other policies stay active, unless
     ``replaces`` names one this ruleset takes over from (its active version is retired too, and
-    its decisions count for the lead policy while it is not active: :mod:`review_official`).
+    its decisions count for this policy: :func:`server.services.review_official.policy_owners`).
     Used by every way of activating (:func:`store_ruleset`, the policies page). Returns the
     evaluation (None when there are no data yet); ``notify`` and ``stale_after`` as in
     :func:`evaluate_districts`.
@@ -153,20 +153,22 @@ def activate_ruleset(
     row.status = "active"
     record(session=session, actor=actor, action="ruleset.activate",
            subject=f"{row.name} {row.version}",
-           details={"sha256": row.sha256, **({"replaces": replaces} if replaces else {})})
+           details={"sha256": row.sha256, "policy": row.name,
+                    **({"replaces": replaces} if replaces else {})})
     session.flush()
     return evaluate_districts(session=session, ruleset_row=row, notify=notify,
                               stale_after=stale_after)
 
 
 def retire_ruleset(*, session: Session, row: RulesetRow, actor: str) -> None:
-    """Stop running an active policy: its version is retired (audited); its assessments and
-    decisions stay, and its decisions count for the lead policy while it is not active."""
+    """Stop running an active policy: its version is retired (audited as ``ruleset.retire``);
+    its assessments and decisions stay and count for no other policy
+    (:func:`server.services.review_official.policy_owners`)."""
     if row.status != "active":
         return
     row.status = "retired"
     record(session=session, actor=actor, action="ruleset.retire",
-           subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
+           subject=f"{row.name} {row.version}", details={"sha256": row.sha256, "policy": row.name})
     session.flush()
 
 

@@ -36,6 +36,7 @@ from server.services.feeds import FeedStatus, feed_statuses
 from server.services.overview import DataOverview, data_overview
 from server.services.policy_columns import PolicyColumn, policy_columns
 from server.services.review import official_tiers, pending_changes
+from server.services.review_official import policy_owners
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, FeedState, Measure, Region, Vintage
@@ -224,19 +225,24 @@ def _published_changes(
         .where(Decision.published_at.is_not(None))
         .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
     ).all()
-    # each policy's official tiers apart (decisions of a policy no longer active: the lead's)
+    # each policy's official tiers apart (a policy no longer active: the one it counts for)
     active = [r.name for r in active_rulesets(session=session)]
     prefix = len(active) > 1
+    owners = policy_owners(session)
 
-    def key(code: str, row: Decision) -> tuple[str, str]:
-        return (row.policy if row.policy in active or not active else active[0], code)
+    def key(code: str, row: Decision) -> tuple[str, str] | None:
+        owner = row.policy if row.policy in active or not active else owners.get(row.policy)
+        return None if owner is None else (owner, code)
 
     before: dict[tuple[str, str], Decision] = {}
     after: dict[tuple[str, str], Decision] = {}
     for code, row in rows:
-        after[key(code, row)] = row
+        k = key(code, row)
+        if k is None:  # a stopped policy's decision counts for none
+            continue
+        after[k] = row
         if row.published_at is not None and row.published_at.astimezone(UTC) <= since:
-            before[key(code, row)] = row
+            before[k] = row
     changed = {k: row for k, row in after.items()
                if k not in before or before[k].tier != row.tier}
     scales = decision_scales(session=session, rows=[*changed.values(), *(

@@ -17,14 +17,15 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 
-from sqlalchemy import ColumnElement, or_, select, true
+from sqlalchemy import ColumnElement, select, true
 from sqlalchemy.orm import Session
 
 from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
-from server.store.models import Assessment, Region, User
+from server.store.models import Assessment, AuditEntry, Region, User
 from server.store.models import Decision as DecisionRow
+from server.store.models import Ruleset as RulesetRow
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -87,19 +88,61 @@ def rank(row: DecisionRow) -> tuple[date, datetime, int]:
     return (row.effective_date, row.decided_at, row.id)
 
 
-def policy_condition(session: Session, policy: str | None) -> ColumnElement[bool]:
-    """Which decisions belong to ``policy`` (the lead policy when None).
+def policy_owners(session: Session) -> dict[str, str | None]:
+    """Every policy name not active now -> the active policy its decisions count for.
 
-    A policy's own decisions; for the lead policy also those of every policy not active now
-    (replaced, or recorded before any ruleset was active). With no active policy: every
-    decision."""
+    A name replaced by another (``activate_ruleset(..., replaces=...)``) counts for the policy
+    that replaced it (followed along a chain of replacements); a name stopped on the Policies
+    page (``ruleset.retire``) for none; any other name no longer active (a policy replaced
+    before several policies could run, decisions recorded before any ruleset was active) for
+    the lead policy. The last of these events of a name decides. Read once per session."""
+    active = [r.name for r in active_rulesets(session=session)]
+    key = ("policy_owners", tuple(active))
+    cached = session.info.get(key)
+    if cached is not None:
+        return dict(cached)
+    inactive = set(session.scalars(select(RulesetRow.name).distinct())) - set(active)
+    inactive |= set(session.scalars(select(DecisionRow.policy).distinct())) - set(active)
+    fate: dict[str, str | None] = {}  # name -> the name that replaced it, None: stopped
+    if inactive and active:
+        for action, subject, details in session.execute(
+            select(AuditEntry.action, AuditEntry.subject, AuditEntry.details)
+            .where(AuditEntry.action.in_(("ruleset.activate", "ruleset.retire")))
+            .order_by(AuditEntry.id)
+        ):
+            name = str((details or {}).get("policy") or subject.rsplit(" ", 1)[0])
+            if action == "ruleset.retire":
+                fate[name] = None
+            else:
+                fate.pop(name, None)  # active again: a later event decides anew
+                replaced = (details or {}).get("replaces")
+                if replaced:
+                    fate[str(replaced)] = name
+    owners: dict[str, str | None] = {}
+    for name in inactive:
+        seen, at = set(), name
+        while at not in active and at in fate and at not in seen:
+            seen.add(at)
+            nxt = fate[at]
+            if nxt is None:
+                break
+            at = nxt
+        owners[name] = at if at in active else (
+            None if at in fate and fate[at] is None else active[0] if active else None)
+    session.info[key] = dict(owners)
+    return owners
+
+
+def policy_condition(session: Session, policy: str | None) -> ColumnElement[bool]:
+    """Which decisions belong to ``policy`` (the lead policy when None): its own, and those of
+    the policies no longer active that count for it (:func:`policy_owners`). With no active
+    policy: every decision; with one, every decision but those of stopped policies."""
     names = [r.name for r in active_rulesets(session=session)]
     if not names:
         return true()
     name = names[0] if policy is None else policy
-    if name == names[0]:
-        return or_(DecisionRow.policy == name, DecisionRow.policy.not_in(names))
-    return DecisionRow.policy == name
+    mine = {name} | {n for n, owner in policy_owners(session).items() if owner == name}
+    return DecisionRow.policy.in_(sorted(mine))
 
 
 def decisions_by_region(

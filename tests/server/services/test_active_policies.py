@@ -29,11 +29,13 @@ from server.services.evaluation import (
     newest_cutoff,
     newest_run_of,
     policies_behind,
+    retire_ruleset,
     store_ruleset,
 )
 from server.services.notify import Event
 from server.services.policy_columns import assessed_regions, policy_columns
 from server.services.review import decide, official_tiers, pending_changes, publish
+from server.services.review_official import policy_owners
 from server.services.review_publication import has_something_to_publish
 from server.store.models import Assessment, Decision, Region
 from server.store.vintages import append_vintage
@@ -256,3 +258,35 @@ def test_an_area_policy_gives_each_district_its_area_tier(
     for code, cell in column.cells.items():
         assert cell.area == areas[code].name
         assert cell.recommended_tier == tier_of_area[areas[code].code]
+
+
+def test_a_stopped_policy_counts_for_no_other(db: Database) -> None:
+    with db.transaction() as s:
+        lead = official_tiers(session=s, published_only=False)
+        flu = active_ruleset(session=s, policy="county-influenza")
+        assert flu is not None
+        retire_ruleset(session=s, row=flu, actor="test")
+        assert [r.name for r in active_rulesets(session=s)] == ["county-demo", "county-rsv"]
+        assert policy_owners(s)["county-influenza"] is None
+        after = official_tiers(session=s, published_only=False)
+    assert after == lead  # the stopped influenza policy's decisions stay out of the lead's
+
+
+def test_a_replaced_policy_hands_its_decisions_to_the_one_replacing_it(
+    db: Database, tmp_path: Path
+) -> None:
+    text = (COUNTY.parent / "influenza.yaml").read_text().replace(
+        "name: county-influenza", "name: invented-flu-next", 1)
+    path = tmp_path / "flu-next.yaml"
+    path.write_text(text)
+    with db.transaction() as s:
+        before = official_tiers(session=s, policy="county-influenza")
+        lead = official_tiers(session=s)
+        store_ruleset(session=s, path=path, author="test", activate=True,
+                      replaces="county-influenza")
+        assert [r.name for r in active_rulesets(session=s)] == [
+            "county-demo", "county-rsv", "invented-flu-next"]
+        assert policy_owners(s)["county-influenza"] == "invented-flu-next"
+        taken_over = official_tiers(session=s, policy="invented-flu-next")
+        assert official_tiers(session=s) == lead
+    assert {c: o.tier for c, o in taken_over.items()} == {c: o.tier for c, o in before.items()}
