@@ -37,6 +37,7 @@ from server.services.evaluation import (
     EvaluationRun,
     activate_ruleset,
     default_ruleset_path,
+    policies_dir,
     store_ruleset,
 )
 from server.services.feed_state import record_feed_state
@@ -45,6 +46,10 @@ from server.services.observations import MeasureRecord, VintageWriter, define_me
 from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.users import add_user
+
+#: The policies the demo runs at once, the lead first (``county.yaml``, from
+#: :func:`default_ruleset_path`); the others are activated when the rules folder holds them.
+DEMO_POLICIES = ("influenza.yaml", "rsv.yaml")
 
 #: Past mornings whose forecasts the demo stores (60 scored at 21 days, 7 settling).
 RECORD_MORNINGS = 90
@@ -72,6 +77,8 @@ class SeedSummary:
     assessments: int
     push_tokens: dict[str, str]
     decisions: int = 0
+    #: Every policy the demo activated (name, assessments written), the lead first.
+    policies: tuple[tuple[str, int], ...] = ()
     wastewater_csv: bytes = b""  # what the stand-in water authority serves (demo_seed.standin)
 
 
@@ -106,10 +113,12 @@ def _vintages(
 def seed_demo(
     db: Database, *, seed: int = 7, days: int = 548, end: date | None = None,
     rules_dir: Path | None = None, progress: ProgressFactory | None = None,
-    history: bool = False,
+    history: bool = False, policies: tuple[str, ...] = DEMO_POLICIES,
 ) -> SeedSummary:
     """Wipe the demo database, fill it with a freshly simulated scenario, and evaluate the
-    demo county's policy over the whole history (assessments as of the newest vintage).
+    demo county's policies over the whole history (assessments as of the newest vintage): the
+    lead ``county.yaml`` and the files named in ``policies`` (default :data:`DEMO_POLICIES`;
+    ``()`` for the lead policy alone), all active at once.
 
     With ``history``, the invented office's past official decisions are recorded and published
     too (:mod:`demo_seed.history`), leaving the newest changes for the demo's approver."""
@@ -156,24 +165,33 @@ def seed_demo(
             session=session, actor="demo", action=DEMO_MARK, subject=f"seed={seed}",
             details={"start": scenario.start.isoformat(), "end": scenario.end.isoformat()},
         )
+    paths = [default_ruleset_path(rules_dir)] + [
+        path for path in (policies_dir(rules_dir) / name for name in policies)
+        if path.is_file()]
+    runs: list[EvaluationRun] = []
     with db.transaction() as session:
-        ruleset = store_ruleset(
-            session=session, path=default_ruleset_path(rules_dir), author="demo"
-        )
-        run = activate_ruleset(session=session, row=ruleset, actor="demo",
-                               stale_after=demo_limits())
+        for path in paths:  # the lead policy first: activated first, it stays the lead
+            row = store_ruleset(session=session, path=path, author="demo")
+            if path == paths[0]:
+                ruleset = row
+            policy_run = activate_ruleset(session=session, row=row, actor="demo",
+                                          stale_after=demo_limits())
+            if policy_run is not None:
+                runs.append(policy_run)
+    run = runs[0] if runs and runs[0].ruleset_id == ruleset.id else None
     with db.transaction() as session:  # the record of the last 90 mornings, each as known then
         store_forecasts_as_known(session=session, time_zone=ZoneInfo(DEMO_TIME_ZONE),
                                  start=scenario.end - timedelta(days=RECORD_MORNINGS - 1))
     decisions = 0
-    if history and run is not None:
-        decisions = _record_history(db, scenario, run)
+    if history:
+        decisions = sum(_record_history(db, scenario, r) for r in runs)
     tokens = configure_demo_feeds(db)
     districts = sum(1 for r in scenario.regions if r.level == "district")
     return SeedSummary(
         start=scenario.start, end=scenario.end, districts=districts, vintages=len(batches),
         observations=len(scenario.observations), users=DEMO_USERS,
         ruleset=f"{ruleset.name} {ruleset.version}", assessments=run.written if run else 0,
+        policies=tuple((r.ruleset_name, r.written) for r in runs),
         push_tokens=tokens, decisions=decisions,
         wastewater_csv=wastewater_csv(scenario.observations),
     )
@@ -194,7 +212,8 @@ def _record_history(db: Database, scenario: Scenario, run: EvaluationRun) -> int
     )
     with db.transaction() as session:
         result = import_official_history(
-            session=session, records=records, source="demo_seed history", actor="demo"
+            session=session, records=records, source="demo_seed history", actor="demo",
+            policy=run.ruleset_name,
         )
     return result.stored
 

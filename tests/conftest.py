@@ -71,3 +71,23 @@ def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Dat
     with scratch_engine(url, prefix="tw_commit") as engine:
         upgrade(engine)
         yield Database(engine=engine, sessions=make_sessionmaker(engine))
+
+
+@pytest.fixture(scope="session")
+def several_policies_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The invented demo county (150 days to 30 Nov 2026) with its three policies active at once
+    (county, influenza, RSV) and the invented office's history under each: every district
+    decided and published, the newest changes pending. Seeded once per session; copy it before
+    writing to it."""
+    from datetime import date
+
+    from demo_seed.seed import seed_demo
+    from server.config import Settings
+
+    path = tmp_path_factory.mktemp("several-policies") / "demo.db"
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
+    try:
+        seed_demo(db, days=150, end=date(2026, 11, 30), history=True)
+    finally:
+        db.dispose()
+    return path

@@ -30,6 +30,9 @@ class AtomText:
     author: str
     entry_title: str  # "{name}: {tier}" with str.format fields name, tier, number
     entry_summary: str  # with fields name, tier, number, day, previous
+    #: put before the title and summary of each entry when the feed holds changes of several
+    #: policies, with the field ``policy`` ("" keeps entries as they are)
+    entry_policy: str = ""
 
 
 def _id(base: str, *parts: object) -> str:
@@ -70,15 +73,19 @@ def atom_feed(
     sub(author, "name", text.author)
     sub(feed, "link", rel="self", type=ATOM_TYPE, href=base + self_path)
     sub(feed, "link", rel="alternate", type="text/html", href=base + page_path)
+    several = len({c.policy for c in changes}) > 1
     for c in changes:
         fields = {"name": c.name, "tier": c.tier_name, "number": c.tier,
                   "day": c.effective_date.isoformat(), "previous": c.previous_name or "—"}
+        policy = text.entry_policy.format(policy=c.policy) if several else ""
         entry = sub(feed, "entry")
         sub(entry, "id", _id(base, "decision", c.decision_id))
-        sub(entry, "title", text.entry_title.format(**fields))
+        sub(entry, "title", policy + text.entry_title.format(**fields))
         sub(entry, "updated", _stamp(c.published_at))
         sub(entry, "published", _stamp(c.published_at))
         sub(entry, "link", rel="alternate", type="text/html", href=f"{base}/district/{c.code}")
-        sub(entry, "summary", text.entry_summary.format(**fields))
+        if several:  # RFC 4287 section 4.2.2: a category names the policy
+            sub(entry, "category", term=c.policy, label=c.policy)
+        sub(entry, "summary", policy + text.entry_summary.format(**fields))
     body: bytes = ET.tostring(feed, encoding="utf-8", xml_declaration=True)
     return body

@@ -120,6 +120,7 @@ def _atom_text(request: Request, district: str | None) -> AtomText:
         entry_title=_("{name}: {tier} (tier {number}) from {day}"),
         entry_summary=_("{name} is at {tier} (tier {number}) from {day}; before: {previous}. "
                         "Tiers are set by the health authority; figures are provisional."),
+        entry_policy=_("Policy {policy}: "),
     )
 
 

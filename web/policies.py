@@ -17,6 +17,7 @@ from server.services.policies import (
     policy_comparison,
     policy_diff,
     policy_view,
+    retire_version,
     store_draft,
     versions,
 )
@@ -120,6 +121,15 @@ def activate(
     """Make a version active and evaluate it (admins only)."""
     activate_version(session=session, ruleset_id=ruleset_id, actor=user.name, notify=notify,
                      stale_after=catalogue_limits(load_catalogue(settings)))
+    return RedirectResponse("/staff/policies", status_code=303)
+
+
+@router.post("/policies/{ruleset_id}/retire")
+def retire(
+    session: SessionDep, user: ActivatePolicyDep, _csrf: CsrfDep, ruleset_id: RowId,
+) -> RedirectResponse:
+    """Stop running an active policy version; the other active policies go on (admins only)."""
+    retire_version(session=session, ruleset_id=ruleset_id, actor=user.name)
     return RedirectResponse("/staff/policies", status_code=303)
 
 

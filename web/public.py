@@ -69,10 +69,18 @@ def language(lang: str = Query(...), next: str = Query("/")) -> RedirectResponse
     return response
 
 
+def _policies_json(found: Any) -> list[dict[str, Any]]:
+    """The published tiers of the other active policies (the lead's are the top-level keys)."""
+    return [{"policy": t.policy, "tier": t.tier, "tier_name": t.tier_name,
+             "meaning": t.public_text, "since": t.since.isoformat() if t.since else None,
+             "area": t.area} for t in found]
+
+
 def _district_json(d: Any) -> dict[str, Any]:
     return {
         "code": d.code, "name": d.name, "area": d.area, "tier": d.tier,
         "tier_name": d.tier_name, "since": d.since.isoformat() if d.since else None,
+        **({"policies": _policies_json(d.policies)} if d.policies else {}),
     }
 
 
@@ -113,6 +121,7 @@ async def district_json(
                        "rate_per_100k": None if w.rate is None else round(w.rate, 1),
                        "provisional": w.provisional}
                       for w in p.weeks],
+            **({"policies": _policies_json(p.policies)} if p.policies else {}),
         })
 
     return await conditional(request, stamp_reader(db), build)

@@ -21,6 +21,7 @@ from server.services.review_decisions import (
     RecommendationChangedError,
     ReviewError,
     decide,
+    policy_of_assessment,
 )
 from server.services.review_publication import publish
 from web.deps import (
@@ -48,9 +49,12 @@ NONE = "none"
 def queue(
     request: Request, session: SessionDep, user: StaffDep,
     show_all: Annotated[str, Query(alias="all")] = "", region: str = "", published: str = "",
+    policy: str = "",
 ) -> Response:
-    """Pending changes, unpublished decisions and the decision history (newest 30, or all)."""
-    q = review_queue(session=session, show_all=show_all == "1", region=region.strip() or None)
+    """Pending changes, unpublished decisions and the decision history (newest 30, or all), of
+    every active policy or of one (``?policy=NAME``; 404 for a policy that is not active)."""
+    q = review_queue(session=session, show_all=show_all == "1", region=region.strip() or None,
+                     policy=policy.strip() or None)
     return render(request, "staff/review.html", {"q": q, "published": published})
 
 
@@ -93,12 +97,14 @@ def decide_one(
         return render(request, "staff/review.html", {
             "q": review_queue(session=session), "published": "", "changed": changed,
             "conflict": conflict, "kept_reason": {refused.region: reason},
+            "kept_policy": policy_of_assessment(session=session, assessment_id=assessment_id),
         }, status_code=409)
     except ReviewError as invalid:  # raised before anything is written
         q = review_queue(session=session)
         region = next((p.region for p in q.pending if p.assessment_id == assessment_id), "")
         return render(request, "staff/review.html", {
             "q": q, "published": "", "kept_reason": {region: reason},
+            "kept_policy": policy_of_assessment(session=session, assessment_id=assessment_id),
             "kept_tier": {region: tier.strip()},
             "invalid": {"region": region, "argument": invalid.argument,
                         "action": action, "message": str(invalid), "reason": reason},
@@ -109,11 +115,12 @@ def decide_one(
 @router.post("/publish")
 def publish_all(
     session: SessionDep, user: PublishDep, _csrf: CsrfDep, notify: NotifyDep,
-    settings: SettingsDep,
+    settings: SettingsDep, policy: Annotated[str, Form()] = "",
 ) -> RedirectResponse:
-    """Publish every unpublished decision to the public view ("nothing" when there is none)."""
+    """Publish every unpublished decision to the public view ("nothing" when there is none),
+    of every active policy or of the one named in the form's ``policy`` field."""
     result = publish(session=session, user=user.name, notify=notify,
-                     time_zone=settings.time_zone)
+                     time_zone=settings.time_zone, policy=policy.strip() or None)
     flag = "1" if result.decisions else "none"
     return RedirectResponse(f"/staff/review?published={flag}", status_code=303)
 

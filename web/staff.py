@@ -96,10 +96,12 @@ def _data_on_hand_html(request: Request, view: MorningOverview) -> str:
 @router.get("/district/{code}", response_class=HTMLResponse)
 def district(
     request: Request, code: str, session: SessionDep, user: StaffDep,
-    start: date | None = None, end: date | None = None,
+    start: date | None = None, end: date | None = None, policy: str = "",
 ) -> Response:
-    """Charts per indicator with thresholds and bands, the tier timeline, recent revisions."""
-    dossier = district_dossier(session=session, code=code, start=start, end=end)
+    """Charts per indicator with thresholds and bands, the tier timeline, recent revisions, under
+    one active policy (``?policy=NAME``, default the lead policy; 404 for one not active)."""
+    dossier = district_dossier(session=session, code=code, start=start, end=end,
+                               policy=policy.strip() or None)
     now = next((t for t in reversed(dossier.official) if t is not None), None)
     if now is None and dossier.recommended:
         now = dossier.recommended[-1]
@@ -159,7 +161,7 @@ def capacity(request: Request, code: str, session: SessionDep, user: StaffDep,
 @router.get("/district/{code}/explain", response_class=HTMLResponse)
 def explain(
     request: Request, code: str, session: SessionDep, settings: SettingsDep, user: StaffDep,
-    day: date | None = None, as_of: datetime | None = None,
+    day: date | None = None, as_of: datetime | None = None, policy: str = "",
 ) -> Response:
     """Why the district has its recommended tier on a day: a printable one-page briefing.
 
@@ -167,6 +169,7 @@ def explain(
     force at that data cutoff), with what later data revised listed apart.
     """
     return render(request, "staff/explain.html", {
-        "e": explanation_page(session=session, code=code, day=day, as_of=as_of),
+        "e": explanation_page(session=session, code=code, day=day, as_of=as_of,
+                              policy=policy.strip() or None),
         "zone": settings.time_zone,
     })

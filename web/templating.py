@@ -15,7 +15,7 @@ from fastapi.responses import HTMLResponse
 from fastapi.templating import Jinja2Templates
 
 from server.config import Settings
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_rulesets
 from server.services.ruleset_cache import parsed
 from web.chart_words import translate_figure
 from web.charts import sparkline_points
@@ -140,8 +140,13 @@ def _policy_words(request: Request, lang: str) -> dict[str, str]:
     if lang == "en" or not hasattr(request.app.state, "database"):
         return {}
     with request.app.state.database.transaction() as session:
-        row = active_ruleset(session=session)
-        return policy_words(parsed(row) if row is not None else None, lang)
+        rows = active_rulesets(session=session)
+        if not rows:
+            return policy_words(None, lang)
+        words: dict[str, str] = {}
+        for row in reversed(rows):  # every active policy's words; the lead's win
+            words.update(policy_words(parsed(row), lang))
+        return words
 
 
 def render(

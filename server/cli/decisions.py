@@ -24,6 +24,9 @@ def import_command(
         help="Mark the decisions published at their decision time (they were the public "
              "tiers), or leave them for an approver to publish.")] = True,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="Check only; store nothing.")] = False,
+    policy: Annotated[str | None, typer.Option(
+        "--policy", help="The active policy (ruleset name) the decisions belong to; default: "
+                         "the lead policy.")] = None,
 ) -> None:
     """Record a district's official tiers from before tierwise (docs/decisions.md).
 
@@ -41,7 +44,7 @@ def import_command(
         with db.sessions() if dry_run else db.transaction() as session:
             result = import_official_history(
                 session=session, records=records, source=str(file), actor="cli",
-                published=published,
+                published=published, policy=policy,
             )
     finally:
         db.dispose()

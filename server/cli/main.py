@@ -118,6 +118,8 @@ def demo(
         f"into {_shown(settings.database_url)}"
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
+    for name, written in summary.policies[1:]:
+        say(f"Evaluated policy {name} as well: {written:,} district-day assessments")
     say(f"Recorded {summary.decisions} past official decisions of the invented office "
         "(published)")
     for line in morning_lines(morning):

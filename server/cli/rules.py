@@ -348,13 +348,18 @@ def evaluate_command(
         str | None,
         typer.Option(help="Data cutoff, ISO time stamp (default: the newest vintage)."),
     ] = None,
+    policy: Annotated[
+        str | None,
+        typer.Option("--policy", help="The active policy (ruleset name) to evaluate "
+                                      "(default: every active policy)."),
+    ] = None,
 ) -> None:
-    """Evaluate the active ruleset for the regions of its level (districts, areas or the
-    county) on the data as known at the cutoff and store the assessments (a second run with
-    the same cutoff reuses them)."""
+    """Evaluate the active rulesets (every active policy, or ``--policy``) for the regions of
+    each policy's level (districts, areas or the county) on the data as known at the cutoff and
+    store the assessments (a second run with the same cutoff reuses them)."""
     from server.cli.feeds import configured_catalogue
     from server.services.database import Database
-    from server.services.evaluation import active_ruleset, evaluate_districts
+    from server.services.evaluation import active_rulesets, evaluate_districts, require_policy
     from server.services.feeds import catalogue_limits
     from server.services.notify import notify_config_from
 
@@ -376,20 +381,25 @@ def evaluate_command(
     try:
         db.check()
         with db.transaction() as session:
-            row = active_ruleset(session=session)
-            if row is None:
+            chosen = require_policy(session=session, policy=policy)
+            rows = [chosen] if policy is not None and chosen is not None else active_rulesets(
+                session=session)
+            if not rows:
                 raise fail("no active ruleset; the demo or `tierwise rules` must store one first")
-            run = evaluate_districts(session=session, ruleset_row=row, cutoff=when, notify=notify,
-                                     stale_after=limits)
+            runs = [evaluate_districts(session=session, ruleset_row=row, cutoff=when,
+                                       notify=notify, stale_after=limits) for row in rows]
     finally:
         db.dispose()
-    if run is None:
+    if all(run is None for run in runs):
         raise fail("no data known at that cutoff")
-    verb = "reused" if run.reused else "stored"
-    say(
-        f"{run.ruleset_name}: {verb} assessments {run.start} to {run.end} "
-        f"(cutoff {run.data_cutoff.isoformat()}, {run.written:,} written)"
-    )
-    for d in run.notified:
-        say(f"notified {d.recipient}: {d.events} event(s)" if d.ok
-            else f"notification to {d.recipient} failed: {d.error}")
+    for run in runs:
+        if run is None:
+            continue
+        verb = "reused" if run.reused else "stored"
+        say(
+            f"{run.ruleset_name}: {verb} assessments {run.start} to {run.end} "
+            f"(cutoff {run.data_cutoff.isoformat()}, {run.written:,} written)"
+        )
+        for d in run.notified:
+            say(f"notified {d.recipient}: {d.events} event(s)" if d.ok
+                else f"notification to {d.recipient} failed: {d.error}")

@@ -26,15 +26,23 @@ from rules.record import CriterionState
 from server.services.backtest import nowcast_accuracy_report
 from server.services.district_nowcasts import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
+from server.services.evaluation import (
+    active_rulesets,
+    assessments_as_of,
+    newest_run_of,
+    require_policy,
+)
 from server.services.explanations import RevisedSince, explained_day, revised_since
 from server.services.forecast_record import RecordLine, record_lines
 from server.services.indicator_kinds import store_measures
 from server.services.level_data import area_figures
+from server.services.policy_columns import assessed_regions, policy_level
+from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
+from server.store.models import Ruleset as RulesetRow
 
 __all__ = [
     "CriterionSeries",
@@ -127,6 +135,11 @@ class DistrictDossier:
     nowcast_accuracy: str | None = None
     #: the forecast record of the district and of its area (staff/_forecast_record.html)
     forecast_record: tuple[RecordLine, ...] = ()
+    #: the policy shown (a ruleset name) and every active policy, the lead first
+    policy: str = ""
+    policies: tuple[str, ...] = ()
+    #: the area whose tiers these are, when the policy assesses areas (else None)
+    assessed_area: str | None = None
 
 
 def _region(session: Session, code: str) -> tuple[Region, str | None]:
@@ -146,10 +159,25 @@ def _cutoff(session: Session, ruleset_id: int) -> datetime | None:
     return None if run is None else run.data_cutoff
 
 
-def _official_by_day(session: Session, region_id: int, days: list[date]) -> list[int | None]:
+def _assessed(session: Session, region: Region, row: RulesetRow) -> tuple[int, str | None]:
+    """The region whose assessments a district shows under ``row`` (the region above it at the
+    policy's level, :func:`~server.services.policy_columns.assessed_regions`) and that region's
+    name (None: the district itself)."""
+    level = policy_level(parsed(row))
+    if level != "districts":
+        found = assessed_regions(session=session, level=level).get(region.code)
+        if found is not None:
+            return found.id, found.name
+    return region.id, None
+
+
+def _official_by_day(
+    session: Session, region_id: int, days: list[date], policy: str | None = None
+) -> list[int | None]:
     rows = session.execute(
         select(Decision.effective_date, Decision.tier)
-        .where(Decision.region_id == region_id, Decision.published_at.is_not(None))
+        .where(Decision.region_id == region_id, Decision.published_at.is_not(None),
+               policy_condition(session, policy))
         .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
     ).all()
     out: list[int | None] = []
@@ -168,24 +196,27 @@ def _num(v: Any) -> float | None:
 
 def district_dossier(
     *, session: Session, code: str, start: date | None = None, end: date | None = None,
-    days: int = 120,
+    days: int = 120, policy: str | None = None,
 ) -> DistrictDossier:
-    """Everything the staff district page shows, for ``start..end`` (default: the last ``days``).
+    """Everything the staff district page shows, for ``start..end`` (default: the last ``days``),
+    under ``policy`` (the lead policy when None).
 
-    Raises :class:`PeriodError` when both ``start`` and ``end`` are given and ``start > end``.
+    Raises :class:`PeriodError` when both ``start`` and ``end`` are given and ``start > end``,
+    :class:`~server.services.evaluation.InactivePolicyError` for a policy that is not active.
     """
     check_period(start, end)
     region, area = _region(session, code)
-    row = active_ruleset(session=session)
+    row = require_policy(session=session, policy=policy)
     cutoff = _cutoff(session, row.id) if row else None
     if row is None or cutoff is None:
         raise NoAssessmentError(code, None)
     rs = parsed(row)
     of_area = area_figures(rs, store_measures(session=session))
+    assessed, assessed_area = _assessed(session, region, row)
     span = session.execute(assessments_as_of(
         select(func.min(Assessment.ref_date), func.max(Assessment.ref_date))
         .select_from(Assessment),
-        ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+        ruleset_id=row.id, cutoff=cutoff, region_id=assessed,
     )).one()
     if span[0] is None:
         raise NoAssessmentError(code, None)
@@ -195,7 +226,7 @@ def district_dossier(
     if start > end:
         start = end
     rows = list(session.scalars(assessments_as_of(
-        select(Assessment), ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+        select(Assessment), ruleset_id=row.id, cutoff=cutoff, region_id=assessed,
         start=start, end=end,
     ).order_by(Assessment.ref_date)))
     dates = [a.ref_date for a in rows]
@@ -229,13 +260,16 @@ def district_dossier(
         ruleset=f"{row.name} {row.version}", tier_names=tuple(t.name for t in rs.tiers),
         start=start, end=end, first_day=first, last_day=last, criteria=tuple(criteria),
         dates=tuple(dates), recommended=tuple(a.recommended_tier for a in rows),
-        official=tuple(_official_by_day(session, region.id, dates)), prepare_days=prepare,
+        official=tuple(_official_by_day(session, assessed, dates, row.name)),
+        prepare_days=prepare,
         revisions=revisions,
         sentence=rows[-1].explanation.get("sentence", "") if rows else "",
         sentence_day=rows[-1].ref_date if rows else None,
         nowcast=district_nowcast(session=session, code=code, end=last, as_of=cutoff),
         nowcast_accuracy=_nowcast_line(session, code),
         forecast_record=_forecast_record(session, region),
+        policy=row.name, policies=tuple(r.name for r in active_rulesets(session=session)),
+        assessed_area=assessed_area,
     )
 
 
@@ -314,6 +348,11 @@ class ExplanationPage:
     official_name: str | None
     revised: RevisedSince | None
     tier_now_name: str | None
+    #: the policy explained and every active policy, the lead first
+    policy: str = ""
+    policies: tuple[str, ...] = ()
+    #: the area whose assessment this is, when the policy assesses areas (else None)
+    assessed_area: str | None = None
 
 
 def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str],
@@ -335,27 +374,30 @@ def _explained_criterion(rs: Ruleset, c: CriterionState, names: list[str],
 
 def explanation_page(
     *, session: Session, code: str, day: date | None = None, as_of: datetime | None = None,
+    policy: str | None = None,
 ) -> ExplanationPage:
     """Why district ``code`` has its recommended tier on ``day`` (default: the newest day).
 
     Shows the assessment made for the day, from the data as they were then (``as_of``: the one
     in force at that cutoff instead), and what the newest run reads differently
-    (:mod:`server.services.explanations`).
+    (:mod:`server.services.explanations`). Under ``policy`` (the lead policy when None; a
+    policy of ``level: areas`` explains the district's area).
     """
     region, area = _region(session, code)
-    row = active_ruleset(session=session)
+    row = require_policy(session=session, policy=policy)
     cutoff = _cutoff(session, row.id) if row else None
     if row is None or cutoff is None:
         raise NoAssessmentError(code, day)
     rs = parsed(row)
+    assessed, assessed_area = _assessed(session, region, row)
     if day is None:
         day = session.scalar(assessments_as_of(
             select(func.max(Assessment.ref_date)).select_from(Assessment),
-            ruleset_id=row.id, cutoff=cutoff, region_id=region.id,
+            ruleset_id=row.id, cutoff=cutoff, region_id=assessed,
         ))
         if day is None:
             raise NoAssessmentError(code, None)
-    shown = explained_day(session=session, ruleset_id=row.id, region_id=region.id, day=day,
+    shown = explained_day(session=session, ruleset_id=row.id, region_id=assessed, day=day,
                           run_cutoff=cutoff, as_of=as_of)
     if shown is None:
         raise NoAssessmentError(code, day)
@@ -372,7 +414,8 @@ def explanation_page(
         ("Candidate tier", tier_label(rs, record.candidate)),
     )
     official = session.execute(
-        select(Decision).where(Decision.region_id == region.id,
+        select(Decision).where(Decision.region_id == assessed,
+                                    policy_condition(session, row.name),
                                     Decision.published_at.is_not(None),
                                     Decision.effective_date <= shown.day + timedelta(days=1))
         .order_by(Decision.effective_date.desc(), Decision.id.desc()).limit(1)
@@ -399,5 +442,7 @@ def explanation_page(
                        .name(official.tier) if official is not None else None),
         revised=revised,
         tier_now_name=None if revised is None else tier_label(rs, revised.tier_now),
+        policy=row.name, policies=tuple(r.name for r in active_rulesets(session=session)),
+        assessed_area=assessed_area,
     )
 

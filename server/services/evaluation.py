@@ -20,7 +20,7 @@ replay of a past morning) keeps the later run's reading unchanged: where it writ
 later run had read from before its cutoff, it copies that older row to the later run's cutoff.
 
 New data mean a new evaluation in one place only, :func:`evaluate_if_behind`: it compares the
-newest vintage with the newest run of the active ruleset, and every way in and every start
+newest vintage with the newest run of each active ruleset, and every way in and every start
 (``serve``, the scheduler, ``ingest``) calls it, so a process killed between its ingest and its
 evaluation leaves nothing unevaluated for long. Evaluations serialise on a lock
 (:func:`serialise_evaluations`); one that finds the run of its cutoff stored meanwhile reuses
@@ -32,9 +32,15 @@ recommended tier changes in force that day and prepare signals that started show
 events already delivered are not sent again. Failures are logged and audited and never break
 the evaluation (:func:`server.services.notify.deliver_and_record`).
 
-Activating a ruleset (:func:`activate_ruleset`, the one way every caller activates) retires every
-other active version, writes the audit log and evaluates the new one, so exactly one ruleset is
-active at any time.
+Several policies are active at once (one per pathogen, one for hospital pressure, ...). A policy
+is a ruleset ``name``; its versions replace each other. Activating a ruleset
+(:func:`activate_ruleset`, the one way every caller activates) retires the other active versions
+of the same name (and, with ``replaces``, of another policy it takes over from), writes the audit
+log and evaluates the new one, so each policy has at most one active version.
+:func:`active_rulesets` lists the active ones in a stable order: by the first time each policy
+name was stored (the lowest ruleset id of the name), so the policy the office adopted first comes
+first and is the *lead* policy (:func:`active_ruleset` without a name), which pages that show one
+policy show by default and which imported decisions belong to unless told otherwise.
 """
 
 from __future__ import annotations
@@ -56,6 +62,7 @@ import rules
 from rules import Evaluation, Ruleset, parse_ruleset
 from server.services.audit import record
 from server.services.database import Database
+from server.services.errors import ServiceError
 from server.services.forecast_record import (
     Forecaster,
     forecasts_stored,
@@ -99,12 +106,12 @@ class EvaluationRun:
 
 def store_ruleset(
     *, session: Session, path: Path, author: str = "", activate: bool = False,
-    stale_after: Mapping[str, timedelta] | None = None,
+    stale_after: Mapping[str, timedelta] | None = None, replaces: str | None = None,
 ) -> RulesetRow:
     """Store the ruleset file as a version (once per distinct text); optionally make it active.
 
-    Activation is :func:`activate_ruleset` (every other version retired, audited, evaluated
-    with ``stale_after`` as in :func:`evaluate_districts`).
+    Activation is :func:`activate_ruleset` (the other versions of its name retired, and those of
+    ``replaces``; audited, evaluated with ``stale_after`` as in :func:`evaluate_districts`).
     """
     text = path.read_text(encoding="utf-8")
     loaded = parse_ruleset(text, source=str(path),
@@ -122,38 +129,97 @@ def store_ruleset(
     session.flush()
     if activate and row.status != "active":
         activate_ruleset(session=session, row=row, actor=author or "system",
-                         stale_after=stale_after)
+                         stale_after=stale_after, replaces=replaces)
     return row
 
 
 def activate_ruleset(
     *, session: Session, row: RulesetRow, actor: str, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None,
+    stale_after: Mapping[str, timedelta] | None = None, replaces: str | None = None,
 ) -> EvaluationRun | None:
-    """Make ``row`` the one active ruleset, audit it, and evaluate it on the newest data.
+    """Make ``row`` the active version of its policy, audit it, and evaluate it on the newest data.
 
-    Every other active version is retired, whatever its name, so at most one ruleset is ever
-    active. Used by every way of activating (:func:`store_ruleset`, the policies page). Returns
-    the evaluation (None when there are no data yet); ``notify`` and ``stale_after`` as in
+    The other active versions of the same name are retired; other policies stay active, unless
+    ``replaces`` names one this ruleset takes over from (its active version is retired too, and
+    its decisions count for this policy: :func:`server.services.review_official.policy_owners`).
+    Used by every way of activating (:func:`store_ruleset`, the policies page). Returns the
+    evaluation (None when there are no data yet); ``notify`` and ``stale_after`` as in
     :func:`evaluate_districts`.
     """
+    names = {row.name} | ({replaces} if replaces else set())
     session.execute(
         update(RulesetRow)
-        .where(RulesetRow.status == "active", RulesetRow.id != row.id)
+        .where(RulesetRow.status == "active", RulesetRow.id != row.id,
+               RulesetRow.name.in_(sorted(names)))
         .values(status="retired")
     )
     row.status = "active"
     record(session=session, actor=actor, action="ruleset.activate",
-           subject=f"{row.name} {row.version}", details={"sha256": row.sha256})
+           subject=f"{row.name} {row.version}",
+           details={"sha256": row.sha256, "policy": row.name,
+                    **({"replaces": replaces} if replaces else {})})
     session.flush()
     return evaluate_districts(session=session, ruleset_row=row, notify=notify,
                               stale_after=stale_after)
 
 
-def active_ruleset(*, session: Session) -> RulesetRow | None:
-    return session.scalar(
-        select(RulesetRow).where(RulesetRow.status == "active").order_by(RulesetRow.id.desc())
-    )
+def retire_ruleset(*, session: Session, row: RulesetRow, actor: str) -> None:
+    """Stop running an active policy: its version is retired (audited as ``ruleset.retire``);
+    its assessments and decisions stay and count for no other policy
+    (:func:`server.services.review_official.policy_owners`)."""
+    if row.status != "active":
+        return
+    row.status = "retired"
+    record(session=session, actor=actor, action="ruleset.retire",
+           subject=f"{row.name} {row.version}", details={"sha256": row.sha256, "policy": row.name})
+    session.flush()
+
+
+def active_rulesets(*, session: Session) -> list[RulesetRow]:
+    """Every active ruleset (one per policy name), the lead policy first.
+
+    The order is stable: by the first time each policy's name was stored (lowest ruleset id of
+    the name), so a new version of a policy keeps its place."""
+    rows = list(session.scalars(select(RulesetRow).where(RulesetRow.status == "active")))
+    if len(rows) < 2:
+        return rows
+    first = dict(session.execute(
+        select(RulesetRow.name, func.min(RulesetRow.id))
+        .where(RulesetRow.name.in_(sorted({r.name for r in rows})))
+        .group_by(RulesetRow.name)
+    ).all())
+    return sorted(rows, key=lambda r: (first[r.name], r.id))
+
+
+def active_ruleset(*, session: Session, policy: str | None = None) -> RulesetRow | None:
+    """The active ruleset of ``policy`` (a ruleset name), or the lead policy's when None
+    (the first of :func:`active_rulesets`); None when there is none."""
+    if policy is not None:
+        return session.scalar(
+            select(RulesetRow).where(RulesetRow.status == "active", RulesetRow.name == policy)
+            .order_by(RulesetRow.id.desc()).limit(1)
+        )
+    rows = active_rulesets(session=session)
+    return rows[0] if rows else None
+
+
+class InactivePolicyError(ServiceError, LookupError):
+    """A policy name that is not the name of an active ruleset (pages answer 404)."""
+
+    def __init__(self, policy: str, active: Sequence[str]) -> None:
+        self.policy = policy
+        choices = ", ".join(active) or "none is active"
+        super().__init__(f"policy: {policy!r} is not an active policy (active: {choices})")
+
+
+def require_policy(*, session: Session, policy: str | None) -> RulesetRow | None:
+    """The active ruleset of ``policy`` (the lead's when None; None when nothing is active).
+
+    Raises :class:`InactivePolicyError` for a name that is not active."""
+    row = active_ruleset(session=session, policy=policy)
+    if row is None and policy is not None:
+        raise InactivePolicyError(policy, [r.name for r in active_rulesets(session=session)])
+    return row
 
 
 def newest_cutoff(*, session: Session) -> datetime | None:
@@ -272,53 +338,65 @@ def serialise_evaluations(session: Session) -> None:
         connection.exec_driver_sql(f"PRAGMA busy_timeout = {before}")
 
 
-def evaluation_behind(*, session: Session) -> tuple[RulesetRow, datetime] | None:
-    """The active ruleset and the newest data cutoff when data newer than the ruleset's newest
-    evaluation are stored (None: no active ruleset, no data, or evaluated up to the newest
-    vintage).
+def policies_behind(*, session: Session) -> tuple[list[RulesetRow], datetime | None]:
+    """The active rulesets (in :func:`active_rulesets` order) whose newest evaluation is older
+    than the newest data, and the newest data cutoff (None: no data).
 
     Compares the newest vintage's ``received_at`` (the default cutoff) with the newest
-    ``evaluation_run`` cutoff of the active ruleset. Vintages taken in without an explicit time
+    ``evaluation_run`` cutoff of each active ruleset. Vintages taken in without an explicit time
     are stamped in commit order (:func:`server.services.ingest.ingest_payload`), so a vintage
     committed after a run always has a later ``received_at`` than that run's cutoff.
     """
-    row = active_ruleset(session=session)
-    if row is None:
-        return None
     newest = newest_cutoff(session=session)
     if newest is None:
-        return None
-    run = newest_run_of(session=session, ruleset_id=row.id)
-    if run is not None and run.data_cutoff >= newest:
-        return None
-    return row, newest
+        return [], None
+    behind = []
+    for row in active_rulesets(session=session):
+        run = newest_run_of(session=session, ruleset_id=row.id)
+        if run is None or run.data_cutoff < newest:
+            behind.append(row)
+    return behind, newest
+
+
+def evaluation_behind(*, session: Session) -> tuple[RulesetRow, datetime] | None:
+    """The first active ruleset behind the newest data and that cutoff (None: no active
+    ruleset, no data, or every active ruleset evaluated up to the newest vintage);
+    :func:`policies_behind` lists them all."""
+    rows, newest = policies_behind(session=session)
+    return None if not rows or newest is None else (rows[0], newest)
 
 
 def evaluate_if_behind(
     db: Database, *, notify: NotifyConfig | None = None,
     stale_after: Mapping[str, timedelta] | None = None, forecaster: Forecaster | None = None,
+    runs: list[EvaluationRun] | None = None,
 ) -> EvaluationRun | None:
-    """Evaluate the active ruleset at the newest cutoff when new data are not yet evaluated.
+    """Evaluate every active ruleset that is behind at the newest cutoff, when new data are not
+    yet evaluated (:func:`policies_behind`, all in one transaction, in policy order).
 
     The one place that decides that new data mean a new evaluation: every way in (push, upload,
     ``tierwise ingest``, scheduled feed runs) calls it after its ingest commits, and every start
     (``tierwise serve``, the scheduler's leader, ``tierwise ingest``) calls it too, so data
     landed by a process killed before its evaluation are evaluated by the next start. Runs in
     its own transaction; concurrent calls serialise (:func:`serialise_evaluations`) and the
-    later one reuses the stored run. Returns None when there is nothing to evaluate.
-    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`. After the run commits, the
+    later one reuses the stored run. Returns the first policy's run (None when there is nothing
+    to evaluate); ``runs`` collects every policy's run when given.
+    ``notify`` and ``stale_after`` as in :func:`evaluate_districts`. After the runs commit, the
     morning's forecasts are stored (:func:`store_forecasts_after_tiers`, ``forecaster``).
     """
+    done: list[EvaluationRun] = []
     with db.transaction() as session:
-        behind = evaluation_behind(session=session)
-        if behind is None:
-            return None
-        row, cutoff = behind
-        run = evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff,
-                                 notify=notify, stale_after=stale_after)
-    if run is not None:
-        store_forecasts_after_tiers(db, run.data_cutoff, forecaster=forecaster)
-    return run
+        rows, cutoff = policies_behind(session=session)
+        for row in rows:
+            run = evaluate_districts(session=session, ruleset_row=row, cutoff=cutoff,
+                                     notify=notify, stale_after=stale_after)
+            if run is not None:
+                done.append(run)
+    if runs is not None:
+        runs.extend(done)
+    if done:
+        store_forecasts_after_tiers(db, done[0].data_cutoff, forecaster=forecaster)
+    return done[0] if done else None
 
 
 def store_forecasts_after_tiers(
@@ -508,28 +586,36 @@ def newest_run_of(*, session: Session, ruleset_id: int) -> RunRow | None:
     )
 
 
-def newest_run(*, session: Session) -> tuple[RulesetRow, RunRow] | None:
-    """The active ruleset and its newest recorded evaluation run (None: none)."""
-    row = active_ruleset(session=session)
+def newest_run(
+    *, session: Session, policy: str | None = None
+) -> tuple[RulesetRow, RunRow] | None:
+    """The active ruleset of ``policy`` (the lead's when None) and its newest recorded
+    evaluation run (None: none)."""
+    row = active_ruleset(session=session, policy=policy)
     if row is None:
         return None
     run = newest_run_of(session=session, ruleset_id=row.id)
     return None if run is None else (row, run)
 
 
-def _newest_run(session: Session) -> tuple[RulesetRow, datetime, date] | None:
-    """The active ruleset, the data cutoff of its newest run and that run's last day."""
-    newest = newest_run(session=session)
+def _newest_run(
+    session: Session, policy: str | None
+) -> tuple[RulesetRow, datetime, date] | None:
+    """The policy's active ruleset, the data cutoff of its newest run and that run's last day."""
+    newest = newest_run(session=session, policy=policy)
     if newest is None:
         return None
     row, run = newest
     return row, run.data_cutoff, run.last_day
 
 
-def current_assessment_id(*, session: Session, region_id: int) -> int | None:
-    """Id of a district's current item in the review: its assessment of the last day of the
-    newest run (active ruleset), as of that run's cutoff; None when there is none."""
-    newest = _newest_run(session)
+def current_assessment_id(
+    *, session: Session, region_id: int, policy: str | None = None
+) -> int | None:
+    """Id of a district's current item in the review of ``policy`` (the lead's when None): its
+    assessment of the last day of the newest run (the policy's active ruleset), as of that
+    run's cutoff; None when there is none."""
+    newest = _newest_run(session, policy)
     if newest is None:
         return None
     row, cutoff, last_day = newest
@@ -579,7 +665,9 @@ __all__ = [
     "LatestItem",
     "LatestRun",
     "activate_ruleset",
+    "InactivePolicyError",
     "active_ruleset",
+    "active_rulesets",
     "assessments_as_of",
     "content_sha256",
     "current_assessment_id",
@@ -590,7 +678,10 @@ __all__ = [
     "newest_cutoff",
     "newest_run",
     "newest_run_of",
+    "policies_behind",
     "policies_dir",
+    "require_policy",
+    "retire_ruleset",
     "serialise_evaluations",
     "store_ruleset",
 ]

@@ -7,6 +7,8 @@ for a sparkline; the freshness of each feed; and what changed since the previous
 The assessment-derived part depends only on the active ruleset and the data cutoff of its newest
 evaluation run, so it is built once per run and kept in memory; the review part (official tiers,
 pending changes) is merged in once per state of the decisions (one query per request tells).
+The lines are the lead policy's; with several active policies, :attr:`MorningOverview.policies`
+holds every policy's tier per district (:mod:`server.services.policy_columns`).
 """
 
 from __future__ import annotations
@@ -24,10 +26,17 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.feeds.definition import FeedCatalogue
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, assessments_as_of, newest_run_of
+from server.services.evaluation import (
+    active_ruleset,
+    active_rulesets,
+    assessments_as_of,
+    newest_run_of,
+)
 from server.services.feeds import FeedStatus, feed_statuses
 from server.services.overview import DataOverview, data_overview
+from server.services.policy_columns import PolicyColumn, policy_columns
 from server.services.review import official_tiers, pending_changes
+from server.services.review_official import policy_owners
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, FeedState, Measure, Region, Vintage
@@ -172,6 +181,8 @@ class MorningOverview:
     #: changes exactly when ``data_on_hand`` does (the newest vintage id): a key for caching
     #: anything rendered from it
     data_on_hand_key: int = 0
+    #: every active policy, the lead first, when more than one is active (else empty)
+    policies: tuple[PolicyColumn, ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -214,14 +225,26 @@ def _published_changes(
         .where(Decision.published_at.is_not(None))
         .order_by(Decision.effective_date, Decision.decided_at, Decision.id)
     ).all()
-    before: dict[str, Decision] = {}
-    after: dict[str, Decision] = {}
+    # each policy's official tiers apart (a policy no longer active: the one it counts for)
+    active = [r.name for r in active_rulesets(session=session)]
+    prefix = len(active) > 1
+    owners = policy_owners(session)
+
+    def key(code: str, row: Decision) -> tuple[str, str] | None:
+        owner = row.policy if row.policy in active or not active else owners.get(row.policy)
+        return None if owner is None else (owner, code)
+
+    before: dict[tuple[str, str], Decision] = {}
+    after: dict[tuple[str, str], Decision] = {}
     for code, row in rows:
-        after[code] = row
+        k = key(code, row)
+        if k is None:  # a stopped policy's decision counts for none
+            continue
+        after[k] = row
         if row.published_at is not None and row.published_at.astimezone(UTC) <= since:
-            before[code] = row
-    changed = {code: row for code, row in after.items()
-               if code not in before or before[code].tier != row.tier}
+            before[k] = row
+    changed = {k: row for k, row in after.items()
+               if k not in before or before[k].tier != row.tier}
     scales = decision_scales(session=session, rows=[*changed.values(), *(
         before[c] for c in changed if c in before)])
 
@@ -230,10 +253,11 @@ def _published_changes(
 
     return tuple(
         Change(code=code, name=names.get(code, code), what=(
-            f"official tier published: {name(before[code])} to {name(row)}" if code in before
-            else f"official tier first published: {name(row)}"
+            (f"{policy}: " if prefix else "") + (
+                f"official tier published: {name(before[(policy, code)])} to {name(row)}"
+                if (policy, code) in before else f"official tier first published: {name(row)}")
         ))
-        for code, row in sorted(changed.items())
+        for (policy, code), row in sorted(changed.items(), key=lambda kv: (kv[0][1], kv[0][0]))
     )
 
 
@@ -255,6 +279,7 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
     if not rows:
         return ()
     scales = decision_scales(session=session, rows=[row for _code, row, _rec in rows])
+    several = len(active_rulesets(session=session)) > 1
     out = []
     for code, row, recommended in rows:
         scale = scales[row.id]
@@ -264,7 +289,8 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
         state = ("published" if row.published_at is not None
                  else "not yet published")
         out.append(Change(code=code, name=names.get(code, code), what=(
-            f"overridden to {scale.name(row.tier)} ({row.tier}){rec}, in force from "
+            (f"{row.policy}: " if several else "")
+            + f"overridden to {scale.name(row.tier)} ({row.tier}){rec}, in force from "
             f"{row.effective_date.isoformat()}, {state}: {row.reason}"
         )))
     return tuple(out)
@@ -272,7 +298,7 @@ def _overrides(session: Session, base: _Base, since: datetime | None) -> tuple[C
 
 def _review_state(
     session: Session, key: tuple[object, ...], base: _Base, since: datetime | None = None,
-    ruleset: Ruleset | None = None,
+    ruleset: Ruleset | None = None, policy: str | None = None,
 ) -> _Review:
     """The lines with official tiers and pending changes, rebuilt only when decisions or
     assessments change.
@@ -293,7 +319,7 @@ def _review_state(
             code: o for code, o in official_tiers(session=session, published_only=False).items()
             if o.published_at is None
         }
-        pending = {p.region: p for p in pending_changes(session=session)}
+        pending = {p.region: p for p in pending_changes(session=session, policy=policy)}
         lines = []
         counts: dict[int, int] = {}
         for line in base.lines:
@@ -552,13 +578,17 @@ def morning_overview(
             _CACHE[key] = base
     # publications since the previous morning's data count as changes too
     review = _review_state(session, key, base, cutoff - timedelta(days=1) if cutoff else None,
-                           ruleset)
+                           ruleset, row.name)
+    several = len(active_rulesets(session=session)) > 1
+    columns = policy_columns(session=session) if several else ()
     lines = review.lines
+    # "pending only": a change awaits review under any active policy
+    waiting = {code for c in columns for code, cell in c.cells.items() if cell.pending}
     chosen = [
         line for line in lines
         if (not query or query.lower() in line.name.lower() or query.lower() in line.code.lower())
         and (tier is None or line.recommended_tier == tier or line.official_tier == tier)
-        and (not pending_only or line.pending)
+        and (not pending_only or line.pending or line.code in waiting)
     ]
     chosen = _sort(chosen, sort)
     pages = max(1, math.ceil(len(chosen) / per_page))
@@ -571,5 +601,5 @@ def morning_overview(
         tier_names=tuple(t.name for t in ruleset.tiers), feeds=feeds,
         changes=base.changes + review.published,
         every=tuple(lines), data_on_hand=on_hand, data_on_hand_key=on_hand_key,
-        measures=measures,
+        measures=measures, policies=columns,
     )

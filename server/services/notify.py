@@ -133,19 +133,22 @@ class Event:
     previous: int | None
     signal: str | None
     sentence: str
+    #: The policy (ruleset name) the event belongs to ("" when not known).
+    policy: str = ""
 
     @property
     def key(self) -> str:
-        """``kind|region|date|tier`` (``|signal`` for a prepare signal): what makes it the same
-        notice."""
+        """``kind|region|date|tier`` (the signal for a prepare signal), then ``|policy`` when
+        known: what makes it the same notice (two policies' changes are two notices)."""
         what = self.signal if self.kind == "prepare" else str(self.tier)
-        return f"{self.kind}|{self.region}|{self.date.isoformat()}|{what}"
+        key = f"{self.kind}|{self.region}|{self.date.isoformat()}|{what}"
+        return f"{key}|{self.policy}" if self.policy else key
 
     def as_json(self) -> dict[str, Any]:
         return {
             "kind": self.kind, "region": self.region, "date": self.date.isoformat(),
             "tier": self.tier, "previous": self.previous, "signal": self.signal,
-            "sentence": self.sentence,
+            "sentence": self.sentence, "policy": self.policy,
         }
 
 
@@ -214,7 +217,8 @@ def notify_config_from(path: Path | None) -> NotifyConfig | None:
 
 
 def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
-    """Tier changes in force and prepare signals starting on one day (default: the last)."""
+    """Tier changes in force and prepare signals starting on one day (default: the last), each
+    naming the evaluated policy."""
     d = day_index % ev.dates.size
     tier = ev.tier[:, d]
     before = ev.tier[:, d - 1] if d else ev.start_in_force
@@ -226,6 +230,7 @@ def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
             Event(
                 kind="tier_change", region=ev.regions[r], date=day, tier=int(tier[r]),
                 previous=int(before[r]), signal=None, sentence=ev.explain(int(r), d).sentence,
+                policy=ev.ruleset.name,
             )
         )
     shown = ev.prepare[:, :, d]
@@ -235,7 +240,7 @@ def events_on_day(ev: Evaluation, day_index: int = -1) -> list[Event]:
         out.append(
             Event(
                 kind="prepare", region=ev.regions[r], date=day, tier=int(tier[r]), previous=None,
-                signal=sig.id,
+                signal=sig.id, policy=ev.ruleset.name,
                 sentence=signal_message(ev, int(s), int(r), d) or f"signal {sig.id} active",
             )
         )
@@ -293,7 +298,8 @@ def _email(config: NotifyConfig, recipient: Recipient, events: list[Event]) -> D
     msg["Subject"] = f"tierwise: {changes} tier change(s), {signals} prepare signal(s)"
     msg["From"] = config.smtp.sender
     msg["To"] = recipient.email or ""
-    lines = [f"{e.date} {e.region}: {e.sentence}" for e in events]
+    lines = [f"{e.date} {e.region}: {f'[{e.policy}] ' if e.policy else ''}{e.sentence}"
+             for e in events]
     msg.set_content("\n".join(lines) + "\n")
     try:
         with smtplib.SMTP(config.smtp.host, config.smtp.port, timeout=config.smtp.timeout) as s:

@@ -32,7 +32,8 @@ from sqlalchemy.orm import Session
 
 from server.services.audit import record
 from server.services.errors import InputFileError
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import require_policy
+from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.users import name_key
 from server.store.models import Decision, Region, User
@@ -162,7 +163,7 @@ def read_official_history(path: Path | str, text: str | None = None) -> list[Off
 
 def import_official_history(
     *, session: Session, records: Iterable[OfficialRecord], source: str, actor: str,
-    published: bool = True,
+    published: bool = True, policy: str | None = None,
 ) -> ImportResult:
     """Store ``records`` as decisions of kind :data:`KIND`; all of them or, on an error, none.
 
@@ -179,14 +180,19 @@ def import_official_history(
         Who runs the import (audit).
     published : bool, default True
         Mark imported decisions published at their decision time (they were the public tiers).
+    policy : str, optional
+        The active policy (ruleset name) the decisions belong to; the lead policy when None.
 
     Raises
     ------
     InputFileError
         Unknown district, tier out of range, unknown or inactive staff account.
+    InactivePolicyError
+        ``policy`` is not an active policy.
     """
     items = list(records)
-    ruleset_row = active_ruleset(session=session)
+    ruleset_row = require_policy(session=session, policy=policy)
+    name = "" if ruleset_row is None else ruleset_row.name
     top = None if ruleset_row is None else parsed(ruleset_row).top_tier
     regions = dict(session.execute(
         select(Region.code, Region.id).where(Region.level == "district")
@@ -213,7 +219,8 @@ def import_official_history(
         (rid, day, tier, reason)
         for rid, day, tier, reason in session.execute(
             select(Decision.region_id, Decision.effective_date, Decision.tier, Decision.reason)
-            .where(Decision.region_id.in_([regions[i.region] for i in items] or [-1]))
+            .where(Decision.region_id.in_([regions[i.region] for i in items] or [-1]),
+                   policy_condition(session, name or None))
         )
     }
     new = [
@@ -222,7 +229,7 @@ def import_official_history(
     ]
     for item in new:
         session.add(Decision(
-            region_id=regions[item.region], assessment_id=None,
+            policy=name, region_id=regions[item.region], assessment_id=None,
             effective_date=item.effective_date, tier=item.tier, kind=KIND, reason=item.reason,
             decided_by=users.get(name_key(item.decided_by)) if item.decided_by else None,
             decided_at=item.decided_at, published_at=item.decided_at if published else None,

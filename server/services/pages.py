@@ -29,8 +29,9 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.outlook import Outlook, district_outlook
+from server.services.policy_columns import assessed_regions, policy_level
 from server.services.review_official import OfficialTier, official_tiers
 from server.services.ruleset_cache import parsed
 from server.store import read_dense
@@ -77,6 +78,21 @@ class TierInfo:
 
 
 @dataclass(frozen=True, kw_only=True)
+class PolicyTier:
+    """A district's published tier under one more active policy than the lead one: the policy's
+    name and description, the tier's name and meaning in the page's language, since when, and
+    the area whose tier it is under a policy that assesses areas."""
+
+    policy: str
+    description: str
+    tier: int
+    tier_name: str
+    public_text: str
+    since: date | None
+    area: str | None = None
+
+
+@dataclass(frozen=True, kw_only=True)
 class PublicMapEntry:
     code: str
     name: str
@@ -85,6 +101,8 @@ class PublicMapEntry:
     tier_name: str | None
     since: date | None
     geometry: dict[str, Any] | None
+    #: the published tiers of the other active policies (lead policy: the fields above)
+    policies: tuple[PolicyTier, ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -93,6 +111,8 @@ class PublicMap:
     tiers: tuple[TierInfo, ...]
     last_published: datetime | None
     stamp: str
+    #: the other active policies with a published tier somewhere, in policy order
+    policies: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -126,6 +146,8 @@ class PublicDistrictPage:
     threshold: int
     stamp: str
     outlook: Outlook | None = None
+    #: the published tiers of the other active policies (lead policy: the fields above)
+    policies: tuple[PolicyTier, ...] = ()
 
     @property
     def tier_info(self) -> TierInfo | None:
@@ -154,13 +176,13 @@ def public_stamp(*, session: Session) -> PublicStamp:
     received = session.scalar(
         select(type_coerce(func.max(Vintage.received_at), UTCDateTime()))
     )
-    row = active_ruleset(session=session)
+    rows = active_rulesets(session=session)
     activated = session.scalar(
         select(type_coerce(func.max(AuditEntry.at), UTCDateTime()))
         .where(AuditEntry.action == "ruleset.activate")
-    ) if row is not None else None
+    ) if rows else None
     stamp = published.isoformat() if published else "-"
-    ruleset = f"{row.id}:{row.sha256[:16]}" if row is not None else "-"
+    ruleset = ",".join(f"{r.id}:{r.sha256[:16]}" for r in rows) or "-"
     changed = max((t for t in (published, received, activated) if t is not None), default=None)
     return PublicStamp(key=f"{stamp}|{n_published}|{newest or 0}|{ruleset}",
                        last_modified=changed)
@@ -192,6 +214,33 @@ def _tier_text(
     return (info.name, info.public) if info is not None else (off.tier_name, off.public_text)
 
 
+def other_policy_tiers(
+    *, session: Session, lang: str | None = None
+) -> dict[str, tuple[PolicyTier, ...]]:
+    """Per district code, its published tier under each active policy after the lead one (in
+    policy order); a policy of ``level: areas`` gives a district its parent area's tier."""
+    rows = active_rulesets(session=session)[1:]
+    if not rows:
+        return {}
+    out: dict[str, list[PolicyTier]] = {}
+    for row in rows:
+        ruleset = parsed(row)
+        tiers = _tiers(ruleset, lang)
+        published = official_tiers(session=session, published_only=True, policy=row.name)
+        level = policy_level(ruleset)
+        for code, region in assessed_regions(session=session, level=level).items():
+            off = published.get(region.code)
+            if off is None:
+                continue
+            name, text = _tier_text(session, row.id, tiers, off, lang)
+            out.setdefault(code, []).append(PolicyTier(
+                policy=row.name, description=ruleset.description.strip(), tier=off.tier,
+                tier_name=name or off.tier_name, public_text=text or "", since=off.since,
+                area=None if level == "districts" else region.name,
+            ))
+    return {code: tuple(found) for code, found in out.items()}
+
+
 def _districts(session: Session) -> list[tuple[Region, str | None]]:
     parent = aliased(Region)
     query = (
@@ -211,6 +260,7 @@ def public_map(*, session: Session, lang: str | None = None) -> PublicMap:
     active = active_ruleset(session=session)
     active_id = None if active is None else active.id
     tiers = _tiers(None if active is None else parsed(active), lang)
+    others = other_policy_tiers(session=session, lang=lang)
     entries = []
     for region, area in _districts(session):
         off = published.get(region.code)
@@ -220,12 +270,15 @@ def public_map(*, session: Session, lang: str | None = None) -> PublicMap:
                 tier=off.tier if off else None,
                 tier_name=_tier_text(session, active_id, tiers, off, lang)[0],
                 since=off.since if off else None, geometry=region.geometry,
+                policies=others.get(region.code, ()),
             )
         )
     last = max((o.published_at for o in published.values() if o.published_at), default=None)
+    named = {t.policy for found in others.values() for t in found}
     return PublicMap(
         districts=tuple(entries), tiers=tiers, last_published=last,
         stamp=public_stamp(session=session).key,
+        policies=tuple(r.name for r in active_rulesets(session=session)[1:] if r.name in named),
     )
 
 
@@ -322,6 +375,7 @@ def public_district_page(
         published_at=off.published_at if off else None, data_until=data_until, weeks=weeks,
         tiers=tiers, threshold=threshold, stamp=public_stamp(session=session).key,
         outlook=district_outlook(session=session, code=code, official=off, lang=lang),
+        policies=other_policy_tiers(session=session, lang=lang).get(code, ()),
     )
 
 

@@ -2,7 +2,8 @@
 
 A draft is validated by the rules engine's loader, whose errors name the line, column and key
 path (``draft.yaml:23:7: criteria[1].enter[2]: ...``); a valid draft is stored as a ruleset
-version with status ``draft``; an admin activates it (the previous active version is retired).
+version with status ``draft``; an admin activates it (the active version of the same policy
+name is retired; other policies stay active).
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ from sqlalchemy.orm import Session
 from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import activate_ruleset
+from server.services.evaluation import activate_ruleset, active_ruleset, retire_ruleset
 from server.services.indicator_kinds import indicator_check, store_measures
 from server.services.notify import NotifyConfig
 from server.services.ruleset_cache import parsed
@@ -121,11 +122,10 @@ def _row(rs: Ruleset, cid: str, th: object, note: str) -> ThresholdRow:
 
 
 def policy_view(*, session: Session, ruleset_id: int | None = None) -> PolicyView | None:
-    """The chosen version (default: the active one) as tiers, a thresholds table and timing."""
+    """The chosen version (default: the lead active policy's) as tiers, a thresholds table and
+    timing."""
     if ruleset_id is None:
-        row = session.scalar(
-            select(RulesetRow).where(RulesetRow.status == "active").order_by(RulesetRow.id.desc())
-        )
+        row = active_ruleset(session=session)
         if row is None:
             return None
     else:
@@ -305,7 +305,8 @@ def activate_version(
     *, session: Session, ruleset_id: int, actor: str, notify: NotifyConfig | None = None,
     stale_after: Mapping[str, timedelta] | None = None,
 ) -> None:
-    """Make a version active (every other active one is retired) and evaluate it on the newest
+    """Make a version active (the active version of its name is retired; other policies stay
+    active) and evaluate it on the newest
     data (:func:`server.services.evaluation.activate_ruleset`; ``stale_after``: the feeds'
     staleness limits)."""
     row = session.get(RulesetRow, ruleset_id)
@@ -313,3 +314,12 @@ def activate_version(
         raise UnknownPolicyError(ruleset_id)
     activate_ruleset(session=session, row=row, actor=actor, notify=notify,
                      stale_after=stale_after)
+
+
+def retire_version(*, session: Session, ruleset_id: int, actor: str) -> None:
+    """Stop running an active policy version (:func:`server.services.evaluation.retire_ruleset`);
+    the other active policies go on."""
+    row = session.get(RulesetRow, ruleset_id)
+    if row is None:
+        raise UnknownPolicyError(ruleset_id)
+    retire_ruleset(session=session, row=row, actor=actor)

@@ -5,7 +5,8 @@ Only what the public pages show is here: published tiers (never a recommendation
 unpublished decision, never a reason or a user name) and weekly case counts with small counts
 suppressed (:func:`server.services.pages.suppress_count`). Tier names are the active policy's, in
 the page's language; a tier published under an earlier policy with more tiers keeps its number
-and reads "Tier N".
+and reads "Tier N". With several active policies every table row and feed entry names its policy
+(the ``policy`` column; decisions of a policy no longer active count for the lead one).
 """
 
 from __future__ import annotations
@@ -18,13 +19,14 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.pages import (
     REPORTING_DELAY_DAYS,
     UnknownDistrictError,
     public_map,
     weekly_figures,
 )
+from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.store import read_dense
 from server.store.models import Decision, Measure, Observation, Region
@@ -74,6 +76,9 @@ DICTIONARY: dict[str, tuple[DataField, ...]] = {
                   meaning="Day from which the tier is in force."),
         DataField(name="published_at", type="date-time (ISO 8601, UTC)",
                   meaning="When the health authority published the tier."),
+        DataField(name="policy", type="text",
+                  meaning="The alert policy the tier belongs to (one row per district and "
+                          "policy; the lead policy's rows first)."),
     ),
     "tier_changes": (
         DataField(name="code", type="text", meaning="District code."),
@@ -86,6 +91,7 @@ DICTIONARY: dict[str, tuple[DataField, ...]] = {
                   meaning="The published tier before the change; empty for the first one."),
         DataField(name="published_at", type="date-time (ISO 8601, UTC)",
                   meaning="When the change was published."),
+        DataField(name="policy", type="text", meaning="The alert policy the change belongs to."),
     ),
     "weekly_cases": (
         DataField(name="code", type="text", meaning="District code."),
@@ -116,10 +122,12 @@ class PublishedChange:
     previous_name: str | None
     effective_date: date
     published_at: datetime
+    #: the policy (ruleset name) the change belongs to
+    policy: str = ""
 
 
-def _ruleset(session: Session) -> Ruleset | None:
-    row = active_ruleset(session=session)
+def _ruleset(session: Session, policy: str | None = None) -> Ruleset | None:
+    row = active_ruleset(session=session, policy=policy)
     return None if row is None else parsed(row)
 
 
@@ -136,18 +144,31 @@ def _namer(ruleset: Ruleset | None, lang: str | None) -> Callable[[int], str]:
 def published_changes(
     *, session: Session, code: str | None = None, lang: str | None = None,
 ) -> list[PublishedChange]:
-    """Every change of a published tier, newest first (of one district with ``code``)."""
-    name = _namer(_ruleset(session), lang)
+    """Every change of a published tier, newest first (of one district with ``code``), of
+    every active policy (each district's changes counted within its policy)."""
+    if code is not None and session.scalar(
+            select(Region.id).where(Region.code == code, Region.level == "district")) is None:
+        raise UnknownDistrictError(code)
+    names = [r.name for r in active_rulesets(session=session)] or [None]
+    out: list[PublishedChange] = []
+    for policy in names:
+        out += _changes_of(session, code, lang, policy)
+    out.sort(key=lambda c: (c.published_at, c.effective_date, c.decision_id), reverse=True)
+    return out
+
+
+def _changes_of(
+    session: Session, code: str | None, lang: str | None, policy: str | None
+) -> list[PublishedChange]:
+    name = _namer(_ruleset(session, policy), lang)
     query = (
         select(Decision, Region.code, Region.name)
         .join(Region, Region.id == Decision.region_id)
-        .where(Decision.published_at.is_not(None), Region.level == "district")
+        .where(Decision.published_at.is_not(None), Region.level == "district",
+               policy_condition(session, policy))
         .order_by(Decision.region_id, Decision.effective_date, Decision.decided_at, Decision.id)
     )
     if code is not None:
-        if session.scalar(select(Region.id).where(Region.code == code,
-                                                  Region.level == "district")) is None:
-            raise UnknownDistrictError(code)
         query = query.where(Region.code == code)
     out: list[PublishedChange] = []
     last: dict[str, int] = {}
@@ -161,8 +182,8 @@ def published_changes(
             decision_id=row.id, code=rcode, name=rname, tier=row.tier, tier_name=name(row.tier),
             previous_tier=before, previous_name=None if before is None else name(before),
             effective_date=row.effective_date, published_at=row.published_at,
+            policy=policy or row.policy,
         ))
-    out.sort(key=lambda c: (c.published_at, c.effective_date, c.decision_id), reverse=True)
     return out
 
 
@@ -191,7 +212,7 @@ def tier_change_table(*, session: Session, lang: str | None = None) -> DownloadT
     changes = published_changes(session=session, lang=lang)
     rows = tuple(
         (c.code, c.name, c.effective_date.isoformat(), c.tier, c.tier_name, c.previous_tier,
-         c.published_at.isoformat())
+         c.published_at.isoformat(), c.policy)
         for c in changes
     )
     return DownloadTable(name="tier_changes", columns=_columns("tier_changes"), rows=rows)
@@ -199,13 +220,26 @@ def tier_change_table(*, session: Session, lang: str | None = None) -> DownloadT
 
 def published_tier_table(*, session: Session, lang: str | None = None) -> DownloadTable:
     data = public_map(session=session, lang=lang)
-    published = {c.code: c for c in published_changes(session=session, lang=lang)}
+    lead = active_ruleset(session=session)
+    lead_name = "" if lead is None else lead.name
+    published: dict[tuple[str, str], PublishedChange] = {}
+    for c in published_changes(session=session, lang=lang):  # newest first: keep the newest
+        published.setdefault((c.policy, c.code), c)
     rows = []
     for d in data.districts:
-        change = published.get(d.code)
+        change = published.get((lead_name, d.code))
         rows.append((d.code, d.name, d.area, d.tier, d.tier_name,
                      d.since.isoformat() if d.since else None,
-                     change.published_at.isoformat() if change else None))
+                     change.published_at.isoformat() if change else None, lead_name))
+    for policy in data.policies:
+        for d in data.districts:
+            t = next((t for t in d.policies if t.policy == policy), None)
+            if t is None:
+                continue
+            change = published.get((policy, d.code))
+            rows.append((d.code, d.name, d.area, t.tier, t.tier_name,
+                         t.since.isoformat() if t.since else None,
+                         change.published_at.isoformat() if change else None, policy))
     return DownloadTable(name="tiers", columns=_columns("tiers"), rows=tuple(rows))
 
 

@@ -7,9 +7,9 @@ from dataclasses import dataclass
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from server.services.evaluation import active_ruleset
+from server.services.evaluation import active_rulesets, require_policy
 from server.services.review_cards import ReviewCard, review_cards
-from server.services.review_official import DecisionRecord, decision_history
+from server.services.review_official import DecisionRecord, decision_history, policy_condition
 from server.services.review_pending import PendingChange, pending_changes
 from server.services.review_publication import has_something_to_publish
 from server.services.ruleset_cache import parsed
@@ -42,19 +42,34 @@ class ReviewQueue:
     history_region: str | None
     history_regions: tuple[tuple[str, str], ...]
     tier_names: tuple[str, ...]
+    #: every active policy (lead first) with its tier names; the pending changes carry theirs
+    policies: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    #: the policy the page is restricted to (None: every policy)
+    policy: str | None = None
+    #: per policy: whether publishing it alone would publish anything
+    publishable_policies: tuple[str, ...] = ()
+
+    def tier_names_of(self, policy: str) -> tuple[str, ...]:
+        """The tier names of ``policy`` (the lead's when it is not active)."""
+        return dict(self.policies).get(policy, self.tier_names)
 
 
 def review_queue(
     *, session: Session, show_all: bool = False, region: str | None = None,
-    history_limit: int = HISTORY_LIMIT,
+    history_limit: int = HISTORY_LIMIT, policy: str | None = None,
 ) -> ReviewQueue:
-    """What the review page shows (see :class:`ReviewQueue`); an unknown ``region`` filters to
-    nothing."""
-    row = active_ruleset(session=session)
+    """What the review page shows (see :class:`ReviewQueue`), of one active ``policy`` or of
+    all; an unknown ``region`` filters to nothing.
+
+    Raises :class:`server.services.evaluation.InactivePolicyError` for a policy not active."""
+    row = require_policy(session=session, policy=policy)
     names = tuple(t.name for t in parsed(row).tiers) if row is not None else ()
-    unpublished = tuple(decision_history(session=session, unpublished_only=True))
+    actives = active_rulesets(session=session)
+    policies = tuple((r.name, tuple(t.name for t in parsed(r).tiers)) for r in actives)
+    unpublished = tuple(decision_history(session=session, unpublished_only=True, policy=policy))
     history = decision_history(
-        session=session, region=region or None, limit=None if show_all else history_limit
+        session=session, region=region or None, limit=None if show_all else history_limit,
+        policy=policy,
     )
     regions = tuple(
         (code, name) for code, name in session.execute(
@@ -64,14 +79,21 @@ def review_queue(
         )
     )
     count = select(func.count()).select_from(DecisionRow)
+    if policy is not None:
+        count = count.where(policy_condition(session, policy))
     if region:
         count = count.join(Region, Region.id == DecisionRow.region_id).where(Region.code == region)
     total = session.scalar(count) or 0
-    pending = tuple(pending_changes(session=session))
+    pending = tuple(pending_changes(session=session, policy=policy))
+    several = len(actives) > 1
     return ReviewQueue(
         pending=pending, cards=review_cards(session=session, pending=pending),
         unpublished=unpublished,
-        publishable=has_something_to_publish(session=session),
+        publishable=has_something_to_publish(session=session, policy=policy),
         history=tuple(history), history_total=total, history_all=show_all,
         history_region=region or None, history_regions=regions, tier_names=names,
+        policies=policies, policy=policy,
+        publishable_policies=tuple(
+            r.name for r in actives
+            if several and has_something_to_publish(session=session, policy=r.name)),
     )

@@ -57,8 +57,20 @@ def _change_row(rows: list[Assessment], tier: int) -> tuple[Assessment, bool]:
 
 
 def review_cards(*, session: Session, pending: Sequence[PendingChange]) -> tuple[ReviewCard, ...]:
-    """A card for each of ``pending`` (same order): the change, its day and its reasons."""
-    newest = newest_run(session=session)
+    """A card for each of ``pending`` (same order): the change, its day and its reasons, each
+    read under its own policy's newest run."""
+    groups: dict[str, list[PendingChange]] = {}
+    for p in pending:
+        groups.setdefault(p.policy, []).append(p)
+    made = {id(card.pending): card for policy, group in groups.items()
+            for card in _cards(session, group, policy or None)}
+    return tuple(made[id(p)] for p in pending if id(p) in made)
+
+
+def _cards(
+    session: Session, pending: Sequence[PendingChange], policy: str | None
+) -> tuple[ReviewCard, ...]:
+    newest = newest_run(session=session, policy=policy)
     if newest is None or not pending:
         return ()
     row, run = newest

@@ -20,6 +20,9 @@ superseded by a newer run, a retired ruleset) is refused. Decisions keep pointin
 which is never deleted. The official tier is the decision that
 takes effect last (ties: the one taken last), so a late decision about an earlier day never wins.
 
+Each active policy is decided on its own: a decision belongs to the policy (ruleset name) of the
+assessment it answers, and is compared with that policy's official tier.
+
 A recommendation of *insufficient data* (tier -1: a gate failed) is a pending change too, since
 the data no longer support the official tier. Confirming it keeps the official tier unchanged
 (the decision records that tier, the reason, and the -1 it answered), which settles the district
@@ -43,12 +46,13 @@ from server.services.evaluation import (
     active_ruleset,
     current_assessment_id,
 )
-from server.services.review_official import RANK
+from server.services.review_official import RANK, policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.services.users import may
 from server.store.models import Assessment, Region, User
 from server.store.models import Decision as DecisionRow
+from server.store.models import Ruleset as RulesetRow
 
 
 class ReviewError(ServiceError, ValueError):
@@ -129,11 +133,22 @@ class Decision:
     effective_date: date
     assessment_id: int | None
     published_at: datetime | None
+    #: The policy (ruleset name) the decision belongs to.
+    policy: str = ""
 
 
-def active_policy(session: Session) -> Ruleset | None:
-    row = active_ruleset(session=session)
+def active_policy(session: Session, policy: str | None = None) -> Ruleset | None:
+    """The parsed active ruleset of ``policy`` (the lead policy's when None)."""
+    row = active_ruleset(session=session, policy=policy)
     return None if row is None else parsed(row)
+
+
+def policy_of_assessment(*, session: Session, assessment_id: int) -> str:
+    """The policy (ruleset name) an assessment belongs to ("" when there is no such row)."""
+    return session.scalar(
+        select(RulesetRow.name).join(Assessment, Assessment.ruleset_id == RulesetRow.id)
+        .where(Assessment.id == assessment_id)
+    ) or ""
 
 
 def effective_from(
@@ -166,15 +181,16 @@ def _as_decision(row: DecisionRow, code: str, user: str, ruleset: Ruleset | None
         id=row.id, region=code, tier=row.tier, tier_name=tier_name(ruleset, row.tier),
         kind=row.kind, reason=row.reason, user=user, decided_at=row.decided_at,
         effective_date=row.effective_date, assessment_id=row.assessment_id,
-        published_at=row.published_at,
+        published_at=row.published_at, policy=row.policy,
     )
 
 
-def _official_of(session: Session, region_id: int) -> DecisionRow | None:
-    """The region's top-ranked decision (published or not), None when never decided."""
+def _official_of(session: Session, region_id: int, policy: str) -> DecisionRow | None:
+    """The region's top-ranked decision of ``policy`` (published or not), None when never
+    decided."""
     return session.scalar(
         select(DecisionRow)
-        .where(DecisionRow.region_id == region_id)
+        .where(DecisionRow.region_id == region_id, policy_condition(session, policy))
         .order_by(*(c.desc() for c in RANK))
         .limit(1)
     )
@@ -221,7 +237,7 @@ def _check_seen(
     )
 
 
-def _current_for(session: Session, posted: Assessment) -> Assessment:
+def _current_for(session: Session, posted: Assessment, policy: str) -> Assessment:
     """The district's current assessment standing in for ``posted`` (a form opened earlier).
 
     New data may re-evaluate a district while an approver types a reason. When the current
@@ -234,7 +250,8 @@ def _current_for(session: Session, posted: Assessment) -> Assessment:
         When the recommendation changed meanwhile (another tier or another ruleset), or the
         district has no current assessment.
     """
-    current_id = current_assessment_id(session=session, region_id=posted.region_id)
+    current_id = current_assessment_id(session=session, region_id=posted.region_id,
+                                       policy=policy)
     if current_id == posted.id:
         return posted
     current = None if current_id is None else session.get(Assessment, current_id)
@@ -245,7 +262,7 @@ def _current_for(session: Session, posted: Assessment) -> Assessment:
     ):
         return current
     code = session.scalar(select(Region.code).where(Region.id == posted.region_id)) or ""
-    ruleset = active_policy(session)
+    ruleset = active_policy(session, policy)
     raise RecommendationChangedError(
         posted_id=posted.id, region=code, current_id=current_id,
         tier=None if current is None else current.recommended_tier,
@@ -291,12 +308,14 @@ def decide(
     assessment = session.get(Assessment, assessment_id)
     if assessment is None:
         raise ReviewError("assessment_id", f"no assessment {assessment_id}")
+    policy = session.scalar(
+        select(RulesetRow.name).where(RulesetRow.id == assessment.ruleset_id)) or ""
     lock_district(session, assessment.region_id)
-    official = _official_of(session, assessment.region_id)
+    official = _official_of(session, assessment.region_id, policy)
     _check_seen(session, assessment.region_id, official, official_tier, official_decision_id)
     posted = assessment
-    assessment = _current_for(session, posted)
-    ruleset = active_policy(session)
+    assessment = _current_for(session, posted, policy)
+    ruleset = active_policy(session, policy)
     top = ruleset.top_tier if ruleset is not None else None
     kept: int | None = None
     if accept and assessment.recommended_tier < 0:
@@ -320,7 +339,7 @@ def decide(
         chosen, kind = tier, "overridden"
     now = now or datetime.now(UTC)
     row = DecisionRow(
-        region_id=assessment.region_id, assessment_id=assessment.id,
+        policy=policy, region_id=assessment.region_id, assessment_id=assessment.id,
         effective_date=effective_from(assessment.ref_date, now, ruleset, time_zone),
         tier=chosen, kind=kind,
         reason=reason.strip(), decided_by=approver.id, decided_at=now, published_at=None,
@@ -332,6 +351,7 @@ def decide(
         session=session, actor=user, action=f"decision.{kind}", subject=code,
         details={
             "decision_id": row.id, "assessment_id": assessment.id, "tier": chosen,
+            "policy": policy,
             "seen_official_tier": official_tier, "seen_official_decision_id": official_decision_id,
             **({"posted_assessment_id": posted.id} if posted.id != assessment.id else {}),
             "recommended_tier": assessment.recommended_tier, "reason": row.reason,

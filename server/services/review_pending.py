@@ -3,7 +3,8 @@
 A *pending change* is a district whose newest recommended tier (active ruleset, newest
 evaluation run, last day) differs from its official tier and that no one has decided on since
 the recommendation took its current value (:func:`current_run` gives each district's current
-recommendation and the day it took that value).
+recommendation and the day it took that value). Each active policy has its own pending changes,
+against its own official tiers (:func:`server.services.review_official.policy_condition`).
 
 A recommendation of *insufficient data* (tier -1: a gate failed) is a pending change too, since
 the data no longer support the official tier (:func:`server.services.review_decisions.decide`
@@ -22,6 +23,7 @@ from rules import Ruleset
 from server.services.evaluation import (
     LatestItem,
     LatestRun,
+    active_rulesets,
     assessments_as_of,
     newest_run,
 )
@@ -51,6 +53,8 @@ class PendingChange:
     #: How the active policy takes over an official tier decided under another ruleset
     #: (empty when it was decided under the active one).
     official_note: str = ""
+    #: The policy (ruleset name) the change belongs to.
+    policy: str = ""
 
 
 def _takeover(scale: Scale, tier: int, active: Ruleset, active_id: int, active_label: str) -> str:
@@ -64,9 +68,10 @@ def _takeover(scale: Scale, tier: int, active: Ruleset, active_id: int, active_l
     )
 
 
-def current_run(*, session: Session) -> LatestRun | None:
-    """Each district's current recommendation under the active ruleset's newest run, and the
-    day it took that value, without reading every day of the history.
+def current_run(*, session: Session, policy: str | None = None) -> LatestRun | None:
+    """Each district's current recommendation under the newest run of ``policy``'s active
+    ruleset (the lead policy's when None), and the day it took that value, without reading
+    every day of the history.
 
     A district's current recommendation starts on its newest *transition* in force at the run:
     the newest row (greatest day, as of the run's cutoff) whose ``previous_tier`` differs from
@@ -76,7 +81,7 @@ def current_run(*, session: Session) -> LatestRun | None:
     district's first assessed day. Transitions are few, and checking that one is still in force
     (no newer row of its day up to the cutoff) is one index probe each.
     """
-    newest = newest_run(session=session)
+    newest = newest_run(session=session, policy=policy)
     if newest is None:
         return None
     row, run = newest
@@ -124,16 +129,23 @@ def current_run(*, session: Session) -> LatestRun | None:
     )
 
 
-def pending_changes(*, session: Session) -> list[PendingChange]:
-    """Districts whose newest recommendation differs from their latest decision, by code.
+def pending_changes(*, session: Session, policy: str | None = None) -> list[PendingChange]:
+    """Districts whose newest recommendation differs from their latest decision: of ``policy``
+    when given, else of every active policy (in :func:`active_rulesets` order), each by code.
 
     A district stays settled after a decision on a recommendation until the recommendation
     changes again (an override that keeps the tier is not asked again every day).
     """
-    latest = current_run(session=session)
+    names = [policy] if policy is not None else [
+        r.name for r in active_rulesets(session=session)]
+    return [change for name in names for change in _pending_of(session, name)]
+
+
+def _pending_of(session: Session, policy: str) -> list[PendingChange]:
+    latest = current_run(session=session, policy=policy)
     if latest is None:
         return []
-    decisions = decisions_by_region(session, published_only=False)
+    decisions = decisions_by_region(session, published_only=False, policy=policy)
     answered = _answered_assessments(session, decisions)
     scales = decision_scales(session=session, rows=[rows[-1] for rows in decisions.values()])
     active_row = latest.ruleset_row
@@ -164,6 +176,7 @@ def pending_changes(*, session: Session) -> list[PendingChange]:
                 official_decision_id=None if last is None else last.id,
                 official_note="" if official is None or scale is None else _takeover(
                     scale, official, latest.ruleset, active_row.id, active_label),
+                policy=active_row.name,
             )
         )
     return sorted(out, key=lambda p: p.region)

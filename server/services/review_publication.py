@@ -1,8 +1,8 @@
 """Use case: publish the decisions taken, so the public pages show them.
 
-:func:`publish` makes every unpublished decision visible to the public. Districts with no
-decision yet start from their recommended tier when first published. Every publication is
-written to the audit log.
+:func:`publish` makes every unpublished decision visible to the public, of every active policy
+or of one (``policy=``). Districts with no decision of a policy yet start from that policy's
+recommended tier when first published. Every publication is written to the audit log.
 
 With a loaded notification config (``publish(..., notify=...)``) a publication sends one
 ``published`` event per district whose official public tier it changed (including a first
@@ -18,7 +18,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.services.audit import record
-from server.services.evaluation import LatestItem
+from server.services.evaluation import LatestItem, active_rulesets, require_policy
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.services.review_decisions import (
     active_policy,
@@ -26,7 +26,12 @@ from server.services.review_decisions import (
     effective_from,
     lock_district,
 )
-from server.services.review_official import OfficialTier, official_tiers, rank
+from server.services.review_official import (
+    OfficialTier,
+    official_tiers,
+    policy_condition,
+    rank,
+)
 from server.services.review_pending import current_run
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
@@ -41,11 +46,13 @@ class PublishResult:
     regions: tuple[str, ...]
     initial: tuple[str, ...]
     notified: tuple[Delivery, ...] = field(default=())
+    #: The policies whose decisions were published.
+    policies: tuple[str, ...] = ()
 
 
 def _published_events(
     before: dict[str, OfficialTier], after: dict[str, OfficialTier], rows: list[DecisionRow],
-    codes: dict[int, str],
+    codes: dict[int, str], policy: str,
 ) -> list[Event]:
     """One ``published`` event per district whose published tier this publication changed."""
     last = {codes[r.region_id]: r for r in sorted(rows, key=rank)}
@@ -59,9 +66,9 @@ def _published_events(
         out.append(
             Event(
                 kind="published", region=code, date=row.effective_date, tier=new.tier,
-                previous=None if old is None else old.tier, signal=None,
+                previous=None if old is None else old.tier, signal=None, policy=policy,
                 sentence=(
-                    f"Published: {new.name} is at {new.tier_name} from "
+                    f"Published ({policy}): {new.name} is at {new.tier_name} from "
                     f"{row.effective_date.isoformat()}{was}; {row.kind}: {row.reason}"
                 ),
             )
@@ -69,13 +76,15 @@ def _published_events(
     return out
 
 
-def _first_publications(session: Session) -> list[LatestItem]:
-    """Current items of districts never decided that a publication would start (tier >= 0)."""
-    decided = set(session.scalars(select(DecisionRow.region_id).distinct()))
+def _first_publications(session: Session, policy: str | None) -> list[LatestItem]:
+    """Current items of districts never decided under ``policy`` that a publication would
+    start (tier >= 0)."""
+    decided = set(session.scalars(
+        select(DecisionRow.region_id).where(policy_condition(session, policy)).distinct()))
     districts = set(session.scalars(select(Region.id).where(Region.level == "district")))
     if not districts - decided:  # every district decided once: no need to read the run
         return []
-    latest = current_run(session=session)
+    latest = current_run(session=session, policy=policy)
     if latest is None:
         return []
     return [
@@ -84,25 +93,41 @@ def _first_publications(session: Session) -> list[LatestItem]:
     ]
 
 
-def _unpublished_count(session: Session) -> int:
+def _unpublished_count(session: Session, policy: str | None) -> int:
     return session.scalar(
-        select(func.count()).select_from(DecisionRow).where(DecisionRow.published_at.is_(None))
+        select(func.count()).select_from(DecisionRow).where(
+            DecisionRow.published_at.is_(None), policy_condition(session, policy))
     ) or 0
 
 
-def has_something_to_publish(*, session: Session) -> bool:
-    """Whether :func:`publish` would publish anything: an unpublished decision, or a district
-    never decided that a first publication would start from its recommendation."""
-    return bool(_unpublished_count(session)) or bool(_first_publications(session))
+def _policies(session: Session, policy: str | None) -> list[str]:
+    """``policy`` (checked: an active one), or every active policy."""
+    if policy is not None:
+        require_policy(session=session, policy=policy)
+        return [policy]
+    return [r.name for r in active_rulesets(session=session)]
+
+
+def has_something_to_publish(*, session: Session, policy: str | None = None) -> bool:
+    """Whether :func:`publish` would publish anything (of ``policy``, else of any active
+    policy): an unpublished decision, or a district never decided that a first publication
+    would start from its recommendation."""
+    if not active_rulesets(session=session):
+        return bool(session.scalar(select(func.count()).select_from(DecisionRow).where(
+            DecisionRow.published_at.is_(None))))
+    return any(bool(_unpublished_count(session, name)) or bool(_first_publications(session, name))
+               for name in _policies(session, policy))
 
 
 def publish(
     *, session: Session, user: str, notify: NotifyConfig | None = None,
-    time_zone: str = "UTC",
+    time_zone: str = "UTC", policy: str | None = None,
 ) -> PublishResult:
-    """Publish every unpublished decision; districts never decided start from their recommendation.
+    """Publish every unpublished decision of ``policy`` (of every active policy when None);
+    districts never decided under a policy start from its recommendation.
 
-    With ``notify``, the districts whose public tier changed are notified (``published`` events).
+    With ``notify``, the districts whose public tier changed are notified (``published`` events,
+    naming the policy).
     With nothing to publish, nothing is written (no audit entry) and the result has
     ``decisions == 0``. First publications are made under the districts' locks, like
     :func:`decide`, so two publications at once start each district once.
@@ -114,49 +139,58 @@ def publish(
     """
     approver = approving_user(session, user)
     now = datetime.now(UTC)
-    starting = _first_publications(session)
-    if starting:
+    # no active policy: every unpublished decision (policy_condition of None is then all)
+    names: list[str | None] = [*_policies(session, policy)] or [None]
+    starting = {name: _first_publications(session, name) for name in names}
+    if any(starting.values()):
         # under the districts' locks (in id order: two publications never wait on each other in
         # a circle), read again: a decision or publication that committed meanwhile wins
-        for region_id in sorted(item.region_id for item in starting):
+        for region_id in sorted({i.region_id for items in starting.values() for i in items}):
             lock_district(session, region_id)
-        starting = _first_publications(session)
-    if not starting and not _unpublished_count(session):
+        starting = {name: _first_publications(session, name) for name in names}
+    if not any(starting.values()) and not any(_unpublished_count(session, n) for n in names):
         return PublishResult(published_at=now, decisions=0, regions=(), initial=())
-    initial: list[str] = []
-    if starting:
-        ruleset = active_policy(session)
-        for item in starting:
+    initial: set[str] = set()
+    for name, items in starting.items():
+        ruleset = active_policy(session, name)
+        for item in items:
             a = item.assessment
             session.add(
                 DecisionRow(
-                    region_id=item.region_id, assessment_id=a.id,
+                    policy=name or "", region_id=item.region_id, assessment_id=a.id,
                     effective_date=effective_from(a.ref_date, now, ruleset, time_zone),
                     tier=a.recommended_tier,
                     kind="confirmed", reason="first publication: starts from the recommended tier",
                     decided_by=approver.id, decided_at=now, published_at=None,
                 )
             )
-            initial.append(item.code)
-        session.flush()
-    rows = list(session.scalars(select(DecisionRow).where(DecisionRow.published_at.is_(None))))
+            initial.add(item.code)
+    session.flush()
+    rows_of = {name: list(session.scalars(select(DecisionRow).where(
+        DecisionRow.published_at.is_(None), policy_condition(session, name)))) for name in names}
+    rows = [row for found in rows_of.values() for row in found]
     codes = dict(session.execute(select(Region.id, Region.code)).all())
-    before = official_tiers(session=session) if notify is not None else {}
+    before = ({name: official_tiers(session=session, policy=name) for name in names}
+              if notify is not None else {})
     for row in rows:
         row.published_at = now
     session.flush()
     regions = tuple(sorted({codes[r.region_id] for r in rows}))
+    published = tuple(name for name, found in rows_of.items() if found and name is not None)
     record(
         session=session, actor=user, action="decision.publish", subject=", ".join(regions),
-        details={"decisions": [r.id for r in rows], "initial": sorted(initial)}, at=now,
+        details={"decisions": [r.id for r in rows], "initial": sorted(initial),
+                 "policies": list(published)}, at=now,
     )
     notified: tuple[Delivery, ...] = ()
     if notify is not None and rows:
-        events = _published_events(before, official_tiers(session=session), rows, codes)
+        events = [event for name, found in rows_of.items() if found for event in
+                  _published_events(before[name], official_tiers(session=session, policy=name),
+                                    found, codes, name or "")]
         notified = deliver_and_record(
             events, notify, session=session, actor=user, context="publication"
         )
     return PublishResult(
         published_at=now, decisions=len(rows), regions=regions, initial=tuple(sorted(initial)),
-        notified=notified,
+        notified=notified, policies=published,
     )

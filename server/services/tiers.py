@@ -9,8 +9,9 @@ Which ruleset a decision was made under:
 
 - ``confirmed`` and ``overridden`` decisions answer an assessment; the assessment's ruleset.
 - ``recorded`` decisions (``tierwise decisions import``, official tiers from before tierwise) have
-  no assessment. They are named under the *first ruleset the office activated* (the oldest
-  version that is not a draft): the history came before tierwise, and the import checks tiers
+  no assessment. They are named under the *first ruleset the office activated* of their policy
+  (the oldest version of the decision's ``policy`` name that is not a draft; of any name when
+  the policy has none): the history came before tierwise, and the import checks tiers
   against the policy active at the time, which is the first one in the usual order of setting
   up. When that ruleset has no such tier, the decision is shown by its number alone.
 
@@ -77,11 +78,14 @@ def _scale(row: RulesetRow | None) -> Scale:
     return Scale(ruleset_id=row.id, label=f"{row.name} {row.version}", ruleset=parsed(row))
 
 
-def first_ruleset(*, session: Session) -> RulesetRow | None:
-    """The first ruleset the office activated (oldest version that is not a draft)."""
-    return session.scalar(
-        select(RulesetRow).where(RulesetRow.status != "draft").order_by(RulesetRow.id).limit(1)
-    )
+def first_ruleset(*, session: Session, policy: str | None = None) -> RulesetRow | None:
+    """The first ruleset the office activated (oldest version that is not a draft), of
+    ``policy`` (a ruleset name) when given and it has one, else of any name."""
+    query = select(RulesetRow).where(RulesetRow.status != "draft").order_by(RulesetRow.id)
+    found = None
+    if policy:
+        found = session.scalar(query.where(RulesetRow.name == policy).limit(1))
+    return found if found is not None else session.scalar(query.limit(1))
 
 
 def decision_scales(*, session: Session, rows: Iterable[DecisionRow]) -> dict[int, Scale]:
@@ -98,14 +102,15 @@ def decision_scales(*, session: Session, rows: Iterable[DecisionRow]) -> dict[in
         r.id: _scale(r)
         for r in session.scalars(select(RulesetRow).where(RulesetRow.id.in_(wanted)))
     } if wanted else {}
-    recorded: Scale | None = None
+    recorded: dict[str, Scale] = {}
     out: dict[int, Scale] = {}
     for row in rows:
         rid = of_assessment.get(row.assessment_id) if row.assessment_id is not None else None
         if rid is not None:
             out[row.id] = scales.get(rid, UNKNOWN)
             continue
-        if recorded is None:
-            recorded = _scale(first_ruleset(session=session))
-        out[row.id] = recorded
+        policy = row.policy or ""
+        if policy not in recorded:
+            recorded[policy] = _scale(first_ruleset(session=session, policy=policy))
+        out[row.id] = recorded[policy]
     return out

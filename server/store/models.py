@@ -217,8 +217,14 @@ class Decision(Base):
     """The official tier of a region from an effective date, confirmed or overridden by a person."""
 
     __tablename__ = "decision"
+    __table_args__ = (
+        Index("ix_decision_policy_region_day", "policy", "region_id", "effective_date"),
+    )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    #: The policy (ruleset name) the decision belongs to: each policy has its own official tiers
+    #: (revision 0010_decision_policy).
+    policy: Mapped[str] = mapped_column(String(100))
     region_id: Mapped[int] = mapped_column(ForeignKey("region.id"), index=True)
     assessment_id: Mapped[int | None] = mapped_column(ForeignKey("assessment.id"))
     effective_date: Mapped[date] = mapped_column(Date)

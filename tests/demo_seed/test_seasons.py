@@ -36,7 +36,7 @@ POLICIES = {"influenza": "influenza.yaml", "rsv": "rsv.yaml"}
 def seeded(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Database]:
     path: Path = tmp_path_factory.mktemp("seasons") / "demo.db"
     db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    seed_demo(db, seed=11, days=150, end=END)
+    seed_demo(db, seed=11, days=150, end=END, policies=())
     yield db
     db.dispose()
 

@@ -14,6 +14,7 @@ from demo_seed.seed import DEMO_USERS, SeedSummary, received_at, seed_demo
 from server.config import Settings
 from server.services.database import Database
 from server.services.errors import NotADemoDatabaseError
+from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.feed_push import token_matches
 from server.services.regions import RegionRecord, store_regions
 from server.store import read_dense, revision_history
@@ -95,10 +96,27 @@ def test_seed_demo_keeps_every_revision(seeded: Database) -> None:
 
 
 def test_seed_demo_evaluates_the_policy(seeded: Database) -> None:
+    # the lead policy over the demo's days (the demo runs three policies: counted apart below)
     with seeded.sessions() as s:
+        lead = active_ruleset(session=s)
+        assert lead is not None
         districts = s.scalar(select(func.count()).where(Region.level == "district"))
-        assessments = s.scalar(select(func.count()).select_from(Assessment))
+        assessments = s.scalar(select(func.count()).select_from(Assessment)
+                               .where(Assessment.ruleset_id == lead.id))
     assert assessments == districts * DAYS
+
+
+def test_seed_demo_runs_three_policies_each_with_assessments(
+    seeded_with_summary: tuple[Database, SeedSummary],
+) -> None:
+    db, summary = seeded_with_summary
+    with db.sessions() as s:
+        rows = active_rulesets(session=s)
+        counts = {r.name: s.scalar(select(func.count()).select_from(Assessment)
+                                   .where(Assessment.ruleset_id == r.id)) for r in rows}
+    assert [r.name for r in rows] == ["county-demo", "county-influenza", "county-rsv"]
+    assert all(n > 0 for n in counts.values())
+    assert dict(summary.policies) == counts  # a first evaluation writes every row
 
 
 def test_seed_demo_creates_demo_users(seeded: Database) -> None:

@@ -49,6 +49,19 @@ def test_story_changes_await_review_both_ways(morning: DemoMorning) -> None:
     assert any(not p.up for p in morning.pending)
 
 
+def test_story_runs_several_policies_each_assessing_every_district(
+        morning: DemoMorning) -> None:
+    assert [p.name for p in morning.policies] == ["county-demo", "county-influenza",
+                                                  "county-rsv"]
+    assert all(p.assessed == 14 for p in morning.policies)
+    # the lead policy's story is the one the fields above tell
+    assert len(morning.policies[0].pending) == len(morning.pending)
+
+
+def test_story_changes_await_review_under_at_least_two_policies(morning: DemoMorning) -> None:
+    assert sum(1 for p in morning.policies if p.pending) >= 2
+
+
 def test_story_shows_a_prepare_signal(morning: DemoMorning) -> None:
     assert morning.signals
 

@@ -52,7 +52,7 @@ def demo_source(tmp_path_factory: pytest.TempPathFactory) -> Path:
     source = tmp_path_factory.mktemp("demo-source") / "demo.db"
     db = Database.from_settings(demo_settings(source))
     try:
-        seed_demo(db, days=DEMO_DAYS, end=DEMO_END)
+        seed_demo(db, days=DEMO_DAYS, end=DEMO_END, policies=())  # the lead policy alone
     finally:
         db.dispose()
     return source

@@ -31,7 +31,7 @@ def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
     path = tmp_path_factory.mktemp("demo") / "demo.db"
     db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
     try:
-        seed_demo(db, days=150, end=DEMO_END)
+        seed_demo(db, days=150, end=DEMO_END, policies=())  # the lead policy alone
     finally:
         db.dispose()
     return path

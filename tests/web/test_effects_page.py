@@ -28,7 +28,7 @@ def client(demo_app_client: TestClient) -> TestClient:
                           (date(2026, 11, 25), 2)):
             s.add(Decision(region_id=region.id, effective_date=day, tier=tier,
                            kind="confirmed", reason="invented", decided_at=now,
-                           published_at=now))
+                           published_at=now, policy="county-demo"))
     return demo_app_client
 
 

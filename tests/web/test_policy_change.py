@@ -48,8 +48,10 @@ def changed(demo_file: Path, tmp_path_factory: pytest.TempPathFactory
             assert old is not None
             before = {c: (o.tier, o.tier_name) for c, o in official_tiers(session=s).items()}
             assert 3 in {t for t, _ in before.values()}
+            # persistence-500 takes over from the demo's policy (several policies may be
+            # active at once: only ``replaces`` retires one of another name)
             store_ruleset(session=s, path=policies_dir(None) / "persistence-500.yaml",
-                          author="test", activate=True)
+                          author="test", activate=True, replaces=old.name)
         yield client, before, f"{old.name} {old.version}"
 
 

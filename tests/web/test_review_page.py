@@ -139,7 +139,8 @@ def _seed_history(path: Path, n: int) -> None:
             for k in range(n):
                 at = start + timedelta(days=k)
                 session.add(DecisionRow(
-                    region_id=ids["D01" if k % 2 == 0 else "D02"], assessment_id=None,
+                    policy="county-demo", region_id=ids["D01" if k % 2 == 0 else "D02"],
+                    assessment_id=None,
                     effective_date=at.date(), tier=k % 3, kind="overridden",
                     reason=f"invented decision {k}", decided_by=None, decided_at=at,
                     published_at=at,

@@ -35,6 +35,9 @@ def test_demo_prints_the_morning_it_seeded(tmp_path: Path, monkeypatch: pytest.M
     assert "Feeds on time: long-csv, lab-drop, wastewater-http; needing attention: gp-sentinel" \
         in out
     assert "the newest changes await review" not in out  # no fixed claim any more
+    # the demo runs three policies; the others are summed up after the lead's story
+    assert "Evaluated policy county-influenza as well:" in out
+    assert "Policy county-rsv: official " in out
 
 
 @pytest.mark.parametrize(("env", "expected"), [(None, DEMO_TIME_ZONE), ("Pacific/Auckland",

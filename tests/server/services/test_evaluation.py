@@ -11,13 +11,13 @@ from sqlalchemy.orm import Session
 
 from server.services.evaluation import (
     active_ruleset,
+    active_rulesets,
     evaluate_districts,
     store_ruleset,
 )
 from server.services.policies import activate_version
 from server.services.review import current_run
 from server.store.models import Assessment, AuditEntry, EvaluationRun
-from server.store.models import Ruleset as RulesetRow
 
 pytestmark = pytest.mark.slow
 CUTOFF = datetime(2026, 10, 1, 12, 0, tzinfo=UTC)  # the vintage of 30 Sep arrived 1 Oct 05:30
@@ -93,6 +93,7 @@ def test_latest_rows_give_the_start_of_the_current_recommendation(demo_session: 
     days = demo_session.execute(
         select(Assessment.ref_date, Assessment.recommended_tier)
         .where(Assessment.region_id == item.region_id,
+               Assessment.ruleset_id == latest.ruleset_row.id,
                Assessment.data_cutoff == latest.data_cutoff)
         .order_by(Assessment.ref_date)
     ).all()
@@ -103,7 +104,9 @@ def test_latest_rows_give_the_start_of_the_current_recommendation(demo_session: 
     assert run[-1] == latest.last_day
 
 
-# --- one way to activate: every other active version retired, audited, evaluated ---
+# --- one way to activate: the other versions of the policy retired, audited, evaluated ---
+# (since several policies may be active at once, activating another name no longer retires
+# the demo's policy; ``replaces`` does)
 
 COUNTY = Path(__file__).resolve().parents[3] / "rules" / "policies" / "county.yaml"
 
@@ -111,35 +114,47 @@ COUNTY = Path(__file__).resolve().parents[3] / "rules" / "policies" / "county.ya
 def _variant(folder: Path, name: str, version: str) -> Path:
     """The demo county's policy under another (invented) name and version."""
     text = COUNTY.read_text().replace("name: county-demo", f"name: {name}", 1)
-    path = folder / f"{name}.yaml"
+    path = folder / f"{name}-{version}.yaml"
     path.write_text(text.replace('version: "2031.2"', f'version: "{version}"', 1))
     return path
 
 
 def _active_names(session: Session) -> list[str]:
-    return list(session.scalars(select(RulesetRow.name).where(RulesetRow.status == "active")))
+    return [r.name for r in active_rulesets(session=session)]
 
 
-def test_store_ruleset_activation_retires_a_ruleset_of_another_name(
+def _active_versions(session: Session) -> list[tuple[str, str]]:
+    return sorted((r.name, r.version) for r in active_rulesets(session=session))
+
+
+def test_store_ruleset_activation_keeps_other_policies_and_replaces_on_request(
     demo_session: Session, tmp_path: Path
 ) -> None:
     store_ruleset(session=demo_session, path=_variant(tmp_path, "calm", "1"), activate=True)
-    assert _active_names(demo_session) == ["calm"]
+    assert _active_names(demo_session) == ["county-demo", "calm"]  # the first stored leads
+    store_ruleset(session=demo_session, path=_variant(tmp_path, "brisk", "1"), activate=True,
+                  replaces="county-demo")
+    assert _active_names(demo_session) == ["calm", "brisk"]
 
 
-def test_activations_by_both_ways_leave_one_active_ruleset(
+def test_activations_by_both_ways_leave_one_active_version_per_policy(
     demo_session: Session, tmp_path: Path
 ) -> None:
     seen = []
-    for k, name in enumerate(["calm", "brisk", "calm", "steady"]):
+    for k, name in enumerate(["calm", "brisk", "calm", "brisk"]):
         if k % 2:
             row = store_ruleset(session=demo_session, path=_variant(tmp_path, name, str(k)))
             activate_version(session=demo_session, ruleset_id=row.id, actor="rev")
         else:
             store_ruleset(session=demo_session, path=_variant(tmp_path, name, str(k)),
                           author="rev", activate=True)
-        seen.append(_active_names(demo_session))
-    assert seen == [["calm"], ["brisk"], ["calm"], ["steady"]]
+        seen.append(_active_versions(demo_session))
+    assert seen == [
+        [("calm", "0"), ("county-demo", "2031.2")],
+        [("brisk", "1"), ("calm", "0"), ("county-demo", "2031.2")],
+        [("brisk", "1"), ("calm", "2"), ("county-demo", "2031.2")],
+        [("brisk", "3"), ("calm", "2"), ("county-demo", "2031.2")],
+    ]
 
 
 def test_activation_is_audited_and_evaluates_the_new_ruleset(
@@ -147,7 +162,7 @@ def test_activation_is_audited_and_evaluates_the_new_ruleset(
 ) -> None:
     row = store_ruleset(session=demo_session, path=_variant(tmp_path, "calm", "1"),
                         author="rev", activate=True)
-    latest = current_run(session=demo_session)
+    latest = current_run(session=demo_session, policy="calm")
     assert latest is not None and latest.ruleset_row.id == row.id and len(latest.items) == 14
     actions = list(demo_session.scalars(select(AuditEntry.subject).where(
         AuditEntry.action == "ruleset.activate", AuditEntry.actor == "rev")))

@@ -68,7 +68,7 @@ def _decision(session: Session, code: str, day: date, tier: int, published: bool
     region = session.scalar(select(Region).where(Region.code == code))
     assert region is not None
     session.add(Decision(region_id=region.id, effective_date=day, tier=tier, kind="confirmed",
-                         reason="invented", decided_at=NOW,
+                         reason="invented", policy="invented", decided_at=NOW,
                          published_at=NOW if published else None))
     session.flush()
 

@@ -340,7 +340,8 @@ def test_failed_publication_notice_never_undoes_the_publication(demo_session: Se
 def _posted_key(event: dict[str, object]) -> str:
     """:attr:`Event.key` of a posted event, rebuilt from its JSON."""
     what = event["signal"] if event["kind"] == "prepare" else event["tier"]
-    return f"{event['kind']}|{event['region']}|{event['date']}|{what}"
+    key = f"{event['kind']}|{event['region']}|{event['date']}|{what}"
+    return f"{key}|{event['policy']}" if event.get("policy") else key
 
 
 def _second_ingestion(session: Session, minutes: int) -> datetime:

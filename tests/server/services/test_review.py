@@ -257,7 +257,10 @@ def test_decide_refuses_an_assessment_of_a_retired_ruleset(
     _region_id, before, _day = _item(demo_session, "D01")
     text = COUNTY.read_text().replace("name: county-demo", "name: county-calm", 1)
     (tmp_path / "calm.yaml").write_text(text.replace('version: "2031.2"', 'version: "2031.3"'))
-    store_ruleset(session=demo_session, path=tmp_path / "calm.yaml", author="rev", activate=True)
+    # another name takes over from the demo's policy (since several policies may be active,
+    # only ``replaces`` retires a policy of another name)
+    store_ruleset(session=demo_session, path=tmp_path / "calm.yaml", author="rev", activate=True,
+                  replaces="county-demo")
     with pytest.raises(ReviewError, match=rf"assessment_id: {before} is not the district's"):
         decide(session=demo_session, assessment_id=before, user=APPROVER, accept=True, tier=None,
                reason="form from before the activation", **seen(demo_session, before))
@@ -284,8 +287,9 @@ def test_stale_form_post_never_becomes_the_public_tier(demo_session: Session) ->
 
 def _decision(session: Session, region_id: int, effective: date, tier: int, at: datetime) -> None:
     session.add(DecisionRow(
-        region_id=region_id, assessment_id=None, effective_date=effective, tier=tier,
-        kind="overridden", reason="invented", decided_by=None, decided_at=at, published_at=at,
+        policy="county-demo", region_id=region_id, assessment_id=None, effective_date=effective,
+        tier=tier, kind="overridden", reason="invented", decided_by=None, decided_at=at,
+        published_at=at,
     ))
     session.flush()
 

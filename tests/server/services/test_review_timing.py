@@ -85,7 +85,8 @@ def test_history_shows_what_was_recommended_for_an_imported_decision(
     # recorded after the day was assessed: the recommendation as known then
     known_at = row.data_cutoff + timedelta(hours=1)
     demo_session.add(DecisionRow(
-        region_id=region_id, assessment_id=None, effective_date=day + timedelta(days=1),
+        policy="county-demo", region_id=region_id, assessment_id=None,
+        effective_date=day + timedelta(days=1),
         tier=0, kind="recorded", reason="weekly meeting", decided_by=None, decided_at=known_at,
         published_at=known_at))
     demo_session.flush()
@@ -110,7 +111,8 @@ def test_history_marks_a_recommendation_assessed_after_the_decision(
     before = datetime.combine(day, time(12), UTC)
     assert first_cutoff > before
     demo_session.add(DecisionRow(
-        region_id=region_id, assessment_id=None, effective_date=day + timedelta(days=1),
+        policy="county-demo", region_id=region_id, assessment_id=None,
+        effective_date=day + timedelta(days=1),
         tier=1, kind="recorded", reason="from the paper files", decided_by=None,
         decided_at=before, published_at=before))
     demo_session.flush()

@@ -4,7 +4,7 @@
 change with its note, who gave it, when, and the office's day from which it counts.
 
 Revision ID: 0010_testing_change_review
-Revises: 0007_recorded_events
+Revises: 0010_decision_policy
 Create Date: 2026-12-04 22:40:00
 """
 
@@ -16,7 +16,7 @@ from alembic import op
 import server.store.types
 
 revision = "0010_testing_change_review"
-down_revision = "0007_recorded_events"
+down_revision = "0010_decision_policy"
 branch_labels = None
 depends_on = None
 
