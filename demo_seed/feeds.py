@@ -11,7 +11,7 @@ Everything here is invented.
 
 from __future__ import annotations
 
-from datetime import time, timedelta
+from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
 
 from server.config import Settings
@@ -40,6 +40,19 @@ ARRIVAL: dict[str, time] = {
     "wastewater-http": time(6, 0),  # pulled every 6 hours
     "gp-sentinel": time(6, 45),
 }
+
+
+def last_complete_day(now: datetime) -> date:
+    """The newest day whose deliveries have all arrived by ``now``: each feed delivers a day's
+    data the next morning at its :data:`ARRIVAL` hour (UTC). The demo ends on this day, so no
+    delivery is stamped later than the clock (before 06:45 UTC that is the day before
+    yesterday)."""
+    day = now.astimezone(UTC).date() - timedelta(days=1)
+    while datetime.combine(day + timedelta(days=1), max(ARRIVAL.values()), tzinfo=UTC) > now:
+        day -= timedelta(days=1)
+    return day
+
+
 #: The invented office's time zone (an IANA name): ``tierwise demo`` serves with it unless
 #: TIERWISE_TIME_ZONE is set, so pages that show the office's local time show it; the feeds'
 #: arrival hours above stay in UTC.

@@ -27,6 +27,7 @@ from demo_seed.feeds import (
     SOURCES,
     configure_demo_feeds,
     demo_limits,
+    last_complete_day,
 )
 from demo_seed.history import defer_newest_change, official_history
 from demo_seed.scenario import MEASURES, PATHOGEN_MEASURES, Scenario, build_scenario
@@ -122,6 +123,8 @@ def seed_demo(
 
     With ``history``, the invented office's past official decisions are recorded and published
     too (:mod:`demo_seed.history`), leaving the newest changes for the demo's approver."""
+    if end is None:
+        end = last_complete_day(datetime.now(UTC))
     scenario = build_scenario(seed=seed, end=end, days=days)
     recreate_demo_schema(db)
     with db.transaction() as session:
