@@ -58,11 +58,12 @@ def _sentence(page: str) -> str:
 
 
 def _table(page: str) -> list[tuple[str, str, str]]:
-    """(label, value, interval) of each row of the criteria table."""
+    """(label, value, interval) of each row of the criteria table (a row whose figure is the
+    area's carries a note under its label)."""
     table = _between(page, '<table class="grid compact explain">', "</table>")
     return [tuple(html.unescape(x) for x in row) for row in re.findall(
-        r'<tr><th scope="row">([^<]+)</th><td class="num">([^<]+)</td>'
-        r'<td class="num">([^<]+)</td>', table)]
+        r'<tr><th scope="row">([^<]+)(?:<br><small class="area-figure">[^<]*</small>)?</th>'
+        r'<td class="num">([^<]+)</td><td class="num">([^<]+)</td>', table)]
 
 
 def _agrees(page: str) -> int:
