@@ -50,7 +50,7 @@ from server.services.users import add_user
 
 #: The policies the demo runs at once, the lead first (``county.yaml``, from
 #: :func:`default_ruleset_path`); the others are activated when the rules folder holds them.
-DEMO_POLICIES = ("influenza.yaml", "rsv.yaml")
+DEMO_POLICIES = ("influenza.yaml", "rsv.yaml", "hospital.yaml")
 
 #: Past mornings whose forecasts the demo stores (60 scored at 21 days, 7 settling).
 RECORD_MORNINGS = 90

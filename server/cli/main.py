@@ -119,7 +119,7 @@ def demo(
     )
     say(f"Evaluated policy {summary.ruleset}: {summary.assessments:,} district-day assessments")
     for name, written in summary.policies[1:]:
-        say(f"Evaluated policy {name} as well: {written:,} district-day assessments")
+        say(f"Evaluated policy {name} as well: {written:,} region-day assessments")
     say(f"Recorded {summary.decisions} past official decisions of the invented office "
         "(published)")
     for line in morning_lines(morning):

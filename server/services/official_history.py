@@ -33,6 +33,7 @@ from sqlalchemy.orm import Session
 from server.services.audit import record
 from server.services.errors import InputFileError
 from server.services.evaluation import require_policy
+from server.services.hierarchy import hierarchy
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.users import name_key
@@ -194,9 +195,15 @@ def import_official_history(
     ruleset_row = require_policy(session=session, policy=policy)
     name = "" if ruleset_row is None else ruleset_row.name
     top = None if ruleset_row is None else parsed(ruleset_row).top_tier
+    level = "districts" if ruleset_row is None else parsed(ruleset_row).level
     regions = dict(session.execute(
         select(Region.code, Region.id).where(Region.level == "district")
     ).all())
+    if level != "districts":  # the areas or the county above the districts
+        above = set(hierarchy(session=session).regions(level, tuple(regions)))
+        regions = dict(session.execute(
+            select(Region.code, Region.id).where(Region.code.in_(sorted(above) or [""]))
+        ).all())
     # staff names match in any case, as at login (server.services.users.name_key)
     users = {
         name_key(name): uid
@@ -205,7 +212,9 @@ def import_official_history(
     for item in items:
         if item.region not in regions:
             raise InputFileError(source, f"line {item.line}, region",
-                                 f"{item.region!r} is not a district")
+                                 f"{item.region!r} is not a district" if level == "districts"
+                                 else f"{item.region!r} is not one of the {level} the policy "
+                                      f"{name} assigns tiers to")
         if item.tier < 0 or (top is not None and item.tier > top):
             span = f"0..{top}" if top is not None else "0 or more"
             raise InputFileError(source, f"line {item.line}, tier",
