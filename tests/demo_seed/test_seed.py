@@ -19,6 +19,7 @@ from server.services.feed_push import token_matches
 from server.services.regions import RegionRecord, store_regions
 from server.store import read_dense, revision_history
 from server.store.models import Assessment, Observation, Region, User, Vintage
+from server.store.models import Ruleset as RulesetRow
 
 END = date(2026, 3, 31)
 DAYS = 150
@@ -106,7 +107,7 @@ def test_seed_demo_evaluates_the_policy(seeded: Database) -> None:
     assert assessments == districts * DAYS
 
 
-def test_seed_demo_runs_three_policies_each_with_assessments(
+def test_seed_demo_runs_four_policies_each_with_assessments(
     seeded_with_summary: tuple[Database, SeedSummary],
 ) -> None:
     db, summary = seeded_with_summary
@@ -114,8 +115,16 @@ def test_seed_demo_runs_three_policies_each_with_assessments(
         rows = active_rulesets(session=s)
         counts = {r.name: s.scalar(select(func.count()).select_from(Assessment)
                                    .where(Assessment.ruleset_id == r.id)) for r in rows}
-    assert [r.name for r in rows] == ["county-demo", "county-influenza", "county-rsv"]
+    assert [r.name for r in rows] == ["county-demo", "county-influenza", "county-rsv",
+                                      "hospital-demo"]
     assert all(n > 0 for n in counts.values())
+    with db.sessions() as s:  # the hospital policy assesses the areas, the others the districts
+        levels = dict(s.execute(
+            select(RulesetRow.name, func.min(Region.level)).join(
+                Assessment, Assessment.ruleset_id == RulesetRow.id).join(
+                Region, Region.id == Assessment.region_id).group_by(RulesetRow.name)).all())
+    assert levels == {"county-demo": "district", "county-influenza": "district",
+                      "county-rsv": "district", "hospital-demo": "region"}
     assert dict(summary.policies) == counts  # a first evaluation writes every row
 
 

@@ -49,11 +49,12 @@ def test_story_changes_await_review_both_ways(morning: DemoMorning) -> None:
     assert any(not p.up for p in morning.pending)
 
 
-def test_story_runs_several_policies_each_assessing_every_district(
+def test_story_runs_several_policies_each_assessing_every_region_of_its_level(
         morning: DemoMorning) -> None:
     assert [p.name for p in morning.policies] == ["county-demo", "county-influenza",
-                                                  "county-rsv"]
-    assert all(p.assessed == 14 for p in morning.policies)
+                                                  "county-rsv", "hospital-demo"]
+    # 14 districts; the hospital-pressure policy assesses the county's 3 areas
+    assert [p.assessed for p in morning.policies] == [14, 14, 14, 3]
     # the lead policy's story is the one the fields above tell
     assert len(morning.policies[0].pending) == len(morning.pending)
 
