@@ -48,12 +48,15 @@ from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+from numpy.typing import NDArray
 from sqlalchemy import Select, and_, func, insert, select, text, type_coerce, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 import rules
 from rules import Evaluation, Ruleset, parse_ruleset
+from server.services import run_fingerprints
 from server.services.audit import record
 from server.services.database import Database
 from server.services.forecast_record import (
@@ -213,10 +216,10 @@ def evaluate_districts(
         return reused
     try:
         with session.begin_nested():
-            written = _store_assessments(session, ruleset_row.id, cutoff, result)
+            written, kept = _store_assessments(session, ruleset_row.id, cutoff, result)
             session.add(RunRow(
                 ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
-                rows_written=written, created_at=datetime.now(UTC),
+                rows_written=written, created_at=datetime.now(UTC), fingerprints=kept,
             ))
             session.flush()
     except IntegrityError:
@@ -390,40 +393,45 @@ def content_sha256(row: dict[str, Any]) -> str:
 
 
 def _assessment_rows(
-    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
+    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation,
+    build: NDArray[np.bool_] | None = None,
 ) -> list[dict[str, Any]]:
+    """The rows of the region-days in ``build`` ``(regions, days)`` (None: every one), in
+    region then day order."""
     region_ids = dict(session.execute(select(Region.code, Region.id)).all())
     criteria = [c.id for c in result.ruleset.criteria]
     signals = [s.id for s in result.ruleset.prepare]
     now = datetime.now(UTC)
     rows = []
-    for r, code in enumerate(result.regions):
-        for d in range(result.dates.size):
-            explanation = result.explain(r, d)
-            row: dict[str, Any] = {
-                "ruleset_id": ruleset_id,
-                "region_id": region_ids[code],
-                "ref_date": result.dates[d].astype(date),
-                "data_cutoff": cutoff,
-                "recommended_tier": int(result.tier[r, d]),
-                "previous_tier": (
-                    int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
-                ),
-                "criteria": {
-                    cid: {
-                        "level": int(result.levels[k, r, d]),
-                        "known": bool(result.known[k, r, d]),
-                    }
-                    for k, cid in enumerate(criteria)
-                },
-                "prepare_signals": {
-                    sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
-                },
-                "explanation": {"sentence": explanation.sentence, "data": explanation.data},
-                "created_at": now,
-            }
-            row["content_sha256"] = content_sha256(row)
-            rows.append(row)
+    if build is None:
+        build = np.ones((len(result.regions), result.dates.size), dtype=bool)
+    for r, d in np.argwhere(build).tolist():
+        code = result.regions[r]
+        explanation = result.explain(r, d)
+        row: dict[str, Any] = {
+            "ruleset_id": ruleset_id,
+            "region_id": region_ids[code],
+            "ref_date": result.dates[d].astype(date),
+            "data_cutoff": cutoff,
+            "recommended_tier": int(result.tier[r, d]),
+            "previous_tier": (
+                int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
+            ),
+            "criteria": {
+                cid: {
+                    "level": int(result.levels[k, r, d]),
+                    "known": bool(result.known[k, r, d]),
+                }
+                for k, cid in enumerate(criteria)
+            },
+            "prepare_signals": {
+                sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
+            },
+            "explanation": {"sentence": explanation.sentence, "data": explanation.data},
+            "created_at": now,
+        }
+        row["content_sha256"] = content_sha256(row)
+        rows.append(row)
     return rows
 
 
@@ -432,11 +440,20 @@ _CHUNK = 500  # ids per IN list (well under SQLite's bound-parameter limit)
 
 def _store_assessments(
     session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
-) -> int:
-    """Store the rows that differ from the newest earlier ones; returns how many were stored."""
-    rows = _assessment_rows(session, ruleset_id, cutoff, result)
+) -> tuple[int, bytes | None]:
+    """Store the rows that differ from the newest earlier ones; returns how many were stored
+    and the fingerprints the run keeps.
+
+    Only the region-days whose engine state differs from the newest earlier run's are built
+    (:mod:`server.services.run_fingerprints`); the others equal the row in force before
+    ``cutoff`` and would not be stored.
+    """
+    plan = run_fingerprints.plan(session, ruleset_id, cutoff, result)
+    if plan.keep is not None:
+        run_fingerprints.keep_only(session, ruleset_id, cutoff)
+    rows = _assessment_rows(session, ruleset_id, cutoff, result, plan.build)
     if not rows:
-        return 0
+        return 0, plan.keep
     start, end = result.dates[0].astype(date), result.dates[-1].astype(date)
     earlier = {
         (rid, day): (aid, sha)
@@ -455,7 +472,7 @@ def _store_assessments(
     if changed:
         session.execute(insert(Assessment), changed)
         _keep_next_run(session, ruleset_id, cutoff, changed, earlier, start, end)
-    return len(changed)
+    return len(changed), plan.keep
 
 
 def _keep_next_run(
