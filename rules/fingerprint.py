@@ -12,9 +12,11 @@ folds exactly those inputs into one ``uint64`` per region and day, vectorised:
   passed, the testing hold; per criterion its level, known flag, reason, above/below counters
   and enter level (plain and under each condition); per gate its result; per prepare signal
   whether it shows and its run; every field of every indicator the ruleset uses (estimate,
-  bounds, count, age, the stale/invalid/no-baseline/nowcast flags, nowcast days, change size);
+  bounds, count, age, the stale/invalid/no-baseline/nowcast flags, change size; nowcast days and
+  basis where the value is a nowcast), a missing array as the explanation reads it (values NaN,
+  flags False: both are written alike);
 * per region: each criterion's and condition's thresholds (enter, exit, strictness, first named
-  tier, minimum count), the tier decided and in force before the first day, the nowcast basis;
+  tier, minimum count), the tier decided and in force before the first day;
 * the window: a day's fingerprint mixes the per-day hashes of the day and of the ``W`` days
   before it, a marker standing for each day before the first (so the first days of a period,
   where the explanation reads the start state or says "decided before this period", differ
@@ -35,6 +37,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from rules.evaluation import Evaluation
+from rules.series import IndicatorSeries
 
 __all__ = ["fingerprints", "window_days"]
 
@@ -44,8 +47,7 @@ _M1 = np.array(0xBF58476D1CE4E5B9, dtype=np.uint64)
 _M2 = np.array(0x94D049BB133111EB, dtype=np.uint64)
 _GOLDEN = np.array(0x9E3779B97F4A7C15, dtype=np.uint64)
 _S31, _S27, _S30 = (np.array(s, dtype=np.uint64) for s in (31, 27, 30))
-#: stands for an array a series does not have (None), and for a day before the first
-_ABSENT = np.array(0x5BD1E9955BD1E995, dtype=np.uint64)
+#: stands for a day before the first
 _BEFORE = np.array(0xC2B2AE3D27D4EB4F, dtype=np.uint64)
 _NAN = np.array(np.nan, dtype=np.float64).view(np.uint64)
 
@@ -79,11 +81,11 @@ def window_days(ev: Evaluation) -> int:
     return max(int(ev.ruleset.timing.effective_delay_days), 1)
 
 
-def _day_arrays(ev: Evaluation) -> Iterator[NDArray[np.generic] | None]:
-    """Every ``(regions, days)`` array an assessment reads (None: the series lacks it)."""
+def _day_arrays(ev: Evaluation) -> Iterator[NDArray[np.generic]]:
+    """Every ``(regions, days)`` array an assessment reads."""
     yield from (ev.tier, ev.decided, ev.candidate, ev.candidate_low, ev.candidate_high,
                 ev.up, ev.down, ev.since, ev.sufficient)
-    yield ev.testing_held if ev.testing_held.size else None
+    yield ev.testing_held if ev.testing_held.size else np.zeros(ev.tier.shape, dtype=bool)
     lv = ev.criterion_levels
     for c in range(len(ev.ruleset.criteria)):
         yield from (ev.levels[c], ev.known[c], ev.reason[c], ev.above[c], ev.below[c],
@@ -94,20 +96,33 @@ def _day_arrays(ev: Evaluation) -> Iterator[NDArray[np.generic] | None]:
     for k in range(len(ev.ruleset.prepare)):
         yield from (ev.prepare[k], ev.prepare_run[k])
     for name in ev.ruleset.used_indicators():
-        s = ev.indicators[name]
-        yield from (s.estimate, s.lower, s.upper, s.count, s.stale, s.age_days, s.nowcast,
-                    s.nowcast_days, s.invalid, s.no_baseline, s.size)
+        yield from _series_arrays(ev.indicators[name])
 
 
-def _region_values(ev: Evaluation) -> Iterator[NDArray[np.generic] | None]:
+def _series_arrays(s: IndicatorSeries) -> Iterator[NDArray[np.generic]]:
+    """A series as the explanation reads it: a missing value array reads as NaN (both are
+    written None), a missing flag as False; nowcast days and basis only where the value is a
+    nowcast (``_criterion_item`` reads them only there)."""
+    nan = np.full(s.shape, np.nan)
+    no = np.zeros(s.shape, dtype=bool)
+    for values in (s.estimate, s.lower, s.upper, s.count, s.age_days, s.size):
+        yield nan if values is None else values
+    for flags in (s.stale, s.invalid, s.no_baseline):
+        yield no if flags is None else flags
+    nowcast = no if s.nowcast is None else s.nowcast
+    yield nowcast
+    yield np.where(nowcast, nan if s.nowcast_days is None else s.nowcast_days, np.nan)
+    basis = (np.zeros(s.shape[0], dtype=np.uint64) if s.nowcast_basis is None
+             else np.array([_text(b) for b in s.nowcast_basis], dtype=np.uint64))
+    yield np.where(nowcast, basis[:, np.newaxis], np.uint64(0)).astype(np.uint64)
+
+
+def _region_values(ev: Evaluation) -> Iterator[NDArray[np.generic]]:
     """Every per-region ``(n, regions)`` or ``(regions,)`` array an assessment reads."""
     lv = ev.criterion_levels
     for th in (*lv.thresholds, *lv.cond_thresholds):
         yield from (th.enter, th.exit, th.enter_strict, th.exit_strict, th.min_count, th.first)
     yield from (ev.start_tier, ev.start_in_force)
-    for name in ev.ruleset.used_indicators():
-        basis = ev.indicators[name].nowcast_basis
-        yield None if basis is None else np.array([_text(b) for b in basis], dtype=np.uint64)
 
 
 def fingerprints(ev: Evaluation, salt: bytes = b"") -> U64:
@@ -117,16 +132,13 @@ def fingerprints(ev: Evaluation, salt: bytes = b"") -> U64:
     per_region = np.full(n_r, seed, dtype=np.uint64)
     for tag, a in enumerate(_region_values(ev)):
         per_region = _mix(per_region, np.uint64(tag))
-        if a is None:
-            per_region = _mix(per_region, _ABSENT)
-            continue
         rows = _bits(np.asarray(a)).reshape(-1, n_r)
         for row in rows:
             per_region = _mix(per_region, row)
     day = np.broadcast_to(per_region[:, np.newaxis], (n_r, n_d)).copy()
     for tag, a in enumerate(_day_arrays(ev)):
         day = _mix(day, np.uint64(tag))
-        day = _mix(day, _ABSENT if a is None else _bits(a))
+        day = _mix(day, _bits(a))
     out = day.copy()
     for w in range(1, window_days(ev) + 1):
         shifted = np.full((n_r, n_d), _BEFORE, dtype=np.uint64)
