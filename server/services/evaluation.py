@@ -11,6 +11,8 @@ given), computes the indicators, runs the rules engine over the whole history an
 and day pairs whose result differs from the newest row stored at an earlier cutoff, or that have
 none: a new morning's data usually change the last weeks, not the whole history. The rows are
 compared in bulk by ``content_sha256``, a hash of everything but the cutoff and creation time.
+Only the region-days whose engine state changed since the newest earlier run are built and
+hashed at all (:mod:`server.services.run_fingerprints`); the others equal the row in force.
 
 The assessment of a district and day *as of run C* is therefore the row with the greatest
 ``data_cutoff`` not after C (:func:`assessments_as_of`); the newest run is the newest
