@@ -11,10 +11,12 @@ folds exactly those inputs into one ``uint64`` per region and day, vectorised:
 * per day: tier, decided tier, candidate and its bounds, the up/down/since counters, gates
   passed, the testing hold; per criterion its level, known flag, reason, above/below counters
   and enter level (plain and under each condition); per gate its result; per prepare signal
-  whether it shows and its run; every field of every indicator the ruleset uses (estimate,
-  bounds, count, age, the stale/invalid/no-baseline/nowcast flags, change size; nowcast days and
-  basis where the value is a nowcast), a missing array as the explanation reads it (values NaN,
-  flags False: both are written alike);
+  whether it shows and its run; the indicator fields the explanation reads (``_fields_read``:
+  a criterion's value, bounds, count, age and nowcast days and basis where it is a nowcast, a
+  gate's value, a signal's value and bounds when its message shows them, the testing change),
+  a missing array as the explanation reads it (values NaN, flags False: both are written
+  alike). An indicator read only by a signal without ``{reading}`` (Rt, whose whole history
+  moves a little with each new day) enters through the signal's arrays alone;
 * per region: each criterion's and condition's thresholds (enter, exit, strictness, first named
   tier, minimum count), the tier decided and in force before the first day;
 * the window: a day's fingerprint mixes the per-day hashes of the day and of the ``W`` days
@@ -37,6 +39,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from rules.evaluation import Evaluation
+from rules.ruleset import Ruleset
 from rules.series import IndicatorSeries
 
 __all__ = ["fingerprints", "window_days"]
@@ -95,21 +98,44 @@ def _day_arrays(ev: Evaluation) -> Iterator[NDArray[np.generic]]:
     yield from ev.gates
     for k in range(len(ev.ruleset.prepare)):
         yield from (ev.prepare[k], ev.prepare_run[k])
-    for name in ev.ruleset.used_indicators():
-        yield from _series_arrays(ev.indicators[name])
+    for name, fields in _fields_read(ev.ruleset).items():
+        yield from _series_arrays(ev.indicators[name], fields)
 
 
-def _series_arrays(s: IndicatorSeries) -> Iterator[NDArray[np.generic]]:
-    """A series as the explanation reads it: a missing value array reads as NaN (both are
-    written None), a missing flag as False; nowcast days and basis only where the value is a
-    nowcast (``_criterion_item`` reads them only there)."""
+def _fields_read(ruleset: Ruleset) -> dict[str, set[str]]:
+    """The fields of each indicator that an explanation reads: a criterion's all of them (value,
+    bounds, count, age, nowcast), a gate's estimate, a prepare signal's value and bounds only
+    when its message shows the ``{reading}``, the testing hold's days, size and bounds. What
+    else an indicator does (stale, invalid, no baseline, a signal's run) reaches the row only
+    through the engine's arrays above."""
+    out: dict[str, set[str]] = {name: set() for name in ruleset.used_indicators()}
+    for c in ruleset.criteria:
+        out[c.indicator] |= {"estimate", "lower", "upper", "count", "age_days", "nowcast"}
+    for g in ruleset.gates:
+        if g.indicator is not None:
+            out[g.indicator].add("estimate")
+    for sig in ruleset.prepare:
+        if "{reading}" in sig.message:
+            out[sig.indicator] |= {"estimate", "lower", "upper"}
+    if ruleset.testing_hold is not None:
+        out[ruleset.testing_hold.indicator] |= {"estimate", "size", "lower", "upper"}
+    return out
+
+
+_VALUES = ("estimate", "lower", "upper", "count", "age_days", "size")
+
+
+def _series_arrays(s: IndicatorSeries, fields: set[str]) -> Iterator[NDArray[np.generic]]:
+    """The ``fields`` of a series as the explanation reads them: a missing value array reads
+    as NaN (both are written None); nowcast days and basis only where the value is a nowcast
+    (``_criterion_item`` reads them only there), a missing flag as False."""
     nan = np.full(s.shape, np.nan)
-    no = np.zeros(s.shape, dtype=bool)
-    for values in (s.estimate, s.lower, s.upper, s.count, s.age_days, s.size):
-        yield nan if values is None else values
-    for flags in (s.stale, s.invalid, s.no_baseline):
-        yield no if flags is None else flags
-    nowcast = no if s.nowcast is None else s.nowcast
+    for name in _VALUES:
+        values = getattr(s, name)
+        yield nan if values is None or name not in fields else values
+    if "nowcast" not in fields:
+        return
+    nowcast = np.zeros(s.shape, dtype=bool) if s.nowcast is None else s.nowcast
     yield nowcast
     yield np.where(nowcast, nan if s.nowcast_days is None else s.nowcast_days, np.nan)
     basis = (np.zeros(s.shape[0], dtype=np.uint64) if s.nowcast_basis is None
