@@ -457,6 +457,8 @@ def _store_assessments(
     if not rows:
         return 0, plan.keep
     start, end = result.dates[0].astype(date), result.dates[-1].astype(date)
+    if plan.build is not None:  # only the rows built are compared: from the first day built
+        start = result.dates[int(np.flatnonzero(plan.build.any(axis=0))[0])].astype(date)
     earlier = {
         (rid, day): (aid, sha)
         for aid, rid, day, sha in session.execute(assessments_as_of(
