@@ -151,6 +151,18 @@ def _region_values(ev: Evaluation) -> Iterator[NDArray[np.generic]]:
     yield from (ev.start_tier, ev.start_in_force)
 
 
+def _mix_in(h: U64, x: U64, tmp: U64) -> None:
+    """:func:`_mix` in place, without temporaries (``tmp``: a scratch array of ``h``'s shape);
+    the ``(regions, days)`` arrays are folded this way."""
+    np.bitwise_xor(h, x, out=h)
+    np.add(h, _GOLDEN, out=h)
+    for shift, factor in ((_S30, _M1), (_S27, _M2), (_S31, None)):
+        np.right_shift(h, shift, out=tmp)
+        np.bitwise_xor(h, tmp, out=h)
+        if factor is not None:
+            np.multiply(h, factor, out=h)
+
+
 def fingerprints(ev: Evaluation, salt: bytes = b"") -> U64:
     """One ``uint64`` per region and day, ``(regions, days)`` (module docstring)."""
     n_r, n_d = ev.tier.shape
@@ -162,12 +174,15 @@ def fingerprints(ev: Evaluation, salt: bytes = b"") -> U64:
         for row in rows:
             per_region = _mix(per_region, row)
     day = np.broadcast_to(per_region[:, np.newaxis], (n_r, n_d)).copy()
+    tmp = np.empty_like(day)
     for tag, a in enumerate(_day_arrays(ev)):
-        day = _mix(day, np.uint64(tag))
-        day = _mix(day, _bits(a))
+        x = _bits(a)  # a new array: the component's place is added to it
+        np.add(x, np.uint64((0x9E3779B97F4A7C15 * (tag + 1)) % 2**64), out=x)
+        _mix_in(day, x, tmp)
     out = day.copy()
+    shifted = np.empty_like(day)
     for w in range(1, window_days(ev) + 1):
-        shifted = np.full((n_r, n_d), _BEFORE, dtype=np.uint64)
+        shifted[:, :w] = _BEFORE
         shifted[:, w:] = day[:, : max(n_d - w, 0)]
-        out = _mix(out, shifted)
+        _mix_in(out, shifted, tmp)
     return out
