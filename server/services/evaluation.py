@@ -405,35 +405,36 @@ def _assessment_rows(
     signals = [s.id for s in result.ruleset.prepare]
     now = datetime.now(UTC)
     rows = []
-    if build is None:
-        build = np.ones((len(result.regions), result.dates.size), dtype=bool)
-    for r, d in np.argwhere(build).tolist():
-        code = result.regions[r]
-        explanation = result.explain(r, d)
-        row: dict[str, Any] = {
-            "ruleset_id": ruleset_id,
-            "region_id": region_ids[code],
-            "ref_date": result.dates[d].astype(date),
-            "data_cutoff": cutoff,
-            "recommended_tier": int(result.tier[r, d]),
-            "previous_tier": (
-                int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
-            ),
-            "criteria": {
-                cid: {
-                    "level": int(result.levels[k, r, d]),
-                    "known": bool(result.known[k, r, d]),
-                }
-                for k, cid in enumerate(criteria)
-            },
-            "prepare_signals": {
-                sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
-            },
-            "explanation": {"sentence": explanation.sentence, "data": explanation.data},
-            "created_at": now,
-        }
-        row["content_sha256"] = content_sha256(row)
-        rows.append(row)
+    wanted = None if build is None else build.tolist()
+    for r, code in enumerate(result.regions):
+        for d in range(result.dates.size):
+            if wanted is not None and not wanted[r][d]:
+                continue
+            explanation = result.explain(r, d)
+            row: dict[str, Any] = {
+                "ruleset_id": ruleset_id,
+                "region_id": region_ids[code],
+                "ref_date": result.dates[d].astype(date),
+                "data_cutoff": cutoff,
+                "recommended_tier": int(result.tier[r, d]),
+                "previous_tier": (
+                    int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
+                ),
+                "criteria": {
+                    cid: {
+                        "level": int(result.levels[k, r, d]),
+                        "known": bool(result.known[k, r, d]),
+                    }
+                    for k, cid in enumerate(criteria)
+                },
+                "prepare_signals": {
+                    sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
+                },
+                "explanation": {"sentence": explanation.sentence, "data": explanation.data},
+                "created_at": now,
+            }
+            row["content_sha256"] = content_sha256(row)
+            rows.append(row)
     return rows
 
 
