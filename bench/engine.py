@@ -2,7 +2,9 @@
 
 Prints the time of ``rules.evaluate`` (wall and CPU) and its ratio against one vectorised numpy
 pass over the same arrays (each indicator compared with its enter thresholds, levels summed,
-highest taken), measured in the same run. Data are invented (seeded random walks). Run:
+highest taken), measured in the same run, and the time of ``rules.fingerprint.fingerprints``
+(what a run computes to skip the unchanged region-days) against ``evaluate``. Data are
+invented (seeded random walks). Run:
 ``/work/main/.venv/bin/python bench/engine.py [regions] [days]``.
 """
 
@@ -14,6 +16,7 @@ import time
 import numpy as np
 
 from rules import IndicatorSeries, evaluate, parse_ruleset
+from rules.fingerprint import fingerprints
 
 NAMES = ("incidence_7d", "positivity_7d", "admissions_7d", "icu_share", "rt", "ww_level")
 THRESHOLDS = ((50, 150, 300), (5, 10, 20), (3, 8, 15), (5, 10, 20), (1.0, 1.2, 1.5), (2, 4, 6))
@@ -100,12 +103,17 @@ def main(n_r: int = 3000, n_d: int = 1096) -> None:
     for d in range(0, n_d, 100):
         ev.explain(0, d)
     t_expl = (time.perf_counter() - t0) / len(range(0, n_d, 100))
+    t0 = time.perf_counter()
+    fingerprints(ev, b"bench")
+    t_fp = time.perf_counter() - t0
     changes = int((np.diff(ev.decided.astype(int), axis=1) != 0).sum())
     print(f"regions x days: {n_r} x {n_d}, criteria: {len(rs.criteria)}")
     print(f"numpy baseline pass: {t_base:.3f} s")
     print(f"rules.evaluate:      {t_eval:.3f} s  (ratio {t_eval / t_base:.1f}x)")
     print(f"  CPU time:          {c_eval:.3f} s  (the wall time inflates on a busy machine)")
     print(f"explain one cell:    {t_expl * 1e3:.2f} ms")
+    print(f"fingerprints:        {t_fp:.3f} s  ({t_fp / t_eval:.2f}x rules.evaluate; explaining "
+          f"every cell would take ~{t_expl * n_r * n_d:.0f} s)")
     print(f"tier changes: {changes}, insufficient cells: {(ev.tier < 0).sum()}")
 
 

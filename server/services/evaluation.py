@@ -11,6 +11,8 @@ given), computes the indicators, runs the rules engine over the whole history an
 and day pairs whose result differs from the newest row stored at an earlier cutoff, or that have
 none: a new morning's data usually change the last weeks, not the whole history. The rows are
 compared in bulk by ``content_sha256``, a hash of everything but the cutoff and creation time.
+Only the region-days whose engine state changed since the newest earlier run are built and
+hashed at all (:mod:`server.services.run_fingerprints`); the others equal the row in force.
 
 The assessment of a district and day *as of run C* is therefore the row with the greatest
 ``data_cutoff`` not after C (:func:`assessments_as_of`); the newest run is the newest
@@ -54,12 +56,15 @@ from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+from numpy.typing import NDArray
 from sqlalchemy import Select, and_, func, insert, select, text, type_coerce, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 import rules
 from rules import Evaluation, Ruleset, parse_ruleset
+from server.services import run_fingerprints
 from server.services.audit import record
 from server.services.database import Database
 from server.services.errors import ServiceError
@@ -279,10 +284,10 @@ def evaluate_districts(
         return reused
     try:
         with session.begin_nested():
-            written = _store_assessments(session, ruleset_row.id, cutoff, result)
+            written, kept = _store_assessments(session, ruleset_row.id, cutoff, result)
             session.add(RunRow(
                 ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
-                rows_written=written, created_at=datetime.now(UTC),
+                rows_written=written, created_at=datetime.now(UTC), fingerprints=kept,
             ))
             session.flush()
     except IntegrityError:
@@ -468,15 +473,21 @@ def content_sha256(row: dict[str, Any]) -> str:
 
 
 def _assessment_rows(
-    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
+    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation,
+    build: NDArray[np.bool_] | None = None,
 ) -> list[dict[str, Any]]:
+    """The rows of the region-days in ``build`` ``(regions, days)`` (None: every one), in
+    region then day order."""
     region_ids = dict(session.execute(select(Region.code, Region.id)).all())
     criteria = [c.id for c in result.ruleset.criteria]
     signals = [s.id for s in result.ruleset.prepare]
     now = datetime.now(UTC)
     rows = []
+    wanted = None if build is None else build.tolist()
     for r, code in enumerate(result.regions):
         for d in range(result.dates.size):
+            if wanted is not None and not wanted[r][d]:
+                continue
             explanation = result.explain(r, d)
             row: dict[str, Any] = {
                 "ruleset_id": ruleset_id,
@@ -510,12 +521,23 @@ _CHUNK = 500  # ids per IN list (well under SQLite's bound-parameter limit)
 
 def _store_assessments(
     session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
-) -> int:
-    """Store the rows that differ from the newest earlier ones; returns how many were stored."""
-    rows = _assessment_rows(session, ruleset_id, cutoff, result)
+) -> tuple[int, bytes | None]:
+    """Store the rows that differ from the newest earlier ones; returns how many were stored
+    and the fingerprints the run keeps.
+
+    Only the region-days whose engine state differs from the newest earlier run's are built
+    (:mod:`server.services.run_fingerprints`); the others equal the row in force before
+    ``cutoff`` and would not be stored.
+    """
+    plan = run_fingerprints.plan(session, ruleset_id, cutoff, result)
+    if plan.keep is not None:
+        run_fingerprints.keep_only(session, ruleset_id, cutoff)
+    rows = _assessment_rows(session, ruleset_id, cutoff, result, plan.build)
     if not rows:
-        return 0
+        return 0, plan.keep
     start, end = result.dates[0].astype(date), result.dates[-1].astype(date)
+    if plan.build is not None:  # only the rows built are compared: from the first day built
+        start = result.dates[int(np.flatnonzero(plan.build.any(axis=0))[0])].astype(date)
     earlier = {
         (rid, day): (aid, sha)
         for aid, rid, day, sha in session.execute(assessments_as_of(
@@ -533,7 +555,7 @@ def _store_assessments(
     if changed:
         session.execute(insert(Assessment), changed)
         _keep_next_run(session, ruleset_id, cutoff, changed, earlier, start, end)
-    return len(changed)
+    return len(changed), plan.keep
 
 
 def _keep_next_run(

@@ -195,6 +195,9 @@ class EvaluationRun(Base):
     last_day: Mapped[date] = mapped_column(Date)
     rows_written: Mapped[int] = mapped_column(Integer)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime())
+    #: the newest run's packed fingerprints (``server/services/run_fingerprints.py``), read
+    #: only by the next run; None on every other run
+    fingerprints: Mapped[bytes | None] = mapped_column(LargeBinary, deferred=True)
 
 
 class User(Base):
