@@ -75,8 +75,9 @@ def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Dat
 
 @pytest.fixture(scope="session")
 def several_policies_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The invented demo county (150 days to 30 Nov 2026) with its three policies active at once
-    (county, influenza, RSV) and the invented office's history under each: every district
+    """The invented demo county (150 days to 30 Nov 2026) with its three district policies active
+    at once (county, influenza, RSV; the demo's area-level hospital policy is left out here and
+    tested in tests/demo_seed) and the invented office's history under each: every district
     decided and published, the newest changes pending. Seeded once per session; copy it before
     writing to it."""
     from datetime import date
@@ -87,7 +88,8 @@ def several_policies_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
     path = tmp_path_factory.mktemp("several-policies") / "demo.db"
     db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
     try:
-        seed_demo(db, days=150, end=date(2026, 11, 30), history=True)
+        seed_demo(db, days=150, end=date(2026, 11, 30), history=True,
+                  policies=("influenza.yaml", "rsv.yaml"))
     finally:
         db.dispose()
     return path
