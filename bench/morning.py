@@ -66,6 +66,8 @@ from demo_seed.scenario import MEASURES, PATHOGEN_MEASURES
 from server.config import Settings
 from server.feeds.definition import FeedCatalogue, parse_feeds
 from server.feeds.sources import Payload
+from server.readmodels.morning import morning_overview
+from server.readmodels.pages import public_map
 from server.services.database import Database
 from server.services.district_data import load_district_data, store_measures
 from server.services.district_indicators import district_indicators, feed_limits
@@ -73,9 +75,7 @@ from server.services.evaluation import evaluate_if_behind, newest_cutoff, store_
 from server.services.feed_health import feed_statuses
 from server.services.feed_state import ingest_recorded
 from server.services.indicator_kinds import measure_needs
-from server.services.morning import morning_overview
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
-from server.services.pages import public_map
 from server.services.regions import RegionRecord, store_catchments, store_regions
 from server.services.ruleset_cache import parsed
 from server.store.models import Measure, Observation, Vintage

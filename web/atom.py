@@ -1,6 +1,6 @@
 """Atom feeds (RFC 4287) of published tier changes, for residents and newsrooms to follow.
 
-:func:`atom_feed` is a pure builder from :class:`~server.services.public_data.PublishedChange`
+:func:`atom_feed` is a pure builder from :class:`~server.readmodels.public_data.PublishedChange`
 records to an Atom document. Identifiers are ``urn:uuid`` values derived (UUID version 5,
 RFC 4122 section 4.3) from the site's public address and the decision, so an entry keeps its id
 across rebuilds and readers do not show it twice.
@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from xml.etree import ElementTree as ET
 
-from server.services.public_data import PublishedChange
+from server.readmodels.public_data import PublishedChange
 
 __all__ = ["ATOM_NS", "AtomText", "atom_feed"]
 

@@ -1,7 +1,7 @@
 """Conditional GET for the public pages: ETag and Last-Modified from the publication stamp.
 
 A public page is a pure function of (path, language, stamp), where the stamp
-(:func:`server.services.pages.public_stamp`) changes whenever something is published, new data
+(:func:`server.readmodels.pages.public_stamp`) changes whenever something is published, new data
 arrive or another ruleset is activated. Two per-worker caches keep the public pages cheap:
 
 * :class:`StampMemo` keeps the stamp for :data:`STAMP_TTL` seconds, so that a page served from
@@ -28,8 +28,8 @@ from typing import Any
 from fastapi import Request, Response
 from starlette.concurrency import run_in_threadpool
 
+from server.readmodels.pages import PublicStamp, public_stamp
 from server.services.database import Database
-from server.services.pages import PublicStamp, public_stamp
 
 __all__ = ["MAX_AGE", "STAMP_TTL", "PageCache", "StampInvalidator", "StampMemo", "conditional"]
 

@@ -13,10 +13,10 @@ from datetime import date
 
 import plotly.graph_objects as go
 
-from server.services.capacity_pages import AreaCapacity, Fan
-from server.services.district_marks import DistrictMarks
+from server.readmodels.capacity_pages import AreaCapacity, Fan
+from server.readmodels.district_marks import DistrictMarks
+from server.readmodels.dossier import CriterionSeries, DistrictDossier
 from server.services.district_nowcasts import NowcastSeries
-from server.services.dossier import CriterionSeries, DistrictDossier
 from server.services.event_effects import EventEffect
 from web.palette import INK, OUTLINE, tier_colours
 

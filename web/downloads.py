@@ -17,9 +17,8 @@ from typing import Any
 from fastapi import APIRouter, HTTPException, Path, Request, Response
 from fastapi.responses import HTMLResponse
 
-from server.services.database import Database
-from server.services.pages import UnknownDistrictError
-from server.services.public_data import (
+from server.readmodels.pages import UnknownDistrictError
+from server.readmodels.public_data import (
     DICTIONARY,
     DownloadTable,
     district_changes,
@@ -28,6 +27,7 @@ from server.services.public_data import (
     tier_change_table,
     weekly_case_table,
 )
+from server.services.database import Database
 from web.atom import ATOM_TYPE, AtomText, atom_feed
 from web.caching import conditional, page_language, stamp_reader
 from web.deps import DatabaseDep, SettingsDep

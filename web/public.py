@@ -14,7 +14,7 @@ from typing import Any
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 
-from server.services.pages import (
+from server.readmodels.pages import (
     public_district_page,
     public_map,
 )

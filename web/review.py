@@ -15,7 +15,7 @@ from fastapi import APIRouter, Depends, Form, Header, HTTPException, Query, Requ
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from pydantic import BaseModel, Field
 
-from server.services.queue import review_queue
+from server.readmodels.queue import review_queue
 from server.services.review_decisions import (
     DecisionConflictError,
     RecommendationChangedError,

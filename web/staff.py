@@ -11,13 +11,13 @@ from fastapi import APIRouter, Form, HTTPException, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 
-from server.services.area_tiers import above_district, region_tiers
-from server.services.capacity_pages import WARD_LOS_MEDIAN, area_capacity, district_forecast
-from server.services.district_marks import district_marks
-from server.services.dossier import district_dossier, explanation_page
+from server.readmodels.area_tiers import above_district, region_tiers
+from server.readmodels.capacity_pages import WARD_LOS_MEDIAN, area_capacity, district_forecast
+from server.readmodels.district_marks import district_marks
+from server.readmodels.dossier import district_dossier, explanation_page
+from server.readmodels.morning import MorningOverview, morning_overview
 from server.services.feeds import load_catalogue
 from server.services.forecast_record import record_lines
-from server.services.morning import MorningOverview, morning_overview
 from server.services.phase_indicators import district_phase
 from server.services.testing_reviews import TestingReviewError, review_testing_change
 from web.charts import (

@@ -19,6 +19,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 from starlette.types import Message
 
+from server.readmodels.feeds_page import feeds_page
 from server.services.feed_push import upload_payload
 from server.services.feeds import (
     FeedFileError,
@@ -26,7 +27,6 @@ from server.services.feeds import (
     UnknownFeedError,
     load_catalogue,
 )
-from server.services.feeds_page import feeds_page
 from server.services.users import PERMISSIONS
 from web import held_uploads
 from web.deps import CsrfDep, SessionDep, SettingsDep, StaffDep, UploadDep

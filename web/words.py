@@ -86,7 +86,7 @@ WORDS: tuple[str, ...] = (
     # what the engine did on a day (rules/record.py: action)
     N_("raised"), N_("lowered"), N_("decided"), N_("held"), N_("unchanged"),
     N_("insufficient"),
-    # counter names of an explanation (server/services/dossier.py)
+    # counter names of an explanation (server/readmodels/dossier.py)
     N_("Days the candidate was higher"), N_("Days the candidate was lower"),
     N_("Days since the last change"), N_("Candidate tier"),
     # a criterion's status (rules/explanation.py: _REASONS)
@@ -104,7 +104,7 @@ WORDS: tuple[str, ...] = (
     N_("Days to confirm a rise"), N_("Days to confirm a fall"), N_("Minimum days in a tier"),
     N_("Most tiers down at once"), N_("Days until a decision takes effect"), N_("no limit"),
     N_("the highest criterion level"), N_("a weighted score of criterion levels"),
-    # the public data dictionary (server/services/public_data.py)
+    # the public data dictionary (server/readmodels/public_data.py)
     N_("text"), N_("integer"), N_("number"), N_("true/false"), N_("date (ISO 8601)"),
     N_("date-time (ISO 8601, UTC)"),
     N_("District code used by the health office."), N_("District name."),
@@ -170,7 +170,7 @@ def measure_text(name: str, fallback: str, gettext: Callable[[str], str], lang: 
 
 
 # Fixed patterns of the engine's sentences (rules/explanation.py) and of the explanation's counter
-# values (server/services/dossier.py). The stored sentence is English; a German page rewrites the
+# values (server/readmodels/dossier.py). The stored sentence is English; a German page rewrites the
 # patterns below through the catalog, in this order (longer patterns first), and writes the
 # numbers and dates inside with the language's decimal sign and date form. Names the policy gives
 # (tiers, indicator labels, signal texts) stay as the policy writes them.
@@ -273,7 +273,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
         "95 %% interval covered %(coverage)s %% of %(n)s mornings")),
     (r"^nowcast of the last 7 days: no morning needed one$",
      N_("nowcast of the last 7 days: no morning needed one")),
-    # changes since the previous day (server/services/morning.py)
+    # changes since the previous day (server/readmodels/morning.py)
     (r"^recommended tier rose from (?P<old>.+?) to (?P<new>.+)$",
      N_("recommended tier rose from %(old)s to %(new)s")),
     (r"^recommended tier fell from (?P<old>.+?) to (?P<new>.+)$",
@@ -299,7 +299,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
     (r"^(?P<head>[\w-]+: .+?) at least (?P<value>[\d.]+)$", N_("%(head)s at least %(value)s")),
     (r"^(?P<head>[\w-]+: .+?) at most (?P<value>[\d.]+)$", N_("%(head)s at most %(value)s")),
     (r"^(?P<head>[\w-]+: .+?) must be known$", N_("%(head)s must be known")),
-    # the public data dictionary's provisional flag (server/services/public_data.py)
+    # the public data dictionary's provisional flag (server/readmodels/public_data.py)
     (r"^True while the week still contains days whose late reports are arriving \(the last "
      r"(?P<days>\d+) days\): it will rise\.$",
      N_("True while the week still contains days whose late reports are arriving (the last "

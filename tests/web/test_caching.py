@@ -6,7 +6,7 @@ from datetime import UTC, datetime
 
 import pytest
 
-from server.services.pages import PublicStamp
+from server.readmodels.pages import PublicStamp
 from web.caching import PageCache, StampMemo
 
 

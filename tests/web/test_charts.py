@@ -6,7 +6,7 @@ from datetime import date, timedelta
 
 import pytest
 
-from server.services.dossier import CriterionSeries
+from server.readmodels.dossier import CriterionSeries
 from server.services.event_effects import EventEffect
 from web.charts import criterion_figure, effects_figure
 
@@ -75,7 +75,7 @@ def test_effects_figure_draws_one_panel_per_ready_event_with_its_interval() -> N
 
 
 def test_marks_are_vertical_lines_with_labels_inside_the_period_only() -> None:
-    from server.services.district_marks import BreakMark, DistrictMarks, TestingMark
+    from server.readmodels.district_marks import BreakMark, DistrictMarks, TestingMark
     from server.services.testing_reviews import Verdict
     from web.charts import add_marks
 

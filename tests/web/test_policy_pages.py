@@ -18,8 +18,8 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
+from server.readmodels.policy_columns import policy_columns
 from server.services.evaluation import active_rulesets
-from server.services.policy_columns import policy_columns
 from server.services.review import decide, official_tiers, pending_changes, publish
 from tests.web.conftest import ROLE_USER, csrf_of, login, settings_for
 from web.app import create_app

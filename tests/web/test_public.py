@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 
-from server.services.pages import suppress_count, weekly_figures
+from server.readmodels.pages import suppress_count, weekly_figures
 from tests.server.conftest import seen
 from tests.web.conftest import csrf_of, login
 

@@ -18,7 +18,8 @@ import pytest
 from sqlalchemy import select
 
 from server.config import Settings
-from server.services import policy_columns as policy_columns_module
+from server.readmodels import policy_columns as policy_columns_module
+from server.readmodels.policy_columns import assessed_regions, policy_columns
 from server.services.database import Database
 from server.services.evaluation import (
     EvaluationRun,
@@ -33,7 +34,6 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.notify import Event
-from server.services.policy_columns import assessed_regions, policy_columns
 from server.services.review import decide, official_tiers, pending_changes, publish
 from server.services.review_official import policy_owners
 from server.services.review_publication import has_something_to_publish

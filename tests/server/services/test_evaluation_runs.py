@@ -20,7 +20,10 @@ import pytest
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from server.services.dossier import district_dossier, explanation_page
+from server.readmodels.dossier import district_dossier, explanation_page
+from server.readmodels.morning import morning_overview
+from server.readmodels.pages import public_district_page, public_map
+from server.readmodels.queue import review_queue
 from server.services.evaluation import (
     active_ruleset,
     assessments_as_of,
@@ -30,10 +33,7 @@ from server.services.evaluation import (
     newest_cutoff,
     store_ruleset,
 )
-from server.services.morning import morning_overview
 from server.services.observations import MeasureRecord, define_measures
-from server.services.pages import public_district_page, public_map
-from server.services.queue import review_queue
 from server.services.regions import RegionRecord, store_regions
 from server.services.review import current_run, decide, decision_history, pending_changes
 from server.services.users import add_user

@@ -8,7 +8,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from rules.hysteresis import NEVER_CHANGED
-from server.services.dossier import explanation_page
+from server.readmodels.dossier import explanation_page
 from server.store.models import Assessment
 
 

@@ -295,7 +295,7 @@ def test_morning_stores_forecasts_after_the_tiers(committed_db: Database, tmp_pa
 
 @pytest.mark.slow
 def test_district_dossier_carries_the_record_of_district_and_area(demo_session: Session) -> None:
-    from server.services.dossier import district_dossier
+    from server.readmodels.dossier import district_dossier
     from server.store.models import Region
 
     # The demo seeds the forecasts of its last 90 mornings as known then (demo_seed/seed.py,

@@ -1,11 +1,11 @@
-"""Public page data in the resident's language (server.services.pages), on the invented demo."""
+"""Public page data in the resident's language (server.readmodels.pages), on the invented demo."""
 
 from __future__ import annotations
 
 import pytest
 from sqlalchemy.orm import Session
 
-from server.services.pages import public_district_page, public_map
+from server.readmodels.pages import public_district_page, public_map
 from server.services.review import publish
 
 pytestmark = pytest.mark.slow

@@ -16,7 +16,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from rules import parse_ruleset
-from server.services.morning import morning_overview
+from server.readmodels.morning import morning_overview
 from server.services.review import (
     decide,
     decision_history,

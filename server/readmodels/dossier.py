@@ -23,6 +23,8 @@ from rules import Ruleset
 from rules.formatting import interval_text, value_text
 from rules.hysteresis import NEVER_CHANGED
 from rules.record import CriterionState
+from server.readmodels.explanations import RevisedSince, explained_day, revised_since
+from server.readmodels.policy_columns import assessed_regions, policy_level
 from server.services.backtest import nowcast_accuracy_report
 from server.services.district_nowcasts import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
@@ -32,11 +34,9 @@ from server.services.evaluation import (
     newest_run_of,
     require_policy,
 )
-from server.services.explanations import RevisedSince, explained_day, revised_since
 from server.services.forecast_record import RecordLine, record_lines
 from server.services.indicator_kinds import store_measures
 from server.services.level_data import area_figures
-from server.services.policy_columns import assessed_regions, policy_level
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.tiers import decision_scales, tier_label, tier_name
@@ -161,7 +161,7 @@ def _cutoff(session: Session, ruleset_id: int) -> datetime | None:
 
 def _assessed(session: Session, region: Region, row: RulesetRow) -> tuple[int, str | None]:
     """The region whose assessments a district shows under ``row`` (the region above it at the
-    policy's level, :func:`~server.services.policy_columns.assessed_regions`) and that region's
+    policy's level, :func:`~server.readmodels.policy_columns.assessed_regions`) and that region's
     name (None: the district itself)."""
     level = policy_level(parsed(row))
     if level != "districts":
@@ -380,7 +380,7 @@ def explanation_page(
 
     Shows the assessment made for the day, from the data as they were then (``as_of``: the one
     in force at that cutoff instead), and what the newest run reads differently
-    (:mod:`server.services.explanations`). Under ``policy`` (the lead policy when None; a
+    (:mod:`server.readmodels.explanations`). Under ``policy`` (the lead policy when None; a
     policy of ``level: areas`` explains the district's area).
     """
     region, area = _region(session, code)

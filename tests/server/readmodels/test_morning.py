@@ -10,8 +10,8 @@ from sqlalchemy import update
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedCatalogue, load_feeds, parse_feeds
+from server.readmodels.morning import morning_overview
 from server.services.feeds import feed_statuses
-from server.services.morning import morning_overview
 from server.services.review import current_run, decide, publish
 from server.store.models import Decision
 from tests.server.conftest import seen

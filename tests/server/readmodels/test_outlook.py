@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from rules import load_ruleset
-from server.services.outlook import APPROACHING_SHARE, outlook_from
+from server.readmodels.outlook import APPROACHING_SHARE, outlook_from
 from server.services.review import OfficialTier
 
 POLICY = load_ruleset(Path(__file__).parents[3] / "rules" / "policies" / "county.yaml")

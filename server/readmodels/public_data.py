@@ -3,7 +3,7 @@ data dictionary, and the entries of the public Atom feeds.
 
 Only what the public pages show is here: published tiers (never a recommendation or an
 unpublished decision, never a reason or a user name) and weekly case counts with small counts
-suppressed (:func:`server.services.pages.suppress_count`). Tier names are the active policy's, in
+suppressed (:func:`server.readmodels.pages.suppress_count`). Tier names are the active policy's, in
 the page's language; a tier published under an earlier policy with more tiers keeps its number
 and reads "Tier N". With several active policies every table row and feed entry names its policy
 (the ``policy`` column; decisions of a policy no longer active count for the lead one).
@@ -19,13 +19,13 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
-from server.services.evaluation import active_ruleset, active_rulesets
-from server.services.pages import (
+from server.readmodels.pages import (
     REPORTING_DELAY_DAYS,
     UnknownDistrictError,
     public_map,
     weekly_figures,
 )
+from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.store import read_dense

@@ -8,7 +8,7 @@ days the recommendation has held since. The assessment shown is the one made for
 the data as they were then (its first stored row), when it already recommended the change;
 otherwise, when the change only showed with later data, the row in force at the newest run.
 "Full explanation" opens the explanation page of that day at that row's cutoff
-(:func:`server.services.dossier.explanation_page` with ``as_of``), so card and page read the same
+(:func:`server.readmodels.dossier.explanation_page` with ``as_of``), so card and page read the same
 record.
 """
 

@@ -7,8 +7,8 @@ from dataclasses import dataclass
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from server.readmodels.review_cards import ReviewCard, review_cards
 from server.services.evaluation import active_rulesets, require_policy
-from server.services.review_cards import ReviewCard, review_cards
 from server.services.review_official import DecisionRecord, decision_history, policy_condition
 from server.services.review_pending import PendingChange, pending_changes
 from server.services.review_publication import has_something_to_publish

@@ -8,7 +8,7 @@ The assessment-derived part depends only on the active ruleset and the data cuto
 evaluation run, so it is built once per run and kept in memory; the review part (official tiers,
 pending changes) is merged in once per state of the decisions (one query per request tells).
 The lines are the lead policy's; with several active policies, :attr:`MorningOverview.policies`
-holds every policy's tier per district (:mod:`server.services.policy_columns`).
+holds every policy's tier per district (:mod:`server.readmodels.policy_columns`).
 """
 
 from __future__ import annotations
@@ -25,6 +25,8 @@ from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
 from server.feeds.definition import FeedCatalogue
+from server.readmodels.overview import DataOverview, data_overview
+from server.readmodels.policy_columns import PolicyColumn, policy_columns
 from server.services.errors import ServiceError
 from server.services.evaluation import (
     active_ruleset,
@@ -33,8 +35,6 @@ from server.services.evaluation import (
     newest_run_of,
 )
 from server.services.feeds import FeedStatus, feed_statuses
-from server.services.overview import DataOverview, data_overview
-from server.services.policy_columns import PolicyColumn, policy_columns
 from server.services.review import official_tiers, pending_changes
 from server.services.review_official import policy_owners
 from server.services.ruleset_cache import parsed

@@ -28,10 +28,10 @@ from sqlalchemy import Select, func, select, type_coerce
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
+from server.readmodels.outlook import Outlook, district_outlook
+from server.readmodels.policy_columns import assessed_regions, policy_level
 from server.services.errors import ServiceError
 from server.services.evaluation import active_ruleset, active_rulesets
-from server.services.outlook import Outlook, district_outlook
-from server.services.policy_columns import assessed_regions, policy_level
 from server.services.review_official import OfficialTier, official_tiers
 from server.services.ruleset_cache import parsed
 from server.store import read_dense
