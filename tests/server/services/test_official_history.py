@@ -20,7 +20,7 @@ from server.services.official_history import (
     read_official_history,
 )
 from server.services.review import decision_history, official_tiers, pending_changes
-from server.store.models import AuditEntry, Decision
+from server.store.models import AuditEntry, Decision, Region
 
 pytestmark = pytest.mark.slow
 
@@ -161,3 +161,30 @@ def test_one_bad_row_stores_nothing(
         import_official_history(session=demo_session, records=records, source="history.csv",
                                 actor="ines.admin")
     assert _count(demo_session) == 0
+
+
+def test_an_area_level_policy_takes_the_official_tiers_of_its_areas(
+    demo_session: Session, tmp_path: Path
+) -> None:
+    """A policy set for the areas (the demo's hospital-pressure policy) records its history
+    under the area codes; a district code is refused with file, line and field."""
+    from server.services.evaluation import store_ruleset
+
+    hospital = Path(__file__).resolve().parents[3] / "rules" / "policies" / "hospital.yaml"
+    store_ruleset(session=demo_session, path=hospital, author="test", activate=True)
+    areas = sorted(demo_session.scalars(select(Region.code).where(
+        Region.id.in_(select(Region.parent_id).where(Region.level == "district")))))
+    text = ("region,effective_date,tier,reason\n"
+            f"{areas[0]},2026-08-01,1,Weekly review: wards busy\n")
+    result = import_official_history(
+        session=demo_session, records=read_official_history(_write(tmp_path, text)),
+        source="history.csv", actor="ines.admin", policy="hospital-demo")
+    assert (result.stored, result.regions) == (1, (areas[0],))
+    stored = demo_session.scalars(select(Decision).where(Decision.policy == "hospital-demo"))
+    assert [(d.tier, d.effective_date) for d in stored] == [(1, date(2026, 8, 1))]
+    bad = read_official_history(_write(tmp_path, "region,effective_date,tier,reason\n"
+                                                 "D01,2026-08-01,1,x\n"))
+    with pytest.raises(InputFileError, match=r"history.csv: line 2, region: 'D01' is not one "
+                                             r"of the areas the policy hospital-demo"):
+        import_official_history(session=demo_session, records=bad, source="history.csv",
+                                actor="ines.admin", policy="hospital-demo")
