@@ -18,6 +18,25 @@ class InputFileError(ServiceError, ValueError):
         super().__init__(f"{location}: {problem}")
 
 
+class FormFieldError(ServiceError, ValueError):
+    """A form or option value the service refuses; ``field`` names the field."""
+
+    def __init__(self, field: str, message: str) -> None:
+        self.field = field
+        super().__init__(f"{field}: {message}")
+
+
+def checked_note(note: str, *, limit: int, missing: str, error: type[FormFieldError]) -> str:
+    """``note`` stripped; refused as field ``note`` (``missing``) when empty, or when longer
+    than ``limit`` characters."""
+    text = note.strip()
+    if not text:
+        raise error("note", missing)
+    if len(text) > limit:
+        raise error("note", f"{len(text)} characters, more than {limit}")
+    return text
+
+
 class SchemaOutOfDateError(ServiceError, RuntimeError):
     """The database is not at the newest migration."""
 

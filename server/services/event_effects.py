@@ -30,7 +30,7 @@ from server.indicators.before_after import (
 )
 from server.indicators.changepoints import detect_changepoints
 from server.services import audit
-from server.services.errors import ServiceError
+from server.services.errors import FormFieldError, checked_note
 from server.services.hierarchy import membership, sum_up
 from server.services.users import may
 from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
@@ -53,12 +53,8 @@ DEFAULT_SETTLE = 3
 NOTE_MAX = 2000
 
 
-class EventError(ServiceError, ValueError):
+class EventError(FormFieldError):
     """A recorded event or a period is refused; names the field."""
-
-    def __init__(self, field: str, message: str) -> None:
-        self.field = field
-        super().__init__(f"{field}: {message}")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -136,11 +132,7 @@ def record_event(
         raise EventError("user", f"{user!r} may not record events")
     if kind not in EVENT_KINDS:
         raise EventError("kind", f"{kind!r} is not one of {', '.join(EVENT_KINDS)}")
-    text = note.strip()
-    if not text:
-        raise EventError("note", "an event needs a note")
-    if len(text) > NOTE_MAX:
-        raise EventError("note", f"{len(text)} characters, more than {NOTE_MAX}")
+    text = checked_note(note, limit=NOTE_MAX, missing="an event needs a note", error=EventError)
     target = _region_by_code(session, region.strip())
     at = now or dt.datetime.now(dt.UTC)
     row = RecordedEvent(region_id=target.id, day=day, kind=kind, note=text,

@@ -21,7 +21,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from server.services import audit
-from server.services.errors import ServiceError
+from server.services.errors import FormFieldError, checked_note
 from server.services.users import may
 from server.store.models import Region, TestingChangeReview, User
 
@@ -34,12 +34,8 @@ NOTE_MAX = 500
 SAME_CHANGE_DAYS = 3
 
 
-class TestingReviewError(ServiceError, ValueError):
+class TestingReviewError(FormFieldError):
     """A verdict the service refuses; ``field`` names the form field."""
-
-    def __init__(self, field: str, message: str) -> None:
-        self.field = field
-        super().__init__(f"{field}: {message}")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -63,11 +59,8 @@ def review_testing_change(
         raise TestingReviewError("user", f"{user!r} may not review testing changes")
     if verdict not in VERDICTS:
         raise TestingReviewError("verdict", f"{verdict!r} is not one of {', '.join(VERDICTS)}")
-    text = note.strip()
-    if not text:
-        raise TestingReviewError("note", "a verdict needs a note")
-    if len(text) > NOTE_MAX:
-        raise TestingReviewError("note", f"{len(text)} characters, more than {NOTE_MAX}")
+    text = checked_note(note, limit=NOTE_MAX, missing="a verdict needs a note",
+                        error=TestingReviewError)
     target = session.scalar(select(Region).where(Region.code == region.strip()))
     if target is None or target.level != "district":
         raise TestingReviewError("region", f"no district with code {region!r}")
