@@ -58,7 +58,7 @@ def rules_check(
     measures = None
     if store:
         from server.services.database import Database
-        from server.services.indicator_kinds import store_measures
+        from server.services.district_data import store_measures
 
         db = Database.from_settings(settings)
         try:

@@ -48,6 +48,7 @@ from server.indicators.nowcast import (
     nowcast_window,
     triangle_from_rows,
 )
+from server.services.district_data import store_measures
 from server.services.district_indicators import (
     AREA_MEASURES,
     DISTRICT_MEASURES,
@@ -67,7 +68,7 @@ from server.services.district_indicators import (
 )
 from server.services.errors import ServiceError
 from server.services.hierarchy import hierarchy
-from server.services.indicator_kinds import measure_needs, sample_indicators, store_measures
+from server.services.indicator_kinds import measure_needs, sample_indicators
 from server.services.level_data import at_level, policy_data
 from server.store.models import Measure, Observation, Region, Vintage
 from server.store.reads import read_dense

@@ -1,6 +1,6 @@
 """Use case: projected ICU pressure as indicator series for the rules engine.
 
-Two indicator kinds, registered in :mod:`server.services.indicator_kinds` (``from_named_builder``):
+Two indicator kinds, listed in :mod:`server.services.builtin_kinds` (``from_named_builder``):
 
 ``icu_share_projected``
     The ICU share of staffed beds (percent) expected ``horizon`` days ahead (param, default 14)

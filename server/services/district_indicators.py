@@ -132,7 +132,7 @@ def on_nowcast(
 #: Indicators computed by name (a function of the data and the ruleset), beside the kinds of
 #: :mod:`server.services.indicator_kinds`: a policy may declare a name from here without
 #: ``kind``. Registering a kind there is the better way (its parameters and measures are
-#: checked; ``indicator_kinds.from_named_builder`` turns one of these into a kind); this table
+#: checked; ``kind_model.from_named_builder`` turns one of these into a kind); this table
 #: keeps name-based builders working.
 BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {}
 

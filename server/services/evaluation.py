@@ -67,13 +67,14 @@ from rules import Evaluation, Ruleset, parse_ruleset
 from server.services import run_fingerprints
 from server.services.audit import record
 from server.services.database import Database
+from server.services.district_data import store_measures
 from server.services.errors import ServiceError
 from server.services.forecast_record import (
     Forecaster,
     forecasts_stored,
     store_morning_forecasts,
 )
-from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
+from server.services.indicator_kinds import indicator_check, measure_needs
 from server.services.level_data import evaluate_policy
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.services.ruleset_cache import parsed

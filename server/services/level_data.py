@@ -30,14 +30,18 @@ from sqlalchemy.orm import Session
 
 from rules import Evaluation, FieldError, Ruleset, evaluate
 from server.indicators.aggregate import MAX_MISSING_SHARE, membership, sum_counts, weighted_mean
-from server.services.district_data import DistrictData, MeasureNeeds, load_district_data
+from server.services.district_data import (
+    DistrictData,
+    MeasureNeeds,
+    load_district_data,
+    store_measures,
+)
 from server.services.district_indicators import district_indicators
 from server.services.hierarchy import Hierarchy, hierarchy
 from server.services.indicator_kinds import (
     known_measures,
     measure_needs,
     resolve,
-    store_measures,
 )
 
 __all__ = ["aggregate_data", "area_figures", "at_level", "evaluate_policy", "policy_data"]

@@ -1,7 +1,7 @@
 """The phase of each district's current wave: the ``wave_phase`` indicator and the page panel.
 
-:func:`wave_phase_series` builds the indicator a policy may use (registered in
-:mod:`server.services.indicator_kinds`). Its value on a day is the phase code of
+:func:`wave_phase_series` builds the indicator a policy may use (listed in
+:mod:`server.services.builtin_kinds`). Its value on a day is the phase code of
 :func:`server.indicators.phase.fit_phase` on the district's cases of the :data:`WINDOW_DAYS`
 days to that day (``0`` declining, ``1`` past its turning point, ``2`` slowing, ``3`` growing;
 :data:`server.indicators.phase.PHASES`). Fits are made on *cutoff days*: the last day and every

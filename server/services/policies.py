@@ -18,9 +18,10 @@ from sqlalchemy.orm import Session
 
 from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
+from server.services.district_data import store_measures
 from server.services.errors import ServiceError
 from server.services.evaluation import activate_ruleset, active_ruleset, retire_ruleset
-from server.services.indicator_kinds import indicator_check, store_measures
+from server.services.indicator_kinds import indicator_check
 from server.services.notify import NotifyConfig
 from server.services.ruleset_cache import parsed
 from server.store.models import Ruleset as RulesetRow

@@ -15,9 +15,9 @@ from sqlalchemy.orm import Session
 from rules import parse_ruleset
 from server.feeds.definition import FeedConfigError, parse_feeds
 from server.feeds.sources import Payload
-from server.services.district_data import load_district_data
+from server.services.district_data import load_district_data, store_measures
 from server.services.district_indicators import district_indicators
-from server.services.indicator_kinds import indicator_check, measure_needs, store_measures
+from server.services.indicator_kinds import indicator_check, measure_needs
 from server.services.ingest import ingest_payload
 from server.store import MeasureRecord, RegionRecord, read_dense, upsert_measures, upsert_regions
 from server.store.models import Measure
