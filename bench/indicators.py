@@ -647,13 +647,9 @@ def forecast_store_section(cases: np.ndarray, regions: int, mornings: int = 100)
 
     from server.indicators.quantile_forecast import QuantileForecast
     from server.services.database import Database
-    from server.services.forecast_record import (
-        KnownData,
-        store_forecasts,
-    )
-    from server.services.forecast_record import (
-        forecast_record as stored_record,
-    )
+    from server.services.forecast_known import KnownData
+    from server.services.forecast_record import forecast_record as stored_record
+    from server.services.forecast_store import store_forecasts
     from server.store import (
         MeasureRecord,
         RegionRecord,

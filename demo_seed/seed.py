@@ -42,7 +42,7 @@ from server.services.evaluation import (
     store_ruleset,
 )
 from server.services.feed_state import record_feed_state
-from server.services.forecast_record import store_forecasts_as_known
+from server.services.forecast_store import store_forecasts_as_known
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions

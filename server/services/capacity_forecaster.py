@@ -1,7 +1,7 @@
 """The forecaster of the forecast record: the capacity forecasts, made from data as known.
 
-:class:`CapacityForecaster` fits the :class:`server.services.forecast_record.Forecaster`
-protocol: from the stored measures known at a cutoff (:class:`~server.services.forecast_record.
+:class:`CapacityForecaster` fits the :class:`server.services.forecast_known.Forecaster`
+protocol: from the stored measures known at a cutoff (:class:`~server.services.forecast_known.
 KnownData`) it makes the same forecasts as the capacity page
 (:func:`server.indicators.capacity.capacity_forecasts`): hospital admissions per district, and
 per area (the districts' parent) admissions summed over its districts, ICU beds in use and their
@@ -31,7 +31,7 @@ from server.store.models import Ruleset as RulesetRow
 from server.store.reads import district_areas
 
 if TYPE_CHECKING:
-    from server.services.forecast_record import KnownData
+    from server.services.forecast_known import KnownData
 
 #: Simulations per region and morning (the record needs quantiles, not a smooth fan).
 RECORD_SIMS = 400

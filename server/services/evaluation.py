@@ -69,11 +69,8 @@ from server.services.audit import record
 from server.services.database import Database
 from server.services.district_data import store_measures
 from server.services.errors import ServiceError
-from server.services.forecast_record import (
-    Forecaster,
-    forecasts_stored,
-    store_morning_forecasts,
-)
+from server.services.forecast_known import Forecaster
+from server.services.forecast_store import forecasts_stored, store_morning_forecasts
 from server.services.indicator_kinds import indicator_check, measure_needs
 from server.services.level_data import evaluate_policy
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day

@@ -1,366 +1,65 @@
-"""Use case: the honest record of the forecasts (stored each morning, scored when outcomes arrive).
+"""Use case: the honest record of the stored forecasts, scored when outcomes arrive.
 
-Every morning, after the tiers are written, :func:`store_morning_forecasts` asks the forecaster
-for its :class:`~server.indicators.quantile_forecast.QuantileForecast` objects, made from the data
-as known at the run's cutoff (:func:`read_known`), and :func:`store_forecasts` keeps them with
-that cutoff and each region's naive baseline (the mean of the target over the 7 days ending at
-the origin, as known at the cutoff). A rerun at the same (target, scenario, cutoff) replaces the
-stored forecast.
-
-:func:`forecast_record` scores the stored forecasts whose target days have outcomes: coverage of
-the 50 % and 90 % central intervals, mean weighted interval score and its ratio to the mean
-absolute error of the naive baseline (server/indicators/forecast_scores.py), per target,
-scenario, region and horizon, over the newest ``last`` scored forecasts. Outcomes are read *as
-known now* (the newest vintage of each day: final values, revisions applied), not as known at
-any morning.
+:func:`forecast_record` scores the stored forecasts (:mod:`server.services.forecast_store`)
+whose target days have outcomes: coverage of the 50 % and 90 % central intervals, mean weighted
+interval score and its ratio to the mean absolute error of the naive baseline
+(server/indicators/forecast_scores.py), per target, scenario, region and horizon, over the
+newest ``last`` scored forecasts. Outcomes are read *as known now* (the newest vintage of each
+day: final values, revisions applied), not as known at any morning.
 
 :func:`forecast_record_as_known` computes the same record over the past without the store:
-morning ``t`` sees what was received by the end of local day ``t + 1`` (the as-known replay of
-``tierwise backtest``), the forecaster runs on that, and the forecasts are scored the same way.
-
-The forecaster is a parameter everywhere: anything with ``name``, ``measures`` (the stored
-measures it reads) and ``__call__(known) -> Sequence[QuantileForecast]``. The default is
-:func:`default_forecaster` (the capacity forecaster; :class:`PoissonPersistence` where there are
-no areas).
+morning ``t`` sees what was received by the end of local day ``t + 1``
+(:func:`~server.services.forecast_known.as_known_mornings`), the forecaster runs on that, and the
+forecasts are scored the same way. :func:`record_lines` are the page sentences of one region.
 """
 
 from __future__ import annotations
 
-import logging
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta, tzinfo
-from typing import Protocol
 
 import numpy as np
 from numpy.typing import NDArray
-from sqlalchemy import delete, func, insert, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from server.indicators.forecast_scores import (
-    ForecastRecord,
-    ForecastScores,
-    last_week_mean,
-    poisson_persistence,
-    score_forecasts,
-)
+from server.indicators.forecast_scores import ForecastRecord, ForecastScores, score_forecasts
 from server.indicators.forecast_scores import forecast_record as summarise_scores
-from server.indicators.quantile_forecast import DEFAULT_LEVELS, QuantileForecast
-from server.services.capacity_forecaster import record_forecaster
-from server.services.errors import ServiceError
-from server.services.hierarchy import fill_parents, hierarchy
-from server.store.errors import UnknownCodeError
-from server.store.models import (
-    ForecastQuantiles,
-    ForecastRun,
-    Measure,
-    Observation,
-    Region,
-    Vintage,
+from server.indicators.quantile_forecast import QuantileForecast
+from server.services.forecast_known import (
+    SUMMED_UP,
+    TARGET_MEASURES,
+    Forecaster,
+    ForecastRecordError,
+    as_known_mornings,
+    present_measures,
+    summed_up,
+    target_values,
 )
-from server.store.reads import read_dense, read_vintage_rows
+from server.services.forecast_store import baselines
+from server.services.forecasters import default_forecaster
+from server.services.hierarchy import hierarchy
+from server.store.models import ForecastQuantiles, ForecastRun, Measure, Observation, Region
+from server.store.reads import read_dense
 
 __all__ = [
-    "DEFAULT_FORECASTER",
-    "HISTORY_DAYS",
-    "TARGET_MEASURES",
-    "Forecaster",
-    "ForecastRecordError",
-    "KnownData",
-    "PoissonPersistence",
+    "SCORE_CHUNK",
+    "SETTLE_DAYS",
     "RecordCell",
     "RecordLine",
-    "SETTLE_DAYS",
     "forecast_record",
     "forecast_record_as_known",
-    "forecasts_stored",
-    "read_known",
     "record_lines",
-    "store_forecasts",
-    "store_forecasts_as_known",
-    "store_morning_forecasts",
-    "target_values",
 ]
 
-log = logging.getLogger(__name__)
-
-#: Days of history a forecaster is given, ending at the newest day known at the cutoff.
-HISTORY_DAYS = 56
 #: Target days this close to the newest stored day of a target are not scored yet: their counts
 #: are still being reported (common practice, no source; the nowcast, docs/estimate.md, shows how
 #: much of a day arrives late).
 SETTLE_DAYS = 7
 #: Region forecasts scored in one pass (bounds the memory of the quantile arrays).
 SCORE_CHUNK = 100_000
-#: The stored measures each target is made of; ``icu_share`` is occupied / staffed beds in
-#: percent, as the capacity forecasts give it (server/indicators/capacity.py).
-TARGET_MEASURES: dict[str, tuple[str, ...]] = {
-    "hosp_admissions": ("hosp_admissions",),
-    "icu_occupied": ("icu_occupied",),
-    "icu_share": ("icu_occupied", "icu_staffed"),
-}
-#: Measures reported per district whose area (and county) figures are their districts' sums
-#: (:func:`server.services.hierarchy.fill_parents`), so that area forecasts have a baseline
-#: and an outcome to be scored against.
-SUMMED_UP = ("hosp_admissions",)
 
-
-def _summed_up(values: dict[str, NDArray[np.float64]], regions: Sequence[str],
-               parent_of: Mapping[str, str | None]) -> dict[str, NDArray[np.float64]]:
-    return {m: fill_parents(v, regions, parent_of) if m in SUMMED_UP else v
-            for m, v in values.items()}
-
-
-class ForecastRecordError(ServiceError, ValueError):
-    """A forecast that cannot be stored or scored; names what is wrong."""
-
-
-def target_values(target: str, values: Mapping[str, NDArray[np.float64]]) -> NDArray[np.float64]:
-    """The (regions, days) series of ``target`` from its measures (:data:`TARGET_MEASURES`)."""
-    if target not in TARGET_MEASURES:
-        raise ForecastRecordError(
-            f"target: {target!r} is not one of {', '.join(sorted(TARGET_MEASURES))}")
-    if target == "icu_share":
-        with np.errstate(invalid="ignore", divide="ignore"):
-            staffed = values["icu_staffed"]
-            return np.where(staffed > 0, 100.0 * values["icu_occupied"] / staffed, np.nan)
-    return values[TARGET_MEASURES[target][0]]
-
-
-@dataclass(frozen=True, kw_only=True)
-class KnownData:
-    """What a forecaster sees: stored measures as known at ``cutoff``, (regions, days) each.
-
-    ``dates`` ends at the newest day any of the measures has a value for at the cutoff; regions
-    are every region in code order (NaN rows for regions that do not report a measure).
-    """
-
-    cutoff: datetime
-    regions: tuple[str, ...]
-    dates: NDArray[np.datetime64]
-    values: dict[str, NDArray[np.float64]]
-
-    def target(self, name: str) -> NDArray[np.float64]:
-        return target_values(name, self.values)
-
-    def last_day(self, name: str) -> int | None:
-        """Index of the newest day with a value of ``name`` in any region (None: none)."""
-        seen = np.flatnonzero(np.isfinite(self.target(name)).any(axis=0))
-        return int(seen[-1]) if seen.size else None
-
-
-class Forecaster(Protocol):
-    """Makes forecasts from data as known at a cutoff (see the module docstring)."""
-
-    @property
-    def name(self) -> str: ...
-
-    @property
-    def measures(self) -> tuple[str, ...]: ...
-
-    def __call__(self, known: KnownData) -> Sequence[QuantileForecast]: ...
-
-
-@dataclass(frozen=True)
-class PoissonPersistence:
-    """Poisson quantiles around the last week's mean, per region, the same for every horizon
-    (:func:`server.indicators.forecast_scores.poisson_persistence`): the baseline made
-    probabilistic, for count targets only. Regions without 4 known days in the last week of a
-    target are left out of its forecast."""
-
-    targets: tuple[str, ...] = ("hosp_admissions", "icu_occupied")
-    horizons: tuple[int, ...] = tuple(range(1, 22))
-    levels: tuple[float, ...] = DEFAULT_LEVELS
-    scenario: str = "persistence"
-    name: str = "poisson-persistence"
-
-    @property
-    def measures(self) -> tuple[str, ...]:
-        return tuple(dict.fromkeys(m for t in self.targets for m in TARGET_MEASURES[t]))
-
-    def __call__(self, known: KnownData) -> list[QuantileForecast]:
-        out = []
-        for target in self.targets:
-            end = known.last_day(target)
-            if end is None:
-                continue
-            history = known.target(target)[:, : end + 1]
-            values = poisson_persistence(history, horizons=self.horizons, levels=self.levels)
-            keep = np.flatnonzero(np.isfinite(values[:, 0, 0]))
-            if keep.size == 0:
-                continue
-            out.append(QuantileForecast(
-                target=target, scenario=self.scenario,
-                regions=tuple(known.regions[i] for i in keep),
-                origin=known.dates[end].astype(date), horizons=np.asarray(self.horizons),
-                levels=np.asarray(self.levels), values=values[keep],
-            ))
-        return out
-
-
-#: The forecaster where the capacity forecaster has nothing to forecast (no district has an area).
-DEFAULT_FORECASTER: Forecaster = PoissonPersistence()
-
-
-def default_forecaster(session: Session) -> Forecaster:
-    """The forecaster of the morning's stored forecasts and of ``tierwise backtest``: the
-    capacity forecaster under the active ruleset's first scenario
-    (:mod:`server.services.capacity_forecaster`), else :data:`DEFAULT_FORECASTER`."""
-    return record_forecaster(session) or DEFAULT_FORECASTER
-
-
-# -- reading what was known ---------------------------------------------------------------------
-
-def read_known(
-    *, session: Session, cutoff: datetime, measures: Sequence[str], days: int = HISTORY_DAYS
-) -> KnownData | None:
-    """The last ``days`` days of ``measures`` as known at ``cutoff`` (None: nothing known)."""
-    newest = session.scalar(
-        select(func.max(Observation.ref_date))
-        .join(Vintage, Vintage.id == Observation.vintage_id)
-        .join(Measure, Measure.id == Observation.measure_id)
-        .where(Measure.name.in_(measures), Vintage.received_at <= cutoff)
-    )
-    if newest is None:
-        return None
-    dense = read_dense(session=session, measures=list(measures),
-                       start=newest - timedelta(days=days - 1), end=newest, as_of=cutoff)
-    return KnownData(cutoff=cutoff, regions=dense.regions, dates=dense.dates,
-                     values=_summed_up(dict(dense.values), dense.regions,
-                                       hierarchy(session=session).parent_of))
-
-
-# -- storing ------------------------------------------------------------------------------------
-
-def _baselines(forecast: QuantileForecast, known: KnownData) -> NDArray[np.float64]:
-    """Each forecast region's mean of the target over the 7 days ending at the origin (NaN where
-    ``known`` lacks the target's measures or the region)."""
-    if any(m not in known.values for m in TARGET_MEASURES.get(forecast.target, ("?",))):
-        return np.full(len(forecast.regions), np.nan)
-    series = known.target(forecast.target)
-    origin = np.datetime64(forecast.origin, "D")
-    end = int((origin - known.dates[0]).astype(np.int64))
-    rows = {code: i for i, code in enumerate(known.regions)}
-    if end < 0 or end >= known.dates.size:
-        return np.full(len(forecast.regions), np.nan)
-    pick = np.array([rows.get(code, -1) for code in forecast.regions], dtype=np.int64)
-    means = last_week_mean(series[:, : end + 1])
-    return np.where(pick >= 0, means[np.maximum(pick, 0)], np.nan)
-
-
-def store_forecasts(
-    *, session: Session, forecasts: Iterable[QuantileForecast], cutoff: datetime,
-    known: KnownData, forecaster: str = "",
-) -> int:
-    """Store ``forecasts`` made at ``cutoff`` from ``known``; returns the region rows written.
-
-    One :class:`ForecastRun` per forecast and one :class:`ForecastQuantiles` row per region; a
-    forecast already stored for the same (target, scenario, cutoff) is replaced, never
-    duplicated. Does not commit.
-    """
-    region_ids = dict(session.execute(select(Region.code, Region.id)).all())
-    written = 0
-    now = datetime.now(UTC)
-    for fc in _merged(forecasts):
-        missing = [c for c in fc.regions if c not in region_ids]
-        if missing:
-            raise UnknownCodeError("region", missing)
-        if fc.target not in TARGET_MEASURES:
-            raise ForecastRecordError(
-                f"target: {fc.target!r} is not one of {', '.join(sorted(TARGET_MEASURES))}")
-        values = np.ascontiguousarray(fc.values, dtype="<f8")
-        if not np.all(np.isfinite(values)):
-            raise ForecastRecordError(
-                f"{fc.target}/{fc.scenario}: quantiles must be finite (region "
-                f"{fc.regions[int(np.argwhere(~np.isfinite(values))[0][0])]!r})")
-        crossed = np.diff(values, axis=2) < 0
-        if crossed.any():
-            r, h, _ = np.argwhere(crossed)[0]
-            raise ForecastRecordError(
-                f"{fc.target}/{fc.scenario}: quantiles decrease with the level (region "
-                f"{fc.regions[int(r)]!r}, horizon {int(fc.horizons[int(h)])})")
-        base = _baselines(fc, known)
-        with session.begin_nested():
-            old = select(ForecastRun.id).where(
-                ForecastRun.target == fc.target, ForecastRun.scenario == fc.scenario,
-                ForecastRun.data_cutoff == cutoff).scalar_subquery()
-            session.execute(delete(ForecastQuantiles).where(ForecastQuantiles.run_id == old))
-            session.execute(delete(ForecastRun).where(
-                ForecastRun.target == fc.target, ForecastRun.scenario == fc.scenario,
-                ForecastRun.data_cutoff == cutoff))
-            run = ForecastRun(
-                target=fc.target, scenario=fc.scenario, data_cutoff=cutoff, origin=fc.origin,
-                forecaster=forecaster, horizons=[int(h) for h in fc.horizons],
-                levels=[float(x) for x in fc.levels], created_at=now,
-            )
-            session.add(run)
-            session.flush()
-            rows = [
-                {"run_id": run.id, "region_id": region_ids[code],
-                 "baseline": float(b) if np.isfinite(b) else None,
-                 "quantiles": values[i].tobytes()}
-                for i, (code, b) in enumerate(zip(fc.regions, base, strict=True))
-            ]
-            if rows:
-                session.execute(insert(ForecastQuantiles), rows)
-        written += len(rows)
-    return written
-
-
-def _merged(forecasts: Iterable[QuantileForecast]) -> list[QuantileForecast]:
-    """One forecast per (target, scenario): a forecaster may return several (the capacity
-    forecaster's districts and areas), and a run is stored per (target, scenario, cutoff)."""
-    groups: dict[tuple[str, str], list[QuantileForecast]] = {}
-    for fc in forecasts:
-        groups.setdefault((fc.target, fc.scenario), []).append(fc)
-    out = []
-    for (target, scenario), items in groups.items():
-        head = items[0]
-        for other in items[1:]:
-            if (other.origin != head.origin or not np.array_equal(other.horizons, head.horizons)
-                    or not np.array_equal(other.levels, head.levels)):
-                raise ForecastRecordError(
-                    f"{target}/{scenario}: forecasts of one morning differ in origin, horizons "
-                    "or levels")
-        regions = tuple(c for f in items for c in f.regions)
-        if len(set(regions)) < len(regions):
-            raise ForecastRecordError(f"{target}/{scenario}: a region is forecast twice")
-        out.append(head if len(items) == 1 else QuantileForecast(
-            target=target, scenario=scenario, regions=regions, origin=head.origin,
-            horizons=head.horizons, levels=head.levels,
-            values=np.concatenate([f.values for f in items])))
-    return out
-
-
-def store_morning_forecasts(
-    *, session: Session, cutoff: datetime, forecaster: Forecaster | None = None,
-) -> int:
-    """The morning step: forecasts from the data known at ``cutoff``, stored with it.
-
-    Runs after the tiers are written (:func:`server.services.evaluation.evaluate_if_behind`).
-    Returns the region rows written (0 when nothing is known yet).
-    """
-    fc = forecaster or default_forecaster(session)
-    known = read_known(session=session, cutoff=cutoff, measures=_present(session, fc.measures))
-    if known is None:
-        return 0
-    return store_forecasts(session=session, forecasts=fc(known), cutoff=cutoff, known=known,
-                           forecaster=fc.name)
-
-
-def _present(session: Session, measures: Sequence[str]) -> list[str]:
-    """The measures the catalogue holds, from ``measures`` (others are left out of ``known``)."""
-    have = set(session.scalars(select(Measure.name).where(Measure.name.in_(measures))))
-    return [m for m in measures if m in have]
-
-
-def forecasts_stored(*, session: Session, cutoff: datetime) -> bool:
-    """Whether any forecast was stored at ``cutoff``."""
-    return session.scalar(
-        select(ForecastRun.id).where(ForecastRun.data_cutoff == cutoff).limit(1)) is not None
-
-
-# -- scoring ------------------------------------------------------------------------------------
 
 @dataclass(frozen=True, kw_only=True)
 class RecordCell:
@@ -406,15 +105,15 @@ def _outcomes(
 ) -> tuple[dict[str, int], NDArray[np.float64]]:
     """The target's values as known now, (regions, days) from ``start``; NaN on the last
     ``settle_days`` days of the target's stored data (not final yet)."""
-    have = _present(session, TARGET_MEASURES[target])
+    have = present_measures(session, TARGET_MEASURES[target])
     if len(have) < len(TARGET_MEASURES[target]):
         return {c: i for i, c in enumerate(regions)}, np.full((len(regions), 1), np.nan)
     measures = list(TARGET_MEASURES[target])
     summed = any(m in SUMMED_UP for m in measures)  # read the districts under areas too
     dense = read_dense(session=session, measures=measures, start=start, end=end,
                        regions=None if summed else list(regions))
-    values = target_values(target, _summed_up(dict(dense.values), dense.regions,
-                                              hierarchy(session=session).parent_of)
+    values = target_values(target, summed_up(dict(dense.values), dense.regions,
+                                             hierarchy(session=session).parent_of)
                            if summed else dense.values)
     newest = session.scalar(
         select(func.max(Observation.ref_date)).join(Measure, Measure.id == Observation.measure_id)
@@ -614,88 +313,14 @@ def forecast_record_as_known(
     pooled cells (``region`` None).
     """
     made = [
-        _Made(forecast=f, baseline=_baselines(f, known), cutoff=known.cutoff)
-        for known, forecasts in _as_known_mornings(
+        _Made(forecast=f, baseline=baselines(f, known), cutoff=known.cutoff)
+        for known, forecasts in as_known_mornings(
             session=session, forecaster=forecaster or default_forecaster(session),
             time_zone=time_zone, start=start, end=end, step=step)
         for f in forecasts
     ]
     return _score(session, made, last=last, pooled=True, settle_days=settle_days)
 
-
-def store_forecasts_as_known(
-    *, session: Session, forecaster: Forecaster | None = None, time_zone: tzinfo = UTC,
-    start: date | None = None, end: date | None = None, step: int = 1,
-) -> int:
-    """Store the forecasts past mornings would have made, each from the data known that morning.
-
-    The same replay as :func:`forecast_record_as_known` (morning ``t``'s cutoff is
-    :func:`server.services.backtest.as_known_cutoff` of ``t``), kept with
-    :func:`store_forecasts` as if the morning step had run on each of those mornings; the demo
-    seeds its record so (``demo_seed/seed.py``). Returns the region rows written. Does not
-    commit.
-    """
-    fc = forecaster or default_forecaster(session)
-    written = 0
-    for known, forecasts in _as_known_mornings(session=session, forecaster=fc,
-                                               time_zone=time_zone, start=start, end=end,
-                                               step=step):
-        written += store_forecasts(session=session, forecasts=forecasts, cutoff=known.cutoff,
-                                   known=known, forecaster=fc.name)
-    return written
-
-
-def _as_known_mornings(
-    *, session: Session, forecaster: Forecaster, time_zone: tzinfo, start: date | None,
-    end: date | None, step: int,
-) -> Iterator[tuple[KnownData, list[QuantileForecast]]]:
-    """Each replayed morning's data as known (cutoff included) and the forecasts made from it."""
-    from server.services.backtest import as_known_cutoff, data_span
-
-    fc = forecaster
-    measures = _present(session, fc.measures)
-    first, last_day = data_span(session=session)
-    start = start or first + timedelta(days=7)
-    end = end or last_day
-    if step < 1:
-        raise ForecastRecordError(f"step: expected at least 1 day, got {step}")
-    if end < start:
-        raise ForecastRecordError(f"end {end} is before start {start}")
-    codes = tuple(session.scalars(select(Region.code).order_by(Region.code)))
-    tree = hierarchy(session=session).parent_of
-    n_days = (last_day - first).days + 1
-    rows = read_vintage_rows(session=session, measures=measures, regions=codes, start=first,
-                             end=last_day)
-    # the local day each vintage was received, less one: the morning that first knows it
-    stamps, which = np.unique(rows.received_at, return_inverse=True)
-    local = np.array([(s.replace(tzinfo=UTC).astimezone(time_zone).date() - first).days - 1
-                      for s in stamps.astype("datetime64[us]").astype(object)], dtype=np.int64)
-    m_a, r_a, c_a, v_a = rows.measure, rows.region, rows.ref_day, rows.value
-    k_a = local[which] if local.size else np.zeros(0, dtype=np.int64)
-    dense = np.full((len(measures), len(codes), n_days), np.nan)
-    applied = 0
-    dates = np.arange(np.datetime64(first, "D"), np.datetime64(last_day, "D") + 1)
-    for t in range((start - first).days, (end - first).days + 1):
-        # rows come in order of receipt, so their as-known days never decrease
-        stop = int(np.searchsorted(k_a, t, side="right"))
-        new = np.arange(applied, stop)
-        dense[m_a[new], r_a[new], c_a[new]] = v_a[new]
-        applied = stop
-        if (t - (start - first).days) % step:
-            continue
-        seen = np.flatnonzero(np.isfinite(dense[:, :, : t + 1]).any(axis=(0, 1)))
-        if seen.size == 0:
-            continue
-        newest = int(seen[-1])
-        lo = max(newest - HISTORY_DAYS + 1, 0)
-        cutoff = as_known_cutoff(first + timedelta(days=t), time_zone)
-        known = KnownData(cutoff=cutoff, regions=codes, dates=dates[lo: newest + 1],
-                          values=_summed_up({m: dense[k, :, lo: newest + 1].copy()
-                                             for k, m in enumerate(measures)}, codes, tree))
-        yield known, list(fc(known))
-
-
-# -- sentences for pages ------------------------------------------------------------------------
 
 @dataclass(frozen=True, kw_only=True)
 class RecordLine:

@@ -130,7 +130,7 @@ def test_forecasts_at_a_cutoff_cover_every_district_and_area(demo_session: Sessi
 
     from server.services.backtest import as_known_cutoff
     from server.services.capacity_forecaster import record_forecaster
-    from server.services.forecast_record import read_known
+    from server.services.forecast_known import read_known
 
     fc = record_forecaster(demo_session)
     assert fc is not None and fc.scenario.name == "trend"

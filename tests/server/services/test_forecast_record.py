@@ -1,5 +1,6 @@
 """The forecast record on a small simulated store: storing, replacing, scoring, the as-known
-replay, and the page sentences."""
+replay, and the page sentences (forecast_store.py, forecast_record.py and forecast_known.py
+together, on one simulated store)."""
 
 from __future__ import annotations
 
@@ -22,19 +23,19 @@ from server.services.backtest import as_known_cutoff
 from server.services.database import Database
 from server.services.evaluation import evaluate_if_behind, store_forecasts_after_tiers
 from server.services.feeds import ingest_recorded
+from server.services.forecast_known import ForecastRecordError, KnownData, read_known
 from server.services.forecast_record import (
     SETTLE_DAYS,
-    ForecastRecordError,
-    KnownData,
-    PoissonPersistence,
     forecast_record,
     forecast_record_as_known,
-    read_known,
     record_lines,
+)
+from server.services.forecast_store import (
     store_forecasts,
     store_forecasts_as_known,
     store_morning_forecasts,
 )
+from server.services.forecasters import PoissonPersistence
 from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.errors import UnknownCodeError
 from server.store.models import ForecastQuantiles, ForecastRun
