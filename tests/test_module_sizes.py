@@ -24,7 +24,6 @@ OVER_THE_LIMIT = frozenset({
     "server/services/forecast_record.py",  # forecasters, stored forecasts and their scoring
     "server/services/evaluation.py",  # rulesets, evaluation runs and assessment reads
     "server/services/backtest.py",  # the as-known backtest and its replay of past data
-    "server/readmodels/morning.py",  # the morning step (use case) and the overview (read model)
 })
 
 
