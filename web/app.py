@@ -11,6 +11,7 @@ from fastapi.responses import RedirectResponse
 from fastapi.staticfiles import StaticFiles
 
 from server.config import Settings
+from server.readmodels.cache import BoundedCache
 from server.services.auth import LoginLimiter, SessionSigner
 from server.services.backtest_jobs import BacktestJobs
 from server.services.database import Database
@@ -33,7 +34,7 @@ from web.apidocs import mount_api_docs
 from web.caching import PageCache, StampInvalidator, StampMemo
 from web.errors import install_error_handlers
 from web.feeds_api import router as feeds_api_router
-from web.mapsvg import MapCache
+from web.mapsvg import SvgMap
 from web.security import SecurityHeaders
 from web.staff_feeds import router as staff_feeds_router
 from web.templating import local_time, make_templates  # noqa: F401 - local_time: older imports
@@ -86,11 +87,14 @@ def create_app(
     app.state.notify = notify_config_from(settings.notify_file)
     app.state.signer = SessionSigner(settings.secret_key)
     app.state.login_limiter = LoginLimiter(db)
-    app.state.page_cache = PageCache()
+    app.state.page_cache = PageCache(size=4096)
     app.state.public_stamps = StampMemo()
     # jobs run in this process; their state is in the database (server/services/backtest_jobs)
     app.state.backtests = BacktestJobs(db, time_zone=settings.zone)
-    app.state.maps = MapCache()
+    # per worker, under keys that change with the data: the projected staff map (the newest
+    # few) and the rendered "Data on hand" section (web/staff.py)
+    app.state.maps = BoundedCache[str, SvgMap](size=8)
+    app.state.staff_fragments = BoundedCache[tuple[object, ...], str](size=4)
     # one evaluation thread per process; pushes and uploads ask it and do not wait
     app.state.evaluations = EvaluationWorker(
         db, notify=app.state.notify, limits=lambda: catalogue_limits(load_catalogue(settings)),

@@ -19,7 +19,6 @@ from __future__ import annotations
 import hashlib
 import threading
 import time
-from collections import OrderedDict
 from collections.abc import Awaitable, Callable, MutableMapping
 from datetime import datetime
 from email.utils import format_datetime
@@ -28,6 +27,7 @@ from typing import Any
 from fastapi import Request, Response
 from starlette.concurrency import run_in_threadpool
 
+from server.readmodels.cache import BoundedCache
 from server.readmodels.pages import PublicStamp, public_stamp
 from server.services.database import Database
 
@@ -40,27 +40,10 @@ STAMP_TTL = 1.0
 _SAFE = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
-class PageCache:
-    """Bounded LRU of rendered bodies by key: ``(body, content type, status)``."""
-
-    def __init__(self, size: int = 4096) -> None:
-        self.size = size
-        self._items: OrderedDict[str, tuple[bytes, str, int]] = OrderedDict()
-        self._lock = threading.Lock()
-
-    def get(self, key: str) -> tuple[bytes, str, int] | None:
-        with self._lock:
-            hit = self._items.get(key)
-            if hit is not None:
-                self._items.move_to_end(key)
-            return hit
-
-    def put(self, key: str, value: tuple[bytes, str, int]) -> None:
-        with self._lock:
-            self._items[key] = value
-            self._items.move_to_end(key)
-            while len(self._items) > self.size:
-                self._items.popitem(last=False)
+#: A rendered public page: ``(body, content type, status)``.
+Page = tuple[bytes, str, int]
+#: Rendered public pages by key, least recently used dropped first (``PageCache(size=4096)``).
+PageCache = BoundedCache[str, Page]
 
 
 class StampMemo:

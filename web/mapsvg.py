@@ -9,12 +9,11 @@ by the cosine of the map's mean latitude, which keeps shapes true at district an
 from __future__ import annotations
 
 import math
-import threading
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["MapCache", "MapShape", "SvgMap", "svg_map"]
+__all__ = ["MapShape", "SvgMap", "svg_map"]
 
 WIDTH = 640.0
 PAD = 8.0
@@ -94,23 +93,3 @@ def _centroid(pts: list[tuple[float, float]]) -> tuple[float, float, float]:
         sx += (x1 + x2) * cross
         sy += (y1 + y2) * cross
     return a / 2, sx / 2, sy / 2
-
-
-class MapCache:
-    """The projected map under a key that changes with the data (keeps the newest few)."""
-
-    def __init__(self, size: int = 8) -> None:
-        self.size = size
-        self._items: dict[str, SvgMap] = {}
-        self._lock = threading.Lock()
-
-    def get(self, key: str, items: Iterable[tuple[str, dict[str, Any] | None]]) -> SvgMap:
-        with self._lock:
-            hit = self._items.get(key)
-        if hit is None:
-            hit = svg_map(items)
-            with self._lock:
-                if len(self._items) >= self.size:
-                    self._items.pop(next(iter(self._items)))
-                self._items[key] = hit
-        return hit

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import threading
-from collections.abc import Callable
 from datetime import date, datetime
 from typing import Annotated
 
@@ -12,6 +10,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 
 from server.readmodels.area_tiers import above_district, region_tiers
+from server.readmodels.cache import BoundedCache
 from server.readmodels.capacity_pages import WARD_LOS_MEDIAN, area_capacity, district_forecast
 from server.readmodels.district_marks import district_marks
 from server.readmodels.dossier import district_dossier, explanation_page
@@ -30,6 +29,7 @@ from web.charts import (
     timeline_figure,
 )
 from web.deps import CsrfDep, PageNumber, RecordEventDep, SessionDep, SettingsDep, StaffDep
+from web.mapsvg import svg_map
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
@@ -47,7 +47,8 @@ def home(
                             pending_only=pending == "true", page=page,
                             catalogue=load_catalogue(settings), time_zone=settings.time_zone)
     key = f"staff|{view.ruleset}|{view.data_cutoff}|{len(view.every)}"
-    shapes = request.app.state.maps.get(key, ((x.code, x.geometry) for x in view.every))
+    shapes = request.app.state.maps.get_or_build(
+        key, lambda: svg_map((x.code, x.geometry) for x in view.every))
     return render(request, "staff/home.html", {
         "view": view, "map": shapes, "by_code": {line.code: line for line in view.every},
         "sort": sort, "q": q, "tier": tier_filter, "pending_only": pending == "true",
@@ -55,34 +56,11 @@ def home(
     })
 
 
-class FragmentCache:
-    """HTML rendered by the autoescaping environment, under a key that changes with the data
-    (keeps the newest few), per worker."""
-
-    def __init__(self, size: int = 4) -> None:
-        self.size = size
-        self._items: dict[tuple[object, ...], str] = {}
-        self._lock = threading.Lock()
-
-    def get(self, key: tuple[object, ...], build: Callable[[], str]) -> str:
-        with self._lock:
-            hit = self._items.get(key)
-        if hit is None:
-            hit = build()
-            with self._lock:
-                if len(self._items) >= self.size:
-                    self._items.pop(next(iter(self._items)))
-                self._items[key] = hit
-        return hit
-
-
 def _data_on_hand_html(request: Request, view: MorningOverview) -> str:
     """The "Data on hand" section, rendered once per (newest vintage, language) and worker by
     the autoescaping environment; home.html inserts it as markup (``|safe``)."""
     state = request.app.state
-    cache = getattr(state, "staff_fragments", None)
-    if cache is None:
-        cache = state.staff_fragments = FragmentCache()
+    cache: BoundedCache[tuple[object, ...], str] = state.staff_fragments
     lang = getattr(request.state, "lang", "en")
     templates: Jinja2Templates = state.templates
 
@@ -90,7 +68,7 @@ def _data_on_hand_html(request: Request, view: MorningOverview) -> str:
         template = templates.get_template("staff/_data_on_hand.html")
         return template.render(oh=view.data_on_hand, measures=view.measures, lang=lang)
 
-    return cache.get(("data_on_hand", view.data_on_hand_key, lang), build)
+    return cache.get_or_build(("data_on_hand", view.data_on_hand_key, lang), build)
 
 
 @router.get("/district/{code}", response_class=HTMLResponse)

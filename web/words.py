@@ -273,7 +273,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
         "95 %% interval covered %(coverage)s %% of %(n)s mornings")),
     (r"^nowcast of the last 7 days: no morning needed one$",
      N_("nowcast of the last 7 days: no morning needed one")),
-    # changes since the previous day (server/readmodels/morning.py)
+    # changes since the previous day (server/readmodels/day_changes.py)
     (r"^recommended tier rose from (?P<old>.+?) to (?P<new>.+)$",
      N_("recommended tier rose from %(old)s to %(new)s")),
     (r"^recommended tier fell from (?P<old>.+?) to (?P<new>.+)$",

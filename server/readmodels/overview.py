@@ -1,15 +1,23 @@
-"""Which data are on hand: the newest reference date of each measure for every region."""
+"""Read model: which data are on hand, the newest reference date of each measure for every region.
+
+:func:`data_overview` reads them; :func:`data_on_hand` adds each measure's label for the morning
+overview and keeps both per worker under the newest vintage id (they change only with new data).
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import date, datetime
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
+from server.readmodels.cache import BoundedCache
 from server.store import latest_dates
-from server.store.models import Measure, Region
+from server.store.models import Measure, Region, Vintage
+
+__all__ = ["DataOverview", "MeasureLabel", "RegionFreshness", "data_on_hand", "data_overview",
+           "measure_label"]
 
 LEVEL_ORDER = {"county": 0, "region": 1, "district": 2, "plant": 3}
 
@@ -61,3 +69,49 @@ def data_overview(*, session: Session) -> DataOverview:
     rows.sort(key=lambda r: (LEVEL_ORDER.get(r.level, 9), r.code))
     newest = max((d for r in rows for d in r.latest.values()), default=None)
     return DataOverview(measures=measures, rows=tuple(rows), newest_ref_date=newest)
+
+
+@dataclass(frozen=True, kw_only=True)
+class MeasureLabel:
+    """How the overview names a measure: a short label and the catalogue's description."""
+
+    name: str
+    label: str
+    unit: str
+    description: str
+
+
+#: Where a measure's description stops being its name ("Confirmed cases" of "Confirmed cases
+#: by test date; provisional, ...").
+_LABEL_ENDS = (";", ",", " by ", " at the ", " over ", " (")
+
+
+def measure_label(name: str, unit: str, description: str) -> MeasureLabel:
+    """A short label from the description's first phrase (the name when it has none)."""
+    label = description.strip()
+    for end in _LABEL_ENDS:
+        label = label.split(end, 1)[0]
+    label = label.strip().rstrip(".")
+    return MeasureLabel(name=name, label=label or name.replace("_", " "), unit=unit,
+                        description=description.strip())
+
+
+#: the newest vintage's data on hand, per worker
+_ON_HAND: BoundedCache[int, tuple[DataOverview, tuple[MeasureLabel, ...]]] = BoundedCache(size=1)
+
+
+def data_on_hand(*, session: Session) -> tuple[int, DataOverview, tuple[MeasureLabel, ...]]:
+    """The newest reference date of each measure per region and the measures' labels, cached
+    per newest vintage (the key, returned with them)."""
+    key = int(session.scalar(select(func.max(Vintage.id))) or 0)
+
+    def build() -> tuple[DataOverview, tuple[MeasureLabel, ...]]:
+        overview = data_overview(session=session)
+        found = {
+            name: measure_label(name, unit, description or "")
+            for name, unit, description in session.execute(
+                select(Measure.name, Measure.unit, Measure.description))
+        }
+        return overview, tuple(found.get(m, measure_label(m, "", "")) for m in overview.measures)
+
+    return key, *_ON_HAND.get_or_build(key, build)

@@ -12,18 +12,19 @@ per worker under a stamp of both (one small query per request when nothing chang
 
 from __future__ import annotations
 
-import threading
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from sqlalchemy import func, select, type_coerce
 from sqlalchemy.orm import Session
 
+from server.readmodels.cache import BoundedCache
 from server.services.evaluation import active_rulesets, newest_run_of
 from server.services.review_official import official_tiers
 from server.services.review_pending import PendingChange, current_run, pending_changes
 from server.services.ruleset_cache import parsed
 from server.store.models import Decision, Region
+from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
 
 __all__ = ["AssessedRegion", "PolicyCell", "PolicyColumn", "assessed_regions", "policy_columns",
@@ -92,8 +93,8 @@ def assessed_regions(*, session: Session, level: str) -> dict[str, AssessedRegio
     return out
 
 
-_CACHE: dict[tuple[object, ...], tuple[PolicyColumn, ...]] = {}
-_LOCK = threading.Lock()
+#: the newest stamp's columns, per worker
+_CACHE: BoundedCache[tuple[object, ...], tuple[PolicyColumn, ...]] = BoundedCache(size=1)
 
 
 def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
@@ -108,10 +109,10 @@ def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
                    type_coerce(func.max(Decision.published_at), UTCDateTime()))
         ).one(),
     )
-    with _LOCK:
-        hit = _CACHE.get(stamp)
-    if hit is not None:
-        return hit
+    return _CACHE.get_or_build(stamp, lambda: _build(session, rows))
+
+
+def _build(session: Session, rows: list[RulesetRow]) -> tuple[PolicyColumn, ...]:
     columns = []
     for k, row in enumerate(rows):
         ruleset = parsed(row)
@@ -141,8 +142,4 @@ def policy_columns(*, session: Session) -> tuple[PolicyColumn, ...]:
             name=row.name, label=f"{row.name} {row.version}", level=level, lead=k == 0,
             tier_names=tuple(t.name for t in ruleset.tiers), cells=cells, pending=tuple(pending),
         ))
-    found = tuple(columns)
-    with _LOCK:
-        _CACHE.clear()
-        _CACHE[stamp] = found
-    return found
+    return tuple(columns)

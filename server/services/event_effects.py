@@ -32,7 +32,7 @@ from server.indicators.changepoints import detect_changepoints
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
 from server.services.hierarchy import membership, sum_up
-from server.services.users import may
+from server.services.users import permitted_account
 from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
 from server.store.reads import read_dense
 
@@ -127,8 +127,8 @@ def record_event(
     now: dt.datetime | None = None,
 ) -> RecordedEvent:
     """Store one event and its audit entry (the caller commits)."""
-    account = session.scalar(select(User).where(User.name == user))
-    if account is None or not account.active or not may(account.role, "record_event"):
+    account = permitted_account(session=session, name=user, action="record_event")
+    if account is None:
         raise EventError("user", f"{user!r} may not record events")
     if kind not in EVENT_KINDS:
         raise EventError("kind", f"{kind!r} is not one of {', '.join(EVENT_KINDS)}")

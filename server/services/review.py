@@ -11,7 +11,7 @@ The engine recommends; people decide. The work is split by what each part does:
 
 Application code imports from those modules. This one re-exports their public names because
 many tests (about fifteen files) and two modules outside the split that made it
-(``server/readmodels/morning.py``, ``demo_seed/story.py``) import them from here.
+(``server/readmodels/review_state.py``, ``demo_seed/story.py``) import them from here.
 """
 
 from __future__ import annotations

@@ -22,7 +22,7 @@ from sqlalchemy.orm import Session
 
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
-from server.services.users import may
+from server.services.users import permitted_account
 from server.store.models import Region, TestingChangeReview, User
 
 __all__ = ["VERDICTS", "TestingReviewError", "Verdict", "dismissals", "review_testing_change",
@@ -54,8 +54,8 @@ def review_testing_change(
     time_zone: str = "UTC", now: dt.datetime | None = None,
 ) -> TestingChangeReview:
     """Store one verdict and its audit entry (the caller commits)."""
-    account = session.scalar(select(User).where(User.name == user))
-    if account is None or not account.active or not may(account.role, "record_event"):
+    account = permitted_account(session=session, name=user, action="record_event")
+    if account is None:
         raise TestingReviewError("user", f"{user!r} may not review testing changes")
     if verdict not in VERDICTS:
         raise TestingReviewError("verdict", f"{verdict!r} is not one of {', '.join(VERDICTS)}")

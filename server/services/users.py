@@ -104,3 +104,13 @@ def may(role: str, action: str) -> bool:
         raise KeyError(f"unknown action {action!r}; known: {', '.join(PERMISSIONS)}")
     needed = PERMISSIONS[action]
     return role in ROLES and ROLES.index(role) >= ROLES.index(needed)
+
+
+def permitted_account(*, session: Session, name: str, action: str) -> User | None:
+    """The active account named exactly ``name`` when its role may do ``action`` (a key of
+    :data:`PERMISSIONS`); None when there is no such account, it is inactive or its role falls
+    short (the caller refuses with its own message)."""
+    account = session.scalar(select(User).where(User.name == name))
+    if account is None or not account.active or not may(account.role, action):
+        return None
+    return account

@@ -2,14 +2,18 @@
 
 from __future__ import annotations
 
-from datetime import UTC, datetime
+from collections import Counter
+from collections.abc import Callable
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from typing import Any
 
 import pytest
 from sqlalchemy import update
 from sqlalchemy.orm import Session
 
 from server.feeds.definition import FeedCatalogue, load_feeds, parse_feeds
+from server.readmodels import district_lines, feed_freshness, overview, review_state
 from server.readmodels.morning import morning_overview
 from server.services.feeds import feed_statuses
 from server.services.review import current_run, decide, publish
@@ -103,3 +107,43 @@ def test_publications_since_the_previous_morning_are_listed_as_changes(
     assert changes["D03"].startswith("official tier published: ")
     # the first publication started D03 from its recommendation; the override moved it
     assert f"({old}) to " in changes["D03"] and changes["D03"].endswith(f"({other})")
+
+
+def test_overview_rebuilds_only_the_parts_whose_key_changed(
+    demo_session: Session, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Each part is kept under a key of what invalidates it: nothing is rebuilt while nothing
+    changed; a decision rebuilds the review state only; the next minute the feed verdicts."""
+    built: Counter[str] = Counter()
+
+    def counting(name: str, build: Callable[..., Any]) -> Callable[..., Any]:
+        def wrapped(*args: Any, **kwargs: Any) -> Any:
+            built[name] += 1
+            return build(*args, **kwargs)
+        return wrapped
+
+    for module, attr in [(district_lines, "_build"), (review_state, "_build"),
+                         (overview, "data_overview"), (feed_freshness, "feed_statuses")]:
+        monkeypatch.setattr(module, attr, counting(module.__name__.rsplit(".", 1)[1],
+                                                   getattr(module, attr)))
+    for cache in (district_lines._BASES, review_state._STATES, overview._ON_HAND,
+                  feed_freshness._STATUSES):
+        cache.clear()  # other tests' demo copies share the keys
+    catalogue = load_feeds(DEMO_FEEDS)
+    first = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
+    again = morning_overview(session=demo_session, now=NOW + timedelta(seconds=30),
+                             catalogue=catalogue, sort="name")
+    assert again.every == first.every
+    assert [(f.feed, f.status) for f in again.feeds] == [(f.feed, f.status) for f in first.feeds]
+    once = {"district_lines": 1, "review_state": 1, "overview": 1, "feed_freshness": 1}
+    assert built == once
+    latest = current_run(session=demo_session)
+    assert latest is not None
+    item = next(i for i in latest.items if i.code == "D01")
+    decide(session=demo_session, assessment_id=item.assessment.id, user=APPROVER, accept=True,
+           tier=None, reason="invented reason", **seen(demo_session, item.assessment.id))
+    view = morning_overview(session=demo_session, now=NOW, catalogue=catalogue)
+    assert next(x for x in view.every if x.code == "D01").decided_tier is not None
+    assert built == {**once, "review_state": 2}
+    morning_overview(session=demo_session, now=NOW + timedelta(minutes=1), catalogue=catalogue)
+    assert built == {**once, "review_state": 2, "feed_freshness": 2}

@@ -1,0 +1,167 @@
+"""Read model: the overview's line per district as the engine left it, before any review.
+
+For each district: the newest recommended tier, active prepare signals, the key indicators with
+their intervals and a 14-day series for a sparkline, and the assessment's sentence; with them the
+engine's changes from the day before (:func:`server.readmodels.day_changes.recommended_changes`).
+All of it depends only on the active ruleset and its newest evaluation run, so
+:func:`district_base` builds it once per run and keeps it per worker; official tiers and
+pending changes are merged in later (:mod:`server.readmodels.review_state`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
+
+from rules import Ruleset
+from server.readmodels.cache import BoundedCache
+from server.readmodels.day_changes import Change, recommended_changes
+from server.services.evaluation import assessments_as_of
+from server.services.tiers import tier_name
+from server.store.models import Assessment, EvaluationRun, Region
+from server.store.models import Ruleset as RulesetRow
+
+__all__ = ["SPARK_DAYS", "DistrictBase", "DistrictLine", "KeyIndicator", "district_base"]
+
+SPARK_DAYS = 14
+
+
+@dataclass(frozen=True, kw_only=True)
+class KeyIndicator:
+    id: str
+    label: str
+    value_text: str
+    interval_text: str | None
+    level: int
+    known: bool
+    series: tuple[float, ...]
+
+
+@dataclass(frozen=True, kw_only=True)
+class DistrictLine:
+    code: str
+    name: str
+    area: str | None
+    population: int
+    official_tier: int | None
+    official_name: str | None
+    recommended_tier: int | None
+    recommended_name: str | None
+    pending: bool
+    assessment_id: int | None
+    prepare: tuple[str, ...]
+    indicators: tuple[KeyIndicator, ...]
+    sentence: str
+    geometry: dict[str, Any] | None
+    #: tier of a decision taken but not yet published (None: nothing awaits publication)
+    decided_tier: int | None = None
+    decided_name: str | None = None
+
+
+@dataclass(frozen=True, kw_only=True)
+class DistrictBase:
+    """Every district's line (by name) of one run, with the engine's changes of its last day."""
+
+    day: date | None
+    lines: tuple[DistrictLine, ...]
+    changes: tuple[Change, ...]
+
+
+#: the newest run's base, per worker
+_BASES: BoundedCache[tuple[object, ...], DistrictBase] = BoundedCache(size=1)
+
+
+def district_base(
+    session: Session, row: RulesetRow, run: EvaluationRun | None, ruleset: Ruleset
+) -> tuple[tuple[object, ...], DistrictBase]:
+    """The lines of ``run`` (the newest run of the ruleset ``row``, parsed as ``ruleset``) and
+    the key they are kept under: it changes with the run's cutoff and the rows it wrote."""
+    # a replay of an older cutoff may copy rows to this run (same content, new ids): rows_written
+    # counts them, so the key changes with them
+    if run is None:
+        key: tuple[object, ...] = (row.id, "-")
+        return key, _BASES.get_or_build(key, lambda: DistrictBase(day=None, lines=(), changes=()))
+    key = (row.id, run.data_cutoff.isoformat(), run.rows_written)
+    return key, _BASES.get_or_build(key, lambda: _build(
+        session, row.id, ruleset, run.data_cutoff, run.last_day))
+
+
+def _fmt(value: float | None, decimals: int, unit: str) -> str:
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    text = f"{value:.{decimals}f}"
+    return text + unit if unit.startswith("%") else (f"{text} {unit}" if unit else text)
+
+
+def _build(
+    session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: datetime, last: date
+) -> DistrictBase:
+    parent = aliased(Region)
+    regions = session.execute(
+        select(Region.id, Region.code, Region.name, parent.name, Region.population,
+               Region.geometry)
+        .outerjoin(parent, parent.id == Region.parent_id)
+        .where(Region.level == "district")
+    ).all()
+    by_region: dict[int, dict[date, Assessment]] = {}
+    rows = session.scalars(assessments_as_of(
+        select(Assessment), ruleset_id=ruleset_id, cutoff=cutoff,
+        start=last - timedelta(days=SPARK_DAYS - 1), end=last,
+    ))
+    for a in rows:
+        by_region.setdefault(a.region_id, {})[a.ref_date] = a
+    days = [last - timedelta(days=k) for k in range(SPARK_DAYS - 1, -1, -1)]
+    lines, changes = [], []
+    for rid, code, name, area, population, geometry in regions:
+        history = by_region.get(rid, {})
+        newest = history.get(last)
+        indicators: tuple[KeyIndicator, ...] = ()
+        prepare: tuple[str, ...] = ()
+        sentence = ""
+        if newest is not None:
+            data = newest.explanation.get("data", {})
+            sentence = newest.explanation.get("sentence", "")
+            prepare = tuple(k for k, v in newest.prepare_signals.items() if v)
+            indicators = tuple(_indicators(ruleset, data, history, days))
+            before = history.get(last - timedelta(days=1))
+            if before is not None:
+                changes += recommended_changes(ruleset, code, name, before, newest)
+        lines.append(DistrictLine(
+            code=code, name=name, area=area, population=int(population),
+            official_tier=None, official_name=None,
+            recommended_tier=newest.recommended_tier if newest else None,
+            recommended_name=tier_name(ruleset, newest.recommended_tier) if newest else None,
+            pending=False, assessment_id=newest.id if newest else None, prepare=prepare,
+            indicators=indicators, sentence=sentence, geometry=geometry,
+        ))
+    lines.sort(key=lambda x: x.name)
+    return DistrictBase(day=last, lines=tuple(lines), changes=tuple(changes))
+
+
+def _indicators(
+    ruleset: Ruleset, data: dict[str, Any], history: dict[date, Assessment], days: list[date]
+) -> list[KeyIndicator]:
+    out = []
+    for k, item in enumerate(data.get("criteria", [])):
+        spec = ruleset.indicator(item["indicator"])
+        series = []
+        for day in days:
+            a = history.get(day)
+            crits = a.explanation.get("data", {}).get("criteria", []) if a else []
+            v = crits[k].get("value") if k < len(crits) else None
+            series.append(float("nan") if v is None else float(v))
+        interval = None
+        if item.get("lower") is not None and item.get("upper") is not None:
+            interval = (f"{item['lower']:.{spec.decimals}f}–{item['upper']:.{spec.decimals}f}")
+        out.append(KeyIndicator(
+            id=item["id"], label=item.get("label") or spec.label,
+            value_text=_fmt(item.get("value"), spec.decimals, spec.unit),
+            interval_text=interval, level=int(item.get("level", 0)),
+            known=bool(item.get("known", False)), series=tuple(series),
+        ))
+    return out
