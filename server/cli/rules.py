@@ -359,9 +359,10 @@ def evaluate_command(
     store the assessments (a second run with the same cutoff reuses them)."""
     from server.cli.feeds import configured_catalogue
     from server.services.database import Database
-    from server.services.evaluation import active_rulesets, evaluate_districts, require_policy
+    from server.services.evaluation import evaluate_districts
     from server.services.feeds import catalogue_limits
     from server.services.notify import notify_config_from
+    from server.services.rulesets import active_rulesets, require_policy
 
     when = None
     if cutoff is not None:

@@ -27,17 +27,13 @@ from rules import Ruleset
 from server.feeds.definition import FeedCatalogue
 from server.readmodels.overview import DataOverview, data_overview
 from server.readmodels.policy_columns import PolicyColumn, policy_columns
+from server.services.assessments import assessments_as_of, newest_run_of
 from server.services.errors import ServiceError
-from server.services.evaluation import (
-    active_ruleset,
-    active_rulesets,
-    assessments_as_of,
-    newest_run_of,
-)
 from server.services.feeds import FeedStatus, feed_statuses
 from server.services.review import official_tiers, pending_changes
 from server.services.review_official import policy_owners
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset, active_rulesets
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, FeedState, Measure, Region, Vintage
 from server.store.types import UTCDateTime
