@@ -22,7 +22,6 @@ EXEMPT = ("server/indicators",)
 OVER_THE_LIMIT = frozenset({
     "server/services/indicator_kinds.py",  # kind registry, built-in builders, declaration checks
     "server/services/forecast_record.py",  # forecasters, stored forecasts and their scoring
-    "server/services/backtest.py",  # the as-known backtest and its replay of past data
     "server/readmodels/morning.py",  # the morning step (use case) and the overview (read model)
 })
 

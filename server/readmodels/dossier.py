@@ -26,12 +26,12 @@ from rules.record import CriterionState
 from server.readmodels.explanations import RevisedSince, explained_day, revised_since
 from server.readmodels.policy_columns import assessed_regions, policy_level
 from server.services.assessments import assessments_as_of, newest_run_of
-from server.services.backtest import nowcast_accuracy_report
 from server.services.district_nowcasts import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
 from server.services.forecast_record import RecordLine, record_lines
 from server.services.indicator_kinds import store_measures
 from server.services.level_data import area_figures
+from server.services.nowcast_scores import nowcast_accuracy_report
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
 from server.services.rulesets import active_rulesets, require_policy
