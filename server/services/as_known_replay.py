@@ -307,8 +307,6 @@ def as_known_indicators(
     return replace(view, dates=dates, as_of=None), indicators
 
 
-
-
 def area_parents(session: Session, base: DistrictData) -> dict[str, str]:
     """District code -> its parent area's code, for the districts of ``base`` with a parent."""
     return {d.code: d.area for d in district_areas(session=session)

@@ -143,7 +143,6 @@ def run_backtest(
     )
 
 
-
 def write_timelines(result: BacktestResult, directory: Path, *, stem: str | None = None) -> Path:
     """Write one CSV row per region and day of the summarised period; returns the file.
 

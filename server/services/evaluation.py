@@ -99,8 +99,6 @@ class EvaluationRun:
     notified: tuple[Delivery, ...] = field(default=())
 
 
-
-
 def newest_cutoff(*, session: Session) -> datetime | None:
     """Time stamp of the newest vintage: the default data cutoff."""
     return session.scalar(select(type_coerce(func.max(Vintage.received_at), UTCDateTime())))
