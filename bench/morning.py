@@ -71,12 +71,13 @@ from server.readmodels.pages import public_map
 from server.services.database import Database
 from server.services.district_data import load_district_data, store_measures
 from server.services.district_indicators import district_indicators, feed_limits
-from server.services.evaluation import evaluate_if_behind, newest_cutoff, store_ruleset
+from server.services.evaluation import evaluate_if_behind, newest_cutoff
 from server.services.feed_health import feed_statuses
 from server.services.feed_state import ingest_recorded
 from server.services.indicator_kinds import measure_needs
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.regions import RegionRecord, store_catchments, store_regions
+from server.services.ruleset_activation import store_ruleset
 from server.services.ruleset_cache import parsed
 from server.store.models import Measure, Observation, Vintage
 from server.store.models import Ruleset as RulesetRow

@@ -51,10 +51,11 @@ from fastapi.testclient import TestClient  # noqa: E402
 
 from server.config import Settings  # noqa: E402
 from server.services.database import Database  # noqa: E402
-from server.services.evaluation import default_ruleset_path, store_ruleset  # noqa: E402
 from server.services.observations import MeasureRecord, VintageWriter, define_measures  # noqa: E402
 from server.services.regions import RegionRecord, store_regions  # noqa: E402
 from server.services.review_publication import publish  # noqa: E402
+from server.services.ruleset_activation import store_ruleset  # noqa: E402
+from server.services.rulesets import default_ruleset_path  # noqa: E402
 from server.services.users import add_user  # noqa: E402
 from web.app import create_app  # noqa: E402
 

@@ -34,18 +34,14 @@ from demo_seed.scenario import MEASURES, PATHOGEN_MEASURES, Scenario, build_scen
 from demo_seed.standin import wastewater_csv
 from server.services.audit import record
 from server.services.database import DEMO_MARK, Database, recreate_demo_schema
-from server.services.evaluation import (
-    EvaluationRun,
-    activate_ruleset,
-    default_ruleset_path,
-    policies_dir,
-    store_ruleset,
-)
+from server.services.evaluation import EvaluationRun
 from server.services.feed_state import record_feed_state
 from server.services.forecast_store import store_forecasts_as_known
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.official_history import import_official_history
 from server.services.regions import RegionRecord, store_catchments, store_regions
+from server.services.ruleset_activation import activate_ruleset, store_ruleset
+from server.services.rulesets import default_ruleset_path, policies_dir
 from server.services.users import add_user
 
 #: The policies the demo runs at once, the lead first (``county.yaml``, from

@@ -17,9 +17,9 @@ from typing import Any
 
 from demo_seed.feeds import demo_catalogue
 from server.services.database import Database
-from server.services.evaluation import active_rulesets
 from server.services.feed_health import feed_statuses
 from server.services.review import PendingChange, current_run, official_tiers, pending_changes
+from server.services.rulesets import active_rulesets
 
 __all__ = ["DemoMorning", "FeedHealth", "Pending", "PolicyMorning", "demo_morning",
            "morning_lines"]

@@ -1,28 +1,20 @@
 """One concept per module: nothing in ``server/`` or ``web/`` over :data:`LIMIT` lines.
 
 The numerical kernels in ``server/indicators`` are exempt (a method with its variants and
-references reads best in one file). :data:`OVER_THE_LIMIT` lists the modules still longer today,
-each with what it holds; the list can only shrink: a module not on it may not pass the limit, and
-a module on it that got under the limit (or was removed) must leave it. The limit is common
-practice, no source (issue 10: "about 100-400 lines; nothing over 500").
+references reads best in one file). The limit is common practice, no source (issue 10: "about
+100-400 lines; nothing over 500"); the last modules over it were split in December 2026, so there
+is no allow-list any more.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-import pytest
-
 ROOT = Path(__file__).resolve().parents[1]
 LIMIT = 500
 CHECKED = ("server", "web")
 EXEMPT = ("server/indicators",)
 
-#: Modules over the limit today, to be split; the comment says what each still mixes.
-OVER_THE_LIMIT = frozenset({
-    "server/services/evaluation.py",  # rulesets, evaluation runs and assessment reads
-    "server/services/backtest.py",  # the as-known backtest and its replay of past data
-})
 
 
 def lines_of(path: Path) -> int:
@@ -56,12 +48,5 @@ def test_oversized_finds_a_long_module_and_skips_the_kernels(tmp_path: Path) -> 
 
 
 def test_no_new_module_over_the_limit() -> None:
-    new = {p: n for p, n in oversized().items() if p not in OVER_THE_LIMIT}
+    new = oversized()
     assert new == {}, f"split these by concept (at most {LIMIT} lines): {new}"
-
-
-@pytest.mark.parametrize("rel", sorted(OVER_THE_LIMIT))
-def test_the_allow_list_only_shrinks(rel: str) -> None:
-    path = ROOT / rel
-    assert path.exists(), f"{rel} is gone: remove it from OVER_THE_LIMIT"
-    assert lines_of(path) > LIMIT, f"{rel} is within {LIMIT} lines: remove it from OVER_THE_LIMIT"

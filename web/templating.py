@@ -15,8 +15,8 @@ from fastapi.responses import HTMLResponse
 from fastapi.templating import Jinja2Templates
 
 from server.config import Settings
-from server.services.evaluation import active_rulesets
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_rulesets
 from web.chart_words import translate_figure
 from web.charts import sparkline_points
 from web.i18n import LANGUAGE_NAMES, LANGUAGES, current_language, load_catalogs

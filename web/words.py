@@ -265,7 +265,7 @@ PATTERNS: tuple[tuple[str, str], ...] = (
      N_("reporting delays pooled over all districts")),
     (r"^reporting delays pooled over (?P<area>.+)$", N_("reporting delays pooled over %(area)s")),
     (r"^the district's own reporting delays$", N_("the district's own reporting delays")),
-    # the nowcast accuracy line of the district page (server/services/backtest.py)
+    # the nowcast accuracy line of the district page (server/services/nowcast_scores.py)
     (r"^nowcast of the last 7 days: median error (?P<error>[\d.]+) % \(unadjusted "
      r"(?P<unadjusted>[\d.]+) %\), 95 % interval covered (?P<coverage>\d+) % of "
      r"(?P<n>\d+) mornings$",

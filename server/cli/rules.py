@@ -163,14 +163,10 @@ def backtest_command(
 ) -> None:
     """Replay a ruleset over the stored history and summarise it: tier changes per region per
     year, days in each tier, prepare signals and their lead before the next escalation."""
-    from server.services.backtest import (
-        capacity_leads,
-        data_span,
-        nowcast_accuracy_report,
-        run_backtest,
-        write_timelines,
-    )
+    from server.services.backtest import data_span, run_backtest, write_timelines
+    from server.services.capacity_leads import capacity_leads
     from server.services.database import Database
+    from server.services.nowcast_scores import nowcast_accuracy_report
 
     rulesets = [_load(rules)] + ([_load(compare)] if compare is not None else [])
     start, end = _day(from_, "--from"), _day(to, "--to")
@@ -359,9 +355,10 @@ def evaluate_command(
     store the assessments (a second run with the same cutoff reuses them)."""
     from server.cli.feeds import configured_catalogue
     from server.services.database import Database
-    from server.services.evaluation import active_rulesets, evaluate_districts, require_policy
+    from server.services.evaluation import evaluate_districts
     from server.services.feeds import catalogue_limits
     from server.services.notify import notify_config_from
+    from server.services.rulesets import active_rulesets, require_policy
 
     when = None
     if cutoff is not None:

@@ -3,7 +3,7 @@
 A policy with ``level: areas`` or ``level: county`` stores assessments for those regions
 (:mod:`server.services.level_data`). :func:`region_tiers` reads, for each active such policy,
 the region's assessment of the newest run's last day as of that run's cutoff
-(:func:`server.services.evaluation.assessments_as_of`), for the area page;
+(:func:`server.services.assessments.assessments_as_of`), for the area page;
 :func:`above_district` those of a district's area and county, for the district page.
 """
 
@@ -16,7 +16,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Tier
-from server.services.evaluation import assessments_as_of, newest_run_of
+from server.services.assessments import assessments_as_of, newest_run_of
 from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Region
 from server.store.models import Ruleset as RulesetRow

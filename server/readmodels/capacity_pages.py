@@ -25,6 +25,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.indicators.capacity import BEDS, CapacityForecasts, capacity_forecasts
 from server.indicators.hospital import LengthOfStay, length_of_stay
+from server.services.assessments import newest_run_of
 from server.services.capacity_indicators import (
     admissions_with_nowcast,
     as_path,
@@ -33,8 +34,8 @@ from server.services.capacity_indicators import (
 from server.services.district_data import DISTRICT_MEASURES, MeasureNeeds
 from server.services.district_indicators import load_district_data
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, newest_run_of
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset
 from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = ["AreaCapacity", "DistrictForecast", "Fan", "NoCapacityError", "area_capacity",

@@ -17,8 +17,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
-from server.services.evaluation import active_rulesets
 from server.services.review_official import policy_owners
+from server.services.rulesets import active_rulesets
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, Decision, Region
 

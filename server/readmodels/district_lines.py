@@ -21,7 +21,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from server.readmodels.cache import BoundedCache
 from server.readmodels.day_changes import Change, recommended_changes
-from server.services.evaluation import assessments_as_of
+from server.services.assessments import assessments_as_of
 from server.services.tiers import tier_name
 from server.store.models import Assessment, EvaluationRun, Region
 from server.store.models import Ruleset as RulesetRow

@@ -2,7 +2,7 @@
 
 The district page reads the stored assessments of the active ruleset as of its newest evaluation
 run (for each day, the row with the greatest data cutoff not after the run's:
-:func:`server.services.evaluation.assessments_as_of`): each criterion's value, interval and the
+:func:`server.services.assessments.assessments_as_of`): each criterion's value, interval and the
 enter/exit thresholds in force on each day (conditions and overrides included, exactly as the
 engine used them), the recommended tier, prepare signals, and the official tier from the
 decisions. Revisions show the values of recent days as known on different mornings, from the
@@ -25,20 +25,16 @@ from rules.hysteresis import NEVER_CHANGED
 from rules.record import CriterionState
 from server.readmodels.explanations import RevisedSince, explained_day, revised_since
 from server.readmodels.policy_columns import assessed_regions, policy_level
-from server.services.backtest import nowcast_accuracy_report
+from server.services.assessments import assessments_as_of, newest_run_of
 from server.services.district_data import store_measures
 from server.services.district_nowcasts import NowcastSeries, district_nowcast
 from server.services.errors import ServiceError
-from server.services.evaluation import (
-    active_rulesets,
-    assessments_as_of,
-    newest_run_of,
-    require_policy,
-)
 from server.services.forecast_record import RecordLine, record_lines
 from server.services.level_data import area_figures
+from server.services.nowcast_scores import nowcast_accuracy_report
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_rulesets, require_policy
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.store import revision_history
 from server.store.models import Assessment, Decision, Region
@@ -202,7 +198,7 @@ def district_dossier(
     under ``policy`` (the lead policy when None).
 
     Raises :class:`PeriodError` when both ``start`` and ``end`` are given and ``start > end``,
-    :class:`~server.services.evaluation.InactivePolicyError` for a policy that is not active.
+    :class:`~server.services.rulesets.InactivePolicyError` for a policy that is not active.
     """
     check_period(start, end)
     region, area = _region(session, code)

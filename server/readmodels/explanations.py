@@ -24,7 +24,7 @@ from sqlalchemy.orm import Session
 from rules import Ruleset
 from rules.formatting import reading_text
 from rules.record import CriterionState, ExplanationRecord, read_criteria, read_explanation
-from server.services.evaluation import assessments_as_of
+from server.services.assessments import assessments_as_of
 from server.store.models import Assessment
 
 __all__ = [

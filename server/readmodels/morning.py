@@ -34,9 +34,10 @@ from server.readmodels.feed_freshness import FeedFreshness, feed_freshness
 from server.readmodels.overview import DataOverview, MeasureLabel, data_on_hand, measure_label
 from server.readmodels.policy_columns import PolicyColumn, policy_columns
 from server.readmodels.review_state import review_state
+from server.services.assessments import newest_run_of
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, active_rulesets, newest_run_of
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset, active_rulesets
 
 __all__ = [
     "Change",

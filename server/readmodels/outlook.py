@@ -29,9 +29,10 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
-from server.services.evaluation import active_ruleset, current_assessment_id
+from server.services.assessments import current_assessment_id
 from server.services.review_official import OfficialTier
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset
 from server.store.models import Assessment, Region
 
 __all__ = [

@@ -31,9 +31,9 @@ from rules import Ruleset
 from server.readmodels.outlook import Outlook, district_outlook
 from server.readmodels.policy_columns import assessed_regions, policy_level
 from server.services.errors import ServiceError
-from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.review_official import OfficialTier, official_tiers
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset, active_rulesets
 from server.store import read_dense
 from server.store.models import AuditEntry, Decision, Measure, Observation, Region, Vintage
 from server.store.models import Ruleset as RulesetRow

@@ -1,6 +1,6 @@
 """Read model: every active policy's tier per district, for the pages that show them side by side.
 
-Several policies are active at once (:func:`server.services.evaluation.active_rulesets`, the lead
+Several policies are active at once (:func:`server.services.rulesets.active_rulesets`, the lead
 first). For each one this gives, per district code, the official (published) tier, the newest
 recommended tier and whether a change awaits review, with the policy's pending changes. A policy
 whose assessments are for areas (``level: areas``, or ``county``) gives each district the tier of
@@ -19,10 +19,11 @@ from sqlalchemy import func, select, type_coerce
 from sqlalchemy.orm import Session
 
 from server.readmodels.cache import BoundedCache
-from server.services.evaluation import active_rulesets, newest_run_of
+from server.services.assessments import newest_run_of
 from server.services.review_official import official_tiers
 from server.services.review_pending import PendingChange, current_run, pending_changes
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_rulesets
 from server.store.models import Decision, Region
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime

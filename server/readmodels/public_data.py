@@ -25,9 +25,9 @@ from server.readmodels.pages import (
     public_map,
     weekly_figures,
 )
-from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset, active_rulesets
 from server.store import read_dense
 from server.store.models import Decision, Measure, Observation, Region
 

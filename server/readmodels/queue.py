@@ -8,11 +8,11 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server.readmodels.review_cards import ReviewCard, review_cards
-from server.services.evaluation import active_rulesets, require_policy
 from server.services.review_official import DecisionRecord, decision_history, policy_condition
 from server.services.review_pending import PendingChange, pending_changes
 from server.services.review_publication import has_something_to_publish
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_rulesets, require_policy
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
 
@@ -61,7 +61,7 @@ def review_queue(
     """What the review page shows (see :class:`ReviewQueue`), of one active ``policy`` or of
     all; an unknown ``region`` filters to nothing.
 
-    Raises :class:`server.services.evaluation.InactivePolicyError` for a policy not active."""
+    Raises :class:`server.services.rulesets.InactivePolicyError` for a policy not active."""
     row = require_policy(session=session, policy=policy)
     names = tuple(t.name for t in parsed(row).tiers) if row is not None else ()
     actives = active_rulesets(session=session)

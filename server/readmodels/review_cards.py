@@ -22,7 +22,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules.record import read_explanation
-from server.services.evaluation import newest_run
+from server.services.assessments import newest_run
 from server.services.review_pending import PendingChange
 from server.store.models import Assessment, Region
 

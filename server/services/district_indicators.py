@@ -48,7 +48,7 @@ from server.services.district_nowcasts import (
 from server.services.stored_values import usable
 
 # Besides its own names, re-exported for the modules outside this split that still import them
-# from here (server/services/feeds.py, backtest.py, capacity_indicators.py, capacity_pages.py);
+# from here (server/services/feeds.py, capacity_indicators.py, capacity_pages.py);
 # new code imports them from district_data / district_nowcasts / stored_values.
 __all__ = [
     "AREA_MEASURES", "BUILDERS", "DISTRICT_MEASURES", "NOWCAST_DELAYS", "NOWCAST_MEASURES",

@@ -7,19 +7,10 @@ region tree, as known at the cutoff).
 An evaluation reads the data as known at a cutoff (the newest vintage received, unless a cutoff is
 given), computes the indicators, runs the rules engine over the whole history and records an
 ``evaluation_run`` (ruleset, cutoff, first and last day, rows written). It stores an assessment
-(recommended tier, criteria, prepare signals, explanation) under its cutoff only for the district
-and day pairs whose result differs from the newest row stored at an earlier cutoff, or that have
-none: a new morning's data usually change the last weeks, not the whole history. The rows are
-compared in bulk by ``content_sha256``, a hash of everything but the cutoff and creation time.
-Only the region-days whose engine state changed since the newest earlier run are built and
-hashed at all (:mod:`server.services.run_fingerprints`); the others equal the row in force.
-
-The assessment of a district and day *as of run C* is therefore the row with the greatest
-``data_cutoff`` not after C (:func:`assessments_as_of`); the newest run is the newest
-``evaluation_run`` of the active ruleset. Re-running with the same ruleset and cutoff reuses the
-run (nothing is recomputed or rewritten). A run stored at a cutoff older than an existing run (a
-replay of a past morning) keeps the later run's reading unchanged: where it writes a row that the
-later run had read from before its cutoff, it copies that older row to the later run's cutoff.
+only for the district and day pairs whose result changed since the newest earlier run
+(:func:`server.services.assessments.store_assessments`; the row in force at a run:
+:func:`server.services.assessments.assessments_as_of`). Re-running with the same ruleset and
+cutoff reuses the run (nothing is recomputed or rewritten).
 
 New data mean a new evaluation in one place only, :func:`evaluate_if_behind`: it compares the
 newest vintage with the newest run of each active ruleset, and every way in and every start
@@ -34,51 +25,50 @@ recommended tier changes in force that day and prepare signals that started show
 events already delivered are not sent again. Failures are logged and audited and never break
 the evaluation (:func:`server.services.notify.deliver_and_record`).
 
-Several policies are active at once (one per pathogen, one for hospital pressure, ...). A policy
-is a ruleset ``name``; its versions replace each other. Activating a ruleset
-(:func:`activate_ruleset`, the one way every caller activates) retires the other active versions
-of the same name (and, with ``replaces``, of another policy it takes over from), writes the audit
-log and evaluates the new one, so each policy has at most one active version.
-:func:`active_rulesets` lists the active ones in a stable order: by the first time each policy
-name was stored (the lowest ruleset id of the name), so the policy the office adopted first comes
-first and is the *lead* policy (:func:`active_ruleset` without a name), which pages that show one
-policy show by default and which imported decisions belong to unless told otherwise.
+Several policies are active at once (:func:`server.services.rulesets.active_rulesets`, the lead
+policy first); each is evaluated on its own. Activating a ruleset evaluates it
+(:func:`server.services.ruleset_activation.activate_ruleset`).
 """
 
 from __future__ import annotations
 
 import hashlib
-import json
 import logging
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
-from pathlib import Path
-from typing import Any
 
-import numpy as np
-from numpy.typing import NDArray
-from sqlalchemy import Select, and_, func, insert, select, text, type_coerce, update
+from sqlalchemy import func, select, text, type_coerce
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-import rules
-from rules import Evaluation, Ruleset, parse_ruleset
-from server.services import run_fingerprints
-from server.services.audit import record
+from rules import Evaluation
+from server.services.assessments import newest_run_of, store_assessments
 from server.services.database import Database
 from server.services.district_data import store_measures
-from server.services.errors import ServiceError
 from server.services.forecast_known import Forecaster
 from server.services.forecast_store import forecasts_stored, store_morning_forecasts
-from server.services.indicator_kinds import indicator_check, measure_needs
+from server.services.indicator_kinds import measure_needs
 from server.services.level_data import evaluate_policy
 from server.services.notify import Delivery, NotifyConfig, deliver_and_record, events_on_day
 from server.services.ruleset_cache import parsed
-from server.store.models import Assessment, Measure, Observation, Region, Vintage
+from server.services.rulesets import active_rulesets
 from server.store.models import EvaluationRun as RunRow
+from server.store.models import Measure, Observation, Vintage
 from server.store.models import Ruleset as RulesetRow
 from server.store.types import UTCDateTime
+
+__all__ = [
+    "EvaluationRun",
+    "evaluate_districts",
+    "evaluate_if_behind",
+    "evaluation_behind",
+    "newest_cutoff",
+    "policies_behind",
+    "serialise_evaluations",
+    "store_forecasts_after_tiers",
+]
+
 
 log = logging.getLogger(__name__)
 
@@ -105,124 +95,6 @@ class EvaluationRun:
     reused: bool
     evaluation: Evaluation | None
     notified: tuple[Delivery, ...] = field(default=())
-
-
-def store_ruleset(
-    *, session: Session, path: Path, author: str = "", activate: bool = False,
-    stale_after: Mapping[str, timedelta] | None = None, replaces: str | None = None,
-) -> RulesetRow:
-    """Store the ruleset file as a version (once per distinct text); optionally make it active.
-
-    Activation is :func:`activate_ruleset` (the other versions of its name retired, and those of
-    ``replaces``; audited, evaluated with ``stale_after`` as in :func:`evaluate_districts`).
-    """
-    text = path.read_text(encoding="utf-8")
-    loaded = parse_ruleset(text, source=str(path),
-                           indicators=indicator_check(store_measures(session=session)))
-    row = session.scalar(select(RulesetRow).where(RulesetRow.sha256 == loaded.sha256))
-    if row is None:
-        row = RulesetRow(
-            name=loaded.name, version=str(loaded.version), yaml_text=text, sha256=loaded.sha256,
-            author=author, created_at=datetime.now(UTC), status="draft",
-        )
-        session.add(row)
-        session.flush()
-        record(session=session, actor=author or "system", action="ruleset.store",
-               subject=f"{loaded.name} {loaded.version}", details={"sha256": loaded.sha256})
-    session.flush()
-    if activate and row.status != "active":
-        activate_ruleset(session=session, row=row, actor=author or "system",
-                         stale_after=stale_after, replaces=replaces)
-    return row
-
-
-def activate_ruleset(
-    *, session: Session, row: RulesetRow, actor: str, notify: NotifyConfig | None = None,
-    stale_after: Mapping[str, timedelta] | None = None, replaces: str | None = None,
-) -> EvaluationRun | None:
-    """Make ``row`` the active version of its policy, audit it, and evaluate it on the newest data.
-
-    The other active versions of the same name are retired; other policies stay active, unless
-    ``replaces`` names one this ruleset takes over from (its active version is retired too, and
-    its decisions count for this policy: :func:`server.services.review_official.policy_owners`).
-    Used by every way of activating (:func:`store_ruleset`, the policies page). Returns the
-    evaluation (None when there are no data yet); ``notify`` and ``stale_after`` as in
-    :func:`evaluate_districts`.
-    """
-    names = {row.name} | ({replaces} if replaces else set())
-    session.execute(
-        update(RulesetRow)
-        .where(RulesetRow.status == "active", RulesetRow.id != row.id,
-               RulesetRow.name.in_(sorted(names)))
-        .values(status="retired")
-    )
-    row.status = "active"
-    record(session=session, actor=actor, action="ruleset.activate",
-           subject=f"{row.name} {row.version}",
-           details={"sha256": row.sha256, "policy": row.name,
-                    **({"replaces": replaces} if replaces else {})})
-    session.flush()
-    return evaluate_districts(session=session, ruleset_row=row, notify=notify,
-                              stale_after=stale_after)
-
-
-def retire_ruleset(*, session: Session, row: RulesetRow, actor: str) -> None:
-    """Stop running an active policy: its version is retired (audited as ``ruleset.retire``);
-    its assessments and decisions stay and count for no other policy
-    (:func:`server.services.review_official.policy_owners`)."""
-    if row.status != "active":
-        return
-    row.status = "retired"
-    record(session=session, actor=actor, action="ruleset.retire",
-           subject=f"{row.name} {row.version}", details={"sha256": row.sha256, "policy": row.name})
-    session.flush()
-
-
-def active_rulesets(*, session: Session) -> list[RulesetRow]:
-    """Every active ruleset (one per policy name), the lead policy first.
-
-    The order is stable: by the first time each policy's name was stored (lowest ruleset id of
-    the name), so a new version of a policy keeps its place."""
-    rows = list(session.scalars(select(RulesetRow).where(RulesetRow.status == "active")))
-    if len(rows) < 2:
-        return rows
-    first = dict(session.execute(
-        select(RulesetRow.name, func.min(RulesetRow.id))
-        .where(RulesetRow.name.in_(sorted({r.name for r in rows})))
-        .group_by(RulesetRow.name)
-    ).all())
-    return sorted(rows, key=lambda r: (first[r.name], r.id))
-
-
-def active_ruleset(*, session: Session, policy: str | None = None) -> RulesetRow | None:
-    """The active ruleset of ``policy`` (a ruleset name), or the lead policy's when None
-    (the first of :func:`active_rulesets`); None when there is none."""
-    if policy is not None:
-        return session.scalar(
-            select(RulesetRow).where(RulesetRow.status == "active", RulesetRow.name == policy)
-            .order_by(RulesetRow.id.desc()).limit(1)
-        )
-    rows = active_rulesets(session=session)
-    return rows[0] if rows else None
-
-
-class InactivePolicyError(ServiceError, LookupError):
-    """A policy name that is not the name of an active ruleset (pages answer 404)."""
-
-    def __init__(self, policy: str, active: Sequence[str]) -> None:
-        self.policy = policy
-        choices = ", ".join(active) or "none is active"
-        super().__init__(f"policy: {policy!r} is not an active policy (active: {choices})")
-
-
-def require_policy(*, session: Session, policy: str | None) -> RulesetRow | None:
-    """The active ruleset of ``policy`` (the lead's when None; None when nothing is active).
-
-    Raises :class:`InactivePolicyError` for a name that is not active."""
-    row = active_ruleset(session=session, policy=policy)
-    if row is None and policy is not None:
-        raise InactivePolicyError(policy, [r.name for r in active_rulesets(session=session)])
-    return row
 
 
 def newest_cutoff(*, session: Session) -> datetime | None:
@@ -282,7 +154,7 @@ def evaluate_districts(
         return reused
     try:
         with session.begin_nested():
-            written, kept = _store_assessments(session, ruleset_row.id, cutoff, result)
+            written, kept = store_assessments(session, ruleset_row.id, cutoff, result)
             session.add(RunRow(
                 ruleset_id=ruleset_row.id, data_cutoff=cutoff, first_day=start, last_day=end,
                 rows_written=written, created_at=datetime.now(UTC), fingerprints=kept,
@@ -342,8 +214,8 @@ def serialise_evaluations(session: Session) -> None:
 
 
 def policies_behind(*, session: Session) -> tuple[list[RulesetRow], datetime | None]:
-    """The active rulesets (in :func:`active_rulesets` order) whose newest evaluation is older
-    than the newest data, and the newest data cutoff (None: no data).
+    """The active rulesets (in :func:`~server.services.rulesets.active_rulesets` order) whose
+    newest evaluation is older than the newest data, and the newest data cutoff (None: no data).
 
     Compares the newest vintage's ``received_at`` (the default cutoff) with the newest
     ``evaluation_run`` cutoff of each active ruleset. Vintages taken in without an explicit time
@@ -423,286 +295,4 @@ def store_forecasts_after_tiers(
     log.info("stored forecasts at cutoff %s: %d region rows", cutoff.isoformat(), written)
     return written
 
-
-def assessments_as_of(
-    query: Select[Any], *, ruleset_id: int, cutoff: datetime, before: bool = False,
-    region_id: int | None = None, start: date | None = None, end: date | None = None,
-) -> Select[Any]:
-    """Restrict ``query`` (which selects from :class:`Assessment`) to the rows in force at a run.
-
-    For each region and day, the row of ``ruleset_id`` with the greatest ``data_cutoff`` not
-    after ``cutoff`` (strictly before it with ``before``), optionally for one region and a range
-    of days. One grouped subquery joined back on the unique key (ruleset, region, day, cutoff);
-    the key's index (and ``ix_assessment_ruleset_day`` for one day across regions) serves both.
-    """
-    a = Assessment
-    where = [a.ruleset_id == ruleset_id,
-             a.data_cutoff < cutoff if before else a.data_cutoff <= cutoff]
-    if region_id is not None:
-        where.append(a.region_id == region_id)
-    if start is not None:
-        where.append(a.ref_date >= start)
-    if end is not None:
-        where.append(a.ref_date <= end)
-    newest = (
-        select(a.region_id, a.ref_date, func.max(a.data_cutoff).label("data_cutoff"))
-        .where(*where)
-        .group_by(a.region_id, a.ref_date)
-        .subquery("newest")
-    )
-    return query.join(newest, and_(
-        a.region_id == newest.c.region_id, a.ref_date == newest.c.ref_date,
-        a.data_cutoff == newest.c.data_cutoff,
-    )).where(a.ruleset_id == ruleset_id)
-
-
-def content_sha256(row: dict[str, Any]) -> str:
-    """SHA-256 of what an assessment says: tiers, criteria, prepare signals and explanation.
-
-    The cutoff, creation time and the region and day (the row's key) are left out, so two runs
-    that reach the same result for a district and day give the same hash.
-    """
-    payload = json.dumps(
-        [row["recommended_tier"], row["previous_tier"], row["criteria"],
-         row["prepare_signals"], row["explanation"]],
-        sort_keys=True, separators=(",", ":"),
-    )
-    return hashlib.sha256(payload.encode("utf-8")).hexdigest()
-
-
-def _assessment_rows(
-    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation,
-    build: NDArray[np.bool_] | None = None,
-) -> list[dict[str, Any]]:
-    """The rows of the region-days in ``build`` ``(regions, days)`` (None: every one), in
-    region then day order."""
-    region_ids = dict(session.execute(select(Region.code, Region.id)).all())
-    criteria = [c.id for c in result.ruleset.criteria]
-    signals = [s.id for s in result.ruleset.prepare]
-    now = datetime.now(UTC)
-    rows = []
-    wanted = None if build is None else build.tolist()
-    for r, code in enumerate(result.regions):
-        for d in range(result.dates.size):
-            if wanted is not None and not wanted[r][d]:
-                continue
-            explanation = result.explain(r, d)
-            row: dict[str, Any] = {
-                "ruleset_id": ruleset_id,
-                "region_id": region_ids[code],
-                "ref_date": result.dates[d].astype(date),
-                "data_cutoff": cutoff,
-                "recommended_tier": int(result.tier[r, d]),
-                "previous_tier": (
-                    int(result.tier[r, d - 1]) if d else int(result.start_in_force[r])
-                ),
-                "criteria": {
-                    cid: {
-                        "level": int(result.levels[k, r, d]),
-                        "known": bool(result.known[k, r, d]),
-                    }
-                    for k, cid in enumerate(criteria)
-                },
-                "prepare_signals": {
-                    sid: bool(result.prepare[k, r, d]) for k, sid in enumerate(signals)
-                },
-                "explanation": {"sentence": explanation.sentence, "data": explanation.data},
-                "created_at": now,
-            }
-            row["content_sha256"] = content_sha256(row)
-            rows.append(row)
-    return rows
-
-
-_CHUNK = 500  # ids per IN list (well under SQLite's bound-parameter limit)
-
-
-def _store_assessments(
-    session: Session, ruleset_id: int, cutoff: datetime, result: Evaluation
-) -> tuple[int, bytes | None]:
-    """Store the rows that differ from the newest earlier ones; returns how many were stored
-    and the fingerprints the run keeps.
-
-    Only the region-days whose engine state differs from the newest earlier run's are built
-    (:mod:`server.services.run_fingerprints`); the others equal the row in force before
-    ``cutoff`` and would not be stored.
-    """
-    plan = run_fingerprints.plan(session, ruleset_id, cutoff, result)
-    if plan.keep is not None:
-        run_fingerprints.keep_only(session, ruleset_id, cutoff)
-    rows = _assessment_rows(session, ruleset_id, cutoff, result, plan.build)
-    if not rows:
-        return 0, plan.keep
-    start, end = result.dates[0].astype(date), result.dates[-1].astype(date)
-    if plan.build is not None:  # only the rows built are compared: from the first day built
-        start = result.dates[int(np.flatnonzero(plan.build.any(axis=0))[0])].astype(date)
-    earlier = {
-        (rid, day): (aid, sha)
-        for aid, rid, day, sha in session.execute(assessments_as_of(
-            select(Assessment.id, Assessment.region_id, Assessment.ref_date,
-                   Assessment.content_sha256),
-            ruleset_id=ruleset_id, cutoff=cutoff, before=True, start=start, end=end,
-        ))
-    }
-    changed = []
-    for row in rows:
-        prev = earlier.get((row["region_id"], row["ref_date"]))
-        # rows stored before revision 0003 carry no hash: treated as changed, stored once more
-        if prev is None or prev[1] is None or prev[1] != row["content_sha256"]:
-            changed.append(row)
-    if changed:
-        session.execute(insert(Assessment), changed)
-        _keep_next_run(session, ruleset_id, cutoff, changed, earlier, start, end)
-    return len(changed), plan.keep
-
-
-def _keep_next_run(
-    session: Session, ruleset_id: int, cutoff: datetime, changed: list[dict[str, Any]],
-    earlier: dict[tuple[int, date], tuple[int, str | None]], start: date, end: date,
-) -> None:
-    """Keep what the next later run (if any) reads for the keys just written at ``cutoff``.
-
-    That run read, for a key with no row between the two cutoffs, the row from before
-    ``cutoff``; now it would read the new one. Copying the old row to the later run's cutoff
-    restores its reading, and every run after it reads the copy or a newer row of its own.
-    """
-    later = session.scalar(
-        select(RunRow).where(RunRow.ruleset_id == ruleset_id, RunRow.data_cutoff > cutoff)
-        .order_by(RunRow.data_cutoff).limit(1)
-    )
-    if later is None:
-        return
-    a = Assessment
-    covered = {(rid, day) for rid, day in session.execute(
-        select(a.region_id, a.ref_date).where(
-            a.ruleset_id == ruleset_id, a.data_cutoff > cutoff,
-            a.data_cutoff <= later.data_cutoff, a.ref_date >= start, a.ref_date <= end,
-        )
-    )}
-    ids = [
-        earlier[key][0] for key in ((r["region_id"], r["ref_date"]) for r in changed)
-        if key in earlier and key not in covered
-    ]
-    now = datetime.now(UTC)
-    columns = ("ruleset_id", "region_id", "ref_date", "recommended_tier", "previous_tier",
-               "criteria", "prepare_signals", "explanation", "content_sha256")
-    for k in range(0, len(ids), _CHUNK):
-        old = session.scalars(select(a).where(a.id.in_(ids[k:k + _CHUNK])))
-        copies = [
-            {**{c: getattr(o, c) for c in columns},
-             "data_cutoff": later.data_cutoff, "created_at": now}
-            for o in old
-        ]
-        session.execute(insert(Assessment), copies)
-    later.rows_written += len(ids)
-    session.flush()
-
-
-def newest_run_of(*, session: Session, ruleset_id: int) -> RunRow | None:
-    """The recorded evaluation run of ``ruleset_id`` with the newest data cutoff (None: none)."""
-    return session.scalar(
-        select(RunRow).where(RunRow.ruleset_id == ruleset_id)
-        .order_by(RunRow.data_cutoff.desc()).limit(1)
-    )
-
-
-def newest_run(
-    *, session: Session, policy: str | None = None
-) -> tuple[RulesetRow, RunRow] | None:
-    """The active ruleset of ``policy`` (the lead's when None) and its newest recorded
-    evaluation run (None: none)."""
-    row = active_ruleset(session=session, policy=policy)
-    if row is None:
-        return None
-    run = newest_run_of(session=session, ruleset_id=row.id)
-    return None if run is None else (row, run)
-
-
-def _newest_run(
-    session: Session, policy: str | None
-) -> tuple[RulesetRow, datetime, date] | None:
-    """The policy's active ruleset, the data cutoff of its newest run and that run's last day."""
-    newest = newest_run(session=session, policy=policy)
-    if newest is None:
-        return None
-    row, run = newest
-    return row, run.data_cutoff, run.last_day
-
-
-def current_assessment_id(
-    *, session: Session, region_id: int, policy: str | None = None
-) -> int | None:
-    """Id of a district's current item in the review of ``policy`` (the lead's when None): its
-    assessment of the last day of the newest run (the policy's active ruleset), as of that
-    run's cutoff; None when there is none."""
-    newest = _newest_run(session, policy)
-    if newest is None:
-        return None
-    row, cutoff, last_day = newest
-    return session.scalar(assessments_as_of(
-        select(Assessment.id), ruleset_id=row.id, cutoff=cutoff, region_id=region_id,
-        start=last_day, end=last_day,
-    ))
-
-
-@dataclass(frozen=True, kw_only=True, eq=False)
-class LatestItem:
-    """A district's newest stored assessment and the first day of its current recommendation."""
-
-    region_id: int
-    code: str
-    name: str
-    assessment: Assessment
-    since: date
-
-
-@dataclass(frozen=True, kw_only=True, eq=False)
-class LatestRun:
-    """The newest stored evaluation of the active ruleset: one item per district."""
-
-    ruleset_row: RulesetRow
-    ruleset: Ruleset
-    data_cutoff: datetime
-    last_day: date
-    items: tuple[LatestItem, ...]
-
-
-PACKAGED_POLICIES = Path(rules.__file__).with_name("policies")
-
-
-def policies_dir(configured: Path | None) -> Path:
-    """The configured rules folder, or the policies shipped with tierwise."""
-    return configured if configured is not None else PACKAGED_POLICIES
-
-
-def default_ruleset_path(configured: Path | None) -> Path:
-    """The policy the demo and a fresh installation start with."""
-    return policies_dir(configured) / "county.yaml"
-
-
-__all__ = [
-    "EvaluationRun",
-    "LatestItem",
-    "LatestRun",
-    "activate_ruleset",
-    "InactivePolicyError",
-    "active_ruleset",
-    "active_rulesets",
-    "assessments_as_of",
-    "content_sha256",
-    "current_assessment_id",
-    "default_ruleset_path",
-    "evaluate_districts",
-    "evaluate_if_behind",
-    "evaluation_behind",
-    "newest_cutoff",
-    "newest_run",
-    "newest_run_of",
-    "policies_behind",
-    "policies_dir",
-    "require_policy",
-    "retire_ruleset",
-    "serialise_evaluations",
-    "store_ruleset",
-]
 

@@ -73,7 +73,7 @@ def aggregate_data(
     weight the plants by them. Stale and invalid: more than ``max_missing`` of the population.
 
     ``blocks``: ``data`` holds that many stacked copies of the districts, block by block, with
-    codes ``k:code`` (the as-known backtest's windows, ``backtest._stack``); each block is
+    codes ``k:code`` (the as-known backtest's windows, ``as_known_replay._stack``); each block is
     summed on its own and the result is stacked the same way (codes ``k:group``).
     """
     r = len(data.regions) // blocks

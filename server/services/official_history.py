@@ -32,10 +32,10 @@ from sqlalchemy.orm import Session
 
 from server.services.audit import record
 from server.services.errors import InputFileError
-from server.services.evaluation import require_policy
 from server.services.hierarchy import hierarchy
 from server.services.review_official import policy_condition
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import require_policy
 from server.services.users import name_key
 from server.store.models import Decision, Region, User
 

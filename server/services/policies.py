@@ -20,10 +20,11 @@ from rules import IndicatorSpec, Ruleset, RulesetError, parse_ruleset
 from server.services.audit import record
 from server.services.district_data import store_measures
 from server.services.errors import ServiceError
-from server.services.evaluation import activate_ruleset, active_ruleset, retire_ruleset
 from server.services.indicator_kinds import indicator_check
 from server.services.notify import NotifyConfig
+from server.services.ruleset_activation import activate_ruleset, retire_ruleset
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset
 from server.store.models import Ruleset as RulesetRow
 
 __all__ = [
@@ -308,7 +309,7 @@ def activate_version(
 ) -> None:
     """Make a version active (the active version of its name is retired; other policies stay
     active) and evaluate it on the newest
-    data (:func:`server.services.evaluation.activate_ruleset`; ``stale_after``: the feeds'
+    data (:func:`server.services.ruleset_activation.activate_ruleset`; ``stale_after``: the feeds'
     staleness limits)."""
     row = session.get(RulesetRow, ruleset_id)
     if row is None:
@@ -318,8 +319,9 @@ def activate_version(
 
 
 def retire_version(*, session: Session, ruleset_id: int, actor: str) -> None:
-    """Stop running an active policy version (:func:`server.services.evaluation.retire_ruleset`);
-    the other active policies go on."""
+    """Stop running an active policy version
+    (:func:`server.services.ruleset_activation.retire_ruleset`); the other active policies go
+    on."""
     row = session.get(RulesetRow, ruleset_id)
     if row is None:
         raise UnknownPolicyError(ruleset_id)

@@ -40,14 +40,12 @@ from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
+from server.services.assessments import current_assessment_id
 from server.services.audit import record
 from server.services.errors import ServiceError
-from server.services.evaluation import (
-    active_ruleset,
-    current_assessment_id,
-)
 from server.services.review_official import RANK, policy_condition
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset
 from server.services.tiers import decision_scales, tier_label, tier_name
 from server.services.users import may
 from server.store.models import Assessment, Region, User

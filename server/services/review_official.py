@@ -20,8 +20,8 @@ from datetime import UTC, date, datetime, timedelta
 from sqlalchemy import ColumnElement, select, true
 from sqlalchemy.orm import Session
 
-from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset, active_rulesets
 from server.services.tiers import decision_scales, tier_name
 from server.store.models import Assessment, AuditEntry, Region, User
 from server.store.models import Decision as DecisionRow

@@ -20,15 +20,10 @@ from sqlalchemy import func, or_, select
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
-from server.services.evaluation import (
-    LatestItem,
-    LatestRun,
-    active_rulesets,
-    assessments_as_of,
-    newest_run,
-)
+from server.services.assessments import LatestItem, LatestRun, assessments_as_of, newest_run
 from server.services.review_official import decisions_by_region
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_rulesets
 from server.services.tiers import Scale, decision_scales, tier_label, tier_name
 from server.store.models import Assessment, Region
 from server.store.models import Decision as DecisionRow

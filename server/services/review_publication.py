@@ -17,8 +17,8 @@ from datetime import UTC, datetime
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from server.services.assessments import LatestItem
 from server.services.audit import record
-from server.services.evaluation import LatestItem, active_rulesets, require_policy
 from server.services.notify import Delivery, Event, NotifyConfig, deliver_and_record
 from server.services.review_decisions import (
     active_policy,
@@ -33,6 +33,7 @@ from server.services.review_official import (
     rank,
 )
 from server.services.review_pending import current_run
+from server.services.rulesets import active_rulesets, require_policy
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
 

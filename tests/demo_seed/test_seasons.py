@@ -23,10 +23,11 @@ from rules import parse_ruleset
 from server.config import Settings
 from server.services.backtest import data_span
 from server.services.database import Database
-from server.services.district_data import store_measures
-from server.services.district_indicators import district_indicators, load_district_data
-from server.services.evaluation import activate_ruleset, policies_dir, store_ruleset
+from server.services.district_data import load_district_data, store_measures
+from server.services.district_indicators import district_indicators
 from server.services.indicator_kinds import measure_needs
+from server.services.ruleset_activation import activate_ruleset, store_ruleset
+from server.services.rulesets import policies_dir
 from server.store.models import Measure, Observation, Vintage
 
 END = date(2026, 12, 3)   # a Thursday in the current season (2026/27)

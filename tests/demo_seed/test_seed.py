@@ -14,9 +14,9 @@ from demo_seed.seed import DEMO_USERS, SeedSummary, received_at, seed_demo
 from server.config import Settings
 from server.services.database import Database
 from server.services.errors import NotADemoDatabaseError
-from server.services.evaluation import active_ruleset, active_rulesets
 from server.services.feed_push import token_matches
 from server.services.regions import RegionRecord, store_regions
+from server.services.rulesets import active_ruleset, active_rulesets
 from server.store import read_dense, revision_history
 from server.store.models import Assessment, Observation, Region, User, Vintage
 from server.store.models import Ruleset as RulesetRow

@@ -112,7 +112,7 @@ def _evaluate(policy: rules.Ruleset, inputs: dict[str, dict[str, Any]], start: i
 
 
 def _row(ev: Evaluation, r: int, d: int) -> tuple[Any, ...]:
-    """What an assessment row holds (``server.services.evaluation._assessment_rows``)."""
+    """What an assessment row holds (``server.services.assessments._assessment_rows``)."""
     explained = ev.explain(r, d)
     return (
         int(ev.tier[r, d]), int(ev.tier[r, d - 1]) if d else int(ev.start_in_force[r]),

@@ -139,7 +139,7 @@ feeds:
 def seed_small_office(db: Database, folder: Path, *, districts: int = 3) -> Path:
     """Invented districts ``S01``.., the measures the evaluation reads, :data:`STALE_RULES`
     active, and the feed file :data:`SMALL_FEEDS` (written to ``folder``, returned). No data."""
-    from server.services.evaluation import store_ruleset
+    from server.services.ruleset_activation import store_ruleset
     from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 
     (folder / "rules.yaml").write_text(STALE_RULES)

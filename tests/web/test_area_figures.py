@@ -9,7 +9,7 @@ from pathlib import Path
 
 from fastapi.testclient import TestClient
 
-from server.services.evaluation import store_ruleset
+from server.services.ruleset_activation import store_ruleset
 from tests.web.conftest import ROLE_USER, login
 
 HOSPITAL = Path(__file__).resolve().parents[2] / "rules" / "policies" / "hospital.yaml"

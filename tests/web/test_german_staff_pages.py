@@ -24,8 +24,8 @@ from fastapi.testclient import TestClient
 from sqlalchemy import select
 
 from demo_seed.feeds import DEMO_FEEDS_FILE
-from server.services.evaluation import active_ruleset
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import active_ruleset
 from server.store.models import Ruleset as RulesetRow
 from server.store.models import User, Vintage
 from tests.web.conftest import ROLE_USER, copy_demo, csrf_of, login, settings_for

@@ -16,8 +16,9 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import select
 
-from server.services.evaluation import active_ruleset, policies_dir, store_ruleset
 from server.services.review import decide, official_tiers, pending_changes, publish
+from server.services.ruleset_activation import store_ruleset
+from server.services.rulesets import active_ruleset, policies_dir
 from server.store.models import Decision, Region
 from tests.web.conftest import copy_demo, login, settings_for
 from web.app import create_app

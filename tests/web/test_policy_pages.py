@@ -19,8 +19,8 @@ import pytest
 from fastapi.testclient import TestClient
 
 from server.readmodels.policy_columns import policy_columns
-from server.services.evaluation import active_rulesets
 from server.services.review import decide, official_tiers, pending_changes, publish
+from server.services.rulesets import active_rulesets
 from tests.web.conftest import ROLE_USER, csrf_of, login, settings_for
 from web.app import create_app
 

@@ -15,7 +15,8 @@ from fastapi.testclient import TestClient
 from sqlalchemy import select
 
 from server.services.database import Database
-from server.services.evaluation import active_ruleset, evaluate_districts, newest_cutoff
+from server.services.evaluation import evaluate_districts, newest_cutoff
+from server.services.rulesets import active_ruleset
 from server.store.models import Decision as DecisionRow
 from server.store.models import Region
 from tests.web.conftest import copy_demo, csrf_of, login, seen_fields, settings_for

@@ -21,14 +21,11 @@ from pathlib import Path
 from sqlalchemy import func, select
 
 from server.services.database import Database
-from server.services.evaluation import (
-    active_ruleset,
-    evaluate_districts,
-    newest_cutoff,
-    store_ruleset,
-)
+from server.services.evaluation import evaluate_districts, newest_cutoff
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
+from server.services.ruleset_activation import store_ruleset
+from server.services.rulesets import active_ruleset
 from server.store.models import Observation, Vintage
 
 REGIONS = ("HA", "HB", "HC", "HD", "HE")

@@ -20,23 +20,20 @@ from sqlalchemy import select
 from server.config import Settings
 from server.readmodels import policy_columns as policy_columns_module
 from server.readmodels.policy_columns import assessed_regions, policy_columns
+from server.services.assessments import newest_run_of
 from server.services.database import Database
 from server.services.evaluation import (
     EvaluationRun,
-    InactivePolicyError,
-    active_ruleset,
-    active_rulesets,
     evaluate_if_behind,
     newest_cutoff,
-    newest_run_of,
     policies_behind,
-    retire_ruleset,
-    store_ruleset,
 )
 from server.services.notify import Event
 from server.services.review import decide, official_tiers, pending_changes, publish
 from server.services.review_official import policy_owners
 from server.services.review_publication import has_something_to_publish
+from server.services.ruleset_activation import retire_ruleset, store_ruleset
+from server.services.rulesets import InactivePolicyError, active_ruleset, active_rulesets
 from server.store.models import Assessment, Decision, Region
 from server.store.vintages import append_vintage
 

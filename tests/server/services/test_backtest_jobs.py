@@ -34,10 +34,11 @@ from server.services.backtest_jobs import (
     figures_of,
 )
 from server.services.database import Database
-from server.services.evaluation import default_ruleset_path, store_ruleset
 from server.services.observations import MeasureRecord, VintageWriter, define_measures
 from server.services.regions import RegionRecord, store_regions
+from server.services.ruleset_activation import store_ruleset
 from server.services.ruleset_cache import parsed
+from server.services.rulesets import default_ruleset_path
 from server.store import make_sessionmaker, scratch_engine, upgrade
 from server.store.models import BacktestJob
 from server.store.models import Ruleset as RulesetRow

@@ -12,7 +12,8 @@ import pytest
 from sqlalchemy.orm import Session
 
 from rules import parse_ruleset
-from server.services.backtest import capacity_leads, crossing_leads, run_backtest
+from server.services.backtest import run_backtest
+from server.services.capacity_leads import capacity_leads, crossing_leads
 from server.store.catalogue import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.vintages import append_vintage
 

@@ -127,14 +127,14 @@ def test_a_collision_on_the_unique_keys_reuses_the_stored_run(
     feed = _feed(committed_db, tmp_path)
     _ingest(committed_db, feed, cases_csv(60), evaluate=False)
     both_storing = threading.Barrier(2, timeout=60)
-    store = evaluation._store_assessments
+    store = evaluation.store_assessments
 
     def wait_then_store(*args: Any, **kwargs: Any) -> int:
         both_storing.wait()
         return store(*args, **kwargs)
 
     monkeypatch.setattr(evaluation, "serialise_evaluations", lambda session: None)
-    monkeypatch.setattr(evaluation, "_store_assessments", wait_then_store)
+    monkeypatch.setattr(evaluation, "store_assessments", wait_then_store)
     results = _at_once(2, lambda: evaluate_if_behind(committed_db))
     assert all(isinstance(r, EvaluationRun) for r in results), results
     assert sorted(r.reused for r in results) == [False, True]

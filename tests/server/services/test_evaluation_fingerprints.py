@@ -23,14 +23,11 @@ from sqlalchemy.orm import Session
 
 from rules.evaluation import Evaluation
 from server.services import run_fingerprints
-from server.services.evaluation import (
-    active_ruleset,
-    default_ruleset_path,
-    evaluate_districts,
-    store_ruleset,
-)
+from server.services.evaluation import evaluate_districts
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
+from server.services.ruleset_activation import store_ruleset
+from server.services.rulesets import active_ruleset, default_ruleset_path
 from server.store.models import Assessment, EvaluationRun
 from server.store.models import Ruleset as RulesetRow
 from server.store.vintages import append_vintage

@@ -24,18 +24,13 @@ from server.readmodels.dossier import district_dossier, explanation_page
 from server.readmodels.morning import morning_overview
 from server.readmodels.pages import public_district_page, public_map
 from server.readmodels.queue import review_queue
-from server.services.evaluation import (
-    active_ruleset,
-    assessments_as_of,
-    current_assessment_id,
-    default_ruleset_path,
-    evaluate_districts,
-    newest_cutoff,
-    store_ruleset,
-)
+from server.services.assessments import assessments_as_of, current_assessment_id
+from server.services.evaluation import evaluate_districts, newest_cutoff
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
 from server.services.review import current_run, decide, decision_history, pending_changes
+from server.services.ruleset_activation import store_ruleset
+from server.services.rulesets import active_ruleset, default_ruleset_path
 from server.services.users import add_user
 from server.store import revision_history
 from server.store.models import Assessment, AuditEntry, EvaluationRun, Region

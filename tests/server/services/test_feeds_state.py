@@ -16,11 +16,12 @@ from server.feeds.parser import read_chunks
 from server.feeds.sources import Payload
 from server.readmodels.feeds_page import recent_rejections
 from server.services.database import Database
-from server.services.evaluation import evaluate_if_behind, store_ruleset
+from server.services.evaluation import evaluate_if_behind
 from server.services.feed_health import duration_text, feed_statuses
 from server.services.feed_push import ingest_push, issue_token, upload_payload
 from server.services.feed_state import ingest_recorded
 from server.services.feeds import catalogue_limits
+from server.services.ruleset_activation import store_ruleset
 from server.store import (
     MeasureRecord,
     RegionRecord,

@@ -14,7 +14,8 @@ from sqlalchemy.orm import Session
 from typer.testing import CliRunner
 
 from server.cli import app
-from server.services.evaluation import evaluate_districts, store_ruleset
+from server.services.evaluation import evaluate_districts
+from server.services.ruleset_activation import store_ruleset
 from server.store.models import Assessment, Region
 
 HOSPITAL = Path(__file__).resolve().parents[3] / "rules" / "policies" / "hospital.yaml"

@@ -21,7 +21,7 @@ from sqlalchemy.orm import Session
 
 from rules import IndicatorSeries, evaluate, parse_ruleset
 from server.services.errors import InputFileError
-from server.services.evaluation import active_ruleset, evaluate_districts
+from server.services.evaluation import evaluate_districts
 from server.services.notify import (
     SIGNATURE_HEADER,
     NotifyConfig,
@@ -40,6 +40,7 @@ from server.services.review import (
     pending_changes,
     publish,
 )
+from server.services.rulesets import active_ruleset
 from server.store.models import Assessment, AuditEntry
 from server.store.vintages import append_vintage
 from tests.server.conftest import seen

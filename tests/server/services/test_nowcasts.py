@@ -16,11 +16,12 @@ from rules import evaluate, load_ruleset, parse_ruleset
 from rules.levels import REASON_NOWCAST
 from server.feeds.definition import parse_feeds
 from server.feeds.sources import Payload
-from server.services.backtest import nowcast_accuracy_report, run_backtest
+from server.services.backtest import run_backtest
 from server.services.district_data import load_district_data
 from server.services.district_indicators import district_indicators
 from server.services.evaluation import evaluate_districts
 from server.services.ingest import ingest_payload
+from server.services.nowcast_scores import nowcast_accuracy_report
 from server.store import MeasureRecord, RegionRecord, upsert_measures, upsert_regions
 from server.store.models import Assessment, Region
 from server.store.models import Ruleset as RulesetRow

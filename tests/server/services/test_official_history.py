@@ -168,7 +168,7 @@ def test_an_area_level_policy_takes_the_official_tiers_of_its_areas(
 ) -> None:
     """A policy set for the areas (the demo's hospital-pressure policy) records its history
     under the area codes; a district code is refused with file, line and field."""
-    from server.services.evaluation import store_ruleset
+    from server.services.ruleset_activation import store_ruleset
 
     hospital = Path(__file__).resolve().parents[3] / "rules" / "policies" / "hospital.yaml"
     store_ruleset(session=demo_session, path=hospital, author="test", activate=True)

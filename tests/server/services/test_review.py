@@ -10,13 +10,8 @@ import pytest
 from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
-from server.services.evaluation import (
-    active_ruleset,
-    assessments_as_of,
-    evaluate_districts,
-    newest_run,
-    store_ruleset,
-)
+from server.services.assessments import assessments_as_of, newest_run
+from server.services.evaluation import evaluate_districts
 from server.services.review import (
     RecommendationChangedError,
     ReviewError,
@@ -28,6 +23,8 @@ from server.services.review import (
     pending_changes,
     publish,
 )
+from server.services.ruleset_activation import store_ruleset
+from server.services.rulesets import active_ruleset
 from server.store.models import Assessment, AuditEntry, Region
 from server.store.models import Decision as DecisionRow
 from server.store.vintages import append_vintage

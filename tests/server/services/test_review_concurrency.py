@@ -21,7 +21,6 @@ import pytest
 from sqlalchemy import func, select
 
 from server.services.database import Database
-from server.services.evaluation import store_ruleset
 from server.services.observations import MeasureRecord, define_measures
 from server.services.regions import RegionRecord, store_regions
 from server.services.review import (
@@ -30,6 +29,7 @@ from server.services.review import (
     pending_changes,
     publish,
 )
+from server.services.ruleset_activation import store_ruleset
 from server.services.users import add_user
 from server.store import make_sessionmaker, scratch_engine, upgrade
 from server.store.models import Decision as DecisionRow
