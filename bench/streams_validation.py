@@ -13,7 +13,8 @@ its faecal marker) prints, over all seeds:
 - false breaks: share of estimated breaks with no true step (any size) within +-7 days (for
   cases also none within 7 days of a testing change);
 - agreement: for case breaks within 5 days of a true step, the share whose admissions /
-  wastewater agree under the default alignment (+3 / -4 days) and tolerance (7 days), and the
+  wastewater agree (a break of the same direction) under the default alignment (+3 / -4
+  days) and tolerance (7 days), and the
   same share for case breaks with no true step near (agreement there is a false alarm).
 
 Cases and admissions: :func:`server.indicators.changepoints.detect_changepoints` (kink model,
@@ -49,18 +50,22 @@ HIT, NEAR = 5, 7
 def evaluate(seed: int, regions: int, days: int, min_change: float) -> dict[str, list[float]]:
     sc = simulate_steps(seed, regions=regions, days=days)
     lag = (GI_SD**2 + GI_MEAN**2) / (2.0 * GI_MEAN)
-    found = {
+    res = {
         "cases": detect_changepoints(sc.cases, si_mean=GI_MEAN, si_sd=GI_SD,
-                                     min_change=min_change).breaks,
+                                     min_change=min_change),
         "admissions": detect_changepoints(sc.admissions, si_mean=GI_MEAN, si_sd=GI_SD,
-                                          min_change=min_change).breaks,
+                                          min_change=min_change),
         "wastewater": detect_level_breaks(sc.wastewater, si_mean=GI_MEAN, si_sd=GI_SD,
-                                          min_change=min_change).breaks,
+                                          min_change=min_change),
     }
+    found = {s: r.breaks for s, r in res.items()}
     delay = {"cases": sc.report_shift, "admissions": sc.admission_shift,
              "wastewater": sc.shedding_shift}
     agree = {s: stream_agreement(found["cases"], found[s], alignment=ALIGNMENT[s],
-                                 tolerance=DEFAULT_TOLERANCE) for s in ("admissions", "wastewater")}
+                                 tolerance=DEFAULT_TOLERANCE,
+                                 case_change=res["cases"].growth_change,
+                                 other_change=res[s].growth_change)
+             for s in ("admissions", "wastewater")}
     out: dict[str, list[float]] = {}
 
     def add(key: str, value: float) -> None:

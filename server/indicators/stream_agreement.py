@@ -39,7 +39,8 @@ DEFAULT_TOLERANCE = 7
 
 @dataclass(frozen=True, eq=False)
 class StreamAgreement:
-    """For each case break, the nearest aligned break of the other stream.
+    """For each case break, the nearest aligned break of the other stream (of the same
+    direction when the changes are given).
 
     Attributes
     ----------
@@ -61,7 +62,8 @@ class StreamAgreement:
 
 
 def stream_agreement(case_breaks: ArrayLike, other_breaks: ArrayLike, *, alignment: float,
-                     tolerance: float = DEFAULT_TOLERANCE) -> StreamAgreement:
+                     tolerance: float = DEFAULT_TOLERANCE, case_change: ArrayLike | None = None,
+                     other_change: ArrayLike | None = None) -> StreamAgreement:
     """Whether each case break has a break of another stream within ``tolerance`` days.
 
     Parameters
@@ -74,6 +76,10 @@ def stream_agreement(case_breaks: ArrayLike, other_breaks: ArrayLike, *, alignme
         Days the other stream's breaks come after those of cases (negative: before).
     tolerance : float
         Largest ``|other - alignment - case|`` that agrees (days, >= 0).
+    case_change, other_change : array_like, shapes of the breaks, optional
+        Change of the growth rate at each break. When both are given only a break of the
+        other stream whose change has the same sign counts (growth turning down in cases and
+        up in wastewater is no agreement).
 
     Returns
     -------
@@ -94,6 +100,10 @@ def stream_agreement(case_breaks: ArrayLike, other_breaks: ArrayLike, *, alignme
         return StreamAgreement(none, np.full((rows, k), np.nan), np.full((rows, k), -1))
     diff = (o[:, None, :] - float(alignment)) - c[:, :, None]  # (rows, k, m)
     valid = (c[:, :, None] >= 0) & (o[:, None, :] >= 0)
+    if case_change is not None and other_change is not None:
+        cc = np.broadcast_to(np.asarray(case_change, dtype=np.float64), c.shape)
+        oc = np.broadcast_to(np.asarray(other_change, dtype=np.float64), o.shape)
+        valid &= np.sign(cc)[:, :, None] == np.sign(oc)[:, None, :]
     dist = np.where(valid, np.abs(diff), np.inf)
     at = np.argmin(dist, axis=2)
     best = np.take_along_axis(dist, at[..., None], axis=2)[..., 0]

@@ -4,9 +4,10 @@
   before, found as the effects page finds them
   (:func:`server.indicators.changepoints.detect_changepoints`, default settings), with the
   interval of each date and the change of the growth rate; the breaks of its hospital
-  admissions and of the wastewater of its main plant, and for each case break whether those
-  streams have a break near it after allowing for their delays
-  (:mod:`server.services.stream_breaks`).
+  admissions and of the wastewater of its main plant (searched from
+  :data:`~server.services.stream_breaks.SEARCH_LEAD_DAYS` days before the period), and for
+  each case break whether those streams have a break near it in the same direction after
+  allowing for their delays (:mod:`server.services.stream_breaks`).
 * *Events*: published tier changes and recorded events of the district, its area and the county
   in the period, with their before/after estimates (:func:`server.services.event_effects.
   effects_page`; "too early to tell" until the data allow).
@@ -28,6 +29,7 @@ from sqlalchemy.orm import Session, aliased
 from server.indicators.testing_known import testing_changes_as_known
 from server.services.event_effects import EventEffect, effects_page
 from server.services.stream_breaks import (
+    SEARCH_LEAD_DAYS,
     STREAMS,
     Agreement,
     StreamBreak,
@@ -41,7 +43,7 @@ from server.store.reads import read_dense
 
 __all__ = ["BreakMark", "DistrictMarks", "TestingMark", "district_marks"]
 
-#: Days before the period the break search and the testing screen also read.
+#: Days before the period the case-break search and the testing screen also read.
 LEAD_DAYS = 90
 
 
@@ -134,8 +136,9 @@ def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date,
     """Breaks (of every stream), events and testing changes of district ``code`` from
     ``start`` to ``end``."""
     first = start - dt.timedelta(days=LEAD_DAYS)
-    streams = stream_breaks(session=session, codes=[code], first=first, last=end,
-                            options=options)[0]
+    streams = stream_breaks(session=session, codes=[code],
+                            first=start - dt.timedelta(days=SEARCH_LEAD_DAYS), last=end,
+                            options=options, cases_from=first)[0]
     breaks, known = _breaks(streams, start)
     others = tuple(sorted((b for s in STREAMS for b in streams.breaks[s] if b.day >= start),
                           key=lambda b: (b.day, b.stream)))

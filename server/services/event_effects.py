@@ -33,7 +33,12 @@ from server.indicators.before_after import (
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
 from server.services.hierarchy import membership, sum_up
-from server.services.stream_breaks import Agreement, StreamOptions, stream_breaks
+from server.services.stream_breaks import (
+    SEARCH_LEAD_DAYS,
+    Agreement,
+    StreamOptions,
+    stream_breaks,
+)
 from server.services.users import may
 from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
 from server.store.reads import read_dense
@@ -242,8 +247,9 @@ def effects_page(
     rows = np.array([row_of[regions[e.region_id].code] for e in raw])
     res = before_after(counts, rows, day_index, window=o.window, delay=o.delay,
                        transition=o.transition, lead=o.lead)
-    searched = stream_breaks(session=session, codes=codes, first=first, last=last,
-                             options=streams)
+    searched = stream_breaks(session=session, codes=codes,
+                             first=min(first, start - dt.timedelta(days=SEARCH_LEAD_DAYS)),
+                             last=last, options=streams, cases_from=first)
     breaks = {i: [((b.day - first).days, a) for b, a in zip(
         r.breaks["cases"], r.agreement, strict=True)] for i, r in enumerate(searched)
         if r.searched["cases"]}

@@ -12,8 +12,9 @@ Each stream gets its own change points:
   removes dilution and handling), else the concentration. A region's wastewater is that of
   the plant serving most of its people (catchment shares times district populations).
 
-A case break agrees with a stream when that stream has a break within ``tolerance`` days of
-it after shifting by the stream's delay relative to cases
+A case break agrees with a stream when that stream has a break of the same direction (growth
+turning up or down in both) within ``tolerance`` days of it after shifting by the stream's
+delay relative to cases
 (:mod:`server.indicators.stream_agreement`, defaults and their sources there).
 """
 
@@ -35,6 +36,7 @@ from server.store.models import Catchment, Region
 from server.store.reads import read_dense
 
 __all__ = [
+    "SEARCH_LEAD_DAYS",
     "STREAMS",
     "StreamBreak",
     "StreamOptions",
@@ -48,6 +50,12 @@ STREAMS = ("admissions", "wastewater")
 MEASURE = {"cases": "cases", "admissions": "hosp_admissions"}
 #: Fewest days with data for a break search (two segments of the default 14 days).
 MIN_DAYS = 28
+#: Days before a page's period that the search of admissions and wastewater reads (cases keep
+#: the page's own lead). These streams are sparse (a district's admissions) or noisy (two or
+#: three samples a week): a longer series gives their dispersion and each kink more days. In
+#: the demo (seed 7, the newest 120 days) 90 days before the period gave 4 admissions or
+#: wastewater breaks in 3 of 14 districts, 365 days 9 in 6 (looked at once; no source).
+SEARCH_LEAD_DAYS = 365
 
 
 class StreamOptionError(FormFieldError):
@@ -232,18 +240,24 @@ def _search(stream: str, values: np.ndarray, min_change: float) -> _Found | None
 
 
 def stream_breaks(*, session: Session, codes: list[str], first: dt.date, last: dt.date,
-                  options: StreamOptions | None = None) -> list[StreamsOfRegion]:
+                  options: StreamOptions | None = None, cases_from: dt.date | None = None
+                  ) -> list[StreamsOfRegion]:
     """Breaks of cases, admissions and wastewater of each region in ``codes`` found on the
-    days ``first..last``, with the agreement of every case break."""
+    days ``first..last`` (cases on ``cases_from..last`` when given), with the agreement of
+    every case break."""
     o = options or StreamOptions()
     regions = _regions(session)
     plants = main_plants(session, codes, regions)
+    cases = _counts(session, MEASURE["cases"], codes, first, last, regions)
+    if cases is not None and cases_from is not None and cases_from > first:
+        cases[:, : (cases_from - first).days] = np.nan
     data: dict[str, np.ndarray | None] = {
-        "cases": _counts(session, MEASURE["cases"], codes, first, last, regions),
+        "cases": cases,
         "admissions": _counts(session, MEASURE["admissions"], codes, first, last, regions),
         "wastewater": _wastewater(session, plants, first, last),
     }
     found: dict[str, np.ndarray] = {}  # (regions, k) break days, -1 none
+    changes: dict[str, np.ndarray] = {}  # (regions, k) change of growth rate at each
     searched: dict[str, np.ndarray] = {}
     marks: dict[str, list[list[StreamBreak]]] = {}
     for stream in ("cases", *STREAMS):
@@ -253,9 +267,11 @@ def stream_breaks(*, session: Session, codes: list[str], first: dt.date, last: d
         done = np.zeros(len(codes), dtype=bool)
         kmax = 0 if res is None else res.breaks.shape[1]
         days = np.full((len(codes), kmax), -1, dtype=np.int64)
+        change = np.full((len(codes), kmax), np.nan)
         if res is not None:
             done[res.rows] = True
             days[res.rows] = res.breaks
+            change[res.rows] = res.change[0]
 
             def day(j: int) -> dt.date:
                 return first + dt.timedelta(days=int(j))
@@ -268,9 +284,11 @@ def stream_breaks(*, session: Session, codes: list[str], first: dt.date, last: d
                         growth_change=(float(res.change[0][j, k]), float(res.change[1][j, k]),
                                        float(res.change[2][j, k]))))
         found[stream] = days
+        changes[stream] = change
         searched[stream] = done
     agree = {s: stream_agreement(found["cases"], found[s], alignment=o.delay(s),
-                                 tolerance=o.tolerance) for s in STREAMS}
+                                 tolerance=o.tolerance, case_change=changes["cases"],
+                                 other_change=changes[s]) for s in STREAMS}
     out = []
     for i, code in enumerate(codes):
         rows_of = []

@@ -38,3 +38,17 @@ def test_stream_agreement_refuses_mismatched_regions() -> None:
         stream_agreement([[1], [2]], [[1]], alignment=0)
     with pytest.raises(ValueError, match="tolerance"):
         stream_agreement([[1]], [[1]], alignment=0, tolerance=-1)
+
+
+def test_stream_agreement_with_changes_needs_the_same_direction() -> None:
+    # case growth turns down at 50; admissions turn up at 52 and down at 60 (alignment +3):
+    # by date alone 52 is nearest (offset -1), with directions only 60 counts (offset 7)
+    res = stream_agreement([[50]], [[52, 60]], alignment=3, tolerance=7,
+                           case_change=[[-0.05]], other_change=[[0.02, -0.04]])
+    assert_array_equal(res.agrees, [[True]])
+    assert_array_equal(res.nearest, [[60]])
+    assert res.offset[0, 0] == 7.0
+    res = stream_agreement([[50]], [[52]], alignment=3, case_change=[[-0.05]],
+                           other_change=[[0.02]])
+    assert_array_equal(res.agrees, [[False]])
+    assert_array_equal(res.nearest, [[-1]])
