@@ -7,8 +7,10 @@ response) run the chain-binomial SEIR of :mod:`demo_seed.epidemic` with a transm
 that is piecewise constant: each region has one to three steps of known date and size. About
 half the regions also get the testing-policy change of :mod:`demo_seed.observation` (wider
 testing: ascertainment and negative tests step up) on a known test date. Cases, tests and
-positives come from the demo's own observation models. A burn-in at the first reproduction
-number runs before day 0, so the series start in steady exponential growth or decline.
+positives come from the demo's own observation models, and so do hospital admissions and a
+sampled wastewater concentration per region (one plant each; own random streams, so adding
+them changed none of the other series). A burn-in at the first reproduction number runs before
+day 0, so the series start in steady exponential growth or decline.
 """
 
 from __future__ import annotations
@@ -21,8 +23,17 @@ from scipy import optimize
 from demo_seed.delays import discretised_gamma, mean_of_pmf
 from demo_seed.epidemic import generation_interval_pmf, simulate_seir
 from demo_seed.errors import ScenarioArgumentError
-from demo_seed.observation import INFECTION_TO_TEST, AscertainmentChange, case_reports, lab_tests
+from demo_seed.observation import (
+    INFECTION_TO_ADMISSION,
+    INFECTION_TO_TEST,
+    AscertainmentChange,
+    case_reports,
+    hospital_admissions,
+    lab_tests,
+)
 from demo_seed.observation import testing_change as testing_change_at
+from demo_seed.wastewater import SHEDDING
+from demo_seed.wastewater import wastewater as simulate_wastewater
 
 __all__ = ["StepScenario", "growth_from_reproduction", "simulate_steps"]
 
@@ -32,6 +43,11 @@ BURN_IN = 60
 BAND = 3.0  # steps steer incidence back when it has drifted by more than this factor
 R_RANGE = (0.75, 1.3)
 START = np.datetime64("2031-03-03")  # a Monday; invented calendar
+#: People served by each region's plant per person of the region: the regions are large (so
+#: that susceptibles barely deplete) and their incidence per person small; a plant serving a
+#: hundredth of them at the same infections keeps concentrations well above the detection
+#: limit, as a plant in a smaller place would be (invented).
+PLANT_SERVES = 0.01
 
 
 @dataclass(frozen=True)
@@ -61,6 +77,15 @@ class StepScenario:
         Test-date day of the testing-policy change (-1 where none).
     testing : AscertainmentChange
         Its size (``testing.index`` is -1: the day differs by region, see ``testing_day``).
+    admissions : ndarray
+        Hospital admissions by admission date (:func:`demo_seed.observation.hospital_admissions`).
+    wastewater : ndarray
+        Concentration divided by the faecal marker of the same sample (NaN on days without a
+        sample; :func:`demo_seed.wastewater.wastewater`, one plant per region serving
+        ``PLANT_SERVES`` of its people).
+    admission_shift, shedding_shift : float
+        Mean days from infection to admission and to shedding (a step at infection day d shows
+        around ``d + shift`` in that stream).
     """
 
     dates: np.ndarray
@@ -76,6 +101,10 @@ class StepScenario:
     report_shift: float
     testing_day: np.ndarray
     testing: AscertainmentChange
+    admissions: np.ndarray
+    wastewater: np.ndarray
+    admission_shift: float
+    shedding_shift: float
 
 
 def growth_from_reproduction(reproduction: np.ndarray, pmf: np.ndarray) -> np.ndarray:
@@ -206,9 +235,17 @@ def simulate_steps(seed: int, *, regions: int = 20, days: int = 240,
         cases[i] = rep.final[0, BURN_IN:]
         tests[i] = lab.tests[0, BURN_IN:]
         positives[i] = lab.positives[0, BURN_IN:]
+    all_dates = START - BURN_IN + np.arange(total)
+    adm = hospital_admissions(full, np.random.default_rng([seed, 34])).admissions[:, BURN_IN:]
+    ww = simulate_wastewater(full, np.eye(regions), pop * PLANT_SERVES, all_dates,
+                             np.random.default_rng([seed, 35]))
+    normalised = (ww.concentration / ww.marker)[:, BURN_IN:]
     return StepScenario(
         dates=dates, population=pop, infections=infections, cases=cases, tests=tests,
         positives=positives, change_day=change_day, change_ratio=change_ratio,
         reproduction=reproduction[:, BURN_IN:], growth=growth, report_shift=shift,
-        testing_day=testing_day, testing=testing_change_at(-1),
+        testing_day=testing_day, testing=testing_change_at(-1), admissions=adm,
+        wastewater=normalised,
+        admission_shift=mean_of_pmf(discretised_gamma(*INFECTION_TO_ADMISSION, max_lag=35)),
+        shedding_shift=mean_of_pmf(discretised_gamma(*SHEDDING, max_lag=30)),
     )

@@ -26,6 +26,7 @@ CHART_WORDS: tuple[str, ...] = (
     N_("95% interval of the nowcast"), N_("nowcast (expected final count)"), N_("median"),
     N_("50% band"), N_("90% band"), N_("beds in use"), N_("staffed beds"),
     N_("R before and after each event (95% intervals)"), N_("before"), N_("after"),
+    N_("admissions break"), N_("wastewater break"),
 )
 
 #: trace names and titles built around a name (web/charts.py), matched on the whole text

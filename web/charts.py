@@ -226,14 +226,17 @@ def effects_figure(events: Sequence[EventEffect], columns: int = 4) -> go.Figure
 
 #: How each kind of mark is drawn: colour, dash.
 MARK_STYLES = {"break": ("#5b6770", "dot"), "event": ("#6f5f9e", "solid"),
-               "testing": ("#b06000", "dash")}
+               "testing": ("#b06000", "dash"), "admissions": ("#2f6f8f", "dashdot"),
+               "wastewater": ("#4f7f3a", "dashdot")}
 
 
 def chart_marks(marks: DistrictMarks, start: date, end: date
                 ) -> list[tuple[date, str, str]]:
-    """(day, style, label) of the marks within ``start..end``: breaks in cases, events (tier
-    changes and recorded events) and testing changes (a dismissed one says so)."""
+    """(day, style, label) of the marks within ``start..end``: breaks in cases, in admissions
+    and in wastewater, events (tier changes and recorded events) and testing changes (a
+    dismissed one says so)."""
     out = [(b.day, "break", "break") for b in marks.breaks]
+    out += [(b.day, b.stream, f"{b.stream} break") for b in marks.stream_breaks]
     out += [(e.day, "event", e.kind.replace("_", " ")) for e in marks.events]
     out += [(t.day, "testing", "testing change" + (
         " (dismissed)" if t.verdict is not None and t.verdict.verdict == "dismissed" else ""))

@@ -3,7 +3,9 @@
 ``GET /staff/effects?start=&end=`` (ISO dates; default the last 120 days of data) lists every
 published tier change and every recorded event of the period (:mod:`server.services.event_effects`)
 with a small-multiples chart and the table beside it; ``window``, ``delay``, ``transition``,
-``lead`` and ``settle`` (days) override the estimate's windows. ``POST /staff/effects``
+``lead`` and ``settle`` (days) override the estimate's windows; ``admissions_delay``,
+``wastewater_delay`` (days against cases, negative when the stream leads) and ``tolerance``
+the agreement of breaks between streams. ``POST /staff/effects``
 records an event (analysts and up) and comes back to the page.
 """
 
@@ -17,6 +19,7 @@ from fastapi import APIRouter, Form, HTTPException, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.services.event_effects import EffectOptions, EventError, effects_page, record_event
+from server.services.stream_breaks import StreamOptionError, StreamOptions
 from web.charts import effects_figure, figure_json
 from web.deps import CsrfDep, RecordEventDep, SessionDep, StaffDep
 from web.templating import render
@@ -42,11 +45,21 @@ def _days(field: str, text: str, default: int) -> int:
     return int(text)
 
 
+def _signed_days(field: str, text: str, default: int) -> int:
+    value = text.strip()
+    if not value:
+        return default
+    digits = value[1:] if value[:1] in "+-" else value
+    if not digits.isdigit() or len(digits) > 3:
+        raise HTTPException(status_code=422, detail=f"{field}: {text!r} is not a number of days")
+    return int(value)
+
+
 @router.get("/effects", response_class=HTMLResponse)
 def effects(
     request: Request, session: SessionDep, user: StaffDep, start: str = "", end: str = "",
     window: str = "", delay: str = "", transition: str = "", lead: str = "", settle: str = "",
-    done: str = "",
+    done: str = "", admissions_delay: str = "", wastewater_delay: str = "", tolerance: str = "",
 ) -> Response:
     """The events of the period with their estimates, the chart and the form."""
     today = dt.date.today()
@@ -58,8 +71,16 @@ def effects(
             window=_days("window", window, base.window), delay=_days("delay", delay, base.delay),
             transition=_days("transition", transition, base.transition),
             lead=_days("lead", lead, base.lead), settle=_days("settle", settle, base.settle))
-        page = effects_page(session=session, start=first, end=last, options=options)
-    except EventError as exc:
+        base_streams = StreamOptions()
+        streams = StreamOptions(
+            admissions_delay=_signed_days("admissions_delay", admissions_delay,
+                                          base_streams.admissions_delay),
+            wastewater_delay=_signed_days("wastewater_delay", wastewater_delay,
+                                          base_streams.wastewater_delay),
+            tolerance=_days("tolerance", tolerance, base_streams.tolerance))
+        page = effects_page(session=session, start=first, end=last, options=options,
+                            streams=streams)
+    except (EventError, StreamOptionError) as exc:
         raise HTTPException(status_code=422, detail=str(exc)) from None
     fig = effects_figure(page.events)
     return render(request, "staff/effects.html", {

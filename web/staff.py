@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import date, datetime
+from datetime import date, datetime, timedelta
 from typing import Annotated
 
 from fastapi import APIRouter, Form, HTTPException, Request
@@ -33,6 +33,9 @@ from web.mapsvg import svg_map
 from web.templating import render
 
 router = APIRouter(tags=["staff"])
+
+#: Days before the explained day whose events and breaks the briefing can include.
+EFFECTS_DAYS = 120
 
 
 @router.get("/", response_class=HTMLResponse)
@@ -140,14 +143,22 @@ def capacity(request: Request, code: str, session: SessionDep, user: StaffDep,
 def explain(
     request: Request, code: str, session: SessionDep, settings: SettingsDep, user: StaffDep,
     day: date | None = None, as_of: datetime | None = None, policy: str = "",
+    effects: str = "",
 ) -> Response:
     """Why the district has its recommended tier on a day: a printable one-page briefing.
 
     The assessment made for the day from the data as they were then (``as_of``: the one in
-    force at that data cutoff), with what later data revised listed apart.
+    force at that data cutoff), with what later data revised listed apart. ``effects=1``
+    adds the measures and their effects: the events of the district, its area and the county
+    in the :data:`EFFECTS_DAYS` days up to the day, with their before/after estimates, and
+    the breaks in cases with the agreement of admissions and wastewater (newest data).
     """
+    page = explanation_page(session=session, code=code, day=day, as_of=as_of,
+                            policy=policy.strip() or None)
+    marks = None
+    if effects.strip() == "1":
+        marks = district_marks(session=session, code=page.code,
+                               start=page.day - timedelta(days=EFFECTS_DAYS), end=page.day)
     return render(request, "staff/explain.html", {
-        "e": explanation_page(session=session, code=code, day=day, as_of=as_of,
-                              policy=policy.strip() or None),
-        "zone": settings.time_zone,
+        "e": page, "zone": settings.time_zone, "marks": marks, "effects_days": EFFECTS_DAYS,
     })

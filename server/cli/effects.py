@@ -10,10 +10,12 @@ from rich.markup import escape
 
 from server.cli.output import fail, friendly_errors, say
 from server.services.effects import (
+    KERNEL_MIN_CHANGE,
     BreakOptions,
     EffectsTable,
     breaks_table,
     effects_csv,
+    levels_table,
     testing_table,
 )
 
@@ -27,6 +29,9 @@ MinSegment = Annotated[int, typer.Option(min=7, help="Fewest days between breaks
 MaxBreaks = Annotated[int | None, typer.Option(min=0, help="Most breaks (default: up to 10).")]
 Penalty = Annotated[float, typer.Option(help="Multiplier of the BIC penalty (1 = BIC).")]
 Level = Annotated[float, typer.Option(help="Interval level.")]
+MinChange = Annotated[float, typer.Option(
+    min=0.0, help="Smallest relative change of R reported as a break (0.1: R after / R "
+                  "before at least 1.1 or at most 1/1.1).")]
 
 
 def _emit(table: EffectsTable, output: str) -> None:
@@ -59,8 +64,14 @@ def breaks_command(
     population: Annotated[float | None, typer.Option(
         help="Population: with tests and positives columns, testing changes become level "
              "shifts of cases.")] = None,
+    min_change: MinChange = KERNEL_MIN_CHANGE,
+    column: Annotated[str, typer.Option(
+        help="Column of daily counts searched (e.g. admissions).")] = "cases",
 ) -> None:
     """Changes in the growth of daily cases, and each segment's growth rate, doubling time and R.
+
+    --column searches another column of counts (hospital admissions). --min-change
+    (kink model): a break must change R by at least this share.
 
     Model (--shape kink): log E[cases] is one continuous line whose slope changes at
     each break, plus weekday effects, quasi-Poisson; with --population and columns
@@ -76,8 +87,36 @@ def breaks_command(
     options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
                            level=level, dispersion=dispersion.lower(), si_mean=si_mean,
                            si_sd=si_sd, shape=shape.lower(), infection_delay=infection_delay,
-                           population=population)
+                           population=population, min_change=min_change, column=column)
     _emit(breaks_table(file, options), output)
+
+
+@effects_app.command("levels")
+@friendly_errors
+def levels_command(
+    file: Annotated[Path, typer.Argument(help="Daily CSV with columns date and --column.")],
+    column: Annotated[str, typer.Option(
+        help="Column of positive values (a wastewater concentration).")] = "concentration",
+    output: Output = "-",
+    min_segment: MinSegment = 14,
+    max_breaks: MaxBreaks = None,
+    penalty: Penalty = 1.0,
+    level: Level = 0.95,
+    si_mean: Annotated[float, typer.Option(help="Generation interval mean, days.")] = 4.7,
+    si_sd: Annotated[float, typer.Option(help="Generation interval SD, days.")] = 2.9,
+    min_change: MinChange = KERNEL_MIN_CHANGE,
+) -> None:
+    """Changes in the growth of a continuous signal (wastewater concentration).
+
+    Model: log value is one continuous line whose slope changes at each break, with
+    independent normal errors, fitted by least squares on the days with a value
+    (samples); breaks by forward selection, their number by the BIC, their dates'
+    intervals by profile likelihood. One row per segment, as `effects breaks`.
+    """
+    options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
+                           level=level, si_mean=si_mean, si_sd=si_sd, min_change=min_change,
+                           column=column)
+    _emit(levels_table(file, options), output)
 
 
 @effects_app.command("testing")

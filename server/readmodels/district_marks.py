@@ -3,7 +3,11 @@
 * *Breaks*: change points of the district's daily cases over the period shown and the 90 days
   before, found as the effects page finds them
   (:func:`server.indicators.changepoints.detect_changepoints`, default settings), with the
-  interval of each date and the change of the growth rate.
+  interval of each date and the change of the growth rate; the breaks of its hospital
+  admissions and of the wastewater of its main plant (searched from
+  :data:`~server.services.stream_breaks.SEARCH_LEAD_DAYS` days before the period), and for
+  each case break whether those streams have a break near it in the same direction after
+  allowing for their delays (:mod:`server.services.stream_breaks`).
 * *Events*: published tier changes and recorded events of the district, its area and the county
   in the period, with their before/after estimates (:func:`server.services.event_effects.
   effects_page`; "too early to tell" until the data allow).
@@ -22,16 +26,24 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
-from server.indicators.changepoints import detect_changepoints
 from server.indicators.testing_known import testing_changes_as_known
 from server.services.event_effects import EventEffect, effects_page
+from server.services.stream_breaks import (
+    SEARCH_LEAD_DAYS,
+    STREAMS,
+    Agreement,
+    StreamBreak,
+    StreamOptions,
+    StreamsOfRegion,
+    stream_breaks,
+)
 from server.services.testing_reviews import SAME_CHANGE_DAYS, Verdict, verdicts_of
 from server.store.models import Region
 from server.store.reads import read_dense
 
 __all__ = ["BreakMark", "DistrictMarks", "TestingMark", "district_marks"]
 
-#: Days before the period the break search and the testing screen also read.
+#: Days before the period the case-break search and the testing screen also read.
 LEAD_DAYS = 90
 
 
@@ -44,6 +56,8 @@ class BreakMark:
     lower: dt.date
     upper: dt.date
     growth_change: tuple[float, float, float]
+    #: one per stream of :data:`server.services.stream_breaks.STREAMS`
+    agreement: tuple[Agreement, ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -65,6 +79,13 @@ class DistrictMarks:
     breaks_known: bool
     events: tuple[EventEffect, ...]
     testing: tuple[TestingMark, ...]
+    #: breaks of admissions and wastewater in the period
+    stream_breaks: tuple[StreamBreak, ...] = ()
+    #: per stream of STREAMS: whether its breaks were searched (enough data)
+    streams_searched: tuple[tuple[str, bool], ...] = ()
+    #: the plant whose wastewater stands for the district
+    plant: str | None = None
+    options: StreamOptions = StreamOptions()
 
 
 def _dense(session: Session, measure: str, code: str, first: dt.date, last: dt.date
@@ -76,33 +97,12 @@ def _dense(session: Session, measure: str, code: str, first: dt.date, last: dt.d
         return None
 
 
-def _breaks(cases: np.ndarray | None, first: dt.date, start: dt.date
-            ) -> tuple[tuple[BreakMark, ...], bool]:
-    if cases is None:
-        return (), False
-    seen = np.flatnonzero(np.isfinite(cases))
-    if seen.size < 28:
-        return (), False
-    a, b = int(seen[0]), int(seen[-1]) + 1
-    try:
-        found = detect_changepoints(cases[a:b])
-    except ValueError:
-        return (), False
-
-    def day(j: float) -> dt.date:
-        return first + dt.timedelta(days=a + int(j))
-
-    out = []
-    for k in range(int(found.n_breaks[0])):
-        mark = BreakMark(
-            day=day(found.breaks[0, k]), lower=day(found.break_lower[0, k]),
-            upper=day(found.break_upper[0, k]),
-            growth_change=(float(found.growth_change[0, k]),
-                           float(found.growth_change_lower[0, k]),
-                           float(found.growth_change_upper[0, k])))
-        if mark.day >= start:
-            out.append(mark)
-    return tuple(out), True
+def _breaks(streams: StreamsOfRegion, start: dt.date) -> tuple[tuple[BreakMark, ...], bool]:
+    out = tuple(BreakMark(day=b.day, lower=b.lower, upper=b.upper,
+                          growth_change=b.growth_change, agreement=a)
+                for b, a in zip(streams.breaks["cases"], streams.agreement, strict=True)
+                if b.day >= start)
+    return out, streams.searched["cases"]
 
 
 def _testing(tests: np.ndarray | None, positives: np.ndarray | None, first: dt.date,
@@ -131,12 +131,17 @@ def _testing(tests: np.ndarray | None, positives: np.ndarray | None, first: dt.d
     return tuple(out)
 
 
-def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date
-                   ) -> DistrictMarks:
-    """Breaks, events and testing changes of district ``code`` from ``start`` to ``end``."""
+def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date,
+                   options: StreamOptions | None = None) -> DistrictMarks:
+    """Breaks (of every stream), events and testing changes of district ``code`` from
+    ``start`` to ``end``."""
     first = start - dt.timedelta(days=LEAD_DAYS)
-    cases = _dense(session, "cases", code, first, end)
-    breaks, known = _breaks(cases, first, start)
+    streams = stream_breaks(session=session, codes=[code],
+                            first=start - dt.timedelta(days=SEARCH_LEAD_DAYS), last=end,
+                            options=options, cases_from=first)[0]
+    breaks, known = _breaks(streams, start)
+    others = tuple(sorted((b for s in STREAMS for b in streams.breaks[s] if b.day >= start),
+                          key=lambda b: (b.day, b.stream)))
     parent = aliased(Region)
     county = aliased(Region)
     row = session.execute(
@@ -150,4 +155,7 @@ def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date
     testing = _testing(_dense(session, "tests", code, first, end),
                        _dense(session, "positives", code, first, end), first, start,
                        verdicts_of(session=session, code=code))
-    return DistrictMarks(breaks=breaks, breaks_known=known, events=events, testing=testing)
+    return DistrictMarks(breaks=breaks, breaks_known=known, events=events, testing=testing,
+                         stream_breaks=others,
+                         streams_searched=tuple((s, streams.searched[s]) for s in STREAMS),
+                         plant=streams.plant, options=streams.options)

@@ -12,6 +12,7 @@ cells are missing, never zero. Broken input raises
 from __future__ import annotations
 
 import datetime as dt
+import inspect
 import math
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,16 +21,19 @@ import numpy as np
 from numpy.typing import NDArray
 
 from server.indicators.changepoints import detect_changepoints
+from server.indicators.level_breaks import detect_level_breaks
 from server.indicators.testing import detect_testing_changes
 from server.services.errors import EstimateOptionError, InputFileError
 from server.services.estimate_csv import read_daily_csv
 
 __all__ = [
     "BREAK_COLUMNS",
+    "LEVEL_COLUMNS",
     "TESTING_COLUMNS",
     "BreakOptions",
     "EffectsTable",
     "breaks_table",
+    "levels_table",
     "effects_csv",
     "testing_table",
     "write_effects",
@@ -42,12 +46,21 @@ BREAK_COLUMNS = (
     "growth_change_upper", "level_change", "level_change_lower", "level_change_upper",
     "transmission_date", "transmission_lower", "transmission_upper",
 )
+LEVEL_COLUMNS = (
+    "segment", "start", "end", "days", "growth_rate", "growth_rate_lower", "growth_rate_upper",
+    "r", "r_lower", "r_upper", "break_date", "break_lower", "break_upper", "growth_change",
+    "growth_change_lower", "growth_change_upper",
+)
 TESTING_COLUMNS = (
     "date", "tests_per_100k_before", "tests_per_100k_after", "tests_ratio",
     "tests_ratio_lower", "tests_ratio_upper", "positivity_before", "positivity_after",
     "positivity_odds_ratio", "positivity_odds_ratio_lower", "positivity_odds_ratio_upper",
     "testing_change",
 )
+
+
+#: The kernel's smallest relative change of R reported as a break (``--min-change``).
+KERNEL_MIN_CHANGE = float(inspect.signature(detect_changepoints).parameters["min_change"].default)
 
 
 @dataclass(frozen=True)
@@ -75,6 +88,10 @@ class BreakOptions:
     min_ratio: float = 1.2
     shape: str = "kink"
     infection_delay: float | None = None
+    #: smallest relative change of R reported as a break (kink model), the kernel's default
+    min_change: float = KERNEL_MIN_CHANGE
+    #: the column of counts (``breaks``) or of positive values (``levels``) searched
+    column: str = "cases"
 
 
 def _num(value: float) -> str:
@@ -111,14 +128,16 @@ def _call(what: str, fn, *args, **kwargs):  # type: ignore[no-untyped-def]
 
 
 def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
-    """Change points of ``cases`` in the file at ``path``; one row per segment."""
+    """Change points of the counts in ``options.column`` (``cases`` by default; e.g. hospital
+    admissions) in the file at ``path``; one row per segment."""
     o = options
     _checked_options(o)
-    source = read_daily_csv(path, required=("cases",), optional=("tests", "positives"),
-                            counts=("cases", "tests", "positives"))
-    cases = source.values["cases"]
+    col = o.column
+    others = tuple(c for c in ("tests", "positives") if c != col)
+    source = read_daily_csv(path, required=(col,), optional=others, counts=(col, *others))
+    cases = source.values[col]
     if np.isfinite(cases).sum() < 2 * o.min_segment:
-        raise InputFileError(source.path, "", f"cases: {int(np.isfinite(cases).sum())} days "
+        raise InputFileError(source.path, "", f"{col}: {int(np.isfinite(cases).sum())} days "
                              f"with counts, fewer than 2 * --min-segment = {2 * o.min_segment}")
     shifts = None
     if o.shape == "kink" and o.population is not None and {"tests", "positives"} <= set(
@@ -130,10 +149,11 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
                         level=o.level)
         flagged = testing.day[0][testing.flagged[0]]
         shifts = np.asarray(flagged, dtype=np.int64)[None, :] if flagged.size else None
-    res = _call("cases", detect_changepoints, cases, min_segment=o.min_segment,
+    res = _call(col, detect_changepoints, cases, min_segment=o.min_segment,
                 max_breaks=o.max_breaks, penalty=o.penalty, dispersion=o.dispersion,
                 level=o.level, si_mean=o.si_mean, si_sd=o.si_sd, shape=o.shape,
-                level_shifts=shifts, infection_delay=o.infection_delay)
+                level_shifts=shifts, infection_delay=o.infection_delay,
+                min_change=o.min_change)
     dates = source.dates
     rows = []
     for j in range(int(res.n_breaks[0]) + 1):
@@ -157,6 +177,44 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
                 res.transmission_day, res.transmission_lower, res.transmission_upper)]
         rows.append(tuple(cells))
     return EffectsTable("breaks", BREAK_COLUMNS, tuple(rows))
+
+
+def levels_table(path: Path, options: BreakOptions) -> EffectsTable:
+    """Kinks of the log of the positive values in ``options.column`` (a wastewater
+    concentration; :func:`server.indicators.level_breaks.detect_level_breaks`, Gaussian errors
+    on the log scale) in the file at ``path``; one row per segment. Days without a value (no
+    sample) are missing."""
+    o = options
+    col = o.column
+    source = read_daily_csv(path, required=(col,), nonnegative=(col,))
+    values = source.values[col]
+    seen = int((np.nan_to_num(values) > 0).sum())
+    if seen < 2 * 7:
+        raise InputFileError(source.path, "", f"{col}: {seen} days with a positive value, "
+                             f"fewer than 14")
+    res = _call(col, detect_level_breaks, values, min_segment=o.min_segment,
+                max_breaks=o.max_breaks, penalty=o.penalty, level=o.level, si_mean=o.si_mean,
+                si_sd=o.si_sd, min_change=o.min_change)
+    dates, n = source.dates, len(source.dates)
+    bounds = [0, *(int(b) for b in res.breaks[0, : int(res.n_breaks[0])]), n]
+    rows = []
+    for j in range(len(bounds) - 1):
+        start, end = bounds[j], bounds[j + 1]
+        cells = [str(j + 1), dates[start].isoformat(), dates[end - 1].isoformat(),
+                 str(end - start)]
+        cells += [_num(a[0, j]) for a in (
+            res.growth, res.growth_lower, res.growth_upper, res.reproduction,
+            res.reproduction_lower, res.reproduction_upper)]
+        if j == 0:
+            cells += [""] * 6
+        else:
+            k = j - 1
+            cells += [_day(dates, int(res.breaks[0, k])), _day(dates, int(res.break_lower[0, k])),
+                      _day(dates, int(res.break_upper[0, k]))]
+            cells += [_num(a[0, k]) for a in (
+                res.growth_change, res.growth_change_lower, res.growth_change_upper)]
+        rows.append(tuple(cells))
+    return EffectsTable("levels", LEVEL_COLUMNS, tuple(rows))
 
 
 def testing_table(path: Path, options: BreakOptions) -> EffectsTable:

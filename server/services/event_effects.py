@@ -9,7 +9,9 @@ For each event of the chosen period the reported ``cases`` of its region (a pare
 its districts, :mod:`server.services.hierarchy`) go through
 :func:`server.indicators.before_after.before_after`; the change points of the same series
 (:func:`server.indicators.changepoints.detect_changepoints`) say whether a detected break falls
-between the start of the before window and the end of the after window.
+between the start of the before window and the end of the after window, and for each such break
+whether hospital admissions and wastewater have a break near it after allowing for their delays
+(:mod:`server.services.stream_breaks`).
 """
 
 from __future__ import annotations
@@ -28,10 +30,15 @@ from server.indicators.before_after import (
     DEFAULT_WINDOW,
     before_after,
 )
-from server.indicators.changepoints import detect_changepoints
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
 from server.services.hierarchy import membership, sum_up
+from server.services.stream_breaks import (
+    SEARCH_LEAD_DAYS,
+    Agreement,
+    StreamOptions,
+    stream_breaks,
+)
 from server.services.users import permitted_account
 from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
 from server.store.reads import read_dense
@@ -102,6 +109,8 @@ class EventEffect:
     rt_ratio: tuple[float, float, float]
     breaks: tuple[dt.date, ...]  # detected breaks within the windows' span
     breaks_known: bool  # False when the change-point search could not run
+    #: per break in ``breaks``: one Agreement per stream (admissions, wastewater)
+    agreement: tuple[tuple[Agreement, ...], ...] = ()
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -113,6 +122,8 @@ class EffectsPage:
     events: tuple[EventEffect, ...]
     regions: tuple[tuple[str, str], ...]  # (code, name) that events can be recorded for
     kinds: tuple[str, ...]
+    #: delays and tolerance of the agreement of breaks between streams
+    streams: StreamOptions = StreamOptions()
 
 
 def _region_by_code(session: Session, code: str) -> Region:
@@ -208,6 +219,7 @@ def _triple(res, name: str, k: int) -> tuple[float, float, float]:  # type: igno
 
 def effects_page(
     *, session: Session, start: dt.date, end: dt.date, options: EffectOptions | None = None,
+    streams: StreamOptions | None = None,
 ) -> EffectsPage:
     """Events effective from ``start`` to ``end`` with their before/after estimates."""
     if end < start:
@@ -224,7 +236,7 @@ def effects_page(
     data_end = _cases_end(session)
     if not raw:
         return EffectsPage(start=start, end=end, data_end=data_end, options=o, events=(),
-                           regions=choices, kinds=EVENT_KINDS)
+                           regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions())
     codes = sorted({regions[e.region_id].code for e in raw})
     row_of = {c: i for i, c in enumerate(codes)}
     first = start - dt.timedelta(days=o.window + o.delay + 90)
@@ -235,7 +247,12 @@ def effects_page(
     rows = np.array([row_of[regions[e.region_id].code] for e in raw])
     res = before_after(counts, rows, day_index, window=o.window, delay=o.delay,
                        transition=o.transition, lead=o.lead)
-    breaks = _breaks(counts)
+    searched = stream_breaks(session=session, codes=codes,
+                             first=min(first, start - dt.timedelta(days=SEARCH_LEAD_DAYS)),
+                             last=last, options=streams, cases_from=first)
+    breaks = {i: [((b.day - first).days, a) for b, a in zip(
+        r.breaks["cases"], r.agreement, strict=True)] for i, r in enumerate(searched)
+        if r.searched["cases"]}
     known = np.isfinite(counts).sum(axis=1) > 0
     out = []
     for k, e in enumerate(raw):
@@ -257,26 +274,9 @@ def effects_page(
             r_before=_triple(res, "r_before", k), r_after=_triple(res, "r_after", k),
             r_change=_triple(res, "r_change", k), rt_before=_triple(res, "rt_before", k),
             rt_after=_triple(res, "rt_after", k), rt_ratio=_triple(res, "rt_ratio", k),
-            breaks=tuple(day(b) for b in (found or ()) if span[0] <= b < span[1]),
+            breaks=tuple(day(b) for b, _ in (found or ()) if span[0] <= b < span[1]),
             breaks_known=found is not None,
+            agreement=tuple(a for b, a in (found or ()) if span[0] <= b < span[1]),
         ))
     return EffectsPage(start=start, end=end, data_end=data_end, options=o, events=tuple(out),
-                       regions=choices, kinds=EVENT_KINDS)
-
-
-def _breaks(counts: np.ndarray) -> dict[int, list[int]]:
-    """Day indices of detected breaks per row; rows the search cannot run on are left out."""
-    out: dict[int, list[int]] = {}
-    for i in range(counts.shape[0]):
-        row = counts[i]
-        finite = np.flatnonzero(np.isfinite(row))
-        if finite.size < 28:
-            continue
-        a, b = int(finite[0]), int(finite[-1]) + 1
-        try:
-            found = detect_changepoints(row[a:b])
-        except ValueError:
-            continue
-        n = int(found.n_breaks[0])
-        out[i] = [a + int(x) for x in found.breaks[0, :n]]
-    return out
+                       regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions())

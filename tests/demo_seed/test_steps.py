@@ -63,3 +63,24 @@ def test_growth_from_reproduction_solves_euler_lotka() -> None:
 def test_simulate_steps_refuses_a_negative_seed() -> None:
     with pytest.raises(ScenarioArgumentError, match="seed"):
         simulate_steps(-1)
+
+
+def test_simulate_steps_admissions_and_wastewater_follow_infections(steps) -> None:  # type: ignore[no-untyped-def]
+    # admissions: a share HOSPITALISED_SHARE of infections (demo_seed/observation.py), so over
+    # the series their sum is that share of the infections ~10 days earlier (Poisson noise)
+    from demo_seed.observation import HOSPITALISED_SHARE
+
+    lag = int(round(steps.admission_shift))
+    expected = HOSPITALISED_SHARE * steps.infections[:, : -lag].sum(axis=1)
+    observed = steps.admissions[:, lag:].sum(axis=1)
+    np.testing.assert_allclose(observed, expected, rtol=0.1)
+    # wastewater: two or three samples a week; the log concentration over the marker moves
+    # with log infections (correlation of weekly means)
+    seen = np.isfinite(steps.wastewater).mean(axis=1)
+    assert np.all((seen > 2 / 7 * 0.8) & (seen < 3 / 7 * 1.05))
+    shift = int(round(steps.shedding_shift))
+    for i in range(steps.infections.shape[0]):
+        w = np.log(steps.wastewater[i, shift:])
+        x = np.log(steps.infections[i, :-shift])
+        ok = np.isfinite(w)
+        assert np.corrcoef(w[ok], x[ok])[0, 1] > 0.5

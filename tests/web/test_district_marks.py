@@ -108,3 +108,24 @@ def test_explanations_after_the_demo_change_name_it(demo_app_client: TestClient)
     later = demo_app_client.get("/staff/district/D01/explain",
                                 params={"day": (CHANGE + timedelta(days=30)).isoformat()})
     assert "Testing: tests" not in html.unescape(later.text)  # past the hold's 14 days
+
+
+def test_admissions_and_wastewater_breaks_are_listed_beside_case_breaks(
+        demo_app_client: TestClient) -> None:
+    # every demo district has admissions and a plant: their breaks are searched and listed,
+    # and each case break says whether each stream agrees
+    assert login(demo_app_client, "vic.viewer") == 303
+    page = demo_app_client.get("/staff/district/D01")
+    assert page.status_code == 200
+    breaks = re.findall(r'<tr data-mark="break">.*?</tr>', page.text, flags=re.S)
+    streams = re.findall(r'<tr data-mark="(admissions|wastewater)">', page.text)
+    assert breaks and streams, (len(breaks), streams)
+    for row in breaks:
+        found = re.search(r"<small data-agreement>(.*?)</small>", row, flags=re.S)
+        assert found is not None
+        assert "admissions" in found.group(1) and "wastewater" in found.group(1)
+        assert "not searched" not in found.group(1)
+    assert "Wastewater of plant" in page.text
+    labels = {a["text"] for fig in _figures(page.text)[:1]
+              for a in fig["layout"].get("annotations", [])}
+    assert labels & {"admissions break", "wastewater break"}

@@ -91,3 +91,30 @@ def test_page_in_german(client: TestClient) -> None:
     page = client.get("/staff/effects", params={**PERIOD, "lang": "de"})
     assert "Maßnahmen und ihre Wirkung" in page.text
     assert "Zu früh für eine Aussage" in html.unescape(page.text)
+
+
+def test_each_break_in_the_windows_says_whether_admissions_and_wastewater_agree(
+        client: TestClient) -> None:
+    assert login(client, "vic.viewer") == 303
+    page = client.get("/staff/effects", params=PERIOD)
+    rows = _rows(page.text)
+    notes = [re.findall(r"<small data-agreement>\((.*?)\)</small>", r, flags=re.S) for r in rows]
+    dates = [re.findall(r"(\d{4}-\d{2}-\d{2}) <small data-agreement>", r) for r in rows]
+    assert [len(n) for n in notes] == [len(d) for d in dates]
+    assert sum(len(n) for n in notes) >= 1, notes  # the demo has breaks in these windows
+    for note in (n for ns in notes for n in ns):
+        assert "admissions" in note and "wastewater" in note
+    assert "after allowing for its delay (admissions +3 days, wastewater -4 days" in page.text
+
+
+def test_stream_delays_and_tolerance_come_from_the_query(client: TestClient) -> None:
+    assert login(client, "vic.viewer") == 303
+    page = client.get("/staff/effects", params={**PERIOD, "admissions_delay": "5",
+                                                "wastewater_delay": "-6", "tolerance": "3"})
+    assert page.status_code == 200
+    assert "(admissions +5 days, wastewater -6 days against cases)" in page.text
+    assert 'name="tolerance" min="0" max="28" value="3"' in page.text
+    bad = client.get("/staff/effects", params={**PERIOD, "wastewater_delay": "40"})
+    assert bad.status_code == 422 and "wastewater_delay" in bad.text
+    bad = client.get("/staff/effects", params={**PERIOD, "admissions_delay": "soon"})
+    assert bad.status_code == 422 and "admissions_delay" in bad.text

@@ -140,6 +140,7 @@ PAGES = [
     ("/staff/areas/R1/capacity", "viewer"), ("/staff/effects", "analyst"),
     ("/staff/district/D13", "viewer"), ("/staff/feeds?feed=long-csv", "analyst"),
     ("/staff/district/D01/explain", "viewer"),
+    ("/staff/district/D01/explain?day=2026-11-20&effects=1", "viewer"),
 ]
 
 

@@ -14,8 +14,9 @@ from typer.testing import CliRunner
 
 from server.cli import app
 from server.indicators.changepoints import detect_changepoints
+from server.indicators.level_breaks import detect_level_breaks
 from server.indicators.testing import detect_testing_changes
-from server.services.effects import BREAK_COLUMNS, TESTING_COLUMNS
+from server.services.effects import BREAK_COLUMNS, LEVEL_COLUMNS, TESTING_COLUMNS
 
 START = dt.date(2031, 1, 6)  # a Monday
 DAYS = 140
@@ -126,3 +127,76 @@ def test_effects_breaks_uses_testing_changes_and_gives_transmission_dates(tmp_pa
     lag = 8.5 - (5.0**2 + 7.0**2) / (2 * 7.0)
     first = START + dt.timedelta(days=int(round(ref.breaks[0, 0] - lag)))
     assert rows[1]["transmission_date"] == first.isoformat()
+
+
+def _two_kinks(seed: int) -> np.ndarray:
+    """Growth 0.03 -> -0.04 per day at day 50 (R about 1.15 -> 0.83 for the default gamma
+    4.7/2.9) and -0.04 -> -0.028 at day 95 (R up about 6 %)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(DAYS)
+    eta = np.log(200) + 0.03 * t - 0.07 * np.maximum(t - 50, 0) + 0.012 * np.maximum(t - 95, 0)
+    return rng.poisson(np.exp(eta)).astype(float)
+
+
+@pytest.mark.parametrize(("value", "expected"), [("0", 2), (None, 1), ("0.5", 0)],
+                         ids=["zero", "default", "half"])
+def test_effects_breaks_min_change_matches_the_kernel(tmp_path: Path, value: str | None,
+                                                      expected: int) -> None:
+    # the small kink (R about +6 %) is reported only below the default 10 %; the large one
+    # (R about -28 %) only below 50 %; rows equal the kernel called with the same min_change
+    path = _write(tmp_path, {"cases": _two_kinks(5)})
+    argv = ["effects", "breaks", str(path)] + ([] if value is None else ["--min-change", value])
+    result = CliRunner().invoke(app, argv)
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    cases = _two_kinks(5)
+    cases[MISSING] = np.nan
+    ref = detect_changepoints(cases, min_change=0.1 if value is None else float(value))
+    assert ref.n_breaks[0] == expected
+    assert len(rows) == expected + 1
+    assert [r["break_date"] for r in rows[1:]] == [
+        (START + dt.timedelta(days=int(b))).isoformat() for b in ref.breaks[0, :expected]]
+    assert_allclose([float(r["growth_rate"]) for r in rows], ref.growth[0, : len(rows)],
+                    rtol=1e-12)
+
+
+def test_effects_breaks_refuses_a_negative_min_change(tmp_path: Path) -> None:
+    path = _write(tmp_path, {"cases": _two_kinks(5)})
+    result = CliRunner().invoke(app, ["effects", "breaks", str(path), "--min-change", "-0.1"])
+    assert result.exit_code == 2
+    assert "--min-change" in result.output
+
+
+def test_effects_breaks_reads_another_column_of_counts(tmp_path: Path) -> None:
+    # admissions in a column of their own: the same search as on cases
+    data = {"admissions": _two_kinks(6)}
+    result = CliRunner().invoke(app, ["effects", "breaks", str(_write(tmp_path, data)),
+                                      "--column", "admissions"])
+    assert result.exit_code == 0, result.output
+    counts = data["admissions"].copy()
+    counts[MISSING] = np.nan
+    ref = detect_changepoints(counts)
+    assert len(_rows(result.output)) == ref.n_breaks[0] + 1
+
+
+def test_effects_levels_matches_the_level_kernel(tmp_path: Path) -> None:
+    # a concentration sampled three days a week (other days empty cells: no sample)
+    rng = np.random.default_rng(8)
+    t = np.arange(DAYS)
+    conc = np.exp(np.log(4e4) + 0.03 * t - 0.06 * np.maximum(t - 70, 0)
+                  + rng.normal(0, 0.4, DAYS))
+    conc = np.where(t % 7 < 3, conc, np.nan)
+    path = tmp_path / "ww.csv"
+    lines = ["date,concentration"] + [
+        f"{(START + dt.timedelta(days=i)).isoformat()},{'' if np.isnan(v) else repr(float(v))}"
+        for i, v in enumerate(conc)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    result = CliRunner().invoke(app, ["effects", "levels", str(path)])
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    assert tuple(rows[0]) == LEVEL_COLUMNS
+    ref = detect_level_breaks(conc)
+    assert len(rows) == ref.n_breaks[0] + 1 >= 2
+    assert_allclose([float(r["growth_rate"]) for r in rows], ref.growth[0, : len(rows)],
+                    rtol=1e-12)
+    assert rows[1]["break_date"] == (START + dt.timedelta(days=int(ref.breaks[0, 0]))).isoformat()
