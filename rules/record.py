@@ -33,6 +33,8 @@ __all__ = [
     "TestingChangeNote",
     "read_criteria",
     "read_explanation",
+    "stored_criteria",
+    "stored_sentence",
 ]
 
 
@@ -180,6 +182,23 @@ def read_criteria(items: Sequence[Mapping[str, Any]], *, path: str = "criteria"
             conditioned_by=item.get("conditioned_by") or None,
         ))
     return tuple(out)
+
+
+def stored_criteria(stored: Mapping[str, Any] | None) -> tuple[CriterionState, ...]:
+    """The criteria of a stored explanation (``{"sentence": ..., "data": {"criteria": [...]}}``)
+    as records; none when the row carries no data (rows of the first releases)."""
+    data = (stored or {}).get("data")
+    if not isinstance(data, Mapping):
+        return ()
+    return read_criteria(data.get("criteria") or (), path="data.criteria")
+
+
+def stored_sentence(stored: Mapping[str, Any] | None) -> str:
+    """The sentence of a stored explanation ("" when none was stored)."""
+    stored = stored or {}
+    data = stored.get("data")
+    inner = data.get("sentence", "") if isinstance(data, Mapping) else ""
+    return str(stored.get("sentence", inner) or "")
 
 
 def read_explanation(stored: Mapping[str, Any], *, tier: int | None = None

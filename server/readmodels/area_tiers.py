@@ -16,6 +16,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Tier
+from rules.record import stored_sentence
 from server.services.assessments import assessments_as_of, newest_run_of
 from server.services.ruleset_cache import parsed
 from server.store.models import Assessment, Region
@@ -67,7 +68,7 @@ def region_tiers(*, session: Session, code: str) -> tuple[RegionTier, ...]:
             policy=f"{row.name} {row.version}", region=code, region_name=region_name,
             level=rs.level, day=found.ref_date, tier=tier,
             tier_info=rs.tiers[tier] if 0 <= tier < rs.n_tiers else None, n_tiers=rs.n_tiers,
-            sentence=found.explanation.get("sentence", ""), data_cutoff=run.data_cutoff,
+            sentence=stored_sentence(found.explanation), data_cutoff=run.data_cutoff,
         ))
     return tuple(out)
 

@@ -19,6 +19,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
+from rules.formatting import interval_text, value_text
+from rules.record import stored_criteria, stored_sentence
 from server.readmodels.cache import BoundedCache
 from server.readmodels.day_changes import Change, recommended_changes
 from server.services.assessments import assessments_as_of
@@ -91,13 +93,6 @@ def district_base(
         session, row.id, ruleset, run.data_cutoff, run.last_day))
 
 
-def _fmt(value: float | None, decimals: int, unit: str) -> str:
-    if value is None or not math.isfinite(value):
-        return "n/a"
-    text = f"{value:.{decimals}f}"
-    return text + unit if unit.startswith("%") else (f"{text} {unit}" if unit else text)
-
-
 def _build(
     session: Session, ruleset_id: int, ruleset: Ruleset, cutoff: datetime, last: date
 ) -> DistrictBase:
@@ -124,10 +119,9 @@ def _build(
         prepare: tuple[str, ...] = ()
         sentence = ""
         if newest is not None:
-            data = newest.explanation.get("data", {})
-            sentence = newest.explanation.get("sentence", "")
+            sentence = stored_sentence(newest.explanation)
             prepare = tuple(k for k, v in newest.prepare_signals.items() if v)
-            indicators = tuple(_indicators(ruleset, data, history, days))
+            indicators = tuple(_indicators(ruleset, newest, history, days))
             before = history.get(last - timedelta(days=1))
             if before is not None:
                 changes += recommended_changes(ruleset, code, name, before, newest)
@@ -144,24 +138,26 @@ def _build(
 
 
 def _indicators(
-    ruleset: Ruleset, data: dict[str, Any], history: dict[date, Assessment], days: list[date]
+    ruleset: Ruleset, newest: Assessment, history: dict[date, Assessment], days: list[date]
 ) -> list[KeyIndicator]:
+    """The newest day's criteria with a value per day of ``days`` for the sparkline (the stored
+    record read through :func:`rules.record.stored_criteria`; figures through
+    :mod:`rules.formatting`, as the sentences and the district page print them)."""
+    by_day = {day: stored_criteria(a.explanation) for day in days if (a := history.get(day))}
     out = []
-    for k, item in enumerate(data.get("criteria", [])):
-        spec = ruleset.indicator(item["indicator"])
+    for k, item in enumerate(stored_criteria(newest.explanation)):
+        spec = ruleset.indicator(item.indicator)
         series = []
         for day in days:
-            a = history.get(day)
-            crits = a.explanation.get("data", {}).get("criteria", []) if a else []
-            v = crits[k].get("value") if k < len(crits) else None
-            series.append(float("nan") if v is None else float(v))
+            crits = by_day.get(day, ())
+            v = crits[k].value if k < len(crits) else None
+            series.append(float("nan") if v is None else v)
         interval = None
-        if item.get("lower") is not None and item.get("upper") is not None:
-            interval = (f"{item['lower']:.{spec.decimals}f}–{item['upper']:.{spec.decimals}f}")
+        if item.lower is not None and item.upper is not None:
+            interval = interval_text(spec, item.lower, item.upper)
+        value = item.value if item.value is not None and math.isfinite(item.value) else None
         out.append(KeyIndicator(
-            id=item["id"], label=item.get("label") or spec.label,
-            value_text=_fmt(item.get("value"), spec.decimals, spec.unit),
-            interval_text=interval, level=int(item.get("level", 0)),
-            known=bool(item.get("known", False)), series=tuple(series),
+            id=item.id, label=item.label or spec.label, value_text=value_text(spec, value),
+            interval_text=interval, level=item.level, known=item.known, series=tuple(series),
         ))
     return out

@@ -12,6 +12,7 @@ store's vintages.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from typing import Any
@@ -22,7 +23,7 @@ from sqlalchemy.orm import Session, aliased
 from rules import Ruleset
 from rules.formatting import interval_text, value_text
 from rules.hysteresis import NEVER_CHANGED
-from rules.record import CriterionState
+from rules.record import CriterionState, stored_criteria, stored_sentence
 from server.readmodels.explanations import RevisedSince, explained_day, revised_since
 from server.readmodels.policy_columns import assessed_regions, policy_level
 from server.services.assessments import assessments_as_of, newest_run_of
@@ -227,18 +228,23 @@ def district_dossier(
     ).order_by(Assessment.ref_date)))
     dates = [a.ref_date for a in rows]
     criteria = []
-    for k, crit in enumerate(rs.criteria):
+    stored = [{c.id: c for c in stored_criteria(a.explanation)} for a in rows]
+    n = rs.n_tiers - 1
+    for crit in rs.criteria:
         spec = rs.indicator(crit.indicator)
-        items = [a.explanation.get("data", {}).get("criteria", [{}] * (k + 1))[k] for a in rows]
-        n = rs.n_tiers - 1
+        items = [day.get(crit.id) for day in stored]
+
+        def column(get: Callable[[CriterionState], float | None],
+                   items: list[CriterionState | None] = items) -> tuple[float | None, ...]:
+            return tuple(None if i is None else _num(get(i)) for i in items)
+
         criteria.append(CriterionSeries(
             id=crit.id, label=crit.label or spec.label, unit=spec.unit, decimals=spec.decimals,
-            dates=tuple(dates), value=tuple(_num(i.get("value")) for i in items),
-            lower=tuple(_num(i.get("lower")) for i in items),
-            upper=tuple(_num(i.get("upper")) for i in items),
-            enter=tuple(tuple(_num((i.get("enter") or [None] * n)[t]) for i in items)
+            dates=tuple(dates), value=column(lambda i: i.value),
+            lower=column(lambda i: i.lower), upper=column(lambda i: i.upper),
+            enter=tuple(column(lambda i, t=t: i.enter[t] if t < len(i.enter) else None)
                         for t in range(n)),
-            exit=tuple(tuple(_num((i.get("exit") or [None] * n)[t]) for i in items)
+            exit=tuple(column(lambda i, t=t: i.exit[t] if t < len(i.exit) else None)
                        for t in range(n)),
             area=area if crit.indicator in of_area else None,
         ))
@@ -259,7 +265,7 @@ def district_dossier(
         official=tuple(_official_by_day(session, assessed, dates, row.name)),
         prepare_days=prepare,
         revisions=revisions,
-        sentence=rows[-1].explanation.get("sentence", "") if rows else "",
+        sentence=stored_sentence(rows[-1].explanation) if rows else "",
         sentence_day=rows[-1].ref_date if rows else None,
         nowcast=district_nowcast(session=session, code=code, end=last, as_of=cutoff),
         nowcast_accuracy=_nowcast_line(session, code),

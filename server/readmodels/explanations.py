@@ -23,7 +23,7 @@ from sqlalchemy.orm import Session
 
 from rules import Ruleset
 from rules.formatting import reading_text
-from rules.record import CriterionState, ExplanationRecord, read_criteria, read_explanation
+from rules.record import CriterionState, ExplanationRecord, read_explanation, stored_criteria
 from server.services.assessments import assessments_as_of
 from server.store.models import Assessment
 
@@ -116,8 +116,7 @@ def _criteria_on(session: Session, *, ruleset_id: int, region_id: int, day: date
     )).first()
     if row is None:
         return None
-    data = row.explanation.get("data") or {}
-    return read_criteria(data.get("criteria") or (), path="data.criteria")
+    return stored_criteria(row.explanation)
 
 
 def record_of(session: Session, row: Assessment, *, first: bool) -> ExplainedDay:

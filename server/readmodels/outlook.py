@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date, timedelta
 from typing import Any
@@ -29,6 +30,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from rules import Ruleset
+from rules.record import CriterionState, ExplanationRecord, read_explanation
 from server.services.assessments import current_assessment_id
 from server.services.review_official import OfficialTier
 from server.services.ruleset_cache import parsed
@@ -125,7 +127,7 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _first(values: list[Any], start: int) -> float | None:
+def _first(values: Sequence[float | None], start: int) -> float | None:
     """The first non-null threshold at tier index >= ``start`` (leading nulls jump tiers)."""
     for v in values[start:]:
         if v is not None:
@@ -148,22 +150,22 @@ def _text(ruleset: Ruleset, indicator: str, value: float | None) -> str:
 
 
 def _check(
-    ruleset: Ruleset, item: dict[str, Any], threshold: float, *, release: bool,
+    ruleset: Ruleset, item: CriterionState, threshold: float, *, release: bool,
     point: bool = False,
 ) -> FigureCheck:
     """Compare a criterion's figure with ``threshold`` as the engine does (``point``: compare
     the estimate itself, for plain descriptions)."""
-    rising = item.get("direction", "rising") == "rising"
-    bounds = item.get("statistic") == "bounds" and not point
+    rising = item.direction == "rising"
+    bounds = item.statistic == "bounds" and not point
     # Release compares the bound on the far side (upper when rising), escalation the near one.
     side = None
-    value = _num(item.get("value"))
+    value = _num(item.value)
     if bounds:
         side = "upper" if release == rising else "lower"
-        bound = _num(item.get(side))
+        bound = _num(item.upper if side == "upper" else item.lower)
         value = bound if bound is not None else value
-    known = bool(item.get("known", True)) and value is not None
-    inactive = "count below minimum" if item.get("status") == "count below minimum" else None
+    known = item.known and value is not None
+    inactive = "count below minimum" if item.status == "count below minimum" else None
     met: bool | None = None
     approaching = False
     if known and value is not None:
@@ -173,23 +175,23 @@ def _check(
             approaching = (value >= APPROACHING_SHARE * threshold if rising
                            else value <= threshold / APPROACHING_SHARE)
     return FigureCheck(
-        criterion=str(item["id"]), label=str(item.get("label") or item["id"]),
-        value_text=_text(ruleset, str(item["indicator"]), value),
-        threshold_text=_text(ruleset, str(item["indicator"]), threshold),
+        criterion=item.id, label=item.label,
+        value_text=_text(ruleset, item.indicator, value),
+        threshold_text=_text(ruleset, item.indicator, threshold),
         uses_bound=side, met=None if inactive else met, approaching=approaching,
         inactive_reason=inactive,
     )
 
 
 def outlook_from(
-    *, ruleset: Ruleset, explanation: dict[str, Any], official: OfficialTier, lang: str | None,
+    *, ruleset: Ruleset, record: ExplanationRecord, official: OfficialTier, lang: str | None,
 ) -> Outlook:
-    """Build the outlook from an explanation's data (its ``criteria``, ``counters``, ``date``,
-    ``decided``), as :func:`rules.explanation.explain` writes them."""
+    """Build the outlook from the newest assessment's record (its criteria, counters, day and
+    decided tier, :mod:`rules.record`)."""
     timing = ruleset.timing
     k = official.tier
-    as_of = date.fromisoformat(str(explanation["date"]))
-    items: list[dict[str, Any]] = list(explanation.get("criteria", []))
+    as_of = record.day
+    items = record.criteria
     method = ruleset.combination.method
     m = ruleset.combination.m or 1
     tiers = {t.level: t for t in ruleset.tiers}
@@ -202,14 +204,13 @@ def outlook_from(
     if 0 < k <= ruleset.top_tier:
         checks = []
         for it in items:
-            thr = _first(list(it.get("exit", [])), k - 1)
-            reach = any(v is not None for v in list(it.get("enter", []))[k - 1:])
+            thr = _first(it.exit, k - 1)
+            reach = any(v is not None for v in it.enter[k - 1:])
             if thr is not None and reach:
                 checks.append(_check(ruleset, it, thr, release=True))
-        counters = explanation.get("counters", {})
         # The engine's release counter belongs to its own tier; it counts for the published one
         # only when both agree.
-        so_far = int(counters.get("down", 0)) if explanation.get("decided") == k else 0
+        so_far = record.counters.down if record.decided == k else 0
         so_far = min(so_far, timing.release_days)
         all_met = bool(checks) and all(c.met for c in checks if c.inactive_reason is None)
         wait = timing.release_days - (so_far if all_met else 0)
@@ -226,7 +227,7 @@ def outlook_from(
     if 0 <= k < ruleset.top_tier:
         checks = []
         for it in items:
-            thr = _first(list(it.get("enter", [])), k)
+            thr = _first(it.enter, k)
             if thr is not None:
                 checks.append(_check(ruleset, it, thr, release=False))
         up = StepUp(to_tier=k + 1, to_name=name(k + 1), figures=tuple(checks),
@@ -235,8 +236,8 @@ def outlook_from(
     hospital = []
     level = min(k + 1, ruleset.top_tier)
     for it in items:
-        if it.get("indicator") in HOSPITAL_INDICATORS:
-            enter = list(it.get("enter", []))
+        if it.indicator in HOSPITAL_INDICATORS:
+            enter = it.enter
             thr = _first(enter, level - 1)
             if thr is not None:
                 at = next(j for j in range(level - 1, len(enter)) if enter[j] is not None) + 1
@@ -271,5 +272,6 @@ def district_outlook(
     )
     data = (explanation or {}).get("data")
     if not isinstance(data, dict) or "criteria" not in data:
-        return None
-    return outlook_from(ruleset=ruleset, explanation=data, official=official, lang=lang)
+        return None  # rows of the first releases carry no criteria to reason from
+    record = read_explanation(explanation or {})
+    return outlook_from(ruleset=ruleset, record=record, official=official, lang=lang)

@@ -20,6 +20,7 @@ from sqlalchemy import func, or_, select
 from sqlalchemy.orm import Session, aliased
 
 from rules import Ruleset
+from rules.record import stored_sentence
 from server.services.assessments import LatestItem, LatestRun, assessments_as_of, newest_run
 from server.services.review_official import decisions_by_region
 from server.services.ruleset_cache import parsed
@@ -167,7 +168,7 @@ def _pending_of(session: Session, policy: str) -> list[PendingChange]:
                 recommended_tier=item.assessment.recommended_tier,
                 recommended_name=tier_name(latest.ruleset, item.assessment.recommended_tier),
                 since=item.since, assessment_id=item.assessment.id,
-                sentence=str(item.assessment.explanation.get("sentence", "")),
+                sentence=stored_sentence(item.assessment.explanation),
                 official_decision_id=None if last is None else last.id,
                 official_note="" if official is None or scale is None else _takeover(
                     scale, official, latest.ruleset, active_row.id, active_label),

@@ -14,7 +14,7 @@ import pytest
 
 from rules import IndicatorSeries, evaluate, parse_ruleset
 from rules.errors import StoredExplanationError
-from rules.record import read_explanation
+from rules.record import read_explanation, stored_criteria, stored_sentence
 
 RULES = """\
 name: records
@@ -72,3 +72,19 @@ def test_read_explanation_refuses_a_bad_date() -> None:
     stored["data"]["date"] = "12.03.2031"  # type: ignore[index]
     with pytest.raises(StoredExplanationError, match=r"data\.date: expected a date .*'12\.03"):
         read_explanation(stored)
+
+
+def test_stored_criteria_and_sentence_read_what_read_explanation_reads() -> None:
+    stored = _stored([10, 160, 170, 170], 3)
+    record = read_explanation(stored)
+    assert stored_criteria(stored) == record.criteria
+    assert stored_sentence(stored) == record.sentence
+
+
+def test_stored_criteria_and_sentence_of_rows_without_data() -> None:
+    # Rows written before explanations carried data (and a sentence kept under "data" only).
+    assert stored_criteria({"sentence": "Baseline."}) == ()
+    assert stored_criteria(None) == ()
+    assert stored_sentence({"sentence": "Baseline."}) == "Baseline."
+    assert stored_sentence({"data": {"sentence": "Held."}}) == "Held."
+    assert stored_sentence({}) == ""

@@ -15,6 +15,7 @@ from pathlib import Path
 import pytest
 
 from rules import load_ruleset
+from rules.record import ExplanationRecord, read_explanation
 from server.readmodels.outlook import APPROACHING_SHARE, outlook_from
 from server.services.review import OfficialTier
 
@@ -38,9 +39,12 @@ def _official(tier: int, since: date) -> OfficialTier:
                         since=since, published_at=datetime(2026, 1, 1, tzinfo=UTC))
 
 
-def _explanation(items: list[dict], *, decided: int, down: int = 0, day: str = "2026-03-10"):
-    return {"date": day, "decided": decided, "criteria": items,
-            "counters": {"down": down, "release_days": 28}}
+def _explanation(items: list[dict], *, decided: int, down: int = 0, day: str = "2026-03-10"
+                 ) -> ExplanationRecord:
+    """The record the engine stores (rules.record), read back from its stored shape."""
+    return read_explanation({"data": {"date": day, "decided": decided, "criteria": items,
+                                      "counters": {"down": down, "release_days": 28}}},
+                            tier=decided)
 
 
 def test_outlook_step_down_compares_upper_bound_with_exit_threshold() -> None:
@@ -50,7 +54,7 @@ def test_outlook_step_down_compares_upper_bound_with_exit_threshold() -> None:
         _item("positivity", "positivity_7d", 7.5),
         _item("admissions", "admissions_7d", 5.0, lower=3.0, upper=7.9, statistic="bounds"),
     ]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=2),
                      official=_official(2, date(2026, 2, 1)), lang=None)
     assert o.down is not None
     checks = {c.criterion: c for c in o.down.figures}
@@ -66,7 +70,7 @@ def test_outlook_earliest_step_down_waits_for_release_and_minimum_days() -> None
     # Not every figure is under its exit threshold: the whole release period is still ahead.
     # As of 2026-03-10 + 28 days = 2026-04-07, + 1 day until it takes effect = 2026-04-08.
     items = [_item("positivity", "positivity_7d", 7.5)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2, down=5),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=2, down=5),
                      official=_official(2, date(2026, 3, 1)), lang=None)
     assert o.down is not None
     assert o.down.days_met_so_far == 0
@@ -77,7 +81,7 @@ def test_outlook_earliest_step_down_counts_days_already_under() -> None:
     # Every figure under its exit threshold for 20 of 28 days: 8 days to go from 2026-03-10,
     # then 1 day until in force -> 2026-03-19; the tier started 2026-01-01, so 21 days are met.
     items = [_item("positivity", "positivity_7d", 5.0)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2, down=20),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=2, down=20),
                      official=_official(2, date(2026, 1, 1)), lang=None)
     assert o.down is not None
     assert o.down.days_met_so_far == 20
@@ -88,14 +92,14 @@ def test_outlook_minimum_days_in_tier_can_be_the_later_limit() -> None:
     # Tier started 2026-03-09: minimum 21 days -> 2026-03-30, +1 day in force -> 2026-03-31,
     # later than 2026-03-10 + (28 - 27) + 1 = 2026-03-12.
     items = [_item("positivity", "positivity_7d", 5.0)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2, down=27),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=2, down=27),
                      official=_official(2, date(2026, 3, 9)), lang=None)
     assert o.down is not None and o.down.earliest == date(2026, 3, 31)
 
 
 def test_outlook_release_counter_ignored_when_engine_tier_differs_from_published() -> None:
     items = [_item("positivity", "positivity_7d", 5.0)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=3, down=20),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=3, down=20),
                      official=_official(2, date(2026, 1, 1)), lang=None)
     assert o.down is not None and o.down.days_met_so_far == 0
 
@@ -107,7 +111,7 @@ def test_outlook_step_up_marks_approaching_figures() -> None:
         _item("positivity", "positivity_7d", 8.5),
         _item("incidence", "incidence_7d", 118, lower=100, upper=130, statistic="bounds"),
     ]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=1),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=1),
                      official=_official(1, date(2026, 1, 1)), lang=None)
     assert o.up is not None and o.up.to_tier == 2 and o.up.confirm_days == 5
     checks = {c.criterion: c for c in o.up.figures}
@@ -121,7 +125,7 @@ def test_outlook_leading_null_threshold_uses_first_reachable_tier() -> None:
     # ICU share has no tier-1 threshold (enter [null, 30, 45]); from tier 0 a step up through
     # ICU share alone needs 30 %, the High (2) threshold.
     items = [_item("icu", "icu_share", 12.0)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=0),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=0),
                      official=_official(0, date(2026, 1, 1)), lang=None)
     assert o.down is None
     assert o.up is not None
@@ -131,7 +135,7 @@ def test_outlook_leading_null_threshold_uses_first_reachable_tier() -> None:
 
 def test_outlook_top_tier_has_no_step_up_and_unknown_figures_are_not_judged() -> None:
     items = [_item("positivity", "positivity_7d", float("nan"), known=False)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=3),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=3),
                      official=_official(3, date(2026, 1, 1)), lang=None)
     assert o.up is None
     assert o.down is not None and o.down.figures[0].met is None
@@ -141,6 +145,6 @@ def test_outlook_top_tier_has_no_step_up_and_unknown_figures_are_not_judged() ->
                          ids=["en", "de"])
 def test_outlook_names_tiers_in_the_page_language(lang: str | None, name: str) -> None:
     items = [_item("positivity", "positivity_7d", 5.0)]
-    o = outlook_from(ruleset=POLICY, explanation=_explanation(items, decided=2),
+    o = outlook_from(ruleset=POLICY, record=_explanation(items, decided=2),
                      official=_official(2, date(2026, 1, 1)), lang=lang)
     assert o.down is not None and o.down.to_name == name
