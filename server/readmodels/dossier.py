@@ -168,6 +168,37 @@ def _assessed(session: Session, region: Region, row: RulesetRow) -> tuple[int, s
     return region.id, None
 
 
+@dataclass(frozen=True)
+class _Shown:
+    """What both pages of a district start from: the district, its area, the policy's stored
+    version and parsed ruleset, the newest run's cutoff, and the region assessed under the
+    policy (the district or the region above it at the policy's level)."""
+
+    region: Region
+    area: str | None
+    row: RulesetRow
+    rs: Ruleset
+    cutoff: datetime
+    assessed: int
+    assessed_area: str | None
+    of_area: frozenset[str]
+
+
+def _shown(session: Session, code: str, policy: str | None, day: date | None) -> _Shown:
+    """Raises :class:`NoAssessmentError` when the district is unknown or the policy never ran,
+    :class:`~server.services.rulesets.InactivePolicyError` for a policy that is not active."""
+    region, area = _region(session, code)
+    row = require_policy(session=session, policy=policy)
+    cutoff = _cutoff(session, row.id) if row else None
+    if row is None or cutoff is None:
+        raise NoAssessmentError(code, day)
+    rs = parsed(row)
+    assessed, assessed_area = _assessed(session, region, row)
+    return _Shown(region=region, area=area, row=row, rs=rs, cutoff=cutoff, assessed=assessed,
+                  assessed_area=assessed_area,
+                  of_area=frozenset(area_figures(rs, store_measures(session=session))))
+
+
 def _official_by_day(
     session: Session, region_id: int, days: list[date], policy: str | None = None
 ) -> list[int | None]:
@@ -202,14 +233,9 @@ def district_dossier(
     :class:`~server.services.rulesets.InactivePolicyError` for a policy that is not active.
     """
     check_period(start, end)
-    region, area = _region(session, code)
-    row = require_policy(session=session, policy=policy)
-    cutoff = _cutoff(session, row.id) if row else None
-    if row is None or cutoff is None:
-        raise NoAssessmentError(code, None)
-    rs = parsed(row)
-    of_area = area_figures(rs, store_measures(session=session))
-    assessed, assessed_area = _assessed(session, region, row)
+    shown = _shown(session, code, policy, None)
+    region, area, row, rs, cutoff = shown.region, shown.area, shown.row, shown.rs, shown.cutoff
+    of_area, assessed = shown.of_area, shown.assessed
     span = session.execute(assessments_as_of(
         select(func.min(Assessment.ref_date), func.max(Assessment.ref_date))
         .select_from(Assessment),
@@ -271,7 +297,7 @@ def district_dossier(
         nowcast_accuracy=_nowcast_line(session, code),
         forecast_record=_forecast_record(session, region),
         policy=row.name, policies=tuple(r.name for r in active_rulesets(session=session)),
-        assessed_area=assessed_area,
+        assessed_area=shown.assessed_area,
     )
 
 
@@ -385,13 +411,9 @@ def explanation_page(
     (:mod:`server.readmodels.explanations`). Under ``policy`` (the lead policy when None; a
     policy of ``level: areas`` explains the district's area).
     """
-    region, area = _region(session, code)
-    row = require_policy(session=session, policy=policy)
-    cutoff = _cutoff(session, row.id) if row else None
-    if row is None or cutoff is None:
-        raise NoAssessmentError(code, day)
-    rs = parsed(row)
-    assessed, assessed_area = _assessed(session, region, row)
+    ctx = _shown(session, code, policy, day)
+    region, area, row, rs, cutoff = ctx.region, ctx.area, ctx.row, ctx.rs, ctx.cutoff
+    of_area, assessed = ctx.of_area, ctx.assessed
     if day is None:
         day = session.scalar(assessments_as_of(
             select(func.max(Assessment.ref_date)).select_from(Assessment),
@@ -405,7 +427,6 @@ def explanation_page(
         raise NoAssessmentError(code, day)
     record = shown.record
     names = [t.name for t in rs.tiers]
-    of_area = area_figures(rs, store_measures(session=session))
     c = record.counters
     counters = (
         ("Days the candidate was higher", f"{c.up} of {c.confirm_days}"),
@@ -445,6 +466,6 @@ def explanation_page(
         revised=revised,
         tier_now_name=None if revised is None else tier_label(rs, revised.tier_now),
         policy=row.name, policies=tuple(r.name for r in active_rulesets(session=session)),
-        assessed_area=assessed_area,
+        assessed_area=ctx.assessed_area,
     )
 
