@@ -515,6 +515,10 @@ class KinkScanner:
         u = t - 0.5 * (n - 1)  # centred days: smaller sums, less cancellation below
         self.u = u
         self.su = [suffix_sums(w), suffix_sums(w * u), suffix_sums(w * u * u)]
+        # sum_{t > tau} w_t (u_t - u_tau) / n and sum_{t > tau} w_t u_t (u_t - u_tau) / n: the
+        # hinge sums of a kink column c_K(tau) in two terms (see _scan_group_raw)
+        self.h1 = (self.su[1] - u * self.su[0]) / n
+        self.h2 = (self.su[2] - u * self.su[1]) / n
 
     def _cross(self, r: IntArray, a: FloatArray, b: FloatArray, at: IntArray) -> FloatArray:
         """``sum_{t > at} w_t (u_t - a)(u_t - b)`` for rows ``r`` (``at`` shaped (rows, i, j),
@@ -574,11 +578,15 @@ class KinkScanner:
             sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
             # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
             # at tau itself right of the kink, at the kink left of it
+            # = H2(tau) - kappa H1(tau) right of the kink and H2(kappa) - tau H1(kappa) left of
+            # it, with H1(x) = sum_{t > x} w (u - x) / n and H2(x) = sum_{t > x} w u (u - x) / n
+            # (centred days u); H1 and H2 are stored, so each kink costs a few passes
             right = np.arange(n)[None, None, :] >= kap
-            s0, s1, s2 = (np.where(right, self._take(p, r)[:, None, :],
-                                   p[r[:, None], kinks][:, :, None]) for p in self.su)
-            kc, uc = ku[:, :, None], self.u[None, None, :]
-            ck = (s2 - (kc + uc) * s1 + kc * uc * s0) / n  # (rows, k, n)
+            h1, h2 = self._take(self.h1, r)[:, None, :], self._take(self.h2, r)[:, None, :]
+            h1k = self.h1[r[:, None], kinks][:, :, None]
+            h2k = self.h2[r[:, None], kinks][:, :, None]
+            ck = np.where(right, h2 - ku[:, :, None] * h1,
+                          h2k - self.u[None, None, :] * h1k)  # (rows, k, n)
             # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
             res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
             quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
@@ -611,6 +619,8 @@ def kink_allowed(kinks: IntArray, n: int, min_segment: int) -> BoolArray:
     ok = np.broadcast_to(ok, (kinks.shape[0], n)).copy()
     for j in range(kinks.shape[1]):
         k = kinks[:, j : j + 1]
+        if np.all(k < 0):  # an unused column (sorted kinks: -1 last)
+            continue
         ok &= (k < 0) | (np.abs(t[None, :] - k) >= min_segment)
     return ok
 
@@ -794,9 +804,10 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         r = np.flatnonzero((cur >= 0).sum(axis=1) == k)
         if r.size == 0:
             continue
-        cost = _drop_costs(z[r], w[r], line_design(n, cur[r], None if steps is None
-                                                   else steps[r]), cur.shape[1])
-        j = np.argmin(np.where(cur[r] >= 0, cost, np.inf), axis=1)
+        # only the k hinge columns these rows use (sorted: -1 after them)
+        cost = _drop_costs(z[r], w[r], line_design(n, cur[r, :k], None if steps is None
+                                                   else steps[r]), k)
+        j = np.argmin(np.where(cur[r, :k] >= 0, cost, np.inf), axis=1)
         part = cur[r].copy()
         part[np.arange(r.size), j] = -1
         # the kinks on either side of the dropped one (sorted positions j - 1 and j) move
