@@ -543,6 +543,108 @@ class KinkScanner:
             rss[i], gain[i] = self._scan_group(rows[i], k[i, :m])
         return rss, gain
 
+    def scan_drop_one(self, kinks: IntArray, rows: IntArray | None = None) -> FloatArray:
+        """The gains of :meth:`scan` with each kink left out in turn, the others fixed:
+        ``gain[:, j]`` equals ``scan(kinks without column j)[1]`` (shape (len(rows), k, n);
+        zero for a -1 entry). ``kinks`` must be sorted (-1 last).
+
+        All from one pass with every kink in: leaving kink j out of the quadratic form
+        ``r' S^{-1} r`` and the fit ``r' S^{-1} b`` of the Schur-complement algebra is the
+        rank-one downdate ``- (e_j' S^{-1} r)(e_j' S^{-1} b) / (S^{-1})_jj`` (the inverse of a
+        partitioned matrix, Seber & Lee 2003, A.9), so the k leave-one-out scans cost about
+        one scan.
+        """
+        if rows is None:
+            rows = np.arange(self.z.shape[0])
+        count = (kinks >= 0).sum(axis=1)
+        k = kinks.shape[1]
+        out = np.zeros((rows.size, k, self.n))
+        for m in np.unique(count):
+            if m == 0:
+                continue
+            i = np.flatnonzero(count == m)
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                g = self._drop_group_raw(rows[i], kinks[i, :m])
+            out[i, :m] = np.where(np.isfinite(g), g, 0.0)
+        return out
+
+    def _drop_group_raw(self, r: IntArray, kinks: IntArray) -> FloatArray:
+        sinv, res, beta_k, rss = self._kink_terms(r, kinks)
+        quad = self._take(self.quad_f, r)[:, None, :]
+        num = self._take(self.num0, r)[:, None, :]
+        ps = np.matmul(sinv, res)  # (rows, k, n): e_j' S^{-1} r for every j
+        quad = quad + (ps * res).sum(axis=1, keepdims=True)
+        num = num - np.einsum("rk,rkn->rn", beta_k, res)[:, None, :]
+        d = np.einsum("rkk->rk", sinv)[:, :, None]
+        quad_j = quad - ps * ps / d
+        num_j = num + ps * (beta_k[:, :, None] / d)
+        rss_j = np.maximum(rss[:, None] + beta_k * beta_k / d[..., 0], 0.0)
+        hh = self._take(self.hh, r)[:, None, :]
+        den = hh - quad_j
+        gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num_j * num_j / den, 0.0)
+        return np.asarray(np.clip(gain, 0.0, rss_j[:, :, None]))
+
+    def rss(self, kinks: IntArray, rows: IntArray | None = None) -> FloatArray:
+        """The ``rss`` of :meth:`scan` alone (no pass over the days)."""
+        if rows is None:
+            rows = np.arange(self.z.shape[0])
+        k = sort_kinks(kinks)
+        count = (k >= 0).sum(axis=1)
+        out = np.empty(rows.size)
+        for m in np.unique(count):
+            i = np.flatnonzero(count == m)
+            if m == 0:
+                out[i] = self.rss0[rows[i]]
+                continue
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                out[i] = self._kink_small(rows[i], k[i, :m])[-1]
+        return np.maximum(out, 0.0)
+
+    def _kink_small(self, r: IntArray, kinks: IntArray
+                    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """``(F'WF)^{-1} F'WK``, ``S^{-1}``, ``b_K`` and the residual sum of squares with the
+        kinks ``kinks`` (k >= 1): the k x k algebra, gathered from the stored sums."""
+        n = self.n
+        finv, bf = self.finv[r], self.bf[r]
+        f = finv.shape[1]
+        g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
+                         kinks[:, None, :]] / n  # F' W K, (rows, f, k)
+        bk = self.hz[r[:, None], kinks] / n  # K' W z
+        ku = kinks - 0.5 * (n - 1)
+        at = np.maximum(kinks[:, :, None], kinks[:, None, :])
+        hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
+        fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
+        sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
+        beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
+        bres = bk - np.einsum("rpk,rp->rk", g, beta_f0)
+        beta_k = np.einsum("rkl,rl->rk", sinv, bres)
+        # residual sum of squares less the fixed columns' fit, by the block inverse:
+        # e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
+        rss = self.rss0[r] - (beta_k * bres).sum(axis=1)
+        return fg, sinv, beta_k, rss
+
+    def _kink_terms(self, r: IntArray, kinks: IntArray
+                    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """``S^{-1}``, the residualised hinge sums ``r`` (rows, k, n), the kink coefficients
+        ``b_K`` and the residual sum of squares with the kinks ``kinks`` (k >= 1)."""
+        n = self.n
+        fg, sinv, beta_k, rss = self._kink_small(r, kinks)
+        kap = kinks[:, :, None]  # (rows, k, 1)
+        ku = kinks - 0.5 * (n - 1)
+        # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n
+        # = H2(tau) - kappa H1(tau) right of the kink and H2(kappa) - tau H1(kappa) left of
+        # it, with H1(x) = sum_{t > x} w (u - x) / n and H2(x) = sum_{t > x} w u (u - x) / n
+        # (centred days u); H1 and H2 are stored, so each kink costs a few passes
+        right = np.arange(n)[None, None, :] >= kap
+        h1, h2 = self._take(self.h1, r)[:, None, :], self._take(self.h2, r)[:, None, :]
+        h1k = self.h1[r[:, None], kinks][:, :, None]
+        h2k = self.h2[r[:, None], kinks][:, :, None]
+        ck = np.where(right, h2 - ku[:, :, None] * h1,
+                      h2k - self.u[None, None, :] * h1k)  # (rows, k, n)
+        # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
+        res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
+        return sinv, res, beta_k, rss
+
     def _take(self, a: FloatArray, r: IntArray) -> FloatArray:
         """``a[r]``, a view when ``r`` is every row in order (no copy of a large array)."""
         if r.size == a.shape[0] and (r.size == 0 or (r[0] == 0 and np.all(np.diff(r) == 1))):
@@ -564,38 +666,8 @@ class KinkScanner:
         else:
             # every product with a hinge column (t - kappa)_+ / n is a sum over t > kappa:
             # gathered from the scanner's hinge and suffix sums, no pass over the days
-            n = self.n
-            finv, bf = self.finv[r], self.bf[r]
-            f = finv.shape[1]
-            kap = kinks[:, :, None]  # (rows, k, 1)
-            g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
-                             kinks[:, None, :]] / n  # F' W K, (rows, f, k)
-            bk = self.hz[r[:, None], kinks] / n  # K' W z
-            ku = kinks - 0.5 * (n - 1)
-            at = np.maximum(kinks[:, :, None], kinks[:, None, :])
-            hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
-            fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
-            sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
-            # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
-            # at tau itself right of the kink, at the kink left of it
-            # = H2(tau) - kappa H1(tau) right of the kink and H2(kappa) - tau H1(kappa) left of
-            # it, with H1(x) = sum_{t > x} w (u - x) / n and H2(x) = sum_{t > x} w u (u - x) / n
-            # (centred days u); H1 and H2 are stored, so each kink costs a few passes
-            right = np.arange(n)[None, None, :] >= kap
-            h1, h2 = self._take(self.h1, r)[:, None, :], self._take(self.h2, r)[:, None, :]
-            h1k = self.h1[r[:, None], kinks][:, :, None]
-            h2k = self.h2[r[:, None], kinks][:, :, None]
-            ck = np.where(right, h2 - ku[:, :, None] * h1,
-                          h2k - self.u[None, None, :] * h1k)  # (rows, k, n)
-            # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
-            res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
+            sinv, res, beta_k, rss = self._kink_terms(r, kinks)
             quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
-            beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
-            beta_k = np.einsum("rkl,rl->rk", sinv,
-                               bk - np.einsum("rpk,rp->rk", g, beta_f0))
-            # residual sum of squares and h' W e less the fixed columns' fit, by the block
-            # inverse: e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
-            rss = rss0 - (beta_k * (bk - np.einsum("rpk,rp->rk", g, beta_f0))).sum(axis=1)
             num = num0 - np.einsum("rk,rkn->rn", beta_k, res)
         rss = np.maximum(rss, 0.0)
         hh = self._take(self.hh, r)
@@ -816,7 +888,7 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         part = refine_kinks(scanner, sort_kinks(part), min_segment, sweeps=1, which=near,
                             rows=r)
         cur[r] = part
-        back, _ = scanner.scan(part[:, : k - 1], r)
+        back = scanner.rss(part[:, : k - 1], r)  # the sum alone: no gains needed
         better = back < rss[r, k - 1]
         rss[r[better], k - 1] = back[better]
         path[r[better], k - 1] = part[better]

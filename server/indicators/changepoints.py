@@ -54,6 +54,7 @@ from server.indicators._segmentation import (
     sort_kinks,
     step_columns,
 )
+from server.indicators.sandwich import hac_sandwich
 from server.indicators.serial_interval import growth_to_reproduction
 
 BoolArray = NDArray[np.bool_]
@@ -64,6 +65,7 @@ __all__ = [
     "KinkFit",
     "block_dispersion",
     "date_aware_covariance",
+    "hac_covariance",
     "fit_kinks",
     "kink_design",
     "screen_kinks",
@@ -80,6 +82,7 @@ _WEEK = WEEK
 _MAX_NEWTON = 60
 _NEWTON_TOL = 1e-10
 _CHUNK_ROWS = 64
+_HUGE_MEAN = 1e100  # a fitted mean past this is a diverging fit's (see _kink_scanner)
 _PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
@@ -1157,7 +1160,9 @@ def _kink_scanner(y: FloatArray, fit: KinkFit, day_of_week: bool) -> KinkScanner
     the weighted RSS of the working response ``eta + (y - mu) / mu`` (weights ``mu``) with the
     kinks ``others`` and the drop from adding one more kink at each day."""
     rows, n = y.shape
-    mu = np.where(np.isfinite(fit.mu), fit.mu, 0.0)  # a diverged row's overflowed means: none
+    # a diverged row's overflowed means, or means past 1e100 (a diverging fit; no count
+    # series comes near): no weight, so that no sum of products over them overflows
+    mu = np.where(np.isfinite(fit.mu) & (fit.mu < _HUGE_MEAN), fit.mu, 0.0)
     observed = np.isfinite(y) & (mu > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(observed, np.log(np.where(observed, mu, 1.0))
@@ -1242,14 +1247,13 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
                 q = 2 + (sub.kinks >= 0).sum(axis=1) + (sub.level_shifts >= 0).sum(axis=1)
                 phi_b, _ = block_dispersion(y[todo[part]], sub.mu, block, q)
                 scale = np.where(np.isfinite(phi_b), np.maximum(phi_b, scale), scale)
+            drop_one = scanner.scan_drop_one(sub.kinks)  # (rows, kmax, n)
             for j in range(kmax):
                 has = sub.kinks[:, j] >= 0
                 if not has.any():
                     continue
-                r = np.flatnonzero(has)  # only the rows holding a kink j are scanned
-                fixed = sub.kinks[r].copy()
-                fixed[:, j] = -1
-                _, gain = scanner.scan(fixed, r)
+                r = np.flatnonzero(has)  # the rows holding a kink j
+                gain = drop_one[r, j]
                 others = new[part[r]].copy()
                 others[:, j] = -1
                 ok = kink_allowed(others, n, min_segment)
@@ -1289,13 +1293,14 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
     the connected run of days around each estimate whose profile statistic is within
     ``crit``."""
     scanner = _kink_scanner(y[idx], sub, True)
+    drop_one = scanner.scan_drop_one(sub.kinks)
     for j in range(sub.kinks.shape[1]):
         rr = np.flatnonzero(sub.kinks[:, j] >= 0)
         if rr.size == 0:
             continue
         others = sub.kinks[rr].copy()
         others[:, j] = -1
-        _, gain = scanner.scan(others, rr)
+        gain = drop_one[rr, j]
         ok = kink_allowed(others, n, min_segment)
         here = sub.kinks[rr, j]
         top = gain[np.arange(rr.size), here]
@@ -1358,21 +1363,52 @@ def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
     block). Rows that did not converge are NaN; a kink whose date column is collinear with the
     rest keeps the conditional covariance.
     """
+    return _kink_covariance(fit, day_of_week, None, None)
+
+
+def hac_covariance(fit: KinkFit, counts: ArrayLike, lags: int, *, date_free: bool = True,
+                   day_of_week: bool = True) -> FloatArray:
+    """Newey-West (HAC) covariance of :class:`KinkFit`'s coefficients: the sandwich
+    ``A^{-1} B A^{-1}`` of :func:`server.indicators.sandwich.hac_sandwich` on the design with
+    Muggeo's date columns (``date_free``, as in :func:`date_aware_covariance`) or without,
+    Bartlett kernel with ``lags`` lags, no dispersion factor (the meat carries the scale).
+
+    Unlike a dispersion that scales the whole model-based covariance, the meat weighs each
+    coefficient's own scores: the change of growth at a kink is estimated from the days after
+    it, and its variance from their residuals' autocovariances (Newey & West 1987). Rows that
+    did not converge are NaN; where the augmented information is singular the conditional
+    covariance's design is used.
+    """
+    y = as_nonnegative_counts("counts", counts)
+    if y.shape != fit.mu.shape:
+        raise ValueError(f"counts: expected shape {fit.mu.shape}, got {y.shape}")
+    lags = _check_int("lags", lags, 0)
+    return _kink_covariance(fit, day_of_week, y, lags, date_free)
+
+
+def _kink_covariance(fit: KinkFit, day_of_week: bool, y: FloatArray | None, lags: int | None,
+                     date_free: bool = True) -> FloatArray:
+    """:func:`date_aware_covariance` (``y`` None) or :func:`hac_covariance`."""
     rows, kmax = fit.kinks.shape
     n = fit.mu.shape[1]
     out = np.array(fit.covariance, copy=True)
-    if kmax == 0:
+    sandwich = y is not None
+    if kmax == 0 and not sandwich:
         return out
     t = np.arange(n)
-    for idx in _chunks(np.flatnonzero(fit.converged & (fit.kinks >= 0).any(axis=1))):
+    todo = fit.converged & ((fit.kinks >= 0).any(axis=1) | sandwich)
+    for idx in _chunks(np.flatnonzero(todo)):
         kinks = fit.kinks[idx]
         shifts = fit.level_shifts[idx]
         x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
         p = x.shape[2]
-        d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
         has = kinks >= 0
-        v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :]) & has[:, None, :]))
-        xv = np.concatenate([x, v], axis=2)
+        if date_free and kmax:
+            d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
+            v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :]) & has[:, None, :]))
+            xv = np.concatenate([x, v], axis=2)
+        else:
+            xv = x
         w = np.nan_to_num(fit.mu[idx], nan=0.0)
         info = np.matmul((xv * w[..., None]).transpose(0, 2, 1), xv)
         diag = np.einsum("rpp->rp", info)
@@ -1386,13 +1422,19 @@ def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
                 inv = np.linalg.inv(info)
             except np.linalg.LinAlgError:
                 inv = np.linalg.pinv(info, hermitian=True)
+            if sandwich:
+                xz = np.where(dead[:, None, :], 0.0, xv)
+                inv = hac_sandwich(xz, y[idx], fit.mu[idx], int(lags or 0), bread=inv)
         block = inv[:, :p, :p]
         block = np.where(dead[:, :p, None] | dead[:, None, :p], 0.0, block)
         base = fit.covariance[idx]
-        # a date column collinear with the others (a level shift on the kink's day) or a
-        # numerically useless inverse: keep the conditional covariance
-        bad = ~np.all(np.isfinite(block), axis=(1, 2)) | np.any(
-            np.einsum("rpp->rp", block) < np.einsum("rpp->rp", base) * (1 - 1e-6), axis=1)
+        if sandwich:  # a numerically useless sandwich: the model-based covariance
+            bad = ~np.all(np.isfinite(block), axis=(1, 2))
+        else:
+            # a date column collinear with the others (a level shift on the kink's day) or a
+            # numerically useless inverse: keep the conditional covariance
+            bad = ~np.all(np.isfinite(block), axis=(1, 2)) | np.any(
+                np.einsum("rpp->rp", block) < np.einsum("rpp->rp", base) * (1 - 1e-6), axis=1)
         out[idx] = np.where(bad[:, None, None], base, block)
     return out
 
