@@ -600,6 +600,15 @@ class KinkScanner:
                 out[i] = self._kink_small(rows[i], k[i, :m])[-1]
         return np.maximum(out, 0.0)
 
+    def drop_costs(self, kinks: IntArray, rows: IntArray) -> FloatArray:
+        """Rise of the weighted RSS from dropping each of the kinks ``kinks`` (every entry a
+        kink, shape (len(rows), k)): ``b_j^2 / [(X' W X)^{-1}]_jj``, the partial F numerator,
+        with ``S^{-1}`` the kinks' block of ``(X' W X)^{-1}`` (partitioned inverse), so no
+        pass over the days."""
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            _, sinv, beta_k, _ = self._kink_small(rows, kinks)
+            return np.asarray(beta_k * beta_k / np.einsum("rkk->rk", sinv))
+
     def _kink_small(self, r: IntArray, kinks: IntArray
                     ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
         """``(F'WF)^{-1} F'WK``, ``S^{-1}``, ``b_K`` and the residual sum of squares with the
@@ -688,13 +697,17 @@ def kink_allowed(kinks: IntArray, n: int, min_segment: int) -> BoolArray:
     ``kinks`` (shape (regions, k), -1 for none): shape (regions, n)."""
     t = np.arange(n)
     ok = (t >= min_segment) & (t <= n - min_segment)
-    ok = np.broadcast_to(ok, (kinks.shape[0], n)).copy()
-    for j in range(kinks.shape[1]):
-        k = kinks[:, j : j + 1]
-        if np.all(k < 0):  # an unused column (sorted kinks: -1 last)
-            continue
-        ok &= (k < 0) | (np.abs(t[None, :] - k) >= min_segment)
-    return ok
+    rows = kinks.shape[0]
+    rr, jj = np.nonzero(kinks >= 0)
+    if rr.size == 0:
+        return np.broadcast_to(ok, (rows, n)).copy()
+    # days closer than min_segment to a kink: +1 where such a run starts, -1 one past its
+    # end, a cumulative sum counts the runs covering each day
+    k = kinks[rr, jj]
+    edges = np.zeros((rows, n + 1), dtype=np.int32)
+    np.add.at(edges, (rr, np.maximum(k - min_segment + 1, 0)), 1)
+    np.add.at(edges, (rr, np.minimum(k + min_segment, n)), -1)
+    return np.asarray(ok[None, :] & (np.cumsum(edges[:, :n], axis=1) == 0))
 
 
 def screen_kinks(
@@ -835,21 +848,6 @@ def step_columns(n: int, days: IntArray | None, rows: int) -> FloatArray | None:
     return np.asarray(cols, dtype=np.float64)
 
 
-def _drop_costs(z: FloatArray, w: FloatArray, x: FloatArray, k: int) -> FloatArray:
-    """Rise of the weighted RSS from dropping each hinge column ``2 .. 2 + k`` of ``x``:
-    ``beta_j^2 / [(X' W X)^{-1}]_jj`` (the usual partial F numerator), shape (rows, k)."""
-    p = x.shape[2]
-    xw = x * w[..., None]
-    a = np.matmul(xw.transpose(0, 2, 1), x)
-    zero = np.einsum("rpp->rp", a) <= 0
-    a[:, np.arange(p), np.arange(p)] += zero
-    ainv = np.linalg.inv(a)
-    beta = np.einsum("rpq,rq->rp", ainv, np.einsum("rnp,rn->rp", xw, z))
-    j = np.arange(2, 2 + k)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.asarray(beta[:, j] ** 2 / ainv[:, j, j])
-
-
 def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
                 penalty: float, steps: FloatArray | None = None) -> Screening:
     rows, n = z.shape
@@ -876,9 +874,7 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         r = np.flatnonzero((cur >= 0).sum(axis=1) == k)
         if r.size == 0:
             continue
-        # only the k hinge columns these rows use (sorted: -1 after them)
-        cost = _drop_costs(z[r], w[r], line_design(n, cur[r, :k], None if steps is None
-                                                   else steps[r]), k)
+        cost = scanner.drop_costs(cur[r, :k], r)
         j = np.argmin(np.where(cur[r, :k] >= 0, cost, np.inf), axis=1)
         part = cur[r].copy()
         part[np.arange(r.size), j] = -1
