@@ -29,7 +29,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from scipy import stats  # noqa: E402
 
 from demo_seed.steps import StepScenario, simulate_steps  # noqa: E402
-from server.indicators.changepoints import block_dispersion, detect_changepoints  # noqa: E402
+from server.indicators.changepoints import (  # noqa: E402
+    block_dispersion,
+    detect_changepoints,
+    hac_covariance,
+)
 from server.indicators.testing import detect_testing_changes  # noqa: E402
 
 SETTLE = 28  # days after a step at which its new growth rate is taken as the truth
@@ -41,6 +45,7 @@ BLOCK: int | None = 42
 MIN_CHANGE = 0.1
 DATE_UNCERTAINTY = True
 CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
+HAC = False  # also print the coverage of Newey-West (HAC) intervals (--hac)
 
 
 def _realised_change(sc: StepScenario, i: int, day: int, days: int) -> float:
@@ -85,7 +90,12 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
     out: dict[str, list[float]] = {k: [] for k in (
         "hit_big", "hit_small", "false", "false_excl_testing", "cover", "cover_big",
         "testing_hit", "testing_false", "offset", "n_breaks_error", "cover_realised",
-        "cover_alone", *(f"cover_block{b}" for b in CALIBRATE))}
+        "cover_alone", "cover_hac", *(f"cover_block{b}" for b in CALIBRATE))}
+    if HAC and SHAPE == "kink":  # Newey-West sandwich with Muggeo's date columns
+        lags = (BLOCK or 42) - 1
+        hac = hac_covariance(cp.fit, sc.cases, lags)
+        kk = np.arange(cp.breaks.shape[1])
+        hac_se = np.sqrt(hac[:, 2 + kk, 2 + kk]) / days
     for i in range(regions):
         has = cp.breaks[i] >= 0
         if SHAPE == "kink":  # transmission time
@@ -117,6 +127,9 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
                     for b in CALIBRATE:
                         h = half * widen[b][i]
                         out[f"cover_block{b}"].append(float(mid - h <= truth <= mid + h))
+                if HAC and SHAPE == "kink":
+                    d_k, h = cp.growth_change[i, k], 1.959964 * hac_se[i, k]
+                    out["cover_hac"].append(float(d_k - h <= truth <= d_k + h))
                 if big:
                     out["cover_big"].append(float(lo <= truth <= hi))
                 alone = np.sum(np.abs(est - est[k]) <= 21) == 1
@@ -156,10 +169,14 @@ def main() -> None:
                         help="min_change of detect_changepoints (0: every kink the BIC keeps)")
     parser.add_argument("--no-date-uncertainty", action="store_true",
                         help="growth intervals conditional on the break dates")
+    parser.add_argument("--hac", action="store_true",
+                        help="also print the coverage of Newey-West (HAC) intervals of the "
+                             "growth change (block - 1 lags, dates free, normal quantile)")
     parser.add_argument("--no-shifts", action="store_true",
                         help="do not pass the flagged testing changes as level shifts")
     args = parser.parse_args()
-    global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY
+    global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY, HAC
+    HAC = args.hac
     MIN_CHANGE, DATE_UNCERTAINTY = args.min_change, not args.no_date_uncertainty
     SHAPE, SHIFTS, PENALTY = args.shape, not args.no_shifts, args.penalty
     BLOCK = args.block or None
@@ -188,6 +205,8 @@ def main() -> None:
     print(f"  steps >= 20 % only: {share('cover_big')}")
     print(f"  against the simulated infections' own growth change: {share('cover_realised')}")
     print(f"  breaks with no other break within 21 days: {share('cover_alone')}")
+    if total.get("cover_hac"):
+        print(f"  Newey-West (HAC) intervals instead: {share('cover_hac')}")
     for b in CALIBRATE:
         if total.get(f"cover_block{b}"):
             print(f"  with a {b}-day block dispersion: {share(f'cover_block{b}')}")

@@ -515,6 +515,10 @@ class KinkScanner:
         u = t - 0.5 * (n - 1)  # centred days: smaller sums, less cancellation below
         self.u = u
         self.su = [suffix_sums(w), suffix_sums(w * u), suffix_sums(w * u * u)]
+        # sum_{t > tau} w_t (u_t - u_tau) / n and sum_{t > tau} w_t u_t (u_t - u_tau) / n: the
+        # hinge sums of a kink column c_K(tau) in two terms (see _scan_group_raw)
+        self.h1 = (self.su[1] - u * self.su[0]) / n
+        self.h2 = (self.su[2] - u * self.su[1]) / n
 
     def _cross(self, r: IntArray, a: FloatArray, b: FloatArray, at: IntArray) -> FloatArray:
         """``sum_{t > at} w_t (u_t - a)(u_t - b)`` for rows ``r`` (``at`` shaped (rows, i, j),
@@ -539,6 +543,117 @@ class KinkScanner:
             rss[i], gain[i] = self._scan_group(rows[i], k[i, :m])
         return rss, gain
 
+    def scan_drop_one(self, kinks: IntArray, rows: IntArray | None = None) -> FloatArray:
+        """The gains of :meth:`scan` with each kink left out in turn, the others fixed:
+        ``gain[:, j]`` equals ``scan(kinks without column j)[1]`` (shape (len(rows), k, n);
+        zero for a -1 entry). ``kinks`` must be sorted (-1 last).
+
+        All from one pass with every kink in: leaving kink j out of the quadratic form
+        ``r' S^{-1} r`` and the fit ``r' S^{-1} b`` of the Schur-complement algebra is the
+        rank-one downdate ``- (e_j' S^{-1} r)(e_j' S^{-1} b) / (S^{-1})_jj`` (the inverse of a
+        partitioned matrix, Seber & Lee 2003, A.9), so the k leave-one-out scans cost about
+        one scan.
+        """
+        if rows is None:
+            rows = np.arange(self.z.shape[0])
+        count = (kinks >= 0).sum(axis=1)
+        k = kinks.shape[1]
+        out = np.zeros((rows.size, k, self.n))
+        for m in np.unique(count):
+            if m == 0:
+                continue
+            i = np.flatnonzero(count == m)
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                g = self._drop_group_raw(rows[i], kinks[i, :m])
+            out[i, :m] = np.where(np.isfinite(g), g, 0.0)
+        return out
+
+    def _drop_group_raw(self, r: IntArray, kinks: IntArray) -> FloatArray:
+        sinv, res, beta_k, rss = self._kink_terms(r, kinks)
+        quad = self._take(self.quad_f, r)[:, None, :]
+        num = self._take(self.num0, r)[:, None, :]
+        ps = np.matmul(sinv, res)  # (rows, k, n): e_j' S^{-1} r for every j
+        quad = quad + (ps * res).sum(axis=1, keepdims=True)
+        num = num - np.einsum("rk,rkn->rn", beta_k, res)[:, None, :]
+        d = np.einsum("rkk->rk", sinv)[:, :, None]
+        quad_j = quad - ps * ps / d
+        num_j = num + ps * (beta_k[:, :, None] / d)
+        rss_j = np.maximum(rss[:, None] + beta_k * beta_k / d[..., 0], 0.0)
+        hh = self._take(self.hh, r)[:, None, :]
+        den = hh - quad_j
+        gain = np.where(den > 1e-9 * np.maximum(hh, 1e-300), num_j * num_j / den, 0.0)
+        return np.asarray(np.clip(gain, 0.0, rss_j[:, :, None]))
+
+    def rss(self, kinks: IntArray, rows: IntArray | None = None) -> FloatArray:
+        """The ``rss`` of :meth:`scan` alone (no pass over the days)."""
+        if rows is None:
+            rows = np.arange(self.z.shape[0])
+        k = sort_kinks(kinks)
+        count = (k >= 0).sum(axis=1)
+        out = np.empty(rows.size)
+        for m in np.unique(count):
+            i = np.flatnonzero(count == m)
+            if m == 0:
+                out[i] = self.rss0[rows[i]]
+                continue
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                out[i] = self._kink_small(rows[i], k[i, :m])[-1]
+        return np.maximum(out, 0.0)
+
+    def drop_costs(self, kinks: IntArray, rows: IntArray) -> FloatArray:
+        """Rise of the weighted RSS from dropping each of the kinks ``kinks`` (every entry a
+        kink, shape (len(rows), k)): ``b_j^2 / [(X' W X)^{-1}]_jj``, the partial F numerator,
+        with ``S^{-1}`` the kinks' block of ``(X' W X)^{-1}`` (partitioned inverse), so no
+        pass over the days."""
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            _, sinv, beta_k, _ = self._kink_small(rows, kinks)
+            return np.asarray(beta_k * beta_k / np.einsum("rkk->rk", sinv))
+
+    def _kink_small(self, r: IntArray, kinks: IntArray
+                    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """``(F'WF)^{-1} F'WK``, ``S^{-1}``, ``b_K`` and the residual sum of squares with the
+        kinks ``kinks`` (k >= 1): the k x k algebra, gathered from the stored sums."""
+        n = self.n
+        finv, bf = self.finv[r], self.bf[r]
+        f = finv.shape[1]
+        g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
+                         kinks[:, None, :]] / n  # F' W K, (rows, f, k)
+        bk = self.hz[r[:, None], kinks] / n  # K' W z
+        ku = kinks - 0.5 * (n - 1)
+        at = np.maximum(kinks[:, :, None], kinks[:, None, :])
+        hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
+        fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
+        sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
+        beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
+        bres = bk - np.einsum("rpk,rp->rk", g, beta_f0)
+        beta_k = np.einsum("rkl,rl->rk", sinv, bres)
+        # residual sum of squares less the fixed columns' fit, by the block inverse:
+        # e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
+        rss = self.rss0[r] - (beta_k * bres).sum(axis=1)
+        return fg, sinv, beta_k, rss
+
+    def _kink_terms(self, r: IntArray, kinks: IntArray
+                    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """``S^{-1}``, the residualised hinge sums ``r`` (rows, k, n), the kink coefficients
+        ``b_K`` and the residual sum of squares with the kinks ``kinks`` (k >= 1)."""
+        n = self.n
+        fg, sinv, beta_k, rss = self._kink_small(r, kinks)
+        kap = kinks[:, :, None]  # (rows, k, 1)
+        ku = kinks - 0.5 * (n - 1)
+        # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n
+        # = H2(tau) - kappa H1(tau) right of the kink and H2(kappa) - tau H1(kappa) left of
+        # it, with H1(x) = sum_{t > x} w (u - x) / n and H2(x) = sum_{t > x} w u (u - x) / n
+        # (centred days u); H1 and H2 are stored, so each kink costs a few passes
+        right = np.arange(n)[None, None, :] >= kap
+        h1, h2 = self._take(self.h1, r)[:, None, :], self._take(self.h2, r)[:, None, :]
+        h1k = self.h1[r[:, None], kinks][:, :, None]
+        h2k = self.h2[r[:, None], kinks][:, :, None]
+        ck = np.where(right, h2 - ku[:, :, None] * h1,
+                      h2k - self.u[None, None, :] * h1k)  # (rows, k, n)
+        # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
+        res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
+        return sinv, res, beta_k, rss
+
     def _take(self, a: FloatArray, r: IntArray) -> FloatArray:
         """``a[r]``, a view when ``r`` is every row in order (no copy of a large array)."""
         if r.size == a.shape[0] and (r.size == 0 or (r[0] == 0 and np.all(np.diff(r) == 1))):
@@ -560,34 +675,8 @@ class KinkScanner:
         else:
             # every product with a hinge column (t - kappa)_+ / n is a sum over t > kappa:
             # gathered from the scanner's hinge and suffix sums, no pass over the days
-            n = self.n
-            finv, bf = self.finv[r], self.bf[r]
-            f = finv.shape[1]
-            kap = kinks[:, :, None]  # (rows, k, 1)
-            g = self.c_fixed[r[:, None, None], np.arange(f)[None, :, None],
-                             kinks[:, None, :]] / n  # F' W K, (rows, f, k)
-            bk = self.hz[r[:, None], kinks] / n  # K' W z
-            ku = kinks - 0.5 * (n - 1)
-            at = np.maximum(kinks[:, :, None], kinks[:, None, :])
-            hh_k = self._cross(r, ku[:, :, None], ku[:, None, :], at) / (n * n)  # K' W K
-            fg = np.matmul(finv, g)  # (F'WF)^{-1} F' W K
-            sinv = _safe_inverse(hh_k - np.matmul(g.transpose(0, 2, 1), fg))
-            # c_K(tau) = sum_{t > max(tau, kappa)} w (u - kappa)(u - tau) / n: the suffix sums
-            # at tau itself right of the kink, at the kink left of it
-            right = np.arange(n)[None, None, :] >= kap
-            s0, s1, s2 = (np.where(right, self._take(p, r)[:, None, :],
-                                   p[r[:, None], kinks][:, :, None]) for p in self.su)
-            kc, uc = ku[:, :, None], self.u[None, None, :]
-            ck = (s2 - (kc + uc) * s1 + kc * uc * s0) / n  # (rows, k, n)
-            # r = c_K - G' (F'WF)^{-1} c_F, the hinge sums of K after regressing it on F
-            res = ck - np.matmul(fg.transpose(0, 2, 1), self._take(self.c_fixed, r))
+            sinv, res, beta_k, rss = self._kink_terms(r, kinks)
             quad = quad + (np.matmul(sinv, res) * res).sum(axis=1)
-            beta_f0 = np.einsum("rpq,rq->rp", finv, bf)
-            beta_k = np.einsum("rkl,rl->rk", sinv,
-                               bk - np.einsum("rpk,rp->rk", g, beta_f0))
-            # residual sum of squares and h' W e less the fixed columns' fit, by the block
-            # inverse: e = z - F b_F - K b_K with b_F = b_F0 - (F'WF)^{-1} G b_K
-            rss = rss0 - (beta_k * (bk - np.einsum("rpk,rp->rk", g, beta_f0))).sum(axis=1)
             num = num0 - np.einsum("rk,rkn->rn", beta_k, res)
         rss = np.maximum(rss, 0.0)
         hh = self._take(self.hh, r)
@@ -608,11 +697,17 @@ def kink_allowed(kinks: IntArray, n: int, min_segment: int) -> BoolArray:
     ``kinks`` (shape (regions, k), -1 for none): shape (regions, n)."""
     t = np.arange(n)
     ok = (t >= min_segment) & (t <= n - min_segment)
-    ok = np.broadcast_to(ok, (kinks.shape[0], n)).copy()
-    for j in range(kinks.shape[1]):
-        k = kinks[:, j : j + 1]
-        ok &= (k < 0) | (np.abs(t[None, :] - k) >= min_segment)
-    return ok
+    rows = kinks.shape[0]
+    rr, jj = np.nonzero(kinks >= 0)
+    if rr.size == 0:
+        return np.broadcast_to(ok, (rows, n)).copy()
+    # days closer than min_segment to a kink: +1 where such a run starts, -1 one past its
+    # end, a cumulative sum counts the runs covering each day
+    k = kinks[rr, jj]
+    edges = np.zeros((rows, n + 1), dtype=np.int32)
+    np.add.at(edges, (rr, np.maximum(k - min_segment + 1, 0)), 1)
+    np.add.at(edges, (rr, np.minimum(k + min_segment, n)), -1)
+    return np.asarray(ok[None, :] & (np.cumsum(edges[:, :n], axis=1) == 0))
 
 
 def screen_kinks(
@@ -753,21 +848,6 @@ def step_columns(n: int, days: IntArray | None, rows: int) -> FloatArray | None:
     return np.asarray(cols, dtype=np.float64)
 
 
-def _drop_costs(z: FloatArray, w: FloatArray, x: FloatArray, k: int) -> FloatArray:
-    """Rise of the weighted RSS from dropping each hinge column ``2 .. 2 + k`` of ``x``:
-    ``beta_j^2 / [(X' W X)^{-1}]_jj`` (the usual partial F numerator), shape (rows, k)."""
-    p = x.shape[2]
-    xw = x * w[..., None]
-    a = np.matmul(xw.transpose(0, 2, 1), x)
-    zero = np.einsum("rpp->rp", a) <= 0
-    a[:, np.arange(p), np.arange(p)] += zero
-    ainv = np.linalg.inv(a)
-    beta = np.einsum("rpq,rq->rp", ainv, np.einsum("rnp,rn->rp", xw, z))
-    j = np.arange(2, 2 + k)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.asarray(beta[:, j] ** 2 / ainv[:, j, j])
-
-
 def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
                 penalty: float, steps: FloatArray | None = None) -> Screening:
     rows, n = z.shape
@@ -794,9 +874,8 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         r = np.flatnonzero((cur >= 0).sum(axis=1) == k)
         if r.size == 0:
             continue
-        cost = _drop_costs(z[r], w[r], line_design(n, cur[r], None if steps is None
-                                                   else steps[r]), cur.shape[1])
-        j = np.argmin(np.where(cur[r] >= 0, cost, np.inf), axis=1)
+        cost = scanner.drop_costs(cur[r, :k], r)
+        j = np.argmin(np.where(cur[r, :k] >= 0, cost, np.inf), axis=1)
         part = cur[r].copy()
         part[np.arange(r.size), j] = -1
         # the kinks on either side of the dropped one (sorted positions j - 1 and j) move
@@ -805,7 +884,7 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         part = refine_kinks(scanner, sort_kinks(part), min_segment, sweeps=1, which=near,
                             rows=r)
         cur[r] = part
-        back, _ = scanner.scan(part[:, : k - 1], r)
+        back = scanner.rss(part[:, : k - 1], r)  # the sum alone: no gains needed
         better = back < rss[r, k - 1]
         rss[r[better], k - 1] = back[better]
         path[r[better], k - 1] = part[better]

@@ -47,12 +47,27 @@ from server.indicators._segmentation import (
     binary_segmentation,
     check_int,
     kink_allowed,
-    line_design,
     prefix_sums,
     screen_breaks,
     screen_kinks,
-    sort_kinks,
-    step_columns,
+)
+from server.indicators.kinkfit import (
+    _CHUNK_ROWS,
+    _MAX_NEWTON,
+    _NEWTON_TOL,
+    KinkFit,
+    _chunks,
+    _extra_columns,
+    _fit_kinks,
+    _kink_fit_rows,
+    _kink_replace,
+    _moved_start,
+    _normalise_days,
+    block_dispersion,
+    date_aware_covariance,
+    fit_kinks,
+    hac_covariance,
+    kink_design,
 )
 from server.indicators.serial_interval import growth_to_reproduction
 
@@ -64,6 +79,7 @@ __all__ = [
     "KinkFit",
     "block_dispersion",
     "date_aware_covariance",
+    "hac_covariance",
     "fit_kinks",
     "kink_design",
     "screen_kinks",
@@ -77,9 +93,7 @@ __all__ = [
 
 _LN2 = float(np.log(2.0))
 _WEEK = WEEK
-_MAX_NEWTON = 60
-_NEWTON_TOL = 1e-10
-_CHUNK_ROWS = 64
+_HUGE_MEAN = 1e100  # a fitted mean past this is a diverging fit's (see _kink_scanner)
 _PROFILE_PASSES = 3  # profile, move, refit; stops early once no break moves
 
 
@@ -808,289 +822,14 @@ def _assemble(fit: PiecewiseFit, screening: Screening, prof: _Profile, level: fl
     )
 
 
-# ---------------------------------------------------------------- kinks: continuous log-linear
-
-
-@dataclass(frozen=True, eq=False)
-class KinkFit:
-    """Maximum-likelihood fit of the continuous piecewise log-linear model for given kinks.
-
-    ``log mu_t = a + b s_t + sum_k d_k h_k(t) + sum_m c_m 1(t >= L_m) + g_{t mod 7}`` with
-    ``s_t = (t - (n - 1)/2) / n``, hinges ``h_k(t) = (t - tau_k)_+ / n`` and level shifts
-    ``L_m`` (testing changes), ``g_0 = 0``.
-
-    Attributes
-    ----------
-    kinks : ndarray of int, shape (regions, K)
-        Sorted kink days tau_k, -1 after the last (its column is all zero, coefficient 0).
-    level_shifts : ndarray of int, shape (regions, M)
-        Level-shift days, -1 for none.
-    coef : ndarray, shape (regions, p)
-        ``(a, b, d_1..d_K, c_1..c_M, g_1..g_6)`` (no ``g`` without weekday effects).
-    covariance : ndarray, shape (regions, p, p)
-        Inverse Fisher information at unit dispersion (multiply by ``dispersion``).
-    dispersion : ndarray, shape (regions,)
-        Pearson chi-square over ``n - p - K`` (a date per kink counted), at least 1 for
-        quasi-Poisson; 1 for Poisson.
-    loglik : ndarray, shape (regions,)
-        Poisson log-likelihood without the ``log y!`` term.
-    mu : ndarray, shape (regions, days)
-        Fitted means (NaN on missing days).
-    converged : ndarray of bool, shape (regions,)
-    """
-
-    kinks: IntArray
-    level_shifts: IntArray
-    coef: FloatArray
-    covariance: FloatArray
-    dispersion: FloatArray
-    loglik: FloatArray
-    mu: FloatArray
-    converged: BoolArray
-
-    def __post_init__(self) -> None:
-        freeze_arrays(self)
-
-
-def _weekday_columns(n: int) -> FloatArray:
-    cls = np.arange(n) % _WEEK
-    return np.asarray((cls[:, None] == np.arange(1, _WEEK)[None, :]), dtype=np.float64)
-
-
-def kink_design(n: int, kinks: IntArray, level_shifts: IntArray | None = None,
-                day_of_week: bool = True) -> FloatArray:
-    """Design of :class:`KinkFit`: shape (regions, n, p), zero columns for -1 entries."""
-    return line_design(n, kinks, _extra_columns(n, kinks.shape[0], level_shifts, day_of_week))
-
-
-def _extra_columns(n: int, rows: int, level_shifts: IntArray | None,
-                   day_of_week: bool) -> FloatArray | None:
-    """The level-shift and weekday columns of :func:`kink_design`, shape (rows, n, m)."""
-    steps = step_columns(n, level_shifts, rows)
-    extra = [] if steps is None else [steps]
-    if day_of_week:
-        extra.append(np.broadcast_to(_weekday_columns(n), (rows, n, _WEEK - 1)))
-    return np.concatenate(extra, axis=2) if extra else None
-
-
-def _normalise_days(name: str, days: ArrayLike | None, rows: int, n: int) -> IntArray:
-    if days is None:
-        return np.zeros((rows, 0), dtype=np.int64)
-    d = np.asarray(days)
-    if d.ndim == 1:
-        d = np.broadcast_to(d, (rows, d.shape[0]))
-    if d.ndim != 2 or d.shape[0] != rows:
-        raise ValueError(f"{name}: expected shape (regions, k) with {rows} regions, got "
-                         f"{d.shape}")
-    if d.size and not np.issubdtype(d.dtype, np.integer):
-        raise ValueError(f"{name}: day indices must be integers (-1 for none)")
-    d = np.asarray(d, dtype=np.int64)
-    if np.any((d != -1) & ((d < 1) | (d >= n))):
-        raise ValueError(f"{name}: day indices must lie in 1..{n - 1} (-1 for none)")
-    return d
-
-
-def fit_kinks(
-    counts: ArrayLike,
-    kinks: ArrayLike,
-    *,
-    level_shifts: ArrayLike | None = None,
-    dispersion: Dispersion = "quasipoisson",
-    day_of_week: bool = True,
-) -> KinkFit:
-    """Fit the continuous piecewise log-linear Poisson model with given kinks.
-
-    Parameters
-    ----------
-    counts : array_like, shape (regions, days)
-        Daily counts; NaN for a missing day.
-    kinks : array_like of int, shape (regions, k) or (k,)
-        Days at which the growth rate changes (1 .. days - 1), -1 for none; any order.
-    level_shifts : array_like of int, shape (regions, m) or (m,), optional
-        Days from which the level may jump (testing changes), -1 for none.
-    dispersion : {'quasipoisson', 'poisson'}
-    day_of_week : bool
-        Include the six weekday effects.
-
-    Returns
-    -------
-    KinkFit
-
-    Notes
-    -----
-    A Poisson GLM with log link on the design of :class:`KinkFit`, fitted by Newton's method
-    (Fisher scoring, the same for the canonical link) with step halving, all regions at once:
-    :math:`X^T W X` by batched matrix products. Converged when every step is below 1e-10.
-    The design is the same as a GLM library's given the same columns, so the estimates agree
-    with ``statsmodels.GLM`` to its convergence tolerance (McCullagh & Nelder 1989, ch. 2 and
-    6). Hinge columns are continuous in t: the growth rate changes at a kink and the level
-    does not jump, the shape a step in transmission takes once the infection-to-report delay
-    has smeared it (see :func:`detect_changepoints`).
-    """
-    y = as_nonnegative_counts("counts", counts)
-    rows, n = y.shape
-    if dispersion not in ("quasipoisson", "poisson"):
-        raise ValueError(f"dispersion: must be 'quasipoisson' or 'poisson', got {dispersion!r}")
-    k = _normalise_days("kinks", kinks, rows, n)
-    k = sort_kinks(k)
-    if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
-        raise ValueError("kinks: a day appears twice in one region")
-    shifts = _normalise_days("level_shifts", level_shifts, rows, n)
-    return _fit_kinks(y, k, shifts, dispersion, day_of_week)
-
-
-def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool = True, start: FloatArray | None = None) -> KinkFit:
-    """:func:`fit_kinks` on checked arguments (``k`` sorted), Newton's method from ``start``
-    (coefficients laid out as :attr:`KinkFit.coef`) where given and finite."""
-    rows = y.shape[0]
-    parts = [
-        _kink_rows(y[s], k[s], shifts[s], dispersion, day_of_week,
-                   None if start is None else start[s])
-        for s in (slice(i, min(i + _CHUNK_ROWS, rows)) for i in range(0, max(rows, 1),
-                                                                        _CHUNK_ROWS))
-    ]
-    out = [np.concatenate([p[i] for p in parts], axis=0) for i in range(len(parts[0]))]
-    fit = KinkFit(k, shifts, *out)
-    if start is None:
-        return fit
-    again = np.flatnonzero(~fit.converged & np.all(np.isfinite(start), axis=1))
-    if again.size == 0:  # a warm start that did not converge: once more from the flat one
-        return fit
-    return _kink_replace(fit, again, _fit_kinks(y[again], k[again], shifts[again], dispersion,
-                                                 day_of_week))
-
-
-def _moved_start(coef: FloatArray, moved: IntArray) -> tuple[IntArray, FloatArray]:
-    """Sorted kinks of ``moved`` (each row's kinks of a fit with coefficients ``coef`` at new
-    days, -1 where dropped, any order) and those coefficients carried over to them as a
-    starting point (a dropped kink's slope change 0)."""
-    kmax = moved.shape[1]
-    big = np.iinfo(np.int64).max
-    order = np.argsort(np.where(moved >= 0, moved, big), axis=1, kind="stable")
-    d = np.where(moved >= 0, coef[:, 2 : 2 + kmax], 0.0)
-    start = np.array(coef, copy=True)
-    start[:, 2 : 2 + kmax] = np.take_along_axis(d, order, axis=1)
-    return sort_kinks(moved), start
-
-
-def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool, start: FloatArray | None = None) -> tuple[FloatArray, ...]:
-    rows, n = y.shape
-    x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
-    p = x.shape[2]
-    observed = np.isfinite(y)
-    yy = np.where(observed, y, 0.0)
-    wobs = observed.astype(np.float64)
-    live = np.einsum("rnp,rn->rp", x * x, wobs) > 0  # a column with no observed day is fixed
-    total = yy.sum(axis=1)
-    exists = total > 0
-    beta = np.zeros((rows, p))
-    beta[:, 0] = np.log(np.maximum(total, 0.5) / np.maximum(wobs.sum(axis=1), 1.0))
-
-    def loglik(b: FloatArray, idx: IntArray) -> FloatArray:
-        e = np.einsum("rnp,rp->rn", x[idx], b)
-        with np.errstate(over="ignore", invalid="ignore"):
-            return np.asarray((wobs[idx] * (yy[idx] * e - np.exp(e))).sum(axis=1))
-
-    def info_score(b: FloatArray, idx: IntArray) -> tuple[FloatArray, FloatArray]:
-        xi = x[idx]
-        with np.errstate(over="ignore", invalid="ignore"):  # a diverging row: not converged
-            mu = wobs[idx] * np.exp(np.einsum("rnp,rp->rn", xi, b))
-            info = np.matmul((xi * mu[..., None]).transpose(0, 2, 1), xi)
-            score = np.einsum("rnp,rn->rp", xi, wobs[idx] * yy[idx] - mu)
-        dead = ~live[idx]
-        rr, cc = np.nonzero(dead)
-        info[rr, cc, :] = 0.0
-        info[rr, :, cc] = 0.0
-        info[rr, cc, cc] = 1.0
-        score[rr, cc] = 0.0
-        return info, score
-
-    converged = np.zeros(rows, dtype=bool)
-    active = np.flatnonzero(exists)
-    ll = loglik(beta, np.arange(rows))
-    if start is not None:  # a warm start where it is finite and does better than the flat one
-        warm = np.where(live, np.nan_to_num(start, nan=0.0, posinf=0.0, neginf=0.0), 0.0)
-        ll_warm = loglik(warm, np.arange(rows))
-        use = np.all(np.isfinite(start), axis=1) & np.isfinite(ll_warm) & (ll_warm > ll)
-        beta = np.where(use[:, None], warm, beta)
-        ll = np.where(use, ll_warm, ll)
-    for _ in range(_MAX_NEWTON):
-        if active.size == 0:
-            break
-        info, score = info_score(beta[active], active)
-        finite = np.all(np.isfinite(info), axis=(1, 2)) & np.all(np.isfinite(score), axis=1)
-        if not finite.all():  # a diverging row (means overflowed): stop it, not converged
-            active, info, score = active[finite], info[finite], score[finite]
-            if active.size == 0:
-                break
-        try:
-            step = np.linalg.solve(info, score[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = np.stack([np.linalg.lstsq(a, s, rcond=None)[0] for a, s in
-                             zip(info, score, strict=True)])
-        t = np.ones(active.size)
-        cur = ll[active]
-        new_b = beta[active] + step
-        new_ll = loglik(new_b, active)
-        for _halve in range(30):
-            worse = ~(new_ll >= cur - 1e-9 * np.abs(cur)) | ~np.isfinite(new_ll)
-            if not worse.any():
-                break
-            t = np.where(worse, t / 2.0, t)
-            new_b = beta[active] + t[:, None] * step
-            new_ll = np.where(worse, loglik(new_b, active), new_ll)
-        beta[active] = new_b
-        ll[active] = new_ll
-        done = np.max(np.abs(t[:, None] * step), axis=1) < _NEWTON_TOL
-        converged[active[done]] = True
-        active = active[~done]
-    every = np.arange(rows)
-    info, _ = info_score(beta, every)
-    cov = np.full((rows, p, p), np.nan)
-    ok = converged & exists
-    if ok.any():
-        cov[ok] = np.linalg.inv(info[ok])
-        dead = ~live
-        cov[ok] = np.where((dead[ok][:, :, None] | dead[ok][:, None, :]), 0.0, cov[ok])
-    e = np.einsum("rnp,rp->rn", x, beta)
-    with np.errstate(over="ignore"):
-        mu = np.where(observed, np.exp(e), np.nan)
-    n_obs = observed.sum(axis=1)
-    n_params = live.sum(axis=1) + (kinks >= 0).sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # over: diverged rows
-        pearson = np.where(observed, (yy - np.nan_to_num(mu)) ** 2 / np.nan_to_num(mu), 0.0)
-        phi = pearson.sum(axis=1) / (n_obs - n_params)
-    if dispersion == "poisson":
-        phi = np.ones(rows)
-    else:
-        phi = np.where(n_obs > n_params, np.maximum(phi, 1.0), np.nan)
-    beta = np.where(ok[:, None], beta, np.nan)
-    phi = np.where(ok, phi, np.nan)
-    ll = np.where(ok, loglik(np.nan_to_num(beta), every), np.nan)
-    return beta, cov, phi, ll, mu, ok
-
-
-def _kink_fit_rows(fit: KinkFit, rows: IntArray) -> KinkFit:
-    return KinkFit(*(getattr(fit, f.name)[rows] for f in fields(KinkFit)))
-
-
-def _kink_replace(fit: KinkFit, rows: IntArray, sub: KinkFit) -> KinkFit:
-    out = []
-    for f in fields(KinkFit):
-        a = np.array(getattr(fit, f.name), copy=True)
-        a[rows] = getattr(sub, f.name)
-        out.append(a)
-    return KinkFit(*out)
-
-
 def _kink_scanner(y: FloatArray, fit: KinkFit, day_of_week: bool) -> KinkScanner:
     """Working-response profiles of the kinks at ``fit``: the scanner's ``scan(others)`` gives
     the weighted RSS of the working response ``eta + (y - mu) / mu`` (weights ``mu``) with the
     kinks ``others`` and the drop from adding one more kink at each day."""
     rows, n = y.shape
-    mu = np.where(np.isfinite(fit.mu), fit.mu, 0.0)  # a diverged row's overflowed means: none
+    # a diverged row's overflowed means, or means past 1e100 (a diverging fit; no count
+    # series comes near): no weight, so that no sum of products over them overflows
+    mu = np.where(np.isfinite(fit.mu) & (fit.mu < _HUGE_MEAN), fit.mu, 0.0)
     observed = np.isfinite(y) & (mu > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(observed, np.log(np.where(observed, mu, 1.0))
@@ -1099,10 +838,6 @@ def _kink_scanner(y: FloatArray, fit: KinkFit, day_of_week: bool) -> KinkScanner
     more = _extra_columns(n, rows, fit.level_shifts if fit.level_shifts.shape[1] else None,
                           day_of_week)
     return KinkScanner(z, w, more)
-
-
-def _chunks(rows: IntArray) -> list[IntArray]:
-    return [rows[i : i + _CHUNK_ROWS] for i in range(0, rows.size, _CHUNK_ROWS)]
 
 
 def _kink_effects(fit: KinkFit, si_mean: float, si_sd: float) -> FloatArray:
@@ -1175,25 +910,25 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
                 q = 2 + (sub.kinks >= 0).sum(axis=1) + (sub.level_shifts >= 0).sum(axis=1)
                 phi_b, _ = block_dispersion(y[todo[part]], sub.mu, block, q)
                 scale = np.where(np.isfinite(phi_b), np.maximum(phi_b, scale), scale)
+            drop_one = scanner.scan_drop_one(sub.kinks)  # (rows, kmax, n)
             for j in range(kmax):
                 has = sub.kinks[:, j] >= 0
                 if not has.any():
                     continue
-                fixed = sub.kinks.copy()
-                fixed[:, j] = -1
-                _, gain = scanner.scan(fixed)
-                others = new[part].copy()
+                r = np.flatnonzero(has)  # the rows holding a kink j
+                gain = drop_one[r, j]
+                others = new[part[r]].copy()
                 others[:, j] = -1
                 ok = kink_allowed(others, n, min_segment)
                 best = np.argmax(np.where(ok, gain, -1.0), axis=1)
-                r = np.arange(part.size)
-                move = has & ok[r, best]
-                new[part, j] = np.where(move, best, new[part, j])
-                worth = gain[r, np.where(move, best, 0)] / scale
-                worth = np.where(move, worth, np.inf)
-                lower = worth < weakest[part]
-                weakest[part] = np.where(lower, worth, weakest[part])
-                weakest_at[part] = np.where(lower, j, weakest_at[part])
+                at = np.arange(r.size)
+                move = ok[at, best]
+                pr = part[r]
+                new[pr, j] = np.where(move, best, new[pr, j])
+                worth = np.where(move, gain[at, np.where(move, best, 0)] / scale[r], np.inf)
+                lower = worth < weakest[pr]
+                weakest[pr] = np.where(lower, worth, weakest[pr])
+                weakest_at[pr] = np.where(lower, j, weakest_at[pr])
         drop = weakest < penalty * 2.0 * log_n[todo]
         r = np.flatnonzero(drop)
         new[r, weakest_at[r]] = -1
@@ -1221,13 +956,14 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
     the connected run of days around each estimate whose profile statistic is within
     ``crit``."""
     scanner = _kink_scanner(y[idx], sub, True)
+    drop_one = scanner.scan_drop_one(sub.kinks)
     for j in range(sub.kinks.shape[1]):
         rr = np.flatnonzero(sub.kinks[:, j] >= 0)
         if rr.size == 0:
             continue
         others = sub.kinks[rr].copy()
         others[:, j] = -1
-        _, gain = scanner.scan(others, rr)
+        gain = drop_one[rr, j]
         ok = kink_allowed(others, n, min_segment)
         here = sub.kinks[rr, j]
         top = gain[np.arange(rr.size), here]
@@ -1239,94 +975,6 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
         gap_right = np.where(~inset & (day > here[:, None]), day, n).min(axis=1)
         lower[idx[rr], j] = gap_left + 1
         upper[idx[rr], j] = gap_right - 1
-
-
-def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
-                     n_params: IntArray) -> tuple[FloatArray, FloatArray]:
-    """Dispersion of moving block sums of the residuals (overlapping batch means) and its
-    degrees of freedom.
-
-    Over every window of ``block`` consecutive days ``j``, ``S_j = sum (y_t - mu_t)`` and
-    ``M_j = sum mu_t``; ``phi_B = sum_j S_j^2 / sum_j M_j * m / (m - q)`` with
-    ``m = n / block`` and ``q`` the regression parameters other than the weekday effects
-    (which nearly cancel within a window). Residuals correlated over days (the epidemic's own
-    noise, a transition that is not exactly a kink, growth drifting within a segment) leave
-    the daily Pearson dispersion unchanged but raise ``phi_B``: it estimates the long-run
-    variance that a slope's variance depends on (overlapping batch means, Meketon and
-    Schmeiser 1984; the Newey-West long-run variance with a Bartlett kernel of width
-    ``block`` is the same estimator up to end effects). Degrees of freedom
-    ``1.5 m - q`` (overlapping batch means have about 2/3 the variance of ``m`` separate
-    batches, Meketon and Schmeiser 1984). NaN where ``m <= q``.
-    """
-    rows, n = y.shape
-    obs = np.isfinite(y) & np.isfinite(mu)
-    res = np.where(obs, np.nan_to_num(y) - np.nan_to_num(mu), 0.0)
-    mm = np.where(obs, np.nan_to_num(mu), 0.0)
-    if block > n:
-        return np.full(rows, np.nan), np.full(rows, np.nan)
-    s = prefix_sums(res)
-    e = prefix_sums(mm)
-    s = s[:, block:] - s[:, :-block]
-    e = e[:, block:] - e[:, :-block]
-    m = n / block
-    q = n_params.astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        phi = (s * s).sum(axis=1) / e.sum(axis=1) * m / (m - q)
-    ok = m > q
-    return np.where(ok, phi, np.nan), np.where(ok, 1.5 * m - q, np.nan)
-
-
-def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
-    """Inverse information of :class:`KinkFit`'s coefficients with the kink dates free (unit
-    dispersion): the block of ``(X, V)' W (X, V)`` inverted, ``W = diag(mu)``, where ``V`` has
-    one column per kink, the derivative of the linear predictor with respect to its date,
-    ``-(d_k / n) 1(t > tau_k)`` (Muggeo's ``V``).
-
-    Treating each break date as a parameter of the likelihood (its derivative is defined
-    except at the break itself) gives standard errors of the slopes that include the
-    uncertainty of the date (Muggeo 2003, section 2; the covariance his segmented regression
-    reports). The coefficients' block of the inverse is at least the conditional covariance
-    :attr:`KinkFit.covariance` (a block of an inverse information exceeds the inverse of the
-    block). Rows that did not converge are NaN; a kink whose date column is collinear with the
-    rest keeps the conditional covariance.
-    """
-    rows, kmax = fit.kinks.shape
-    n = fit.mu.shape[1]
-    out = np.array(fit.covariance, copy=True)
-    if kmax == 0:
-        return out
-    t = np.arange(n)
-    for idx in _chunks(np.flatnonzero(fit.converged & (fit.kinks >= 0).any(axis=1))):
-        kinks = fit.kinks[idx]
-        shifts = fit.level_shifts[idx]
-        x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
-        p = x.shape[2]
-        d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
-        has = kinks >= 0
-        v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :]) & has[:, None, :]))
-        xv = np.concatenate([x, v], axis=2)
-        w = np.nan_to_num(fit.mu[idx], nan=0.0)
-        info = np.matmul((xv * w[..., None]).transpose(0, 2, 1), xv)
-        diag = np.einsum("rpp->rp", info)
-        dead = diag <= 1e-12 * np.maximum(diag.max(axis=1, keepdims=True), 1e-300)
-        rr, cc = np.nonzero(dead)
-        info[rr, cc, :] = 0.0
-        info[rr, :, cc] = 0.0
-        info[rr, cc, cc] = 1.0
-        with np.errstate(invalid="ignore", over="ignore"):
-            try:
-                inv = np.linalg.inv(info)
-            except np.linalg.LinAlgError:
-                inv = np.linalg.pinv(info, hermitian=True)
-        block = inv[:, :p, :p]
-        block = np.where(dead[:, :p, None] | dead[:, None, :p], 0.0, block)
-        base = fit.covariance[idx]
-        # a date column collinear with the others (a level shift on the kink's day) or a
-        # numerically useless inverse: keep the conditional covariance
-        bad = ~np.all(np.isfinite(block), axis=(1, 2)) | np.any(
-            np.einsum("rpp->rp", block) < np.einsum("rpp->rp", base) * (1 - 1e-6), axis=1)
-        out[idx] = np.where(bad[:, None, None], base, block)
-    return out
 
 
 def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,

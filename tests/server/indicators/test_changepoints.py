@@ -208,6 +208,48 @@ def test_scan_kinks_grouped_equals_the_full_design() -> None:
                             rtol=1e-8)
 
 
+def _wls_rss(z: np.ndarray, w: np.ndarray, x: np.ndarray) -> float:
+    """Weighted residual sum of squares by numpy.linalg.lstsq (LAPACK gelsd)."""
+    sw = np.sqrt(w)
+    coef = np.linalg.lstsq(x * sw[:, None], z * sw, rcond=None)[0]
+    return float(np.sum((z * sw - (x * sw[:, None]) @ coef) ** 2))
+
+
+def test_scanner_leave_one_out_rss_and_drop_costs_match_direct_fits() -> None:
+    # KinkScanner.scan_drop_one (a rank-one downdate), .rss and .drop_costs against
+    # numpy.linalg.lstsq on the explicit designs: the leave-one-out gains are those of a scan
+    # with that kink removed, rss that of the design, a drop cost the rise of the RSS
+    from server.indicators._segmentation import KinkScanner
+
+    rng = np.random.default_rng(27)
+    n = 100
+    z = rng.normal(size=(3, n)).cumsum(axis=1)
+    w = rng.uniform(0.5, 2.0, size=(3, n))
+    weekday = np.broadcast_to(
+        (np.arange(n)[:, None] % 7 == np.arange(1, 7)[None, :]).astype(float), (3, n, 6))
+    kinks = np.array([[25, 60, -1], [30, 50, 75], [-1, -1, -1]])
+    scanner = KinkScanner(z, w, weekday)
+    drop = scanner.scan_drop_one(kinks)
+    rss = scanner.rss(kinks)
+    for i in range(3):
+        mine = kinks[i][kinks[i] >= 0]
+        x = line_design(n, mine[None, :], weekday[i : i + 1])[0]
+        assert_allclose(rss[i], _wls_rss(z[i], w[i], x), rtol=1e-8)
+        if mine.size == 0:
+            assert np.all(drop[i] == 0)
+            continue
+        costs = scanner.drop_costs(mine[None, :], np.array([i]))[0]
+        for j in range(mine.size):
+            rest = np.delete(mine, j)
+            xr = line_design(n, rest[None, :], weekday[i : i + 1])[0]
+            base = _wls_rss(z[i], w[i], xr)
+            assert_allclose(costs[j], base - rss[i], rtol=1e-7)
+            for tau in (10, 45, 90):
+                h = np.maximum(np.arange(n) - tau, 0) / n
+                direct = base - _wls_rss(z[i], w[i], np.column_stack([xr, h]))
+                assert_allclose(drop[i, j, tau], direct, rtol=1e-6, atol=1e-9)
+
+
 @pytest.mark.parametrize("rho", [0.0, 0.5])
 def test_block_dispersion_matches_the_long_run_variance_of_an_ar1(rho: float) -> None:
     # y = mu + sqrt(mu) x with x a unit-variance AR(1): the variance of a sum of B consecutive
