@@ -284,7 +284,7 @@ _METHODS: tuple[Kind, ...] = (
 _NAMED: tuple[Kind, ...] = (
     from_named_builder(
         seasonal_series, name="seasonal_intensity", default_measure="gp_ari",
-        measure_kinds=_COUNTS, carry=False, measure_param="measure",
+        measure_kinds=_COUNTS, carry=False, measure_param="measure", history=True,
         help="level of the newest complete ISO week by the moving epidemic method (0 below the "
              "epidemic threshold .. 4 very high); its own params (docs/rules.md)"),
     from_named_builder(
