@@ -340,7 +340,7 @@ class _History:
     morning only slices the arrays known so far."""
 
     #: The series' arrays kept (bool ones start False, the others missing).
-    KEYS = ("estimate", "lower", "upper", "count", "age_days", "no_baseline", "invalid")
+    KEYS = ("estimate", "lower", "upper", "count", "age_days", "no_baseline", "invalid", "size")
 
     def __init__(self, base: DistrictData, ruleset: Ruleset,
                  tree: Mapping[str, str | None] | None, names: Sequence[str], n_days: int,

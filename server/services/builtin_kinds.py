@@ -304,7 +304,7 @@ _NAMED: tuple[Kind, ...] = (
 # A kind with its builder in server/services/testing_indicators.py, listed after the others.
 _TESTING_CHANGE = Kind(
     name="testing_change", builder=testing_change_series, default_measure="positives",
-    measure_kinds=_COUNTS, carry=False, check=_testing_check,
+    measure_kinds=_COUNTS, carry=False, check=_testing_check, history=True,
     params=(Param(name="denominator", type="measure", default="tests", measure_kinds=_COUNTS,
                   help="the tests the measure is positive among"),
             Param(name="compare", type=int, default=7, minimum=1, maximum=7,

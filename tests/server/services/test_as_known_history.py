@@ -58,13 +58,13 @@ def _same(a: np.ndarray | None, b: np.ndarray | None) -> None:
                                    np.asarray(b, dtype=np.float64), rtol=0, atol=1e-9)
 
 
-def test_seasonal_intensity_is_a_history_kind() -> None:
-    rs = _policy("influenza.yaml")
-    assert history_indicators(rs) == ("flu_intensity",)
+def test_seasonal_intensity_and_testing_change_are_history_kinds() -> None:
+    assert history_indicators(_policy("influenza.yaml")) == ("flu_intensity",)
+    assert history_indicators(_policy("county.yaml")) == ("testing_change",)
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("policy", POLICIES)
+@pytest.mark.parametrize("policy", (*POLICIES, "county.yaml"))
 def test_replay_equals_each_mornings_evaluation(demo: Database, policy: str) -> None:
     rs = _policy(policy)
     (name,) = history_indicators(rs)
@@ -76,7 +76,7 @@ def test_replay_equals_each_mornings_evaluation(demo: Database, policy: str) -> 
         _view, replayed = as_known_indicators(s, rs, first, last, lambda _n: None, zone)
         series = replayed[name]
         known = np.flatnonzero(np.isfinite(series.estimate).any(axis=0))
-        assert known.size > 60  # the demo's 150 days, less the days before a week completes
+        assert known.size > 60  # the demo's 150 days, less the days before a week or a change
         last_day = (last - first).days
         # the first morning with a value, a week later, each weekday of one week of the season,
         # and the last two mornings
@@ -95,9 +95,10 @@ def test_replay_equals_each_mornings_evaluation(demo: Database, policy: str) -> 
             daily = district_indicators(data, rs, names=[name])[name]
             col = (day - span[0]).days
             _same(series.estimate[:, t], daily.estimate[:, col])
-            _same(series.age_days[:, t], daily.age_days[:, col])  # type: ignore[index]
-            _same(series.no_baseline[:, t],  # type: ignore[index]
-                  daily.no_baseline[:, col])  # type: ignore[index]
+            for key in ("age_days", "no_baseline", "size", "lower", "upper"):
+                mine, theirs = getattr(series, key), getattr(daily, key)
+                _same(None if mine is None else mine[:, t],
+                      None if theirs is None else theirs[:, col])
             assert not (daily.invalid is not None and daily.invalid[:, col].any())
             compared += int(np.isfinite(daily.estimate[:, col]).sum())
         assert compared > 0  # levels were compared, not only missing values
