@@ -404,9 +404,11 @@ class _History:
         out = {}
         for name in self.names:
             got = self.out.get(name, {})
-            out[name] = IndicatorSeries(  # type: ignore[arg-type]
-                **{key: got.get(key) for key in self.KEYS if key != "estimate"},
-                estimate=got.get("estimate", np.full(self.shape, np.nan)))
+            out[name] = IndicatorSeries(
+                estimate=got.get("estimate", np.full(self.shape, np.nan)),
+                lower=got.get("lower"), upper=got.get("upper"), count=got.get("count"),
+                age_days=got.get("age_days"), no_baseline=got.get("no_baseline"),
+                invalid=got.get("invalid"), size=got.get("size"))
         return out
 
 
