@@ -238,6 +238,8 @@ def testing_changes_as_known(
     best = np.full((rows, n), -np.inf)
     best_start = np.full((rows, n), -1, dtype=np.int64)
     for j, m in enumerate(range(min_days, compare + 1)):
+        if m > n:  # no start has m days yet
+            continue
         on_day = scores[j, :, : n - m + 1]  # start s judged on day s + m - 1
         best_view, start_view = best[:, m - 1 :], best_start[:, m - 1 :]
         better = on_day > best_view

@@ -46,7 +46,11 @@ from server.services.district_nowcasts import (
     pool_basis,
 )
 from server.services.hierarchy import hierarchy
-from server.services.indicator_kinds import measure_needs, sample_indicators
+from server.services.indicator_kinds import (
+    history_indicators,
+    measure_needs,
+    sample_indicators,
+)
 from server.services.level_data import at_level
 from server.services.stored_values import usable
 from server.store.models import Measure, Region
@@ -123,9 +127,12 @@ def arrival_rows(
 def _stack(
     base: DistrictData, snaps: dict[str, NDArray[np.float64]], n: int,
     nowcasts: dict[str, NowcastInput] | None = None, needs: MeasureNeeds | None = None,
+    dates: NDArray[np.datetime64] | None = None, bad: dict[str, NDArray[np.bool_]] | None = None,
 ) -> DistrictData:
     """A DistrictData whose regions are ``n`` stacked as-known windows of ``base``'s districts
-    (of the measures ``needs``; default those of earlier releases)."""
+    (of the measures ``needs``; default those of earlier releases), on ``dates`` (default: the
+    first days of ``base``, for indicators that read no calendar). ``bad``: the windows are
+    cleaned already (:func:`usable`) and these are their unusable values."""
     needs = needs or MeasureNeeds()
     w = next(iter(snaps.values())).shape[1]
     served = np.kron(np.eye(n), base.served)
@@ -134,7 +141,10 @@ def _stack(
     cleaned: dict[str, NDArray[np.float64]] = {}
     invalid: dict[str, NDArray[np.bool_]] = {}
     for m in (*needs.district, *needs.area, *needs.plant):
-        cleaned[m], invalid[m], _why = usable(snaps[m], count=m not in needs.plant)
+        if bad is not None:
+            cleaned[m], invalid[m] = snaps[m], bad[m]
+        else:
+            cleaned[m], invalid[m], _why = usable(snaps[m], count=m not in needs.plant)
     plant_bad = np.zeros((base.plant_population.size * n, w), dtype=bool)
     for m in needs.plant:
         plant_bad |= invalid[m]
@@ -147,7 +157,7 @@ def _stack(
         regions=tuple(f"{k}:{c}" for k in range(n) for c in base.regions),
         levels=base.levels * n,
         population=np.tile(base.population, n),
-        dates=base.dates[:w],
+        dates=base.dates[:w] if dates is None else dates,
         district={m: snaps[m] for m in needs.district},
         area_of_district={m: snaps[m] for m in needs.area},
         plant={m: snaps[m] for m in needs.plant},
@@ -231,6 +241,10 @@ def as_known_indicators(
     bounds = np.searchsorted(rows.known_day[order], np.arange(-1, n_days), side="right")
     w = WINDOW_DAYS
     wanted = sorted(ruleset.used_indicators())
+    history = _History(base, ruleset, tree, history_indicators(ruleset), n_days, len(view.regions))
+    if history.names:
+        history.start(rows, measures, needs, [size[group_of[m]] for m in measures], pick)
+    windowed = [n for n in wanted if n not in history.names]
     parts: dict[str, list[NDArray[np.float64]]] = {
         f"{n}.{k}": [] for n in wanted
         for k in ("estimate", "lower", "upper", "count", "age", "nowcast", "nowcast_days")
@@ -258,6 +272,13 @@ def as_known_indicators(
                 if m in needs.area:
                     window = np.where(pick[:, None] >= 0, window[np.maximum(pick, 0)], np.nan)
                 snaps[m].append(window)
+            if history.names:
+                history.apply(take)
+                if bounds[t + 1] > 0:  # nothing known yet: unknown
+                    history.morning(t)
+        if not windowed:
+            tick(len(days))
+            continue
         stacked = {m: np.concatenate(v, axis=0) for m, v in snaps.items()}
         n = len(days)
         cutoffs = np.asarray(days, dtype=np.int64) + 1
@@ -266,7 +287,8 @@ def as_known_indicators(
             for m, tri in triangles.items()
         }
         series = district_indicators(
-            at_level(_stack(base, stacked, n, nowcasts, needs), ruleset, tree, blocks=n), ruleset)
+            at_level(_stack(base, stacked, n, nowcasts, needs), ruleset, tree, blocks=n), ruleset,
+            names=windowed)
         for name, s in series.items():
             r = len(view.regions)
             est = s.estimate.reshape(n, r, w)
@@ -291,8 +313,8 @@ def as_known_indicators(
                 if arr is not None:
                     parts[f"{name}.{key}"].append(arr.reshape(n, r, w)[:, :, -1])
         tick(n)
-    indicators = {}
-    for name in wanted:
+    indicators = history.series()
+    for name in windowed:
         def get(key: str, name: str = name) -> NDArray[np.float64] | None:
             got = parts[f"{name}.{key}"]
             return np.concatenate(got, axis=0).T.copy() if got else None
@@ -306,6 +328,88 @@ def as_known_indicators(
         )
     dates = np.arange(np.datetime64(first, "D"), np.datetime64(end, "D") + 1)
     return replace(view, dates=dates, as_of=None), indicators
+
+
+class _History:
+    """The as-known values of the indicators whose kinds need their calendar and a long history
+    (:attr:`~server.services.kind_model.Kind.history`): each morning ``t`` they are computed
+    over every day from the first up to ``t`` with the data known that morning, as the daily
+    evaluation of that morning computes them, and day ``t``'s column is kept.
+
+    The stored values are checked once per row (:func:`usable` is elementwise), so each
+    morning only slices the arrays known so far."""
+
+    #: The series' arrays kept (bool ones start False, the others missing).
+    KEYS = ("estimate", "lower", "upper", "count", "age_days", "no_baseline", "invalid", "size")
+
+    def __init__(self, base: DistrictData, ruleset: Ruleset,
+                 tree: Mapping[str, str | None] | None, names: Sequence[str], n_days: int,
+                 n_regions: int) -> None:
+        self.base, self.ruleset, self.tree, self.names = base, ruleset, tree, tuple(names)
+        self.first = np.datetime64(base.dates[0], "D") if base.dates.size else None
+        self.out: dict[str, dict[str, NDArray]] = {}  # type: ignore[type-arg]
+        self.shape = (n_regions, n_days)
+
+    def start(self, rows: ArrivalRows, measures: list[str], needs: MeasureNeeds,
+              sizes: list[int], pick: NDArray[np.int64]) -> None:
+        """Check every row once; no value known yet (``sizes``: regions of each measure)."""
+        self.rows, self.measures, self.needs, self.pick = rows, measures, needs, pick
+        plant = np.isin(rows.measure, [measures.index(m) for m in needs.plant])
+        self.value = np.full(rows.value.shape, np.nan)
+        self.bad = np.zeros(rows.value.shape, dtype=bool)
+        for is_plant in (False, True):
+            sel = plant == is_plant
+            self.value[sel], self.bad[sel], _why = usable(rows.value[sel], count=not is_plant)
+        n_days = self.shape[1]
+        self.known = [np.full((n, n_days), np.nan) for n in sizes]
+        self.known_bad = [np.zeros((n, n_days), dtype=bool) for n in sizes]
+
+    def apply(self, take: NDArray[np.int64]) -> None:
+        """Apply the rows ``take`` (in arrival order) that became known this morning."""
+        r = self.rows
+        for k in range(len(self.measures)):
+            sel = take[r.measure[take] == k]
+            self.known[k][r.row[sel], r.col[sel]] = self.value[sel]
+            self.known_bad[k][r.row[sel], r.col[sel]] = self.bad[sel]
+
+    def morning(self, t: int) -> None:
+        """Compute the indicators on morning ``t`` from the values known then."""
+        assert self.first is not None
+        values, bad = {}, {}
+        pick = self.pick
+        for k, m in enumerate(self.measures):
+            v, b = self.known[k][:, : t + 1], self.known_bad[k][:, : t + 1]
+            if m in self.needs.area:
+                v = np.where(pick[:, None] >= 0, v[np.maximum(pick, 0)], np.nan)
+                b = (pick[:, None] >= 0) & b[np.maximum(pick, 0)]
+            values[m], bad[m] = v, b
+        dates = np.arange(self.first, self.first + np.timedelta64(t + 1, "D"))
+        data = replace(_stack(self.base, values, 1, None, self.needs, dates=dates, bad=bad),
+                       regions=self.base.regions)
+        series = district_indicators(at_level(data, self.ruleset, self.tree), self.ruleset,
+                                     names=self.names)
+        for name, s in series.items():
+            got = self.out.setdefault(name, {})
+            for key in self.KEYS:
+                arr = getattr(s, key)
+                if arr is None:
+                    continue
+                if key not in got:
+                    got[key] = (np.zeros(self.shape, dtype=bool) if arr.dtype == bool
+                                else np.full(self.shape, np.nan))
+                got[key][:, t] = arr[:, -1]
+
+    def series(self) -> dict[str, IndicatorSeries]:
+        """The as-known series of every such indicator (missing on mornings not computed)."""
+        out = {}
+        for name in self.names:
+            got = self.out.get(name, {})
+            out[name] = IndicatorSeries(
+                estimate=got.get("estimate", np.full(self.shape, np.nan)),
+                lower=got.get("lower"), upper=got.get("upper"), count=got.get("count"),
+                age_days=got.get("age_days"), no_baseline=got.get("no_baseline"),
+                invalid=got.get("invalid"), size=got.get("size"))
+        return out
 
 
 def area_parents(session: Session, base: DistrictData) -> dict[str, str]:

@@ -284,7 +284,7 @@ _METHODS: tuple[Kind, ...] = (
 _NAMED: tuple[Kind, ...] = (
     from_named_builder(
         seasonal_series, name="seasonal_intensity", default_measure="gp_ari",
-        measure_kinds=_COUNTS, carry=False, measure_param="measure",
+        measure_kinds=_COUNTS, carry=False, measure_param="measure", history=True,
         help="level of the newest complete ISO week by the moving epidemic method (0 below the "
              "epidemic threshold .. 4 very high); its own params (docs/rules.md)"),
     from_named_builder(
@@ -304,7 +304,7 @@ _NAMED: tuple[Kind, ...] = (
 # A kind with its builder in server/services/testing_indicators.py, listed after the others.
 _TESTING_CHANGE = Kind(
     name="testing_change", builder=testing_change_series, default_measure="positives",
-    measure_kinds=_COUNTS, carry=False, check=_testing_check,
+    measure_kinds=_COUNTS, carry=False, check=_testing_check, history=True,
     params=(Param(name="denominator", type="measure", default="tests", measure_kinds=_COUNTS,
                   help="the tests the measure is positive among"),
             Param(name="compare", type=int, default=7, minimum=1, maximum=7,

@@ -20,7 +20,7 @@ indicator value built from it ``invalid`` (the engine treats it as unknown and e
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Collection
 
 import numpy as np
 from numpy.typing import NDArray
@@ -137,9 +137,11 @@ def on_nowcast(
 BUILDERS: dict[str, Callable[[DistrictData, Ruleset], IndicatorSeries]] = {}
 
 
-def district_indicators(data: DistrictData, ruleset: Ruleset) -> dict[str, IndicatorSeries]:
-    """The indicator series ``ruleset`` uses, computed for every district at once
-    (:func:`server.services.indicator_kinds.compute`)."""
+def district_indicators(
+    data: DistrictData, ruleset: Ruleset, names: Collection[str] | None = None
+) -> dict[str, IndicatorSeries]:
+    """The indicator series ``ruleset`` uses (of ``names`` only, when given), computed for
+    every district at once (:func:`server.services.indicator_kinds.compute`)."""
     from server.services.indicator_kinds import compute  # it imports this module
 
-    return compute(data, ruleset)
+    return compute(data, ruleset, names=names)

@@ -27,7 +27,7 @@ computed.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 from types import MappingProxyType
 
 from rules import FieldError, IndicatorSeries, IndicatorSpec, Ruleset
@@ -58,6 +58,7 @@ __all__ = [
     "check_indicator",
     "compute",
     "describe",
+    "history_indicators",
     "indicator_check",
     "known_measures",
     "measure_needs",
@@ -233,23 +234,35 @@ def measure_needs(
                         area=tuple(sorted(found["area"])), plant=tuple(sorted(found["plant"])))
 
 
-def sample_indicators(ruleset: Ruleset) -> tuple[str, ...]:
-    """The indicators of ``ruleset`` that exist on sample days only (:attr:`Kind.on_samples`)."""
+def _of_kinds(ruleset: Ruleset, attr: str) -> tuple[str, ...]:
     out = []
     for name in ruleset.used_indicators():
         try:
             declared = _declared(ruleset.indicator(name))
         except FieldError:
             continue
-        if declared is not None and KINDS[declared[0]].on_samples:
+        if declared is not None and getattr(KINDS[declared[0]], attr):
             out.append(name)
     return tuple(out)
 
 
+def sample_indicators(ruleset: Ruleset) -> tuple[str, ...]:
+    """The indicators of ``ruleset`` that exist on sample days only (:attr:`Kind.on_samples`)."""
+    return _of_kinds(ruleset, "on_samples")
+
+
+def history_indicators(ruleset: Ruleset) -> tuple[str, ...]:
+    """The indicators of ``ruleset`` that need their calendar and a long history
+    (:attr:`Kind.history`)."""
+    return _of_kinds(ruleset, "history")
+
+
 def compute(
-    data: DistrictData, ruleset: Ruleset, measures: Mapping[str, str] | None = None
+    data: DistrictData, ruleset: Ruleset, measures: Mapping[str, str] | None = None,
+    names: Collection[str] | None = None,
 ) -> dict[str, IndicatorSeries]:
-    """The indicator series ``ruleset`` uses, computed for every district at once.
+    """The indicator series ``ruleset`` uses (of ``names`` only, when given), computed for
+    every district at once.
 
     Declarations are checked against :func:`known_measures` of ``measures`` (default: the
     store's catalogue as read into ``data``); the measures must have been read into ``data``
@@ -257,6 +270,8 @@ def compute(
     """
     catalogue = data.measure_kinds if measures is None else measures
     resolved = _resolved(ruleset, known_measures(catalogue))
+    if names is not None:
+        resolved = {n: ind for n, ind in resolved.items() if n in names}
     unknown = [n for n, ind in resolved.items() if ind is None and n not in BUILDERS]
     if unknown:
         raise UnknownIndicatorError(sorted(unknown))

@@ -137,6 +137,9 @@ class Kind:
     ``on_samples``). ``builder`` computes it for every district. ``reads``: measures read
     whatever the declaration names (for builders that read fixed measures);
     ``open_params``: parameters the kind does not list pass unchecked (its builder checks them).
+    ``history``: its value on a day needs the calendar dates of its days and more history than
+    the as-known replay's trailing window (e.g. past seasons): the replay computes it each
+    morning from everything known that morning (:mod:`server.services.as_known_history`).
     """
 
     name: str
@@ -157,6 +160,7 @@ class Kind:
     #: A parameter that names the measure (a name-based builder's own ``params: {measure:}``):
     #: given there, it is the measure the declaration reads.
     measure_param: str | None = None
+    history: bool = False
 
     def param(self, name: str) -> Param:
         for p in self.params:
@@ -227,7 +231,7 @@ def from_named_builder(
     builder: Callable[[DistrictData, Ruleset], IndicatorSeries], *, name: str, help: str,
     default_measure: str, measure_kinds: tuple[str, ...], level: Level = "district",
     params: tuple[Param, ...] = (), carry: bool = True, on_samples: bool = False,
-    reads: MeasureNeeds | None = None, measure_param: str | None = None,
+    reads: MeasureNeeds | None = None, measure_param: str | None = None, history: bool = False,
 ) -> Kind:
     """A kind from a :data:`~server.services.district_indicators.BUILDERS`-style function,
     which reads its parameters as ``ruleset.indicator(name).params``; it sees the declaration
@@ -237,7 +241,7 @@ def from_named_builder(
     the measures of earlier releases) besides the declared measure; ``carry`` holds the newest
     value on days without one, as ``carry_forward`` in a BUILDERS line does. A builder that
     takes its measure from a parameter names it as ``measure_param``: the declared ``measure``
-    is given there unless the parameter is set.
+    is given there unless the parameter is set; ``history`` as :attr:`Kind.history`.
     """
     def build(d: DistrictData, ind: Indicator) -> IndicatorSeries:
         if ind.ruleset is None:
@@ -249,4 +253,5 @@ def from_named_builder(
     return Kind(name=name, help=help, default_measure=default_measure,
                 measure_kinds=measure_kinds, level=level, params=params, builder=build,
                 carry=carry, on_samples=on_samples, reads=reads or MeasureNeeds(),
-                open_params=True, in_estimate=False, measure_param=measure_param)
+                open_params=True, in_estimate=False, measure_param=measure_param,
+                history=history)

@@ -95,6 +95,17 @@ def test_each_day_depends_on_the_days_up_to_it_only() -> None:
         np.testing.assert_allclose(part.tests_ratio[0], full.tests_ratio[0, : cut + 1])
 
 
+def test_a_series_shorter_than_the_compare_window_knows_no_change() -> None:
+    """A database of a few days (a fresh install, an early as-known morning): no change is
+    known, the same days as a longer series has (the cut test above, down to 1 day)."""
+    tests, pos = _tests(3, 90)
+    full = known_changes(tests, pos)
+    for days in range(1, 9):
+        part = known_changes(tests[:, :days], pos[:, :days])
+        assert (part.change_day[0] == -1).all() or np.isnan(part.since).all()
+        np.testing.assert_array_equal(part.change_day[0], full.change_day[0, :days])
+
+
 def test_intervals_agree_with_statsmodels() -> None:
     # without a dispersion above 1 (a flat Poisson series), the tests' interval is the Poisson
     # GLM's; the odds ratio's is Woolf's as statsmodels computes it
