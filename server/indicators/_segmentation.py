@@ -773,14 +773,22 @@ def screen_kinks(
                        for f in ("breaks", "rss", "criterion", "n_breaks", "dispersion")))
 
 
-def line_design(n: int, kinks: IntArray, extra: FloatArray | None = None) -> FloatArray:
+def line_design(n: int, kinks: IntArray, extra: FloatArray | None = None,
+                ramp: FloatArray | None = None) -> FloatArray:
     """``[1, (t - (n-1)/2) / n, hinges of kinks (zero column where -1), extra...]``:
-    shape (regions, n, 2 + k + extra)."""
+    shape (regions, n, 2 + k + extra). With ``ramp`` (length ``2 n + 1``, ``ramp[n + u]``
+    the smoothed hinge ``K(u)`` at ``u = t - tau``) each hinge column is ``K(t - tau) / n``
+    instead of ``(t - tau)_+ / n``."""
     rows, k = kinks.shape
     t = np.arange(n, dtype=np.float64)
     base = np.stack([np.ones(n), (t - 0.5 * (n - 1)) / n], axis=1)
     cols = [np.broadcast_to(base, (rows, n, 2))]
-    if k:
+    if k and ramp is not None:
+        if ramp.shape != (2 * n + 1,):
+            raise ValueError(f"ramp: expected shape ({2 * n + 1},), got {ramp.shape}")
+        idx = n + np.arange(n)[None, :, None] - np.where(kinks >= 0, kinks, 0)[:, None, :]
+        cols.append(np.where(kinks[:, None, :] >= 0, ramp[idx] / n, 0.0))
+    elif k:
         h = hinge(n, np.where(kinks >= 0, kinks, n))  # (rows, k, n)
         cols.append(h.transpose(0, 2, 1))
     if extra is not None:

@@ -68,6 +68,7 @@ from server.indicators.kinkfit import (
     fit_kinks,
     hac_covariance,
     kink_design,
+    smooth_ramp,
 )
 from server.indicators.serial_interval import growth_to_reproduction
 
@@ -613,6 +614,8 @@ def detect_changepoints(
     dependence_block: int | None = 42,
     min_change: float = 0.1,
     date_uncertainty: bool = True,
+    smoothing: bool | None = None,
+    delay_sd: float | None = None,
 ) -> ChangePoints:
     """Find breaks in the growth of daily counts and estimate each segment's growth and R.
 
@@ -652,6 +655,20 @@ def detect_changepoints(
         Kink model only: the intervals of the growth rates and their changes allow for the
         uncertainty of the break dates (:func:`date_aware_covariance`, Muggeo 2003); False
         conditions on the dates.
+    smoothing : bool, optional
+        Kink model only (needs ``infection_delay``): once the kinks and their dates are found,
+        each hinge is replaced by the hinge smoothed by the generation interval and the
+        infection-to-report delay (:func:`server.indicators.kinkfit.smooth_ramp`) and the
+        model refitted at the same dates; the growth rates, their changes and intervals
+        (Muggeo's date columns become ``-d_k K'(t - tau_k) / n``) come from that fit. The
+        break dates, their intervals and the number of breaks do not change. Default
+        (None): on for ``shape='kink'`` with an ``infection_delay`` (coverage of the growth
+        change 87.2 -> 88.7 % on validation seeds 300-349, see docs/estimate.md), off
+        otherwise.
+    delay_sd : float, optional
+        SD of the gamma infection-to-report delay for ``smoothing`` (default
+        ``0.4 * infection_delay``, an assumed coefficient of variation: common practice, no
+        source).
 
     Returns
     -------
@@ -707,16 +724,28 @@ def detect_changepoints(
     min_change = float(min_change)
     if not np.isfinite(min_change) or min_change < 0:
         raise ValueError(f"min_change: must be a finite number >= 0, got {min_change!r}")
+    ramp = None
+    if smoothing is None:
+        smoothing = shape == "kink" and infection_delay is not None
+    if smoothing:
+        if shape != "kink" or infection_delay is None:
+            raise ValueError("smoothing: needs shape='kink' and an infection_delay")
+        sd = 0.4 * infection_delay if delay_sd is None else float(delay_sd)
+        if not np.isfinite(sd) or sd < 0:
+            raise ValueError(f"delay_sd: must be a finite number >= 0, got {delay_sd!r}")
+        ramp = smooth_ramp(n, si_mean, si_sd, infection_delay, sd)
     if shape == "kink":
         kfit, kscreen, kprof = _detect_kinks(
             y, min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
             dispersion=dispersion, level=level, level_shifts=level_shifts,
             block=dependence_block, min_change=min_change, si_mean=si_mean, si_sd=si_sd)
+        if ramp is not None:
+            kfit = _smooth_kinks(y, kfit, ramp, dispersion)
         lag = None if infection_delay is None else (
             infection_delay - (si_sd**2 + si_mean**2) / (2.0 * si_mean))
         return _assemble_kinks(kfit, kscreen, kprof, level, si_mean, si_sd, lag,
                                y=y, block=dependence_block,
-                               date_free=bool(date_uncertainty))
+                               date_free=bool(date_uncertainty), ramp=ramp)
     screening = screen_breaks(y, min_segment=min_segment, max_breaks=max_breaks,
                               penalty=penalty)
     kmax = screening.breaks.shape[1]
@@ -950,6 +979,20 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
     return fit, screening, _Profile(best, lower, upper)
 
 
+def _smooth_kinks(y: FloatArray, fit: KinkFit, ramp: FloatArray,
+                  dispersion: Dispersion) -> KinkFit:
+    """``fit`` refitted at the same kink days with smoothed hinges (``ramp``).
+
+    The dates (and their intervals) stay those of the plain kinks' profile. Moving each date
+    to the maximum of the smoothed model's profile (within ``search`` days) was tried and
+    measured worse on validation seeds 100-149: steps >= 20 % dated within +-3 days 80.0 %
+    against 85.5 %, false breaks 11.0 % against 9.0 % (the smoothed profile is flatter in
+    the date)."""
+    rows = y.shape[0]
+    return _kink_replace(fit, np.arange(rows), _fit_kinks(
+        y, fit.kinks, fit.level_shifts, dispersion, True, fit.coef, ramp=ramp))
+
+
 def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segment: int,
                     crit: float, lower: IntArray, upper: IntArray) -> None:
     """Profile intervals of the kink dates of rows ``idx`` (written into ``lower``/``upper``):
@@ -980,7 +1023,7 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
 def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
                     si_mean: float, si_sd: float, lag: float | None, *,
                     y: FloatArray | None = None, block: int | None = None,
-                    date_free: bool = True) -> ChangePoints:
+                    date_free: bool = True, ramp: FloatArray | None = None) -> ChangePoints:
     rows, kmax = fit.kinks.shape
     n = fit.mu.shape[1]
     segs = kmax + 1
@@ -994,7 +1037,7 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
         wider = np.isfinite(phi_b) & (phi_b > phi)
         phi = np.where(wider, phi_b, phi)
         zq = np.where(wider, stats.t.ppf(0.5 + level / 2.0, np.where(wider, df, 1.0)), z)
-    base_cov = date_aware_covariance(fit) if date_free else fit.covariance
+    base_cov = date_aware_covariance(fit, ramp=ramp) if date_free else fit.covariance
     cov = base_cov * phi[:, None, None]
     n_breaks = has.sum(axis=1).astype(np.int64)
     seg_ok = np.arange(segs)[None, :] <= n_breaks[:, None]

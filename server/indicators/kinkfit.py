@@ -16,6 +16,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy import special, stats
 
 from server.indicators._arrays import FloatArray, IntArray, as_nonnegative_counts, freeze_arrays
 from server.indicators._segmentation import (
@@ -38,6 +39,7 @@ __all__ = [
     "fit_kinks",
     "hac_covariance",
     "kink_design",
+    "smooth_ramp",
 ]
 
 _WEEK = WEEK
@@ -95,9 +97,77 @@ def _weekday_columns(n: int) -> FloatArray:
 
 
 def kink_design(n: int, kinks: IntArray, level_shifts: IntArray | None = None,
-                day_of_week: bool = True) -> FloatArray:
-    """Design of :class:`KinkFit`: shape (regions, n, p), zero columns for -1 entries."""
-    return line_design(n, kinks, _extra_columns(n, kinks.shape[0], level_shifts, day_of_week))
+                day_of_week: bool = True, ramp: FloatArray | None = None) -> FloatArray:
+    """Design of :class:`KinkFit`: shape (regions, n, p), zero columns for -1 entries; with
+    ``ramp`` (:func:`smooth_ramp`, its first row) the hinges are smoothed."""
+    return line_design(n, kinks, _extra_columns(n, kinks.shape[0], level_shifts, day_of_week),
+                       None if ramp is None else ramp[0])
+
+
+def smooth_ramp(n: int, si_mean: float, si_sd: float, delay_mean: float,
+                delay_sd: float, step: float = 0.02) -> FloatArray:
+    """The hinge smoothed by the generation interval and the infection-to-report delay, and
+    its slope: shape (2, 2 n + 1), row 0 ``K(u)`` and row 1 ``K'(u)`` at ``u = -n .. n``
+    (days after the kink ``tau``).
+
+    A step of ``log R`` by ``delta`` at day ``s`` perturbs log incidence of the renewal
+    equation ``i_t = R_t sum_a w_a i_{t-a}`` (linearised about constant incidence) by
+    ``delta U(t - s)``, ``U`` the renewal function of the generation interval ``T``
+    (``U(x) = sum_{m >= 0} P(T_1 + .. + T_m <= x)``, the m = 0 term the step itself); cases
+    by report date add a delay ``D``, so log expected cases move by
+    ``delta E_D U(t - s - D)``. For large x, ``U(x) = x / mu + E[T^2] / (2 mu^2) + o(1)``
+    (the renewal theorem's second-order term, Cox 1962, Renewal Theory, 4.5; Feller 1971,
+    XI.3), so ``K(u) = mu E_D U(u + lag - D)`` with ``lag = E[D] - E[T^2] / (2 mu)`` tends
+    to ``u``: the smoothed column has the plain hinge's asymptote and its coefficient is the
+    same change of growth rate (``delta / mu``, the linear term of Wallinga & Lipsitch 2007,
+    eq. 2.9, at r = 0), and the kink day ``tau = s + lag`` is the one the plain kink is
+    read with. ``T`` and ``D`` are gamma (mean, SD given); both are evaluated on a grid of
+    ``step`` days, ``K`` from ``u = -n`` to the day where it is within 1e-9 of ``u`` and
+    equal to ``max(u, 0)`` outside. Linearised at zero growth: the tilt of ``w`` by the
+    current growth rate (Wallinga & Lipsitch 2007) is ignored.
+    """
+    for name, v in (("si_mean", si_mean), ("si_sd", si_sd)):
+        if not (np.isfinite(v) and v > 0):
+            raise ValueError(f"{name}: must be a finite number > 0, got {v!r}")
+    for name, v in (("delay_mean", delay_mean), ("delay_sd", delay_sd)):
+        if not (np.isfinite(v) and v >= 0):
+            raise ValueError(f"{name}: must be a finite number >= 0, got {v!r}")
+    mu = float(si_mean)
+    lag = delay_mean - (si_sd**2 + mu**2) / (2.0 * mu)
+    shape, scale = (mu / si_sd) ** 2, si_sd**2 / mu
+    if delay_sd > 0 and delay_mean > 0:
+        d_hi = float(stats.gamma.ppf(1 - 1e-9, (delay_mean / delay_sd) ** 2,
+                                     scale=delay_sd**2 / delay_mean))
+    else:
+        d_hi = delay_mean
+    reach = d_hi + 25.0 * mu + 10.0 * si_sd  # the renewal function is at its asymptote
+    x = np.arange(0.0, reach + abs(lag) + 2.0, step)
+    terms = np.arange(1, int(3 * x[-1] / mu) + 40)
+    u_x = 1.0 + special.gammainc(shape * terms[:, None], x[None, :] / scale).sum(axis=0)
+    if delay_sd > 0 and delay_mean > 0:
+        ds = np.diff(stats.gamma.cdf(np.arange(0.0, d_hi + 2 * step, step) - step / 2,
+                                     (delay_mean / delay_sd) ** 2,
+                                     scale=delay_sd**2 / delay_mean).clip(0.0))
+        ds = ds / ds.sum()
+        shift = 0.0
+    else:
+        ds = np.ones(1)
+        shift = delay_mean
+    # E_D U(x - D) on the grid (U = 0 left of 0)
+    conv = np.convolve(u_x, ds)[: x.size]
+    u = np.arange(-n, n + 1, dtype=np.float64)
+    arg = u + lag - shift
+    k = mu * np.interp(arg, x, conv, left=0.0, right=np.nan)
+    slope_grid = np.gradient(conv, step)
+    ks = mu * np.interp(arg, x, slope_grid, left=0.0, right=np.nan)
+    far = ~np.isfinite(k)
+    k[far] = u[far]
+    ks[far] = 1.0
+    done = np.flatnonzero((np.abs(k - u) < 1e-9) & (u > 0))
+    if done.size:
+        k[done[0]:] = u[done[0]:]
+        ks[done[0]:] = 1.0
+    return np.stack([k, ks])
 
 
 def _extra_columns(n: int, rows: int, level_shifts: IntArray | None,
@@ -134,6 +204,7 @@ def fit_kinks(
     level_shifts: ArrayLike | None = None,
     dispersion: Dispersion = "quasipoisson",
     day_of_week: bool = True,
+    ramp: FloatArray | None = None,
 ) -> KinkFit:
     """Fit the continuous piecewise log-linear Poisson model with given kinks.
 
@@ -148,6 +219,9 @@ def fit_kinks(
     dispersion : {'quasipoisson', 'poisson'}
     day_of_week : bool
         Include the six weekday effects.
+    ramp : ndarray, optional
+        :func:`smooth_ramp`: smoothed hinge columns ``K(t - tau) / n`` instead of
+        ``(t - tau)_+ / n`` (the model is still a GLM for fixed kink days).
 
     Returns
     -------
@@ -173,11 +247,12 @@ def fit_kinks(
     if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
         raise ValueError("kinks: a day appears twice in one region")
     shifts = _normalise_days("level_shifts", level_shifts, rows, n)
-    return _fit_kinks(y, k, shifts, dispersion, day_of_week)
+    return _fit_kinks(y, k, shifts, dispersion, day_of_week, ramp=ramp)
 
 
 def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool = True, start: FloatArray | None = None) -> KinkFit:
+               day_of_week: bool = True, start: FloatArray | None = None,
+               ramp: FloatArray | None = None) -> KinkFit:
     """:func:`fit_kinks` on checked arguments (``k`` sorted), Newton's method from ``start``
     (coefficients laid out as :attr:`KinkFit.coef`) where given and finite."""
     rows, kmax = k.shape
@@ -190,7 +265,8 @@ def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
         s = order[i : i + _CHUNK_ROWS]
         used = int(count[s].max()) if s.size else 0
         part = _kink_rows(y[s], k[s, :used], shifts[s], dispersion, day_of_week,
-                          None if start is None else _drop_hinges(start[s], used, kmax))
+                          None if start is None else _drop_hinges(start[s], used, kmax),
+                          ramp)
         parts.append((part[0] if used == kmax else _pad_hinges(part[0], used, kmax, 1),
                       part[1] if used == kmax else _pad_hinges(
                           _pad_hinges(part[1], used, kmax, 1), used, kmax, 2),
@@ -209,7 +285,7 @@ def _fit_kinks(y: FloatArray, k: IntArray, shifts: IntArray, dispersion: str,
     if again.size == 0:  # a warm start that did not converge: once more from the flat one
         return fit
     return _kink_replace(fit, again, _fit_kinks(y[again], k[again], shifts[again], dispersion,
-                                                 day_of_week))
+                                                 day_of_week, ramp=ramp))
 
 
 def _drop_hinges(coef: FloatArray, used: int, kmax: int) -> FloatArray:
@@ -243,7 +319,8 @@ def _moved_start(coef: FloatArray, moved: IntArray) -> tuple[IntArray, FloatArra
 
 
 def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str,
-               day_of_week: bool, start: FloatArray | None = None) -> tuple[FloatArray, ...]:
+               day_of_week: bool, start: FloatArray | None = None,
+               ramp: FloatArray | None = None) -> tuple[FloatArray, ...]:
     rows, n = y.shape
     # the columns other than the weekday indicators, laid out (rows, q, days) so that every
     # product over days is one batched matrix product; the weekday columns' products are
@@ -251,7 +328,8 @@ def _kink_rows(y: FloatArray, kinks: IntArray, shifts: IntArray, dispersion: str
     # information costs q^2 + 7 q sums a day instead of p^2 (McCullagh & Nelder 1989, 2.5:
     # X' W X of the design of kink_design, the same numbers)
     xq = np.ascontiguousarray(line_design(
-        n, kinks, step_columns(n, shifts if shifts.shape[1] else None, rows)).transpose(0, 2, 1))
+        n, kinks, step_columns(n, shifts if shifts.shape[1] else None, rows),
+        None if ramp is None else ramp[0]).transpose(0, 2, 1))
     q = xq.shape[1]
     wk = _weekday_columns(n) if day_of_week else np.zeros((n, 0))
     nw = wk.shape[1]
@@ -428,7 +506,8 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     return np.where(ok, phi, np.nan), np.where(ok, 1.5 * m - q, np.nan)
 
 
-def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
+def date_aware_covariance(fit: KinkFit, day_of_week: bool = True,
+                          ramp: FloatArray | None = None) -> FloatArray:
     """Inverse information of :class:`KinkFit`'s coefficients with the kink dates free (unit
     dispersion): the block of ``(X, V)' W (X, V)`` inverted, ``W = diag(mu)``, where ``V`` has
     one column per kink, the derivative of the linear predictor with respect to its date,
@@ -440,9 +519,10 @@ def date_aware_covariance(fit: KinkFit, day_of_week: bool = True) -> FloatArray:
     reports). The coefficients' block of the inverse is at least the conditional covariance
     :attr:`KinkFit.covariance` (a block of an inverse information exceeds the inverse of the
     block). Rows that did not converge are NaN; a kink whose date column is collinear with the
-    rest keeps the conditional covariance.
+    rest keeps the conditional covariance. With ``ramp`` (:func:`smooth_ramp`, the fit's
+    smoothed hinges) the date column is ``-(d_k / n) K'(t - tau_k)``.
     """
-    return _kink_covariance(fit, day_of_week, None, None)
+    return _kink_covariance(fit, day_of_week, None, None, ramp=ramp)
 
 
 def hac_covariance(fit: KinkFit, counts: ArrayLike, lags: int, *, date_free: bool = True,
@@ -466,7 +546,7 @@ def hac_covariance(fit: KinkFit, counts: ArrayLike, lags: int, *, date_free: boo
 
 
 def _kink_covariance(fit: KinkFit, day_of_week: bool, y: FloatArray | None, lags: int | None,
-                     date_free: bool = True) -> FloatArray:
+                     date_free: bool = True, ramp: FloatArray | None = None) -> FloatArray:
     """:func:`date_aware_covariance` (``y`` None) or :func:`hac_covariance`."""
     rows, kmax = fit.kinks.shape
     n = fit.mu.shape[1]
@@ -479,12 +559,17 @@ def _kink_covariance(fit: KinkFit, day_of_week: bool, y: FloatArray | None, lags
     for idx in _chunks(np.flatnonzero(todo)):
         kinks = fit.kinks[idx]
         shifts = fit.level_shifts[idx]
-        x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week)
+        x = kink_design(n, kinks, shifts if shifts.shape[1] else None, day_of_week, ramp)
         p = x.shape[2]
         has = kinks >= 0
         if date_free and kmax:
             d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
-            v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :]) & has[:, None, :]))
+            if ramp is None:
+                v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :])
+                                       & has[:, None, :]))
+            else:  # -(d_k / n) K'(t - tau_k)
+                at = n + t[None, :, None] - np.where(has, kinks, 0)[:, None, :]
+                v = -(d[:, None, :] * np.where(has[:, None, :], ramp[1][at], 0.0))
             xv = np.concatenate([x, v], axis=2)
         else:
             xv = x

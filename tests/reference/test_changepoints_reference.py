@@ -219,3 +219,75 @@ def test_date_aware_covariance_matches_statsmodels_with_muggeo_columns(seed: int
     assert_allclose(ours, ref, rtol=1e-6, atol=1e-12)
     # the slope changes are less certain once their dates are
     assert np.all(np.diag(ours)[2:4] > np.diag(fit.covariance[0])[2:4])
+
+
+def test_smooth_ramp_follows_the_renewal_equation_after_a_small_step() -> None:
+    # A small step of log R (1e-4) in the renewal equation i_t = R_t sum_a w_a i_{t-a}
+    # (Fraser 2007, PLoS ONE 2:e758) at constant incidence, then cases by report date from
+    # a daily delay pmf: the day-to-day change of log cases, times the mean generation
+    # interval and over the step, against the slope of smooth_ramp (the same moments).
+    # Iterated directly here, not derived from the renewal function. Daily (lattice)
+    # sums smear the continuous shape by about half a day: measured 0.115 at most.
+    from scipy import stats
+
+    from server.indicators.kinkfit import smooth_ramp
+
+    lags = np.arange(1, 61)
+    w = np.diff(stats.gamma.cdf(np.arange(0, 61) + 0.5, (7.0 / 5.0) ** 2, scale=25.0 / 7.0))
+    w /= w.sum()
+    n, s, delta = 300, 150, 1e-4
+    i = np.ones(n)
+    for day in range(s, n):
+        i[day] = np.exp(delta) * np.sum(w * i[day - lags])
+    dl = np.arange(0, 41)
+    g = np.diff(stats.gamma.cdf(np.arange(0, 42) - 0.5, (8.5 / 3.5) ** 2,
+                                scale=3.5**2 / 8.5).clip(0))
+    g /= g.sum()
+    log_c = np.log(np.convolve(i, g)[:n]) / delta
+    m1, m2 = (w * lags).sum(), (w * lags**2).sum()
+    gm, gv = (g * dl).sum(), (g * dl**2).sum() - (g * dl).sum() ** 2
+    lag = gm - m2 / (2 * m1)
+    ramp = smooth_ramp(n, m1, np.sqrt(m2 - m1**2), gm, np.sqrt(gv))
+    k = np.interp(np.arange(n) - s - lag, np.arange(-n, n + 1), ramp[0])
+    part = slice(s - 20, n)
+    assert np.abs(np.diff(m1 * log_c[part]) - np.diff(k[part])).max() <= 0.15
+    # far from the step the smoothed hinge is the plain one
+    u = np.arange(-n, n + 1)
+    assert_allclose(ramp[0][np.abs(u) >= 60], np.maximum(u, 0)[np.abs(u) >= 60], atol=1e-9)
+
+
+@pytest.mark.parametrize("seed", [8, 9], ids=["seed8", "seed9"])
+def test_fit_kinks_with_smoothed_hinges_matches_statsmodels_glm(seed: int) -> None:
+    # For fixed kink days the smoothed model is still a Poisson GLM on a known design:
+    # statsmodels 0.14 GLM, Poisson family, on kink_design(..., ramp) gives the same
+    # coefficients, covariance and means; Muggeo's date columns (2003, section 2) become
+    # -delta K'(t - tau) / n, checked against statsmodels' expected information as above.
+    from server.indicators.changepoints import date_aware_covariance
+    from server.indicators.kinkfit import smooth_ramp
+
+    rng = np.random.default_rng(seed)
+    n = 160
+    t = np.arange(n)
+    ramp = smooth_ramp(n, 7.0, 5.0, 8.5, 3.5)
+    eta = (np.log(90) + 0.03 * t - 0.06 * ramp[0][n + t - 55] + 0.05 * ramp[0][n + t - 110]
+           + np.where(t >= 130, 0.4, 0.0) + WEEKDAY[t % 7])
+    y = rng.poisson(np.exp(eta)).astype(float)
+    y[[9, 80, 81]] = np.nan
+    observed = np.isfinite(y)
+    fit = fit_kinks(y, [110, 55], level_shifts=[130], ramp=ramp)
+    x = kink_design(n, np.array([[55, 110]]), np.array([[130]]), ramp=ramp)[0]
+    assert_allclose(x[:, 2], ramp[0][n + t - 55] / n)
+    ref = sm.GLM(y[observed], x[observed], family=sm.families.Poisson()).fit(tol=1e-13,
+                                                                           maxiter=100)
+    assert fit.converged[0]
+    assert_allclose(fit.coef[0], ref.params, rtol=0, atol=1e-6)
+    assert_allclose(fit.covariance[0], ref.cov_params(), rtol=1e-6, atol=1e-12)
+    assert_allclose(fit.mu[0, observed], ref.fittedvalues, rtol=1e-6)
+    ours = date_aware_covariance(fit, ramp=ramp)[0]
+    delta = fit.coef[0, 2:4] / n
+    v = -delta[None, :] * np.stack([ramp[1][n + t - 55], ramp[1][n + t - 110]], axis=1)
+    xv = np.concatenate([x, v], axis=1)[observed]
+    info = -sm.GLM(y[observed], xv, family=sm.families.Poisson()).hessian(
+        np.r_[fit.coef[0], 0.0, 0.0], observed=False)
+    assert_allclose(ours, np.linalg.inv(info)[: x.shape[1], : x.shape[1]], rtol=1e-6,
+                    atol=1e-12)

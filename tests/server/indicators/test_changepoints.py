@@ -321,3 +321,35 @@ def test_date_uncertainty_only_widens_the_growth_intervals() -> None:
     w1 = (free.growth_change_upper - free.growth_change_lower)[has]
     assert np.all(w1 >= w0 - 1e-15)
     assert np.any(w1 > w0 * 1.01)
+
+
+def test_smoothing_refits_the_same_breaks_with_smoothed_hinges() -> None:
+    # smoothing (on by default with an infection delay) keeps the dates and their intervals
+    # and changes only the fit: its means equal exp of the smoothed design times the
+    # coefficients (kink_design with the ramp, computed here again)
+    from server.indicators.changepoints import kink_design
+    from server.indicators.kinkfit import smooth_ramp
+
+    y = _kinked(24)
+    kw = {"infection_delay": 8.5, "si_mean": 7.0, "si_sd": 5.0}
+    smooth = detect_changepoints(y, **kw)
+    plain = detect_changepoints(y, smoothing=False, **kw)
+    assert smooth.n_breaks[0] == plain.n_breaks[0] == 2
+    for name in ("breaks", "break_lower", "break_upper", "transmission_day"):
+        assert_allclose(getattr(smooth, name), getattr(plain, name))
+    assert not np.allclose(smooth.growth_change, plain.growth_change)
+    ramp = smooth_ramp(200, 7.0, 5.0, 8.5, 0.4 * 8.5)
+    x = kink_design(200, smooth.fit.kinks, ramp=ramp)[0]
+    assert_allclose(smooth.fit.mu[0], np.exp(x @ smooth.fit.coef[0]), rtol=1e-10)
+    assert_allclose(detect_changepoints(y, smoothing=True, delay_sd=0.4 * 8.5, **kw).fit.coef,
+                    smooth.fit.coef)
+
+
+def test_smoothing_needs_a_delay_and_the_kink_shape() -> None:
+    y = _kinked(25)
+    with pytest.raises(ValueError, match="smoothing"):
+        detect_changepoints(y, smoothing=True)
+    with pytest.raises(ValueError, match="smoothing"):
+        detect_changepoints(y, smoothing=True, shape="step", infection_delay=8.5)
+    with pytest.raises(ValueError, match="delay_sd"):
+        detect_changepoints(y, infection_delay=8.5, delay_sd=-1.0)
