@@ -61,6 +61,13 @@ def breaks_command(
     shape: Annotated[str, typer.Option(help="kink (continuous) or step.")] = "kink",
     infection_delay: Annotated[float | None, typer.Option(
         help="Mean days from infection to the cases' date (gives transmission dates).")] = None,
+    delay_sd: Annotated[float | None, typer.Option(
+        help="SD of the infection-to-report delay, days (default 0.4 x --infection-delay).")
+    ] = None,
+    smoothing: Annotated[bool | None, typer.Option(
+        "--smoothing/--no-smoothing",
+        help="Kinks smoothed by the generation interval and the delay (default: on with "
+             "--infection-delay).")] = None,
     population: Annotated[float | None, typer.Option(
         help="Population: with tests and positives columns, testing changes become level "
              "shifts of cases.")] = None,
@@ -82,12 +89,14 @@ def breaks_command(
     profile interval of its date; growth_change: new slope minus old). R from the
     growth rate for a gamma generation interval (Wallinga & Lipsitch 2007). With
     --infection-delay, transmission_date = break - delay + E[T^2]/(2 E[T]) (T the
-    generation interval): the day transmission changed.
+    generation interval): the day transmission changed; the kinks are then smoothed by
+    the generation interval and a gamma delay (--delay-sd; --no-smoothing for plain kinks).
     """
     options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
                            level=level, dispersion=dispersion.lower(), si_mean=si_mean,
                            si_sd=si_sd, shape=shape.lower(), infection_delay=infection_delay,
-                           population=population, min_change=min_change, column=column)
+                           delay_sd=delay_sd, smoothing=smoothing, population=population,
+                           min_change=min_change, column=column)
     _emit(breaks_table(file, options), output)
 
 

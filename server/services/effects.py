@@ -88,6 +88,10 @@ class BreakOptions:
     min_ratio: float = 1.2
     shape: str = "kink"
     infection_delay: float | None = None
+    #: SD of the infection-to-report delay (None: the kernel's 0.4 x the delay)
+    delay_sd: float | None = None
+    #: hinges smoothed by the generation interval and the delay (None: on with a delay)
+    smoothing: bool | None = None
     #: smallest relative change of R reported as a break (kink model), the kernel's default
     min_change: float = KERNEL_MIN_CHANGE
     #: the column of counts (``breaks``) or of positive values (``levels``) searched
@@ -108,6 +112,10 @@ def _checked_options(o: BreakOptions) -> None:
             f"--dispersion: expected quasipoisson or poisson, got {o.dispersion!r}")
     if o.shape not in ("kink", "step"):
         raise EstimateOptionError(f"--shape: expected kink or step, got {o.shape!r}")
+    if o.delay_sd is not None and o.infection_delay is None:
+        raise EstimateOptionError("--delay-sd: give --infection-delay too")
+    if o.delay_sd is not None and not (math.isfinite(o.delay_sd) and o.delay_sd > 0):
+        raise EstimateOptionError(f"--delay-sd: expected a positive number, got {o.delay_sd}")
 
 
 def _shifted_day(dates: tuple[dt.date, ...], value: float) -> str:
@@ -153,7 +161,7 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
                 max_breaks=o.max_breaks, penalty=o.penalty, dispersion=o.dispersion,
                 level=o.level, si_mean=o.si_mean, si_sd=o.si_sd, shape=o.shape,
                 level_shifts=shifts, infection_delay=o.infection_delay,
-                min_change=o.min_change)
+                delay_sd=o.delay_sd, smoothing=o.smoothing, min_change=o.min_change)
     dates = source.dates
     rows = []
     for j in range(int(res.n_breaks[0]) + 1):

@@ -200,3 +200,31 @@ def test_effects_levels_matches_the_level_kernel(tmp_path: Path) -> None:
     assert_allclose([float(r["growth_rate"]) for r in rows], ref.growth[0, : len(rows)],
                     rtol=1e-12)
     assert rows[1]["break_date"] == (START + dt.timedelta(days=int(ref.breaks[0, 0]))).isoformat()
+
+
+@pytest.mark.parametrize(("flags", "smoothing", "delay_sd"),
+                         [(["--delay-sd", "3.5"], None, 3.5), (["--no-smoothing"], False, None)],
+                         ids=["delay-sd", "plain"])
+def test_effects_breaks_passes_the_delay_sd_and_smoothing_to_the_kernel(
+        tmp_path: Path, flags: list[str], smoothing: bool | None, delay_sd: float | None) -> None:
+    # growth rates equal the kernel called with the same smoothing options; smoothed and plain
+    # kinks give different growth rates, so the rows show which one ran
+    path = _write(tmp_path, {"cases": _two_kinks(7)})
+    argv = ["effects", "breaks", str(path), "--infection-delay", "6", *flags]
+    result = CliRunner().invoke(app, argv)
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    cases = _two_kinks(7)
+    cases[MISSING] = np.nan
+    ref = detect_changepoints(cases, infection_delay=6.0, smoothing=smoothing, delay_sd=delay_sd)
+    other = detect_changepoints(cases, infection_delay=6.0, smoothing=smoothing is False)
+    assert_allclose([float(r["growth_rate"]) for r in rows], ref.growth[0, : len(rows)],
+                    rtol=1e-12)
+    assert not np.allclose(ref.growth[0, : len(rows)], other.growth[0, : len(rows)])
+
+
+def test_effects_breaks_refuses_a_delay_sd_without_a_delay(tmp_path: Path) -> None:
+    path = _write(tmp_path, {"cases": _two_kinks(5)})
+    result = CliRunner().invoke(app, ["effects", "breaks", str(path), "--delay-sd", "2"])
+    assert result.exit_code != 0
+    assert "--delay-sd" in result.output and "--infection-delay" in result.output
