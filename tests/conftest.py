@@ -74,6 +74,25 @@ def committed_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Dat
 
 
 @pytest.fixture(scope="session")
+def lead_policy_demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The invented demo county (150 days to 30 Nov 2026, seed 7) with its lead policy alone,
+    seeded once per session for the web tests (``demo_file``) and the service and CLI tests
+    (``demo_source``) alike; never written to: copy it first."""
+    from datetime import date
+
+    from demo_seed.seed import seed_demo
+    from server.config import Settings
+
+    path = tmp_path_factory.mktemp("demo-lead-policy") / "demo.db"
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
+    try:
+        seed_demo(db, days=150, end=date(2026, 11, 30), policies=())  # the lead policy alone
+    finally:
+        db.dispose()
+    return path
+
+
+@pytest.fixture(scope="session")
 def several_policies_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The invented demo county (150 days to 30 Nov 2026) with its three district policies active
     at once (county, influenza, RSV; the demo's area-level hospital policy is left out here and
