@@ -16,7 +16,6 @@ from pathlib import Path
 import pytest
 from sqlalchemy.orm import Session
 
-from demo_seed.seed import seed_demo
 from server.config import Settings
 from server.services.database import Database
 
@@ -47,15 +46,10 @@ def demo_settings(path: Path) -> Settings:
 
 
 @pytest.fixture(scope="session")
-def demo_source(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The demo database file, seeded once per test session (never written to by tests)."""
-    source = tmp_path_factory.mktemp("demo-source") / "demo.db"
-    db = Database.from_settings(demo_settings(source))
-    try:
-        seed_demo(db, days=DEMO_DAYS, end=DEMO_END, policies=())  # the lead policy alone
-    finally:
-        db.dispose()
-    return source
+def demo_source(lead_policy_demo_file: Path) -> Path:
+    """The demo database file (DEMO_DAYS to DEMO_END, the lead policy alone), seeded once per
+    test session and shared with the web tests (``tests/conftest.py``); never written to."""
+    return lead_policy_demo_file
 
 
 @pytest.fixture

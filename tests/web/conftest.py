@@ -15,9 +15,8 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
-from demo_seed.seed import DEMO_USERS, seed_demo
+from demo_seed.seed import DEMO_USERS
 from server.config import Settings
-from server.services.database import Database
 from web.app import create_app
 
 DEMO_END = date(2026, 11, 30)
@@ -26,15 +25,10 @@ ROLE_USER = {role: name for name, role, _password in DEMO_USERS}
 
 
 @pytest.fixture(scope="session")
-def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A demo database file (150 days ending on DEMO_END), seeded once per test session."""
-    path = tmp_path_factory.mktemp("demo") / "demo.db"
-    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    try:
-        seed_demo(db, days=150, end=DEMO_END, policies=())  # the lead policy alone
-    finally:
-        db.dispose()
-    return path
+def demo_file(lead_policy_demo_file: Path) -> Path:
+    """A demo database file (150 days ending on DEMO_END, the lead policy alone), seeded once
+    per test session and shared with the service tests (``tests/conftest.py``)."""
+    return lead_policy_demo_file
 
 
 def copy_demo(demo_file: Path, target: Path) -> Path:

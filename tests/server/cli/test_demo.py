@@ -4,14 +4,18 @@ invented office's time zone."""
 from __future__ import annotations
 
 import importlib
+import shutil
+from collections.abc import Callable
 from datetime import datetime
 from pathlib import Path
+from typing import Any
 from zoneinfo import ZoneInfo
 
 import pytest
 from fastapi.testclient import TestClient
 from typer.testing import CliRunner
 
+import demo_seed.seed as seed_module
 from demo_seed.feeds import DEMO_TIME_ZONE
 from server.cli import app
 from server.config import Settings
@@ -20,6 +24,41 @@ from web.app import create_app
 cli_main = importlib.import_module("server.cli.main")  # the module; server.cli.main is a function
 
 pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def seeded_files() -> dict[str, tuple[Path, seed_module.SeedSummary]]:
+    """The demo databases this module's commands seeded, by the seeding's arguments."""
+    return {}
+
+
+@pytest.fixture(autouse=True)
+def seed_once(seeded_files: dict[str, tuple[Path, seed_module.SeedSummary]],
+              tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
+    """``tierwise demo`` seeds the same demo (seed 7, 150 days to yesterday, history) for each
+    test here; the first seeding is real, the others copy its file into the command's database
+    and hand back its summary (what seeding would have written, up to the random push tokens
+    and password salts), so the module seeds once instead of three times."""
+    real: Callable[..., seed_module.SeedSummary] = seed_module.seed_demo
+
+    def seed_demo(db: Any, **kwargs: Any) -> seed_module.SeedSummary:
+        key = repr(sorted((k, v) for k, v in kwargs.items() if k != "progress"))
+        path = Path(db.engine.url.database)
+        if key not in seeded_files:
+            summary = real(db, **kwargs)
+            db.dispose()  # the last connection closed: the file holds everything
+            saved = tmp_path_factory.mktemp("demo-seeded") / "demo.db"
+            shutil.copyfile(path, saved)
+            seeded_files[key] = (saved, summary)
+            return summary
+        saved, summary = seeded_files[key]
+        db.dispose()
+        for stale in (path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
+            stale.unlink(missing_ok=True)
+        shutil.copyfile(saved, path)
+        return summary
+
+    monkeypatch.setattr(seed_module, "seed_demo", seed_demo)
 
 
 def test_demo_prints_the_morning_it_seeded(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
