@@ -6,7 +6,10 @@ keeps them together as ``{"sentence": ..., "data": {...}}`` (an assessment's ``e
 cards read fields instead of chains of ``.get()`` on stored JSON. Keys that rows written by older
 versions lack take the defaults named here, and only here; a row without its date or a criterion
 without its ``id``/``indicator`` is refused with :class:`~rules.errors.StoredExplanationError`
-naming the key.
+naming the key. The shape has a version, :data:`SCHEMA_VERSION`: rows without ``data.schema``
+are version 1 (every release so far); a row of a newer version is refused rather than misread.
+:meth:`ExplanationRecord.to_json` writes a record back in the stored shape and
+:meth:`ExplanationRecord.from_json` reads it (the two round-trip).
 
 The sentence of a day on which a move takes effect (or is decided to take effect later)
 describes the criteria *as they stood on the day the move was decided*
@@ -18,13 +21,17 @@ known at the same cutoff, so the two cannot disagree.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from datetime import date
 from typing import Any
 
 from rules.errors import StoredExplanationError
 
+#: The version of the stored explanation shape this release reads and writes.
+SCHEMA_VERSION = 1
+
 __all__ = [
+    "SCHEMA_VERSION",
     "CriterionState",
     "Counters",
     "ExplanationRecord",
@@ -131,6 +138,29 @@ class ExplanationRecord:
     #: None in rows written before testing changes were explained (and on other days)
     testing_change: TestingChangeNote | None = None
 
+    def to_json(self) -> dict[str, Any]:
+        """The record in the stored shape (``{"sentence": ..., "data": {...}}``, JSON-ready,
+        with ``data.schema``); :meth:`from_json` reads it back to an equal record."""
+        data = asdict(self)
+        sentence = data.pop("sentence")
+        for key in ("day", "decided_on", "effective_date"):
+            data[key] = None if data[key] is None else data[key].isoformat()
+        data["date"] = data.pop("day")
+        for key in ("criteria", "gates", "prepare", "held_by"):
+            data[key] = [dict(x) if isinstance(x, dict) else x for x in data[key]]
+        for item in data["criteria"]:
+            item["enter"], item["exit"] = list(item["enter"]), list(item["exit"])
+        if data["testing_change"] is not None:
+            data["testing_change"]["date"] = data["testing_change"]["date"].isoformat()
+        data["schema"] = SCHEMA_VERSION
+        return {"sentence": sentence, "data": data}
+
+    @classmethod
+    def from_json(cls, stored: Mapping[str, Any], *, tier: int | None = None
+                  ) -> ExplanationRecord:
+        """The record of a stored explanation (:func:`read_explanation`)."""
+        return read_explanation(stored, tier=tier)
+
     @property
     def basis_day(self) -> date:
         """The day whose criteria the sentence describes: the day a move was decided, when the
@@ -210,6 +240,11 @@ def read_explanation(stored: Mapping[str, Any], *, tier: int | None = None
     data = stored.get("data")
     if not isinstance(data, Mapping):
         raise StoredExplanationError("data", "missing")
+    schema = data.get("schema", 1)
+    if not isinstance(schema, int) or not 1 <= schema <= SCHEMA_VERSION:
+        raise StoredExplanationError(
+            "data.schema", f"version {schema!r} is not one this release reads (1 to "
+                           f"{SCHEMA_VERSION}); was it written by a newer release?")
     day = _date(data.get("date"), "data.date")
     if "tier" in data:
         tier = int(data["tier"])

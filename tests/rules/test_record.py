@@ -14,7 +14,13 @@ import pytest
 
 from rules import IndicatorSeries, evaluate, parse_ruleset
 from rules.errors import StoredExplanationError
-from rules.record import read_explanation, stored_criteria, stored_sentence
+from rules.record import (
+    SCHEMA_VERSION,
+    ExplanationRecord,
+    read_explanation,
+    stored_criteria,
+    stored_sentence,
+)
 
 RULES = """\
 name: records
@@ -88,3 +94,19 @@ def test_stored_criteria_and_sentence_of_rows_without_data() -> None:
     assert stored_sentence({"sentence": "Baseline."}) == "Baseline."
     assert stored_sentence({"data": {"sentence": "Held."}}) == "Held."
     assert stored_sentence({}) == ""
+
+
+def test_record_round_trips_through_its_stored_shape() -> None:
+    # engine-made explanations (a change day and a quiet day), through JSON and back
+    for stored in (_stored([10, 160, 170, 170], 3), _stored([10, 20, 30], 2)):
+        record = ExplanationRecord.from_json(stored)
+        again = json.loads(json.dumps(record.to_json()))
+        assert again["data"]["schema"] == SCHEMA_VERSION
+        assert ExplanationRecord.from_json(again) == record
+
+
+def test_read_explanation_refuses_a_newer_schema() -> None:
+    stored = _stored([10, 20, 30], 2)
+    stored["data"]["schema"] = SCHEMA_VERSION + 1  # type: ignore[index]
+    with pytest.raises(StoredExplanationError, match=r"data\.schema: version 2 is not one"):
+        read_explanation(stored)
