@@ -246,17 +246,7 @@ def _segment_sums(values: FloatArray, bounds: IntArray) -> FloatArray:
 
 
 def _normalise_breaks(breaks: ArrayLike, rows: int, n: int) -> IntArray:
-    b = np.asarray(breaks)
-    if b.ndim == 1:
-        b = np.broadcast_to(b, (rows, b.shape[0]))
-    if b.ndim != 2 or b.shape[0] != rows:
-        raise ValueError(f"breaks: expected shape (regions, k) with {rows} regions, got {b.shape}")
-    if b.size and not np.issubdtype(b.dtype, np.integer):
-        raise ValueError("breaks: day indices must be integers (-1 for none)")
-    b = np.asarray(b, dtype=np.int64)
-    if np.any((b != -1) & ((b < 1) | (b >= n))):
-        raise ValueError(f"breaks: day indices must lie in 1..{n - 1} (-1 for none)")
-    return b
+    return _normalise_days("breaks", breaks, rows, n)
 
 
 def _bounds(breaks: IntArray, n: int) -> IntArray:

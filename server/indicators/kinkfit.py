@@ -181,6 +181,7 @@ def _extra_columns(n: int, rows: int, level_shifts: IntArray | None,
 
 
 def _normalise_days(name: str, days: ArrayLike | None, rows: int, n: int) -> IntArray:
+    """``days`` as (rows, k) day indices in 1..n-1 (-1: none), refused naming ``name``."""
     if days is None:
         return np.zeros((rows, 0), dtype=np.int64)
     d = np.asarray(days)

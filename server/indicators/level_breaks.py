@@ -49,6 +49,7 @@ from server.indicators._segmentation import (
     refine_kinks,
     sort_kinks,
 )
+from server.indicators.kinkfit import _normalise_days
 from server.indicators.serial_interval import growth_to_reproduction
 
 __all__ = ["LevelBreaks", "LevelKinkFit", "detect_level_breaks", "fit_level_kinks"]
@@ -131,16 +132,7 @@ def _log_values(values: ArrayLike) -> tuple[FloatArray, FloatArray]:
 
 
 def _days(kinks: ArrayLike, rows: int, n: int) -> IntArray:
-    k = np.asarray(kinks)
-    if k.ndim == 1:
-        k = np.broadcast_to(k, (rows, k.shape[0]))
-    if k.ndim != 2 or k.shape[0] != rows:
-        raise ValueError(f"kinks: expected shape (regions, k) with {rows} regions, got {k.shape}")
-    if k.size and not np.issubdtype(k.dtype, np.integer):
-        raise ValueError("kinks: day indices must be integers (-1 for none)")
-    k = np.asarray(k, dtype=np.int64)
-    if np.any((k != -1) & ((k < 1) | (k >= n))):
-        raise ValueError(f"kinks: day indices must lie in 1..{n - 1} (-1 for none)")
+    k = _normalise_days("kinks", kinks, rows, n)
     k = sort_kinks(k)
     if k.shape[1] > 1 and np.any((np.diff(k, axis=1) == 0) & (k[:, 1:] >= 0)):
         raise ValueError("kinks: a day appears twice in one region")

@@ -32,16 +32,15 @@ from server.indicators.before_after import (
 )
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
-from server.services.hierarchy import membership, sum_up
 from server.services.stream_breaks import (
     SEARCH_LEAD_DAYS,
     Agreement,
     StreamOptions,
+    daily_counts,
     stream_breaks,
 )
 from server.services.users import permitted_account
 from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
-from server.store.reads import read_dense
 
 __all__ = [
     "EVENT_KINDS",
@@ -199,17 +198,10 @@ def _cases_end(session: Session) -> dt.date | None:
 def _series(session: Session, codes: list[str], first: dt.date, last: dt.date,
             regions: dict[int, Region]) -> np.ndarray:
     """Daily cases (codes, days): districts as stored, other levels summed from districts."""
-    districts = sorted(r.code for r in regions.values() if r.level == "district")
-    dense = read_dense(session=session, measures=[CASES], start=first, end=last,
-                       regions=districts)
-    parent_of = {r.code: regions[r.parent_id].code if r.parent_id in regions else None
-                 for r in regions.values()}
-    matrix = membership(districts, parent_of, codes)
-    for i, code in enumerate(codes):
-        if code in districts:
-            matrix[i] = 0.0
-            matrix[i, districts.index(code)] = 1.0
-    return sum_up(dense[CASES], matrix, codes).values
+    counts = daily_counts(session, CASES, codes, first, last, regions)
+    if counts is None:
+        raise LookupError(f"no measure {CASES!r} in the store")
+    return counts
 
 
 def _triple(res, name: str, k: int) -> tuple[float, float, float]:  # type: ignore[no-untyped-def]

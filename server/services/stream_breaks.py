@@ -130,8 +130,8 @@ def _regions(session: Session) -> dict[int, Region]:
     return {r.id: r for r in session.scalars(select(Region))}
 
 
-def _counts(session: Session, measure: str, codes: list[str], first: dt.date, last: dt.date,
-            regions: dict[int, Region]) -> np.ndarray | None:
+def daily_counts(session: Session, measure: str, codes: list[str], first: dt.date,
+                 last: dt.date, regions: dict[int, Region]) -> np.ndarray | None:
     """Daily counts (codes, days): districts as stored, other levels summed from districts."""
     districts = sorted(r.code for r in regions.values() if r.level == "district")
     try:
@@ -248,12 +248,12 @@ def stream_breaks(*, session: Session, codes: list[str], first: dt.date, last: d
     o = options or StreamOptions()
     regions = _regions(session)
     plants = main_plants(session, codes, regions)
-    cases = _counts(session, MEASURE["cases"], codes, first, last, regions)
+    cases = daily_counts(session, MEASURE["cases"], codes, first, last, regions)
     if cases is not None and cases_from is not None and cases_from > first:
         cases[:, : (cases_from - first).days] = np.nan
     data: dict[str, np.ndarray | None] = {
         "cases": cases,
-        "admissions": _counts(session, MEASURE["admissions"], codes, first, last, regions),
+        "admissions": daily_counts(session, MEASURE["admissions"], codes, first, last, regions),
         "wastewater": _wastewater(session, plants, first, last),
     }
     found: dict[str, np.ndarray] = {}  # (regions, k) break days, -1 none
