@@ -37,13 +37,14 @@ from server.services.district_indicators import district_indicators
 from server.services.errors import ServiceError
 from server.services.indicator_kinds import measure_needs
 from server.services.level_data import policy_data
-from server.store.models import Measure, Observation, Region
+from server.store.models import Measure, Observation, Region, Vintage
 
 __all__ = [
     "BacktestError",
     "BacktestResult",
     "as_known_cutoff",
     "data_span",
+    "first_known_day",
     "run_backtest",
     "write_timelines",
 ]
@@ -99,6 +100,18 @@ def data_span(*, session: Session, measures: Iterable[str] | None = None) -> tup
     return first, last
 
 
+def first_known_day(session: Session, measures: Iterable[str], time_zone: tzinfo = UTC) -> date:
+    """The first day whose as-known morning knew anything of ``measures``: the local day before
+    the first vintage holding one of them arrived (:func:`as_known_cutoff` ends the next day)."""
+    names = sorted(set(measures))
+    held = (select(Observation.vintage_id).join(Measure, Measure.id == Observation.measure_id)
+            .where(Measure.name.in_(names)))
+    received = session.scalar(select(func.min(Vintage.received_at)).where(Vintage.id.in_(held)))
+    if received is None:
+        raise BacktestError("database", "there are no observations to replay")
+    return received.astimezone(time_zone).date() - timedelta(days=1)
+
+
 def run_backtest(
     *, session: Session, ruleset: Ruleset, start: date | None = None, end: date | None = None,
     as_known: bool = False, progress: Callable[[int], None] | None = None,
@@ -109,13 +122,17 @@ def run_backtest(
     ``time_zone`` (the office's, ``settings.zone``) sets the local days of the as-known replay.
 
     The engine always starts at the first stored day (so windows and hysteresis are warmed up);
-    the summary covers ``start..end`` (default: everything). ``progress(n)`` is called as blocks
+    the summary covers ``start..end`` (default: everything; as known, from the first morning that
+    knew any of the policy's data, :func:`first_known_day`, so years of an archive that arrived
+    later are not counted as quiet years). ``progress(n)`` is called as blocks
     of days finish (``n`` days each; the total is the number of days replayed).
     """
     t0 = time.perf_counter()
     needs = measure_needs(ruleset, store_measures(session=session))
-    first, last = data_span(session=session,
-                            measures=(*needs.district, *needs.area, *needs.plant))
+    read = (*needs.district, *needs.area, *needs.plant)
+    first, last = data_span(session=session, measures=read)
+    if start is None and as_known:
+        start = min(max(first, first_known_day(session, read, time_zone)), end or last)
     start, end = start or first, end or last
     if end < start:
         raise BacktestError("--to", f"{end} is before --from {start}")

@@ -9,19 +9,22 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from rules import load_ruleset
 from server.services.backtest import (
     BacktestError,
     as_known_cutoff,
+    first_known_day,
     run_backtest,
     write_timelines,
 )
+from server.services.district_data import store_measures
 from server.services.district_indicators import district_indicators, load_district_data
+from server.services.indicator_kinds import measure_needs
 from server.services.review import current_run
-from server.store.models import Assessment, Region
+from server.store.models import Assessment, Measure, Observation, Region, Vintage
 
 pytestmark = pytest.mark.slow
 COUNTY = Path(__file__).resolve().parents[3] / "rules" / "policies" / "county.yaml"
@@ -117,3 +120,25 @@ def test_as_known_replay_counts_a_file_on_its_local_day(demo_session: Session) -
     a = utc.evaluation.indicators["incidence_7d"].estimate
     b = behind.evaluation.indicators["incidence_7d"].estimate
     assert not np.allclose(a[:, 60:], b[:, 60:], equal_nan=True)
+
+
+def test_as_known_summary_starts_on_the_first_morning_that_knew_the_policys_data(
+    demo_session: Session,
+) -> None:
+    # the morning before the summary's first day knew nothing of the policy's measures (its
+    # cutoff is before the first vintage holding them arrived), the first day knew some; a
+    # latest-data backtest still summarises from the first stored day
+    rs = load_ruleset(COUNTY)
+    known = run_backtest(session=demo_session, ruleset=rs, as_known=True, time_zone=BEHIND)
+    latest = run_backtest(session=demo_session, ruleset=rs)
+    needs = measure_needs(rs, store_measures(session=demo_session))
+    read = [*needs.district, *needs.area, *needs.plant]
+    arrived = demo_session.scalar(
+        select(func.min(Vintage.received_at))
+        .join(Observation, Observation.vintage_id == Vintage.id)
+        .join(Measure, Measure.id == Observation.measure_id).where(Measure.name.in_(read)))
+    assert known.start >= latest.start
+    if known.start > latest.start:
+        assert as_known_cutoff(known.start - timedelta(days=1), BEHIND) < arrived
+    assert arrived <= as_known_cutoff(known.start, BEHIND)
+    assert known.start == max(latest.start, first_known_day(demo_session, read, BEHIND))
