@@ -856,11 +856,13 @@ def step_columns(n: int, days: IntArray | None, rows: int) -> FloatArray | None:
     return np.asarray(cols, dtype=np.float64)
 
 
-def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
-                penalty: float, steps: FloatArray | None = None) -> Screening:
-    rows, n = z.shape
+def forward_kinks(scanner: KinkScanner, rows: int, n: int, min_segment: int, max_breaks: int
+                  ) -> tuple[IntArray, FloatArray, IntArray]:
+    """Forward selection of up to ``max_breaks`` kinks per row, each the day that lowers the
+    residual sum most while keeping segments of ``min_segment`` days: the kinks in the order
+    found (-1: none), the residual sum with the first k of them (inf where fewer were found)
+    and the kinks of each size (rows, max_breaks + 1, max_breaks)."""
     every = np.arange(rows)
-    scanner = KinkScanner(z, w, steps)
     kinks = np.full((rows, max_breaks), -1, dtype=np.int64)
     rss = np.full((rows, max_breaks + 1), np.inf)
     path = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
@@ -871,10 +873,18 @@ def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
         if k == max_breaks:
             break
         ok = kink_allowed(kinks[:, :k], n, min_segment)
-        g = np.where(ok, gain, -1.0)
-        best = np.argmax(g, axis=1)
+        best = np.argmax(np.where(ok, gain, -1.0), axis=1)
         found = ok[every, best] & np.all(kinks[:, :k] >= 0, axis=1)
         kinks[found, k] = best[found]
+    return kinks, rss, path
+
+
+def _kink_block(z: FloatArray, w: FloatArray, min_segment: int, max_breaks: int,
+                penalty: float, steps: FloatArray | None = None) -> Screening:
+    rows, n = z.shape
+    every = np.arange(rows)
+    scanner = KinkScanner(z, w, steps)
+    kinks, rss, path = forward_kinks(scanner, rows, n, min_segment, max_breaks)
     # backward elimination from the largest model: drop the kink whose removal costs least,
     # move the rest to their best days; keep whichever of the two paths fits better at each k
     cur = sort_kinks(kinks)

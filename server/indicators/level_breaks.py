@@ -44,6 +44,7 @@ from server.indicators._arrays import (
 from server.indicators._segmentation import (
     KinkScanner,
     check_int,
+    forward_kinks,
     kink_allowed,
     line_design,
     refine_kinks,
@@ -291,19 +292,7 @@ def detect_level_breaks(
     max_breaks = check_int("max_breaks", max_breaks, 0)
     every = np.arange(rows)
     scanner = KinkScanner(z, w)
-    kinks = np.full((rows, max_breaks), -1, dtype=np.int64)
-    rss = np.full((rows, max_breaks + 1), np.inf)
-    path = np.full((rows, max_breaks + 1, max_breaks), -1, dtype=np.int64)
-    for k in range(max_breaks + 1):
-        r0, gain = scanner.scan(kinks[:, :k])
-        rss[:, k] = np.where(np.all(kinks[:, :k] >= 0, axis=1), r0, np.inf)
-        path[:, k] = kinks
-        if k == max_breaks:
-            break
-        ok = kink_allowed(kinks[:, :k], n, min_segment)
-        best = np.argmax(np.where(ok, gain, -1.0), axis=1)
-        found = ok[every, best] & np.all(kinks[:, :k] >= 0, axis=1)
-        kinks[found, k] = best[found]
+    _, rss, path = forward_kinks(scanner, rows, n, min_segment, max_breaks)
     n_obs = w.sum(axis=1)
     ks = np.arange(max_breaks + 1)
     with np.errstate(divide="ignore", invalid="ignore"):
