@@ -51,6 +51,7 @@ MIN_CHANGE = 0.1
 DATE_UNCERTAINTY = True
 CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
 SMOOTHING = True  # smoothed hinges (the kernel's default with a delay; --no-smoothing)
+LOCAL: int | None = 42  # local_window of detect_changepoints (--local-window; 0: none)
 HAC = False  # also print the coverage of Newey-West (HAC) intervals (--hac)
 
 
@@ -85,7 +86,7 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
                              penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK,
                              min_change=MIN_CHANGE, date_uncertainty=DATE_UNCERTAINTY,
                              smoothing=SMOOTHING and SHAPE == "kink",
-                             delay_sd=INFECTION_TO_TEST[1])
+                             delay_sd=INFECTION_TO_TEST[1], local_window=LOCAL)
     if BLOCK is None and SHAPE == "kink":  # half-widths the other block lengths would give
         phi0 = cp.fit.dispersion
         q = 2 + (cp.breaks >= 0).sum(axis=1) + (cp.fit.level_shifts >= 0).sum(axis=1)
@@ -186,7 +187,12 @@ def main() -> None:
                         help="plain hinges in the final fit (smoothing=False of "
                              "detect_changepoints; the default smooths them by the generation "
                              "interval and the simulator's infection-to-test delay)")
+    parser.add_argument("--local-window", type=int, default=42,
+                        help="local_window of detect_changepoints: the growth change at a "
+                             "kink from the days within this many of it (0: whole segments)")
     args = parser.parse_args()
+    global LOCAL
+    LOCAL = args.local_window or None
     global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY, HAC, SMOOTHING
     SMOOTHING = not args.no_smoothing
     HAC = args.hac

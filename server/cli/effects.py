@@ -10,6 +10,7 @@ from rich.markup import escape
 
 from server.cli.output import fail, friendly_errors, say
 from server.services.effects import (
+    KERNEL_LOCAL_WINDOW,
     KERNEL_MIN_CHANGE,
     BreakOptions,
     EffectsTable,
@@ -74,6 +75,9 @@ def breaks_command(
     min_change: MinChange = KERNEL_MIN_CHANGE,
     column: Annotated[str, typer.Option(
         help="Column of daily counts searched (e.g. admissions).")] = "cases",
+    local_window: Annotated[int, typer.Option(
+        help="Kink model: days either side of a break over which its growth_change is "
+             "measured (0: the whole adjacent segments).")] = KERNEL_LOCAL_WINDOW,
 ) -> None:
     """Changes in the growth of daily cases, and each segment's growth rate, doubling time and R.
 
@@ -91,12 +95,15 @@ def breaks_command(
     --infection-delay, transmission_date = break - delay + E[T^2]/(2 E[T]) (T the
     generation interval): the day transmission changed; the kinks are then smoothed by
     the generation interval and a gamma delay (--delay-sd; --no-smoothing for plain kinks).
+    growth_change compares the growth within --local-window days either side of the
+    break (fixed knots further out), not the whole segments' averages.
     """
     options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
                            level=level, dispersion=dispersion.lower(), si_mean=si_mean,
                            si_sd=si_sd, shape=shape.lower(), infection_delay=infection_delay,
                            delay_sd=delay_sd, smoothing=smoothing, population=population,
-                           min_change=min_change, column=column)
+                           min_change=min_change, column=column,
+                           local_window=local_window or None)
     _emit(breaks_table(file, options), output)
 
 

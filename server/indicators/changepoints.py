@@ -70,6 +70,7 @@ from server.indicators.kinkfit import (
     kink_design,
     smooth_ramp,
 )
+from server.indicators.local_change import LocalFit, fit_local
 from server.indicators.serial_interval import growth_to_reproduction
 
 BoolArray = NDArray[np.bool_]
@@ -606,6 +607,7 @@ def detect_changepoints(
     date_uncertainty: bool = True,
     smoothing: bool | None = None,
     delay_sd: float | None = None,
+    local_window: int | None = 42,
 ) -> ChangePoints:
     """Find breaks in the growth of daily counts and estimate each segment's growth and R.
 
@@ -659,6 +661,15 @@ def detect_changepoints(
         SD of the gamma infection-to-report delay for ``smoothing`` (default
         ``0.4 * infection_delay``, an assumed coefficient of variation: common practice, no
         source).
+    local_window : int or None
+        Kink model only: the change of growth at each kink (``growth_change`` and its
+        interval) is measured from the days within ``local_window`` of it: the model is
+        refitted with fixed knots ``local_window`` days either side of every kink that lies in
+        a longer segment (:mod:`server.indicators.local_change`); its dispersion is the
+        whole-segment fit's. Default 42 (six weeks, the ``dependence_block``; not tuned: 42
+        was the only value measured, on validation seeds 100-149). ``None``: the slope change
+        of the whole-segment fit. The dates, segments and segment growth rates are the
+        whole-segment fit's either way.
 
     Returns
     -------
@@ -711,6 +722,8 @@ def detect_changepoints(
                              f"{infection_delay!r}")
     if dependence_block is not None:
         dependence_block = _check_int("dependence_block", dependence_block, 1)
+    if local_window is not None:
+        local_window = _check_int("local_window", local_window, 1)
     min_change = float(min_change)
     if not np.isfinite(min_change) or min_change < 0:
         raise ValueError(f"min_change: must be a finite number >= 0, got {min_change!r}")
@@ -731,11 +744,13 @@ def detect_changepoints(
             block=dependence_block, min_change=min_change, si_mean=si_mean, si_sd=si_sd)
         if ramp is not None:
             kfit = _smooth_kinks(y, kfit, ramp, dispersion)
+        local = None if local_window is None else fit_local(
+            y, kfit, window=local_window, min_gap=min_segment, dispersion=dispersion, ramp=ramp)
         lag = None if infection_delay is None else (
             infection_delay - (si_sd**2 + si_mean**2) / (2.0 * si_mean))
         return _assemble_kinks(kfit, kscreen, kprof, level, si_mean, si_sd, lag,
                                y=y, block=dependence_block,
-                               date_free=bool(date_uncertainty), ramp=ramp)
+                               date_free=bool(date_uncertainty), ramp=ramp, local=local)
     screening = screen_breaks(y, min_segment=min_segment, max_breaks=max_breaks,
                               penalty=penalty)
     kmax = screening.breaks.shape[1]
@@ -1010,25 +1025,39 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
         upper[idx[rr], j] = gap_right - 1
 
 
-def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
-                    si_mean: float, si_sd: float, lag: float | None, *,
-                    y: FloatArray | None = None, block: int | None = None,
-                    date_free: bool = True, ramp: FloatArray | None = None) -> ChangePoints:
-    rows, kmax = fit.kinks.shape
-    n = fit.mu.shape[1]
-    segs = kmax + 1
+def _scaled_covariance(fit: KinkFit, level: float, y: FloatArray | None, block: int | None,
+                       date_free: bool, ramp: FloatArray | None,
+                       dated: BoolArray | None = None,
+                       scale_of: KinkFit | None = None) -> tuple[FloatArray, FloatArray]:
+    """Covariance of ``fit``'s coefficients times the dispersion (the larger of the daily and
+    the block one) and the quantile of its intervals (t when the block one is the larger);
+    the dispersions are those of ``scale_of`` where given."""
+    rows = fit.kinks.shape[0]
     z = float(special.ndtri(0.5 + level / 2.0))
-    phi = fit.dispersion
+    sfit = fit if scale_of is None else scale_of
+    phi = sfit.dispersion
     zq = np.full(rows, z)
-    has = fit.kinks >= 0
     if y is not None and block is not None:
-        q = 2 + has.sum(axis=1) + (fit.level_shifts >= 0).sum(axis=1)
-        phi_b, df = block_dispersion(y, fit.mu, block, q)
+        q = 2 + (sfit.kinks >= 0).sum(axis=1) + (sfit.level_shifts >= 0).sum(axis=1)
+        phi_b, df = block_dispersion(y, sfit.mu, block, q)
         wider = np.isfinite(phi_b) & (phi_b > phi)
         phi = np.where(wider, phi_b, phi)
         zq = np.where(wider, stats.t.ppf(0.5 + level / 2.0, np.where(wider, df, 1.0)), z)
-    base_cov = date_aware_covariance(fit, ramp=ramp) if date_free else fit.covariance
-    cov = base_cov * phi[:, None, None]
+    base_cov = (date_aware_covariance(fit, ramp=ramp, dated=dated) if date_free
+                else fit.covariance)
+    return base_cov * phi[:, None, None], zq
+
+
+def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
+                    si_mean: float, si_sd: float, lag: float | None, *,
+                    y: FloatArray | None = None, block: int | None = None,
+                    date_free: bool = True, ramp: FloatArray | None = None,
+                    local: LocalFit | None = None) -> ChangePoints:
+    rows, kmax = fit.kinks.shape
+    n = fit.mu.shape[1]
+    segs = kmax + 1
+    has = fit.kinks >= 0
+    cov, zq = _scaled_covariance(fit, level, y, block, date_free, ramp)
     n_breaks = has.sum(axis=1).astype(np.int64)
     seg_ok = np.arange(segs)[None, :] <= n_breaks[:, None]
     p = fit.coef.shape[1]
@@ -1043,11 +1072,22 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
     bad = ~seg_ok | ~fit.converged[:, None]
     growth = np.where(bad, np.nan, growth)
     g_lo, g_hi = growth - zq[:, None] * se_r, growth + zq[:, None] * se_r
-    d_r = np.where(has, coef[:, 2 : 2 + kmax] / n, np.nan)
-    idx = np.arange(kmax)
-    with np.errstate(invalid="ignore"):
-        se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
-    d_r = np.where(fit.converged[:, None], d_r, np.nan)
+    if local is None:
+        d_r = np.where(has, coef[:, 2 : 2 + kmax] / n, np.nan)
+        idx = np.arange(kmax)
+        with np.errstate(invalid="ignore"):
+            se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
+        zd = zq
+        d_r = np.where(fit.converged[:, None], d_r, np.nan)
+    else:  # each kink's change from the refit with fixed knots (local_change)
+        lcov, zd = _scaled_covariance(local.fit, level, y, block, date_free, ramp, local.dated,
+                                      scale_of=fit)
+        col = 2 + np.where(has, local.position, 0)
+        d_r = np.take_along_axis(np.nan_to_num(local.fit.coef), col, axis=1) / n
+        at = np.arange(rows)[:, None]
+        with np.errstate(invalid="ignore"):
+            se_d = np.sqrt(lcov[at, col, col]) / n
+        d_r = np.where(has & local.fit.converged[:, None], d_r, np.nan)
     breaks = np.where(has, fit.kinks, -1)
     bounds = np.concatenate([np.zeros((rows, 1), np.int64), np.where(has, fit.kinks, n),
                              np.full((rows, 1), n)], axis=1)
@@ -1065,8 +1105,8 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
     return ChangePoints(
         n_breaks=n_breaks, breaks=breaks, break_lower=np.where(has, prof.lower, -1),
         break_upper=np.where(has, prof.upper, -1),
-        growth_change=d_r, growth_change_lower=d_r - zq[:, None] * se_d,
-        growth_change_upper=d_r + zq[:, None] * se_d,
+        growth_change=d_r, growth_change_lower=d_r - zd[:, None] * se_d,
+        growth_change_upper=d_r + zd[:, None] * se_d,
         level_change=nan, level_change_lower=nan, level_change_upper=nan,
         segment_start=start, segment_end=end, growth=growth, growth_lower=g_lo,
         growth_upper=g_hi, doubling_time=dt, doubling_lower=dt_lo, doubling_upper=dt_hi,

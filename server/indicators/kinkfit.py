@@ -487,28 +487,41 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     Schmeiser 1984; the Newey-West long-run variance with a Bartlett kernel of width
     ``block`` is the same estimator up to end effects). Degrees of freedom
     ``1.5 m - q`` (overlapping batch means have about 2/3 the variance of ``m`` separate
-    batches, Meketon and Schmeiser 1984). NaN where ``m <= q``.
+    batches, Meketon and Schmeiser 1984). Where ``m <= q`` (many kinks in a short series) the
+    block is shortened to ``n // (q + 1)`` days, so that ``m > q``: shorter batches catch less
+    of a long-run correlation but some, where ``block`` would give none. NaN where that is
+    shorter than a week (the weekday effects no longer cancel within a window).
     """
     rows, n = y.shape
     obs = np.isfinite(y) & np.isfinite(mu)
     res = np.where(obs, np.nan_to_num(y) - np.nan_to_num(mu), 0.0)
     mm = np.where(obs, np.nan_to_num(mu), 0.0)
-    if block > n:
-        return np.full(rows, np.nan), np.full(rows, np.nan)
+    q = np.asarray(n_params, dtype=np.float64)
+    # a row with too many parameters for n / block batches: the block shortened to
+    # n // (q + 1) days (so m > q), never below a week
+    short = np.where(np.isfinite(q), n // np.maximum(q + 1.0, 1.0), 0).astype(np.int64)
+    width = np.minimum(block, short)
+    phi = np.full(rows, np.nan)
+    df = np.full(rows, np.nan)
     s = prefix_sums(res)
     e = prefix_sums(mm)
-    s = s[:, block:] - s[:, :-block]
-    e = e[:, block:] - e[:, :-block]
-    m = n / block
-    q = n_params.astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        phi = (s * s).sum(axis=1) / e.sum(axis=1) * m / (m - q)
-    ok = m > q
-    return np.where(ok, phi, np.nan), np.where(ok, 1.5 * m - q, np.nan)
+    for b in np.unique(width):
+        if b < _WEEK or b > n:
+            continue
+        r = np.flatnonzero(width == b)
+        sb = s[r, b:] - s[r, :-b]
+        eb = e[r, b:] - e[r, :-b]
+        m = n / b
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            phi[r] = (sb * sb).sum(axis=1) / eb.sum(axis=1) * m / (m - q[r])
+        df[r] = 1.5 * m - q[r]
+    ok = np.isfinite(df) & (df > 0)
+    return np.where(ok, phi, np.nan), np.where(ok, df, np.nan)
 
 
 def date_aware_covariance(fit: KinkFit, day_of_week: bool = True,
-                          ramp: FloatArray | None = None) -> FloatArray:
+                          ramp: FloatArray | None = None,
+                          dated: BoolArray | None = None) -> FloatArray:
     """Inverse information of :class:`KinkFit`'s coefficients with the kink dates free (unit
     dispersion): the block of ``(X, V)' W (X, V)`` inverted, ``W = diag(mu)``, where ``V`` has
     one column per kink, the derivative of the linear predictor with respect to its date,
@@ -521,9 +534,11 @@ def date_aware_covariance(fit: KinkFit, day_of_week: bool = True,
     :attr:`KinkFit.covariance` (a block of an inverse information exceeds the inverse of the
     block). Rows that did not converge are NaN; a kink whose date column is collinear with the
     rest keeps the conditional covariance. With ``ramp`` (:func:`smooth_ramp`, the fit's
-    smoothed hinges) the date column is ``-(d_k / n) K'(t - tau_k)``.
+    smoothed hinges) the date column is ``-(d_k / n) K'(t - tau_k)``. ``dated`` (shape of
+    :attr:`KinkFit.kinks`) marks the kinks whose date was estimated; the others (fixed knots,
+    see :mod:`server.indicators.local_change`) get no date column. Default: every kink.
     """
-    return _kink_covariance(fit, day_of_week, None, None, ramp=ramp)
+    return _kink_covariance(fit, day_of_week, None, None, ramp=ramp, dated=dated)
 
 
 def hac_covariance(fit: KinkFit, counts: ArrayLike, lags: int, *, date_free: bool = True,
@@ -547,7 +562,8 @@ def hac_covariance(fit: KinkFit, counts: ArrayLike, lags: int, *, date_free: boo
 
 
 def _kink_covariance(fit: KinkFit, day_of_week: bool, y: FloatArray | None, lags: int | None,
-                     date_free: bool = True, ramp: FloatArray | None = None) -> FloatArray:
+                     date_free: bool = True, ramp: FloatArray | None = None,
+                     dated: BoolArray | None = None) -> FloatArray:
     """:func:`date_aware_covariance` (``y`` None) or :func:`hac_covariance`."""
     rows, kmax = fit.kinks.shape
     n = fit.mu.shape[1]
@@ -565,6 +581,8 @@ def _kink_covariance(fit: KinkFit, day_of_week: bool, y: FloatArray | None, lags
         has = kinks >= 0
         if date_free and kmax:
             d = np.nan_to_num(fit.coef[idx, 2 : 2 + kmax]) / n
+            if dated is not None:  # a fixed knot: no date column (an all-zero one is dropped)
+                d = np.where(dated[idx], d, 0.0)
             if ramp is None:
                 v = -(d[:, None, :] * ((t[None, :, None] > kinks[:, None, :])
                                        & has[:, None, :]))

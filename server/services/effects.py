@@ -61,6 +61,10 @@ TESTING_COLUMNS = (
 
 #: The kernel's smallest relative change of R reported as a break (``--min-change``).
 KERNEL_MIN_CHANGE = float(inspect.signature(detect_changepoints).parameters["min_change"].default)
+#: The kernel's days either side of a kink over which its change is measured
+#: (``--local-window``).
+KERNEL_LOCAL_WINDOW = int(
+    inspect.signature(detect_changepoints).parameters["local_window"].default)
 
 
 @dataclass(frozen=True)
@@ -94,6 +98,9 @@ class BreakOptions:
     smoothing: bool | None = None
     #: smallest relative change of R reported as a break (kink model), the kernel's default
     min_change: float = KERNEL_MIN_CHANGE
+    #: days either side of a kink over which its change of growth is measured (kink model;
+    #: None: the whole adjacent segments)
+    local_window: int | None = KERNEL_LOCAL_WINDOW
     #: the column of counts (``breaks``) or of positive values (``levels``) searched
     column: str = "cases"
 
@@ -112,6 +119,10 @@ def _checked_options(o: BreakOptions) -> None:
             f"--dispersion: expected quasipoisson or poisson, got {o.dispersion!r}")
     if o.shape not in ("kink", "step"):
         raise EstimateOptionError(f"--shape: expected kink or step, got {o.shape!r}")
+    if o.local_window is not None and o.local_window < 1:
+        raise EstimateOptionError(
+            f"--local-window: expected a whole number of days >= 1 (0 for the whole "
+            f"segments), got {o.local_window}")
     if o.delay_sd is not None and o.infection_delay is None:
         raise EstimateOptionError("--delay-sd: give --infection-delay too")
     if o.delay_sd is not None and not (math.isfinite(o.delay_sd) and o.delay_sd > 0):
@@ -161,7 +172,8 @@ def breaks_table(path: Path, options: BreakOptions) -> EffectsTable:
                 max_breaks=o.max_breaks, penalty=o.penalty, dispersion=o.dispersion,
                 level=o.level, si_mean=o.si_mean, si_sd=o.si_sd, shape=o.shape,
                 level_shifts=shifts, infection_delay=o.infection_delay,
-                delay_sd=o.delay_sd, smoothing=o.smoothing, min_change=o.min_change)
+                delay_sd=o.delay_sd, smoothing=o.smoothing, min_change=o.min_change,
+                local_window=o.local_window)
     dates = source.dates
     rows = []
     for j in range(int(res.n_breaks[0]) + 1):

@@ -291,3 +291,49 @@ def test_fit_kinks_with_smoothed_hinges_matches_statsmodels_glm(seed: int) -> No
         np.r_[fit.coef[0], 0.0, 0.0], observed=False)
     assert_allclose(ours, np.linalg.inv(info)[: x.shape[1], : x.shape[1]], rtol=1e-6,
                     atol=1e-12)
+
+
+@pytest.mark.parametrize("seed", [31, 32], ids=["seed31", "seed32"])
+def test_local_refit_matches_statsmodels_glm_with_fixed_knots(seed: int) -> None:
+    # The local change of growth (server.indicators.local_change): the kink model refitted
+    # with fixed knots `window` days either side of each kink is a Poisson GLM on a spline
+    # design with known knots (Hastie, Tibshirani & Friedman 2009, ESL 2nd ed., 5.2);
+    # statsmodels 0.14 GLM(Poisson) on kink_design(kinks + knots, ramp) gives the same
+    # coefficients, and the covariance with Muggeo's date columns for the kinks only (2003,
+    # section 2) matches the block of statsmodels' inverse expected information.
+    from server.indicators.changepoints import date_aware_covariance
+    from server.indicators.kinkfit import smooth_ramp
+    from server.indicators.local_change import fit_local
+
+    rng = np.random.default_rng(seed)
+    n = 220
+    t = np.arange(n)
+    ramp = smooth_ramp(n, 7.0, 5.0, 8.5, 3.5)
+    # growth drifting within the long last segment (a slow bend the kinks do not model)
+    eta = (np.log(80) + 0.03 * t - 0.06 * ramp[0][n + t - 60] + 0.05 * ramp[0][n + t - 110]
+           - 0.0002 * np.maximum(t - 110, 0) ** 2 / 2 + WEEKDAY[t % 7])
+    y = rng.poisson(np.exp(eta)).astype(float)
+    y[[7, 150]] = np.nan
+    observed = np.isfinite(y)
+    fit = fit_kinks(y, [60, 110], ramp=ramp)
+    local = fit_local(y, fit, window=42, min_gap=14, dispersion="quasipoisson", ramp=ramp)
+    # knots: 60 - 42 = 18 and 110 + 42 = 152 (60 + 42 and 110 - 42 are within 42 of a kink)
+    assert local.fit.kinks[0, :4].tolist() == [18, 60, 110, 152]
+    assert np.all(local.fit.kinks[0, 4:] == -1)  # room for two knots per kink
+    assert local.position[0].tolist() == [1, 2]
+    assert local.dated[0, :4].tolist() == [False, True, True, False]
+    x = kink_design(n, np.array([[18, 60, 110, 152]]), ramp=ramp)[0]
+    ref = sm.GLM(y[observed], x[observed], family=sm.families.Poisson()).fit(tol=1e-13,
+                                                                           maxiter=100)
+    assert local.fit.converged[0]
+    used = np.r_[0:6, 8:14]  # the two unused hinge columns are zero padding
+    assert_allclose(local.fit.coef[0, 6:8], 0.0)
+    assert_allclose(local.fit.coef[0, used], ref.params, rtol=0, atol=1e-6)
+    ours = date_aware_covariance(local.fit, ramp=ramp, dated=local.dated)[0][np.ix_(used, used)]
+    delta = local.fit.coef[0, 3:5] / n
+    v = -delta[None, :] * np.stack([ramp[1][n + t - 60], ramp[1][n + t - 110]], axis=1)
+    xv = np.concatenate([x, v], axis=1)[observed]
+    info = -sm.GLM(y[observed], xv, family=sm.families.Poisson()).hessian(
+        np.r_[local.fit.coef[0, used], 0.0, 0.0], observed=False)
+    assert_allclose(ours, np.linalg.inv(info)[: x.shape[1], : x.shape[1]], rtol=1e-6,
+                    atol=1e-12)

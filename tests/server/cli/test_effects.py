@@ -228,3 +228,30 @@ def test_effects_breaks_refuses_a_delay_sd_without_a_delay(tmp_path: Path) -> No
     result = CliRunner().invoke(app, ["effects", "breaks", str(path), "--delay-sd", "2"])
     assert result.exit_code != 0
     assert "--delay-sd" in result.output and "--infection-delay" in result.output
+
+
+@pytest.mark.parametrize("window", [0, 42, 30], ids=["whole", "default", "thirty"])
+def test_effects_breaks_passes_the_local_window_to_the_kernel(tmp_path: Path,
+                                                               window: int) -> None:
+    # the growth changes equal the kernel's with the same local window (0: whole segments)
+    path = _write(tmp_path, {"cases": _two_kinks(8)})
+    result = CliRunner().invoke(app, ["effects", "breaks", str(path), "--local-window",
+                                      str(window)])
+    assert result.exit_code == 0, result.output
+    rows = _rows(result.output)
+    cases = _two_kinks(8)
+    cases[MISSING] = np.nan
+    ref = detect_changepoints(cases, local_window=window or None)
+    shown = [float(r["growth_change"]) for r in rows[1:]]
+    assert len(shown) == ref.n_breaks[0] >= 1
+    assert_allclose(shown, ref.growth_change[0, : len(shown)], rtol=1e-12)
+    # the windows give different changes here (the rows show which one ran)
+    other = detect_changepoints(cases, local_window=None if window else 42)
+    assert not np.allclose(shown, other.growth_change[0, : len(shown)])
+
+
+def test_effects_breaks_refuses_a_negative_local_window(tmp_path: Path) -> None:
+    path = _write(tmp_path, {"cases": _two_kinks(5)})
+    result = CliRunner().invoke(app, ["effects", "breaks", str(path), "--local-window", "-3"])
+    assert result.exit_code != 0
+    assert "--local-window" in result.output

@@ -353,3 +353,66 @@ def test_smoothing_needs_a_delay_and_the_kink_shape() -> None:
         detect_changepoints(y, smoothing=True, shape="step", infection_delay=8.5)
     with pytest.raises(ValueError, match="delay_sd"):
         detect_changepoints(y, infection_delay=8.5, delay_sd=-1.0)
+
+
+def test_block_dispersion_shortens_the_block_when_parameters_outnumber_the_batches() -> None:
+    # 240 days in 42-day blocks are 5.7 batches: with q = 6 parameters the 42-day estimate
+    # has no degrees of freedom left; the block is shortened to 240 // 7 = 34 days, the same
+    # number as asking for 34-day blocks directly; below a week there is none (NaN)
+    rng = np.random.default_rng(5)
+    y = rng.poisson(200.0, size=(2, 240)).astype(float)
+    mu = np.full((2, 240), 200.0)
+    q = np.array([6, 2])
+    phi, df = block_dispersion(y, mu, 42, q)
+    phi34, df34 = block_dispersion(y[:1], mu[:1], 34, q[:1])
+    phi42, df42 = block_dispersion(y[1:], mu[1:], 42, q[1:])
+    assert np.isfinite(phi[0])
+    assert_allclose([phi[0], df[0]], [phi34[0], df34[0]])
+    assert_allclose([phi[1], df[1]], [phi42[0], df42[0]])
+    assert_allclose(df[0], 1.5 * 240 / 34 - 6)
+    few, few_df = block_dispersion(y[:1], mu[:1], 42, np.array([40]))
+    assert np.isnan(few[0]) and np.isnan(few_df[0])
+
+
+def test_local_knots_sit_a_window_from_each_kink_inside_long_segments() -> None:
+    from server.indicators.local_change import local_knots
+
+    kinks = np.array([[60, 110, -1], [140, 50, -1], [-1, -1, -1], [20, 40, 230]])
+    knots = local_knots(kinks, 240, 42, 14)
+    # row 0: 18 and 152 (60 + 42 and 110 - 42 lie within 42 days of the other kink)
+    assert knots[0][knots[0] >= 0].tolist() == [18, 152]
+    # row 1 (kinks in any order): 50 - 42 = 8 is too near the start; 92 (50 + 42) and 98
+    # (140 - 42) lie 6 apart: the first kept; 182 (140 + 42)
+    assert knots[1][knots[1] >= 0].tolist() == [92, 182]
+    assert np.all(knots[2] == -1)
+    # row 3: 82 (40 + 42); 188 (230 - 42); the others too near the ends or a kink
+    assert knots[3][knots[3] >= 0].tolist() == [82, 188]
+
+
+def test_local_window_changes_only_the_growth_change_and_widens_it_in_long_segments() -> None:
+    # growth drifting within a long last segment: the local change compares the growth
+    # near the kink, so it is nearer the change at the kink than the whole-segment one and
+    # its interval is wider; the dates, segments and their growth rates stay those of the
+    # whole-segment fit
+    rng = np.random.default_rng(41)
+    n = 240
+    t = np.arange(n)
+    eta = (np.log(150) + 0.02 * t - 0.05 * np.maximum(t - 60, 0)
+           + 0.0002 * np.maximum(t - 60, 0) ** 2 / 2 + WEEKDAY[t % 7])
+    y = rng.poisson(np.exp(eta)).astype(float)[None, :]
+    whole = detect_changepoints(y, local_window=None)
+    local = detect_changepoints(y, local_window=42)
+    for name in ("breaks", "break_lower", "break_upper", "growth", "growth_lower",
+                 "growth_upper", "n_breaks"):
+        assert_allclose(getattr(local, name), getattr(whole, name))
+    assert whole.n_breaks[0] == 1  # the drift is too gradual for a second kink
+    k = 0
+    assert abs(whole.breaks[0, k] - 60) <= 3
+    w_whole = whole.growth_change_upper[0, k] - whole.growth_change_lower[0, k]
+    w_local = local.growth_change_upper[0, k] - local.growth_change_lower[0, k]
+    assert w_local > w_whole
+    # the change at day 60 itself is -0.05
+    assert abs(local.growth_change[0, k] + 0.05) < abs(whole.growth_change[0, k] + 0.05)
+    assert local.growth_change_lower[0, k] < -0.05 < local.growth_change_upper[0, k]
+    with pytest.raises(ValueError, match="local_window"):
+        detect_changepoints(y, local_window=0)
