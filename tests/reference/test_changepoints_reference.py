@@ -284,13 +284,24 @@ def test_fit_kinks_with_smoothed_hinges_matches_statsmodels_glm(seed: int) -> No
     assert_allclose(fit.covariance[0], ref.cov_params(), rtol=1e-6, atol=1e-12)
     assert_allclose(fit.mu[0, observed], ref.fittedvalues, rtol=1e-6)
     ours = date_aware_covariance(fit, ramp=ramp)[0]
-    delta = fit.coef[0, 2:4] / n
-    v = -delta[None, :] * np.stack([ramp[1][n + t - 55], ramp[1][n + t - 110]], axis=1)
+    assert_allclose(ours, _muggeo_reference(y, x, fit.coef[0], fit.coef[0, 2:4], [55, 110],
+                                            ramp), rtol=1e-6, atol=1e-12)
+
+
+def _muggeo_reference(y: np.ndarray, x: np.ndarray, coef: np.ndarray, slopes: np.ndarray,
+                      kinks: list[int], ramp: np.ndarray) -> np.ndarray:
+    """statsmodels' inverse expected information of the design ``x`` with Muggeo's date
+    columns ``-(d_k / n) K'(t - tau_k)`` for ``kinks`` (slope changes ``slopes``, times n),
+    its block of the other coefficients."""
+    n = y.shape[0]
+    t = np.arange(n)
+    observed = np.isfinite(y)
+    v = -(np.asarray(slopes) / n)[None, :] * np.stack([ramp[1][n + t - k] for k in kinks],
+                                                      axis=1)
     xv = np.concatenate([x, v], axis=1)[observed]
     info = -sm.GLM(y[observed], xv, family=sm.families.Poisson()).hessian(
-        np.r_[fit.coef[0], 0.0, 0.0], observed=False)
-    assert_allclose(ours, np.linalg.inv(info)[: x.shape[1], : x.shape[1]], rtol=1e-6,
-                    atol=1e-12)
+        np.r_[coef, np.zeros(len(kinks))], observed=False)
+    return np.linalg.inv(info)[: x.shape[1], : x.shape[1]]
 
 
 @pytest.mark.parametrize("seed", [31, 32], ids=["seed31", "seed32"])
@@ -330,10 +341,6 @@ def test_local_refit_matches_statsmodels_glm_with_fixed_knots(seed: int) -> None
     assert_allclose(local.fit.coef[0, 6:8], 0.0)
     assert_allclose(local.fit.coef[0, used], ref.params, rtol=0, atol=1e-6)
     ours = date_aware_covariance(local.fit, ramp=ramp, dated=local.dated)[0][np.ix_(used, used)]
-    delta = local.fit.coef[0, 3:5] / n
-    v = -delta[None, :] * np.stack([ramp[1][n + t - 60], ramp[1][n + t - 110]], axis=1)
-    xv = np.concatenate([x, v], axis=1)[observed]
-    info = -sm.GLM(y[observed], xv, family=sm.families.Poisson()).hessian(
-        np.r_[local.fit.coef[0, used], 0.0, 0.0], observed=False)
-    assert_allclose(ours, np.linalg.inv(info)[: x.shape[1], : x.shape[1]], rtol=1e-6,
-                    atol=1e-12)
+    assert_allclose(ours, _muggeo_reference(y, x, local.fit.coef[0, used],
+                                            local.fit.coef[0, 3:5], [60, 110], ramp),
+                    rtol=1e-6, atol=1e-12)
