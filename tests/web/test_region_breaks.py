@@ -77,6 +77,13 @@ def test_a_region_page_lists_its_stream_breaks(demo_app_client: TestClient, code
     assert {"break", "admissions break", "wastewater break"} <= labels
 
 
+def test_the_area_capacity_page_links_to_the_area_page(demo_app_client: TestClient) -> None:
+    assert login(demo_app_client, "vic.viewer") == 303
+    page = demo_app_client.get("/staff/areas/R1/capacity")
+    assert page.status_code == 200
+    assert '<a href="/staff/district/R1">' in page.text
+
+
 def test_an_area_page_counts_are_the_sums_of_its_districts(demo_app_client: TestClient) -> None:
     # strict sum of counts up the region tree (DESIGN.md "Data model"; common practice, no
     # source): every day of the table equals the sum of the districts' stored cases
