@@ -22,7 +22,8 @@ from web.palette import INK, OUTLINE, tier_colours
 
 __all__ = [
     "add_marks", "admissions_fan_figure", "capacity_fan_figure", "chart_marks", "criterion_figure",
-    "effects_figure", "figure_json", "nowcast_figure", "sparkline_points", "timeline_figure",
+    "counts_figure", "effects_figure", "figure_json", "nowcast_figure", "sparkline_points",
+    "timeline_figure",
 ]
 
 _LAYOUT = {
@@ -137,6 +138,17 @@ def nowcast_figure(series: NowcastSeries, label: str = "Cases") -> go.Figure:
         mode="lines+markers", line={"color": "#6f5f9e", "width": 2, "dash": "dash"},
         marker={"size": 5}, name="nowcast (expected final count)"))
     fig.update_layout(title={"text": f"{label}: reported and nowcast", "x": 0}, **_LAYOUT)
+    fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
+    return fig
+
+
+def counts_figure(dates: Sequence[date], values: Sequence[float | None], label: str
+                  ) -> go.Figure:
+    """Daily counts as bars (a gap where the count is unknown), titled ``label``."""
+    fig = go.Figure(go.Bar(x=[d.isoformat() for d in dates],
+                           y=_nan(values),
+                           marker={"color": "#9aa5b1"}, name=label))
+    fig.update_layout(title={"text": label, "x": 0}, **_LAYOUT)
     fig.update_yaxes(rangemode="tozero", gridcolor="#ebe8e1")
     return fig
 

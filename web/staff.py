@@ -15,6 +15,7 @@ from server.readmodels.capacity_pages import WARD_LOS_MEDIAN, area_capacity, dis
 from server.readmodels.district_marks import district_marks
 from server.readmodels.dossier import district_dossier, explanation_page
 from server.readmodels.morning import MorningOverview, morning_overview
+from server.readmodels.region_breaks import is_above_districts, region_breaks
 from server.services.feeds import load_catalogue
 from server.services.forecast_record import record_lines
 from server.services.phase_indicators import district_phase
@@ -23,6 +24,7 @@ from web.charts import (
     add_marks,
     admissions_fan_figure,
     capacity_fan_figure,
+    counts_figure,
     criterion_figure,
     figure_json,
     nowcast_figure,
@@ -80,7 +82,11 @@ def district(
     start: date | None = None, end: date | None = None, policy: str = "",
 ) -> Response:
     """Charts per indicator with thresholds and bands, the tier timeline, recent revisions, under
-    one active policy (``?policy=NAME``, default the lead policy; 404 for one not active)."""
+    one active policy (``?policy=NAME``, default the lead policy; 404 for one not active).
+    For an area's or the county's code: its summed cases and admissions with the breaks of
+    every stream, their agreement and its events (:func:`region_page`)."""
+    if is_above_districts(session=session, code=code):
+        return region_page(request, session, code, start, end)
     dossier = district_dossier(session=session, code=code, start=start, end=end,
                                policy=policy.strip() or None)
     now = next((t for t in reversed(dossier.official) if t is not None), None)
@@ -103,6 +109,24 @@ def district(
         "forecast_charts": [figure_json(admissions_fan_figure(f)) for f in forecast.fans]
         if forecast else [],
         "above": above_district(session=session, code=dossier.code),
+    })
+
+
+def region_page(request: Request, session: SessionDep, code: str, start: date | None,
+                end: date | None) -> Response:
+    """The page of an area or the county (:mod:`server.readmodels.region_breaks`)."""
+    r = region_breaks(session=session, code=code, start=start, end=end)
+
+    def marked(fig: object) -> str:
+        return figure_json(add_marks(fig, r.marks, r.start, r.end))
+
+    charts = [marked(counts_figure(r.dates, r.cases, "Cases (sum of the districts)"))]
+    if r.admissions is not None:
+        charts.append(marked(counts_figure(r.dates, r.admissions,
+                                           "Hospital admissions (sum of the districts)")))
+    return render(request, "staff/region.html", {
+        "r": r, "marks": r.marks, "charts": charts,
+        "tiers": region_tiers(session=session, code=r.code),
     })
 
 

@@ -1,4 +1,5 @@
-"""Read model: what the district page marks on its charts and lists under them.
+"""Read model: what the district page marks on its charts and lists under them, for a district
+or for a region above the districts (an area, the county; :mod:`server.readmodels.region_breaks`).
 
 * *Breaks*: change points of the district's daily cases over the period shown and the 90 days
   before, found as the effects page finds them
@@ -11,6 +12,11 @@
 * *Events*: published tier changes and recorded events of the district, its area and the county
   in the period, with their before/after estimates (:func:`server.services.event_effects.
   effects_page`; "too early to tell" until the data allow).
+* *A region above the districts*: its cases and admissions are those of its districts summed
+  (:func:`server.services.stream_breaks.daily_counts`, a day known only when every district
+  reported), listed in ``summed``; its wastewater is *not* summed over plants but that of the
+  one plant serving most of its people, the plants serving it listed with their shares in
+  ``plants``; no testing changes (the ``testing_change`` screen runs per district).
 * *Testing changes*: the changes the ``testing_change`` screen knew over the period
   (:func:`server.indicators.testing_known.testing_changes_as_known`, as of the day each was
   detected plus its estimation days), with the newest analyst verdict on each
@@ -38,10 +44,10 @@ from server.services.stream_breaks import (
     stream_breaks,
 )
 from server.services.testing_reviews import SAME_CHANGE_DAYS, Verdict, verdicts_of
-from server.store.models import Region
+from server.store.models import Catchment, Region
 from server.store.reads import read_dense
 
-__all__ = ["BreakMark", "DistrictMarks", "TestingMark", "district_marks"]
+__all__ = ["BreakMark", "DistrictMarks", "TestingMark", "district_marks", "members_of"]
 
 #: Days before the period the case-break search and the testing screen also read.
 LEAD_DAYS = 90
@@ -86,6 +92,50 @@ class DistrictMarks:
     #: the plant whose wastewater stands for the district
     plant: str | None = None
     options: StreamOptions = StreamOptions()
+    #: the region's level: "district", or that of an area or the county
+    level: str = "district"
+    #: districts (code, name) whose cases and admissions were summed: empty for a district
+    summed: tuple[tuple[str, str], ...] = ()
+    #: plants (code, share of the summed districts' people served) serving a region above the
+    #: districts, largest share first; its wastewater is that of ``plant``, not their sum
+    plants: tuple[tuple[str, float], ...] = ()
+    #: False when the testing screen does not run for the region (above the districts)
+    testing_searched: bool = True
+
+
+def members_of(session: Session, code: str
+               ) -> tuple[str, tuple[tuple[str, str], ...], tuple[tuple[str, float], ...]]:
+    """The level of region ``code``; for a region above the districts its districts (code, name)
+    and the plants serving them with the share of their people each serves (catchment share
+    times population, as :func:`server.services.stream_breaks.main_plants` weighs them)."""
+    regions = {r.id: r for r in session.scalars(select(Region))}
+    me = next((r for r in regions.values() if r.code == code), None)
+    if me is None or me.level in ("district", "plant"):
+        return (me.level if me is not None else "district"), (), ()
+
+    def under(r: Region) -> bool:
+        seen: set[int] = set()
+        node = r.parent_id
+        while node is not None and node not in seen:
+            if node == me.id:
+                return True
+            seen.add(node)
+            node = regions[node].parent_id if node in regions else None
+        return False
+
+    districts = sorted((r for r in regions.values() if r.level == "district" and under(r)),
+                       key=lambda r: r.code)
+    people = {r.id: float(r.population or 0) for r in districts}
+    served: dict[str, float] = {}
+    for plant, district, share in session.execute(
+            select(Catchment.plant_id, Catchment.district_id, Catchment.share)):
+        if district in people and plant in regions:
+            name = regions[plant].code
+            served[name] = served.get(name, 0.0) + float(share) * people[district]
+    total = sum(people.values())
+    plants = tuple((p, v / total if total > 0 else float("nan"))
+                   for p, v in sorted(served.items(), key=lambda x: (-x[1], x[0])))
+    return me.level, tuple((r.code, r.name) for r in districts), plants
 
 
 def _dense(session: Session, measure: str, code: str, first: dt.date, last: dt.date
@@ -134,7 +184,10 @@ def _testing(tests: np.ndarray | None, positives: np.ndarray | None, first: dt.d
 def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date,
                    options: StreamOptions | None = None) -> DistrictMarks:
     """Breaks (of every stream), events and testing changes of district ``code`` from
-    ``start`` to ``end``."""
+    ``start`` to ``end``; for an area or the county (``code`` above the districts) the breaks
+    of its summed cases and admissions and of its main plant, and its and the county's events.
+    """
+    level, summed, plants = members_of(session, code)
     first = start - dt.timedelta(days=LEAD_DAYS)
     streams = stream_breaks(session=session, codes=[code],
                             first=start - dt.timedelta(days=SEARCH_LEAD_DAYS), last=end,
@@ -152,10 +205,11 @@ def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date,
     mine = {code} | ({c for c in row if c is not None} if row is not None else set())
     events = tuple(e for e in effects_page(session=session, start=start, end=end).events
                    if e.region in mine)
-    testing = _testing(_dense(session, "tests", code, first, end),
-                       _dense(session, "positives", code, first, end), first, start,
-                       verdicts_of(session=session, code=code))
+    testing = () if summed else _testing(
+        _dense(session, "tests", code, first, end), _dense(session, "positives", code, first, end),
+        first, start, verdicts_of(session=session, code=code))
     return DistrictMarks(breaks=breaks, breaks_known=known, events=events, testing=testing,
                          stream_breaks=others,
                          streams_searched=tuple((s, streams.searched[s]) for s in STREAMS),
-                         plant=streams.plant, options=streams.options)
+                         plant=streams.plant, options=streams.options, level=level,
+                         summed=summed, plants=plants, testing_searched=not summed)

@@ -145,6 +145,18 @@ def test_district_page_draws_charts_without_csp_errors(server: str, page: object
     shot(page, "05-staff-district")
 
 
+def test_area_page_draws_its_counts_with_stream_breaks(server: str, page: object) -> None:
+    sign_in(page, server, "vic.viewer")
+    page.goto(server + "/staff/district/R1")
+    page.wait_for_selector(".chart[data-drawn]", timeout=15000)
+    assert page.locator(".chart[data-drawn]").count() == page.locator(".chart").count() == 2
+    assert page.locator('tr[data-mark="admissions"]').count() > 0
+    assert page.locator('tr[data-mark="wastewater"]').count() > 0
+    assert page.locator("p[data-summed]").is_visible()
+    assert not [e for e in page.csp_errors if "Content Security Policy" in e]
+    shot(page, "05b-staff-area")
+
+
 def test_explanation_page_names_thresholds(server: str, page: object) -> None:
     sign_in(page, server, "vic.viewer")
     page.goto(server + "/staff/district/D01/explain")

@@ -141,6 +141,7 @@ PAGES = [
     ("/staff/district/D13", "viewer"), ("/staff/feeds?feed=long-csv", "analyst"),
     ("/staff/district/D01/explain", "viewer"),
     ("/staff/district/D01/explain?day=2026-11-20&effects=1", "viewer"),
+    ("/staff/district/R1", "viewer"), ("/staff/district/C0", "viewer"),
 ]
 
 
