@@ -137,6 +137,8 @@ class DistrictDossier:
     policies: tuple[str, ...] = ()
     #: the area whose tiers these are, when the policy assesses areas (else None)
     assessed_area: str | None = None
+    #: code of the district's area (its page: breaks summed over the area's districts)
+    area_code: str | None = None
 
 
 def _region(session: Session, code: str) -> tuple[Region, str | None]:
@@ -284,7 +286,9 @@ def district_dossier(
         for day in (last - timedelta(days=k) for k in range(REVISION_DAYS))
     )
     return DistrictDossier(
-        code=region.code, name=region.name, area=area, population=int(region.population),
+        code=region.code, name=region.name, area=area,
+        area_code=session.scalar(select(Region.code).where(Region.id == region.parent_id)),
+        population=int(region.population),
         ruleset=f"{row.name} {row.version}", tier_names=tuple(t.name for t in rs.tiers),
         start=start, end=end, first_day=first, last_day=last, criteria=tuple(criteria),
         dates=tuple(dates), recommended=tuple(a.recommended_tier for a in rows),

@@ -146,3 +146,13 @@ def test_a_region_page_refuses_a_period_ending_before_it_starts(
                                  params={"start": "2026-10-02", "end": "2026-10-01"})
     assert answer.status_code == 422
     assert "start 2026-10-02 is after end 2026-10-01" in answer.text
+
+
+def test_the_district_page_links_to_its_areas_page(demo_app_client: TestClient) -> None:
+    assert login(demo_app_client, "vic.viewer") == 303
+    code, _name = _districts_of(demo_app_client, "R1")[0]
+    page = demo_app_client.get(f"/staff/district/{code}")
+    assert page.status_code == 200
+    link = re.search(r'<a href="/staff/district/([^"]+)" data-area-link>', page.text)
+    assert link is not None and link.group(1) == "R1"
+    assert demo_app_client.get(f"/staff/district/{link.group(1)}").status_code == 200
