@@ -162,8 +162,31 @@ def test_transmission_day_is_the_break_less_the_delay_plus_mean_age() -> None:
     lag = 8.5 - (5.0**2 + 7.0**2) / (2 * 7.0)
     k = int(res.n_breaks[0])
     assert_allclose(res.transmission_day[0, :k], res.breaks[0, :k] - lag)
-    assert_allclose(res.transmission_lower[0, :k], res.break_lower[0, :k] - lag)
+    # the interval of whole break days [lower, upper] is the continuous span from half a day
+    # before lower to half a day after upper
+    assert_allclose(res.transmission_lower[0, :k], res.break_lower[0, :k] - 0.5 - lag)
+    assert_allclose(res.transmission_upper[0, :k], res.break_upper[0, :k] + 0.5 - lag)
     assert np.all(np.isnan(detect_changepoints(_kinked(23)).transmission_day))
+
+
+def test_break_date_intervals_use_the_long_run_dispersion_when_it_is_larger() -> None:
+    # residuals correlated over weeks (a slow wave on top of the kinks) raise the long-run
+    # dispersion above the daily one: the date intervals widen with it (and the F(1, df)
+    # cut-off), never narrow; the dates themselves do not move
+    rng = np.random.default_rng(33)
+    t = np.arange(200)
+    wave = 0.15 * np.sin(2 * np.pi * t / 40)
+    eta = (np.log(150) + 0.03 * t - 0.06 * np.maximum(t - 70, 0)
+           + 0.04 * np.maximum(t - 140, 0) + wave + WEEKDAY[t % 7])
+    y = np.stack([rng.poisson(np.exp(eta)).astype(float), _kinked(34)])
+    plain = detect_changepoints(y, dependence_block=None)
+    wide = detect_changepoints(y, dependence_block=42)
+    has = plain.breaks >= 0
+    assert_allclose(wide.breaks, plain.breaks)
+    w0 = (plain.break_upper - plain.break_lower)[has]
+    w1 = (wide.break_upper - wide.break_lower)[has]
+    assert np.all(w1 >= w0)
+    assert np.any(w1[: int(has[0].sum())] > w0[: int(has[0].sum())])
 
 
 def test_hinge_scan_gain_matches_a_direct_least_squares_fit() -> None:
