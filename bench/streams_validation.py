@@ -12,6 +12,9 @@ its faecal marker) prints, over all seeds:
   (also within +-10 days);
 - false breaks: share of estimated breaks with no true step (any size) within +-7 days (for
   cases also none within 7 days of a testing change);
+- date intervals: for steps with a break within 10 days, the share whose infection day lies
+  in the nearest break's 95 % date interval (whole break days as continuous time, half a day
+  beyond each end, shifted to transmission time like the break);
 - agreement: for case breaks within 5 days of a true step, the share whose admissions /
   wastewater agree (a break of the same direction) under the default alignment (+3 / -4
   days) and tolerance (7 days), and the
@@ -77,11 +80,16 @@ def evaluate(seed: int, regions: int, days: int, min_change: float) -> dict[str,
         for stream, b in found.items():
             days_found = b[i][b[i] >= 0]
             when = days_found - delay[stream] + lag  # transmission time
+            lo = res[stream].break_lower[i][b[i] >= 0] - 0.5 - delay[stream] + lag
+            hi = res[stream].break_upper[i][b[i] >= 0] + 0.5 - delay[stream] + lag
             for d, ratio in steps:
                 if ratio <= 0.8 or ratio >= 1.2:
                     gap = np.abs(when - d).min() if when.size else np.inf
                     add(f"{stream}_hit", float(gap <= HIT))
                     add(f"{stream}_hit10", float(gap <= 10))
+                    if gap <= 10:  # the nearest break's date interval, in transmission time
+                        k = int(np.argmin(np.abs(when - d)))
+                        add(f"{stream}_date_cover", float(lo[k] <= d <= hi[k]))
             for w, c in zip(when, days_found, strict=True):
                 near_step = any(abs(w - d) <= NEAR for d, _ in steps)
                 near_test = stream == "cases" and sc.testing_day[i] >= 0 and abs(
@@ -122,6 +130,9 @@ def main() -> None:
         print(f"{s:>10}: steps >= 20 % found within +-{HIT} d: {share(s + '_hit')} "
               f"(+-10 d: {share(s + '_hit10')}); false breaks (no step within {NEAR} d): "
               f"{share(s + '_false')}")
+    for s in ("cases", "admissions", "wastewater"):
+        print(f"{s:>10}: 95 % date interval holds the step (nearest break within 10 d): "
+              f"{share(s + '_date_cover')}")
     for s in ("admissions", "wastewater"):
         print(f"{s:>10} agree with case breaks near a true step: {share(s + '_agree_true')}; "
               f"with case breaks near none: {share(s + '_agree_false')}")
