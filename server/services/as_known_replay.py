@@ -254,7 +254,7 @@ def as_known_indicators(
     area_names: list[str | None] = [area_parent.get(c) for c in base.regions]
     # window column j of morning t is known at delay t + 1 - (t - w + 1 + j) = w - j
     window_delay = np.arange(w, 0, -1, dtype=np.int64)
-    newest_prev: NDArray[np.float64] | None = None
+    newest_prev: dict[str, NDArray[np.float64]] = {}  # kind on samples -> newest sample day
     for block_start in range(0, n_days, BLOCK_DAYS):
         days = range(block_start, min(block_start + BLOCK_DAYS, n_days))
         snaps: dict[str, list[NDArray[np.float64]]] = {m: [] for m in measures}
@@ -295,7 +295,8 @@ def as_known_indicators(
             est = s.estimate.reshape(n, r, w)
             if name in on_samples:
                 last = _newest_column(est)
-                newest_prev, est_last, age = _new_samples(est, last, newest_prev, days)
+                newest_prev[name], est_last, age = _new_samples(est, last,
+                                                                newest_prev.get(name), days)
                 parts[f"{name}.estimate"].append(est_last)
                 for key, arr in (("lower", s.lower), ("upper", s.upper)):
                     if arr is not None:
