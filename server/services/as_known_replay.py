@@ -241,7 +241,8 @@ def as_known_indicators(
     bounds = np.searchsorted(rows.known_day[order], np.arange(-1, n_days), side="right")
     w = WINDOW_DAYS
     wanted = sorted(ruleset.used_indicators())
-    history = _History(base, ruleset, tree, history_indicators(ruleset), n_days, len(view.regions))
+    history = _History(base, ruleset, tree, history_indicators(ruleset), n_days, len(view.regions),
+                       on_samples)
     if history.names:
         history.start(rows, measures, needs, [size[group_of[m]] for m in measures], pick)
     windowed = [n for n in wanted if n not in history.names]
@@ -253,7 +254,7 @@ def as_known_indicators(
     area_names: list[str | None] = [area_parent.get(c) for c in base.regions]
     # window column j of morning t is known at delay t + 1 - (t - w + 1 + j) = w - j
     window_delay = np.arange(w, 0, -1, dtype=np.int64)
-    newest_prev: NDArray[np.float64] | None = None
+    newest_prev: dict[str, NDArray[np.float64]] = {}  # kind on samples -> newest sample day
     for block_start in range(0, n_days, BLOCK_DAYS):
         days = range(block_start, min(block_start + BLOCK_DAYS, n_days))
         snaps: dict[str, list[NDArray[np.float64]]] = {m: [] for m in measures}
@@ -294,7 +295,8 @@ def as_known_indicators(
             est = s.estimate.reshape(n, r, w)
             if name in on_samples:
                 last = _newest_column(est)
-                newest_prev, est_last, age = _new_samples(est, last, newest_prev, days)
+                newest_prev[name], est_last, age = _new_samples(est, last,
+                                                                newest_prev.get(name), days)
                 parts[f"{name}.estimate"].append(est_last)
                 for key, arr in (("lower", s.lower), ("upper", s.upper)):
                     if arr is not None:
@@ -334,7 +336,10 @@ class _History:
     """The as-known values of the indicators whose kinds need their calendar and a long history
     (:attr:`~server.services.kind_model.Kind.history`): each morning ``t`` they are computed
     over every day from the first up to ``t`` with the data known that morning, as the daily
-    evaluation of that morning computes them, and day ``t``'s column is kept.
+    evaluation of that morning computes them, and day ``t``'s column is kept. Of a kind on
+    samples (``wastewater_level``) the newest sample's value is kept instead, on the morning
+    it first became known, with its age, as the windows keep it (:func:`_new_samples`);
+    ``invalid`` is that morning's.
 
     The stored values are checked once per row (:func:`usable` is elementwise), so each
     morning only slices the arrays known so far."""
@@ -344,8 +349,10 @@ class _History:
 
     def __init__(self, base: DistrictData, ruleset: Ruleset,
                  tree: Mapping[str, str | None] | None, names: Sequence[str], n_days: int,
-                 n_regions: int) -> None:
+                 n_regions: int, on_samples: Sequence[str] = ()) -> None:
         self.base, self.ruleset, self.tree, self.names = base, ruleset, tree, tuple(names)
+        self.on_samples = set(on_samples) & set(self.names)
+        self.newest: dict[str, NDArray[np.float64]] = {}  # kind on samples -> newest sample day
         self.first = np.datetime64(base.dates[0], "D") if base.dates.size else None
         self.out: dict[str, dict[str, NDArray]] = {}  # type: ignore[type-arg]
         self.shape = (n_regions, n_days)
@@ -390,6 +397,9 @@ class _History:
                                      names=self.names)
         for name, s in series.items():
             got = self.out.setdefault(name, {})
+            if name in self.on_samples:
+                self._newest_sample(got, s, t, name)
+                continue
             for key in self.KEYS:
                 arr = getattr(s, key)
                 if arr is None:
@@ -398,6 +408,23 @@ class _History:
                     got[key] = (np.zeros(self.shape, dtype=bool) if arr.dtype == bool
                                 else np.full(self.shape, np.nan))
                 got[key][:, t] = arr[:, -1]
+
+    def _newest_sample(self, got: dict[str, NDArray], s: IndicatorSeries, t: int,  # type: ignore[type-arg]
+                       name: str) -> None:
+        """Keep morning ``t``'s newest sample of ``s`` in ``got`` (the class docstring)."""
+        est = s.estimate[None]  # one block of one morning whose window is days 0..t
+        last = _newest_column(est)
+        self.newest[name], value, age = _new_samples(est, last, self.newest.get(name),
+                                                     range(t, t + 1))
+        kept = {"estimate": value[0], "age_days": age[0]}
+        for key, arr in (("lower", s.lower), ("upper", s.upper)):
+            if arr is not None:
+                at = np.take_along_axis(arr, np.maximum(last[0], 0)[:, None], axis=1)[:, 0]
+                kept[key] = np.where(np.isfinite(value[0]), at, np.nan)
+        for key, col in kept.items():
+            got.setdefault(key, np.full(self.shape, np.nan))[:, t] = col
+        if s.invalid is not None:
+            got.setdefault("invalid", np.zeros(self.shape, dtype=bool))[:, t] = s.invalid[:, -1]
 
     def series(self) -> dict[str, IndicatorSeries]:
         """The as-known series of every such indicator (missing on mornings not computed)."""

@@ -257,7 +257,7 @@ _METHODS: tuple[Kind, ...] = (
               "population-weighted over the plants serving each district"),
     Kind(name="wastewater_level", builder=_wastewater_level,
          default_measure="ww_concentration", measure_kinds=("concentration",), level="plant",
-         on_samples=True,
+         on_samples=True, history=True,  # its baseline reaches past the replay's windows
          params=(_FLOW,
                  Param(name="baseline_days", type=int, default=365, minimum=28, maximum=3660,
                        help="days of the trailing baseline period"),

@@ -137,9 +137,10 @@ class Kind:
     ``on_samples``). ``builder`` computes it for every district. ``reads``: measures read
     whatever the declaration names (for builders that read fixed measures);
     ``open_params``: parameters the kind does not list pass unchecked (its builder checks them).
-    ``history``: its value on a day needs the calendar dates of its days and more history than
-    the as-known replay's trailing window (e.g. past seasons): the replay computes it each
-    morning from everything known that morning (:mod:`server.services.as_known_history`).
+    ``history``: its value on a day needs the calendar dates of its days or more history than
+    the as-known replay's trailing window (past seasons, a year's baseline): the replay
+    computes it each morning from everything known that morning
+    (:class:`server.services.as_known_replay._History`).
     """
 
     name: str

@@ -12,10 +12,12 @@ from numpy.testing import assert_allclose, assert_array_equal
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from rules import load_ruleset
+from rules import load_ruleset, parse_ruleset
+from server.services.as_known_replay import as_known_indicators
 from server.services.backtest import (
     BacktestError,
     as_known_cutoff,
+    data_span,
     first_known_day,
     run_backtest,
     write_timelines,
@@ -74,6 +76,41 @@ def test_as_known_values_equal_an_as_of_read_of_that_morning(
     assert_array_equal(inc.nowcast[:, j], ref["incidence_7d"].nowcast[:, -1])
     assert inc.nowcast[:, j].any()
     assert_allclose(inc.lower[:, j], ref["incidence_7d"].lower[:, -1], rtol=1e-9)
+
+
+TWO_TRENDS = """\
+name: two-trends
+version: "1"
+tiers:
+  - {{name: Quiet, staff: s0, public: p0}}
+  - {{name: Raised, staff: s1, public: p1}}
+indicators:
+  ww_trend: {{label: wastewater, params: {{window: 15}}}}
+{extra}
+criteria:
+  - {{id: ww, indicator: ww_trend, enter: [5], exit: [2]}}
+{more}
+"""
+
+
+def test_as_known_samples_of_one_indicator_do_not_depend_on_another(
+    demo_session: Session,
+) -> None:
+    # common practice, no source: a second wastewater trend declared beside the first leaves
+    # the first's as-known samples as they are alone (each keeps its own newest sample day)
+    alone = parse_ruleset(TWO_TRENDS.format(extra="", more=""))
+    both = parse_ruleset(TWO_TRENDS.format(
+        extra="  ww_long: {label: long, kind: wastewater_trend, params: {window: 29}}",
+        more="  - {id: ww2, indicator: ww_long, enter: [5], exit: [2]}"))
+    first, last = data_span(session=demo_session, measures=("ww_concentration", "ww_flow"))
+    got = {}
+    for name, rs in (("alone", alone), ("both", both)):
+        got[name] = as_known_indicators(demo_session, rs, first, last, lambda _n: None, BEHIND)[1]
+    one, two = got["alone"]["ww_trend"], got["both"]["ww_trend"]
+    assert np.isfinite(one.estimate).sum() > 100
+    assert_allclose(two.estimate, one.estimate, rtol=0, atol=0, equal_nan=True)
+    assert_allclose(two.age_days, one.age_days, rtol=0, atol=0, equal_nan=True)
+    assert np.isfinite(got["both"]["ww_long"].estimate).sum() > 100
 
 
 def test_as_known_replay_differs_from_latest_only_through_revisions(demo_session: Session) -> None:
