@@ -52,6 +52,7 @@ MIN_CHANGE = 0.1
 DATE_UNCERTAINTY = True
 CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
 SMOOTHING = True  # smoothed hinges (the kernel's default with a delay; --no-smoothing)
+INFECTIONS = False  # --infections: run on the simulated infections (the dating ceiling)
 LOCAL: int | None = 42  # local_window of detect_changepoints (--local-window; 0: none)
 HAC = False  # also print the coverage of Newey-West (HAC) intervals (--hac)
 
@@ -82,12 +83,19 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
         shifts[i, : len(flagged)] = flagged
     # the simulator's generation interval (exponential latent 3 d + infectious 4 d: mean 7,
     # SD 5) and infection-to-test delay; the method is told these, not the step dates
-    cp = detect_changepoints(sc.cases, level_shifts=shifts if SHIFTS else None,
-                             si_mean=GI_MEAN, si_sd=GI_SD, infection_delay=sc.report_shift,
-                             penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK,
-                             min_change=MIN_CHANGE, date_uncertainty=DATE_UNCERTAINTY,
-                             smoothing=SMOOTHING and SHAPE == "kink",
-                             delay_sd=INFECTION_TO_TEST[1], local_window=LOCAL)
+    if INFECTIONS:  # the ceiling: the simulated infections themselves, no observation layer
+        cp = detect_changepoints(sc.infections, si_mean=GI_MEAN, si_sd=GI_SD,
+                                 infection_delay=0.0, penalty=PENALTY, shape=SHAPE,
+                                 dependence_block=BLOCK, min_change=MIN_CHANGE,
+                                 date_uncertainty=DATE_UNCERTAINTY, smoothing=False,
+                                 local_window=LOCAL)
+    else:
+        cp = detect_changepoints(sc.cases, level_shifts=shifts if SHIFTS else None,
+                                 si_mean=GI_MEAN, si_sd=GI_SD, infection_delay=sc.report_shift,
+                                 penalty=PENALTY, shape=SHAPE, dependence_block=BLOCK,
+                                 min_change=MIN_CHANGE, date_uncertainty=DATE_UNCERTAINTY,
+                                 smoothing=SMOOTHING and SHAPE == "kink",
+                                 delay_sd=INFECTION_TO_TEST[1], local_window=LOCAL)
     if BLOCK is None and SHAPE == "kink":  # half-widths the other block lengths would give
         phi0 = cp.fit.dispersion
         q = 2 + (cp.breaks >= 0).sum(axis=1) + (cp.fit.level_shifts >= 0).sum(axis=1)
@@ -199,8 +207,14 @@ def main() -> None:
     parser.add_argument("--local-window", type=int, default=42,
                         help="local_window of detect_changepoints: the growth change at a "
                              "kink from the days within this many of it (0: whole segments)")
+    parser.add_argument("--infections", action="store_true",
+                        help="run the change points on the simulated infections themselves "
+                             "(no ascertainment, delay or weekday effects; transmission time "
+                             "is count time): how well the epidemic's own randomness lets a "
+                             "step be dated")
     args = parser.parse_args()
-    global LOCAL
+    global LOCAL, INFECTIONS
+    INFECTIONS = args.infections
     LOCAL = args.local_window or None
     global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY, HAC, SMOOTHING
     SMOOTHING = not args.no_smoothing
