@@ -321,17 +321,30 @@ def prepare(db: Database, folder: Path) -> None:
 def digest(db: Database, *, up_to_vintage: int | None = None) -> tuple[str, int, int]:
     """SHA-256 of the observation rows (of vintages up to ``up_to_vintage``), their count and
     the newest vintage id."""
+    whole, earlier = digests(db, up_to_vintage=up_to_vintage)
+    return earlier if up_to_vintage is not None else whole
+
+
+def digests(db: Database, *, up_to_vintage: int | None) -> tuple[tuple[str, int, int],
+                                                                  tuple[str, int, int]]:
+    """:func:`digest` of every observation row and of the rows of vintages up to
+    ``up_to_vintage`` (every row when None), from one read of the table: the suites compare
+    both after every file, and a read of the whole table per comparison was a quarter of
+    their time."""
     with db.transaction() as session:
         query = select(Observation.measure_id, Observation.region_id, Observation.ref_date,
                        Observation.vintage_id, Observation.value).order_by(
             Observation.measure_id, Observation.region_id, Observation.ref_date,
             Observation.vintage_id)
-        if up_to_vintage is not None:
-            query = query.where(Observation.vintage_id <= up_to_vintage)
-        rows = session.execute(query).all()
-        newest = session.scalar(select(func.max(Vintage.id))) or 0
-    h = hashlib.sha256(repr([tuple(r) for r in rows]).encode())
-    return h.hexdigest(), len(rows), int(newest)
+        rows = [tuple(r) for r in session.execute(query).all()]
+        newest = int(session.scalar(select(func.max(Vintage.id))) or 0)
+    earlier = rows if up_to_vintage is None else [r for r in rows if r[3] <= up_to_vintage]
+
+    def of(part: list[tuple[object, ...]]) -> tuple[str, int, int]:
+        return hashlib.sha256(repr(part).encode()).hexdigest(), len(part), newest
+
+    whole = of(rows)
+    return whole, (whole if earlier is rows else of(earlier))
 
 
 def evaluate_now(db: Database) -> bool:
