@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import sqlite3
+from collections.abc import Iterator
+from contextlib import closing
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
@@ -26,12 +29,24 @@ DAYS = 150
 
 
 @pytest.fixture(scope="module")
-def seeded_with_summary(
-    tmp_path_factory: pytest.TempPathFactory,
-) -> tuple[Database, SeedSummary]:
+def seeded_file(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, SeedSummary]:
+    """The demo (seed 3) seeded once for this module, its file closed (everything written to
+    it) and its summary; read it through ``seeded``, or copy it first."""
     path: Path = tmp_path_factory.mktemp("seed") / "demo.db"
     db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
-    summary = seed_demo(db, seed=3, days=DAYS, end=END)
+    try:
+        summary = seed_demo(db, seed=3, days=DAYS, end=END)
+    finally:
+        db.dispose()
+    return path, summary
+
+
+@pytest.fixture(scope="module")
+def seeded_with_summary(
+    seeded_file: tuple[Path, SeedSummary],
+) -> Iterator[tuple[Database, SeedSummary]]:
+    path, summary = seeded_file
+    db = Database.from_settings(Settings(database_url=f"sqlite:///{path}", demo_mode=True))
     yield db, summary
     db.dispose()
 
@@ -134,7 +149,14 @@ def test_seed_demo_creates_demo_users(seeded: Database) -> None:
     assert names == {u[0] for u in DEMO_USERS}
 
 
-def test_seed_demo_second_run_is_idempotent(tmp_path: Path) -> None:
+def test_seed_demo_second_run_is_idempotent(
+    seeded_file: tuple[Path, SeedSummary], tmp_path: Path,
+) -> None:
+    # the second run goes over a copy of the module's seeded demo (the first run)
+    path, first = seeded_file
+    with closing(sqlite3.connect(path)) as source, closing(
+            sqlite3.connect(tmp_path / "d.db")) as target:
+        source.backup(target)
     db = Database.from_settings(
         Settings(database_url=f"sqlite:///{tmp_path / 'd.db'}", demo_mode=True)
     )
@@ -147,9 +169,8 @@ def test_seed_demo_second_run_is_idempotent(tmp_path: Path) -> None:
                 s.scalar(select(func.count()).select_from(Vintage)),
             )
 
-    first = seed_demo(db, seed=5, days=150, end=END)
     before = snapshot()
-    second = seed_demo(db, seed=5, days=150, end=END)
+    second = seed_demo(db, seed=3, days=DAYS, end=END)
     assert snapshot() == before
     assert (first.observations, first.vintages) == (second.observations, second.vintages)
     db.dispose()
