@@ -53,6 +53,7 @@ DATE_UNCERTAINTY = True
 CALIBRATE = (14, 28, 42, 56)  # block lengths whose coverage --calibrate prints
 SMOOTHING = True  # smoothed hinges (the kernel's default with a delay; --no-smoothing)
 INFECTIONS = False  # --infections: run on the simulated infections (the dating ceiling)
+THINNED = 0.0  # --thinned P (with --infections): Poisson(P x infections) instead
 LOCAL: int | None = 42  # local_window of detect_changepoints (--local-window; 0: none)
 HAC = False  # also print the coverage of Newey-West (HAC) intervals (--hac)
 
@@ -84,7 +85,11 @@ def evaluate(seed: int, regions: int, days: int) -> dict[str, list[float]]:
     # the simulator's generation interval (exponential latent 3 d + infectious 4 d: mean 7,
     # SD 5) and infection-to-test delay; the method is told these, not the step dates
     if INFECTIONS:  # the ceiling: the simulated infections themselves, no observation layer
-        cp = detect_changepoints(sc.infections, si_mean=GI_MEAN, si_sd=GI_SD,
+        series = sc.infections
+        if THINNED:  # each infection counted with probability THINNED: Poisson noise alone
+            series = np.random.default_rng([seed, 77]).poisson(
+                THINNED * sc.infections).astype(float)
+        cp = detect_changepoints(series, si_mean=GI_MEAN, si_sd=GI_SD,
                                  infection_delay=0.0, penalty=PENALTY, shape=SHAPE,
                                  dependence_block=BLOCK, min_change=MIN_CHANGE,
                                  date_uncertainty=DATE_UNCERTAINTY, smoothing=False,
@@ -212,9 +217,12 @@ def main() -> None:
                              "(no ascertainment, delay or weekday effects; transmission time "
                              "is count time): how well the epidemic's own randomness lets a "
                              "step be dated")
+    parser.add_argument("--thinned", type=float, default=0.0,
+                        help="with --infections: count each infection with this probability "
+                             "(Poisson), the ascertainment's noise without its delay")
     args = parser.parse_args()
-    global LOCAL, INFECTIONS
-    INFECTIONS = args.infections
+    global LOCAL, INFECTIONS, THINNED
+    INFECTIONS, THINNED = args.infections, args.thinned
     LOCAL = args.local_window or None
     global SHAPE, SHIFTS, PENALTY, BLOCK, MIN_CHANGE, DATE_UNCERTAINTY, HAC, SMOOTHING
     SMOOTHING = not args.no_smoothing
