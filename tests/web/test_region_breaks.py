@@ -156,3 +156,15 @@ def test_the_district_page_links_to_its_areas_page(demo_app_client: TestClient) 
     link = re.search(r'<a href="/staff/district/([^"]+)" data-area-link>', page.text)
     assert link is not None and link.group(1) == "R1"
     assert demo_app_client.get(f"/staff/district/{link.group(1)}").status_code == 200
+
+
+@pytest.mark.parametrize("lang", ["en", "de"])
+def test_the_marks_say_how_to_read_the_intervals(demo_app_client: TestClient, lang: str) -> None:
+    # the sentence on the intervals renders with a plain per cent sign in both languages
+    assert login(demo_app_client, "vic.viewer") == 303
+    code, _name = _districts_of(demo_app_client, "R1")[0]
+    text = _marks_text(demo_app_client.get(f"/staff/district/{code}",
+                                           headers={"Accept-Language": lang}).text)
+    expected = {"en": "the 95 % interval of its date", "de": "das 95-%-Intervall seines Datums"}
+    assert expected[lang] in text
+    assert "%%" not in text
