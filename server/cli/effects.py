@@ -90,13 +90,14 @@ def breaks_command(
     selection, their number by a quasi-likelihood BIC, their dates by profile likelihood.
     (--shape step: a separate line per segment, level and slope both jump.) One row per
     segment; the break that opens a segment is on its row (break_lower/break_upper:
-    profile interval of its date; growth_change: new slope minus old). R from the
+    profile interval of its date; growth_change: the change of slope at the break). R from the
     growth rate for a gamma generation interval (Wallinga & Lipsitch 2007). With
     --infection-delay, transmission_date = break - delay + E[T^2]/(2 E[T]) (T the
     generation interval): the day transmission changed; the kinks are then smoothed by
     the generation interval and a gamma delay (--delay-sd; --no-smoothing for plain kinks).
-    growth_change compares the growth within --local-window days either side of the
-    break (fixed knots further out), not the whole segments' averages.
+    growth_change compares the growth near the break (the fit again with fixed knots
+    --local-window days either side, where the segment reaches further), not the whole
+    segments' averages.
     """
     options = BreakOptions(min_segment=min_segment, max_breaks=max_breaks, penalty=penalty,
                            level=level, dispersion=dispersion.lower(), si_mean=si_mean,

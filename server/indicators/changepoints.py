@@ -164,7 +164,11 @@ class ChangePoints:
         Day index of each break (first day of the new segment) and its profile-likelihood
         interval.
     growth_change, growth_change_lower, growth_change_upper : ndarray
-        ``r_{k+1} - r_k`` at break k with its Wald interval.
+        Change of the growth rate at break k with its Wald interval: ``r_{k+1} - r_k`` for the
+        step model and for the kink model with ``local_window=None``; with a
+        ``local_window`` (the default) the slope difference of the pieces next to the kink
+        (:mod:`server.indicators.local_change`), which differs from that of the whole
+        segments' growth rates where those drift.
     level_change, level_change_lower, level_change_upper : ndarray
         Jump of the log mean at break k: the new segment's line minus the old one's, both at
         the break day.
@@ -667,10 +671,11 @@ def detect_changepoints(
         source).
     local_window : int or None
         Kink model only: the change of growth at each kink (``growth_change`` and its
-        interval) is measured from the days within ``local_window`` of it: the model is
-        refitted with fixed knots ``local_window`` days either side of every kink that lies in
-        a longer segment (:mod:`server.indicators.local_change`); its dispersion is the
-        whole-segment fit's. Default 42 (six weeks, the ``dependence_block``; not tuned: 42
+        interval) is measured near it: the model is refitted with fixed knots
+        ``local_window`` days either side of every kink where its segment reaches further
+        (:mod:`server.indicators.local_change`, which says how long the pieces can be); its
+        dispersion is the whole-segment fit's; a region whose refit does not converge keeps
+        the whole-segment change. Default 42 (six weeks, the ``dependence_block``; not tuned: 42
         was the only value measured, on validation seeds 100-149). ``None``: the slope change
         of the whole-segment fit. The dates, segments and segment growth rates are the
         whole-segment fit's either way.
@@ -695,7 +700,8 @@ def detect_changepoints(
     larger, and the cut-off :math:`F_{1,df}` on its degrees of freedom. Intervals of the
     growth rates
     :math:`r_j \\pm z \\sqrt{\\hat\\phi V_{jj}}` (and of their differences and level jumps)
-    condition on the break dates. Doubling time :math:`\\ln 2/|r|`; reproduction number
+    condition on the break dates (step model; for the kink model see ``date_uncertainty`` and
+    ``local_window``). Doubling time :math:`\\ln 2/|r|`; reproduction number
     :math:`R = (1 + r\\theta)^k` for a gamma generation interval of shape
     :math:`k = \\mu^2/\\sigma^2` and scale :math:`\\theta = \\sigma^2/\\mu` [3]_, its interval
     mapped from that of r. A change in transmission shows in counts by test date after the
@@ -1091,22 +1097,24 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
     bad = ~seg_ok | ~fit.converged[:, None]
     growth = np.where(bad, np.nan, growth)
     g_lo, g_hi = growth - zq[:, None] * se_r, growth + zq[:, None] * se_r
-    if local is None:
-        d_r = np.where(has, coef[:, 2 : 2 + kmax] / n, np.nan)
-        idx = np.arange(kmax)
-        with np.errstate(invalid="ignore"):
-            se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
-        zd = zq
-        d_r = np.where(fit.converged[:, None], d_r, np.nan)
-    else:  # each kink's change from the refit with fixed knots (local_change)
-        lcov, zd = _scaled_covariance(local.fit, level, y, block, date_free, ramp, local.dated,
+    # slope change at each kink: the whole-segment fit's ...
+    d_r = np.where(has & fit.converged[:, None], coef[:, 2 : 2 + kmax] / n, np.nan)
+    idx = np.arange(kmax)
+    with np.errstate(invalid="ignore"):
+        se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
+    zd = np.broadcast_to(zq[:, None], (rows, kmax))
+    if local is not None:  # ... or, where its refit converged, that with fixed knots
+        lcov, zl = _scaled_covariance(local.fit, level, y, block, date_free, ramp, local.dated,
                                       scale_of=fit)
         col = 2 + np.where(has, local.position, 0)
-        d_r = np.take_along_axis(np.nan_to_num(local.fit.coef), col, axis=1) / n
         at = np.arange(rows)[:, None]
         with np.errstate(invalid="ignore"):
-            se_d = np.sqrt(lcov[at, col, col]) / n
-        d_r = np.where(has & local.fit.converged[:, None], d_r, np.nan)
+            d_l = np.take_along_axis(np.nan_to_num(local.fit.coef), col, axis=1) / n
+            se_l = np.sqrt(lcov[at, col, col]) / n
+        use = has & fit.converged[:, None] & local.fit.converged[:, None]
+        d_r = np.where(use, d_l, d_r)
+        se_d = np.where(use, se_l, se_d)
+        zd = np.where(use, zl[:, None], zd)
     breaks = np.where(has, fit.kinks, -1)
     bounds = np.concatenate([np.zeros((rows, 1), np.int64), np.where(has, fit.kinks, n),
                              np.full((rows, 1), n)], axis=1)
@@ -1126,8 +1134,8 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
     return ChangePoints(
         n_breaks=n_breaks, breaks=breaks, break_lower=np.where(has, prof.lower, -1),
         break_upper=np.where(has, prof.upper, -1),
-        growth_change=d_r, growth_change_lower=d_r - zd[:, None] * se_d,
-        growth_change_upper=d_r + zd[:, None] * se_d,
+        growth_change=d_r, growth_change_lower=d_r - zd * se_d,
+        growth_change_upper=d_r + zd * se_d,
         level_change=nan, level_change_lower=nan, level_change_upper=nan,
         segment_start=start, segment_end=end, growth=growth, growth_lower=g_lo,
         growth_upper=g_hi, doubling_time=dt, doubling_lower=dt_lo, doubling_upper=dt_hi,

@@ -487,9 +487,11 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     Schmeiser 1984; the Newey-West long-run variance with a Bartlett kernel of width
     ``block`` is the same estimator up to end effects). Degrees of freedom
     ``1.5 m - q`` (overlapping batch means have about 2/3 the variance of ``m`` separate
-    batches, Meketon and Schmeiser 1984). Where ``m <= q`` (many kinks in a short series) the
-    block is shortened to ``n // (q + 1)`` days, so that ``m > q``: shorter batches catch less
-    of a long-run correlation but some, where ``block`` would give none. NaN where that is
+    batches, Meketon and Schmeiser 1984). Where ``n // (q + 1)`` days is shorter than
+    ``block`` (fewer than ``q + 1`` batches: many kinks in a short series) the block is
+    shortened to it, so that ``m >= q + 1`` and the degrees of freedom are at least
+    ``0.5 q + 1.5``: shorter batches catch less of a long-run correlation but some, where
+    ``block`` would give none (``m <= q``) or next to no degrees of freedom. NaN where that is
     shorter than a week (the weekday effects no longer cancel within a window).
     """
     rows, n = y.shape
@@ -498,7 +500,7 @@ def block_dispersion(y: FloatArray, mu: FloatArray, block: int,
     mm = np.where(obs, np.nan_to_num(mu), 0.0)
     q = np.asarray(n_params, dtype=np.float64)
     # a row with too many parameters for n / block batches: the block shortened to
-    # n // (q + 1) days (so m > q), never below a week
+    # n // (q + 1) days (so m >= q + 1), never below a week
     short = np.where(np.isfinite(q), n // np.maximum(q + 1.0, 1.0), 0).astype(np.int64)
     width = np.minimum(block, short)
     phi = np.full(rows, np.nan)

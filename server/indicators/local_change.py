@@ -9,15 +9,21 @@ interval (which assumes the growth constant over the segment) is too narrow exac
 segments are long and the counts many.
 
 Here each kink's change is measured locally: fixed knots are added ``window`` days before and
-after every kink (where that day lies inside a long segment, at least ``min_gap`` days from
-every kink, knot and end of the series), and the model is refitted with them. The knots are
-hinges like the kinks (smoothed alike when the fit's hinges are) at known days, so the model is
-still a GLM; the coefficient of kink k is then the difference between the slopes of the pieces
-adjacent to it, each at most ``window`` days long (a local-linear, regression-spline reading of
-the growth around the kink: Hastie, Tibshirani & Friedman 2009, The Elements of Statistical
-Learning, 2nd ed., 5.2, piecewise linear splines with fixed knots). A knot's date is not
-estimated, so Muggeo's date columns are kept for the kinks only. The detected kinks, their dates
-and the segments' growth rates are not changed.
+after every kink where that day lies inside a segment reaching further (at least ``window``
+days, and at least ``min_gap``, from every kink; at least ``min_gap`` from the ends of the series
+and from a knot already kept), and the model is refitted with them. The knots are hinges like
+the kinks (smoothed alike when the fit's hinges are) at known days, so the model is still a
+GLM; the coefficient of kink k is then the difference between the slopes of the pieces adjacent
+to it (a regression spline with fixed knots: Hastie, Tibshirani & Friedman 2009, The Elements of
+Statistical Learning, 2nd ed., 5.2). A piece is cut at ``window`` days from the kink where its
+segment reaches further; it is not cut between two kinks fewer than ``2 window`` days apart (up
+to ``2 window - 1`` days), and a knot dropped for lying within ``min_gap`` of another leaves a
+piece of up to ``window + min_gap - 1`` days. A knot's date is not estimated, so Muggeo's date
+columns are kept for the kinks only. The detected kinks, their dates and the segments' growth
+rates are not changed. Where the refit does not converge (a knot and a kink with no observed
+day between them and a level shift in that gap make the design collinear),
+:func:`server.indicators.changepoints.detect_changepoints` keeps that region's whole-segment
+change.
 
 No database, web or clock here.
 """
@@ -61,8 +67,8 @@ def local_knots(kinks: IntArray, n: int, window: int, min_gap: int) -> IntArray:
     ndarray of int, shape (regions, 2 k)
         The knots, -1 for none, in ascending order. A candidate ``tau +- window`` is kept when it
         lies at least ``window`` days from every kink (so that it falls in a segment longer than
-        ``window`` on that side) and at least ``min_gap`` days from the ends and from the knots
-        already kept (taken in ascending order).
+        ``window`` on that side; and at least ``min_gap`` days from it) and at least ``min_gap``
+        days from the ends and from the knots already kept (taken in ascending order).
     """
     rows, k = kinks.shape
     out = np.full((rows, 2 * k), -1, dtype=np.int64)
@@ -74,7 +80,7 @@ def local_knots(kinks: IntArray, n: int, window: int, min_gap: int) -> IntArray:
     far = np.ones(cand.shape, dtype=bool)
     for j in range(k):  # at least `window` days from every kink of the row
         tau = kinks[:, j : j + 1]
-        far &= (tau < 0) | (np.abs(cand - tau) >= window)
+        far &= (tau < 0) | (np.abs(cand - tau) >= max(window, min_gap))
     inside = (cand >= min_gap) & (cand <= n - min_gap)
     cand = sort_kinks(np.where(far & inside & (cand >= 0), cand, -1))
     for r in np.flatnonzero((cand >= 0).any(axis=1)):

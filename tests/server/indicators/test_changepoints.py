@@ -439,3 +439,32 @@ def test_local_window_changes_only_the_growth_change_and_widens_it_in_long_segme
     assert local.growth_change_lower[0, k] < -0.05 < local.growth_change_upper[0, k]
     with pytest.raises(ValueError, match="local_window"):
         detect_changepoints(y, local_window=0)
+
+
+def test_a_local_refit_that_fails_keeps_the_whole_segment_change() -> None:
+    # a reporting gap with a level shift inside it: the knot 42 days after the kink has no
+    # observed day between it and the kink, so the knot's hinge differs from the kink's by a
+    # step on the observed days, collinear with the level shift; the refit cannot converge and
+    # the region keeps the whole-segment change (found by review; it was NaN)
+    rng = np.random.default_rng(0)
+    n = 260
+    t = np.arange(n)
+    y = rng.poisson(np.exp(np.log(100) + 0.02 * t - 0.04 * np.maximum(t - 100, 0)
+                           + 0.3 * (t >= 80) + WEEKDAY[t % 7])).astype(float)
+    y[40:131] = np.nan
+    local = detect_changepoints(y[None], level_shifts=[[80]])
+    whole = detect_changepoints(y[None], level_shifts=[[80]], local_window=None)
+    assert local.n_breaks[0] >= 1
+    k = int(local.n_breaks[0])
+    assert np.all(np.isfinite(local.growth_change[0, :k]))
+    assert np.all(np.isfinite(local.growth_change_lower[0, :k]))
+    assert_allclose(local.growth_change[0, :k], whole.growth_change[0, :k])
+    assert_allclose(local.growth_change_upper[0, :k], whole.growth_change_upper[0, :k])
+
+
+def test_local_knots_keep_min_gap_from_the_kinks_when_the_window_is_shorter() -> None:
+    from server.indicators.local_change import local_knots
+
+    # window 5 < min_gap 14: 95 and 105 lie only 5 days from the kink; neither is a knot
+    assert np.all(local_knots(np.array([[100]]), 240, 5, 14) == -1)
+    assert local_knots(np.array([[100]]), 240, 20, 14)[0, :2].tolist() == [80, 120]
