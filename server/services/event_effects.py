@@ -123,6 +123,9 @@ class EffectsPage:
     kinds: tuple[str, ...]
     #: delays and tolerance of the agreement of breaks between streams
     streams: StreamOptions = StreamOptions()
+    #: (code, name) of the regions above the districts (the county, its areas), whose pages
+    #: show the breaks of counts summed over their districts
+    summed_regions: tuple[tuple[str, str], ...] = ()
 
 
 def _region_by_code(session: Session, code: str) -> Region:
@@ -223,12 +226,22 @@ def effects_page(
     choices = tuple((r.code, r.name) for r in sorted(
         regions.values(), key=lambda r: ({"county": 0, "region": 1}.get(r.level, 2), r.code))
         if r.level != "plant")
+    above: set[int] = set()  # every region that has a district somewhere below it
+    for r in regions.values():
+        node = r.parent_id if r.level == "district" else None
+        while node is not None and node not in above and node in regions:
+            above.add(node)
+            node = regions[node].parent_id
+    summed = tuple((r.code, r.name) for r in sorted(
+        regions.values(), key=lambda r: ({"county": 0, "region": 1}.get(r.level, 2), r.code))
+        if r.id in above)
     raw = sorted(_tier_changes(session, start, end) + _recorded(session, start, end),
                  key=lambda e: (e.day, regions[e.region_id].code, e.kind))
     data_end = _cases_end(session)
     if not raw:
         return EffectsPage(start=start, end=end, data_end=data_end, options=o, events=(),
-                           regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions())
+                           regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions(),
+                           summed_regions=summed)
     codes = sorted({regions[e.region_id].code for e in raw})
     row_of = {c: i for i, c in enumerate(codes)}
     first = start - dt.timedelta(days=o.window + o.delay + 90)
@@ -271,4 +284,5 @@ def effects_page(
             agreement=tuple(a for b, a in (found or ()) if span[0] <= b < span[1]),
         ))
     return EffectsPage(start=start, end=end, data_end=data_end, options=o, events=tuple(out),
-                       regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions())
+                       regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions(),
+                       summed_regions=summed)

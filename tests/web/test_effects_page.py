@@ -118,3 +118,22 @@ def test_stream_delays_and_tolerance_come_from_the_query(client: TestClient) -> 
     assert bad.status_code == 422 and "wastewater_delay" in bad.text
     bad = client.get("/staff/effects", params={**PERIOD, "admissions_delay": "soon"})
     assert bad.status_code == 422 and "admissions_delay" in bad.text
+
+
+def test_page_links_the_pages_of_the_county_and_its_areas(client: TestClient) -> None:
+    # the regions above the districts (read from the store, not the page) each get a link to
+    # the page of their summed counts' breaks; no district or plant does
+    assert login(client, "vic.viewer") == 303
+    text = client.get("/staff/effects", params=PERIOD).text
+    found = re.search(r"<p data-summed-regions>(.*?)</p>", text, flags=re.S)
+    assert found is not None
+    linked = re.findall(r'href="/staff/district/([^"]+)"', found.group(1))
+    with client.app.state.database.transaction() as s:  # type: ignore[attr-defined]
+        regions = list(s.scalars(select(Region)))
+    parents = {r.parent_id for r in regions if r.level == "district"}
+    expected = {r.code for r in regions if r.id in parents}
+    expected |= {r.code for r in regions if r.id in {p.parent_id for p in regions
+                                                     if p.id in parents}}
+    assert set(linked) == expected and "C0" in expected and len(expected) > 1
+    for code in linked[:2]:
+        assert client.get(f"/staff/district/{code}").status_code == 200
