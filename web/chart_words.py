@@ -26,7 +26,10 @@ CHART_WORDS: tuple[str, ...] = (
     N_("95% interval of the nowcast"), N_("nowcast (expected final count)"), N_("median"),
     N_("50% band"), N_("90% band"), N_("beds in use"), N_("staffed beds"),
     N_("R before and after each event (95% intervals)"), N_("before"), N_("after"),
-    N_("admissions break"), N_("wastewater break"),
+    N_("admissions break"), N_("wastewater break"), N_("break"), N_("tier change"),
+    N_("measure start"), N_("measure end"), N_("school holidays"), N_("testing change"),
+    N_("testing change (dismissed)"), N_("other"), N_("Cases (sum of the districts)"),
+    N_("Hospital admissions (sum of the districts)"),
 )
 
 #: trace names and titles built around a name (web/charts.py), matched on the whole text

@@ -168,3 +168,26 @@ def test_the_marks_say_how_to_read_the_intervals(demo_app_client: TestClient, la
     expected = {"en": "the 95 % interval of its date", "de": "das 95-%-Intervall seines Datums"}
     assert expected[lang] in text
     assert "%%" not in text
+
+
+def test_the_marks_are_german_on_a_german_page(demo_app_client: TestClient) -> None:
+    # figures with a decimal comma in the marks table, chart labels of the marks in German
+    assert login(demo_app_client, "vic.viewer") == 303
+    code, _name = _districts_of(demo_app_client, "R1")[0]
+    page = demo_app_client.get(f"/staff/district/{code}", headers={"Accept-Language": "de"})
+    text = _marks_text(page.text)
+    rows = re.findall(r'<tr data-mark="(?:break|admissions|wastewater|event)">.*?</tr>',
+                      page.text, flags=re.S)
+    assert rows
+    shown = html.unescape(" ".join(rows))
+    assert re.search(r"\d,\d{2}", shown) and not re.search(r"\d\.\d{2}", shown), shown[:300]
+    assert "Intervall" in text
+    labels = [a.get("text") for raw in re.findall(r'data-figure="([^"]*)"', page.text)
+              for a in json.loads(html.unescape(raw)).get("layout", {}).get("annotations", [])]
+    assert labels
+    english = [w for w in ("tier change", "break", "testing change", "wastewater break")
+               if w in labels]
+    assert not english, english
+    region = demo_app_client.get("/staff/district/R1", headers={"Accept-Language": "de"})
+    assert "sum of the districts" not in html.unescape(region.text)
+    assert "Summe der Bezirke" in html.unescape(region.text)
