@@ -1,12 +1,12 @@
 """Read model: what the district page marks on its charts and lists under them, for a district
 or for a region above the districts (an area, the county; :mod:`server.readmodels.region_breaks`).
 
-* *Breaks*: change points of the district's daily cases over the period shown and the 90 days
-  before, found as the effects page finds them
-  (:func:`server.indicators.changepoints.detect_changepoints`, default settings), with the
-  interval of each date and the change of the growth rate; the breaks of its hospital
-  admissions and of the wastewater of its main plant (searched from
-  :data:`~server.services.stream_breaks.SEARCH_LEAD_DAYS` days before the period), and for
+* *Breaks*: change points of the district's daily cases, hospital admissions and the
+  wastewater of its main plant, searched over the span every page searches
+  (:func:`server.services.stream_breaks.search_span`: the year up to the newest data less the
+  days late reports still arrive, so the effects page and the briefing find the same breaks;
+  :func:`server.indicators.changepoints.detect_changepoints`, default settings), with the
+  interval of each date and the change of the growth rate, those in the period shown; and for
   each case break whether those streams have a break near it in the same direction after
   allowing for their delays (:mod:`server.services.stream_breaks`).
 * *Events*: published tier changes and recorded events of the district, its area and the county
@@ -33,14 +33,14 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
 from server.indicators.testing_known import testing_changes_as_known
-from server.services.event_effects import EventEffect, effects_page
+from server.services.event_effects import DEFAULT_SETTLE, EventEffect, effects_page
 from server.services.stream_breaks import (
-    SEARCH_LEAD_DAYS,
     STREAMS,
     Agreement,
     StreamBreak,
     StreamOptions,
     StreamsOfRegion,
+    search_span,
     stream_breaks,
 )
 from server.services.testing_reviews import SAME_CHANGE_DAYS, Verdict, verdicts_of
@@ -189,9 +189,9 @@ def district_marks(*, session: Session, code: str, start: dt.date, end: dt.date,
     """
     level, summed, plants = members_of(session, code)
     first = start - dt.timedelta(days=LEAD_DAYS)
-    streams = stream_breaks(session=session, codes=[code],
-                            first=start - dt.timedelta(days=SEARCH_LEAD_DAYS), last=end,
-                            options=options, cases_from=first)[0]
+    search_first, search_last = search_span(session, start, end, DEFAULT_SETTLE)
+    streams = stream_breaks(session=session, codes=[code], first=search_first,
+                            last=search_last, options=options)[0]
     breaks, known = _breaks(streams, start)
     others = tuple(sorted((b for s in STREAMS for b in streams.breaks[s] if b.day >= start),
                           key=lambda b: (b.day, b.stream)))

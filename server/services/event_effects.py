@@ -33,10 +33,10 @@ from server.indicators.before_after import (
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
 from server.services.stream_breaks import (
-    SEARCH_LEAD_DAYS,
     Agreement,
     StreamOptions,
     daily_counts,
+    search_span,
     stream_breaks,
 )
 from server.services.users import permitted_account
@@ -252,9 +252,9 @@ def effects_page(
     rows = np.array([row_of[regions[e.region_id].code] for e in raw])
     res = before_after(counts, rows, day_index, window=o.window, delay=o.delay,
                        transition=o.transition, lead=o.lead)
-    searched = stream_breaks(session=session, codes=codes,
-                             first=min(first, start - dt.timedelta(days=SEARCH_LEAD_DAYS)),
-                             last=last, options=streams, cases_from=first)
+    search_first, search_last = search_span(session, start, None, o.settle)
+    searched = stream_breaks(session=session, codes=codes, first=search_first,
+                             last=search_last, options=streams)
     breaks = {i: [((b.day - first).days, a) for b, a in zip(
         r.breaks["cases"], r.agreement, strict=True)] for i, r in enumerate(searched)
         if r.searched["cases"]}

@@ -24,7 +24,7 @@ import datetime as dt
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
 from server.indicators.changepoints import detect_changepoints
@@ -32,7 +32,7 @@ from server.indicators.level_breaks import detect_level_breaks
 from server.indicators.stream_agreement import ALIGNMENT, DEFAULT_TOLERANCE, stream_agreement
 from server.services.errors import FormFieldError
 from server.services.hierarchy import membership, sum_up
-from server.store.models import Catchment, Region
+from server.store.models import Catchment, Measure, Observation, Region
 from server.store.reads import read_dense
 
 __all__ = [
@@ -42,6 +42,7 @@ __all__ = [
     "StreamOptions",
     "StreamsOfRegion",
     "Agreement",
+    "search_span",
     "stream_breaks",
 ]
 
@@ -56,6 +57,32 @@ MIN_DAYS = 28
 #: the demo (seed 7, the newest 120 days) 90 days before the period gave 4 admissions or
 #: wastewater breaks in 3 of 14 districts, 365 days 9 in 6 (looked at once; no source).
 SEARCH_LEAD_DAYS = 365
+#: Days every stream is searched over, up to the search's last day: one span for every page
+#: (the district page, an area's, the effects page, the briefing), so that a region's breaks
+#: do not depend on the period a page shows (they did: a break found on the effects page was
+#: missing from the area's page).
+SEARCH_DAYS = 365
+#: Days before a long period shown that the search still reads.
+PERIOD_LEAD_DAYS = 90
+
+
+def search_span(session: Session, start: dt.date, end: dt.date | None,
+                settle: int) -> tuple[dt.date, dt.date]:
+    """First and last day of the break search for a page showing ``start..end`` (``end``
+    None: up to the newest data): the newest day is the newest day with cases less ``settle``
+    days (late reports still arrive; the effects page's setting) or ``end`` if earlier; the
+    search reads the :data:`SEARCH_DAYS` days up to it, or from :data:`PERIOD_LEAD_DAYS`
+    before ``start`` where that is earlier (a period of more than about nine months)."""
+    newest = session.scalar(select(func.max(Observation.ref_date)).join(
+        Measure, Measure.id == Observation.measure_id).where(Measure.name == MEASURE["cases"]))
+    last = end if newest is None else newest - dt.timedelta(days=settle)
+    if end is not None:
+        last = min(last, end)
+    if last is None:
+        last = start
+    first = min(last - dt.timedelta(days=SEARCH_DAYS - 1),
+                start - dt.timedelta(days=PERIOD_LEAD_DAYS))
+    return first, last
 
 
 class StreamOptionError(FormFieldError):

@@ -75,3 +75,40 @@ def test_region_breaks_defaults_to_the_last_120_days_of_cases(demo_session: Sess
     assert page.end == page.last_day == date(2026, 11, 30)  # the demo's last day (conftest)
     assert (page.end - page.start).days == 119 and len(page.dates) == 120 == len(page.cases)
     assert page.parent is None and page.admissions is not None
+
+
+def test_every_page_finds_the_same_breaks_of_a_region(demo_session: Session) -> None:
+    # the effects page, a district's or an area's page and a briefing all search the span of
+    # search_span (the year up to the newest data less the settle days), whatever period they
+    # show: two pages over different periods agree on the breaks they both show, with the
+    # same estimates, and a break the effects page lists in an event's windows is on the
+    # region's page too (before, each page searched from 90 days before its own period, and a
+    # break listed on the effects page was missing from the area's page: found by trying the
+    # pages in a browser). The demo's cases start in early July 2026, so a period from
+    # November searched less of them than one from September.
+    from datetime import UTC, datetime
+
+    from server.services.event_effects import effects_page
+    from server.store.models import RecordedEvent
+
+    end = date(2026, 11, 30)
+    late, early = date(2026, 11, 1), date(2026, 9, 1)
+    codes = ("D01", "D04", "D05", "R1", "R2", "C0")
+    for code in codes:
+        short = district_marks(session=demo_session, code=code, start=late, end=end)
+        long = district_marks(session=demo_session, code=code, start=early, end=end)
+        assert [(b.day, b.lower, b.upper, b.growth_change) for b in short.breaks] == [
+            (b.day, b.lower, b.upper, b.growth_change) for b in long.breaks if b.day >= late]
+    ids = {r.code: r.id for r in demo_session.scalars(select(Region))}
+    for code in codes:  # an event in each region, so that the effects page searches them all
+        demo_session.add(RecordedEvent(region_id=ids[code], day=date(2026, 9, 20),
+                                       kind="measure_start", note="invented", recorded_by=None,
+                                       recorded_at=datetime(2026, 9, 20, tzinfo=UTC)))
+    demo_session.flush()
+    page = effects_page(session=demo_session, start=early, end=end)
+    listed = [(e.region, b) for e in page.events for b in e.breaks]
+    assert listed  # the demo's regions turn in September
+    for region, day in listed:
+        shown = {b.day for b in district_marks(session=demo_session, code=region,
+                                                start=early, end=end).breaks}
+        assert day in shown, (region, day, sorted(shown))
