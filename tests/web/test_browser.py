@@ -286,7 +286,9 @@ def test_two_version_backtest_fits_a_wide_screen(server: str, page: object) -> N
     stored = re.compile(r".*/staff/policies\?id=\d+(#active-h)?$")
     with page.expect_navigation(url=stored, timeout=60_000):
         page.click("button[name=store]")
-    page.click("text=Run backtest")
+    # the stored version's page can take a while to render on a loaded machine (CI once
+    # timed out here after 30 s, then passed alone in 13 s)
+    page.click("text=Run backtest", timeout=120_000)
     page.wait_for_selector("svg.tier-strip", timeout=240_000)
     assert page.locator("svg.tier-strip").count() == 2
     # Each strip fits its column: the whole period is visible without scrolling sideways.
