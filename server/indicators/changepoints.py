@@ -952,11 +952,7 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
         for part in _chunks(np.arange(todo.size)):
             sub = _kink_fit_rows(fit, todo[part])
             scanner = _kink_scanner(y[todo[part]], sub, True)
-            scale = sub.dispersion
-            if block is not None:
-                q = 2 + (sub.kinks >= 0).sum(axis=1) + (sub.level_shifts >= 0).sum(axis=1)
-                phi_b, _ = block_dispersion(y[todo[part]], sub.mu, block, q)
-                scale = np.where(np.isfinite(phi_b), np.maximum(phi_b, scale), scale)
+            scale, _, _ = _long_run(y[todo[part]], sub, block)
             drop_one = scanner.scan_drop_one(sub.kinks)  # (rows, kmax, n)
             for j in range(kmax):
                 has = sub.kinks[:, j] >= 0
@@ -992,15 +988,11 @@ def _detect_kinks(y: FloatArray, *, min_segment: int, max_breaks: int | None, pe
     best = np.where(fit.kinks >= 0, fit.kinks, -1)
     lower = best.copy()
     upper = best.copy()
-    scale = fit.dispersion
-    if block is not None:  # the long-run dispersion where it is the larger, as for the slopes
-        q = 2 + (fit.kinks >= 0).sum(axis=1) + (fit.level_shifts >= 0).sum(axis=1)
-        phi_b, df_b = block_dispersion(y, fit.mu, block, q)
-        wider = np.isfinite(phi_b) & (phi_b > scale)
-        scale = np.where(wider, phi_b, scale)
-        # F(1, df) = t(df)^2 cut-off where the long-run dispersion is used (its df are few)
-        crit_rows = np.where(wider, stats.f.ppf(level, 1, np.where(wider, df_b, 1.0)), crit)
-        scale = scale * crit_rows / crit
+    # the long-run dispersion where it is the larger, as for the slopes, with an F(1, df) =
+    # t(df)^2 cut-off there (its df are few)
+    scale, df_b, wider = _long_run(y, fit, block)
+    crit_rows = np.where(wider, stats.f.ppf(level, 1, np.where(wider, df_b, 1.0)), crit)
+    scale = scale * crit_rows / crit
     for idx in _chunks(np.flatnonzero(fit.converged & (fit.kinks >= 0).any(axis=1))):
         _kink_intervals(y, _kink_fit_rows(fit, idx), idx, n, min_segment, crit, lower, upper,
                         scale[idx])
@@ -1050,27 +1042,24 @@ def _kink_intervals(y: FloatArray, sub: KinkFit, idx: IntArray, n: int, min_segm
         upper[idx[rr], j] = gap_right - 1
 
 
-def _scaled_covariance(fit: KinkFit, level: float, y: FloatArray | None, block: int | None,
-                       date_free: bool, ramp: FloatArray | None,
-                       dated: BoolArray | None = None,
-                       scale_of: KinkFit | None = None) -> tuple[FloatArray, FloatArray]:
-    """Covariance of ``fit``'s coefficients times the dispersion (the larger of the daily and
-    the block one) and the quantile of its intervals (t when the block one is the larger);
-    the dispersions are those of ``scale_of`` where given."""
-    rows = fit.kinks.shape[0]
-    z = float(special.ndtri(0.5 + level / 2.0))
-    sfit = fit if scale_of is None else scale_of
-    phi = sfit.dispersion
-    zq = np.full(rows, z)
-    if y is not None and block is not None:
-        q = 2 + (sfit.kinks >= 0).sum(axis=1) + (sfit.level_shifts >= 0).sum(axis=1)
-        phi_b, df = block_dispersion(y, sfit.mu, block, q)
-        wider = np.isfinite(phi_b) & (phi_b > phi)
-        phi = np.where(wider, phi_b, phi)
-        zq = np.where(wider, stats.t.ppf(0.5 + level / 2.0, np.where(wider, df, 1.0)), z)
-    base_cov = (date_aware_covariance(fit, ramp=ramp, dated=dated) if date_free
-                else fit.covariance)
-    return base_cov * phi[:, None, None], zq
+def _long_run(y: FloatArray | None, fit: KinkFit, block: int | None
+              ) -> tuple[FloatArray, FloatArray, BoolArray]:
+    """The larger of ``fit``'s daily and long-run (:func:`block_dispersion`) dispersion, the
+    long-run one's degrees of freedom and where it is the larger (nowhere without ``block``)."""
+    phi = fit.dispersion
+    if y is None or block is None:
+        return phi, np.full(phi.shape, np.nan), np.zeros(phi.shape, dtype=bool)
+    q = 2 + (fit.kinks >= 0).sum(axis=1) + (fit.level_shifts >= 0).sum(axis=1)
+    phi_b, df = block_dispersion(y, fit.mu, block, q)
+    wider = np.isfinite(phi_b) & (phi_b > phi)
+    return np.where(wider, phi_b, phi), df, wider
+
+
+def _unit_covariance(fit: KinkFit, date_free: bool, ramp: FloatArray | None,
+                     dated: BoolArray | None = None) -> FloatArray:
+    """Covariance of ``fit``'s coefficients at unit dispersion, the kink dates free or not."""
+    return (date_aware_covariance(fit, ramp=ramp, dated=dated) if date_free
+            else fit.covariance)
 
 
 def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: float,
@@ -1082,7 +1071,12 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
     n = fit.mu.shape[1]
     segs = kmax + 1
     has = fit.kinks >= 0
-    cov, zq = _scaled_covariance(fit, level, y, block, date_free, ramp)
+    # the dispersion (the larger of the daily and the long-run one) and the quantile of the
+    # intervals: t on the long-run one's df where it is the larger
+    phi, df, wider = _long_run(y, fit, block)
+    z = float(special.ndtri(0.5 + level / 2.0))
+    zq = np.where(wider, stats.t.ppf(0.5 + level / 2.0, np.where(wider, df, 1.0)), z)
+    cov = _unit_covariance(fit, date_free, ramp) * phi[:, None, None]
     n_breaks = has.sum(axis=1).astype(np.int64)
     seg_ok = np.arange(segs)[None, :] <= n_breaks[:, None]
     p = fit.coef.shape[1]
@@ -1104,8 +1098,7 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
         se_d = np.sqrt(cov[:, 2 + idx, 2 + idx]) / n
     zd = np.broadcast_to(zq[:, None], (rows, kmax))
     if local is not None:  # ... or, where its refit converged, that with fixed knots
-        lcov, zl = _scaled_covariance(local.fit, level, y, block, date_free, ramp, local.dated,
-                                      scale_of=fit)
+        lcov = _unit_covariance(local.fit, date_free, ramp, local.dated) * phi[:, None, None]
         col = 2 + np.where(has, local.position, 0)
         at = np.arange(rows)[:, None]
         with np.errstate(invalid="ignore"):
@@ -1114,7 +1107,6 @@ def _assemble_kinks(fit: KinkFit, screening: Screening, prof: _Profile, level: f
         use = has & fit.converged[:, None] & local.fit.converged[:, None]
         d_r = np.where(use, d_l, d_r)
         se_d = np.where(use, se_l, se_d)
-        zd = np.where(use, zl[:, None], zd)
     breaks = np.where(has, fit.kinks, -1)
     bounds = np.concatenate([np.zeros((rows, 1), np.int64), np.where(has, fit.kinks, n),
                              np.full((rows, 1), n)], axis=1)
