@@ -20,7 +20,7 @@ import datetime as dt
 from dataclasses import dataclass
 
 import numpy as np
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from server.indicators.before_after import (
@@ -36,11 +36,12 @@ from server.services.stream_breaks import (
     Agreement,
     StreamOptions,
     daily_counts,
+    newest_cases_day,
     search_span,
     stream_breaks,
 )
 from server.services.users import permitted_account
-from server.store.models import Decision, Measure, Observation, RecordedEvent, Region, User
+from server.store.models import Decision, RecordedEvent, Region, User
 
 __all__ = [
     "EVENT_KINDS",
@@ -193,11 +194,6 @@ def _recorded(session: Session, start: dt.date, end: dt.date) -> list[_Raw]:
                  names.get(r.recorded_by, "") if r.recorded_by else "") for r in rows]
 
 
-def _cases_end(session: Session) -> dt.date | None:
-    return session.scalar(select(func.max(Observation.ref_date)).join(
-        Measure, Measure.id == Observation.measure_id).where(Measure.name == CASES))
-
-
 def _series(session: Session, codes: list[str], first: dt.date, last: dt.date,
             regions: dict[int, Region]) -> np.ndarray:
     """Daily cases (codes, days): districts as stored, other levels summed from districts."""
@@ -237,7 +233,7 @@ def effects_page(
         if r.id in above)
     raw = sorted(_tier_changes(session, start, end) + _recorded(session, start, end),
                  key=lambda e: (e.day, regions[e.region_id].code, e.kind))
-    data_end = _cases_end(session)
+    data_end = newest_cases_day(session)
     if not raw:
         return EffectsPage(start=start, end=end, data_end=data_end, options=o, events=(),
                            regions=choices, kinds=EVENT_KINDS, streams=streams or StreamOptions(),

@@ -42,6 +42,7 @@ __all__ = [
     "StreamOptions",
     "StreamsOfRegion",
     "Agreement",
+    "newest_cases_day",
     "search_span",
     "stream_breaks",
 ]
@@ -66,6 +67,12 @@ SEARCH_DAYS = 365
 PERIOD_LEAD_DAYS = 90
 
 
+def newest_cases_day(session: Session) -> dt.date | None:
+    """The newest day with cases of any region (None: no cases stored)."""
+    return session.scalar(select(func.max(Observation.ref_date)).join(
+        Measure, Measure.id == Observation.measure_id).where(Measure.name == MEASURE["cases"]))
+
+
 def search_span(session: Session, start: dt.date, end: dt.date | None,
                 settle: int) -> tuple[dt.date, dt.date]:
     """First and last day of the break search for a page showing ``start..end`` (``end``
@@ -73,8 +80,7 @@ def search_span(session: Session, start: dt.date, end: dt.date | None,
     days (late reports still arrive; the effects page's setting) or ``end`` if earlier; the
     search reads the :data:`SEARCH_DAYS` days up to it, or from :data:`PERIOD_LEAD_DAYS`
     before ``start`` where that is earlier (a period of more than about nine months)."""
-    newest = session.scalar(select(func.max(Observation.ref_date)).join(
-        Measure, Measure.id == Observation.measure_id).where(Measure.name == MEASURE["cases"]))
+    newest = newest_cases_day(session)
     last = end if newest is None else newest - dt.timedelta(days=settle)
     if end is not None:
         last = min(last, end)
