@@ -34,6 +34,7 @@ from sqlalchemy.orm import Session, aliased
 
 from server.indicators.testing_known import testing_changes_as_known
 from server.services.event_effects import DEFAULT_SETTLE, EventEffect, effects_page
+from server.services.hierarchy import membership, parents_of
 from server.services.stream_breaks import (
     STREAMS,
     Agreement,
@@ -113,18 +114,11 @@ def members_of(session: Session, code: str
     if me is None or me.level in ("district", "plant"):
         return (me.level if me is not None else "district"), (), ()
 
-    def under(r: Region) -> bool:
-        seen: set[int] = set()
-        node = r.parent_id
-        while node is not None and node not in seen:
-            if node == me.id:
-                return True
-            seen.add(node)
-            node = regions[node].parent_id if node in regions else None
-        return False
-
-    districts = sorted((r for r in regions.values() if r.level == "district" and under(r)),
-                       key=lambda r: r.code)
+    all_districts = sorted((r for r in regions.values() if r.level == "district"),
+                           key=lambda r: r.code)
+    parent_of = parents_of(regions)
+    under = membership([r.code for r in all_districts], parent_of, [code])[0]
+    districts = [r for r, inside in zip(all_districts, under, strict=True) if inside]
     people = {r.id: float(r.population or 0) for r in districts}
     served: dict[str, float] = {}
     for plant, district, share in session.execute(

@@ -32,6 +32,7 @@ from server.indicators.before_after import (
 )
 from server.services import audit
 from server.services.errors import FormFieldError, checked_note
+from server.services.hierarchy import membership, parents_of
 from server.services.stream_breaks import (
     Agreement,
     StreamOptions,
@@ -219,18 +220,15 @@ def effects_page(
         raise EventError("end", "a period of at most three years")
     o = options or EffectOptions()
     regions = {r.id: r for r in session.scalars(select(Region))}
-    choices = tuple((r.code, r.name) for r in sorted(
+    ordered = [r for r in sorted(
         regions.values(), key=lambda r: ({"county": 0, "region": 1}.get(r.level, 2), r.code))
-        if r.level != "plant")
-    above: set[int] = set()  # every region that has a district somewhere below it
-    for r in regions.values():
-        node = r.parent_id if r.level == "district" else None
-        while node is not None and node not in above and node in regions:
-            above.add(node)
-            node = regions[node].parent_id
-    summed = tuple((r.code, r.name) for r in sorted(
-        regions.values(), key=lambda r: ({"county": 0, "region": 1}.get(r.level, 2), r.code))
-        if r.id in above)
+        if r.level != "plant"]
+    choices = tuple((r.code, r.name) for r in ordered)
+    # the regions with a district somewhere below them
+    parent_of = parents_of(regions)
+    below = membership([r.code for r in regions.values() if r.level == "district"], parent_of,
+                       [r.code for r in ordered])
+    summed = tuple((r.code, r.name) for r, row in zip(ordered, below, strict=True) if row.any())
     raw = sorted(_tier_changes(session, start, end) + _recorded(session, start, end),
                  key=lambda e: (e.day, regions[e.region_id].code, e.kind))
     data_end = newest_cases_day(session)

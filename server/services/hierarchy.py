@@ -24,7 +24,15 @@ from sqlalchemy.orm import Session, aliased
 from server.indicators.aggregate import membership, sum_counts
 from server.store.models import Region
 
-__all__ = ["Aggregated", "Hierarchy", "fill_parents", "hierarchy", "membership", "sum_up"]
+__all__ = [
+    "Aggregated", "Hierarchy", "fill_parents", "hierarchy", "membership", "parents_of", "sum_up",
+]
+
+
+def parents_of(regions: Mapping[int, Region]) -> dict[str, str | None]:
+    """Each region's code to its parent's code (None at the top), from regions by id."""
+    return {r.code: regions[r.parent_id].code if r.parent_id in regions else None
+            for r in regions.values()}
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -31,7 +31,7 @@ from server.indicators.changepoints import detect_changepoints
 from server.indicators.level_breaks import detect_level_breaks
 from server.indicators.stream_agreement import ALIGNMENT, DEFAULT_TOLERANCE, stream_agreement
 from server.services.errors import FormFieldError
-from server.services.hierarchy import membership, sum_up
+from server.services.hierarchy import membership, parents_of, sum_up
 from server.store.models import Catchment, Measure, Observation, Region
 from server.store.reads import read_dense
 
@@ -172,8 +172,7 @@ def daily_counts(session: Session, measure: str, codes: list[str], first: dt.dat
                            regions=districts)
     except LookupError:  # a measure the store does not hold
         return None
-    parent_of = {r.code: regions[r.parent_id].code if r.parent_id in regions else None
-                 for r in regions.values()}
+    parent_of = parents_of(regions)
     matrix = membership(districts, parent_of, codes)
     for i, code in enumerate(codes):
         if code in districts:
